@@ -1,0 +1,858 @@
+"""Psychometric model and maximum-likelihood fits, single, joint and batched.
+
+The model (DESIGN.md)::
+
+    P(cw | x) = lapse / 2 + (1 - lapse) * F((x - pse) / spread)
+
+with ``F`` the standard normal CDF (``"gaussian"``, default) or the standard
+logistic CDF (``"logistic"``).  A *joint* fit gives every condition of one
+observer its own PSE, a spread that is shared (default) or per condition, and
+one lapse rate shared by all conditions, free within ``[0, lapse_max]`` or
+fixed.
+
+How the fit works
+-----------------
+Trials are pooled by stimulus level into *cells* (level, trials, clockwise
+answers), padded to a rectangle ``(conditions, levels)``.  The parameter
+vector is ``(pse_1..pse_C, log spread (1 or C), lapse?)``.  One solver,
+:func:`solve_batch`, maximises the likelihood for a whole batch of data sets at
+once (rows of a 2-D array): it is a box-constrained Newton method with
+
+* the exact (observed) Hessian where it gives a descent direction and the
+  expected (Fisher) information otherwise, so it never walks uphill;
+* an active set for parameters sitting on a bound with the gradient pointing
+  out (projected Newton), which is how the lapse is kept in its interval and
+  how separated data get a bounded, flagged estimate instead of an infinite
+  one;
+* a backtracking (Armijo) line search done for all rows together.
+
+The point fit and all bootstrap replicates use the same solver, so they are
+fitted by exactly the same rules; rows that have converged drop out of the
+batch.  Every bound is reported: a parameter on its bound is flagged and gets
+no standard error (the information-based error is meaningless there).
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass, field
+from functools import cached_property
+
+import numpy as np
+from scipy import sparse, special
+
+SIGMOIDS = ("gaussian", "logistic")
+DEFAULT_LAPSE_MAX = 0.1
+_PROB_FLOOR = 1e-12
+_INV_SQRT_2PI = 1.0 / math.sqrt(2.0 * math.pi)
+
+
+class SeparationWarning(UserWarning):
+    """Answers fall entirely on one side, or levels split them perfectly."""
+
+
+class FitWarning(UserWarning):
+    """A fit stopped on a bound or did not converge."""
+
+
+# --------------------------------------------------------------------------
+# model pieces
+# --------------------------------------------------------------------------
+
+def check_sigmoid(sigmoid: str) -> str:
+    """Return ``sigmoid`` if it names a known shape, else raise ``ValueError``."""
+    if sigmoid not in SIGMOIDS:
+        raise ValueError(f"sigmoid must be one of {SIGMOIDS}, not {sigmoid!r}")
+    return sigmoid
+
+
+def sigmoid_parts(z: np.ndarray, sigmoid: str = "gaussian"):
+    """Return ``F(z)``, its density ``f(z)`` and the density's slope ``f'(z)``."""
+    if sigmoid == "gaussian":
+        cdf = special.ndtr(z)
+        pdf = np.exp(-0.5 * z * z) * _INV_SQRT_2PI
+        return cdf, pdf, -z * pdf
+    cdf = special.expit(z)
+    pdf = cdf * (1.0 - cdf)
+    return cdf, pdf, pdf * (1.0 - 2.0 * cdf)
+
+
+def sigmoid_quantile(q, sigmoid: str = "gaussian"):
+    """Inverse of the standard sigmoid: ``F^{-1}(q)``."""
+    return special.ndtri(q) if sigmoid == "gaussian" else special.logit(q)
+
+
+def probability_cw(x, pse, spread, lapse, sigmoid: str = "gaussian"):
+    """Probability of a clockwise answer at test offset ``x`` (degrees)."""
+    z = (np.asarray(x, dtype=float) - pse) / spread
+    return lapse / 2.0 + (1.0 - lapse) * sigmoid_parts(z, sigmoid)[0]
+
+
+def jnd_from_spread(spread, sigmoid: str = "gaussian"):
+    """Just-noticeable difference: ``spread * F^{-1}(0.75)`` (degrees)."""
+    return np.asarray(spread) * float(sigmoid_quantile(0.75, sigmoid))
+
+
+# --------------------------------------------------------------------------
+# data and parameter layout
+# --------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class Cells:
+    """Trials pooled by stimulus level, one row per condition.
+
+    Attributes
+    ----------
+    x : ndarray, shape (C, L)
+        Test offsets (deg); padding repeats a real level of the row.
+    n : ndarray, shape (C, L)
+        Trials at each level (0 for padding).
+    k : ndarray, shape (C, L)
+        Clockwise answers at each level.
+    """
+
+    x: np.ndarray
+    n: np.ndarray
+    k: np.ndarray
+
+    @classmethod
+    def from_trials(cls, levels, responses, condition=None, n_conditions=None) -> "Cells":
+        """Pool single trials.
+
+        Parameters
+        ----------
+        levels : array_like
+            Test offset of each trial (deg).
+        responses : array_like
+            1 for clockwise, 0 otherwise (missed trials must be removed first).
+        condition : array_like of int, optional
+            Condition index 0..C-1 of each trial (all 0 if omitted).
+        n_conditions : int, optional
+            C; defaults to ``max(condition) + 1``.
+        """
+        levels = np.asarray(levels, dtype=float)
+        responses = np.asarray(responses, dtype=float)
+        if levels.shape != responses.shape or levels.ndim != 1:
+            raise ValueError("levels and responses must be 1-D and of equal length")
+        if not np.all(np.isfinite(levels)):
+            raise ValueError("levels must be finite numbers")
+        if not np.all((responses == 0) | (responses == 1)):
+            raise ValueError("responses must be 0 or 1")
+        cond = np.zeros(levels.size, dtype=int) if condition is None else np.asarray(condition, dtype=int)
+        n_cond = int(cond.max()) + 1 if n_conditions is None else int(n_conditions)
+        rows = []
+        for c in range(n_cond):
+            sel = cond == c
+            if not sel.any():
+                raise ValueError(f"condition {c} has no trials")
+            ux, inv = np.unique(levels[sel], return_inverse=True)
+            rows.append((ux, np.bincount(inv).astype(float),
+                         np.bincount(inv, weights=responses[sel])))
+        width = max(len(r[0]) for r in rows)
+        x = np.empty((n_cond, width))
+        n = np.zeros((n_cond, width))
+        k = np.zeros((n_cond, width))
+        for c, (ux, nn, kk) in enumerate(rows):
+            m = len(ux)
+            x[c, :m], x[c, m:] = ux, ux[0]
+            n[c, :m], k[c, :m] = nn, kk
+        return cls(x, n, k)
+
+    @property
+    def n_conditions(self) -> int:
+        return self.x.shape[0]
+
+    @property
+    def trials(self) -> np.ndarray:
+        """Trials per condition, shape (C,)."""
+        return self.n.sum(axis=1)
+
+
+@dataclass(frozen=True)
+class Layout:
+    """Which parameter each condition uses.
+
+    Parameters
+    ----------
+    n_conditions : int
+    shared_spread : bool
+        One spread for all conditions (True) or one per condition.
+    lapse : float or None
+        ``None``: lapse is a free parameter in ``[0, lapse_max]`` shared by all
+        conditions; a number: the lapse is fixed at that value.
+    lapse_max : float
+        Upper bound of a free lapse.
+    """
+
+    n_conditions: int
+    shared_spread: bool = True
+    lapse: float | None = None
+    lapse_max: float = DEFAULT_LAPSE_MAX
+
+    @property
+    def free_lapse(self) -> bool:
+        return self.lapse is None
+
+    @property
+    def n_spreads(self) -> int:
+        return 1 if self.shared_spread else self.n_conditions
+
+    @property
+    def n_params(self) -> int:
+        return self.n_conditions + self.n_spreads + int(self.free_lapse)
+
+    @cached_property
+    def pse_index(self) -> np.ndarray:
+        return np.arange(self.n_conditions)
+
+    @cached_property
+    def spread_index(self) -> np.ndarray:
+        """Index of the log-spread parameter used by each condition, (C,)."""
+        c = self.n_conditions
+        return np.full(c, c) if self.shared_spread else c + np.arange(c)
+
+    @property
+    def lapse_index(self) -> int | None:
+        return self.n_conditions + self.n_spreads if self.free_lapse else None
+
+    @cached_property
+    def _local_to_global(self) -> np.ndarray:
+        """(C, 3) global index of each condition's (pse, log spread, lapse); -1 = fixed."""
+        lap = -1 if self.lapse_index is None else self.lapse_index
+        return np.column_stack([self.pse_index, self.spread_index,
+                                np.full(self.n_conditions, lap)])
+
+    @cached_property
+    def _gather_gradient(self) -> sparse.csr_array:
+        idx = self._local_to_global.ravel()
+        keep = idx >= 0
+        return sparse.csr_array((np.ones(keep.sum()), (idx[keep], np.flatnonzero(keep))),
+                                shape=(self.n_params, idx.size))
+
+    @cached_property
+    def _gather_hessian(self) -> sparse.csr_array:
+        g = self._local_to_global
+        rows = g[:, :, None]
+        cols = g[:, None, :]
+        rows, cols = np.broadcast_arrays(rows, cols)
+        rows, cols = rows.ravel(), cols.ravel()
+        keep = (rows >= 0) & (cols >= 0)
+        target = rows[keep] * self.n_params + cols[keep]
+        return sparse.csr_array((np.ones(keep.sum()), (target, np.flatnonzero(keep))),
+                                shape=(self.n_params ** 2, rows.size))
+
+    def gather_gradient(self, local: np.ndarray) -> np.ndarray:
+        """Sum per-condition gradients (B, C, 3) into the parameter vector (B, P)."""
+        b = local.shape[0]
+        return np.asarray(self._gather_gradient @ local.reshape(b, -1).T).T
+
+    def gather_hessian(self, local: np.ndarray) -> np.ndarray:
+        """Sum per-condition blocks (B, C, 3, 3) into the parameter matrix (B, P, P)."""
+        b = local.shape[0]
+        p = self.n_params
+        return np.asarray(self._gather_hessian @ local.reshape(b, -1).T).T.reshape(b, p, p)
+
+    def names(self, conditions) -> list[str]:
+        """Readable parameter names for the given condition labels."""
+        out = [f"pse[{c}]" for c in conditions]
+        out += ["log_spread"] if self.shared_spread else [f"log_spread[{c}]" for c in conditions]
+        if self.free_lapse:
+            out.append("lapse")
+        return out
+
+    def unpack(self, theta: np.ndarray):
+        """Split parameters (B, P) into pse (B, C), spread (B, C), lapse (B,)."""
+        pse = theta[:, self.pse_index]
+        spread = np.exp(theta[:, self.spread_index])
+        if self.free_lapse:
+            lapse = theta[:, self.lapse_index]
+        else:
+            lapse = np.full(theta.shape[0], float(self.lapse))
+        return pse, spread, lapse
+
+
+# --------------------------------------------------------------------------
+# likelihood and its derivatives, batched
+# --------------------------------------------------------------------------
+
+def _cell_terms(theta, x, layout, sigmoid):
+    """Probabilities and pieces shared by the derivatives, all (B, C, L)."""
+    pse, spread, lapse = layout.unpack(theta)
+    sigma = spread[:, :, None]
+    z = (x - pse[:, :, None]) / sigma
+    cdf, pdf, dpdf = sigmoid_parts(z, sigmoid)
+    lam = lapse[:, None, None]
+    keep = 1.0 - lam
+    p = np.clip(lam * 0.5 + keep * cdf, _PROB_FLOOR, 1.0 - _PROB_FLOOR)
+    return p, z, sigma, keep, cdf, pdf, dpdf
+
+
+def negative_loglik(theta, x, n, k, layout, sigmoid="gaussian") -> np.ndarray:
+    """Negative log-likelihood of each row of ``theta`` (B,)."""
+    p = _cell_terms(theta, x, layout, sigmoid)[0]
+    return -(k * np.log(p) + (n - k) * np.log1p(-p)).sum(axis=(1, 2))
+
+
+def probability_derivatives(theta, x, layout, sigmoid="gaussian"):
+    """``p`` and its first derivatives in (pse, log spread, lapse), each (B, C, L)."""
+    p, z, sigma, keep, cdf, pdf, _ = _cell_terms(theta, x, layout, sigmoid)
+    return p, -keep * pdf / sigma, -keep * pdf * z, 0.5 - cdf
+
+
+def _derivatives(theta, x, n, k, layout, sigmoid):
+    """Negative log-likelihood, its gradient and two curvature matrices.
+
+    Returns ``(nll (B,), grad (B, P), observed (B, P, P), fisher (B, P, P))``;
+    ``observed`` is the exact Hessian of the negative log-likelihood and
+    ``fisher`` its expectation (the Fisher information).
+    """
+    p, z, sigma, keep, cdf, pdf, dpdf = _cell_terms(theta, x, layout, sigmoid)
+    q = 1.0 - p
+    nk = n - k
+    nll = -(k * np.log(p) + nk * np.log1p(-p)).sum(axis=(1, 2))
+    d1 = k / p - nk / q                 # d loglik / dp
+    d2 = -(k / (p * p) + nk / (q * q))  # d2 loglik / dp2
+    info = n / (p * q)                  # Fisher weight of p
+    first = [-keep * pdf / sigma, -keep * pdf * z]
+    second = {(0, 0): keep * dpdf / (sigma * sigma),
+              (0, 1): keep * (z * dpdf + pdf) / sigma,
+              (1, 1): keep * (z * z * dpdf + z * pdf)}
+    if layout.free_lapse:
+        first.append(0.5 - cdf)
+        second[(0, 2)] = pdf / sigma
+        second[(1, 2)] = z * pdf
+    m = len(first)
+    b, c = theta.shape[0], x.shape[1]
+    grad = np.zeros((b, c, 3))
+    obs = np.zeros((b, c, 3, 3))
+    fis = np.zeros((b, c, 3, 3))
+    for i in range(m):
+        grad[..., i] = (d1 * first[i]).sum(-1)
+        for j in range(i, m):
+            prod = first[i] * first[j]
+            o = (d2 * prod).sum(-1)
+            if (i, j) in second:
+                o += (d1 * second[(i, j)]).sum(-1)
+            f = -(info * prod).sum(-1)
+            obs[..., i, j] = obs[..., j, i] = o
+            fis[..., i, j] = fis[..., j, i] = f
+    return (nll, -layout.gather_gradient(grad),
+            -layout.gather_hessian(obs), -layout.gather_hessian(fis))
+
+
+# --------------------------------------------------------------------------
+# bounds and starting values
+# --------------------------------------------------------------------------
+
+def parameter_bounds(cells: Cells, layout: Layout):
+    """Box for the parameters (P,) each: ``lo``, ``hi``.
+
+    PSE: the tested range widened by its own width on each side; spread:
+    1/1000 to 10 times the tested range (log scale); lapse: ``[0, lapse_max]``.
+    Ranges narrower than 1 deg count as 1 deg.
+    """
+    used = cells.n > 0
+    xmin = np.where(used, cells.x, np.inf).min(axis=1)
+    xmax = np.where(used, cells.x, -np.inf).max(axis=1)
+    width = np.maximum(xmax - xmin, 1.0)
+    lo = np.empty(layout.n_params)
+    hi = np.empty(layout.n_params)
+    lo[layout.pse_index] = xmin - width
+    hi[layout.pse_index] = xmax + width
+    spread_width = np.full(layout.n_conditions, width.max()) if layout.shared_spread else width
+    lo[layout.spread_index] = np.log(1e-3 * spread_width)
+    hi[layout.spread_index] = np.log(10.0 * spread_width)
+    if layout.free_lapse:
+        lo[layout.lapse_index], hi[layout.lapse_index] = 0.0, layout.lapse_max
+    return lo, hi
+
+
+def starting_values(cells: Cells, layout: Layout, sigmoid="gaussian") -> np.ndarray:
+    """A coarse grid search for (pse, spread) per condition, shape (P,)."""
+    x, n, k = cells.x, cells.n, cells.k
+    used = n > 0
+    xmin = np.where(used, x, np.inf).min(axis=1)
+    xmax = np.where(used, x, -np.inf).max(axis=1)
+    width = np.maximum(xmax - xmin, 1.0)
+    lapse = 0.02 * min(1.0, layout.lapse_max / 0.04) if layout.free_lapse else float(layout.lapse)
+    mu_grid = xmin[:, None] + (xmax - xmin)[:, None] * np.linspace(0, 1, 21)[None, :]   # (C, G)
+    sd_factor = np.geomspace(0.02, 2.0, 13)
+    sd_base = np.full(x.shape[0], width.max()) if layout.shared_spread else width
+    sd_grid = sd_base[:, None] * sd_factor[None, :]                                    # (C, S)
+    z = (x[:, None, None, :] - mu_grid[:, None, :, None]) / sd_grid[:, :, None, None]   # (C, S, G, L)
+    p = np.clip(lapse / 2 + (1 - lapse) * sigmoid_parts(z, sigmoid)[0], _PROB_FLOOR, 1 - _PROB_FLOOR)
+    nll = -(k[:, None, None, :] * np.log(p) + (n - k)[:, None, None, :] * np.log1p(-p)).sum(-1)
+    best_mu = nll.argmin(axis=2)                      # (C, S)
+    best_nll = nll.min(axis=2)                        # (C, S)
+    theta = np.empty(layout.n_params)
+    if layout.shared_spread:
+        s = int(best_nll.sum(axis=0).argmin())
+        pick = np.full(x.shape[0], s)
+        theta[layout.n_conditions] = np.log(sd_grid[0, s])
+    else:
+        pick = best_nll.argmin(axis=1)
+        theta[layout.spread_index] = np.log(sd_grid[np.arange(x.shape[0]), pick])
+    theta[layout.pse_index] = mu_grid[np.arange(x.shape[0]), best_mu[np.arange(x.shape[0]), pick]]
+    if layout.free_lapse:
+        theta[layout.lapse_index] = lapse
+    return theta
+
+
+# --------------------------------------------------------------------------
+# the batched solver
+# --------------------------------------------------------------------------
+
+@dataclass
+class BatchSolution:
+    """Result of :func:`solve_batch` for B rows."""
+
+    theta: np.ndarray        # (B, P)
+    nll: np.ndarray          # (B,)
+    converged: np.ndarray    # (B,) bool
+    iterations: np.ndarray   # (B,) int
+    at_bound: np.ndarray     # (B, P) bool
+
+
+def _rows(a: np.ndarray, idx: np.ndarray) -> np.ndarray:
+    """Rows ``idx`` of a batch array, or the array itself if shared (first dim 1)."""
+    return a if a.shape[0] == 1 else a[idx]
+
+
+def _solve_stack(h: np.ndarray, g: np.ndarray) -> np.ndarray:
+    """Solve ``h d = g`` for a stack, falling back to a pseudo-inverse."""
+    try:
+        d = np.linalg.solve(h, g[..., None])[..., 0]
+    except np.linalg.LinAlgError:
+        d = np.einsum("bij,bj->bi", np.linalg.pinv(h), g)
+    return d
+
+
+def _newton_direction(obs, fis, grad, fixed):
+    """Descent direction with fixed parameters held (projected Newton)."""
+    p = grad.shape[1]
+    eye = np.eye(p, dtype=bool)[None]
+    mask = fixed[:, :, None] | fixed[:, None, :]
+    g = np.where(fixed, 0.0, grad)
+    obs = np.where(mask, 0.0, obs) + np.where(eye & fixed[:, :, None], 1.0, 0.0)
+    fis = np.where(mask, 0.0, fis) + np.where(eye & fixed[:, :, None], 1.0, 0.0)
+    scale = np.abs(np.diagonal(fis, axis1=1, axis2=2)).max(axis=1)
+    fis = fis + (1e-10 * (1.0 + scale))[:, None, None] * np.eye(p)[None]
+    d_obs = -_solve_stack(obs, g)
+    d_fis = -_solve_stack(fis, g)
+    slope = (g * d_obs).sum(axis=1)
+    use_obs = np.isfinite(d_obs).all(axis=1) & (slope < 0)
+    d = np.where(use_obs[:, None], d_obs, d_fis)
+    d = np.where(np.isfinite(d), d, 0.0)
+    return d, g
+
+
+def solve_batch(theta0, x, n, k, layout: Layout, lo, hi, sigmoid="gaussian",
+                max_iter: int = 100, tol: float = 1e-10) -> BatchSolution:
+    """Maximum-likelihood fits of many data sets at once.
+
+    Parameters
+    ----------
+    theta0 : ndarray, shape (B, P) or (1, P)
+        Starting parameters (pse, log spread, lapse).
+    x, n : ndarray, shape (B, C, L) or (1, C, L)
+        Levels and trials per cell (shared when the first dimension is 1).
+    k : ndarray, shape (B, C, L)
+        Clockwise answers per cell.
+    layout : Layout
+    lo, hi : ndarray, shape (B, P) or (1, P) or (P,)
+        Parameter box.
+    sigmoid : {"gaussian", "logistic"}
+    max_iter : int
+        Newton iterations at most.
+    tol : float
+        Converged when the Newton decrement ``-g.d`` (a log-likelihood
+        difference) falls below ``tol``.
+
+    Returns
+    -------
+    BatchSolution
+    """
+    k = np.asarray(k, dtype=float)
+    b = k.shape[0]
+    x = np.asarray(x, dtype=float)
+    n = np.asarray(n, dtype=float)
+    lo = np.atleast_2d(np.asarray(lo, dtype=float))
+    hi = np.atleast_2d(np.asarray(hi, dtype=float))
+    theta = np.array(np.broadcast_to(theta0, (b, layout.n_params)), dtype=float)
+    theta = np.clip(theta, lo, hi)
+    nll = np.full(b, np.nan)
+    converged = np.zeros(b, dtype=bool)
+    iterations = np.zeros(b, dtype=int)
+    todo = np.arange(b)
+    for _ in range(max_iter):
+        if todo.size == 0:
+            break
+        th = theta[todo]
+        xa, na, ka = _rows(x, todo), _rows(n, todo), k[todo]
+        la, ha = _rows(lo, todo), _rows(hi, todo)
+        f0, grad, obs, fis = _derivatives(th, xa, na, ka, layout, sigmoid)
+        nll[todo] = f0
+        room = 1e-9 * (ha - la)
+        fixed = ((th <= la + room) & (grad > 0)) | ((th >= ha - room) & (grad < 0))
+        d, g = _newton_direction(obs, fis, grad, fixed)
+        decrement = -(g * d).sum(axis=1)
+        done = decrement < tol
+        converged[todo[done]] = True
+        move = np.flatnonzero(~done)
+        # backtracking line search, all moving rows together
+        step = np.ones(move.size)
+        accepted = np.zeros(move.size, dtype=bool)
+        for _ls in range(40):
+            open_ = np.flatnonzero(~accepted)
+            if open_.size == 0:
+                break
+            rows = move[open_]
+            cand = np.clip(th[rows] + step[open_, None] * d[rows], _rows(la, rows), _rows(ha, rows))
+            fc = negative_loglik(cand, _rows(xa, rows), _rows(na, rows), ka[rows], layout, sigmoid)
+            change = (grad[rows] * (cand - th[rows])).sum(axis=1)
+            ok = np.isfinite(fc) & (fc <= f0[rows] + 1e-4 * np.minimum(change, 0.0))
+            good = open_[ok]
+            theta[todo[move[good]]] = cand[ok]
+            nll[todo[move[good]]] = fc[ok]
+            accepted[good] = True
+            step[open_[~ok]] *= 0.5
+        iterations[todo[move]] += 1
+        # a row that cannot improve (line search failed) or improves by less
+        # than rounding is at a numerical optimum when its decrement is small
+        # (this ends fits drifting along a flat ridge, e.g. separated data);
+        # otherwise it stays flagged as not converged
+        gain = f0[move] - nll[todo[move]]
+        flat = ~accepted | (gain <= 1e-13 * (1.0 + np.abs(f0[move])))
+        converged[todo[move[flat]]] = decrement[move[flat]] < 1e-6
+        todo = todo[move[~flat]]
+    room = 1e-7 * (hi - lo)
+    at_bound = (theta <= lo + room) | (theta >= hi - room)
+    return BatchSolution(theta, nll, converged, iterations, at_bound)
+
+
+# --------------------------------------------------------------------------
+# separation and deviance
+# --------------------------------------------------------------------------
+
+def separation(cells: Cells) -> list[str]:
+    """Describe, per condition, answers that a finite fit cannot follow.
+
+    Returns ``""`` for ordinary data, ``"all clockwise"``, ``"all
+    counter-clockwise"`` or ``"complete separation"`` (every clockwise answer
+    at a larger offset than every counter-clockwise one).
+    """
+    x, n, k = cells.x, cells.n, cells.k
+    has_cw = k > 0
+    has_ccw = (n - k) > 0
+    out = []
+    for c in range(x.shape[0]):
+        if not has_ccw[c].any():
+            out.append("all clockwise")
+        elif not has_cw[c].any():
+            out.append("all counter-clockwise")
+        elif x[c][has_ccw[c]].max() < x[c][has_cw[c]].min():
+            out.append("complete separation")
+        else:
+            out.append("")
+    return out
+
+
+def deviance_by_condition(p, n, k) -> np.ndarray:
+    """Deviance against the saturated model, summed over levels: (..., C).
+
+    ``D = 2 * sum(k log(k / (n p)) + (n - k) log((n - k) / (n (1 - p))))``
+    over cells (Wichmann & Hill 2001, part I).
+    """
+    with np.errstate(divide="ignore", invalid="ignore"):
+        obs = np.where(n > 0, k / np.where(n > 0, n, 1.0), 0.0)
+        dev = 2.0 * (special.xlogy(k, np.where(k > 0, obs / p, 1.0))
+                     + special.xlogy(n - k, np.where(n - k > 0, (1 - obs) / (1 - p), 1.0)))
+    return np.where(n > 0, dev, 0.0).sum(axis=-1)
+
+
+# --------------------------------------------------------------------------
+# results
+# --------------------------------------------------------------------------
+
+@dataclass
+class PsychometricFit:
+    """Maximum-likelihood fit of one observer's conditions (or one condition).
+
+    Attributes
+    ----------
+    conditions : tuple of str
+        Condition labels, in row order of ``cells``.
+    cells : Cells
+    layout : Layout
+    sigmoid : str
+    theta : ndarray (P,)
+        Estimates in the fitting scale: pse (deg), log spread, lapse.
+    lower, upper : ndarray (P,)
+        The parameter box.
+    loglik : float
+    converged : bool
+    iterations : int
+    at_bound : ndarray (P,) bool
+    covariance : ndarray (P, P)
+        Inverse observed information over the parameters not on a bound
+        (rows and columns of bound or fixed parameters are NaN).
+    separation : list of str
+        Per condition, see :func:`separation`.
+    """
+
+    conditions: tuple
+    cells: Cells
+    layout: Layout
+    sigmoid: str
+    theta: np.ndarray
+    lower: np.ndarray
+    upper: np.ndarray
+    loglik: float
+    converged: bool
+    iterations: int
+    at_bound: np.ndarray
+    covariance: np.ndarray
+    separation: list = field(default_factory=list)
+
+    # --- estimates in natural units ----------------------------------
+    @property
+    def pse(self) -> np.ndarray:
+        """PSE per condition (deg)."""
+        return self.theta[self.layout.pse_index].copy()
+
+    @property
+    def spread(self) -> np.ndarray:
+        """Spread per condition (deg); equal entries when shared."""
+        return np.exp(self.theta[self.layout.spread_index])
+
+    @property
+    def lapse(self) -> float:
+        return float(self.layout.unpack(self.theta[None])[2][0])
+
+    @property
+    def jnd(self) -> np.ndarray:
+        """JND per condition (deg): ``spread * F^{-1}(0.75)``."""
+        return jnd_from_spread(self.spread, self.sigmoid)
+
+    @property
+    def standard_errors(self) -> np.ndarray:
+        """Standard errors in the fitting scale (P,); NaN on a bound."""
+        return np.sqrt(np.diagonal(self.covariance))
+
+    @property
+    def pse_se(self) -> np.ndarray:
+        return self.standard_errors[self.layout.pse_index]
+
+    @property
+    def spread_se(self) -> np.ndarray:
+        """Delta method: ``se(spread) = spread * se(log spread)``."""
+        return self.spread * self.standard_errors[self.layout.spread_index]
+
+    @property
+    def lapse_se(self) -> float:
+        if not self.layout.free_lapse:
+            return float("nan")
+        return float(self.standard_errors[self.layout.lapse_index])
+
+    @property
+    def n_trials(self) -> np.ndarray:
+        return self.cells.trials
+
+    @property
+    def deviance(self) -> float:
+        """Deviance against the saturated model (one cell per level)."""
+        return float(self.deviance_by_condition.sum())
+
+    @property
+    def deviance_by_condition(self) -> np.ndarray:
+        return deviance_by_condition(self.probabilities(), self.cells.n, self.cells.k)
+
+    @property
+    def n_cells(self) -> int:
+        return int((self.cells.n > 0).sum())
+
+    @property
+    def dof(self) -> int:
+        """Cells minus free parameters not on a bound."""
+        free = (~self.at_bound).sum() if self.layout.n_params else 0
+        return int(self.n_cells - free)
+
+    @property
+    def pse_at_bound(self) -> np.ndarray:
+        return self.at_bound[self.layout.pse_index]
+
+    @property
+    def spread_at_bound(self) -> np.ndarray:
+        return self.at_bound[self.layout.spread_index]
+
+    @property
+    def lapse_at_bound(self) -> bool:
+        return bool(self.layout.free_lapse and self.at_bound[self.layout.lapse_index])
+
+    @property
+    def flags(self) -> list[str]:
+        """Per condition, a short text of everything unusual about its fit."""
+        out = []
+        for c in range(len(self.conditions)):
+            words = [self.separation[c]] if self.separation and self.separation[c] else []
+            if self.pse_at_bound[c]:
+                words.append("PSE on its bound")
+            if self.spread_at_bound[c]:
+                words.append("spread on its bound")
+            if not self.converged:
+                words.append("did not converge")
+            out.append("; ".join(words))
+        return out
+
+    def probabilities(self) -> np.ndarray:
+        """Fitted P(cw) at every cell, (C, L)."""
+        return _cell_terms(self.theta[None], self.cells.x[None], self.layout, self.sigmoid)[0][0]
+
+    def predict(self, x, condition: int | str = 0) -> np.ndarray:
+        """Fitted P(cw) at offsets ``x`` for one condition (index or label)."""
+        c = self.conditions.index(condition) if isinstance(condition, str) else int(condition)
+        return probability_cw(x, self.pse[c], self.spread[c], self.lapse, self.sigmoid)
+
+    def summary(self) -> str:
+        """Readable table of estimates, errors, flags and fit statistics."""
+        lines = [f"Psychometric fit ({self.sigmoid} sigmoid, "
+                 f"{'shared' if self.layout.shared_spread else 'per-condition'} spread, "
+                 + ("lapse free in [0, %g]" % self.layout.lapse_max if self.layout.free_lapse
+                    else "lapse fixed at %g" % self.layout.lapse) + ")"]
+        head = f"{'condition':<22}{'trials':>7}{'PSE':>9}{'se':>7}{'spread':>9}{'se':>7}{'JND':>8}  notes"
+        lines.append(head)
+        pse_se, spread_se = self.pse_se, self.spread_se
+        for c, name in enumerate(self.conditions):
+            lines.append(f"{str(name):<22}{int(self.n_trials[c]):>7d}{self.pse[c]:>9.3f}"
+                         f"{_fmt(pse_se[c]):>7}{self.spread[c]:>9.3f}{_fmt(spread_se[c]):>7}"
+                         f"{self.jnd[c]:>8.3f}  {self.flags[c]}")
+        if any(self.separation):
+            lines.append("separated answers: the PSE lies somewhere the data cannot pin down; "
+                         "the value shown is bounded and has no standard error")
+        lapse_note = " (on its bound)" if self.lapse_at_bound else ""
+        lines.append(f"lapse {self.lapse:.4f} se {_fmt(self.lapse_se)}{lapse_note}")
+        lines.append(f"log-likelihood {self.loglik:.4f}; deviance {self.deviance:.3f} on {self.dof} df; "
+                     f"{'converged' if self.converged else 'NOT converged'} after {self.iterations} iterations")
+        lines.append("units: degrees of test offset, + = clockwise; se from the observed information")
+        return "\n".join(lines)
+
+
+def _fmt(v) -> str:
+    return "—" if not np.isfinite(v) else (f"{v:.3f}" if abs(v) < 1e3 else f"{v:.2g}")
+
+
+def _covariance(theta, cells, layout, sigmoid, at_bound, sep):
+    """Inverse observed information over the estimable parameters.
+
+    Parameters on a bound, and the PSE (and own spread) of a condition whose
+    answers are separated, are not estimable: their rows are NaN.
+    """
+    _, _, obs, _ = _derivatives(theta[None], cells.x[None], cells.n[None], cells.k[None], layout, sigmoid)
+    info = obs[0]
+    free = ~at_bound.copy()
+    for c, s in enumerate(sep):
+        if s:
+            free[layout.pse_index[c]] = False
+            if not layout.shared_spread:
+                free[layout.spread_index[c]] = False
+    if layout.shared_spread and all(sep):
+        free[layout.spread_index[0]] = False
+    cov = np.full(info.shape, np.nan)
+    if free.any():
+        sub = info[np.ix_(free, free)]
+        evals = np.linalg.eigvalsh(sub)
+        if evals[0] > 1e-12 * max(evals[-1], 1e-300):
+            cov[np.ix_(free, free)] = np.linalg.inv(sub)
+    return cov
+
+
+def fit_cells(cells: Cells, conditions=None, spread: str = "shared", lapse="free",
+              sigmoid: str = "gaussian", lapse_max: float = DEFAULT_LAPSE_MAX,
+              warn: bool = True) -> PsychometricFit:
+    """Joint maximum-likelihood fit of pooled trials.
+
+    Parameters
+    ----------
+    cells : Cells
+    conditions : sequence of str, optional
+        Labels (default ``"0", "1", ...``).
+    spread : {"shared", "per_condition"}
+    lapse : "free" or float
+        ``"free"`` estimates one lapse in ``[0, lapse_max]``; a number fixes it.
+    sigmoid : {"gaussian", "logistic"}
+    lapse_max : float
+    warn : bool
+        Emit :class:`SeparationWarning` / :class:`FitWarning` when the data
+        call for it (the flags are set either way).
+
+    Returns
+    -------
+    PsychometricFit
+    """
+    check_sigmoid(sigmoid)
+    if spread not in ("shared", "per_condition"):
+        raise ValueError("spread must be 'shared' or 'per_condition'")
+    fixed = None if lapse == "free" else float(lapse)
+    layout = Layout(cells.n_conditions, spread == "shared", fixed, lapse_max)
+    conditions = tuple(str(c) for c in (conditions if conditions is not None else range(cells.n_conditions)))
+    lo, hi = parameter_bounds(cells, layout)
+    theta0 = starting_values(cells, layout, sigmoid)
+    sol = solve_batch(theta0[None], cells.x[None], cells.n[None], cells.k[None], layout,
+                      lo, hi, sigmoid, max_iter=200, tol=1e-12)
+    theta = sol.theta[0]
+    at_bound = sol.at_bound[0]
+    sep = separation(cells)
+    fit = PsychometricFit(conditions, cells, layout, sigmoid, theta, lo, hi, float(-sol.nll[0]),
+                          bool(sol.converged[0]), int(sol.iterations[0]), at_bound,
+                          _covariance(theta, cells, layout, sigmoid, at_bound, sep), sep)
+    if warn:
+        for c, s in enumerate(sep):
+            if s:
+                warnings.warn(SeparationWarning(
+                    f"condition {conditions[c]}: {s}; its PSE and spread are bounded and flagged, "
+                    "not estimable from these answers"), stacklevel=2)
+        if not fit.converged:
+            warnings.warn(FitWarning("the psychometric fit did not converge"), stacklevel=2)
+    return fit
+
+
+def fit_psychometric(levels, responses, sigmoid: str = "gaussian", lapse="free",
+                     lapse_max: float = DEFAULT_LAPSE_MAX) -> PsychometricFit:
+    """Fit one condition from single trials.
+
+    Parameters
+    ----------
+    levels : array_like
+        Test offset of each trial (deg, + = clockwise).
+    responses : array_like
+        1 = clockwise answer, 0 = counter-clockwise.
+    sigmoid, lapse, lapse_max
+        As in :func:`fit_cells`.
+
+    Examples
+    --------
+    >>> fit = fit_psychometric([-4, -2, 0, 2, 4] * 8, [0, 0, 1, 1, 1] * 8)  # doctest: +SKIP
+    >>> print(fit.summary())                                              # doctest: +SKIP
+    """
+    return fit_cells(Cells.from_trials(levels, responses), ("all",), "shared", lapse,
+                     sigmoid, lapse_max)
+
+
+def fit_joint(levels, responses, condition, spread: str = "shared", lapse="free",
+              sigmoid: str = "gaussian", lapse_max: float = DEFAULT_LAPSE_MAX) -> PsychometricFit:
+    """Fit several conditions of one observer together from single trials.
+
+    ``condition`` holds a label per trial; conditions are ordered by first
+    appearance.  See :func:`fit_cells` for the other parameters.
+    """
+    labels, codes = _codes(condition)
+    cells = Cells.from_trials(levels, responses, codes, len(labels))
+    return fit_cells(cells, labels, spread, lapse, sigmoid, lapse_max)
+
+
+def _codes(condition):
+    condition = [str(c) for c in condition]
+    labels = list(dict.fromkeys(condition))
+    where = {c: i for i, c in enumerate(labels)}
+    return tuple(labels), np.array([where[c] for c in condition])

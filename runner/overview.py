@@ -1,0 +1,78 @@
+"""The plan of a protocol, as ``aftershift check`` prints it."""
+
+from __future__ import annotations
+
+from runner.protocol import Protocol, frame_plan
+from runner.schedule import design_conditions
+
+#: Assumed seconds per answer and per break, for duration estimates only.
+ANSWER_ESTIMATE_S = 0.8
+BREAK_ESTIMATE_S = 60.0
+
+
+def estimated_seconds(protocol: Protocol) -> tuple[float, int]:
+    """Estimated session duration (s) and number of breaks.
+
+    Each trial lasts its frames plus an assumed answer time of
+    :data:`ANSWER_ESTIMATE_S`; each break is assumed to last
+    :data:`BREAK_ESTIMATE_S`.
+    """
+    f = frame_plan(protocol)
+    d = protocol.design
+    per_lag = {}
+    for lag in [None, *d.lags]:
+        k = lag or 0
+        per_lag[lag] = (
+            f["adapter_s"].seconds
+            + k * (f["period_s"].seconds + f["gap_s"].seconds)
+            + f["gap_s"].seconds
+            + f["test_s"].seconds
+            + ANSWER_ESTIMATE_S
+            + f["pause_after_answer_s"].seconds
+        )
+    per_track = d.trials_per_track * d.tracks_per_condition
+    main = per_track * (per_lag[None] + len(d.adapter_offsets_deg) * sum(per_lag[lag] for lag in d.lags))
+    n_main = per_track * (1 + len(d.adapter_offsets_deg) * len(d.lags))
+    practice = d.practice_trials * sum(per_lag.values()) / len(per_lag)
+    breaks = (n_main - 1) // d.break_every if d.break_every else 0
+    adaptation = f["first_adaptation_s"].seconds * (2 if d.practice_trials else 1)
+    return main + practice + adaptation + breaks * BREAK_ESTIMATE_S, breaks
+
+
+def describe(protocol: Protocol) -> list[str]:
+    """Lines describing conditions, trials, frames and the expected duration."""
+    p = protocol
+    d, disp, dots = p.design, p.display, p.dots
+    conditions = design_conditions(p)
+    per_condition = d.tracks_per_condition * d.trials_per_track
+    n_main = per_condition * len(conditions)
+    width_deg, height_deg = disp.extent_deg
+    lines = [
+        f"protocol   {p.title}",
+        f"reference  {p.reference_deg:g} deg (direction, counter-clockwise from rightward); offsets positive = clockwise",
+        f"display    {disp.screen_px[0]}x{disp.screen_px[1]} px, {disp.screen_cm[0]:g}x{disp.screen_cm[1]:g} cm "
+        f"at {disp.distance_cm:g} cm = {width_deg:.1f}x{height_deg:.1f} deg, {disp.px_per_deg:.1f} px/deg, "
+        f"{disp.refresh_hz:g} Hz",
+        f"dots       {dots.n_dots} dots of {dots.dot_size_deg:g} deg in a {dots.aperture_radius_deg:g} deg radius aperture, "
+        f"{dots.speed_deg_s:g} deg/s, coherence {dots.coherence:g}, lifetime {dots.lifetime_frames} frames",
+        "",
+        f"conditions {len(conditions)}: baseline ({d.baseline}) + {len(d.adapter_offsets_deg)} adapter offsets "
+        f"x {len(d.lags)} lags",
+        "           offsets (deg): " + ", ".join(f"{o:+g}" for o in d.adapter_offsets_deg),
+        "           lags (periods): " + ", ".join(str(k) for k in d.lags),
+        f"           intervening directions: {d.intervening}"
+        + (f" from {', '.join(f'{o:+g}' for o in d.intervening_offsets_deg)}" if d.intervening == "balanced" else ""),
+        f"tracks     {d.tracks_per_condition} per condition x {d.trials_per_track} trials, method {p.procedure.method}",
+        f"trials     {n_main} main + {d.practice_trials} practice = {n_main + d.practice_trials}",
+        "",
+        "frames at {:g} Hz:".format(disp.refresh_hz),
+    ]
+    for name, fc in frame_plan(p).items():
+        lines.append(f"  {name:<22} {fc.requested_s:>8g} s = {fc.frames:>5d} frames = {fc.seconds * 1000:10.3f} ms")
+    seconds, breaks = estimated_seconds(p)
+    lines += [
+        "",
+        f"duration   about {seconds / 60:.0f} min including {breaks} breaks "
+        f"(assuming {ANSWER_ESTIMATE_S:g} s per answer and {BREAK_ESTIMATE_S:g} s per break)",
+    ]
+    return lines

@@ -1,0 +1,591 @@
+"""Protocol files: schema, loading and validation.
+
+A protocol is a TOML file with the sections ``[display]``, ``[dots]``,
+``[timing]``, ``[design]``, ``[procedure]``, ``[keys]`` and ``[safety]``
+plus two top-level keys (``title``, ``reference_deg``).  Every field has a
+default fit for a dark-room direction-after-effect experiment, so a protocol
+only states what differs.  Units are part of the names (``_deg``, ``_s``,
+``_hz``, ``_cm``, ``_px``).  The README lists every field.
+
+Loading never raises anything but :class:`fitting.errors.InputError`, whose
+text is one line naming the file, the field and what was expected.
+"""
+
+from __future__ import annotations
+
+import math
+import sys
+from pathlib import Path
+from typing import Literal
+
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+
+from fitting.errors import InputError
+from runner import geometry, timing
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover - exercised on Python 3.10 only
+    import tomli as tomllib
+
+#: Protocol files larger than this are refused before parsing.
+MAX_PROTOCOL_BYTES = 1_000_000
+
+KEY_NAMES = (
+    "left right up down space escape return tab p q a s d f j k l z x n m b v c "
+    "comma period slash semicolon 1 2 3 4 5 6 7 8 9 0 num_1 num_2 num_3 num_4 num_6 "
+    "num_7 num_8 num_9"
+).split()
+
+
+class FrameTimingError(InputError):
+    """A duration that is not a whole number of frames at the refresh rate.
+
+    The command line refuses such a protocol with exit code 3 (display
+    timing), not 2: the file is well formed, the display cannot deliver it.
+    """
+
+
+class _Section(BaseModel):
+    model_config = ConfigDict(extra="forbid", strict=True, allow_inf_nan=False, frozen=True)
+
+
+class DisplayProfile(_Section):
+    """The display a protocol was written for.
+
+    Attributes
+    ----------
+    refresh_hz : float
+        Refresh rate; every duration must be whole frames at this rate.
+    screen_cm : [float, float]
+        Visible width and height of the picture, in centimetres.
+    screen_px : [int, int]
+        Width and height in pixels.
+    distance_cm : float
+        Eye-to-screen distance.
+    background : float
+        Background grey level, 0..1 of the display's range (0 for a dark room).
+    """
+
+    refresh_hz: float = Field(120.0, gt=20, le=500)
+    screen_cm: list[float] = Field(default_factory=lambda: [53.0, 30.0], min_length=2, max_length=2)
+    screen_px: list[int] = Field(default_factory=lambda: [1920, 1080], min_length=2, max_length=2)
+    distance_cm: float = Field(57.0, gt=10, le=1000)
+    background: float = Field(0.0, ge=0, le=1)
+
+    @field_validator("screen_cm")
+    @classmethod
+    def _positive_cm(cls, v):
+        if any(not (1 <= x <= 1000) for x in v):
+            raise ValueError("expected two sizes between 1 and 1000 cm")
+        return v
+
+    @field_validator("screen_px")
+    @classmethod
+    def _positive_px(cls, v):
+        if any(not (64 <= x <= 20000) for x in v):
+            raise ValueError("expected two pixel counts between 64 and 20000")
+        return v
+
+    @property
+    def px_per_deg(self) -> float:
+        """Pixels per degree at the centre of the screen (horizontal axis)."""
+        return geometry.deg_to_px(1.0, self.distance_cm, self.screen_cm[0], self.screen_px[0])
+
+    @property
+    def extent_deg(self) -> tuple[float, float]:
+        """Full visual angle of the screen, width and height."""
+        return (
+            geometry.screen_extent_deg(self.distance_cm, self.screen_cm[0]),
+            geometry.screen_extent_deg(self.distance_cm, self.screen_cm[1]),
+        )
+
+
+class DotsSettings(_Section):
+    """Random-dot field.
+
+    Attributes
+    ----------
+    aperture_radius_deg : float
+        Radius of the circular aperture, centred on fixation.
+    density_per_deg2 : float
+        Dots per square degree of aperture.
+    dot_size_deg : float
+        Dot diameter.
+    speed_deg_s : float
+        Speed of every moving dot.
+    coherence : float
+        Fraction of dots moving in the period's direction (0..1).
+    lifetime_frames : int
+        Frames a dot lives before it is replotted at a random place.
+    level : float
+        Dot grey level, 0..1 of the display's range.
+    color_rgb : [float, float, float]
+        Dot colour multiplier per gun (0..1); the drawn colour is
+        ``level * color_rgb``.  White by default.
+    fixation_deg : float
+        Size of the fixation mark at the centre (0 = none).
+    """
+
+    aperture_radius_deg: float = Field(5.0, gt=0, le=60)
+    density_per_deg2: float = Field(1.5, gt=0, le=50)
+    dot_size_deg: float = Field(0.1, gt=0, le=2)
+    speed_deg_s: float = Field(5.0, ge=0, le=100)
+    coherence: float = Field(1.0, ge=0, le=1)
+    lifetime_frames: int = Field(12, ge=1, le=100000)
+    level: float = Field(0.6, ge=0, le=1)
+    color_rgb: list[float] = Field(default_factory=lambda: [1.0, 1.0, 1.0], min_length=3, max_length=3)
+    fixation_deg: float = Field(0.2, ge=0, le=5)
+
+    @field_validator("color_rgb")
+    @classmethod
+    def _unit_rgb(cls, v):
+        if any(not (0 <= x <= 1) for x in v):
+            raise ValueError("expected three values between 0 and 1")
+        return v
+
+    @property
+    def n_dots(self) -> int:
+        """Number of dots in the aperture."""
+        return int(round(self.density_per_deg2 * math.pi * self.aperture_radius_deg**2))
+
+
+class TimingSettings(_Section):
+    """Durations of one adapt–test trial, in seconds.
+
+    Attributes
+    ----------
+    first_adaptation_s : float
+        Long adaptation once at the start of the block (0 = none).  Only
+        allowed with a single adapter offset: with several offsets interleaved
+        it would bias the conditions unequally.
+    adapter_s : float
+        Adapter (top-up) at the start of every trial.
+    period_s : float
+        Each intervening motion period between adapter and test.
+    test_s : float
+        Test motion.
+    gap_s : float
+        Blank between successive periods (0 = periods follow directly).
+    answer_window_s : float
+        Time allowed for an answer after the test ends; a later answer is a
+        missed trial.
+    pause_after_answer_s : float
+        Blank pause between the answer and the next trial.
+    """
+
+    first_adaptation_s: float = Field(0.0, ge=0, le=600)
+    adapter_s: float = Field(0.5, gt=0, le=120)
+    period_s: float = Field(0.5, gt=0, le=60)
+    test_s: float = Field(0.5, gt=0, le=60)
+    gap_s: float = Field(0.0, ge=0, le=60)
+    answer_window_s: float = Field(3.0, gt=0, le=60)
+    pause_after_answer_s: float = Field(0.4, ge=0, le=60)
+
+
+class DesignSettings(_Section):
+    """Conditions and trial counts of a block.
+
+    Attributes
+    ----------
+    adapter_offsets_deg : list of float
+        Adapter directions as offsets from the reference (positive = clockwise).
+    lags : list of int
+        Numbers of intervening motion periods between adapter and test.
+    baseline : {"static", "blank"}
+        What replaces the adapter in the baseline condition.
+    intervening : {"balanced", "reference"}
+        Directions of intervening periods: ``balanced`` draws offsets from
+        ``intervening_offsets_deg`` in mirrored pairs per condition and
+        position, so that any odd-symmetric after-effect they cause cancels;
+        ``reference`` shows the reference direction itself.
+    intervening_offsets_deg : list of float
+        The set used by ``balanced``; it must be symmetric about 0.
+    tracks_per_condition : int
+        Adaptive tracks per condition (2: one from each side).
+    trials_per_track : int
+        Trials each track runs.
+    practice_trials : int
+        Practice trials at the start, easy levels, excluded from analysis.
+    practice_offset_deg : float
+        Test offset magnitude of practice trials.
+    practice_feedback : bool
+        Show whether practice answers were correct.
+    break_every : int
+        A break screen after this many trials (0 = no breaks).
+    """
+
+    adapter_offsets_deg: list[float] = Field(
+        default_factory=lambda: [-90.0, -60.0, -30.0, -15.0, 15.0, 30.0, 60.0, 90.0], min_length=1, max_length=64
+    )
+    lags: list[int] = Field(default_factory=lambda: [0, 1, 2, 3], min_length=1, max_length=32)
+    baseline: Literal["static", "blank"] = "static"
+    intervening: Literal["balanced", "reference"] = "balanced"
+    intervening_offsets_deg: list[float] = Field(
+        default_factory=lambda: [-135.0, -90.0, -45.0, 45.0, 90.0, 135.0], min_length=1, max_length=64
+    )
+    tracks_per_condition: int = Field(2, ge=1, le=8)
+    trials_per_track: int = Field(20, ge=1, le=10000)
+    practice_trials: int = Field(8, ge=0, le=1000)
+    practice_offset_deg: float = Field(20.0, gt=0, le=90)
+    practice_feedback: bool = True
+    break_every: int = Field(120, ge=0, le=100000)
+
+    @field_validator("adapter_offsets_deg", "intervening_offsets_deg")
+    @classmethod
+    def _offsets(cls, v):
+        if any(not (-180 <= x <= 180) for x in v):
+            raise ValueError("expected offsets between -180 and 180 degrees")
+        if len(set(v)) != len(v):
+            raise ValueError("expected distinct offsets")
+        return v
+
+    @field_validator("adapter_offsets_deg")
+    @classmethod
+    def _no_zero_adapter(cls, v):
+        if any(x == 0 for x in v):
+            raise ValueError("an adapter offset of 0 is the reference itself; the baseline is added automatically")
+        return v
+
+    @field_validator("lags")
+    @classmethod
+    def _lags(cls, v):
+        if any(x < 0 or x > 100 for x in v):
+            raise ValueError("expected lags as whole numbers from 0 to 100")
+        if len(set(v)) != len(v):
+            raise ValueError("expected distinct lags")
+        return v
+
+    @field_validator("intervening_offsets_deg")
+    @classmethod
+    def _symmetric(cls, v):
+        if sorted(v) != sorted(-x if abs(x) != 180 else x for x in v):
+            raise ValueError("expected a set symmetric about 0 (each offset with its mirror)")
+        return v
+
+
+class ProcedureSettings(_Section):
+    """How test offsets are chosen.
+
+    Attributes
+    ----------
+    method : {"updown", "weighted", "bayesian", "constant"}
+        Levitt's transformed up–down, Kaernbach's weighted up–down, the
+        Bayesian entropy method (Kontsevich & Tyler, 1999), or constant stimuli.
+    start_offset_deg : float
+        Tracks start this far from the reference, one track on each side.
+    bounds_deg : [float, float]
+        Lowest and highest test offset.
+    steps_deg : list of float
+        Step sizes used in turn after each reversal (the last is kept).
+    down : int
+        ``updown``: consecutive answers on the track's side before a step
+        toward the other side (2 converges on 70.7 %/29.3 %).
+    target_cw : float
+        ``weighted``: proportion of clockwise answers the first track aims
+        at; the second aims at ``1 - target_cw``.
+    max_reversals : int
+        Stop a track after this many reversals (0 = stop by trials only).
+    levels_deg : list of float
+        ``constant``: the test offsets; each track shows each level
+        ``trials_per_track / len(levels_deg)`` times.
+    bayes_target : {"pse", "pse_spread"}
+        ``bayesian``: minimise the entropy of the PSE alone or of PSE and spread.
+    pse_range_deg, spread_range_deg : [float, float]
+        ``bayesian``: the parameter grid.
+    """
+
+    method: Literal["updown", "weighted", "bayesian", "constant"] = "updown"
+    start_offset_deg: float = Field(20.0, ge=0, le=180)
+    bounds_deg: list[float] = Field(default_factory=lambda: [-45.0, 45.0], min_length=2, max_length=2)
+    steps_deg: list[float] = Field(default_factory=lambda: [8.0, 4.0, 2.0, 1.0], min_length=1, max_length=32)
+    down: int = Field(2, ge=1, le=5)
+    target_cw: float = Field(0.75, gt=0.5, lt=1)
+    max_reversals: int = Field(0, ge=0, le=10000)
+    levels_deg: list[float] = Field(
+        default_factory=lambda: [-16.0, -8.0, -4.0, -2.0, 2.0, 4.0, 8.0, 16.0], min_length=2, max_length=200
+    )
+    bayes_target: Literal["pse", "pse_spread"] = "pse"
+    pse_range_deg: list[float] = Field(default_factory=lambda: [-30.0, 30.0], min_length=2, max_length=2)
+    spread_range_deg: list[float] = Field(default_factory=lambda: [0.5, 20.0], min_length=2, max_length=2)
+
+    @field_validator("bounds_deg", "pse_range_deg")
+    @classmethod
+    def _ordered_range(cls, v):
+        if not (-180 <= v[0] < v[1] <= 180):
+            raise ValueError("expected [low, high] with -180 <= low < high <= 180")
+        return v
+
+    @field_validator("spread_range_deg")
+    @classmethod
+    def _spread_range(cls, v):
+        if not (0 < v[0] < v[1] <= 180):
+            raise ValueError("expected [low, high] with 0 < low < high <= 180")
+        return v
+
+    @field_validator("steps_deg")
+    @classmethod
+    def _steps(cls, v):
+        if any(not (0 < x <= 90) for x in v):
+            raise ValueError("expected step sizes between 0 and 90 degrees")
+        return v
+
+    @field_validator("levels_deg")
+    @classmethod
+    def _levels(cls, v):
+        if any(not (-180 <= x <= 180) for x in v):
+            raise ValueError("expected levels between -180 and 180 degrees")
+        if len(set(v)) != len(v):
+            raise ValueError("expected distinct levels")
+        return v
+
+
+class KeySettings(_Section):
+    """Keys, by the names psychopy's keyboard reports.
+
+    Attributes
+    ----------
+    cw, ccw : str
+        Answer keys: test clockwise of the reference ("right of vertical"
+        for an upward reference) and counter-clockwise.
+    quit : str
+        Ends the session cleanly; completed trials are kept.
+    proceed : str
+        Continues past instruction, caution and break screens.
+    pause : str
+        Pauses between trials until ``proceed``.
+    """
+
+    cw: str = "right"
+    ccw: str = "left"
+    quit: str = "escape"
+    proceed: str = "space"
+    pause: str = "p"
+
+    @field_validator("cw", "ccw", "quit", "proceed", "pause")
+    @classmethod
+    def _known_key(cls, v):
+        if v not in KEY_NAMES:
+            raise ValueError(f"unknown key {v!r}; expected one of: {', '.join(KEY_NAMES)}")
+        return v
+
+    @model_validator(mode="after")
+    def _distinct(self):
+        keys = [self.cw, self.ccw, self.quit, self.proceed, self.pause]
+        if len(set(keys)) != len(keys):
+            raise ValueError("expected five distinct keys for cw, ccw, quit, proceed and pause")
+        return self
+
+
+class SafetySettings(_Section):
+    """Photosensitivity-related settings.
+
+    Attributes
+    ----------
+    photodiode_patch_deg : float
+        Side of a square in the lower-left corner that turns white on
+        test-onset frames, for a light sensor (0 = none).
+    caution_file : str
+        Text shown to the observer before the first trial; empty = the
+        bundled text.  Relative paths are relative to the protocol file.
+    """
+
+    photodiode_patch_deg: float = Field(0.0, ge=0, le=10)
+    caution_file: str = ""
+
+
+class Protocol(_Section):
+    """A whole protocol file.
+
+    Attributes
+    ----------
+    title : str
+        Shown in plans, logs and reports.
+    reference_deg : float
+        The judged direction (90 = upward).
+    display, dots, timing, design, procedure, keys, safety
+        The sections described in their own classes.
+    """
+
+    title: str = Field("Direction after-effect", min_length=1, max_length=200)
+    reference_deg: float = Field(90.0, ge=0, lt=360)
+    display: DisplayProfile = Field(default_factory=DisplayProfile)
+    dots: DotsSettings = Field(default_factory=DotsSettings)
+    timing: TimingSettings = Field(default_factory=TimingSettings)
+    design: DesignSettings = Field(default_factory=DesignSettings)
+    procedure: ProcedureSettings = Field(default_factory=ProcedureSettings)
+    keys: KeySettings = Field(default_factory=KeySettings)
+    safety: SafetySettings = Field(default_factory=SafetySettings)
+
+
+def frame_plan(protocol: Protocol) -> dict[str, timing.FrameCount]:
+    """Frames of every duration in ``[timing]`` at the protocol's refresh rate.
+
+    Raises
+    ------
+    InputError
+        For the first duration that is not a whole number of frames (field
+        ``timing.NAME``); the message proposes the nearest valid values.
+    """
+    hz = protocol.display.refresh_hz
+    plan = {}
+    for name, seconds in protocol.timing.model_dump().items():
+        frames = timing.to_frames(seconds, hz)
+        if frames is None:
+            raise FrameTimingError("", f"timing.{name}", timing.describe_refusal(seconds, hz))
+        plan[name] = frames
+    return plan
+
+
+def _cross_checks(p: Protocol) -> None:
+    """Checks that involve several sections; raise InputError(field=...)."""
+    width_deg, height_deg = p.display.extent_deg
+    diameter = 2 * p.dots.aperture_radius_deg
+    if diameter > min(width_deg, height_deg):
+        raise InputError(
+            "",
+            "dots.aperture_radius_deg",
+            f"an aperture of {diameter:g} deg diameter does not fit on a screen of "
+            f"{width_deg:.1f} x {height_deg:.1f} deg at {p.display.distance_cm:g} cm",
+        )
+    if p.dots.n_dots < 1:
+        raise InputError("", "dots.density_per_deg2", "the aperture would hold no dots; raise the density or the radius")
+    if p.dots.n_dots > 20000:
+        raise InputError("", "dots.density_per_deg2", f"{p.dots.n_dots} dots is more than 20000; lower the density")
+    if p.dots.dot_size_deg * p.display.px_per_deg < 1.0:
+        raise InputError(
+            "", "dots.dot_size_deg", f"{p.dots.dot_size_deg:g} deg is less than one pixel on this display"
+        )
+    covered = p.dots.n_dots * math.pi * (p.dots.dot_size_deg / 2) ** 2 / (math.pi * p.dots.aperture_radius_deg**2)
+    if covered > 0.5:
+        raise InputError(
+            "", "dots.density_per_deg2", f"dots would cover {covered:.0%} of the aperture; expected at most 50 %"
+        )
+    step_deg = p.dots.speed_deg_s / p.display.refresh_hz
+    if step_deg > p.dots.aperture_radius_deg / 2:
+        raise InputError("", "dots.speed_deg_s", "dots would jump more than half the aperture radius per frame")
+    if p.timing.first_adaptation_s > 0 and len(p.design.adapter_offsets_deg) != 1:
+        raise InputError(
+            "",
+            "timing.first_adaptation_s",
+            "an initial adaptation needs a single adapter offset; with several interleaved offsets "
+            "it would bias the conditions unequally (set it to 0 or use one offset)",
+        )
+    proc = p.procedure
+    lo, hi = proc.bounds_deg
+    if not (lo <= proc.start_offset_deg <= hi and lo <= -proc.start_offset_deg <= hi):
+        raise InputError("", "procedure.start_offset_deg", f"tracks start at ±{proc.start_offset_deg:g}, outside bounds_deg")
+    if proc.method == "constant" and p.design.trials_per_track % len(proc.levels_deg):
+        raise InputError(
+            "",
+            "design.trials_per_track",
+            f"constant stimuli need a multiple of the {len(proc.levels_deg)} levels per track, "
+            f"got {p.design.trials_per_track}",
+        )
+    if proc.method == "bayesian" and not (proc.pse_range_deg[0] < hi and proc.pse_range_deg[1] > lo):
+        raise InputError("", "procedure.pse_range_deg", "expected a PSE grid that overlaps bounds_deg")
+    if p.design.practice_offset_deg > max(abs(lo), abs(hi)):
+        raise InputError("", "design.practice_offset_deg", "expected a practice offset inside procedure.bounds_deg")
+
+
+def _field_of(error: dict) -> str:
+    loc = [str(x) for x in error.get("loc", ()) if not isinstance(x, int)]
+    return ".".join(loc) or "(top level)"
+
+
+def _message_of(error: dict) -> str:
+    kind = error.get("type", "")
+    if kind == "extra_forbidden":
+        return "unknown field (check the spelling; the README lists every field)"
+    msg = error.get("msg", "invalid value")
+    msg = msg.removeprefix("Value error, ")
+    if kind == "finite_number":
+        msg = "expected a finite number (not nan or inf)"
+    return msg
+
+
+def parse_protocol(text: str, source: str = "<protocol>") -> Protocol:
+    """Parse and validate protocol text.
+
+    Parameters
+    ----------
+    text : str
+        TOML text.
+    source : str
+        Name used in error messages (usually the file path).
+
+    Returns
+    -------
+    Protocol
+
+    Raises
+    ------
+    InputError
+        One line naming ``source``, the field and what was expected.
+    """
+    try:
+        raw = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError(source, "TOML", f"not valid TOML ({exc})") from None
+    except RecursionError:
+        raise InputError(source, "TOML", "nesting too deep for a protocol") from None
+    if not raw:
+        raise InputError(source, "(top level)", "the file has no settings; start from protocols/offset_by_lag.toml")
+    try:
+        protocol = Protocol.model_validate(raw)
+    except ValidationError as exc:
+        first = exc.errors()[0]
+        raise InputError(source, _field_of(first), _message_of(first)) from None
+    except RecursionError:
+        raise InputError(source, "(top level)", "nesting too deep for a protocol") from None
+    try:
+        _cross_checks(protocol)
+        frame_plan(protocol)
+    except InputError as exc:
+        raise type(exc)(source, exc.field, exc.message) from None
+    return protocol
+
+
+def read_protocol_text(path: str | Path) -> str:
+    """Read a protocol file as text, refusing what cannot be a protocol.
+
+    Raises
+    ------
+    InputError
+        Missing file, a folder, an unreadable, oversized or binary file.
+    """
+    p = Path(path)
+    if not p.exists():
+        raise InputError(str(p), "file", "does not exist")
+    if p.is_dir():
+        raise InputError(str(p), "file", "is a folder; expected a protocol file (.toml)")
+    try:
+        data = p.read_bytes()
+    except OSError as exc:
+        raise InputError(str(p), "file", f"cannot be read ({exc.strerror})") from None
+    if len(data) > MAX_PROTOCOL_BYTES:
+        raise InputError(str(p), "file", f"is {len(data)} bytes; a protocol is at most {MAX_PROTOCOL_BYTES}")
+    if b"\x00" in data:
+        raise InputError(str(p), "file", "is binary, not a TOML text file")
+    try:
+        return data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise InputError(str(p), f"byte {exc.start}", "not UTF-8 text; expected a TOML text file") from None
+
+
+def load_protocol(path: str | Path) -> Protocol:
+    """Read and validate a protocol file.
+
+    Parameters
+    ----------
+    path : str or Path
+
+    Returns
+    -------
+    Protocol
+
+    Raises
+    ------
+    InputError
+    """
+    return parse_protocol(read_protocol_text(path), source=str(path))

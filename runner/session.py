@@ -1,0 +1,339 @@
+"""The block loop: one session of adapt–test trials.
+
+The loop talks to a :class:`~runner.plan.Presenter` (headless or on screen)
+and an :class:`~runner.plan.AnswerSource` (a simulated observer or the
+keyboard) and to nothing else, so the same code runs a simulation and a
+person in a dark room.
+
+Flow: caution screen → instructions → practice (with optional feedback) →
+initial adaptation (if the protocol has one) → interleaved main trials with
+breaks every ``design.break_every`` trials → end screen.  Every completed
+trial is appended to the log before the next starts.  Escape (or a simulated
+quit) ends the session cleanly; the trial in progress is not logged.
+
+Resuming
+--------
+A resumed session rebuilds the schedule and the adaptive tracks from the
+session seed and replays the logged rows through them, checking that each
+row is the trial the schedule says comes next at the level the track would
+have chosen.  Because every random draw (schedule, dots, simulated answers)
+is seeded from the session seed and the trial number, a session killed at
+any instant and resumed writes exactly the rows an uninterrupted one writes.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Callable
+
+from fitting.errors import InputError
+from runner.plan import AnswerSource, Period, Presenter, TrialPlan, motion, trial_periods
+from runner.protocol import Protocol, frame_plan
+from runner.schedule import Schedule, ScheduledTrial, build_schedule
+from runner.tracks import make_tracks
+from runner.trial_log import format_value
+
+
+@dataclass(frozen=True)
+class SessionResult:
+    """How a session (or one resumed part of it) ended.
+
+    Attributes
+    ----------
+    ended_by : {"completed", "quit"}
+    rows_total : int
+        Rows in the log after this part.
+    rows_added : int
+        Rows this part wrote.
+    track_states : dict
+        Final state of every adaptive track, keyed ``condition/track``.
+    timing : dict
+        The presenter's timing summary.
+    """
+
+    ended_by: str
+    rows_total: int
+    rows_added: int
+    track_states: dict
+    timing: dict
+
+
+class Console:
+    """The experimenter's side: progress and summaries (never the observer's screen).
+
+    The base class is silent; :mod:`runner.console` has the terminal ones.
+    """
+
+    def started(self, total: int, done: int) -> None:
+        """The session (or a resumed part) starts; ``done`` rows exist."""
+
+    def trial_done(self, done: int, total: int, dropped_so_far: int, seconds_left: float) -> None:
+        """A trial was logged."""
+
+    def block_done(self, rows: list[dict]) -> None:
+        """A block (the trials up to a break, or the session) ended."""
+
+    def note(self, text: str) -> None:
+        """A one-line message for the experimenter."""
+
+
+def _key(slot: ScheduledTrial) -> str:
+    return f"{slot.condition.name}/{slot.track}"
+
+
+def _row(protocol: Protocol, observer: str, session: str, plan: TrialPlan, answer, playback, procedure: str) -> dict:
+    return {
+        "observer": observer,
+        "session": session,
+        "trial": plan.index,
+        "condition": plan.condition,
+        "adapter_offset_deg": plan.adapter_offset_deg,
+        "lag": plan.lag,
+        "track": plan.track,
+        "test_offset_deg": plan.test_offset_deg,
+        "response_cw": answer.response_cw,
+        "rt_s": answer.rt_s,
+        "dropped_frames": playback.dropped_frames,
+        "timing_ok": playback.timing_ok,
+        "practice": int(plan.practice),
+        "period_s": protocol.timing.period_s + protocol.timing.gap_s,
+        "reference_deg": protocol.reference_deg,
+        "test_direction_deg": round(plan.test_direction_deg, 6),
+        "intervening_offsets_deg": plan.intervening_offsets_deg,
+        "procedure": "practice" if plan.practice else procedure,
+    }
+
+
+def _parse_response(text: str, where: str) -> int | None:
+    if text == "":
+        return None
+    if text in ("0", "1"):
+        return int(text)
+    raise InputError(where, "response_cw", f"expected 0, 1 or empty, found {text!r}")
+
+
+class BlockRun:
+    """One session of a protocol for one observer.
+
+    Parameters
+    ----------
+    protocol : Protocol
+    seed : int
+        Session seed: schedule, tracks, dot fields.
+    observer, session : str
+        Written into every row.
+    """
+
+    def __init__(self, protocol: Protocol, seed: int, observer: str, session: str):
+        self.protocol = protocol
+        self.seed = int(seed)
+        self.observer = observer
+        self.session = session
+        self.schedule: Schedule = build_schedule(protocol, self.seed)
+        self.tracks = make_tracks(protocol, self.schedule, self.seed)
+        self.frames = frame_plan(protocol)
+
+    # -- the plan of one slot -------------------------------------------------
+    def _skip(self, slot: ScheduledTrial) -> bool:
+        return not slot.practice and self.tracks[_key(slot)].finished
+
+    def _level(self, slot: ScheduledTrial) -> float:
+        if slot.practice:
+            return float(slot.practice_offset_deg)
+        return float(self.tracks[_key(slot)].next_level())
+
+    def plan(self, slot: ScheduledTrial, index: int) -> TrialPlan:
+        """The trial to present in ``slot`` as trial number ``index``."""
+        level = self._level(slot)
+        cond = slot.condition
+        return TrialPlan(
+            index=index,
+            condition="practice" if slot.practice else cond.name,
+            adapter_offset_deg=cond.adapter_offset_deg,
+            lag=cond.lag,
+            track=slot.track,
+            test_offset_deg=level,
+            intervening_offsets_deg=slot.intervening_offsets_deg,
+            practice=slot.practice,
+            periods=trial_periods(self.protocol, cond.adapter_offset_deg, slot.intervening_offsets_deg, level),
+            dots_seed=(self.seed, 3, index),
+        )
+
+    def first_adaptation(self) -> TrialPlan | None:
+        """The initial long adaptation, or None if the protocol has none."""
+        frames = self.frames["first_adaptation_s"].frames
+        if not frames:
+            return None
+        offset = self.protocol.design.adapter_offsets_deg[0]
+        period: Period = motion("first_adaptation", frames, self.protocol.reference_deg, offset)
+        return TrialPlan(0, "first_adaptation", offset, None, None, math.nan, (), False, (period,), (self.seed, 3, 0))
+
+    def expected_rows(self) -> int:
+        """Rows a complete session writes if no track stops early."""
+        return len(self.schedule.slots)
+
+    def seconds_per_trial(self) -> float:
+        """Rough duration of an average trial (for time-left estimates)."""
+        f = self.frames
+        mean_lag = sum(self.protocol.design.lags) / len(self.protocol.design.lags)
+        return (
+            f["adapter_s"].seconds
+            + mean_lag * (f["period_s"].seconds + f["gap_s"].seconds)
+            + f["gap_s"].seconds
+            + f["test_s"].seconds
+            + 0.8
+            + f["pause_after_answer_s"].seconds
+        )
+
+    # -- replay ---------------------------------------------------------------
+    def replay(self, rows: list[dict[str, str]], source: str) -> int:
+        """Feed logged rows back into the tracks; return the next slot index.
+
+        Raises
+        ------
+        InputError
+            If a row is not the trial this protocol and seed produce next.
+        """
+        i = 0
+        for slot_index, slot in enumerate(self.schedule.slots):
+            if i == len(rows):
+                return slot_index
+            if self._skip(slot):
+                continue
+            row, where = rows[i], f"{source}: line {i + 2}"
+            plan = self.plan(slot, i + 1)
+            expected = (plan.condition, "" if plan.track is None else str(plan.track), str(plan.index))
+            found = (row["condition"], row["track"], row["trial"])
+            if found != expected or not math.isclose(float(row["test_offset_deg"]), plan.test_offset_deg, abs_tol=1e-6):
+                raise InputError(
+                    where,
+                    "condition/track/test_offset_deg",
+                    f"the log does not follow this protocol and seed (expected trial {expected[2]} "
+                    f"{expected[0]} track {expected[1]} at {plan.test_offset_deg:g} deg); "
+                    "was the protocol changed since the session started?",
+                )
+            response = _parse_response(row["response_cw"], where)
+            if not slot.practice:
+                self.tracks[_key(slot)].update(plan.test_offset_deg, response)
+            i += 1
+        if i < len(rows):
+            raise InputError(f"{source}: line {i + 2}", "trial", "the log has more trials than the protocol's block")
+        return len(self.schedule.slots)
+
+    def track_states(self) -> dict:
+        """JSON-ready states of every track."""
+        return {k: t.state() for k, t in self.tracks.items()}
+
+    # -- the loop -------------------------------------------------------------
+    def run(
+        self,
+        presenter: Presenter,
+        answers: AnswerSource,
+        append: Callable[[dict], None],
+        rows: list[dict],
+        texts: dict[str, str],
+        console: Console | None = None,
+        source: str = "trial log",
+    ) -> SessionResult:
+        """Run (or continue) the session.
+
+        Parameters
+        ----------
+        presenter : Presenter
+        answers : AnswerSource
+        append : callable
+            Makes one row durable (``TrialLog.append``).
+        rows : list of dict
+            Rows already logged (empty for a new session); replayed first.
+        texts : dict
+            Screen texts: ``caution``, ``instructions``, ``practice_done``,
+            ``break`` (with ``{done}``, ``{total}``), ``paused``, ``end``.
+        console : Console, optional
+        source : str
+            Name of the log, for error messages.
+
+        Returns
+        -------
+        SessionResult
+        """
+        console = console or Console()
+        start_slot = self.replay(rows, source)
+        logged = [dict(r) for r in rows]
+        n_before = len(logged)
+        total = len(self.schedule.slots)
+        console.started(total, n_before)
+        ended_by = "completed"
+        main_done = sum(1 for r in logged if r["practice"] == "0")
+        dropped = sum(int(r["dropped_frames"] or 0) for r in logged)
+        procedure = self.protocol.procedure.method
+        window = self.frames["answer_window_s"].frames
+        pause = self.frames["pause_after_answer_s"].frames
+        break_every = self.protocol.design.break_every
+
+        def finish(how: str) -> SessionResult:
+            if len(logged) > n_before:
+                console.block_done(logged)
+            presenter.show_text(texts["end"], wait=False)
+            return SessionResult(how, len(logged), len(logged) - n_before, self.track_states(), presenter.timing_summary())
+
+        if start_slot >= total:
+            return finish(ended_by)
+        if not presenter.show_text(texts["caution"]) or not presenter.show_text(texts["instructions"]):
+            return finish("quit")
+        adaptation = self.first_adaptation()
+        practice_left = any(s.practice for s in self.schedule.slots[start_slot:])
+        if adaptation is not None and not practice_left:
+            if presenter.play(adaptation).aborted:
+                return finish("quit")
+
+        slots = self.schedule.slots
+        for slot_index in range(start_slot, total):
+            slot = slots[slot_index]
+            if self._skip(slot):
+                continue
+            asked = presenter.requests()
+            if "quit" in asked:
+                ended_by = "quit"
+                break
+            if "pause" in asked and not presenter.show_text(texts["paused"]):
+                ended_by = "quit"
+                break
+            plan = self.plan(slot, len(logged) + 1)
+            playback = presenter.play(plan)
+            if playback.aborted:
+                ended_by = "quit"
+                break
+            answer = answers.answer(plan, playback, window)
+            if answer.quit:
+                ended_by = "quit"
+                break
+            row = _row(self.protocol, self.observer, self.session, plan, answer, playback, procedure)
+            append(row)
+            logged.append({k: format_value(v) for k, v in row.items()})
+            dropped += playback.dropped_frames
+            if slot.practice:
+                if self.protocol.design.practice_feedback and answer.response_cw is not None:
+                    presenter.feedback(answer.response_cw == int(plan.test_offset_deg > 0))
+            else:
+                self.tracks[_key(slot)].update(plan.test_offset_deg, answer.response_cw)
+                main_done += 1
+            left = total - len(logged)
+            console.trial_done(len(logged), total, dropped, left * self.seconds_per_trial())
+            if not presenter.blank(pause):
+                ended_by = "quit"
+                break
+            if slot.practice and (slot_index + 1 == total or not slots[slot_index + 1].practice):
+                if not presenter.show_text(texts["practice_done"]):
+                    ended_by = "quit"
+                    break
+                if adaptation is not None and presenter.play(adaptation).aborted:
+                    ended_by = "quit"
+                    break
+            if not slot.practice and break_every and main_done % break_every == 0 and left > 0:
+                console.block_done(logged)
+                text = texts["break"].format(done=main_done, total=self.schedule.n_main)
+                if not presenter.show_text(text):
+                    ended_by = "quit"
+                    break
+        return finish(ended_by)

@@ -1,0 +1,67 @@
+"""Adaptive tracks of a block, built from the protocol's ``[procedure]``.
+
+Tracks of one condition come in pairs that approach the PSE from opposite
+sides: track 0 starts on the clockwise side and targets a clockwise
+proportion above one half (``updown``: 0.5^(1/down); ``weighted``:
+``target_cw``), track 1 mirrors it from the counter-clockwise side.  Further
+tracks (``tracks_per_condition`` > 2) alternate.  ``bayesian`` tracks are
+independent posteriors; ``constant`` tracks show every level equally often
+in an order shuffled from the seed.
+"""
+
+from __future__ import annotations
+
+import zlib
+
+from runner.adaptive import ConstantLevels, EntropyGrid, EntropyTrack, UpDownTrack, WeightedTrack
+from runner.protocol import Protocol
+from runner.schedule import Schedule
+
+
+def _procedure(protocol: Protocol, track: int, seed_words: tuple[int, ...]):
+    proc = protocol.procedure
+    n = protocol.design.trials_per_track
+    cw_side = track % 2 == 0
+    start = proc.start_offset_deg if cw_side else -proc.start_offset_deg
+    stop = {"max_trials": n, "max_reversals": proc.max_reversals or None}
+    if proc.method == "updown":
+        return UpDownTrack(
+            start_level=start, steps=proc.steps_deg, bounds=proc.bounds_deg, down=proc.down,
+            side="cw" if cw_side else "ccw", **stop,
+        )
+    if proc.method == "weighted":
+        target = proc.target_cw if cw_side else 1.0 - proc.target_cw
+        return WeightedTrack(target_p_cw=target, start_level=start, steps=proc.steps_deg, bounds=proc.bounds_deg, **stop)
+    if proc.method == "bayesian":
+        lo, hi = proc.bounds_deg
+        grid = EntropyGrid(
+            pse_min=proc.pse_range_deg[0], pse_max=proc.pse_range_deg[1], pse_step=0.5,
+            spread_min=proc.spread_range_deg[0], spread_max=proc.spread_range_deg[1],
+            level_min=lo, level_max=hi, level_step=0.5,
+        )
+        return EntropyTrack(max_trials=n, target=proc.bayes_target, grid=grid)
+    repeats = n // len(proc.levels_deg)
+    seed = zlib.crc32(repr(seed_words).encode())
+    return ConstantLevels(levels=proc.levels_deg, repeats=repeats, seed=seed)
+
+
+def make_tracks(protocol: Protocol, schedule: Schedule, seed: int) -> dict:
+    """One adaptive procedure per condition and track, keyed ``condition/track``.
+
+    Parameters
+    ----------
+    protocol : Protocol
+    schedule : Schedule
+    seed : int
+        Session seed (used by constant stimuli for their order).
+
+    Returns
+    -------
+    dict
+        ``{"adapt+15_lag0/0": procedure, ...}`` in schedule condition order.
+    """
+    out = {}
+    for ci, cond in enumerate(schedule.conditions):
+        for track in range(protocol.design.tracks_per_condition):
+            out[f"{cond.name}/{track}"] = _procedure(protocol, track, (seed, 2, ci, track))
+    return out

@@ -1,0 +1,414 @@
+"""Tests of runner.adaptive against published convergence points, brute force and reference fits."""
+
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pytest
+from scipy.stats import norm
+
+from runner.adaptive import ConstantLevels, EntropyGrid, EntropyTrack, UpDownTrack, WeightedTrack, restore
+
+# A cumulative Gaussian observer (the DESIGN.md model with lapse 0) for the simulations.
+OBSERVER_PSE = 1.5
+OBSERVER_SPREAD = 6.0
+
+
+def _observer(rng, pse=OBSERVER_PSE, spread=OBSERVER_SPREAD):
+    def answer(level):
+        return int(rng.random() < norm.cdf((level - pse) / spread))
+
+    return answer
+
+
+def _run_tracks(make, n_tracks, seed, burn_in=100):
+    """Proportion of cw answers after ``burn_in`` trials, and P(cw) at the mean reversal level."""
+    rng = np.random.default_rng(seed)
+    answer = _observer(rng)
+    n_cw = n_answered = 0
+    late_reversals = []
+    for _ in range(n_tracks):
+        track = make()
+        while not track.finished:
+            level = track.next_level()
+            track.update(level, answer(level))
+        responses = np.array(track.state()["responses"][burn_in:])
+        n_cw += responses.sum()
+        n_answered += responses.size
+        late_reversals += track.reversal_levels[6:]
+    p_at_reversals = norm.cdf((np.mean(late_reversals) - OBSERVER_PSE) / OBSERVER_SPREAD)
+    return n_cw / n_answered, p_at_reversals
+
+
+# ---------------------------------------------------------------- transformed up-down
+
+
+@pytest.mark.parametrize(
+    "down, side, target",
+    [
+        # Levitt (1971), Table I: 2-down/1-up tracks P = 0.707, 3-down/1-up P = 0.794;
+        # 0.5 ** (1/k) exactly: 70.71 % and 79.37 %.
+        (2, "cw", 0.7071),
+        (3, "cw", 0.7937),
+        # the same rules on counter-clockwise answers track 1 - 0.5 ** (1/k) (Levitt, 1971, mirrored)
+        (2, "ccw", 0.2929),
+        (3, "ccw", 0.2063),
+    ],
+)
+def test_transformed_updown_converges_on_levitt_point(down, side, target):
+    def make():
+        start = 20.0 if side == "cw" else -20.0
+        return UpDownTrack(
+            start_level=start, steps=[4, 2, 1, 0.5], bounds=(-60, 60), down=down, side=side, max_trials=1000
+        )
+
+    assert make().target_p_cw == pytest.approx(target, abs=5e-5)
+    p_answers, p_reversals = _run_tracks(make, n_tracks=40, seed=11 + down)
+    assert p_answers == pytest.approx(target, abs=0.02)
+    assert p_reversals == pytest.approx(target, abs=0.02)
+
+
+def test_updown_steps_follow_the_schedule_and_bounds():
+    # the k-down/1-up rule of Levitt (1971) worked by hand, steps shrinking at each reversal
+    track = UpDownTrack(start_level=10, steps=[4, 2, 1], bounds=(-7, 12), down=2, side="cw", max_trials=50)
+    seen = []
+    for response in [1, 1, 1, 1, 0, 0, 1, 1, 0]:
+        seen.append(track.next_level())
+        track.update(track.next_level(), response)
+    assert seen == [10, 10, 6, 6, 2, 4, 6, 6, 5]
+    assert track.reversal_levels == [2, 6, 5]
+    assert track.step_size() == 1
+    assert track.next_level() == 6
+    # moves stop at the bounds
+    for _ in range(30):
+        track.update(track.next_level(), 0)
+    assert track.next_level() == 12
+    assert track.reversal_levels == [2, 6, 5]
+
+
+def test_updown_stops_at_reversals_or_trials_whichever_first():
+    rng = np.random.default_rng(5)
+    answer = _observer(rng)
+    by_reversals = UpDownTrack(start_level=0, steps=[2], bounds=(-40, 40), max_trials=500, max_reversals=7)
+    while not by_reversals.finished:
+        by_reversals.update(by_reversals.next_level(), answer(by_reversals.next_level()))
+    assert len(by_reversals.reversal_levels) == 7 and by_reversals.n_trials < 500
+    assert by_reversals.estimate() == pytest.approx(np.mean(by_reversals.reversal_levels[-6:]))
+    by_trials = UpDownTrack(start_level=0, steps=[2], bounds=(-40, 40), max_trials=12, max_reversals=1000)
+    while not by_trials.finished:
+        by_trials.update(by_trials.next_level(), answer(by_trials.next_level()))
+    assert by_trials.n_trials == 12
+    with pytest.raises(RuntimeError, match="finished"):
+        by_trials.next_level()
+    with pytest.raises(RuntimeError, match="finished"):
+        by_trials.update(0.0, 1)
+
+
+def test_estimate_is_nan_before_the_first_reversal():
+    track = UpDownTrack(start_level=0, steps=[2], bounds=(-40, 40), max_trials=10)
+    track.update(0.0, 1)
+    assert math.isnan(track.estimate())
+
+
+# ---------------------------------------------------------------- weighted up-down
+
+
+@pytest.mark.parametrize("target", [0.75, 0.25, 0.8])
+def test_weighted_updown_converges_on_step_ratio(target):
+    # Kaernbach (1991): steps S_up after a "no" and S_down after a "yes" converge on
+    # p = S_up / (S_up + S_down).
+    def make():
+        return WeightedTrack(target_p_cw=target, start_level=0, steps=[4, 2, 1, 0.5], bounds=(-60, 60), max_trials=1000)
+
+    track = make()
+    assert track.step_up() / (track.step_up() + track.step_down()) == pytest.approx(target)
+    p_answers, p_reversals = _run_tracks(make, n_tracks=40, seed=int(target * 100))
+    assert p_answers == pytest.approx(target, abs=0.02)
+    assert p_reversals == pytest.approx(target, abs=0.02)
+
+
+def test_weighted_steps():
+    track = WeightedTrack(target_p_cw=0.75, start_level=0, steps=[2, 1], bounds=(-10, 10), max_trials=20)
+    track.update(0.0, 1)  # cw: down by S_down = 2 * (1 - 0.75) * 2 = 1
+    assert track.next_level() == pytest.approx(-1.0)
+    track.update(-1.0, 0)  # ccw: reversal, base step 1, up by S_up = 2 * 0.75 * 1 = 1.5
+    assert track.next_level() == pytest.approx(0.5)
+    assert track.reversal_levels == [-1.0]
+
+
+# ---------------------------------------------------------------- Bayesian
+
+TINY_GRID = EntropyGrid(
+    pse_min=-2,
+    pse_max=2,
+    pse_step=1,
+    spread_min=1,
+    spread_max=4,
+    spread_count=3,
+    lapses=(0.0, 0.05, 0.1),
+    level_min=-3,
+    level_max=3,
+    level_step=1.5,
+)
+
+
+def _brute_posterior(grid, levels, responses):
+    """Posterior on the grid by direct products of trial likelihoods (uniform prior over grid points)."""
+    mus, sigmas, lapses = grid.pse_values(), grid.spread_values(), grid.lapse_values()
+    post = np.empty((mus.size, sigmas.size, lapses.size))
+    for i, mu in enumerate(mus):
+        for j, sigma in enumerate(sigmas):
+            for k, lapse in enumerate(lapses):
+                like = 1.0
+                for x, r in zip(levels, responses):
+                    p_cw = lapse / 2 + (1 - lapse) * norm.cdf((x - mu) / sigma)  # DESIGN.md model
+                    like *= p_cw if r == 1 else 1 - p_cw
+                post[i, j, k] = like
+    return post / post.sum()
+
+
+def _entropy(q):
+    q = q[q > 0]
+    return float(-(q * np.log(q)).sum())
+
+
+def _brute_expected_entropies(grid, levels, responses, target):
+    post = _brute_posterior(grid, levels, responses)
+    mus, sigmas, lapses = grid.pse_values(), grid.spread_values(), grid.lapse_values()
+    out = []
+    for x in grid.level_values():
+        p_cw = np.empty_like(post)
+        for i, mu in enumerate(mus):
+            for j, sigma in enumerate(sigmas):
+                for k, lapse in enumerate(lapses):
+                    p_cw[i, j, k] = lapse / 2 + (1 - lapse) * norm.cdf((x - mu) / sigma)
+        expected = 0.0
+        for like in (p_cw, 1 - p_cw):
+            joint = post * like
+            p_answer = joint.sum()
+            after = joint / p_answer
+            marginal = after.sum(axis=(1, 2)) if target == "pse" else after.sum(axis=2)
+            expected += p_answer * _entropy(marginal.ravel())
+        out.append(expected)
+    return np.array(out)
+
+
+def _some_trials(seed, n):
+    rng = np.random.default_rng(seed)
+    levels = list(rng.uniform(-4, 4, n))  # off the level list on purpose
+    responses = [int(r) for r in rng.random(n) < norm.cdf(np.array(levels) - 0.7)]
+    return levels, responses
+
+
+@pytest.mark.parametrize("n", [0, 1, 7])
+def test_posterior_equals_brute_force(n):
+    levels, responses = _some_trials(seed=n, n=n)
+    track = EntropyTrack(max_trials=50, grid=TINY_GRID)
+    for x, r in zip(levels, responses):
+        track.update(x, r)
+    expected = _brute_posterior(TINY_GRID, levels, responses)
+    np.testing.assert_allclose(track.posterior(), expected, rtol=1e-9, atol=1e-15)
+    mean = track.posterior_mean()
+    assert mean.pse == pytest.approx((expected.sum(axis=(1, 2)) * TINY_GRID.pse_values()).sum(), rel=1e-9, abs=1e-12)
+    assert mean.spread == pytest.approx((expected.sum(axis=(0, 2)) * TINY_GRID.spread_values()).sum(), rel=1e-9)
+    assert mean.lapse == pytest.approx((expected.sum(axis=(0, 1)) * TINY_GRID.lapse_values()).sum(), rel=1e-9)
+    assert track.estimate() == mean.pse
+
+
+@pytest.mark.parametrize("target", ["pse", "pse_spread"])
+@pytest.mark.parametrize("n", [2, 6])
+def test_expected_entropy_choice_equals_brute_force(target, n):
+    # Kontsevich & Tyler (1999): the next level minimises the expected entropy of the posterior;
+    # Prins (2013): nuisance parameters are summed out before the entropy is taken.
+    levels, responses = _some_trials(seed=100 + n, n=n)
+    track = EntropyTrack(max_trials=50, target=target, grid=TINY_GRID)
+    for x, r in zip(levels, responses):
+        track.update(x, r)
+    expected = _brute_expected_entropies(TINY_GRID, levels, responses, target)
+    np.testing.assert_allclose(track.expected_entropies(), expected, rtol=1e-9, atol=1e-12)
+    assert track.next_level() == TINY_GRID.level_values()[np.argmin(expected)]
+
+
+def test_posterior_survives_overwhelming_evidence():
+    # lapse 0 only: answers far out on the function have likelihoods that underflow in linear space
+    grid = EntropyGrid(lapses=(0.0,), spread_min=0.5, spread_max=2, spread_count=3)
+    track = EntropyTrack(max_trials=1000, grid=grid)
+    for _ in range(300):
+        track.update(29.5, 1)
+        track.update(-29.5, 0)
+    track.update(-29.5, 1)  # nearly impossible for every grid point
+    post = track.posterior()
+    assert np.all(np.isfinite(post)) and post.sum() == pytest.approx(1.0)
+    assert np.isfinite(track.next_level())
+
+
+def test_bayesian_pse_precision_near_cramer_rao_bound():
+    # Cramér–Rao bound for the PSE of a cumulative Gaussian observer with known spread σ:
+    # one Bernoulli trial at level x, z = (x − μ)/σ, has Fisher information about μ
+    #   I(x) = φ(z)² / (σ² Φ(z) (1 − Φ(z))),
+    # largest at z = 0, where it is (1/(2π)) / (σ²/4) = 2/(πσ²); N trials therefore give
+    #   var(μ̂) ≥ πσ² / (2N)  for an unbiased estimator (Cramér–Rao inequality).
+    # The Bayesian method must come within 1.3× of that root-mean-square error after 80
+    # trials although it does not know σ or the lapse rate.
+    n_trials, n_runs, spread = 80, 200, 4.0
+    rng = np.random.default_rng(2024)
+    errors = []
+    for _ in range(n_runs):
+        pse = rng.uniform(-10, 10)
+        answer = _observer(rng, pse=pse, spread=spread)
+        track = EntropyTrack(max_trials=n_trials, target="pse")
+        while not track.finished:
+            level = track.next_level()
+            track.update(level, answer(level))
+        errors.append(track.estimate() - pse)
+    rmse = float(np.sqrt(np.mean(np.square(errors))))
+    bound = math.sqrt(math.pi * spread**2 / (2 * n_trials))
+    assert rmse <= 1.3 * bound, (rmse, bound)
+
+
+def test_entropy_track_stops_after_max_trials():
+    track = EntropyTrack(max_trials=3, grid=TINY_GRID)
+    for r in (1, 0, 1):
+        track.update(track.next_level(), r)
+    assert track.finished and track.n_trials == 3
+    with pytest.raises(RuntimeError, match="finished"):
+        track.next_level()
+
+
+# ---------------------------------------------------------------- constant stimuli
+
+
+def test_constant_levels_order_and_probit_estimate():
+    import statsmodels.api as sm
+
+    levels = [-12.0, -6.0, -3.0, 0.0, 3.0, 6.0, 12.0]
+    proc = ConstantLevels(levels=levels, repeats=20, seed=7)
+    assert sorted(proc.remaining) == sorted(levels * 20)
+    assert proc.remaining != sorted(levels * 20)
+    rng = np.random.default_rng(7)
+    answer = _observer(rng)
+    while not proc.finished:
+        proc.update(proc.next_level(), answer(proc.next_level()))
+    assert proc.n_trials == 140
+    # reference: statsmodels' binomial GLM with probit link; PSE = −intercept / slope
+    state = proc.state()
+    x, y = np.array(state["levels"]), np.array(state["responses"])
+    fit = sm.GLM(y, sm.add_constant(x), family=sm.families.Binomial(link=sm.families.links.Probit())).fit()
+    assert proc.estimate() == pytest.approx(-fit.params[0] / fit.params[1], abs=1e-6)
+
+
+def test_constant_levels_estimate_nan_when_answers_are_separated():
+    proc = ConstantLevels(levels=[-5.0, 5.0], repeats=3, seed=1)
+    while not proc.finished:
+        level = proc.next_level()
+        proc.update(level, int(level > 0))
+    assert math.isnan(proc.estimate())
+
+
+def test_constant_levels_refuses_a_level_it_did_not_propose():
+    proc = ConstantLevels(levels=[-5.0, 5.0], repeats=3, seed=1)
+    with pytest.raises(ValueError, match="level"):
+        proc.update(-proc.next_level(), 1)
+
+
+# ---------------------------------------------------------------- shared behaviour
+
+
+def _procedures():
+    return {
+        "updown": lambda: UpDownTrack(start_level=15, steps=[4, 2, 1], bounds=(-40, 40), down=2, max_trials=30),
+        "updown_ccw": lambda: UpDownTrack(start_level=-15, steps=[4, 2], bounds=(-40, 40), down=3, side="ccw", max_reversals=8),
+        "weighted": lambda: WeightedTrack(target_p_cw=0.25, start_level=-10, steps=[3, 1.5], bounds=(-40, 40), max_trials=30),
+        "bayesian": lambda: EntropyTrack(max_trials=30, target="pse"),
+        "bayesian_joint": lambda: EntropyTrack(max_trials=30, target="pse_spread", grid=TINY_GRID),
+        "constant": lambda: ConstantLevels(levels=[-8.0, -2.0, 2.0, 8.0], repeats=8, seed=3),
+    }
+
+
+@pytest.mark.parametrize("name", list(_procedures()))
+def test_state_round_trip_gives_identical_future(name):
+    make = _procedures()[name]
+    rng = np.random.default_rng(9)
+    answer = _observer(rng)
+    original = make()
+    for _ in range(12):
+        original.update(original.next_level(), answer(original.next_level()))
+    state = original.state()
+    text = json.dumps(state, allow_nan=False)  # plain JSON, no NaN
+    copy = restore(json.loads(text))
+    assert copy.state() == state
+    assert json.dumps(copy.state(), allow_nan=False) == text
+    assert type(copy) is type(original) and state["kind"] == copy.kind
+    while not original.finished:
+        level = original.next_level()
+        assert copy.next_level() == level
+        response = answer(level)
+        original.update(level, response)
+        copy.update(level, response)
+    assert copy.finished and copy.state() == original.state()
+
+
+@pytest.mark.parametrize("name", list(_procedures()))
+def test_missed_answer_changes_nothing(name):
+    proc = _procedures()[name]()
+    proc.update(proc.next_level(), 1)
+    proc.update(proc.next_level(), 0)
+    before, level = proc.state(), proc.next_level()
+    proc.update(level, None)
+    assert proc.state() == before
+    assert proc.next_level() == level
+    assert proc.n_trials == 2
+
+
+def test_restore_refuses_bad_states():
+    track = UpDownTrack(start_level=0, steps=[2], bounds=(-10, 10), max_trials=10)
+    track.update(0.0, 0)
+    state = track.state()
+    with pytest.raises(ValueError, match="current_level"):
+        restore({**state, "current_level": 5.0})
+    with pytest.raises(ValueError, match="state.kind"):
+        restore({**state, "kind": "mystery"})
+    with pytest.raises(ValueError, match="start_level"):
+        restore({k: v for k, v in state.items() if k != "start_level"})
+    with pytest.raises(ValueError, match="remaining"):
+        proc = ConstantLevels(levels=[1.0, 2.0], repeats=2, seed=0)
+        restore({**proc.state(), "remaining": [1.0, 1.0, 1.0, 2.0]})
+
+
+@pytest.mark.parametrize(
+    "make, name",
+    [
+        (lambda: UpDownTrack(start_level=0, steps=[2], bounds=(-10, 10), down=0, max_trials=5), "down"),
+        (lambda: UpDownTrack(start_level=0, steps=[2], bounds=(-10, 10), side="left", max_trials=5), "side"),
+        (lambda: UpDownTrack(start_level=20, steps=[2], bounds=(-10, 10), max_trials=5), "start_level"),
+        (lambda: UpDownTrack(start_level=0, steps=[], bounds=(-10, 10), max_trials=5), "steps"),
+        (lambda: UpDownTrack(start_level=0, steps=[2, -1], bounds=(-10, 10), max_trials=5), "steps"),
+        (lambda: UpDownTrack(start_level=0, steps=[2], bounds=(10, -10), max_trials=5), "bounds"),
+        (lambda: UpDownTrack(start_level=0, steps=[2], bounds=(-10, 10)), "max_trials"),
+        (lambda: UpDownTrack(start_level=0, steps=[2], bounds=(-10, 10), max_trials=2.5), "max_trials"),
+        (lambda: UpDownTrack(start_level=0, steps=[2], bounds=(-10, 10), max_reversals=0), "max_reversals"),
+        (lambda: WeightedTrack(target_p_cw=1.0, start_level=0, steps=[2], bounds=(-10, 10), max_trials=5), "target_p_cw"),
+        (lambda: EntropyTrack(max_trials=5, target="slope"), "target"),
+        (lambda: EntropyTrack(max_trials=0), "max_trials"),
+        (lambda: EntropyGrid(pse_step=0.7), "pse_step"),
+        (lambda: EntropyGrid(spread_min=0.0), "spread_min"),
+        (lambda: EntropyGrid(lapses=(0.0, 1.2)), "lapses"),
+        (lambda: ConstantLevels(levels=[1.0, 1.0], repeats=2, seed=0), "levels"),
+        (lambda: ConstantLevels(levels=[1.0, 2.0], repeats=0, seed=0), "repeats"),
+        (lambda: ConstantLevels(levels=[1.0, 2.0], repeats=2, seed=-1), "seed"),
+    ],
+)
+def test_bad_arguments_name_the_argument(make, name):
+    with pytest.raises(ValueError, match=name):
+        make()
+
+
+@pytest.mark.parametrize("response", [2, 0.5, "1", -1])
+def test_bad_response_is_refused(response):
+    track = UpDownTrack(start_level=0, steps=[2], bounds=(-10, 10), max_trials=5)
+    with pytest.raises(ValueError, match="response_cw"):
+        track.update(0.0, response)
+    with pytest.raises(ValueError, match="level"):
+        track.update(float("nan"), 1)
