@@ -2,17 +2,17 @@
 
 Four procedures, each a small object with the same face:
 
-=====================  ==========  ============================================
-class                  ``kind``    method
-=====================  ==========  ============================================
-:class:`UpDownTrack`   updown      Levitt's transformed up–down (Levitt, 1971)
-:class:`WeightedTrack` weighted    Kaernbach's weighted up–down (Kaernbach, 1991)
-:class:`EntropyTrack`  bayesian    Bayesian minimum expected entropy over
-                                   (PSE, spread, lapse) (Kontsevich & Tyler,
-                                   1999), nuisance parameters marginalised
-                                   (Prins, 2013)
-:class:`ConstantLevels` constant   method of constant stimuli
-=====================  ==========  ============================================
+======================  ========  ==============================================
+class                   ``kind``  method
+======================  ========  ==============================================
+:class:`UpDownTrack`    updown    Levitt's transformed up–down (Levitt, 1971)
+:class:`WeightedTrack`  weighted  Kaernbach's weighted up–down (Kaernbach, 1991)
+:class:`EntropyTrack`   bayesian  minimum expected posterior entropy over
+                                  (PSE, spread, lapse) (Kontsevich & Tyler,
+                                  1999), nuisance parameters summed out
+                                  (Prins, 2013)
+:class:`ConstantLevels` constant  method of constant stimuli
+======================  ========  ==============================================
 
 Every procedure has ``next_level()`` (the level to present; it does not
 change the procedure), ``update(level, response_cw)``, ``finished``,
@@ -117,9 +117,13 @@ def _replayed(proc, state: dict):
     for level, response in zip(levels, responses):
         if response is None:
             raise ValueError("state.responses: missed answers are not part of a state")
-        proc.update(level, response)
-    if proc.state() != state:
-        differing = sorted(k for k in set(state) | set(proc.state()) if state.get(k) != proc.state().get(k))
+        try:
+            proc.update(level, response)
+        except RuntimeError:
+            raise ValueError("state.levels: more answers than the procedure takes") from None
+    rebuilt = proc.state()
+    if rebuilt != state:
+        differing = sorted(k for k in set(state) | set(rebuilt) if state.get(k) != rebuilt.get(k))
         raise ValueError(f"state: does not match a replay of its answers (differs in {', '.join(differing)})")
     return proc
 
@@ -481,7 +485,8 @@ class EntropyGrid:
     level_step: float = 0.5
 
     def __post_init__(self):
-        for name in ("pse_min", "pse_max", "pse_step", "spread_min", "spread_max", "level_min", "level_max", "level_step"):
+        numbers = ("pse_min", "pse_max", "pse_step", "spread_min", "spread_max", "level_min", "level_max", "level_step")
+        for name in numbers:
             object.__setattr__(self, name, _number(f"grid.{name}", getattr(self, name)))
         object.__setattr__(self, "spread_count", _whole("grid.spread_count", self.spread_count, 2))
         if isinstance(self.lapses, (int, float)) or len(self.lapses) == 0:

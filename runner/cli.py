@@ -17,10 +17,6 @@ EXIT_OK, EXIT_INPUT, EXIT_SAFETY = 0, 2, 3
 DEFAULT_PROTOCOL = Path(__file__).resolve().parent.parent / "protocols" / "offset_by_lag.toml"
 
 
-class Refused(Exception):
-    """Refused for safety or display timing (exit 3)."""
-
-
 class _Parser(argparse.ArgumentParser):
     """argparse with one-line errors and exit code 2."""
 
@@ -29,22 +25,25 @@ class _Parser(argparse.ArgumentParser):
 
 
 def _load(path: str):
-    from runner.protocol import FrameTimingError, load_protocol, read_protocol_text
+    """Read and validate a protocol; durations that are not whole frames are refused (exit 3)."""
+    from runner import safety
+    from runner.protocol import FrameTimingError, parse_protocol, read_protocol_text
 
     text = read_protocol_text(path)
     try:
-        return load_protocol(path), text
+        return parse_protocol(text, source=str(path)), text
     except FrameTimingError as exc:
-        raise Refused(f"refused (display timing): {exc.line()}") from None
+        raise safety.timing_refusal(exc.source, exc.field, exc.message) from None
 
 
-def _screen(protocol, acknowledged: bool):
-    """Run the photosensitivity screening; raise Refused unless it passes or is acknowledged."""
+def _screen(protocol, path: str, acknowledged: bool):
+    """Run the photosensitivity screening; refuse (exit 3) unless it passes or is acknowledged."""
     from runner import safety
 
     result = safety.screen_protocol(protocol)
-    if not result.passed and not acknowledged:
-        raise Refused(str(safety.refusal_for(result)))
+    refusal = safety.screening_refusal(result, source=str(path))
+    if refusal is not None and not acknowledged:
+        raise refusal
     return result
 
 
@@ -57,11 +56,12 @@ def cmd_check(args) -> int:
     result = safety.screen_protocol(protocol)
     print()
     print("\n".join(result.summary_lines()))
-    if not result.passed:
-        if getattr(args, "flicker_ack"):
+    refusal = safety.screening_refusal(result, source=args.protocol)
+    if refusal is not None:
+        if args.flicker_ack:
             print(f"photosensitivity: over the thresholds, acknowledged with {safety.ACKNOWLEDGE_OPTION}")
             return EXIT_OK
-        raise Refused(str(safety.refusal_for(result)))
+        raise refusal
     return EXIT_OK
 
 
@@ -70,7 +70,7 @@ def cmd_simulate(args) -> int:
     from runner.observers import load_model
 
     protocol, text = _load(args.protocol)
-    screening = _screen(protocol, args.flicker_ack)
+    screening = _screen(protocol, args.protocol, args.flicker_ack)
     model = load_model(args.model)
     if args.observers < 1:
         raise InputError("argument", "--observers", "expected at least 1")
@@ -92,7 +92,7 @@ def cmd_run(args) -> int:
     check_identifier(args.observer, "--observer")
     check_identifier(args.session, "--session")
     protocol, text = _load(args.protocol)
-    screening = _screen(protocol, args.flicker_ack)
+    screening = _screen(protocol, args.protocol, args.flicker_ack)
     caution = safety.caution_text(protocol, args.protocol)
     console = ExperimenterConsole(quick_fit=_quick_fit_text)
     presenter, answers = display.open_screen(protocol, args.windowed, args.refresh_ack, console)
@@ -141,6 +141,14 @@ def cmd_fit(args) -> int:
         spread=args.spread, include_bad_timing=args.keep_bad_timing,
     )
     print(report.summary())
+    return EXIT_OK
+
+
+def cmd_compare(args) -> int:
+    from fitting.compare import compare_results
+
+    result = compare_results(args.results, args.predictions, args.out, interpolate=args.interpolate)
+    print(result.summary())
     return EXIT_OK
 
 
@@ -210,6 +218,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--keep-bad-timing", action="store_true", help="keep trials with timing_ok = false")
     p.set_defaults(func=cmd_fit)
 
+    p = sub.add_parser("compare", help="agreement of measured after-effects with a predictions table")
+    p.add_argument("results", help="a fit output folder (with aftereffect.csv) or the file itself")
+    p.add_argument("predictions", help="CSV with lag, adapter_offset_deg, pse_shift_deg[, sd_deg]")
+    p.add_argument("--out", required=True, help="output folder")
+    p.add_argument("--interpolate", action="store_true", help="interpolate predictions over adapter offsets within a lag")
+    p.set_defaults(func=cmd_compare)
+
     p = sub.add_parser("display-test", help="measure refresh rate, frame jitter and dropped frames")
     protocol_arg(p, optional=True)
     p.add_argument("--seconds", type=float, default=10.0, help="how long to measure (default 10)")
@@ -228,8 +243,12 @@ def main(argv: list[str] | None = None) -> int:
     except InputError as exc:
         print(f"aftershift: {exc.line()}", file=sys.stderr)
         return EXIT_INPUT
-    except Refused as exc:
-        print(f"aftershift: {exc}", file=sys.stderr)
+    except Exception as exc:  # noqa: BLE001 - only refusals are handled here
+        from runner.safety import SafetyRefusal
+
+        if not isinstance(exc, SafetyRefusal):
+            raise
+        print(f"aftershift: {exc.line()}", file=sys.stderr)
         return EXIT_SAFETY
     except KeyboardInterrupt:
         print("aftershift: interrupted; every completed trial is in the log (use --resume)", file=sys.stderr)

@@ -108,7 +108,8 @@ class DotSpec:
     refresh_hz: float
 
     def __post_init__(self):
-        for name in ("aperture_radius_deg", "density_per_deg2", "dot_size_deg", "speed_deg_s", "coherence", "refresh_hz"):
+        numbers = ("aperture_radius_deg", "density_per_deg2", "dot_size_deg", "speed_deg_s", "coherence", "refresh_hz")
+        for name in numbers:
             value = getattr(self, name)
             _require(
                 isinstance(value, (int, float, np.integer, np.floating))

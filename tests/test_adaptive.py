@@ -295,7 +295,8 @@ def test_constant_levels_order_and_probit_estimate():
     # reference: statsmodels' binomial GLM with probit link; PSE = −intercept / slope
     state = proc.state()
     x, y = np.array(state["levels"]), np.array(state["responses"])
-    fit = sm.GLM(y, sm.add_constant(x), family=sm.families.Binomial(link=sm.families.links.Probit())).fit()
+    probit = sm.families.Binomial(link=sm.families.links.Probit())
+    fit = sm.GLM(y, sm.add_constant(x), family=probit).fit(tol=1e-13, maxiter=200)
     assert proc.estimate() == pytest.approx(-fit.params[0] / fit.params[1], abs=1e-6)
 
 
@@ -319,8 +320,12 @@ def test_constant_levels_refuses_a_level_it_did_not_propose():
 def _procedures():
     return {
         "updown": lambda: UpDownTrack(start_level=15, steps=[4, 2, 1], bounds=(-40, 40), down=2, max_trials=30),
-        "updown_ccw": lambda: UpDownTrack(start_level=-15, steps=[4, 2], bounds=(-40, 40), down=3, side="ccw", max_reversals=8),
-        "weighted": lambda: WeightedTrack(target_p_cw=0.25, start_level=-10, steps=[3, 1.5], bounds=(-40, 40), max_trials=30),
+        "updown_ccw": lambda: UpDownTrack(
+            start_level=-15, steps=[4, 2], bounds=(-40, 40), down=3, side="ccw", max_reversals=8
+        ),
+        "weighted": lambda: WeightedTrack(
+            target_p_cw=0.25, start_level=-10, steps=[3, 1.5], bounds=(-40, 40), max_trials=30
+        ),
         "bayesian": lambda: EntropyTrack(max_trials=30, target="pse"),
         "bayesian_joint": lambda: EntropyTrack(max_trials=30, target="pse_spread", grid=TINY_GRID),
         "constant": lambda: ConstantLevels(levels=[-8.0, -2.0, 2.0, 8.0], repeats=8, seed=3),
@@ -389,7 +394,7 @@ def test_restore_refuses_bad_states():
         (lambda: UpDownTrack(start_level=0, steps=[2], bounds=(-10, 10)), "max_trials"),
         (lambda: UpDownTrack(start_level=0, steps=[2], bounds=(-10, 10), max_trials=2.5), "max_trials"),
         (lambda: UpDownTrack(start_level=0, steps=[2], bounds=(-10, 10), max_reversals=0), "max_reversals"),
-        (lambda: WeightedTrack(target_p_cw=1.0, start_level=0, steps=[2], bounds=(-10, 10), max_trials=5), "target_p_cw"),
+        (lambda: WeightedTrack(target_p_cw=1, start_level=0, steps=[2], bounds=(-10, 10), max_trials=5), "target_p_cw"),
         (lambda: EntropyTrack(max_trials=5, target="slope"), "target"),
         (lambda: EntropyTrack(max_trials=0), "max_trials"),
         (lambda: EntropyGrid(pse_step=0.7), "pse_step"),

@@ -1,0 +1,271 @@
+"""Agreement between measured after-effects and a table of predictions.
+
+Measured: ``aftereffect.csv`` as written by ``aftershift fit`` (one row per
+observer × lag × adapter offset with a 95 % CI).  Predicted: a CSV with
+``lag``, ``adapter_offset_deg``, ``pse_shift_deg`` (same sign convention:
+positive = clockwise, repulsion has the sign of the offset) and optionally
+``sd_deg``, the prediction's own uncertainty.
+
+Per observer, per lag and over all lags:
+
+* RMSE of measured − predicted (deg);
+* Pearson's r;
+* gain g of measured ≈ g × predicted: weighted least squares through the
+  origin with weights 1 / (se² + sd²), se from the measured CI
+  (half-width / 1.96), so that g = Σ w m p / Σ w p² with standard error
+  √(1 / Σ w p²);
+* χ² = Σ (m − p)² / (se² + sd²) with as many degrees of freedom as points
+  (the predictions are fixed, nothing is fitted), and its upper-tail p;
+* the fraction of predictions inside the measured 95 % CIs.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+
+from fitting.errors import InputError
+
+Z95 = stats.norm.ppf(0.975)
+PREDICTION_COLUMNS = ("lag", "adapter_offset_deg", "pse_shift_deg")
+MEASURED_COLUMNS = ("observer", "lag", "adapter_offset_deg", "pse_shift_deg", "ci_low", "ci_high")
+AGREEMENT_COLUMNS = (
+    "observer", "lag", "n_points", "rmse_deg", "pearson_r", "gain", "gain_ci_low", "gain_ci_high",
+    "chi2", "dof", "chi2_p", "inside_ci_fraction",
+)
+
+
+def _read_csv(path: Path, required: tuple[str, ...]) -> pd.DataFrame:
+    if not path.is_file():
+        raise InputError(str(path), "file", "does not exist or is not a file")
+    try:
+        frame = pd.read_csv(path)
+    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
+        raise InputError(str(path), "file", f"cannot be read as CSV ({str(exc).splitlines()[0]})") from None
+    for col in required:
+        if col not in frame.columns:
+            raise InputError(str(path), col, "column missing")
+    for col in required:
+        if col == "observer":
+            continue
+        values = pd.to_numeric(frame[col], errors="coerce")
+        bad = values.isna() & frame[col].notna() | ~np.isfinite(values.fillna(0))
+        if bad.any():
+            line = int(np.flatnonzero(bad.to_numpy())[0]) + 2
+            raise InputError(str(path), f"line {line}", f"{col}: expected a number, found {frame[col].iloc[line - 2]!r}")
+        frame[col] = values
+    return frame
+
+
+def read_predictions(path: str | Path) -> pd.DataFrame:
+    """Read and validate a predictions table.
+
+    Raises
+    ------
+    InputError
+        Missing columns, non-numbers, duplicate grid points, negative sd.
+    """
+    p = Path(path)
+    cols = PREDICTION_COLUMNS + (("sd_deg",) if "sd_deg" in _header(p) else ())
+    frame = _read_csv(p, cols)
+    if frame.empty:
+        raise InputError(str(p), "file", "holds no predictions")
+    dup = frame.duplicated(["lag", "adapter_offset_deg"])
+    if dup.any():
+        line = int(np.flatnonzero(dup.to_numpy())[0]) + 2
+        raise InputError(str(p), f"line {line}", "a second prediction for the same lag and adapter offset")
+    if "sd_deg" in frame and (frame["sd_deg"].fillna(0) < 0).any():
+        raise InputError(str(p), "sd_deg", "expected non-negative values")
+    if "sd_deg" not in frame:
+        frame["sd_deg"] = 0.0
+    frame["sd_deg"] = frame["sd_deg"].fillna(0.0)
+    return frame
+
+
+def _header(path: Path) -> list[str]:
+    try:
+        with open(path, encoding="utf-8") as fh:
+            return [c.strip() for c in fh.readline().split(",")]
+    except (OSError, UnicodeDecodeError):
+        return []
+
+
+def match_predictions(measured: pd.DataFrame, predictions: pd.DataFrame, source: str, interpolate: bool) -> pd.DataFrame:
+    """Attach a prediction (and its sd) to every measured point.
+
+    Parameters
+    ----------
+    measured : DataFrame
+        ``aftereffect.csv`` rows.
+    predictions : DataFrame
+        From :func:`read_predictions`.
+    source : str
+        The predictions file, for error messages.
+    interpolate : bool
+        Interpolate linearly over adapter offsets within a lag (never over
+        lags, never beyond the predicted range).
+
+    Raises
+    ------
+    InputError
+        Listing the lags and offsets without a prediction.
+    """
+    out = measured.copy()
+    pred_sd = []
+    missing = []
+    for lag, offset in zip(out["lag"], out["adapter_offset_deg"]):
+        same_lag = predictions[predictions["lag"] == lag].sort_values("adapter_offset_deg")
+        exact = same_lag[np.isclose(same_lag["adapter_offset_deg"], offset)]
+        if len(exact):
+            pred_sd.append((float(exact["pse_shift_deg"].iloc[0]), float(exact["sd_deg"].iloc[0])))
+            continue
+        x = same_lag["adapter_offset_deg"].to_numpy()
+        if interpolate and len(x) >= 2 and x[0] <= offset <= x[-1]:
+            pred_sd.append((
+                float(np.interp(offset, x, same_lag["pse_shift_deg"])),
+                float(np.interp(offset, x, same_lag["sd_deg"])),
+            ))
+            continue
+        missing.append(f"lag {lag:g} offset {offset:+g}")
+        pred_sd.append((np.nan, np.nan))
+    if missing:
+        unique = sorted(set(missing), key=missing.index)
+        hint = "" if interpolate else " (or pass --interpolate to interpolate over offsets)"
+        raise InputError(source, "lag/adapter_offset_deg", f"no prediction for {', '.join(unique)}{hint}")
+    out["predicted_deg"] = [p for p, _ in pred_sd]
+    out["prediction_sd_deg"] = [s for _, s in pred_sd]
+    return out
+
+
+@dataclass(frozen=True)
+class Agreement:
+    """Agreement statistics for one set of points (see the module text)."""
+
+    n_points: int
+    rmse_deg: float
+    pearson_r: float
+    gain: float
+    gain_ci_low: float
+    gain_ci_high: float
+    chi2: float
+    dof: int
+    chi2_p: float
+    inside_ci_fraction: float
+
+
+def agreement(measured, ci_low, ci_high, predicted, prediction_sd=None) -> Agreement:
+    """Compute the agreement statistics of measured points with predictions.
+
+    Parameters
+    ----------
+    measured, ci_low, ci_high, predicted : array_like
+        Measured shifts with their 95 % CIs, and predicted shifts (deg).
+    prediction_sd : array_like, optional
+        Uncertainty of the predictions (deg); zero when not given.
+
+    Returns
+    -------
+    Agreement
+    """
+    m = np.asarray(measured, float)
+    lo, hi = np.asarray(ci_low, float), np.asarray(ci_high, float)
+    p = np.asarray(predicted, float)
+    sd = np.zeros_like(p) if prediction_sd is None else np.asarray(prediction_sd, float)
+    se = (hi - lo) / (2 * Z95)
+    var = se**2 + sd**2
+    if np.any(var <= 0):
+        raise InputError("aftereffect.csv", "ci_low/ci_high", "a measured point has a zero-width CI and no prediction sd")
+    w = 1.0 / var
+    resid = m - p
+    n = m.size
+    r = float(np.corrcoef(m, p)[0, 1]) if n >= 3 and m.std() > 0 and p.std() > 0 else float("nan")
+    spp = float(np.sum(w * p * p))
+    if spp > 0:
+        g = float(np.sum(w * m * p) / spp)
+        g_se = float(np.sqrt(1.0 / spp))
+    else:
+        g, g_se = float("nan"), float("nan")
+    chi2 = float(np.sum(resid**2 * w))
+    return Agreement(
+        n_points=n,
+        rmse_deg=float(np.sqrt(np.mean(resid**2))),
+        pearson_r=r,
+        gain=g,
+        gain_ci_low=g - Z95 * g_se,
+        gain_ci_high=g + Z95 * g_se,
+        chi2=chi2,
+        dof=n,
+        chi2_p=float(stats.chi2.sf(chi2, n)),
+        inside_ci_fraction=float(np.mean((p >= lo) & (p <= hi))),
+    )
+
+
+@dataclass(frozen=True)
+class Comparison:
+    """Result of :func:`compare_results`.
+
+    Attributes
+    ----------
+    points : DataFrame
+        Every measured point with its prediction.
+    table : DataFrame
+        ``agreement.csv``: per observer, per lag and ``all``.
+    """
+
+    points: pd.DataFrame
+    table: pd.DataFrame
+
+    def summary(self) -> str:
+        """A short text for the console."""
+        overall = self.table[self.table["lag"] == "all"]
+        lines = ["agreement with predictions (all lags):"]
+        for _, row in overall.iterrows():
+            lines.append(
+                f"  {row['observer']:>8}: RMSE {row['rmse_deg']:.2f} deg, r {row['pearson_r']:.2f}, "
+                f"gain {row['gain']:.2f} [{row['gain_ci_low']:.2f}, {row['gain_ci_high']:.2f}], "
+                f"chi2 {row['chi2']:.1f} on {row['dof']} df (p {row['chi2_p']:.3g}), "
+                f"{row['inside_ci_fraction']:.0%} of predictions inside the 95% CIs"
+            )
+        return "\n".join(lines)
+
+
+def compare_results(results_dir: str | Path, predictions_path: str | Path, out_dir: str | Path,
+                    interpolate: bool = False, figures: bool = True) -> Comparison:
+    """Compare ``RESULTS_DIR/aftereffect.csv`` with a predictions table.
+
+    Writes ``agreement.csv``, ``comparison_points.csv`` and (with
+    ``figures``) ``comparison.png`` / ``.pdf`` into ``out_dir``.
+
+    Raises
+    ------
+    InputError
+        Missing or malformed files, or predictions that do not cover the
+        measured grid.
+    """
+    results = Path(results_dir)
+    measured_path = results / "aftereffect.csv" if results.is_dir() else results
+    measured = _read_csv(measured_path, MEASURED_COLUMNS)
+    if measured.empty:
+        raise InputError(str(measured_path), "file", "holds no after-effects")
+    predictions = read_predictions(predictions_path)
+    points = match_predictions(measured, predictions, str(predictions_path), interpolate)
+    rows = []
+    for observer, group in points.groupby("observer", sort=False):
+        parts = [(f"{lag:g}", g) for lag, g in group.groupby("lag")] + [("all", group)]
+        for lag, g in parts:
+            a = agreement(g["pse_shift_deg"], g["ci_low"], g["ci_high"], g["predicted_deg"], g["prediction_sd_deg"])
+            rows.append({"observer": observer, "lag": lag, **a.__dict__})
+    table = pd.DataFrame(rows, columns=AGREEMENT_COLUMNS)
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    table.to_csv(out / "agreement.csv", index=False, float_format="%.6g")
+    points.to_csv(out / "comparison_points.csv", index=False, float_format="%.6g")
+    if figures:
+        from fitting.compare_figure import overlay_figure
+
+        overlay_figure(points, out / "comparison")
+    return Comparison(points=points, table=table)

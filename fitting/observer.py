@@ -1,0 +1,348 @@
+"""Everything fitted for one observer: PSEs, shifts, tuning, decay, with intervals.
+
+:func:`analyse_observer` runs, for the pooled trials of one observer:
+
+1. the joint psychometric fit (PSE per condition, spread shared or per
+   condition, lapse shared), and the other spread model for the
+   likelihood-ratio test;
+2. the parametric bootstrap (all replicates refitted in one batch);
+3. PSE shifts ``PSE(condition) - PSE(baseline)`` per lag and offset, taken on
+   the *same* replicates, so the baseline's uncertainty enters every shift;
+4. per lag, the DoG tuning fit; across lags, the joint decay fit
+   (:mod:`fitting.aftereffect`), again on every replicate;
+5. intervals (BCa by default, percentile on request) for all of them.  BCa
+   needs each statistic's gradient in the fit parameters: exact for PSEs and
+   shifts, by central differences for the curve parameters (the curve fits
+   are run on the probes in the same batch as the replicates).
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+from scipy import special
+
+from .aftereffect import TAU_BOUNDS, bound_note, fit_decay, fit_tuning, peak_bounds
+from .bootstrap import BootstrapResult, parametric_bootstrap
+from .psychometric import DEFAULT_LAPSE_MAX, Cells, PsychometricFit, fit_cells
+
+PSE_COLUMNS = ["observer", "condition", "adapter_offset_deg", "lag", "pse_deg", "pse_ci_low",
+               "pse_ci_high", "spread_deg", "lapse", "n_trials"]
+AFTEREFFECT_COLUMNS = ["observer", "lag", "adapter_offset_deg", "pse_shift_deg", "ci_low",
+                       "ci_high", "n_trials"]
+TUNING_COLUMNS = ["observer", "lag", "amplitude_deg", "amplitude_ci_low", "amplitude_ci_high",
+                  "peak_offset_deg", "peak_offset_ci_low", "peak_offset_ci_high"]
+DECAY_COLUMNS = ["observer", "decay_periods", "ci_low", "ci_high"]
+
+_FD_STEP = 1e-4   # deg, central differences of curve parameters in the PSEs
+
+
+@dataclass(frozen=True)
+class Options:
+    """Settings shared by every observer's analysis.
+
+    Attributes
+    ----------
+    n_boot : int
+        Bootstrap replicates (0: no intervals).
+    lapse : "free" or float
+    spread : {"shared", "per_condition"}
+    sigmoid : {"gaussian", "logistic"}
+    interval : {"bca", "percentile"}
+    level : float
+        Confidence level of every interval.
+    lapse_max : float
+    progress : bool or None
+        Progress bar (None: only on a terminal).
+    """
+
+    n_boot: int = 1000
+    lapse: object = "free"
+    spread: str = "shared"
+    sigmoid: str = "gaussian"
+    interval: str = "bca"
+    level: float = 0.95
+    lapse_max: float = DEFAULT_LAPSE_MAX
+    progress: bool | None = None
+
+
+@dataclass
+class ObserverAnalysis:
+    """All results of one observer (tables as DataFrames, plus what figures need)."""
+
+    observer: str
+    conditions: pd.DataFrame
+    trials: pd.DataFrame
+    fit: PsychometricFit
+    alternative: PsychometricFit | None
+    boot: BootstrapResult | None
+    pse: pd.DataFrame
+    details: pd.DataFrame
+    aftereffect: pd.DataFrame
+    tuning: pd.DataFrame
+    decay: pd.DataFrame
+    decay_detail: pd.DataFrame
+    model_test: pd.DataFrame
+    period_s: float
+    curves: dict = field(default_factory=dict)
+    notes: list = field(default_factory=list)
+
+
+def condition_table(trials: pd.DataFrame) -> pd.DataFrame:
+    """Conditions of one observer: baseline first, then by lag and offset."""
+    g = trials.groupby("condition", sort=False)
+    tab = pd.DataFrame({"condition": list(g.groups.keys())})
+    first = g.first()
+    tab["is_baseline"] = tab["condition"].map(first["is_baseline"]).astype(bool)
+    tab["adapter_offset_deg"] = tab["condition"].map(first["adapter_offset_deg"]).astype(float)
+    tab["lag"] = tab["condition"].map(first["lag"]).astype(float)
+    tab["n_trials"] = tab["condition"].map(g.size()).astype(int)
+    tab["_b"] = ~tab["is_baseline"]
+    tab = tab.sort_values(["_b", "lag", "adapter_offset_deg", "condition"], kind="mergesort")
+    return tab.drop(columns="_b").reset_index(drop=True)
+
+
+def _period(trials: pd.DataFrame, notes: list) -> float:
+    values = trials["period_s"].dropna().unique()
+    if values.size == 0:
+        return float("nan")
+    if np.ptp(values) > 1e-9:
+        notes.append(f"period_s differs between trials ({', '.join('%g' % v for v in sorted(values))} s); "
+                     "the decay is not converted to seconds")
+        return float("nan")
+    return float(values[0])
+
+
+def _intervals(boot, opts, estimate, reps, gradient):
+    if boot is None:
+        nan = np.full(np.size(estimate), np.nan)
+        return nan, nan.copy()
+    return boot.interval(estimate, reps, gradient, opts.interval, opts.level)
+
+
+class _CurveModel:
+    """Maps PSE rows (B, C) to shifts, per-lag tuning and the decay fit."""
+
+    def __init__(self, conds: pd.DataFrame, fit: PsychometricFit, notes: list):
+        self.base = int(np.flatnonzero(conds["is_baseline"])[0])
+        adapted = conds[~conds["is_baseline"]]
+        self.cond_index = adapted.index.to_numpy()
+        self.offsets = np.sort(adapted["adapter_offset_deg"].unique())
+        self.lags = np.sort(adapted["lag"].unique())
+        cov = fit.covariance
+        pi = fit.layout.pse_index
+        var = (np.diagonal(cov)[pi[self.cond_index]] + cov[pi[self.base], pi[self.base]]
+               - 2.0 * cov[pi[self.cond_index], pi[self.base]])
+        self.shift_var = var
+        weight = np.where(np.isfinite(var), 1.0 / np.maximum(np.where(np.isfinite(var), var, 1.0), 1e-6), 0.0)
+        if (weight == 0).any():
+            bad = adapted["condition"].to_numpy()[weight == 0]
+            notes.append("left out of the curve fits (PSE not estimable): " + ", ".join(bad))
+        # (K, J) layout of the adapter conditions
+        self.cell_k = np.searchsorted(self.lags, adapted["lag"].to_numpy())
+        self.cell_j = np.searchsorted(self.offsets, adapted["adapter_offset_deg"].to_numpy())
+        self.weight = np.zeros((self.lags.size, self.offsets.size))
+        self.weight[self.cell_k, self.cell_j] = weight
+        self.tuning_lags = [i for i in range(self.lags.size)
+                            if ((self.weight[i] > 0) & (self.offsets != 0)).sum() >= 3]
+        for i in range(self.lags.size):
+            if i not in self.tuning_lags:
+                notes.append(f"lag {self.lags[i]:g}: fewer than 3 usable non-zero adapter offsets, "
+                             "no tuning curve")
+        self.decay_ok = len(self.tuning_lags) >= 2
+        self.peak_range = peak_bounds(self.offsets)
+
+    def shifts(self, pse: np.ndarray) -> np.ndarray:
+        return pse[:, self.cond_index] - pse[:, [self.base]]
+
+    def grid(self, shifts: np.ndarray) -> np.ndarray:
+        out = np.zeros((shifts.shape[0], self.lags.size, self.offsets.size))
+        out[:, self.cell_k, self.cell_j] = shifts
+        return out
+
+    def statistics(self, pse: np.ndarray) -> tuple[np.ndarray, dict]:
+        """Shifts, then [A_k, w_k for tuning lags] + [A0, w, tau], per row."""
+        sh = self.shifts(pse)
+        cube = self.grid(sh)
+        cols, flags = [], {}
+        for i in self.tuning_lags:
+            t = fit_tuning(self.offsets, cube[:, i], self.weight[i], self.peak_range)
+            cols += [t.amplitude, t.peak]
+            flags[("tuning", i)] = t.peak_at_bound
+        if self.decay_ok:
+            keep = self.tuning_lags
+            dfit = fit_decay(self.offsets, self.lags[keep], cube[:, keep], self.weight[keep],
+                             self.peak_range, TAU_BOUNDS)
+            cols += [dfit.amplitude0, dfit.peak, dfit.tau]
+            flags["decay_peak"], flags["decay_tau"] = dfit.peak_at_bound, dfit.tau_at_bound
+        stats = np.column_stack(cols) if cols else np.zeros((pse.shape[0], 0))
+        return np.column_stack([sh, stats]), flags
+
+
+def analyse_observer(observer: str, trials: pd.DataFrame, opts: Options,
+                     rng: np.random.Generator) -> ObserverAnalysis:
+    """Fit one observer's pooled trials; see the module docstring for the steps."""
+    notes: list[str] = []
+    conds = condition_table(trials)
+    names = conds["condition"].tolist()
+    code = trials["condition"].map({c: i for i, c in enumerate(names)}).to_numpy()
+    cells = Cells.from_trials(trials["test_offset_deg"].to_numpy(float),
+                              trials["response_cw"].to_numpy(float), code, len(names))
+    other = "per_condition" if opts.spread == "shared" else "shared"
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        fit = fit_cells(cells, names, opts.spread, opts.lapse, opts.sigmoid, opts.lapse_max)
+        alt = fit_cells(cells, names, other, opts.lapse, opts.sigmoid, opts.lapse_max,
+                        warn=False) if len(names) > 1 else None
+    notes += [str(w.message) for w in caught]
+    if fit.lapse_at_bound:
+        notes.append(f"lapse on its bound ({fit.lapse:g})")
+    boot = None
+    if opts.n_boot > 0:
+        boot = parametric_bootstrap(fit, opts.n_boot, rng, opts.progress, f"bootstrap {observer}")
+        bad = 1.0 - boot.converged.mean()
+        if bad > 0:
+            notes.append(f"{100 * bad:.1f}% of bootstrap refits stopped before converging")
+    lay = fit.layout
+    P = lay.n_params
+    C = len(names)
+    # --- PSE table -----------------------------------------------------
+    grad_pse = np.zeros((P, C))
+    grad_pse[lay.pse_index, np.arange(C)] = 1.0
+    lo, hi = _intervals(boot, opts, fit.pse, None if boot is None else boot.pse, grad_pse)
+    pse = pd.DataFrame({
+        "observer": observer, "condition": names,
+        "adapter_offset_deg": conds["adapter_offset_deg"].to_numpy(),
+        "lag": conds["lag"].astype("Int64"),
+        "pse_deg": fit.pse, "pse_ci_low": lo, "pse_ci_high": hi,
+        "spread_deg": fit.spread, "lapse": fit.lapse, "n_trials": conds["n_trials"].to_numpy()})
+    details = _details(observer, conds, fit, boot, opts)
+    model_test = _model_test(observer, fit, alt, boot, opts)
+    period = _period(trials, notes)
+    analysis = ObserverAnalysis(observer, conds, trials, fit, alt, boot, pse, details,
+                                pd.DataFrame(columns=AFTEREFFECT_COLUMNS),
+                                pd.DataFrame(columns=TUNING_COLUMNS),
+                                pd.DataFrame(columns=DECAY_COLUMNS), pd.DataFrame(),
+                                model_test, period, {}, notes)
+    if not conds["is_baseline"].any():
+        notes.append("no baseline trials: no PSE shifts, tuning or decay")
+        return analysis
+    if conds["is_baseline"].all():
+        return analysis
+    _curves(analysis, opts)
+    return analysis
+
+
+def _details(observer, conds, fit, boot, opts) -> pd.DataFrame:
+    C = len(conds)
+    out = pd.DataFrame({"observer": observer, "condition": conds["condition"],
+                        "adapter_offset_deg": conds["adapter_offset_deg"],
+                        "lag": conds["lag"].astype("Int64"), "n_trials": conds["n_trials"],
+                        "n_levels": (fit.cells.n > 0).sum(axis=1),
+                        "pse_deg": fit.pse, "pse_se": fit.pse_se,
+                        "spread_deg": fit.spread, "spread_se": fit.spread_se,
+                        "jnd_deg": fit.jnd, "lapse": fit.lapse,
+                        "deviance": fit.deviance_by_condition})
+    if boot is not None:
+        lo, hi = boot.interval(fit.spread, boot.spread, None, "percentile", opts.level)
+        out["spread_ci_low"], out["spread_ci_high"] = lo, hi
+        out["gof_p"] = boot.gof_p_by_condition
+        out["replicates_pse_on_bound"] = boot.at_bound[:, fit.layout.pse_index].mean(axis=0)
+    else:
+        out["spread_ci_low"] = out["spread_ci_high"] = out["gof_p"] = np.nan
+        out["replicates_pse_on_bound"] = np.nan
+    out["flags"] = fit.flags if C else []
+    return out
+
+
+def _model_test(observer, fit, alt, boot, opts) -> pd.DataFrame:
+    row = {"observer": observer, "n_trials": int(fit.n_trials.sum()),
+           "n_conditions": len(fit.conditions), "spread_model": opts.spread,
+           "sigmoid": fit.sigmoid, "lapse": fit.lapse,
+           "lapse_on_bound": fit.lapse_at_bound, "loglik": fit.loglik,
+           "deviance": fit.deviance, "dof": fit.dof, "converged": fit.converged,
+           "gof_p": boot.gof_p if boot is not None else np.nan,
+           "replicates": boot.n_boot if boot is not None else 0,
+           "replicates_converged": float(boot.converged.mean()) if boot is not None else np.nan,
+           "replicates_lapse_on_bound": (float(boot.at_bound[:, fit.layout.lapse_index].mean())
+                                         if boot is not None and fit.layout.free_lapse else np.nan)}
+    if alt is not None:
+        shared, per = (fit, alt) if fit.layout.shared_spread else (alt, fit)
+        stat = max(2.0 * (per.loglik - shared.loglik), 0.0)
+        df = len(fit.conditions) - 1
+        row.update(spread_lrt_stat=stat, spread_lrt_df=df,
+                   spread_lrt_p=float(special.chdtrc(df, stat)))
+    else:
+        row.update(spread_lrt_stat=np.nan, spread_lrt_df=0, spread_lrt_p=np.nan)
+    return pd.DataFrame([row])
+
+
+def _curves(a: ObserverAnalysis, opts: Options) -> None:
+    fit, boot, conds, notes = a.fit, a.boot, a.conditions, a.notes
+    model = _CurveModel(conds, fit, notes)
+    lay = fit.layout
+    C = len(conds)
+    # rows: point estimate, finite-difference probes (+h, -h per PSE), replicates
+    probes = np.repeat(fit.pse[None], 2 * C, axis=0)
+    probes[np.arange(C), np.arange(C)] += _FD_STEP
+    probes[C + np.arange(C), np.arange(C)] -= _FD_STEP
+    rows = [fit.pse[None], probes] + ([boot.pse] if boot is not None else [])
+    stats, flags = model.statistics(np.vstack(rows))
+    est = stats[0]
+    grad = np.zeros((lay.n_params, stats.shape[1]))
+    grad[lay.pse_index] = (stats[1:1 + C] - stats[1 + C:1 + 2 * C]) / (2 * _FD_STEP)
+    reps = stats[1 + 2 * C:] if boot is not None else None
+    lo, hi = _intervals(boot, opts, est, reps, grad)
+    m = model.cond_index.size
+    adapted = conds.iloc[model.cond_index]
+    a.aftereffect = pd.DataFrame({
+        "observer": a.observer, "lag": adapted["lag"].astype("Int64").to_numpy(),
+        "adapter_offset_deg": adapted["adapter_offset_deg"].to_numpy(),
+        "pse_shift_deg": est[:m], "ci_low": lo[:m], "ci_high": hi[:m],
+        "n_trials": adapted["n_trials"].to_numpy()})
+    a.curves = {"offsets": model.offsets, "lags": model.lags, "peak_range": model.peak_range,
+                "shift_se": np.sqrt(model.shift_var)}
+    rows_t = []
+    col = m
+    for i in model.tuning_lags:
+        sl = slice(col, col + 2)
+        rows_t.append({"observer": a.observer, "lag": int(model.lags[i]),
+                       "amplitude_deg": est[col], "amplitude_ci_low": lo[col],
+                       "amplitude_ci_high": hi[col], "peak_offset_deg": est[col + 1],
+                       "peak_offset_ci_low": lo[col + 1], "peak_offset_ci_high": hi[col + 1]})
+        note = bound_note(f"lag {model.lags[i]:g} peak offset", est[col + 1], lo[col + 1],
+                          hi[col + 1], model.peak_range, "deg")
+        if note:
+            notes.append(note)
+        if reps is not None:
+            a.curves[("tuning", int(model.lags[i]))] = reps[:, sl]
+        col += 2
+    a.tuning = pd.DataFrame(rows_t, columns=TUNING_COLUMNS)
+    if model.decay_ok:
+        a0, w, tau = est[col:col + 3]
+        ci = [(lo[col + j], hi[col + j]) for j in range(3)]
+        a.decay = pd.DataFrame([{"observer": a.observer, "decay_periods": tau,
+                                 "ci_low": ci[2][0], "ci_high": ci[2][1]}], columns=DECAY_COLUMNS)
+        per = a.period_s
+        a.decay_detail = pd.DataFrame([{
+            "observer": a.observer, "amplitude0_deg": a0, "amplitude0_ci_low": ci[0][0],
+            "amplitude0_ci_high": ci[0][1], "peak_offset_deg": w, "peak_offset_ci_low": ci[1][0],
+            "peak_offset_ci_high": ci[1][1], "decay_periods": tau, "decay_ci_low": ci[2][0],
+            "decay_ci_high": ci[2][1], "period_s": per, "decay_s": tau * per,
+            "decay_s_ci_low": ci[2][0] * per, "decay_s_ci_high": ci[2][1] * per,
+            "lags_used": " ".join("%g" % model.lags[i] for i in model.tuning_lags),
+            "tau_on_bound_share": float(flags["decay_tau"][1 + 2 * C:].mean()) if reps is not None else np.nan}])
+        for name, j, rng_, unit in (("decay", 2, TAU_BOUNDS, "periods"),
+                                    ("joint peak offset", 1, model.peak_range, "deg")):
+            note = bound_note(name, est[col + j], ci[j][0], ci[j][1], rng_, unit)
+            if note:
+                notes.append(note)
+        if reps is not None:
+            a.curves["decay"] = reps[:, col:col + 3]
+    else:
+        notes.append("fewer than 2 lags with a tuning curve: no decay fit")
+    if reps is not None:
+        a.curves["shift_reps"] = reps[:, :m]

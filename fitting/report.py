@@ -1,0 +1,395 @@
+"""Public entry points: :func:`fit_logs` (the ``fit`` command) and :func:`quick_shifts`.
+
+Files written by :func:`fit_logs` into ``out_dir``
+--------------------------------------------------
+Tables with exactly the DESIGN.md columns, in that order:
+
+``pse.csv``, ``aftereffect.csv``, ``tuning.csv``, ``decay.csv``
+
+More tables:
+
+``fit_details.csv``   per observer and condition: SEs (observed information),
+                      JND, spread interval, deviance, goodness-of-fit p, flags
+``model_tests.csv``   per observer: log-likelihood, deviance, bootstrap
+                      goodness-of-fit p, likelihood-ratio test of a spread per
+                      condition against a shared spread, convergence
+``decay_detail.csv``  the joint decay fit: amplitude at lag 0, shared peak
+                      offset, tau in periods and in seconds, with intervals
+``exclusions.csv``    per observer: trials read and excluded (practice, bad
+                      timing, missed answers), trials used
+``mixed_model.csv``   with several observers: the statsmodels mixed model
+``summary.txt``       the text of :meth:`FitReport.summary`
+``figures/``          PNG and PDF figures (see :mod:`fitting.figures`)
+
+Everything is computed first and written afterwards (each file atomically);
+nothing else in ``out_dir`` is touched.  Results depend only on the data,
+the options and the seed: each observer draws its replicates from
+``SeedSequence([seed, crc32(observer id)])``, so adding an observer does not
+change the others' intervals, and the tables are byte-for-byte reproducible.
+"""
+
+from __future__ import annotations
+
+import math
+import numbers
+import zlib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .bootstrap import parametric_bootstrap
+from .errors import InputError
+from .group import GROUP, group_aftereffect, group_curves, group_pse, mixed_model
+from .observer import (AFTEREFFECT_COLUMNS, DECAY_COLUMNS, PSE_COLUMNS, TUNING_COLUMNS,
+                       ObserverAnalysis, Options, analyse_observer, condition_table)
+from .psychometric import DEFAULT_LAPSE_MAX, SIGMOIDS, Cells, fit_cells
+from .tables import prepare_trials, read_logs, write_csv, write_text
+
+MAIN_TABLES = {"pse": PSE_COLUMNS, "aftereffect": AFTEREFFECT_COLUMNS,
+               "tuning": TUNING_COLUMNS, "decay": DECAY_COLUMNS}
+
+
+@dataclass
+class FitReport:
+    """What :func:`fit_logs` produced.
+
+    Attributes
+    ----------
+    pse, aftereffect, tuning, decay : pandas.DataFrame
+        The four DESIGN.md tables (group rows last, observer ``group``).
+    extras : dict of str -> pandas.DataFrame
+        ``fit_details``, ``model_tests``, ``decay_detail``, ``exclusions`` and,
+        with several observers, ``mixed_model``.
+    analyses : list of ObserverAnalysis
+        Per-observer fits, bootstrap replicates and curve data.
+    notes : dict of str -> list of str
+        Warnings and caveats per observer (and ``group``).
+    options : Options
+    seed : int
+    files : list of str
+        Every file written.
+    """
+
+    pse: pd.DataFrame
+    aftereffect: pd.DataFrame
+    tuning: pd.DataFrame
+    decay: pd.DataFrame
+    extras: dict
+    analyses: list
+    notes: dict
+    options: Options
+    seed: int
+    out_dir: str = ""
+    files: list = field(default_factory=list)
+
+    def summary(self) -> str:
+        """Plain-text report for the terminal."""
+        o = self.options
+        ex = self.extras["exclusions"]
+        lines = []
+        n_obs = len(self.analyses)
+        lines.append(f"aftershift fit: {n_obs} observer{'s' if n_obs != 1 else ''}, "
+                     f"{int(ex['trials_used'].sum())} trials used of {int(ex['trials_read'].sum())} read "
+                     f"(excluded: {int(ex['practice_excluded'].sum())} practice, "
+                     f"{int(ex['bad_timing_excluded'].sum())} bad timing, "
+                     f"{int(ex['missed_excluded'].sum())} missed answers)")
+        lapse = (f"lapse free in [0, {o.lapse_max:g}]" if o.lapse == "free"
+                 else f"lapse fixed at {float(o.lapse):g}")
+        ci = (f"{100 * o.level:g}% {'BCa' if o.interval == 'bca' else 'percentile'} intervals from "
+              f"{o.n_boot} parametric bootstrap replicates (seed {self.seed})" if o.n_boot
+              else "no bootstrap: no intervals")
+        lines.append(f"{o.sigmoid} psychometric function, {lapse}, "
+                     f"{'shared' if o.spread == 'shared' else 'per-condition'} spread; {ci}")
+        tests = self.extras["model_tests"].set_index("observer")
+        for a in self.analyses:
+            t = tests.loc[a.observer]
+            lines.append("")
+            lines.append(f"Observer {a.observer}: {int(t['n_trials'])} trials in "
+                         f"{int(t['n_conditions'])} conditions")
+            jnd = float(np.median(a.fit.jnd))
+            lines.append(f"  lapse {a.fit.lapse:.3f}; spread {np.median(a.fit.spread):.2f} deg "
+                         f"(JND {jnd:.2f} deg); deviance {t['deviance']:.1f} on {int(t['dof'])} df"
+                         + (f", bootstrap goodness-of-fit p = {t['gof_p']:.3f}" if np.isfinite(t["gof_p"]) else ""))
+            if np.isfinite(t["spread_lrt_stat"]):
+                lines.append(f"  spread per condition vs shared: LR = {t['spread_lrt_stat']:.2f} on "
+                             f"{int(t['spread_lrt_df'])} df, p = {t['spread_lrt_p']:.3f}")
+            lines += _shift_grid(a.aftereffect)
+            for _, r in a.tuning.iterrows():
+                lines.append(f"  tuning, lag {int(r['lag'])}: amplitude {r['amplitude_deg']:.2f} deg"
+                             f"{_ci(r['amplitude_ci_low'], r['amplitude_ci_high'])} at offset "
+                             f"{r['peak_offset_deg']:.1f} deg"
+                             f"{_ci(r['peak_offset_ci_low'], r['peak_offset_ci_high'], 1)}")
+            if len(a.decay_detail):
+                d = a.decay_detail.iloc[0]
+                sec = (f" = {d['decay_s']:.2f} s{_ci(d['decay_s_ci_low'], d['decay_s_ci_high'])}"
+                       if np.isfinite(d["decay_s"]) else " (period_s unknown: no seconds)")
+                lines.append(f"  decay: tau {d['decay_periods']:.2f} periods"
+                             f"{_ci(d['decay_ci_low'], d['decay_ci_high'])}{sec}")
+            for n in self.notes.get(a.observer, []):
+                lines.append(f"  note: {n}")
+        if GROUP in self.notes or (self.tuning["observer"] == GROUP).any():
+            lines.append("")
+            lines.append(f"Group ({n_obs} observers; between-observer intervals)")
+            g = self.aftereffect[self.aftereffect["observer"] == GROUP]
+            lines += _shift_grid(g)
+            for _, r in self.tuning[self.tuning["observer"] == GROUP].iterrows():
+                lines.append(f"  tuning, lag {int(r['lag'])}: amplitude {r['amplitude_deg']:.2f} deg"
+                             f"{_ci(r['amplitude_ci_low'], r['amplitude_ci_high'])} at offset "
+                             f"{r['peak_offset_deg']:.1f} deg"
+                             f"{_ci(r['peak_offset_ci_low'], r['peak_offset_ci_high'], 1)}")
+            gd = self.decay[self.decay["observer"] == GROUP]
+            if len(gd):
+                r = gd.iloc[0]
+                lines.append(f"  decay: tau {r['decay_periods']:.2f} periods{_ci(r['ci_low'], r['ci_high'])}")
+            for n in self.notes.get(GROUP, []):
+                lines.append(f"  note: {n}")
+        if self.files:
+            lines.append("")
+            lines.append(f"written to {self.out_dir}: " + ", ".join(
+                sorted({Path(f).name for f in self.files if "figures" not in Path(f).parts}))
+                + f", and {sum('figures' in Path(f).parts for f in self.files)} figure files in figures/")
+        return "\n".join(lines)
+
+
+def _ci(lo, hi, digits: int = 2) -> str:
+    if not (np.isfinite(lo) and np.isfinite(hi)):
+        return ""
+    return f" [{lo:.{digits}f}, {hi:.{digits}f}]"
+
+
+def _shift_grid(shifts: pd.DataFrame) -> list[str]:
+    if shifts is None or not len(shifts):
+        return []
+    tab = shifts.pivot_table(index="lag", columns="adapter_offset_deg", values="pse_shift_deg")
+    head = "  PSE shift (deg) by adapter offset (deg):"
+    cols = "    lag " + "".join(f"{c:>8g}" for c in tab.columns)
+    rows = [f"    {int(lag):>3d} " + "".join("        " if not np.isfinite(v) else f"{v:>8.2f}"
+                                          for v in tab.loc[lag].to_numpy(float))
+            for lag in tab.index]
+    return [head, cols] + rows
+
+
+# --------------------------------------------------------------------------
+# argument checks
+# --------------------------------------------------------------------------
+
+def _check_options(n_boot, seed, lapse, spread, sigmoid, interval, level, lapse_max, progress) -> Options:
+    if isinstance(n_boot, bool) or not isinstance(n_boot, numbers.Integral) or n_boot < 0:
+        raise InputError("argument", "--bootstrap", f"replicates must be a whole number >= 0, not {n_boot!r}")
+    if isinstance(seed, bool) or not isinstance(seed, numbers.Integral) or seed < 0:
+        raise InputError("argument", "--seed", f"seed must be a whole number >= 0, not {seed!r}")
+    if not (isinstance(lapse_max, numbers.Real) and 0 < lapse_max < 0.5):
+        raise InputError("argument", "--lapse-max", f"must be in (0, 0.5), not {lapse_max!r}")
+    if isinstance(lapse, str) and lapse.strip().lower() == "free":
+        lapse = "free"
+    else:
+        try:
+            value = float(lapse)
+        except (TypeError, ValueError):
+            raise InputError("argument", "--lapse", f"'free' or a number in [0, 0.5), not {lapse!r}") from None
+        if not (math.isfinite(value) and 0.0 <= value < 0.5):
+            raise InputError("argument", "--lapse", f"a fixed lapse must be in [0, 0.5), not {lapse!r}")
+        lapse = value
+    spread = str(spread).replace("-", "_")
+    if spread not in ("shared", "per_condition"):
+        raise InputError("argument", "--spread", f"'shared' or 'per-condition', not {spread!r}")
+    if sigmoid not in SIGMOIDS:
+        raise InputError("argument", "--function", f"one of {', '.join(SIGMOIDS)}, not {sigmoid!r}")
+    if interval not in ("bca", "percentile"):
+        raise InputError("argument", "--interval", f"'bca' or 'percentile', not {interval!r}")
+    if not (isinstance(level, numbers.Real) and 0.5 <= level < 1.0):
+        raise InputError("argument", "--level", f"a confidence level in [0.5, 1), not {level!r}")
+    show = None if progress is True else (True if progress == "always" else False)
+    return Options(int(n_boot), lapse, spread, sigmoid, interval, float(level), float(lapse_max), show)
+
+
+def _observer_rng(seed: int, observer: str) -> np.random.Generator:
+    return np.random.default_rng(np.random.SeedSequence([int(seed), zlib.crc32(observer.encode("utf-8"))]))
+
+
+# --------------------------------------------------------------------------
+# entry points
+# --------------------------------------------------------------------------
+
+def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="free",
+               spread: str = "shared", progress=True, *, sigmoid: str = "gaussian",
+               interval: str = "bca", level: float = 0.95,
+               lapse_max: float = DEFAULT_LAPSE_MAX) -> FitReport:
+    """Fit checked trials (from :func:`read_logs`) without writing anything.
+
+    Same options as :func:`fit_logs`; returns the :class:`FitReport` with
+    no files.
+    """
+    opts = _check_options(n_boot, seed, lapse, spread, sigmoid, interval, level, lapse_max, progress)
+    analyses: list[ObserverAnalysis] = []
+    for observer, obs_trials in trials.groupby("observer", sort=True):
+        analyses.append(analyse_observer(str(observer), obs_trials.reset_index(drop=True), opts,
+                                         _observer_rng(seed, str(observer))))
+    notes = {a.observer: a.notes for a in analyses}
+    tables = {k: pd.concat([getattr(a, k) for a in analyses], ignore_index=True) if analyses else None
+              for k in ("pse", "aftereffect", "tuning", "decay", "details", "model_test", "decay_detail")}
+    extras = {"fit_details": tables["details"], "model_tests": tables["model_test"],
+              "decay_detail": tables["decay_detail"]}
+    exclusions = trials.attrs.get("exclusions")
+    if exclusions is None:
+        exclusions = trials.groupby("observer").size().rename("trials_used").reset_index()
+        for c in ("trials_read",):
+            exclusions[c] = exclusions["trials_used"]
+        for c in ("practice_excluded", "bad_timing_excluded", "missed_excluded"):
+            exclusions[c] = 0
+    extras["exclusions"] = exclusions
+    group = None
+    if len(analyses) > 1:
+        gnotes: list[str] = []
+        group = {"pse": group_pse(tables["pse"], opts.level),
+                 "aftereffect": group_aftereffect(tables["aftereffect"], opts.level)
+                 if len(tables["aftereffect"]) else pd.DataFrame(columns=AFTEREFFECT_COLUMNS)}
+        if len(tables["aftereffect"]):
+            group["tuning"], group["decay"], group["decay_detail"], group["curves"] = \
+                group_curves(tables["aftereffect"], opts.level, gnotes)
+        else:
+            group["tuning"], group["decay"], group["decay_detail"] = (
+                pd.DataFrame(columns=TUNING_COLUMNS), pd.DataFrame(columns=DECAY_COLUMNS), pd.DataFrame())
+        periods = {a.period_s for a in analyses if np.isfinite(a.period_s)}
+        group["period_s"] = periods.pop() if len(periods) == 1 else float("nan")
+        extras["mixed_model"] = mixed_model(tables["aftereffect"], gnotes)
+        for k in ("pse", "aftereffect", "tuning", "decay"):
+            tables[k] = pd.concat([tables[k], group[k]], ignore_index=True)
+        if len(group["decay_detail"]):
+            extras["decay_detail"] = pd.concat([extras["decay_detail"], group["decay_detail"]],
+                                               ignore_index=True)
+        notes[GROUP] = gnotes
+    report = FitReport(*(tables[k][MAIN_TABLES[k]] for k in MAIN_TABLES), extras, analyses, notes,
+                       opts, int(seed))
+    report.group = group
+    return report
+
+
+def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
+             spread: str = "shared", include_bad_timing: bool = False, progress=True,
+             figures: bool = True, *, include_practice: bool = False, sigmoid: str = "gaussian",
+             interval: str = "bca", level: float = 0.95,
+             lapse_max: float = DEFAULT_LAPSE_MAX) -> FitReport:
+    """Read trial logs, fit every observer (and the group), write tables and figures.
+
+    Parameters
+    ----------
+    paths : list of str
+        Trial logs and/or folders (every ``*.trials.csv`` below a folder).
+        Sessions of the same observer are pooled.
+    out_dir : str
+        Output folder (created if needed).
+    n_boot : int
+        Parametric bootstrap replicates per observer (0: no intervals).
+    seed : int
+        Seed of the replicates; same seed, same tables byte for byte.
+    lapse : "free" or float
+        ``"free"``: one lapse per observer in ``[0, lapse_max]``; a number in
+        ``[0, 0.5)`` fixes it.
+    spread : {"shared", "per_condition"}
+        One spread per observer or one per condition (the other model is
+        fitted too, for the likelihood-ratio test in ``model_tests.csv``).
+    include_bad_timing : bool
+        Keep trials with ``timing_ok = false``.
+    progress : bool or "always"
+        Progress bars on stderr: True = only when stderr is a terminal,
+        "always" = even when it is not, False = never.
+    figures : bool
+        Draw the PNG and PDF figures.
+    include_practice : bool
+        Keep practice trials.
+    sigmoid : {"gaussian", "logistic"}
+        Shape ``F`` of the psychometric function.
+    interval : {"bca", "percentile"}
+        Kind of bootstrap interval in the tables.
+    level : float
+        Confidence level.
+    lapse_max : float
+        Upper bound of a free lapse (default 0.1).
+
+    Returns
+    -------
+    FitReport
+
+    Raises
+    ------
+    InputError
+        Bad arguments, unreadable or invalid logs (naming file and line).
+    """
+    out = Path(out_dir)
+    if out.exists() and not out.is_dir():
+        raise InputError(str(out), "--out", "exists and is not a folder")
+    _check_options(n_boot, seed, lapse, spread, sigmoid, interval, level, lapse_max, progress)
+    trials = read_logs(paths, include_bad_timing, include_practice)
+    report = fit_trials(trials, n_boot, seed, lapse, spread, progress, sigmoid=sigmoid,
+                        interval=interval, level=level, lapse_max=lapse_max)
+    # draw figures before writing any table, so a failure leaves out_dir as it was
+    fig_files: list[str] = []
+    if figures:
+        from .figures import make_figures
+        fig_files = make_figures(report.analyses, report.group, out / "figures")
+    out.mkdir(parents=True, exist_ok=True)
+    files = []
+    for name, cols in MAIN_TABLES.items():
+        write_csv(getattr(report, name), out / f"{name}.csv", cols)
+        files.append(str(out / f"{name}.csv"))
+    for name, table in report.extras.items():
+        if table is not None and len(table.columns):
+            write_csv(table, out / f"{name}.csv")
+            files.append(str(out / f"{name}.csv"))
+    report.out_dir = str(out)
+    report.files = files + fig_files + [str(out / "summary.txt")]
+    write_text(out / "summary.txt", report.summary() + "\n")
+    return report
+
+
+def quick_shifts(trials: pd.DataFrame, n_boot: int = 50, seed: int = 0) -> pd.DataFrame:
+    """Fast PSE shifts for the experimenter's console after a block; writes nothing.
+
+    Each observer's conditions are fitted jointly (shared spread, free lapse)
+    and ``n_boot`` replicates give rough percentile 95 % intervals.
+
+    Parameters
+    ----------
+    trials : pandas.DataFrame
+        Trial-log rows (the log's columns; text or typed values).  Practice,
+        bad-timing and missed trials are left out.
+    n_boot : int
+        Replicates (0: no intervals).
+    seed : int
+
+    Returns
+    -------
+    pandas.DataFrame
+        ``observer, condition, adapter_offset_deg, lag, pse_deg,
+        pse_shift_deg, ci_low, ci_high, n_trials``; one row per condition
+        (baseline included, shift 0); shifts and intervals empty (NaN) when
+        the observer has no baseline trials yet.
+    """
+    if isinstance(n_boot, bool) or not isinstance(n_boot, numbers.Integral) or n_boot < 0:
+        raise InputError("argument", "n_boot", f"a whole number >= 0, not {n_boot!r}")
+    kept = prepare_trials(trials)
+    rows = []
+    for observer, t in kept.groupby("observer", sort=True):
+        conds = condition_table(t)
+        names = conds["condition"].tolist()
+        code = t["condition"].map({c: i for i, c in enumerate(names)}).to_numpy()
+        cells = Cells.from_trials(t["test_offset_deg"].to_numpy(float),
+                                  t["response_cw"].to_numpy(float), code, len(names))
+        fit = fit_cells(cells, names, warn=False)
+        base = np.flatnonzero(conds["is_baseline"].to_numpy())
+        shift = fit.pse - fit.pse[base[0]] if base.size else np.full(len(names), np.nan)
+        lo = hi = np.full(len(names), np.nan)
+        if n_boot and base.size:
+            boot = parametric_bootstrap(fit, int(n_boot), _observer_rng(seed, str(observer)), False)
+            reps = boot.pse - boot.pse[:, [base[0]]]
+            lo, hi = np.quantile(reps, [0.025, 0.975], axis=0)
+        rows.append(pd.DataFrame({"observer": str(observer), "condition": names,
+                                  "adapter_offset_deg": conds["adapter_offset_deg"].to_numpy(),
+                                  "lag": conds["lag"].astype("Int64").to_numpy(),
+                                  "pse_deg": fit.pse, "pse_shift_deg": shift,
+                                  "ci_low": lo, "ci_high": hi,
+                                  "n_trials": conds["n_trials"].to_numpy()}))
+    return pd.concat(rows, ignore_index=True)

@@ -1,0 +1,348 @@
+"""Reading trial logs and writing tidy tables.
+
+Reading
+-------
+:func:`read_logs` takes files and folders (a folder means every
+``*.trials.csv`` below it), checks every column the fits use, pools the
+sessions of each observer, and drops practice trials, trials with
+``timing_ok = false`` and missed answers (empty ``response_cw``), counting
+each.  Any bad value raises :class:`~fitting.errors.InputError` naming the
+file and the line (or column); nothing is guessed.
+
+Columns (DESIGN.md): ``observer, session, trial, condition,
+adapter_offset_deg, lag, track, test_offset_deg, response_cw, rt_s,
+dropped_frames, timing_ok`` are required; ``practice`` (0/1, missing = no
+practice) and ``period_s`` (seconds of one intervening period) are optional;
+others are ignored.
+
+Writing
+-------
+:func:`write_csv` writes a table atomically (temporary file, then rename) in
+a fixed number format, so the same results give the same bytes.
+"""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .errors import InputError
+
+REQUIRED_COLUMNS = ["observer", "session", "trial", "condition", "adapter_offset_deg", "lag",
+                    "track", "test_offset_deg", "response_cw", "rt_s", "dropped_frames", "timing_ok"]
+LOG_SUFFIX = ".trials.csv"
+BASELINE = "baseline"
+
+_TRUE = {"true", "1", "1.0", "yes"}
+_FALSE = {"false", "0", "0.0", "no"}
+
+
+def find_logs(paths) -> list[Path]:
+    """Expand files and folders into the list of trial-log files.
+
+    Raises
+    ------
+    InputError
+        A path that does not exist, or a folder with no ``*.trials.csv``.
+    """
+    if isinstance(paths, (str, os.PathLike)):
+        paths = [paths]
+    found: list[Path] = []
+    seen = set()
+    for raw in paths:
+        p = Path(raw)
+        if p.is_dir():
+            files = sorted(f for f in p.rglob("*" + LOG_SUFFIX) if f.is_file())
+            if not files:
+                raise InputError(str(p), "", f"no trial logs (*{LOG_SUFFIX}) in this folder or below")
+        elif p.is_file():
+            files = [p]
+        else:
+            raise InputError(str(p), "", "no such file or folder")
+        for f in files:
+            key = f.resolve()
+            if key not in seen:
+                seen.add(key)
+                found.append(f)
+    if not found:
+        raise InputError("argument", "LOG_OR_DIR", "give at least one trial log or folder")
+    return found
+
+
+def _text(col: pd.Series) -> pd.Series:
+    """Column as stripped text, with missing values as ''."""
+    out = col.astype(object).where(col.notna(), "")
+    return out.map(lambda v: str(v).strip())
+
+
+def _first_bad(mask: pd.Series) -> int | None:
+    where = np.flatnonzero(mask.to_numpy())
+    return int(where[0]) if where.size else None
+
+
+class _Checker:
+    """Converts raw text columns, raising on the first bad value."""
+
+    def __init__(self, raw: pd.DataFrame, source: str, row_names: list[str]):
+        self.raw = raw
+        self.source = source
+        self.row_names = row_names
+
+    def fail(self, row: int, column: str, message: str):
+        raise InputError(self.source, f"{self.row_names[row]}, column {column}", message)
+
+    def text(self, name: str, required: bool = True) -> pd.Series:
+        t = _text(self.raw[name])
+        if required:
+            bad = _first_bad(t == "")
+            if bad is not None:
+                self.fail(bad, name, "empty; a value is required")
+        return t
+
+    def number(self, name: str, allow_empty: bool, rows: pd.Series | None = None) -> pd.Series:
+        t = _text(self.raw[name])
+        num = pd.to_numeric(t.where(t != "", None), errors="coerce").astype(float)
+        check = pd.Series(True, index=t.index) if rows is None else rows
+        bad_text = check & (t != "") & ~np.isfinite(num.fillna(np.inf).to_numpy())
+        bad_text |= check & (t != "") & num.isna()
+        bad = _first_bad(bad_text)
+        if bad is not None:
+            self.fail(bad, name, f"'{t.iloc[bad]}' is not a number")
+        if not allow_empty:
+            bad = _first_bad(check & (t == ""))
+            if bad is not None:
+                self.fail(bad, name, "empty; a number is required")
+        return num
+
+    def flag(self, name: str, empty_means: bool | None) -> pd.Series:
+        t = _text(self.raw[name]).str.lower()
+        ok = t.isin(_TRUE | _FALSE) | ((t == "") & (empty_means is not None))
+        bad = _first_bad(~ok)
+        if bad is not None:
+            self.fail(bad, name, f"'{self.raw[name].iloc[bad]}' is not true/false (or 1/0)")
+        return t.isin(_TRUE) | ((t == "") & bool(empty_means))
+
+
+def validate_trials(raw: pd.DataFrame, source: str, row_names: list[str] | None = None) -> pd.DataFrame:
+    """Check and convert one table of trials (text or typed columns).
+
+    Parameters
+    ----------
+    raw : pandas.DataFrame
+        Rows of a trial log.
+    source : str
+        Name used in error messages (a file name, or ``"trials"``).
+    row_names : list of str, optional
+        How to name each row in messages (default ``"row 1"``, ...).
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns ``observer, session, trial, condition, is_baseline,
+        adapter_offset_deg, lag, track, test_offset_deg, response_cw,
+        timing_ok, practice, period_s, source, line``; ``response_cw`` is NaN
+        for a missed answer.
+    """
+    raw = raw.rename(columns=lambda c: str(c).strip())
+    missing = [c for c in REQUIRED_COLUMNS if c not in raw.columns]
+    if missing:
+        raise InputError(source, f"column {missing[0]}",
+                         "missing required column" + ("s " if len(missing) > 1 else " ")
+                         + ", ".join(missing))
+    if len(raw) == 0:
+        raise InputError(source, "", "the log holds no trials")
+    raw = raw.reset_index(drop=True)
+    names = row_names if row_names is not None else [f"row {i + 1}" for i in range(len(raw))]
+    ck = _Checker(raw, source, names)
+    out = pd.DataFrame(index=raw.index)
+    out["observer"] = ck.text("observer")
+    out["session"] = ck.text("session", required=False)
+    out["trial"] = ck.number("trial", allow_empty=True)
+    out["condition"] = ck.text("condition")
+    out["is_baseline"] = out["condition"].str.lower() == BASELINE
+    adapted = ~out["is_baseline"]
+    offset = ck.number("adapter_offset_deg", allow_empty=True, rows=adapted)
+    lag = ck.number("lag", allow_empty=True, rows=adapted)
+    for name, col in (("adapter_offset_deg", offset), ("lag", lag)):
+        bad = _first_bad(adapted & col.isna())
+        if bad is not None:
+            ck.fail(bad, name, f"empty, but condition '{out['condition'].iloc[bad]}' is not the baseline")
+    bad = _first_bad(adapted & ((lag < 0) | (lag != np.round(lag))))
+    if bad is not None:
+        ck.fail(bad, "lag", f"'{raw['lag'].iloc[bad]}' is not a whole number of periods >= 0")
+    out["adapter_offset_deg"] = offset.where(adapted)
+    out["lag"] = lag.where(adapted)
+    out["track"] = ck.text("track", required=False)
+    out["test_offset_deg"] = ck.number("test_offset_deg", allow_empty=False)
+    resp = _text(raw["response_cw"])
+    num = pd.to_numeric(resp.where(resp != "", None), errors="coerce")
+    bad = _first_bad((resp != "") & ~num.isin([0, 1]))
+    if bad is not None:
+        ck.fail(bad, "response_cw", f"'{resp.iloc[bad]}' is not 1, 0 or empty")
+    out["response_cw"] = num.astype(float)
+    out["timing_ok"] = ck.flag("timing_ok", empty_means=None)
+    out["practice"] = ck.flag("practice", empty_means=False) if "practice" in raw.columns \
+        else pd.Series(False, index=raw.index)
+    if "period_s" in raw.columns:
+        period = ck.number("period_s", allow_empty=True)
+        bad = _first_bad(period <= 0)
+        if bad is not None:
+            ck.fail(bad, "period_s", f"'{raw['period_s'].iloc[bad]}' is not a positive duration")
+        out["period_s"] = period
+    else:
+        out["period_s"] = np.nan
+    out["source"] = source
+    out["line"] = names
+    return out
+
+
+def _read_file(path: Path) -> pd.DataFrame:
+    source = str(path)
+    try:
+        raw = pd.read_csv(path, dtype=str, keep_default_na=False, encoding="utf-8-sig")
+    except pd.errors.EmptyDataError:
+        raise InputError(source, "", "empty file: no header and no trials") from None
+    except pd.errors.ParserError as exc:
+        raise InputError(source, "", f"not a readable CSV table ({exc})") from None
+    except UnicodeDecodeError:
+        raise InputError(source, "", "not a text (UTF-8) CSV file") from None
+    return validate_trials(raw, source, [f"line {i + 2}" for i in range(len(raw))])
+
+
+def _check_conditions(trials: pd.DataFrame) -> None:
+    """Within an observer, one condition label <-> one (offset, lag)."""
+    adapted = trials[~trials["is_baseline"]]
+    for obs, group in adapted.groupby("observer", sort=True):
+        key = list(zip(group["adapter_offset_deg"], group["lag"]))
+        first_key: dict = {}
+        first_name: dict = {}
+        for (name, k, src, line) in zip(group["condition"], key, group["source"], group["line"]):
+            if first_key.setdefault(name, k) != k:
+                raise InputError(src, line, f"condition '{name}' of observer {obs} had adapter offset "
+                                 f"{first_key[name][0]:g} and lag {first_key[name][1]:g} before, "
+                                 f"here {k[0]:g} and {k[1]:g}")
+            if first_name.setdefault(k, name) != name:
+                raise InputError(src, line, f"conditions '{first_name[k]}' and '{name}' of observer "
+                                 f"{obs} both have adapter offset {k[0]:g} and lag {k[1]:g}")
+
+
+def exclude(trials: pd.DataFrame, include_bad_timing: bool = False,
+            include_practice: bool = False):
+    """Drop practice, bad-timing and missed trials; count them per observer.
+
+    Returns
+    -------
+    kept : pandas.DataFrame
+    counts : pandas.DataFrame
+        Per observer: ``files, trials_read, practice_excluded,
+        bad_timing_excluded, missed_excluded, trials_used``.
+    """
+    prac = trials["practice"] & (not include_practice)
+    bad_timing = ~prac & ~trials["timing_ok"] & (not include_bad_timing)
+    missed = ~prac & ~bad_timing & trials["response_cw"].isna()
+    keep = ~(prac | bad_timing | missed)
+    flags = pd.DataFrame({"observer": trials["observer"], "source": trials["source"],
+                          "practice": prac, "bad": bad_timing, "missed": missed, "keep": keep})
+    g = flags.groupby("observer", sort=True)
+    counts = pd.DataFrame({
+        "files": g["source"].nunique(),
+        "trials_read": g.size(),
+        "practice_excluded": g["practice"].sum(),
+        "bad_timing_excluded": g["bad"].sum(),
+        "missed_excluded": g["missed"].sum(),
+        "trials_used": g["keep"].sum(),
+    }).reset_index()
+    return trials[keep].reset_index(drop=True), counts
+
+
+def read_logs(paths, include_bad_timing: bool = False, include_practice: bool = False) -> pd.DataFrame:
+    """Read, check and pool trial logs.
+
+    Parameters
+    ----------
+    paths : str, path or list of them
+        Log files and/or folders (every ``*.trials.csv`` below a folder).
+    include_bad_timing : bool
+        Keep trials with ``timing_ok = false`` (dropped by default).
+    include_practice : bool
+        Keep practice trials (dropped by default).
+
+    Returns
+    -------
+    pandas.DataFrame
+        The usable trials (see :func:`validate_trials` for the columns).
+        ``df.attrs["exclusions"]`` holds the per-observer counts of
+        :func:`exclude`; ``df.attrs["files"]`` the files read.
+
+    Raises
+    ------
+    InputError
+        Bad paths, missing columns, bad values (naming file and line), or no
+        usable trial at all.
+    """
+    files = find_logs(paths)
+    trials = pd.concat([_read_file(f) for f in files], ignore_index=True)
+    _check_conditions(trials)
+    kept, counts = exclude(trials, include_bad_timing, include_practice)
+    if kept.empty:
+        raise InputError(str(files[0]) if len(files) == 1 else "logs", "",
+                         "no usable trials once practice, bad-timing and missed trials are excluded")
+    kept.attrs["exclusions"] = counts
+    kept.attrs["files"] = [str(f) for f in files]
+    return kept
+
+
+def prepare_trials(trials: pd.DataFrame, include_bad_timing: bool = False,
+                   include_practice: bool = False, source: str = "trials") -> pd.DataFrame:
+    """Like :func:`read_logs` for a table already in memory (e.g. after a block)."""
+    checked = validate_trials(trials, source)
+    _check_conditions(checked)
+    kept, counts = exclude(checked, include_bad_timing, include_practice)
+    if kept.empty:
+        raise InputError(source, "", "no usable trials once practice, bad-timing and missed "
+                         "trials are excluded")
+    kept.attrs["exclusions"] = counts
+    return kept
+
+
+# --------------------------------------------------------------------------
+# writing
+# --------------------------------------------------------------------------
+
+def format_table(df: pd.DataFrame, columns: list[str] | None = None) -> str:
+    """CSV text with floats in ``%.6g``, whole-number columns as integers, NaN empty."""
+    out = df[columns].copy() if columns is not None else df.copy()
+    for c in out.columns:
+        col = out[c]
+        if pd.api.types.is_bool_dtype(col):
+            out[c] = np.where(col, "true", "false")
+        elif pd.api.types.is_integer_dtype(col):
+            out[c] = col.astype(object).where(col.notna(), "").map(str)
+        elif pd.api.types.is_float_dtype(col):
+            out[c] = [("" if not np.isfinite(v) else "%.6g" % (0.0 if v == 0 else v))
+                      for v in col.to_numpy(dtype=float)]
+    return out.to_csv(index=False, lineterminator="\n")
+
+
+def write_text(path: Path, text: str) -> None:
+    """Write ``text`` atomically: a temporary file beside ``path``, then rename."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix="." + path.name + ".", dir=path.parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
+            fh.write(text)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def write_csv(df: pd.DataFrame, path, columns: list[str] | None = None) -> None:
+    """Write a table with :func:`format_table` through :func:`write_text`."""
+    write_text(Path(path), format_table(df, columns))

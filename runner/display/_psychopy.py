@@ -1,0 +1,48 @@
+"""The one place where psychopy is imported.
+
+Importing psychopy has side effects in the user's home folder: it creates
+``~/.psychopy3`` (preferences, caches, plugin folders) and writes a default
+monitor calibration file there, and every ``psychopy.monitors.Monitor`` made
+later loads any calibration saved under the same name.  aftershift builds its
+monitor in memory from the protocol and wants neither, so ``HOME`` points at
+a private temporary folder while psychopy is imported (psychopy reads it only
+then) and is restored right after; the folder is removed when the process
+exits.  Nothing of psychopy's preferences is read from, or written to, the
+real home folder, and no gamma table is touched (see
+:mod:`runner.display.window`).
+
+psychopy's console log is limited to errors: the experimenter's console is
+ours, and psychopy's notices (for example that psychtoolbox is missing, so
+its keyboard falls back to window events) are explained in
+:mod:`runner.display`.
+"""
+
+from __future__ import annotations
+
+import atexit
+import os
+import shutil
+import tempfile
+
+_PREFS_HOME = tempfile.mkdtemp(prefix="aftershift-psychopy-")
+atexit.register(shutil.rmtree, _PREFS_HOME, ignore_errors=True)
+_real_home = os.environ.get("HOME")
+os.environ["HOME"] = _PREFS_HOME
+try:
+    from psychopy import logging
+
+    logging.console.setLevel(logging.ERROR)
+    import pyglet
+    from psychopy import __version__ as version
+    from psychopy import core, event, monitors, visual
+    from psychopy.tools.monitorunittools import deg2pix
+finally:
+    if _real_home is None:
+        del os.environ["HOME"]
+    else:
+        os.environ["HOME"] = _real_home
+
+#: Where psychopy keeps its preference folder for this process.
+PREFS_HOME = _PREFS_HOME
+
+__all__ = ["core", "deg2pix", "event", "logging", "monitors", "pyglet", "version", "visual", "PREFS_HOME"]

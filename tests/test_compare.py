@@ -1,0 +1,113 @@
+"""`compare`: agreement metrics against hand computation and scipy."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+
+from fitting.compare import agreement, compare_results
+from fitting.population import ChannelModel, predict_table
+from runner.cli import main
+
+Z = stats.norm.ppf(0.975)
+
+
+def _measured(tmp_path, rows):
+    frame = pd.DataFrame(rows, columns=["observer", "lag", "adapter_offset_deg", "pse_shift_deg", "ci_low", "ci_high", "n_trials"])
+    d = tmp_path / "results"
+    d.mkdir(exist_ok=True)
+    frame.to_csv(d / "aftereffect.csv", index=False)
+    return d
+
+
+def test_metrics_equal_hand_computation_and_scipy():
+    m = np.array([1.0, 2.0, -1.5, 3.0])
+    p = np.array([0.5, 2.5, -1.0, 2.0])
+    half = np.array([1.0, 0.5, 2.0, 1.0])
+    a = agreement(m, m - half, m + half, p)
+    # hand computation: residuals 0.5, -0.5, -0.5, 1.0
+    assert a.rmse_deg == pytest.approx(np.sqrt((0.25 + 0.25 + 0.25 + 1.0) / 4))
+    # reference: scipy.stats.pearsonr
+    assert a.pearson_r == pytest.approx(stats.pearsonr(m, p).statistic, abs=1e-12)
+    se = half / Z
+    w = 1 / se**2
+    assert a.gain == pytest.approx(np.sum(w * m * p) / np.sum(w * p * p))
+    chi2 = np.sum((m - p) ** 2 / se**2)
+    assert a.chi2 == pytest.approx(chi2)
+    # reference: scipy.stats.chi2 upper tail with one degree of freedom per point
+    assert a.chi2_p == pytest.approx(stats.chi2.sf(chi2, 4))
+    # predictions inside [m - half, m + half]: 0.5 in [0,2] yes; 2.5 in [1.5,2.5] yes; -1 in [-3.5,0.5] yes; 2 in [2,4] yes
+    assert a.inside_ci_fraction == 1.0
+
+
+def test_gain_ci_covers_the_true_gain_of_scaled_predictions():
+    # measured = 0.6 x predicted + noise of known se: the 95 % CI of g should cover 0.6 about 95 % of the time
+    rng = np.random.default_rng(4)
+    p = np.linspace(-6, 6, 16)
+    se = np.full_like(p, 0.5)
+    covered = 0
+    for _ in range(400):
+        m = 0.6 * p + rng.normal(0, se)
+        a = agreement(m, m - Z * se, m + Z * se, p)
+        covered += a.gain_ci_low <= 0.6 <= a.gain_ci_high
+    assert 0.92 <= covered / 400 <= 0.98
+
+
+def test_prediction_sd_enters_the_chi2():
+    m, p = np.array([1.0, 2.0, 3.0]), np.array([0.0, 2.0, 4.0])
+    half = np.full(3, Z)  # se = 1
+    without = agreement(m, m - half, m + half, p)
+    with_sd = agreement(m, m - half, m + half, p, prediction_sd=np.ones(3))
+    assert without.chi2 == pytest.approx(2.0)
+    assert with_sd.chi2 == pytest.approx(1.0)
+
+
+def test_compare_writes_agreement_per_lag_and_overall(tmp_path):
+    rows = [("S1", lag, d, 0.0, -1.0, 1.0, 40) for lag in (0, 1) for d in (-30, 30)]
+    results = _measured(tmp_path, rows)
+    pred = pd.DataFrame({"lag": [0, 0, 1, 1], "adapter_offset_deg": [-30, 30, -30, 30], "pse_shift_deg": [-0.5, 0.5, -2, 2]})
+    pred.to_csv(tmp_path / "pred.csv", index=False)
+    out = tmp_path / "out"
+    assert main(["compare", str(results), str(tmp_path / "pred.csv"), "--out", str(out)]) == 0
+    table = pd.read_csv(out / "agreement.csv")
+    assert list(table["lag"].astype(str)) == ["0", "1", "all"]
+    assert table.loc[0, "inside_ci_fraction"] == 1.0 and table.loc[1, "inside_ci_fraction"] == 0.0
+    assert (out / "comparison.png").exists() and (out / "comparison.pdf").exists()
+
+
+def test_mismatched_grids_list_what_is_missing(tmp_path, capsys):
+    rows = [("S1", 0, d, 0.0, -1.0, 1.0, 40) for d in (-30, 15, 30)] + [("S1", 2, 30, 0.0, -1.0, 1.0, 40)]
+    results = _measured(tmp_path, rows)
+    pred = pd.DataFrame({"lag": [0, 0], "adapter_offset_deg": [-30, 30], "pse_shift_deg": [-1, 1]})
+    pred.to_csv(tmp_path / "pred.csv", index=False)
+    code = main(["compare", str(results), str(tmp_path / "pred.csv"), "--out", str(tmp_path / "o")])
+    err = capsys.readouterr().err
+    assert code == 2 and len(err.strip().splitlines()) == 1
+    assert "lag 0 offset +15" in err and "lag 2 offset +30" in err
+    # interpolation over offsets fills +15 at lag 0 but never invents a lag
+    code = main(["compare", str(results), str(tmp_path / "pred.csv"), "--out", str(tmp_path / "o"), "--interpolate"])
+    err = capsys.readouterr().err
+    assert code == 2 and "lag 2 offset +30" in err and "offset +15" not in err
+
+
+def test_bad_prediction_files_are_one_line_errors(tmp_path, capsys):
+    results = _measured(tmp_path, [("S1", 0, 30, 0.0, -1.0, 1.0, 40)])
+    (tmp_path / "p.csv").write_text("lag,adapter_offset_deg\n0,30\n")
+    assert main(["compare", str(results), str(tmp_path / "p.csv"), "--out", str(tmp_path / "o")]) == 2
+    assert "pse_shift_deg" in capsys.readouterr().err
+    (tmp_path / "p.csv").write_text("lag,adapter_offset_deg,pse_shift_deg\n0,30,abc\n")
+    assert main(["compare", str(results), str(tmp_path / "p.csv"), "--out", str(tmp_path / "o")]) == 2
+    assert "line 2" in capsys.readouterr().err
+
+
+def test_population_model_is_repulsive_odd_and_decays_with_lag():
+    model = ChannelModel()
+    table = predict_table(model, [-30, 30], [0, 1, 3])
+    lag0 = table[table.lag == 0].set_index("adapter_offset_deg")["pse_shift_deg"]
+    assert lag0[30.0] > 0 and lag0[-30.0] == pytest.approx(-lag0[30.0], abs=1e-9)
+    by_lag = table[table.adapter_offset_deg == 30].set_index("lag")["pse_shift_deg"]
+    assert by_lag[0] > by_lag[1] > by_lag[3] > 0
+    # an unadapted population reads every test veridically (population vector of a symmetric code)
+    assert model.decoded_deg([7.0], model.gains(None, 0))[0] == pytest.approx(7.0, abs=1e-9)

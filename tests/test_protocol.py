@@ -1,0 +1,119 @@
+"""Protocol files: bundled ones pass `check`, malformed ones fail in one line."""
+
+from __future__ import annotations
+
+import pytest
+
+from runner.cli import main
+from runner.protocol import Protocol, frame_plan, load_protocol
+
+from conftest import PROTOCOLS
+
+BUNDLED = sorted(PROTOCOLS.glob("*.toml"))
+
+
+def test_there_are_at_least_three_bundled_protocols_and_the_default():
+    names = {p.name for p in BUNDLED}
+    assert "offset_by_lag.toml" in names and len(names) >= 3
+
+
+@pytest.mark.parametrize("path", BUNDLED, ids=lambda p: p.name)
+def test_check_accepts_every_bundled_protocol(path, cli):
+    done = cli("check", path)
+    assert done.returncode == 0, done.stderr
+    assert "frames at" in done.stdout and "duration" in done.stdout
+    assert "photosensitivity" in done.stdout.lower()
+
+
+def test_default_protocol_matches_the_design_defaults():
+    p = load_protocol(PROTOCOLS / "offset_by_lag.toml")
+    assert sorted(p.design.adapter_offsets_deg) == [-90, -60, -30, -15, 15, 30, 60, 90]
+    assert p.design.lags == [0, 1, 2, 3]
+    # at 120 Hz, 0.5 s is 60 frames exactly
+    assert frame_plan(p)["adapter_s"].frames == 60
+
+
+def test_single_frame_periods_are_allowed_at_120hz():
+    p = load_protocol(PROTOCOLS / "brief_periods_120hz.toml")
+    assert frame_plan(p)["period_s"].frames == 1
+
+
+def _check(tmp_path, capsys, content: bytes | None, name="bad.toml"):
+    path = tmp_path / name
+    if content is not None:
+        path.write_bytes(content)
+    code = main(["check", str(path)])
+    err = capsys.readouterr().err
+    return code, err, path
+
+
+MALFORMED = {
+    "empty": (b"", "(top level)"),
+    "binary": (bytes(range(256)) * 4, "file"),
+    "latin1": ("title = 'caf\u00e9'".encode("latin-1"), "byte"),
+    "invalid_toml": (b"[display\nrefresh_hz = 120", "TOML"),
+    "nan": (b"[dots]\nspeed_deg_s = nan", "dots.speed_deg_s"),
+    "inf": (b"[display]\ndistance_cm = inf", "display.distance_cm"),
+    "string_for_number": (b"[display]\nrefresh_hz = '120'", "display.refresh_hz"),
+    "bool_for_number": (b"[dots]\ncoherence = true", "dots.coherence"),
+    "unknown_field": (b"[dots]\nspeed = 5", "dots.speed"),
+    "deep_nesting": (b"x = " + b"[" * 3000 + b"]" * 3000, "TOML"),
+    "deep_tables": (b"[a.b.c.d.e.f.g.h]\nx = 1", "a"),
+    "fractional_lag": (b"[design]\nlags = [0, 1.5]", "design.lags"),
+    "negative_lag": (b"[design]\nlags = [-1, 2]", "design.lags"),
+    "offset_out_of_range": (b"[design]\nadapter_offsets_deg = [200]", "design.adapter_offsets_deg"),
+    "zero_trials": (b"[design]\ntrials_per_track = 0", "design.trials_per_track"),
+    "same_keys": (b"[keys]\ncw = 'left'\nccw = 'left'", "keys"),
+    "unknown_key_name": (b"[keys]\ncw = 'rightarrow'", "keys.cw"),
+    "aperture_too_big": (b"[dots]\naperture_radius_deg = 20", "dots.aperture_radius_deg"),
+    "dots_below_a_pixel": (b"[dots]\ndot_size_deg = 0.01", "dots.dot_size_deg"),
+    "too_dense": (b"[dots]\ndensity_per_deg2 = 40\ndot_size_deg = 0.2", "dots.density_per_deg2"),
+    "lifetime_zero": (b"[dots]\nlifetime_frames = 0", "dots.lifetime_frames"),
+    "asymmetric_intervening": (b"[design]\nintervening_offsets_deg = [45, 90]", "design.intervening_offsets_deg"),
+    "first_adaptation_many_offsets": (b"[timing]\nfirst_adaptation_s = 20", "timing.first_adaptation_s"),
+    "constant_not_divisible": (
+        b"[procedure]\nmethod = 'constant'\nlevels_deg = [-4, 0, 4]\n[design]\ntrials_per_track = 10",
+        "design.trials_per_track",
+    ),
+    "screen_one_number": (b"[display]\nscreen_cm = [53]", "display.screen_cm"),
+}
+
+
+@pytest.mark.parametrize("case", sorted(MALFORMED))
+def test_malformed_protocol_gives_one_line_naming_file_and_field(case, tmp_path, capsys):
+    content, field = MALFORMED[case]
+    code, err, path = _check(tmp_path, capsys, content)
+    assert code == 2, err
+    lines = err.strip().splitlines()
+    assert len(lines) == 1, err
+    assert "Traceback" not in err
+    assert str(path) in lines[0] and field in lines[0], lines[0]
+
+
+def test_missing_file_and_folder_are_input_errors(tmp_path, capsys):
+    code, err, path = _check(tmp_path, capsys, None, name="nothing.toml")
+    assert code == 2 and "does not exist" in err and str(path) in err
+    code = main(["check", str(tmp_path)])
+    err = capsys.readouterr().err
+    assert code == 2 and "folder" in err and len(err.strip().splitlines()) == 1
+
+
+def test_duration_not_whole_frames_is_refused_with_nearest_values(tmp_path, capsys):
+    # 0.503 s at 120 Hz is 60.36 frames; the nearest valid values are 60 and 61 frames
+    code, err, path = _check(tmp_path, capsys, b"[timing]\ntest_s = 0.503")
+    assert code == 3
+    assert "timing.test_s" in err and "0.5 " in err and "0.508333" in err
+    assert len(err.strip().splitlines()) == 1
+
+
+def test_bad_arguments_are_one_line_exit_2(capsys):
+    assert main(["simulate"]) == 2
+    err = capsys.readouterr().err
+    assert len(err.strip().splitlines()) == 1 and "Traceback" not in err
+    assert main(["check", str(PROTOCOLS / "pilot_short.toml"), "--no-such-option"]) == 2
+
+
+def test_defaults_are_a_valid_protocol():
+    p = Protocol()
+    assert p.dots.n_dots == round(1.5 * 3.141592653589793 * 25)
+    assert frame_plan(p)["test_s"].frames == 60

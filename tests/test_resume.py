@@ -1,0 +1,112 @@
+"""Crash safety: a session killed at any instant and resumed writes the same rows.
+
+The simulated session is run as a separate process and killed with SIGKILL
+(no chance to clean up) at several points; `--resume` then continues it.
+The trial logs must equal, byte for byte, those of an uninterrupted run with
+the same seed.
+"""
+
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+
+from runner.trial_log import read_rows
+
+from conftest import PROTOCOLS, ROOT, run_cli
+
+PROTOCOL = PROTOCOLS / "offset_by_lag.toml"
+ARGS = ["--observers", "3", "--seed", "11"]
+
+
+@pytest.fixture(scope="module")
+def uninterrupted(tmp_path_factory) -> Path:
+    out = tmp_path_factory.mktemp("whole")
+    done = run_cli("simulate", PROTOCOL, "--out", out, *ARGS)
+    assert done.returncode == 0, done.stderr
+    return out
+
+
+def _logs(folder: Path) -> dict[str, bytes]:
+    return {p.name: p.read_bytes() for p in sorted(folder.glob("*.trials.csv"))}
+
+
+def _rows_in(folder: Path) -> int:
+    total = 0
+    for p in folder.glob("*.trials.csv"):
+        try:
+            total += p.read_bytes().count(b"\n")
+        except FileNotFoundError:
+            pass
+    return total
+
+
+def _kill_after(out: Path, rows: int) -> int:
+    """Start a simulation and SIGKILL it once ``rows`` lines are on disk."""
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "runner.cli", "simulate", str(PROTOCOL), "--out", str(out), *ARGS],
+        cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+    )
+    deadline = time.monotonic() + 120
+    while proc.poll() is None and _rows_in(out) < rows and time.monotonic() < deadline:
+        time.sleep(0.001)
+    os.kill(proc.pid, signal.SIGKILL)
+    proc.wait()
+    return _rows_in(out)
+
+
+@pytest.mark.parametrize("kill_at", [0, 40, 1500, 2900])
+def test_killed_and_resumed_session_writes_identical_rows(kill_at, tmp_path, uninterrupted):
+    out = tmp_path / "killed"
+    on_disk = _kill_after(out, kill_at)
+    total = sum(v.count(b"\n") for v in _logs(uninterrupted).values())
+    assert on_disk < total, "the simulation finished before it could be killed; kill earlier"
+    done = run_cli("simulate", PROTOCOL, "--out", out, *ARGS, "--resume")
+    assert done.returncode == 0, done.stderr
+    assert _logs(out) == _logs(uninterrupted)
+
+
+def test_torn_last_line_is_dropped_with_a_warning_and_the_rest_kept(tmp_path, uninterrupted):
+    out = tmp_path / "torn"
+    out.mkdir()
+    whole = _logs(uninterrupted)
+    name = sorted(whole)[0]
+    lines = whole[name].splitlines(keepends=True)
+    keep = b"".join(lines[:101])  # header + 100 rows
+    (out / name).write_bytes(keep + lines[101][:17])  # a row cut off mid-write
+    sidecar = name.replace(".trials.csv", ".session.json")
+    (out / sidecar).write_bytes((uninterrupted / sidecar).read_bytes())
+    rows = read_rows(out / name)
+    assert len(rows) == 100
+    done = run_cli("simulate", PROTOCOL, "--out", out, *ARGS, "--resume")
+    assert done.returncode == 0, done.stderr
+    assert "torn" in done.stderr
+    assert _logs(out) == whole
+
+
+def test_existing_data_is_never_overwritten(tmp_path, uninterrupted):
+    out = tmp_path / "again"
+    first = run_cli("simulate", PROTOCOLS / "pilot_short.toml", "--out", out)
+    assert first.returncode == 0
+    before = _logs(out)
+    second = run_cli("simulate", PROTOCOLS / "pilot_short.toml", "--out", out)
+    assert second.returncode == 2
+    assert len(second.stderr.strip().splitlines()) == 1 and "--resume" in second.stderr
+    assert _logs(out) == before
+
+
+def test_resume_with_a_changed_protocol_is_refused(tmp_path):
+    out = tmp_path / "changed"
+    assert run_cli("simulate", PROTOCOLS / "pilot_short.toml", "--out", out).returncode == 0
+    before = _logs(out)
+    changed = tmp_path / "changed.toml"
+    changed.write_text((PROTOCOLS / "pilot_short.toml").read_text().replace("trials_per_track = 12", "trials_per_track = 14"))
+    done = run_cli("simulate", changed, "--out", out, "--resume")
+    assert done.returncode == 2 and "protocol" in done.stderr
+    assert _logs(out) == before
