@@ -300,12 +300,12 @@ def probability_derivatives(theta, x, layout, sigmoid="gaussian"):
     return p, -keep * pdf / sigma, -keep * pdf * z, 0.5 - cdf
 
 
-def _derivatives(theta, x, n, k, layout, sigmoid):
-    """Negative log-likelihood, its gradient and two curvature matrices.
+def _derivatives(theta, x, n, k, layout, sigmoid, fisher=True):
+    """Negative log-likelihood, its gradient and curvature matrices.
 
     Returns ``(nll (B,), grad (B, P), observed (B, P, P), fisher (B, P, P))``;
     ``observed`` is the exact Hessian of the negative log-likelihood and
-    ``fisher`` its expectation (the Fisher information).
+    ``fisher`` its expectation (the Fisher information; None unless asked).
     """
     p, z, sigma, keep, cdf, pdf, dpdf = _cell_terms(theta, x, layout, sigmoid)
     q = 1.0 - p
@@ -313,32 +313,36 @@ def _derivatives(theta, x, n, k, layout, sigmoid):
     nll = -(k * np.log(p) + nk * np.log1p(-p)).sum(axis=(1, 2))
     d1 = k / p - nk / q                 # d loglik / dp
     d2 = -(k / (p * p) + nk / (q * q))  # d2 loglik / dp2
-    info = n / (p * q)                  # Fisher weight of p
-    first = [-keep * pdf / sigma, -keep * pdf * z]
-    second = {(0, 0): keep * dpdf / (sigma * sigma),
-              (0, 1): keep * (z * dpdf + pdf) / sigma,
-              (1, 1): keep * (z * z * dpdf + z * pdf)}
+    kp = keep * pdf
+    first = [-kp / sigma, -kp * z]
+    # second derivatives of p, in the order of _SECOND_PAIRS
+    second = [keep * dpdf / (sigma * sigma), keep * (z * dpdf + pdf) / sigma,
+              keep * z * (z * dpdf + pdf)]
     if layout.free_lapse:
         first.append(0.5 - cdf)
-        second[(0, 2)] = pdf / sigma
-        second[(1, 2)] = z * pdf
+        second += [pdf / sigma, z * pdf]
     m = len(first)
+    dmat = np.stack(first, axis=2)                                   # (B, C, m, L)
     b, c = theta.shape[0], x.shape[1]
     grad = np.zeros((b, c, 3))
+    grad[..., :m] = (dmat @ d1[..., None])[..., 0]
     obs = np.zeros((b, c, 3, 3))
-    fis = np.zeros((b, c, 3, 3))
-    for i in range(m):
-        grad[..., i] = (d1 * first[i]).sum(-1)
-        for j in range(i, m):
-            prod = first[i] * first[j]
-            o = (d2 * prod).sum(-1)
-            if (i, j) in second:
-                o += (d1 * second[(i, j)]).sum(-1)
-            f = -(info * prod).sum(-1)
-            obs[..., i, j] = obs[..., j, i] = o
-            fis[..., i, j] = fis[..., j, i] = f
-    return (nll, -layout.gather_gradient(grad),
-            -layout.gather_hessian(obs), -layout.gather_hessian(fis))
+    obs[..., :m, :m] = (dmat * d2[:, :, None, :]) @ np.swapaxes(dmat, -1, -2)
+    extra = (np.stack(second, axis=2) @ d1[..., None])[..., 0]      # (B, C, len(second))
+    for s, (i, j) in enumerate(_SECOND_PAIRS[:len(second)]):
+        obs[..., i, j] += extra[..., s]
+        if i != j:
+            obs[..., j, i] += extra[..., s]
+    fis = None
+    if fisher:
+        info = n / (p * q)                  # Fisher weight of p
+        fis = np.zeros((b, c, 3, 3))
+        fis[..., :m, :m] = -(dmat * info[:, :, None, :]) @ np.swapaxes(dmat, -1, -2)
+        fis = -layout.gather_hessian(fis)
+    return nll, -layout.gather_gradient(grad), -layout.gather_hessian(obs), fis
+
+
+_SECOND_PAIRS = [(0, 0), (0, 1), (1, 1), (0, 2), (1, 2)]
 
 
 # --------------------------------------------------------------------------
@@ -428,23 +432,35 @@ def _solve_stack(h: np.ndarray, g: np.ndarray) -> np.ndarray:
     return d
 
 
-def _newton_direction(obs, fis, grad, fixed):
-    """Descent direction with fixed parameters held (projected Newton)."""
-    p = grad.shape[1]
+def _hold(h, fixed):
+    """Rows and columns of fixed parameters replaced by those of the identity."""
+    p = h.shape[-1]
     eye = np.eye(p, dtype=bool)[None]
     mask = fixed[:, :, None] | fixed[:, None, :]
+    return np.where(mask, 0.0, h) + np.where(eye & fixed[:, :, None], 1.0, 0.0)
+
+
+def _newton_direction(obs, grad, fixed):
+    """Projected Newton direction with the exact Hessian.
+
+    Returns the direction, the gradient with fixed parameters zeroed, and the
+    rows where the direction is not a descent direction.
+    """
     g = np.where(fixed, 0.0, grad)
-    obs = np.where(mask, 0.0, obs) + np.where(eye & fixed[:, :, None], 1.0, 0.0)
-    fis = np.where(mask, 0.0, fis) + np.where(eye & fixed[:, :, None], 1.0, 0.0)
+    d = -_solve_stack(_hold(obs, fixed), g)
+    slope = (g * d).sum(axis=1)
+    uphill = ~(np.isfinite(d).all(axis=1) & (slope < 0)) & (np.abs(g).max(axis=1) > 0)
+    return np.where(np.isfinite(d), d, 0.0), g, uphill
+
+
+def _fisher_direction(fis, g, fixed):
+    """Fisher-scoring direction, with a tiny ridge for non-identifiable directions."""
+    p = g.shape[1]
+    fis = _hold(fis, fixed)
     scale = np.abs(np.diagonal(fis, axis1=1, axis2=2)).max(axis=1)
     fis = fis + (1e-10 * (1.0 + scale))[:, None, None] * np.eye(p)[None]
-    d_obs = -_solve_stack(obs, g)
-    d_fis = -_solve_stack(fis, g)
-    slope = (g * d_obs).sum(axis=1)
-    use_obs = np.isfinite(d_obs).all(axis=1) & (slope < 0)
-    d = np.where(use_obs[:, None], d_obs, d_fis)
-    d = np.where(np.isfinite(d), d, 0.0)
-    return d, g
+    d = -_solve_stack(fis, g)
+    return np.where(np.isfinite(d), d, 0.0)
 
 
 def solve_batch(theta0, x, n, k, layout: Layout, lo, hi, sigmoid="gaussian",
@@ -491,11 +507,17 @@ def solve_batch(theta0, x, n, k, layout: Layout, lo, hi, sigmoid="gaussian",
         th = theta[todo]
         xa, na, ka = _rows(x, todo), _rows(n, todo), k[todo]
         la, ha = _rows(lo, todo), _rows(hi, todo)
-        f0, grad, obs, fis = _derivatives(th, xa, na, ka, layout, sigmoid)
+        f0, grad, obs, _ = _derivatives(th, xa, na, ka, layout, sigmoid, fisher=False)
         nll[todo] = f0
         room = 1e-9 * (ha - la)
         fixed = ((th <= la + room) & (grad > 0)) | ((th >= ha - room) & (grad < 0))
-        d, g = _newton_direction(obs, fis, grad, fixed)
+        d, g, uphill = _newton_direction(obs, grad, fixed)
+        if uphill.any():
+            # where the exact Hessian does not give a descent direction, use
+            # the Fisher information (positive semi-definite): Fisher scoring
+            u = np.flatnonzero(uphill)
+            fis = _derivatives(th[u], _rows(xa, u), _rows(na, u), ka[u], layout, sigmoid)[3]
+            d[u] = _fisher_direction(fis, g[u], fixed[u])
         decrement = -(g * d).sum(axis=1)
         done = decrement < tol
         converged[todo[done]] = True

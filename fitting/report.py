@@ -83,6 +83,7 @@ class FitReport:
     seed: int
     out_dir: str = ""
     files: list = field(default_factory=list)
+    group: dict | None = None
 
     def summary(self) -> str:
         """Plain-text report for the terminal."""
@@ -261,10 +262,8 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
             extras["decay_detail"] = pd.concat([extras["decay_detail"], group["decay_detail"]],
                                                ignore_index=True)
         notes[GROUP] = gnotes
-    report = FitReport(*(tables[k][MAIN_TABLES[k]] for k in MAIN_TABLES), extras, analyses, notes,
-                       opts, int(seed))
-    report.group = group
-    return report
+    return FitReport(*(tables[k][MAIN_TABLES[k]] for k in MAIN_TABLES), extras, analyses, notes,
+                     opts, int(seed), group=group)
 
 
 def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
@@ -325,7 +324,7 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
     trials = read_logs(paths, include_bad_timing, include_practice)
     report = fit_trials(trials, n_boot, seed, lapse, spread, progress, sigmoid=sigmoid,
                         interval=interval, level=level, lapse_max=lapse_max)
-    # draw figures before writing any table, so a failure leaves out_dir as it was
+    # all fitting is done; only now is anything written
     fig_files: list[str] = []
     if figures:
         from .figures import make_figures

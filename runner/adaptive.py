@@ -439,11 +439,10 @@ def _json_float(value: float) -> float | None:
 # ---------------------------------------------------------------- Bayesian
 
 
-def _span(name: str, lo: float, hi: float, step: float) -> np.ndarray:
-    count = (hi - lo) / step
-    if abs(count - round(count)) > 1e-9 * max(1.0, count):
-        raise ValueError(f"{name}: the range {lo:g}..{hi:g} is not a whole number of steps of {step:g}")
-    return np.linspace(lo, hi, int(round(count)) + 1)
+def _span(lo: float, hi: float, step: float) -> np.ndarray:
+    """``lo, lo + step, ...`` up to ``hi`` (included when it falls on a step, within rounding)."""
+    count = int(math.floor((hi - lo) / step + 1e-9))
+    return lo + step * np.arange(count + 1)
 
 
 @dataclass(frozen=True)
@@ -456,7 +455,8 @@ class EntropyGrid:
     Parameters
     ----------
     pse_min, pse_max, pse_step : float
-        PSE (μ) grid, deg: ``pse_min, pse_min + pse_step, ..., pse_max``.
+        PSE (μ) grid, deg: ``pse_min, pse_min + pse_step, ...`` up to
+        ``pse_max`` (included when it falls on a step).
     spread_min, spread_max : float
         Spread (σ) grid limits, deg, ``0 < spread_min < spread_max``.
     spread_count : int
@@ -464,7 +464,7 @@ class EntropyGrid:
     lapses : tuple of float
         Lapse (λ) grid points, each in 0..1 (exclusive of 1).
     level_min, level_max, level_step : float
-        Levels the track may propose, deg.
+        Levels the track may propose, deg, spaced like the PSE grid.
 
     Notes
     -----
@@ -497,15 +497,16 @@ class EntropyGrid:
         object.__setattr__(self, "lapses", lapses)
         for axis in ("pse", "level"):
             lo, hi, step = (getattr(self, f"{axis}_{k}") for k in ("min", "max", "step"))
-            if not (lo < hi and step > 0):
-                raise ValueError(f"grid.{axis}_step: expected {axis}_min < {axis}_max and a step > 0")
-            _span(f"grid.{axis}_step", lo, hi, step)
+            if not lo < hi:
+                raise ValueError(f"grid.{axis}_min: expected {axis}_min < {axis}_max, got {lo!r} and {hi!r}")
+            if not step > 0:
+                raise ValueError(f"grid.{axis}_step: expected a step > 0, got {step!r}")
         if not 0 < self.spread_min < self.spread_max:
             raise ValueError(f"grid.spread_min: expected 0 < spread_min < spread_max, got {self.spread_min!r}")
 
     def pse_values(self) -> np.ndarray:
         """PSE grid points (deg)."""
-        return _span("grid.pse_step", self.pse_min, self.pse_max, self.pse_step)
+        return _span(self.pse_min, self.pse_max, self.pse_step)
 
     def spread_values(self) -> np.ndarray:
         """Spread grid points (deg), log-spaced."""
@@ -517,7 +518,7 @@ class EntropyGrid:
 
     def level_values(self) -> np.ndarray:
         """Levels the track chooses from (deg)."""
-        return _span("grid.level_step", self.level_min, self.level_max, self.level_step)
+        return _span(self.level_min, self.level_max, self.level_step)
 
 
 @lru_cache(maxsize=8)
@@ -589,8 +590,9 @@ class EntropyTrack:
     before the likelihood: the precomputed table holds Φ((x − μ)/σ) for
     levels × (μ, σ) only, and for each outcome the (μ, σ) marginal is
     ``a + b·Φ`` with ``a = Σ_λ p·λ/2`` and ``b = Σ_λ p·(1 − λ)``. The
-    posterior is kept as log-probabilities; updates use ``log_ndtr`` and
-    accept any level, on the level list or not. Entropies are in nats.
+    posterior is kept as log-probabilities (``log_ndtr`` where λ = 0, so no
+    likelihood underflows); updates accept any level, on the level list or
+    not. Entropies are in nats.
     """
 
     kind = "bayesian"
@@ -610,9 +612,9 @@ class EntropyTrack:
         self._lapse = grid.lapse_values()
         self._level_values = grid.level_values()
         self._table = _cdf_table(grid)
-        with np.errstate(divide="ignore"):
-            self._log_half_lapse = np.log(self._lapse / 2.0)
-        self._log_keep = np.log1p(-self._lapse)
+        self._half_lapse = self._lapse / 2.0
+        self._keep = 1.0 - self._lapse
+        self._zero_lapse = np.flatnonzero(self._lapse == 0.0)
         self._log_post = np.zeros((self._mu.size, self._sigma.size, self._lapse.size))
         self._levels: list[float] = []
         self._responses: list[int] = []
@@ -660,8 +662,8 @@ class EntropyTrack:
             One value per entry of ``grid.level_values()``.
         """
         p = self.posterior()
-        a = p @ (self._lapse / 2.0)  # (μ, σ)
-        b = p @ (1.0 - self._lapse)
+        a = p @ self._half_lapse  # (μ, σ)
+        b = p @ self._keep
         joint = p.sum(axis=2)
         # unnormalised target marginal after each answer, one row per level
         if self._target == "pse":
@@ -717,8 +719,14 @@ class EntropyTrack:
         if response is None:
             return
         z = (level - self._mu[:, None]) / self._sigma[None, :]
-        log_cdf = log_ndtr(z if response == 1 else -z)  # P(ccw) uses Φ(−z) = 1 − Φ(z)
-        self._log_post += np.logaddexp(self._log_half_lapse, self._log_keep + log_cdf[:, :, None])
+        if response == 0:
+            z = -z  # P(ccw) uses Φ(−z) = 1 − Φ(z)
+        with np.errstate(divide="ignore"):
+            log_like = np.log(self._half_lapse + self._keep * ndtr(z)[:, :, None])
+        if self._zero_lapse.size:
+            # with λ = 0 the likelihood is Φ alone, which underflows far out: take its log directly
+            log_like[:, :, self._zero_lapse] = log_ndtr(z)[:, :, None]
+        self._log_post += log_like
         self._log_post -= self._log_post.max()
         self._levels.append(level)
         self._responses.append(response)

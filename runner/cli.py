@@ -152,6 +152,14 @@ def cmd_compare(args) -> int:
     return EXIT_OK
 
 
+def cmd_demo(args) -> int:
+    from runner.demo import run_demo
+
+    page = run_demo(args.out)
+    print(f"demo written to {args.out}; open {page}")
+    return EXIT_OK
+
+
 def cmd_display_test(args) -> int:
     from runner import display
 
@@ -224,6 +232,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", required=True, help="output folder")
     p.add_argument("--interpolate", action="store_true", help="interpolate predictions over adapter offsets within a lag")
     p.set_defaults(func=cmd_compare)
+
+    p = sub.add_parser("demo", help="simulate, fit, compare and report on the default protocol (invented data)")
+    p.add_argument("--out", default="results_demo", help="output folder (default results_demo)")
+    p.set_defaults(func=cmd_demo)
 
     p = sub.add_parser("display-test", help="measure refresh rate, frame jitter and dropped frames")
     protocol_arg(p, optional=True)

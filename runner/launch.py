@@ -24,6 +24,7 @@ from runner.headless import HeadlessPresenter
 from runner.observers import ObserverModel, SimulatedObserver, draw_observers
 from runner.protocol import Protocol
 from runner.session import BlockRun, Console, SessionResult
+from runner.stream import StreamObserver, StreamRun
 from runner.trial_log import TrialLog, log_paths, read_rows
 
 if sys.version_info >= (3, 11):
@@ -158,7 +159,8 @@ def simulate(
     """
     out = Path(out_dir)
     models = draw_observers(model, n_observers, seed)
-    runs = [BlockRun(protocol, derive_seed(seed, i), f"sim{i + 1:02d}", session) for i in range(n_observers)]
+    loop, observer_kind = (StreamRun, StreamObserver) if protocol.stream is not None else (BlockRun, SimulatedObserver)
+    runs = [loop(protocol, derive_seed(seed, i), f"sim{i + 1:02d}", session) for i in range(n_observers)]
     console = SimulationConsole(sum(r.expected_rows() for r in runs), "simulating", show=progress)
     paths = []
     try:
@@ -180,7 +182,7 @@ def simulate(
             }
             sidecar = start_sidecar(log, base, resume, protocol_text)
             console.skip(len(log.rows))
-            answers = SimulatedObserver(observer_model, (run.seed, 5), protocol.display.refresh_hz)
+            answers = observer_kind(observer_model, (run.seed, 5), protocol.display.refresh_hz)
             presenter = HeadlessPresenter(protocol.display.refresh_hz)
             try:
                 result = run.run(presenter, answers, log.append, log.rows, screen_texts(protocol, ""), console, str(log.path))
@@ -243,7 +245,7 @@ def run_on_screen(
     sidecar = start_sidecar(log, base, resume, protocol_text)
     if resume:
         sidecar["parts"][-1].update({k: v for k, v in extra.items() if k in ("measured_refresh_hz", "acknowledged")})
-    run = BlockRun(protocol, seed, observer, session)
+    run = (StreamRun if protocol.stream is not None else BlockRun)(protocol, seed, observer, session)
     try:
         result = run.run(presenter, answers, log.append, log.rows, screen_texts(protocol, caution), console, str(log.path))
     finally:

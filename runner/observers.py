@@ -92,6 +92,16 @@ class ObserverModel:
         z = adapter_offset_deg / self.peak_offset_deg
         return self.amplitude_deg * z * math.exp(0.5 - 0.5 * z * z) * math.exp(-(lag or 0) / self.decay_periods)
 
+    def nback_shift_deg(self, preceding_offsets_deg) -> float:
+        """PSE shift of a stream test: the decaying DoG shifts of its preceding periods, summed.
+
+        ``Σ_{n=1..K} A · (Δ_n / w) · exp(½ − ½ (Δ_n / w)²) · exp(−(n − 1) / τ)``
+        with ``Δ_n`` the offset of the n-th preceding period
+        (``preceding_offsets_deg[0]`` is the 1-back period), i.e. the sum of
+        :meth:`shift_deg` at lag ``k = n − 1``.
+        """
+        return sum(self.shift_deg(float(offset), n) for n, offset in enumerate(preceding_offsets_deg))
+
     def p_cw(self, test_offset_deg: float, adapter_offset_deg: float | None, lag: int | None) -> float:
         """Probability of a clockwise answer."""
         mu = self.pse_deg + self.shift_deg(adapter_offset_deg, lag)

@@ -111,7 +111,7 @@ class TrialPlan:
     index : int
         1-based position in the session (the log's ``trial`` column).
     condition : str
-        ``baseline``, ``practice`` or e.g. ``adapt+15_lag2``.
+        ``baseline`` or e.g. ``adapt+15_lag2`` (practice trials too: see ``practice``).
     adapter_offset_deg : float or None
         None for baseline trials.
     lag : int or None

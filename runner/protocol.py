@@ -22,6 +22,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 
 from fitting.errors import InputError
 from runner import geometry, timing
+from runner.stream_settings import StreamSettings, check_stream
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -405,6 +406,9 @@ class Protocol(_Section):
         The judged direction (90 = upward).
     display, dots, timing, design, procedure, keys, safety
         The sections described in their own classes.
+    stream : StreamSettings or None
+        Present (a ``[stream]`` section) for a continuous-stream block, absent
+        for discrete adapt–test trials; see :mod:`runner.stream_settings`.
     """
 
     title: str = Field("Direction after-effect", min_length=1, max_length=200)
@@ -416,6 +420,7 @@ class Protocol(_Section):
     procedure: ProcedureSettings = Field(default_factory=ProcedureSettings)
     keys: KeySettings = Field(default_factory=KeySettings)
     safety: SafetySettings = Field(default_factory=SafetySettings)
+    stream: StreamSettings | None = None
 
 
 def frame_plan(protocol: Protocol) -> dict[str, timing.FrameCount]:
@@ -486,6 +491,8 @@ def _cross_checks(p: Protocol) -> None:
         raise InputError("", "procedure.pse_range_deg", "expected a PSE grid that overlaps bounds_deg")
     if p.design.practice_offset_deg > max(abs(lo), abs(hi)):
         raise InputError("", "design.practice_offset_deg", "expected a practice offset inside procedure.bounds_deg")
+    if p.stream is not None:
+        check_stream(p)
 
 
 def _field_of(error: dict) -> str:

@@ -149,7 +149,7 @@ class BlockRun:
         cond = slot.condition
         return TrialPlan(
             index=index,
-            condition="practice" if slot.practice else cond.name,
+            condition=cond.name,
             adapter_offset_deg=cond.adapter_offset_deg,
             lag=cond.lag,
             track=slot.track,

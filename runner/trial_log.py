@@ -30,6 +30,9 @@ from pathlib import Path
 from fitting.errors import InputError
 
 #: Columns of the trial log, in order.  The first twelve are DESIGN.md's.
+#: ``block`` is ``stream`` for the tests of a continuous stream (empty for
+#: discrete trials); ``preceding_offsets_deg`` holds, for a stream test, the
+#: offsets of its 1st, 2nd, ... Kth preceding periods, ``;``-separated.
 COLUMNS = (
     "observer",
     "session",
@@ -49,6 +52,8 @@ COLUMNS = (
     "test_direction_deg",
     "intervening_offsets_deg",
     "procedure",
+    "block",
+    "preceding_offsets_deg",
 )
 
 _ID = re.compile(r"^[A-Za-z0-9_-]{1,64}$")

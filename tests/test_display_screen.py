@@ -1,0 +1,257 @@
+"""The on-screen presenter in a real psychopy window (Xvfb, Mesa software GL).
+
+What the observer sees is read back from the X server after each flip (the
+window's pixels as the server holds them, not psychopy's own buffers) and
+compared with what the trial plan says; the keyboard is driven with
+synthetic key events from xdotool.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import threading
+
+import numpy as np
+import pytest
+from conftest_display import DATA, find_window, require_xdotool, send_key, x_display  # noqa: F401
+
+from runner import geometry
+from runner.plan import Period, TrialPlan, motion
+from runner.protocol import load_protocol
+
+pytestmark = pytest.mark.display
+
+PROBE = DATA / "display_probe.toml"
+
+
+@pytest.fixture(scope="module")
+def probe():
+    return load_protocol(PROBE)
+
+
+@pytest.fixture(scope="module")
+def screen(x_display, probe):  # noqa: F811 - fixture imported above
+    from runner import display
+
+    presenter, answers = display.open_screen(probe, windowed=True, allow_refresh_mismatch=True, console=None)
+    yield presenter, answers
+    presenter.close()
+
+
+def grab(window) -> np.ndarray:
+    """The window's pixels as the X server holds them: (rows, cols) grey 0..255."""
+    from Xlib import X
+    from Xlib import display as xdisplay
+
+    conn = xdisplay.Display(os.environ["DISPLAY"])
+    try:
+        handle = conn.create_resource_object("window", window.winHandle._window)
+        geom = handle.get_geometry()
+        raw = handle.get_image(0, 0, geom.width, geom.height, X.ZPixmap, 0xFFFFFFFF)
+        pixels = np.frombuffer(raw.data, np.uint8).reshape(geom.height, geom.width, 4)[..., :3]
+        return pixels.astype(float).mean(axis=2)
+    finally:
+        conn.close()
+
+
+def shift_between(a: np.ndarray, b: np.ndarray) -> tuple[float, float]:
+    """Displacement (dx right, dy up; px) that carries image ``a`` onto ``b``.
+
+    Peak of the FFT cross-correlation, refined to sub-pixel precision by a
+    parabola through the peak and its neighbours on each axis.
+    """
+    fa = np.fft.rfft2(a - a.mean())
+    fb = np.fft.rfft2(b - b.mean())
+    corr = np.fft.irfft2(np.conj(fa) * fb, s=a.shape)
+    r, c = np.unravel_index(np.argmax(corr), corr.shape)
+    rows, cols = corr.shape
+
+    def vertex(m1, m0, p1):
+        den = m1 - 2 * m0 + p1
+        return 0.0 if den == 0 else 0.5 * (m1 - p1) / den
+
+    dr = r + vertex(corr[r - 1, c], corr[r, c], corr[(r + 1) % rows, c])
+    dc = c + vertex(corr[r, c - 1], corr[r, c], corr[r, (c + 1) % cols])
+    dr = dr - rows if dr > rows / 2 else dr
+    dc = dc - cols if dc > cols / 2 else dc
+    return float(dc), float(-dr)  # image rows grow downwards; y points up
+
+
+def probe_trial(protocol, test_offset_deg: float, frames: int = 3) -> TrialPlan:
+    ref = protocol.reference_deg
+    periods = (
+        motion("adapter", frames, ref, -30.0),
+        motion("test", frames, ref, test_offset_deg),
+    )
+    return TrialPlan(1, "probe", -30.0, 0, 0, test_offset_deg, (), False, periods, (7, 3, 1))
+
+
+def record(presenter, trial) -> tuple[list[tuple[Period, int, np.ndarray]], object]:
+    """Play a trial, grabbing the picture after every flip."""
+    shots = []
+    presenter.frame_hook = lambda period, i: shots.append((period, i, grab(presenter.window)))
+    try:
+        playback = presenter.play(trial)
+    finally:
+        presenter.frame_hook = None
+    return shots, playback
+
+
+def test_picture_moves_as_the_plan_says(screen, probe):
+    """Two successive frames of a coherent field: direction within 3 deg, speed within 5 %."""
+    presenter, _ = screen
+    trial = probe_trial(probe, test_offset_deg=60.0)  # direction 90 - 60 = 30 deg
+    assert trial.test_direction_deg == pytest.approx(30.0)
+    shots, _ = record(presenter, trial)
+    tests = [img for period, _, img in shots if period.role == "test"]
+    assert len(tests) == 3
+    d = probe.display
+    h, w = tests[0].shape
+    half = int((probe.dots.aperture_radius_deg + 1.0) * d.px_per_deg)  # the aperture, not the light patch
+    crop = np.s_[h // 2 - half:h // 2 + half, w // 2 - half:w // 2 + half]
+    for first, second in zip(tests, tests[1:]):
+        assert first[crop].max() > 100, "no dots on screen"
+        dx, dy = shift_between(first[crop], second[crop])
+        direction = math.degrees(math.atan2(dy, dx)) % 360
+        # px -> deg with the exact visual angle θ = 2·atan(s / 2d) (DESIGN.md, geometry)
+        step_deg = geometry.px_to_deg(math.hypot(dx, dy), d.distance_cm, d.screen_cm[0], d.screen_px[0])
+        speed = step_deg * d.refresh_hz  # one kinematic step per nominal frame
+        assert abs((direction - trial.test_direction_deg + 180) % 360 - 180) < 3.0
+        assert speed == pytest.approx(probe.dots.speed_deg_s, rel=0.05)
+
+
+def test_light_patch_size_and_timing(screen, probe):
+    """The light patch: white only on test frames, flush with the lower-left corner, 2 deg wide."""
+    presenter, _ = screen
+    shots, _ = record(presenter, probe_trial(probe, test_offset_deg=10.0))
+    d = probe.display
+    side_deg = probe.safety.photodiode_patch_deg
+    for period, _, img in shots:
+        corner = img[-200:, :200]  # lower-left, far outside the aperture
+        white = corner > 250
+        if period.role != "test":
+            assert not white.any(), "the light patch was on outside the test"
+            continue
+        rows = np.flatnonzero(white.any(axis=1))
+        cols = np.flatnonzero(white.any(axis=0))
+        assert rows[-1] == corner.shape[0] - 1 and cols[0] == 0, "the patch is not in the corner"
+        side_px = (cols[-1] - cols[0] + 1, rows[-1] - rows[0] + 1)
+        # θ = 2·atan(s / 2d) solved for s (DESIGN.md, geometry references)
+        expected_px = 2 * d.distance_cm * math.tan(math.radians(side_deg) / 2) * d.screen_px[0] / d.screen_cm[0]
+        for s in side_px:
+            assert abs(s - expected_px) <= 1.0
+            # at 57 cm, 1 cm on screen is about 1 deg (common practice, no source)
+            assert s / (d.screen_px[0] / d.screen_cm[0]) == pytest.approx(side_deg, rel=0.02)
+
+
+def test_monitor_geometry_follows_visual_angle(x_display):  # noqa: F811
+    """psychopy's deg units on our in-memory monitor agree with θ = 2·atan(s / 2d)."""
+    from runner.display.window import make_monitor, px_per_deg
+
+    base = load_protocol(PROBE)
+    for distance in (40.0, 57.0, 114.0):
+        proto = base.model_copy(update={"display": base.display.model_copy(update={"distance_cm": distance})})
+        monitor = make_monitor(proto)
+        assert monitor.getDistance() == distance and monitor.getWidth() == 20.0
+        assert list(monitor.getSizePix()) == [800, 600]
+        # 1 deg at the centre, exact: s = 2·d·tan(0.5 deg) (DESIGN.md, geometry references)
+        exact = 2 * distance * math.tan(math.radians(0.5)) * 800 / 20.0
+        assert px_per_deg(monitor) == pytest.approx(exact, rel=1e-3)
+        assert px_per_deg(monitor) == pytest.approx(proto.display.px_per_deg, rel=1e-3)
+    # at 57 cm, 1 cm is about 1 deg (common practice, no source): 40 px/cm -> about 40 px/deg
+    assert px_per_deg(make_monitor(base)) == pytest.approx(40.0, rel=0.01)
+
+
+def test_every_period_runs_its_frames(screen, probe):
+    """Each period is shown for exactly its frame count; flips are timed and audited."""
+    presenter, _ = screen
+    ref = probe.reference_deg
+    periods = (
+        Period("baseline", "static", 4),
+        Period("gap", "blank", 2),
+        motion("intervening", 5, ref, 45.0),
+        motion("test", 6, ref, -5.0),
+    )
+    trial = TrialPlan(2, "probe", None, None, None, -5.0, (), False, periods, (7, 3, 2))
+    seen = []
+    presenter.frame_hook = lambda period, i: seen.append((period.role, i))
+    try:
+        playback = presenter.play(trial)
+    finally:
+        presenter.frame_hook = None
+    assert seen == [(p.role, i) for p in periods for i in range(p.frames)]
+    assert playback.n_frames == 17 and not playback.aborted
+    assert playback.test_offset_s > playback.test_onset_s
+    summary = presenter.timing_summary()
+    assert summary["paced_without_vsync"] == (summary["measured_refresh_hz"] > 1.5 * probe.display.refresh_hz)
+    assert summary["frame_intervals"] >= 18 and summary["dropped_frames"] >= playback.dropped_frames
+
+
+def _press_later(key: str, delay_s: float = 0.4) -> threading.Timer:
+    window = find_window("aftershift", dict(os.environ))
+    timer = threading.Timer(delay_s, send_key, (window, key, dict(os.environ)))
+    timer.start()
+    return timer
+
+
+@pytest.mark.parametrize(("key", "expected"), [("right", 1), ("left", 0)])
+def test_answer_keys(screen, probe, key, expected):
+    """Synthetic arrow keys become answers, timed from the test onset."""
+    require_xdotool()
+    presenter, answers = screen
+    trial = probe_trial(probe, test_offset_deg=5.0)
+    playback = presenter.play(trial)
+    timer = _press_later(key)
+    answer = answers.answer(trial, playback, window_frames=240)
+    timer.join()
+    assert answer.response_cw == expected and not answer.quit
+    test_s = 3 / probe.display.refresh_hz
+    assert test_s < answer.rt_s < 4.0
+
+
+def test_no_key_is_a_missed_answer(screen, probe):
+    presenter, answers = screen
+    trial = probe_trial(probe, test_offset_deg=5.0)
+    answer = answers.answer(trial, presenter.play(trial), window_frames=6)
+    assert answer.response_cw is None and answer.rt_s is None and not answer.quit
+
+
+def test_quit_and_pause_keys(screen, probe):
+    """Escape ends the answer wait with quit; the pause key is kept for the session loop."""
+    require_xdotool()
+    presenter, answers = screen
+    presenter.requests()
+    timer = _press_later("p", 0.2)
+    assert presenter.blank(40) is True
+    timer.join()
+    assert presenter.requests() == {"pause"}
+    assert presenter.requests() == set()
+    trial = probe_trial(probe, test_offset_deg=5.0)
+    playback = presenter.play(trial)
+    timer = _press_later("escape")
+    answer = answers.answer(trial, playback, window_frames=240)
+    timer.join()
+    assert answer.quit and answer.response_cw is None
+
+
+def test_text_waits_for_proceed(screen):
+    require_xdotool()
+    presenter, _ = screen
+    timer = _press_later("space")
+    assert presenter.show_text("Press space to go on.") is True
+    timer.join()
+    timer = _press_later("escape")
+    assert presenter.show_text("Press space to go on.") is False
+    timer.join()
+
+
+def test_refresh_mismatch_is_refused(x_display, probe):  # noqa: F811
+    """A display that does not refresh at the protocol's rate is refused unless overridden."""
+    from runner import display, safety
+
+    odd = probe.model_copy(update={"display": probe.display.model_copy(update={"refresh_hz": 47.0})})
+    with pytest.raises(safety.SafetyRefusal) as caught:
+        display.open_screen(odd, windowed=True, allow_refresh_mismatch=False, console=None)
+    assert caught.value.kind == "timing"
+    assert safety.REFRESH_OVERRIDE_OPTION in str(caught.value)
