@@ -25,7 +25,7 @@ Choices
   finite-difference probes together): a grid search for the nonlinear
   parameters with the amplitude profiled out (closed form), then a bounded
   Levenberg–Marquardt refinement.
-* Bounds, honestly reported: ``w`` lies in ``[min|D| / 4, 2 max|D|]`` (a
+* Bounds, honestly reported: ``w`` lies in ``[min|D| / 2, 2 max|D|]`` (a
   peak outside that is not identifiable from the tested offsets), ``tau``
   in ``[0.01, 1000]`` periods.  An estimate or a confidence limit on a bound
   means "at least / at most this"; :func:`bound_note` words it.
@@ -52,7 +52,7 @@ def peak_bounds(offsets) -> tuple[float, float]:
     a = a[a > 0]
     if a.size == 0:
         return 1.0, 2.0
-    return float(a.min() / 4.0), float(2.0 * a.max())
+    return float(a.min() / 2.0), float(2.0 * a.max())
 
 
 def _shape(offsets, log_peak):

@@ -6,8 +6,9 @@ Per observer:
   adapter offsets, the baseline on top): proportion of clockwise answers at
   each level (dot area = trials), the fitted function, its 95 % band from the
   bootstrap replicates, and the baseline's fitted function for comparison;
-* ``tracks_<obs>``: the test offset trial by trial in every track
-  (filled = "clockwise" answer, open = "counter-clockwise");
+* ``tracks_<obs>``: the test offset trial by trial in every track of every
+  session (colour = track; filled = "clockwise" answer, open =
+  "counter-clockwise");
 * ``aftereffect_<obs>``: PSE shift against adapter offset, one colour per
   lag, with intervals and the fitted DoG curve;
 * ``decay_<obs>``: DoG amplitude per lag with intervals and the fitted
@@ -93,7 +94,7 @@ def _panel_grid(conds):
 
 def _grid_axes(plt, nrows, ncols, panel_h, sharex):
     """A grid of panels with fixed margins (in inches; much faster than automatic layout)."""
-    panel_w, left, right, top, bottom, gap_w, gap_h = 1.9, 0.62, 0.12, 0.62, 0.5, 0.3, 0.62
+    panel_w, left, right, top, bottom, gap_w, gap_h = 1.9, 0.62, 0.12, 0.85, 0.5, 0.3, 0.62
     width = left + right + ncols * panel_w + (ncols - 1) * gap_w
     height = top + bottom + nrows * panel_h + (nrows - 1) * gap_h
     fig, axes = plt.subplots(nrows, ncols, figsize=(width, height), sharex=sharex, sharey=True,
@@ -197,8 +198,9 @@ def tracks_figure(a):
             sel = trials[trials["condition"] == row["condition"]].copy()
             sel["_s"] = sel["session"].astype(str)
             sel = sel.sort_values(["_s", "trial"], kind="mergesort")
-            for t, (track, tr) in enumerate(sel.groupby("track", sort=True)):
-                colour = _LAG_COLOURS[t % len(_LAG_COLOURS)]
+            tracks = sorted(sel["track"].unique())
+            for (session, track), tr in sel.groupby(["_s", "track"], sort=True):
+                colour = _LAG_COLOURS[tracks.index(track) % len(_LAG_COLOURS)]
                 n = np.arange(1, len(tr) + 1)
                 y = tr["test_offset_deg"].to_numpy(float)
                 cw = tr["response_cw"].to_numpy(float) == 1

@@ -500,15 +500,24 @@ def solve_batch(theta0, x, n, k, layout: Layout, lo, hi, sigmoid="gaussian",
     nll = np.full(b, np.nan)
     converged = np.zeros(b, dtype=bool)
     iterations = np.zeros(b, dtype=int)
+    # derivatives at the current point, kept from the line search when its
+    # first (full) step is accepted, so each Newton step costs one evaluation
+    grad_c = np.empty((b, layout.n_params))
+    obs_c = np.empty((b, layout.n_params, layout.n_params))
+    cached = np.zeros(b, dtype=bool)
     todo = np.arange(b)
     for _ in range(max_iter):
         if todo.size == 0:
             break
+        need = todo[~cached[todo]]
+        if need.size:
+            f, g_, o_, _ = _derivatives(theta[need], _rows(x, need), _rows(n, need), k[need],
+                                        layout, sigmoid, fisher=False)
+            nll[need], grad_c[need], obs_c[need], cached[need] = f, g_, o_, True
         th = theta[todo]
         xa, na, ka = _rows(x, todo), _rows(n, todo), k[todo]
         la, ha = _rows(lo, todo), _rows(hi, todo)
-        f0, grad, obs, _ = _derivatives(th, xa, na, ka, layout, sigmoid, fisher=False)
-        nll[todo] = f0
+        f0, grad, obs = nll[todo], grad_c[todo], obs_c[todo]
         room = 1e-9 * (ha - la)
         fixed = ((th <= la + room) & (grad > 0)) | ((th >= ha - room) & (grad < 0))
         d, g, uphill = _newton_direction(obs, grad, fixed)
@@ -525,18 +534,27 @@ def solve_batch(theta0, x, n, k, layout: Layout, lo, hi, sigmoid="gaussian",
         # backtracking line search, all moving rows together
         step = np.ones(move.size)
         accepted = np.zeros(move.size, dtype=bool)
-        for _ls in range(40):
+        for attempt in range(40):
             open_ = np.flatnonzero(~accepted)
             if open_.size == 0:
                 break
             rows = move[open_]
             cand = np.clip(th[rows] + step[open_, None] * d[rows], _rows(la, rows), _rows(ha, rows))
-            fc = negative_loglik(cand, _rows(xa, rows), _rows(na, rows), ka[rows], layout, sigmoid)
+            args = (cand, _rows(xa, rows), _rows(na, rows), ka[rows], layout, sigmoid)
+            if attempt == 0:
+                fc, gc, oc, _ = _derivatives(*args, fisher=False)
+            else:
+                fc = negative_loglik(*args)
             change = (grad[rows] * (cand - th[rows])).sum(axis=1)
             ok = np.isfinite(fc) & (fc <= f0[rows] + 1e-4 * np.minimum(change, 0.0))
             good = open_[ok]
-            theta[todo[move[good]]] = cand[ok]
-            nll[todo[move[good]]] = fc[ok]
+            target = todo[move[good]]
+            theta[target] = cand[ok]
+            nll[target] = fc[ok]
+            if attempt == 0:
+                grad_c[target], obs_c[target] = gc[ok], oc[ok]
+            else:
+                cached[target] = False
             accepted[good] = True
             step[open_[~ok]] *= 0.5
         iterations[todo[move]] += 1

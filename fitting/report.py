@@ -255,6 +255,13 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
                 pd.DataFrame(columns=TUNING_COLUMNS), pd.DataFrame(columns=DECAY_COLUMNS), pd.DataFrame())
         periods = {a.period_s for a in analyses if np.isfinite(a.period_s)}
         group["period_s"] = periods.pop() if len(periods) == 1 else float("nan")
+        if len(group["decay_detail"]):
+            d = group["decay_detail"]
+            per = group["period_s"]
+            d["period_s"] = per
+            for a, b in (("decay_s", "decay_periods"), ("decay_s_ci_low", "decay_ci_low"),
+                         ("decay_s_ci_high", "decay_ci_high")):
+                d[a] = d[b] * per
         extras["mixed_model"] = mixed_model(tables["aftereffect"], gnotes)
         for k in ("pse", "aftereffect", "tuning", "decay"):
             tables[k] = pd.concat([tables[k], group[k]], ignore_index=True)

@@ -14,10 +14,20 @@ fits each with the real fitter (:func:`fitting.fit_logs`) and records the
 
 The runs differ only by noise: the observer model is used with
 ``spread_between_observers = 0`` and every run has its own seed. The mean
-half-width per factor, and the trials per condition needed for a target
-half-width of the amplitude (interpolating half-width ∝ 1/√N through the
-measured points), form a :class:`PlanResult`, which writes a table and a
-figure. :func:`plan_command` is the ``aftershift plan`` command.
+and the median half-width per factor, and the trials per condition needed
+for a target half-width of the amplitude, form a :class:`PlanResult`, which
+writes a table and a figure. :func:`plan_command` is the ``aftershift plan``
+command.
+
+Why the median as well as the mean: with few trials some sessions give an
+interval that runs to a parameter bound of the curve fit (a peak offset of
+90°, a decay of 1000 periods, an amplitude in the hundreds of degrees when
+the peak offset collapses), and one such session moves the mean more than
+all the others together. The median is what a typical session gives; the
+trials needed for a target are interpolated through the medians
+(:func:`trials_needed`: a local power law between measured designs,
+half-width ∝ 1/√N, the asymptotic rate of a maximum-likelihood estimate,
+beyond them).
 """
 
 from __future__ import annotations
@@ -67,34 +77,62 @@ def scaled_protocol(protocol: Protocol, trials_per_track: int) -> Protocol:
     return protocol.model_copy(update={"design": design})
 
 
-def trials_needed(trials: np.ndarray, half_widths: np.ndarray, target: float) -> float:
-    """Trials for a target half-width, with half-width = c / √N fitted to the points.
+def trials_needed(trials, half_widths, target: float) -> float:
+    """Trials per condition at which the half-width reaches ``target``.
 
-    ``c`` is the least-squares fit of ``log h = log c − ½ log N`` through the
-    finite, positive points (the geometric mean of ``h·√N``).
+    Between two measured designs that bracket the target, the half-width is
+    interpolated linearly in log N – log h (a local power law); beyond the
+    measured designs it is extrapolated from the nearest one with
+    half-width ∝ 1/√N. Where the measured half-widths cross the target more
+    than once (noise, or intervals stuck at a bound in small designs), the
+    crossing at the most trials is used.
+
+    Parameters
+    ----------
+    trials, half_widths : array_like
+        Measured designs and their half-widths; nan and non-positive
+        half-widths are ignored.
+    target : float
+        Target half-width (> 0).
 
     Returns
     -------
     float
-        ``(c / target)²``; nan when no point is usable.
+        Trials per condition (not rounded); nan when no point is usable.
     """
-    trials = np.asarray(trials, dtype=float)
-    half_widths = np.asarray(half_widths, dtype=float)
-    ok = np.isfinite(half_widths) & (half_widths > 0)
-    if not ok.any():
+    n = np.asarray(trials, dtype=float)
+    h = np.asarray(half_widths, dtype=float)
+    ok = np.isfinite(h) & (h > 0)
+    n, h = n[ok], h[ok]
+    if n.size == 0:
         return float("nan")
-    c = math.exp(float(np.mean(np.log(half_widths[ok]) + 0.5 * np.log(trials[ok]))))
-    return (c / target) ** 2
+    order = np.argsort(n)
+    n, h = n[order], h[order]
+    above = np.flatnonzero(h > target)
+    if above.size == 0:  # every design is already narrow enough: extrapolate down from the smallest
+        return float(n[0] * (h[0] / target) ** 2)
+    i = int(above[-1])
+    if i == n.size - 1:  # still too wide at the largest design: extrapolate up with 1/sqrt(N)
+        return float(n[i] * (h[i] / target) ** 2)
+    slope = (math.log(h[i + 1]) - math.log(h[i])) / (math.log(n[i + 1]) - math.log(n[i]))
+    return float(math.exp(math.log(n[i]) + (math.log(target) - math.log(h[i])) / slope))
 
 
-def loglog_slope(trials: np.ndarray, half_widths: np.ndarray) -> float:
-    """Slope of log half-width against log trials (−½ under the 1/√N law); nan with < 2 points."""
-    trials = np.asarray(trials, dtype=float)
-    half_widths = np.asarray(half_widths, dtype=float)
-    ok = np.isfinite(half_widths) & (half_widths > 0)
-    if np.unique(trials[ok]).size < 2:
+def loglog_slope(trials, half_widths) -> float:
+    """Slope of log half-width against log trials between the two largest usable designs.
+
+    −½ under the 1/√N law; a flatter or positive slope says the smaller
+    design's intervals were limited by a bound. nan with fewer than two
+    usable designs.
+    """
+    n = np.asarray(trials, dtype=float)
+    h = np.asarray(half_widths, dtype=float)
+    ok = np.isfinite(h) & (h > 0)
+    n, h = n[ok], h[ok]
+    if n.size < 2:
         return float("nan")
-    return float(np.polyfit(np.log(trials[ok]), np.log(half_widths[ok]), 1)[0])
+    order = np.argsort(n)[-2:]
+    return float(np.diff(np.log(h[order]))[0] / np.diff(np.log(n[order]))[0])
 
 
 # ---------------------------------------------------------------- one run
@@ -157,15 +195,15 @@ class PlanResult:
     ----------
     table : pandas.DataFrame
         One row per quantity, lag and trial factor (:data:`TABLE_COLUMNS`):
-        mean and SD over runs of the 95 % interval half-width, and how many
-        runs gave an interval.
+        mean, SD, median and quartiles over runs of the 95 % interval
+        half-width, and how many runs gave an interval.
     runs : pandas.DataFrame
         Every run's half-widths (factor, trials_per_track,
         trials_per_condition, run, quantity, lag, half_width).
     target_half_width : float or None
         Target half-width of the amplitude (deg).
     needed : pandas.DataFrame
-        Per lag: trials per condition for the target amplitude half-width,
+        Per lag: trials per condition for the target median amplitude half-width,
         exact (``trials_per_condition``) and as a valid design
         (``trials_per_track`` × tracks), and the measured log–log slope
         (−½ under the 1/√N law). Empty without a target.
@@ -182,35 +220,40 @@ class PlanResult:
     tracks_per_condition: int
     notes: list = field(default_factory=list)
 
-    def mean_half_width(self, quantity: str, lag: int | None = None) -> pd.Series:
-        """Mean half-width against trials per condition for one quantity (and lag)."""
+    def half_width(self, quantity: str, lag: int | None = None, statistic: str = "median") -> pd.Series:
+        """Half-width against trials per condition for one quantity (and lag).
+
+        ``statistic`` is "median" or "mean" (over runs).
+        """
         t = self.table[self.table["quantity"] == quantity]
         if lag is not None:
             t = t[t["lag"] == lag]
-        return t.set_index("trials_per_condition")["mean_half_width"].sort_index()
+        return t.set_index("trials_per_condition")[f"{statistic}_half_width"].sort_index()
 
     def summary_lines(self) -> list[str]:
         """Lines for the console."""
         n_runs = int(self.runs["run"].nunique()) if len(self.runs) else 0
         lines = [f"plan for {self.protocol_title!r}: {n_runs} simulated sessions per design, "
-                 "95 % interval half-widths (mean over sessions)"]
+                 "95 % interval half-widths over sessions"]
         shown = self.table.copy()
         shown["lag"] = shown["lag"].map(lambda v: "" if pd.isna(v) else str(int(v)))
-        shown["mean_half_width"] = shown.apply(
-            lambda r: f"{r['mean_half_width']:.3g} {UNITS[r['quantity']]}", axis=1)
-        shown["sd_half_width"] = shown["sd_half_width"].map(lambda v: f"{v:.2g}")
+        shown["unit"] = shown["quantity"].map(UNITS)
+        for c in ("median_half_width", "mean_half_width", "sd_half_width"):
+            shown[c] = shown[c].map(lambda v: f"{v:.3g}")
         shown["intervals"] = shown["runs_with_interval"].astype(str) + "/" + shown["runs"].astype(str)
-        cols = ["quantity", "lag", "trials_per_condition", "mean_half_width", "sd_half_width", "intervals"]
+        shown = shown.rename(columns={"trials_per_condition": "trials/condition", "median_half_width": "median",
+                                      "mean_half_width": "mean", "sd_half_width": "sd"})
+        cols = ["quantity", "lag", "trials/condition", "median", "mean", "sd", "unit", "intervals"]
         lines += shown[cols].to_string(index=False).splitlines()
         if self.target_half_width is not None:
             lines.append("")
             lines.append(f"for an amplitude half-width of {self.target_half_width:g} deg "
-                         f"(interpolating half-width ∝ 1/√N):")
+                         f"(median half-widths interpolated, ∝ 1/√N beyond the designs):")
             for _, r in self.needed.iterrows():
                 if math.isfinite(r["trials_per_condition"]):
                     lines.append(f"  lag {int(r['lag'])}: about {r['trials_per_condition']:.0f} trials per condition "
                                  f"-> trials_per_track = {int(r['trials_per_track'])} "
-                                 f"(measured slope {r['loglog_slope']:.2f}, law -0.5)")
+                                 f"(log-log slope of the two largest designs {r['loglog_slope']:.2f}; 1/sqrt(N) gives -0.5)")
                 else:
                     lines.append(f"  lag {int(r['lag'])}: no interval at any tested design; cannot say")
         lines += [f"note: {n}" for n in self.notes]
@@ -238,7 +281,7 @@ class PlanResult:
         return files
 
     def figure(self, stem: Path) -> list[Path]:
-        """Half-width against trials per condition, one panel per quantity; PNG and PDF."""
+        """Median half-width (bars: quartiles) against trials per condition, one panel per quantity; PNG and PDF."""
         import matplotlib
 
         matplotlib.use("Agg")
@@ -251,9 +294,9 @@ class PlanResult:
             for lag, part in t.groupby(t["lag"].fillna(-1), sort=True):
                 part = part.sort_values("trials_per_condition")
                 label = f"lag {int(lag)}" if lag >= 0 else None
-                se = part["sd_half_width"] / np.sqrt(part["runs_with_interval"].clip(lower=1))
-                ax.errorbar(part["trials_per_condition"], part["mean_half_width"], yerr=se, marker="o",
-                            capsize=3, label=label)
+                mid = part["median_half_width"]
+                bars = np.vstack([mid - part["q25_half_width"], part["q75_half_width"] - mid])
+                ax.errorbar(part["trials_per_condition"], mid, yerr=bars, marker="o", capsize=3, label=label)
             if quantity == "amplitude" and self.target_half_width is not None:
                 ax.axhline(self.target_half_width, color="0.4", linestyle="--", linewidth=1, label="target")
             ax.set_xscale("log")
@@ -397,16 +440,16 @@ def _trials_per_track_for(protocol: Protocol, per_track: float) -> int:
 
 
 def _needed(table: pd.DataFrame, target: float, protocol: Protocol) -> pd.DataFrame:
-    """Trials per condition for the target amplitude half-width, per lag."""
+    """Trials per condition for the target median amplitude half-width, per lag."""
     tracks = protocol.design.tracks_per_condition
     out = []
     amp = table[table["quantity"] == "amplitude"]
     for lag, part in amp.groupby("lag", sort=True):
-        n = trials_needed(part["trials_per_condition"], part["mean_half_width"], target)
+        n = trials_needed(part["trials_per_condition"], part["median_half_width"], target)
         per_track = _trials_per_track_for(protocol, n / tracks) if math.isfinite(n) else float("nan")
         out.append({"lag": int(lag), "target_half_width_deg": target, "trials_per_condition": n,
                     "trials_per_track": per_track,
-                    "loglog_slope": loglog_slope(part["trials_per_condition"], part["mean_half_width"])})
+                    "loglog_slope": loglog_slope(part["trials_per_condition"], part["median_half_width"])})
     return pd.DataFrame(out)
 
 

@@ -384,8 +384,9 @@ class SafetySettings(_Section):
     Attributes
     ----------
     photodiode_patch_deg : float
-        Side of a square in the lower-left corner that turns white on
-        test-onset frames, for a light sensor (0 = none).
+        Side of a square in the lower-left corner that is white during every
+        test frame (black otherwise), so a light sensor sees test onset and
+        offset (0 = none).
     caution_file : str
         Text shown to the observer before the first trial; empty = the
         bundled text.  Relative paths are relative to the protocol file.

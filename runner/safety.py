@@ -90,7 +90,9 @@ Choices made here
   (dots, patch, both) whose combined area is at least 25 % of the field is
   checked on its area-weighted mean colour; a group below 25 % does not count.
   The whole screen is checked too, on its mean over the whole screen.
-* Which sequence.  Trials are interleaved at random, so any kind of trial
+* Which sequence.  For a continuous-stream block (``[stream]``) the stream
+  module supplies its worst case (:func:`runner.stream.screening_sequences`).
+  Otherwise trials are interleaved at random, so any kind of trial
   (the baseline, and every lag) can follow itself; each kind is screened
   repeated back to back, and the worst kind is reported: a
   second of fixation, the first adaptation (if any, at most a second of it:
@@ -230,7 +232,7 @@ def relative_luminance(linear_rgb) -> np.ndarray:
 def _neutral_where_black(linear_rgb) -> np.ndarray:
     # Black has no chromaticity of its own; we give it the display's white
     # point (R = G = B), which makes a saturated red next to black count as a
-    # red transition (common practice, no source).
+    # red transition (our choice; see the module docstring, "Red and black").
     rgb = np.asarray(linear_rgb, dtype=float)
     black = rgb.sum(axis=-1, keepdims=True) <= _TOL
     return np.where(black, 1.0, rgb)
@@ -296,7 +298,7 @@ def turning_points(values, threshold: float = 0.0) -> np.ndarray:
     -------
     numpy.ndarray of int
         Frame indices where each peak or valley is first reached, in order;
-        the first entry is where the curve starts its first change.  Empty
+        the first entry is the level the first change starts from.  Empty
         for a constant curve.
     """
     v = np.asarray(values, dtype=float)
@@ -640,7 +642,15 @@ class _Sequence:
 
 
 def _sequences(protocol: Protocol) -> list[_Sequence]:
-    """One sequence per kind of trial: the largest lag first, the baseline last."""
+    """One sequence per kind of trial: the largest lag first, the baseline last.
+
+    A stream block (``[stream]``) has no trials; its worst case comes from
+    :func:`runner.stream.screening_sequences`.
+    """
+    if protocol.stream is not None:
+        from runner.stream import screening_sequences  # imported here: the stream loop is not needed otherwise
+
+        return [_Sequence(label, dots, patch) for label, dots, patch in screening_sequences(protocol)]
     hz = protocol.display.refresh_hz
     frames = frame_plan(protocol)
     second = max(1, int(round(hz)))
@@ -664,12 +674,16 @@ def _sequences(protocol: Protocol) -> list[_Sequence]:
 
 
 def _colours(protocol: Protocol) -> tuple[np.ndarray, np.ndarray]:
-    """Linear colour of the background and of the aperture's mean with dots shown."""
+    """Linear colour of the background and of a dot."""
     background = srgb_to_linear(np.full(3, protocol.display.background))
     dot = srgb_to_linear(protocol.dots.level * np.asarray(protocol.dots.color_rgb))
+    return background, dot
+
+
+def _coverage(protocol: Protocol) -> float:
+    """Fraction of the aperture covered by dots (an upper bound: dots may overlap)."""
     d = protocol.dots
-    coverage = min(1.0, d.n_dots * (d.dot_size_deg / 2.0) ** 2 / d.aperture_radius_deg**2)
-    return background, background + coverage * (dot - background)
+    return min(1.0, d.n_dots * (d.dot_size_deg / 2.0) ** 2 / d.aperture_radius_deg**2)
 
 
 # ----------------------------------------------------------------------------------------------
@@ -811,16 +825,16 @@ def _notes(
             "moving and replotted dots keep every region's mean luminance constant and count only through it."
         )
     per_quarter = AREA_FRACTION * (FIELD_DEG / size) ** 2
-    background, _ = _colours(protocol)
-    dot = srgb_to_linear(protocol.dots.level * np.asarray(protocol.dots.color_rgb))
+    background, dot = _colours(protocol)
     contrast = abs(float(relative_luminance(dot) - relative_luminance(background)))
     if per_quarter < FEW_DOTS_PER_QUARTER and contrast >= FLASH_CHANGE - _TOL:
         notes.append(
             f"Review the dot size: {per_quarter:.0f} dots of {size:g}° make up a quarter of a 10° field, so a few "
             "of them replotted at once could light up the 25% that counts; this is not screened."
         )
+    order = "the stream's tests back to back" if protocol.stream is not None else "trials of one kind back to back"
     notes.append(
-        f"Assumed: answers {FASTEST_ANSWER_S:g} s after each test, trials of one kind back to back, "
+        f"Assumed: answers {FASTEST_ANSWER_S:g} s after each test, {order}, "
         "the 10° field as a disc at the protocol's viewing distance."
     )
     return notes
@@ -849,7 +863,8 @@ def screen_protocol(protocol: Protocol) -> Screening:
     """
     hz = protocol.display.refresh_hz
     layout = _layout(protocol)
-    background, dots_shown = _colours(protocol)
+    background, dot = _colours(protocol)
+    dots_shown = background + _coverage(protocol) * (dot - background)
     white = np.ones(3)
     rest = layout.screen - layout.aperture - layout.patch
     screened = []

@@ -252,6 +252,19 @@ def test_shipped_protocol_passes():
     assert safety.screen_protocol(load_protocol(SHIPPED)).passed
 
 
+def test_stream_protocols_are_screened_on_their_own_sequence():
+    shipped = HERE.parent / "protocols" / "stream_nback.toml"
+    if shipped.exists():
+        result = safety.screen_protocol(load_protocol(shipped))
+        assert result.passed and result.worst_case.startswith("stream")
+    # Plans of 26 frames with two blank frames between them: 4.6 blinks a
+    # second, each a step of ~0.16 over the whole 10° field (see the file).
+    blink = safety.screen_protocol(load_protocol(HERE / "data" / "safety_stream_blink.toml"))
+    assert not blink.passed and blink.worst_case.startswith("stream")
+    assert blink.worst_field.general.per_second in (4, 5)
+    assert blink.flicker_hz == pytest.approx(120 / 26)
+
+
 def test_15_hz_on_off_protocol_is_refused_with_reason_and_override():
     protocol = load_protocol(FLICKER_15HZ)
     result = safety.screen_protocol(protocol)
@@ -272,6 +285,15 @@ def test_15_hz_on_off_protocol_is_refused_with_reason_and_override():
     record = json.loads(json.dumps(result.to_dict(acknowledged=True)))
     assert record["passed"] is False and record["acknowledged_with"] == safety.ACKNOWLEDGE_OPTION
     assert record["regions"][0]["general_flashes_per_s"] == 6
+
+
+def test_check_command_exits_3_for_the_15_hz_protocol(capsys):
+    from runner.cli import main
+
+    assert main(["check", str(FLICKER_15HZ)]) == safety.SafetyRefusal.exit_code == 3
+    err = capsys.readouterr().err.strip()
+    assert "refused for safety" in err and safety.ACKNOWLEDGE_OPTION in err and "\n" not in err
+    assert main(["check", str(FLICKER_15HZ), safety.ACKNOWLEDGE_OPTION]) == 0
 
 
 def test_same_timing_with_sparse_dots_reports_the_flicker_but_passes():

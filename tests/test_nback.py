@@ -1,0 +1,145 @@
+"""The n-back regression of stream logs (fitting/nback.py)."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import numpy as np
+import pandas as pd
+import pytest
+import statsmodels.api as sm
+
+from fitting import fit_trials, read_logs
+from fitting.errors import InputError
+from fitting.nback import (StreamTrials, bootstrap_nback, fit_nback, fit_stream_logs, is_stream_log,
+                           read_stream_logs, solve)
+from runner.headless import HeadlessPresenter
+from runner.launch import screen_texts, simulate
+from runner.observers import ObserverModel
+from runner.protocol import load_protocol, parse_protocol, read_protocol_text
+from runner.stream import StreamObserver, StreamRun
+
+from conftest import PROTOCOLS, ROOT
+
+BUNDLED = PROTOCOLS / "stream_nback.toml"
+
+
+def stream_trials(protocol, model, seed, observer="sim"):
+    """Run the real stream loop headless with a simulated observer; keep the rows in memory."""
+    run = StreamRun(protocol, seed, observer, "s1")
+    rows = []
+    run.run(HeadlessPresenter(protocol.display.refresh_hz), StreamObserver(model, (seed, 5), protocol.display.refresh_hz),
+            rows.append, [], screen_texts(protocol, ""))
+    rows = [r for r in rows if r["response_cw"] is not None]
+    return StreamTrials(observer, np.array([r["test_offset_deg"] for r in rows]),
+                        np.array([r["response_cw"] for r in rows], dtype=float),
+                        np.array([r["preceding_offsets_deg"] for r in rows], dtype=float))
+
+
+def test_with_lapse_zero_and_w_held_the_fit_is_the_statsmodels_probit_glm():
+    # Reference: statsmodels' binomial GLM with probit link (DESIGN.md's reference fit, lapse fixed at 0).
+    # With w held, mu = mu0 + sum a_n g(D_n; w) makes Phi((x - mu)/sigma) a probit GLM in
+    # (1, x, g_1..g_K) with coefficients (-mu0/sigma, 1/sigma, -a_n/sigma).
+    tr = stream_trials(load_protocol(BUNDLED), ObserverModel(lapse=0.0, spread_between_observers=0), 3)
+    w = 30.0
+    u = tr.preceding_offsets_deg / w
+    g = u * np.exp(0.5 - 0.5 * u * u)
+    design = np.column_stack([np.ones(tr.n_trials), tr.test_offset_deg, g])
+    glm = sm.GLM(tr.response_cw, design, family=sm.families.Binomial(sm.families.links.Probit())).fit()
+    b = glm.params
+    k = tr.n_back
+    lo = np.array([-50, np.log(0.01), 0.0, np.log(w)] + [-np.inf] * k)
+    hi = np.array([50, np.log(100), 0.0, np.log(w)] + [np.inf] * k)
+    start = np.r_[0.0, np.log(3.0), 0.0, np.log(w), np.zeros(k)]
+    sol = solve(start, lo, hi, tr.test_offset_deg, tr.preceding_offsets_deg, tr.response_cw[None], "per_n")
+    theta = sol.theta[0]
+    sigma = np.exp(theta[1])
+    assert sol.converged[0]
+    np.testing.assert_allclose([-theta[0] / sigma, 1 / sigma, *(-theta[4:] / sigma)], b, rtol=1e-6, atol=1e-8)
+    assert sol.loglik[0] == pytest.approx(glm.llf, abs=1e-7)
+
+
+def test_fast_recovery_of_amplitudes_and_decay_on_simulated_streams():
+    # The 30-run version with more replicates is benchmarks/bench_stream_recovery.py.
+    protocol = load_protocol(BUNDLED)
+    model = ObserverModel(spread_between_observers=0)
+    truth = model.amplitude_deg * np.exp(-np.arange(3) / model.decay_periods)
+    hits = np.zeros(4, dtype=int)
+    runs = 8
+    for seed in range(runs):
+        boot = bootstrap_nback(fit_nback(stream_trials(protocol, model, 100 + seed)), 150,
+                               np.random.default_rng(seed))
+        lo, hi = boot.amplitude_ci
+        t_lo, t_hi = boot.decay_ci
+        hits += np.r_[(lo <= truth) & (truth <= hi), t_lo <= model.decay_periods <= t_hi]
+    assert (hits >= runs - 1).all(), hits
+
+
+def test_stream_and_discrete_analyses_agree_when_only_the_1_back_period_matters(tmp_path):
+    model = ObserverModel(decay_periods=0.05, spread_between_observers=0)  # exp(-1/0.05): n >= 2 adds nothing
+    stream = parse_protocol(
+        "[stream]\ndirection_step_deg = 30\nnback_periods = 2\n"
+        "[design]\npractice_trials = 0\ntrials_per_track = 300\n"
+        "[procedure]\nstart_offset_deg = 10.0\nbounds_deg = [-30.0, 30.0]\nsteps_deg = [4.0, 2.0, 1.0]\n",
+        "stream.toml")
+    boot = bootstrap_nback(fit_nback(stream_trials(stream, model, 21)), 300, np.random.default_rng(5))
+    discrete_text = (
+        "[design]\nadapter_offsets_deg = [-120, -90, -60, -30, 30, 60, 90, 120]\nlags = [0]\n"
+        "trials_per_track = 30\npractice_trials = 0\n"
+        "[procedure]\nstart_offset_deg = 10.0\nbounds_deg = [-30.0, 30.0]\nsteps_deg = [4.0, 2.0, 1.0]\n")
+    discrete = parse_protocol(discrete_text, "discrete.toml")
+    simulate(discrete, "discrete.toml", discrete_text, tmp_path, model, 1, 21, progress=False)
+    tuning = fit_trials(read_logs(tmp_path), n_boot=300, seed=5, progress=False).tuning
+    row = tuning[(tuning["observer"] == "sim01") & (tuning["lag"] == 0)].iloc[0]
+    a_lo, a_hi = boot.amplitude_ci
+    w_lo, w_hi = boot.peak_offset_ci
+    # agreement = overlapping 95 % intervals (two independent estimates of the same quantity)
+    assert a_lo[0] <= row["amplitude_ci_high"] and row["amplitude_ci_low"] <= a_hi[0]
+    assert w_lo <= row["peak_offset_ci_high"] and row["peak_offset_ci_low"] <= w_hi
+    assert a_lo[1] <= 0.0 <= a_hi[1]  # the 2-back amplitude is nil
+
+
+def test_fit_stream_logs_writes_the_tables_compare_reads(tmp_path):
+    protocol, text = load_protocol(BUNDLED), read_protocol_text(BUNDLED)
+    (log,) = simulate(protocol, str(BUNDLED), text, tmp_path / "logs", ObserverModel(), 1, 2, progress=False)
+    assert is_stream_log(log)
+    report = fit_stream_logs(tmp_path / "logs", tmp_path / "out", n_boot=50, seed=1)
+    after = pd.read_csv(tmp_path / "out" / "aftereffect.csv")
+    tuning = pd.read_csv(tmp_path / "out" / "tuning.csv")
+    decay = pd.read_csv(tmp_path / "out" / "decay.csv")
+    assert list(after.columns) == ["observer", "lag", "adapter_offset_deg", "pse_shift_deg", "ci_low", "ci_high",
+                                   "n_trials"]
+    assert list(tuning.columns) == ["observer", "lag", "amplitude_deg", "amplitude_ci_low", "amplitude_ci_high",
+                                    "peak_offset_deg", "peak_offset_ci_low", "peak_offset_ci_high"]
+    assert list(decay.columns) == ["observer", "decay_periods", "ci_low", "ci_high"]
+    assert sorted(tuning["lag"]) == [0, 1, 2] and sorted(after["lag"].unique()) == [0, 1, 2]
+    assert set(after["n_trials"]) == {50} and len(after) == 3 * 10
+    assert (after["ci_low"] <= after["pse_shift_deg"]).all() and (after["pse_shift_deg"] <= after["ci_high"]).all()
+    assert (tmp_path / "out" / "nback_sim01.png").stat().st_size > 0 and (tmp_path / "out" / "nback_sim01.pdf").exists()
+    assert "decay" in report.summary()
+
+
+def test_discrete_logs_are_not_stream_logs(tmp_path):
+    p = parse_protocol("[design]\nadapter_offsets_deg = [30]\nlags = [0]\ntrials_per_track = 2\npractice_trials = 0\n")
+    (log,) = simulate(p, "d.toml", "", tmp_path, ObserverModel(), 1, 0, progress=False)
+    assert not is_stream_log(log)
+    with pytest.raises(InputError, match="no usable stream tests"):
+        read_stream_logs(log)
+
+
+def test_a_bad_value_in_a_stream_log_names_file_line_and_column(tmp_path):
+    protocol, text = load_protocol(BUNDLED), read_protocol_text(BUNDLED)
+    (log,) = simulate(protocol, str(BUNDLED), text, tmp_path, ObserverModel(), 1, 0, progress=False)
+    lines = log.read_text().splitlines()
+    lines[3] = lines[3].rsplit(",", 1)[0] + ",30;x;60"
+    log.write_text("\n".join(lines) + "\n")
+    with pytest.raises(InputError) as err:
+        read_stream_logs(log)
+    assert str(log) in str(err.value) and "line 4" in str(err.value) and "preceding_offsets_deg" in str(err.value)
+
+
+def test_nback_imports_neither_runner_nor_psychopy():
+    code = "import sys, fitting.nback; bad = [m for m in sys.modules if m.split('.')[0] in ('runner', 'psychopy')]; print(bad)"
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT, check=True)
+    assert out.stdout.strip() == "[]"
