@@ -9,7 +9,8 @@ For every procedure, lapse rate (0 and 4 %) and trial count N (40, 80, 160
 trials per condition), ``--runs`` simulated observers each run one condition
 of N trials; the PSE and spread of each run are then estimated the same way
 for every procedure, by a maximum-likelihood cumulative-Gaussian fit of that
-run's trials (``fitting.psychometric.solve_batch``, the project's fitter)
+run's trials (the project's fitter: ``fitting.psychometric`` box, starting
+values and batched Newton solver ``solve_batch``)
 with the lapse **fixed at its true value** (``--free-lapse``: free within
 [0, 0.1] instead). So the comparison is about where each procedure places
 its trials. Where a procedure has an estimate of its own it is reported
@@ -102,7 +103,7 @@ from scipy.special import ndtr
 
 sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), os.pardir))
 
-from fitting.psychometric import Layout, solve_batch  # noqa: E402
+from fitting.psychometric import Cells, Layout, parameter_bounds, solve_batch, starting_values  # noqa: E402
 from runner.adaptive import ConstantLevels, EntropyGrid, EntropyTrack, UpDownTrack, WeightedTrack  # noqa: E402
 from runner.protocol import ProcedureSettings  # noqa: E402
 
@@ -175,44 +176,42 @@ def _pair(kind: str, n: int):
             for s, t in ((1, DEFAULTS.target_cw), (-1, 1 - DEFAULTS.target_cw))]
 
 
+def _own_estimate(kind: str, tracks) -> tuple[float, float]:
+    """The procedure's own (PSE, spread) estimate; nan where it has none."""
+    if kind.startswith("bayes"):
+        mean = tracks[0].posterior_mean()
+        return mean.pse, mean.spread
+    return 0.5 * (tracks[0].estimate() + tracks[1].estimate()), float("nan")
+
+
 def simulate_run(kind: str, n_max: int, checkpoints, mu: float, lapse: float, seed) -> Run:
     """Simulate one run of ``n_max`` trials; record own estimates after each checkpoint."""
     rng = np.random.default_rng(seed)
-    levels, responses, own_pse, own_spread = [], [], {}, {}
-    if kind in ("updown pair", "weighted pair"):
-        tracks = _pair(kind, n_max)
-        for i in range(n_max):
-            track = tracks[i % 2]
-            x = track.next_level()
-            r = _answer(rng, x, mu, lapse)
-            track.update(x, r)
-            levels.append(x)
-            responses.append(r)
-            if i + 1 in checkpoints:
-                own_pse[i + 1] = 0.5 * (tracks[0].estimate() + tracks[1].estimate())
-    elif kind.startswith("bayes"):
-        target, grid = ("pse", SESSION_GRID) if kind == "bayes pse" else ("pse_spread", COARSE_GRID)
-        track = EntropyTrack(max_trials=n_max, target=target, grid=grid)
-        for i in range(n_max):
-            x = track.next_level()
-            r = _answer(rng, x, mu, lapse)
-            track.update(x, r)
-            levels.append(x)
-            responses.append(r)
-            if i + 1 in checkpoints:
-                mean = track.posterior_mean()
-                own_pse[i + 1], own_spread[i + 1] = mean.pse, mean.spread
-    else:  # fixed designs: built for exactly n_max trials
+    if kind in ("constant", "two-point (oracle)"):  # fixed designs: built for exactly n_max trials
         if kind == "constant":
-            design = ConstantLevels(levels=DEFAULTS.levels_deg, repeats=n_max // len(DEFAULTS.levels_deg),
-                                    seed=int(rng.integers(2**31)))
-            order = design.remaining
+            order = ConstantLevels(levels=DEFAULTS.levels_deg, repeats=n_max // len(DEFAULTS.levels_deg),
+                                   seed=int(rng.integers(2**31))).remaining
         else:
             z_star = spread_optimum(lapse)[0]
-            order = list(np.repeat([mu - z_star * SPREAD, mu + z_star * SPREAD], n_max // 2))
-        for x in order:
-            levels.append(float(x))
-            responses.append(_answer(rng, x, mu, lapse))
+            order = np.repeat([mu - z_star * SPREAD, mu + z_star * SPREAD], n_max // 2)
+        levels = np.asarray(order, dtype=float)
+        responses = np.array([_answer(rng, x, mu, lapse) for x in levels], dtype=float)
+        return Run(levels, responses, {}, {})
+    if kind.startswith("bayes"):
+        target, grid = ("pse", SESSION_GRID) if kind == "bayes pse" else ("pse_spread", COARSE_GRID)
+        tracks = [EntropyTrack(max_trials=n_max, target=target, grid=grid)]
+    else:
+        tracks = _pair(kind, n_max)
+    levels, responses, own_pse, own_spread = [], [], {}, {}
+    for i in range(n_max):
+        track = tracks[i % len(tracks)]  # a pair takes turns
+        x = track.next_level()
+        r = _answer(rng, x, mu, lapse)
+        track.update(x, r)
+        levels.append(x)
+        responses.append(r)
+        if i + 1 in checkpoints:
+            own_pse[i + 1], own_spread[i + 1] = _own_estimate(kind, tracks)
     return Run(np.array(levels), np.array(responses, dtype=float), own_pse, own_spread)
 
 
@@ -225,30 +224,28 @@ def _simulate_chunk(args):
 
 
 def fit_runs(levels: np.ndarray, responses: np.ndarray, lapse: float | None):
-    """ML cumulative-Gaussian fits of many runs at once (rows), one trial per cell.
+    """ML cumulative-Gaussian fits of many runs at once (one row of the batch per run).
 
-    Starting values: PSE at the mean level, spread a quarter of the tested
-    range. Box as in ``fitting.psychometric.parameter_bounds``.
+    Each run's box and starting values are the fitter's own
+    (``parameter_bounds`` and ``starting_values`` of its pooled cells); all
+    runs are then solved together by ``solve_batch``, one trial per cell.
 
     Returns
     -------
     pse, spread, at_bound : ndarray, shape (R,)
+        ``at_bound``: PSE or spread on its bound, or the fit did not converge.
     """
     layout = Layout(n_conditions=1, shared_spread=True, lapse=lapse)
-    r, n = levels.shape
-    x = levels[:, None, :]
-    k = responses[:, None, :]
-    trials = np.ones((1, 1, n))
-    xmin, xmax = levels.min(axis=1), levels.max(axis=1)
-    width = np.maximum(xmax - xmin, 1.0)
-    lo = [xmin - width, np.log(1e-3 * width)]
-    hi = [xmax + width, np.log(10 * width)]
-    theta0 = [levels.mean(axis=1), np.log(width / 4)]
-    if lapse is None:
-        lo.append(np.zeros(r))
-        hi.append(np.full(r, layout.lapse_max))
-        theta0.append(np.full(r, 0.02))
-    sol = solve_batch(np.column_stack(theta0), x, trials, k, layout, np.column_stack(lo), np.column_stack(hi))
+    starts, lows, highs = [], [], []
+    for x, y in zip(levels, responses):
+        cells = Cells.from_trials(x, y)
+        lo, hi = parameter_bounds(cells, layout)
+        starts.append(starting_values(cells, layout))
+        lows.append(lo)
+        highs.append(hi)
+    ones = np.ones((1, 1, levels.shape[1]))
+    sol = solve_batch(np.array(starts), levels[:, None, :], ones, responses[:, None, :], layout,
+                      np.array(lows), np.array(highs))
     pse, spread, _ = layout.unpack(sol.theta)
     at_bound = sol.at_bound[:, :2].any(axis=1) | ~sol.converged
     return pse[:, 0], spread[:, 0], at_bound

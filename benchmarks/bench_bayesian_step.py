@@ -5,7 +5,9 @@ Target: choosing the next level plus updating the posterior takes at most
 121 levels). The run reports both targets ("pse", "pse_spread"), the parts
 (select, update), the one-off table build, the replay done by ``restore``
 for an 80-trial state, and an up–down track's trial for scale, with the
-ratios side by side.
+ratios side by side. Times are CPU time of this process
+(``time.process_time``, all threads), so that other work on a shared
+machine does not inflate them.
 
 Run by hand::
 
@@ -35,11 +37,11 @@ def _simulated_run(track, rng, pse=3.0, spread=4.0):
     """Run ``track`` to the end against a cumulative Gaussian observer; per-trial select and update times (s)."""
     select, update = [], []
     while not track.finished:
-        t0 = time.perf_counter()
+        t0 = time.process_time()
         level = track.next_level()
-        t1 = time.perf_counter()
+        t1 = time.process_time()
         track.update(level, int(rng.random() < ndtr((level - pse) / spread)))
-        t2 = time.perf_counter()
+        t2 = time.process_time()
         select.append(t1 - t0)
         update.append(t2 - t1)
     return select, update
@@ -56,9 +58,9 @@ def main(argv=None) -> None:
     print(f"{sizes[3]} levels; median over {args.runs} runs x {args.trials} trials")
 
     adaptive._cdf_table.cache_clear()
-    start = time.perf_counter()
+    start = time.process_time()
     EntropyTrack(max_trials=args.trials, grid=grid)
-    print(f"table build (once per grid): {(time.perf_counter() - start) * 1e3:.2f} ms")
+    print(f"table build (once per grid): {(time.process_time() - start) * 1e3:.2f} ms")
 
     rng = np.random.default_rng(1)
     updown_ms = []
@@ -79,9 +81,9 @@ def main(argv=None) -> None:
             update_ms += [x * 1e3 for x in u]
             trial_ms += [(a + b) * 1e3 for a, b in zip(s, u)]
             state = track.state()
-            start = time.perf_counter()
+            start = time.process_time()
             restore(state)
-            replay_ms.append((time.perf_counter() - start) * 1e3)
+            replay_ms.append((time.process_time() - start) * 1e3)
         trial = statistics.median(trial_ms)
         print(
             f"{'bayesian ' + target:>22} {statistics.median(select_ms):>10.3f} {statistics.median(update_ms):>10.3f} "

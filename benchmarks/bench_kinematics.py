@@ -3,7 +3,9 @@
 Target: one ``DotField.step()`` takes at most 0.2 ms for 2,000 dots. The
 run also reports 500 and 5,000 dots, a static period (lifetimes only), and
 the cost of handing the positions to a drawing call, taken as one copy of
-the ``(n, 2)`` float array, with the ratios side by side.
+the ``(n, 2)`` float array, with the ratios side by side. Times are CPU
+time of this process (``time.process_time``), so that other work on a
+shared machine does not inflate them; best of several runs.
 
 Run by hand::
 
@@ -31,10 +33,10 @@ def _per_call_ms(action, frames: int, repeats: int) -> float:
     """Best of ``repeats`` runs of ``frames`` calls, in ms per call."""
     best = math.inf
     for _ in range(repeats):
-        start = time.perf_counter()
+        start = time.process_time()
         for _ in range(frames):
             action()
-        best = min(best, (time.perf_counter() - start) / frames)
+        best = min(best, (time.process_time() - start) / frames)
     return best * 1e3
 
 

@@ -227,7 +227,7 @@ def bca_interval(estimate, replicates, acceleration, level: float = 0.95):
 
 def parametric_bootstrap(fit: PsychometricFit, n_boot: int, rng: np.random.Generator,
                          progress: bool | None = None, label: str = "bootstrap",
-                         chunk: int = 250) -> BootstrapResult:
+                         chunk: int | None = None) -> BootstrapResult:
     """Draw ``n_boot`` replicate data sets from ``fit`` and refit them all.
 
     Parameters
@@ -242,8 +242,9 @@ def parametric_bootstrap(fit: PsychometricFit, n_boot: int, rng: np.random.Gener
         ``False`` never.
     label : str
         Words in front of the progress bar.
-    chunk : int
-        Replicates per batched solve.
+    chunk : int, optional
+        Replicates per batched solve (default: as many as keep each solve
+        under about half a million cells).
 
     Returns
     -------
@@ -252,6 +253,8 @@ def parametric_bootstrap(fit: PsychometricFit, n_boot: int, rng: np.random.Gener
     if n_boot < 1:
         raise ValueError("n_boot must be at least 1")
     cells, layout = fit.cells, fit.layout
+    if chunk is None:
+        chunk = max(50, 500_000 // cells.x.size)
     p_hat = fit.probabilities()
     draws = rng.binomial(cells.n.astype(np.int64)[None], p_hat[None],
                          size=(n_boot,) + cells.n.shape).astype(float)

@@ -52,7 +52,12 @@ def cmd_check(args) -> int:
     from runner.overview import describe
 
     protocol, _ = _load(args.protocol)
-    print("\n".join(describe(protocol)))
+    if protocol.stream is not None:
+        from runner.stream import describe_stream
+
+        print("\n".join(describe_stream(protocol)))
+    else:
+        print("\n".join(describe(protocol)))
     result = safety.screen_protocol(protocol)
     print()
     print("\n".join(result.summary_lines()))
@@ -136,10 +141,20 @@ def cmd_fit(args) -> int:
             lapse = float(lapse)
         except ValueError:
             raise InputError("argument", "--lapse", f"expected 'free' or a number, got {lapse!r}") from None
-    report = fit_logs(
-        args.logs, args.out, n_boot=args.bootstrap, seed=args.seed, lapse=lapse,
-        spread=args.spread, include_bad_timing=args.keep_bad_timing,
-    )
+    from fitting.nback import fit_stream_logs, is_stream_log
+    from fitting.tables import find_logs
+
+    logs = find_logs(args.logs)
+    streams = [str(p) for p in logs if is_stream_log(p)]
+    trials = [str(p) for p in logs if str(p) not in streams]
+    if streams and trials:
+        raise InputError(streams[0], "block", "stream logs and adapt-test logs need separate fit runs (different --out)")
+    if streams:
+        report = fit_stream_logs(streams, args.out, n_boot=args.bootstrap, seed=args.seed, lapse=lapse,
+                                 include_bad_timing=args.keep_bad_timing)
+    else:
+        report = fit_logs(trials, args.out, n_boot=args.bootstrap, seed=args.seed, lapse=lapse,
+                          spread=args.spread, include_bad_timing=args.keep_bad_timing)
     print(report.summary())
     return EXIT_OK
 

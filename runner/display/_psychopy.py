@@ -11,6 +11,10 @@ exits.  Nothing of psychopy's preferences is read from, or written to, the
 real home folder, and no gamma table is touched (see
 :mod:`runner.display.window`).
 
+Without an X display (``DISPLAY`` unset or unreachable) the import fails
+with a one-line :class:`fitting.errors.InputError` naming ``DISPLAY``, which
+the command line reports with exit code 2.
+
 psychopy's console log is limited to errors: the experimenter's console is
 ours, and psychopy's notices (for example that psychtoolbox is missing, so
 its keyboard falls back to window events) are explained in
@@ -24,6 +28,8 @@ import os
 import shutil
 import tempfile
 
+from fitting.errors import InputError
+
 _PREFS_HOME = tempfile.mkdtemp(prefix="aftershift-psychopy-")
 atexit.register(shutil.rmtree, _PREFS_HOME, ignore_errors=True)
 _real_home = os.environ.get("HOME")
@@ -36,6 +42,14 @@ try:
     from psychopy import __version__ as version
     from psychopy import core, event, monitors, visual
     from psychopy.tools.monitorunittools import deg2pix
+except Exception as exc:
+    # pyglet raises its NoSuchDisplayException (one class per platform).
+    if type(exc).__name__ != "NoSuchDisplayException":
+        raise
+    raise InputError(
+        "environment", "DISPLAY",
+        f"no screen to draw on ({exc}); run on the lab display, or under Xvfb for a test",
+    ) from None
 finally:
     if _real_home is None:
         del os.environ["HOME"]
