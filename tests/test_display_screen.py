@@ -255,3 +255,63 @@ def test_refresh_mismatch_is_refused(x_display, probe):  # noqa: F811
         display.open_screen(odd, windowed=True, allow_refresh_mismatch=False, console=None)
     assert caught.value.kind == "timing"
     assert safety.REFRESH_OVERRIDE_OPTION in str(caught.value)
+
+
+def _screen_size():
+    from runner.display._psychopy import pyglet
+
+    screen = pyglet.canvas.get_display().get_default_screen()
+    return screen.width, screen.height
+
+
+def test_full_screen_must_have_the_protocol_resolution(x_display, probe):  # noqa: F811
+    """Full screen at another resolution would put every stimulus at the wrong size: bad input."""
+    from fitting.errors import InputError
+    from runner import display
+
+    if list(_screen_size()) == list(probe.display.screen_px):
+        pytest.skip("the X screen happens to have the probe's resolution")
+    with pytest.raises(InputError) as caught:
+        display.open_screen(probe, windowed=False, allow_refresh_mismatch=True, console=None)
+    assert caught.value.field == "display.screen_px"
+
+
+def test_full_screen_hides_the_cursor(x_display, probe):  # noqa: F811
+    from runner import display
+
+    w, h = _screen_size()
+    fitted = probe.display.model_copy(update={"screen_px": [w, h], "screen_cm": [w / 40, h / 40]})
+    presenter, _ = display.open_screen(probe.model_copy(update={"display": fitted}), windowed=False,
+                                       allow_refresh_mismatch=True, console=None)
+    try:
+        assert list(presenter.window.size) == [w, h]
+        assert presenter.window.mouseVisible is False
+        assert presenter.timing_summary()["fullscreen"] is True
+    finally:
+        presenter.close()
+
+
+def test_a_stalled_frame_counts_as_dropped(screen, probe):
+    """A frame held up for 0.1 s (six 60 Hz frames) is seen as dropped frames in the playback."""
+    import time
+
+    presenter, _ = screen
+    trial = probe_trial(probe, test_offset_deg=5.0, frames=4)
+    presenter.frame_hook = lambda period, i: time.sleep(0.1) if (period.role, i) == ("adapter", 1) else None
+    try:
+        playback = presenter.play(trial)
+    finally:
+        presenter.frame_hook = None
+    # an interval of about 0.1 s spans at least 6 refreshes at 60 Hz: 5 or more lost
+    assert playback.dropped_frames >= 5 and not playback.timing_ok
+
+
+def test_escape_stops_a_trial_at_once(screen, probe):
+    require_xdotool()
+    presenter, _ = screen
+    trial = probe_trial(probe, test_offset_deg=5.0, frames=120)  # 4 s at 60 Hz
+    timer = _press_later("escape", 0.3)
+    playback = presenter.play(trial)
+    timer.join()
+    assert playback.aborted and 0 < playback.n_frames < 240
+    assert presenter.take_test_keys() == []

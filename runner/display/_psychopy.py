@@ -46,9 +46,11 @@ except Exception as exc:
     # pyglet raises its NoSuchDisplayException (one class per platform).
     if type(exc).__name__ != "NoSuchDisplayException":
         raise
+    shown = os.environ.get("DISPLAY") or "not set"
     raise InputError(
         "environment", "DISPLAY",
-        f"no screen to draw on ({exc}); run on the lab display, or under Xvfb for a test",
+        f"no screen to draw on (cannot connect to the X display; DISPLAY is {shown}); "
+        "run on the lab display, or under Xvfb for a test",
     ) from None
 finally:
     if _real_home is None:

@@ -237,7 +237,8 @@ class ScreenPresenter:
         self._test_keys = []
         aborted = self._drain()
         self.scene.draw(None)
-        t, _ = self._flip()
+        t, keys = self._flip()
+        aborted = self._note_keys(keys, None) or aborted
         flips = [t]
         onset = None
         shown = 0
