@@ -155,3 +155,37 @@ def write_log(trials: pd.DataFrame, path) -> None:
     out["timing_ok"] = np.where(out["timing_ok"].astype(bool), "true", "false")
     out["test_offset_deg"] = out["test_offset_deg"].round(6)
     out.to_csv(path, index=False, na_rep="")
+
+
+def recovery_study(seeds, model: ObserverModel = ObserverModel(), n_boot: int = 300,
+                   offsets=(-60, -30, -15, 15, 30, 60), lags=(0, 1, 2),
+                   trials_per_track: int = 40, interval: str = "bca") -> pd.DataFrame:
+    """Simulate one observer per seed, fit, and check each interval against the truth.
+
+    Returns one row per seed with the estimates and intervals of the lag-0
+    tuning amplitude and peak offset (``tuning.csv``) and of the decay
+    constant (``decay.csv``), and whether each interval holds the simulated
+    value.
+    """
+    from .observer import Options, analyse_observer
+    from .tables import prepare_trials
+
+    opts = Options(n_boot=n_boot, interval=interval, progress=False)
+    rows = []
+    for seed in seeds:
+        trials = prepare_trials(simulate_trials(model, offsets, lags, trials_per_track, seed=seed,
+                                                observer=f"sim{seed}"))
+        a = analyse_observer(f"sim{seed}", trials, opts, np.random.default_rng([seed, 1]))
+        t0 = a.tuning[a.tuning["lag"] == 0].iloc[0]
+        d = a.decay.iloc[0]
+        row = {"seed": seed}
+        for name, est, lo, hi, truth in (
+                ("amplitude", t0["amplitude_deg"], t0["amplitude_ci_low"], t0["amplitude_ci_high"],
+                 model.amplitude_deg),
+                ("peak_offset", t0["peak_offset_deg"], t0["peak_offset_ci_low"],
+                 t0["peak_offset_ci_high"], model.peak_offset_deg),
+                ("decay", d["decay_periods"], d["ci_low"], d["ci_high"], model.decay_periods)):
+            row.update({name: est, f"{name}_low": lo, f"{name}_high": hi,
+                        f"{name}_covered": bool(lo <= truth <= hi)})
+        rows.append(row)
+    return pd.DataFrame(rows)

@@ -175,6 +175,13 @@ def cmd_demo(args) -> int:
     return EXIT_OK
 
 
+def cmd_plan(args) -> int:
+    from runner.planner import plan_command
+
+    _load(args.protocol)  # timing refusals exit 3 here as everywhere
+    return plan_command(args.protocol, args.model, args.runs, args.target_half_width, args.out, args.seed, args.jobs)
+
+
 def cmd_display_test(args) -> int:
     from runner import display
 
@@ -251,6 +258,16 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("demo", help="simulate, fit, compare and report on the default protocol (invented data)")
     p.add_argument("--out", default="results_demo", help="output folder (default results_demo)")
     p.set_defaults(func=cmd_demo)
+
+    p = sub.add_parser("plan", help="expected 95% CI half-widths of a design by simulation, and the trials a target needs")
+    protocol_arg(p)
+    p.add_argument("--model", help="observer model file (TOML, flat keys)")
+    p.add_argument("--runs", type=int, default=20, help="simulated sessions per design (default 20)")
+    p.add_argument("--target-half-width", type=float, help="target 95%% CI half-width of the DoG amplitude, deg")
+    p.add_argument("--out", default="plan", help="output folder (default plan)")
+    p.add_argument("--seed", type=int, default=0, help="seed (default 0)")
+    p.add_argument("--jobs", type=int, default=2, help="worker processes (default 2)")
+    p.set_defaults(func=cmd_plan)
 
     p = sub.add_parser("display-test", help="measure refresh rate, frame jitter and dropped frames")
     protocol_arg(p, optional=True)

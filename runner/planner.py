@@ -41,11 +41,13 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from fitting import fit_logs
 from fitting.errors import InputError
 from fitting.progress import ProgressBar
-from runner.launch import derive_seed
-from runner.observers import ObserverModel
-from runner.protocol import Protocol
+from fitting.tables import write_csv
+from runner.launch import derive_seed, simulate
+from runner.observers import ObserverModel, load_model
+from runner.protocol import Protocol, parse_protocol, read_protocol_text
 
 QUANTITIES = ("amplitude", "peak_offset", "decay", "baseline_pse")
 UNITS = {"amplitude": "deg", "peak_offset": "deg", "decay": "periods", "baseline_pse": "deg"}
@@ -150,9 +152,6 @@ def run_once(protocol: Protocol, protocol_text: str, protocol_path: str, model: 
     The session and its fit live in a temporary folder that is removed
     afterwards. Half-widths are nan where the fitter gave no interval.
     """
-    from fitting import fit_logs
-    from runner.launch import simulate
-
     with tempfile.TemporaryDirectory(prefix="aftershift-plan-") as tmp:
         paths = simulate(protocol, protocol_path, protocol_text, Path(tmp) / "logs", model, 1, seed,
                          progress=False)
@@ -168,7 +167,7 @@ def run_once(protocol: Protocol, protocol_text: str, protocol_path: str, model: 
             hw = _half(row[lo], row[hi]) if row is not None else float("nan")
             rows.append({"quantity": quantity, "lag": lag, "half_width": hw})
     if len(lags) > 1:
-        d = report.decay
+        d = report.decay[report.decay["observer"] != "group"]
         hw = _half(d["ci_low"].iloc[0], d["ci_high"].iloc[0]) if len(d) else float("nan")
         rows.append({"quantity": "decay", "lag": np.nan, "half_width": hw})
     base = report.pse[report.pse["condition"] == "baseline"]
@@ -208,7 +207,6 @@ class PlanResult:
         (``trials_per_track`` × tracks), and the measured log–log slope
         (−½ under the 1/√N law). Empty without a target.
     protocol_title : str
-    tracks_per_condition : int
     notes : list of str
     """
 
@@ -217,7 +215,6 @@ class PlanResult:
     target_half_width: float | None
     needed: pd.DataFrame
     protocol_title: str
-    tracks_per_condition: int
     notes: list = field(default_factory=list)
 
     def half_width(self, quantity: str, lag: int | None = None, statistic: str = "median") -> pd.Series:
@@ -267,8 +264,6 @@ class PlanResult:
         list of Path
             The files written.
         """
-        from fitting.tables import write_csv
-
         out = Path(out_dir)
         out.mkdir(parents=True, exist_ok=True)
         files = [out / "plan.csv", out / "plan_runs.csv"]
@@ -286,6 +281,7 @@ class PlanResult:
 
         matplotlib.use("Agg")
         import matplotlib.pyplot as plt
+        from matplotlib.ticker import FormatStrFormatter, LogLocator, NullFormatter
 
         present = [q for q in QUANTITIES if (self.table["quantity"] == q).any()]
         fig, axes = plt.subplots(1, len(present), figsize=(3.6 * len(present), 3.4), squeeze=False)
@@ -301,6 +297,12 @@ class PlanResult:
                 ax.axhline(self.target_half_width, color="0.4", linestyle="--", linewidth=1, label="target")
             ax.set_xscale("log")
             ax.set_yscale("log")
+            ax.set_xticks(sorted(t["trials_per_condition"].unique()))
+            ax.xaxis.set_minor_formatter(NullFormatter())
+            for axis in (ax.xaxis, ax.yaxis):
+                axis.set_major_formatter(FormatStrFormatter("%g"))
+            ax.yaxis.set_major_locator(LogLocator(subs=(1.0, 2.0, 5.0)))
+            ax.yaxis.set_minor_formatter(NullFormatter())
             ax.set_xlabel("trials per condition")
             ax.set_ylabel(f"95 % CI half-width ({UNITS[quantity]})")
             ax.set_title(quantity.replace("_", " "))
@@ -412,7 +414,7 @@ def plan_design(
     per_run = per_run.reset_index(drop=True)
     table = _summarise(per_run)
     needed = _needed(table, target_half_width, protocol) if target_half_width is not None else pd.DataFrame()
-    return PlanResult(table, per_run, target_half_width, needed, protocol.title, tracks, notes)
+    return PlanResult(table, per_run, target_half_width, needed, protocol.title, notes)
 
 
 def _summarise(per_run: pd.DataFrame) -> pd.DataFrame:
@@ -478,9 +480,6 @@ def plan_command(protocol_path: str, model_path: str | None, runs: int, target_h
     InputError
         Bad protocol, model file or argument (the command line exits with 2).
     """
-    from runner.observers import load_model
-    from runner.protocol import parse_protocol, read_protocol_text
-
     text = read_protocol_text(protocol_path)
     protocol = parse_protocol(text, source=str(protocol_path))
     model = load_model(model_path)

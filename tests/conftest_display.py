@@ -105,7 +105,8 @@ def find_window(title: str, env: dict, timeout_s: float = 60.0, process: subproc
         if ids:
             return ids[-1]
         if process is not None and process.poll() is not None:
-            raise AssertionError(f"the program ended (exit {process.returncode}) before its window appeared")
+            err = process.stderr.read() if process.stderr else ""
+            raise AssertionError(f"the program ended (exit {process.returncode}) before its window appeared: {err[-2000:]}")
         time.sleep(0.1)
     raise AssertionError(f"no window named {title!r} appeared within {timeout_s:g} s")
 

@@ -143,4 +143,6 @@ def test_display_test_reports_timing(own_x_server, tmp_path):  # noqa: F811
     assert report["frame_interval_sd_ms"] <= report["frame_interval_max_ms"]
     mismatch = safety.check_refresh(report["refresh_hz_measured"], 60.0) is not None
     assert report["refresh_within_tolerance"] is (not mismatch)
+    assert report["flips_unsynced"] is (report["refresh_hz_measured"] > 1.5 * 60.0)
+    assert not (report["flips_unsynced"] and report["refresh_within_tolerance"])
     assert report["verdict_ok"] is (not mismatch and report["dropped_frames"] == 0)

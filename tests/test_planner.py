@@ -67,17 +67,20 @@ def test_more_trials_give_narrower_intervals(tmp_path):
     path = _write(tmp_path, SMALL)
     protocol = parse_protocol(SMALL, str(path))
     result = plan_design(protocol, SMALL, str(path), ObserverModel(), runs=5, seed=11,
-                         trial_factors=(0.5, 1, 2), target_half_width=0.5, jobs=2, n_boot=100, progress=False)
+                         trial_factors=(0.5, 1, 2), target_half_width=0.1, jobs=2, n_boot=100, progress=False)
     assert sorted(result.runs["trials_per_condition"].unique()) == [40, 80, 160]
     for quantity, lag in (("amplitude", 0), ("baseline_pse", None)):
         for statistic in ("median", "mean"):
             widths = result.half_width(quantity, lag, statistic)
             assert list(widths.index) == [40, 80, 160]
             assert np.all(np.diff(widths.to_numpy()) < 0), (quantity, statistic, widths.to_dict())
-    # the trials needed for a target narrower than every design lie beyond the largest one
+    # a target narrower than every design: extrapolated from the largest with 1/sqrt(N), then
+    # rounded up to whole trials per track (2 tracks per condition)
     needed = result.needed.set_index("lag")
-    assert needed.loc[0, "trials_per_condition"] > 160
-    assert needed.loc[0, "trials_per_track"] * 2 >= needed.loc[0, "trials_per_condition"]
+    at_largest = result.half_width("amplitude", 0).loc[160]
+    assert at_largest > 0.1
+    assert needed.loc[0, "trials_per_condition"] == pytest.approx(160 * (at_largest / 0.1) ** 2)
+    assert needed.loc[0, "trials_per_track"] == math.ceil(needed.loc[0, "trials_per_condition"] / 2)
     files = result.write(tmp_path / "plan")
     assert {f.name for f in files} == {"plan.csv", "plan_runs.csv", "plan_needed.csv", "plan.png", "plan.pdf"}
     assert all(f.stat().st_size > 0 for f in files)

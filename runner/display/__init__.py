@@ -24,6 +24,24 @@ Modules
 ``selftest``     :func:`display_test`
 ``framestats``   refresh estimate and frame-interval tally (pure numpy)
 
+Keyboard
+--------
+Keys are read from the window's own key events (``psychopy.event``), each
+stamped on the session clock when psychopy dispatches the window's events at
+the start of a flip: times are exact to one frame.  This works with or
+without psychtoolbox, and it is what sees synthetic key presses from
+``xdotool`` under Xvfb.  psychopy's ``hardware.keyboard.Keyboard`` is not
+used: without psychtoolbox it falls back to the same events but, in psychopy
+2026.2, reports a press's name as a ``[name, time]`` pair and its time as
+the moment of polling.  See :mod:`runner.display.presenter`.
+
+psychopy's own files
+--------------------
+Importing psychopy creates ``~/.psychopy3`` with a monitor file; here it is
+imported with ``HOME`` pointing at a temporary folder removed at exit (see
+:mod:`runner.display._psychopy`).  The monitor is built in memory from
+``[display]`` and never saved; the gamma table is left alone.
+
 Displays without vsync
 ----------------------
 Under Xvfb (and on some windowed desktops) ``flip`` does not wait for a

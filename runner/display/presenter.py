@@ -55,7 +55,7 @@ FEEDBACK_S = 0.3
 TEXT_HOLD_S = 1.5
 
 #: A key press: psychopy key name and session-clock time (s).
-KeyPress = tuple[str, float]
+PressedKey = tuple[str, float]
 
 
 @dataclass(frozen=True)
@@ -135,13 +135,13 @@ class ScreenPresenter:
         self._spec = dot_spec(protocol)
         self._pacer = FlipPacer(1.0 / self.refresh_hz if refresh.paced else 0.0)
         self._pending: set[str] = set()
-        self._test_keys: list[KeyPress] = []
+        self._test_keys: list[PressedKey] = []
         self._tally = IntervalTally()
         self._closed = False
         event.clearEvents()
 
     # -- frames and keys ------------------------------------------------------
-    def _flip(self) -> tuple[float, list[KeyPress]]:
+    def _flip(self) -> tuple[float, list[PressedKey]]:
         """Flip (paced if needed); return the flip time and new key presses."""
         self._pacer.wait()
         t = self.window.flip()
@@ -149,7 +149,7 @@ class ScreenPresenter:
         return t, self._read_keys()
 
     @staticmethod
-    def _read_keys() -> list[KeyPress]:
+    def _read_keys() -> list[PressedKey]:
         return [(str(name), float(t)) for name, t in event.getKeys(timeStamped=True)]
 
     def _drain(self) -> bool:
@@ -162,7 +162,7 @@ class ScreenPresenter:
                 self._pending.add("pause")
         return quit_pressed
 
-    def hold_fixation(self, frames: int, answer_keys: tuple[str, ...] = ()) -> KeyPress | None:
+    def hold_fixation(self, frames: int, answer_keys: tuple[str, ...] = ()) -> PressedKey | None:
         """Show the fixation mark alone for up to ``frames`` frames.
 
         Parameters
@@ -188,7 +188,7 @@ class ScreenPresenter:
                     self._pending.add("pause")
         return None
 
-    def take_test_keys(self) -> list[KeyPress]:
+    def take_test_keys(self) -> list[PressedKey]:
         """Answer keys pressed from the onset of the last test until :meth:`play` returned."""
         keys, self._test_keys = self._test_keys, []
         return keys
@@ -276,7 +276,7 @@ class ScreenPresenter:
             aborted=aborted,
         )
 
-    def _note_keys(self, keys: list[KeyPress], test_onset: float | None) -> bool:
+    def _note_keys(self, keys: list[PressedKey], test_onset: float | None) -> bool:
         """Keys during a trial: keep answers from the test onset on; True on quit."""
         for name, t in keys:
             if name == self.keys.quit:

@@ -22,7 +22,7 @@ from runner import safety
 from runner.display._psychopy import event, version as psychopy_version
 from runner.display.presenter import dot_spec
 from runner.display.scene import Scene
-from runner.display.window import measure_refresh, open_window, px_per_deg, renderer_name
+from runner.display.window import UNSYNCED_FACTOR, measure_refresh, open_window, px_per_deg, renderer_name
 from runner.dots import DotField
 from runner.protocol import Protocol
 from runner.timing import audit_flips
@@ -32,6 +32,13 @@ SOFTWARE_RENDERERS = ("llvmpipe", "softpipe", "swrast", "software")
 
 
 def _verdict(report: dict) -> tuple[bool, str]:
+    if report["flips_unsynced"]:
+        return False, (
+            f"flips are not synchronised to the display: {report['refresh_hz_measured']:.0f} per second "
+            f"for a {report['refresh_hz_protocol']:g} Hz protocol (no vsync; a virtual or remote display, or "
+            "vsync switched off in the graphics driver); 'aftershift run' refuses this display unless "
+            f"{safety.REFRESH_OVERRIDE_OPTION} is given"
+        )
     if not report["refresh_within_tolerance"]:
         return False, (
             f"refresh mismatch: measured {report['refresh_hz_measured']:.2f} Hz, the protocol says "
@@ -113,6 +120,7 @@ def display_test(protocol: Protocol | None = None, seconds: float = 10.0, window
         "refresh_hz_protocol": hz,
         "refresh_hz_measured": round(measured, 3),
         "refresh_within_tolerance": safety.check_refresh(measured, hz) is None,
+        "flips_unsynced": measured > UNSYNCED_FACTOR * hz,
         "seconds_requested": float(seconds),
         "seconds_measured": round(flips[-1] - flips[0], 4),
         "n_dots": scene.n_dots,

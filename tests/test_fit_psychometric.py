@@ -1,0 +1,169 @@
+"""Psychometric fits checked against statsmodels and scipy (external references)."""
+
+import warnings
+
+import numpy as np
+import pytest
+import statsmodels.api as sm
+from scipy import optimize, special
+
+from fitting.psychometric import (Cells, SeparationWarning, fit_cells, fit_joint, fit_psychometric,
+                                  negative_loglik, solve_batch)
+
+
+def _trials(rng, n=240, pse=1.3, spread=2.5, lapse=0.0, lo=-8, hi=8):
+    x = np.round(rng.uniform(lo, hi, n), 1)
+    p = lapse / 2 + (1 - lapse) * special.ndtr((x - pse) / spread)
+    return x, (rng.random(n) < p).astype(float)
+
+
+def _probit(x, y, method="irls"):
+    X = sm.add_constant(x)
+    model = sm.GLM(y, X, family=sm.families.Binomial(link=sm.families.links.Probit()))
+    return model.fit(method=method, tol=1e-12, maxiter=200) if method == "irls" else model.fit(method=method)
+
+
+def test_lapse_zero_equals_statsmodels_probit_glm():
+    # Reference: statsmodels' binomial GLM with probit link on the same trials
+    # (DESIGN.md).  P = Phi(b0 + b1 x)  <=>  PSE = -b0/b1, spread = 1/b1.
+    rng = np.random.default_rng(11)
+    for _ in range(5):
+        x, y = _trials(rng)
+        fit = fit_psychometric(x, y, lapse=0.0)
+        b0, b1 = _probit(x, y).params
+        assert abs(fit.pse[0] - (-b0 / b1)) < 1e-4
+        assert abs(fit.spread[0] - 1 / b1) < 1e-4
+        assert fit.converged
+
+
+def test_standard_errors_match_statsmodels_observed_information():
+    # Reference: statsmodels GLM fitted by Newton (covariance from the observed
+    # Hessian), transformed to (PSE, spread) by the delta method.
+    rng = np.random.default_rng(5)
+    x, y = _trials(rng, n=300)
+    fit = fit_psychometric(x, y, lapse=0.0)
+    res = _probit(x, y, method="newton")
+    b0, b1 = res.params
+    jac = np.array([[-1 / b1, b0 / b1 ** 2], [0.0, -1 / b1 ** 2]])
+    cov = jac @ res.cov_params() @ jac.T
+    assert fit.pse_se[0] == pytest.approx(np.sqrt(cov[0, 0]), rel=1e-3)
+    assert fit.spread_se[0] == pytest.approx(np.sqrt(cov[1, 1]), rel=1e-3)
+
+
+def test_logistic_option_equals_statsmodels_logit_glm():
+    # Reference: statsmodels binomial GLM with its default logit link.
+    rng = np.random.default_rng(3)
+    x, y = _trials(rng)
+    fit = fit_psychometric(x, y, sigmoid="logistic", lapse=0.0)
+    res = sm.GLM(y, sm.add_constant(x), family=sm.families.Binomial()).fit(tol=1e-12)
+    b0, b1 = res.params
+    assert abs(fit.pse[0] + b0 / b1) < 1e-4
+    assert abs(fit.spread[0] - 1 / b1) < 1e-4
+    assert fit.jnd[0] == pytest.approx(fit.spread[0] * np.log(3.0))  # logit(0.75) = ln 3
+
+
+def test_joint_shared_spread_equals_glm_with_condition_intercepts():
+    # Reference: statsmodels probit GLM with one intercept per condition and a
+    # common slope: PSE_c = -a_c / b, shared spread = 1 / b.
+    rng = np.random.default_rng(8)
+    xs, ys, cs = [], [], []
+    for c, pse in enumerate([-2.0, 0.5, 3.0]):
+        x, y = _trials(rng, n=150, pse=pse, spread=2.0)
+        xs.append(x), ys.append(y), cs.append(np.full(x.size, c))
+    x, y, c = map(np.concatenate, (xs, ys, cs))
+    X = np.column_stack([(c == j).astype(float) for j in range(3)] + [x])
+    res = sm.GLM(y, X, family=sm.families.Binomial(link=sm.families.links.Probit())).fit(tol=1e-12)
+    fit = fit_joint(x, y, [f"c{j}" for j in c], spread="shared", lapse=0.0)
+    b = res.params[3]
+    np.testing.assert_allclose(fit.pse, -res.params[:3] / b, atol=1e-4)
+    np.testing.assert_allclose(fit.spread, 1 / b, atol=1e-4)
+    # per-condition spread = separate GLMs
+    per = fit_joint(x, y, [f"c{j}" for j in c], spread="per_condition", lapse=0.0)
+    for j in range(3):
+        b0, b1 = _probit(x[c == j], y[c == j]).params
+        assert abs(per.pse[j] + b0 / b1) < 1e-4 and abs(per.spread[j] - 1 / b1) < 1e-4
+
+
+def test_deviance_equals_statsmodels_binomial_counts():
+    # Reference: statsmodels GLM deviance on (successes, failures) per level,
+    # which is the deviance against the saturated model.
+    rng = np.random.default_rng(21)
+    levels = np.repeat(np.linspace(-6, 6, 9), 12)
+    y = (rng.random(levels.size) < special.ndtr((levels - 0.7) / 2.2)).astype(float)
+    fit = fit_psychometric(levels, y, lapse=0.0)
+    ux = np.unique(levels)
+    k = np.array([y[levels == v].sum() for v in ux])
+    n = np.array([(levels == v).sum() for v in ux])
+    res = sm.GLM(np.column_stack([k, n - k]), sm.add_constant(ux),
+                 family=sm.families.Binomial(link=sm.families.links.Probit())).fit(tol=1e-12)
+    assert fit.deviance == pytest.approx(res.deviance, abs=1e-6)
+    assert fit.loglik == pytest.approx(res.llf - np.sum(np.log(special.comb(n, k))), abs=1e-6)
+
+
+def test_free_lapse_reaches_the_maximum_found_by_scipy():
+    # Reference: scipy's bounded quasi-Newton optimiser (L-BFGS-B) on the same
+    # likelihood, started from several points; ours must be at least as good.
+    rng = np.random.default_rng(4)
+    x, y = _trials(rng, n=400, lapse=0.06, spread=1.5)
+    fit = fit_psychometric(x, y)
+    cells, lay = fit.cells, fit.layout
+
+    def nll(th):
+        return float(negative_loglik(th[None], cells.x[None], cells.n[None], cells.k[None], lay)[0])
+
+    best = min(optimize.minimize(nll, start, method="L-BFGS-B",
+                                 bounds=list(zip(fit.lower, fit.upper))).fun
+               for start in ([0, 0, 0.01], [2, 1, 0.05], [-1, 0.5, 0.09]))
+    assert -fit.loglik <= best + 1e-7
+    assert 0.0 <= fit.lapse <= 0.1
+
+
+def test_lapse_stays_in_bounds_and_is_flagged():
+    rng = np.random.default_rng(9)
+    x, y = _trials(rng, n=500, lapse=0.4)
+    fit = fit_psychometric(x, y)
+    assert fit.lapse == pytest.approx(0.1)
+    assert fit.lapse_at_bound and np.isnan(fit.lapse_se)
+
+
+@pytest.mark.parametrize("answers", ["separated", "all_cw", "all_ccw"])
+def test_separation_gives_warning_and_bounded_flagged_estimate(answers):
+    x = np.repeat([-3.0, -2.0, -1.0, 1.0, 2.0, 3.0], 5)
+    y = {"separated": (x > 0), "all_cw": np.ones_like(x), "all_ccw": np.zeros_like(x)}[answers]
+    with pytest.warns(SeparationWarning):
+        fit = fit_psychometric(x, y.astype(float))
+    for v in (fit.pse[0], fit.spread[0], fit.lapse, fit.loglik, fit.deviance):
+        assert np.isfinite(v)
+    assert fit.lower[0] <= fit.pse[0] <= fit.upper[0]
+    assert fit.flags[0] and np.isnan(fit.pse_se[0])
+    assert "separat" in fit.summary() or "all " in fit.summary()
+    if answers == "separated":
+        assert -1.0 < fit.pse[0] < 1.0       # inside the gap between the answers
+
+
+def test_batched_solver_equals_one_by_one():
+    rng = np.random.default_rng(2)
+    fits, ks = [], []
+    x = np.repeat(np.linspace(-5, 5, 11), 6)
+    for _ in range(6):
+        y = (rng.random(x.size) < 0.01 + 0.98 * special.ndtr((x - 0.5) / 2)).astype(float)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            fits.append(fit_psychometric(x, y))
+        ks.append(fits[-1].cells.k)
+    f0 = fits[0]
+    sol = solve_batch(f0.theta[None], f0.cells.x[None], f0.cells.n[None], np.stack(ks), f0.layout,
+                      f0.lower, f0.upper, tol=1e-12)
+    np.testing.assert_allclose(sol.theta, np.stack([f.theta for f in fits]), atol=1e-6)
+
+
+def test_cells_reject_bad_responses():
+    with pytest.raises(ValueError):
+        Cells.from_trials([0, 1], [0, 2])
+
+
+def test_summary_is_readable():
+    rng = np.random.default_rng(1)
+    x, y = _trials(rng)
+    text = fit_cells(Cells.from_trials(x, y), ["baseline"]).summary()
+    assert "baseline" in text and "log-likelihood" in text and "deviance" in text

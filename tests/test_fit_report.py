@@ -1,0 +1,126 @@
+"""fit_logs / quick_shifts end to end: tables, files, determinism, bad input."""
+
+import matplotlib.image
+import numpy as np
+import pandas as pd
+import pytest
+
+from fitting import InputError, fit_logs, quick_shifts
+from fitting.synthetic import ObserverModel, simulate_trials, write_log
+
+DESIGN_COLUMNS = {  # DESIGN.md, "Files"
+    "pse.csv": ["observer", "condition", "adapter_offset_deg", "lag", "pse_deg", "pse_ci_low",
+                "pse_ci_high", "spread_deg", "lapse", "n_trials"],
+    "aftereffect.csv": ["observer", "lag", "adapter_offset_deg", "pse_shift_deg", "ci_low",
+                        "ci_high", "n_trials"],
+    "tuning.csv": ["observer", "lag", "amplitude_deg", "amplitude_ci_low", "amplitude_ci_high",
+                   "peak_offset_deg", "peak_offset_ci_low", "peak_offset_ci_high"],
+    "decay.csv": ["observer", "decay_periods", "ci_low", "ci_high"],
+}
+MODEL = ObserverModel(amplitude_deg=4.0, peak_offset_deg=25.0, decay_periods=1.2)
+
+
+@pytest.fixture
+def logs(tmp_path):
+    folder = tmp_path / "logs"
+    for obs, seed in (("P1", 1), ("P2", 2)):
+        for session in ("1", "2"):
+            df = simulate_trials(MODEL, offsets=(-60, -30, -15, 15, 30, 60), lags=(0, 1),
+                                 trials_per_track=12, seed=[seed, int(session)], observer=obs,
+                                 session=session, practice_trials=2, bad_timing_rate=0.05)
+            (folder / obs).mkdir(parents=True, exist_ok=True)
+            write_log(df, folder / obs / f"s{session}.trials.csv")
+    return folder
+
+
+def test_tables_have_exact_columns_group_rows_and_signs(logs, tmp_path):
+    out = tmp_path / "out"
+    report = fit_logs([str(logs)], str(out), n_boot=100, seed=3, figures=False, progress=False)
+    for name, cols in DESIGN_COLUMNS.items():
+        table = pd.read_csv(out / name)
+        assert list(table.columns) == cols
+        assert set(table["observer"]) == {"P1", "P2", "group"}
+    shifts = pd.read_csv(out / "aftereffect.csv")
+    lag0 = shifts[(shifts["lag"] == 0) & (shifts["adapter_offset_deg"].abs() <= 30)]
+    # repulsion (DESIGN.md): the shift has the sign of the adapter offset
+    assert (np.sign(lag0["pse_shift_deg"]) == np.sign(lag0["adapter_offset_deg"])).all()
+    assert (shifts["ci_low"] <= shifts["pse_shift_deg"]).all()
+    assert (shifts["pse_shift_deg"] <= shifts["ci_high"]).all()
+    for extra in ("fit_details.csv", "model_tests.csv", "decay_detail.csv", "exclusions.csv",
+                  "mixed_model.csv", "summary.txt"):
+        assert (out / extra).exists()
+    ex = pd.read_csv(out / "exclusions.csv").set_index("observer")
+    assert (ex["practice_excluded"] == 4).all() and (ex["bad_timing_excluded"] > 0).all()
+    detail = pd.read_csv(out / "decay_detail.csv").set_index("observer")
+    assert detail.loc["P1", "decay_s"] == pytest.approx(detail.loc["P1", "decay_periods"] * 0.5)
+    text = report.summary()
+    assert "Observer P1" in text and "Group" in text and "tau" in text
+
+
+def test_same_seed_same_bytes_and_nothing_else_touched(logs, tmp_path):
+    a, b = tmp_path / "a", tmp_path / "b"
+    b.mkdir()
+    (b / "keep.txt").write_text("mine")
+    for out in (a, b):
+        fit_logs([str(logs)], str(out), n_boot=60, seed=9, figures=False, progress=False)
+    for name in list(DESIGN_COLUMNS) + ["fit_details.csv", "model_tests.csv", "decay_detail.csv"]:
+        assert (a / name).read_bytes() == (b / name).read_bytes(), name
+    assert (b / "keep.txt").read_text() == "mine"
+    c = tmp_path / "c"
+    fit_logs([str(logs)], str(c), n_boot=60, seed=10, figures=False, progress=False)
+    assert (a / "pse.csv").read_bytes() != (c / "pse.csv").read_bytes()
+
+
+def test_fixed_lapse_and_argument_errors(logs, tmp_path):
+    report = fit_logs([str(logs)], str(tmp_path / "z"), n_boot=0, lapse=0.0, figures=False,
+                      progress=False)
+    assert (report.pse["lapse"] == 0).all() and report.pse["pse_ci_low"].isna().all()
+    for kwargs, field in (({"lapse": 0.7}, "--lapse"), ({"lapse": "often"}, "--lapse"),
+                          ({"n_boot": -1}, "--bootstrap"), ({"seed": 1.5}, "--seed"),
+                          ({"spread": "wide"}, "--spread")):
+        with pytest.raises(InputError) as info:
+            fit_logs([str(logs)], str(tmp_path / "never"), **kwargs)
+        assert info.value.field == field
+    assert not (tmp_path / "never").exists()
+
+
+def test_bad_log_raises_before_anything_is_written(logs, tmp_path):
+    bad = logs / "P1" / "s1.trials.csv"
+    raw = pd.read_csv(bad, dtype=str, keep_default_na=False)
+    raw.loc[5, "response_cw"] = "3"
+    raw.to_csv(bad, index=False)
+    with pytest.raises(InputError) as info:
+        fit_logs([str(logs)], str(tmp_path / "out"), n_boot=10)
+    assert info.value.source == str(bad) and "line 7" in info.value.field
+    assert not (tmp_path / "out").exists()
+
+
+def test_figures_are_written_as_png_and_pdf(tmp_path):
+    df = simulate_trials(MODEL, offsets=(-30, -15, 15, 30), lags=(0, 1, 2), trials_per_track=10,
+                         seed=4, observer="F1")
+    write_log(df, tmp_path / "f.trials.csv")
+    report = fit_logs([str(tmp_path / "f.trials.csv")], str(tmp_path / "out"), n_boot=50,
+                      progress=False)
+    figs = tmp_path / "out" / "figures"
+    for stem in ("psychometric_F1", "tracks_F1", "aftereffect_F1", "decay_F1"):
+        assert (figs / f"{stem}.pdf").stat().st_size > 1000
+        image = matplotlib.image.imread(figs / f"{stem}.png")
+        assert image.shape[0] > 200 and image.std() > 0.01    # not blank
+    assert sum(f.endswith(".png") for f in report.files) == 4
+
+
+def test_quick_shifts_after_a_block():
+    df = simulate_trials(MODEL, offsets=(-30, 30), lags=(0,), trials_per_track=20, seed=8)
+    df.loc[3, "response_cw"] = pd.NA                     # a missed answer is left out
+    out = quick_shifts(df, n_boot=40, seed=1)
+    assert list(out.columns) == ["observer", "condition", "adapter_offset_deg", "lag", "pse_deg",
+                                 "pse_shift_deg", "ci_low", "ci_high", "n_trials"]
+    base = out[out["condition"] == "baseline"].iloc[0]
+    assert base["pse_shift_deg"] == 0.0
+    plus = out[out["adapter_offset_deg"] == 30].iloc[0]
+    minus = out[out["adapter_offset_deg"] == -30].iloc[0]
+    assert plus["pse_shift_deg"] > 0 > minus["pse_shift_deg"]
+    assert plus["ci_low"] < plus["pse_shift_deg"] < plus["ci_high"]
+    assert out["n_trials"].sum() == 119
+    no_base = quick_shifts(df[df["condition"] != "baseline"], n_boot=0)
+    assert no_base["pse_shift_deg"].isna().all() and no_base["pse_deg"].notna().all()
