@@ -220,6 +220,16 @@ def tracks_figure(a):
     return fig
 
 
+def _error_bars(y, low, high):
+    """Error-bar lengths from interval limits; none where a limit is missing.
+
+    An interval that does not hold its estimate (possible for BCa limits of
+    flagged, separated data) is drawn from the estimate to its far limit.
+    """
+    err = np.vstack([y - np.asarray(low, dtype=float), np.asarray(high, dtype=float) - y])
+    return np.clip(np.nan_to_num(err, nan=0.0), 0.0, None)
+
+
 def aftereffect_figure(name: str, shifts, tuning, offsets=None):
     """PSE shift against adapter offset, per lag, with intervals and DoG fits."""
     plt = _plt()
@@ -234,9 +244,8 @@ def aftereffect_figure(name: str, shifts, tuning, offsets=None):
             colour = _lag_colour(i)
             x = s["adapter_offset_deg"].to_numpy(float) + (i - (len(lags) - 1) / 2) * nudge
             y = s["pse_shift_deg"].to_numpy(float)
-            err = np.vstack([y - s["ci_low"].to_numpy(float), s["ci_high"].to_numpy(float) - y])
-            has_ci = np.isfinite(err).all()
-            ax.errorbar(x, y, yerr=err if has_ci else None, fmt="o", ms=4, color=colour,
+            err = _error_bars(y, s["ci_low"], s["ci_high"])
+            ax.errorbar(x, y, yerr=err, fmt="o", ms=4, color=colour,
                         elinewidth=0.9, capsize=2, label=_lag_label(lag))
             t = tuning[tuning["lag"] == lag]
             if len(t):
@@ -262,9 +271,8 @@ def decay_figure(name: str, tuning, detail, reps=None, period_s: float = float("
         fig, ax = plt.subplots(figsize=(5.2, 3.6))
         lags = tuning["lag"].to_numpy(float)
         amp = tuning["amplitude_deg"].to_numpy(float)
-        err = np.vstack([amp - tuning["amplitude_ci_low"].to_numpy(float),
-                         tuning["amplitude_ci_high"].to_numpy(float) - amp])
-        ax.errorbar(lags, amp, yerr=err if np.isfinite(err).all() else None, fmt="o", color=_INK,
+        err = _error_bars(amp, tuning["amplitude_ci_low"], tuning["amplitude_ci_high"])
+        ax.errorbar(lags, amp, yerr=err, fmt="o", color=_INK,
                     capsize=2.5, ms=4.5, elinewidth=0.9, label="tuning amplitude per lag (95% interval)")
         title = f"{'Group' if name == 'group' else 'Observer ' + name}: decay of the after-effect"
         if detail is not None and len(detail):

@@ -294,6 +294,9 @@ def main(argv: list[str] | None = None) -> int:
             raise
         print(f"aftershift: {exc.line()}", file=sys.stderr)
         return EXIT_SAFETY
+    except BrokenPipeError:  # output piped into e.g. `head`
+        sys.stderr.close()
+        return EXIT_OK
     except KeyboardInterrupt:
         print("aftershift: interrupted; every completed trial is in the log (use --resume)", file=sys.stderr)
         return 130

@@ -39,6 +39,19 @@ def estimated_seconds(protocol: Protocol) -> tuple[float, int]:
     return main + practice + adaptation + breaks * BREAK_ESTIMATE_S, breaks
 
 
+def header_lines(protocol: Protocol) -> list[str]:
+    """Title, reference and display geometry: the first lines of every plan."""
+    p, disp = protocol, protocol.display
+    width_deg, height_deg = disp.extent_deg
+    return [
+        f"protocol   {p.title}",
+        f"reference  {p.reference_deg:g} deg (direction, counter-clockwise from rightward); offsets positive = clockwise",
+        f"display    {disp.screen_px[0]}x{disp.screen_px[1]} px, {disp.screen_cm[0]:g}x{disp.screen_cm[1]:g} cm "
+        f"at {disp.distance_cm:g} cm = {width_deg:.1f}x{height_deg:.1f} deg, {disp.px_per_deg:.1f} px/deg, "
+        f"{disp.refresh_hz:g} Hz",
+    ]
+
+
 def describe(protocol: Protocol) -> list[str]:
     """Lines describing conditions, trials, frames and the expected duration."""
     p = protocol
@@ -46,13 +59,7 @@ def describe(protocol: Protocol) -> list[str]:
     conditions = design_conditions(p)
     per_condition = d.tracks_per_condition * d.trials_per_track
     n_main = per_condition * len(conditions)
-    width_deg, height_deg = disp.extent_deg
-    lines = [
-        f"protocol   {p.title}",
-        f"reference  {p.reference_deg:g} deg (direction, counter-clockwise from rightward); offsets positive = clockwise",
-        f"display    {disp.screen_px[0]}x{disp.screen_px[1]} px, {disp.screen_cm[0]:g}x{disp.screen_cm[1]:g} cm "
-        f"at {disp.distance_cm:g} cm = {width_deg:.1f}x{height_deg:.1f} deg, {disp.px_per_deg:.1f} px/deg, "
-        f"{disp.refresh_hz:g} Hz",
+    lines = header_lines(p) + [
         f"dots       {dots.n_dots} dots of {dots.dot_size_deg:g} deg in a {dots.aperture_radius_deg:g} deg radius aperture, "
         f"{dots.speed_deg_s:g} deg/s, coherence {dots.coherence:g}, lifetime {dots.lifetime_frames} frames",
         "",

@@ -78,6 +78,49 @@ class Console:
         """A one-line message for the experimenter."""
 
 
+class Tally:
+    """The rows of a session so far, and what the experimenter's console is told.
+
+    Shared by the discrete and the stream loop.
+
+    Parameters
+    ----------
+    rows : list of dict
+        Rows already in the log (replayed).
+    total : int
+        Rows a complete session has.
+    console : Console
+    """
+
+    def __init__(self, rows: list[dict], total: int, console: Console):
+        self.logged = [dict(r) for r in rows]
+        self.n_before = len(self.logged)
+        self.total = total
+        self.console = console
+        self.dropped = sum(int(r["dropped_frames"] or 0) for r in self.logged)
+        console.started(total, self.n_before)
+
+    @property
+    def next_index(self) -> int:
+        """Trial number of the next row."""
+        return len(self.logged) + 1
+
+    def add(self, row: dict, dropped_frames: int, seconds_per_trial: float) -> None:
+        """Record a row that was just made durable."""
+        self.logged.append({k: format_value(v) for k, v in row.items()})
+        self.dropped += dropped_frames
+        left = self.total - len(self.logged)
+        self.console.trial_done(len(self.logged), self.total, self.dropped, left * seconds_per_trial)
+
+    def finish(self, how: str, presenter: Presenter, end_text: str, track_states: dict) -> SessionResult:
+        """Summarise on the console, show the end screen, report how it ended."""
+        if len(self.logged) > self.n_before:
+            self.console.block_done(self.logged)
+        presenter.show_text(end_text, wait=False)
+        return SessionResult(how, len(self.logged), len(self.logged) - self.n_before, track_states,
+                             presenter.timing_summary())
+
+
 def _key(slot: ScheduledTrial) -> str:
     return f"{slot.condition.name}/{slot.track}"
 
@@ -259,23 +302,17 @@ class BlockRun:
         """
         console = console or Console()
         start_slot = self.replay(rows, source)
-        logged = [dict(r) for r in rows]
-        n_before = len(logged)
         total = len(self.schedule.slots)
-        console.started(total, n_before)
+        tally = Tally(rows, total, console)
         ended_by = "completed"
-        main_done = sum(1 for r in logged if r["practice"] == "0")
-        dropped = sum(int(r["dropped_frames"] or 0) for r in logged)
+        main_done = sum(1 for r in rows if r["practice"] == "0")
         procedure = self.protocol.procedure.method
         window = self.frames["answer_window_s"].frames
         pause = self.frames["pause_after_answer_s"].frames
         break_every = self.protocol.design.break_every
 
         def finish(how: str) -> SessionResult:
-            if len(logged) > n_before:
-                console.block_done(logged)
-            presenter.show_text(texts["end"], wait=False)
-            return SessionResult(how, len(logged), len(logged) - n_before, self.track_states(), presenter.timing_summary())
+            return tally.finish(how, presenter, texts["end"], self.track_states())
 
         if start_slot >= total:
             return finish(ended_by)
@@ -299,7 +336,7 @@ class BlockRun:
             if "pause" in asked and not presenter.show_text(texts["paused"]):
                 ended_by = "quit"
                 break
-            plan = self.plan(slot, len(logged) + 1)
+            plan = self.plan(slot, tally.next_index)
             playback = presenter.play(plan)
             if playback.aborted:
                 ended_by = "quit"
@@ -310,16 +347,13 @@ class BlockRun:
                 break
             row = _row(self.protocol, self.observer, self.session, plan, answer, playback, procedure)
             append(row)
-            logged.append({k: format_value(v) for k, v in row.items()})
-            dropped += playback.dropped_frames
+            tally.add(row, playback.dropped_frames, self.seconds_per_trial())
             if slot.practice:
                 if self.protocol.design.practice_feedback and answer.response_cw is not None:
                     presenter.feedback(answer.response_cw == int(plan.test_offset_deg > 0))
             else:
                 self.tracks[_key(slot)].update(plan.test_offset_deg, answer.response_cw)
                 main_done += 1
-            left = total - len(logged)
-            console.trial_done(len(logged), total, dropped, left * self.seconds_per_trial())
             if not presenter.blank(pause):
                 ended_by = "quit"
                 break
@@ -330,8 +364,8 @@ class BlockRun:
                 if adaptation is not None and presenter.play(adaptation).aborted:
                     ended_by = "quit"
                     break
-            if not slot.practice and break_every and main_done % break_every == 0 and left > 0:
-                console.block_done(logged)
+            if not slot.practice and break_every and main_done % break_every == 0 and tally.next_index <= total:
+                console.block_done(tally.logged)
                 text = texts["break"].format(done=main_done, total=self.schedule.n_main)
                 if not presenter.show_text(text):
                     ended_by = "quit"

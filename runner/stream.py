@@ -65,7 +65,8 @@ from runner.observers import SimulatedObserver
 from runner.plan import Answer, AnswerSource, Period, Playback, Presenter, TrialPlan, motion
 from runner.protocol import Protocol, frame_plan
 from runner.schedule import Condition, Schedule
-from runner.session import Console, SessionResult, _parse_response
+from runner.overview import header_lines
+from runner.session import Console, SessionResult, Tally, _parse_response
 from runner.trial_log import format_value
 from runner.tracks import make_tracks
 
@@ -370,19 +371,13 @@ class StreamRun:
         """
         console = console or Console()
         start = self.replay(rows, source)
-        logged = [dict(r) for r in rows]
-        n_before = len(logged)
         total = len(self.sequence.tests)
-        console.started(total, n_before)
-        dropped = sum(int(r["dropped_frames"] or 0) for r in logged)
+        tally = Tally(rows, total, console)
         continuous = self.protocol.stream.answer == "continue"
         break_every = self.protocol.design.break_every
 
         def finish(how: str) -> SessionResult:
-            if len(logged) > n_before:
-                console.block_done(logged)
-            presenter.show_text(texts["end"], wait=False)
-            return SessionResult(how, len(logged), len(logged) - n_before, self.track_states(), presenter.timing_summary())
+            return tally.finish(how, presenter, texts["end"], self.track_states())
 
         if start >= total:
             return finish("completed")
@@ -398,7 +393,7 @@ class StreamRun:
             done = i + 1
             break_due = bool(break_every) and done % break_every == 0 and done < total
             run_on = continuous and done < total and not break_due
-            plan = self.plan(i, len(logged) + 1, lead_in or not continuous, run_on)
+            plan = self.plan(i, tally.next_index, lead_in or not continuous, run_on)
             playback = presenter.play(plan)
             if playback.aborted:
                 return finish("quit")
@@ -410,15 +405,13 @@ class StreamRun:
                 answer = Answer(None, None)
             row = self._row(plan, answer, playback)
             append(row)
-            logged.append({k: format_value(v) for k, v in row.items()})
-            dropped += playback.dropped_frames
+            tally.add(row, playback.dropped_frames, self.seconds_per_trial())
             self.tracks[_track_key(plan.track)].update(plan.test_offset_deg, answer.response_cw)
-            console.trial_done(len(logged), total, dropped, (total - len(logged)) * self.seconds_per_trial())
             lead_in = not run_on
             if not run_on and not presenter.blank(self.pause_frames):
                 return finish("quit")
             if break_due:
-                console.block_done(logged)
+                console.block_done(tally.logged)
                 if not presenter.show_text(texts["break"].format(done=done, total=total)):
                     return finish("quit")
         return finish("completed")
@@ -444,13 +437,7 @@ def describe_stream(protocol: Protocol, seed: int = 0) -> list[str]:
     n_tests = len(seq.tests)
     frames = frame_plan(protocol)
     period_ms = s.period_frames / disp.refresh_hz * 1000
-    width_deg, height_deg = disp.extent_deg
-    lines = [
-        f"protocol   {p.title}",
-        f"reference  {p.reference_deg:g} deg (direction, counter-clockwise from rightward); offsets positive = clockwise",
-        f"display    {disp.screen_px[0]}x{disp.screen_px[1]} px, {disp.screen_cm[0]:g}x{disp.screen_cm[1]:g} cm "
-        f"at {disp.distance_cm:g} cm = {width_deg:.1f}x{height_deg:.1f} deg, {disp.px_per_deg:.1f} px/deg, "
-        f"{disp.refresh_hz:g} Hz",
+    lines = header_lines(p) + [
         "",
         f"stream     {s.n_directions} directions every {s.direction_step_deg:g} deg, "
         f"{s.nback_periods} periods before each test, answer: {s.answer}",
