@@ -8,10 +8,12 @@ with one line on stderr naming the file and field; 3 refused for safety
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 from pathlib import Path
 
 from fitting.errors import InputError
+from runner.safety import SafetyRefusal
 
 EXIT_OK, EXIT_INPUT, EXIT_SAFETY = 0, 2, 3
 DEFAULT_PROTOCOL = Path(__file__).resolve().parent.parent / "protocols" / "offset_by_lag.toml"
@@ -287,15 +289,11 @@ def main(argv: list[str] | None = None) -> int:
     except InputError as exc:
         print(f"aftershift: {exc.line()}", file=sys.stderr)
         return EXIT_INPUT
-    except Exception as exc:  # noqa: BLE001 - only refusals are handled here
-        from runner.safety import SafetyRefusal
-
-        if not isinstance(exc, SafetyRefusal):
-            raise
+    except SafetyRefusal as exc:
         print(f"aftershift: {exc.line()}", file=sys.stderr)
         return EXIT_SAFETY
-    except BrokenPipeError:  # output piped into e.g. `head`
-        sys.stderr.close()
+    except BrokenPipeError:  # output piped into e.g. `head`: stop quietly
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return EXIT_OK
     except KeyboardInterrupt:
         print("aftershift: interrupted; every completed trial is in the log (use --resume)", file=sys.stderr)
