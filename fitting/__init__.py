@@ -20,12 +20,22 @@ parametric_bootstrap
 Bad input raises :class:`fitting.errors.InputError`.
 """
 
-from .bootstrap import BootstrapResult, parametric_bootstrap
-from .errors import InputError
-from .psychometric import PsychometricFit, fit_cells, fit_joint, fit_psychometric
-from .report import FitReport, fit_logs, fit_trials, quick_shifts
-from .tables import read_logs
+import importlib
 
-__all__ = ["BootstrapResult", "FitReport", "InputError", "PsychometricFit", "fit_cells", "fit_joint",
-           "fit_logs", "fit_psychometric", "fit_trials", "parametric_bootstrap", "quick_shifts",
-           "read_logs"]
+_EXPORTS = {
+    "BootstrapResult": "bootstrap", "parametric_bootstrap": "bootstrap",
+    "InputError": "errors",
+    "PsychometricFit": "psychometric", "fit_cells": "psychometric", "fit_joint": "psychometric",
+    "fit_psychometric": "psychometric",
+    "FitReport": "report", "fit_logs": "report", "fit_trials": "report", "quick_shifts": "report",
+    "read_logs": "tables",
+}
+__all__ = sorted(_EXPORTS)
+
+
+def __getattr__(name):
+    # Lazy exports: ``import fitting.errors`` (the session engine does) stays
+    # cheap, and pandas/scipy load only when a fit is asked for.
+    if name in _EXPORTS:
+        return getattr(importlib.import_module(f".{_EXPORTS[name]}", __name__), name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

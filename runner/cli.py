@@ -151,12 +151,18 @@ def cmd_fit(args) -> int:
     trials = [str(p) for p in logs if str(p) not in streams]
     if streams and trials:
         raise InputError(streams[0], "block", "stream logs and adapt-test logs need separate fit runs (different --out)")
+    common = dict(n_boot=args.bootstrap, seed=args.seed, lapse=lapse, lapse_max=args.lapse_max,
+                  include_bad_timing=args.include_bad_timing, figures=not args.no_figures)
+    if args.interval:
+        allowed = ("bc", "percentile") if streams else ("bca", "percentile")
+        if args.interval not in allowed:
+            raise InputError("argument", "--interval", f"expected one of {', '.join(allowed)} for these logs")
+        common["interval"] = args.interval
     if streams:
-        report = fit_stream_logs(streams, args.out, n_boot=args.bootstrap, seed=args.seed, lapse=lapse,
-                                 include_bad_timing=args.keep_bad_timing)
+        report = fit_stream_logs(streams, args.out, **common)
     else:
-        report = fit_logs(trials, args.out, n_boot=args.bootstrap, seed=args.seed, lapse=lapse,
-                          spread=args.spread, include_bad_timing=args.keep_bad_timing)
+        report = fit_logs(trials, args.out, spread=args.spread, include_practice=args.include_practice,
+                          sigmoid=args.function, level=args.level, **common)
     print(report.summary())
     return EXIT_OK
 
@@ -246,8 +252,17 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, default=0, help="seed (default 0)")
     p.add_argument("--lapse", default="free", help="'free' (bounded to [0, 0.1]) or a fixed value (default free)")
     p.add_argument("--spread", choices=["shared", "per_condition"], default="shared",
-                   help="one spread per observer or one per condition (default shared)")
-    p.add_argument("--keep-bad-timing", action="store_true", help="keep trials with timing_ok = false")
+                   help="one spread per observer or one per condition, with a likelihood-ratio test (default shared)")
+    p.add_argument("--function", choices=["gaussian", "logistic"], default="gaussian",
+                   help="psychometric function: cumulative Gaussian or logistic (default gaussian)")
+    p.add_argument("--interval", choices=["bca", "bc", "percentile"],
+                   help="bootstrap interval: BCa (Efron 1987; adapt-test default), bias-corrected (stream default) "
+                        "or percentile")
+    p.add_argument("--level", type=float, default=0.95, help="confidence level (default 0.95)")
+    p.add_argument("--lapse-max", type=float, default=0.1, help="upper bound of a free lapse rate (default 0.1)")
+    p.add_argument("--include-bad-timing", action="store_true", help="keep trials with timing_ok = false")
+    p.add_argument("--include-practice", action="store_true", help="keep practice trials")
+    p.add_argument("--no-figures", action="store_true", help="tables only")
     p.set_defaults(func=cmd_fit)
 
     p = sub.add_parser("compare", help="agreement of measured after-effects with a predictions table")
