@@ -31,12 +31,13 @@ def overlay_figure(points, stem: Path) -> list[Path]:
     fig, axes = plt.subplots(1, len(observers), figsize=(4.2 * len(observers), 3.6), squeeze=False, sharey=True)
     for ax, observer in zip(axes[0], observers):
         mine = points[points["observer"] == observer]
-        for colour, lag in zip(colours, lags):
+        for i, (colour, lag) in enumerate(zip(colours, lags)):
             g = mine[mine["lag"] == lag].sort_values("adapter_offset_deg")
             x = g["adapter_offset_deg"].to_numpy()
             y = g["pse_shift_deg"].to_numpy()
             err = np.vstack([y - g["ci_low"].to_numpy(), g["ci_high"].to_numpy() - y])
-            ax.errorbar(x, y, yerr=err, fmt="o", ms=4, color=colour, capsize=2, label=f"measured, lag {lag:g}")
+            nudge = (i - (len(lags) - 1) / 2) * 1.5  # side by side, so the intervals do not hide each other
+            ax.errorbar(x + nudge, y, yerr=err, fmt="o", ms=4, color=colour, capsize=2, label=f"measured, lag {lag:g}")
             ax.plot(x, g["predicted_deg"], "-", color=colour, lw=1.5, alpha=0.8, label=f"predicted, lag {lag:g}")
         ax.axhline(0, color="0.7", lw=0.8)
         ax.axvline(0, color="0.7", lw=0.8)

@@ -29,7 +29,7 @@ MODEL = ROOT / "protocols" / "observers" / "typical.toml"
 DEMO_MARK = "DEMO_OUTPUT"
 SEED = 2026
 N_OBSERVERS = 3
-N_BOOT = 300
+N_BOOT = 1000
 
 
 def _prepare(out: Path) -> None:
