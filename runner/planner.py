@@ -283,10 +283,13 @@ class PlanResult:
         import matplotlib.pyplot as plt
         from matplotlib.ticker import FormatStrFormatter, LogLocator, NullFormatter
 
-        present = [q for q in QUANTITIES if (self.table["quantity"] == q).any()]
+        usable = self.table[np.isfinite(self.table["median_half_width"]) & (self.table["median_half_width"] > 0)]
+        present = [q for q in QUANTITIES if (usable["quantity"] == q).any()]
+        if not present:
+            return []
         fig, axes = plt.subplots(1, len(present), figsize=(3.6 * len(present), 3.4), squeeze=False)
         for ax, quantity in zip(axes[0], present):
-            t = self.table[self.table["quantity"] == quantity]
+            t = usable[usable["quantity"] == quantity]
             for lag, part in t.groupby(t["lag"].fillna(-1), sort=True):
                 part = part.sort_values("trials_per_condition")
                 label = f"lag {int(lag)}" if lag >= 0 else None
@@ -395,6 +398,9 @@ def plan_design(
             notes.append(f"factor {factor:g} gives the same {n} trials per track as factor {designs[n]:g}; run once")
         else:
             designs[n] = factor
+    if protocol.stream is None and len(protocol.design.adapter_offsets_deg) < 3:
+        notes.append("the design has fewer than 3 adapter offsets, so no DoG tuning curve (amplitude, peak "
+                     "offset, decay) can be fitted; only the baseline PSE is planned")
     if protocol.procedure.max_reversals:
         notes.append("procedure.max_reversals may stop tracks before trials_per_track; "
                      "trial counts are the designed ones")
