@@ -171,7 +171,7 @@ def _answer(rng, x, mu, lapse):
 def _pair(kind: str, n: int):
     start, steps, bounds = DEFAULTS.start_offset_deg, DEFAULTS.steps_deg, DEFAULTS.bounds_deg
     if kind == "updown pair":
-        return [UpDownTrack(start_level=s * start, steps=steps, bounds=bounds, down=DEFAULTS.down, side=side,
+        return [UpDownTrack(start_level=s * start, steps=steps, bounds=bounds, down=DEFAULTS.k_down, side=side,
                             max_trials=n // 2) for s, side in ((1, "cw"), (-1, "ccw"))]
     return [WeightedTrack(target_p_cw=t, start_level=s * start, steps=steps, bounds=bounds, max_trials=n // 2)
             for s, t in ((1, DEFAULTS.target_cw), (-1, 1 - DEFAULTS.target_cw))]

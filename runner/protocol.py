@@ -279,9 +279,9 @@ class ProcedureSettings(_Section):
         Lowest and highest test offset.
     steps_deg : list of float
         Step sizes used in turn after each reversal (the last is kept).
-    down : int
-        ``updown``: consecutive answers on the track's side before a step
-        toward the other side (2 converges on 70.7 %/29.3 %).
+    k_down : int
+        ``updown``: Levitt's k — consecutive answers on the track's side
+        before a step toward the other side (2 converges on 70.7 %/29.3 %).
     target_cw : float
         ``weighted``: proportion of clockwise answers the first track aims
         at; the second aims at ``1 - target_cw``.
@@ -300,7 +300,7 @@ class ProcedureSettings(_Section):
     start_offset_deg: float = Field(20.0, ge=0, le=180)
     bounds_deg: list[float] = Field(default_factory=lambda: [-45.0, 45.0], min_length=2, max_length=2)
     steps_deg: list[float] = Field(default_factory=lambda: [8.0, 4.0, 2.0, 1.0], min_length=1, max_length=32)
-    down: int = Field(2, ge=1, le=5)
+    k_down: int = Field(2, ge=1, le=5)
     target_cw: float = Field(0.75, gt=0.5, lt=1)
     max_reversals: int = Field(0, ge=0, le=10000)
     levels_deg: list[float] = Field(

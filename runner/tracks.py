@@ -26,7 +26,7 @@ def _procedure(protocol: Protocol, track: int, seed_words: tuple[int, ...]):
     stop = {"max_trials": n, "max_reversals": proc.max_reversals or None}
     if proc.method == "updown":
         return UpDownTrack(
-            start_level=start, steps=proc.steps_deg, bounds=proc.bounds_deg, down=proc.down,
+            start_level=start, steps=proc.steps_deg, bounds=proc.bounds_deg, down=proc.k_down,
             side="cw" if cw_side else "ccw", **stop,
         )
     if proc.method == "weighted":
