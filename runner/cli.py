@@ -276,7 +276,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", default="results_demo", help="output folder (default results_demo)")
     p.set_defaults(func=cmd_demo)
 
-    p = sub.add_parser("plan", help="expected 95% CI half-widths of a design by simulation, and the trials a target needs")
+    p = sub.add_parser("plan", help="expected 95%% CI half-widths of a design by simulation, and the trials a target needs")
     protocol_arg(p)
     p.add_argument("--model", help="observer model file (TOML, flat keys)")
     p.add_argument("--runs", type=int, default=20, help="simulated sessions per design (default 20)")

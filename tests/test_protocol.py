@@ -117,3 +117,12 @@ def test_defaults_are_a_valid_protocol():
     p = Protocol()
     assert p.dots.n_dots == round(1.5 * 3.141592653589793 * 25)
     assert frame_plan(p)["test_s"].frames == 60
+
+
+@pytest.mark.parametrize("command", ["", "check", "simulate", "run", "fit", "compare", "demo", "plan", "display-test"])
+def test_every_help_text_prints(command, capsys):
+    args = [command, "--help"] if command else ["--help"]
+    with pytest.raises(SystemExit) as done:
+        main(args)
+    assert done.value.code == 0
+    assert "usage: aftershift" in capsys.readouterr().out
