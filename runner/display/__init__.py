@@ -29,9 +29,9 @@ Keyboard
 Keys are read from the window's own key events (``psychopy.event``), each
 stamped on the session clock when psychopy dispatches the window's events at
 the start of a flip: times are exact to one frame.  This works with or
-without psychtoolbox, and it is what sees synthetic key presses from
+without psychopy's optional low-latency keyboard backend, and it is what sees synthetic key presses from
 ``xdotool`` under Xvfb.  psychopy's ``hardware.keyboard.Keyboard`` is not
-used: without psychtoolbox it falls back to the same events but, in psychopy
+used: without that optional backend it falls back to the same events but, in psychopy
 2026.2, reports a press's name as a ``[name, time]`` pair and its time as
 the moment of polling.  See :mod:`runner.display.presenter`.
 

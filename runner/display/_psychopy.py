@@ -16,8 +16,8 @@ with a one-line :class:`fitting.errors.InputError` naming ``DISPLAY``, which
 the command line reports with exit code 2.
 
 psychopy's console log is limited to errors: the experimenter's console is
-ours, and psychopy's notices (for example that psychtoolbox is missing, so
-its keyboard falls back to window events) are explained in
+ours, and psychopy's notices (for example that its optional low-latency
+keyboard backend is missing, so its keyboard falls back to window events) are explained in
 :mod:`runner.display`.
 """
 

@@ -16,7 +16,7 @@ Keys
 Key presses are read from the window's own key events through
 ``psychopy.event.getKeys(timeStamped=True)``: each press is stamped when
 the window's events are dispatched, which psychopy does at the start of
-every flip, so a time stamp is exact to one frame.  (Without psychtoolbox,
+every flip, so a time stamp is exact to one frame.  (Without its optional low-latency backend,
 ``psychopy.hardware.keyboard.Keyboard`` falls back to the same events, but in
 this version reports each press's name as a ``[name, time]`` pair and its
 time as the moment it was polled; reading the events directly avoids both.)
