@@ -133,7 +133,8 @@ Nothing here is data from people.</p>
 {imgs}
 <h2>Agreement with the channel-population predictions (all lags)</h2>
 {_table_html(agreement)}
-<p>Overlay: <a href="compare/comparison.png">compare/comparison.png</a></p>
+<figure><img src="compare/comparison.png" alt="measured and predicted after-effects" style="max-width: 58em">
+<figcaption>compare/comparison.png: measured (points, 95 % CIs) and predicted (lines)</figcaption></figure>
 <h2>Timing</h2>
 {_table_html(_timing_rows(out), 0)}
 <p>Simulated sessions run on a virtual clock, so no frame can drop; sessions on a display record every flip.</p>
