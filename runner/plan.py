@@ -41,8 +41,8 @@ class Period:
         (positive = clockwise).
     """
 
-    role: str
-    look: str
+    role: PeriodRole
+    look: PeriodLook
     frames: int
     direction_deg: float | None = None
     offset_deg: float | None = None
@@ -53,7 +53,7 @@ def offset_to_direction(reference_deg: float, offset_deg: float) -> float:
     return (reference_deg - offset_deg) % 360.0
 
 
-def motion(role: str, frames: int, reference_deg: float, offset_deg: float) -> Period:
+def motion(role: PeriodRole, frames: int, reference_deg: float, offset_deg: float) -> Period:
     """A motion period at ``offset_deg`` from the reference."""
     return Period(role, "motion", frames, offset_to_direction(reference_deg, offset_deg), float(offset_deg))
 
