@@ -10,6 +10,8 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
+from fitting.figures import save  # noqa: E402
+
 
 def overlay_figure(points, stem: Path) -> list[Path]:
     """Measured after-effects with 95 % CIs and predicted curves, one panel per observer.
@@ -47,8 +49,4 @@ def overlay_figure(points, stem: Path) -> list[Path]:
     axes[0][-1].legend(fontsize=7, frameon=False, loc="best")
     fig.suptitle("Measured after-effects (points, 95% CI) and predictions (lines)", fontsize=10)
     fig.tight_layout()
-    paths = [stem.with_suffix(".png"), stem.with_suffix(".pdf")]
-    for p in paths:
-        fig.savefig(p, dpi=150)
-    plt.close(fig)
-    return paths
+    return [Path(p) for p in save(fig, stem, dpi=150)]

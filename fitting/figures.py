@@ -61,14 +61,14 @@ def _lag_label(lag: float) -> str:
     return f"lag {lag} ({lag} intervening period{'s' if lag != 1 else ''})"
 
 
-def save(fig, base: Path) -> list[str]:
-    """Save ``fig`` as ``base.png`` and ``base.pdf``; return the paths."""
+def save(fig, base: Path, dpi: float | None = None) -> list[str]:
+    """Save ``fig`` as ``base.png`` and ``base.pdf`` (no time stamps, so reruns give equal files); return the paths."""
     plt = _plt()
     base.parent.mkdir(parents=True, exist_ok=True)
     out = []
     for ext, meta in (("png", {"Software": None}), ("pdf", {"CreationDate": None, "Producer": None})):
         path = base.with_suffix("." + ext)
-        fig.savefig(path, metadata=meta)
+        fig.savefig(path, metadata=meta, dpi=dpi)
         out.append(str(path))
     plt.close(fig)
     return out

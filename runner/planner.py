@@ -43,6 +43,7 @@ import pandas as pd
 
 from fitting import fit_logs
 from fitting.errors import InputError
+from fitting.figures import save
 from fitting.progress import ProgressBar
 from fitting.tables import write_csv
 from runner.launch import derive_seed, simulate
@@ -313,11 +314,7 @@ class PlanResult:
                 ax.legend(fontsize=8, frameon=False)
         fig.suptitle(f"{self.protocol_title}: expected interval half-width", fontsize=10)
         fig.tight_layout()
-        files = [stem.with_suffix(".png"), stem.with_suffix(".pdf")]
-        for f in files:
-            fig.savefig(f, dpi=150)
-        plt.close(fig)
-        return files
+        return [Path(f) for f in save(fig, stem, dpi=150)]
 
 
 # ---------------------------------------------------------------- planning

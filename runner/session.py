@@ -125,7 +125,13 @@ def _key(slot: ScheduledTrial) -> str:
     return f"{slot.condition.name}/{slot.track}"
 
 
-def _row(protocol: Protocol, observer: str, session: str, plan: TrialPlan, answer, playback, procedure: str) -> dict:
+def trial_row(protocol: Protocol, observer: str, session: str, plan: TrialPlan, answer, playback,
+              period_s: float) -> dict:
+    """The log row of a completed trial (the columns of :data:`runner.trial_log.COLUMNS`).
+
+    ``period_s`` is the duration of one motion period between adapter and
+    test (with its gap); stream blocks add their own columns to the result.
+    """
     return {
         "observer": observer,
         "session": session,
@@ -140,15 +146,16 @@ def _row(protocol: Protocol, observer: str, session: str, plan: TrialPlan, answe
         "dropped_frames": playback.dropped_frames,
         "timing_ok": playback.timing_ok,
         "practice": int(plan.practice),
-        "period_s": protocol.timing.period_s + protocol.timing.gap_s,
+        "period_s": period_s,
         "reference_deg": protocol.reference_deg,
         "test_direction_deg": round(plan.test_direction_deg, 6),
         "intervening_offsets_deg": plan.intervening_offsets_deg,
-        "procedure": "practice" if plan.practice else procedure,
+        "procedure": "practice" if plan.practice else protocol.procedure.method,
     }
 
 
-def _parse_response(text: str, where: str) -> int | None:
+def parse_response(text: str, where: str) -> int | None:
+    """A logged ``response_cw`` cell as 1, 0 or None; anything else is an InputError."""
     if text == "":
         return None
     if text in ("0", "1"):
@@ -256,7 +263,7 @@ class BlockRun:
                     f"{expected[0]} track {expected[1]} at {plan.test_offset_deg:g} deg); "
                     "was the protocol changed since the session started?",
                 )
-            response = _parse_response(row["response_cw"], where)
+            response = parse_response(row["response_cw"], where)
             if not slot.practice:
                 self.tracks[_key(slot)].update(plan.test_offset_deg, response)
             i += 1
@@ -306,7 +313,7 @@ class BlockRun:
         tally = Tally(rows, total, console)
         ended_by = "completed"
         main_done = sum(1 for r in rows if r["practice"] == "0")
-        procedure = self.protocol.procedure.method
+        period_s = self.protocol.timing.period_s + self.protocol.timing.gap_s
         window = self.frames["answer_window_s"].frames
         pause = self.frames["pause_after_answer_s"].frames
         break_every = self.protocol.design.break_every
@@ -345,7 +352,7 @@ class BlockRun:
             if answer.quit:
                 ended_by = "quit"
                 break
-            row = _row(self.protocol, self.observer, self.session, plan, answer, playback, procedure)
+            row = trial_row(self.protocol, self.observer, self.session, plan, answer, playback, period_s)
             append(row)
             tally.add(row, playback.dropped_frames, self.seconds_per_trial())
             if slot.practice:

@@ -66,7 +66,7 @@ from runner.plan import Answer, AnswerSource, Period, Playback, Presenter, Trial
 from runner.protocol import Protocol, frame_plan
 from runner.schedule import Condition, Schedule
 from runner.overview import header_lines
-from runner.session import Console, SessionResult, Tally, _parse_response
+from runner.session import Console, SessionResult, Tally, parse_response, trial_row
 from runner.trial_log import format_value
 from runner.tracks import make_tracks
 
@@ -301,28 +301,9 @@ class StreamRun:
         return {k: t.state() for k, t in self.tracks.items()}
 
     def _row(self, plan: StreamTrialPlan, answer: Answer, playback: Playback) -> dict:
-        return {
-            "observer": self.observer,
-            "session": self.session,
-            "trial": plan.index,
-            "condition": STREAM_CONDITION,
-            "adapter_offset_deg": None,
-            "lag": None,
-            "track": plan.track,
-            "test_offset_deg": plan.test_offset_deg,
-            "response_cw": answer.response_cw,
-            "rt_s": answer.rt_s,
-            "dropped_frames": playback.dropped_frames,
-            "timing_ok": playback.timing_ok,
-            "practice": 0,
-            "period_s": self.protocol.stream.period_frames / self.hz,
-            "reference_deg": self.protocol.reference_deg,
-            "test_direction_deg": round(plan.test_direction_deg, 6),
-            "intervening_offsets_deg": (),
-            "procedure": self.protocol.procedure.method,
-            "block": STREAM_CONDITION,
-            "preceding_offsets_deg": plan.preceding_offsets_deg,
-        }
+        period_s = self.protocol.stream.period_frames / self.hz
+        row = trial_row(self.protocol, self.observer, self.session, plan, answer, playback, period_s)
+        return {**row, "block": STREAM_CONDITION, "preceding_offsets_deg": plan.preceding_offsets_deg}
 
     # -- replay -------------------------------------------------------------------
     def replay(self, rows: list[dict[str, str]], source: str) -> int:
@@ -349,7 +330,7 @@ class StreamRun:
                     f"{plan.track} at {plan.test_offset_deg:g} deg after {expected[3]}); "
                     "was the protocol changed since the session started?",
                 )
-            self.tracks[_track_key(plan.track)].update(plan.test_offset_deg, _parse_response(row["response_cw"], where))
+            self.tracks[_track_key(plan.track)].update(plan.test_offset_deg, parse_response(row["response_cw"], where))
         return len(rows)
 
     # -- the loop -------------------------------------------------------------------

@@ -377,6 +377,27 @@ class KeyboardAnswers:
         return Answer(int(name == keys.cw), round(t - playback.test_onset_s, 6))
 
 
+def open_measured_scene(protocol: Protocol, windowed: bool):
+    """Open the window, prepare the scene and measure the refresh rate.
+
+    Every stimulus is drawn once off screen first, so the first measured
+    frame is not a late one.  The window is closed again if any step fails.
+
+    Returns
+    -------
+    (window, Scene, float)
+        The psychopy window, its scene and the measured refresh rate (Hz).
+    """
+    win = open_window(protocol, windowed)
+    try:
+        scene = Scene(win, protocol)
+        scene.warm_up()
+        return win, scene, measure_refresh(win, float(protocol.display.refresh_hz))
+    except BaseException:
+        win.close()
+        raise
+
+
 def open_screen(protocol: Protocol, windowed: bool, allow_refresh_mismatch: bool, console=None):
     """Open the observer's screen for a session.
 
@@ -404,11 +425,8 @@ def open_screen(protocol: Protocol, windowed: bool, allow_refresh_mismatch: bool
         Full screen at a pixel size other than ``display.screen_px`` (exit 2).
     """
     hz = float(protocol.display.refresh_hz)
-    win = open_window(protocol, windowed)
+    win, scene, measured = open_measured_scene(protocol, windowed)
     try:
-        scene = Scene(win, protocol)
-        scene.warm_up()
-        measured = measure_refresh(win, hz)
         refusal = safety.check_refresh(measured, hz)
         if refusal is not None and not allow_refresh_mismatch:
             raise refusal

@@ -20,9 +20,8 @@ import numpy as np
 from fitting.errors import InputError
 from runner import safety
 from runner.display._psychopy import event, version as psychopy_version
-from runner.display.presenter import dot_spec
-from runner.display.scene import Scene
-from runner.display.window import UNSYNCED_FACTOR, measure_refresh, open_window, px_per_deg, renderer_name
+from runner.display.presenter import dot_spec, open_measured_scene
+from runner.display.window import UNSYNCED_FACTOR, px_per_deg, renderer_name
 from runner.dots import DotField
 from runner.protocol import Protocol
 from runner.timing import audit_flips
@@ -90,11 +89,8 @@ def display_test(protocol: Protocol | None = None, seconds: float = 10.0, window
     protocol = protocol or Protocol()
     stream = stream or sys.stdout
     hz = float(protocol.display.refresh_hz)
-    win = open_window(protocol, windowed)
+    win, scene, measured = open_measured_scene(protocol, windowed)
     try:
-        scene = Scene(win, protocol)
-        scene.warm_up()
-        measured = measure_refresh(win, hz)
         field = DotField(dot_spec(protocol), np.random.default_rng(0))
         field.start_period(protocol.reference_deg)
         event.clearEvents()
