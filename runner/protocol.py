@@ -18,10 +18,11 @@ import sys
 from pathlib import Path
 from typing import Literal
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError, field_validator, model_validator
 
 from fitting.errors import InputError
 from runner import geometry, timing
+from runner.light_settings import LightSettings
 from runner.stream_settings import StreamSettings, check_stream
 
 if sys.version_info >= (3, 11):
@@ -410,6 +411,9 @@ class Protocol(_Section):
     stream : StreamSettings or None
         Present (a ``[stream]`` section) for a continuous-stream block, absent
         for discrete adapt–test trials; see :mod:`runner.stream_settings`.
+    light : LightSettings or None
+        Present (a ``[light]`` section) to name a light profile and give
+        luminances in cd/m²; see :mod:`runner.light_settings`.
     """
 
     title: str = Field("Direction after-effect", min_length=1, max_length=200)
@@ -422,6 +426,9 @@ class Protocol(_Section):
     keys: KeySettings = Field(default_factory=KeySettings)
     safety: SafetySettings = Field(default_factory=SafetySettings)
     stream: StreamSettings | None = None
+    light: LightSettings | None = None
+    #: The resolved ``[light]`` section (:func:`runner.light.light_plan`), set by the loader.
+    _light_plan: object = PrivateAttr(default=None)
 
 
 def frame_plan(protocol: Protocol) -> dict[str, timing.FrameCount]:
@@ -512,7 +519,7 @@ def _message_of(error: dict) -> str:
     return msg
 
 
-def parse_protocol(text: str, source: str = "<protocol>") -> Protocol:
+def parse_protocol(text: str, source: str = "<protocol>", resolve_light: bool = True) -> Protocol:
     """Parse and validate protocol text.
 
     Parameters
@@ -521,6 +528,10 @@ def parse_protocol(text: str, source: str = "<protocol>") -> Protocol:
         TOML text.
     source : str
         Name used in error messages (usually the file path).
+    resolve_light : bool
+        Read the ``[light]`` section's profile and put the grey levels of the
+        requested luminances into ``display.background`` and ``dots.level``
+        (:func:`runner.light.plan_light`); False leaves the levels as written.
 
     Returns
     -------
@@ -551,6 +562,10 @@ def parse_protocol(text: str, source: str = "<protocol>") -> Protocol:
         frame_plan(protocol)
     except InputError as exc:
         raise type(exc)(source, exc.field, exc.message) from None
+    if protocol.light is not None and resolve_light:
+        from runner.light import apply_light, plan_light  # reads a file; only for protocols with [light]
+
+        protocol = apply_light(protocol, plan_light(protocol, source))
     return protocol
 
 

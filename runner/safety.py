@@ -537,7 +537,7 @@ class RegionResult:
         }
 
 
-def region_flashes(name: str, surfaces, refresh_hz: float) -> RegionResult:
+def region_flashes(name: str, surfaces, refresh_hz: float, luminance=relative_luminance) -> RegionResult:
     """Count flashes in a region made of uniform parts.
 
     Every group of changing parts whose combined area is at least 25 % of a
@@ -553,6 +553,10 @@ def region_flashes(name: str, surfaces, refresh_hz: float) -> RegionResult:
         The parts of the screen inside the region.
     refresh_hz : float
         Frames per second.
+    luminance : callable
+        Linear colour to relative luminance (default: sRGB,
+        :func:`relative_luminance`; a measured display:
+        :meth:`runner.light.LightModel.relative_luminance`).
 
     Returns
     -------
@@ -566,10 +570,10 @@ def region_flashes(name: str, surfaces, refresh_hz: float) -> RegionResult:
             if area < AREA_FRACTION - _TOL:
                 continue
             rgb = sum(s.area * s.linear_rgb for s in group) / area
-            g, r = general_flashes(relative_luminance(rgb), refresh_hz), red_flashes(rgb, refresh_hz)
+            g, r = general_flashes(luminance(rgb), refresh_hz), red_flashes(rgb, refresh_hz)
             general = g if g.per_second > general.per_second else general
             red = r if r.per_second > red.per_second else red
-    biggest = max((largest_change(relative_luminance(s.linear_rgb)) for s in changing), default=0.0)
+    biggest = max((largest_change(luminance(s.linear_rgb)) for s in changing), default=0.0)
     return RegionResult(name, general, red, biggest, sum(s.area for s in changing))
 
 
@@ -673,10 +677,11 @@ def _sequences(protocol: Protocol) -> list[_Sequence]:
     return out
 
 
-def _colours(protocol: Protocol) -> tuple[np.ndarray, np.ndarray]:
-    """Linear colour of the background and of a dot."""
-    background = srgb_to_linear(np.full(3, protocol.display.background))
-    dot = srgb_to_linear(protocol.dots.level * np.asarray(protocol.dots.color_rgb))
+def _colours(protocol: Protocol, light=None) -> tuple[np.ndarray, np.ndarray]:
+    """Linear colour of the background and of a dot (sRGB unless a light model is given)."""
+    decode = srgb_to_linear if light is None else light.linear
+    background = decode(np.full(3, protocol.display.background))
+    dot = decode(protocol.dots.level * np.asarray(protocol.dots.color_rgb))
     return background, dot
 
 
@@ -714,6 +719,9 @@ class Screening:
         Why the protocol fails, in plain sentences (empty if it passes).
     notes : list of str
         Other findings and the assumptions behind the result.
+    light_source : str
+        Where relative luminance came from: the sRGB assumption or a
+        measured display's light profile (``[light] profile``).
     """
 
     passed: bool
@@ -724,6 +732,7 @@ class Screening:
     screened_s: float
     reasons: list[str] = dataclasses.field(default_factory=list)
     notes: list[str] = dataclasses.field(default_factory=list)
+    light_source: str = "sRGB display assumed (IEC 61966-2-1 decoding)"
 
     def summary_lines(self) -> list[str]:
         """A short block for ``aftershift check``."""
@@ -731,6 +740,7 @@ class Screening:
         lines = [
             f"photosensitivity screening (WCAG 2.x SC 2.3.1): {verdict}",
             f"  worst case: {self.worst_case}, {self.screened_s:.1f} s",
+            f"  relative luminance from: {self.light_source}",
             f"  most flashes in any second, general / red (3 allowed):",
         ]
         for region in (self.worst_field, self.whole_screen):
@@ -756,6 +766,7 @@ class Screening:
         """
         return {
             "criterion": "WCAG 2.x SC 2.3.1 general and red flash thresholds",
+            "relative_luminance_from": self.light_source,
             "passed": self.passed,
             "acknowledged_with": ACKNOWLEDGE_OPTION if acknowledged else None,
             "worst_case": self.worst_case,
@@ -794,7 +805,7 @@ def _failures(region: RegionResult, worst_case: str) -> list[str]:
 
 
 def _notes(
-    protocol: Protocol, layout: _Layout, passed: bool, flicker_hz: float | None, worst: RegionResult
+    protocol: Protocol, layout: _Layout, passed: bool, flicker_hz: float | None, worst: RegionResult, light
 ) -> list[str]:
     notes = []
     if flicker_hz is not None:
@@ -825,8 +836,8 @@ def _notes(
             "moving and replotted dots keep every region's mean luminance constant and count only through it."
         )
     per_quarter = AREA_FRACTION * (FIELD_DEG / size) ** 2
-    background, dot = _colours(protocol)
-    contrast = abs(float(relative_luminance(dot) - relative_luminance(background)))
+    background, dot = _colours(protocol, light)
+    contrast = abs(float(light.relative_luminance(dot) - light.relative_luminance(background)))
     if per_quarter < FEW_DOTS_PER_QUARTER and contrast >= FLASH_CHANGE - _TOL:
         notes.append(
             f"Review the dot size: {per_quarter:.0f} dots of {size:g}° make up a quarter of a 10° field, so a few "
@@ -840,7 +851,7 @@ def _notes(
     return notes
 
 
-def screen_protocol(protocol: Protocol) -> Screening:
+def screen_protocol(protocol: Protocol, light=None) -> Screening:
     """Screen a protocol for flashes that could provoke photosensitive seizures.
 
     Builds the worst-case frame sequences of the protocol (see the module
@@ -851,6 +862,10 @@ def screen_protocol(protocol: Protocol) -> Screening:
     Parameters
     ----------
     protocol : Protocol
+    light : runner.light.LightModel, optional
+        How signal values become relative luminance.  Default: the measured
+        display of the protocol's ``[light] profile`` (L / L_max of that
+        display) when it names one, the sRGB assumption otherwise.
 
     Returns
     -------
@@ -861,11 +876,14 @@ def screen_protocol(protocol: Protocol) -> Screening:
     InputError
         A duration that is not whole frames (field ``timing.NAME``).
     """
+    from runner.light import light_for
+
+    light = light if light is not None else light_for(protocol)
     hz = protocol.display.refresh_hz
     layout = _layout(protocol)
-    background, dot = _colours(protocol)
+    background, dot = _colours(protocol, light)
     dots_shown = background + _coverage(protocol) * (dot - background)
-    white = np.ones(3)
+    white = light.linear(np.ones(3))
     rest = layout.screen - layout.aperture - layout.patch
     screened = []
     flicker_hz = []
@@ -873,22 +891,25 @@ def screen_protocol(protocol: Protocol) -> Screening:
         dots = np.where(seq.dots_on[:, None], dots_shown, background)
         patch = np.where(seq.patch_on[:, None], white, background)
         mean = (layout.aperture * dots + layout.patch * patch + rest * background) / layout.screen
-        whole = region_flashes("whole screen", [Surface("whole screen", layout.aperture + layout.patch, mean)], hz)
+        whole = region_flashes("whole screen", [Surface("whole screen", layout.aperture + layout.patch, mean)], hz,
+                               light.relative_luminance)
         fields = [
-            region_flashes(name, [Surface("dots", a, dots), Surface("photodiode patch", p, patch)], hz)
+            region_flashes(name, [Surface("dots", a, dots), Surface("photodiode patch", p, patch)], hz,
+                           light.relative_luminance)
             for name, a, p in layout.fields
             if a + p > 0
         ]
         screened.append((seq, max(fields, key=_badness), whole))
-        flicker = on_off_flicker(relative_luminance(mean), hz)
+        flicker = on_off_flicker(light.relative_luminance(mean), hz)
         if flicker is not None:
             flicker_hz.append(flicker.frequency_hz)
     # The first kind of trial (largest lag) is reported when all are alike.
     seq, worst_field, whole = max(screened, key=lambda s: max(_badness(s[1]), _badness(s[2])))
     fastest = max(flicker_hz, default=None)
     reasons = _failures(worst_field, seq.label) + _failures(whole, seq.label)
-    notes = _notes(protocol, layout, not reasons, fastest, worst_field)
-    return Screening(not reasons, worst_field, whole, fastest, seq.label, seq.dots_on.size / hz, reasons, notes)
+    notes = _notes(protocol, layout, not reasons, fastest, worst_field, light)
+    return Screening(not reasons, worst_field, whole, fastest, seq.label, seq.dots_on.size / hz, reasons, notes,
+                     light.source)
 
 
 # ----------------------------------------------------------------------------------------------
