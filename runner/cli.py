@@ -49,8 +49,21 @@ def _screen(protocol, path: str, acknowledged: bool):
     return result
 
 
+def _light(protocol) -> dict | None:
+    """Warn (stderr) about the protocol's light profile; its sidecar record, None without one."""
+    from runner.light import light_plan
+
+    plan = light_plan(protocol)
+    if plan is None:
+        return None
+    for line in plan.warnings:
+        print(f"aftershift: warning: {line}", file=sys.stderr)
+    return plan.sidecar()
+
+
 def cmd_check(args) -> int:
     from runner import safety
+    from runner.light import light_plan
     from runner.overview import describe
 
     protocol, _ = _load(args.protocol)
@@ -60,6 +73,10 @@ def cmd_check(args) -> int:
         print("\n".join(describe_stream(protocol)))
     else:
         print("\n".join(describe(protocol)))
+    if light_plan(protocol) is not None:
+        print()
+        print("\n".join(light_plan(protocol).check_lines()))
+        _light(protocol)
     result = safety.screen_protocol(protocol)
     print()
     print("\n".join(result.summary_lines()))
@@ -77,13 +94,14 @@ def cmd_simulate(args) -> int:
     from runner.observers import load_model
 
     protocol, text = _load(args.protocol)
+    light = _light(protocol)
     screening = _screen(protocol, args.protocol, args.flicker_ack)
     model = load_model(args.model)
     if args.observers < 1:
         raise InputError("argument", "--observers", "expected at least 1")
     paths = simulate(
         protocol, args.protocol, text, args.out, model, args.observers, args.seed, args.resume, args.session,
-        screening=screening.to_dict(),
+        screening=screening.to_dict(), light=light,
     )
     for p in paths:
         print(p)
@@ -99,6 +117,7 @@ def cmd_run(args) -> int:
     check_identifier(args.observer, "--observer")
     check_identifier(args.session, "--session")
     protocol, text = _load(args.protocol)
+    light = _light(protocol)
     screening = _screen(protocol, args.protocol, args.flicker_ack)
     caution = safety.caution_text(protocol, args.protocol)
     console = ExperimenterConsole(quick_fit=_quick_fit_text)
@@ -107,6 +126,7 @@ def cmd_run(args) -> int:
         "measured_refresh_hz": presenter.measured_hz,
         "acknowledged": {"flicker": bool(args.flicker_ack), "refresh_mismatch": bool(args.refresh_ack)},
         "safety": screening.to_dict(),
+        **({"light": light} if light is not None else {}),
     }
     try:
         result = run_on_screen(
@@ -194,8 +214,32 @@ def cmd_display_test(args) -> int:
     from runner import display
 
     protocol, _ = _load(args.protocol)
+    if args.frames:
+        from runner.display.capture import capture_frames
+
+        capture_frames(protocol, args.frames, args.frames_per_period, args.windowed)
+        return EXIT_OK
     report = display.display_test(protocol, args.seconds, args.windowed, args.report)
     return EXIT_OK if report.get("verdict_ok", True) else EXIT_SAFETY
+
+
+def cmd_measure_light(args) -> int:
+    from runner import measure_light
+    from runner.protocol import parse_protocol, read_protocol_text
+
+    protocol = None
+    if args.protocol:
+        # The levels as written: a [light] section may name the very profile being measured.
+        protocol = parse_protocol(read_protocol_text(args.protocol), str(args.protocol), resolve_light=False)
+    if args.readings:
+        measure_light.from_csv(args.readings, args.out, protocol, args.label, args.fit_anyway)
+        return EXIT_OK
+    from runner.protocol import Protocol
+
+    patch = None if args.full_field else args.patch_deg
+    done = measure_light.on_screen(protocol or Protocol(), args.out, args.levels, args.repeats, args.per_gun, patch,
+                                   args.windowed, args.seed, args.resume, args.label, args.fit_anyway)
+    return EXIT_OK  # stopped early: readings kept, the message says how to resume
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -291,7 +335,27 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seconds", type=float, default=10.0, help="how long to measure (default 10)")
     p.add_argument("--windowed", action="store_true", help="a window instead of full screen")
     p.add_argument("--report", default="display_test.json", help="JSON report path (default display_test.json)")
+    p.add_argument("--frames", metavar="DIR",
+                   help="instead of timing, write rendered frames of each period type as PNGs and a table to DIR")
+    p.add_argument("--frames-per-period", type=int, default=3, help="frames written per period type (default 3)")
     p.set_defaults(func=cmd_display_test)
+
+    p = sub.add_parser("measure-light", help="photometer readings of this display -> light profile for [light]")
+    p.add_argument("protocol", nargs="?", help="protocol whose [display] geometry and background are used")
+    p.add_argument("--out", required=True, help="light profile to write (TOML); readings go to OUT.readings.csv")
+    p.add_argument("--readings", metavar="CSV", help="fit readings from a CSV file (level, luminance_cd_m2[, gun]); no screen")
+    p.add_argument("--levels", type=int, default=9, help="grey levels from 0 to 1 (default 9)")
+    p.add_argument("--repeats", type=int, default=2, help="readings per level (default 2)")
+    p.add_argument("--per-gun", action="store_true", help="also measure red, green and blue alone")
+    p.add_argument("--patch-deg", type=float, default=5.0, help="side of the central patch, deg (default 5)")
+    p.add_argument("--full-field", action="store_true", help="light the whole screen instead of a patch")
+    p.add_argument("--windowed", action="store_true", help="a window instead of full screen")
+    p.add_argument("--seed", type=int, default=0, help="seed of the random order (default 0)")
+    p.add_argument("--resume", action="store_true", help="continue the readings in OUT.readings.csv")
+    p.add_argument("--label", default="", help="free text naming the display, written into the profile")
+    p.add_argument("--fit-anyway", action="store_true",
+                   help="fit readings that have problems (they are listed and recorded in the profile)")
+    p.set_defaults(func=cmd_measure_light)
     return parser
 
 

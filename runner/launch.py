@@ -145,12 +145,16 @@ def simulate(
     session: str = "s1",
     screening: dict | None = None,
     progress: bool | None = None,
+    light: dict | None = None,
 ) -> list[Path]:
     """Simulate ``n_observers`` observers running the protocol.
 
     Observers are named ``sim01``, ``sim02``, ...; each gets its own log and
     sidecar in ``out_dir`` and its own parameters drawn around ``model``
     (:func:`runner.observers.draw_observers`).
+
+    light : dict, optional
+        The light profile's record (:meth:`runner.light.LightPlan.sidecar`).
 
     Returns
     -------
@@ -179,6 +183,7 @@ def simulate(
                 "session_seed": run.seed,
                 "observer_model": asdict(observer_model),
                 "safety": screening,
+                **({"light": light} if light is not None else {}),
             }
             sidecar = start_sidecar(log, base, resume, protocol_text)
             console.skip(len(log.rows))

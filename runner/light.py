@@ -15,12 +15,15 @@ Two jobs for protocols with a ``[light]`` section (:mod:`runner.light_settings`)
 
 Coloured light from a profile
 -----------------------------
-With per-gun readings, the light of a colour is ``black + Σ amplitude_k ·
-f_k(v_k)`` over the guns (the guns add up: the channel independence the
-gain–offset–gamma model assumes).  With grey readings only, the grey curve
-is shared among the guns by the sRGB luminance weights (0.2126, 0.7152,
-0.0722) — an assumption, stated in the screening report; a luminance in cd/m²
-for coloured dots is refused without per-gun readings.  Chromaticities (for
+Grey (all guns at one level) always uses the grey model: that is what was
+measured.  L_max is the grey model's luminance at level 1 (white).  For the
+screening, which needs light per gun, the grey model's amplitude is shared
+among the guns: with per-gun readings in proportion to their fitted
+amplitudes, each gun on its own fitted curve (the guns add up: the channel
+independence the gain–offset–gamma model assumes); with grey readings only
+by the sRGB luminance weights (0.2126, 0.7152, 0.0722) on the grey curve —
+an assumption, stated in the screening report.  A luminance in cd/m² for
+coloured dots is refused without per-gun readings.  Chromaticities (for
 the red-flash test) always assume sRGB primaries: a photometer measures no
 colour.
 """
@@ -113,19 +116,17 @@ def measured_light(profile: LightProfile) -> LightModel:
     Per-gun models when the profile has all three guns, otherwise the grey
     model shared among the guns by the sRGB weights (see the module docstring).
     """
+    grey = profile.grey
+    black, top = grey.min_cd_m2, grey.max_cd_m2
     if profile.per_gun:
         models = [profile.models[c] for c in ("red", "green", "blue")]
-        black = profile.black_cd_m2
-        top = black + sum(m.amplitude_cd_m2 for m in models)
-        weights = np.array([m.amplitude_cd_m2 for m in models]) / top
+        share = np.array([m.amplitude_cd_m2 for m in models])
         how = "per-gun readings"
     else:
-        grey = profile.grey
         models = [grey] * 3
-        black = grey.min_cd_m2
-        top = grey.max_cd_m2
-        weights = SRGB_Y * (grey.max_cd_m2 - black) / top
+        share = SRGB_Y
         how = "grey readings, shared among the guns by sRGB weights"
+    weights = share / share.sum() * (top - black) / top
 
     def curve(m):
         low = float(m.normalised(0.0))
@@ -201,7 +202,7 @@ class LightPlan:
             asked = self.requested.get(key)
             head = f"{asked:.4g} cd/m2 requested -> " if asked is not None else "from the grey level: "
             code = round(level * CODES)
-            nearest = float(self.light.cd_m2(np.full(3, code / CODES) * self._colour(what)))
+            nearest = self.cd_m2(code / CODES, self._colour(what))
             lines.append(f"           {what:<10} {head}grey level {level:.4f} = {value:.4g} cd/m2 "
                          f"(nearest 8-bit code {code}: {nearest:.4g} cd/m2)")
         for name in ("weber_contrast", "michelson_contrast"):
@@ -210,6 +211,10 @@ class LightPlan:
         weber = "inf (black background)" if math.isinf(self.weber) else f"{self.weber:.4g}"
         lines.append(f"           contrast of the dots: Weber {weber}, Michelson {self.michelson:.4g}")
         return lines
+
+    def cd_m2(self, level: float, colour) -> float:
+        """Luminance of ``level · colour``: the grey model for grey, the light model otherwise."""
+        return _cd_m2(self.profile, self.light, level, colour)
 
     def _colour(self, what: str) -> np.ndarray:
         return np.ones(3) if what == "background" else np.asarray(self.dot_rgb)
@@ -242,6 +247,13 @@ def profile_path(protocol, source: str = "") -> Path:
 def _range_error(source: str, key: str, value: float, profile: LightProfile, what: str) -> InputError:
     return InputError(source, key, f"{what} of {value:.4g} cd/m2 is outside what the display gives by its light "
                                      f"profile, {profile.black_cd_m2:.4g} to {profile.max_cd_m2:.4g} cd/m2")
+
+
+def _cd_m2(profile: LightProfile, light: LightModel, level: float, colour) -> float:
+    colour = np.asarray(colour, dtype=float)
+    if np.allclose(colour, 1.0):
+        return float(profile.grey.luminance(level))
+    return float(light.cd_m2(level * colour))
 
 
 def _dot_level(light: LightModel, profile: LightProfile, colour: np.ndarray, target: float) -> float:
@@ -303,7 +315,7 @@ def plan_light(protocol, source: str = "", now=None) -> LightPlan | None:
             raise _range_error(source, "light.background_cd_m2", bg_cd, profile, "a background")
     else:
         bg_level = protocol.display.background
-    bg_cd = float(light.cd_m2(np.full(3, bg_level)))
+    bg_cd = _cd_m2(profile, light, bg_level, np.ones(3))
     dots_key = settings.dots_field
     if dots_key is None:
         dots_level = protocol.dots.level
@@ -324,7 +336,7 @@ def plan_light(protocol, source: str = "", now=None) -> LightPlan | None:
         dots_level = _dot_level(light, profile, colour, target)
         if math.isnan(dots_level):
             raise _range_error(source, f"light.{dots_key}", target, profile, "dots")
-    dots_cd = float(light.cd_m2(dots_level * colour))
+    dots_cd = _cd_m2(profile, light, dots_level, colour)
     age = profile.age_days(now)
     warnings = []
     if age > settings.max_age_days:

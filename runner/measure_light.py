@@ -1,0 +1,277 @@
+"""``aftershift measure-light``: readings in, light profile out.
+
+Two ways in, one way out:
+
+* on the display (:mod:`runner.display.light_meter`): a patch at grey levels
+  in random order, the experimenter types each photometer reading; every
+  reading goes to a CSV file (appended and flushed to disk) the moment it is
+  accepted, so a crash or Escape loses nothing and ``--resume`` continues;
+* from a CSV file of readings (``--readings``), without a screen.
+
+Both end in :func:`finish`: the readings are checked and fitted
+(:mod:`fitting.display_model`), the parameters with intervals and residuals
+are printed, and the light profile (:mod:`runner.light_profile`) and a figure
+are written next to each other.  Readings with problems are listed with
+their rows and refused (exit 2) unless ``--fit-anyway`` is given.
+"""
+
+from __future__ import annotations
+
+import csv
+import os
+import sys
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from pathlib import Path
+
+import numpy as np
+
+from fitting.display_model import ReadingsRefused, Readings, fit_readings, make_readings, read_readings
+from fitting.errors import InputError
+from runner.light_profile import profile_text, write_atomically
+
+#: Columns of the readings file the screen routine writes.
+LOG_COLUMNS = ("order", "gun", "level", "luminance_cd_m2", "seed", "time_utc")
+
+#: Colour of each channel at level 1.
+GUN_RGB = {"grey": (1.0, 1.0, 1.0), "red": (1.0, 0.0, 0.0), "green": (0.0, 1.0, 0.0), "blue": (0.0, 0.0, 1.0)}
+
+
+@dataclass(frozen=True)
+class Step:
+    """One patch to measure.
+
+    Attributes
+    ----------
+    order : int
+        1-based position in the session.
+    gun : str
+        ``grey`` or the gun shown alone.
+    level : float
+        Grey level, a whole 8-bit code divided by 255.
+    """
+
+    order: int
+    gun: str
+    level: float
+
+    @property
+    def rgb(self) -> tuple[float, float, float]:
+        """Signal values of the patch."""
+        return tuple(self.level * c for c in GUN_RGB[self.gun])
+
+
+def measurement_steps(n_levels: int, repeats: int, per_gun: bool, seed: int) -> list[Step]:
+    """Every patch of a session, in random order.
+
+    Levels are ``n_levels`` whole 8-bit codes from 0 to 255, equally spaced;
+    each is shown ``repeats`` times for grey and, with ``per_gun``, for each
+    gun alone.  The order is a random permutation drawn from ``seed``.
+
+    Raises
+    ------
+    InputError
+        Fewer than 5 or more than 256 levels, repeats outside 1..10.
+    """
+    if not 5 <= n_levels <= 256:
+        raise InputError("argument", "--levels", f"expected 5 to 256 levels, got {n_levels}")
+    if not 1 <= repeats <= 10:
+        raise InputError("argument", "--repeats", f"expected 1 to 10 repeats, got {repeats}")
+    codes = np.unique(np.round(np.linspace(0, 255, n_levels)).astype(int))
+    guns = ["grey", "red", "green", "blue"] if per_gun else ["grey"]
+    items = [(g, int(c)) for g in guns for c in codes for _ in range(repeats)]
+    order = np.random.default_rng([seed, 15]).permutation(len(items))
+    return [Step(i + 1, items[j][0], items[j][1] / 255.0) for i, j in enumerate(order)]
+
+
+class ReadingsLog:
+    """The screen routine's readings file: one row per accepted reading, fsync'd.
+
+    Parameters
+    ----------
+    path : Path
+    seed : int
+    resume : bool
+        Continue an existing file (its rows must match the planned steps).
+    """
+
+    def __init__(self, path: Path, seed: int, resume: bool):
+        self.path = Path(path)
+        self.seed = seed
+        self.rows: list[dict] = []
+        if self.path.exists():
+            if not resume:
+                raise InputError(str(self.path), "file", "exists; pass --resume to continue it, or choose another --out")
+            with self.path.open(newline="", encoding="utf-8") as f:
+                self.rows = [r for r in csv.DictReader(f) if r.get("luminance_cd_m2", "").strip()]
+            if self.rows and int(self.rows[0]["seed"]) != seed:
+                self.seed = int(self.rows[0]["seed"])
+        try:
+            self.path.parent.mkdir(parents=True, exist_ok=True)
+            new = not self.path.exists() or self.path.stat().st_size == 0
+            self._file = self.path.open("a", newline="", encoding="utf-8")
+        except OSError as exc:
+            raise InputError(str(self.path), "--out", f"cannot be written ({exc.strerror})") from None
+        self._writer = csv.DictWriter(self._file, fieldnames=LOG_COLUMNS)
+        if new:
+            self._writer.writeheader()
+            self._sync()
+
+    def check_against(self, steps: list[Step]) -> None:
+        """Refuse a resumed file whose rows are not the start of ``steps``."""
+        if len(self.rows) > len(steps):
+            raise InputError(str(self.path), "rows", f"holds {len(self.rows)} readings, more than the {len(steps)} planned")
+        for row, step in zip(self.rows, steps):
+            if row["gun"] != step.gun or abs(float(row["level"]) - step.level) > 1e-6:
+                raise InputError(str(self.path), f"order {row['order']}",
+                                 "does not match this session's plan; resume with the same --levels, --repeats "
+                                 "and --per-gun")
+
+    def _sync(self) -> None:
+        self._file.flush()
+        os.fsync(self._file.fileno())
+
+    def append(self, step: Step, cd_m2: float) -> None:
+        """Write one accepted reading and flush it to disk."""
+        row = {"order": step.order, "gun": step.gun, "level": f"{step.level:.6f}", "luminance_cd_m2": repr(cd_m2),
+               "seed": self.seed, "time_utc": datetime.now(timezone.utc).replace(microsecond=0).isoformat()}
+        self._writer.writerow(row)
+        self._sync()
+        self.rows.append({k: str(v) for k, v in row.items()})
+
+    def close(self) -> None:
+        """Close the file."""
+        self._file.close()
+
+    def readings(self) -> Readings:
+        """The readings so far."""
+        return make_readings([float(r["level"]) for r in self.rows], [float(r["luminance_cd_m2"]) for r in self.rows],
+                             [r["gun"] for r in self.rows], [int(r["order"]) for r in self.rows], str(self.path))
+
+
+def parse_reading(text: str) -> float | None:
+    """A typed reading in cd/m² (decimal point or comma), or None if it is not one."""
+    try:
+        value = float(text.strip().replace(",", "."))
+    except ValueError:
+        return None
+    return value if np.isfinite(value) and 0.0 <= value < 1e6 else None
+
+
+def readings_path(out: str | Path) -> Path:
+    """Where the screen routine keeps the readings of profile ``out``."""
+    p = Path(out)
+    return p.with_name(p.stem + ".readings.csv")
+
+
+def finish(readings: Readings, out: str | Path, screen_cm, screen_px, refresh_hz: float | None, field: str,
+           surround_level: float, label: str = "", fit_anyway: bool = False, measured_utc: datetime | None = None,
+           stream=None) -> Path:
+    """Fit readings, print the result, write the light profile and its figure.
+
+    Parameters
+    ----------
+    readings : Readings
+    out : str or Path
+        The profile file (TOML); the figure goes next to it (``.png``/``.pdf``).
+    screen_cm, screen_px, refresh_hz, field, surround_level, label
+        Written into the profile (see :func:`runner.light_profile.profile_text`).
+    fit_anyway : bool
+        Fit readings with problems (listed in the profile).
+    measured_utc : datetime, optional
+        Default: now.
+    stream : file-like, optional
+        Where the report is printed (default standard output).
+
+    Returns
+    -------
+    Path
+        The profile written.
+
+    Raises
+    ------
+    ReadingsRefused
+        Problems in the readings (every one is printed first), exit 2.
+    """
+    from fitting.display_figure import light_figure
+
+    stream = stream or sys.stdout
+    if "grey" not in readings.channels:
+        raise InputError(readings.source, "gun", "no grey readings (all guns at the same level); a profile needs them")
+    try:
+        fits = fit_readings(readings, fit_anyway=fit_anyway)
+    except ReadingsRefused as exc:
+        stream.write("problems in the readings (nothing fitted; measure these rows again, or pass --fit-anyway):\n")
+        stream.write("".join(f"  {p.line()}\n" for p in exc.problems))
+        stream.flush()
+        raise
+    lines = [f"gain-offset-gamma fit of {readings.level.size} readings from {readings.source}:"]
+    for fit in fits.values():
+        lines += ["  " + x for x in fit.summary_lines()]
+        lines += [f"  fitted anyway despite: {p.line()}" for p in fit.problems]
+    when = measured_utc or datetime.now(timezone.utc)
+    text = profile_text(fits, when, screen_cm, screen_px, refresh_hz, field, surround_level, label,
+                        fitted_anyway=any(f.problems for f in fits.values()))
+    path = write_atomically(out, text)
+    figures = light_figure(fits, path.with_suffix(""), title=f"light profile {path.name}")
+    lines += [f"light profile: {path}", f"figure: {figures[0]}",
+              "this calibration holds only for this display, its current settings (brightness, contrast, colour "
+              "mode) and its warm-up state; measure again after changing any of them"]
+    stream.write("\n".join(lines) + "\n")
+    stream.flush()
+    return path
+
+
+def from_csv(readings_file: str | Path, out: str | Path, protocol=None, label: str = "",
+             fit_anyway: bool = False) -> Path:
+    """Fit readings from a CSV file and write the light profile (no screen).
+
+    The display's size and resolution come from ``protocol`` (``[display]``),
+    or the built-in defaults; the refresh rate is recorded as not measured.
+    """
+    from runner.protocol import Protocol
+
+    protocol = protocol or Protocol()
+    d = protocol.display
+    readings = read_readings(readings_file)
+    return finish(readings, out, d.screen_cm, d.screen_px, None, f"readings from {Path(readings_file).name}",
+                  d.background, label, fit_anyway)
+
+
+def on_screen(protocol, out: str | Path, n_levels: int = 9, repeats: int = 2, per_gun: bool = False,
+              patch_deg: float | None = 5.0, windowed: bool = False, seed: int = 0, resume: bool = False,
+              label: str = "", fit_anyway: bool = False, stream=None) -> Path | None:
+    """Measure the display on screen, then fit and write the light profile.
+
+    Readings go to :func:`readings_path` of ``out`` as they are accepted.
+
+    Returns
+    -------
+    Path or None
+        The profile, or None when the experimenter stopped early (the
+        readings so far are kept; ``resume`` continues).
+    """
+    from runner.display.light_meter import measure
+
+    stream = stream or sys.stdout
+    steps = measurement_steps(n_levels, repeats, per_gun, seed)
+    log = ReadingsLog(readings_path(out), seed, resume)
+    try:
+        if log.seed != seed:
+            steps = measurement_steps(n_levels, repeats, per_gun, log.seed)
+        log.check_against(steps)
+        if len(log.rows) < len(steps):
+            complete, hz = measure(protocol, steps, log, windowed, patch_deg, stream)
+        else:
+            complete, hz = True, None
+    finally:
+        log.close()
+    if not complete:
+        stream.write(f"stopped: {len(log.rows)} of {len(steps)} readings kept in {log.path}; "
+                     "continue with --resume\n")
+        stream.flush()
+        return None
+    d = protocol.display
+    field = f"central square patch of {patch_deg:g} deg" if patch_deg is not None else "full field"
+    return finish(log.readings(), out, d.screen_cm, d.screen_px, hz, field, d.background, label, fit_anyway,
+                  stream=stream)
