@@ -39,20 +39,13 @@ from scipy import optimize
 
 from fitting.errors import InputError
 from runner.light_profile import LightProfile, load_profile
+from runner.safety import SRGB_TO_XYZ, srgb_to_linear
 
 #: Y row of the IEC 61966-2-1 RGB -> XYZ matrix (sRGB luminance weights).
-SRGB_Y = np.array([0.2126, 0.7152, 0.0722])
-#: sRGB decoding breakpoint (IEC 61966-2-1).
-_SRGB_BREAK = 0.04045
+SRGB_Y = SRGB_TO_XYZ[1]
 #: Grey levels a display usually shows (8 bits per gun); used to report the
 #: luminance of the nearest code (common practice, no source).
 CODES = 255
-
-
-def _srgb_decode(signal) -> np.ndarray:
-    v = np.asarray(signal, dtype=float)
-    curved = ((np.maximum(v, _SRGB_BREAK) + 0.055) / 1.055) ** 2.4
-    return np.where(v <= _SRGB_BREAK, v / 12.92, curved)
 
 
 @dataclass(frozen=True)
@@ -92,7 +85,7 @@ class LightModel:
         """Linear light per gun (0..1 of that gun's range) of signal values."""
         s = np.asarray(signal_rgb, dtype=float)
         if self.curves is None:
-            return _srgb_decode(s)
+            return srgb_to_linear(s)
         return np.stack([self.curves[k](s[..., k]) for k in range(3)], axis=-1)
 
     def relative_luminance(self, linear_rgb) -> np.ndarray:
