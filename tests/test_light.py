@@ -1,0 +1,396 @@
+"""Measured light: the gain–offset–gamma fit, light profiles, [light] protocols, screening with a profile.
+
+Outside references named beside the checks: the gain–offset–gamma model
+(Berns, Motta & Gorzynski 1993, Color Research & Application 18; Berns 1996,
+Displays 16 — from memory), scipy's ``curve_fit`` as an independent
+least-squares fit, IEC 61966-2-1 for the sRGB curve and WCAG 2.x SC 2.3.1
+for the flash thresholds.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from datetime import datetime, timedelta, timezone
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy import optimize, stats
+
+from fitting.display_model import (
+    GainOffsetGamma,
+    ReadingsRefused,
+    fit_channel,
+    make_readings,
+    read_readings,
+)
+from fitting.errors import InputError
+from runner import safety
+from runner.cli import main
+from runner.light import SRGB_LIGHT, light_for as safety_light, light_plan
+from runner.light_profile import load_profile
+from runner.protocol import load_protocol
+
+ROOT = Path(__file__).resolve().parent.parent
+EXAMPLE_READINGS = ROOT / "protocols" / "light" / "example_readings.csv"
+
+#: A display of known parameters: black 0.4 cd/m2, 100 cd/m2 at full level,
+#: gamma 2.3 and a small negative offset (levels below 0.05/1.05 are black).
+TRUE = GainOffsetGamma(black_cd_m2=0.4, amplitude_cd_m2=99.6, gain=1.05, gamma=2.3)
+
+
+def simulate_readings(model: GainOffsetGamma, seed: int, n_levels: int = 9, repeats: int = 3,
+                      relative_sd: float = 0.01, absolute_sd: float = 0.01):
+    """Readings with photometer noise: 1 % of the reading plus 0.01 cd/m2 (SD)."""
+    rng = np.random.default_rng(seed)
+    level = np.repeat(np.round(np.linspace(0, 255, n_levels)) / 255, repeats)
+    true = model.luminance(level)
+    noisy = true * (1 + relative_sd * rng.standard_normal(level.size)) + absolute_sd * rng.standard_normal(level.size)
+    return make_readings(level, np.maximum(noisy, 0.0))
+
+
+# ---------------------------------------------------------------------------------------------
+# The model and its fit
+
+
+def test_fit_recovers_gain_offset_gamma_within_stated_tolerances():
+    # 9 levels x 3 repeats, 1 % noise.  Over 200 simulated displays the
+    # estimates scatter with SDs of 0.012 (gamma), 0.002 (gain), 0.007 cd/m2
+    # (black) and 0.37 % (maximum); the tolerances are about 4 SDs, met in
+    # every one of 20 displays here.
+    for seed in range(20):
+        fit = fit_channel(simulate_readings(TRUE, seed))
+        m = fit.model
+        assert m.gamma == pytest.approx(TRUE.gamma, abs=0.05), seed
+        assert m.gain == pytest.approx(TRUE.gain, abs=0.01), seed
+        assert m.offset == pytest.approx(TRUE.offset, abs=0.01), seed
+        assert m.black_cd_m2 == pytest.approx(TRUE.black_cd_m2, abs=0.03), seed
+        assert m.max_cd_m2 == pytest.approx(TRUE.max_cd_m2, rel=0.015), seed
+
+
+def test_intervals_cover_the_true_parameters_about_95_percent():
+    # 95 % intervals over 60 simulated displays: binomial(60, 0.95) puts 51 or
+    # more covered with probability 0.997, so fewer means the intervals are
+    # too narrow.
+    covered = {"gamma": 0, "gain": 0, "black_cd_m2": 0}
+    n = 60
+    for seed in range(100, 100 + n):
+        fit = fit_channel(simulate_readings(TRUE, seed))
+        for name in covered:
+            lo, hi = fit.ci[name]
+            covered[name] += lo <= getattr(TRUE, name) <= hi
+    assert all(count >= 51 for count in covered.values()), covered
+
+
+def test_fit_agrees_with_scipy_curve_fit():
+    # scipy.optimize.curve_fit with the same weights is an independent
+    # least-squares reference: same estimates, same standard errors.
+    readings = simulate_readings(TRUE, 7)
+    fit = fit_channel(readings)
+    sigma = np.maximum(readings.cd_m2, 0.01 * readings.cd_m2.max())
+
+    def model(v, b, a, g, c):
+        return b + a * np.maximum(g * v + 1 - g, 0) ** c
+
+    popt, pcov = optimize.curve_fit(model, readings.level, readings.cd_m2, p0=[0.5, 90, 1.0, 2.0], sigma=sigma,
+                                    absolute_sigma=False, maxfev=20000)
+    ours = [fit.model.black_cd_m2, fit.model.amplitude_cd_m2, fit.model.gain, fit.model.gamma]
+    assert ours == pytest.approx(list(popt), rel=1e-4)
+    for i, name in enumerate(("black_cd_m2", "amplitude_cd_m2", "gain", "gamma")):
+        half = stats.t.ppf(0.975, readings.level.size - 4) * math.sqrt(pcov[i, i])
+        assert fit.ci[name][1] - ours[i] == pytest.approx(half, rel=1e-3), name
+
+
+@pytest.mark.parametrize("model", [
+    TRUE,
+    GainOffsetGamma(0.05, 250.0, 1.0, 2.2),     # pure power law on a dark display
+    GainOffsetGamma(2.0, 60.0, 0.9, 1.8),       # positive offset: level 0 is above black
+    GainOffsetGamma(0.3, 80.0, 1.2, 2.6),       # the lowest sixth of the levels is black
+])
+def test_inverse_round_trips_within_half_a_percent(model):
+    # luminance -> level -> luminance over the whole range (issue 15: 0.5 %).
+    target = np.linspace(model.min_cd_m2, model.max_cd_m2, 2001)
+    back = model.luminance(model.level(target))
+    assert np.max(np.abs(back / target - 1)) < 0.005
+    # and level -> luminance -> level where the curve rises
+    v = np.linspace(max(0.0, -model.offset / model.gain) + 1e-3, 1.0, 500)
+    assert model.level(model.luminance(v)) == pytest.approx(v, abs=1e-9)
+    assert np.isnan(model.level(model.max_cd_m2 * 1.01))
+    assert np.isnan(model.level(model.min_cd_m2 * 0.5 - 0.01))
+
+
+def test_srgb_curve_at_published_points():
+    # IEC 61966-2-1 decoding at points recalled from memory: 8-bit code 128
+    # gives 0.2158605 and code 64 gives 0.0512695 in linear light; code 10
+    # (0.0392) lies on the linear segment below 0.04045: 0.0392157 / 12.92.
+    assert float(SRGB_LIGHT.linear([128 / 255] * 3)[0]) == pytest.approx(0.2158605, abs=2e-7)
+    assert float(SRGB_LIGHT.linear([64 / 255] * 3)[0]) == pytest.approx(0.0512695, abs=2e-7)
+    assert float(SRGB_LIGHT.linear([10 / 255] * 3)[0]) == pytest.approx(10 / 255 / 12.92, rel=1e-12)
+    # relative luminance of white is 1 and of black 0 (WCAG 2.x definition)
+    assert float(SRGB_LIGHT.relative_luminance(SRGB_LIGHT.linear([1, 1, 1]))) == pytest.approx(1.0, abs=1e-12)
+    assert float(SRGB_LIGHT.relative_luminance(SRGB_LIGHT.linear([0, 0, 0]))) == 0.0
+
+
+# ---------------------------------------------------------------------------------------------
+# Problem readings are reported with their rows, never fitted silently
+
+
+def test_non_monotonic_readings_are_refused_with_their_rows():
+    level = np.linspace(0, 1, 9)
+    y = TRUE.luminance(level)
+    y[6] = y[5] * 0.8  # level 0.75 reads less than level 0.625
+    with pytest.raises(ReadingsRefused) as err:
+        fit_channel(make_readings(level, y))
+    assert err.value.problems[0].kind == "not monotonic"
+    assert err.value.problems[0].rows == (6, 7)
+    fitted = fit_channel(make_readings(level, y), fit_anyway=True)
+    assert fitted.problems and fitted.problems[0].rows == (6, 7)
+
+
+def test_disagreeing_repeats_and_typing_slips_are_refused():
+    level = np.repeat(np.linspace(0, 1, 9), 2)
+    y = TRUE.luminance(level)
+    y[9] *= 1.2  # one repeat 20 % off
+    with pytest.raises(ReadingsRefused) as err:
+        fit_channel(make_readings(level, y))
+    assert err.value.problems[0].kind == "repeats disagree"
+    assert err.value.problems[0].rows == (9, 10)
+    single = np.linspace(0, 1, 9)
+    z = TRUE.luminance(single)
+    z[4] = z[4] * 1.12  # 13.9 typed for 12.4: still monotonic, far from the curve
+    with pytest.raises(ReadingsRefused) as err:
+        fit_channel(make_readings(single, z))
+    assert err.value.problems[0].kind == "far from the curve"
+    assert 5 in err.value.problems[0].rows
+
+
+def test_bad_readings_files_name_line_and_column(tmp_path):
+    f = tmp_path / "r.csv"
+    f.write_text("level,luminance_cd_m2\n0,0.3\n0.5,abc\n", encoding="utf-8")
+    with pytest.raises(InputError, match="line 3: luminance_cd_m2"):
+        read_readings(f)
+    f.write_text("level,luminance_cd_m2,gun\n1.5,3,grey\n", encoding="utf-8")
+    with pytest.raises(InputError, match="row 2: level"):
+        read_readings(f)
+    f.write_text("level,cd\n0,1\n", encoding="utf-8")
+    with pytest.raises(InputError, match="luminance_cd_m2: missing column"):
+        read_readings(f)
+    f.write_text("level,luminance_cd_m2,gun\n0.5,3,purple\n", encoding="utf-8")
+    with pytest.raises(InputError, match="gun"):
+        read_readings(f)
+
+
+# ---------------------------------------------------------------------------------------------
+# measure-light from a CSV file, and the profile it writes
+
+
+def test_measure_light_from_csv_writes_a_profile_that_round_trips(tmp_path, capsys):
+    out = tmp_path / "display.toml"
+    assert main(["measure-light", "--readings", str(EXAMPLE_READINGS), "--out", str(out)]) == 0
+    printed = capsys.readouterr().out
+    assert "gamma" in printed and "95% CI" in printed and "holds only for this display" in printed
+    assert (tmp_path / "display.png").exists()
+    profile = load_profile(out)
+    assert set(profile.models) == {"grey", "red", "green", "blue"}
+    again = fit_channel(read_readings(EXAMPLE_READINGS).only("grey")).model
+    for name in ("black_cd_m2", "amplitude_cd_m2", "gain", "gamma"):
+        assert getattr(profile.grey, name) == pytest.approx(getattr(again, name), rel=1e-9)
+    assert profile.black_cd_m2 == pytest.approx(again.min_cd_m2, rel=1e-9)
+    assert profile.age_days() < 1
+
+
+def test_measure_light_refuses_problem_readings_with_exit_2(tmp_path, capsys):
+    f = tmp_path / "bad.csv"
+    lines = ["level,luminance_cd_m2"] + [f"{v:.4f},{TRUE.luminance(v):.4f}" for v in np.linspace(0, 1, 7)]
+    lines[5] = "0.6667,5.0"  # far below its neighbours: not monotonic
+    f.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    assert main(["measure-light", "--readings", str(f), "--out", str(tmp_path / "p.toml")]) == 2
+    captured = capsys.readouterr()
+    assert "not monotonic" in captured.out and "rows 5, 6" in captured.out
+    assert "bad.csv: rows 5, 6" in captured.err
+    assert not (tmp_path / "p.toml").exists()
+    assert main(["measure-light", "--readings", str(f), "--out", str(tmp_path / "p.toml"), "--fit-anyway"]) == 0
+    assert "fitted_anyway = true" in (tmp_path / "p.toml").read_text(encoding="utf-8")
+
+
+# ---------------------------------------------------------------------------------------------
+# Protocols in cd/m2
+
+
+def write_profile(folder: Path, black: float, amplitude: float, gain: float = 1.0, gamma: float = 2.2,
+                  days_ago: float = 1.0, name: str = "profile.toml") -> Path:
+    """A hand-written light profile with a grey model only."""
+    when = (datetime.now(timezone.utc) - timedelta(days=days_ago)).replace(microsecond=0).isoformat()
+    path = folder / name
+    path.write_text(
+        f'kind = "aftershift light profile"\nversion = 1\nmeasured_utc = "{when}"\n'
+        "screen_cm = [53.0, 30.0]\nscreen_px = [1920, 1080]\n\n[model.grey]\n"
+        f"black_cd_m2 = {black}\namplitude_cd_m2 = {amplitude}\ngain = {gain}\ngamma = {gamma}\n",
+        encoding="utf-8",
+    )
+    return path
+
+
+def write_protocol(folder: Path, light: str, extra: str = "", name: str = "p.toml") -> Path:
+    path = folder / name
+    path.write_text(f'title = "light test"\n{extra}\n[light]\n{light}\n', encoding="utf-8")
+    return path
+
+
+def test_luminances_become_grey_levels(tmp_path, capsys):
+    write_profile(tmp_path, black=0.5, amplitude=99.5, gamma=2.0)
+    p = write_protocol(tmp_path, 'profile = "profile.toml"\nbackground_cd_m2 = 10.0\nmichelson_contrast = 0.6')
+    protocol = load_protocol(p)
+    # Hand calculation: L = 0.5 + 99.5 v^2.  Background 10 -> v = sqrt(9.5/99.5);
+    # Michelson 0.6 -> L_dots = 10 * 1.6 / 0.4 = 40 -> v = sqrt(39.5/99.5).
+    assert protocol.display.background == pytest.approx(math.sqrt(9.5 / 99.5), rel=1e-12)
+    assert protocol.dots.level == pytest.approx(math.sqrt(39.5 / 99.5), rel=1e-12)
+    plan = light_plan(protocol)
+    assert plan.dots_cd_m2 == pytest.approx(40.0)
+    assert plan.weber == pytest.approx(3.0) and plan.michelson == pytest.approx(0.6)
+    assert main(["check", str(p)]) == 0
+    out = capsys.readouterr().out
+    assert "10 cd/m2 requested -> grey level 0.3090" in out
+    assert "Weber 3, Michelson 0.6" in out
+    assert "relative luminance from: measured display" in out
+
+
+def test_weber_contrast_and_dots_in_cd_m2(tmp_path):
+    write_profile(tmp_path, black=0.5, amplitude=99.5, gamma=2.0)
+    p = write_protocol(tmp_path, 'profile = "profile.toml"\nbackground_cd_m2 = 5.0\nweber_contrast = 4.0')
+    assert light_plan(load_protocol(p)).dots_cd_m2 == pytest.approx(25.0)  # 5 * (1 + 4)
+    p = write_protocol(tmp_path, 'profile = "profile.toml"\ndots_cd_m2 = 60.0')
+    protocol = load_protocol(p)
+    assert protocol.dots.level == pytest.approx(math.sqrt(59.5 / 99.5))
+    assert protocol.display.background == 0.0  # the written level, as without [light]
+
+
+@pytest.mark.parametrize("light, field", [
+    ('background_cd_m2 = 0.2', "light.background_cd_m2"),           # below the black level 0.5
+    ('dots_cd_m2 = 120.0', "light.dots_cd_m2"),                      # above the maximum 100
+    ('background_cd_m2 = 50.0\nweber_contrast = 2.0', "light.weber_contrast"),   # 150 cd/m2
+    ('background_cd_m2 = 50.0\nmichelson_contrast = 0.5', "light.michelson_contrast"),
+    ('weber_contrast = 2.0', "light"),                                # a contrast needs a background
+    ('dots_cd_m2 = 5.0\nweber_contrast = 2.0', "light"),              # two ways to give the dots
+])
+def test_out_of_range_or_conflicting_luminance_exits_2_naming_the_field(tmp_path, capsys, light, field):
+    write_profile(tmp_path, black=0.5, amplitude=99.5)
+    p = write_protocol(tmp_path, 'profile = "profile.toml"\n' + light)
+    assert main(["check", str(p)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.startswith(f"aftershift: {p}: {field}:"), err
+    assert len(err.splitlines()) == 1
+
+
+def test_level_given_twice_and_missing_profile_exit_2(tmp_path, capsys):
+    write_profile(tmp_path, black=0.5, amplitude=99.5)
+    p = write_protocol(tmp_path, 'profile = "profile.toml"\nbackground_cd_m2 = 5.0', "[display]\nbackground = 0.1")
+    assert main(["check", str(p)]) == 2
+    assert "display.background: give the background" in capsys.readouterr().err
+    p = write_protocol(tmp_path, 'profile = "nowhere.toml"')
+    assert main(["check", str(p)]) == 2
+    assert f"{p}: light.profile: light profile" in capsys.readouterr().err
+    p = write_protocol(tmp_path, 'profile = "profile.toml"\ndots_cd_m2 = 5.0', "[dots]\ncolor_rgb = [1.0, 0.0, 0.0]")
+    assert main(["check", str(p)]) == 2
+    assert "dots.color_rgb: dots in cd/m2 with a colour" in capsys.readouterr().err
+
+
+def test_old_profile_warns_and_sidecar_records_hash_and_age(tmp_path, capsys):
+    profile = write_profile(tmp_path, black=0.5, amplitude=99.5, days_ago=45)
+    p = write_protocol(
+        tmp_path, 'profile = "profile.toml"\nbackground_cd_m2 = 2.0\nmax_age_days = 31',
+        "[design]\nadapter_offsets_deg = [30.0]\nlags = [0]\ntrials_per_track = 2\npractice_trials = 0",
+    )
+    assert main(["check", str(p)]) == 0
+    err = capsys.readouterr().err
+    assert "measured 45 days ago, more than light.max_age_days = 31" in err
+    assert "common practice (no source)" in err
+    out = tmp_path / "out"
+    assert main(["simulate", str(p), "--out", str(out)]) == 0
+    sidecar = json.loads(next(out.glob("*.json")).read_text(encoding="utf-8"))
+    import hashlib
+
+    assert sidecar["light"]["profile_sha256"] == hashlib.sha256(profile.read_bytes()).hexdigest()
+    assert sidecar["light"]["profile_age_days"] == pytest.approx(45, abs=0.01)
+    assert sidecar["light"]["background_cd_m2"] == pytest.approx(2.0)
+    assert sidecar["display_profile"]["background"] == pytest.approx((1.5 / 99.5) ** (1 / 2.2), rel=1e-9)
+    assert "measured display" in sidecar["safety"]["relative_luminance_from"]
+
+
+def test_protocols_without_light_are_unchanged(tmp_path):
+    p = tmp_path / "plain.toml"
+    p.write_text('title = "plain"\n[display]\nbackground = 0.1\n', encoding="utf-8")
+    protocol = load_protocol(p)
+    assert protocol.light is None and light_plan(protocol) is None
+    assert protocol.display.background == 0.1
+    assert safety.screen_protocol(protocol).light_source.startswith("sRGB")
+    out = tmp_path / "out"
+    assert main(["simulate", str(p), "--out", str(out), "--seed", "1"]) == 0
+    sidecar = json.loads(next(out.glob("*.json")).read_text(encoding="utf-8"))
+    assert "light" not in sidecar and sidecar["display_profile"]["background"] == 0.1
+
+
+# ---------------------------------------------------------------------------------------------
+# Flash screening with measured light (WCAG 2.x SC 2.3.1), against a hand calculation
+
+#: One-frame adapter and test at 120 Hz, no pause: with the assumed 0.2-s
+#: answer a trial lasts 26 frames, 4.6 trials per second; a 6-deg photodiode
+#: patch (46 % of a 10-deg field, over the 25 % that counts) turns white at
+#: every test, so it flashes 4.6 times a second if its step counts as a flash.
+FAST = """
+[timing]
+adapter_s = 0.008333333333333333
+test_s = 0.008333333333333333
+pause_after_answer_s = 0.0
+[design]
+lags = [0]
+[safety]
+photodiode_patch_deg = 6.0
+"""
+
+
+def hand_flash(background_rel: float) -> bool:
+    """WCAG 2.x general flash for a step from the background to white (1.0):
+    a change of at least 0.1 whose darker state is below 0.80."""
+    return (1.0 - background_rel) >= 0.1 and background_rel < 0.8
+
+
+def check_patch_step(protocol, result, background_rel: float) -> None:
+    """The patch's step in the screening's light equals the hand calculation."""
+    light = safety_light(protocol)
+    step = light.relative_luminance(light.linear([1.0] * 3)) - light.relative_luminance(
+        light.linear([protocol.display.background] * 3))
+    assert float(step) == pytest.approx(1.0 - background_rel, rel=1e-9)
+    if not result.passed:  # the worst field is then the patch's, and its largest step is this one
+        assert "photodiode patch" in result.worst_field.name
+        assert result.worst_field.largest_change == pytest.approx(1.0 - background_rel, rel=1e-6)
+
+
+@pytest.mark.parametrize("black, amplitude", [(0.3, 44.7), (0.3, 119.7)])
+def test_cd_m2_protocol_passes_or_fails_by_the_profile_maximum(tmp_path, black, amplitude):
+    write_profile(tmp_path, black=black, amplitude=amplitude)
+    p = write_protocol(tmp_path, 'profile = "profile.toml"\nbackground_cd_m2 = 40.0\ndots_cd_m2 = 44.0', FAST)
+    result = safety.screen_protocol(load_protocol(p))
+    background_rel = 40.0 / (black + amplitude)  # L / L_max of this display
+    # max 45: 0.889 -> step 0.111 but the darker state is not below 0.8: no flash.
+    # max 120: 0.333 -> step 0.667: a flash at every test, 4.6 per second.
+    assert result.passed is (not hand_flash(background_rel))
+    check_patch_step(load_protocol(p), result, background_rel)
+    assert "measured display" in result.light_source
+    assert "relative luminance from: measured display" in "\n".join(result.summary_lines())
+
+
+@pytest.mark.parametrize("black, amplitude", [(0.5, 99.5), (82.0, 18.0)])
+def test_black_level_of_the_profile_decides_a_flash(tmp_path, black, amplitude):
+    # Levels as written (background 0 = black): relative luminance of black is
+    # black / L_max, 0.005 or 0.82.  sRGB would say 0 and refuse both.
+    write_profile(tmp_path, black=black, amplitude=amplitude)
+    p = write_protocol(tmp_path, 'profile = "profile.toml"', FAST)
+    protocol = load_protocol(p)
+    measured = safety.screen_protocol(protocol)
+    background_rel = black / (black + amplitude)
+    assert measured.passed is (not hand_flash(background_rel))
+    check_patch_step(protocol, measured, background_rel)
+    assumed = safety.screen_protocol(protocol, light=SRGB_LIGHT)
+    assert not assumed.passed and assumed.light_source.startswith("sRGB")
