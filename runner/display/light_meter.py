@@ -21,7 +21,7 @@ import sys
 
 from fitting.errors import InputError
 from runner.display._psychopy import event, visual
-from runner.display.window import measure_refresh, open_window
+from runner.display.window import UNSYNCED_FACTOR, FlipPacer, measure_refresh, open_window
 from runner.measure_light import ReadingsLog, Step, parse_reading
 from runner.protocol import Protocol
 
@@ -60,7 +60,10 @@ class LightMeterScreen:
             side = (patch_deg, patch_deg) if patch_deg is not None else (2 * width_deg, 2 * height_deg)
             self.patch = visual.Rect(self.win, width=side[0], height=side[1], units="deg", pos=(0, 0),
                                      fillColor=[1.0, 1.0, 1.0], lineWidth=0, colorSpace="rgb1", autoLog=False)
-            self.measured_hz = measure_refresh(self.win, float(protocol.display.refresh_hz))
+            hz = float(protocol.display.refresh_hz)
+            self.measured_hz = measure_refresh(self.win, hz)
+            # Without vsync (a virtual display) hold flips to the nominal rate instead of spinning.
+            self._pacer = FlipPacer(1.0 / hz if self.measured_hz > UNSYNCED_FACTOR * hz else 0.0)
         except BaseException:
             self.win.close()
             raise
@@ -74,7 +77,8 @@ class LightMeterScreen:
         """Draw the patch in ``rgb`` (0..1 per gun) and flip."""
         self.patch.fillColor = list(rgb)
         self.patch.draw()
-        self.win.flip()
+        self._pacer.wait()
+        self._pacer.flipped(self.win.flip())
 
     def type_number(self, rgb) -> float | None:
         """Show the patch until a reading is typed and accepted; None on Escape."""
