@@ -55,8 +55,8 @@ def _table(cls, prefix: str) -> list[str]:
     for name, info in cls.model_fields.items():
         if _section_model(info.annotation) is not None:
             continue
-        default = info.get_default(call_default_factory=True)
-        lines.append(f"| `{prefix}{name}` | `{_default_text(default)}` | {docs.get(name, '')} |")
+        default = "(required)" if info.is_required() else f"`{_default_text(info.get_default(call_default_factory=True))}`"
+        lines.append(f"| `{prefix}{name}` | {default} | {docs.get(name, '')} |")
     return lines
 
 
