@@ -117,15 +117,26 @@ class ReadingsLog:
             self._writer.writeheader()
             self._sync()
 
-    def check_against(self, steps: list[Step]) -> None:
-        """Refuse a resumed file whose rows are not the start of ``steps``."""
-        if len(self.rows) > len(steps):
-            raise InputError(str(self.path), "rows", f"holds {len(self.rows)} readings, more than the {len(steps)} planned")
-        for row, step in zip(self.rows, steps):
-            if row["gun"] != step.gun or abs(float(row["level"]) - step.level) > 1e-6:
-                raise InputError(str(self.path), f"order {row['order']}",
-                                 "does not match this session's plan; resume with the same --levels, --repeats "
-                                 "and --per-gun")
+    def remaining(self, steps: list[Step]) -> list[Step]:
+        """The steps not yet in the file, refusing rows that are not steps of this plan.
+
+        Rows deleted from the file (say, readings refused as noisy) are
+        measured again on ``--resume``.
+        """
+        done = set()
+        for row in self.rows:
+            try:
+                order = int(row["order"])
+                step = steps[order - 1]
+                same = row["gun"] == step.gun and abs(float(row["level"]) - step.level) <= 1e-6
+            except (KeyError, ValueError, IndexError):
+                same = False
+            if not same or order in done:
+                raise InputError(str(self.path), f"order {row.get('order')}",
+                                 "does not match this session's plan (or appears twice); resume with the same "
+                                 "--levels, --repeats and --per-gun")
+            done.add(order)
+        return [s for s in steps if s.order not in done]
 
     def _sync(self) -> None:
         self._file.flush()
@@ -202,6 +213,9 @@ def finish(readings: Readings, out: str | Path, screen_cm, screen_px, refresh_hz
         fits = fit_readings(readings, fit_anyway=fit_anyway)
     except ReadingsRefused as exc:
         stream.write("problems in the readings (nothing fitted; measure these rows again, or pass --fit-anyway):\n")
+        if Path(readings.source).name.endswith(".readings.csv"):
+            stream.write(f"  (rows are the 'order' column of {readings.source}: delete those rows and run the same "
+                         "command with --resume to measure them again)\n")
         stream.write("".join(f"  {p.line()}\n" for p in exc.problems))
         stream.flush()
         raise
@@ -254,14 +268,16 @@ def on_screen(protocol, out: str | Path, n_levels: int = 9, repeats: int = 2, pe
     from runner.display.light_meter import measure
 
     stream = stream or sys.stdout
+    if Path(out).is_dir():
+        raise InputError(str(out), "--out", "is a folder; expected a file name for the light profile")
     steps = measurement_steps(n_levels, repeats, per_gun, seed)
     log = ReadingsLog(readings_path(out), seed, resume)
     try:
         if log.seed != seed:
             steps = measurement_steps(n_levels, repeats, per_gun, log.seed)
-        log.check_against(steps)
-        if len(log.rows) < len(steps):
-            complete, hz = measure(protocol, steps, log, windowed, patch_deg, stream)
+        todo = log.remaining(steps)
+        if todo:
+            complete, hz = measure(protocol, steps, todo, log, windowed, patch_deg, stream)
         else:
             complete, hz = True, None
     finally:

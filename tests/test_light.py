@@ -394,3 +394,26 @@ def test_black_level_of_the_profile_decides_a_flash(tmp_path, black, amplitude):
     check_patch_step(protocol, measured, background_rel)
     assumed = safety.screen_protocol(protocol, light=SRGB_LIGHT)
     assert not assumed.passed and assumed.light_source.startswith("sRGB")
+
+
+def test_readings_file_resumes_and_remeasures_deleted_rows(tmp_path):
+    from runner.measure_light import ReadingsLog, measurement_steps
+
+    steps = measurement_steps(5, 2, False, seed=3)
+    assert sorted((s.gun, round(s.level * 255)) for s in steps) == [("grey", c) for c in (0, 0, 64, 64, 128, 128,
+                                                                                         191, 191, 255, 255)]
+    path = tmp_path / "d.readings.csv"
+    log = ReadingsLog(path, 3, resume=False)
+    for s in steps[:6]:
+        log.append(s, float(TRUE.luminance(s.level)))
+    log.close()
+    with pytest.raises(InputError, match="exists; pass --resume"):
+        ReadingsLog(path, 3, resume=False)
+    # a noisy reading deleted by hand is measured again, with the rest not yet measured
+    lines = path.read_text(encoding="utf-8").splitlines()
+    path.write_text("\n".join(lines[:3] + lines[4:]) + "\n", encoding="utf-8")
+    log = ReadingsLog(path, 3, resume=True)
+    assert [s.order for s in log.remaining(steps)] == [3, 7, 8, 9, 10]
+    log.close()
+    with pytest.raises(InputError, match="does not match this session's plan"):
+        ReadingsLog(path, 3, resume=True).remaining(measurement_steps(5, 2, True, seed=3))

@@ -120,9 +120,9 @@ class LightMeterScreen:
         self.win.close()
 
 
-def measure(protocol: Protocol, steps: list[Step], log: ReadingsLog, windowed: bool, patch_deg: float | None,
-            stream=None) -> tuple[bool, float]:
-    """Run the measurement screen over ``steps`` not yet in ``log``.
+def measure(protocol: Protocol, steps: list[Step], todo: list[Step], log: ReadingsLog, windowed: bool,
+            patch_deg: float | None, stream=None) -> tuple[bool, float]:
+    """Run the measurement screen over ``todo``, the ``steps`` not yet in ``log``.
 
     Returns
     -------
@@ -132,14 +132,13 @@ def measure(protocol: Protocol, steps: list[Step], log: ReadingsLog, windowed: b
     """
     screen = LightMeterScreen(protocol, windowed, patch_deg, stream)
     try:
-        done = len(log.rows)
         screen.say(f"display: {screen.measured_hz:.2f} Hz measured; surround grey level "
-                   f"{protocol.display.background:g}; {len(steps)} patches, {done} already measured")
+                   f"{protocol.display.background:g}; {len(steps)} patches, {len(steps) - len(todo)} already measured")
         screen.say("aim the photometer at the patch (shown at full level) and press Enter in the window; "
                    "Esc stops, keeping every reading")
         if not screen.wait_for_enter((1.0, 1.0, 1.0)):
             return False, screen.measured_hz
-        for step in steps[done:]:
+        for step in todo:
             screen.say(f"reading {step.order}/{len(steps)}: {step.gun} level {step.level:.4f} "
                        f"(code {round(step.level * 255)}) - type cd/m2, Enter: ", end="")
             value = screen.type_number(step.rgb)
