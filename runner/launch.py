@@ -111,11 +111,29 @@ def check_same_protocol(log: TrialLog, sidecar: dict, text: str) -> None:
         )
 
 
+def check_same_light(log: TrialLog, sidecar: dict, base: dict) -> None:
+    """Refuse to resume with a light profile that differs from the one started with.
+
+    The same protocol text with a re-measured profile gives other grey levels,
+    so the trials would not be comparable.
+    """
+    old = (sidecar.get("light") or {}).get("profile_sha256")
+    new = (base.get("light") or {}).get("profile_sha256")
+    if old != new:
+        raise InputError(
+            str(log.sidecar_path),
+            "light.profile_sha256",
+            "the light profile differs from the one this session started with (its grey levels would change); "
+            "resume with the original profile or start a new session",
+        )
+
+
 def start_sidecar(log: TrialLog, base: dict, resume: bool, text: str) -> dict:
     """Read (resume) or write (new) the sidecar; return its content with a new part."""
     if log.sidecar_path.exists():
         sidecar = log.read_sidecar()
         check_same_protocol(log, sidecar, text)
+        check_same_light(log, sidecar, base)
     else:
         sidecar = dict(base)
         sidecar["parts"] = []

@@ -417,3 +417,18 @@ def test_readings_file_resumes_and_remeasures_deleted_rows(tmp_path):
     log.close()
     with pytest.raises(InputError, match="does not match this session's plan"):
         ReadingsLog(path, 3, resume=True).remaining(measurement_steps(5, 2, True, seed=3))
+
+
+def test_resume_refuses_a_remeasured_profile(tmp_path, capsys):
+    write_profile(tmp_path, black=0.5, amplitude=99.5)
+    p = write_protocol(tmp_path, 'profile = "profile.toml"\nbackground_cd_m2 = 2.0',
+                       "[design]\nadapter_offsets_deg = [30.0]\nlags = [0]\ntrials_per_track = 2\npractice_trials = 0")
+    out = tmp_path / "out"
+    assert main(["simulate", str(p), "--out", str(out)]) == 0
+    log = next(out.glob("*.trials.csv"))
+    kept = log.read_bytes()
+    assert main(["simulate", str(p), "--out", str(out), "--resume"]) == 0  # same profile: nothing to add
+    write_profile(tmp_path, black=0.6, amplitude=99.4)  # measured again
+    assert main(["simulate", str(p), "--out", str(out), "--resume"]) == 2
+    assert "light.profile_sha256: the light profile differs" in capsys.readouterr().err
+    assert log.read_bytes() == kept
