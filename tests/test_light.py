@@ -320,7 +320,8 @@ def test_old_profile_warns_and_sidecar_records_hash_and_age(tmp_path, capsys):
 
 def test_protocols_without_light_are_unchanged(tmp_path):
     p = tmp_path / "plain.toml"
-    p.write_text('title = "plain"\n[display]\nbackground = 0.1\n', encoding="utf-8")
+    p.write_text('title = "plain"\n[display]\nbackground = 0.1\n[design]\nadapter_offsets_deg = [30.0]\nlags = [0]\n'
+                 'trials_per_track = 2\npractice_trials = 0\n', encoding="utf-8")
     protocol = load_protocol(p)
     assert protocol.light is None and light_plan(protocol) is None
     assert protocol.display.background == 0.1
