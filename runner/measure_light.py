@@ -265,8 +265,6 @@ def on_screen(protocol, out: str | Path, n_levels: int = 9, repeats: int = 2, pe
         The profile, or None when the experimenter stopped early (the
         readings so far are kept; ``resume`` continues).
     """
-    from runner.display.light_meter import measure
-
     stream = stream or sys.stdout
     if Path(out).is_dir():
         raise InputError(str(out), "--out", "is a folder; expected a file name for the light profile")
@@ -277,11 +275,15 @@ def on_screen(protocol, out: str | Path, n_levels: int = 9, repeats: int = 2, pe
             steps = measurement_steps(n_levels, repeats, per_gun, log.seed)
         todo = log.remaining(steps)
         if todo:
+            from runner.display.light_meter import measure  # opens psychopy: only when there is something to measure
+
             complete, hz = measure(protocol, steps, todo, log, windowed, patch_deg, stream)
         else:
             complete, hz = True, None
     finally:
         log.close()
+        if not log.rows:  # no reading taken (no screen, or stopped at once): leave no file behind
+            log.path.unlink(missing_ok=True)
     if not complete:
         stream.write(f"stopped: {len(log.rows)} of {len(steps)} readings kept in {log.path}; "
                      "continue with --resume\n")
