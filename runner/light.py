@@ -193,10 +193,10 @@ class LightPlan:
             ("dots", self.dots_level, self.dots_cd_m2, "dots"),
         ):
             asked = self.requested.get(key)
-            head = f"{asked:.4g} cd/m2 requested -> " if asked is not None else "from the grey level: "
+            head = f"{asked:.4g} cd/m2 requested -> grey level" if asked is not None else "grey level (as written)"
             code = round(level * CODES)
             nearest = self.cd_m2(code / CODES, self._colour(what))
-            lines.append(f"           {what:<10} {head}grey level {level:.4f} = {value:.4g} cd/m2 "
+            lines.append(f"           {what:<10} {head} {level:.4f} = {value:.4g} cd/m2 "
                          f"(nearest 8-bit code {code}: {nearest:.4g} cd/m2)")
         for name in ("weber_contrast", "michelson_contrast"):
             if name in self.requested:
