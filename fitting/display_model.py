@@ -145,7 +145,8 @@ class Readings:
     channel : numpy.ndarray of str
         ``grey`` or the gun driven alone (``red``, ``green``, ``blue``).
     row : numpy.ndarray of int
-        Where each reading came from (line of the CSV file, or order of entry).
+        Where each reading came from: its row in the CSV file (the header is
+        row 1), or its order of entry on the measurement screen.
     source : str
         The file (or screen session) the readings came from, for messages.
     """
@@ -482,8 +483,8 @@ def read_readings(path: str | Path) -> Readings:
 
     The file has a header with ``level`` and ``luminance_cd_m2`` and, when
     guns were measured alone, ``gun`` (``grey``, ``red``, ``green`` or
-    ``blue``; empty = grey).  Other columns are ignored.  Rows are counted as
-    file lines (the header is line 1).
+    ``blue``; empty = grey).  Other columns are ignored.  Rows are numbered
+    as a spreadsheet shows them: the header is row 1, the first reading row 2.
 
     Raises
     ------
@@ -513,7 +514,7 @@ def read_readings(path: str | Path) -> Readings:
             try:
                 out.append(float(cell))
             except ValueError:
-                raise InputError(str(p), f"line {i}: {name}", f"expected a number, got {cell!r}") from None
+                raise InputError(str(p), f"row {i}: {name}", f"expected a number, got {cell!r}") from None
         gun.append(r.get("gun") or "grey")
         line.append(i)
     return make_readings(level, value, gun, line, source=str(p))

@@ -285,8 +285,11 @@ def on_screen(protocol, out: str | Path, n_levels: int = 9, repeats: int = 2, pe
         if not log.rows:  # no reading taken (no screen, or stopped at once): leave no file behind
             log.path.unlink(missing_ok=True)
     if not complete:
-        stream.write(f"stopped: {len(log.rows)} of {len(steps)} readings kept in {log.path}; "
-                     "continue with --resume\n")
+        if log.rows:
+            stream.write(f"stopped: {len(log.rows)} of {len(steps)} readings kept in {log.path}; "
+                         "continue with the same command and --resume\n")
+        else:
+            stream.write("stopped before the first reading; nothing written\n")
         stream.flush()
         return None
     d = protocol.display

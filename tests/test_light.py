@@ -168,7 +168,7 @@ def test_disagreeing_repeats_and_typing_slips_are_refused():
 def test_bad_readings_files_name_line_and_column(tmp_path):
     f = tmp_path / "r.csv"
     f.write_text("level,luminance_cd_m2\n0,0.3\n0.5,abc\n", encoding="utf-8")
-    with pytest.raises(InputError, match="line 3: luminance_cd_m2"):
+    with pytest.raises(InputError, match="row 3: luminance_cd_m2"):
         read_readings(f)
     f.write_text("level,luminance_cd_m2,gun\n1.5,3,grey\n", encoding="utf-8")
     with pytest.raises(InputError, match="row 2: level"):
