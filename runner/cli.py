@@ -237,9 +237,10 @@ def cmd_measure_light(args) -> int:
     from runner.protocol import Protocol
 
     patch = None if args.full_field else args.patch_deg
-    done = measure_light.on_screen(protocol or Protocol(), args.out, args.levels, args.repeats, args.per_gun, patch,
-                                   args.windowed, args.seed, args.resume, args.label, args.fit_anyway)
-    return EXIT_OK  # stopped early: readings kept, the message says how to resume
+    # Stopped early is not an error: the readings are kept and the message says how to resume.
+    measure_light.on_screen(protocol or Protocol(), args.out, args.levels, args.repeats, args.per_gun, patch,
+                            args.windowed, args.seed, args.resume, args.label, args.fit_anyway)
+    return EXIT_OK
 
 
 def build_parser() -> argparse.ArgumentParser:

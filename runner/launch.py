@@ -169,10 +169,9 @@ def simulate(
 
     Observers are named ``sim01``, ``sim02``, ...; each gets its own log and
     sidecar in ``out_dir`` and its own parameters drawn around ``model``
-    (:func:`runner.observers.draw_observers`).
-
-    light : dict, optional
-        The light profile's record (:meth:`runner.light.LightPlan.sidecar`).
+    (:func:`runner.observers.draw_observers`).  ``light``, when given, is the
+    light profile's record (:meth:`runner.light.LightPlan.sidecar`) for the
+    sidecars.
 
     Returns
     -------

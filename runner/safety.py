@@ -48,6 +48,11 @@ Choices made here
   a change of exactly 0.1 counts and a darker state of exactly 0.80 does not,
   as in the definition.  Differences are compared with a tolerance of 1e-9 so
   that 0.3 − 0.2 counts as 0.1.
+* Relative luminance.  Without a light profile the display is assumed to be
+  sRGB (the definitions above).  With one (``[light] profile``), the measured
+  display is used instead: relative luminance is L / L_max of that display,
+  L from its fitted gain–offset–gamma curves, so black is its black level
+  over its maximum, not 0 (:mod:`runner.light`).  The report names which.
 * Where the luminance comes from.  The screen is modelled as three parts,
   each uniform in its *mean* colour: the dot aperture (a disc centred on the
   screen), the photodiode patch (a square of ``safety.photodiode_patch_deg``
