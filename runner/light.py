@@ -76,11 +76,6 @@ class LightModel:
     curves: tuple | None = None
     max_cd_m2: float | None = None
 
-    @property
-    def measured(self) -> bool:
-        """True for a measured display, False for the sRGB assumption."""
-        return self.curves is not None
-
     def linear(self, signal_rgb) -> np.ndarray:
         """Linear light per gun (0..1 of that gun's range) of signal values."""
         s = np.asarray(signal_rgb, dtype=float)
