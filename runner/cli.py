@@ -238,8 +238,13 @@ def cmd_measure_light(args) -> int:
 
     patch = None if args.full_field else args.patch_deg
     # Stopped early is not an error: the readings are kept and the message says how to resume.
-    measure_light.on_screen(protocol or Protocol(), args.out, args.levels, args.repeats, args.per_gun, patch,
-                            args.windowed, args.seed, args.resume, args.label, args.fit_anyway)
+    try:
+        measure_light.on_screen(protocol or Protocol(), args.out, args.levels, args.repeats, args.per_gun, patch,
+                                args.windowed, args.seed, args.resume, args.label, args.fit_anyway)
+    except KeyboardInterrupt:
+        print(f"aftershift: interrupted; every accepted reading is in {measure_light.readings_path(args.out)} "
+              "(use --resume)", file=sys.stderr)
+        return 130
     return EXIT_OK
 
 

@@ -18,6 +18,7 @@ their rows and refused (exit 2) unless ``--fit-anyway`` is given.
 from __future__ import annotations
 
 import csv
+import fcntl
 import os
 import sys
 from dataclasses import dataclass
@@ -112,6 +113,12 @@ class ReadingsLog:
             self._file = self.path.open("a", newline="", encoding="utf-8")
         except OSError as exc:
             raise InputError(str(self.path), "--out", f"cannot be written ({exc.strerror})") from None
+        try:
+            fcntl.flock(self._file.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            self._file.close()
+            raise InputError(str(self.path), "file", "is being written by another measure-light; "
+                                                     "one measurement at a time") from None
         self._writer = csv.DictWriter(self._file, fieldnames=LOG_COLUMNS)
         if new:
             self._writer.writeheader()

@@ -433,3 +433,16 @@ def test_resume_refuses_a_remeasured_profile(tmp_path, capsys):
     assert main(["simulate", str(p), "--out", str(out), "--resume"]) == 2
     assert "light.profile_sha256: the light profile differs" in capsys.readouterr().err
     assert log.read_bytes() == kept
+
+
+def test_one_measurement_at_a_time(tmp_path):
+    from runner.measure_light import ReadingsLog
+
+    path = tmp_path / "d.readings.csv"
+    first = ReadingsLog(path, 0, resume=False)
+    try:
+        with pytest.raises(InputError, match="being written by another measure-light"):
+            ReadingsLog(path, 0, resume=True)
+    finally:
+        first.close()
+    ReadingsLog(path, 0, resume=True).close()  # free again once the first has closed it
