@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import hashlib
 import importlib.metadata
+import os
 import platform
 import secrets
 import sys
@@ -25,7 +26,7 @@ from runner.observers import ObserverModel, SimulatedObserver, draw_observers
 from runner.protocol import Protocol
 from runner.session import BlockRun, Console, SessionResult
 from runner.stream import StreamObserver, StreamRun
-from runner.trial_log import TrialLog, log_paths, read_rows
+from runner.trial_log import TrialLog, log_paths, read_rows, refuse_existing
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -98,6 +99,26 @@ def open_log(out_dir: Path, observer: str, session: str, resume: bool) -> TrialL
             return TrialLog(path, sidecar, [])
         raise InputError(str(sidecar), "file", "is missing; a session with trials cannot be resumed without its seed")
     return TrialLog.create(out_dir, observer, session)
+
+
+def check_can_start(out_dir: str | Path, observer: str, session: str, resume: bool) -> None:
+    """Refuse, before any window opens, a session that cannot start in ``out_dir``.
+
+    Without ``resume`` an existing log or sidecar of this session is refused;
+    in every case the folder (or its nearest existing parent) must be writable.
+
+    Raises
+    ------
+    InputError
+    """
+    path, sidecar = log_paths(out_dir, observer, session)
+    if not resume:
+        refuse_existing(path, sidecar)
+    folder = Path(out_dir).absolute()
+    while not folder.exists() and folder != folder.parent:
+        folder = folder.parent
+    if not folder.is_dir() or not os.access(folder, os.W_OK | os.X_OK):
+        raise InputError(str(out_dir), "--out", f"{folder} is not a writable folder")
 
 
 def check_same_protocol(log: TrialLog, sidecar: dict, text: str) -> None:

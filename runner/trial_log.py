@@ -79,6 +79,14 @@ def log_paths(out_dir: str | Path, observer: str, session: str) -> tuple[Path, P
     return out / f"{stem}.trials.csv", out / f"{stem}.session.json"
 
 
+def refuse_existing(path: Path, sidecar: Path) -> None:
+    """Raise :class:`InputError` if a session's log or sidecar already exists."""
+    if path.exists() or sidecar.exists():
+        raise InputError(
+            str(path), "file", "already holds this session; pass --resume to continue it or choose another --out"
+        )
+
+
 def format_value(value) -> str:
     """Text of one cell: empty for None, ``true``/``false``, compact numbers."""
     if value is None:
@@ -177,10 +185,7 @@ class TrialLog:
             output folder), or the folder cannot be created.
         """
         path, sidecar = log_paths(out_dir, observer, session)
-        if path.exists() or sidecar.exists():
-            raise InputError(
-                str(path), "file", "already holds this session; pass --resume to continue it or choose another --out"
-            )
+        refuse_existing(path, sidecar)
         try:
             path.parent.mkdir(parents=True, exist_ok=True)
             with open(path, "x", encoding="utf-8", newline="") as fh:
