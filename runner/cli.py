@@ -95,6 +95,7 @@ def cmd_run(args) -> int:
     from runner import display, safety
     from runner.console import ExperimenterConsole
     from runner.launch import check_can_start, run_on_screen
+    from runner.screens import screen_texts
     from runner.trial_log import check_identifier
 
     check_identifier(args.observer, "--observer")
@@ -103,6 +104,7 @@ def cmd_run(args) -> int:
     protocol, text = _load(args.protocol)
     screening = _screen(protocol, args.protocol, args.flicker_ack)
     caution = safety.caution_text(protocol, args.protocol)
+    screen_texts(protocol, caution, args.protocol)  # a bad instructions file is refused before the display opens
     console = ExperimenterConsole(quick_fit=_quick_fit_text)
     presenter, answers = display.open_screen(protocol, args.windowed, args.refresh_ack, console)
     extra = {
