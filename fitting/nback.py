@@ -15,7 +15,7 @@ tests of an observer::
 * **decay model**: the same with ``a_n = A · exp(−(n − 1) / τ)`` — gives
   ``decay.csv``.  It is the simulated observer's formula
   (``runner.observers.ObserverModel.nback_shift_deg``) and, for n = 1, the
-  discrete DoG of DESIGN.md at lag k = n − 1.
+  discrete DoG (README, Models) at lag k = n − 1.
 
 Both are fitted by maximum likelihood with one batched solver
 (:func:`solve`): projected Fisher scoring with a backtracking line search;

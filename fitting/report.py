@@ -2,7 +2,7 @@
 
 Files written by :func:`fit_logs` into ``out_dir``
 --------------------------------------------------
-Tables with exactly the DESIGN.md columns, in that order:
+Tables with exactly the README's required columns, in that order:
 
 ``pse.csv``, ``aftereffect.csv``, ``tuning.csv``, ``decay.csv``
 
@@ -64,7 +64,7 @@ class FitReport:
     Attributes
     ----------
     pse, aftereffect, tuning, decay : pandas.DataFrame
-        The four DESIGN.md tables (group rows last, observer ``group``).
+        The four main tables (group rows last, observer ``group``).
     extras : dict of str -> pandas.DataFrame
         ``fit_details``, ``model_tests``, ``decay_detail``, ``exclusions`` and,
         with several observers, ``mixed_model``.

@@ -9,7 +9,7 @@ sessions of each observer, and drops practice trials, trials with
 each.  Any bad value raises :class:`~fitting.errors.InputError` naming the
 file and the line (or column); nothing is guessed.
 
-Columns (DESIGN.md): ``observer, session, trial, condition,
+Columns (README, Output files): ``observer, session, trial, condition,
 adapter_offset_deg, lag, track, test_offset_deg, response_cw, rt_s,
 dropped_frames, timing_ok`` are required; ``practice`` (0/1, missing = no
 practice) and ``period_s`` (seconds of one intervening period) are optional;

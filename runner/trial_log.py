@@ -29,7 +29,7 @@ from pathlib import Path
 
 from fitting.errors import InputError
 
-#: Columns of the trial log, in order.  The first twelve are DESIGN.md's.
+#: Columns of the trial log, in order.  The first twelve are required of every log (README, Output files).
 #: ``block`` is ``stream`` for the tests of a continuous stream (empty for
 #: discrete trials); ``preceding_offsets_deg`` holds, for a stream test, the
 #: offsets of its 1st, 2nd, ... Kth preceding periods, ``;``-separated.

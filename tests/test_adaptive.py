@@ -11,7 +11,7 @@ from scipy.stats import norm
 
 from runner.adaptive import ConstantLevels, EntropyGrid, EntropyTrack, UpDownTrack, WeightedTrack, restore
 
-# A cumulative Gaussian observer (the DESIGN.md model with lapse 0) for the simulations.
+# A cumulative Gaussian observer (the README's model with lapse 0) for the simulations.
 OBSERVER_PSE = 1.5
 OBSERVER_SPREAD = 6.0
 
@@ -163,7 +163,7 @@ def _brute_posterior(grid, levels, responses):
             for k, lapse in enumerate(lapses):
                 like = 1.0
                 for x, r in zip(levels, responses):
-                    p_cw = lapse / 2 + (1 - lapse) * norm.cdf((x - mu) / sigma)  # DESIGN.md model
+                    p_cw = lapse / 2 + (1 - lapse) * norm.cdf((x - mu) / sigma)  # the README's model
                     like *= p_cw if r == 1 else 1 - p_cw
                 post[i, j, k] = like
     return post / post.sum()

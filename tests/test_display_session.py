@@ -29,7 +29,7 @@ pytestmark = [pytest.mark.display, pytest.mark.slow]
 ROOT = Path(__file__).resolve().parent.parent
 TINY = DATA / "display_tiny.toml"
 
-#: DESIGN.md's required trial-log columns.
+#: The required trial-log columns (README, Output files).
 REQUIRED = (
     "observer session trial condition adapter_offset_deg lag track test_offset_deg "
     "response_cw rt_s dropped_frames timing_ok"
