@@ -19,6 +19,7 @@ import platform
 from pathlib import Path
 from typing import Callable
 
+from .errors import InputError
 from .tables import LOG_SUFFIX, find_logs, write_text
 
 #: Name of the file holding the report's provenance in a fit folder.
@@ -126,4 +127,10 @@ def read_report_data(fit_dir: Path) -> dict:
     path = Path(fit_dir) / REPORT_DATA
     if not path.is_file():
         return {"sessions": [], "protocols": {}, "software": {}, "notes": {}, "missing": str(path)}
-    return json.loads(path.read_text(encoding="utf-8"))
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError):
+        raise InputError(str(path), "file", "is not the JSON that fit writes; run fit again") from None
+    if not isinstance(data, dict):
+        raise InputError(str(path), "file", "is not the JSON that fit writes; run fit again")
+    return data
