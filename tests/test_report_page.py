@@ -128,6 +128,7 @@ def test_a_new_users_path_ends_in_a_report_that_holds_the_csv_numbers(tmp_path):
 
 
 @needs_browser
+@pytest.mark.slow
 def test_the_checks_catch_a_missing_figure_and_a_wrong_number(tmp_path):
     # negative controls: the browser checks above can fail
     fit = tmp_path / "fit"
