@@ -244,6 +244,7 @@ def test_posterior_survives_overwhelming_evidence():
     assert np.isfinite(track.next_level())
 
 
+@pytest.mark.slow  # left out of the quick subset
 def test_bayesian_pse_precision_near_cramer_rao_bound():
     # Cramér–Rao bound for the PSE of a cumulative Gaussian observer with known spread σ:
     # one Bernoulli trial at level x, z = (x − μ)/σ, has Fisher information about μ

@@ -53,6 +53,7 @@ def test_exact_curves_are_recovered_and_bounds_flagged():
     assert t.peak_at_bound[0] and t.peak[0] == pytest.approx(30.0)
 
 
+@pytest.mark.slow  # left out of the quick subset
 def test_parameter_recovery_fast():
     # Simulated observers (README, Models; A = 3 deg, w = 30 deg, tau = 1.5
     # periods, staircases of 2 x 40 trials per condition) are fitted and the

@@ -60,6 +60,7 @@ def test_with_lapse_zero_and_w_held_the_fit_is_the_statsmodels_probit_glm():
     assert sol.loglik[0] == pytest.approx(glm.llf, abs=1e-7)
 
 
+@pytest.mark.slow  # left out of the quick subset
 def test_fast_recovery_of_amplitudes_and_decay_on_simulated_streams():
     # The 30-run version with more replicates is benchmarks/bench_stream_recovery.py.
     protocol = load_protocol(BUNDLED)
