@@ -129,11 +129,15 @@ def _resume_command(args) -> str:
     """The command line that continues this session."""
     import shlex
 
+    from runner import safety
+
     words = ["aftershift", "run", args.protocol, "--observer", args.observer, "--out", args.out]
     if args.session != "s1":
         words += ["--session", args.session]
-    if args.windowed:
-        words.append("--windowed")
+    for given, option in ((args.windowed, "--windowed"), (args.refresh_ack, safety.REFRESH_OVERRIDE_OPTION),
+                          (args.flicker_ack, safety.ACKNOWLEDGE_OPTION)):
+        if given:
+            words.append(option)
     return shlex.join(words + ["--resume"])
 
 
