@@ -48,7 +48,8 @@ def test_the_demo_rewrites_the_committed_files_byte_for_byte(tmp_path):
     written = sorted(p.relative_to(tmp_path).as_posix() for p in (tmp_path / "results_demo").rglob("*") if p.is_file())
     untracked = [p for p in written if p not in set(tracked)]
     ignored = set(_git("check-ignore", "--no-index", *untracked).stdout.split()) if untracked else set()
-    assert [p for p in untracked if p not in ignored] == [], "the demo writes files that are neither committed nor ignored"
+    stray = [p for p in untracked if p not in ignored]
+    assert stray == [], f"the demo writes files that are neither committed nor ignored: {stray}"
     assert ignored, "the sidecars and reports should be written and ignored"
 
 
