@@ -3,13 +3,17 @@
 #   ./setup.sh demo     simulate, fit and draw the bundled demo into results_demo/
 #   ./setup.sh test     run the test suite (display tests use Xvfb + Mesa)
 #   ./setup.sh          only set up
-# System packages (Xvfb, xdotool, Mesa's software OpenGL) are installed with
-# apt-get when running as root; Python packages with pip.
+# System packages (Xvfb, xdotool, Mesa's software OpenGL; for `test` also
+# Chromium, which the report tests open pages in) are installed with apt-get
+# when running as root; Python packages with one pip command, psychopy with
+# its own dependencies through the "display" extra.  Use a virtual
+# environment: python3 -m venv .venv && . .venv/bin/activate && ./setup.sh
 set -euo pipefail
 cd "$(dirname "$0")"
 export PIP_ROOT_USER_ACTION=ignore PIP_DISABLE_PIP_VERSION_CHECK=1
 
 debs=(xvfb xauth xdotool libgl1 libgl1-mesa-dri libglu1-mesa libegl1 fontconfig fonts-dejavu-core)
+[ "${1:-}" = test ] && debs+=(chromium)
 missing=()
 for d in "${debs[@]}"; do dpkg -s "$d" >/dev/null 2>&1 || missing+=("$d"); done
 if [ "${#missing[@]}" -gt 0 ]; then
@@ -25,9 +29,6 @@ fi
 PY=${PYTHON:-python3}
 echo "setup: installing Python packages"
 "$PY" -m pip install -q -e ".[display,dev]"
-# psychopy without its own dependency list: only its window, stimuli, clock
-# and keyboard are used, and their needs are in the "display" extra.
-"$PY" -m pip install -q --no-deps "psychopy==2026.2.5"
 
 case "${1:-}" in
   demo) shift; exec "$PY" -m runner.cli demo "$@" ;;

@@ -1,6 +1,6 @@
 """Parameter recovery: do the 95 % intervals hold the simulated after-effect?
 
-50 seeded simulated observers (DESIGN.md formula; amplitude 3 deg, peak
+50 seeded simulated observers (README, Models; amplitude 3 deg, peak
 offset 30 deg, decay 1.5 periods, spread 2 deg, lapse 0.02; baseline + 6
 adapter offsets x 3 lags, two 1-up/1-down tracks of 40 trials per condition)
 are fitted with 1,000 bootstrap replicates each.  For the lag-0 amplitude

@@ -4,7 +4,9 @@ Public entry points
 -------------------
 fit_logs(paths, out_dir, n_boot=1000, seed=0, lapse="free", spread="shared",
          include_bad_timing=False, progress=True, figures=True, ...) -> FitReport
-    Read logs, fit every observer and the group, write tables and figures.
+    Read logs, fit every observer and the group, write tables, figures and report.html.
+write_page(fit_dir, page_path=None, compare_dir=None) -> Path
+    The report page of a fit folder (:mod:`fitting.page`), with a comparison if given.
 quick_shifts(trials, n_boot=50, seed=0) -> pandas.DataFrame
     Fast PSE shifts with rough intervals after a block; writes nothing.
 read_logs(paths, include_bad_timing=False, include_practice=False) -> pandas.DataFrame
@@ -28,7 +30,7 @@ _EXPORTS = {
     "PsychometricFit": "psychometric", "fit_cells": "psychometric", "fit_joint": "psychometric",
     "fit_psychometric": "psychometric",
     "FitReport": "report", "fit_logs": "report", "fit_trials": "report", "quick_shifts": "report",
-    "read_logs": "tables",
+    "read_logs": "tables", "write_page": "page",
 }
 __all__ = sorted(_EXPORTS)
 

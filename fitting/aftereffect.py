@@ -1,6 +1,6 @@
 """After-effect curves: the DoG tuning shape per lag and its decay over lags.
 
-Shapes (DESIGN.md)::
+Shapes (README, Models)::
 
     tuning:  shift(D)  = A * (D / w) * exp(1/2 - (D / w)^2 / 2)
     decay:   A_k       = A_0 * exp(-k / tau)

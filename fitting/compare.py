@@ -21,6 +21,7 @@ Per observer, per lag and over all lags:
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -29,6 +30,9 @@ import pandas as pd
 from scipy import stats
 
 from fitting.errors import InputError
+from fitting.page import PAGE, write_page
+from fitting.progress import phase
+from fitting.tables import write_text
 
 Z95 = stats.norm.ppf(0.975)
 PREDICTION_COLUMNS = ("lag", "adapter_offset_deg", "pse_shift_deg")
@@ -214,10 +218,14 @@ class Comparison:
         Every measured point with its prediction.
     table : DataFrame
         ``agreement.csv``: per observer, per lag and ``all``.
+    page : Path or None
+        ``report.html`` in the output folder: the fit's report with this
+        comparison added (None when the results were given as a file).
     """
 
     points: pd.DataFrame
     table: pd.DataFrame
+    page: Path | None = None
 
     def summary(self) -> str:
         """A short text for the console."""
@@ -233,12 +241,21 @@ class Comparison:
         return "\n".join(lines)
 
 
+def _shown_path(path: Path, out: Path) -> str:
+    """``path`` relative to ``out`` when it lies beside it (same bytes wherever the pair lies), else absolute."""
+    rel = os.path.relpath(path.resolve(), out.resolve())
+    return rel if not rel.startswith(os.pardir + os.sep + os.pardir) else str(path.resolve())
+
+
 def compare_results(results_dir: str | Path, predictions_path: str | Path, out_dir: str | Path,
-                    interpolate: bool = False, figures: bool = True) -> Comparison:
+                    interpolate: bool = False, figures: bool = True, progress: bool | None = None) -> Comparison:
     """Compare ``RESULTS_DIR/aftereffect.csv`` with a predictions table.
 
-    Writes ``agreement.csv``, ``comparison_points.csv`` and (with
-    ``figures``) ``comparison.png`` / ``.pdf`` into ``out_dir``.
+    Writes ``agreement.csv``, ``comparison_points.csv``,
+    ``predictions_source.txt``, (with ``figures``) ``comparison.png`` /
+    ``.pdf`` and, when ``results_dir`` is a fit folder, ``report.html``: the
+    fit's report with the comparison added (:mod:`fitting.page`).
+    ``progress``: None shows a progress line only on a terminal.
 
     Raises
     ------
@@ -264,8 +281,11 @@ def compare_results(results_dir: str | Path, predictions_path: str | Path, out_d
     out.mkdir(parents=True, exist_ok=True)
     table.to_csv(out / "agreement.csv", index=False, float_format="%.6g")
     points.to_csv(out / "comparison_points.csv", index=False, float_format="%.6g")
+    write_text(out / "predictions_source.txt", _shown_path(Path(predictions_path), out) + "\n")
     if figures:
         from fitting.compare_figure import overlay_figure
 
-        overlay_figure(points, out / "comparison")
-    return Comparison(points=points, table=table)
+        with phase("drawing the comparison", show=progress):
+            overlay_figure(points, out / "comparison")
+    page = write_page(results, out / PAGE, compare_dir=out) if results.is_dir() else None
+    return Comparison(points=points, table=table, page=page)

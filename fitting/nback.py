@@ -15,7 +15,7 @@ tests of an observer::
 * **decay model**: the same with ``a_n = A · exp(−(n − 1) / τ)`` — gives
   ``decay.csv``.  It is the simulated observer's formula
   (``runner.observers.ObserverModel.nback_shift_deg``) and, for n = 1, the
-  discrete DoG of DESIGN.md at lag k = n − 1.
+  discrete DoG (README, Models) at lag k = n − 1.
 
 Both are fitted by maximum likelihood with one batched solver
 (:func:`solve`): projected Fisher scoring with a backtracking line search;
@@ -56,7 +56,7 @@ from .aftereffect import TAU_BOUNDS, dog, peak_bounds
 from .bootstrap import bca_interval, percentile_interval
 from .errors import InputError
 from .psychometric import DEFAULT_LAPSE_MAX, sigmoid_parts
-from .tables import find_logs, write_csv
+from .tables import find_logs, write_csv, write_text
 
 #: The ``block`` value of stream rows in a trial log.
 STREAM_BLOCK = "stream"
@@ -164,10 +164,41 @@ def read_stream_logs(paths, include_bad_timing: bool = False) -> list[StreamTria
         observer with different numbers of preceding periods, or no usable
         stream test.
     """
+    return _observer_trials(_read_stream_table(paths), include_bad_timing)
+
+
+def _read_stream_table(paths) -> pd.DataFrame:
     files = find_logs(paths)
     table = pd.concat([_read_stream_file(f) for f in files], ignore_index=True)
-    keep = ~table["practice"] & (table["timing_ok"] | include_bad_timing) & (table["response"] != "")
-    table = table[keep]
+    table.attrs["files"] = [str(f) for f in files]
+    return table
+
+
+def _kept(table: pd.DataFrame, include_bad_timing: bool) -> pd.Series:
+    return ~table["practice"] & (table["timing_ok"] | include_bad_timing) & (table["response"] != "")
+
+
+def stream_exclusions(table: pd.DataFrame, include_bad_timing: bool = False) -> pd.DataFrame:
+    """Per observer: files, stream tests read and excluded (practice, bad timing, missed), tests used.
+
+    The same columns as the adapt–test fit's ``exclusions.csv``; a test
+    excluded for several reasons counts under the first of practice, timing,
+    missed answer.
+    """
+    rows = []
+    for obs, g in table.groupby("observer", sort=True):
+        practice = g["practice"]
+        bad_timing = ~practice & ~g["timing_ok"] & (not include_bad_timing)
+        missed = ~practice & ~bad_timing & (g["response"] == "")
+        rows.append({"observer": obs, "files": g["source"].nunique(), "trials_read": len(g),
+                     "practice_excluded": int(practice.sum()), "bad_timing_excluded": int(bad_timing.sum()),
+                     "missed_excluded": int(missed.sum()), "trials_used": int(_kept(g, include_bad_timing).sum())})
+    return pd.DataFrame(rows)
+
+
+def _observer_trials(table: pd.DataFrame, include_bad_timing: bool) -> list[StreamTrials]:
+    files = table.attrs["files"]
+    table = table[_kept(table, include_bad_timing)]
     if table.empty:
         raise InputError(str(files[0]) if len(files) == 1 else "logs", "block",
                          "no usable stream tests (block = stream, answered, timing ok)")
@@ -620,8 +651,13 @@ class StreamReport:
 
 def fit_stream_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
                     lapse_max: float = DEFAULT_LAPSE_MAX, include_bad_timing: bool = False,
-                    interval: str = "percentile", figures: bool = True) -> StreamReport:
-    """Fit stream logs and write ``aftereffect.csv``, ``tuning.csv``, ``decay.csv`` and figures.
+                    interval: str = "percentile", figures: bool = True, plan=None,
+                    progress: bool | None = None) -> StreamReport:
+    """Fit stream logs; write ``aftereffect.csv``, ``tuning.csv``, ``decay.csv``, figures and the report.
+
+    Also written: ``exclusions.csv`` (as for adapt–test fits),
+    ``summary.txt``, ``report_data.json`` and ``report.html``
+    (:mod:`fitting.page`).
 
     Parameters
     ----------
@@ -638,6 +674,10 @@ def fit_stream_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="fr
     interval : {"percentile", "bc"}
     figures : bool
         Write ``nback_<observer>.png`` / ``.pdf``.
+    plan : callable, optional
+        ``protocol text -> lines`` of its plan, for the report.
+    progress : bool or None
+        Progress on stderr (None: only on a terminal).
 
     Returns
     -------
@@ -645,20 +685,38 @@ def fit_stream_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="fr
     """
     from .figures import safe_name
 
+    from .page import write_page
+    from .progress import ProgressBar, phase
+    from .provenance import collect, write_report_data
+
     out = Path(out_dir)
+    raw = _read_stream_table(paths)
+    observers = _observer_trials(raw, include_bad_timing)
     fits, tables = [], {"aftereffect": [], "tuning": [], "decay": []}
-    for i, trials in enumerate(read_stream_logs(paths, include_bad_timing)):
-        boot = bootstrap_nback(fit_nback(trials, lapse, lapse_max), n_boot, np.random.default_rng([seed, 17, i]),
-                               interval)
-        fits.append(boot)
-        for name, table in result_tables(boot).items():
-            tables[name].append(table)
+    with ProgressBar(len(observers), "n-back fits and bootstrap", show=progress, unit="observers") as bar:
+        for i, trials in enumerate(observers):
+            boot = bootstrap_nback(fit_nback(trials, lapse, lapse_max), n_boot,
+                                   np.random.default_rng([seed, 17, i]), interval)
+            fits.append(boot)
+            for name, table in result_tables(boot).items():
+                tables[name].append(table)
+            bar.advance()
+    tables["exclusions"] = [stream_exclusions(raw, include_bad_timing)]
     files = []
     for name, parts in tables.items():
         path = out / f"{name}.csv"
         write_csv(pd.concat(parts, ignore_index=True), path)
         files.append(str(path))
     if figures:
-        for boot in fits:
-            files += plot_amplitudes(boot, out / f"nback_{safe_name(boot.fit.trials.observer)}")
-    return StreamReport(out, fits, files)
+        with phase("drawing figures", show=progress):
+            for boot in fits:
+                files += plot_amplitudes(boot, out / f"nback_{safe_name(boot.fit.trials.observer)}")
+    report = StreamReport(out, fits, files)
+    write_text(out / "summary.txt", report.summary() + "\n")
+    options = (f"stream n-back regression, lapse {'free in [0, ' + format(lapse_max, 'g') + ']' if lapse == 'free' else 'fixed at ' + str(lapse)}; "
+               f"{interval} intervals from {n_boot} parametric bootstrap replicates (seed {seed})")
+    data = collect(paths, plan)
+    data.update(kind="stream", options=options, notes={})
+    files += [str(out / "summary.txt"), str(write_report_data(out, data)), str(write_page(out))]
+    report.files = files
+    return report

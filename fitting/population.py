@@ -10,7 +10,7 @@ decoder that is unaware of the adaptation reads the direction of a test as
 the angle of the population vector Σ r_i e^{iθ_i}, which is repelled from the
 adapter.  The predicted PSE shift is the physical test offset that is read as
 the reference, so a repulsive model gives a shift with the sign of Δ
-(DESIGN.md's convention).
+(the README's convention).
 
 All angles are offsets from the reference in degrees (positive = clockwise);
 the model is symmetric, so the reference direction itself does not matter.

@@ -1,7 +1,13 @@
-"""A tiny text progress bar on stderr, with no dependency.
+"""Progress on standard error for every phase that can take more than a moment.
 
-It draws only when the stream is a terminal, unless told to draw anyway, so
-logs and captured output stay clean.
+Two shapes, both drawn with tqdm and both silent when the stream is not a
+terminal (so logs, pipes and captured output stay clean) unless told to draw:
+
+* :class:`ProgressBar` counts units of work out of a known total
+  (replicates, trials, simulated runs);
+* :func:`phase` is for work whose size is not known in advance (drawing
+  figures, comparing): a line with the elapsed time, refreshed twice a
+  second, and optionally a count read from a callable (files written so far).
 
 Examples
 --------
@@ -9,13 +15,33 @@ Examples
 ...     for chunk in chunks:
 ...         work(chunk)
 ...         bar.advance(len(chunk))
+>>> with phase("drawing figures", count=lambda: len(list(out.glob("*.png")))):  # doctest: +SKIP
+...     make_figures(...)
 """
 
 from __future__ import annotations
 
 import sys
-import time
-from typing import TextIO
+import threading
+from contextlib import contextmanager
+from typing import Callable, Iterator, TextIO
+
+from tqdm import tqdm
+
+#: Seconds between redraws of a :func:`phase` line.
+PHASE_REFRESH_S = 0.5
+
+
+def wants_progress(stream: TextIO | None = None, show: bool | None = None) -> bool:
+    """Whether to draw: ``show`` if given, else whether ``stream`` (stderr) is a terminal."""
+    if show is not None:
+        return bool(show)
+    stream = sys.stderr if stream is None else stream
+    isatty = getattr(stream, "isatty", None)
+    try:
+        return bool(isatty and isatty())
+    except ValueError:  # a closed stream
+        return False
 
 
 class ProgressBar:
@@ -32,53 +58,82 @@ class ProgressBar:
     show : bool or None, optional
         ``None`` (default) draws only when ``stream`` is a terminal; ``True``
         always draws; ``False`` never draws.
-    width : int, optional
-        Characters in the bar itself.
+    unit : str, optional
+        Name of one unit of work, shown with the rate.
     """
 
     def __init__(self, total: int, label: str = "", stream: TextIO | None = None,
-                 show: bool | None = None, width: int = 30):
+                 show: bool | None = None, unit: str = "it"):
         self.total = max(int(total), 0)
         self.label = label
         self.stream = sys.stderr if stream is None else stream
-        if show is None:
-            isatty = getattr(self.stream, "isatty", None)
-            show = bool(isatty and isatty())
-        self.show = show
-        self.width = width
+        self.show = wants_progress(self.stream, show)
         self.done = 0
-        self._start = time.monotonic()
-        self._last_draw = -1.0
+        self._bar = tqdm(total=self.total, desc=label, file=self.stream, disable=not self.show,
+                         unit=unit, leave=True, dynamic_ncols=True, mininterval=0.1)
 
     def advance(self, n: int = 1) -> None:
-        """Record ``n`` more units done and redraw (at most 20 times a second)."""
-        self.done = min(self.done + int(n), self.total)
-        now = time.monotonic()
-        if self.done >= self.total or now - self._last_draw >= 0.05:
-            self._draw()
-            self._last_draw = now
+        """Record ``n`` more units done."""
+        step = min(int(n), self.total - self.done)
+        if step > 0:
+            self.done += step
+            self._bar.update(step)
 
     def close(self) -> None:
         """Draw the final state and end the line."""
-        if self.show:
-            self._draw()
-            self.stream.write("\n")
-            self.stream.flush()
+        self._bar.close()
 
     def __enter__(self) -> "ProgressBar":
-        if self.show:
-            self._draw()
         return self
 
     def __exit__(self, *exc) -> None:
         self.close()
 
-    def _draw(self) -> None:
-        if not self.show:
-            return
-        frac = self.done / self.total if self.total else 1.0
-        filled = int(round(frac * self.width))
-        elapsed = time.monotonic() - self._start
-        bar = "=" * filled + " " * (self.width - filled)
-        self.stream.write(f"\r{self.label} [{bar}] {self.done}/{self.total} {elapsed:5.1f} s")
-        self.stream.flush()
+
+@contextmanager
+def phase(label: str, show: bool | None = None, count: Callable[[], int] | None = None,
+          unit: str = "files", stream: TextIO | None = None) -> Iterator[None]:
+    """Show that a step of unknown length is running, with its elapsed time.
+
+    Parameters
+    ----------
+    label : str
+        What is being done ("drawing figures").
+    show : bool or None
+        As for :class:`ProgressBar` (None: only on a terminal).
+    count : callable, optional
+        Returns how many units are done so far (polled at every redraw).
+    unit : str
+        Name of the units ``count`` returns.
+    stream : file-like, optional
+        Standard error by default.
+    """
+    stream = sys.stderr if stream is None else stream
+    if not wants_progress(stream, show):
+        yield
+        return
+    fmt = "{desc}: {n_fmt} " + unit + " [{elapsed}]" if count is not None else "{desc} [{elapsed}]"
+    bar = tqdm(total=None, desc=label, file=stream, leave=True, dynamic_ncols=True, bar_format=fmt)
+    stop = threading.Event()
+
+    def redraw() -> None:
+        if count is not None:
+            try:
+                bar.n = int(count())
+            except OSError:  # the folder being counted is not there yet
+                pass
+        bar.refresh()
+
+    def tick() -> None:
+        while not stop.wait(PHASE_REFRESH_S):
+            redraw()
+
+    ticker = threading.Thread(target=tick, name=f"progress: {label}", daemon=True)
+    ticker.start()
+    try:
+        yield
+    finally:
+        stop.set()
+        ticker.join()
+        redraw()
+        bar.close()

@@ -1,6 +1,6 @@
 """Psychometric model and maximum-likelihood fits, single, joint and batched.
 
-The model (DESIGN.md)::
+The model (README, Models)::
 
     P(cw | x) = lapse / 2 + (1 - lapse) * F((x - pse) / spread)
 

@@ -2,7 +2,7 @@
 
 Files written by :func:`fit_logs` into ``out_dir``
 --------------------------------------------------
-Tables with exactly the DESIGN.md columns, in that order:
+Tables with exactly the README's required columns, in that order:
 
 ``pse.csv``, ``aftereffect.csv``, ``tuning.csv``, ``decay.csv``
 
@@ -20,6 +20,9 @@ More tables:
 ``mixed_model.csv``   with several observers: the statsmodels mixed model
 ``summary.txt``       the text of :meth:`FitReport.summary`
 ``figures/``          PNG and PDF figures (see :mod:`fitting.figures`)
+``report_data.json``  sessions, protocols and software behind the fit
+                      (:mod:`fitting.provenance`)
+``report.html``       the report page (:mod:`fitting.page`)
 
 Everything is computed first and written afterwards (each file atomically);
 nothing else in ``out_dir`` is touched.  Results depend only on the data,
@@ -44,6 +47,9 @@ from .errors import InputError
 from .group import GROUP, group_aftereffect, group_curves, group_pse, mixed_model
 from .observer import (AFTEREFFECT_COLUMNS, DECAY_COLUMNS, PSE_COLUMNS, TUNING_COLUMNS,
                        ObserverAnalysis, Options, analyse_observer, condition_table)
+from .page import write_page
+from .progress import phase
+from .provenance import collect, write_report_data
 from .psychometric import DEFAULT_LAPSE_MAX, SIGMOIDS, Cells, fit_cells
 from .tables import prepare_trials, read_logs, write_csv, write_text
 
@@ -58,7 +64,7 @@ class FitReport:
     Attributes
     ----------
     pse, aftereffect, tuning, decay : pandas.DataFrame
-        The four DESIGN.md tables (group rows last, observer ``group``).
+        The four main tables (group rows last, observer ``group``).
     extras : dict of str -> pandas.DataFrame
         ``fit_details``, ``model_tests``, ``decay_detail``, ``exclusions`` and,
         with several observers, ``mixed_model``.
@@ -277,8 +283,8 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
              spread: str = "shared", include_bad_timing: bool = False, progress=True,
              figures: bool = True, *, include_practice: bool = False, sigmoid: str = "gaussian",
              interval: str = "bca", level: float = 0.95,
-             lapse_max: float = DEFAULT_LAPSE_MAX) -> FitReport:
-    """Read trial logs, fit every observer (and the group), write tables and figures.
+             lapse_max: float = DEFAULT_LAPSE_MAX, plan=None) -> FitReport:
+    """Read trial logs, fit every observer (and the group), write tables, figures and ``report.html``.
 
     Parameters
     ----------
@@ -314,6 +320,9 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
         Confidence level.
     lapse_max : float
         Upper bound of a free lapse (default 0.1).
+    plan : callable, optional
+        ``protocol text -> lines`` of the protocol's plan, shown in the
+        report (see :func:`fitting.provenance.collect`).
 
     Returns
     -------
@@ -335,7 +344,9 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
     fig_files: list[str] = []
     if figures:
         from .figures import make_figures
-        fig_files = make_figures(report.analyses, report.group, out / "figures")
+        with phase("drawing figures", show=report.options.progress,
+                   count=lambda: _count_files(out / "figures")):
+            fig_files = make_figures(report.analyses, report.group, out / "figures")
     out.mkdir(parents=True, exist_ok=True)
     files = []
     for name, cols in MAIN_TABLES.items():
@@ -348,7 +359,15 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
     report.out_dir = str(out)
     report.files = files + fig_files + [str(out / "summary.txt")]
     write_text(out / "summary.txt", report.summary() + "\n")
+    data = collect(paths, plan)
+    data.update(kind="adapt-test", options=report.summary().splitlines()[1], notes=report.notes)
+    report.files.append(str(write_report_data(out, data)))
+    report.files.append(str(write_page(out)))
     return report
+
+
+def _count_files(folder: Path) -> int:
+    return sum(1 for _ in folder.iterdir()) if folder.is_dir() else 0
 
 
 def quick_shifts(trials: pd.DataFrame, n_boot: int = 50, seed: int = 0) -> pd.DataFrame:

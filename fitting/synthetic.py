@@ -1,6 +1,6 @@
 """Simulated trial logs for tests, benchmarks and pilots.
 
-The observer follows DESIGN.md::
+The observer follows the README's model::
 
     shift(D, k) = A * (D / w) * exp(1/2 - (D / w)^2 / 2) * exp(-k / tau)
     P(cw | x)   = lapse / 2 + (1 - lapse) * Phi((x - pse0 - shift(D, k)) / spread)
@@ -60,7 +60,7 @@ def simulate_trials(model: ObserverModel = ObserverModel(), offsets=(-60, -30, -
                     levels=None, baseline: bool = True, period_s: float | None = 0.5,
                     reference_deg: float = 90.0, practice_trials: int = 0,
                     missed_rate: float = 0.0, bad_timing_rate: float = 0.0) -> pd.DataFrame:
-    """One simulated session as a trial-log table (DESIGN.md columns and more).
+    """One simulated session as a trial-log table (the required columns and more).
 
     Parameters
     ----------

@@ -9,7 +9,7 @@ sessions of each observer, and drops practice trials, trials with
 each.  Any bad value raises :class:`~fitting.errors.InputError` naming the
 file and the line (or column); nothing is guessed.
 
-Columns (DESIGN.md): ``observer, session, trial, condition,
+Columns (README, Output files): ``observer, session, trial, condition,
 adapter_offset_deg, lag, track, test_offset_deg, response_cw, rt_s,
 dropped_frames, timing_ok`` are required; ``practice`` (0/1, missing = no
 practice) and ``period_s`` (seconds of one intervening period) are optional;
@@ -336,11 +336,18 @@ def write_text(path: Path, text: str) -> None:
     try:
         with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
             fh.write(text)
+        os.chmod(tmp, 0o666 & ~_umask())  # the permissions of an ordinary new file, not mkstemp's 0600
         os.replace(tmp, path)
     except BaseException:
         if os.path.exists(tmp):
             os.unlink(tmp)
         raise
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
 
 
 def write_csv(df: pd.DataFrame, path, columns: list[str] | None = None) -> None:

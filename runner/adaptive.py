@@ -568,7 +568,7 @@ class EntropyTrack:
 
     The method of Kontsevich & Tyler (1999) over a grid of PSE μ, spread σ
     and lapse λ, with the parameters that are not the target summed out
-    before the entropy is taken (Prins, 2013). The model is the DESIGN.md
+    before the entropy is taken (Prins, 2013). The model is the README's
     psychometric function P(cw | x) = λ/2 + (1 − λ)·Φ((x − μ)/σ); the prior
     is uniform over the grid (see :class:`EntropyGrid`). Each trial the
     track proposes the level of the grid's level list whose expected

@@ -23,7 +23,8 @@ class _Parser(argparse.ArgumentParser):
     """argparse with one-line errors and exit code 2."""
 
     def error(self, message):  # noqa: D102 - argparse hook
-        raise InputError("argument", self.prog, message)
+        command = self.prog.partition(" ")[2]
+        raise InputError("", command, f"{message} (see `{self.prog} --help`)")
 
 
 def _load(path: str):
@@ -111,15 +112,18 @@ def cmd_simulate(args) -> int:
 def cmd_run(args) -> int:
     from runner import display, safety
     from runner.console import ExperimenterConsole
-    from runner.launch import run_on_screen
+    from runner.launch import check_can_start, run_on_screen
+    from runner.screens import screen_texts
     from runner.trial_log import check_identifier
 
     check_identifier(args.observer, "--observer")
     check_identifier(args.session, "--session")
+    check_can_start(args.out, args.observer, args.session, args.resume)
     protocol, text = _load(args.protocol)
     light = _light(protocol)
     screening = _screen(protocol, args.protocol, args.flicker_ack)
     caution = safety.caution_text(protocol, args.protocol)
+    screen_texts(protocol, caution, args.protocol)  # a bad instructions file is refused before the display opens
     console = ExperimenterConsole(quick_fit=_quick_fit_text)
     presenter, answers = display.open_screen(protocol, args.windowed, args.refresh_ack, console)
     extra = {
@@ -136,7 +140,25 @@ def cmd_run(args) -> int:
     finally:
         presenter.close()
     print(f"session {result.ended_by}: {result.rows_added} trials this time, {result.rows_total} in the log")
+    if result.ended_by == "quit":
+        print(f"to continue later, run the same command with --resume: {_resume_command(args)}")
     return EXIT_OK
+
+
+def _resume_command(args) -> str:
+    """The command line that continues this session."""
+    import shlex
+
+    from runner import safety
+
+    words = ["aftershift", "run", args.protocol, "--observer", args.observer, "--out", args.out]
+    if args.session != "s1":
+        words += ["--session", args.session]
+    for given, option in ((args.windowed, "--windowed"), (args.refresh_ack, safety.REFRESH_OVERRIDE_OPTION),
+                          (args.flicker_ack, safety.ACKNOWLEDGE_OPTION)):
+        if given:
+            words.append(option)
+    return shlex.join(words + ["--resume"])
 
 
 def _quick_fit_text(rows: list[dict]) -> str:
@@ -178,12 +200,15 @@ def cmd_fit(args) -> int:
         if args.interval not in allowed:
             raise InputError("argument", "--interval", f"expected one of {', '.join(allowed)} for these logs")
         common["interval"] = args.interval
+    from runner.overview import plan_from_text
+
     if streams:
-        report = fit_stream_logs(streams, args.out, **common)
+        report = fit_stream_logs(streams, args.out, plan=plan_from_text, **common)
     else:
         report = fit_logs(trials, args.out, spread=args.spread, include_practice=args.include_practice,
-                          sigmoid=args.function, level=args.level, **common)
+                          sigmoid=args.function, level=args.level, plan=plan_from_text, **common)
     print(report.summary())
+    print(f"report: {Path(args.out) / 'report.html'}")
     return EXIT_OK
 
 
@@ -192,6 +217,8 @@ def cmd_compare(args) -> int:
 
     result = compare_results(args.results, args.predictions, args.out, interpolate=args.interpolate)
     print(result.summary())
+    if result.page is not None:
+        print(f"report with the comparison: {result.page}")
     return EXIT_OK
 
 
@@ -248,13 +275,29 @@ def cmd_measure_light(args) -> int:
     return EXIT_OK
 
 
+def _version() -> str:
+    """The installed distribution's version, or the source tree's when not installed."""
+    import importlib.metadata
+
+    try:
+        return importlib.metadata.version("aftershift")
+    except importlib.metadata.PackageNotFoundError:
+        import re
+
+        pyproject = Path(__file__).resolve().parent.parent / "pyproject.toml"
+        found = re.search(r'^version = "([^"]+)"', pyproject.read_text(encoding="utf-8"), re.M)
+        return found.group(1) if found else "unknown"
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of every subcommand."""
     from runner import safety
 
     ack_flag = safety.ACKNOWLEDGE_OPTION
-    parser = _Parser(prog="aftershift", description="Direction after-effect experiments, from protocol to after-effect curves.")
-    sub = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
+    parser = _Parser(prog="aftershift", description="Direction after-effect experiments, from protocol to after-effect curves.",
+                     epilog="Run `aftershift COMMAND --help` for a command's options.")
+    parser.add_argument("--version", action="version", version=f"aftershift {_version()}")
+    sub = parser.add_subparsers(dest="command", title="commands", metavar="COMMAND", parser_class=_Parser)
 
     def protocol_arg(p, optional=False):
         if optional:
@@ -370,6 +413,9 @@ def main(argv: list[str] | None = None) -> int:
     try:
         parser = build_parser()
         args = parser.parse_args(argv)
+        if args.command is None:  # bare `aftershift`: list the commands
+            parser.print_help()
+            return EXIT_OK
         return args.func(args)
     except InputError as exc:
         print(f"aftershift: {exc.line()}", file=sys.stderr)

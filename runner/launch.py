@@ -9,9 +9,9 @@ from __future__ import annotations
 
 import hashlib
 import importlib.metadata
+import os
 import platform
 import secrets
-import sys
 from dataclasses import asdict
 from datetime import datetime, timezone
 from pathlib import Path
@@ -23,16 +23,11 @@ from runner.console import SimulationConsole
 from runner.headless import HeadlessPresenter
 from runner.observers import ObserverModel, SimulatedObserver, draw_observers
 from runner.protocol import Protocol
+from runner.screens import screen_texts
 from runner.session import BlockRun, Console, SessionResult
 from runner.stream import StreamObserver, StreamRun
-from runner.trial_log import TrialLog, log_paths, read_rows
+from runner.trial_log import TrialLog, log_paths, read_rows, refuse_existing
 
-if sys.version_info >= (3, 11):
-    import tomllib
-else:  # pragma: no cover
-    import tomli as tomllib
-
-TEXTS_DIR = Path(__file__).parent / "texts"
 PACKAGES = ("aftershift", "numpy", "scipy", "pandas", "statsmodels", "pydantic", "matplotlib", "psychopy", "pyglet")
 
 
@@ -50,28 +45,6 @@ def package_versions() -> dict[str, str | None]:
         except importlib.metadata.PackageNotFoundError:
             out[name] = None
     return out
-
-
-def screen_texts(protocol: Protocol, caution: str) -> dict[str, str]:
-    """The observer's screen texts with the protocol's keys filled in."""
-    raw = tomllib.loads((TEXTS_DIR / "screens.toml").read_text(encoding="utf-8"))
-    keys = protocol.keys
-    fill = {
-        "cw_key": keys.cw.upper() if len(keys.cw) == 1 else keys.cw,
-        "ccw_key": keys.ccw.upper() if len(keys.ccw) == 1 else keys.ccw,
-        "proceed_key": keys.proceed,
-        "quit_key": keys.quit,
-        "pause_key": keys.pause,
-    }
-    texts = {}
-    for name, text in raw.items():
-        text = text.strip()
-        if name == "break":
-            texts[name] = text.replace("{proceed_key}", fill["proceed_key"])
-        else:
-            texts[name] = text.format(**fill)
-    texts["caution"] = caution
-    return texts
 
 
 def derive_seed(seed: int, *words: int) -> int:
@@ -98,6 +71,26 @@ def open_log(out_dir: Path, observer: str, session: str, resume: bool) -> TrialL
             return TrialLog(path, sidecar, [])
         raise InputError(str(sidecar), "file", "is missing; a session with trials cannot be resumed without its seed")
     return TrialLog.create(out_dir, observer, session)
+
+
+def check_can_start(out_dir: str | Path, observer: str, session: str, resume: bool) -> None:
+    """Refuse, before any window opens, a session that cannot start in ``out_dir``.
+
+    Without ``resume`` an existing log or sidecar of this session is refused;
+    in every case the folder (or its nearest existing parent) must be writable.
+
+    Raises
+    ------
+    InputError
+    """
+    path, sidecar = log_paths(out_dir, observer, session)
+    if not resume:
+        refuse_existing(path, sidecar)
+    folder = Path(out_dir).absolute()
+    while not folder.exists() and folder != folder.parent:
+        folder = folder.parent
+    if not folder.is_dir() or not os.access(folder, os.W_OK | os.X_OK):
+        raise InputError(str(out_dir), "--out", f"{folder} is not a writable folder")
 
 
 def check_same_protocol(log: TrialLog, sidecar: dict, text: str) -> None:
@@ -207,7 +200,8 @@ def simulate(
             answers = observer_kind(observer_model, (run.seed, 5), protocol.display.refresh_hz)
             presenter = HeadlessPresenter(protocol.display.refresh_hz)
             try:
-                result = run.run(presenter, answers, log.append, log.rows, screen_texts(protocol, ""), console, str(log.path))
+                texts = screen_texts(protocol, "", protocol_path)
+                result = run.run(presenter, answers, log.append, log.rows, texts, console, str(log.path))
             finally:
                 log.close()
             finish_sidecar(log, sidecar, result)
@@ -269,7 +263,8 @@ def run_on_screen(
         sidecar["parts"][-1].update({k: v for k, v in extra.items() if k in ("measured_refresh_hz", "acknowledged")})
     run = (StreamRun if protocol.stream is not None else BlockRun)(protocol, seed, observer, session)
     try:
-        result = run.run(presenter, answers, log.append, log.rows, screen_texts(protocol, caution), console, str(log.path))
+        texts = screen_texts(protocol, caution, protocol_path)
+        result = run.run(presenter, answers, log.append, log.rows, texts, console, str(log.path))
     finally:
         log.close()
     finish_sidecar(log, sidecar, result)

@@ -1,6 +1,6 @@
 """Simulated observers: a parametric model of a direction after-effect.
 
-The model (DESIGN.md) answers a test at offset ``x`` after an adapter at
+The model (README, Models) answers a test at offset ``x`` after an adapter at
 offset ``Δ`` with ``k`` intervening periods with
 
     P(cw | x) = λ/2 + (1 − λ) · Φ((x − μ₀ − shift(Δ, k)) / σ)

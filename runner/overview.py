@@ -77,9 +77,34 @@ def describe(protocol: Protocol) -> list[str]:
     for name, fc in frame_plan(p).items():
         lines.append(f"  {name:<22} {fc.requested_s:>8g} s = {fc.frames:>5d} frames = {fc.seconds * 1000:10.3f} ms")
     seconds, breaks = estimated_seconds(p)
-    lines += [
-        "",
-        f"duration   about {seconds / 60:.0f} min including {breaks} breaks "
-        f"(assuming {ANSWER_ESTIMATE_S:g} s per answer and {BREAK_ESTIMATE_S:g} s per break)",
-    ]
+    lines += ["", duration_line(seconds, breaks)]
     return lines
+
+
+def duration_words(seconds: float) -> str:
+    """"under a minute" or "about N min"."""
+    return "under a minute" if seconds < 60 else f"about {seconds / 60:.0f} min"
+
+
+def duration_line(seconds: float, breaks: int) -> str:
+    """The plan's duration line, with the assumptions behind the estimate."""
+    return (f"duration   {duration_words(seconds)} including {breaks} break{'s' if breaks != 1 else ''} "
+            f"(assuming {ANSWER_ESTIMATE_S:g} s per answer and {BREAK_ESTIMATE_S:g} s per break)")
+
+
+def plan_from_text(text: str) -> list[str]:
+    """The plan of a protocol given as text (as ``check`` prints it), for reports.
+
+    Raises
+    ------
+    InputError
+        The text is not a valid protocol for this version.
+    """
+    from runner.protocol import parse_protocol
+
+    protocol = parse_protocol(text, source="recorded protocol")
+    if protocol.stream is not None:
+        from runner.stream import describe_stream
+
+        return describe_stream(protocol)
+    return describe(protocol)

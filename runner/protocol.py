@@ -397,6 +397,22 @@ class SafetySettings(_Section):
     caution_file: str = ""
 
 
+class ScreenSettings(_Section):
+    """The observer's screens.
+
+    Attributes
+    ----------
+    instructions_file : str
+        Instruction text shown after the caution; empty = the bundled text,
+        built from `reference_deg` and `[keys]`.  It may use the placeholders
+        `{reference}`, `{cw_side}`, `{ccw_side}`, `{cw_key}`, `{ccw_key}`,
+        `{proceed_key}`, `{quit_key}`, `{pause_key}` and `{test_every}`.
+        Relative paths are relative to the protocol file.
+    """
+
+    instructions_file: str = ""
+
+
 class Protocol(_Section):
     """A whole protocol file.
 
@@ -406,7 +422,7 @@ class Protocol(_Section):
         Shown in plans, logs and reports.
     reference_deg : float
         The judged direction (90 = upward).
-    display, dots, timing, design, procedure, keys, safety
+    display, dots, timing, design, procedure, keys, safety, screens
         The sections described in their own classes.
     stream : StreamSettings or None
         Present (a ``[stream]`` section) for a continuous-stream block, absent
@@ -425,6 +441,7 @@ class Protocol(_Section):
     procedure: ProcedureSettings = Field(default_factory=ProcedureSettings)
     keys: KeySettings = Field(default_factory=KeySettings)
     safety: SafetySettings = Field(default_factory=SafetySettings)
+    screens: ScreenSettings = Field(default_factory=ScreenSettings)
     stream: StreamSettings | None = None
     light: LightSettings | None = None
     #: The resolved ``[light]`` section (:func:`runner.light.light_plan`), set by the loader.

@@ -130,10 +130,8 @@ from __future__ import annotations
 
 import itertools
 import math
-import re
 import dataclasses
 from dataclasses import dataclass
-from pathlib import Path
 
 import numpy as np
 
@@ -200,8 +198,6 @@ REFRESH_OVERRIDE_OPTION = "--refresh-reviewed"
 #: Largest relative difference between measured and protocol refresh rate.
 REFRESH_TOLERANCE = 0.01
 
-#: The bundled observer caution.
-BUNDLED_CAUTION = Path(__file__).parent / "texts" / "caution.txt"
 
 
 # ----------------------------------------------------------------------------------------------
@@ -1050,90 +1046,6 @@ def check_refresh(
 
 
 # ----------------------------------------------------------------------------------------------
-# The observer caution
+# The observer caution: built in runner.screens with every other observer text
 
-_KEY_WORDS = {
-    "left": "the left arrow key",
-    "right": "the right arrow key",
-    "up": "the up arrow key",
-    "down": "the down arrow key",
-    "space": "the space bar",
-    "escape": "the Esc key",
-    "return": "the Enter key",
-    "tab": "the Tab key",
-    "comma": "the comma key",
-    "period": "the full-stop key",
-    "slash": "the slash key",
-    "semicolon": "the semicolon key",
-}
-
-
-def key_words(name: str) -> str:
-    """How a key (by the keyboard's name for it) is called in texts for observers."""
-    if name in _KEY_WORDS:
-        return _KEY_WORDS[name]
-    if name.startswith("num_"):
-        return f"the {name[4:]} key on the number pad"
-    return f"the {name.upper()} key"
-
-
-def caution_text(protocol: Protocol, protocol_path: str | Path | None = None) -> str:
-    """The caution shown to the observer before the first trial, keys filled in.
-
-    Parameters
-    ----------
-    protocol : Protocol
-    protocol_path : str or Path, optional
-        The protocol file; a relative ``safety.caution_file`` is taken
-        relative to its folder (to the working folder without it).
-
-    Returns
-    -------
-    str
-        The text with ``{quit_key}``, ``{proceed_key}``, ``{cw_key}``,
-        ``{ccw_key}`` and ``{pause_key}`` replaced by the keys' names.
-
-    Raises
-    ------
-    InputError
-        The caution file is missing, unreadable, not UTF-8, empty or has an
-        unknown placeholder (field ``safety.caution_file``).
-    """
-    source = str(protocol_path) if protocol_path is not None else ""
-    name = protocol.safety.caution_file
-    if not name:
-        path = BUNDLED_CAUTION
-    else:
-        path = Path(name)
-        if not path.is_absolute():
-            path = (Path(protocol_path).parent if protocol_path is not None else Path.cwd()) / path
-
-    def refuse(what: str) -> InputError:
-        return InputError(source, "safety.caution_file", f"caution file {path} {what}")
-
-    if not path.is_file():
-        raise refuse("does not exist" if not path.exists() else "is not a file")
-    try:
-        text = path.read_text(encoding="utf-8")
-    except UnicodeDecodeError:
-        raise refuse("is not UTF-8 text") from None
-    except OSError as exc:
-        raise refuse(f"cannot be read ({exc.strerror})") from None
-    if not text.strip():
-        raise refuse("is empty")
-    keys = protocol.keys
-    values = {
-        "quit_key": keys.quit,
-        "proceed_key": keys.proceed,
-        "cw_key": keys.cw,
-        "ccw_key": keys.ccw,
-        "pause_key": keys.pause,
-    }
-
-    def fill(match: re.Match) -> str:
-        if match.group(1) not in values:
-            known = ", ".join("{" + k + "}" for k in values)
-            raise refuse(f"has an unknown placeholder {match.group(0)}; expected {known}")
-        return key_words(values[match.group(1)])
-
-    return re.sub(r"\{([A-Za-z_]+)\}", fill, text).strip() + "\n"
+from runner.screens import BUNDLED_CAUTION, caution_text, key_words  # noqa: E402,F401  (public here too)

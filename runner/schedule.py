@@ -14,7 +14,7 @@ from mirrored pairs ``(+o, -o)`` of the offsets in
 ``design.intervening_offsets_deg``, cycling through the pairs, then shuffled.
 Every position therefore shows each offset and its mirror equally often
 (to within one trial when the count is odd), so any after-effect that is an
-odd function of the offset — as the DoG of DESIGN.md is — sums to zero over
+odd function of the offset — as the after-effect DoG (README, Models) is — sums to zero over
 the condition and adds no net bias to its PSE; it only adds variance.
 """
 

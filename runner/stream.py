@@ -65,7 +65,7 @@ from runner.observers import SimulatedObserver
 from runner.plan import Answer, AnswerSource, Period, Playback, Presenter, TrialPlan, motion
 from runner.protocol import Protocol, frame_plan
 from runner.schedule import Condition, Schedule
-from runner.overview import header_lines
+from runner.overview import BREAK_ESTIMATE_S, duration_line, header_lines
 from runner.session import Console, SessionResult, Tally, parse_response, trial_row
 from runner.trial_log import format_value
 from runner.tracks import make_tracks
@@ -439,11 +439,7 @@ def describe_stream(protocol: Protocol, seed: int = 0) -> list[str]:
         lines.append(f"  {name:<22} {fc.requested_s:>8g} s = {fc.frames:>5d} frames = {fc.seconds * 1000:10.3f} ms")
     seconds = n_tests * StreamRun(protocol, seed, "check", "check").seconds_per_trial()
     breaks = (n_tests - 1) // d.break_every if d.break_every else 0
-    lines += [
-        "",
-        f"duration   about {(seconds + 60.0 * breaks) / 60:.0f} min including {breaks} breaks "
-        "(assuming 0.8 s per answer and 60 s per break)",
-    ]
+    lines += ["", duration_line(seconds + BREAK_ESTIMATE_S * breaks, breaks)]
     return lines
 
 

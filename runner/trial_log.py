@@ -29,7 +29,7 @@ from pathlib import Path
 
 from fitting.errors import InputError
 
-#: Columns of the trial log, in order.  The first twelve are DESIGN.md's.
+#: Columns of the trial log, in order.  The first twelve are required of every log (README, Output files).
 #: ``block`` is ``stream`` for the tests of a continuous stream (empty for
 #: discrete trials); ``preceding_offsets_deg`` holds, for a stream test, the
 #: offsets of its 1st, 2nd, ... Kth preceding periods, ``;``-separated.
@@ -77,6 +77,14 @@ def log_paths(out_dir: str | Path, observer: str, session: str) -> tuple[Path, P
     stem = f"{observer}-{session}"
     out = Path(out_dir)
     return out / f"{stem}.trials.csv", out / f"{stem}.session.json"
+
+
+def refuse_existing(path: Path, sidecar: Path) -> None:
+    """Raise :class:`InputError` if a session's log or sidecar already exists."""
+    if path.exists() or sidecar.exists():
+        raise InputError(
+            str(path), "file", "already holds this session; pass --resume to continue it or choose another --out"
+        )
 
 
 def format_value(value) -> str:
@@ -177,10 +185,7 @@ class TrialLog:
             output folder), or the folder cannot be created.
         """
         path, sidecar = log_paths(out_dir, observer, session)
-        if path.exists() or sidecar.exists():
-            raise InputError(
-                str(path), "file", "already holds this session; pass --resume to continue it or choose another --out"
-            )
+        refuse_existing(path, sidecar)
         try:
             path.parent.mkdir(parents=True, exist_ok=True)
             with open(path, "x", encoding="utf-8", newline="") as fh:

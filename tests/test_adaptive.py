@@ -11,7 +11,7 @@ from scipy.stats import norm
 
 from runner.adaptive import ConstantLevels, EntropyGrid, EntropyTrack, UpDownTrack, WeightedTrack, restore
 
-# A cumulative Gaussian observer (the DESIGN.md model with lapse 0) for the simulations.
+# A cumulative Gaussian observer (the README's model with lapse 0) for the simulations.
 OBSERVER_PSE = 1.5
 OBSERVER_SPREAD = 6.0
 
@@ -163,7 +163,7 @@ def _brute_posterior(grid, levels, responses):
             for k, lapse in enumerate(lapses):
                 like = 1.0
                 for x, r in zip(levels, responses):
-                    p_cw = lapse / 2 + (1 - lapse) * norm.cdf((x - mu) / sigma)  # DESIGN.md model
+                    p_cw = lapse / 2 + (1 - lapse) * norm.cdf((x - mu) / sigma)  # the README's model
                     like *= p_cw if r == 1 else 1 - p_cw
                 post[i, j, k] = like
     return post / post.sum()
@@ -244,6 +244,7 @@ def test_posterior_survives_overwhelming_evidence():
     assert np.isfinite(track.next_level())
 
 
+@pytest.mark.slow  # left out of the quick subset
 def test_bayesian_pse_precision_near_cramer_rao_bound():
     # Cramér–Rao bound for the PSE of a cumulative Gaussian observer with known spread σ:
     # one Bernoulli trial at level x, z = (x − μ)/σ, has Fisher information about μ

@@ -24,6 +24,7 @@ def test_importing_the_display_package_loads_no_psychopy():
     assert out.stdout.strip() == "False"
 
 
+@pytest.mark.slow  # left out of the quick subset
 def test_no_display_is_a_one_line_error(tmp_path):
     env = {k: v for k, v in os.environ.items() if k != "DISPLAY"}
     out = subprocess.run([sys.executable, "-m", "runner.cli", "display-test", "--seconds", "1", "--report",

@@ -116,7 +116,7 @@ def test_picture_moves_as_the_plan_says(screen, probe):
         assert np.median(first) == pytest.approx(255 * d.background, abs=1)
         dx, dy = shift_between(first[crop], second[crop])
         direction = math.degrees(math.atan2(dy, dx)) % 360
-        # px -> deg with the exact visual angle θ = 2·atan(s / 2d) (DESIGN.md, geometry)
+        # px -> deg with the exact visual angle θ = 2·atan(s / 2d) (trigonometry; at 57 cm, 1 cm is about 1 deg: common practice, no source)
         step_deg = geometry.px_to_deg(math.hypot(dx, dy), d.distance_cm, d.screen_cm[0], d.screen_px[0])
         speed = step_deg * d.refresh_hz  # one kinematic step per nominal frame
         assert abs((direction - trial.test_direction_deg + 180) % 360 - 180) < 3.0
@@ -139,7 +139,7 @@ def test_light_patch_size_and_timing(screen, probe):
         cols = np.flatnonzero(white.any(axis=0))
         assert rows[-1] == corner.shape[0] - 1 and cols[0] == 0, "the patch is not in the corner"
         side_px = (cols[-1] - cols[0] + 1, rows[-1] - rows[0] + 1)
-        # θ = 2·atan(s / 2d) solved for s (DESIGN.md, geometry references)
+        # θ = 2·atan(s / 2d) solved for s (trigonometry)
         expected_px = 2 * d.distance_cm * math.tan(math.radians(side_deg) / 2) * d.screen_px[0] / d.screen_cm[0]
         for s in side_px:
             assert abs(s - expected_px) <= 1.0
@@ -157,7 +157,7 @@ def test_monitor_geometry_follows_visual_angle(x_display):  # noqa: F811
         monitor = make_monitor(proto)
         assert monitor.getDistance() == distance and monitor.getWidth() == 20.0
         assert list(monitor.getSizePix()) == [800, 600]
-        # 1 deg at the centre, exact: s = 2·d·tan(0.5 deg) (DESIGN.md, geometry references)
+        # 1 deg at the centre, exact: s = 2·d·tan(0.5 deg) (trigonometry)
         exact = 2 * distance * math.tan(math.radians(0.5)) * 800 / 20.0
         assert px_per_deg(monitor) == pytest.approx(exact, rel=1e-3)
         assert px_per_deg(monitor) == pytest.approx(proto.display.px_per_deg, rel=1e-3)

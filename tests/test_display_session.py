@@ -29,7 +29,7 @@ pytestmark = [pytest.mark.display, pytest.mark.slow]
 ROOT = Path(__file__).resolve().parent.parent
 TINY = DATA / "display_tiny.toml"
 
-#: DESIGN.md's required trial-log columns.
+#: The required trial-log columns (README, Output files).
 REQUIRED = (
     "observer session trial condition adapter_offset_deg lag track test_offset_deg "
     "response_cw rt_s dropped_frames timing_ok"
@@ -94,6 +94,7 @@ def test_keyboard_session_escape_and_resume(own_x_server, tmp_path):  # noqa: F8
     assert code == 0, err
     first = rows_in(log)
     assert 3 <= len(first) < total, "Escape should have ended the session early"
+    assert "--resume" in out.splitlines()[-1], "after Escape the console should say how to continue"
 
     code, out, err = drive(start([*args, "--resume"], env), env, log)
     assert code == 0, err

@@ -79,7 +79,7 @@ def test_displacement_and_direction_per_frame(direction):
         plain = np.isclose(distance, step, rtol=1e-6, atol=0)
         sig = field.signal
         assert np.count_nonzero(~plain) < 0.05 * field.n_dots
-        # direction convention (DESIGN.md): counter-clockwise from rightward, x right, y up
+        # direction convention (README, Conventions): counter-clockwise from rightward, x right, y up
         np.testing.assert_allclose(moved[sig & plain], np.broadcast_to(step * u, moved[sig & plain].shape), atol=1e-12)
         noise_angles.append(np.arctan2(moved[~sig & plain, 1], moved[~sig & plain, 0]))
         # a wrapped signal dot stays on its chord and re-enters with its overshoot

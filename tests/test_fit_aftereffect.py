@@ -53,8 +53,9 @@ def test_exact_curves_are_recovered_and_bounds_flagged():
     assert t.peak_at_bound[0] and t.peak[0] == pytest.approx(30.0)
 
 
+@pytest.mark.slow  # left out of the quick subset
 def test_parameter_recovery_fast():
-    # Simulated observers (DESIGN.md formula; A = 3 deg, w = 30 deg, tau = 1.5
+    # Simulated observers (README, Models; A = 3 deg, w = 30 deg, tau = 1.5
     # periods, staircases of 2 x 40 trials per condition) are fitted and the
     # 95 % intervals of tuning.csv (lag 0) and decay.csv must hold the
     # simulated values.  Fast version: 20 observers, 300 replicates, at least

@@ -18,6 +18,7 @@ def _data(rng, pse=0.0, spread=2.0, lapse=0.02, per_level=10, span=2.0):
     return x, (rng.random(x.size) < p).astype(float)
 
 
+@pytest.mark.slow  # left out of the quick subset
 def test_pse_interval_coverage_400_data_sets_of_80_trials():
     # Wichmann & Hill (2001, part II): the 95 % bootstrap interval of a
     # threshold should cover the true value in about 95 % of simulated

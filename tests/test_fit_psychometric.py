@@ -25,7 +25,7 @@ def _probit(x, y, method="irls"):
 
 def test_lapse_zero_equals_statsmodels_probit_glm():
     # Reference: statsmodels' binomial GLM with probit link on the same trials
-    # (DESIGN.md).  P = Phi(b0 + b1 x)  <=>  PSE = -b0/b1, spread = 1/b1.
+    # (README, Models).  P = Phi(b0 + b1 x)  <=>  PSE = -b0/b1, spread = 1/b1.
     rng = np.random.default_rng(11)
     for _ in range(5):
         x, y = _trials(rng)

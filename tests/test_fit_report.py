@@ -8,7 +8,7 @@ import pytest
 from fitting import InputError, fit_logs, quick_shifts
 from fitting.synthetic import ObserverModel, simulate_trials, write_log
 
-DESIGN_COLUMNS = {  # DESIGN.md, "Files"
+REQUIRED_COLUMNS = {  # README, "Output files"
     "pse.csv": ["observer", "condition", "adapter_offset_deg", "lag", "pse_deg", "pse_ci_low",
                 "pse_ci_high", "spread_deg", "lapse", "n_trials"],
     "aftereffect.csv": ["observer", "lag", "adapter_offset_deg", "pse_shift_deg", "ci_low",
@@ -36,13 +36,13 @@ def logs(tmp_path):
 def test_tables_have_exact_columns_group_rows_and_signs(logs, tmp_path):
     out = tmp_path / "out"
     report = fit_logs([str(logs)], str(out), n_boot=100, seed=3, figures=False, progress=False)
-    for name, cols in DESIGN_COLUMNS.items():
+    for name, cols in REQUIRED_COLUMNS.items():
         table = pd.read_csv(out / name)
         assert list(table.columns) == cols
         assert set(table["observer"]) == {"P1", "P2", "group"}
     shifts = pd.read_csv(out / "aftereffect.csv")
     lag0 = shifts[(shifts["lag"] == 0) & (shifts["adapter_offset_deg"].abs() <= 30)]
-    # repulsion (DESIGN.md): the shift has the sign of the adapter offset
+    # repulsion (README, Conventions): the shift has the sign of the adapter offset
     assert (np.sign(lag0["pse_shift_deg"]) == np.sign(lag0["adapter_offset_deg"])).all()
     assert (shifts["ci_low"] <= shifts["pse_shift_deg"]).all()
     assert (shifts["pse_shift_deg"] <= shifts["ci_high"]).all()
@@ -63,7 +63,7 @@ def test_same_seed_same_bytes_and_nothing_else_touched(logs, tmp_path):
     (b / "keep.txt").write_text("mine")
     for out in (a, b):
         fit_logs([str(logs)], str(out), n_boot=60, seed=9, figures=False, progress=False)
-    for name in list(DESIGN_COLUMNS) + ["fit_details.csv", "model_tests.csv", "decay_detail.csv"]:
+    for name in list(REQUIRED_COLUMNS) + ["fit_details.csv", "model_tests.csv", "decay_detail.csv"]:
         assert (a / name).read_bytes() == (b / name).read_bytes(), name
     assert (b / "keep.txt").read_text() == "mine"
     c = tmp_path / "c"

@@ -38,7 +38,7 @@ def stream_trials(protocol, model, seed, observer="sim"):
 
 
 def test_with_lapse_zero_and_w_held_the_fit_is_the_statsmodels_probit_glm():
-    # Reference: statsmodels' binomial GLM with probit link (DESIGN.md's reference fit, lapse fixed at 0).
+    # Reference: statsmodels' binomial GLM with probit link (lapse fixed at 0).
     # With w held, mu = mu0 + sum a_n g(D_n; w) makes Phi((x - mu)/sigma) a probit GLM in
     # (1, x, g_1..g_K) with coefficients (-mu0/sigma, 1/sigma, -a_n/sigma).
     tr = stream_trials(load_protocol(BUNDLED), ObserverModel(lapse=0.0, spread_between_observers=0), 3)
@@ -60,6 +60,7 @@ def test_with_lapse_zero_and_w_held_the_fit_is_the_statsmodels_probit_glm():
     assert sol.loglik[0] == pytest.approx(glm.llf, abs=1e-7)
 
 
+@pytest.mark.slow  # left out of the quick subset
 def test_fast_recovery_of_amplitudes_and_decay_on_simulated_streams():
     # The 30-run version with more replicates is benchmarks/bench_stream_recovery.py.
     protocol = load_protocol(BUNDLED)

@@ -63,6 +63,7 @@ def fisher_pse_half_width(levels, trials_per_level, pse, spread, lapse=0.0, z=1.
     return z * math.sqrt(1.0 / (trials_per_level * info.sum()))
 
 
+@pytest.mark.slow  # left out of the quick subset
 def test_more_trials_give_narrower_intervals(tmp_path):
     path = _write(tmp_path, SMALL)
     protocol = parse_protocol(SMALL, str(path))
@@ -86,6 +87,7 @@ def test_more_trials_give_narrower_intervals(tmp_path):
     assert all(f.stat().st_size > 0 for f in files)
 
 
+@pytest.mark.slow  # left out of the quick subset
 def test_constant_stimuli_pse_half_width_matches_fisher_information(tmp_path):
     path = _write(tmp_path, CONSTANT)
     protocol = parse_protocol(CONSTANT, str(path))

@@ -61,6 +61,7 @@ def _kill_after(out: Path, rows: int) -> int:
     return _rows_in(out)
 
 
+@pytest.mark.slow  # left out of the quick subset
 @pytest.mark.parametrize("kill_at", [0, 40, 1500, 2900])
 def test_killed_and_resumed_session_writes_identical_rows(kill_at, tmp_path, uninterrupted):
     out = tmp_path / "killed"
@@ -72,6 +73,7 @@ def test_killed_and_resumed_session_writes_identical_rows(kill_at, tmp_path, uni
     assert _logs(out) == _logs(uninterrupted)
 
 
+@pytest.mark.slow  # left out of the quick subset
 def test_torn_last_line_is_dropped_with_a_warning_and_the_rest_kept(tmp_path, uninterrupted):
     out = tmp_path / "torn"
     out.mkdir()

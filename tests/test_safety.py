@@ -167,7 +167,7 @@ def test_field_of_10_degrees_is_the_standards_0_006_steradians():
 
 
 def test_transitions_are_between_adjacent_peaks_and_valleys():
-    # DESIGN.md / WCAG analysis practice: transitions are measured between
+    # WCAG analysis practice: transitions are measured between
     # adjacent peaks and valleys; a ripple smaller than the threshold is not one.
     y = np.array([0.0] * 10 + [0.5] * 10 + [0.45] * 10 + [0.9] * 10 + [0.0] * 10)
     assert list(safety.turning_points(y, 0.1)) == [0, 30, 40]

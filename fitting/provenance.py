@@ -1,0 +1,136 @@
+"""Where fitted data came from: sessions, protocols and software, for the report.
+
+``fit`` reads the session sidecar beside every trial log
+(``NAME.session.json`` beside ``NAME.trials.csv``) and keeps what a reader
+of the results needs to judge them: which protocol (path, SHA-256, its plan
+and text), which seed, when and how each session ran and ended, the display's
+measured refresh rate, dropped frames, and the package versions at the
+session and at the fit.  It is written to ``report_data.json`` in the fit's
+output folder, so that ``compare`` can rebuild the same report later.
+
+A log without a sidecar is reported as such; nothing is guessed.
+"""
+
+from __future__ import annotations
+
+import importlib.metadata
+import json
+import platform
+from pathlib import Path
+from typing import Callable
+
+from .errors import InputError
+from .tables import LOG_SUFFIX, find_logs, write_text
+
+#: Name of the file holding the report's provenance in a fit folder.
+REPORT_DATA = "report_data.json"
+SIDECAR_SUFFIX = ".session.json"
+#: Packages whose versions the report lists for the fit itself.
+FIT_PACKAGES = ("aftershift", "numpy", "scipy", "pandas", "statsmodels", "matplotlib", "tqdm")
+
+PlanFunction = Callable[[str], "list[str]"]
+
+
+def fit_software() -> dict[str, str | None]:
+    """Python's and the fitting packages' versions, now."""
+    out: dict[str, str | None] = {"python": platform.python_version()}
+    for name in FIT_PACKAGES:
+        try:
+            out[name] = importlib.metadata.version(name)
+        except importlib.metadata.PackageNotFoundError:
+            out[name] = None
+    return out
+
+
+def sidecar_path(log: Path) -> Path:
+    """The sidecar that belongs to a trial log."""
+    name = log.name[: -len(LOG_SUFFIX)] if log.name.endswith(LOG_SUFFIX) else log.stem
+    return log.with_name(name + SIDECAR_SUFFIX)
+
+
+def _session_record(log: Path) -> tuple[dict, dict | None]:
+    """One session's facts and its protocol record (path, sha256, text) if known."""
+    side = sidecar_path(log)
+    record = {"log": str(log), "sidecar": None, "observer": None, "session": None, "kind": None,
+              "protocol_sha256": None, "seed": None, "started": None, "ended": None, "ended_by": None,
+              "trials": None, "measured_refresh_hz": None, "dropped_frames": None, "acknowledged": None,
+              "packages": {}}
+    if not side.is_file():
+        record["problem"] = "no sidecar beside the log: protocol, seed and versions unknown"
+        return record, None
+    try:
+        data = json.loads(side.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        record["problem"] = f"sidecar {side.name} cannot be read ({type(exc).__name__})"
+        return record, None
+    parts = data.get("parts") or [{}]
+    dropped = [p.get("timing", {}).get("dropped_frames") for p in parts if isinstance(p.get("timing"), dict)]
+    protocol = data.get("protocol") or {}
+    record.update(
+        sidecar=str(side), observer=data.get("observer"), session=data.get("session"), kind=data.get("kind"),
+        protocol_sha256=protocol.get("sha256"), seed=data.get("session_seed", data.get("seed")),
+        started=parts[0].get("started"), ended=parts[-1].get("ended"), ended_by=parts[-1].get("ended_by"),
+        parts=len(parts), trials=data.get("rows_total"), measured_refresh_hz=data.get("measured_refresh_hz"),
+        dropped_frames=sum(d for d in dropped if isinstance(d, (int, float))) if dropped else None,
+        acknowledged=data.get("acknowledged"), packages=data.get("packages") or {},
+    )
+    return record, protocol if protocol.get("sha256") else None
+
+
+def collect(logs, plan: PlanFunction | None = None) -> dict:
+    """Sessions, protocols and software behind a fit.
+
+    Parameters
+    ----------
+    logs : path or list of paths
+        The trial logs (or folders) that were fitted.
+    plan : callable, optional
+        ``protocol text -> lines``: the plan of a protocol as ``aftershift
+        check`` prints it (the command line passes the session engine's; the
+        fitting side cannot read protocols itself).
+
+    Returns
+    -------
+    dict
+        ``sessions`` (one record per log), ``protocols`` (by SHA-256: path,
+        plan lines, text) and ``software`` (the fit's package versions).
+    """
+    sessions, protocols = [], {}
+    for log in find_logs(logs):
+        record, protocol = _session_record(log)
+        sessions.append(record)
+        if protocol is not None and protocol["sha256"] not in protocols:
+            text = protocol.get("text", "")
+            protocols[protocol["sha256"]] = {"path": protocol.get("path"), "text": text,
+                                              "plan": _plan_lines(plan, text)}
+    return {"sessions": sessions, "protocols": protocols, "software": fit_software()}
+
+
+def _plan_lines(plan: PlanFunction | None, text: str) -> list[str]:
+    if plan is None or not text:
+        return []
+    try:
+        return list(plan(text))
+    except Exception as exc:  # an old protocol this version cannot read: say so in the report
+        return [f"(the plan cannot be shown: {exc})"]
+
+
+def write_report_data(out_dir: Path, data: dict) -> Path:
+    """Write ``report_data.json`` into ``out_dir`` (atomically)."""
+    path = Path(out_dir) / REPORT_DATA
+    write_text(path, json.dumps(data, indent=1, sort_keys=True, default=str) + "\n")
+    return path
+
+
+def read_report_data(fit_dir: Path) -> dict:
+    """The provenance a fit wrote; empty parts when the file is absent (an older fit)."""
+    path = Path(fit_dir) / REPORT_DATA
+    if not path.is_file():
+        return {"sessions": [], "protocols": {}, "software": {}, "notes": {}, "missing": str(path)}
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError):
+        raise InputError(str(path), "file", "is not the JSON that fit writes; run fit again") from None
+    if not isinstance(data, dict):
+        raise InputError(str(path), "file", "is not the JSON that fit writes; run fit again")
+    return data

@@ -1,0 +1,67 @@
+"""The command line as a new user meets it: bare command, --version, errors, refusals before the display."""
+
+from __future__ import annotations
+
+import importlib.metadata
+import os
+
+from conftest import PROTOCOLS, ROOT, run_cli
+
+
+def test_bare_command_lists_the_commands():
+    done = run_cli()
+    assert done.returncode == 0, done.stderr
+    for command in ("check", "simulate", "run", "fit", "compare", "demo", "plan", "display-test"):
+        assert f"    {command}" in done.stdout, command
+
+
+def test_version():
+    done = run_cli("--version")
+    assert done.returncode == 0
+    try:
+        expected = importlib.metadata.version("aftershift")
+    except importlib.metadata.PackageNotFoundError:
+        expected = (ROOT / "pyproject.toml").read_text().split('version = "')[1].split('"')[0]
+    assert done.stdout.strip() == f"aftershift {expected}"
+
+
+def test_argument_errors_are_one_line_with_one_prefix():
+    done = run_cli("fit", "logs", "--out", "x", "--bootstrap", "many")
+    assert done.returncode == 2
+    lines = done.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].count("aftershift") == 2  # the prefix and the help hint
+    assert lines[0].startswith("aftershift: fit: argument --bootstrap:") and "`aftershift fit --help`" in lines[0]
+
+
+def test_check_says_under_a_minute_for_a_short_protocol(tmp_path):
+    short = tmp_path / "short.toml"
+    short.write_text((PROTOCOLS / "pilot_short.toml").read_text().replace("trials_per_track = 12",
+                                                                          "trials_per_track = 1"))
+    done = run_cli("check", short)
+    assert done.returncode == 0, done.stderr
+    assert "duration   under a minute" in done.stdout and "about 0 min" not in done.stdout
+
+
+def _no_display() -> dict:
+    return {k: v for k, v in os.environ.items() if k not in ("DISPLAY", "WAYLAND_DISPLAY")}
+
+
+def test_run_refuses_an_existing_session_before_opening_the_display(tmp_path):
+    # without a display, reaching the window would fail differently: the refusal must come first
+    done = run_cli("simulate", PROTOCOLS / "pilot_short.toml", "--out", tmp_path)
+    assert done.returncode == 0, done.stderr
+    (tmp_path / "sim01-s1.trials.csv").rename(tmp_path / "p01-s1.trials.csv")
+    before = (tmp_path / "p01-s1.trials.csv").read_bytes()
+    done = run_cli("run", PROTOCOLS / "pilot_short.toml", "--observer", "p01", "--out", tmp_path, env=_no_display())
+    assert done.returncode == 2
+    assert "already holds this session" in done.stderr and "--resume" in done.stderr
+    assert (tmp_path / "p01-s1.trials.csv").read_bytes() == before
+
+
+def test_run_refuses_a_bad_instructions_file_before_opening_the_display(tmp_path):
+    protocol = tmp_path / "p.toml"
+    protocol.write_text((PROTOCOLS / "pilot_short.toml").read_text() + '\n[screens]\ninstructions_file = "nope.txt"\n')
+    done = run_cli("run", protocol, "--observer", "p01", "--out", tmp_path / "data", env=_no_display())
+    assert done.returncode == 2
+    assert "screens.instructions_file" in done.stderr and "does not exist" in done.stderr
+    assert not (tmp_path / "data").exists()
