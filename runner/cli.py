@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import signal
 import sys
 from pathlib import Path
 
@@ -26,16 +27,31 @@ class _Parser(argparse.ArgumentParser):
         raise InputError("argument", self.prog, message)
 
 
-def _load(path: str):
+def _load(path: str, size_check: bool = True):
     """Read and validate a protocol; durations that are not whole frames are refused (exit 3)."""
     from runner import safety
+    from runner.overview import check_size
     from runner.protocol import FrameTimingError, parse_protocol, read_protocol_text
 
     text = read_protocol_text(path)
     try:
-        return parse_protocol(text, source=str(path)), text
+        protocol = parse_protocol(text, source=str(path))
     except FrameTimingError as exc:
         raise safety.timing_refusal(exc.source, exc.field, exc.message) from None
+    if size_check:
+        check_size(protocol, str(path))
+    return protocol, text
+
+
+#: Seeds are 32-bit (numpy's seed sequences take any size; files and other tools may not).
+MAX_SEED = 2**32 - 1
+
+
+def _check_count(value, option: str, low: int, high: int, what: str):
+    """Refuse a whole-number option outside [low, high] with one line."""
+    if value is not None and not (low <= value <= high):
+        raise InputError("argument", option, f"{what} must be from {low} to {high:,}, not {value:,}")
+    return value
 
 
 def _screen(protocol, path: str, acknowledged: bool):
@@ -53,7 +69,12 @@ def cmd_check(args) -> int:
     from runner import safety
     from runner.overview import describe
 
-    protocol, _ = _load(args.protocol)
+    from runner.overview import check_size, session_size
+
+    protocol, _ = _load(args.protocol, size_check=False)
+    trials, seconds = session_size(protocol)
+    print(f"size       {trials} trials, about {seconds / 60:.0f} min")
+    check_size(protocol, args.protocol)
     if protocol.stream is not None:
         from runner.stream import describe_stream
 
@@ -76,11 +97,14 @@ def cmd_simulate(args) -> int:
     from runner.launch import simulate
     from runner.observers import load_model
 
+    from runner.trial_log import check_identifier
+
+    _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
+    _check_count(args.observers, "--observers", 1, 99, "the number of simulated observers")
+    check_identifier(args.session, "--session")
     protocol, text = _load(args.protocol)
     screening = _screen(protocol, args.protocol, args.flicker_ack)
-    model = load_model(args.model)
-    if args.observers < 1:
-        raise InputError("argument", "--observers", "expected at least 1")
+    model = load_model(args.model) if args.model else None
     paths = simulate(
         protocol, args.protocol, text, args.out, model, args.observers, args.seed, args.resume, args.session,
         screening=screening.to_dict(),
@@ -98,6 +122,7 @@ def cmd_run(args) -> int:
 
     check_identifier(args.observer, "--observer")
     check_identifier(args.session, "--session")
+    _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
     protocol, text = _load(args.protocol)
     screening = _screen(protocol, args.protocol, args.flicker_ack)
     caution = safety.caution_text(protocol, args.protocol)
@@ -134,8 +159,15 @@ def _quick_fit_text(rows: list[dict]) -> str:
     return "PSE shift so far (deg, rough 95% CI from 50 replicates):\n" + table.to_string(index=False)
 
 
+#: Most bootstrap replicates ``fit`` accepts: far more than any interval needs, and within memory.
+MAX_BOOTSTRAP = 100_000
+
+
 def cmd_fit(args) -> int:
     from fitting import fit_logs
+
+    _check_count(args.bootstrap, "--bootstrap", 0, MAX_BOOTSTRAP, "bootstrap replicates")
+    _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
 
     lapse = args.lapse
     if lapse != "free":
@@ -186,6 +218,9 @@ def cmd_demo(args) -> int:
 def cmd_plan(args) -> int:
     from runner.planner import plan_command
 
+    _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
+    _check_count(args.runs, "--runs", 2, 10_000, "simulated sessions per design")
+    _check_count(args.jobs, "--jobs", 1, 256, "worker processes")
     _load(args.protocol)  # timing refusals exit 3 here as everywhere
     return plan_command(args.protocol, args.model, args.runs, args.target_half_width, args.out, args.seed, args.jobs)
 
@@ -224,10 +259,11 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("simulate", help="run simulated observers through the session loop (no display)")
     protocol_arg(p)
     p.add_argument("--out", required=True, help="output folder for trial logs and sidecars")
-    p.add_argument("--model", help="observer model file (TOML, flat keys)")
+    p.add_argument("--model", help="observer model file (TOML, flat keys; default built in; a resume uses the "
+                                   "sidecar's)")
     p.add_argument("--observers", type=int, default=1, help="number of simulated observers (default 1)")
-    p.add_argument("--seed", type=int, default=0, help="seed (default 0)")
-    p.add_argument("--session", default="s1", help="session label (default s1)")
+    p.add_argument("--seed", type=int, help="seed (default 0; a resume uses the sidecar's)")
+    p.add_argument("--session", default="s1", help="session label: letters, digits, - and _ (default s1)")
     p.add_argument("--resume", action="store_true", help="continue interrupted sessions in --out")
     ack(p)
     p.set_defaults(func=cmd_simulate)
@@ -297,6 +333,8 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``aftershift`` command; returns the exit code."""
+    _install_signal_handlers()
+    args = None
     try:
         parser = build_parser()
         args = parser.parse_args(argv)
@@ -310,9 +348,33 @@ def main(argv: list[str] | None = None) -> int:
     except BrokenPipeError:  # output piped into e.g. `head`: stop quietly
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return EXIT_OK
-    except KeyboardInterrupt:
-        print("aftershift: interrupted; every completed trial is in the log (use --resume)", file=sys.stderr)
+    except KeyboardInterrupt as exc:
+        command = getattr(args, "command", None)
+        print(f"aftershift{' ' + command if command else ''}: {_interrupted_line(command, exc)}", file=sys.stderr)
         return 130
+
+
+class Terminated(KeyboardInterrupt):
+    """SIGTERM, handled like Ctrl-C."""
+
+
+def _on_sigterm(signum, frame):  # noqa: ARG001 - signal handler
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)  # one clean ending, not two
+    raise Terminated()
+
+
+def _interrupted_line(command: str | None, exc: BaseException) -> str:
+    how = "stopped by SIGTERM" if isinstance(exc, Terminated) else "interrupted"
+    if command in ("run", "simulate"):
+        return f"{how}; every completed trial is in the log; continue with --resume"
+    if command in ("fit", "compare", "plan"):
+        return f"{how}; nothing was half-written (earlier results in --out are unchanged)"
+    return how
+
+
+def _install_signal_handlers() -> None:
+    if signal.getsignal(signal.SIGTERM) in (signal.SIG_DFL, None):
+        signal.signal(signal.SIGTERM, _on_sigterm)
 
 
 if __name__ == "__main__":  # pragma: no cover
