@@ -124,10 +124,10 @@ class Tail:
     reason: str
 
     def describe(self) -> str:
-        """One phrase naming the torn line and what it held."""
+        """One phrase saying why the line is torn and what it held."""
         shown = self.torn[:60].decode("utf-8", "replace").replace("\x00", "\\0")
         more = "..." if len(self.torn) > 60 else ""
-        return f"line {self.torn_line} ({self.reason}; {len(self.torn)} bytes: {shown!r}{more})"
+        return f"{self.reason}; {len(self.torn)} bytes: {shown!r}{more}"
 
 
 def examine_tail(data: bytes) -> Tail:

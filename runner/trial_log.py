@@ -160,7 +160,7 @@ def read_rows(path: str | Path, repair: bool = False, repairs: list | None = Non
                          "and the file holds other data; it cannot be repaired automatically")
     if tail.torn:
         kept = data.count(b"\n", 0, tail.keep) - 1
-        _note(repairs, p, "torn", f"cut off the torn {tail.describe()}, keeping the {kept} rows before it")
+        _note(repairs, p, "torn", f"cut off the torn line {tail.torn_line} ({tail.describe()}), keeping the {kept} rows before it")
         data = data[: tail.keep]
         if repair:
             _truncate(p, tail.keep)
