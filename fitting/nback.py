@@ -56,6 +56,7 @@ from .aftereffect import TAU_BOUNDS, dog, peak_bounds
 from .bootstrap import bca_interval, percentile_interval
 from .errors import InputError
 from .psychometric import DEFAULT_LAPSE_MAX, sigmoid_parts
+from .outputs import output_set
 from .tables import MAX_OFFSET_DEG, check_unique_trials, find_logs, read_log_table, write_csv
 
 #: The ``block`` value of stream rows in a trial log.
@@ -656,12 +657,14 @@ def fit_stream_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="fr
         fits.append(boot)
         for name, table in result_tables(boot).items():
             tables[name].append(table)
-    files = []
-    for name, parts in tables.items():
-        path = out / f"{name}.csv"
-        write_csv(pd.concat(parts, ignore_index=True), path)
-        files.append(str(path))
-    if figures:
-        for boot in fits:
-            files += plot_amplitudes(boot, out / f"nback_{safe_name(boot.fit.trials.observer)}")
+    with output_set(out, "fit") as staged:
+        files = []
+        for name, parts in tables.items():
+            path = staged.folder / f"{name}.csv"
+            write_csv(pd.concat(parts, ignore_index=True), path)
+            files.append(str(path))
+        if figures:
+            for boot in fits:
+                files += plot_amplitudes(boot, staged.folder / f"nback_{safe_name(boot.fit.trials.observer)}")
+        files = staged.final_paths(files)
     return StreamReport(out, fits, files)

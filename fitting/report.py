@@ -45,6 +45,7 @@ from .group import GROUP, group_aftereffect, group_curves, group_pse, mixed_mode
 from .observer import (AFTEREFFECT_COLUMNS, DECAY_COLUMNS, PSE_COLUMNS, TUNING_COLUMNS,
                        ObserverAnalysis, Options, analyse_observer, condition_table)
 from .psychometric import DEFAULT_LAPSE_MAX, SIGMOIDS, Cells, fit_cells
+from .outputs import output_set
 from .tables import prepare_trials, read_logs, write_csv, write_text
 
 MAIN_TABLES = {"pse": PSE_COLUMNS, "aftereffect": AFTEREFFECT_COLUMNS,
@@ -324,30 +325,30 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
     InputError
         Bad arguments, unreadable or invalid logs (naming file and line).
     """
-    out = Path(out_dir)
-    if out.exists() and not out.is_dir():
-        raise InputError(str(out), "--out", "exists and is not a folder")
+    if Path(out_dir).exists() and not Path(out_dir).is_dir():
+        raise InputError(str(out_dir), "--out", "exists and is not a folder")
     _check_options(n_boot, seed, lapse, spread, sigmoid, interval, level, lapse_max, progress)
     trials = read_logs(paths, include_bad_timing, include_practice)
     report = fit_trials(trials, n_boot, seed, lapse, spread, progress, sigmoid=sigmoid,
                         interval=interval, level=level, lapse_max=lapse_max)
-    # all fitting is done; only now is anything written
-    fig_files: list[str] = []
-    if figures:
-        from .figures import make_figures
-        fig_files = make_figures(report.analyses, report.group, out / "figures")
-    out.mkdir(parents=True, exist_ok=True)
-    files = []
-    for name, cols in MAIN_TABLES.items():
-        write_csv(getattr(report, name), out / f"{name}.csv", cols)
-        files.append(str(out / f"{name}.csv"))
-    for name, table in report.extras.items():
-        if table is not None and len(table.columns):
-            write_csv(table, out / f"{name}.csv")
+    # all fitting is done; only now is anything written, staged and moved in as one set
+    with output_set(out_dir, "fit") as staged:
+        out = staged.folder
+        fig_files: list[str] = []
+        if figures:
+            from .figures import make_figures
+            fig_files = make_figures(report.analyses, report.group, out / "figures")
+        files = []
+        for name, cols in MAIN_TABLES.items():
+            write_csv(getattr(report, name), out / f"{name}.csv", cols)
             files.append(str(out / f"{name}.csv"))
-    report.out_dir = str(out)
-    report.files = files + fig_files + [str(out / "summary.txt")]
-    write_text(out / "summary.txt", report.summary() + "\n")
+        for name, table in report.extras.items():
+            if table is not None and len(table.columns):
+                write_csv(table, out / f"{name}.csv")
+                files.append(str(out / f"{name}.csv"))
+        report.out_dir = str(staged.final_dir)
+        report.files = staged.final_paths(files + fig_files + [str(out / "summary.txt")])
+        write_text(out / "summary.txt", report.summary() + "\n")
     return report
 
 

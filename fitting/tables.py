@@ -26,7 +26,6 @@ from __future__ import annotations
 import csv
 import io
 import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -34,6 +33,7 @@ import pandas as pd
 
 from .errors import InputError
 from .logfile import examine_tail, is_being_written
+from .outputs import write_atomic
 
 REQUIRED_COLUMNS = ["observer", "session", "trial", "condition", "adapter_offset_deg", "lag",
                     "track", "test_offset_deg", "response_cw", "rt_s", "dropped_frames", "timing_ok"]
@@ -414,18 +414,8 @@ def format_table(df: pd.DataFrame, columns: list[str] | None = None) -> str:
 
 
 def write_text(path: Path, text: str) -> None:
-    """Write ``text`` atomically: a temporary file beside ``path``, then rename."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix="." + path.name + ".", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
-            fh.write(text)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    """Write ``text`` whole (temporary file, then rename), with the umask's permissions."""
+    write_atomic(path, text.encode("utf-8"))
 
 
 def write_csv(df: pd.DataFrame, path, columns: list[str] | None = None) -> None:

@@ -45,6 +45,7 @@ from fitting import fit_logs
 from fitting.errors import InputError
 from fitting.figures import save
 from fitting.progress import ProgressBar
+from fitting.outputs import output_set
 from fitting.tables import write_csv
 from runner.launch import derive_seed, simulate
 from runner.observers import ObserverModel, load_model
@@ -491,7 +492,8 @@ def plan_command(protocol_path: str, model_path: str | None, runs: int, target_h
         raise InputError(str(out), "--out", "exists and is not a folder")
     result = plan_design(protocol, text, str(protocol_path), model, runs, seed,
                          target_half_width=target_half_width, jobs=jobs)
-    files = result.write(out)
+    with output_set(out, "plan") as staged:
+        files = staged.final_paths(result.write(staged.folder))
     print("\n".join(result.summary_lines()))
     print(f"wrote {', '.join(str(f) for f in files)}")
     return 0
