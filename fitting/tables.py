@@ -60,14 +60,17 @@ def find_logs(paths) -> list[Path]:
     seen = set()
     for raw in paths:
         p = Path(raw)
-        if p.is_dir():
-            files = sorted(f for f in p.rglob("*" + LOG_SUFFIX) if f.is_file())
-            if not files:
-                raise InputError(str(p), "", f"no trial logs (*{LOG_SUFFIX}) in this folder or below")
-        elif p.is_file():
-            files = [p]
-        else:
-            raise InputError(str(p), "", "no such file or folder")
+        try:
+            if p.is_dir():
+                files = sorted(f for f in p.rglob("*" + LOG_SUFFIX) if f.is_file())
+                if not files:
+                    raise InputError(str(p), "", f"no trial logs (*{LOG_SUFFIX}) in this folder or below")
+            elif p.is_file():
+                files = [p]
+            else:
+                raise InputError(str(p), "", "no such file or folder")
+        except OSError as exc:
+            raise InputError(str(p), "", f"cannot be read ({exc.strerror})") from None
         for f in files:
             key = f.resolve()
             if key not in seen:

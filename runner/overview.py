@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from fitting.errors import InputError
 from runner.protocol import Protocol, frame_plan
 from runner.schedule import design_conditions
 
