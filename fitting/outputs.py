@@ -149,6 +149,25 @@ def _prune_empty(folder: Path, top: Path) -> None:
         folder = folder.parent
 
 
+def check_out_dir(out_dir: str | Path) -> None:
+    """Refuse, before any work, an ``--out`` that cannot become a writable folder.
+
+    Raises
+    ------
+    InputError
+        A path under a regular file, or a folder (or its nearest existing
+        parent) that cannot be written.
+    """
+    out = Path(out_dir)
+    probe = out
+    while not probe.exists() and probe != probe.parent:
+        probe = probe.parent
+    if not probe.is_dir():
+        raise InputError(str(out), "--out", f"{probe} is a file, not a folder")
+    if not os.access(probe, os.W_OK | os.X_OK):
+        raise InputError(str(out), "--out", f"{probe} cannot be written (read-only or no permission)")
+
+
 @contextmanager
 def output_set(out_dir: str | Path, command: str):
     """Stage a command's outputs and move them into ``out_dir`` as one set.

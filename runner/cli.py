@@ -166,8 +166,11 @@ MAX_BOOTSTRAP = 100_000
 def cmd_fit(args) -> int:
     from fitting import fit_logs
 
+    from fitting.outputs import check_out_dir
+
     _check_count(args.bootstrap, "--bootstrap", 0, MAX_BOOTSTRAP, "bootstrap replicates")
     _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
+    check_out_dir(args.out)
 
     lapse = args.lapse
     if lapse != "free":
@@ -201,6 +204,9 @@ def cmd_fit(args) -> int:
 
 def cmd_compare(args) -> int:
     from fitting.compare import compare_results
+    from fitting.outputs import check_out_dir
+
+    check_out_dir(args.out)
 
     result = compare_results(args.results, args.predictions, args.out, interpolate=args.interpolate)
     print(result.summary())
@@ -221,6 +227,9 @@ def cmd_plan(args) -> int:
     _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
     _check_count(args.runs, "--runs", 2, 10_000, "simulated sessions per design")
     _check_count(args.jobs, "--jobs", 1, 256, "worker processes")
+    from fitting.outputs import check_out_dir
+
+    check_out_dir(args.out)
     _load(args.protocol)  # timing refusals exit 3 here as everywhere
     return plan_command(args.protocol, args.model, args.runs, args.target_half_width, args.out, args.seed, args.jobs)
 
