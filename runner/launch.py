@@ -237,6 +237,7 @@ def simulate(
     session: str = "s1",
     screening: dict | None = None,
     progress: bool | None = None,
+    sync_every_row: bool = False,
 ) -> list[Path]:
     """Simulate ``n_observers`` observers running the protocol.
 
@@ -245,7 +246,8 @@ def simulate(
     (:func:`runner.observers.draw_observers`).  ``seed`` and ``model`` may be
     None: a resume then takes them from the sidecars, a new session uses 0
     and the built-in model.  Rows are written at once but synced to disk
-    only at breaks and at the end (they can be made again from the seed).
+    only at breaks and at the end (they can be made again from the seed),
+    unless ``sync_every_row`` asks for a person's per-trial sync.
 
     Returns
     -------
@@ -265,7 +267,7 @@ def simulate(
     paths = []
     try:
         for i, (run, observer_model) in enumerate(zip(runs, models)):
-            log = open_log(out, run.observer, session, resume, durable=False)
+            log = open_log(out, run.observer, session, resume, durable=sync_every_row)
             base = {
                 "tool": "aftershift",
                 "kind": "simulation",
