@@ -56,6 +56,7 @@ def run_demo(out_dir: str | Path = "results_demo", progress: bool | None = None)
     from fitting.compare import compare_results
     from fitting.population import ChannelModel, predict_table
     from fitting.report import fit_logs
+    from fitting.tables import write_text
     from runner.launch import simulate
     from runner.observers import load_model
     from runner.protocol import load_protocol, read_protocol_text
@@ -71,6 +72,8 @@ def run_demo(out_dir: str | Path = "results_demo", progress: bool | None = None)
         protocol, rel_protocol, text, out / "logs", load_model(MODEL), N_OBSERVERS, SEED,
         screening=screening.to_dict(), progress=progress,
     )
+    for lock in (out / "logs").glob("*.lock"):  # no session writes the demo's logs any more
+        lock.unlink()
     report = fit_logs([str(out / "logs")], str(out / "fit"), n_boot=N_BOOT, seed=SEED, progress=progress)
     predictions = predict_table(
         ChannelModel(tuning_kappa=4.0, adapt_strength=0.25, adapt_kappa=6.0, recovery_periods=2.0),
@@ -79,7 +82,7 @@ def run_demo(out_dir: str | Path = "results_demo", progress: bool | None = None)
     predictions.to_csv(out / "predictions_population_model.csv", index=False, float_format="%.6f")
     comparison = compare_results(out / "fit", out / "predictions_population_model.csv", out / "compare")
     page = out / "report.html"
-    page.write_text(_report_html(out, protocol, screening, report, comparison), encoding="utf-8")
+    write_text(page, _report_html(out, protocol, screening, report, comparison))
     return page
 
 

@@ -19,7 +19,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from fault_helpers import LONG, LONG_ARGS, cli, leftovers, logs, one_line, only_notes
+from fault_helpers import LONG, LONG_ARGS, PILOT, cli, leftovers, logs, one_line, only_notes
 from runner.cli import main
 
 from conftest import ROOT
@@ -173,3 +173,20 @@ def test_ctrl_c_during_fit_names_the_command_and_leaves_nothing_half_written(cap
     assert one_line(err).startswith("aftershift fit: interrupted")
     assert {p.name: p.read_bytes() for p in out.iterdir()} == before
     assert leftovers(out) == []
+
+
+def test_ctrl_c_during_plan_stops_the_workers_and_says_so(tmp_path):
+    out = tmp_path / "plan"
+    proc = subprocess.Popen([sys.executable, "-m", "runner.cli", "plan", str(PILOT), "--runs", "40", "--out", str(out)],
+                            cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True,
+                            start_new_session=True)
+    time.sleep(4)
+    os.killpg(proc.pid, signal.SIGINT)  # as a terminal's Ctrl-C: the whole process group
+    try:
+        proc.wait(timeout=60)
+    except subprocess.TimeoutExpired:
+        os.killpg(proc.pid, signal.SIGKILL)
+        pytest.fail("plan did not stop on Ctrl-C")
+    assert proc.returncode == 130
+    assert one_line(proc.stderr.read()).startswith("aftershift plan: interrupted")
+    assert not out.exists()
