@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import csv
 import io
+import json
 import os
 from pathlib import Path
 
@@ -282,20 +283,51 @@ def check_unique_trials(table: pd.DataFrame) -> None:
                      "(remove the copy or the repeated row)")
 
 
+def recorded_bounds(log: str | Path) -> tuple[float, float] | None:
+    """The protocol's test-offset bounds from the sidecar beside a log, if it records them."""
+    p = Path(log)
+    if not p.name.endswith(LOG_SUFFIX):
+        return None
+    try:
+        side = json.loads(p.with_name(p.name[: -len(LOG_SUFFIX)] + ".session.json").read_text(encoding="utf-8"))
+        lo, hi = (float(v) for v in side["offset_bounds_deg"])
+    except (OSError, ValueError, KeyError, TypeError):
+        return None
+    return (lo, hi) if np.isfinite([lo, hi]).all() and lo < hi else None
+
+
 def check_offsets(trials: pd.DataFrame, limit: float = MAX_OFFSET_DEG) -> None:
-    """Refuse test and adapter offsets outside ±``limit`` degrees.
+    """Refuse offsets outside a plausible range.
+
+    Main-trial test offsets must lie within the protocol's bounds where
+    the log's sidecar records them (``offset_bounds_deg``), and within
+    ±``limit`` otherwise; practice and adapter offsets within ±``limit``.
 
     Raises
     ------
     InputError
         Naming the file, line and column of the first implausible offset.
     """
-    for column in ("test_offset_deg", "adapter_offset_deg"):
-        bad = _first_bad(trials[column].abs() > limit)
-        if bad is not None:
-            row = trials.iloc[bad]
-            raise InputError(str(row["source"]), f"{row['line']}, column {column}",
-                             f"{row[column]:g} deg is outside the plausible range of ±{limit:g} deg")
+    lo = pd.Series(-limit, index=trials.index)
+    hi = pd.Series(limit, index=trials.index)
+    for source in trials["source"].unique():
+        bounds = recorded_bounds(source)
+        if bounds is not None:
+            rows = (trials["source"] == source) & ~trials["practice"]  # practice offsets may lie outside
+            lo[rows], hi[rows] = bounds[0] - 1e-9, bounds[1] + 1e-9
+    x = trials["test_offset_deg"]
+    bad = _first_bad((x < lo) | (x > hi))
+    if bad is not None:
+        row = trials.iloc[bad]
+        raise InputError(str(row["source"]), f"{row['line']}, column test_offset_deg",
+                         f"{row['test_offset_deg']:g} deg is outside the plausible range "
+                         f"[{lo.iloc[bad]:g}, {hi.iloc[bad]:g}] deg (the protocol's bounds where the sidecar "
+                         f"records them, otherwise ±{limit:g})")
+    bad = _first_bad(trials["adapter_offset_deg"].abs() > limit)
+    if bad is not None:
+        row = trials.iloc[bad]
+        raise InputError(str(row["source"]), f"{row['line']}, column adapter_offset_deg",
+                         f"{row['adapter_offset_deg']:g} deg is outside the plausible range of ±{limit:g} deg")
 
 
 def _check_conditions(trials: pd.DataFrame) -> None:

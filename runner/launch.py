@@ -187,7 +187,7 @@ def run_part(log: TrialLog, sidecar: dict, session) -> SessionResult:
 
     ``session`` is a no-argument callable running the loop.  An interrupt
     (Ctrl-C, SIGTERM), a full disk or any other failure marks the part
-    ``interrupted``, ``disk full`` or ``failed`` in the sidecar and is
+    ``interrupted``, ``disk full``, ``disk error`` or ``failed`` in the sidecar and is
     raised again; the log keeps every completed row.
     """
     try:
@@ -195,7 +195,7 @@ def run_part(log: TrialLog, sidecar: dict, session) -> SessionResult:
             result = session()
         except BaseException as exc:
             how = "interrupted" if isinstance(exc, KeyboardInterrupt) else (
-                "disk full" if isinstance(exc, StorageError) else "failed")
+                ("disk full" if exc.full else "disk error") if isinstance(exc, StorageError) else "failed")
             _end_part(log, sidecar, how)
             raise
         log.sync()
@@ -279,6 +279,7 @@ def simulate(
                 "packages": package_versions(),
                 "seed": seed,
                 "session_seed": run.seed,
+                "offset_bounds_deg": protocol.procedure.bounds_deg,
                 "base_model": asdict(model),
                 "observer_model": asdict(observer_model),
                 "safety": screening,
@@ -353,6 +354,7 @@ def run_on_screen(
         "packages": package_versions(),
         "seed": seed,
         "session_seed": seed,
+        "offset_bounds_deg": protocol.procedure.bounds_deg,
         **extra,
     }
     try:

@@ -108,7 +108,12 @@ def _row_text(row: dict) -> str:
 
 
 class StorageError(InputError):
-    """The disk refused a write (full, or an I/O error); the log was cut back to its last whole row."""
+    """The disk refused a write (full, or an I/O error); the log was cut back to its last whole row.
+
+    Attribute ``full`` tells a full disk from an I/O error.
+    """
+
+    full = True
 
 
 def _header_text() -> str:
@@ -222,7 +227,7 @@ def _write_new(path: Path, content: bytes) -> None:
         os.replace(tmp, path)
     except OSError as exc:
         _unlink(tmp)
-        raise _disk_error(path, exc, 0) from None
+        raise _disk_error(path, exc, None) from None
     _fsync_dir(path.parent)
 
 
@@ -239,15 +244,18 @@ def _unlink(path: Path) -> None:
         pass
 
 
-def _disk_error(path: Path, exc: OSError, rows: int) -> InputError:
+def _disk_error(path: Path, exc: OSError, rows: int | None) -> InputError:
     if exc.errno in (errno.ENOSPC, errno.EDQUOT):
         what = "the disk is full"
     elif exc.errno == errno.EIO:
         what = "the disk reported an I/O error"
     else:
         return InputError(str(path), "file", f"cannot be written ({exc.strerror})")
-    return StorageError(str(path), "disk", f"{what} ({exc.strerror}); {rows} trials are safe in the log; "
-                        "free some space, then continue with --resume")
+    safe = "every completed trial is safe" if rows is None else f"{rows} trials are safe in the log"
+    error = StorageError(str(path), "disk", f"{what} ({exc.strerror}); {safe}; "
+                         "free some space, then continue with --resume")
+    error.full = exc.errno != errno.EIO
+    return error
 
 
 class TrialLog:

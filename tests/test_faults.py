@@ -225,8 +225,9 @@ def test_lock_left_by_a_dead_process_is_taken_over_with_a_note(capsys, tmp_path,
 # --- full disks, read-only and unreadable paths -----------------------------------------------------------------
 
 
-def test_injected_enospc_cuts_back_to_the_last_row_and_resumes_exactly(capsys, tmp_path, whole, monkeypatch):
-    """A full disk without mounting anything: the 200th row's write fails with ENOSPC after a partial write."""
+@pytest.mark.parametrize("code_", [errno.ENOSPC, errno.EIO], ids=["ENOSPC", "EIO"])
+def test_injected_enospc_cuts_back_to_the_last_row_and_resumes_exactly(capsys, tmp_path, whole, monkeypatch, code_):
+    """A full disk (or a failing one) without mounting anything: the 60th row's write fails after a partial write."""
     out = tmp_path / "o"
     real_write, calls = os.write, {"n": 0}
 
@@ -235,17 +236,18 @@ def test_injected_enospc_cuts_back_to_the_last_row_and_resumes_exactly(capsys, t
             calls["n"] += 1
             if calls["n"] == 60:
                 real_write(fd, bytes(data[:25]))  # part of the row reaches the file, then the disk is full
-                raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+                raise OSError(code_, os.strerror(code_))
         return real_write(fd, data)
 
     monkeypatch.setattr(trial_log.os, "write", failing_write)
     code, err = cli(capsys, "simulate", PILOT, "--out", out, *PILOT_ARGS)
     monkeypatch.undo()
     line = one_line(err)
-    assert code == 2 and "disk is full" in line and "--resume" in line
+    assert code == 2 and ("disk is full" in line or "I/O error" in line) and "--resume" in line
     data = (out / NAME).read_bytes()
     assert data.endswith(b"\n") and data.count(b"\n") == 60  # header + 59 whole rows, no torn row
-    assert json.loads((out / SIDE).read_text())["parts"][-1]["ended_by"] == "disk full"
+    ended = json.loads((out / SIDE).read_text())["parts"][-1]["ended_by"]
+    assert ended == ("disk full" if code_ == errno.ENOSPC else "disk error")
     _resume_equals_whole(capsys, out, whole)
 
 
@@ -350,6 +352,30 @@ def test_fit_refuses_a_backup_copy_and_doubled_rows(capsys, tmp_path, whole):
     (tmp_path / "doubled.trials.csv").write_bytes(b"".join(lines[:50] + lines[40:45] + lines[50:]))
     code, err = cli(capsys, "fit", tmp_path / "doubled.trials.csv", "--out", tmp_path / "fit", "--bootstrap", "0")
     assert code == 2 and "line 51" in one_line(err) and "line 41" in err
+
+
+def test_fit_refuses_offsets_outside_the_bounds_the_sidecar_records(capsys, tmp_path, whole):
+    text = (whole / NAME).read_text().splitlines(keepends=True)
+    cells = text[30].split(",")
+    cells[trial_log.COLUMNS.index("test_offset_deg")] = "31"  # pilot_short.toml: bounds_deg = [-30, 30]
+    text[30] = ",".join(cells)
+    (tmp_path / NAME).write_text("".join(text))
+    (tmp_path / SIDE).write_bytes((whole / SIDE).read_bytes())
+    code, err = cli(capsys, "fit", tmp_path / NAME, "--out", tmp_path / "fit", "--bootstrap", "0")
+    assert code == 2 and "line 31" in one_line(err) and "[-30, 30]" in err
+
+
+def test_fit_leaves_out_the_line_a_running_session_is_writing(capsys, tmp_path, whole):
+    from runner.session_lock import SessionLock
+
+    lines = (whole / NAME).read_bytes().splitlines(keepends=True)
+    (tmp_path / NAME).write_bytes(b"".join(lines[:80]) + lines[80][:30])
+    with SessionLock(tmp_path / NAME):
+        code, err = cli(capsys, "fit", tmp_path / NAME, "--out", tmp_path / "fit", "--bootstrap", "0", "--no-figures")
+    assert code == 0, err
+    assert "79 read" in (tmp_path / "fit" / "summary.txt").read_text()
+    code, err = cli(capsys, "fit", tmp_path / NAME, "--out", tmp_path / "fit", "--bootstrap", "0", "--no-figures")
+    assert code == 2 and "line 81" in one_line(err) and "torn" in err
 
 
 def test_fit_refuses_absurd_offsets(capsys, tmp_path, whole):
