@@ -237,6 +237,8 @@ def cmd_plan(args) -> int:
 def cmd_display_test(args) -> int:
     from runner import display
 
+    if not (0 < args.seconds <= 3600):
+        raise InputError("argument", "--seconds", f"expected a duration from 0 to 3600 s, not {args.seconds:g}")
     protocol, _ = _load(args.protocol)
     report = display.display_test(protocol, args.seconds, args.windowed, args.report)
     return EXIT_OK if report.get("verdict_ok", True) else EXIT_SAFETY
