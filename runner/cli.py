@@ -118,7 +118,8 @@ def cmd_run(args) -> int:
     from runner import display, safety
     from runner.console import ExperimenterConsole
     from runner.launch import run_on_screen
-    from runner.trial_log import check_identifier
+    from runner.session_lock import SessionLock
+    from runner.trial_log import check_identifier, log_paths
 
     check_identifier(args.observer, "--observer")
     check_identifier(args.session, "--session")
@@ -126,6 +127,7 @@ def cmd_run(args) -> int:
     protocol, text = _load(args.protocol)
     screening = _screen(protocol, args.protocol, args.flicker_ack)
     caution = safety.caution_text(protocol, args.protocol)
+    SessionLock(log_paths(args.out, args.observer, args.session)[0]).release()  # a second writer stops here
     console = ExperimenterConsole(quick_fit=_quick_fit_text)
     presenter, answers = display.open_screen(protocol, args.windowed, args.refresh_ack, console)
     extra = {

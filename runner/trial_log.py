@@ -165,7 +165,9 @@ def read_rows(path: str | Path, repair: bool = False, repairs: list | None = Non
                          "and the file holds other data; it cannot be repaired automatically")
     if tail.torn:
         kept = data.count(b"\n", 0, tail.keep) - 1
-        _note(repairs, p, "torn", f"cut off the torn line {tail.torn_line} ({tail.describe()}), keeping the {kept} rows before it")
+        action = "cut off" if repair else "ignoring"
+        _note(repairs, p, "torn", f"{action} the torn line {tail.torn_line} ({tail.describe()}), "
+              f"keeping the {kept} rows before it")
         data = data[: tail.keep]
         if repair:
             _truncate(p, tail.keep)

@@ -496,3 +496,13 @@ def test_interrupted_fit_leaves_the_earlier_fit_untouched(capsys, tmp_path, whol
     assert code == 130 and one_line(err).startswith("aftershift fit: interrupted")
     assert {p.name: p.read_bytes() for p in out.iterdir()} == before
     assert leftovers(out) == []
+
+
+def test_run_refuses_a_held_session_before_opening_any_window(capsys, tmp_path, monkeypatch):
+    from runner.session_lock import SessionLock
+
+    monkeypatch.delenv("DISPLAY", raising=False)  # the lock is checked first, so no screen is needed to see it
+    log = tmp_path / "P01-s1.trials.csv"
+    with SessionLock(log):
+        code, err = cli(capsys, "run", PILOT, "--observer", "P01", "--out", tmp_path)
+    assert code == 2 and "another session is writing" in one_line(err) and f"process {os.getpid()}" in err
