@@ -230,6 +230,9 @@ def _write_new(path: Path, content: bytes) -> None:
     except OSError as exc:
         _unlink(tmp)
         raise _disk_error(path, exc, None) from None
+    except BaseException:  # Ctrl-C or SIGTERM in the middle: no temporary file stays behind
+        _unlink(tmp)
+        raise
     _fsync_dir(path.parent)
 
 
