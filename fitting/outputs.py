@@ -6,7 +6,8 @@ when every file is complete are they moved into place, each by one rename,
 after a manifest (``outputs.json``) listing them has been written.  Then the
 files that the folder's previous manifest listed and this run did not write
 are removed, so no table or figure of an earlier fit survives beside the new
-ones.  Files no manifest lists (your own notes, logs) are never touched.
+ones.  Files no manifest lists (your own notes) are never touched, and
+trial logs, sidecars and lock files never, whatever a manifest says.
 
 A failure, Ctrl-C or SIGTERM before that point removes the staging folder
 and leaves the earlier outputs as they were; a staging folder left by a
@@ -30,6 +31,8 @@ from .errors import InputError
 
 MANIFEST = "outputs.json"
 STAGING_PREFIX = ".staging-"
+#: Data files a manifest can never cause to be removed, whatever it lists.
+NEVER_REMOVED = (".trials.csv", ".session.json", ".lock")
 
 
 def file_mode() -> int:
@@ -128,9 +131,9 @@ def _commit(staged: StagedOutputs, command: str) -> None:
         target.parent.mkdir(parents=True, exist_ok=True)
         os.replace(stage / rel, target)
     os.replace(stage / MANIFEST, out / MANIFEST)
-    keep = set(files)
+    keep = set(files) | {MANIFEST}
     for rel in previous:
-        if rel in keep or Path(rel).is_absolute() or ".." in Path(rel).parts:
+        if rel in keep or Path(rel).is_absolute() or ".." in Path(rel).parts or rel.endswith(NEVER_REMOVED):
             continue
         stale = out / rel
         try:

@@ -464,6 +464,12 @@ def test_refit_replaces_the_earlier_fit_as_a_set_and_keeps_other_files(capsys, t
     manifest = json.loads((out / "outputs.json").read_text())
     assert set(manifest["files"]) | {"outputs.json", "my_notes.txt"} == {str(p) for p in second}
     assert leftovers(out) == []
+    # a manifest edited by hand cannot make a fit delete data
+    (out / NAME).write_bytes((whole / NAME).read_bytes())
+    (out / "outputs.json").write_text(json.dumps({"files": [NAME, "../x.txt", "pse.csv"]}))
+    (tmp_path / "x.txt").write_text("outside")
+    assert cli(capsys, "fit", whole / NAME, "--out", out, "--bootstrap", "0", "--no-figures")[0] == 0
+    assert (out / NAME).exists() and (tmp_path / "x.txt").exists()
 
 
 def test_tables_follow_the_umask(capsys, tmp_path, whole):
