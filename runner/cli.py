@@ -67,9 +67,7 @@ def _screen(protocol, path: str, acknowledged: bool):
 
 def cmd_check(args) -> int:
     from runner import safety
-    from runner.overview import describe
-
-    from runner.overview import check_size, session_size
+    from runner.overview import check_size, describe, session_size
 
     protocol, _ = _load(args.protocol, size_check=False)
     trials, seconds = session_size(protocol)
@@ -96,7 +94,6 @@ def cmd_check(args) -> int:
 def cmd_simulate(args) -> int:
     from runner.launch import simulate
     from runner.observers import load_model
-
     from runner.trial_log import check_identifier
 
     _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
@@ -167,7 +164,6 @@ MAX_BOOTSTRAP = 100_000
 
 def cmd_fit(args) -> int:
     from fitting import fit_logs
-
     from fitting.outputs import check_out_dir
 
     _check_count(args.bootstrap, "--bootstrap", 0, MAX_BOOTSTRAP, "bootstrap replicates")
@@ -224,13 +220,12 @@ def cmd_demo(args) -> int:
 
 
 def cmd_plan(args) -> int:
+    from fitting.outputs import check_out_dir
     from runner.planner import plan_command
 
     _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
-    _check_count(args.runs, "--runs", 2, 10_000, "simulated sessions per design")
+    _check_count(args.runs, "--runs", 1, 10_000, "simulated sessions per design")
     _check_count(args.jobs, "--jobs", 1, 256, "worker processes")
-    from fitting.outputs import check_out_dir
-
     check_out_dir(args.out)
     _load(args.protocol)  # timing refusals exit 3 here as everywhere
     return plan_command(args.protocol, args.model, args.runs, args.target_half_width, args.out, args.seed, args.jobs)
