@@ -58,6 +58,16 @@ def leftovers(folder: Path) -> list[str]:
     return sorted(str(p) for p in Path(folder).rglob("*") if p.name.endswith(".tmp") or p.name.startswith("."))
 
 
+def resume_equals(capsys, protocol: Path, args: list[str], out: Path, whole: Path) -> str:
+    """``simulate --resume`` into ``out`` succeeds, leaves no temporary file, and the logs equal ``whole``'s."""
+    code, err = cli(capsys, "simulate", protocol, "--out", out, *args, "--resume")
+    assert code == 0, err
+    only_notes(err)
+    assert logs(out) == logs(whole)
+    assert leftovers(out) == []
+    return err
+
+
 @contextlib.contextmanager
 def tmpfs(path: Path, size: str = "64k", read_only: bool = False):
     """A small tmpfs at ``path`` (skips the test where mounting is not allowed)."""

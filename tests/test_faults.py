@@ -23,7 +23,7 @@ from pathlib import Path
 
 import pytest
 
-from fault_helpers import (PILOT, PILOT_ARGS, as_nobody, cli, leftovers, logs, one_line, only_notes, tmpfs)
+from fault_helpers import PILOT, PILOT_ARGS, as_nobody, cli, leftovers, logs, one_line, resume_equals, tmpfs
 from runner import trial_log
 from runner.cli import main
 
@@ -53,12 +53,7 @@ def _copy(whole: Path, out: Path, rows: int | None = None, extra: bytes = b"", s
 
 
 def _resume_equals_whole(capsys, out: Path, whole: Path) -> str:
-    code, err = cli(capsys, "simulate", PILOT, "--out", out, *PILOT_ARGS, "--resume")
-    assert code == 0, err
-    only_notes(err)
-    assert logs(out) == logs(whole)
-    assert leftovers(out) == []
-    return err
+    return resume_equals(capsys, PILOT, PILOT_ARGS, out, whole)
 
 
 # --- what a kill leaves behind ----------------------------------------------------------------------------------

@@ -19,7 +19,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from fault_helpers import LONG, LONG_ARGS, PILOT, cli, leftovers, logs, one_line, only_notes
+from fault_helpers import LONG, LONG_ARGS, PILOT, cli, leftovers, logs, one_line, only_notes, resume_equals
 from runner.cli import main
 
 from conftest import ROOT
@@ -62,11 +62,7 @@ def _rows(path: Path) -> int:
 
 
 def _resume(capsys, out: Path, whole: Path) -> None:
-    code, err = cli(capsys, "simulate", LONG, "--out", out, *LONG_ARGS, "--resume")
-    assert code == 0, err
-    only_notes(err)
-    assert logs(out) == logs(whole)
-    assert leftovers(out) == []
+    resume_equals(capsys, LONG, LONG_ARGS, out, whole)
 
 
 # 8 instants drawn at random (seeded, so a failure can be repeated), plus the header and the sidecar writes
