@@ -507,3 +507,12 @@ def test_run_refuses_a_held_session_before_opening_any_window(capsys, tmp_path, 
     with SessionLock(log):
         code, err = cli(capsys, "run", PILOT, "--observer", "P01", "--out", tmp_path)
     assert code == 2 and "another session is writing" in one_line(err) and f"process {os.getpid()}" in err
+
+
+def test_staging_folder_of_a_killed_fit_is_removed_by_the_next(capsys, tmp_path, whole):
+    out = tmp_path / "fit"
+    left = out / f".staging-{2**22 + 23}-abc"  # as a fit killed with SIGKILL mid-write leaves it
+    (left / "figures").mkdir(parents=True)
+    (left / "pse.csv").write_text("observer,cond")
+    assert cli(capsys, "fit", whole, "--out", out, "--bootstrap", "0", "--no-figures")[0] == 0
+    assert not left.exists() and leftovers(out) == []
