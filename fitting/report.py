@@ -39,7 +39,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .bootstrap import parametric_bootstrap
+from .bootstrap import check_replicate_memory, parametric_bootstrap
 from .errors import InputError
 from .group import GROUP, group_aftereffect, group_curves, group_pse, mixed_model
 from .observer import (AFTEREFFECT_COLUMNS, DECAY_COLUMNS, PSE_COLUMNS, TUNING_COLUMNS,
@@ -225,6 +225,7 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
     no files.
     """
     opts = _check_options(n_boot, seed, lapse, spread, sigmoid, interval, level, lapse_max, progress)
+    check_replicate_memory(opts.n_boot, int(trials.groupby(["observer", "condition"]).ngroups))
     analyses: list[ObserverAnalysis] = []
     for observer, obs_trials in trials.groupby("observer", sort=True):
         analyses.append(analyse_observer(str(observer), obs_trials.reset_index(drop=True), opts,

@@ -516,3 +516,12 @@ def test_staging_folder_of_a_killed_fit_is_removed_by_the_next(capsys, tmp_path,
     (left / "pse.csv").write_text("observer,cond")
     assert cli(capsys, "fit", whole, "--out", out, "--bootstrap", "0", "--no-figures")[0] == 0
     assert not left.exists() and leftovers(out) == []
+
+
+def test_replicates_that_would_not_fit_in_memory_are_refused():
+    from fitting.bootstrap import check_replicate_memory
+    from fitting.errors import InputError
+
+    check_replicate_memory(100_000, 33, memory_bytes=24 * 2**30)  # one observer of the default protocol fits
+    with pytest.raises(InputError, match="--bootstrap.*at most 64,424"):
+        check_replicate_memory(100_000, 1000, memory_bytes=24 * 2**30)  # 1,000 conditions: 18.6 GiB
