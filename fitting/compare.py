@@ -32,6 +32,7 @@ from scipy import stats
 from fitting.errors import InputError
 from fitting.page import PAGE, write_page
 from fitting.progress import phase
+from fitting.outputs import output_set
 from fitting.tables import write_text
 
 Z95 = stats.norm.ppf(0.975)
@@ -43,7 +44,7 @@ AGREEMENT_COLUMNS = (
 )
 
 
-def _read_csv(path: Path, required: tuple[str, ...]) -> pd.DataFrame:
+def _read_csv(path: Path, required: tuple[str, ...], may_be_empty: tuple[str, ...] = ()) -> pd.DataFrame:
     if not path.is_file():
         raise InputError(str(path), "file", "does not exist or is not a file")
     try:
@@ -58,6 +59,11 @@ def _read_csv(path: Path, required: tuple[str, ...]) -> pd.DataFrame:
             continue
         values = pd.to_numeric(frame[col], errors="coerce")
         bad = values.isna() & frame[col].notna() | ~np.isfinite(values.fillna(0))
+        missing = values.isna() & (col not in may_be_empty)
+        if (missing & ~bad).any():
+            line = int(np.flatnonzero((missing & ~bad).to_numpy())[0]) + 2
+            raise InputError(str(path), f"line {line}", f"{col}: missing or not a finite number "
+                             f"({str(frame[col].iloc[line - 2])!r})")
         if bad.any():
             line = int(np.flatnonzero(bad.to_numpy())[0]) + 2
             raise InputError(str(path), f"line {line}", f"{col}: expected a number, found {frame[col].iloc[line - 2]!r}")
@@ -226,19 +232,46 @@ class Comparison:
     points: pd.DataFrame
     table: pd.DataFrame
     page: Path | None = None
+    notes: tuple = ()
 
     def summary(self) -> str:
         """A short text for the console."""
         overall = self.table[self.table["lag"] == "all"]
         lines = ["agreement with predictions (all lags):"]
         for _, row in overall.iterrows():
+            if not np.isfinite(row["inside_ci_fraction"]):
+                lines.append(f"  {row['observer']:>8}: RMSE {row['rmse_deg']:.2f} deg, r {row['pearson_r']:.2f}; "
+                             "no interval statistics (see note)")
+                continue
             lines.append(
                 f"  {row['observer']:>8}: RMSE {row['rmse_deg']:.2f} deg, r {row['pearson_r']:.2f}, "
                 f"gain {row['gain']:.2f} [{row['gain_ci_low']:.2f}, {row['gain_ci_high']:.2f}], "
                 f"chi2 {row['chi2']:.1f} on {row['dof']} df (p {row['chi2_p']:.3g}), "
                 f"{row['inside_ci_fraction']:.0%} of predictions inside the 95% CIs"
             )
-        return "\n".join(lines)
+        return "\n".join(lines + [f"note: {n}" for n in self.notes])
+
+
+#: Columns of ``agreement.csv`` that need the measured intervals.
+INTERVAL_COLUMNS = ("gain", "gain_ci_low", "gain_ci_high", "chi2", "dof", "chi2_p", "inside_ci_fraction")
+
+
+def _leave_out_interval_statistics(points: pd.DataFrame, table: pd.DataFrame) -> tuple[str, ...]:
+    """Blank the interval-based statistics of observers whose points lack CIs; say so.
+
+    A fit without bootstrap (or a point whose interval could not be
+    computed) has no CI: weights, χ² and the fraction inside the CIs cannot
+    be computed and are left empty rather than reported as 0 %.
+    """
+    lacking = points[["ci_low", "ci_high"]].isna().any(axis=1) | points["pse_shift_deg"].isna()
+    notes = []
+    for observer, miss in lacking.groupby(points["observer"], sort=False):
+        if miss.any():
+            table.loc[table["observer"] == observer, list(INTERVAL_COLUMNS)] = np.nan
+            notes.append(f"{observer}: {int(miss.sum())} of {miss.size} measured points have no confidence "
+                         "interval (a fit without --bootstrap?); gain, chi2 and the fraction inside the CIs "
+                         "are left out")
+    return tuple(notes)
 
 
 def _shown_path(path: Path, out: Path) -> str:
@@ -265,7 +298,7 @@ def compare_results(results_dir: str | Path, predictions_path: str | Path, out_d
     """
     results = Path(results_dir)
     measured_path = results / "aftereffect.csv" if results.is_dir() else results
-    measured = _read_csv(measured_path, MEASURED_COLUMNS)
+    measured = _read_csv(measured_path, MEASURED_COLUMNS, may_be_empty=("pse_shift_deg", "ci_low", "ci_high"))
     if measured.empty:
         raise InputError(str(measured_path), "file", "holds no after-effects")
     predictions = read_predictions(predictions_path)
@@ -277,15 +310,18 @@ def compare_results(results_dir: str | Path, predictions_path: str | Path, out_d
             a = agreement(g["pse_shift_deg"], g["ci_low"], g["ci_high"], g["predicted_deg"], g["prediction_sd_deg"])
             rows.append({"observer": observer, "lag": lag, **a.__dict__})
     table = pd.DataFrame(rows, columns=AGREEMENT_COLUMNS)
-    out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
-    table.to_csv(out / "agreement.csv", index=False, float_format="%.6g")
-    points.to_csv(out / "comparison_points.csv", index=False, float_format="%.6g")
-    write_text(out / "predictions_source.txt", _shown_path(Path(predictions_path), out) + "\n")
-    if figures:
-        from fitting.compare_figure import overlay_figure
+    notes = _leave_out_interval_statistics(points, table)
+    with output_set(out_dir, "compare") as staged:
+        out = staged.folder
+        write_text(out / "agreement.csv", table.to_csv(index=False, float_format="%.6g", lineterminator="\n"))
+        write_text(out / "comparison_points.csv",
+                   points.to_csv(index=False, float_format="%.6g", lineterminator="\n"))
+        write_text(out / "predictions_source.txt", _shown_path(Path(predictions_path), staged.final_dir) + "\n")
+        if figures:
+            from fitting.compare_figure import overlay_figure
 
-        with phase("drawing the comparison", show=progress):
-            overlay_figure(points, out / "comparison")
-    page = write_page(results, out / PAGE, compare_dir=out) if results.is_dir() else None
-    return Comparison(points=points, table=table, page=page)
+            with phase("drawing the comparison", show=progress):
+                overlay_figure(points, out / "comparison")
+        page = write_page(results, out / PAGE, compare_dir=out) if results.is_dir() else None
+    return Comparison(points=points, table=table, page=None if page is None else Path(staged.final(page)),
+                      notes=notes)

@@ -56,7 +56,8 @@ from .aftereffect import TAU_BOUNDS, dog, peak_bounds
 from .bootstrap import bca_interval, percentile_interval
 from .errors import InputError
 from .psychometric import DEFAULT_LAPSE_MAX, sigmoid_parts
-from .tables import find_logs, write_csv, write_text
+from .outputs import output_set
+from .tables import MAX_OFFSET_DEG, check_unique_trials, find_logs, read_log_table, write_csv, write_text
 
 #: The ``block`` value of stream rows in a trial log.
 STREAM_BLOCK = "stream"
@@ -116,10 +117,7 @@ def _fail(source: str, line: int, column: str, message: str):
 
 def _read_stream_file(path: Path) -> pd.DataFrame:
     source = str(path)
-    try:
-        raw = pd.read_csv(path, dtype=str, keep_default_na=False, encoding="utf-8-sig")
-    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
-        raise InputError(source, "", f"not a readable trial log ({exc})") from None
+    raw = read_log_table(path)
     need = ["observer", "test_offset_deg", "response_cw", "timing_ok", "block", "preceding_offsets_deg"]
     missing = [c for c in need if c not in raw.columns]
     if missing:
@@ -138,6 +136,9 @@ def _read_stream_file(path: Path) -> pd.DataFrame:
             _fail(source, line, "test_offset_deg/preceding_offsets_deg", "expected numbers (';'-separated offsets)")
         if not np.isfinite(x) or not all(np.isfinite(prec)):
             _fail(source, line, "test_offset_deg/preceding_offsets_deg", "expected finite numbers")
+        if abs(x) > MAX_OFFSET_DEG or any(abs(v) > MAX_OFFSET_DEG for v in prec):
+            _fail(source, line, "test_offset_deg/preceding_offsets_deg",
+                  f"expected offsets within ±{MAX_OFFSET_DEG:g} deg")
         resp = r["response_cw"].strip()
         if resp not in ("", "0", "1"):
             _fail(source, line, "response_cw", f"'{resp}' is not 1, 0 or empty")
@@ -146,9 +147,11 @@ def _read_stream_file(path: Path) -> pd.DataFrame:
             _fail(source, line, "timing_ok", f"'{ok}' is not true/false")
         period = float(r["period_s"]) if "period_s" in raw.columns and r["period_s"].strip() else float("nan")
         practice = "practice" in raw.columns and r["practice"].strip() in ("1", "true")
-        rows.append((obs, x, resp, ok in ("true", "1"), practice, prec, period, source, line))
+        session = r["session"].strip() if "session" in raw.columns else ""
+        trial = r["trial"].strip() if "trial" in raw.columns else str(line)
+        rows.append((obs, x, resp, ok in ("true", "1"), practice, prec, period, source, line, session, trial))
     return pd.DataFrame(rows, columns=["observer", "x", "response", "timing_ok", "practice", "preceding",
-                                       "period_s", "source", "line"])
+                                       "period_s", "source", "line", "session", "trial"])
 
 
 def read_stream_logs(paths, include_bad_timing: bool = False) -> list[StreamTrials]:
@@ -170,6 +173,7 @@ def read_stream_logs(paths, include_bad_timing: bool = False) -> list[StreamTria
 def _read_stream_table(paths) -> pd.DataFrame:
     files = find_logs(paths)
     table = pd.concat([_read_stream_file(f) for f in files], ignore_index=True)
+    check_unique_trials(table.assign(line="line " + table["line"].astype(str)))
     table.attrs["files"] = [str(f) for f in files]
     return table
 
@@ -702,21 +706,23 @@ def fit_stream_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="fr
                 tables[name].append(table)
             bar.advance()
     tables["exclusions"] = [stream_exclusions(raw, include_bad_timing)]
-    files = []
-    for name, parts in tables.items():
-        path = out / f"{name}.csv"
-        write_csv(pd.concat(parts, ignore_index=True), path)
-        files.append(str(path))
-    if figures:
-        with phase("drawing figures", show=progress):
-            for boot in fits:
-                files += plot_amplitudes(boot, out / f"nback_{safe_name(boot.fit.trials.observer)}")
-    report = StreamReport(out, fits, files)
-    write_text(out / "summary.txt", report.summary() + "\n")
-    options = (f"stream n-back regression, lapse {'free in [0, ' + format(lapse_max, 'g') + ']' if lapse == 'free' else 'fixed at ' + str(lapse)}; "
-               f"{interval} intervals from {n_boot} parametric bootstrap replicates (seed {seed})")
-    data = collect(paths, plan)
-    data.update(kind="stream", options=options, notes={})
-    files += [str(out / "summary.txt"), str(write_report_data(out, data)), str(write_page(out))]
-    report.files = files
+    with output_set(out, "fit") as staged:
+        folder = staged.folder
+        files = []
+        for name, parts in tables.items():
+            path = folder / f"{name}.csv"
+            write_csv(pd.concat(parts, ignore_index=True), path)
+            files.append(str(path))
+        if figures:
+            with phase("drawing figures", show=progress):
+                for boot in fits:
+                    files += plot_amplitudes(boot, folder / f"nback_{safe_name(boot.fit.trials.observer)}")
+        report = StreamReport(out, fits, files)
+        write_text(folder / "summary.txt", report.summary() + "\n")
+        options = (f"stream n-back regression, lapse {'free in [0, ' + format(lapse_max, 'g') + ']' if lapse == 'free' else 'fixed at ' + str(lapse)}; "
+                   f"{interval} intervals from {n_boot} parametric bootstrap replicates (seed {seed})")
+        data = collect(paths, plan)
+        data.update(kind="stream", options=options, notes={})
+        files += [str(folder / "summary.txt"), str(write_report_data(folder, data)), str(write_page(folder))]
+        report.files = staged.final_paths(files)
     return report

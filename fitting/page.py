@@ -27,6 +27,7 @@ from urllib.parse import quote
 import numpy as np
 import pandas as pd
 
+from .outputs import STAGING_PREFIX
 from .provenance import read_report_data
 from .tables import write_text
 
@@ -101,8 +102,17 @@ def _cell(value) -> tuple[str, bool]:
     return str(value), True
 
 
+def _landed(path: Path) -> Path:
+    """Where ``path`` will be once its output set is moved in: without a staging folder (:mod:`fitting.outputs`)."""
+    return Path(*[part for part in Path(path).parts if not part.startswith(STAGING_PREFIX)])
+
+
+def _relpath(target: Path, page_dir: Path) -> str:
+    return os.path.relpath(_landed(target), _landed(page_dir))
+
+
 def _href(target: Path, page_dir: Path) -> str:
-    return quote(Path(os.path.relpath(target, page_dir)).as_posix())
+    return quote(Path(_relpath(target, page_dir)).as_posix())
 
 
 def html_table(frame: pd.DataFrame, source: Path | None, page_dir: Path, flag_column: str = "flags") -> str:
@@ -350,7 +360,7 @@ def _files_section(folders: list[Path], page_dir: Path) -> str:
     for folder in folders:
         for p in sorted(folder.rglob("*")):
             if p.is_file() and not p.name.startswith("."):
-                items.append(f'<li><a href="{_href(p, page_dir)}"><code>{_e(os.path.relpath(p, page_dir))}</code></a></li>')
+                items.append(f'<li><a href="{_href(p, page_dir)}"><code>{_e(_relpath(p, page_dir))}</code></a></li>')
     return '<h2 id="files">Files</h2><ul class="small">' + "".join(items) + "</ul>"
 
 
@@ -389,7 +399,7 @@ def render(fit_dir, page_path=None, compare_dir=None, title: str | None = None) 
     body = [
         f"<h1>aftershift report: {_e(title)}</h1>",
         f"<p>{n_obs} observer{'s' if n_obs != 1 else ''}, {_e(data.get('kind', 'adapt-test'))} logs, "
-        f"fitted into the folder <code>{_e(fit_dir.name)}</code>. {_e(data.get('options', ''))}</p>",
+        f"fitted into the folder <code>{_e(_landed(fit_dir).name)}</code>. {_e(data.get('options', ''))}</p>",
         f"<nav><ul>{''.join(nav)}</ul></nav>",
         '<h2 id="flags">Flagged estimates and notes</h2>', page.flagged(None),
         '<h2 id="protocols">Protocols and plans</h2>', page.protocols(),

@@ -42,15 +42,16 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .bootstrap import parametric_bootstrap
+from .bootstrap import check_replicate_memory, parametric_bootstrap
 from .errors import InputError
 from .group import GROUP, group_aftereffect, group_curves, group_pse, mixed_model
 from .observer import (AFTEREFFECT_COLUMNS, DECAY_COLUMNS, PSE_COLUMNS, TUNING_COLUMNS,
                        ObserverAnalysis, Options, analyse_observer, condition_table)
-from .page import write_page
+from .page import PAGE, write_page
 from .progress import phase
-from .provenance import collect, write_report_data
+from .provenance import REPORT_DATA, collect, write_report_data
 from .psychometric import DEFAULT_LAPSE_MAX, SIGMOIDS, Cells, fit_cells
+from .outputs import output_set
 from .tables import prepare_trials, read_logs, write_csv, write_text
 
 MAIN_TABLES = {"pse": PSE_COLUMNS, "aftereffect": AFTEREFFECT_COLUMNS,
@@ -230,6 +231,7 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
     no files.
     """
     opts = _check_options(n_boot, seed, lapse, spread, sigmoid, interval, level, lapse_max, progress)
+    check_replicate_memory(opts.n_boot, int(trials.groupby(["observer", "condition"]).ngroups))
     analyses: list[ObserverAnalysis] = []
     for observer, obs_trials in trials.groupby("observer", sort=True):
         analyses.append(analyse_observer(str(observer), obs_trials.reset_index(drop=True), opts,
@@ -333,36 +335,37 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
     InputError
         Bad arguments, unreadable or invalid logs (naming file and line).
     """
-    out = Path(out_dir)
-    if out.exists() and not out.is_dir():
-        raise InputError(str(out), "--out", "exists and is not a folder")
+    if Path(out_dir).exists() and not Path(out_dir).is_dir():
+        raise InputError(str(out_dir), "--out", "exists and is not a folder")
     _check_options(n_boot, seed, lapse, spread, sigmoid, interval, level, lapse_max, progress)
     trials = read_logs(paths, include_bad_timing, include_practice)
     report = fit_trials(trials, n_boot, seed, lapse, spread, progress, sigmoid=sigmoid,
                         interval=interval, level=level, lapse_max=lapse_max)
-    # all fitting is done; only now is anything written
-    fig_files: list[str] = []
-    if figures:
-        from .figures import make_figures
-        with phase("drawing figures", show=report.options.progress,
-                   count=lambda: _count_files(out / "figures")):
-            fig_files = make_figures(report.analyses, report.group, out / "figures")
-    out.mkdir(parents=True, exist_ok=True)
-    files = []
-    for name, cols in MAIN_TABLES.items():
-        write_csv(getattr(report, name), out / f"{name}.csv", cols)
-        files.append(str(out / f"{name}.csv"))
-    for name, table in report.extras.items():
-        if table is not None and len(table.columns):
-            write_csv(table, out / f"{name}.csv")
+    # all fitting is done; only now is anything written, staged and moved in as one set
+    with output_set(out_dir, "fit") as staged:
+        out = staged.folder
+        fig_files: list[str] = []
+        if figures:
+            from .figures import make_figures
+            with phase("drawing figures", show=report.options.progress,
+                       count=lambda: _count_files(out / "figures")):
+                fig_files = make_figures(report.analyses, report.group, out / "figures")
+        files = []
+        for name, cols in MAIN_TABLES.items():
+            write_csv(getattr(report, name), out / f"{name}.csv", cols)
             files.append(str(out / f"{name}.csv"))
-    report.out_dir = str(out)
-    report.files = files + fig_files + [str(out / "summary.txt")]
-    write_text(out / "summary.txt", report.summary() + "\n")
-    data = collect(paths, plan)
-    data.update(kind="adapt-test", options=report.summary().splitlines()[1], notes=report.notes)
-    report.files.append(str(write_report_data(out, data)))
-    report.files.append(str(write_page(out)))
+        for name, table in report.extras.items():
+            if table is not None and len(table.columns):
+                write_csv(table, out / f"{name}.csv")
+                files.append(str(out / f"{name}.csv"))
+        files += fig_files + [str(out / "summary.txt"), str(out / REPORT_DATA), str(out / PAGE)]
+        report.out_dir = str(staged.final_dir)
+        report.files = staged.final_paths(files)
+        write_text(out / "summary.txt", report.summary() + "\n")
+        data = collect(paths, plan)
+        data.update(kind="adapt-test", options=report.summary().splitlines()[1], notes=report.notes)
+        write_report_data(out, data)
+        write_page(out)
     return report
 
 

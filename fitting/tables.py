@@ -23,19 +23,25 @@ a fixed number format, so the same results give the same bytes.
 
 from __future__ import annotations
 
+import csv
+import io
+import json
 import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from .errors import InputError
+from .logfile import examine_tail, is_being_written
+from .outputs import write_atomic
 
 REQUIRED_COLUMNS = ["observer", "session", "trial", "condition", "adapter_offset_deg", "lag",
                     "track", "test_offset_deg", "response_cw", "rt_s", "dropped_frames", "timing_ok"]
 LOG_SUFFIX = ".trials.csv"
 BASELINE = "baseline"
+#: Offsets beyond this (deg) are bad input: directions repeat every 360 degrees.
+MAX_OFFSET_DEG = 180.0
 
 _TRUE = {"true", "1", "1.0", "yes"}
 _FALSE = {"false", "0", "0.0", "no"}
@@ -55,14 +61,17 @@ def find_logs(paths) -> list[Path]:
     seen = set()
     for raw in paths:
         p = Path(raw)
-        if p.is_dir():
-            files = sorted(f for f in p.rglob("*" + LOG_SUFFIX) if f.is_file())
-            if not files:
-                raise InputError(str(p), "", f"no trial logs (*{LOG_SUFFIX}) in this folder or below")
-        elif p.is_file():
-            files = [p]
-        else:
-            raise InputError(str(p), "", "no such file or folder")
+        try:
+            if p.is_dir():
+                files = sorted(f for f in p.rglob("*" + LOG_SUFFIX) if f.is_file())
+                if not files:
+                    raise InputError(str(p), "", f"no trial logs (*{LOG_SUFFIX}) in this folder or below")
+            elif p.is_file():
+                files = [p]
+            else:
+                raise InputError(str(p), "", "no such file or folder")
+        except OSError as exc:
+            raise InputError(str(p), "", f"cannot be read ({exc.strerror})") from None
         for f in files:
             key = f.resolve()
             if key not in seen:
@@ -200,17 +209,125 @@ def validate_trials(raw: pd.DataFrame, source: str, row_names: list[str] | None 
     return out
 
 
-def _read_file(path: Path) -> pd.DataFrame:
+def read_log_table(path: Path) -> pd.DataFrame:
+    """The rows of one log file as text, after the tail rules of :mod:`fitting.logfile`.
+
+    A complete last row without its newline is kept.  A torn last line is
+    an error (exit 2) naming it, unless a session is writing the log right
+    now (its lock is held), in which case the line being written is left
+    out.  A row before the last with the wrong number of cells is an error.
+
+    Raises
+    ------
+    InputError
+        Unreadable file, torn line, or a table that is not a CSV log.
+    """
     source = str(path)
     try:
-        raw = pd.read_csv(path, dtype=str, keep_default_na=False, encoding="utf-8-sig")
-    except pd.errors.EmptyDataError:
-        raise InputError(source, "", "empty file: no header and no trials") from None
-    except pd.errors.ParserError as exc:
-        raise InputError(source, "", f"not a readable CSV table ({exc})") from None
+        data = Path(path).read_bytes()
+    except OSError as exc:
+        raise InputError(source, "file", f"cannot be read ({exc.strerror})") from None
+    tail = examine_tail(data)
+    if tail.torn:
+        if not is_being_written(path):
+            raise InputError(source, f"line {tail.torn_line}",
+                             f"torn ({tail.describe()}): the session stopped "
+                             "while writing it; resume the session (--resume) to repair the log, or fit a copy "
+                             "without that line")
+        data = data[: tail.keep]
+    if data.startswith(b"\xef\xbb\xbf"):
+        data = data[3:]
+    try:
+        text = data.decode("utf-8")
     except UnicodeDecodeError:
         raise InputError(source, "", "not a text (UTF-8) CSV file") from None
+    rows = list(csv.reader(io.StringIO(text)))
+    if not rows:
+        raise InputError(source, "", "empty file: no header and no trials")
+    header = [c.strip() for c in rows[0]]
+    for n, cells in enumerate(rows[1:], start=2):
+        if len(cells) != len(header):
+            raise InputError(source, f"line {n}", f"expected {len(header)} cells as in the header, found {len(cells)}")
+    return pd.DataFrame(rows[1:], columns=header, dtype=str)
+
+
+def _read_file(path: Path) -> pd.DataFrame:
+    source = str(path)
+    raw = read_log_table(path)
     return validate_trials(raw, source, [f"line {i + 2}" for i in range(len(raw))])
+
+
+def check_unique_trials(table: pd.DataFrame) -> None:
+    """Refuse the same (observer, session, trial) twice across all inputs.
+
+    ``table`` has ``observer, session, trial, source, line`` columns.  A
+    backup copy of a log beside the original, or a row written twice, would
+    otherwise be fitted as twice the data.
+
+    Raises
+    ------
+    InputError
+        Naming both places of the first repeated trial.
+    """
+    key = pd.DataFrame({c: table[c].map(lambda v: f"{v:g}" if isinstance(v, float) else str(v))
+                        for c in ("observer", "session", "trial")})
+    dup = key.duplicated(keep=False)
+    if not dup.any():
+        return
+    first = key[dup].iloc[0]
+    same = table[dup & (key == first).all(axis=1)]
+    a, b = same.iloc[0], same.iloc[1]
+    raise InputError(str(b["source"]), str(b["line"]),
+                     f"observer {first['observer']}, session {first['session']}, trial {first['trial']} "
+                     f"is already in {a['source']} {a['line']}; the same trial twice would count double "
+                     "(remove the copy or the repeated row)")
+
+
+def recorded_bounds(log: str | Path) -> tuple[float, float] | None:
+    """The protocol's test-offset bounds from the sidecar beside a log, if it records them."""
+    p = Path(log)
+    if not p.name.endswith(LOG_SUFFIX):
+        return None
+    try:
+        side = json.loads(p.with_name(p.name[: -len(LOG_SUFFIX)] + ".session.json").read_text(encoding="utf-8"))
+        lo, hi = (float(v) for v in side["offset_bounds_deg"])
+    except (OSError, ValueError, KeyError, TypeError):
+        return None
+    return (lo, hi) if np.isfinite([lo, hi]).all() and lo < hi else None
+
+
+def check_offsets(trials: pd.DataFrame, limit: float = MAX_OFFSET_DEG) -> None:
+    """Refuse offsets outside a plausible range.
+
+    Main-trial test offsets must lie within the protocol's bounds where
+    the log's sidecar records them (``offset_bounds_deg``), and within
+    ±``limit`` otherwise; practice and adapter offsets within ±``limit``.
+
+    Raises
+    ------
+    InputError
+        Naming the file, line and column of the first implausible offset.
+    """
+    lo = pd.Series(-limit, index=trials.index)
+    hi = pd.Series(limit, index=trials.index)
+    for source in trials["source"].unique():
+        bounds = recorded_bounds(source)
+        if bounds is not None:
+            rows = (trials["source"] == source) & ~trials["practice"]  # practice offsets may lie outside
+            lo[rows], hi[rows] = bounds[0] - 1e-9, bounds[1] + 1e-9
+    x = trials["test_offset_deg"]
+    bad = _first_bad((x < lo) | (x > hi))
+    if bad is not None:
+        row = trials.iloc[bad]
+        raise InputError(str(row["source"]), f"{row['line']}, column test_offset_deg",
+                         f"{row['test_offset_deg']:g} deg is outside the plausible range "
+                         f"[{lo.iloc[bad]:g}, {hi.iloc[bad]:g}] deg (the protocol's bounds where the sidecar "
+                         f"records them, otherwise ±{limit:g})")
+    bad = _first_bad(trials["adapter_offset_deg"].abs() > limit)
+    if bad is not None:
+        row = trials.iloc[bad]
+        raise InputError(str(row["source"]), f"{row['line']}, column adapter_offset_deg",
+                         f"{row['adapter_offset_deg']:g} deg is outside the plausible range of ±{limit:g} deg")
 
 
 def _check_conditions(trials: pd.DataFrame) -> None:
@@ -286,6 +403,8 @@ def read_logs(paths, include_bad_timing: bool = False, include_practice: bool = 
     """
     files = find_logs(paths)
     trials = pd.concat([_read_file(f) for f in files], ignore_index=True)
+    check_unique_trials(trials)
+    check_offsets(trials)
     _check_conditions(trials)
     kept, counts = exclude(trials, include_bad_timing, include_practice)
     if kept.empty:
@@ -300,6 +419,7 @@ def prepare_trials(trials: pd.DataFrame, include_bad_timing: bool = False,
                    include_practice: bool = False, source: str = "trials") -> pd.DataFrame:
     """Like :func:`read_logs` for a table already in memory (e.g. after a block)."""
     checked = validate_trials(trials, source)
+    check_offsets(checked)
     _check_conditions(checked)
     kept, counts = exclude(checked, include_bad_timing, include_practice)
     if kept.empty:
@@ -329,25 +449,8 @@ def format_table(df: pd.DataFrame, columns: list[str] | None = None) -> str:
 
 
 def write_text(path: Path, text: str) -> None:
-    """Write ``text`` atomically: a temporary file beside ``path``, then rename."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix="." + path.name + ".", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
-            fh.write(text)
-        os.chmod(tmp, 0o666 & ~_umask())  # the permissions of an ordinary new file, not mkstemp's 0600
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
-def _umask() -> int:
-    mask = os.umask(0)
-    os.umask(mask)
-    return mask
+    """Write ``text`` whole (temporary file, then rename), with the umask's permissions."""
+    write_atomic(path, text.encode("utf-8"))
 
 
 def write_csv(df: pd.DataFrame, path, columns: list[str] | None = None) -> None:

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import signal
 import sys
 from pathlib import Path
 
@@ -27,16 +28,31 @@ class _Parser(argparse.ArgumentParser):
         raise InputError("", command, f"{message} (see `{self.prog} --help`)")
 
 
-def _load(path: str):
+def _load(path: str, size_check: bool = True):
     """Read and validate a protocol; durations that are not whole frames are refused (exit 3)."""
     from runner import safety
+    from runner.overview import check_size
     from runner.protocol import FrameTimingError, parse_protocol, read_protocol_text
 
     text = read_protocol_text(path)
     try:
-        return parse_protocol(text, source=str(path)), text
+        protocol = parse_protocol(text, source=str(path))
     except FrameTimingError as exc:
         raise safety.timing_refusal(exc.source, exc.field, exc.message) from None
+    if size_check:
+        check_size(protocol, str(path))
+    return protocol, text
+
+
+#: Seeds are 32-bit (numpy's seed sequences take any size; files and other tools may not).
+MAX_SEED = 2**32 - 1
+
+
+def _check_count(value, option: str, low: int, high: int, what: str):
+    """Refuse a whole-number option outside [low, high] with one line."""
+    if value is not None and not (low <= value <= high):
+        raise InputError("argument", option, f"{what} must be from {low} to {high:,}, not {value:,}")
+    return value
 
 
 def _screen(protocol, path: str, acknowledged: bool):
@@ -65,9 +81,12 @@ def _light(protocol) -> dict | None:
 def cmd_check(args) -> int:
     from runner import safety
     from runner.light import light_plan
-    from runner.overview import describe
+    from runner.overview import check_size, describe, duration_words, session_size
 
-    protocol, _ = _load(args.protocol)
+    protocol, _ = _load(args.protocol, size_check=False)
+    trials, seconds = session_size(protocol)
+    print(f"size       {trials} trials, {duration_words(seconds)}")
+    check_size(protocol, args.protocol)
     if protocol.stream is not None:
         from runner.stream import describe_stream
 
@@ -93,13 +112,15 @@ def cmd_check(args) -> int:
 def cmd_simulate(args) -> int:
     from runner.launch import simulate
     from runner.observers import load_model
+    from runner.trial_log import check_identifier
 
+    _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
+    _check_count(args.observers, "--observers", 1, 99, "the number of simulated observers")
+    check_identifier(args.session, "--session")
     protocol, text = _load(args.protocol)
     light = _light(protocol)
     screening = _screen(protocol, args.protocol, args.flicker_ack)
-    model = load_model(args.model)
-    if args.observers < 1:
-        raise InputError("argument", "--observers", "expected at least 1")
+    model = load_model(args.model) if args.model else None
     paths = simulate(
         protocol, args.protocol, text, args.out, model, args.observers, args.seed, args.resume, args.session,
         screening=screening.to_dict(), light=light,
@@ -114,16 +135,19 @@ def cmd_run(args) -> int:
     from runner.console import ExperimenterConsole
     from runner.launch import check_can_start, run_on_screen
     from runner.screens import screen_texts
-    from runner.trial_log import check_identifier
+    from runner.session_lock import SessionLock
+    from runner.trial_log import check_identifier, log_paths
 
     check_identifier(args.observer, "--observer")
     check_identifier(args.session, "--session")
+    _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
     check_can_start(args.out, args.observer, args.session, args.resume)
     protocol, text = _load(args.protocol)
     light = _light(protocol)
     screening = _screen(protocol, args.protocol, args.flicker_ack)
     caution = safety.caution_text(protocol, args.protocol)
     screen_texts(protocol, caution, args.protocol)  # a bad instructions file is refused before the display opens
+    SessionLock(log_paths(args.out, args.observer, args.session)[0]).release()  # a second writer stops here
     console = ExperimenterConsole(quick_fit=_quick_fit_text)
     presenter, answers = display.open_screen(protocol, args.windowed, args.refresh_ack, console)
     extra = {
@@ -176,8 +200,17 @@ def _quick_fit_text(rows: list[dict]) -> str:
     return "PSE shift so far (deg, rough 95% CI from 50 replicates):\n" + table.to_string(index=False)
 
 
+#: Most bootstrap replicates ``fit`` accepts: far more than any interval needs, and within memory.
+MAX_BOOTSTRAP = 100_000
+
+
 def cmd_fit(args) -> int:
     from fitting import fit_logs
+    from fitting.outputs import check_out_dir
+
+    _check_count(args.bootstrap, "--bootstrap", 0, MAX_BOOTSTRAP, "bootstrap replicates")
+    _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
+    check_out_dir(args.out)
 
     lapse = args.lapse
     if lapse != "free":
@@ -214,6 +247,9 @@ def cmd_fit(args) -> int:
 
 def cmd_compare(args) -> int:
     from fitting.compare import compare_results
+    from fitting.outputs import check_out_dir
+
+    check_out_dir(args.out)
 
     result = compare_results(args.results, args.predictions, args.out, interpolate=args.interpolate)
     print(result.summary())
@@ -231,8 +267,13 @@ def cmd_demo(args) -> int:
 
 
 def cmd_plan(args) -> int:
+    from fitting.outputs import check_out_dir
     from runner.planner import plan_command
 
+    _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
+    _check_count(args.runs, "--runs", 1, 10_000, "simulated sessions per design")
+    _check_count(args.jobs, "--jobs", 1, 256, "worker processes")
+    check_out_dir(args.out)
     _load(args.protocol)  # timing refusals exit 3 here as everywhere
     return plan_command(args.protocol, args.model, args.runs, args.target_half_width, args.out, args.seed, args.jobs)
 
@@ -240,6 +281,8 @@ def cmd_plan(args) -> int:
 def cmd_display_test(args) -> int:
     from runner import display
 
+    if not (0 < args.seconds <= 3600):
+        raise InputError("argument", "--seconds", f"expected a duration from 0 to 3600 s, not {args.seconds:g}")
     protocol, _ = _load(args.protocol)
     if args.frames:
         from runner.display.capture import capture_frames
@@ -317,10 +360,11 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("simulate", help="run simulated observers through the session loop (no display)")
     protocol_arg(p)
     p.add_argument("--out", required=True, help="output folder for trial logs and sidecars")
-    p.add_argument("--model", help="observer model file (TOML, flat keys)")
+    p.add_argument("--model", help="observer model file (TOML, flat keys; default built in; a resume uses the "
+                                   "sidecar's)")
     p.add_argument("--observers", type=int, default=1, help="number of simulated observers (default 1)")
-    p.add_argument("--seed", type=int, default=0, help="seed (default 0)")
-    p.add_argument("--session", default="s1", help="session label (default s1)")
+    p.add_argument("--seed", type=int, help="seed (default 0; a resume uses the sidecar's)")
+    p.add_argument("--session", default="s1", help="session label: letters, digits, - and _ (default s1)")
     p.add_argument("--resume", action="store_true", help="continue interrupted sessions in --out")
     ack(p)
     p.set_defaults(func=cmd_simulate)
@@ -410,6 +454,8 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``aftershift`` command; returns the exit code."""
+    _install_signal_handlers()
+    args = None
     try:
         parser = build_parser()
         args = parser.parse_args(argv)
@@ -426,9 +472,33 @@ def main(argv: list[str] | None = None) -> int:
     except BrokenPipeError:  # output piped into e.g. `head`: stop quietly
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return EXIT_OK
-    except KeyboardInterrupt:
-        print("aftershift: interrupted; every completed trial is in the log (use --resume)", file=sys.stderr)
+    except KeyboardInterrupt as exc:
+        command = getattr(args, "command", None)
+        print(f"aftershift{' ' + command if command else ''}: {_interrupted_line(command, exc)}", file=sys.stderr)
         return 130
+
+
+class Terminated(KeyboardInterrupt):
+    """SIGTERM, handled like Ctrl-C."""
+
+
+def _on_sigterm(signum, frame):  # noqa: ARG001 - signal handler
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)  # one clean ending, not two
+    raise Terminated()
+
+
+def _interrupted_line(command: str | None, exc: BaseException) -> str:
+    how = "stopped by SIGTERM" if isinstance(exc, Terminated) else "interrupted"
+    if command in ("run", "simulate"):
+        return f"{how}; every completed trial is in the log; continue with --resume"
+    if command in ("fit", "compare", "plan"):
+        return f"{how}; nothing was half-written (earlier results in --out are unchanged)"
+    return how
+
+
+def _install_signal_handlers() -> None:
+    if signal.getsignal(signal.SIGTERM) in (signal.SIG_DFL, None):
+        signal.signal(signal.SIGTERM, _on_sigterm)
 
 
 if __name__ == "__main__":  # pragma: no cover

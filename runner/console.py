@@ -28,6 +28,13 @@ class SimulationConsole(Console):
 
     def __init__(self, total: int, label: str = "simulating", show: bool | None = None):
         self.bar = ProgressBar(total, label, show=show)
+        #: Called at every break: the launcher syncs the log to disk there.
+        self.at_break = None
+
+    def block_done(self, rows):
+        """A break: sync the log (see :mod:`runner.trial_log`)."""
+        if self.at_break is not None:
+            self.at_break()
 
     def trial_done(self, done, total, dropped_so_far, seconds_left):
         """Advance the bar by one trial."""

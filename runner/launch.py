@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import hashlib
 import importlib.metadata
+import json
 import os
 import platform
 import secrets
@@ -26,7 +27,7 @@ from runner.protocol import Protocol
 from runner.screens import screen_texts
 from runner.session import BlockRun, Console, SessionResult
 from runner.stream import StreamObserver, StreamRun
-from runner.trial_log import TrialLog, log_paths, read_rows, refuse_existing
+from runner.trial_log import StorageError, TrialLog, check_identifier, check_sidecar, log_paths, refuse_existing
 
 PACKAGES = ("aftershift", "numpy", "scipy", "pandas", "statsmodels", "pydantic", "matplotlib", "psychopy", "pyglet")
 
@@ -56,21 +57,72 @@ def _protocol_record(path: str, text: str) -> dict:
     return {"path": str(path), "sha256": hashlib.sha256(text.encode("utf-8")).hexdigest(), "text": text}
 
 
-def open_log(out_dir: Path, observer: str, session: str, resume: bool) -> TrialLog:
+def open_log(out_dir: Path, observer: str, session: str, resume: bool, durable: bool = True) -> TrialLog:
     """A new log, or the existing one when resuming (a new one if none exists).
 
-    A log without a sidecar can only be resumed while it holds no trial (the
-    session died between creating the two files); with trials, the sidecar's
-    seed is needed and its absence is an error.
+    Either way the session's lock is held until the log is closed.  A log
+    without a sidecar can only be resumed while it holds no trial (the
+    session died between creating the two files).
     """
-    path, sidecar = log_paths(out_dir, observer, session)
+    path, _ = log_paths(out_dir, observer, session)
     if resume and path.exists():
-        if sidecar.exists():
-            return TrialLog.reopen(out_dir, observer, session)
-        if not read_rows(path, repair=True):
-            return TrialLog(path, sidecar, [])
-        raise InputError(str(sidecar), "file", "is missing; a session with trials cannot be resumed without its seed")
-    return TrialLog.create(out_dir, observer, session)
+        return TrialLog.reopen(out_dir, observer, session, durable, allow_missing_sidecar=True)
+    return TrialLog.create(out_dir, observer, session, durable)
+
+
+def _refuse_conflict(source: str, field: str, option: str, started, given) -> None:
+    raise InputError(source, field, f"the session was started with {option} {started}, not {given}; "
+                     f"resume without {option} (the sidecar rules a resume) or with the value it was started with")
+
+
+def sidecar_settings(out_dir: Path, observers: list[str], session: str) -> list[tuple[str, dict]]:
+    """The sidecars of the sessions a resume continues, checked for shape and identity."""
+    found = []
+    for observer in observers:
+        path, side = log_paths(out_dir, observer, session)
+        if not side.exists():
+            continue
+        try:
+            content = json.loads(side.read_text(encoding="utf-8"))
+        except OSError as exc:
+            raise InputError(str(side), "file", f"cannot be read ({exc.strerror})") from None
+        except ValueError as exc:
+            raise InputError(str(side), "file", f"cannot be read as JSON ({exc})") from None
+        check_sidecar(content, str(side))
+        for field, value in (("observer", observer), ("session", session)):
+            if content[field] != value:
+                raise InputError(str(side), field, f"the sidecar belongs to {field} {content[field]!r}, "
+                                 f"not {value!r}; it does not match its file name")
+        found.append((str(side), content))
+    return found
+
+
+def resume_seed_and_model(out_dir: Path, n_observers: int, session: str, seed: int | None,
+                          model: ObserverModel | None) -> tuple[int, ObserverModel]:
+    """Seed and observer model of a resumed simulation: the sidecars' values.
+
+    Raises
+    ------
+    InputError
+        A command-line seed or model that differs from the one the session
+        started with, or sidecars that disagree with each other.
+    """
+    names = [f"sim{i + 1:02d}" for i in range(n_observers)]
+    for source, content in sidecar_settings(out_dir, names, session):
+        if seed is not None and content["seed"] != seed:
+            _refuse_conflict(source, "seed", "--seed", content["seed"], seed)
+        seed = content["seed"]
+        stored = content.get("base_model")
+        if isinstance(stored, dict):
+            try:
+                started = ObserverModel(**stored)
+            except (TypeError, ValueError) as exc:
+                raise InputError(source, "base_model", f"malformed sidecar: {exc}") from None
+            if model is not None and asdict(model) != asdict(started):
+                raise InputError(source, "base_model", "the session was started with another observer model; "
+                                 "resume without --model (the sidecar rules a resume) or with the original file")
+            model = started
+    return (0 if seed is None else seed), (model or ObserverModel())
 
 
 def check_can_start(out_dir: str | Path, observer: str, session: str, resume: bool) -> None:
@@ -122,7 +174,10 @@ def check_same_light(log: TrialLog, sidecar: dict, base: dict) -> None:
 
 
 def start_sidecar(log: TrialLog, base: dict, resume: bool, text: str) -> dict:
-    """Read (resume) or write (new) the sidecar; return its content with a new part."""
+    """Read (resume) or write (new) the sidecar; return its content with a new part.
+
+    Repairs made to the log's tail on opening are recorded in the new part.
+    """
     if log.sidecar_path.exists():
         sidecar = log.read_sidecar()
         check_same_protocol(log, sidecar, text)
@@ -130,9 +185,46 @@ def start_sidecar(log: TrialLog, base: dict, resume: bool, text: str) -> dict:
     else:
         sidecar = dict(base)
         sidecar["parts"] = []
-    sidecar["parts"].append({"started": now_iso(), "ended": None, "ended_by": "running", "rows_added": 0})
+    part = {"started": now_iso(), "ended": None, "ended_by": "running", "rows_added": 0}
+    if log.repairs:
+        part["log_repairs"] = log.repairs
+    sidecar["parts"].append(part)
     log.write_sidecar(sidecar)
     return sidecar
+
+
+def run_part(log: TrialLog, sidecar: dict, session) -> SessionResult:
+    """Run one part of a session, end it in the sidecar however it ends, close the log.
+
+    ``session`` is a no-argument callable running the loop.  An interrupt
+    (Ctrl-C, SIGTERM), a full disk or any other failure marks the part
+    ``interrupted``, ``disk full``, ``disk error`` or ``failed`` in the sidecar and is
+    raised again; the log keeps every completed row.
+    """
+    try:
+        try:
+            result = session()
+        except BaseException as exc:
+            how = "interrupted" if isinstance(exc, KeyboardInterrupt) else (
+                ("disk full" if exc.full else "disk error") if isinstance(exc, StorageError) else "failed")
+            _end_part(log, sidecar, how)
+            raise
+        log.sync()
+        finish_sidecar(log, sidecar, result)
+        return result
+    finally:
+        log.close()
+
+
+def _end_part(log: TrialLog, sidecar: dict, how: str) -> None:
+    """Best effort: the disk may be the reason the part ended."""
+    part = sidecar["parts"][-1]
+    part.update(ended=now_iso(), ended_by=how, rows_added=log.n_rows - len(log.rows))
+    sidecar["rows_total"] = log.n_rows
+    try:
+        log.write_sidecar(sidecar)
+    except (OSError, InputError):
+        pass
 
 
 def finish_sidecar(log: TrialLog, sidecar: dict, result: SessionResult) -> None:
@@ -149,14 +241,15 @@ def simulate(
     protocol_path: str,
     protocol_text: str,
     out_dir: str | Path,
-    model: ObserverModel,
+    model: ObserverModel | None,
     n_observers: int = 1,
-    seed: int = 0,
+    seed: int | None = 0,
     resume: bool = False,
     session: str = "s1",
     screening: dict | None = None,
     progress: bool | None = None,
     light: dict | None = None,
+    sync_every_row: bool = False,
 ) -> list[Path]:
     """Simulate ``n_observers`` observers running the protocol.
 
@@ -164,7 +257,11 @@ def simulate(
     sidecar in ``out_dir`` and its own parameters drawn around ``model``
     (:func:`runner.observers.draw_observers`).  ``light``, when given, is the
     light profile's record (:meth:`runner.light.LightPlan.sidecar`) for the
-    sidecars.
+    sidecars.  ``seed`` and ``model`` may be None: a resume then takes them
+    from the sidecars, a new session uses 0 and the built-in model.  Rows are
+    written at once but synced to disk only at breaks and at the end (they can
+    be made again from the seed), unless ``sync_every_row`` asks for a
+    person's per-trial sync.
 
     Returns
     -------
@@ -172,6 +269,11 @@ def simulate(
         The trial logs.
     """
     out = Path(out_dir)
+    check_identifier(session, "--session")
+    if resume:
+        seed, model = resume_seed_and_model(out, n_observers, session, seed, model)
+    seed = 0 if seed is None else seed
+    model = model or ObserverModel()
     models = draw_observers(model, n_observers, seed)
     loop, observer_kind = (StreamRun, StreamObserver) if protocol.stream is not None else (BlockRun, SimulatedObserver)
     runs = [loop(protocol, derive_seed(seed, i), f"sim{i + 1:02d}", session) for i in range(n_observers)]
@@ -179,7 +281,7 @@ def simulate(
     paths = []
     try:
         for i, (run, observer_model) in enumerate(zip(runs, models)):
-            log = open_log(out, run.observer, session, resume)
+            log = open_log(out, run.observer, session, resume, durable=sync_every_row)
             base = {
                 "tool": "aftershift",
                 "kind": "simulation",
@@ -191,20 +293,24 @@ def simulate(
                 "packages": package_versions(),
                 "seed": seed,
                 "session_seed": run.seed,
+                "offset_bounds_deg": protocol.procedure.bounds_deg,
+                "base_model": asdict(model),
                 "observer_model": asdict(observer_model),
                 "safety": screening,
                 **({"light": light} if light is not None else {}),
             }
-            sidecar = start_sidecar(log, base, resume, protocol_text)
+            try:
+                sidecar = start_sidecar(log, base, resume, protocol_text)
+            except BaseException:
+                log.close()
+                raise
             console.skip(len(log.rows))
+            console.at_break = log.sync
             answers = observer_kind(observer_model, (run.seed, 5), protocol.display.refresh_hz)
             presenter = HeadlessPresenter(protocol.display.refresh_hz)
-            try:
-                texts = screen_texts(protocol, "", protocol_path)
-                result = run.run(presenter, answers, log.append, log.rows, texts, console, str(log.path))
-            finally:
-                log.close()
-            finish_sidecar(log, sidecar, result)
+            texts = screen_texts(protocol, "", protocol_path)
+            run_part(log, sidecar, lambda: run.run(presenter, answers, log.append, log.rows, texts, console,
+                                                   str(log.path)))
             paths.append(log.path)
     finally:
         console.close()
@@ -242,10 +348,17 @@ def run_on_screen(
     """
     out = Path(out_dir)
     log = open_log(out, observer, session, resume)
-    if log.sidecar_path.exists():
-        seed = int(log.read_sidecar()["session_seed"])
-    elif seed is None:
-        seed = secrets.randbelow(2**31)
+    try:
+        if log.sidecar_path.exists():
+            started = log.read_sidecar()
+            if seed is not None and seed != started["session_seed"]:
+                _refuse_conflict(str(log.sidecar_path), "session_seed", "--seed", started["session_seed"], seed)
+            seed = int(started["session_seed"])
+        elif seed is None:
+            seed = secrets.randbelow(2**31)
+    except BaseException:
+        log.close()
+        raise
     base = {
         "tool": "aftershift",
         "kind": "screen",
@@ -256,16 +369,17 @@ def run_on_screen(
         "packages": package_versions(),
         "seed": seed,
         "session_seed": seed,
+        "offset_bounds_deg": protocol.procedure.bounds_deg,
         **extra,
     }
-    sidecar = start_sidecar(log, base, resume, protocol_text)
+    try:
+        sidecar = start_sidecar(log, base, resume, protocol_text)
+    except BaseException:
+        log.close()
+        raise
     if resume:
         sidecar["parts"][-1].update({k: v for k, v in extra.items() if k in ("measured_refresh_hz", "acknowledged")})
     run = (StreamRun if protocol.stream is not None else BlockRun)(protocol, seed, observer, session)
-    try:
-        texts = screen_texts(protocol, caution, protocol_path)
-        result = run.run(presenter, answers, log.append, log.rows, texts, console, str(log.path))
-    finally:
-        log.close()
-    finish_sidecar(log, sidecar, result)
-    return result
+    texts = screen_texts(protocol, caution, protocol_path)
+    return run_part(log, sidecar, lambda: run.run(presenter, answers, log.append, log.rows, texts, console,
+                                                  str(log.path)))

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from fitting.errors import InputError
 from runner.protocol import Protocol, frame_plan
 from runner.schedule import design_conditions
 
@@ -37,6 +38,41 @@ def estimated_seconds(protocol: Protocol) -> tuple[float, int]:
     breaks = (n_main - 1) // d.break_every if d.break_every else 0
     adaptation = f["first_adaptation_s"].seconds * (2 if d.practice_trials else 1)
     return main + practice + adaptation + breaks * BREAK_ESTIMATE_S, breaks
+
+
+#: Largest session ``check`` accepts: trials, and hours of trials (sittings joined by --resume).
+MAX_TRIALS = 50_000
+MAX_HOURS = 48.0
+
+
+def session_size(protocol: Protocol) -> tuple[int, float]:
+    """Trials of one session and their estimated duration (s), breaks included."""
+    d = protocol.design
+    per_track = d.trials_per_track * d.tracks_per_condition
+    if protocol.stream is None:
+        seconds, _ = estimated_seconds(protocol)
+        return per_track * (1 + len(d.adapter_offsets_deg) * len(d.lags)) + d.practice_trials, seconds
+    s, f = protocol.stream, frame_plan(protocol)
+    per_test = (s.nback_periods + 1) * s.period_frames / protocol.display.refresh_hz \
+        + ANSWER_ESTIMATE_S + f["pause_after_answer_s"].seconds
+    breaks = (per_track - 1) // d.break_every if d.break_every else 0
+    return per_track, per_track * per_test + breaks * BREAK_ESTIMATE_S
+
+
+def check_size(protocol: Protocol, source: str) -> None:
+    """Refuse a session too large to be meant.
+
+    Raises
+    ------
+    InputError
+        Over :data:`MAX_TRIALS` trials or :data:`MAX_HOURS` hours.
+    """
+    trials, seconds = session_size(protocol)
+    if trials > MAX_TRIALS or seconds > MAX_HOURS * 3600:
+        raise InputError(source, "design.trials_per_track",
+                         f"{trials} trials, about {seconds / 3600:.0f} hours: more than one session can hold "
+                         f"({MAX_TRIALS} trials, {MAX_HOURS:g} hours); split the design into several protocols "
+                         "or sessions (--session) with fewer tracks, trials, offsets or lags")
 
 
 def header_lines(protocol: Protocol) -> list[str]:

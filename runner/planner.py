@@ -33,6 +33,7 @@ beyond them).
 from __future__ import annotations
 
 import math
+import signal
 import tempfile
 from concurrent.futures import ProcessPoolExecutor, as_completed
 from dataclasses import dataclass, field, replace
@@ -45,6 +46,7 @@ from fitting import fit_logs
 from fitting.errors import InputError
 from fitting.figures import save
 from fitting.progress import ProgressBar
+from fitting.outputs import output_set
 from fitting.tables import write_csv
 from runner.launch import derive_seed, simulate
 from runner.observers import ObserverModel, load_model
@@ -409,15 +411,24 @@ def plan_design(
     ]
     rows = []
     with ProgressBar(len(jobs_list), "planning", show=None if progress else False) as bar, \
-            ProcessPoolExecutor(max_workers=jobs) as pool:
-        for done in as_completed([pool.submit(_run_job, j) for j in jobs_list]):
-            rows += done.result()
-            bar.advance()
+            ProcessPoolExecutor(max_workers=jobs, initializer=_leave_interrupts_to_the_parent) as pool:
+        try:
+            for done in as_completed([pool.submit(_run_job, j) for j in jobs_list]):
+                rows += done.result()
+                bar.advance()
+        except BaseException:  # Ctrl-C, SIGTERM: drop the queued runs, let the running ones end
+            pool.shutdown(wait=True, cancel_futures=True)
+            raise
     per_run = pd.DataFrame(rows).sort_values(["trials_per_track", "run", "quantity", "lag"], kind="stable")
     per_run = per_run.reset_index(drop=True)
     table = _summarise(per_run)
     needed = _needed(table, target_half_width, protocol) if target_half_width is not None else pd.DataFrame()
     return PlanResult(table, per_run, target_half_width, needed, protocol.title, notes)
+
+
+def _leave_interrupts_to_the_parent() -> None:
+    """Workers ignore Ctrl-C; the parent stops the plan and reports it in one line."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
 def _summarise(per_run: pd.DataFrame) -> pd.DataFrame:
@@ -491,7 +502,8 @@ def plan_command(protocol_path: str, model_path: str | None, runs: int, target_h
         raise InputError(str(out), "--out", "exists and is not a folder")
     result = plan_design(protocol, text, str(protocol_path), model, runs, seed,
                          target_half_width=target_half_width, jobs=jobs)
-    files = result.write(out)
+    with output_set(out, "plan") as staged:
+        files = staged.final_paths(result.write(staged.folder))
     print("\n".join(result.summary_lines()))
     print(f"wrote {', '.join(str(f) for f in files)}")
     return 0

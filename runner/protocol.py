@@ -501,6 +501,14 @@ def _cross_checks(p: Protocol) -> None:
             "an initial adaptation needs a single adapter offset; with several interleaved offsets "
             "it would bias the conditions unequally (set it to 0 or use one offset)",
         )
+    labels: dict[str, float] = {}
+    for offset in p.design.adapter_offsets_deg:
+        label = f"{offset:+g}"
+        if label in labels:
+            raise InputError("", "design.adapter_offsets_deg",
+                             f"offsets {labels[label]!r} and {offset!r} would give two conditions the same name "
+                             f"(adapt{label}); use offsets that differ in their first six digits")
+        labels[label] = offset
     proc = p.procedure
     lo, hi = proc.bounds_deg
     if not (lo <= proc.start_offset_deg <= hi and lo <= -proc.start_offset_deg <= hi):

@@ -1,11 +1,17 @@
 """Crash-safe trial log and session sidecar.
 
 The trial log is a CSV file, ``<observer>-<session>.trials.csv``, one row per
-completed trial.  Each row is written with a single ``write``, flushed and
-``fsync``-ed before the next trial starts, so a crash or power cut loses at
-most the trial in progress.  A torn last line (the process died inside a
-write) is detected when the log is reopened, reported and cut off;
-everything before it is kept.
+completed trial.  Each row is handed to the operating system with a single
+``write`` before the next trial starts, so a killed process loses at most the
+trial in progress; with a person, each row is also synced to disk (fsync),
+so a power cut loses nothing either.  Simulated observers sync at breaks and
+at the end (their rows can be made again from the seed).  The tail of a log
+follows the rules of :mod:`fitting.logfile` when it is reopened: a complete
+last row without its newline is kept, a torn line is cut off and reported.
+A new log's header is written under a temporary name and renamed into
+place.  One process at a time writes a session
+(:mod:`runner.session_lock`).  A full disk cuts the log back to its last
+whole row and ends the command with one line.
 
 The sidecar, ``<observer>-<session>.session.json``, describes the session:
 the protocol text and its SHA-256, the display profile, package versions,
@@ -20,6 +26,7 @@ error unless the session is resumed.
 from __future__ import annotations
 
 import csv
+import errno
 import io
 import json
 import os
@@ -28,6 +35,8 @@ import sys
 from pathlib import Path
 
 from fitting.errors import InputError
+from fitting.logfile import check_cells, examine_tail
+from runner.session_lock import SessionLock
 
 #: Columns of the trial log, in order.  The first twelve are required of every log (README, Output files).
 #: ``block`` is ``stream`` for the tests of a continuous stream (empty for
@@ -106,14 +115,34 @@ def _row_text(row: dict) -> str:
     return buf.getvalue()
 
 
-def read_rows(path: str | Path, repair: bool = False) -> list[dict[str, str]]:
-    """Read a trial log written by :class:`TrialLog`.
+class StorageError(InputError):
+    """The disk refused a write (full, or an I/O error); the log was cut back to its last whole row.
+
+    Attribute ``full`` tells a full disk from an I/O error.
+    """
+
+    full = True
+
+
+def _header_text() -> str:
+    return ",".join(COLUMNS) + "\n"
+
+
+def read_rows(path: str | Path, repair: bool = False, repairs: list | None = None) -> list[dict[str, str]]:
+    """Read a trial log written by :class:`TrialLog`, applying the tail rules.
+
+    See :mod:`fitting.logfile`: a complete last row that lacks only its
+    newline is kept; a torn last line is dropped with a warning on stderr.
 
     Parameters
     ----------
     path : str or Path
     repair : bool
-        Cut a torn last line off the file (used before appending).
+        Make the file match what is returned: cut a torn line off, add a
+        missing newline, write the header of an empty log (used before
+        appending, under the session's lock).
+    repairs : list, optional
+        Receives one dict per change made (for the sidecar).
 
     Returns
     -------
@@ -123,30 +152,43 @@ def read_rows(path: str | Path, repair: bool = False) -> list[dict[str, str]]:
     Raises
     ------
     InputError
-        If the header is not this tool's.
+        If the header is not this tool's, or a row before the last is not
+        a whole row.
     """
     p = Path(path)
-    data = p.read_bytes()
-    if data and not data.endswith(b"\n"):
-        cut = data.rfind(b"\n") + 1
-        kept = max(data[:cut].count(b"\n") - 1, 0)
-        print(
-            f"warning: {p}: the last line was torn (the session stopped while writing it); "
-            f"dropping that partial trial and keeping the {kept} rows before it",
-            file=sys.stderr,
-        )
-        data = data[:cut]
+    try:
+        data = p.read_bytes()
+    except OSError as exc:
+        raise InputError(str(p), "file", f"cannot be read ({exc.strerror})") from None
+    tail = examine_tail(data)
+    header = _header_text().encode("utf-8")
+    if tail.keep == 0 and (tail.torn == b"" or header.startswith(tail.torn)):
         if repair:
-            with open(p, "r+b") as fh:
-                fh.truncate(cut)
+            _write_new(p, header)
+            _note(repairs, p, "header", f"the log held no trial and an incomplete header ({len(data)} bytes); "
+                  "wrote the header again")
+        return []
+    if tail.keep == 0:
+        raise InputError(str(p), "line 1", "the header is cut or not an aftershift trial log header, "
+                         "and the file holds other data; it cannot be repaired automatically")
+    if tail.torn:
+        kept = data.count(b"\n", 0, tail.keep) - 1
+        action = "cut off" if repair else "ignoring"
+        _note(repairs, p, "torn", f"{action} the torn line {tail.torn_line} ({tail.describe()}), "
+              f"keeping the {kept} rows before it")
+        data = data[: tail.keep]
+        if repair:
+            _truncate(p, tail.keep)
+    if tail.needs_newline:
+        if repair:
+            with open(p, "ab") as fh:
+                fh.write(b"\n")
                 fh.flush()
                 os.fsync(fh.fileno())
-    text = data.decode("utf-8")
-    reader = csv.reader(io.StringIO(text))
-    header = next(reader, None)
-    if header is None:
-        return []
-    if tuple(header) != COLUMNS:
+        _note(repairs, p, "newline", "the last row was complete but lacked its newline; kept it")
+    reader = csv.reader(io.StringIO(data.decode("utf-8", "replace")))
+    head = next(reader, None)
+    if head is None or tuple(head) != COLUMNS:
         raise InputError(str(p), "line 1", "the header is not an aftershift trial log header")
     rows = []
     for n, cells in enumerate(reader, start=2):
@@ -156,89 +198,274 @@ def read_rows(path: str | Path, repair: bool = False) -> list[dict[str, str]]:
     return rows
 
 
+def check_row(row: dict[str, str], source: str, line: int) -> None:
+    """Validate every cell of a logged row (used while replaying it).
+
+    Raises
+    ------
+    InputError
+        Naming the file, the line and the column of the first bad cell.
+    """
+    bad = check_cells(COLUMNS, [row[c] for c in COLUMNS])
+    if bad is not None:
+        raise InputError(source, f"line {line}, column {bad[0]}", bad[1])
+
+
+def _note(repairs: list | None, path: Path, kind: str, text: str) -> None:
+    print(f"warning: {path}: {text}", file=sys.stderr)
+    if repairs is not None:
+        repairs.append({"kind": kind, "detail": text})
+
+
+def _truncate(path: Path, size: int) -> None:
+    with open(path, "r+b") as fh:
+        fh.truncate(size)
+        fh.flush()
+        os.fsync(fh.fileno())
+
+
+def _write_new(path: Path, content: bytes) -> None:
+    """Write a whole file under a temporary name, sync it and rename it into place."""
+    tmp = path.with_name(path.name + ".tmp")
+    try:
+        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o666)
+        try:
+            _write_all(fd, content)
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+        os.replace(tmp, path)
+    except OSError as exc:
+        _unlink(tmp)
+        raise _disk_error(path, exc, None) from None
+    except BaseException:  # Ctrl-C or SIGTERM in the middle: no temporary file stays behind
+        _unlink(tmp)
+        raise
+    _fsync_dir(path.parent)
+
+
+def _write_all(fd: int, data: bytes) -> None:
+    view = memoryview(data)
+    while view:
+        view = view[os.write(fd, view):]
+
+
+def _unlink(path: Path) -> None:
+    try:
+        os.unlink(path)
+    except OSError:
+        pass
+
+
+def _disk_error(path: Path, exc: OSError, rows: int | None) -> InputError:
+    if exc.errno in (errno.ENOSPC, errno.EDQUOT):
+        what = "the disk is full"
+    elif exc.errno == errno.EIO:
+        what = "the disk reported an I/O error"
+    else:
+        return InputError(str(path), "file", f"cannot be written ({exc.strerror})")
+    safe = "every completed trial is safe" if rows is None else f"{rows} trials are safe in the log"
+    error = StorageError(str(path), "disk", f"{what} ({exc.strerror}); {safe}; "
+                         "free some space, then continue with --resume")
+    error.full = exc.errno != errno.EIO
+    return error
+
+
 class TrialLog:
-    """Append-only, fsync'd trial log with its JSON sidecar.
+    """Append-only trial log with its JSON sidecar, written by one process at a time.
 
     Use :meth:`create` for a new session and :meth:`reopen` to resume one.
+    Both take the session's lock (:class:`runner.session_lock.SessionLock`),
+    held until :meth:`close`.
 
-    Attributes
+    Parameters
     ----------
     path, sidecar_path : Path
     rows : list of dict
-        Rows already on disk when the log was opened (strings, as read).
+        Rows already on disk.
+    lock : SessionLock
+    durable : bool
+        True (people): every row is synced to disk (fsync) before the next
+        trial.  False (simulated observers): every row is handed to the
+        operating system at once (a killed process loses nothing) and synced
+        only at :meth:`sync` (breaks) and at the end.
+
+    Attributes
+    ----------
+    repairs : list of dict
+        Changes made to the tail of the log when it was opened.
     """
 
-    def __init__(self, path: Path, sidecar_path: Path, rows: list[dict[str, str]]):
+    def __init__(self, path: Path, sidecar_path: Path, rows: list[dict[str, str]], lock: SessionLock,
+                 durable: bool = True, repairs: list | None = None):
         self.path = path
         self.sidecar_path = sidecar_path
         self.rows = rows
-        self._fh = open(path, "a", encoding="utf-8", newline="")
+        self.lock = lock
+        self.durable = durable
+        self.repairs = repairs or []
+        self.n_rows = len(rows)
+        try:
+            self._fd = os.open(path, os.O_WRONLY | os.O_APPEND)
+            self._size = os.fstat(self._fd).st_size
+        except OSError as exc:
+            lock.release()
+            raise InputError(str(path), "file", f"cannot be opened for writing ({exc.strerror})") from None
 
     @classmethod
-    def create(cls, out_dir: str | Path, observer: str, session: str) -> "TrialLog":
+    def create(cls, out_dir: str | Path, observer: str, session: str, durable: bool = True) -> "TrialLog":
         """Start a new log; refuse if this session already has data.
+
+        The header is written to a temporary file, synced and renamed into
+        place, so a log is never born without its whole header.
 
         Raises
         ------
         InputError
             If the log or sidecar exists (pass ``--resume`` or choose another
-            output folder), or the folder cannot be created.
+            output folder), another process holds the session, or the folder
+            cannot be created.
         """
         path, sidecar = log_paths(out_dir, observer, session)
-        refuse_existing(path, sidecar)
+        lock = _lock(path, sidecar)
         try:
-            path.parent.mkdir(parents=True, exist_ok=True)
-            with open(path, "x", encoding="utf-8", newline="") as fh:
-                fh.write(",".join(COLUMNS) + "\n")
-                fh.flush()
-                os.fsync(fh.fileno())
-        except OSError as exc:
-            raise InputError(str(path), "file", f"cannot be created ({exc.strerror})") from None
-        _fsync_dir(path.parent)
-        return cls(path, sidecar, [])
+            refuse_existing(path, sidecar)
+            _write_new(path, _header_text().encode("utf-8"))
+            return cls(path, sidecar, [], lock, durable)
+        except BaseException:
+            lock.release()
+            raise
 
     @classmethod
-    def reopen(cls, out_dir: str | Path, observer: str, session: str) -> "TrialLog":
-        """Open an interrupted session's log for appending.
+    def reopen(cls, out_dir: str | Path, observer: str, session: str, durable: bool = True,
+               allow_missing_sidecar: bool = False) -> "TrialLog":
+        """Open an interrupted session's log for appending, repairing its tail.
+
+        Parameters
+        ----------
+        allow_missing_sidecar : bool
+            Accept a log without sidecar while it holds no trial (the
+            session died between creating the two files).
 
         Raises
         ------
         InputError
-            If there is no log or sidecar to resume.
+            If there is no log or sidecar to resume, or another process
+            holds the session.
         """
         path, sidecar = log_paths(out_dir, observer, session)
-        if not path.exists() or not sidecar.exists():
-            raise InputError(str(path), "file", "no session to resume here (log or sidecar missing)")
-        rows = read_rows(path, repair=True)
-        return cls(path, sidecar, rows)
+        lock = _lock(path, sidecar)
+        try:
+            if not path.exists() or not (sidecar.exists() or allow_missing_sidecar):
+                raise InputError(str(path), "file", "no session to resume here (log or sidecar missing)")
+            repairs: list = []
+            rows = read_rows(path, repair=True, repairs=repairs)
+            if rows and not sidecar.exists():
+                raise InputError(str(sidecar), "file",
+                                 "is missing; a session with trials cannot be resumed without its seed")
+            return cls(path, sidecar, rows, lock, durable, repairs)
+        except BaseException:
+            lock.release()
+            raise
 
     def append(self, row: dict) -> None:
-        """Write one trial and make it durable before returning."""
-        self._fh.write(_row_text(row))
-        self._fh.flush()
-        os.fsync(self._fh.fileno())
+        """Write one trial in a single write (synced to disk when ``durable``).
+
+        Raises
+        ------
+        StorageError
+            The disk is full or failed; the file is cut back to its last
+            whole row first.
+        """
+        data = _row_text(row).encode("utf-8")
+        try:
+            _write_all(self._fd, data)
+            if self.durable:
+                os.fsync(self._fd)
+        except OSError as exc:
+            try:
+                os.ftruncate(self._fd, self._size)
+                os.fsync(self._fd)
+            except OSError:
+                pass
+            raise _disk_error(self.path, exc, self.n_rows) from None
+        self._size += len(data)
+        self.n_rows += 1
+
+    def sync(self) -> None:
+        """Force the rows written so far to disk (breaks and the end of a simulated session)."""
+        if self._fd >= 0:
+            try:
+                os.fsync(self._fd)
+            except OSError as exc:
+                raise _disk_error(self.path, exc, self.n_rows) from None
 
     def close(self) -> None:
-        """Close the log file."""
-        self._fh.close()
+        """Sync and close the log file, then release the session's lock."""
+        try:
+            if self._fd >= 0:
+                try:
+                    os.fsync(self._fd)
+                except OSError:
+                    pass
+                os.close(self._fd)
+                self._fd = -1
+        finally:
+            self.lock.release()
 
     def read_sidecar(self) -> dict:
-        """The sidecar's content."""
+        """The sidecar's content, checked for the shape this tool writes.
+
+        Raises
+        ------
+        InputError
+            Unreadable, not JSON, or malformed (naming the field).
+        """
+        src = str(self.sidecar_path)
         try:
-            return json.loads(self.sidecar_path.read_text(encoding="utf-8"))
-        except (OSError, ValueError) as exc:
-            raise InputError(str(self.sidecar_path), "file", f"cannot be read as JSON ({exc})") from None
+            content = json.loads(self.sidecar_path.read_text(encoding="utf-8"))
+        except OSError as exc:
+            raise InputError(src, "file", f"cannot be read ({exc.strerror})") from None
+        except ValueError as exc:
+            raise InputError(src, "file", f"cannot be read as JSON ({exc})") from None
+        check_sidecar(content, src)
+        return content
 
     def write_sidecar(self, content: dict) -> None:
-        """Replace the sidecar atomically."""
-        tmp = self.sidecar_path.with_suffix(".json.tmp")
-        with open(tmp, "w", encoding="utf-8") as fh:
-            json.dump(content, fh, indent=2, sort_keys=False, default=_json_default)
-            fh.write("\n")
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, self.sidecar_path)
-        _fsync_dir(self.sidecar_path.parent)
+        """Replace the sidecar atomically (no temporary file survives a failure)."""
+        text = json.dumps(content, indent=2, sort_keys=False, default=_json_default) + "\n"
+        _write_new(self.sidecar_path, text.encode("utf-8"))
+
+
+#: Fields every sidecar has, and their JSON types.
+SIDECAR_FIELDS = {"observer": str, "session": str, "seed": int, "session_seed": int, "protocol": dict, "parts": list}
+
+
+def check_sidecar(content, source: str) -> None:
+    """Refuse a sidecar that is not a JSON object of the shape this tool writes.
+
+    Raises
+    ------
+    InputError
+        ``malformed sidecar`` naming the first missing or mistyped field.
+    """
+    if not isinstance(content, dict):
+        raise InputError(source, "file", f"malformed sidecar: expected a JSON object, found {type(content).__name__}")
+    for name, kind in SIDECAR_FIELDS.items():
+        value = content.get(name)
+        if not isinstance(value, kind) or isinstance(value, bool):
+            raise InputError(source, name, f"malformed sidecar: expected {kind.__name__}, found {value!r:.40}")
+    if not isinstance(content["protocol"].get("sha256"), str):
+        raise InputError(source, "protocol.sha256", "malformed sidecar: expected the protocol's SHA-256 text")
+    if not all(isinstance(p, dict) for p in content["parts"]):
+        raise InputError(source, "parts", "malformed sidecar: expected a list of objects")
+
+
+def _lock(path: Path, sidecar: Path) -> SessionLock:
+    lock = SessionLock(path)
+    for done in (path, sidecar):  # temporary files of a process killed while writing them
+        _unlink(done.with_name(done.name + ".tmp"))
+    return lock
 
 
 def _json_default(value):

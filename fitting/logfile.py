@@ -1,0 +1,195 @@
+"""Rules for the bytes of a trial log, shared by the session writer and ``fit``.
+
+A trial log is a CSV file whose rows are each written with one ``write``.
+A process killed inside that write, or a power cut, can leave the last line
+incomplete, or followed by NUL bytes where the file system had reserved
+space that was never written.  The rules for the end of a log are:
+
+* a last line that lacks only its newline, but whose cells are all present
+  and parse, is a complete trial: it is kept (a writer adds the newline);
+* anything else after the last newline is a *torn* line: a writer cuts it
+  off and says so; ``fit`` refuses the log (exit 2) naming the torn line,
+  unless a session is writing the log at that moment (its lock is held);
+* a line holding NUL bytes, and everything after it, is torn.
+
+:func:`check_cells` is the cell-by-cell validation used both here and when
+a resumed session replays its rows.  The lock a writer holds is described in
+``runner/session_lock.py``; :func:`is_being_written` only asks whether it is
+held, so that ``fitting`` never imports ``runner``.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import math
+import os
+from dataclasses import dataclass
+from pathlib import Path
+
+#: How each known column of a trial log parses.  Unknown columns accept anything.
+CELL_KINDS = {
+    "observer": "id", "session": "id", "trial": "count", "condition": "text",
+    "adapter_offset_deg": "number?", "lag": "whole?", "track": "whole?",
+    "test_offset_deg": "number", "response_cw": "answer", "rt_s": "number?",
+    "dropped_frames": "whole", "timing_ok": "flag", "practice": "bit",
+    "period_s": "number?", "reference_deg": "number?", "test_direction_deg": "number?",
+    "intervening_offsets_deg": "numbers", "procedure": "text?", "block": "text?",
+    "preceding_offsets_deg": "numbers",
+}
+LOCK_SUFFIX = ".lock"
+
+
+def _number(text: str) -> bool:
+    try:
+        return math.isfinite(float(text))
+    except ValueError:
+        return False
+
+
+def _whole(text: str) -> bool:
+    return text.lstrip("-").isdigit()
+
+
+_CHECKS = {
+    "id": (lambda t: t != "" and all(c.isalnum() or c in "-_" for c in t), "a name of letters, digits, - or _"),
+    "text": (lambda t: t != "", "a non-empty value"),
+    "text?": (lambda t: True, ""),
+    "count": (lambda t: t.isdigit() and int(t) >= 1, "a whole number >= 1"),
+    "whole": (lambda t: t.isdigit(), "a whole number >= 0"),
+    "whole?": (lambda t: t == "" or _whole(t), "a whole number or empty"),
+    "number": (_number, "a finite number"),
+    "number?": (lambda t: t == "" or _number(t), "a finite number or empty"),
+    "answer": (lambda t: t in ("", "0", "1"), "1, 0 or empty"),
+    "flag": (lambda t: t in ("true", "false"), "true or false"),
+    "bit": (lambda t: t in ("0", "1"), "0 or 1"),
+    "numbers": (lambda t: t == "" or all(_number(v) for v in t.split(";")), "';'-separated finite numbers"),
+}
+
+
+def check_cells(header, cells) -> tuple[str, str] | None:
+    """The first cell that does not parse, as ``(column, message)``; None if all do.
+
+    Parameters
+    ----------
+    header : sequence of str
+        Column names of the log.
+    cells : sequence of str
+        One row's cells.
+    """
+    if len(cells) != len(header):
+        return "cells", f"expected {len(header)} cells, found {len(cells)}"
+    for name, text in zip(header, cells):
+        kind = CELL_KINDS.get(name)
+        if kind is None:
+            continue
+        ok, expected = _CHECKS[kind]
+        if not ok(text):
+            return name, f"expected {expected}, found {text[:40]!r}"
+    return None
+
+
+def _cells(line: bytes) -> list[str] | None:
+    try:
+        text = line.decode("utf-8")
+    except UnicodeDecodeError:
+        return None
+    rows = list(csv.reader(io.StringIO(text)))
+    return rows[0] if len(rows) == 1 else None
+
+
+@dataclass(frozen=True)
+class Tail:
+    """What the end of a log holds.
+
+    Attributes
+    ----------
+    keep : int
+        Bytes of the file that hold complete lines (a complete last line
+        without newline included).
+    needs_newline : bool
+        The kept part ends with a complete row that lacks its newline.
+    torn : bytes
+        The bytes after ``keep`` (empty when nothing is torn).
+    torn_line : int
+        Line number (1-based) where the torn part starts; 0 if none.
+    reason : str
+        Why the part is torn, in plain words.
+    """
+
+    keep: int
+    needs_newline: bool
+    torn: bytes
+    torn_line: int
+    reason: str
+
+    def describe(self) -> str:
+        """One phrase saying why the line is torn and what it held."""
+        shown = self.torn[:60].decode("utf-8", "replace").replace("\x00", "\\0")
+        more = "..." if len(self.torn) > 60 else ""
+        return f"{self.reason}; {len(self.torn)} bytes: {shown!r}{more}"
+
+
+def examine_tail(data: bytes) -> Tail:
+    """Apply the tail rules to the bytes of a log.
+
+    The header is the first line; a log whose header itself is incomplete
+    has ``keep = 0`` and the whole content torn.
+    """
+    nul = data.find(b"\x00")
+    if nul >= 0:
+        keep = data.rfind(b"\n", 0, nul) + 1
+        return Tail(keep, False, data[keep:], data.count(b"\n", 0, keep) + 1, "NUL bytes, as left by a power cut")
+    keep = data.rfind(b"\n") + 1
+    if keep == len(data):
+        return Tail(keep, False, b"", 0, "")
+    line_no = data.count(b"\n", 0, keep) + 1
+    if keep == 0:
+        return Tail(0, False, data, 1, "the header was cut")
+    header = _cells(data[: data.find(b"\n")])
+    cells = _cells(data[keep:])
+    if header is not None and cells is not None and check_cells(header, cells) is None \
+            and _same_list_lengths(data[:keep], header, cells):
+        return Tail(len(data), True, b"", 0, "")
+    return Tail(keep, False, data[keep:], line_no, "missing or cut cells")
+
+
+def _same_list_lengths(before: bytes, header, cells) -> bool:
+    """A cut inside the last cell can still parse; a list cell must match the row before in length."""
+    if not header or CELL_KINDS.get(header[-1]) != "numbers":
+        return True
+    lines = before.rstrip(b"\n").split(b"\n")
+    if len(lines) < 2:
+        return True
+    prev = _cells(lines[-1])
+    if prev is None or len(prev) != len(header):
+        return True
+    return _entries(prev[-1]) == _entries(cells[-1])
+
+
+def _entries(text: str) -> int:
+    return 0 if text == "" else len(text.split(";"))
+
+
+def lock_path(log: str | Path) -> Path:
+    """The lock file of a log: ``<observer>-<session>.lock`` beside it."""
+    p = Path(log)
+    name = p.name[: -len(".trials.csv")] if p.name.endswith(".trials.csv") else p.name
+    return p.with_name(name + LOCK_SUFFIX)
+
+
+def is_being_written(log: str | Path) -> bool:
+    """True while a session holds the log's lock (a writer is running)."""
+    import fcntl
+
+    try:
+        fd = os.open(lock_path(log), os.O_RDONLY)
+    except OSError:
+        return False
+    try:
+        fcntl.flock(fd, fcntl.LOCK_SH | fcntl.LOCK_NB)
+    except OSError:
+        return True
+    finally:
+        os.close(fd)
+    return False

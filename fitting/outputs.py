@@ -1,0 +1,211 @@
+"""Outputs written whole, as a set, readable by colleagues.
+
+``fit``, ``compare`` and ``plan`` write their tables, figures and reports
+into a hidden staging folder inside ``--out`` (``.staging-<pid>-*``).  Only
+when every file is complete are they moved into place, each by one rename,
+after a manifest (``outputs.json``) listing them has been written.  Then the
+files that the folder's previous manifest listed and this run did not write
+are removed, so no table or figure of an earlier fit survives beside the new
+ones.  Files no manifest lists (your own notes) are never touched, and
+trial logs, sidecars and lock files never, whatever a manifest says.
+
+A failure, Ctrl-C or SIGTERM before that point removes the staging folder
+and leaves the earlier outputs as they were; a staging folder left by a
+killed process is removed by the next run into the same folder.
+
+Files get the permissions the umask allows (``0666 & ~umask``), like any
+file a program creates, so colleagues who can read the figures can read the
+tables too.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import tempfile
+from contextlib import contextmanager
+from pathlib import Path
+
+from .errors import InputError
+
+MANIFEST = "outputs.json"
+STAGING_PREFIX = ".staging-"
+#: Data files a manifest can never cause to be removed, whatever it lists.
+NEVER_REMOVED = (".trials.csv", ".session.json", ".lock")
+
+
+def file_mode() -> int:
+    """Mode of a new file under the current umask (``0666 & ~umask``)."""
+    mask = os.umask(0)
+    os.umask(mask)
+    return 0o666 & ~mask
+
+
+def write_atomic(path: str | Path, data: bytes) -> None:
+    """Write ``data`` under a temporary name beside ``path``, then rename it into place.
+
+    The file's mode follows the umask; on any failure the temporary file is
+    removed and ``path`` is unchanged.
+    """
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix="." + path.name + ".", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            os.fchmod(fh.fileno(), file_mode())
+            fh.write(data)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+class StagedOutputs:
+    """The staging folder of one command's outputs, and where they will land.
+
+    Attributes
+    ----------
+    folder : Path
+        Write here (same layout as the final folder).
+    final_dir : Path
+        The ``--out`` folder.
+    """
+
+    def __init__(self, folder: Path, final_dir: Path):
+        self.folder = folder
+        self.final_dir = final_dir
+
+    def final(self, path: str | Path) -> str:
+        """Where a staged file will be once committed."""
+        p = Path(path)
+        try:
+            return str(self.final_dir / p.relative_to(self.folder))
+        except ValueError:
+            return str(p)
+
+    def final_paths(self, paths) -> list[str]:
+        """:meth:`final` of each path."""
+        return [self.final(p) for p in paths]
+
+
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def _remove_dead_staging(out: Path) -> None:
+    for entry in out.glob(STAGING_PREFIX + "*"):
+        try:
+            pid = int(entry.name[len(STAGING_PREFIX):].split("-")[0])
+        except ValueError:
+            continue
+        if entry.is_dir() and not _pid_alive(pid):
+            shutil.rmtree(entry, ignore_errors=True)
+
+
+def read_manifest(out: Path) -> list[str]:
+    """Files (relative to ``out``) the folder's manifest lists; empty if none or unreadable."""
+    try:
+        content = json.loads((out / MANIFEST).read_text(encoding="utf-8"))
+        files = content.get("files", []) if isinstance(content, dict) else []
+        return [f for f in files if isinstance(f, str)]
+    except (OSError, ValueError):
+        return []
+
+
+def _commit(staged: StagedOutputs, command: str) -> None:
+    stage, out = staged.folder, staged.final_dir
+    files = sorted(str(p.relative_to(stage)) for p in stage.rglob("*") if p.is_file())
+    previous = read_manifest(out)
+    manifest = {"tool": "aftershift", "command": command, "files": files}
+    write_atomic(stage / MANIFEST, (json.dumps(manifest, indent=2) + "\n").encode("utf-8"))
+    for rel in files:
+        target = out / rel
+        target.parent.mkdir(parents=True, exist_ok=True)
+        os.replace(stage / rel, target)
+    os.replace(stage / MANIFEST, out / MANIFEST)
+    keep = set(files) | {MANIFEST}
+    for rel in previous:
+        if rel in keep or Path(rel).is_absolute() or ".." in Path(rel).parts or rel.endswith(NEVER_REMOVED):
+            continue
+        stale = out / rel
+        try:
+            stale.unlink()
+        except OSError:
+            continue
+        _prune_empty(stale.parent, out)
+
+
+def _prune_empty(folder: Path, top: Path) -> None:
+    while folder != top and top in folder.parents:
+        try:
+            folder.rmdir()
+        except OSError:
+            return
+        folder = folder.parent
+
+
+def check_out_dir(out_dir: str | Path) -> None:
+    """Refuse, before any work, an ``--out`` that cannot become a writable folder.
+
+    Raises
+    ------
+    InputError
+        A path under a regular file, or a folder (or its nearest existing
+        parent) that cannot be written.
+    """
+    out = Path(out_dir)
+    probe = out
+    while not probe.exists() and probe != probe.parent:
+        probe = probe.parent
+    if not probe.is_dir():
+        raise InputError(str(out), "--out", f"{probe} is a file, not a folder")
+    if not os.access(probe, os.W_OK | os.X_OK):
+        raise InputError(str(out), "--out", f"{probe} cannot be written (read-only or no permission)")
+
+
+@contextmanager
+def output_set(out_dir: str | Path, command: str):
+    """Stage a command's outputs and move them into ``out_dir`` as one set.
+
+    Parameters
+    ----------
+    out_dir : str or Path
+        The ``--out`` folder (created if needed).
+    command : str
+        Recorded in the manifest.
+
+    Yields
+    ------
+    StagedOutputs
+
+    Raises
+    ------
+    InputError
+        ``out_dir`` is not a folder or cannot be written; a full disk.
+    """
+    out = Path(out_dir)
+    if out.exists() and not out.is_dir():
+        raise InputError(str(out), "--out", "exists and is not a folder")
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+        _remove_dead_staging(out)
+        stage = Path(tempfile.mkdtemp(prefix=f"{STAGING_PREFIX}{os.getpid()}-", dir=out))
+    except OSError as exc:
+        raise InputError(str(out), "--out", f"cannot be written ({exc.strerror})") from None
+    staged = StagedOutputs(stage, out)
+    try:
+        yield staged
+        _commit(staged, command)
+    except OSError as exc:
+        raise InputError(str(out), "--out", f"cannot be written ({exc.strerror}); the earlier outputs "
+                         "there are unchanged") from None
+    finally:
+        shutil.rmtree(stage, ignore_errors=True)

@@ -1,0 +1,527 @@
+"""Fault injection, quick part: states a crash leaves, bad cells and sidecars, full and read-only disks.
+
+States that a SIGKILL at an unlucky instant leaves behind (a header's
+temporary file, a cut header, an empty log, a cut sidecar temporary file, a
+torn or NUL-padded last line, a complete last row without its newline) are
+made here directly, so each is met for certain; tests/test_faults_kill.py
+kills real processes at random instants.  Every case checks the exit code,
+one line on stderr without a traceback, and that the logs finally equal an
+uninterrupted run with the same seed.  The rules themselves are common
+practice for append-only logs, no source.
+"""
+
+from __future__ import annotations
+
+import errno
+import json
+import os
+import re
+import shutil
+import stat
+import tempfile
+from pathlib import Path
+
+import pytest
+
+from fault_helpers import PILOT, PILOT_ARGS, as_nobody, cli, leftovers, logs, one_line, resume_equals, tmpfs
+from runner import trial_log
+from runner.cli import main
+
+NAME = "sim01-s1.trials.csv"
+SIDE = "sim01-s1.session.json"
+
+
+@pytest.fixture(scope="module")
+def whole(tmp_path_factory) -> Path:
+    """An uninterrupted simulation of the pilot protocol, two observers, seed 5."""
+    out = tmp_path_factory.mktemp("whole")
+    assert main(["simulate", str(PILOT), "--out", str(out), *PILOT_ARGS]) == 0
+    return out
+
+
+def _copy(whole: Path, out: Path, rows: int | None = None, extra: bytes = b"", sidecar: bool = True) -> Path:
+    """sim01's log cut to ``rows`` rows (plus ``extra`` bytes), with its sidecar; sim02 absent."""
+    out.mkdir(parents=True, exist_ok=True)
+    data = (whole / NAME).read_bytes()
+    if rows is not None:
+        lines = data.splitlines(keepends=True)
+        data = b"".join(lines[: rows + 1])
+    (out / NAME).write_bytes(data + extra)
+    if sidecar:
+        (out / SIDE).write_bytes((whole / SIDE).read_bytes())
+    return out
+
+
+def _resume_equals_whole(capsys, out: Path, whole: Path) -> str:
+    return resume_equals(capsys, PILOT, PILOT_ARGS, out, whole)
+
+
+# --- what a kill leaves behind ----------------------------------------------------------------------------------
+
+
+def test_kill_during_header_write_leaves_a_temporary_file_that_the_resume_removes(capsys, tmp_path, whole):
+    out = tmp_path / "o"
+    out.mkdir()
+    (out / (NAME + ".tmp")).write_bytes(b"observer,session,tri")
+    _resume_equals_whole(capsys, out, whole)
+
+
+@pytest.mark.parametrize("content", [b"", b"observer,session,trial,cond"], ids=["empty", "cut header"])
+def test_empty_or_cut_header_log_without_rows_is_repaired(capsys, tmp_path, whole, content):
+    out = tmp_path / "o"
+    out.mkdir()
+    (out / NAME).write_bytes(content)
+    err = _resume_equals_whole(capsys, out, whole)
+    assert content == b"" or "header" in err
+
+
+def test_cut_header_with_foreign_data_is_refused_and_kept(capsys, tmp_path):
+    out = tmp_path / "o"
+    out.mkdir()
+    (out / NAME).write_bytes(b"these are my notes, not a log")
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, *PILOT_ARGS, "--resume")
+    assert code == 2 and "line 1" in one_line(err)
+    assert (out / NAME).read_bytes() == b"these are my notes, not a log"
+
+
+def test_kill_during_sidecar_write_leaves_a_cut_temporary_file(capsys, tmp_path, whole):
+    out = _copy(whole, tmp_path / "o", rows=30)
+    (out / (SIDE + ".tmp")).write_text('{"tool": "aftersh')
+    _resume_equals_whole(capsys, out, whole)
+
+
+def test_log_without_sidecar_and_no_rows_is_resumed(capsys, tmp_path, whole):
+    out = _copy(whole, tmp_path / "o", rows=0, sidecar=False)
+    _resume_equals_whole(capsys, out, whole)
+
+
+def test_log_with_rows_but_no_sidecar_is_refused(capsys, tmp_path, whole):
+    out = _copy(whole, tmp_path / "o", rows=20, sidecar=False)
+    before = logs(out)
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, *PILOT_ARGS, "--resume")
+    assert code == 2 and "session.json" in one_line(err)
+    assert logs(out) == before
+
+
+# --- the tail of a log ------------------------------------------------------------------------------------------
+
+
+def test_complete_last_row_without_newline_is_kept_not_rerun(capsys, tmp_path, whole):
+    out = _copy(whole, tmp_path / "o", rows=40)
+    out.joinpath(NAME).write_bytes(out.joinpath(NAME).read_bytes()[:-1])  # only the newline is missing
+    err = _resume_equals_whole(capsys, out, whole)
+    assert "lacked its newline" in err
+    sidecar = json.loads((out / SIDE).read_text())
+    assert sidecar["parts"][-1]["log_repairs"][0]["kind"] == "newline"
+
+
+@pytest.mark.parametrize("cut", [3, 17, 40, 60])
+def test_torn_last_line_is_cut_reported_and_rerun(capsys, tmp_path, whole, cut):
+    lines = (whole / NAME).read_bytes().splitlines(keepends=True)
+    out = _copy(whole, tmp_path / "o", rows=50, extra=lines[51][:cut])
+    err = _resume_equals_whole(capsys, out, whole)
+    assert "torn line 52" in err
+    repairs = json.loads((out / SIDE).read_text())["parts"][-1]["log_repairs"]
+    assert repairs[0]["kind"] == "torn"
+
+
+def test_nul_bytes_after_a_power_cut_are_cut(capsys, tmp_path, whole):
+    out = _copy(whole, tmp_path / "o", rows=25, extra=b"\x00" * 300)
+    err = _resume_equals_whole(capsys, out, whole)
+    assert "NUL" in err
+
+
+def test_torn_practice_row_is_never_counted_by_fit(capsys, tmp_path, whole):
+    # a practice row cut right after its timing_ok cell parses in a CSV reader with "practice" empty
+    lines = (whole / NAME).read_bytes().splitlines(keepends=True)
+    row = lines[2]
+    cut = row.index(b"true,") + len(b"true,")
+    out = _copy(whole, tmp_path / "o", rows=1, extra=row[:cut])
+    code, err = cli(capsys, "fit", out / NAME, "--out", tmp_path / "fit", "--bootstrap", "0", "--no-figures")
+    assert code == 2
+    assert "line 3" in one_line(err) and "torn" in err
+    assert not (tmp_path / "fit" / "pse.csv").exists()
+
+
+# --- corrupt cells and sidecars ---------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("column,value", [("response_cw", "7"), ("rt_s", "fast"), ("timing_ok", "maybe"),
+                                          ("dropped_frames", "-1"), ("test_offset_deg", "nan")])
+def test_corrupt_cell_met_during_resume_names_file_line_and_column(capsys, tmp_path, whole, column, value):
+    out = _copy(whole, tmp_path / "o", rows=30)
+    lines = (out / NAME).read_text().splitlines(keepends=True)
+    cells = lines[10].rstrip("\n").split(",")
+    cells[trial_log.COLUMNS.index(column)] = value
+    lines[10] = ",".join(cells) + "\n"
+    (out / NAME).write_text("".join(lines))
+    before = logs(out)
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, *PILOT_ARGS, "--resume")
+    line = one_line(err)
+    assert code == 2 and NAME in line and "line 11" in line and column in line
+    assert logs(out) == before
+
+
+@pytest.mark.parametrize("content,field", [("[1, 2]", "file"), ('{"tool": 1}', "observer"), ("not json", "file"),
+                                           (None, "seed")], ids=["list", "missing fields", "not json", "seed text"])
+def test_sidecar_of_the_wrong_shape_is_reported_as_malformed(capsys, tmp_path, whole, content, field):
+    out = _copy(whole, tmp_path / "o", rows=30)
+    if content is None:
+        side = json.loads((out / SIDE).read_text())
+        side["seed"] = "five"
+        content = json.dumps(side)
+    (out / SIDE).write_text(content)
+    before = logs(out)
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, "--observers", "2", "--resume")
+    line = one_line(err)
+    assert code == 2 and SIDE in line and field in line
+    assert "protocol" not in line or "malformed" in line or "JSON" in line
+    assert logs(out) == before
+
+
+# --- the sidecar rules a resume ---------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("args,field", [(["--seed", "6"], "seed"), (["--model", "MODEL"], "base_model")])
+def test_conflicting_seed_or_model_on_resume_is_refused(capsys, tmp_path, whole, args, field):
+    out = _copy(whole, tmp_path / "o", rows=30)
+    if "MODEL" in args:
+        model = tmp_path / "other.toml"
+        model.write_text("amplitude_deg = 9.0\n")
+        args = ["--model", model]
+    before = logs(out)
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, "--observers", "2", *args, "--resume")
+    assert code == 2 and field in one_line(err)
+    assert logs(out) == before
+
+
+def test_resume_without_seed_takes_the_sidecars(capsys, tmp_path, whole):
+    out = _copy(whole, tmp_path / "o", rows=30)
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, "--observers", "2", "--resume")
+    assert code == 0, err
+    assert logs(out) == logs(whole)
+
+
+@pytest.mark.parametrize("session", ["../../x", "a/b", "", "x" * 65])
+def test_session_label_is_validated_like_an_observer_id(capsys, tmp_path, session):
+    code, err = cli(capsys, "simulate", PILOT, "--out", tmp_path / "o", "--session", session)
+    assert code == 2 and "--session" in one_line(err)
+    assert not (tmp_path / "x").exists() and not (tmp_path / "o").exists()
+
+
+def test_lock_left_by_a_dead_process_is_taken_over_with_a_note(capsys, tmp_path, whole):
+    out = _copy(whole, tmp_path / "o", rows=30)
+    (out / "sim01-s1.lock").write_text(json.dumps({"pid": 2**22 + 17, "host": os.uname().nodename,
+                                                   "started": "2026-01-01T00:00:00+00:00"}))
+    err = _resume_equals_whole(capsys, out, whole)
+    assert "took over the lock" in err and str(2**22 + 17) in err
+
+
+# --- full disks, read-only and unreadable paths -----------------------------------------------------------------
+
+
+@pytest.mark.parametrize("code_", [errno.ENOSPC, errno.EIO], ids=["ENOSPC", "EIO"])
+def test_injected_enospc_cuts_back_to_the_last_row_and_resumes_exactly(capsys, tmp_path, whole, monkeypatch, code_):
+    """A full disk (or a failing one) without mounting anything: the 60th row's write fails after a partial write."""
+    out = tmp_path / "o"
+    real_write, calls = os.write, {"n": 0}
+
+    def failing_write(fd, data):
+        if len(data) > 60 and data[:5] == b"sim01":
+            calls["n"] += 1
+            if calls["n"] == 60:
+                real_write(fd, bytes(data[:25]))  # part of the row reaches the file, then the disk is full
+                raise OSError(code_, os.strerror(code_))
+        return real_write(fd, data)
+
+    monkeypatch.setattr(trial_log.os, "write", failing_write)
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, *PILOT_ARGS)
+    monkeypatch.undo()
+    line = one_line(err)
+    assert code == 2 and ("disk is full" in line or "I/O error" in line) and "--resume" in line
+    data = (out / NAME).read_bytes()
+    assert data.endswith(b"\n") and data.count(b"\n") == 60  # header + 59 whole rows, no torn row
+    ended = json.loads((out / SIDE).read_text())["parts"][-1]["ended_by"]
+    assert ended == ("disk full" if code_ == errno.ENOSPC else "disk error")
+    _resume_equals_whole(capsys, out, whole)
+
+
+def test_full_tmpfs_during_simulate_and_fit(capsys, tmp_path, whole):
+    small = tmp_path / "small"
+    with tmpfs(small, "40k"):
+        out = small / "logs"
+        code, err = cli(capsys, "simulate", PILOT, "--out", out, *PILOT_ARGS)
+        line = one_line(err)
+        assert code == 2 and ("disk is full" in line or "No space" in line)
+        for data in logs(out).values():
+            assert data.endswith(b"\n")  # cut back to whole rows
+        assert leftovers(out) == []
+        # move to a roomier disk and continue: the same rows as an uninterrupted run
+        roomy = tmp_path / "roomy"
+        roomy.mkdir()
+        for p in out.iterdir():
+            if not p.name.endswith(".lock"):
+                (roomy / p.name).write_bytes(p.read_bytes())
+    _resume_equals_whole(capsys, roomy, whole)
+    # a fit into a folder on a full disk: one line, and the earlier fit there is untouched
+    with tmpfs(small, "400k"):
+        fit_dir = small / "fit"
+        assert cli(capsys, "fit", whole, "--out", fit_dir, "--bootstrap", "0", "--no-figures")[0] == 0
+        before = {p.name: p.read_bytes() for p in fit_dir.iterdir()}
+        (small / "filler").write_bytes(b"\0" * (os.statvfs(small).f_bavail * os.statvfs(small).f_frsize))
+        code, err = cli(capsys, "fit", whole, "--out", fit_dir, "--bootstrap", "0")
+        assert code == 2 and "No space" in one_line(err)
+        assert {p.name: p.read_bytes() for p in fit_dir.iterdir()} == before
+        assert leftovers(fit_dir) == []
+
+
+def test_read_only_folder(capsys, tmp_path, whole):
+    ro = tmp_path / "ro"
+    with tmpfs(ro, read_only=True):
+        for args in (["simulate", PILOT, "--out", ro / "logs"], ["fit", whole, "--out", ro / "fit"],
+                     ["compare", whole, PILOT, "--out", ro / "cmp"]):
+            code, err = cli(capsys, *args)
+            assert code == 2 and "read-only" in one_line(err).lower()
+            assert not list(ro.iterdir())
+
+
+@pytest.mark.parametrize("command", ["simulate", "fit", "plan", "compare"])
+def test_output_folder_under_a_regular_file(capsys, tmp_path, whole, command):
+    blocker = tmp_path / "file"
+    blocker.write_text("x")
+    target = blocker / "sub"
+    args = {"simulate": ["simulate", PILOT, "--out", target],
+            "fit": ["fit", whole, "--out", target, "--bootstrap", "0"],
+            "plan": ["plan", PILOT, "--out", target, "--runs", "2"],
+            "compare": ["compare", whole, whole / NAME, "--out", target]}[command]
+    if command == "compare":
+        fit = tmp_path / "fit"
+        assert cli(capsys, "fit", whole, "--out", fit, "--bootstrap", "0", "--no-figures")[0] == 0
+        pred = tmp_path / "pred.csv"
+        pred.write_text("lag,adapter_offset_deg,pse_shift_deg\n0,-30,-2\n0,30,2\n2,-30,-1\n2,30,1\n")
+        args = ["compare", fit, pred, "--out", target]
+    code, err = cli(capsys, *args)
+    assert code == 2 and str(blocker) in one_line(err)
+    assert blocker.read_text() == "x"
+
+
+def test_unreadable_log_for_an_unprivileged_user(tmp_path, whole):
+    import codecs
+
+    import fitting.nback  # noqa: F401 - imported before dropping root
+    import fitting.report  # noqa: F401
+
+    codecs.lookup("utf-8-sig")
+
+    if os.geteuid() != 0:
+        pytest.skip("needs root to drop to an unprivileged user")
+    shared = Path(tempfile.mkdtemp(prefix="aftershift-faults-", dir="/tmp"))  # pytest's folders are root-only
+    try:
+        shared.chmod(0o777)
+        log = shared / NAME
+        log.write_bytes((whole / NAME).read_bytes())
+        log.chmod(0)
+        hidden = tmp_path / NAME  # inside a folder the user cannot enter
+        hidden.write_bytes(log.read_bytes())
+        for target in (log, hidden):
+            code, err = as_nobody(["fit", str(target), "--out", str(shared / "fit"), "--bootstrap", "0",
+                                   "--no-figures"])
+            assert code == 2 and "Permission denied" in one_line(err) and NAME in err, err
+            assert not (shared / "fit").exists()
+    finally:
+        shutil.rmtree(shared)
+
+
+# --- fit, compare and check refuse what they cannot use ---------------------------------------------------------
+
+
+def test_fit_refuses_a_backup_copy_and_doubled_rows(capsys, tmp_path, whole):
+    data = tmp_path / "data"
+    (data / "backup").mkdir(parents=True)
+    for folder in (data, data / "backup"):
+        (folder / NAME).write_bytes((whole / NAME).read_bytes())
+    code, err = cli(capsys, "fit", data, "--out", tmp_path / "fit", "--bootstrap", "0")
+    line = one_line(err)
+    assert code == 2 and "backup" in line and "trial 1 " in line
+    lines = (whole / NAME).read_bytes().splitlines(keepends=True)
+    (tmp_path / "doubled.trials.csv").write_bytes(b"".join(lines[:50] + lines[40:45] + lines[50:]))
+    code, err = cli(capsys, "fit", tmp_path / "doubled.trials.csv", "--out", tmp_path / "fit", "--bootstrap", "0")
+    assert code == 2 and "line 51" in one_line(err) and "line 41" in err
+
+
+def test_fit_refuses_offsets_outside_the_bounds_the_sidecar_records(capsys, tmp_path, whole):
+    text = (whole / NAME).read_text().splitlines(keepends=True)
+    cells = text[30].split(",")
+    cells[trial_log.COLUMNS.index("test_offset_deg")] = "31"  # pilot_short.toml: bounds_deg = [-30, 30]
+    text[30] = ",".join(cells)
+    (tmp_path / NAME).write_text("".join(text))
+    (tmp_path / SIDE).write_bytes((whole / SIDE).read_bytes())
+    code, err = cli(capsys, "fit", tmp_path / NAME, "--out", tmp_path / "fit", "--bootstrap", "0")
+    assert code == 2 and "line 31" in one_line(err) and "[-30, 30]" in err
+
+
+def test_fit_leaves_out_the_line_a_running_session_is_writing(capsys, tmp_path, whole):
+    from runner.session_lock import SessionLock
+
+    lines = (whole / NAME).read_bytes().splitlines(keepends=True)
+    (tmp_path / NAME).write_bytes(b"".join(lines[:80]) + lines[80][:30])
+    with SessionLock(tmp_path / NAME):
+        code, err = cli(capsys, "fit", tmp_path / NAME, "--out", tmp_path / "fit", "--bootstrap", "0", "--no-figures")
+    assert code == 0, err
+    assert "79 read" in (tmp_path / "fit" / "summary.txt").read_text()
+    code, err = cli(capsys, "fit", tmp_path / NAME, "--out", tmp_path / "fit", "--bootstrap", "0", "--no-figures")
+    assert code == 2 and "line 81" in one_line(err) and "torn" in err
+
+
+def test_fit_refuses_absurd_offsets(capsys, tmp_path, whole):
+    text = (whole / NAME).read_text().splitlines(keepends=True)
+    cells = text[30].split(",")
+    cells[trial_log.COLUMNS.index("test_offset_deg")] = "1e300"
+    text[30] = ",".join(cells)
+    (tmp_path / NAME).write_text("".join(text))
+    code, err = cli(capsys, "fit", tmp_path / NAME, "--out", tmp_path / "fit", "--bootstrap", "0")
+    assert code == 2 and "line 31" in one_line(err) and "test_offset_deg" in err
+
+
+@pytest.mark.parametrize("args,option", [
+    (["simulate", PILOT, "--out", "OUT", "--seed", "-1"], "--seed"),
+    (["fit", "WHOLE", "--out", "OUT", "--bootstrap", "1000000000"], "--bootstrap"),
+    (["simulate", PILOT, "--out", "OUT", "--observers", "100000"], "--observers"),
+    (["plan", PILOT, "--out", "OUT", "--seed", str(2**40)], "--seed"),
+])
+def test_absurd_numbers_on_the_command_line(capsys, tmp_path, whole, args, option):
+    args = [tmp_path / "out" if a == "OUT" else whole if a == "WHOLE" else a for a in args]
+    code, err = cli(capsys, *args)
+    assert code == 2 and option in one_line(err)
+    assert not (tmp_path / "out").exists()
+
+
+def test_check_prints_the_duration_and_refuses_a_40_million_trial_protocol(capsys, tmp_path):
+    huge = tmp_path / "huge.toml"
+    offsets = ", ".join(str(x) for x in range(-96, 97, 3) if x)
+    huge.write_text(PILOT.read_text().split("[design]")[0] + f"""
+[design]
+adapter_offsets_deg = [{offsets}]
+lags = [{", ".join(str(k) for k in range(32))}]
+tracks_per_condition = 8
+trials_per_track = 10000
+""" + "[procedure]" + PILOT.read_text().split("[procedure]")[1])
+    capsys.readouterr()
+    code = main(["check", str(huge)])
+    out, err = capsys.readouterr()
+    assert code == 2 and "min" in out and "trials" in out
+    assert "split" in one_line(err)
+    code, err = cli(capsys, "simulate", huge, "--out", tmp_path / "o")
+    assert code == 2 and "split" in one_line(err)
+
+
+def test_offsets_that_would_share_a_condition_name_are_refused(capsys, tmp_path):
+    text = PILOT.read_text()
+    bad = tmp_path / "twins.toml"
+    bad.write_text(re.sub(r"adapter_offsets_deg\s*=\s*\[[^\]]*\]", "adapter_offsets_deg = [30, 30.000000000000004]",
+                          text))
+    code, err = cli(capsys, "check", bad)
+    assert code == 2 and "adapter_offsets_deg" in one_line(err)
+
+
+def test_compare_refuses_a_missing_prediction_and_leaves_out_interval_statistics(capsys, tmp_path, whole):
+    fit = tmp_path / "fit"
+    assert cli(capsys, "fit", whole, "--out", fit, "--bootstrap", "0", "--no-figures")[0] == 0
+    pred = tmp_path / "pred.csv"
+    pred.write_text("lag,adapter_offset_deg,pse_shift_deg\n0,-30,-2\n0,30,nan\n2,-30,-1\n2,30,1\n")
+    code, err = cli(capsys, "compare", fit, pred, "--out", tmp_path / "cmp")
+    assert code == 2 and "line 3" in one_line(err) and "pse_shift_deg" in err
+    pred.write_text("lag,adapter_offset_deg,pse_shift_deg\n0,-30,-2\n0,30,2\n2,-30,-1\n2,30,1\n")
+    capsys.readouterr()
+    code = main(["compare", str(fit), str(pred), "--out", str(tmp_path / "cmp")])
+    out, err = capsys.readouterr()
+    assert code == 0 and " 0% of" not in out and "left out" in out
+    table = (tmp_path / "cmp" / "agreement.csv").read_text().splitlines()
+    header = table[0].split(",")
+    observers = [row.split(",") for row in table[1:] if not row.startswith("group")]
+    assert observers and all(row[header.index("inside_ci_fraction")] == "" for row in observers)
+
+
+# --- outputs written whole, as a set, readable by colleagues ----------------------------------------------------
+
+
+def test_refit_replaces_the_earlier_fit_as_a_set_and_keeps_other_files(capsys, tmp_path, whole):
+    out = tmp_path / "fit"
+    assert cli(capsys, "fit", whole / NAME, "--out", out, "--bootstrap", "0")[0] == 0
+    first = {p.relative_to(out) for p in out.rglob("*") if p.is_file()}
+    assert any(p.parts[0] == "figures" for p in first)
+    (out / "my_notes.txt").write_text("keep me")
+    assert cli(capsys, "fit", whole, "--out", out, "--bootstrap", "0", "--no-figures")[0] == 0
+    second = {p.relative_to(out) for p in out.rglob("*") if p.is_file()}
+    assert not (out / "figures").exists(), "a figure of the earlier fit survived"
+    assert "sim02" in (out / "pse.csv").read_text()
+    assert (out / "my_notes.txt").read_text() == "keep me"
+    manifest = json.loads((out / "outputs.json").read_text())
+    assert set(manifest["files"]) | {"outputs.json", "my_notes.txt"} == {str(p) for p in second}
+    assert leftovers(out) == []
+    # a manifest edited by hand cannot make a fit delete data
+    (out / NAME).write_bytes((whole / NAME).read_bytes())
+    (out / "outputs.json").write_text(json.dumps({"files": [NAME, "../x.txt", "pse.csv"]}))
+    (tmp_path / "x.txt").write_text("outside")
+    assert cli(capsys, "fit", whole / NAME, "--out", out, "--bootstrap", "0", "--no-figures")[0] == 0
+    assert (out / NAME).exists() and (tmp_path / "x.txt").exists()
+
+
+def test_tables_follow_the_umask(capsys, tmp_path, whole):
+    old = os.umask(0o022)
+    try:
+        assert cli(capsys, "fit", whole, "--out", tmp_path / "fit", "--bootstrap", "0", "--no-figures")[0] == 0
+    finally:
+        os.umask(old)
+    for p in (tmp_path / "fit").iterdir():
+        assert stat.S_IMODE(p.stat().st_mode) == 0o644, p
+
+
+def test_interrupted_fit_leaves_the_earlier_fit_untouched(capsys, tmp_path, whole, monkeypatch):
+    out = tmp_path / "fit"
+    assert cli(capsys, "fit", whole, "--out", out, "--bootstrap", "0", "--no-figures")[0] == 0
+    before = {p.name: p.read_bytes() for p in out.iterdir()}
+    from fitting import tables
+
+    real = tables.write_csv
+    calls = {"n": 0}
+
+    def interrupted(*a, **k):
+        calls["n"] += 1
+        if calls["n"] == 3:
+            raise KeyboardInterrupt
+        return real(*a, **k)
+
+    monkeypatch.setattr("fitting.report.write_csv", interrupted)
+    code, err = cli(capsys, "fit", whole, "--out", out, "--bootstrap", "0", "--no-figures", "--seed", "3")
+    assert code == 130 and one_line(err).startswith("aftershift fit: interrupted")
+    assert {p.name: p.read_bytes() for p in out.iterdir()} == before
+    assert leftovers(out) == []
+
+
+def test_run_refuses_a_held_session_before_opening_any_window(capsys, tmp_path, monkeypatch):
+    from runner.session_lock import SessionLock
+
+    monkeypatch.delenv("DISPLAY", raising=False)  # the lock is checked first, so no screen is needed to see it
+    log = tmp_path / "P01-s1.trials.csv"
+    with SessionLock(log):
+        code, err = cli(capsys, "run", PILOT, "--observer", "P01", "--out", tmp_path)
+    assert code == 2 and "another session is writing" in one_line(err) and f"process {os.getpid()}" in err
+
+
+def test_staging_folder_of_a_killed_fit_is_removed_by_the_next(capsys, tmp_path, whole):
+    out = tmp_path / "fit"
+    left = out / f".staging-{2**22 + 23}-abc"  # as a fit killed with SIGKILL mid-write leaves it
+    (left / "figures").mkdir(parents=True)
+    (left / "pse.csv").write_text("observer,cond")
+    assert cli(capsys, "fit", whole, "--out", out, "--bootstrap", "0", "--no-figures")[0] == 0
+    assert not left.exists() and leftovers(out) == []
+
+
+def test_replicates_that_would_not_fit_in_memory_are_refused():
+    from fitting.bootstrap import check_replicate_memory
+    from fitting.errors import InputError
+
+    check_replicate_memory(100_000, 33, memory_bytes=24 * 2**30)  # one observer of the default protocol fits
+    with pytest.raises(InputError, match="--bootstrap.*at most 64,424"):
+        check_replicate_memory(100_000, 1000, memory_bytes=24 * 2**30)  # 1,000 conditions: 18.6 GiB

@@ -1,0 +1,188 @@
+"""Fault injection with real processes: SIGKILL at random instants, SIGTERM, Ctrl-C, two writers at once.
+
+Each simulation is a separate process, killed or raced as a user's mistake
+would; afterwards ``simulate --resume`` must leave logs equal, byte for byte,
+to an uninterrupted run with the same seed (the contract of DESIGN.md), and
+every refused or interrupted command must say so in one line.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from fault_helpers import LONG, LONG_ARGS, PILOT, cli, leftovers, logs, one_line, only_notes, resume_equals
+from runner.cli import main
+
+from conftest import ROOT
+
+NAME = "sim01-s1.trials.csv"
+SIDE = "sim01-s1.session.json"
+pytestmark = pytest.mark.slow
+
+
+@pytest.fixture(scope="module")
+def whole(tmp_path_factory) -> Path:
+    out = tmp_path_factory.mktemp("whole")
+    assert main(["simulate", str(LONG), "--out", str(out), *LONG_ARGS]) == 0
+    return out
+
+
+def _start(out: Path, *extra: str) -> subprocess.Popen:
+    return subprocess.Popen([sys.executable, "-m", "runner.cli", "simulate", str(LONG), "--out", str(out),
+                             *LONG_ARGS, *extra], cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
+                            text=True)
+
+
+def _kill_when(proc: subprocess.Popen, ready, sig=signal.SIGKILL, timeout: float = 60) -> bool:
+    """Send ``sig`` as soon as ``ready()`` is true; False if the process ended first."""
+    deadline = time.monotonic() + timeout
+    while proc.poll() is None and not ready() and time.monotonic() < deadline:
+        time.sleep(0.0002)
+    alive = proc.poll() is None
+    if alive:
+        os.kill(proc.pid, sig)
+    proc.wait()
+    return alive
+
+
+def _rows(path: Path) -> int:
+    try:
+        return path.read_bytes().count(b"\n") - 1
+    except FileNotFoundError:
+        return -1
+
+
+def _resume(capsys, out: Path, whole: Path) -> None:
+    resume_equals(capsys, LONG, LONG_ARGS, out, whole)
+
+
+# 8 instants drawn at random (seeded, so a failure can be repeated), plus the header and the sidecar writes
+_RNG = np.random.default_rng(20261202)
+_AT_ROWS = sorted(int(x) for x in _RNG.integers(0, 1300, 8))
+
+
+@pytest.mark.parametrize("at", ["header", "sidecar"] + _AT_ROWS)
+def test_sigkill_at_an_instant_then_resume_equals_the_uninterrupted_log(capsys, tmp_path, whole, at):
+    out = tmp_path / "o"
+    log, side = out / NAME, out / SIDE
+    if at == "header":
+        ready = lambda: (out / (NAME + ".tmp")).exists() or log.exists()  # noqa: E731
+    elif at == "sidecar":
+        ready = lambda: (out / (SIDE + ".tmp")).exists() or side.exists()  # noqa: E731
+    else:
+        ready = lambda: _rows(log) >= at  # noqa: E731
+    assert _kill_when(_start(out), ready), "the simulation ended before the kill"
+    _resume(capsys, out, whole)
+
+
+def test_sigkill_during_a_resume_then_resume_again(capsys, tmp_path, whole):
+    out = tmp_path / "o"
+    assert _kill_when(_start(out), lambda: _rows(out / NAME) >= 200)
+    assert _kill_when(_start(out, "--resume"), lambda: _rows(out / NAME) >= 700)
+    _resume(capsys, out, whole)
+
+
+def test_sigterm_ends_the_part_as_interrupted_with_the_resume_hint(capsys, tmp_path, whole):
+    out = tmp_path / "o"
+    proc = _start(out)
+    assert _kill_when(proc, lambda: _rows(out / NAME) >= 300, sig=signal.SIGTERM)
+    err = proc.stderr.read()
+    assert proc.returncode == 130
+    line = one_line(err)
+    assert "SIGTERM" in line and "--resume" in line and line.startswith("aftershift simulate")
+    part = json.loads((out / SIDE).read_text())["parts"][-1]
+    assert part["ended_by"] == "interrupted" and part["rows_added"] == _rows(out / NAME)
+    _resume(capsys, out, whole)
+
+
+@pytest.mark.parametrize("second", [[], ["--resume"]], ids=["fresh+fresh", "fresh+resume"])
+def test_two_writers_at_once_one_is_refused_and_no_trial_is_doubled(capsys, tmp_path, whole, second):
+    out = tmp_path / "o"
+    first = _start(out)
+    while not (out / NAME).exists() and first.poll() is None:
+        time.sleep(0.0005)
+    other = _start(out, *second)
+    other.wait()
+    first.wait()
+    assert first.returncode == 0, first.stderr.read()
+    err = other.stderr.read()
+    if second and other.returncode == 0:  # it came after the first had ended: resuming a finished session
+        only_notes(err)
+    else:
+        assert other.returncode == 2
+        line = one_line(err)
+        assert "another session is writing" in line or "already holds this session" in line
+    assert logs(out) == logs(whole)
+
+
+@pytest.mark.parametrize("second", [[], ["--resume"]], ids=["fresh", "resume"])
+def test_a_second_writer_while_the_session_is_held_names_the_holder(capsys, tmp_path, whole, second):
+    from runner.session_lock import SessionLock
+
+    out = tmp_path / "o"
+    assert _kill_when(_start(out), lambda: _rows(out / NAME) >= 100)
+    before = logs(out)
+    with SessionLock(out / NAME):  # this test process is now the running writer
+        proc = _start(out, *second)
+        proc.wait()
+        line = one_line(proc.stderr.read())
+    assert proc.returncode == 2 and f"process {os.getpid()}" in line and "another session is writing" in line
+    assert logs(out) == before
+    _resume(capsys, out, whole)
+
+
+def test_two_resumes_at_once_after_a_kill(capsys, tmp_path, whole):
+    out = tmp_path / "o"
+    assert _kill_when(_start(out), lambda: _rows(out / NAME) >= 100)
+    a, b = _start(out, "--resume"), _start(out, "--resume")
+    codes = sorted([a.wait(), b.wait()])
+    errs = [a.stderr.read(), b.stderr.read()]
+    assert codes[0] == 0 and codes[1] in (0, 2), errs
+    if codes[1] == 2:
+        assert "another session is writing" in one_line(next(e for e, p in zip(errs, (a, b)) if p.returncode == 2))
+    assert logs(out) == logs(whole)
+    trials = [line.split(b",")[2] for line in (out / NAME).read_bytes().splitlines()[1:]]
+    assert len(trials) == len(set(trials))
+
+
+def test_ctrl_c_during_fit_names_the_command_and_leaves_nothing_half_written(capsys, tmp_path, whole):
+    out = tmp_path / "fit"
+    assert cli(capsys, "fit", whole, "--out", out, "--bootstrap", "0", "--no-figures")[0] == 0
+    before = {p.name: p.read_bytes() for p in out.iterdir()}
+    proc = subprocess.Popen([sys.executable, "-m", "runner.cli", "fit", str(whole), "--out", str(out),
+                             "--bootstrap", "3000"], cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
+                            text=True)
+    time.sleep(2.5)
+    proc.send_signal(signal.SIGINT)
+    proc.wait()
+    err = proc.stderr.read()
+    assert proc.returncode == 130, err
+    assert one_line(err).startswith("aftershift fit: interrupted")
+    assert {p.name: p.read_bytes() for p in out.iterdir()} == before
+    assert leftovers(out) == []
+
+
+def test_ctrl_c_during_plan_stops_the_workers_and_says_so(tmp_path):
+    out = tmp_path / "plan"
+    proc = subprocess.Popen([sys.executable, "-m", "runner.cli", "plan", str(PILOT), "--runs", "40", "--out", str(out)],
+                            cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True,
+                            start_new_session=True)
+    time.sleep(4)
+    os.killpg(proc.pid, signal.SIGINT)  # as a terminal's Ctrl-C: the whole process group
+    try:
+        proc.wait(timeout=60)
+    except subprocess.TimeoutExpired:
+        os.killpg(proc.pid, signal.SIGKILL)
+        pytest.fail("plan did not stop on Ctrl-C")
+    assert proc.returncode == 130
+    assert one_line(proc.stderr.read()).startswith("aftershift plan: interrupted")
+    assert not out.exists()
