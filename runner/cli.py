@@ -161,8 +161,15 @@ def cmd_fit(args) -> int:
     if streams:
         report = fit_stream_logs(streams, args.out, **common)
     else:
-        report = fit_logs(trials, args.out, spread=args.spread, include_practice=args.include_practice,
-                          sigmoid=args.function, level=args.level, **common)
+        from runner.workpool import open_pool, task_mapper
+
+        pool = open_pool(args.scheduler, args.jobs)
+        try:
+            report = fit_logs(trials, args.out, spread=args.spread, include_practice=args.include_practice,
+                              sigmoid=args.function, level=args.level, map_tasks=task_mapper(pool, "fitting observers"),
+                              **common)
+        finally:
+            pool.close()
     print(report.summary())
     return EXIT_OK
 
@@ -277,6 +284,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--include-bad-timing", action="store_true", help="keep trials with timing_ok = false")
     p.add_argument("--include-practice", action="store_true", help="keep practice trials")
     p.add_argument("--no-figures", action="store_true", help="tables only")
+    where = p.add_mutually_exclusive_group()
+    where.add_argument("--jobs", type=int, help="observers fitted at once in local worker processes "
+                                                "(default: every available core)")
+    where.add_argument("--scheduler", metavar="ADDRESS", help="fit the observers on a Dask cluster, e.g. "
+                                                              "tcp://HOST:8786 (needs the cluster extra)")
     p.set_defaults(func=cmd_fit)
 
     p = sub.add_parser("compare", help="agreement of measured after-effects with a predictions table")

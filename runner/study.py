@@ -52,6 +52,7 @@ else:  # pragma: no cover
 QUANTITIES = ("amplitude", "peak_offset", "decay", "baseline_pse")
 UNITS = {"amplitude": "deg", "peak_offset": "deg", "decay": "periods", "baseline_pse": "deg"}
 TRIALS_FIELD = "design.trials_per_track"
+RESULT_COLUMNS = ("quantity", "lag", "estimate", "ci_low", "ci_high")
 MAX_DESIGNS = 1000
 MAX_TASKS = 10**6
 #: Bumped when a task's result would change for the same inputs (old results are then not reused).
@@ -312,6 +313,8 @@ class StudySettings:
         check_count(self.runs, "--runs", 1, 100000)
         check_count(self.seed, "--seed", 0, 2**63 - 1)
         check_count(self.n_boot, "--bootstrap", 20, 100000)
+        if self.jobs is not None:
+            check_count(self.jobs, "--jobs", 1, 4096)
         if self.lapse != "free":
             try:
                 ok = 0 <= float(self.lapse) < 0.5
@@ -398,8 +401,8 @@ def run_study(designs: list[Design], settings: StudySettings, folder: str | Path
     rows = []
     for key, where in index.items():
         for d, r in where:
-            for row in results[key]:
-                rows.append({"design": d, "replicate": r, **row})
+            for row in results[key]:  # fixed column order, whether fresh or read back from disk
+                rows.append({"design": d, "replicate": r, **{c: row[c] for c in RESULT_COLUMNS}})
     return _with_truth(pd.DataFrame(rows), designs)
 
 

@@ -182,7 +182,7 @@ class ClusterPool:
         futures = {self.client.submit(fn, task, key=f"aftershift-{key}", pure=False): key
                    for key, task in tasks.items()}
         try:
-            for future in as_completed(futures):
+            for future in as_completed(futures, loop=self.client.loop):
                 try:
                     result = future.result()
                 except KilledWorker as exc:
@@ -356,6 +356,20 @@ def run_tasks(fn: Callable, tasks: dict, pool, store: TaskStore | None = None, l
             results[key] = result
             bar.update(1)
     return results
+
+
+def task_mapper(pool, label: str) -> Callable[[Callable, dict], dict]:
+    """``map_tasks(fn, tasks) -> results by key`` through ``pool``, with a progress bar.
+
+    A lost worker becomes an :class:`InputError` (one line, exit 2).
+    """
+    def map_tasks(fn: Callable, tasks: dict) -> dict:
+        try:
+            return run_tasks(fn, tasks, pool, label=f"{label} ({pool.where})")
+        except WorkerLost as exc:
+            raise InputError("worker", "", f"{exc}; nothing was written, run the command again") from None
+
+    return map_tasks
 
 
 def interrupted_line(done: int, total: int, folder: Path) -> str:
