@@ -24,7 +24,7 @@ fi
 
 PY=${PYTHON:-python3}
 echo "setup: installing Python packages"
-"$PY" -m pip install -q -e ".[display,dev]"
+"$PY" -m pip install -q -e ".[display,dev,cluster]"
 # psychopy without its own dependency list: only its window, stimuli, clock
 # and keyboard are used, and their needs are in the "display" extra.
 "$PY" -m pip install -q --no-deps "psychopy==2026.2.5"
