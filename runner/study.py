@@ -40,6 +40,9 @@ import numpy as np
 import pandas as pd
 
 from fitting.errors import InputError
+from fitting.report import fit_trials
+from fitting.tables import prepare_trials
+from runner.launch import derive_seed, package_versions, simulate_rows
 from runner.observers import ObserverModel
 from runner.protocol import Protocol, protocol_from_dict
 from runner.workpool import TaskStore, WorkerLost, check_count, interrupted_line, open_pool, run_tasks
@@ -224,8 +227,6 @@ def truth(model: ObserverModel, quantity: str, lag) -> float:
 
 def session_seed(seed: int, replicate: int) -> int:
     """Seed of replicate ``replicate`` (sessions and bootstrap), the same in every design."""
-    from runner.launch import derive_seed
-
     return derive_seed(seed, replicate)
 
 
@@ -242,10 +243,6 @@ def run_session_task(task: dict) -> list[dict]:
     rows ``quantity, lag, estimate, ci_low, ci_high`` (None where the fit
     gave no value). Depends only on ``task``.
     """
-    from fitting import fit_trials
-    from fitting.tables import prepare_trials
-    from runner.launch import simulate_rows
-
     protocol = protocol_from_dict(task["protocol"], "study task")
     model = ObserverModel(**task["model"])
     rows = simulate_rows(protocol, model, task["seed"])
@@ -324,7 +321,8 @@ class StudySettings:
                 raise InputError("argument", "--lapse", f"expected 'free' or a number in [0, 0.5), got {self.lapse!r}")
 
 
-def _task(design: Design, replicate: int, s: StudySettings) -> dict:
+def make_task(design: Design, replicate: int, s: StudySettings) -> dict:
+    """The argument of :func:`run_session_task` for replicate ``replicate`` of ``design``."""
     return {"protocol": design.protocol.model_dump(mode="json", exclude_none=True), "model": asdict(design.model),
             "seed": session_seed(s.seed, replicate), "n_boot": s.n_boot,
             "lapse": s.lapse if s.lapse == "free" else float(s.lapse)}
@@ -366,13 +364,11 @@ def run_study(designs: list[Design], settings: StudySettings, folder: str | Path
     if len(designs) * settings.runs > MAX_TASKS:
         raise InputError("argument", "--runs", f"{len(designs)} designs x {settings.runs} runs is more than "
                          f"{MAX_TASKS} tasks")
-    from runner.launch import package_versions
-
     version = package_versions().get("aftershift")
     tasks, index = {}, {}
     for d, design in enumerate(designs):
         for r in range(settings.runs):
-            task = _task(design, r, settings)
+            task = make_task(design, r, settings)
             key = task_key(task, version)
             tasks[key] = task
             index.setdefault(key, []).append((d, r))

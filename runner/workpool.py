@@ -84,8 +84,10 @@ class LocalPool:
             for key, task in tasks.items():
                 yield key, fn(task)
             return
-        # forkserver: fast starts without forking a parent that may hold threads
+        # forkserver: workers fork from a clean server process (not from this one, which may hold
+        # threads) that has imported the task's module once, so they start without importing it again
         ctx = multiprocessing.get_context("forkserver")
+        ctx.set_forkserver_preload([fn.__module__])
         pool = ProcessPoolExecutor(min(self.workers, len(tasks)), mp_context=ctx, initializer=_ignore_interrupt)
         pending = {pool.submit(fn, task): key for key, task in tasks.items()}
         try:
