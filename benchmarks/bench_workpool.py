@@ -1,10 +1,11 @@
 """Handing out study tasks: speed-up from 1 to 2 local workers, and the cost per task of the Dask path.
 
-1. Speed-up. ``--tasks`` real study tasks (one simulated session of a small
-   protocol, fitted with ``--boot`` bootstrap replicates: what ``plan`` and
-   ``recover`` run) through :class:`runner.workpool.LocalPool` with 1 worker
-   (in this process) and with 2 worker processes. Target: close to 2× on two
-   free cores (process start-up included).
+1. Speed-up. ``--tasks`` real study tasks (one simulated session of the
+   bundled ``protocols/offset_by_lag.toml``, fitted with ``--boot`` bootstrap
+   replicates: what ``plan`` and ``recover`` run) through
+   :class:`runner.workpool.LocalPool` with 1 worker (in this process) and with
+   2 worker processes, start-up of the worker processes included. Target:
+   close to 2× on two free cores.
 2. Overhead per task. Tasks that do almost nothing (``math.sqrt``) through
    the local pool with 2 processes and through a Dask cluster of a scheduler
    and 2 single-thread workers started here on 127.0.0.1 (no other address is
@@ -14,7 +15,7 @@
 
 The machine is shared: the load average is printed beside the numbers.
 
-Run: ``python benchmarks/bench_workpool.py [--tasks 8] [--boot 100] [--trivial 400]``
+Run: ``python benchmarks/bench_workpool.py [--tasks 24] [--boot 200] [--trivial 400]``
 """
 
 from __future__ import annotations
@@ -33,18 +34,11 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from runner.observers import ObserverModel  # noqa: E402
-from runner.protocol import parse_protocol  # noqa: E402
+from runner.protocol import load_protocol  # noqa: E402
 from runner.study import StudySettings, expand_designs, make_task, run_session_task  # noqa: E402
 from runner.workpool import ClusterPool, LocalPool  # noqa: E402
 
-PROTOCOL = """
-title = "benchmark: three offsets, two lags"
-[design]
-adapter_offsets_deg = [-30.0, 15.0, 45.0]
-lags = [0, 1]
-trials_per_track = 30
-practice_trials = 0
-"""
+PROTOCOL = ROOT / "protocols" / "offset_by_lag.toml"
 
 
 def timed(pool, fn, tasks: dict) -> tuple[float, float]:
@@ -74,11 +68,11 @@ def start_cluster(folder: Path) -> tuple[str, list[subprocess.Popen]]:
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--tasks", type=int, default=8)
-    ap.add_argument("--boot", type=int, default=100)
+    ap.add_argument("--tasks", type=int, default=24)
+    ap.add_argument("--boot", type=int, default=200)
     ap.add_argument("--trivial", type=int, default=400)
     args = ap.parse_args()
-    [design] = expand_designs(parse_protocol(PROTOCOL), ObserverModel())
+    [design] = expand_designs(load_protocol(PROTOCOL), ObserverModel())
     settings = StudySettings(runs=args.tasks, n_boot=args.boot)
     real = {str(r): make_task(design, r, settings) for r in range(args.tasks)}
     trivial = {str(i): float(i) for i in range(args.trivial)}
@@ -86,7 +80,7 @@ def main() -> None:
           f"{os.getloadavg()[0]:.1f} at start")
 
     one, _ = timed(LocalPool(1), run_session_task, real)
-    two, _ = timed(LocalPool(2), run_session_task, real)
+    two, two_after_first = timed(LocalPool(2), run_session_task, real)
     local_start, local_rest = timed(LocalPool(2), math.sqrt, trivial)
 
     with tempfile.TemporaryDirectory() as tmp:
@@ -116,6 +110,7 @@ def main() -> None:
           f"{1000 * local_per:.2f} ms | 1.00 |")
     print(f"| trivial tasks, Dask | 2 workers | {args.trivial} | {dask_start:.2f} | "
           f"{1000 * dask_per:.2f} ms | {dask_per / local_per:.1f}× local |")
+    print(f"# 2 local processes: {two - two_after_first:.1f} s to the first result (start-up + one task)")
     print("# per task of trivial tasks: time from the first result to the last / (tasks - 1), i.e. the hand-out "
           "cost without start-up; wall s includes starting the local processes (the Dask workers already run)")
     print(f"# load average {os.getloadavg()[0]:.1f} at the end")

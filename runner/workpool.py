@@ -27,6 +27,7 @@ from __future__ import annotations
 import fcntl
 import importlib.metadata
 import json
+import logging
 import multiprocessing
 import os
 import signal
@@ -145,6 +146,10 @@ class ClusterPool:
         except ImportError:
             raise InputError("argument", "--scheduler", "running on a cluster needs dask and distributed: "
                              + CLUSTER_EXTRA) from None
+        # the one-line errors below say what went wrong; Dask's own log lines would only repeat it
+        for name in list(logging.root.manager.loggerDict):
+            if name == "distributed" or name.startswith("distributed."):
+                logging.getLogger(name).setLevel(logging.CRITICAL)
         try:
             self.client = Client(address, timeout=f"{CONNECT_TIMEOUT_S}s", set_as_default=False)
         except (OSError, TimeoutError, ValueError) as exc:
@@ -178,6 +183,8 @@ class ClusterPool:
         is rerun under the same identity; ``KilledWorker`` (a task that took
         down several workers) becomes :class:`WorkerLost`.
         """
+        from concurrent.futures import CancelledError
+
         from distributed import as_completed
         from distributed.scheduler import KilledWorker
 
@@ -189,10 +196,13 @@ class ClusterPool:
                     result = future.result()
                 except KilledWorker as exc:
                     raise WorkerLost(f"Dask workers died running a task ({exc})") from None
+                except (CancelledError, OSError):
+                    raise WorkerLost(f"lost the connection to the Dask scheduler at {self.address}") from None
                 yield futures[future], result
                 future.release()
         finally:
-            self.client.cancel([f for f in futures if not f.done()])
+            if self.client.status == "running":
+                self.client.cancel([f for f in futures if not f.done()])
 
     def close(self) -> None:
         """Disconnect from the scheduler (the cluster keeps running)."""
