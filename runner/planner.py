@@ -32,7 +32,6 @@ beyond them).
 from __future__ import annotations
 
 import math
-import sys
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
@@ -42,10 +41,10 @@ import pandas as pd
 from fitting.errors import InputError
 from fitting.figures import save
 from fitting.tables import write_csv
-from runner.observers import ObserverModel, load_model
-from runner.protocol import Protocol, parse_protocol, read_protocol_text
-from runner.study import (QUANTITIES, TRIALS_FIELD, UNITS, Design, StudyInterrupted, StudySettings, check_designs,
-                          coverage_se, design_columns, expand_designs, run_study)
+from runner.observers import ObserverModel
+from runner.protocol import Protocol
+from runner.study import (QUANTITIES, TRIALS_FIELD, UNITS, Design, StudySettings, check_designs, coverage_se,
+                          design_columns, expand_designs, run_study, study_command)
 
 STATISTICS = ["median_half_width", "mean_half_width", "sd_half_width", "q25_half_width", "q75_half_width",
               "coverage", "coverage_se", "runs_with_interval", "runs"]
@@ -440,25 +439,7 @@ def plan_command(protocol_path: str, model_path: str | None, out_dir: str, setti
     target_half_width : float or None
         Target 95 % half-width of the amplitude (deg).
 
-    Returns
-    -------
-    int
-        0, or 130 after Ctrl-C (finished tasks kept; rerunning continues).
-
-    Raises
-    ------
-    InputError
-        Bad protocol, model file, option or folder (the command line exits with 2).
+    Exit code and errors as :func:`runner.study.study_command` (0; 130 after Ctrl-C; InputError).
     """
-    text = read_protocol_text(protocol_path)
-    protocol = parse_protocol(text, source=str(protocol_path))
-    model = load_model(model_path)
-    try:
-        result = plan_design(protocol, model, settings, out_dir, vary, target_half_width=target_half_width)
-    except StudyInterrupted as stop:
-        print(stop.line, file=sys.stderr)
-        return 130
-    files = result.write(out_dir)
-    print("\n".join(result.summary_lines()))
-    print(f"wrote {', '.join(str(f) for f in files)}")
-    return 0
+    return study_command(protocol_path, model_path, out_dir, lambda protocol, model: plan_design(
+        protocol, model, settings, out_dir, vary, target_half_width=target_half_width))

@@ -20,7 +20,6 @@ against the true value.
 from __future__ import annotations
 
 import math
-import sys
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -29,10 +28,10 @@ import pandas as pd
 
 from fitting.figures import save
 from fitting.tables import write_csv
-from runner.observers import ObserverModel, load_model
-from runner.protocol import Protocol, parse_protocol, read_protocol_text
-from runner.study import (QUANTITIES, UNITS, StudyInterrupted, StudySettings, check_designs, coverage_se,
-                          design_columns, expand_designs, run_study)
+from runner.observers import ObserverModel
+from runner.protocol import Protocol
+from runner.study import (QUANTITIES, UNITS, StudySettings, check_designs, coverage_se, design_columns,
+                          expand_designs, run_study, study_command)
 
 STATISTICS = ["truth", "mean_estimate", "bias", "rmse", "median_ci_width", "coverage", "coverage_se",
               "runs_with_estimate", "runs_with_interval", "runs"]
@@ -212,25 +211,7 @@ def recover_command(protocol_path: str, model_path: str | None, out_dir: str, se
                     vary: list[str] | None = None) -> int:
     """The ``aftershift recover`` command: load, study, print, write; returns the exit code.
 
-    Returns
-    -------
-    int
-        0, or 130 after Ctrl-C (finished tasks kept; rerunning continues).
-
-    Raises
-    ------
-    InputError
-        Bad protocol, model file, option or folder (the command line exits with 2).
+    Exit code and errors as :func:`runner.study.study_command` (0; 130 after Ctrl-C; InputError).
     """
-    text = read_protocol_text(protocol_path)
-    protocol = parse_protocol(text, source=str(protocol_path))
-    model = load_model(model_path)
-    try:
-        result = recover(protocol, model, settings, out_dir, vary)
-    except StudyInterrupted as stop:
-        print(stop.line, file=sys.stderr)
-        return 130
-    files = result.write(out_dir)
-    print("\n".join(result.summary_lines()))
-    print(f"wrote {', '.join(str(f) for f in files)}")
-    return 0
+    return study_command(protocol_path, model_path, out_dir,
+                         lambda protocol, model: recover(protocol, model, settings, out_dir, vary))

@@ -33,6 +33,7 @@ import itertools
 import json
 import math
 import sys
+from collections.abc import Callable
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 
@@ -43,8 +44,8 @@ from fitting.errors import InputError
 from fitting.report import fit_trials
 from fitting.tables import prepare_trials
 from runner.launch import derive_seed, package_versions, simulate_rows
-from runner.observers import ObserverModel
-from runner.protocol import Protocol, protocol_from_dict
+from runner.observers import ObserverModel, load_model
+from runner.protocol import Protocol, parse_protocol, protocol_from_dict, read_protocol_text
 from runner.workpool import TaskStore, WorkerLost, check_count, interrupted_line, open_pool, run_tasks
 
 if sys.version_info >= (3, 11):
@@ -428,3 +429,33 @@ def design_columns(designs: list[Design]) -> pd.DataFrame:
 def coverage_se(coverage: float, n: int) -> float:
     """Monte Carlo standard error of a coverage share, √(p(1 − p)/n) (binomial; common practice, no source)."""
     return math.sqrt(coverage * (1 - coverage) / n) if n > 0 and math.isfinite(coverage) else float("nan")
+
+
+def study_command(protocol_path: str, model_path: str | None, out_dir: str,
+                  study: Callable[[Protocol, ObserverModel], object]) -> int:
+    """Load the protocol and observer model, run ``study(protocol, model)``, print and write its result.
+
+    The result has ``summary_lines()`` and ``write(out_dir)`` (``PlanResult``, ``RecoveryResult``).
+
+    Returns
+    -------
+    int
+        0, or 130 after Ctrl-C (finished tasks kept; rerunning continues).
+
+    Raises
+    ------
+    InputError
+        Bad protocol, model file, option or folder (the command line exits with 2).
+    """
+    protocol = parse_protocol(read_protocol_text(protocol_path), source=str(protocol_path))
+    model = load_model(model_path)
+    try:
+        result = study(protocol, model)
+    except StudyInterrupted as stop:
+        print(stop.line, file=sys.stderr)
+        return 130
+    files = result.write(out_dir)
+    print("\n".join(result.summary_lines()))
+    print(f"wrote {', '.join(str(f) for f in files)}")
+    return 0
+
