@@ -12,6 +12,10 @@
    used). Overhead per task = time from the first result to the last / (tasks − 1):
    the hand-out cost without start-up.
 3. The real tasks of (1) on the Dask cluster, for the end-to-end comparison.
+4. Control: a loop in C (``sum`` over a range, no Python work, no imports)
+   on 1 and 2 local processes: the speed-up the machine itself allows at
+   that moment. On a shared machine (other users' processes, the kernel's
+   per-session CPU sharing) it can be far below 2×, and no pool can beat it.
 
 The machine is shared: the load average is printed beside the numbers.
 
@@ -79,7 +83,12 @@ def main() -> None:
     print(f"# {os.cpu_count()} CPUs, {len(os.sched_getaffinity(0))} usable; load average "
           f"{os.getloadavg()[0]:.1f} at start")
 
+    loops = {str(i): range(30_000_000) for i in range(2 * args.tasks // 3)}
+    loop_one, _ = timed(LocalPool(1), sum, loops)
+    loop_two, _ = timed(LocalPool(2), sum, loops)
+    cpu0, wall0 = time.process_time(), time.perf_counter()
     one, _ = timed(LocalPool(1), run_session_task, real)
+    share = (time.process_time() - cpu0) / (time.perf_counter() - wall0)
     two, two_after_first = timed(LocalPool(2), run_session_task, real)
     local_start, local_rest = timed(LocalPool(2), math.sqrt, trivial)
 
@@ -101,6 +110,10 @@ def main() -> None:
 
     print("| what | workers | tasks | wall s | per task | ratio |")
     print("|---|---|---|---|---|---|")
+    print(f"| control: a C loop (sum of a range), local | 1 (in process) | {len(loops)} | {loop_one:.1f} | "
+          f"{loop_one / len(loops):.2f} s | 1.00 |")
+    print(f"| control: a C loop (sum of a range), local | 2 processes | {len(loops)} | {loop_two:.1f} | "
+          f"{loop_two / len(loops):.2f} s | speed-up {loop_one / loop_two:.2f}× |")
     print(f"| real study tasks, local | 1 (in process) | {args.tasks} | {one:.1f} | {one / args.tasks:.2f} s | 1.00 |")
     print(f"| real study tasks, local | 2 processes | {args.tasks} | {two:.1f} | {two / args.tasks:.2f} s | "
           f"speed-up {one / two:.2f}× |")
@@ -110,7 +123,10 @@ def main() -> None:
           f"{1000 * local_per:.2f} ms | 1.00 |")
     print(f"| trivial tasks, Dask | 2 workers | {args.trivial} | {dask_start:.2f} | "
           f"{1000 * dask_per:.2f} ms | {dask_per / local_per:.1f}× local |")
-    print(f"# 2 local processes: {two - two_after_first:.1f} s to the first result (start-up + one task)")
+    print(f"# 2 local processes: {two - two_after_first:.1f} s to the first result (start-up + one task); "
+          f"the in-process run got {share:.2f} CPU s per wall s")
+    print("# the control rows show how much of a second core this shared machine gives right now: the study "
+          "tasks cannot speed up more than the C loop does")
     print("# per task of trivial tasks: time from the first result to the last / (tasks - 1), i.e. the hand-out "
           "cost without start-up; wall s includes starting the local processes (the Dask workers already run)")
     print(f"# load average {os.getloadavg()[0]:.1f} at the end")

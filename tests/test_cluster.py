@@ -23,6 +23,7 @@ from runner.launch import simulate
 from runner.observers import ObserverModel
 from runner.protocol import parse_protocol
 
+pytestmark = pytest.mark.slow
 pytest.importorskip("distributed", reason="the cluster extra (dask, distributed) is not installed: "
                                           "pip install -e '.[cluster]'")
 

@@ -88,6 +88,7 @@ def test_same_numbers_on_one_or_two_local_workers_and_reused_on_rerun(tmp_path):
     pd.testing.assert_frame_equal(kept.drop(columns="design"), one.runs.drop(columns="design"))
 
 
+@pytest.mark.slow
 def test_ctrl_c_keeps_finished_tasks_and_a_rerun_continues(tmp_path, capsys):
     path = _write(tmp_path, SMALL)
     out = tmp_path / "study"
@@ -152,6 +153,7 @@ def test_vary_errors_name_the_option_and_field():
     assert all(d.model.spread_between_observers == 0 for d in grid)
 
 
+@pytest.mark.slow
 def test_recover_baseline_pse_error_matches_the_fisher_information(tmp_path):
     protocol = parse_protocol(BASELINE)
     model = ObserverModel(pse_deg=0.5, spread_deg=3.0, lapse=0.0)
