@@ -53,18 +53,23 @@ STATISTICS = ["median_half_width", "mean_half_width", "sd_half_width", "q25_half
 # ---------------------------------------------------------------- designs
 
 
-def scaled_trials(protocol: Protocol, factor: float) -> int:
-    """``design.trials_per_track`` times ``factor``, kept valid.
+def trials_step(protocol: Protocol) -> int:
+    """The step of valid ``design.trials_per_track`` values (the rules the protocol schema enforces).
 
-    Rounded to the nearest whole number (at least 1); for constant stimuli
-    to the nearest multiple of the number of levels (at least one multiple),
-    the rule the protocol schema enforces.
+    Constant stimuli: a multiple of the number of levels; a stream: tracks ×
+    trials a multiple of the stream's directions; both rules together for both.
     """
-    n = protocol.design.trials_per_track * factor
-    if protocol.procedure.method == "constant":
-        levels = len(protocol.procedure.levels_deg)
-        return levels * max(1, int(round(n / levels)))
-    return max(1, int(round(n)))
+    step = len(protocol.procedure.levels_deg) if protocol.procedure.method == "constant" else 1
+    if protocol.stream is not None:
+        directions = protocol.stream.n_directions
+        step = math.lcm(step, directions // math.gcd(directions, protocol.design.tracks_per_condition))
+    return step
+
+
+def scaled_trials(protocol: Protocol, factor: float) -> int:
+    """``design.trials_per_track`` times ``factor``, rounded to the nearest valid value (at least one step)."""
+    step = trials_step(protocol)
+    return step * max(1, int(round(protocol.design.trials_per_track * factor / step)))
 
 
 def trials_needed(trials, half_widths, target: float) -> float:
@@ -367,7 +372,7 @@ def plan_design(
     notes = []
     if not any(d.settings.get(TRIALS_FIELD) is not None for d in designs):
         designs, notes = with_trial_factors(designs, trial_factors)
-    notes += check_designs(designs, "protocol")
+    notes += check_designs(designs)
     per_run = run_study(designs, settings, out_dir, "planning")
     columns = design_columns(designs)
     columns["family"] = [Design(d.protocol, d.model, {k: v for k, v in d.settings.items() if k != TRIALS_FIELD}).label
@@ -400,8 +405,8 @@ def _summarise(per_run: pd.DataFrame, columns: pd.DataFrame) -> pd.DataFrame:
 
 
 def _trials_per_track_for(protocol: Protocol, per_track: float) -> int:
-    """The smallest valid ``trials_per_track`` >= ``per_track`` (constant stimuli: a multiple of the levels)."""
-    step = len(protocol.procedure.levels_deg) if protocol.procedure.method == "constant" else 1
+    """The smallest valid ``trials_per_track`` >= ``per_track``."""
+    step = trials_step(protocol)
     return step * max(1, math.ceil(per_track / step - 1e-9))
 
 

@@ -180,7 +180,7 @@ def recover(protocol: Protocol, model: ObserverModel, settings: StudySettings, o
     """
     settings.check()
     designs = expand_designs(protocol, model, vary)
-    notes = check_designs(designs, "protocol")
+    notes = check_designs(designs)
     per_run = run_study(designs, settings, out_dir, "recovery")
     columns = design_columns(designs)
     return RecoveryResult(columns, summarise(per_run, columns), columns.merge(per_run, on="design"),

@@ -188,20 +188,10 @@ def expand_designs(protocol: Protocol, model: ObserverModel, vary: list[str] | N
     return designs
 
 
-def check_designs(designs: list[Design], source: str) -> list[str]:
-    """Refuse designs a study cannot fit; return notes about designs it can only partly plan.
-
-    Raises
-    ------
-    InputError
-        A continuous-stream protocol (studies fit adapt-test blocks only).
-    """
+def check_designs(designs: list[Design]) -> list[str]:
+    """Notes about designs a study can only partly plan."""
     notes = []
-    for d in designs:
-        if d.protocol.stream is not None:
-            raise InputError(source, "stream", "studies (plan, recover) simulate adapt-test blocks; "
-                             "continuous-stream protocols are not supported yet")
-    if any(len(d.protocol.design.adapter_offsets_deg) < 3 for d in designs):
+    if any(d.protocol.stream is None and len(d.protocol.design.adapter_offsets_deg) < 3 for d in designs):
         notes.append("a design with fewer than 3 adapter offsets has no DoG tuning curve (amplitude, peak "
                      "offset, decay); only its baseline PSE is studied")
     if any(d.protocol.procedure.max_reversals for d in designs):
@@ -240,34 +230,61 @@ def run_session_task(task: dict) -> list[dict]:
     """Simulate one session in memory, fit it, and return estimate and interval per quantity.
 
     ``task`` holds ``protocol`` (a JSON dump), ``model`` (a dict), ``seed``
-    (this replicate's seed), ``n_boot`` and ``lapse``. Returns JSON-ready
-    rows ``quantity, lag, estimate, ci_low, ci_high`` (None where the fit
-    gave no value). Depends only on ``task``.
+    (this replicate's seed), ``n_boot`` and ``lapse``. Adapt-test blocks are
+    fitted as by ``fit``; continuous streams by the n-back regression
+    (:mod:`fitting.nback`, lag = n − 1). Returns JSON-ready rows
+    ``quantity, lag, estimate, ci_low, ci_high`` (None where the fit gave no
+    value). Depends only on ``task``.
     """
     protocol = protocol_from_dict(task["protocol"], "study task")
-    model = ObserverModel(**task["model"])
-    rows = simulate_rows(protocol, model, task["seed"])
-    trials = prepare_trials(pd.DataFrame(rows), source="simulated session")
-    report = fit_trials(trials, n_boot=task["n_boot"], seed=task["seed"], lapse=task["lapse"], progress=False)
+    rows = simulate_rows(protocol, ObserverModel(**task["model"]), task["seed"])
+    if protocol.stream is not None:
+        tuning, decay, baseline, lags = _fit_stream(rows, task)
+    else:
+        tuning, decay, baseline = _fit_block(rows, task)
+        lags = sorted(protocol.design.lags) if len(protocol.design.adapter_offsets_deg) >= 3 else []
     out = []
-    tuning = report.tuning.set_index("lag")
-    tuned = len(protocol.design.adapter_offsets_deg) >= 3
-    for lag in sorted(protocol.design.lags) if tuned else []:
+    tuning = tuning.set_index("lag")
+    for lag in lags:
         row = tuning.loc[lag] if lag in tuning.index else None
         for quantity, est, lo, hi in (("amplitude", "amplitude_deg", "amplitude_ci_low", "amplitude_ci_high"),
                                       ("peak_offset", "peak_offset_deg", "peak_offset_ci_low",
                                        "peak_offset_ci_high")):
             values = (row[est], row[lo], row[hi]) if row is not None else (np.nan,) * 3
             out.append({"quantity": quantity, "lag": int(lag), **_triple(values)})
-    if tuned and len(protocol.design.lags) > 1:
-        d = report.decay
-        values = (d["decay_periods"].iloc[0], d["ci_low"].iloc[0], d["ci_high"].iloc[0]) if len(d) else (np.nan,) * 3
+    if len(lags) > 1:
+        values = (decay["decay_periods"].iloc[0], decay["ci_low"].iloc[0], decay["ci_high"].iloc[0]) if len(decay) \
+            else (np.nan,) * 3
         out.append({"quantity": "decay", "lag": None, **_triple(values)})
-    base = report.pse[report.pse["condition"] == "baseline"]
-    values = (base["pse_deg"].iloc[0], base["pse_ci_low"].iloc[0], base["pse_ci_high"].iloc[0]) if len(base) \
-        else (np.nan,) * 3
-    out.append({"quantity": "baseline_pse", "lag": None, **_triple(values)})
+    out.append({"quantity": "baseline_pse", "lag": None, **_triple(baseline)})
     return out
+
+
+def _fit_block(rows: list[dict], task: dict):
+    """``tuning``, ``decay`` and the baseline PSE (estimate, low, high) of an adapt-test session."""
+    trials = prepare_trials(pd.DataFrame(rows), source="simulated session")
+    report = fit_trials(trials, n_boot=task["n_boot"], seed=task["seed"], lapse=task["lapse"], progress=False)
+    base = report.pse[report.pse["condition"] == "baseline"]
+    baseline = (base["pse_deg"].iloc[0], base["pse_ci_low"].iloc[0], base["pse_ci_high"].iloc[0]) if len(base) \
+        else (np.nan,) * 3
+    return report.tuning, report.decay, baseline
+
+
+def _fit_stream(rows: list[dict], task: dict):
+    """``tuning``, ``decay``, the PSE μ₀ (estimate, low, high) and the lags of a stream session."""
+    from fitting.nback import StreamTrials, bootstrap_nback, fit_nback, result_tables
+
+    used = [r for r in rows if not r["practice"] and r["response_cw"] is not None and r["timing_ok"]]
+    if not used:
+        raise InputError("simulated session", "stream", "no answered stream test to fit")
+    trials = StreamTrials("sim01", np.array([r["test_offset_deg"] for r in used], dtype=float),
+                          np.array([r["response_cw"] for r in used], dtype=float),
+                          np.array([r["preceding_offsets_deg"] for r in used], dtype=float),
+                          float(used[0]["period_s"]))
+    boot = bootstrap_nback(fit_nback(trials, task["lapse"]), task["n_boot"], np.random.default_rng(task["seed"]))
+    tables = result_tables(boot)
+    low, high = boot.interval(boot.fit.pse_deg, boot.per_n[:, 0])
+    return tables["tuning"], tables["decay"], (boot.fit.pse_deg, low[0], high[0]), list(range(trials.n_back))
 
 
 def _triple(values) -> dict:

@@ -10,6 +10,7 @@ import subprocess
 import sys
 import time
 
+import numpy as np
 import pandas as pd
 import pytest
 
@@ -195,3 +196,25 @@ def test_study_options_are_checked(tmp_path, capsys):
         err = capsys.readouterr().err
         assert option in err and err.count("\n") == 1, err
     assert not (tmp_path / "r").exists()
+
+
+def test_stream_protocols_are_studied_with_the_nback_fit(tmp_path):
+    from runner.planner import scaled_trials
+    from runner.protocol import load_protocol, protocol_from_dict
+
+    protocol = load_protocol(ROOT / "protocols" / "stream_nback.toml")
+    for factor in (0.1, 0.33, 0.5, 2):  # every scaled trial count passes the schema's balance rule
+        n = scaled_trials(protocol, factor)
+        raw = protocol.model_dump(mode="json", exclude_none=True)
+        raw["design"]["trials_per_track"] = n
+        protocol_from_dict(raw, f"factor {factor}")
+    settings = StudySettings(runs=2, seed=2, n_boot=20, jobs=1, progress=False)
+    model = ObserverModel()
+    result = recover(protocol, model, settings, tmp_path / "r", ["design.trials_per_track=[96]"])
+    k = protocol.stream.nback_periods
+    amp = result.table[result.table["quantity"] == "amplitude"]
+    assert list(amp["lag"]) == list(range(k))
+    # DESIGN.md's stream observer: the n-th preceding period shifts by A·g(Δ)·exp(−(n − 1)/τ), lag = n − 1
+    assert np.allclose(amp["truth"], model.amplitude_deg * np.exp(-np.arange(k) / model.decay_periods))
+    assert set(result.table["quantity"]) == {"amplitude", "peak_offset", "decay", "baseline_pse"}
+    assert result.table["runs_with_estimate"].min() == 2
