@@ -159,6 +159,8 @@ def cmd_fit(args) -> int:
             raise InputError("argument", "--interval", f"expected one of {', '.join(allowed)} for these logs")
         common["interval"] = args.interval
     if streams:
+        if args.scheduler:
+            raise InputError("argument", "--scheduler", "stream logs are fitted on this machine; leave it out")
         report = fit_stream_logs(streams, args.out, **common)
     else:
         from runner.workpool import open_pool, task_mapper
