@@ -34,6 +34,7 @@ import signal
 import sys
 import tempfile
 from collections.abc import Callable, Iterator
+from contextlib import closing
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
 from pathlib import Path
@@ -120,9 +121,15 @@ def _stop(pool: ProcessPoolExecutor) -> None:
         process.join(timeout=5)
 
 
-def _worker_version() -> str:
-    """Runs on a Dask worker: the aftershift version it imports (proves it can import it)."""
-    return importlib.metadata.version("aftershift")
+def _worker_version() -> str | None:
+    """The installed aftershift version (None when run from an uninstalled checkout).
+
+    Also run on every Dask worker: that it runs at all proves the worker can import aftershift.
+    """
+    try:
+        return importlib.metadata.version("aftershift")
+    except importlib.metadata.PackageNotFoundError:
+        return None
 
 
 class ClusterPool:
@@ -166,8 +173,8 @@ class ClusterPool:
             self.close()
             raise InputError("argument", "--scheduler", f"the workers of {address} cannot import aftershift "
                              f"({type(exc).__name__}: {exc}); install it on every worker: {CLUSTER_EXTRA}") from None
-        mine = importlib.metadata.version("aftershift")
-        other = sorted({v for v in versions.values() if v != mine})
+        mine = _worker_version()
+        other = sorted({str(v) for v in versions.values() if v != mine})
         if other:
             self.close()
             raise InputError("argument", "--scheduler", f"workers run aftershift {', '.join(other)}, this "
@@ -361,8 +368,10 @@ def run_tasks(fn: Callable, tasks: dict, pool, store: TaskStore | None = None, l
             if found is not None:
                 results[key] = found
     todo = {k: t for k, t in tasks.items() if k not in results}
-    with progress_bar(len(tasks), len(results), label, show) as bar:
-        for key, result in pool.map_unordered(fn, todo):
+    # closing(): on Ctrl-C the pool stops at once, not when the interrupted frame is collected
+    with progress_bar(len(tasks), len(results), label, show) as bar, \
+            closing(pool.map_unordered(fn, todo)) as finished:
+        for key, result in finished:
             if store is not None:
                 store.save(key, result, about(key) if about else None)
             results[key] = result
