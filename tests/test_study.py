@@ -9,6 +9,7 @@ import signal
 import subprocess
 import sys
 import time
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -111,6 +112,41 @@ def test_ctrl_c_keeps_finished_tasks_and_a_rerun_continues(tmp_path, capsys):
     assert len(after) == 6 and all(after[k] == v for k, v in kept.items())  # finished tasks not redone
     assert main([*args, "--out", str(tmp_path / "fresh")]) == 0
     assert (out / "plan_runs.csv").read_bytes() == (tmp_path / "fresh" / "plan_runs.csv").read_bytes()
+
+
+def _children(pid: int) -> list[int]:
+    """Processes whose parent is ``pid`` (from /proc)."""
+    found = []
+    for stat in Path("/proc").glob("[0-9]*/stat"):
+        try:
+            fields = stat.read_text().rsplit(")", 1)[1].split()
+        except OSError:
+            continue
+        if int(fields[1]) == pid:
+            found.append(int(stat.parent.name))
+    return found
+
+
+@pytest.mark.slow
+def test_a_local_worker_killed_mid_study_is_one_line_and_a_rerun_gives_the_same_numbers(tmp_path):
+    path = _write(tmp_path, SMALL)
+    out = tmp_path / "study"
+    args = ["recover", str(path), "--runs", "8", "--bootstrap", "20", "--jobs", "2"]
+    proc = subprocess.Popen([sys.executable, "-m", "runner.cli", *args, "--out", str(out)], cwd=ROOT,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline and not list(out.glob("tasks/*.json")):
+        time.sleep(0.02)
+    # the command's children: the forkserver; its children: the worker processes
+    workers = [w for server in _children(proc.pid) for w in _children(server)]
+    assert workers, "no local worker processes found"
+    os.kill(workers[0], signal.SIGKILL)
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode == 2 and err.count("\n") == 1 and "worker process died" in err, err
+    assert 1 <= len(list(out.glob("tasks/*.json"))) < 8
+    assert main([*args, "--out", str(out)]) == 0
+    assert main([*args, "--out", str(tmp_path / "fresh")]) == 0
+    assert (out / "recovery_runs.csv").read_bytes() == (tmp_path / "fresh" / "recovery_runs.csv").read_bytes()
 
 
 def test_a_second_process_on_the_same_study_folder_is_refused(tmp_path):
