@@ -399,7 +399,8 @@ def _summarise(per_run: pd.DataFrame, columns: pd.DataFrame) -> pd.DataFrame:
     table["coverage_se"] = [coverage_se(c, n) for c, n in zip(table["coverage"], table["runs_with_interval"])]
     table = columns.merge(table, on="design")
     table["_q"] = pd.Categorical(table["quantity"], QUANTITIES, ordered=True)
-    table = table.sort_values(["family", "_q", "lag", "trials_per_condition"], kind="stable")
+    table["_f"] = pd.Categorical(table["family"], list(dict.fromkeys(columns["family"])), ordered=True)
+    table = table.sort_values(["_f", "_q", "lag", "trials_per_condition"], kind="stable")
     keys = [c for c in columns.columns] + ["quantity", "lag"]
     return table[keys + STATISTICS].reset_index(drop=True)
 
