@@ -43,8 +43,8 @@ from fitting.figures import save
 from fitting.tables import write_csv
 from runner.observers import ObserverModel
 from runner.protocol import Protocol
-from runner.study import (QUANTITIES, TRIALS_FIELD, UNITS, Design, StudySettings, check_designs, coverage_se,
-                          design_columns, expand_designs, run_study, study_command)
+from runner.study import (QUANTITIES, TRIALS_FIELD, UNITS, Design, StudySettings, check_designs, console_table,
+                          coverage_se, design_columns, expand_designs, run_study, study_command)
 
 STATISTICS = ["median_half_width", "mean_half_width", "sd_half_width", "q25_half_width", "q75_half_width",
               "coverage", "coverage_se", "runs_with_interval", "runs"]
@@ -213,14 +213,7 @@ class PlanResult:
         n_runs = int(self.runs["replicate"].nunique()) if len(self.runs) else 0
         lines = [f"plan for {self.protocol_title!r}: {len(self.designs)} designs, {n_runs} simulated sessions "
                  "each; 95 % interval half-widths over sessions, and coverage of the true value"]
-        shown = self.table.copy()
-        shown["lag"] = shown["lag"].map(lambda v: "" if pd.isna(v) else str(int(v)))
-        shown["unit"] = shown["quantity"].map(UNITS)
-        for c in ("median_half_width", "mean_half_width", "sd_half_width"):
-            shown[c] = shown[c].map(lambda v: f"{v:.3g}")
-        shown["coverage"] = [f"{100 * c:.0f} ± {100 * se:.0f} %" if math.isfinite(c) else "–"
-                             for c, se in zip(shown["coverage"], shown["coverage_se"])]
-        shown["intervals"] = shown["runs_with_interval"].astype(str) + "/" + shown["runs"].astype(str)
+        shown = console_table(self.table, ("median_half_width", "mean_half_width", "sd_half_width"), 0)
         shown = shown.rename(columns={"trials_per_condition": "trials/cond", "median_half_width": "median",
                                       "mean_half_width": "mean", "sd_half_width": "sd"})
         cols = ["quantity", "lag", "trials/cond", "median", "mean", "sd", "unit", "coverage", "intervals"]

@@ -30,8 +30,8 @@ from fitting.figures import save
 from fitting.tables import write_csv
 from runner.observers import ObserverModel
 from runner.protocol import Protocol
-from runner.study import (QUANTITIES, UNITS, StudySettings, check_designs, coverage_se, design_columns,
-                          expand_designs, run_study, study_command)
+from runner.study import (QUANTITIES, UNITS, StudySettings, check_designs, console_table, coverage_se,
+                          design_columns, expand_designs, run_study, study_command)
 
 STATISTICS = ["truth", "mean_estimate", "bias", "rmse", "median_ci_width", "coverage", "coverage_se",
               "runs_with_estimate", "runs_with_interval", "runs"]
@@ -68,14 +68,7 @@ class RecoveryResult:
         n_runs = int(self.runs["replicate"].nunique()) if len(self.runs) else 0
         lines = [f"recovery for {self.protocol_title!r}: {n_runs} simulated sessions per design, each fitted; "
                  "95 % intervals"]
-        shown = self.table.copy()
-        shown["lag"] = shown["lag"].map(lambda v: "" if pd.isna(v) else str(int(v)))
-        shown["unit"] = shown["quantity"].map(UNITS)
-        for c in ("truth", "mean_estimate", "bias", "rmse", "median_ci_width"):
-            shown[c] = shown[c].map(lambda v: f"{v:.3g}")
-        shown["coverage"] = [f"{100 * c:.1f} ± {100 * se:.1f} %" if math.isfinite(c) else "–"
-                             for c, se in zip(shown["coverage"], shown["coverage_se"])]
-        shown["intervals"] = shown["runs_with_interval"].astype(str) + "/" + shown["runs"].astype(str)
+        shown = console_table(self.table, ("truth", "mean_estimate", "bias", "rmse", "median_ci_width"), 1)
         shown = shown.rename(columns={"mean_estimate": "mean", "median_ci_width": "CI width"})
         cols = ["quantity", "lag", "unit", "truth", "mean", "bias", "rmse", "CI width", "coverage", "intervals"]
         for label, part in shown.groupby("label", sort=False):

@@ -443,6 +443,21 @@ def design_columns(designs: list[Design]) -> pd.DataFrame:
     return pd.DataFrame(rows)
 
 
+def console_table(table: pd.DataFrame, numbers: tuple[str, ...], coverage_digits: int) -> pd.DataFrame:
+    """A summary table as text for the console: lag ('' for none), unit, ``numbers`` to 3 digits,
+    coverage as "p ± se %", and ``intervals`` = runs with an interval / runs."""
+    shown = table.copy()
+    shown["lag"] = shown["lag"].map(lambda v: "" if pd.isna(v) else str(int(v)))
+    shown["unit"] = shown["quantity"].map(UNITS)
+    for c in numbers:
+        shown[c] = shown[c].map(lambda v: f"{v:.3g}")
+    d = coverage_digits
+    shown["coverage"] = [f"{100 * c:.{d}f} ± {100 * se:.{d}f} %" if math.isfinite(c) else "–"
+                         for c, se in zip(shown["coverage"], shown["coverage_se"])]
+    shown["intervals"] = shown["runs_with_interval"].astype(str) + "/" + shown["runs"].astype(str)
+    return shown
+
+
 def coverage_se(coverage: float, n: int) -> float:
     """Monte Carlo standard error of a coverage share, √(p(1 − p)/n) (binomial; common practice, no source)."""
     return math.sqrt(coverage * (1 - coverage) / n) if n > 0 and math.isfinite(coverage) else float("nan")
