@@ -28,7 +28,7 @@ fi
 
 PY=${PYTHON:-python3}
 echo "setup: installing Python packages"
-"$PY" -m pip install -q -e ".[display,dev]"
+"$PY" -m pip install -q -e ".[display,dev,cluster]"
 
 case "${1:-}" in
   demo) shift; exec "$PY" -m runner.cli demo "$@" ;;

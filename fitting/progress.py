@@ -28,6 +28,10 @@ from typing import Callable, Iterator, TextIO
 
 from tqdm import tqdm
 
+# Bars are drawn by one process only: a thread lock, not tqdm's default process-shared
+# semaphore, which outlives a killed worker pool as a "leaked semaphore" warning.
+tqdm.set_lock(threading.RLock())
+
 #: Seconds between redraws of a :func:`phase` line.
 PHASE_REFRESH_S = 0.5
 

@@ -36,7 +36,7 @@ from __future__ import annotations
 import math
 import numbers
 import zlib
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -221,10 +221,16 @@ def _observer_rng(seed: int, observer: str) -> np.random.Generator:
 # entry points
 # --------------------------------------------------------------------------
 
+def _analyse_task(task) -> ObserverAnalysis:
+    """One observer's analysis from ``(observer, trials, options, seed)``; runs in any process."""
+    observer, trials, opts, seed = task
+    return analyse_observer(observer, trials, opts, _observer_rng(seed, observer))
+
+
 def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="free",
                spread: str = "shared", progress=True, *, sigmoid: str = "gaussian",
                interval: str = "bca", level: float = 0.95,
-               lapse_max: float = DEFAULT_LAPSE_MAX) -> FitReport:
+               lapse_max: float = DEFAULT_LAPSE_MAX, map_tasks=None) -> FitReport:
     """Fit checked trials (from :func:`read_logs`) without writing anything.
 
     Same options as :func:`fit_logs`; returns the :class:`FitReport` with
@@ -232,10 +238,14 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
     """
     opts = _check_options(n_boot, seed, lapse, spread, sigmoid, interval, level, lapse_max, progress)
     check_replicate_memory(opts.n_boot, int(trials.groupby(["observer", "condition"]).ngroups))
-    analyses: list[ObserverAnalysis] = []
-    for observer, obs_trials in trials.groupby("observer", sort=True):
-        analyses.append(analyse_observer(str(observer), obs_trials.reset_index(drop=True), opts,
-                                         _observer_rng(seed, str(observer))))
+    groups = {str(observer): obs_trials.reset_index(drop=True)
+              for observer, obs_trials in trials.groupby("observer", sort=True)}
+    if map_tasks is not None and len(groups) > 1:
+        quiet = replace(opts, progress=False)
+        done = map_tasks(_analyse_task, {obs: (obs, t, quiet, int(seed)) for obs, t in groups.items()})
+        analyses = [done[obs] for obs in groups]
+    else:
+        analyses = [_analyse_task((obs, t, opts, int(seed))) for obs, t in groups.items()]
     notes = {a.observer: a.notes for a in analyses}
     tables = {k: pd.concat([getattr(a, k) for a in analyses], ignore_index=True) if analyses else None
               for k in ("pse", "aftereffect", "tuning", "decay", "details", "model_test", "decay_detail")}
@@ -285,7 +295,7 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
              spread: str = "shared", include_bad_timing: bool = False, progress=True,
              figures: bool = True, *, include_practice: bool = False, sigmoid: str = "gaussian",
              interval: str = "bca", level: float = 0.95,
-             lapse_max: float = DEFAULT_LAPSE_MAX, plan=None) -> FitReport:
+             lapse_max: float = DEFAULT_LAPSE_MAX, plan=None, map_tasks=None) -> FitReport:
     """Read trial logs, fit every observer (and the group), write tables, figures and ``report.html``.
 
     Parameters
@@ -325,6 +335,13 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
     plan : callable, optional
         ``protocol text -> lines`` of the protocol's plan, shown in the
         report (see :func:`fitting.provenance.collect`).
+    map_tasks : callable, optional
+        ``map_tasks(fn, tasks) -> results``: runs ``fn(task)`` for each value
+        of the dict ``tasks`` (in any process, in any order) and returns the
+        results under the same keys. Given, the observers are analysed through
+        it (the command line hands them to local worker processes or a Dask
+        cluster); each observer's replicates depend only on the seed and its
+        ID, so the tables are the same either way.
 
     Returns
     -------
@@ -340,7 +357,7 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
     _check_options(n_boot, seed, lapse, spread, sigmoid, interval, level, lapse_max, progress)
     trials = read_logs(paths, include_bad_timing, include_practice)
     report = fit_trials(trials, n_boot, seed, lapse, spread, progress, sigmoid=sigmoid,
-                        interval=interval, level=level, lapse_max=lapse_max)
+                        interval=interval, level=level, lapse_max=lapse_max, map_tasks=map_tasks)
     # all fitting is done; only now is anything written, staged and moved in as one set
     with output_set(out_dir, "fit") as staged:
         out = staged.folder

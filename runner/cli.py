@@ -236,10 +236,19 @@ def cmd_fit(args) -> int:
     from runner.overview import plan_from_text
 
     if streams:
+        if args.scheduler:
+            raise InputError("argument", "--scheduler", "stream logs are fitted on this machine; leave it out")
         report = fit_stream_logs(streams, args.out, plan=plan_from_text, **common)
     else:
-        report = fit_logs(trials, args.out, spread=args.spread, include_practice=args.include_practice,
-                          sigmoid=args.function, level=args.level, plan=plan_from_text, **common)
+        from runner.workpool import open_pool, task_mapper
+
+        pool = open_pool(args.scheduler, args.jobs)
+        try:
+            report = fit_logs(trials, args.out, spread=args.spread, include_practice=args.include_practice,
+                              sigmoid=args.function, level=args.level, plan=plan_from_text,
+                              map_tasks=task_mapper(pool, "fitting observers"), **common)
+        finally:
+            pool.close()
     print(report.summary())
     print(f"report: {Path(args.out) / 'report.html'}")
     return EXIT_OK
@@ -266,6 +275,13 @@ def cmd_demo(args) -> int:
     return EXIT_OK
 
 
+def _study_settings(args):
+    from runner.study import StudySettings
+
+    return StudySettings(runs=args.runs, seed=args.seed, n_boot=args.bootstrap, lapse=args.lapse, jobs=args.jobs,
+                         scheduler=args.scheduler)
+
+
 def cmd_plan(args) -> int:
     from fitting.outputs import check_out_dir
     from runner.planner import plan_command
@@ -275,7 +291,14 @@ def cmd_plan(args) -> int:
     _check_count(args.jobs, "--jobs", 1, 256, "worker processes")
     check_out_dir(args.out)
     _load(args.protocol)  # timing refusals exit 3 here as everywhere
-    return plan_command(args.protocol, args.model, args.runs, args.target_half_width, args.out, args.seed, args.jobs)
+    return plan_command(args.protocol, args.model, args.out, _study_settings(args), args.vary, args.target_half_width)
+
+
+def cmd_recover(args) -> int:
+    from runner.recovery import recover_command
+
+    _load(args.protocol)
+    return recover_command(args.protocol, args.model, args.out, _study_settings(args), args.vary)
 
 
 def cmd_display_test(args) -> int:
@@ -400,6 +423,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--include-bad-timing", action="store_true", help="keep trials with timing_ok = false")
     p.add_argument("--include-practice", action="store_true", help="keep practice trials")
     p.add_argument("--no-figures", action="store_true", help="tables only")
+    where = p.add_mutually_exclusive_group()
+    where.add_argument("--jobs", type=int, help="observers fitted at once in local worker processes "
+                                                "(default: every available core)")
+    where.add_argument("--scheduler", metavar="ADDRESS", help="fit the observers on a Dask cluster, e.g. "
+                                                              "tcp://HOST:8786 (needs the cluster extra)")
     p.set_defaults(func=cmd_fit)
 
     p = sub.add_parser("compare", help="agreement of measured after-effects with a predictions table")
@@ -413,15 +441,33 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", default="results_demo", help="output folder (default results_demo)")
     p.set_defaults(func=cmd_demo)
 
-    p = sub.add_parser("plan", help="expected 95%% CI half-widths of a design by simulation, and the trials a target needs")
-    protocol_arg(p)
-    p.add_argument("--model", help="observer model file (TOML, flat keys)")
-    p.add_argument("--runs", type=int, default=20, help="simulated sessions per design (default 20)")
+    def study_args(p, runs, boot, out):
+        protocol_arg(p)
+        p.add_argument("--model", help="observer model file (TOML, flat keys)")
+        p.add_argument("--vary", action="append", metavar="FIELD=[V1, V2, ...]",
+                       help="run a design for each value (TOML values) of a protocol field (e.g. "
+                            "procedure.method) or of the observer model (model.KEY); several --vary form a grid")
+        p.add_argument("--runs", type=int, default=runs, help=f"simulated sessions per design (default {runs})")
+        p.add_argument("--bootstrap", type=int, default=boot, help=f"bootstrap replicates per fit (default {boot})")
+        p.add_argument("--lapse", default="free", help="lapse of the fits: 'free' or a fixed value (default free)")
+        p.add_argument("--out", default=out, help=f"study folder; finished tasks are kept there and a rerun "
+                                                  f"continues (default {out})")
+        p.add_argument("--seed", type=int, default=0, help="seed (default 0)")
+        where = p.add_mutually_exclusive_group()
+        where.add_argument("--jobs", type=int, help="local worker processes (default: every available core)")
+        where.add_argument("--scheduler", metavar="ADDRESS",
+                           help="run the tasks on a Dask cluster, e.g. tcp://HOST:8786 (needs the cluster extra)")
+
+    p = sub.add_parser("plan", help="expected 95%% CI half-widths and coverage of designs by simulation, and the "
+                                    "trials a target needs")
+    study_args(p, runs=20, boot=200, out="plan")
     p.add_argument("--target-half-width", type=float, help="target 95%% CI half-width of the DoG amplitude, deg")
-    p.add_argument("--out", default="plan", help="output folder (default plan)")
-    p.add_argument("--seed", type=int, default=0, help="seed (default 0)")
-    p.add_argument("--jobs", type=int, default=2, help="worker processes (default 2)")
     p.set_defaults(func=cmd_plan)
+
+    p = sub.add_parser("recover", help="parameter recovery and interval coverage of your protocol and observer "
+                                       "model, by simulation")
+    study_args(p, runs=100, boot=500, out="recovery")
+    p.set_defaults(func=cmd_recover)
 
     p = sub.add_parser("display-test", help="measure refresh rate, frame jitter and dropped frames")
     protocol_arg(p, optional=True)

@@ -317,6 +317,24 @@ def simulate(
     return paths
 
 
+def simulate_rows(protocol: Protocol, model: ObserverModel, session_seed: int, observer: str = "sim01",
+                  session: str = "s1") -> list[dict]:
+    """One simulated session held in memory: the rows its trial log would hold.
+
+    The same loop, presenter and observer as :func:`simulate`, without files:
+    with ``session_seed = derive_seed(seed, i)`` and an observer model that
+    does not vary (``spread_between_observers = 0``) the rows are those of
+    observer ``i + 1`` of ``simulate(..., seed=seed)``.
+    """
+    loop, observer_kind = (StreamRun, StreamObserver) if protocol.stream is not None else (BlockRun, SimulatedObserver)
+    run = loop(protocol, session_seed, observer, session)
+    hz = protocol.display.refresh_hz
+    rows: list[dict] = []
+    run.run(HeadlessPresenter(hz), observer_kind(model, (session_seed, 5), hz), rows.append, [],
+            screen_texts(protocol, ""), None, "simulated session")
+    return rows
+
+
 def run_on_screen(
     protocol: Protocol,
     protocol_path: str,

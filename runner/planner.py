@@ -1,23 +1,22 @@
-"""Design planning: how narrow the intervals of a protocol will be, by simulation.
+"""Design planning: how narrow the intervals of a protocol will be, and whether they hold the truth.
 
-:func:`plan_design` answers "how certain will my results be, and how many
-trials do I need?" for a protocol as written. For each trial factor it
-scales ``design.trials_per_track``, runs ``runs`` sessions of one simulated
-observer through the real session loop (:func:`runner.launch.simulate`),
-fits each with the real fitter (:func:`fitting.fit_logs`) and records the
-95 % interval half-width of
+:func:`plan_design` answers "how certain will my results be, how many trials
+do I need, and which procedure gives more for them?" for a protocol as
+written and for variations of it. It runs a simulation study
+(:mod:`runner.study`): ``runs`` sessions of one simulated observer with known
+parameters per design, through the real session loop and the real fitter,
+handed out to local worker processes or a Dask cluster. Designs are every
+combination of ``--vary`` values (for example ``design.trials_per_track`` ×
+``procedure.method``); when the trials per track are not varied, the
+protocol's value is scaled by the trial factors (0.5, 1, 2 by default).
 
-* the DoG amplitude at each lag and the peak offset at each lag
-  (``tuning.csv``),
-* the decay in periods (``decay.csv``, with two or more lags),
-* the baseline PSE (``pse.csv``), a quantity with a closed-form check.
-
-The runs differ only by noise: the observer model is used with
-``spread_between_observers = 0`` and every run has its own seed. The mean
-and the median half-width per factor, and the trials per condition needed
-for a target half-width of the amplitude, form a :class:`PlanResult`, which
-writes a table and a figure. :func:`plan_command` is the ``aftershift plan``
-command.
+For each design it reports, for the DoG amplitude and peak offset at each
+lag, the decay and the baseline PSE, the 95 % interval half-width over runs
+(median, mean, SD, quartiles) and the coverage: the share of intervals that
+hold the simulated observer's true value, with its Monte Carlo standard
+error. With a target half-width of the amplitude it adds the trials per
+condition needed for it, for each design family (the designs that differ
+only in trials per track) and lag.
 
 Why the median as well as the mean: with few trials some sessions give an
 interval that runs to a parameter bound of the curve fit (a peak offset of
@@ -33,53 +32,44 @@ beyond them).
 from __future__ import annotations
 
 import math
-import signal
-import tempfile
-from concurrent.futures import ProcessPoolExecutor, as_completed
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from fitting import fit_logs
 from fitting.errors import InputError
 from fitting.figures import save
-from fitting.progress import ProgressBar
-from fitting.outputs import output_set
 from fitting.tables import write_csv
-from runner.launch import derive_seed, simulate
-from runner.observers import ObserverModel, load_model
-from runner.protocol import Protocol, parse_protocol, read_protocol_text
+from runner.observers import ObserverModel
+from runner.protocol import Protocol
+from runner.study import (QUANTITIES, TRIALS_FIELD, UNITS, Design, StudySettings, check_designs, console_table,
+                          coverage_se, design_columns, expand_designs, run_study, study_command)
 
-QUANTITIES = ("amplitude", "peak_offset", "decay", "baseline_pse")
-UNITS = {"amplitude": "deg", "peak_offset": "deg", "decay": "periods", "baseline_pse": "deg"}
-TABLE_COLUMNS = ["quantity", "lag", "factor", "trials_per_track", "trials_per_condition",
-                 "mean_half_width", "sd_half_width", "median_half_width", "q25_half_width", "q75_half_width",
-                 "runs_with_interval", "runs"]
+STATISTICS = ["median_half_width", "mean_half_width", "sd_half_width", "q25_half_width", "q75_half_width",
+              "coverage", "coverage_se", "runs_with_interval", "runs"]
 
 
 # ---------------------------------------------------------------- designs
 
 
-def scaled_trials(protocol: Protocol, factor: float) -> int:
-    """``design.trials_per_track`` times ``factor``, kept valid.
+def trials_step(protocol: Protocol) -> int:
+    """The step of valid ``design.trials_per_track`` values (the rules the protocol schema enforces).
 
-    Rounded to the nearest whole number (at least 1); for constant stimuli
-    to the nearest multiple of the number of levels (at least one multiple),
-    the rule the protocol schema enforces.
+    Constant stimuli: a multiple of the number of levels; a stream: tracks ×
+    trials a multiple of the stream's directions; both rules together for both.
     """
-    n = protocol.design.trials_per_track * factor
-    if protocol.procedure.method == "constant":
-        levels = len(protocol.procedure.levels_deg)
-        return levels * max(1, int(round(n / levels)))
-    return max(1, int(round(n)))
+    step = len(protocol.procedure.levels_deg) if protocol.procedure.method == "constant" else 1
+    if protocol.stream is not None:
+        directions = protocol.stream.n_directions
+        step = math.lcm(step, directions // math.gcd(directions, protocol.design.tracks_per_condition))
+    return step
 
 
-def scaled_protocol(protocol: Protocol, trials_per_track: int) -> Protocol:
-    """A copy of ``protocol`` with another ``design.trials_per_track``."""
-    design = protocol.design.model_copy(update={"trials_per_track": int(trials_per_track)})
-    return protocol.model_copy(update={"design": design})
+def scaled_trials(protocol: Protocol, factor: float) -> int:
+    """``design.trials_per_track`` times ``factor``, rounded to the nearest valid value (at least one step)."""
+    step = trials_step(protocol)
+    return step * max(1, int(round(protocol.design.trials_per_track * factor / step)))
 
 
 def trials_needed(trials, half_widths, target: float) -> float:
@@ -140,50 +130,30 @@ def loglog_slope(trials, half_widths) -> float:
     return float(np.diff(np.log(h[order]))[0] / np.diff(np.log(n[order]))[0])
 
 
-# ---------------------------------------------------------------- one run
+def with_trial_factors(designs: list[Design], factors) -> tuple[list[Design], list[str]]:
+    """Each design at ``trials_per_track`` × each factor (kept valid); designs that coincide run once.
 
-
-def _half(low, high) -> float:
-    low, high = float(low), float(high)
-    return (high - low) / 2 if math.isfinite(low) and math.isfinite(high) else float("nan")
-
-
-def run_once(protocol: Protocol, protocol_text: str, protocol_path: str, model: ObserverModel, seed: int,
-             n_boot: int, lapse) -> list[dict]:
-    """Simulate and fit one session; return one row per quantity (and lag).
-
-    The session and its fit live in a temporary folder that is removed
-    afterwards. Half-widths are nan where the fitter gave no interval.
+    Returns
+    -------
+    designs : list of Design
+        With ``design.trials_per_track`` among their settings.
+    notes : list of str
+        Factors that gave the same trial count as an earlier one.
     """
-    with tempfile.TemporaryDirectory(prefix="aftershift-plan-") as tmp:
-        paths = simulate(protocol, protocol_path, protocol_text, Path(tmp) / "logs", model, 1, seed,
-                         progress=False)
-        report = fit_logs([str(p) for p in paths], Path(tmp) / "fit", n_boot=n_boot, seed=seed, lapse=lapse,
-                          progress=False, figures=False)
-    rows = []
-    lags = sorted(protocol.design.lags)
-    tuning = report.tuning[report.tuning["observer"] != "group"].set_index("lag")
-    for lag in lags:
-        row = tuning.loc[lag] if lag in tuning.index else None
-        for quantity, lo, hi in (("amplitude", "amplitude_ci_low", "amplitude_ci_high"),
-                                 ("peak_offset", "peak_offset_ci_low", "peak_offset_ci_high")):
-            hw = _half(row[lo], row[hi]) if row is not None else float("nan")
-            rows.append({"quantity": quantity, "lag": lag, "half_width": hw})
-    if len(lags) > 1:
-        d = report.decay[report.decay["observer"] != "group"]
-        hw = _half(d["ci_low"].iloc[0], d["ci_high"].iloc[0]) if len(d) else float("nan")
-        rows.append({"quantity": "decay", "lag": np.nan, "half_width": hw})
-    base = report.pse[report.pse["condition"] == "baseline"]
-    hw = _half(base["pse_ci_low"].iloc[0], base["pse_ci_high"].iloc[0]) if len(base) else float("nan")
-    rows.append({"quantity": "baseline_pse", "lag": np.nan, "half_width": hw})
-    return rows
-
-
-def _run_job(job: dict) -> list[dict]:
-    rows = run_once(job["protocol"], job["text"], job["path"], job["model"], job["seed"], job["n_boot"],
-                    job["lapse"])
-    keep = {k: job[k] for k in ("factor", "trials_per_track", "trials_per_condition", "run")}
-    return [{**keep, **r} for r in rows]
+    out, notes = [], []
+    for d in designs:
+        seen: dict[int, float] = {}
+        for f in factors:
+            n = scaled_trials(d.protocol, f)
+            if n in seen:
+                notes.append(f"{d.label}: factor {f:g} gives the same {n} trials per track as factor "
+                             f"{seen[n]:g}; run once")
+                continue
+            seen[n] = f
+            design = d.protocol.design.model_copy(update={"trials_per_track": n})
+            out.append(replace(d, protocol=d.protocol.model_copy(update={"design": design}),
+                               settings={TRIALS_FIELD: n, **d.settings}))
+    return out, notes
 
 
 # ---------------------------------------------------------------- result
@@ -195,24 +165,30 @@ class PlanResult:
 
     Attributes
     ----------
+    designs : pandas.DataFrame
+        One row per design (:func:`runner.study.design_columns`): ``design``,
+        ``label``, the varied fields, ``trials_per_track``,
+        ``trials_per_condition``; ``family`` labels designs that differ only
+        in trials per track.
     table : pandas.DataFrame
-        One row per quantity, lag and trial factor (:data:`TABLE_COLUMNS`):
-        mean, SD, median and quartiles over runs of the 95 % interval
-        half-width, and how many runs gave an interval.
+        One row per design, quantity and lag: the design columns and
+        :data:`STATISTICS` (half-widths over runs, coverage of the true value
+        among runs with an interval and its Monte Carlo SE).
     runs : pandas.DataFrame
-        Every run's half-widths (factor, trials_per_track,
-        trials_per_condition, run, quantity, lag, half_width).
+        Every run's estimate, interval, true value, half-width and whether
+        the interval holds the true value.
     target_half_width : float or None
         Target half-width of the amplitude (deg).
     needed : pandas.DataFrame
-        Per lag: trials per condition for the target median amplitude half-width,
-        exact (``trials_per_condition``) and as a valid design
-        (``trials_per_track`` × tracks), and the measured log–log slope
-        (−½ under the 1/√N law). Empty without a target.
+        Per family and lag: trials per condition for the target median
+        amplitude half-width, exact (``trials_per_condition``) and as a valid
+        design (``trials_per_track``), and the measured log–log slope (−½
+        under the 1/√N law). Empty without a target.
     protocol_title : str
     notes : list of str
     """
 
+    designs: pd.DataFrame
     table: pd.DataFrame
     runs: pd.DataFrame
     target_half_width: float | None
@@ -220,42 +196,44 @@ class PlanResult:
     protocol_title: str
     notes: list = field(default_factory=list)
 
-    def half_width(self, quantity: str, lag: int | None = None, statistic: str = "median") -> pd.Series:
-        """Half-width against trials per condition for one quantity (and lag).
+    def half_width(self, quantity: str, lag: int | None = None, statistic: str = "median",
+                   family: str | None = None) -> pd.Series:
+        """Half-width against trials per condition for one quantity (and lag, and design family).
 
-        ``statistic`` is "median" or "mean" (over runs).
+        ``statistic`` is "median" or "mean" (over runs); ``family`` defaults to the first.
         """
-        t = self.table[self.table["quantity"] == quantity]
+        t = self.table[(self.table["quantity"] == quantity)
+                       & (self.table["family"] == (family or self.table["family"].iloc[0]))]
         if lag is not None:
             t = t[t["lag"] == lag]
         return t.set_index("trials_per_condition")[f"{statistic}_half_width"].sort_index()
 
     def summary_lines(self) -> list[str]:
         """Lines for the console."""
-        n_runs = int(self.runs["run"].nunique()) if len(self.runs) else 0
-        lines = [f"plan for {self.protocol_title!r}: {n_runs} simulated sessions per design, "
-                 "95 % interval half-widths over sessions"]
-        shown = self.table.copy()
-        shown["lag"] = shown["lag"].map(lambda v: "" if pd.isna(v) else str(int(v)))
-        shown["unit"] = shown["quantity"].map(UNITS)
-        for c in ("median_half_width", "mean_half_width", "sd_half_width"):
-            shown[c] = shown[c].map(lambda v: f"{v:.3g}")
-        shown["intervals"] = shown["runs_with_interval"].astype(str) + "/" + shown["runs"].astype(str)
-        shown = shown.rename(columns={"trials_per_condition": "trials/condition", "median_half_width": "median",
+        n_runs = int(self.runs["replicate"].nunique()) if len(self.runs) else 0
+        lines = [f"plan for {self.protocol_title!r}: {len(self.designs)} designs, {n_runs} simulated sessions "
+                 "each; 95 % interval half-widths over sessions, and coverage of the true value"]
+        shown = console_table(self.table, ("median_half_width", "mean_half_width", "sd_half_width"), 0)
+        shown = shown.rename(columns={"trials_per_condition": "trials/cond", "median_half_width": "median",
                                       "mean_half_width": "mean", "sd_half_width": "sd"})
-        cols = ["quantity", "lag", "trials/condition", "median", "mean", "sd", "unit", "intervals"]
-        lines += shown[cols].to_string(index=False).splitlines()
+        cols = ["quantity", "lag", "trials/cond", "median", "mean", "sd", "unit", "coverage", "intervals"]
+        for family, part in shown.groupby("family", sort=False):
+            lines.append("")
+            lines.append(f"designs: {family}")
+            lines += ["  " + line for line in part[cols].to_string(index=False).splitlines()]
         if self.target_half_width is not None:
             lines.append("")
             lines.append(f"for an amplitude half-width of {self.target_half_width:g} deg "
                          f"(median half-widths interpolated, ∝ 1/√N beyond the designs):")
             for _, r in self.needed.iterrows():
+                where = f"  {r['family']}, lag {int(r['lag'])}"
                 if math.isfinite(r["trials_per_condition"]):
-                    lines.append(f"  lag {int(r['lag'])}: about {r['trials_per_condition']:.0f} trials per condition "
+                    lines.append(f"{where}: about {r['trials_per_condition']:.0f} trials per condition "
                                  f"-> trials_per_track = {int(r['trials_per_track'])} "
-                                 f"(log-log slope of the two largest designs {r['loglog_slope']:.2f}; 1/sqrt(N) gives -0.5)")
+                                 f"(log-log slope of the two largest designs {r['loglog_slope']:.2f}; "
+                                 "1/sqrt(N) gives -0.5)")
                 else:
-                    lines.append(f"  lag {int(r['lag'])}: no interval at any tested design; cannot say")
+                    lines.append(f"{where}: no interval at any tested design; cannot say")
         lines += [f"note: {n}" for n in self.notes]
         return lines
 
@@ -270,7 +248,7 @@ class PlanResult:
         out = Path(out_dir)
         out.mkdir(parents=True, exist_ok=True)
         files = [out / "plan.csv", out / "plan_runs.csv"]
-        write_csv(self.table, files[0], TABLE_COLUMNS)
+        write_csv(self.table, files[0])
         write_csv(self.runs, files[1])
         if self.target_half_width is not None:
             files.append(out / "plan_needed.csv")
@@ -279,7 +257,8 @@ class PlanResult:
         return files
 
     def figure(self, stem: Path) -> list[Path]:
-        """Median half-width (bars: quartiles) against trials per condition, one panel per quantity; PNG and PDF."""
+        """Median half-width (bars: quartiles) and coverage (bars: ±2 Monte Carlo SE) against trials
+        per condition, one column per quantity, one line per design family and lag; PNG and PDF."""
         import matplotlib
 
         matplotlib.use("Agg")
@@ -290,31 +269,44 @@ class PlanResult:
         present = [q for q in QUANTITIES if (usable["quantity"] == q).any()]
         if not present:
             return []
-        fig, axes = plt.subplots(1, len(present), figsize=(3.6 * len(present), 3.4), squeeze=False)
-        for ax, quantity in zip(axes[0], present):
+        fig, axes = plt.subplots(2, len(present), figsize=(3.8 * len(present), 6.6), squeeze=False,
+                                 sharex="col")
+        several = usable["family"].nunique() > 1
+        for col, quantity in enumerate(present):
+            top, bottom = axes[0][col], axes[1][col]
             t = usable[usable["quantity"] == quantity]
-            for lag, part in t.groupby(t["lag"].fillna(-1), sort=True):
+            for (family, lag), part in t.groupby(["family", t["lag"].fillna(-1)], sort=False):
                 part = part.sort_values("trials_per_condition")
-                label = f"lag {int(lag)}" if lag >= 0 else None
+                label = ", ".join(([family] if several else []) + ([f"lag {int(lag)}"] if lag >= 0 else [])) or None
                 mid = part["median_half_width"]
                 bars = np.vstack([mid - part["q25_half_width"], part["q75_half_width"] - mid])
-                ax.errorbar(part["trials_per_condition"], mid, yerr=bars, marker="o", capsize=3, label=label)
+                line = top.errorbar(part["trials_per_condition"], mid, yerr=bars, marker="o", capsize=3,
+                                    label=label)
+                bottom.errorbar(part["trials_per_condition"], 100 * part["coverage"],
+                                yerr=200 * part["coverage_se"], marker="o", capsize=3,
+                                color=line[0].get_color())
             if quantity == "amplitude" and self.target_half_width is not None:
-                ax.axhline(self.target_half_width, color="0.4", linestyle="--", linewidth=1, label="target")
-            ax.set_xscale("log")
-            ax.set_yscale("log")
-            ax.set_xticks(sorted(t["trials_per_condition"].unique()))
-            ax.xaxis.set_minor_formatter(NullFormatter())
-            for axis in (ax.xaxis, ax.yaxis):
-                axis.set_major_formatter(FormatStrFormatter("%g"))
-            ax.yaxis.set_major_locator(LogLocator(subs=(1.0, 2.0, 5.0)))
-            ax.yaxis.set_minor_formatter(NullFormatter())
-            ax.set_xlabel("trials per condition")
-            ax.set_ylabel(f"95 % CI half-width ({UNITS[quantity]})")
-            ax.set_title(quantity.replace("_", " "))
-            if ax.get_legend_handles_labels()[0]:
-                ax.legend(fontsize=8, frameon=False)
-        fig.suptitle(f"{self.protocol_title}: expected interval half-width", fontsize=10)
+                top.axhline(self.target_half_width, color="0.4", linestyle="--", linewidth=1, label="target")
+            bottom.axhline(95, color="0.4", linestyle="--", linewidth=1)
+            top.set_xscale("log")
+            top.set_yscale("log")
+            bottom.set_xticks(sorted(t["trials_per_condition"].unique()))
+            for ax in (top, bottom):
+                ax.xaxis.set_minor_formatter(NullFormatter())
+                ax.xaxis.set_major_formatter(FormatStrFormatter("%g"))
+            top.yaxis.set_major_formatter(FormatStrFormatter("%g"))
+            top.yaxis.set_major_locator(LogLocator(subs=(1.0, 2.0, 5.0)))
+            top.yaxis.set_minor_formatter(NullFormatter())
+            top.set_ylabel(f"95 % CI half-width ({UNITS[quantity]})")
+            top.set_title(quantity.replace("_", " "))
+            bottom.set_ylim(min(50.0, float(np.nanmin(100 * t["coverage"])) - 5 if t["coverage"].notna().any()
+                                else 50.0), 102)
+            bottom.set_ylabel("coverage of the true value (%)")
+            bottom.set_xlabel("trials per condition")
+            if top.get_legend_handles_labels()[0]:
+                top.legend(fontsize=7, frameon=False)
+        fig.suptitle(f"{self.protocol_title}: expected interval half-width and coverage (dashed: 95 %)",
+                     fontsize=10)
         fig.tight_layout()
         return [Path(f) for f in save(fig, stem, dpi=150)]
 
@@ -322,61 +314,35 @@ class PlanResult:
 # ---------------------------------------------------------------- planning
 
 
-def _check(runs, trial_factors, target_half_width, jobs, n_boot):
-    if isinstance(runs, bool) or not isinstance(runs, int) or runs < 1:
-        raise InputError("argument", "--runs", f"expected a whole number >= 1, got {runs!r}")
-    if isinstance(jobs, bool) or not isinstance(jobs, int) or jobs < 1:
-        raise InputError("argument", "--jobs", f"expected a whole number >= 1, got {jobs!r}")
-    if isinstance(n_boot, bool) or not isinstance(n_boot, int) or n_boot < 20:
-        raise InputError("argument", "n_boot", f"expected a whole number >= 20, got {n_boot!r}")
-    if not trial_factors or any(not (isinstance(f, (int, float)) and math.isfinite(f) and f > 0)
-                                for f in trial_factors):
-        raise InputError("argument", "trial_factors", f"expected positive numbers, got {trial_factors!r}")
-    if target_half_width is not None and not (math.isfinite(target_half_width) and target_half_width > 0):
-        raise InputError("argument", "--target-half-width", f"expected a positive number, got {target_half_width!r}")
-
-
 def plan_design(
     protocol: Protocol,
-    protocol_text: str,
-    protocol_path: str,
     model: ObserverModel,
-    runs: int,
-    seed: int,
+    settings: StudySettings,
+    out_dir: str | Path,
+    vary: list[str] | None = None,
     trial_factors=(0.5, 1, 2),
     target_half_width: float | None = None,
-    jobs: int = 2,
-    n_boot: int = 200,
-    progress: bool = True,
-    lapse="free",
 ) -> PlanResult:
-    """Expected interval half-widths of a protocol, and the trials a target needs.
+    """Expected interval half-widths and coverage of a protocol's designs, and the trials a target needs.
 
     Parameters
     ----------
     protocol : Protocol
         The protocol as written.
-    protocol_text, protocol_path : str
-        Its text and path (recorded in the temporary sidecars).
     model : ObserverModel
         The simulated observer; ``spread_between_observers`` is set to 0.
-    runs : int
-        Simulated sessions per trial factor.
-    seed : int
-        Run ``i`` uses the seed ``derive_seed(seed, i)`` at every factor.
+    settings : StudySettings
+        Runs per design, seed, bootstrap replicates, lapse option, and where
+        the tasks run (local cores or ``scheduler``).
+    out_dir : str or Path
+        The study folder: finished tasks are kept in ``out_dir/tasks``.
+    vary : list of str, optional
+        ``FIELD=[values]`` texts (:func:`runner.study.expand_designs`).
     trial_factors : sequence of float
-        Multipliers of ``design.trials_per_track``; factors that round to
-        the same trial count are run once.
+        Multipliers of ``design.trials_per_track`` when it is not varied;
+        factors that round to the same trial count run once.
     target_half_width : float, optional
         Target 95 % half-width of the DoG amplitude (deg).
-    jobs : int
-        Worker processes.
-    n_boot : int
-        Bootstrap replicates of each fit (>= 20).
-    progress : bool
-        Progress bar on stderr (drawn only on a terminal).
-    lapse : "free" or float
-        Lapse option of the fits (as for :func:`fitting.fit_logs`).
 
     Returns
     -------
@@ -385,93 +351,77 @@ def plan_design(
     Raises
     ------
     InputError
-        Bad arguments.
+        Bad arguments or designs.
+    runner.study.StudyInterrupted
+        Ctrl-C (finished tasks are kept).
     """
-    _check(runs, trial_factors, target_half_width, jobs, n_boot)
-    one_observer = replace(model, spread_between_observers=0.0)
-    tracks = protocol.design.tracks_per_condition
-    notes, designs = [], {}
-    for factor in trial_factors:
-        n = scaled_trials(protocol, factor)
-        if n in designs:
-            notes.append(f"factor {factor:g} gives the same {n} trials per track as factor {designs[n]:g}; run once")
-        else:
-            designs[n] = factor
-    if protocol.stream is None and len(protocol.design.adapter_offsets_deg) < 3:
-        notes.append("the design has fewer than 3 adapter offsets, so no DoG tuning curve (amplitude, peak "
-                     "offset, decay) can be fitted; only the baseline PSE is planned")
-    if protocol.procedure.max_reversals:
-        notes.append("procedure.max_reversals may stop tracks before trials_per_track; "
-                     "trial counts are the designed ones")
-    jobs_list = [
-        {"protocol": scaled_protocol(protocol, n), "text": protocol_text, "path": protocol_path,
-         "model": one_observer, "seed": derive_seed(seed, i), "n_boot": n_boot, "lapse": lapse,
-         "factor": f, "trials_per_track": n, "trials_per_condition": n * tracks, "run": i}
-        for n, f in sorted(designs.items()) for i in range(runs)
-    ]
-    rows = []
-    with ProgressBar(len(jobs_list), "planning", show=None if progress else False) as bar, \
-            ProcessPoolExecutor(max_workers=jobs, initializer=_leave_interrupts_to_the_parent) as pool:
-        try:
-            for done in as_completed([pool.submit(_run_job, j) for j in jobs_list]):
-                rows += done.result()
-                bar.advance()
-        except BaseException:  # Ctrl-C, SIGTERM: drop the queued runs, let the running ones end
-            pool.shutdown(wait=True, cancel_futures=True)
-            raise
-    per_run = pd.DataFrame(rows).sort_values(["trials_per_track", "run", "quantity", "lag"], kind="stable")
-    per_run = per_run.reset_index(drop=True)
-    table = _summarise(per_run)
-    needed = _needed(table, target_half_width, protocol) if target_half_width is not None else pd.DataFrame()
-    return PlanResult(table, per_run, target_half_width, needed, protocol.title, notes)
+    if not trial_factors or any(not (isinstance(f, (int, float)) and math.isfinite(f) and f > 0)
+                                for f in trial_factors):
+        raise InputError("argument", "trial_factors", f"expected positive numbers, got {trial_factors!r}")
+    if target_half_width is not None and not (math.isfinite(target_half_width) and target_half_width > 0):
+        raise InputError("argument", "--target-half-width", f"expected a positive number, got {target_half_width!r}")
+    settings.check()
+    designs = expand_designs(protocol, model, vary)
+    notes = []
+    if not any(d.settings.get(TRIALS_FIELD) is not None for d in designs):
+        designs, notes = with_trial_factors(designs, trial_factors)
+    notes += check_designs(designs)
+    per_run = run_study(designs, settings, out_dir, "planning")
+    columns = design_columns(designs)
+    columns["family"] = [Design(d.protocol, d.model, {k: v for k, v in d.settings.items() if k != TRIALS_FIELD}).label
+                         for d in designs]
+    table = _summarise(per_run, columns)
+    runs = columns.merge(per_run, on="design")
+    needed = _needed(table, target_half_width, designs) if target_half_width is not None else pd.DataFrame()
+    return PlanResult(columns, table, runs, target_half_width, needed, protocol.title, notes)
 
 
-def _leave_interrupts_to_the_parent() -> None:
-    """Workers ignore Ctrl-C; the parent stops the plan and reports it in one line."""
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
-
-
-def _summarise(per_run: pd.DataFrame) -> pd.DataFrame:
-    keys = ["quantity", "lag", "factor", "trials_per_track", "trials_per_condition"]
-    g = per_run.groupby(keys, dropna=False, sort=False)["half_width"]
+def _summarise(per_run: pd.DataFrame, columns: pd.DataFrame) -> pd.DataFrame:
+    g = per_run.groupby(["design", "quantity", "lag"], dropna=False, sort=False)
+    hw = g["half_width"]
     table = pd.DataFrame({
-        "mean_half_width": g.mean(),
-        "sd_half_width": g.std(ddof=1),
-        "median_half_width": g.median(),
-        "q25_half_width": g.quantile(0.25),
-        "q75_half_width": g.quantile(0.75),
-        "runs_with_interval": g.count(),
+        "median_half_width": hw.median(),
+        "mean_half_width": hw.mean(),
+        "sd_half_width": hw.std(ddof=1),
+        "q25_half_width": hw.quantile(0.25),
+        "q75_half_width": hw.quantile(0.75),
+        "coverage": g["covered"].mean(),
+        "runs_with_interval": hw.count(),
         "runs": g.size(),
     }).reset_index()
-    table["quantity"] = pd.Categorical(table["quantity"], QUANTITIES, ordered=True)
-    table = table.sort_values(["quantity", "lag", "trials_per_condition"]).reset_index(drop=True)
-    table["quantity"] = table["quantity"].astype(str)
-    return table[TABLE_COLUMNS]
+    table["coverage_se"] = [coverage_se(c, n) for c, n in zip(table["coverage"], table["runs_with_interval"])]
+    table = columns.merge(table, on="design")
+    table["_q"] = pd.Categorical(table["quantity"], QUANTITIES, ordered=True)
+    table["_f"] = pd.Categorical(table["family"], list(dict.fromkeys(columns["family"])), ordered=True)
+    table = table.sort_values(["_f", "_q", "lag", "trials_per_condition"], kind="stable")
+    keys = [c for c in columns.columns] + ["quantity", "lag"]
+    return table[keys + STATISTICS].reset_index(drop=True)
 
 
 def _trials_per_track_for(protocol: Protocol, per_track: float) -> int:
-    """The smallest valid ``trials_per_track`` >= ``per_track`` (constant stimuli: a multiple of the levels)."""
-    step = len(protocol.procedure.levels_deg) if protocol.procedure.method == "constant" else 1
+    """The smallest valid ``trials_per_track`` >= ``per_track``."""
+    step = trials_step(protocol)
     return step * max(1, math.ceil(per_track / step - 1e-9))
 
 
-def _needed(table: pd.DataFrame, target: float, protocol: Protocol) -> pd.DataFrame:
-    """Trials per condition for the target median amplitude half-width, per lag."""
-    tracks = protocol.design.tracks_per_condition
+def _needed(table: pd.DataFrame, target: float, designs: list[Design]) -> pd.DataFrame:
+    """Trials per condition for the target median amplitude half-width, per design family and lag."""
     out = []
     amp = table[table["quantity"] == "amplitude"]
-    for lag, part in amp.groupby("lag", sort=True):
+    for (family, lag), part in amp.groupby(["family", "lag"], sort=False):
+        protocol = designs[int(part["design"].iloc[0])].protocol
         n = trials_needed(part["trials_per_condition"], part["median_half_width"], target)
-        per_track = _trials_per_track_for(protocol, n / tracks) if math.isfinite(n) else float("nan")
-        out.append({"lag": int(lag), "target_half_width_deg": target, "trials_per_condition": n,
-                    "trials_per_track": per_track,
+        per_track = (_trials_per_track_for(protocol, n / protocol.design.tracks_per_condition)
+                     if math.isfinite(n) else float("nan"))
+        out.append({"family": family, "lag": int(lag), "target_half_width_deg": target,
+                    "trials_per_condition": n, "trials_per_track": per_track,
                     "loglog_slope": loglog_slope(part["trials_per_condition"], part["median_half_width"])})
     return pd.DataFrame(out)
 
 
-def plan_command(protocol_path: str, model_path: str | None, runs: int, target_half_width: float | None,
-                 out_dir: str, seed: int, jobs: int) -> int:
-    """The ``aftershift plan`` command: load, plan, print, write; returns the exit code 0.
+def plan_command(protocol_path: str, model_path: str | None, out_dir: str, settings: StudySettings,
+                 vary: list[str] | None = None, target_half_width: float | None = None) -> int:
+    """The ``aftershift plan`` command: load, plan, print, write; returns the exit code.
 
     Parameters
     ----------
@@ -479,31 +429,16 @@ def plan_command(protocol_path: str, model_path: str | None, runs: int, target_h
         Protocol file.
     model_path : str or None
         Observer model file (built-in defaults when None).
-    runs : int
-        Simulated sessions per design.
+    out_dir : str
+        Study folder: ``plan.csv``, ``plan_runs.csv``, ``plan_needed.csv``,
+        ``plan.png`` / ``plan.pdf``, and finished tasks in ``tasks/``.
+    settings : StudySettings
+    vary : list of str, optional
+        ``FIELD=[values]`` texts.
     target_half_width : float or None
         Target 95 % half-width of the amplitude (deg).
-    out_dir : str
-        Folder for ``plan.csv``, ``plan_runs.csv``, ``plan_needed.csv`` and
-        ``plan.png`` / ``plan.pdf``.
-    seed, jobs : int
-        Seed and worker processes.
 
-    Raises
-    ------
-    InputError
-        Bad protocol, model file or argument (the command line exits with 2).
+    Exit code and errors as :func:`runner.study.study_command` (0; 130 after Ctrl-C; InputError).
     """
-    text = read_protocol_text(protocol_path)
-    protocol = parse_protocol(text, source=str(protocol_path))
-    model = load_model(model_path)
-    out = Path(out_dir)
-    if out.exists() and not out.is_dir():
-        raise InputError(str(out), "--out", "exists and is not a folder")
-    result = plan_design(protocol, text, str(protocol_path), model, runs, seed,
-                         target_half_width=target_half_width, jobs=jobs)
-    with output_set(out, "plan") as staged:
-        files = staged.final_paths(result.write(staged.folder))
-    print("\n".join(result.summary_lines()))
-    print(f"wrote {', '.join(str(f) for f in files)}")
-    return 0
+    return study_command(protocol_path, model_path, out_dir, lambda protocol, model: plan_design(
+        protocol, model, settings, out_dir, vary, target_half_width=target_half_width), "plan")

@@ -575,6 +575,17 @@ def parse_protocol(text: str, source: str = "<protocol>", resolve_light: bool = 
         raise InputError(source, "TOML", "nesting too deep for a protocol") from None
     if not raw:
         raise InputError(source, "(top level)", "the file has no settings; start from protocols/offset_by_lag.toml")
+    return protocol_from_dict(raw, source)
+
+
+def protocol_from_dict(raw: dict, source: str = "<protocol>") -> Protocol:
+    """Validate protocol settings given as a dict (the parsed TOML tables).
+
+    Raises
+    ------
+    InputError
+        One line naming ``source``, the field and what was expected.
+    """
     try:
         protocol = Protocol.model_validate(raw)
     except ValidationError as exc:

@@ -185,4 +185,5 @@ def test_ctrl_c_during_plan_stops_the_workers_and_says_so(tmp_path):
         pytest.fail("plan did not stop on Ctrl-C")
     assert proc.returncode == 130
     assert one_line(proc.stderr.read()).startswith("aftershift plan: interrupted")
-    assert not out.exists()
+    assert not (out / "plan.csv").exists()  # no half-made summary; finished tasks are kept to continue
+    assert not list(out.glob(".staging-*")) and not list((out / "tasks").glob(".part-*"))

@@ -12,6 +12,7 @@ from fitting.errors import InputError
 from runner.observers import ObserverModel
 from runner.planner import plan_command, plan_design, scaled_trials, trials_needed
 from runner.protocol import parse_protocol
+from runner.study import StudySettings
 
 SMALL = """
 title = "planner test: three offsets, two lags"
@@ -67,8 +68,9 @@ def fisher_pse_half_width(levels, trials_per_level, pse, spread, lapse=0.0, z=1.
 def test_more_trials_give_narrower_intervals(tmp_path):
     path = _write(tmp_path, SMALL)
     protocol = parse_protocol(SMALL, str(path))
-    result = plan_design(protocol, SMALL, str(path), ObserverModel(), runs=5, seed=11,
-                         trial_factors=(0.5, 1, 2), target_half_width=0.1, jobs=2, n_boot=100, progress=False)
+    settings = StudySettings(runs=5, seed=11, n_boot=100, jobs=2, progress=False)
+    result = plan_design(protocol, ObserverModel(), settings, tmp_path / "plan", trial_factors=(0.5, 1, 2),
+                         target_half_width=0.1)
     assert sorted(result.runs["trials_per_condition"].unique()) == [40, 80, 160]
     for quantity, lag in (("amplitude", 0), ("baseline_pse", None)):
         for statistic in ("median", "mean"):
@@ -84,6 +86,11 @@ def test_more_trials_give_narrower_intervals(tmp_path):
     assert needed.loc[0, "trials_per_track"] == math.ceil(needed.loc[0, "trials_per_condition"] / 2)
     files = result.write(tmp_path / "plan")
     assert {f.name for f in files} == {"plan.csv", "plan_runs.csv", "plan_needed.csv", "plan.png", "plan.pdf"}
+    # coverage: the share of runs whose interval holds the true value, from the per-run table
+    runs = result.runs[(result.runs["quantity"] == "baseline_pse") & (result.runs["trials_per_condition"] == 80)]
+    share = float(((runs["ci_low"] <= 0.0) & (runs["ci_high"] >= 0.0)).mean())
+    row = result.table[(result.table["quantity"] == "baseline_pse") & (result.table["trials_per_condition"] == 80)]
+    assert row["coverage"].iloc[0] == pytest.approx(share)
     assert all(f.stat().st_size > 0 for f in files)
 
 
@@ -92,8 +99,8 @@ def test_constant_stimuli_pse_half_width_matches_fisher_information(tmp_path):
     path = _write(tmp_path, CONSTANT)
     protocol = parse_protocol(CONSTANT, str(path))
     model = ObserverModel(pse_deg=0.0, spread_deg=3.0, lapse=0.0)
-    result = plan_design(protocol, CONSTANT, str(path), model, runs=3, seed=5, trial_factors=(1,),
-                         jobs=2, n_boot=400, progress=False, lapse=0.0)
+    settings = StudySettings(runs=3, seed=5, n_boot=400, lapse=0.0, jobs=2, progress=False)
+    result = plan_design(protocol, model, settings, tmp_path / "plan", trial_factors=(1,))
     measured = float(result.half_width("baseline_pse", statistic="mean").iloc[0])
     # baseline: 2 tracks x 120 trials over 6 levels = 40 trials per level
     predicted = fisher_pse_half_width(protocol.procedure.levels_deg, 40, 0.0, 3.0)
@@ -119,9 +126,11 @@ def test_bad_input_names_the_field(tmp_path):
     path = _write(tmp_path, SMALL)
     protocol = parse_protocol(SMALL, str(path))
     with pytest.raises(InputError, match="--runs"):
-        plan_design(protocol, SMALL, str(path), ObserverModel(), runs=0, seed=0)
+        plan_design(protocol, ObserverModel(), StudySettings(runs=0), tmp_path / "plan")
     with pytest.raises(InputError, match="--target-half-width"):
-        plan_design(protocol, SMALL, str(path), ObserverModel(), runs=1, seed=0, target_half_width=-1.0)
+        plan_design(protocol, ObserverModel(), StudySettings(runs=1), tmp_path / "plan", target_half_width=-1.0)
+    with pytest.raises(InputError, match="--jobs"):
+        plan_design(protocol, ObserverModel(), StudySettings(runs=1, jobs=0), tmp_path / "plan")
     with pytest.raises(InputError, match="missing.toml"):
-        plan_command(str(tmp_path / "missing.toml"), None, 1, None, str(tmp_path / "out"), 0, 1)
+        plan_command(str(tmp_path / "missing.toml"), None, str(tmp_path / "out"), StudySettings(runs=1))
     assert not (tmp_path / "out").exists()

@@ -1,0 +1,406 @@
+"""Handing out independent tasks: local worker processes or a Dask cluster.
+
+One abstraction, two backends:
+
+* :class:`LocalPool` runs tasks in worker processes on this machine, by
+  default one per core this process may run on (``os.sched_getaffinity``);
+  one worker runs tasks in this process.
+* :class:`ClusterPool` sends them to an existing Dask ``distributed``
+  scheduler (``--scheduler ADDRESS``).  Dask is the optional ``cluster``
+  extra; without it, asking for a scheduler is one clear error.
+
+Both have ``map_unordered(fn, tasks)``: ``tasks`` is a dict from a task key
+to the task's argument, and results come back as ``(key, result)`` pairs in
+the order they finish.  A task's result may depend only on its argument,
+never on the worker that runs it, so a study gives the same numbers on one
+core, on many, on a cluster of any size and after a worker is lost (Dask
+reruns a lost worker's tasks elsewhere).
+
+:class:`TaskStore` keeps finished results on disk, one JSON file per task,
+written atomically as each result arrives, so an interrupted study continues
+where it stopped; a lock file keeps a second process out of the same folder.
+:func:`run_tasks` ties pool, store and a progress bar together.
+"""
+
+from __future__ import annotations
+
+import fcntl
+import importlib.metadata
+import json
+import logging
+import multiprocessing
+import os
+import signal
+import sys
+import tempfile
+from collections.abc import Callable, Iterator
+from contextlib import closing
+from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+from concurrent.futures.process import BrokenProcessPool
+from pathlib import Path
+
+from fitting.errors import InputError
+
+#: How to install the optional Dask part.
+CLUSTER_EXTRA = "pip install 'aftershift[cluster]' (or pip install -e '.[cluster]' in a checkout)"
+CONNECT_TIMEOUT_S = 10
+WORKER_WAIT_S = 60
+
+
+class WorkerLost(RuntimeError):
+    """A worker died (killed, out of memory) and its task could not be finished."""
+
+
+def available_cores() -> int:
+    """Cores this process may run on (its CPU affinity), at least 1."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # pragma: no cover - platforms without affinity
+        return max(1, os.cpu_count() or 1)
+
+
+def _ignore_interrupt() -> None:
+    # Ctrl-C reaches the whole process group; only the parent handles it.
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+
+class LocalPool:
+    """Worker processes on this machine.
+
+    Parameters
+    ----------
+    workers : int, optional
+        Number of worker processes (default: :func:`available_cores`). With 1,
+        tasks run one after another in this process.
+    """
+
+    def __init__(self, workers: int | None = None):
+        if workers is not None and (isinstance(workers, bool) or not isinstance(workers, int) or workers < 1):
+            raise InputError("argument", "--jobs", f"expected a whole number >= 1, got {workers!r}")
+        self.workers = available_cores() if workers is None else workers
+        self.where = "this process" if self.workers == 1 else f"{self.workers} local worker processes"
+
+    def map_unordered(self, fn: Callable, tasks: dict) -> Iterator[tuple[str, object]]:
+        """Run ``fn(task)`` for every task; yield ``(key, result)`` as each finishes."""
+        if self.workers == 1 or len(tasks) <= 1:
+            for key, task in tasks.items():
+                yield key, fn(task)
+            return
+        # forkserver: workers fork from a clean server process (not from this one, which may hold
+        # threads) that has imported the task's module once, so they start without importing it again
+        ctx = multiprocessing.get_context("forkserver")
+        ctx.set_forkserver_preload([fn.__module__])
+        pool = ProcessPoolExecutor(min(self.workers, len(tasks)), mp_context=ctx, initializer=_ignore_interrupt)
+        pending = {pool.submit(fn, task): key for key, task in tasks.items()}
+        try:
+            while pending:
+                done, _ = wait(pending, return_when=FIRST_COMPLETED)
+                for future in done:
+                    key = pending.pop(future)
+                    try:
+                        result = future.result()
+                    except BrokenProcessPool:
+                        raise WorkerLost("a local worker process died (killed, or out of memory)") from None
+                    yield key, result
+        finally:
+            _stop(pool)
+
+    def close(self) -> None:
+        """Nothing to release (processes live only inside :meth:`map_unordered`)."""
+
+
+def _stop(pool: ProcessPoolExecutor) -> None:
+    """Cancel queued tasks and end the worker processes now, without waiting for running tasks."""
+    # ProcessPoolExecutor has no public way to stop a running task before Python 3.14
+    processes = list((getattr(pool, "_processes", None) or {}).values())
+    pool.shutdown(wait=False, cancel_futures=True)
+    for process in processes:
+        if process.is_alive():
+            process.terminate()
+    for process in processes:
+        process.join(timeout=5)
+
+
+def _worker_version() -> str | None:
+    """The installed aftershift version (None when run from an uninstalled checkout).
+
+    Also run on every Dask worker: that it runs at all proves the worker can import aftershift.
+    """
+    try:
+        return importlib.metadata.version("aftershift")
+    except importlib.metadata.PackageNotFoundError:
+        return None
+
+
+class ClusterPool:
+    """Tasks on an existing Dask ``distributed`` cluster.
+
+    Parameters
+    ----------
+    address : str
+        The scheduler's address, e.g. ``tcp://10.0.0.5:8786``.
+
+    Raises
+    ------
+    InputError
+        Dask is not installed, the scheduler cannot be reached, it has no
+        workers within a minute, or its workers cannot import aftershift.
+    """
+
+    def __init__(self, address: str):
+        try:
+            from distributed import Client
+        except ImportError:
+            raise InputError("argument", "--scheduler", "running on a cluster needs dask and distributed: "
+                             + CLUSTER_EXTRA) from None
+        # the one-line errors below say what went wrong; Dask's own log lines would only repeat it
+        for name in list(logging.root.manager.loggerDict):
+            if name == "distributed" or name.startswith("distributed."):
+                logging.getLogger(name).setLevel(logging.CRITICAL)
+        try:
+            self.client = Client(address, timeout=f"{CONNECT_TIMEOUT_S}s", set_as_default=False)
+        except (OSError, TimeoutError, ValueError) as exc:
+            raise InputError("argument", "--scheduler", f"cannot reach a Dask scheduler at {address!r} "
+                             f"({' '.join(str(exc).split()) or type(exc).__name__})") from None
+        try:
+            self.client.wait_for_workers(1, timeout=WORKER_WAIT_S)
+            versions = self.client.run(_worker_version)
+        except (OSError, TimeoutError) as exc:
+            self.close()
+            raise InputError("argument", "--scheduler", f"the scheduler at {address} has no workers after "
+                             f"{WORKER_WAIT_S} s; start some with: dask worker {address}") from exc
+        except Exception as exc:  # the worker could not run our function: aftershift missing there
+            self.close()
+            raise InputError("argument", "--scheduler", f"the workers of {address} cannot import aftershift "
+                             f"({type(exc).__name__}: {exc}); install it on every worker: {CLUSTER_EXTRA}") from None
+        mine = _worker_version()
+        other = sorted({str(v) for v in versions.values() if v != mine})
+        if other:
+            self.close()
+            raise InputError("argument", "--scheduler", f"workers run aftershift {', '.join(other)}, this "
+                             f"process {mine}; install the same version everywhere")
+        self.address = address
+        self.workers = len(versions)
+        self.where = f"the Dask cluster at {address} ({self.workers} workers at start)"
+
+    def map_unordered(self, fn: Callable, tasks: dict) -> Iterator[tuple[str, object]]:
+        """Submit every task; yield ``(key, result)`` as each finishes.
+
+        The Dask key of a task is its own key, so a task lost with a worker
+        is rerun under the same identity; ``KilledWorker`` (a task that took
+        down several workers) becomes :class:`WorkerLost`.
+        """
+        from concurrent.futures import CancelledError
+
+        from distributed import as_completed
+        from distributed.scheduler import KilledWorker
+
+        futures = {self.client.submit(fn, task, key=f"aftershift-{key}", pure=False): key
+                   for key, task in tasks.items()}
+        try:
+            for future in as_completed(futures, loop=self.client.loop):
+                try:
+                    result = future.result()
+                except KilledWorker as exc:
+                    raise WorkerLost(f"Dask workers died running a task ({exc})") from None
+                except (CancelledError, OSError):
+                    raise WorkerLost(f"lost the connection to the Dask scheduler at {self.address}") from None
+                yield futures[future], result
+                future.release()
+        finally:
+            if self.client.status == "running":
+                self.client.cancel([f for f in futures if not f.done()])
+
+    def close(self) -> None:
+        """Disconnect from the scheduler (the cluster keeps running)."""
+        self.client.close()
+
+
+def open_pool(scheduler: str | None = None, workers: int | None = None):
+    """A :class:`ClusterPool` when ``scheduler`` is given, else a :class:`LocalPool`.
+
+    Raises
+    ------
+    InputError
+        Both given, or a bad value (see the classes).
+    """
+    if scheduler is not None:
+        if workers is not None:
+            raise InputError("argument", "--jobs", "the cluster decides its workers; give --jobs or --scheduler, "
+                             "not both")
+        if not scheduler.strip():
+            raise InputError("argument", "--scheduler", "expected an address such as tcp://HOST:8786")
+        return ClusterPool(scheduler.strip())
+    return LocalPool(workers)
+
+
+# ---------------------------------------------------------------- results on disk
+
+
+class TaskStore:
+    """Finished task results in a folder, one JSON file per task.
+
+    Each file is written to a temporary name, flushed to disk and renamed, so
+    a kill at any instant leaves either the whole result or none.  While the
+    store is open it holds an exclusive lock on ``.lock`` in the folder; a
+    second process that opens the same folder gets an :class:`InputError`.
+    The lock is the kernel's (``flock``), so it goes away with a killed process.
+
+    Parameters
+    ----------
+    folder : str or Path
+        Created if needed.
+    option : str
+        The option that named the folder, for error messages.
+    """
+
+    def __init__(self, folder: str | Path, option: str = "--out"):
+        self.folder = Path(folder)
+        self.option = option
+        try:
+            self.folder.mkdir(parents=True, exist_ok=True)
+            self._lock = open(self.folder / ".lock", "a+", encoding="utf-8")
+        except OSError as exc:
+            raise InputError(str(self.folder), option, f"cannot be used for results ({exc.strerror})") from None
+        try:
+            fcntl.flock(self._lock, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            self._lock.seek(0)
+            holder = self._lock.read().strip() or "another process"
+            self._lock.close()
+            raise InputError(str(self.folder), option, f"is in use by {holder}; wait for it to finish or "
+                             "choose another folder") from None
+        self._lock.seek(0)
+        self._lock.truncate()
+        self._lock.write(f"process {os.getpid()}\n")
+        self._lock.flush()
+        for stale in self.folder.glob(".part-*"):  # left by a process killed mid-write; we hold the lock
+            stale.unlink(missing_ok=True)
+
+    def _path(self, key: str) -> Path:
+        return self.folder / f"{key}.json"
+
+    def load(self, key: str):
+        """The stored result of ``key``, or None (not stored, or unreadable: it will be redone)."""
+        try:
+            return json.loads(self._path(key).read_text(encoding="utf-8"))["result"]
+        except (OSError, ValueError, KeyError, TypeError):
+            return None
+
+    def save(self, key: str, result, about: dict | None = None) -> None:
+        """Store ``result`` (JSON-ready) atomically, with ``about`` for people reading the file.
+
+        Raises
+        ------
+        InputError
+            The folder cannot be written (full disk, read-only).
+        """
+        text = json.dumps({"about": about or {}, "result": result}, sort_keys=True, allow_nan=True)
+        path = self._path(key)
+        try:
+            fd, tmp = tempfile.mkstemp(prefix=".part-", dir=self.folder)
+            try:
+                with os.fdopen(fd, "w", encoding="utf-8") as fh:
+                    fh.write(text + "\n")
+                    fh.flush()
+                    os.fsync(fh.fileno())
+                os.replace(tmp, path)
+            finally:
+                if os.path.exists(tmp):
+                    os.unlink(tmp)
+        except OSError as exc:
+            raise InputError(str(path), self.option, f"cannot be written ({exc.strerror}); finished tasks "
+                             "are kept, free the space or fix the folder and run again") from None
+
+    def close(self) -> None:
+        """Release the lock."""
+        if not self._lock.closed:
+            fcntl.flock(self._lock, fcntl.LOCK_UN)
+            self._lock.close()
+
+    def __enter__(self) -> "TaskStore":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+
+def progress_bar(total: int, done: int, label: str, show: bool | None = None):
+    """A tqdm bar on stderr: tasks done of ``total`` and the time left; hidden when stderr is no terminal."""
+    from fitting.progress import tqdm  # with the thread lock set there
+
+    hidden = not sys.stderr.isatty() if show is None else not show
+    return tqdm(total=total, initial=done, desc=label, unit="task", disable=hidden, file=sys.stderr,
+                dynamic_ncols=True, smoothing=0.1)
+
+
+def run_tasks(fn: Callable, tasks: dict, pool, store: TaskStore | None = None, label: str = "tasks",
+              about: Callable[[str], dict] | None = None, show: bool | None = None) -> dict:
+    """Run every task not yet in ``store``; return all results by key.
+
+    Parameters
+    ----------
+    fn : callable
+        ``fn(task) -> result``; the result must be JSON-ready when a store is used.
+    tasks : dict
+        Task key -> argument of ``fn``.
+    pool : LocalPool or ClusterPool
+    store : TaskStore, optional
+        Finished results; each new one is saved the moment it arrives.
+    label : str
+        Words before the progress bar.
+    about : callable, optional
+        ``about(key)`` -> dict stored beside a result, for people.
+    show : bool or None
+        Progress bar: None = only when stderr is a terminal.
+
+    Raises
+    ------
+    KeyboardInterrupt
+        Passed on after the pool is stopped; finished results are already saved.
+    WorkerLost
+        A worker died and its task could not be finished.
+    """
+    results = {}
+    if store is not None:
+        for key in tasks:
+            found = store.load(key)
+            if found is not None:
+                results[key] = found
+    todo = {k: t for k, t in tasks.items() if k not in results}
+    # closing(): on Ctrl-C the pool stops at once, not when the interrupted frame is collected
+    with progress_bar(len(tasks), len(results), label, show) as bar, \
+            closing(pool.map_unordered(fn, todo)) as finished:
+        for key, result in finished:
+            if store is not None:
+                store.save(key, result, about(key) if about else None)
+            results[key] = result
+            bar.update(1)
+    return results
+
+
+def task_mapper(pool, label: str) -> Callable[[Callable, dict], dict]:
+    """``map_tasks(fn, tasks) -> results by key`` through ``pool``, with a progress bar.
+
+    A lost worker becomes an :class:`InputError` (one line, exit 2).
+    """
+    def map_tasks(fn: Callable, tasks: dict) -> dict:
+        try:
+            return run_tasks(fn, tasks, pool, label=f"{label} ({pool.where})")
+        except WorkerLost as exc:
+            raise InputError("worker", "", f"{exc}; nothing was written, run the command again") from None
+
+    return map_tasks
+
+
+def interrupted_line(done: int, total: int, folder: Path) -> str:
+    """The one line printed when a study is interrupted."""
+    share = f"{done} of {total} tasks" if total else "no tasks"
+    return (f"interrupted; {share} finished and kept in {folder}; "
+            "run the same command again to continue")
+
+
+def check_count(n: int, option: str, low: int = 1, high: int = 10**6) -> None:
+    """Refuse counts that are not whole numbers in ``[low, high]``."""
+    if isinstance(n, bool) or not isinstance(n, int) or not (low <= n <= high):
+        raise InputError("argument", option, f"expected a whole number from {low} to {high}, got {n!r}")

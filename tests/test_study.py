@@ -1,0 +1,256 @@
+"""Simulation studies on local cores: in-memory sessions, same numbers on any number of workers,
+results kept across Ctrl-C, one process per study folder, and `recover` against the Fisher information."""
+
+from __future__ import annotations
+
+import math
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from conftest import ROOT, run_cli
+from fitting.errors import InputError
+from fitting.tables import prepare_trials, read_logs
+from runner.cli import main
+from runner.launch import derive_seed, simulate, simulate_rows
+from runner.observers import ObserverModel
+from runner.planner import plan_design
+from runner.protocol import parse_protocol
+from runner.recovery import recover
+from runner.study import StudySettings, expand_designs
+from runner.workpool import TaskStore, available_cores
+from test_planner import fisher_pse_half_width
+
+SMALL = """
+title = "study test: three offsets, one lag"
+[design]
+adapter_offsets_deg = [-30.0, 15.0, 45.0]
+lags = [0]
+trials_per_track = 16
+practice_trials = 0
+"""
+
+# one adapter offset: only the baseline PSE is studied; constant stimuli at known levels
+BASELINE = """
+title = "study test: baseline PSE with constant stimuli"
+[design]
+adapter_offsets_deg = [30.0]
+lags = [0]
+trials_per_track = 60
+practice_trials = 0
+[procedure]
+method = "constant"
+levels_deg = [-4.5, -3.0, -1.5, 1.5, 3.0, 4.5]
+"""
+
+
+def _write(tmp_path, text, name="protocol.toml"):
+    path = tmp_path / name
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+def test_local_default_uses_the_cores_this_process_may_run_on():
+    assert available_cores() == len(os.sched_getaffinity(0))
+
+
+def test_a_session_in_memory_holds_the_rows_of_its_trial_log(tmp_path):
+    protocol = parse_protocol(SMALL)
+    model = ObserverModel(spread_between_observers=0.0)
+    [log] = simulate(protocol, "p.toml", SMALL, tmp_path / "logs", model, 1, seed=9, progress=False)
+    on_disk = read_logs([str(log)])
+    in_memory = prepare_trials(pd.DataFrame(simulate_rows(protocol, model, derive_seed(9, 0))))
+    columns = ["trial", "condition", "adapter_offset_deg", "lag", "track", "test_offset_deg", "response_cw"]
+    pd.testing.assert_frame_equal(on_disk[columns], in_memory[columns])
+
+
+def test_same_numbers_on_one_or_two_local_workers_and_reused_on_rerun(tmp_path):
+    protocol = parse_protocol(SMALL)
+    vary = ['procedure.method=["updown", "weighted"]']
+    one = plan_design(protocol, ObserverModel(), StudySettings(runs=2, seed=3, n_boot=20, jobs=1, progress=False),
+                      tmp_path / "one", vary, trial_factors=(1,))
+    two = plan_design(protocol, ObserverModel(), StudySettings(runs=2, seed=3, n_boot=20, jobs=2, progress=False),
+                      tmp_path / "two", vary, trial_factors=(1,))
+    pd.testing.assert_frame_equal(one.runs, two.runs)
+    assert len(list((tmp_path / "one" / "tasks").glob("*.json"))) == 4
+    # a third design added to the grid: the four finished tasks are reused, two new ones run
+    before = {p.name: p.stat().st_mtime_ns for p in (tmp_path / "one" / "tasks").glob("*.json")}
+    three = plan_design(protocol, ObserverModel(), StudySettings(runs=2, seed=3, n_boot=20, jobs=1, progress=False),
+                        tmp_path / "one", ['procedure.method=["updown", "weighted", "bayesian"]'], trial_factors=(1,))
+    after = {p.name: p.stat().st_mtime_ns for p in (tmp_path / "one" / "tasks").glob("*.json")}
+    assert len(after) == 6 and all(after[k] == v for k, v in before.items())
+    kept = three.runs[three.runs["label"] != "trials_per_track=16, method=bayesian"].reset_index(drop=True)
+    pd.testing.assert_frame_equal(kept.drop(columns="design"), one.runs.drop(columns="design"))
+
+
+@pytest.mark.slow
+def test_ctrl_c_keeps_finished_tasks_and_a_rerun_continues(tmp_path, capsys):
+    path = _write(tmp_path, SMALL)
+    out = tmp_path / "study"
+    args = ["plan", str(path), "--runs", "6", "--bootstrap", "20", "--jobs", "1", "--vary",
+            "design.trials_per_track=[16]"]
+    proc = subprocess.Popen([sys.executable, "-m", "runner.cli", *args, "--out", str(out)], cwd=ROOT,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline and not list(out.glob("tasks/*.json")):
+        time.sleep(0.02)
+    proc.send_signal(signal.SIGINT)
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode == 130, err
+    assert len(err.strip().splitlines()) == 1 and "run the same command again to continue" in err, err
+    kept = {p.name: p.stat().st_mtime_ns for p in out.glob("tasks/*.json")}
+    assert 1 <= len(kept) < 6
+    assert main([*args, "--out", str(out)]) == 0
+    after = {p.name: p.stat().st_mtime_ns for p in out.glob("tasks/*.json")}
+    assert len(after) == 6 and all(after[k] == v for k, v in kept.items())  # finished tasks not redone
+    assert main([*args, "--out", str(tmp_path / "fresh")]) == 0
+    assert (out / "plan_runs.csv").read_bytes() == (tmp_path / "fresh" / "plan_runs.csv").read_bytes()
+
+
+def _children(pid: int) -> list[int]:
+    """Processes whose parent is ``pid`` (from /proc)."""
+    found = []
+    for stat in Path("/proc").glob("[0-9]*/stat"):
+        try:
+            fields = stat.read_text().rsplit(")", 1)[1].split()
+        except OSError:
+            continue
+        if int(fields[1]) == pid:
+            found.append(int(stat.parent.name))
+    return found
+
+
+@pytest.mark.slow
+def test_a_local_worker_killed_mid_study_is_one_line_and_a_rerun_gives_the_same_numbers(tmp_path):
+    path = _write(tmp_path, SMALL)
+    out = tmp_path / "study"
+    args = ["recover", str(path), "--runs", "8", "--bootstrap", "20", "--jobs", "2"]
+    proc = subprocess.Popen([sys.executable, "-m", "runner.cli", *args, "--out", str(out)], cwd=ROOT,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline and not list(out.glob("tasks/*.json")):
+        time.sleep(0.02)
+    # the command's children: the forkserver; its children: the worker processes
+    workers = [w for server in _children(proc.pid) for w in _children(server)]
+    assert workers, "no local worker processes found"
+    os.kill(workers[0], signal.SIGKILL)
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode == 2 and err.count("\n") == 1 and "worker process died" in err, err
+    assert 1 <= len(list(out.glob("tasks/*.json"))) < 8
+    assert main([*args, "--out", str(out)]) == 0
+    assert main([*args, "--out", str(tmp_path / "fresh")]) == 0
+    assert (out / "recovery_runs.csv").read_bytes() == (tmp_path / "fresh" / "recovery_runs.csv").read_bytes()
+
+
+def test_a_second_process_on_the_same_study_folder_is_refused(tmp_path):
+    path = _write(tmp_path, SMALL)
+    with TaskStore(tmp_path / "study" / "tasks"):
+        busy = run_cli("recover", path, "--runs", "1", "--bootstrap", "20", "--out", tmp_path / "study")
+    assert busy.returncode == 2
+    assert busy.stderr.strip().count("\n") == 0 and "is in use by process" in busy.stderr, busy.stderr
+
+
+def test_an_unreadable_task_file_is_redone(tmp_path):
+    protocol = parse_protocol(SMALL)
+    settings = StudySettings(runs=2, seed=1, n_boot=20, jobs=1, progress=False)
+    first = recover(protocol, ObserverModel(), settings, tmp_path / "r")
+    victim = sorted((tmp_path / "r" / "tasks").glob("*.json"))[0]
+    victim.write_text('{"result": [', encoding="utf-8")  # as if torn by a crash
+    (tmp_path / "r" / "tasks" / ".part-left-by-kill").write_text("x", encoding="utf-8")
+    again = recover(protocol, ObserverModel(), settings, tmp_path / "r")
+    pd.testing.assert_frame_equal(first.runs, again.runs)
+    assert not list((tmp_path / "r" / "tasks").glob(".part-*"))
+
+
+def test_vary_errors_name_the_option_and_field():
+    protocol = parse_protocol(SMALL)
+    model = ObserverModel()
+    with pytest.raises(InputError, match="expected FIELD="):
+        expand_designs(protocol, model, ["procedure.method"])
+    with pytest.raises(InputError, match="--vary procedure.method.*not a TOML array"):
+        expand_designs(protocol, model, ["procedure.method=[updown]"])
+    with pytest.raises(InputError, match="--vary procedure.methd=updown: procedure.methd: unknown field"):
+        expand_designs(protocol, model, ['procedure.methd=["updown"]'])
+    with pytest.raises(InputError, match="design.trials_per_track.*multiple of the 8 levels"):
+        expand_designs(protocol, model, ['procedure.method=["constant"]', "design.trials_per_track=[12]"])
+    with pytest.raises(InputError, match="model.lapse"):
+        expand_designs(protocol, model, ["model.lapse=[2.0]"])
+    with pytest.raises(InputError, match="varied twice"):
+        expand_designs(protocol, model, ["model.lapse=[0.0]", "model.lapse=[0.01]"])
+    grid = expand_designs(protocol, model, ["design.trials_per_track=[8, 16]", "model.amplitude_deg=[1, 3]"])
+    assert [(d.protocol.design.trials_per_track, d.model.amplitude_deg) for d in grid] == \
+        [(8, 1.0), (8, 3.0), (16, 1.0), (16, 3.0)]
+    assert all(d.model.spread_between_observers == 0 for d in grid)
+
+
+@pytest.mark.slow
+def test_recover_baseline_pse_error_matches_the_fisher_information(tmp_path):
+    protocol = parse_protocol(BASELINE)
+    model = ObserverModel(pse_deg=0.5, spread_deg=3.0, lapse=0.0)
+    settings = StudySettings(runs=40, seed=4, n_boot=20, lapse=0.0, jobs=2, progress=False)
+    result = recover(protocol, model, settings, tmp_path / "recovery")
+    row = result.table[result.table["quantity"] == "baseline_pse"].iloc[0]
+    assert row["truth"] == 0.5 and row["runs_with_estimate"] == 40
+    # baseline: 2 tracks x 60 trials over 6 levels = 20 trials per level; asymptotic SD of the
+    # maximum-likelihood PSE = half-width / 1.96 (Fisher information of a binomial model, see
+    # tests/test_planner.py::fisher_pse_half_width). 40 runs estimate an SD to about 11 %; 35 % = 3 SE.
+    sd = fisher_pse_half_width(protocol.procedure.levels_deg, 20, 0.0, 3.0) / 1.959964
+    assert row["rmse"] == pytest.approx(sd, rel=0.35), (row["rmse"], sd)
+    assert abs(row["bias"]) < 3 * sd / math.sqrt(40)
+    # coverage and its Monte Carlo SE from the per-run table (binomial SE; common practice, no source)
+    runs = result.runs[result.runs["quantity"] == "baseline_pse"]
+    share = float(((runs["ci_low"] <= 0.5) & (runs["ci_high"] >= 0.5)).mean())
+    assert row["coverage"] == pytest.approx(share)
+    assert row["coverage_se"] == pytest.approx(math.sqrt(share * (1 - share) / 40))
+    files = result.write(tmp_path / "recovery")
+    assert {f.name for f in files} == {"recovery.csv", "recovery_runs.csv", "recovery.png", "recovery.pdf"}
+
+
+def test_scheduler_without_the_cluster_extra_is_one_line(tmp_path):
+    path = _write(tmp_path, SMALL)
+    code = ("import sys; sys.modules['distributed'] = None; from runner.cli import main; "
+            f"sys.exit(main(['plan', {str(path)!r}, '--runs', '1', '--out', {str(tmp_path / 'p')!r}, "
+            "'--scheduler', 'tcp://127.0.0.1:8786']))")
+    done = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True, timeout=60)
+    assert done.returncode == 2
+    assert done.stderr.strip().count("\n") == 0 and "pip install 'aftershift[cluster]'" in done.stderr, done.stderr
+
+
+def test_study_options_are_checked(tmp_path, capsys):
+    path = _write(tmp_path, SMALL)
+    for bad, option in ((["--runs", "0"], "--runs"), (["--bootstrap", "5"], "--bootstrap"),
+                        (["--lapse", "0.7"], "--lapse"), (["--jobs", "0"], "--jobs"),
+                        (["--jobs", "2", "--scheduler", "tcp://x:1"], "--scheduler")):
+        assert main(["recover", str(path), "--out", str(tmp_path / "r"), *bad]) == 2
+        err = capsys.readouterr().err
+        assert option in err and err.count("\n") == 1, err
+    assert not (tmp_path / "r").exists()
+
+
+def test_stream_protocols_are_studied_with_the_nback_fit(tmp_path):
+    from runner.planner import scaled_trials
+    from runner.protocol import load_protocol, protocol_from_dict
+
+    protocol = load_protocol(ROOT / "protocols" / "stream_nback.toml")
+    for factor in (0.1, 0.33, 0.5, 2):  # every scaled trial count passes the schema's balance rule
+        n = scaled_trials(protocol, factor)
+        raw = protocol.model_dump(mode="json", exclude_none=True)
+        raw["design"]["trials_per_track"] = n
+        protocol_from_dict(raw, f"factor {factor}")
+    settings = StudySettings(runs=2, seed=2, n_boot=20, jobs=1, progress=False)
+    model = ObserverModel()
+    result = recover(protocol, model, settings, tmp_path / "r", ["design.trials_per_track=[96]"])
+    k = protocol.stream.nback_periods
+    amp = result.table[result.table["quantity"] == "amplitude"]
+    assert list(amp["lag"]) == list(range(k))
+    # DESIGN.md's stream observer: the n-th preceding period shifts by A·g(Δ)·exp(−(n − 1)/τ), lag = n − 1
+    assert np.allclose(amp["truth"], model.amplitude_deg * np.exp(-np.arange(k) / model.decay_periods))
+    assert set(result.table["quantity"]) == {"amplitude", "peak_offset", "decay", "baseline_pse"}
+    assert result.table["runs_with_estimate"].min() == 2
