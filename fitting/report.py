@@ -249,7 +249,7 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
                  if len(tables["aftereffect"]) else pd.DataFrame(columns=AFTEREFFECT_COLUMNS)}
         if len(tables["aftereffect"]):
             group["tuning"], group["decay"], group["decay_detail"], group["curves"] = \
-                group_curves(tables["aftereffect"], opts.level, gnotes)
+                group_curves(tables["aftereffect"], opts.level, gnotes, tables["tuning"], tables["decay"])
         else:
             group["tuning"], group["decay"], group["decay_detail"] = (
                 pd.DataFrame(columns=TUNING_COLUMNS), pd.DataFrame(columns=DECAY_COLUMNS), pd.DataFrame())

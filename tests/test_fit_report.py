@@ -38,7 +38,7 @@ def test_tables_have_exact_columns_group_rows_and_signs(logs, tmp_path):
     report = fit_logs([str(logs)], str(out), n_boot=100, seed=3, figures=False, progress=False)
     for name, cols in DESIGN_COLUMNS.items():
         table = pd.read_csv(out / name)
-        assert list(table.columns) == cols
+        assert list(table.columns) == cols + ["flags"]   # DESIGN.md's columns, then the flags
         assert set(table["observer"]) == {"P1", "P2", "group"}
     shifts = pd.read_csv(out / "aftereffect.csv")
     lag0 = shifts[(shifts["lag"] == 0) & (shifts["adapter_offset_deg"].abs() <= 30)]
