@@ -123,6 +123,8 @@ def _quick_fit_text(rows: list[dict]) -> str:
     import pandas as pd
 
     from fitting import quick_shifts
+    from fitting.flags import MIN_TRIALS_FOR_INTERVAL
+    from fitting.report import exclusion_text
 
     frame = pd.DataFrame(rows)
     try:
@@ -131,7 +133,9 @@ def _quick_fit_text(rows: list[dict]) -> str:
         return f"quick fit not possible yet: {exc.message}"
     if table.empty:
         return ""
-    return "PSE shift so far (deg, rough 95% CI from 50 replicates):\n" + table.to_string(index=False)
+    return (f"PSE shift so far (deg, rough 95% CI from 50 replicates; no CI below "
+            f"{MIN_TRIALS_FOR_INTERVAL} trials or with all answers on one side); "
+            f"{exclusion_text(table.attrs.get('exclusions'))}:\n" + table.to_string(index=False))
 
 
 def cmd_fit(args) -> int:
