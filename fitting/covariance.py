@@ -28,7 +28,7 @@ COVARIANCE_COLUMNS = ["observer", "lag_a", "adapter_offset_a_deg", "lag_b", "ada
                       "covariance_deg2", "replicates", "dof"]
 
 
-def _long(observer, lags, offsets, cov, replicates, dof) -> pd.DataFrame:
+def long_table(observer, lags, offsets, cov, replicates, dof) -> pd.DataFrame:
     n = len(lags)
     ia, ib = np.meshgrid(np.arange(n), np.arange(n), indexing="ij")
     ia, ib = ia.ravel(), ib.ravel()
@@ -46,7 +46,7 @@ def observer_covariance(analysis) -> pd.DataFrame | None:
         return None
     cov = np.atleast_2d(np.cov(reps, rowvar=False))
     ae = analysis.aftereffect
-    return _long(analysis.observer, ae["lag"].to_numpy(float), ae["adapter_offset_deg"].to_numpy(float),
+    return long_table(analysis.observer, ae["lag"].to_numpy(float), ae["adapter_offset_deg"].to_numpy(float),
                  cov, reps.shape[0], np.nan)
 
 
@@ -81,7 +81,7 @@ def group_covariance(analyses, group_shifts: pd.DataFrame, weights: pd.DataFrame
     t = special.stdtrit(dof, 0.5 + level / 2.0)
     se = (group_shifts["ci_high"].to_numpy(float) - group_shifts["ci_low"].to_numpy(float)) / (2 * t)
     cov = corr * np.outer(se, se)
-    return _long(str(group_shifts["observer"].iloc[0]), [c[0] for c in cells], [c[1] for c in cells],
+    return long_table(str(group_shifts["observer"].iloc[0]), [c[0] for c in cells], [c[1] for c in cells],
                  cov, np.nan, dof)
 
 

@@ -11,9 +11,12 @@ spaces (empty = nothing unusual):
                      (read it as "at least" / "at most")
 ``outside-tested``   the PSE lies outside the range of tested offsets
 ``steep``            the fitted spread is implausibly small for the tested
-                     levels (below a fifth of their interquartile range): the
+                     levels (below a tenth of their interquartile range; with a
+                     shared spread, of the median range over conditions): the
                      function may have collapsed on too few trials
 ``few-trials``       fewer than :data:`MIN_TRIALS_FOR_INTERVAL` trials: no interval
+``off-interval``     the estimate lies outside its own interval (a degenerate
+                     bootstrap distribution)
 ``not-converged``    the optimisation stopped before converging (the point fit,
                      or more than 1 % of the bootstrap refits)
 ``model-not-converged``  a model fitted by statsmodels reported no convergence
@@ -28,9 +31,9 @@ from collections import Counter
 import numpy as np
 
 MIN_TRIALS_FOR_INTERVAL = 10
-STEEP_FRACTION = 0.2
+STEEP_FRACTION = 0.1
 WORDS = ("one-sided", "separated", "on-bound", "outside-tested", "steep", "few-trials",
-         "not-converged", "model-not-converged", "descriptive")
+         "off-interval", "not-converged", "model-not-converged", "descriptive")
 
 
 def join(*groups) -> str:
@@ -67,6 +70,14 @@ def psychometric_flags(fit, boot=None) -> list[str]:
     cells = fit.cells
     out = []
     refits_bad = boot is not None and (1.0 - boot.converged.mean()) > 0.01
+    iqr = np.zeros(len(fit.conditions))
+    for c in range(len(fit.conditions)):
+        used = cells.n[c] > 0
+        if used.sum() >= 2:
+            levels = np.repeat(cells.x[c][used], cells.n[c][used].astype(int))
+            iqr[c] = np.subtract(*np.percentile(levels, [75, 25]))
+    if fit.layout.shared_spread:
+        iqr[:] = np.median(iqr)
     for c in range(len(fit.conditions)):
         words = []
         sep = fit.separation[c] if fit.separation else ""
@@ -80,11 +91,8 @@ def psychometric_flags(fit, boot=None) -> list[str]:
         x = cells.x[c][used]
         if x.size and not (x.min() <= fit.pse[c] <= x.max()):
             words.append("outside-tested")
-        if x.size >= 2:
-            levels = np.repeat(x, cells.n[c][used].astype(int))
-            iqr = np.subtract(*np.percentile(levels, [75, 25]))
-            if iqr > 0 and fit.spread[c] < STEEP_FRACTION * iqr:
-                words.append("steep")
+        if iqr[c] > 0 and fit.spread[c] < STEEP_FRACTION * iqr[c]:
+            words.append("steep")
         if fit.n_trials[c] < MIN_TRIALS_FOR_INTERVAL:
             words.append("few-trials")
         if not fit.converged or refits_bad:
