@@ -217,6 +217,9 @@ def analyse_observer(observer: str, trials: pd.DataFrame, opts: Options,
     few = fit.n_trials < MIN_TRIALS_FOR_INTERVAL
     lo, hi = np.where(few, np.nan, lo), np.where(few, np.nan, hi)
     cond_flags = psychometric_flags(fit, boot)
+    box = zip(fit.lower[fit.layout.pse_index], fit.upper[fit.layout.pse_index])
+    cond_flags = [join(f, ["on-bound"] if on_bound(e, l, h, b) else [])
+                  for f, e, l, h, b in zip(cond_flags, fit.pse, lo, hi, box)]
     pse = pd.DataFrame({
         "observer": observer, "condition": names,
         "adapter_offset_deg": conds["adapter_offset_deg"].to_numpy(),
