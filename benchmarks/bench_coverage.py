@@ -1,0 +1,237 @@
+"""Coverage of every printed interval, and compare's false rejections, through the real engine.
+
+For each cell (procedure × trials per condition) the script simulates
+``--groups`` groups of 3 and of 8 observers with between-observer
+variability (``--model``, default ``protocols/observers/typical.toml``, its
+``spread_between_observers``) on ``--protocol`` (default: the bundled
+``offset_by_lag.toml`` with ``trials_per_track`` and ``method`` replaced),
+through ``simulate`` → trial log → ``fit``, and checks:
+
+* observers (every observer of every group, against its own drawn truth):
+  condition PSEs, PSE shifts, tuning amplitude and peak offset per lag,
+  decay τ;
+* groups of 3 and of 8 (against the population: the mean over 20,000 draws
+  of the observers' true PSEs and shifts, and the DoG / decay fits of that
+  mean curve): the same intervals;
+* ``compare``'s χ² at the 5 % level when the predictions are the truth (the
+  observer's own true shifts; the population-mean shifts for a group), with
+  the covariance ``fit`` writes.
+
+Coverage is the share of intervals holding the truth; its Monte Carlo error
+is the standard error over experiments (an experiment's intervals are
+correlated, so the experiment, not the interval, is the unit).
+Targets: coverage 93–97 %; false rejections 3–8 %.
+
+Run: ``python benchmarks/bench_coverage.py [--groups 6] [--boot 400] [--jobs 2]
+[--trials 24 40] [--procedures updown bayesian]``
+"""
+
+from __future__ import annotations
+
+import argparse
+import re
+import sys
+import tempfile
+import time
+from collections import defaultdict
+from concurrent.futures import ProcessPoolExecutor
+from dataclasses import replace
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+from fitting.aftereffect import fit_decay, fit_tuning, peak_bounds  # noqa: E402
+from fitting.compare import compare_results  # noqa: E402
+from fitting.report import fit_logs  # noqa: E402
+from runner.launch import simulate  # noqa: E402
+from runner.observers import ObserverModel, draw_observers, load_model  # noqa: E402
+from runner.protocol import load_protocol  # noqa: E402
+
+
+def protocol_text(base: str, trials_per_condition: int, method: str) -> str:
+    """The base protocol with two tracks of ``trials_per_condition / 2`` and the given method."""
+    text = Path(base).read_text(encoding="utf-8")
+    text = re.sub(r"(?m)^tracks_per_condition\s*=.*$", "tracks_per_condition = 2", text)
+    text = re.sub(r"(?m)^trials_per_track\s*=.*$", f"trials_per_track = {trials_per_condition // 2}", text)
+    return re.sub(r'(?m)^method\s*=.*$', f'method = "{method}"', text)
+
+
+def shift(m: ObserverModel, offset, lag):
+    u = np.asarray(offset, float) / m.peak_offset_deg
+    return m.amplitude_deg * u * np.exp(0.5 - 0.5 * u * u) * np.exp(-np.asarray(lag, float) / m.decay_periods)
+
+
+def population_truth(model: ObserverModel, offsets, lags, draws: int = 20000):
+    """Population-mean PSE, shifts and the curve parameters fitted to the mean curve."""
+    rng = np.random.default_rng(12345)
+    z = rng.standard_normal((draws, 5)) * model.spread_between_observers
+    amp = model.amplitude_deg * np.exp(0.2 * z[:, 2])
+    w = model.peak_offset_deg * np.exp(0.15 * z[:, 3])
+    tau = model.decay_periods * np.exp(0.2 * z[:, 4])
+    d, k = np.meshgrid(np.asarray(offsets, float), np.asarray(lags, float))      # (K, J)
+    u = d[None] / w[:, None, None]
+    mean = (amp[:, None, None] * u * np.exp(0.5 - 0.5 * u * u) * np.exp(-k[None] / tau[:, None, None])).mean(0)
+    prange = peak_bounds(offsets)
+    truth = {"pse0": model.pse_deg, "shift": {(float(lag), float(o)): mean[i, j]
+                                              for i, lag in enumerate(lags) for j, o in enumerate(offsets)}}
+    ones = np.ones(len(offsets))
+    for i, lag in enumerate(lags):
+        t = fit_tuning(offsets, mean[i][None], ones, prange)
+        truth[("amp", float(lag))], truth[("peak", float(lag))] = float(t.amplitude[0]), float(t.peak[0])
+    dfit = fit_decay(offsets, np.asarray(lags, float), mean[None], np.ones_like(mean), prange)
+    truth["tau"] = float(dfit.tau[0])
+    return truth
+
+
+def observer_truth(m: ObserverModel, offsets, lags):
+    truth = {"pse0": m.pse_deg, "tau": m.decay_periods,
+             "shift": {(float(lag), float(o)): float(shift(m, o, lag)) for lag in lags for o in offsets}}
+    for lag in lags:
+        truth[("amp", float(lag))] = float(m.amplitude_deg * np.exp(-lag / m.decay_periods))
+        truth[("peak", float(lag))] = m.peak_offset_deg
+    return truth
+
+
+def _inside(lo, hi, true):
+    return bool(np.isfinite(lo) and np.isfinite(hi) and lo <= true <= hi)
+
+
+def score(report, who: str, truth: dict) -> dict:
+    """Per interval kind: (covered, total) of one observer's (or the group's) rows."""
+    out = defaultdict(lambda: [0, 0])
+
+    def add(kind, lo, hi, true):
+        out[kind][0] += _inside(lo, hi, true)
+        out[kind][1] += 1
+
+    for r in report.pse[report.pse["observer"] == who].itertuples():
+        sh = 0.0 if pd.isna(r.lag) else truth["shift"][(float(r.lag), float(r.adapter_offset_deg))]
+        add("condition PSE", r.pse_ci_low, r.pse_ci_high, truth["pse0"] + sh)
+    for r in report.aftereffect[report.aftereffect["observer"] == who].itertuples():
+        add("PSE shift", r.ci_low, r.ci_high, truth["shift"][(float(r.lag), float(r.adapter_offset_deg))])
+    for r in report.tuning[report.tuning["observer"] == who].itertuples():
+        add("tuning amplitude", r.amplitude_ci_low, r.amplitude_ci_high, truth[("amp", float(r.lag))])
+        add("peak offset", r.peak_offset_ci_low, r.peak_offset_ci_high, truth[("peak", float(r.lag))])
+    for r in report.decay[report.decay["observer"] == who].itertuples():
+        add("decay", r.ci_low, r.ci_high, truth["tau"])
+    return {k: tuple(v) for k, v in out.items()}
+
+
+def one_group(args) -> dict:
+    """Simulate and fit one group; score observers and the group, and compare against the truth."""
+    text, model, n_obs, seed, n_boot, pop = args
+    with tempfile.TemporaryDirectory() as tmp:
+        path = Path(tmp) / "protocol.toml"
+        path.write_text(text, encoding="utf-8")
+        protocol = load_protocol(str(path))
+        offsets, lags = protocol.design.adapter_offsets_deg, protocol.design.lags
+        logs = simulate(protocol, str(path), text, Path(tmp) / "logs", model, n_obs, seed, progress=False)
+        t0 = time.perf_counter()
+        report = fit_logs([str(p) for p in logs], str(Path(tmp) / "fit"), n_boot=n_boot, seed=seed,
+                          progress=False, figures=False)
+        fit_s = time.perf_counter() - t0
+        models = draw_observers(model, n_obs, seed)
+        truths = {f"sim{i + 1:02d}": observer_truth(m, offsets, lags) for i, m in enumerate(models)}
+        truths["group"] = pop
+        rows = [{"observer": who, "lag": lag, "adapter_offset_deg": o, "pse_shift_deg": v}
+                for who, t in truths.items() for (lag, o), v in t["shift"].items()]
+        rejected = {}
+        for who in truths:
+            pred = pd.DataFrame([r for r in rows if r["observer"] == who]).drop(columns="observer")
+            pred.to_csv(Path(tmp) / f"pred_{who}.csv", index=False)
+            table = compare_results(Path(tmp) / "fit", Path(tmp) / f"pred_{who}.csv", Path(tmp) / "cmp",
+                                    figures=False).table
+            row = table[(table["observer"] == who) & (table["lag"] == "all")].iloc[0]
+            rejected[who] = (bool(row["chi2_p"] < 0.05), float(row["chi2"]), int(row["dof"]),
+                             float(row["gain_ci_low"]) <= 1.0 <= float(row["gain_ci_high"]))
+    return {"n_obs": n_obs, "fit_s": fit_s,
+            "scores": {who: score(report, who, t) for who, t in truths.items()}, "rejected": rejected}
+
+
+def _coverage(units):
+    """Pooled share and its Monte Carlo SE over experiments (ratio estimator)."""
+    cov = np.array([c for c, _ in units], float)
+    tot = np.array([t for _, t in units], float)
+    keep = tot > 0
+    cov, tot = cov[keep], tot[keep]
+    if tot.sum() == 0:
+        return np.nan, np.nan, 0
+    p = cov.sum() / tot.sum()
+    n = tot.size
+    se = np.sqrt(np.sum((cov - p * tot) ** 2) / (n * (n - 1))) / tot.mean() if n > 1 else np.nan
+    return p, se, int(tot.sum())
+
+
+def _verdict(p, se, lo, hi):
+    if not np.isfinite(p):
+        return "–"
+    if lo <= p <= hi:
+        return "met"
+    if not np.isfinite(se):
+        return "missed (no MC SE)"
+    return "MISSED" if (p + 2 * se < lo or p - 2 * se > hi) else "missed (within 2 MC SE)"
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--groups", type=int, default=6, help="groups of each size per cell")
+    ap.add_argument("--sizes", type=int, nargs="+", default=[3, 8])
+    ap.add_argument("--boot", type=int, default=400)
+    ap.add_argument("--jobs", type=int, default=2)
+    ap.add_argument("--trials", type=int, nargs="+", default=[24, 40], help="trials per condition")
+    ap.add_argument("--procedures", nargs="+", default=["updown", "bayesian"])
+    ap.add_argument("--protocol", default=str(ROOT / "protocols" / "offset_by_lag.toml"))
+    ap.add_argument("--model", default=str(ROOT / "protocols" / "observers" / "typical.toml"))
+    args = ap.parse_args()
+    model = load_model(args.model)
+    base = load_protocol(args.protocol)
+    pop = population_truth(model, base.design.adapter_offsets_deg, base.design.lags)
+    t0 = time.perf_counter()
+    print(f"# coverage: {args.groups} groups of each size {args.sizes} per cell, {args.boot} replicates, "
+          f"model {Path(args.model).name} (between-observer spread {model.spread_between_observers:g})")
+    print("| procedure | trials/cond. | who | interval | coverage ± MC SE | intervals | target 93–97 % |")
+    print("|---|---|---|---|---|---|---|")
+    rej_lines = []
+    for proc in args.procedures:
+        for n_trials in args.trials:
+            text = protocol_text(args.protocol, n_trials, proc)
+            jobs = [(text, model, size, 1000 * size + g, args.boot, pop)
+                    for size in args.sizes for g in range(args.groups)]
+            with ProcessPoolExecutor(max_workers=args.jobs) as pool:
+                results = list(pool.map(one_group, jobs))
+            units = defaultdict(list)
+            rej = defaultdict(list)
+            for res in results:
+                for who, sc in res["scores"].items():
+                    label = "observers" if who != "group" else f"groups of {res['n_obs']}"
+                    for kind, pair in sc.items():
+                        units[(label, kind)].append(pair)
+                    rej[label].append(res["rejected"][who])
+            for (label, kind), u in sorted(units.items()):
+                p, se, n = _coverage(u)
+                print(f"| {proc} | {n_trials} | {label} | {kind} | {100 * p:.1f} ± {100 * se:.1f} % | {n} | "
+                      f"{_verdict(p, se, 0.93, 0.97)} |")
+            for label, r in sorted(rej.items()):
+                share = np.mean([x[0] for x in r])
+                se = np.sqrt(share * (1 - share) / len(r))
+                mean_chi2 = np.mean([x[1] / x[2] for x in r])
+                gain_cov = np.mean([x[3] for x in r])
+                rej_lines.append(f"| {proc} | {n_trials} | {label} | {100 * share:.1f} ± {100 * se:.1f} % | {len(r)} | "
+                                 f"{mean_chi2:.2f} | {100 * gain_cov:.0f} % | {_verdict(share, se, 0.03, 0.08)} |")
+            fit_s = np.mean([r["fit_s"] / r["n_obs"] for r in results])
+            rej_lines.append(f"|  |  | fit time per observer | {fit_s:.2f} s |  |  |  |  |")
+            sys.stdout.flush()
+    print()
+    print("| procedure | trials/cond. | who | χ² rejections at 5 % (truth predicted) ± MC SE | tests | "
+          "mean χ²/df | gain CI holds 1 | target 3–8 % |")
+    print("|---|---|---|---|---|---|---|---|")
+    print("\n".join(rej_lines))
+    print(f"\ntotal {time.perf_counter() - t0:.0f} s")
+
+
+if __name__ == "__main__":
+    main()
