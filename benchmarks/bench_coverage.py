@@ -17,13 +17,17 @@ through ``simulate`` → trial log → ``fit``, and checks:
   observer's own true shifts; the population-mean shifts for a group), with
   the covariance ``fit`` writes.
 
+Each simulated group is fitted with each bootstrap of ``--bootstraps`` (the
+fixed-level one and the one that re-runs the adaptive tracks), side by side
+on the same logs.
+
 Coverage is the share of intervals holding the truth; its Monte Carlo error
 is the standard error over experiments (an experiment's intervals are
 correlated, so the experiment, not the interval, is the unit).
 Targets: coverage 93–97 %; false rejections 3–8 %.
 
 Run: ``python benchmarks/bench_coverage.py [--groups 6] [--boot 400] [--jobs 2]
-[--trials 24 40] [--procedures updown bayesian]``
+[--trials 24 40] [--procedures updown bayesian] [--bootstraps fixed rerun]``
 """
 
 from __future__ import annotations
@@ -50,6 +54,7 @@ from fitting.report import fit_logs  # noqa: E402
 from runner.launch import simulate  # noqa: E402
 from runner.observers import ObserverModel, draw_observers, load_model  # noqa: E402
 from runner.protocol import load_protocol  # noqa: E402
+from runner.replay import track_factories  # noqa: E402
 
 
 def protocol_text(base: str, trials_per_condition: int, method: str) -> str:
@@ -122,34 +127,40 @@ def score(report, who: str, truth: dict) -> dict:
 
 
 def one_group(args) -> dict:
-    """Simulate and fit one group; score observers and the group, and compare against the truth."""
-    text, model, n_obs, seed, n_boot, pop = args
+    """Simulate one group, fit it with each bootstrap; score observers and group, compare with the truth."""
+    text, model, n_obs, seed, n_boot, pop, bootstraps = args
+    out = {"n_obs": n_obs, "fit_s": {}, "scores": {}, "rejected": {}}
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "protocol.toml"
         path.write_text(text, encoding="utf-8")
         protocol = load_protocol(str(path))
         offsets, lags = protocol.design.adapter_offsets_deg, protocol.design.lags
-        logs = simulate(protocol, str(path), text, Path(tmp) / "logs", model, n_obs, seed, progress=False)
-        t0 = time.perf_counter()
-        report = fit_logs([str(p) for p in logs], str(Path(tmp) / "fit"), n_boot=n_boot, seed=seed,
-                          progress=False, figures=False)
-        fit_s = time.perf_counter() - t0
+        logs = [str(p) for p in simulate(protocol, str(path), text, Path(tmp) / "logs", model, n_obs, seed,
+                                         progress=False)]
         models = draw_observers(model, n_obs, seed)
         truths = {f"sim{i + 1:02d}": observer_truth(m, offsets, lags) for i, m in enumerate(models)}
         truths["group"] = pop
         rows = [{"observer": who, "lag": lag, "adapter_offset_deg": o, "pse_shift_deg": v}
                 for who, t in truths.items() for (lag, o), v in t["shift"].items()]
-        rejected = {}
         for who in truths:
-            pred = pd.DataFrame([r for r in rows if r["observer"] == who]).drop(columns="observer")
-            pred.to_csv(Path(tmp) / f"pred_{who}.csv", index=False)
-            table = compare_results(Path(tmp) / "fit", Path(tmp) / f"pred_{who}.csv", Path(tmp) / "cmp",
-                                    figures=False).table
-            row = table[(table["observer"] == who) & (table["lag"] == "all")].iloc[0]
-            rejected[who] = (bool(row["chi2_p"] < 0.05), float(row["chi2"]), int(row["dof"]),
-                             float(row["gain_ci_low"]) <= 1.0 <= float(row["gain_ci_high"]))
-    return {"n_obs": n_obs, "fit_s": fit_s,
-            "scores": {who: score(report, who, t) for who, t in truths.items()}, "rejected": rejected}
+            pd.DataFrame([r for r in rows if r["observer"] == who]).drop(columns="observer").to_csv(
+                Path(tmp) / f"pred_{who}.csv", index=False)
+        for boot in bootstraps:
+            fit_dir = Path(tmp) / f"fit_{boot}"
+            t0 = time.perf_counter()
+            report = fit_logs(logs, str(fit_dir), n_boot=n_boot, seed=seed, progress=False, figures=False,
+                              tracks=track_factories(logs) if boot == "rerun" else None)
+            out["fit_s"][boot] = time.perf_counter() - t0
+            out["scores"][boot] = {who: score(report, who, t) for who, t in truths.items()}
+            rejected = {}
+            for who in truths:
+                table = compare_results(fit_dir, Path(tmp) / f"pred_{who}.csv", Path(tmp) / "cmp",
+                                        figures=False).table
+                row = table[(table["observer"] == who) & (table["lag"] == "all")].iloc[0]
+                rejected[who] = (bool(row["chi2_p"] < 0.05), float(row["chi2"]), int(row["dof"]),
+                                 float(row["gain_ci_low"]) <= 1.0 <= float(row["gain_ci_high"]))
+            out["rejected"][boot] = rejected
+    return out
 
 
 def _coverage(units):
@@ -184,6 +195,8 @@ def main() -> None:
     ap.add_argument("--jobs", type=int, default=2)
     ap.add_argument("--trials", type=int, nargs="+", default=[24, 40], help="trials per condition")
     ap.add_argument("--procedures", nargs="+", default=["updown", "bayesian"])
+    ap.add_argument("--bootstraps", nargs="+", default=["fixed", "rerun"], choices=["fixed", "rerun"],
+                    help="fixed: levels held (default of fit); rerun: tracks re-run (fit --rerun-tracks)")
     ap.add_argument("--protocol", default=str(ROOT / "protocols" / "offset_by_lag.toml"))
     ap.add_argument("--model", default=str(ROOT / "protocols" / "observers" / "typical.toml"))
     args = ap.parse_args()
@@ -193,42 +206,44 @@ def main() -> None:
     t0 = time.perf_counter()
     print(f"# coverage: {args.groups} groups of each size {args.sizes} per cell, {args.boot} replicates, "
           f"model {Path(args.model).name} (between-observer spread {model.spread_between_observers:g})")
-    print("| procedure | trials/cond. | who | interval | coverage ± MC SE | intervals | target 93–97 % |")
-    print("|---|---|---|---|---|---|---|")
+    print("| procedure | trials/cond. | bootstrap | who | interval | coverage ± MC SE | intervals | target 93–97 % |")
+    print("|---|---|---|---|---|---|---|---|")
     rej_lines = []
     for proc in args.procedures:
         for n_trials in args.trials:
             text = protocol_text(args.protocol, n_trials, proc)
-            jobs = [(text, model, size, 1000 * size + g, args.boot, pop)
+            jobs = [(text, model, size, 1000 * size + g, args.boot, pop, args.bootstraps)
                     for size in args.sizes for g in range(args.groups)]
             with ProcessPoolExecutor(max_workers=args.jobs) as pool:
                 results = list(pool.map(one_group, jobs))
-            units = defaultdict(list)
-            rej = defaultdict(list)
-            for res in results:
-                for who, sc in res["scores"].items():
-                    label = "observers" if who != "group" else f"groups of {res['n_obs']}"
-                    for kind, pair in sc.items():
-                        units[(label, kind)].append(pair)
-                    rej[label].append(res["rejected"][who])
-            for (label, kind), u in sorted(units.items()):
-                p, se, n = _coverage(u)
-                print(f"| {proc} | {n_trials} | {label} | {kind} | {100 * p:.1f} ± {100 * se:.1f} % | {n} | "
-                      f"{_verdict(p, se, 0.93, 0.97)} |")
-            for label, r in sorted(rej.items()):
-                share = np.mean([x[0] for x in r])
-                se = np.sqrt(share * (1 - share) / len(r))
-                mean_chi2 = np.mean([x[1] / x[2] for x in r])
-                gain_cov = np.mean([x[3] for x in r])
-                rej_lines.append(f"| {proc} | {n_trials} | {label} | {100 * share:.1f} ± {100 * se:.1f} % | {len(r)} | "
-                                 f"{mean_chi2:.2f} | {100 * gain_cov:.0f} % | {_verdict(share, se, 0.03, 0.08)} |")
-            fit_s = np.mean([r["fit_s"] / r["n_obs"] for r in results])
-            rej_lines.append(f"|  |  | fit time per observer | {fit_s:.2f} s |  |  |  |  |")
+            for boot in args.bootstraps:
+                units = defaultdict(list)
+                rej = defaultdict(list)
+                for res in results:
+                    for who, sc in res["scores"][boot].items():
+                        label = "observers" if who != "group" else f"groups of {res['n_obs']}"
+                        for kind, pair in sc.items():
+                            units[(label, kind)].append(pair)
+                        rej[label].append(res["rejected"][boot][who])
+                for (label, kind), u in sorted(units.items()):
+                    p, se, n = _coverage(u)
+                    print(f"| {proc} | {n_trials} | {boot} | {label} | {kind} | {100 * p:.1f} ± {100 * se:.1f} % | "
+                          f"{n} | {_verdict(p, se, 0.93, 0.97)} |")
+                for label, r in sorted(rej.items()):
+                    share = np.mean([x[0] for x in r])
+                    se = np.sqrt(share * (1 - share) / len(r))
+                    mean_chi2 = np.mean([x[1] / x[2] for x in r])
+                    gain_cov = np.mean([x[3] for x in r])
+                    rej_lines.append(f"| {proc} | {n_trials} | {boot} | {label} | {100 * share:.1f} ± {100 * se:.1f} % | "
+                                     f"{len(r)} | {mean_chi2:.2f} | {100 * gain_cov:.0f} % | "
+                                     f"{_verdict(share, se, 0.03, 0.08)} |")
+                fit_s = np.mean([r["fit_s"][boot] / r["n_obs"] for r in results])
+                rej_lines.append(f"| {proc} | {n_trials} | {boot} | fit time per observer | {fit_s:.2f} s |  |  |  |  |")
             sys.stdout.flush()
     print()
-    print("| procedure | trials/cond. | who | χ² rejections at 5 % (truth predicted) ± MC SE | tests | "
+    print("| procedure | trials/cond. | bootstrap | who | χ² rejections at 5 % (truth predicted) ± MC SE | tests | "
           "mean χ²/df | gain CI holds 1 | target 3–8 % |")
-    print("|---|---|---|---|---|---|---|---|")
+    print("|---|---|---|---|---|---|---|---|---|")
     print("\n".join(rej_lines))
     print(f"\ntotal {time.perf_counter() - t0:.0f} s")
 

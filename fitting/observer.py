@@ -28,6 +28,7 @@ from scipy import special
 from .aftereffect import TAU_BOUNDS, bound_note, fit_decay, fit_tuning, peak_bounds
 from .bootstrap import BootstrapResult, parametric_bootstrap
 from .flags import MIN_TRIALS_FOR_INTERVAL, condense, join, on_bound, psychometric_flags
+from .replay import replay_bootstrap
 from .psychometric import DEFAULT_LAPSE_MAX, Cells, PsychometricFit, fit_cells
 
 PSE_COLUMNS = ["observer", "condition", "adapter_offset_deg", "lag", "pse_deg", "pse_ci_low",
@@ -58,6 +59,10 @@ class Options:
     lapse_max : float
     progress : bool or None
         Progress bar (None: only on a terminal).
+    tracks : dict of str -> callable, optional
+        Per observer, a factory of fresh adaptive tracks; observers listed
+        here are bootstrapped by re-running their tracks (:mod:`fitting.replay`),
+        the others with the levels held fixed.
     """
 
     n_boot: int = 1000
@@ -68,6 +73,7 @@ class Options:
     level: float = 0.95
     lapse_max: float = DEFAULT_LAPSE_MAX
     progress: bool | None = None
+    tracks: dict | None = None
 
 
 @dataclass
@@ -203,7 +209,14 @@ def analyse_observer(observer: str, trials: pd.DataFrame, opts: Options,
         notes.append(f"lapse on its bound ({fit.lapse:g})")
     boot = None
     if opts.n_boot > 0:
-        boot = parametric_bootstrap(fit, opts.n_boot, rng, opts.progress, f"bootstrap {observer}")
+        factory = (opts.tracks or {}).get(observer)
+        if factory is not None:
+            plan = [[(str(t), int(m)) for t, m in trials[trials["condition"] == name]
+                     .groupby("track", sort=True).size().items()] for name in names]
+            boot = replay_bootstrap(fit, plan, factory, opts.n_boot, rng, opts.progress,
+                                    f"bootstrap {observer} (tracks re-run)")
+        else:
+            boot = parametric_bootstrap(fit, opts.n_boot, rng, opts.progress, f"bootstrap {observer}")
         bad = 1.0 - boot.converged.mean()
         if bad > 0:
             notes.append(f"{100 * bad:.1f}% of bootstrap refits stopped before converging")

@@ -33,7 +33,7 @@ from __future__ import annotations
 import math
 import numbers
 import zlib
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -240,13 +240,15 @@ def _observer_rng(seed: int, observer: str) -> np.random.Generator:
 def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="free",
                spread: str = "shared", progress=True, *, sigmoid: str = "gaussian",
                interval: str = "bca", level: float = 0.95,
-               lapse_max: float = DEFAULT_LAPSE_MAX) -> FitReport:
+               lapse_max: float = DEFAULT_LAPSE_MAX, tracks: dict | None = None) -> FitReport:
     """Fit checked trials (from :func:`read_logs`) without writing anything.
 
     Same options as :func:`fit_logs`; returns the :class:`FitReport` with
     no files.
     """
     opts = _check_options(n_boot, seed, lapse, spread, sigmoid, interval, level, lapse_max, progress)
+    if tracks:
+        opts = replace(opts, tracks=dict(tracks))
     analyses: list[ObserverAnalysis] = []
     for observer, obs_trials in trials.groupby("observer", sort=True):
         analyses.append(analyse_observer(str(observer), obs_trials.reset_index(drop=True), opts,
@@ -307,7 +309,7 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
              spread: str = "shared", include_bad_timing: bool = False, progress=True,
              figures: bool = True, *, include_practice: bool = False, sigmoid: str = "gaussian",
              interval: str = "bca", level: float = 0.95,
-             lapse_max: float = DEFAULT_LAPSE_MAX) -> FitReport:
+             lapse_max: float = DEFAULT_LAPSE_MAX, tracks: dict | None = None) -> FitReport:
     """Read trial logs, fit every observer (and the group), write tables and figures.
 
     Parameters
@@ -344,6 +346,11 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
         Confidence level.
     lapse_max : float
         Upper bound of a free lapse (default 0.1).
+    tracks : dict of str -> callable, optional
+        Per observer, a factory of fresh adaptive tracks: the bootstrap then
+        re-runs the tracks with the fitted observer (:mod:`fitting.replay`;
+        the command line builds these from the sidecars with
+        ``--rerun-tracks``).
 
     Returns
     -------
@@ -360,7 +367,7 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
     _check_options(n_boot, seed, lapse, spread, sigmoid, interval, level, lapse_max, progress)
     trials = read_logs(paths, include_bad_timing, include_practice)
     report = fit_trials(trials, n_boot, seed, lapse, spread, progress, sigmoid=sigmoid,
-                        interval=interval, level=level, lapse_max=lapse_max)
+                        interval=interval, level=level, lapse_max=lapse_max, tracks=tracks)
     # all fitting is done; only now is anything written
     fig_files: list[str] = []
     if figures:
