@@ -165,8 +165,13 @@ def cmd_fit(args) -> int:
     if streams:
         report = fit_stream_logs(streams, args.out, **common)
     else:
+        tracks = None
+        if args.rerun_tracks:
+            from runner.replay import track_factories
+
+            tracks = track_factories(trials)
         report = fit_logs(trials, args.out, spread=args.spread, include_practice=args.include_practice,
-                          sigmoid=args.function, level=args.level, **common)
+                          sigmoid=args.function, level=args.level, tracks=tracks, **common)
     print(report.summary())
     return EXIT_OK
 
@@ -267,6 +272,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--include-bad-timing", action="store_true", help="keep trials with timing_ok = false")
     p.add_argument("--include-practice", action="store_true", help="keep practice trials")
     p.add_argument("--no-figures", action="store_true", help="tables only")
+    p.add_argument("--rerun-tracks", action="store_true",
+                   help="bootstrap by re-running each adaptive track with the fitted observer (protocol from the "
+                        "sidecars; closer to nominal coverage, slower: minutes with Bayesian tracks)")
     p.set_defaults(func=cmd_fit)
 
     p = sub.add_parser("compare", help="agreement of measured after-effects with a predictions table")

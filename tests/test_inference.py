@@ -119,3 +119,27 @@ def test_flag_words_and_condensed_messages():
     lines = condense(["Maximum likelihood optimization failed to converge.\nCheck mle_retvals",
                       "Maximum likelihood optimization failed to converge.", "Hessian not positive"])
     assert lines == ["Maximum likelihood optimization failed to converge. (x2)", "Hessian not positive"]
+
+
+def test_rerun_tracks_bootstrap_replays_the_logged_procedure(tmp_path):
+    # the real engine writes a log and sidecar; the bootstrap re-runs its tracks (runner.tracks) per replicate
+    from runner.cli import main
+    from runner.replay import track_factories
+
+    proto = tmp_path / "p.toml"
+    proto.write_text("[design]\nadapter_offsets_deg = [-30, 30]\nlags = [0]\ntrials_per_track = 12\n"
+                     "practice_trials = 0\n")
+    assert main(["simulate", str(proto), "--out", str(tmp_path / "logs"), "--seed", "3"]) == 0
+    logs = sorted(str(p) for p in (tmp_path / "logs").glob("*.trials.csv"))
+    factory = track_factories(logs)["sim01"]
+    track = factory("baseline", "1")
+    assert track.next_level() == -20.0                # track 1 starts on the counter-clockwise side
+    fixed = fit_logs(logs, str(tmp_path / "a"), n_boot=120, seed=2, figures=False, progress=False)
+    rerun = fit_logs(logs, str(tmp_path / "b"), n_boot=120, seed=2, figures=False, progress=False,
+                     tracks=track_factories(logs))
+    assert np.allclose(fixed.pse["pse_deg"], rerun.pse["pse_deg"])          # same point fit
+    assert not np.allclose(fixed.pse["pse_ci_low"], rerun.pse["pse_ci_low"])  # other replicates
+    boot = rerun.analyses[0].boot
+    assert boot.converged.mean() > 0.95 and np.isfinite(rerun.pse["pse_ci_low"]).all()
+    assert main(["fit", *logs, "--out", str(tmp_path / "c"), "--bootstrap", "60", "--rerun-tracks",
+                 "--no-figures"]) == 0
