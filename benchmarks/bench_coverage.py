@@ -116,6 +116,8 @@ def score(report, who: str, truth: dict) -> dict:
     for r in report.pse[report.pse["observer"] == who].itertuples():
         sh = 0.0 if pd.isna(r.lag) else truth["shift"][(float(r.lag), float(r.adapter_offset_deg))]
         add("condition PSE", r.pse_ci_low, r.pse_ci_high, truth["pse0"] + sh)
+        if "steep" in str(r.flags):
+            add("condition PSE flagged steep", r.pse_ci_low, r.pse_ci_high, truth["pse0"] + sh)
     for r in report.aftereffect[report.aftereffect["observer"] == who].itertuples():
         add("PSE shift", r.ci_low, r.ci_high, truth["shift"][(float(r.lag), float(r.adapter_offset_deg))])
     for r in report.tuning[report.tuning["observer"] == who].itertuples():
