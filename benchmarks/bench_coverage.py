@@ -241,6 +241,7 @@ def main() -> None:
                                      f"{_verdict(share, se, 0.03, 0.08)} |")
                 fit_s = np.mean([r["fit_s"][boot] / r["n_obs"] for r in results])
                 rej_lines.append(f"| {proc} | {n_trials} | {boot} | fit time per observer | {fit_s:.2f} s |  |  |  |  |")
+            print(f"# χ² lines so far:\n" + "\n".join(rej_lines), file=sys.stderr, flush=True)
             sys.stdout.flush()
     print()
     print("| procedure | trials/cond. | bootstrap | who | χ² rejections at 5 % (truth predicted) ± MC SE | tests | "

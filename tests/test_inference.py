@@ -29,7 +29,7 @@ def _log_risk_ratios():
 @pytest.mark.filterwarnings("ignore:`use_t=True` requires")
 def test_random_effects_reproduces_the_published_bcg_example_and_statsmodels():
     y, v = _log_risk_ratios()
-    res = random_effects(y, v, truncate=False)
+    res = random_effects(y, v, floor=False)
     # DerSimonian-Laird on the BCG data: tau^2 = 0.3088, pooled log risk ratio -0.7141 (se 0.1787
     # without the Hartung-Knapp scaling), as tabulated for this example (Viechtbauer 2010; from memory)
     assert res.tau2 == pytest.approx(0.3088, abs=5e-5)
@@ -50,11 +50,16 @@ def test_three_agreeing_observers_cannot_shrink_the_group_interval_below_their_o
     v = variance_from_interval(y - 2.0, y + 2.0)
     res = random_effects(y, v)
     fixed_half = stats.norm.ppf(0.975) * np.sqrt(1 / np.sum(1 / v))
-    assert (res.high - res.low) / 2 >= fixed_half - 1e-12
-    # Hartung-Knapp with q truncated at 1 (Knapp & Hartung 2003): t on 2 df times the RE standard error
-    assert (res.high - res.low) / 2 == pytest.approx(stats.t.ppf(0.975, 2) * np.sqrt(1 / np.sum(1 / v)))
-    # the untruncated interval is the overconfident one the group rows used to print
-    assert (random_effects(y, v, truncate=False).high - res.low) < (res.high - res.low)
+    plain = random_effects(y, v, floor=False)
+    # plain Hartung-Knapp shrinks with the chance agreement (q << 1): narrower than the observers allow
+    assert (plain.high - plain.low) / 2 < fixed_half
+    assert (res.high - res.low) / 2 == pytest.approx(fixed_half)        # the floor holds it
+    # Knapp & Hartung (2003) truncation q >= 1: t on 2 df times the fixed-effect standard error here
+    trunc = random_effects(y, v, truncate=True)
+    assert (trunc.high - trunc.low) / 2 == pytest.approx(stats.t.ppf(0.975, 2) * np.sqrt(1 / np.sum(1 / v)))
+    # the old between-observer t interval (sd of three numbers) was far narrower still
+    old_half = stats.t.ppf(0.975, 2) * np.std(y, ddof=1) / np.sqrt(3)
+    assert old_half < 0.2 * fixed_half
 
 
 def test_full_covariance_chi2_is_calibrated_where_the_diagonal_one_is_not():
