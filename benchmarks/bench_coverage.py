@@ -41,6 +41,7 @@ from collections import defaultdict
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import replace
 from pathlib import Path
+from types import SimpleNamespace
 
 import numpy as np
 import pandas as pd
@@ -49,7 +50,9 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from fitting.aftereffect import fit_decay, fit_tuning, peak_bounds  # noqa: E402
-from fitting.compare import compare_results  # noqa: E402
+from fitting.compare import agreement, compare_results  # noqa: E402
+from fitting.covariance import covariance_matrix, group_covariance  # noqa: E402
+from fitting.group import GROUP, group_aftereffect, group_curves, group_pse, group_weights  # noqa: E402
 from fitting.report import fit_logs  # noqa: E402
 from runner.launch import simulate  # noqa: E402
 from runner.observers import ObserverModel, draw_observers, load_model  # noqa: E402
@@ -154,6 +157,11 @@ def one_group(args) -> dict:
                               tracks=track_factories(logs) if boot == "rerun" else None)
             out["fit_s"][boot] = time.perf_counter() - t0
             out["scores"][boot] = {who: score(report, who, t) for who, t in truths.items()}
+            # observer rows for groups pooled across simulated groups (renamed to stay apart)
+            own = {k: getattr(report, k)[getattr(report, k)["observer"] != "group"].assign(
+                observer=lambda f: f"s{seed}_" + f["observer"]) for k in ("pse", "aftereffect", "tuning", "decay")}
+            reps = {f"s{seed}_{a.observer}": a.curves.get("shift_reps") for a in report.analyses}
+            out.setdefault("tables", {})[boot] = (own, reps)
             rejected = {}
             for who in truths:
                 table = compare_results(fit_dir, Path(tmp) / f"pred_{who}.csv", Path(tmp) / "cmp",
@@ -163,6 +171,41 @@ def one_group(args) -> dict:
                                  float(row["gain_ci_low"]) <= 1.0 <= float(row["gain_ci_high"]))
             out["rejected"][boot] = rejected
     return out
+
+
+def pooled_groups(results, boot: str, sizes, pop: dict, level: float = 0.95, seed: int = 0):
+    """Groups formed from all simulated observers of a cell (disjoint, at random), scored like ``fit``'s.
+
+    Every observer is drawn independently from the population, so any set of
+    observers is a simulated group; pooling gives many more groups per CPU
+    second than simulating each group separately.  Returns ``(units, rejected)``.
+    """
+    tables = [r["tables"][boot] for r in results]
+    names = [obs for own, _ in tables for obs in own["pse"]["observer"].unique()]
+    rows = {k: pd.concat([own[k] for own, _ in tables], ignore_index=True) for k in tables[0][0]}
+    reps = {k: v for _, r in tables for k, v in r.items()}
+    rng = np.random.default_rng(seed)
+    units, rejected = defaultdict(list), defaultdict(list)
+    for size in sizes:
+        order = rng.permutation(names)
+        for start in range(0, len(order) - size + 1, size):
+            members = set(order[start:start + size])
+            sub = {k: v[v["observer"].isin(members)] for k, v in rows.items()}
+            g_ae = group_aftereffect(sub["aftereffect"], level)
+            tuning, decay, _, _ = group_curves(sub["aftereffect"], level, [], sub["tuning"], sub["decay"])
+            rep = SimpleNamespace(pse=group_pse(sub["pse"], level), aftereffect=g_ae, tuning=tuning, decay=decay)
+            label = f"pooled groups of {size}"
+            for kind, pair in score(rep, GROUP, pop).items():
+                units[(label, kind)].append(pair)
+            fake = [SimpleNamespace(observer=o, curves={"shift_reps": reps[o]},
+                                    aftereffect=sub["aftereffect"][sub["aftereffect"]["observer"] == o])
+                    for o in sorted(members)]
+            cov = group_covariance(fake, g_ae, group_weights(sub["aftereffect"], level), level)
+            matrix, _, dof = covariance_matrix(cov, GROUP, g_ae["lag"], g_ae["adapter_offset_deg"])
+            pred = [pop["shift"][(float(lag), float(o))] for lag, o in zip(g_ae["lag"], g_ae["adapter_offset_deg"])]
+            a = agreement(g_ae["pse_shift_deg"], g_ae["ci_low"], g_ae["ci_high"], pred, None, matrix, np.nan, dof)
+            rejected[label].append((a.chi2_p < 0.05, a.chi2, a.dof, a.gain_ci_low <= 1.0 <= a.gain_ci_high))
+    return units, rejected
 
 
 def _coverage(units):
@@ -197,6 +240,8 @@ def main() -> None:
     ap.add_argument("--jobs", type=int, default=2)
     ap.add_argument("--trials", type=int, nargs="+", default=[24, 40], help="trials per condition")
     ap.add_argument("--procedures", nargs="+", default=["updown", "bayesian"])
+    ap.add_argument("--pool", action="store_true",
+                    help="also score groups formed from all observers of a cell (many more groups)")
     ap.add_argument("--bootstraps", nargs="+", default=["fixed", "rerun"], choices=["fixed", "rerun"],
                     help="fixed: levels held (default of fit); rerun: tracks re-run (fit --rerun-tracks)")
     ap.add_argument("--protocol", default=str(ROOT / "protocols" / "offset_by_lag.toml"))
@@ -227,6 +272,10 @@ def main() -> None:
                         for kind, pair in sc.items():
                             units[(label, kind)].append(pair)
                         rej[label].append(res["rejected"][boot][who])
+                if args.pool:
+                    more_units, more_rej = pooled_groups(results, boot, args.sizes, pop)
+                    units.update(more_units)
+                    rej.update(more_rej)
                 for (label, kind), u in sorted(units.items()):
                     p, se, n = _coverage(u)
                     print(f"| {proc} | {n_trials} | {boot} | {label} | {kind} | {100 * p:.1f} ± {100 * se:.1f} % | "
