@@ -41,7 +41,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from fitting.covariance import covariance_matrix
+from fitting.covariance import COVARIANCE_COLUMNS, covariance_matrix
 from fitting.errors import InputError
 
 Z95 = stats.norm.ppf(0.975)
@@ -49,7 +49,7 @@ PREDICTION_COLUMNS = ("lag", "adapter_offset_deg", "pse_shift_deg")
 MEASURED_COLUMNS = ("observer", "lag", "adapter_offset_deg", "pse_shift_deg", "ci_low", "ci_high")
 AGREEMENT_COLUMNS = (
     "observer", "lag", "n_points", "rmse_deg", "pearson_r", "gain", "gain_ci_low", "gain_ci_high",
-    "chi2", "dof", "chi2_p", "inside_ci_fraction", "gain_unweighted", "covariance",
+    "chi2", "dof", "chi2_p", "inside_ci_fraction", "gain_unweighted", "covariance", "descriptive",
 )
 COVARIANCE_FILE = "aftereffect_covariance.csv"
 
@@ -281,6 +281,7 @@ class Comparison:
                 f"chi2 {row['chi2']:.1f} on {row['dof']} df (p {row['chi2_p']:.3g}), "
                 f"{row['inside_ci_fraction']:.0%} of predictions inside the 95% CIs"
                 + ("" if row["covariance"] == "full" else "; errors treated as independent")
+                + ("; descriptive only (fewer than 3 observers)" if row["descriptive"] else "")
             )
         return "\n".join(lines)
 
@@ -306,7 +307,10 @@ def compare_results(results_dir: str | Path, predictions_path: str | Path, out_d
     predictions = read_predictions(predictions_path)
     points = match_predictions(measured, predictions, str(predictions_path), interpolate)
     cov_path = measured_path.parent / COVARIANCE_FILE
-    cov_table = pd.read_csv(cov_path) if cov_path.is_file() else None
+    cov_table = _read_csv(cov_path, COVARIANCE_COLUMNS[:6]) if cov_path.is_file() else None
+    if cov_table is not None:
+        for col in ("replicates", "dof"):
+            cov_table[col] = pd.to_numeric(cov_table[col], errors="coerce") if col in cov_table else np.nan
     rows = []
     for observer, group in points.groupby("observer", sort=False):
         parts = [(f"{lag:g}", g) for lag, g in group.groupby("lag")] + [("all", group)]
@@ -315,7 +319,9 @@ def compare_results(results_dir: str | Path, predictions_path: str | Path, out_d
                 cov_table, observer, g["lag"], g["adapter_offset_deg"])
             a = agreement(g["pse_shift_deg"], g["ci_low"], g["ci_high"], g["predicted_deg"],
                           g["prediction_sd_deg"], cov, reps, dof)
-            rows.append({"observer": observer, "lag": lag, **a.__dict__})
+            rows.append({"observer": observer, "lag": lag, **a.__dict__,
+                         "descriptive": bool(g.get("flags", pd.Series(dtype=str)).fillna("").astype(str)
+                                             .str.contains("descriptive").any())})
     table = pd.DataFrame(rows, columns=AGREEMENT_COLUMNS)
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)

@@ -135,7 +135,8 @@ class FitReport:
                 lines.append(f"  note: {n}")
         if GROUP in self.notes or (self.tuning["observer"] == GROUP).any():
             lines.append("")
-            lines.append(f"Group ({n_obs} observers; between-observer intervals)")
+            lines.append(f"Group ({n_obs} observers; random-effects intervals with within- and "
+                         "between-observer uncertainty)")
             g = self.aftereffect[self.aftereffect["observer"] == GROUP]
             lines += _shift_grid(g)
             for _, r in self.tuning[self.tuning["observer"] == GROUP].iterrows():

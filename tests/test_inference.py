@@ -148,3 +148,25 @@ def test_rerun_tracks_bootstrap_replays_the_logged_procedure(tmp_path):
     assert boot.converged.mean() > 0.95 and np.isfinite(rerun.pse["pse_ci_low"]).all()
     assert main(["fit", *logs, "--out", str(tmp_path / "c"), "--bootstrap", "60", "--rerun-tracks",
                  "--no-figures"]) == 0
+
+
+def test_compare_uses_the_covariance_file_and_refuses_a_corrupt_one(tmp_path, capsys):
+    from runner.cli import main
+
+    _degenerate_logs(tmp_path)
+    fit_logs([str(tmp_path)], str(tmp_path / "out"), n_boot=100, seed=1, figures=False, progress=False)
+    pd.DataFrame({"lag": [0, 0], "adapter_offset_deg": [-30, 30], "pse_shift_deg": [-1.0, 1.0]}).to_csv(
+        tmp_path / "pred.csv", index=False)
+    assert main(["compare", str(tmp_path / "out"), str(tmp_path / "pred.csv"), "--out", str(tmp_path / "c")]) == 0
+    table = pd.read_csv(tmp_path / "c" / "agreement.csv")
+    assert set(table["covariance"]) == {"full"}
+    assert table.set_index("observer").loc["group", "descriptive"].all()      # two observers
+    assert "descriptive only" in capsys.readouterr().out
+    cov = tmp_path / "out" / "aftereffect_covariance.csv"
+    lines = cov.read_text().splitlines()
+    cells = lines[1].split(",")
+    cells[1] = "x"                                                            # lag_a of the first pair
+    cov.write_text("\n".join([lines[0], ",".join(cells)] + lines[2:]) + "\n")
+    assert main(["compare", str(tmp_path / "out"), str(tmp_path / "pred.csv"), "--out", str(tmp_path / "d")]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "aftereffect_covariance.csv" in err and "line 2" in err
