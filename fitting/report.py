@@ -2,7 +2,8 @@
 
 Files written by :func:`fit_logs` into ``out_dir``
 --------------------------------------------------
-Tables with exactly the DESIGN.md columns, in that order:
+Tables with the DESIGN.md columns, in that order, then ``flags``
+(:mod:`fitting.flags`):
 
 ``pse.csv``, ``aftereffect.csv``, ``tuning.csv``, ``decay.csv``
 
@@ -17,8 +18,11 @@ More tables:
                       offset, tau in periods and in seconds, with intervals
 ``exclusions.csv``    per observer: trials read and excluded (practice, bad
                       timing, missed answers), trials used
-``mixed_model.csv``   with several observers: the statsmodels mixed model
-``summary.txt``       the text of :meth:`FitReport.summary`
+``mixed_model.csv``   with several observers: the statsmodels mixed model, with
+                      its convergence
+``aftereffect_covariance.csv``  covariance of every pair of shifts, per observer
+                      and for the group (:mod:`fitting.covariance`), for ``compare``
+``summary.txt``       the text of :meth:`FitReport.summary`, flagged rows first
 ``figures/``          PNG and PDF figures (see :mod:`fitting.figures`)
 
 Everything is computed first and written afterwards (each file atomically);
