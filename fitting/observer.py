@@ -210,6 +210,11 @@ def analyse_observer(observer: str, trials: pd.DataFrame, opts: Options,
     boot = None
     if opts.n_boot > 0:
         factory = (opts.tracks or {}).get(observer)
+        if opts.tracks is not None and factory is None:
+            notes.append("bootstrap kept the levels fixed: no session sidecar with the protocol was found")
+        elif factory is not None and not trials["track"].astype(str).str.fullmatch(r"\d+").all():
+            notes.append("bootstrap kept the levels fixed: some trials name no track number")
+            factory = None
         if factory is not None:
             plan = [[(str(t), int(m)) for t, m in trials[trials["condition"] == name]
                      .groupby("track", sort=True).size().items()] for name in names]

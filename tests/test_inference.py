@@ -170,3 +170,20 @@ def test_compare_uses_the_covariance_file_and_refuses_a_corrupt_one(tmp_path, ca
     assert main(["compare", str(tmp_path / "out"), str(tmp_path / "pred.csv"), "--out", str(tmp_path / "d")]) == 2
     err = capsys.readouterr().err.strip()
     assert len(err.splitlines()) == 1 and "aftereffect_covariance.csv" in err and "line 2" in err
+
+
+def test_rerun_tracks_falls_back_with_a_note_when_tracks_cannot_be_rebuilt(tmp_path):
+    _degenerate_logs(tmp_path)                     # hand-made logs: no sidecars
+    logs = sorted(str(p) for p in tmp_path.glob("*.trials.csv"))
+    from runner.replay import track_factories
+
+    assert track_factories(logs) == {}
+    from runner.protocol import parse_protocol
+    from runner.tracks import new_track
+
+    proto = parse_protocol("[design]\nadapter_offsets_deg = [-30, 30]\nlags = [0]\n")
+    report = fit_logs(logs, str(tmp_path / "o"), n_boot=50, seed=1, figures=False, progress=False,
+                      tracks={"D1": lambda condition, track: new_track(proto, int(track))})
+    assert not any("kept the levels fixed" in n for n in report.notes["D1"])
+    assert any("no session sidecar" in n for n in report.notes["R1"])
+    assert np.isfinite(report.pse.set_index(["observer", "condition"]).loc[("D1", "baseline"), "pse_ci_low"])
