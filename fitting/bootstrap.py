@@ -303,20 +303,29 @@ def parametric_bootstrap_many(fits, n_boot: int, rng: np.random.Generator,
         raise ValueError("fits bootstrapped together must share layout, sigmoid and cell shape")
     if chunk is None:
         chunk = max(50, 500_000 // first.cells.x.size)
-    theta_hat = np.stack([f.theta for f in fits])
     n_pilot = (pilot if pilot is not None else max(100, n_boot // 10)) if bias_correct else 0
     with ProgressBar(len(fits) * (n_boot + n_pilot), label, show=progress) as bar:
-        generate = theta_hat
-        if n_pilot:
-            th, *_ = _replicates(fits, theta_hat, n_pilot, rng, chunk, bar)
-            bias = th.reshape(len(fits), n_pilot, -1).mean(axis=1) - theta_hat
-            generate = theta_hat - np.where(_nuisance_mask(layout), bias, 0.0)
-            generate = np.clip(generate, np.stack([f.lower for f in fits]),
-                               np.stack([f.upper for f in fits]))
+        generate = generating_parameters(fits, n_pilot, rng, chunk, bar)
         theta, converged, at_bound, dev = _replicates(fits, generate, n_boot, rng, chunk, bar)
     owner = np.repeat(np.arange(len(fits)), n_boot)
     return [BootstrapResult(f, theta[owner == i], converged[owner == i], at_bound[owner == i],
                             dev[owner == i], generate[i]) for i, f in enumerate(fits)]
+
+
+def generating_parameters(fits, n_pilot: int, rng, chunk: int, bar) -> np.ndarray:
+    """Parameters (one row per fit) the replicates are drawn at.
+
+    The estimates, with spread(s) and lapse moved by minus their bias in a
+    pilot of ``n_pilot`` fixed-level replicates (none when ``n_pilot`` is 0);
+    see :func:`parametric_bootstrap_many`.
+    """
+    theta_hat = np.stack([f.theta for f in fits])
+    if not n_pilot:
+        return theta_hat
+    th, *_ = _replicates(fits, theta_hat, n_pilot, rng, chunk, bar)
+    bias = th.reshape(len(fits), n_pilot, -1).mean(axis=1) - theta_hat
+    generate = theta_hat - np.where(_nuisance_mask(fits[0].layout), bias, 0.0)
+    return np.clip(generate, np.stack([f.lower for f in fits]), np.stack([f.upper for f in fits]))
 
 
 def _replicates(fits, generate, n_boot, rng, chunk, bar):

@@ -10,13 +10,26 @@ Per observer, per lag and over all lags:
 
 * RMSE of measured − predicted (deg);
 * Pearson's r;
-* gain g of measured ≈ g × predicted: weighted least squares through the
-  origin with weights 1 / (se² + sd²), se from the measured CI
-  (half-width / 1.96), so that g = Σ w m p / Σ w p² with standard error
-  √(1 / Σ w p²);
-* χ² = Σ (m − p)² / (se² + sd²) with as many degrees of freedom as points
-  (the predictions are fixed, nothing is fitted), and its upper-tail p;
+* gain g of measured ≈ g × predicted by generalised least squares through
+  the origin, ``g = p' V^-1 m / p' V^-1 p`` with standard error
+  ``sqrt(1 / p' V^-1 p)``, and the unweighted gain ``sum m p / sum p^2``;
+* χ² = ``r' V^-1 r`` (r = measured − predicted) with as many degrees of
+  freedom as points (the predictions are fixed, nothing is fitted), and its
+  upper-tail p;
 * the fraction of predictions inside the measured 95 % CIs.
+
+``V`` is the covariance of the measured shifts plus the predictions' own
+variance on its diagonal.  When ``aftereffect_covariance.csv`` sits beside
+``aftereffect.csv`` (``fit`` writes it, see :mod:`fitting.covariance`) ``V``
+is the full covariance: for an observer, of its paired bootstrap replicates,
+whose inverse is scaled by ``(R - n - 2) / (R - 1)`` (Hartlap, Simon &
+Schneider 2007, A&A 464, 399) for R replicates and n points; for the group,
+the group standard errors with the correlation of the weighted mean, and
+the standardised residuals are mapped from t on n_obs − 1 degrees of freedom
+to normal scores before the χ² is formed (gain intervals use the same t).
+Without that file ``V`` is diagonal, ``se = half-width / 1.96`` (errors
+treated as independent, which overstates χ² because the shifts of one
+observer share the baseline).
 """
 
 from __future__ import annotations
@@ -29,6 +42,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from fitting.covariance import COVARIANCE_COLUMNS, covariance_matrix
 from fitting.errors import InputError
 from fitting.page import PAGE, write_page
 from fitting.progress import phase
@@ -40,8 +54,9 @@ PREDICTION_COLUMNS = ("lag", "adapter_offset_deg", "pse_shift_deg")
 MEASURED_COLUMNS = ("observer", "lag", "adapter_offset_deg", "pse_shift_deg", "ci_low", "ci_high")
 AGREEMENT_COLUMNS = (
     "observer", "lag", "n_points", "rmse_deg", "pearson_r", "gain", "gain_ci_low", "gain_ci_high",
-    "chi2", "dof", "chi2_p", "inside_ci_fraction",
+    "chi2", "dof", "chi2_p", "inside_ci_fraction", "gain_unweighted", "covariance", "descriptive",
 )
+COVARIANCE_FILE = "aftereffect_covariance.csv"
 
 
 def _read_csv(path: Path, required: tuple[str, ...], may_be_empty: tuple[str, ...] = ()) -> pd.DataFrame:
@@ -165,9 +180,19 @@ class Agreement:
     dof: int
     chi2_p: float
     inside_ci_fraction: float
+    gain_unweighted: float = float("nan")
+    covariance: str = "diagonal"
 
 
-def agreement(measured, ci_low, ci_high, predicted, prediction_sd=None) -> Agreement:
+def _inverse(v: np.ndarray) -> np.ndarray:
+    try:
+        return np.linalg.inv(v)
+    except np.linalg.LinAlgError:
+        return np.linalg.pinv(v)
+
+
+def agreement(measured, ci_low, ci_high, predicted, prediction_sd=None, covariance=None,
+              replicates: float = np.nan, dof: float = np.nan) -> Agreement:
     """Compute the agreement statistics of measured points with predictions.
 
     Parameters
@@ -176,6 +201,13 @@ def agreement(measured, ci_low, ci_high, predicted, prediction_sd=None) -> Agree
         Measured shifts with their 95 % CIs, and predicted shifts (deg).
     prediction_sd : array_like, optional
         Uncertainty of the predictions (deg); zero when not given.
+    covariance : array_like (n, n), optional
+        Full covariance of the measured shifts; diagonal from the CIs if omitted.
+    replicates : float
+        Bootstrap replicates behind ``covariance`` (Hartlap correction); NaN: none.
+    dof : float
+        Degrees of freedom of the standard errors in ``covariance`` (group);
+        NaN: treated as known.
 
     Returns
     -------
@@ -185,32 +217,57 @@ def agreement(measured, ci_low, ci_high, predicted, prediction_sd=None) -> Agree
     lo, hi = np.asarray(ci_low, float), np.asarray(ci_high, float)
     p = np.asarray(predicted, float)
     sd = np.zeros_like(p) if prediction_sd is None else np.asarray(prediction_sd, float)
-    se = (hi - lo) / (2 * Z95)
-    var = se**2 + sd**2
-    if np.any(var <= 0):
-        raise InputError("aftereffect.csv", "ci_low/ci_high", "a measured point has a zero-width CI and no prediction sd")
-    w = 1.0 / var
-    resid = m - p
     n = m.size
+    if covariance is None:
+        se = (hi - lo) / (2 * Z95)
+        v = np.diag(se**2 + sd**2)
+    else:
+        v = np.asarray(covariance, float) + np.diag(sd**2)
+    resid = m - p
+    pp = float(np.sum(p * p))
     r = float(np.corrcoef(m, p)[0, 1]) if n >= 3 and m.std() > 0 and p.std() > 0 else float("nan")
-    spp = float(np.sum(w * p * p))
+    if np.any(~np.isfinite(np.diagonal(v))):
+        # no interval (a fit without bootstrap): the interval-based statistics cannot be computed
+        nan = float("nan")
+        return Agreement(n_points=n, rmse_deg=float(np.sqrt(np.mean(resid**2))), pearson_r=r, gain=nan,
+                         gain_ci_low=nan, gain_ci_high=nan, chi2=nan, dof=n, chi2_p=nan, inside_ci_fraction=nan,
+                         gain_unweighted=float(np.sum(m * p) / pp) if pp > 0 else nan,
+                         covariance="diagonal" if covariance is None else "full")
+    if np.any(np.diagonal(v) <= 0):
+        raise InputError("aftereffect.csv", "ci_low/ci_high", "a measured point has a zero-width CI and no prediction sd")
+    scale = 1.0
+    if np.isfinite(replicates) and replicates > n + 2:
+        scale = (replicates - n - 2) / (replicates - 1)      # Hartlap et al. (2007)
+    t_dof = np.isfinite(dof) and dof >= 1
+    if t_dof:
+        # group: residuals standardised by t-distributed errors -> normal scores
+        sdv = np.sqrt(np.diagonal(v))
+        corr = v / np.outer(sdv, sdv)
+        z = stats.norm.ppf(np.clip(stats.t.cdf(resid / sdv, dof), 1e-300, 1 - 1e-16))
+        chi2 = float(z @ _inverse(corr) @ z)
+    else:
+        chi2 = float(scale * resid @ _inverse(v) @ resid)
+    vinv = scale * _inverse(v)
+    spp = float(p @ vinv @ p)
     if spp > 0:
-        g = float(np.sum(w * m * p) / spp)
+        g = float(p @ vinv @ m / spp)
         g_se = float(np.sqrt(1.0 / spp))
     else:
         g, g_se = float("nan"), float("nan")
-    chi2 = float(np.sum(resid**2 * w))
+    q = stats.t.ppf(0.975, dof) if t_dof else Z95
     return Agreement(
         n_points=n,
         rmse_deg=float(np.sqrt(np.mean(resid**2))),
         pearson_r=r,
         gain=g,
-        gain_ci_low=g - Z95 * g_se,
-        gain_ci_high=g + Z95 * g_se,
+        gain_ci_low=g - q * g_se,
+        gain_ci_high=g + q * g_se,
         chi2=chi2,
         dof=n,
         chi2_p=float(stats.chi2.sf(chi2, n)),
         inside_ci_fraction=float(np.mean((p >= lo) & (p <= hi))),
+        gain_unweighted=float(np.sum(m * p) / pp) if pp > 0 else float("nan"),
+        covariance="diagonal" if covariance is None else "full",
     )
 
 
@@ -245,9 +302,12 @@ class Comparison:
                 continue
             lines.append(
                 f"  {row['observer']:>8}: RMSE {row['rmse_deg']:.2f} deg, r {row['pearson_r']:.2f}, "
-                f"gain {row['gain']:.2f} [{row['gain_ci_low']:.2f}, {row['gain_ci_high']:.2f}], "
+                f"gain {row['gain']:.2f} [{row['gain_ci_low']:.2f}, {row['gain_ci_high']:.2f}] "
+                f"(unweighted {row['gain_unweighted']:.2f}), "
                 f"chi2 {row['chi2']:.1f} on {row['dof']} df (p {row['chi2_p']:.3g}), "
                 f"{row['inside_ci_fraction']:.0%} of predictions inside the 95% CIs"
+                + ("" if row["covariance"] == "full" else "; errors treated as independent")
+                + ("; descriptive only (fewer than 3 observers)" if row["descriptive"] else "")
             )
         return "\n".join(lines + [f"note: {n}" for n in self.notes])
 
@@ -303,12 +363,22 @@ def compare_results(results_dir: str | Path, predictions_path: str | Path, out_d
         raise InputError(str(measured_path), "file", "holds no after-effects")
     predictions = read_predictions(predictions_path)
     points = match_predictions(measured, predictions, str(predictions_path), interpolate)
+    cov_path = measured_path.parent / COVARIANCE_FILE
+    cov_table = _read_csv(cov_path, COVARIANCE_COLUMNS[:6]) if cov_path.is_file() else None
+    if cov_table is not None:
+        for col in ("replicates", "dof"):
+            cov_table[col] = pd.to_numeric(cov_table[col], errors="coerce") if col in cov_table else np.nan
     rows = []
     for observer, group in points.groupby("observer", sort=False):
         parts = [(f"{lag:g}", g) for lag, g in group.groupby("lag")] + [("all", group)]
         for lag, g in parts:
-            a = agreement(g["pse_shift_deg"], g["ci_low"], g["ci_high"], g["predicted_deg"], g["prediction_sd_deg"])
-            rows.append({"observer": observer, "lag": lag, **a.__dict__})
+            cov, reps, dof = (None, np.nan, np.nan) if cov_table is None else covariance_matrix(
+                cov_table, observer, g["lag"], g["adapter_offset_deg"])
+            a = agreement(g["pse_shift_deg"], g["ci_low"], g["ci_high"], g["predicted_deg"],
+                          g["prediction_sd_deg"], cov, reps, dof)
+            rows.append({"observer": observer, "lag": lag, **a.__dict__,
+                         "descriptive": bool(g.get("flags", pd.Series(dtype=str)).fillna("").astype(str)
+                                             .str.contains("descriptive").any())})
     table = pd.DataFrame(rows, columns=AGREEMENT_COLUMNS)
     notes = _leave_out_interval_statistics(points, table)
     with output_set(out_dir, "compare") as staged:

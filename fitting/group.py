@@ -1,22 +1,28 @@
-"""Across observers: a group curve with between-observer intervals, and a mixed model.
+"""Across observers: group rows that carry within- and between-observer uncertainty.
 
 Group rows (observer ``group`` in the tables), made when there are two or
 more observers:
 
-* PSE and PSE shift per condition: the mean over the observers that have it,
-  with a t interval from the between-observer standard deviation
-  (``mean +- t_{n-1} sd / sqrt(n)``);
+* PSE and PSE shift per condition: the random-effects combination of the
+  observers' estimates (:mod:`fitting.meta`: DerSimonian–Laird between-observer
+  variance, Hartung–Knapp interval with t on n - 1 degrees of freedom), each
+  observer's within-observer variance taken from its own interval.  The
+  interval is never narrower than the fixed-effect combination of the
+  observers' own intervals, so three observers who happen to agree cannot
+  give a group interval far narrower than any of theirs;
 * tuning per lag and decay: the same DoG / decaying-DoG fits as for one
   observer, applied to the group-mean curve (cells measured in every
   observer, equal weights), with intervals from the jackknife over observers
-  (leave one observer out, refit; ``est +- t_{n-1} se_jack``).  For a mean
-  the jackknife gives exactly the t interval above, so the two kinds of group
-  interval agree.  Intervals of the peak offset and decay are clipped to
-  their fitting bounds.
+  (leave one observer out, refit; ``est +- t_{n-1} se_jack``), widened where
+  needed to the fixed-effect combination of the observers' own intervals.
+  Intervals of the peak offset and decay are clipped to their fitting bounds.
+
+With fewer than three observers every group row is flagged ``descriptive``.
 
 The mixed model (statsmodels ``MixedLM``, REML, random intercept per observer)
 regresses the PSE shift on adapter offset, lag and their interaction: a
-simple linear summary of the whole data set, written to ``mixed_model.csv``.
+simple linear summary of the whole data set, written to ``mixed_model.csv``
+with a ``converged`` column.
 """
 
 from __future__ import annotations
@@ -28,50 +34,92 @@ import pandas as pd
 from scipy import special
 
 from .aftereffect import TAU_BOUNDS, fit_decay, fit_tuning, peak_bounds
+from .flags import condense, join, on_bound
+from .meta import random_effects, variance_from_interval
 from .observer import AFTEREFFECT_COLUMNS, DECAY_COLUMNS, PSE_COLUMNS, TUNING_COLUMNS
 
 GROUP = "group"
+MIN_OBSERVERS_FOR_INFERENCE = 3
 
 
 def _t_quantile(n: np.ndarray, level: float) -> np.ndarray:
     return special.stdtrit(np.maximum(n - 1, 1), 0.5 + level / 2.0)
 
 
-def _mean_ci(values: pd.DataFrame, keys: list[str], col: str, level: float) -> pd.DataFrame:
-    g = values.groupby(keys, sort=False, dropna=False)[col]
-    out = pd.DataFrame({"mean": g.mean(), "sd": g.std(ddof=1), "n": g.count()})
-    half = _t_quantile(out["n"].to_numpy(), level) * out["sd"] / np.sqrt(out["n"])
-    out["low"], out["high"] = out["mean"] - half, out["mean"] + half
+def _group_flags(n_obs, extra=()) -> str:
+    return join(["descriptive"] if n_obs < MIN_OBSERVERS_FOR_INFERENCE else [], extra)
+
+
+def _combine(values: pd.DataFrame, keys: list[str], col: str, low: str, high: str,
+             level: float) -> pd.DataFrame:
+    """Random-effects combination of ``col`` per ``keys`` cell across observers."""
+    wide = values.pivot_table(index="observer", columns=keys, values=col, dropna=False)
+    v = values.assign(_v=variance_from_interval(values[low], values[high], level))
+    var = v.pivot_table(index="observer", columns=keys, values="_v", dropna=False)
+    var = var.reindex(index=wide.index, columns=wide.columns)
+    c = random_effects(wide.to_numpy(float), var.to_numpy(float), level)
+    n_present = np.isfinite(wide.to_numpy(float)).sum(axis=0)
+    out = pd.DataFrame({"mean": c.estimate, "low": c.low, "high": c.high, "n": c.n,
+                        "n_present": n_present}, index=wide.columns)
     return out[out["n"] >= 2]
 
 
 def group_pse(pse: pd.DataFrame, level: float) -> pd.DataFrame:
-    """Group rows of ``pse.csv``: mean PSE per condition across observers."""
+    """Group rows of ``pse.csv``: random-effects PSE per condition across observers."""
     key = pse.assign(_k=np.where(pse["lag"].isna(), "baseline",
                                  pse["adapter_offset_deg"].astype(str) + "|" + pse["lag"].astype(str)))
-    m = _mean_ci(key, ["_k"], "pse_deg", level)
+    m = _combine(key, ["_k"], "pse_deg", "pse_ci_low", "pse_ci_high", level)
     g = key.groupby("_k", sort=False)
     first = g.first()
-    out = pd.DataFrame({"observer": GROUP, "condition": first.loc[m.index, "condition"],
-                        "adapter_offset_deg": first.loc[m.index, "adapter_offset_deg"],
-                        "lag": first.loc[m.index, "lag"], "pse_deg": m["mean"],
+    idx = [k for k in first.index if k in m.index]
+    m = m.loc[idx]
+    out = pd.DataFrame({"observer": GROUP, "condition": first.loc[idx, "condition"],
+                        "adapter_offset_deg": first.loc[idx, "adapter_offset_deg"],
+                        "lag": first.loc[idx, "lag"], "pse_deg": m["mean"],
                         "pse_ci_low": m["low"], "pse_ci_high": m["high"],
-                        "spread_deg": g["spread_deg"].mean().loc[m.index],
-                        "lapse": g["lapse"].mean().loc[m.index],
-                        "n_trials": g["n_trials"].sum().loc[m.index]})
+                        "spread_deg": g["spread_deg"].mean().loc[idx],
+                        "lapse": g["lapse"].mean().loc[idx],
+                        "n_trials": g["n_trials"].sum().loc[idx],
+                        "flags": [_group_flags(n) for n in m["n"]]})
     return out[PSE_COLUMNS].reset_index(drop=True)
 
 
 def group_aftereffect(shifts: pd.DataFrame, level: float) -> pd.DataFrame:
-    """Group rows of ``aftereffect.csv``: mean shift per lag and offset."""
-    m = _mean_ci(shifts, ["lag", "adapter_offset_deg"], "pse_shift_deg", level)
+    """Group rows of ``aftereffect.csv``: random-effects shift per lag and offset."""
+    m = _combine(shifts, ["lag", "adapter_offset_deg"], "pse_shift_deg", "ci_low", "ci_high", level)
     n_trials = shifts.groupby(["lag", "adapter_offset_deg"], sort=False)["n_trials"].sum()
     out = m.reset_index()
     out = pd.DataFrame({"observer": GROUP, "lag": out["lag"].astype("Int64"),
                         "adapter_offset_deg": out["adapter_offset_deg"],
                         "pse_shift_deg": out["mean"], "ci_low": out["low"], "ci_high": out["high"],
-                        "n_trials": n_trials.loc[list(zip(out["lag"], out["adapter_offset_deg"]))].to_numpy()})
+                        "n_trials": n_trials.loc[list(zip(out["lag"], out["adapter_offset_deg"]))].to_numpy(),
+                        "flags": [_group_flags(n) for n in out["n"]]})
     return out.sort_values(["lag", "adapter_offset_deg"]).reset_index(drop=True)[AFTEREFFECT_COLUMNS]
+
+
+def group_weights(shifts: pd.DataFrame, level: float) -> pd.DataFrame:
+    """Normalised random-effects weights of each observer's shift (for the group covariance).
+
+    Returns a table indexed by observer with one column per ``(lag, offset)``.
+    """
+    wide = shifts.pivot_table(index="observer", columns=["lag", "adapter_offset_deg"],
+                              values="pse_shift_deg", dropna=False)
+    v = shifts.assign(_v=variance_from_interval(shifts["ci_low"], shifts["ci_high"], level))
+    var = v.pivot_table(index="observer", columns=["lag", "adapter_offset_deg"], values="_v",
+                        dropna=False).reindex(index=wide.index, columns=wide.columns)
+    c = random_effects(wide.to_numpy(float), var.to_numpy(float), level)
+    return pd.DataFrame(c.weights, index=wide.index, columns=wide.columns)
+
+
+def _fixed_half(own: pd.DataFrame, col_lo: str, col_hi: str, level: float) -> float:
+    """Half-width of the fixed-effect combination of observers' own intervals."""
+    if own is None or not len(own):
+        return 0.0
+    var = variance_from_interval(own[col_lo], own[col_hi], level)
+    var = var[np.isfinite(var) & (var > 0)]
+    if var.size == 0:
+        return 0.0
+    return float(special.ndtri(0.5 + level / 2.0) * np.sqrt(1.0 / np.sum(1.0 / var)))
 
 
 def _jackknife(estimates: np.ndarray, level: float, n: int):
@@ -82,8 +130,17 @@ def _jackknife(estimates: np.ndarray, level: float, n: int):
     return est, est - half, est + half
 
 
-def group_curves(shifts: pd.DataFrame, level: float, notes: list):
-    """Group tuning rows and decay row from the mean curve; jackknife intervals."""
+def _widen(est, low, high, half):
+    """Widen ``[low, high]`` so that each side is at least ``half`` from ``est``."""
+    return min(low, est - half), max(high, est + half)
+
+
+def group_curves(shifts: pd.DataFrame, level: float, notes: list, own_tuning=None, own_decay=None):
+    """Group tuning rows and decay row from the mean curve; jackknife intervals.
+
+    ``own_tuning`` / ``own_decay`` (the observers' rows) set the floor of
+    each interval: the fixed-effect combination of the observers' own ones.
+    """
     observers = sorted(shifts["observer"].unique())
     n = len(observers)
     wide = shifts.pivot_table(index="observer", columns=["lag", "adapter_offset_deg"],
@@ -112,10 +169,15 @@ def group_curves(shifts: pd.DataFrame, level: float, notes: list):
         t = fit_tuning(offsets, cube[:, i], weight[i], prange)
         a, alo, ahi = _jackknife(t.amplitude, level, n)
         w, wlo, whi = _jackknife(t.peak, level, n)
+        own = None if own_tuning is None else own_tuning[own_tuning["lag"] == lag]
+        alo, ahi = _widen(a, alo, ahi, _fixed_half(own, "amplitude_ci_low", "amplitude_ci_high", level))
+        wlo, whi = _widen(w, wlo, whi, _fixed_half(own, "peak_offset_ci_low", "peak_offset_ci_high", level))
+        wlo, whi = max(wlo, prange[0]), min(whi, prange[1])
         tuning_rows.append({"observer": GROUP, "lag": int(lag), "amplitude_deg": a,
                             "amplitude_ci_low": alo, "amplitude_ci_high": ahi,
-                            "peak_offset_deg": w, "peak_offset_ci_low": max(wlo, prange[0]),
-                            "peak_offset_ci_high": min(whi, prange[1])})
+                            "peak_offset_deg": w, "peak_offset_ci_low": wlo,
+                            "peak_offset_ci_high": whi,
+                            "flags": _group_flags(n, ["on-bound"] if on_bound(w, wlo, whi, prange) else [])})
         tuning_lags.append(i)
     tuning = pd.DataFrame(tuning_rows, columns=TUNING_COLUMNS)
     decay = pd.DataFrame(columns=DECAY_COLUMNS)
@@ -125,9 +187,13 @@ def group_curves(shifts: pd.DataFrame, level: float, notes: list):
         a0 = _jackknife(d.amplitude0, level, n)
         w = _jackknife(d.peak, level, n)
         tau = _jackknife(d.tau, level, n)
-        tau_ci = (max(tau[1], TAU_BOUNDS[0]), min(tau[2], TAU_BOUNDS[1]))
+        tau_ci = _widen(*tau, _fixed_half(own_decay, "ci_low", "ci_high", level))
+        tau_ci = (max(tau_ci[0], TAU_BOUNDS[0]), min(tau_ci[1], TAU_BOUNDS[1]))
+        bound = on_bound(tau[0], *tau_ci, TAU_BOUNDS) or on_bound(w[0], w[1], w[2], prange)
         decay = pd.DataFrame([{"observer": GROUP, "decay_periods": tau[0], "ci_low": tau_ci[0],
-                               "ci_high": tau_ci[1]}], columns=DECAY_COLUMNS)
+                               "ci_high": tau_ci[1],
+                               "flags": _group_flags(n, ["on-bound"] if bound else [])}],
+                             columns=DECAY_COLUMNS)
         detail = pd.DataFrame([{"observer": GROUP, "amplitude0_deg": a0[0], "amplitude0_ci_low": a0[1],
                                 "amplitude0_ci_high": a0[2], "peak_offset_deg": w[0],
                                 "peak_offset_ci_low": max(w[1], prange[0]),
@@ -138,9 +204,9 @@ def group_curves(shifts: pd.DataFrame, level: float, notes: list):
         curves["decay"] = (a0[0], w[0], tau[0])
         if d.tau_at_bound[0]:
             notes.append(f"group: decay on its bound ({tau[0]:.3g} periods)")
-    if n < 3:
-        notes.append(f"group of {n} observers: between-observer intervals are very wide "
-                     "(t with one degree of freedom)")
+    if n < MIN_OBSERVERS_FOR_INFERENCE:
+        notes.append(f"group of {n} observers: group rows are descriptive (flagged), their "
+                     "intervals are not inference about a population")
     return tuning, decay, detail, curves
 
 
@@ -149,14 +215,16 @@ def mixed_model(shifts: pd.DataFrame, notes: list) -> pd.DataFrame:
 
     statsmodels ``MixedLM`` (REML) with a random intercept per observer.
     Returns a table ``term, estimate, std_error, z, p_value, ci_low,
-    ci_high`` plus the two variance components; empty with a note when the
-    data cannot support it.
+    ci_high, converged, flags`` plus the two variance components; empty with
+    a note when the data cannot support it.  statsmodels' warnings become
+    notes, one line per distinct message with a count.
     """
     import statsmodels.formula.api as smf
 
     data = shifts[["observer", "lag", "adapter_offset_deg", "pse_shift_deg"]].dropna().copy()
     data["lag"] = data["lag"].astype(float)
-    cols = ["term", "estimate", "std_error", "z", "p_value", "ci_low", "ci_high"]
+    cols = ["term", "estimate", "std_error", "z", "p_value", "ci_low", "ci_high", "converged",
+            "flags"]
     if data["observer"].nunique() < 2 or len(data) < 6:
         notes.append("mixed model not fitted: needs at least 2 observers and 6 shifts")
         return pd.DataFrame(columns=cols)
@@ -169,9 +237,9 @@ def mixed_model(shifts: pd.DataFrame, notes: list) -> pd.DataFrame:
         except (np.linalg.LinAlgError, ValueError) as exc:
             notes.append(f"mixed model failed: {exc}")
             return pd.DataFrame(columns=cols)
-    for w in caught:
-        notes.append(f"mixed model: {str(w.message).splitlines()[0]}")
-    if not res.converged:
+    notes += [f"mixed model: {m}" for m in condense(w.message for w in caught)]
+    converged = bool(res.converged)
+    if not converged:
         notes.append("mixed model did not converge")
     fe = res.fe_params
     ci = res.conf_int().loc[fe.index]
@@ -181,4 +249,7 @@ def mixed_model(shifts: pd.DataFrame, notes: list) -> pd.DataFrame:
                         "ci_low": ci.iloc[:, 0].to_numpy(), "ci_high": ci.iloc[:, 1].to_numpy()})
     extra = pd.DataFrame({"term": ["observer intercept variance", "residual variance"],
                           "estimate": [float(res.cov_re.iloc[0, 0]), float(res.scale)]})
-    return pd.concat([out, extra], ignore_index=True)[cols]
+    table = pd.concat([out, extra], ignore_index=True)
+    table["converged"] = converged
+    table["flags"] = "" if converged else "model-not-converged"
+    return table[cols]

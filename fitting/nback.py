@@ -54,7 +54,10 @@ from scipy import special
 
 from .aftereffect import TAU_BOUNDS, dog, peak_bounds
 from .bootstrap import bca_interval, percentile_interval
+from .covariance import long_table
 from .errors import InputError
+from .flags import MIN_TRIALS_FOR_INTERVAL, STEEP_FRACTION, flagged_first, join
+from .flags import on_bound as flag_on_bound
 from .psychometric import DEFAULT_LAPSE_MAX, sigmoid_parts
 from .outputs import output_set
 from .tables import MAX_OFFSET_DEG, check_unique_trials, find_logs, read_log_table, write_csv, write_text
@@ -568,35 +571,98 @@ def bootstrap_nback(fit: NbackFit, n_boot: int, rng: np.random.Generator, interv
 # tables, figure and the whole job
 
 
+def fit_flags(fit: NbackFit) -> list[str]:
+    """Flag words (:mod:`fitting.flags`) that apply to every number of one stream fit."""
+    tr = fit.trials
+    words = []
+    if np.all(tr.response_cw == tr.response_cw[0]):
+        words.append("one-sided")
+    room = 1e-6 * np.maximum(fit.upper_per_n[:4] - fit.lower_per_n[:4], 1e-9)
+    th = fit.per_n[[0, 1]]
+    if np.any((th <= fit.lower_per_n[[0, 1]] + room[[0, 1]]) | (th >= fit.upper_per_n[[0, 1]] - room[[0, 1]])):
+        words.append("on-bound")
+    x = tr.test_offset_deg
+    if not (x.min() <= fit.pse_deg <= x.max()):
+        words.append("outside-tested")
+    iqr = np.subtract(*np.percentile(x, [75, 25]))
+    if iqr > 0 and fit.spread_deg < STEEP_FRACTION * iqr:
+        words.append("steep")
+    if tr.n_trials < MIN_TRIALS_FOR_INTERVAL:
+        words.append("few-trials")
+    if not fit.converged:
+        words.append("not-converged")
+    return words
+
+
+def _row_flags(common, est, lo, hi, bounds=None):
+    """Flags of one estimate: the fit's, plus its own bound and interval checks."""
+    words = list(common)
+    if bounds is not None and flag_on_bound(est, lo, hi, bounds):
+        words.append("on-bound")
+    if np.isfinite(lo) and np.isfinite(hi) and not (lo <= est <= hi):
+        words.append("off-interval")
+    return join(words)
+
+
 def result_tables(boot: NbackBootstrap) -> dict[str, pd.DataFrame]:
-    """``aftereffect``, ``tuning`` and ``decay`` tables of one observer (lag = n − 1)."""
+    """``pse``, ``aftereffect``, ``tuning`` and ``decay`` tables of one observer (lag = n − 1).
+
+    Every row carries a ``flags`` cell (:mod:`fitting.flags`); with answers
+    all on one side, or too few tests, the intervals are left empty.
+    """
     fit = boot.fit
     tr = fit.trials
     k = tr.n_back
     obs = tr.observer
-    amp_lo, amp_hi = boot.amplitude_ci
-    w_lo, w_hi = boot.peak_offset_ci
+    common = fit_flags(fit)
+    bare = "one-sided" in common or "few-trials" in common
+
+    def ci(pair):
+        lo, hi = (np.asarray(v, dtype=float) for v in pair)
+        return (np.full_like(lo, np.nan), np.full_like(hi, np.nan)) if bare else (lo, hi)
+
+    mu_lo, mu_hi = ci(boot.interval(fit.pse_deg, boot.per_n[:, 0]))
+    x = tr.test_offset_deg
+    pse_box = (float(fit.lower_per_n[0]), float(fit.upper_per_n[0]))
+    pse = pd.DataFrame({"observer": [obs], "condition": [STREAM_BLOCK], "adapter_offset_deg": [np.nan],
+                        "lag": pd.array([pd.NA], dtype="Int64"), "pse_deg": [fit.pse_deg],
+                        "pse_ci_low": [mu_lo[0]], "pse_ci_high": [mu_hi[0]], "spread_deg": [fit.spread_deg],
+                        "lapse": [fit.lapse], "n_trials": [x.size],
+                        "flags": [_row_flags(common, fit.pse_deg, mu_lo[0], mu_hi[0], pse_box)]})
+    amp_lo, amp_hi = ci(boot.amplitude_ci)
+    w_lo, w_hi = (v[0] for v in ci(([boot.peak_offset_ci[0]], [boot.peak_offset_ci[1]])))
+    w_box = tuple(np.exp([fit.lower_per_n[3], fit.upper_per_n[3]]))
     tuning = pd.DataFrame({
         "observer": obs, "lag": np.arange(k), "amplitude_deg": fit.amplitudes_deg,
         "amplitude_ci_low": amp_lo, "amplitude_ci_high": amp_hi, "peak_offset_deg": fit.peak_offset_deg,
         "peak_offset_ci_low": w_lo, "peak_offset_ci_high": w_hi,
+        "flags": [join(_row_flags(common, a, lo, hi), _row_flags([], fit.peak_offset_deg, w_lo, w_hi, w_box))
+                  for a, lo, hi in zip(fit.amplitudes_deg, amp_lo, amp_hi)],
     })
     offsets = np.unique(tr.preceding_offsets_deg)
     offsets = offsets[(offsets != 0) & (np.abs(offsets) != 180)]
     est, lo, hi = boot.shift_ci(offsets)
+    lo, hi = ci((lo, hi))
     rows = []
     for n in range(k):
         for j, o in enumerate(offsets):
-            rows.append((obs, n, o, est[n, j], lo[n, j], hi[n, j], int((tr.preceding_offsets_deg[:, n] == o).sum())))
+            rows.append((obs, n, o, est[n, j], lo[n, j], hi[n, j], int((tr.preceding_offsets_deg[:, n] == o).sum()),
+                         _row_flags(common, est[n, j], lo[n, j], hi[n, j])))
     after = pd.DataFrame(rows, columns=["observer", "lag", "adapter_offset_deg", "pse_shift_deg", "ci_low",
-                                        "ci_high", "n_trials"])
+                                        "ci_high", "n_trials", "flags"])
     if k >= 2:
-        t_lo, t_hi = boot.decay_ci
+        t_lo, t_hi = (v[0] for v in ci(([boot.decay_ci[0]], [boot.decay_ci[1]])))
         decay = pd.DataFrame({"observer": [obs], "decay_periods": [fit.decay_periods], "ci_low": [t_lo],
-                              "ci_high": [t_hi]})
+                              "ci_high": [t_hi],
+                              "flags": [_row_flags(common, fit.decay_periods, t_lo, t_hi, TAU_BOUNDS)]})
     else:
-        decay = pd.DataFrame({"observer": [obs], "decay_periods": [np.nan], "ci_low": [np.nan], "ci_high": [np.nan]})
-    return {"aftereffect": after, "tuning": tuning, "decay": decay}
+        decay = pd.DataFrame({"observer": [obs], "decay_periods": [np.nan], "ci_low": [np.nan], "ci_high": [np.nan],
+                              "flags": [join(common)]})
+    reps = dog(offsets[None, None, :], boot.per_n[:, 4:, None], np.exp(boot.per_n[:, 3])[:, None, None])
+    reps = reps.reshape(reps.shape[0], -1)
+    cov = long_table(obs, np.repeat(np.arange(k), offsets.size), np.tile(offsets, k),
+                np.atleast_2d(np.cov(reps, rowvar=False)), reps.shape[0], np.nan)
+    return {"pse": pse, "aftereffect": after, "tuning": tuning, "decay": decay, "aftereffect_covariance": cov}
 
 
 def plot_amplitudes(boot: NbackBootstrap, base: Path) -> list[str]:
@@ -635,17 +701,31 @@ class StreamReport:
     out_dir: Path
     fits: list
     files: list = field(default_factory=list)
+    tables: dict = field(default_factory=dict)
 
     def summary(self) -> str:
-        """Readable lines for the command line."""
+        """Readable lines for the command line (and ``summary.txt``), flagged rows first."""
         lines = [f"stream n-back fits written to {self.out_dir}"]
+        flagged = []
+        for name, label in (("pse", lambda r: f"{r['observer']} PSE"),
+                            ("tuning", lambda r: f"{r['observer']} tuning lag {r['lag']}"),
+                            ("decay", lambda r: f"{r['observer']} decay")):
+            flagged += flagged_first(self.tables.get(name), label)
+        after = self.tables.get("aftereffect")
+        if after is not None and len(after):
+            bad = after[after["flags"].fillna("") != ""]
+            for obs, g in bad.groupby("observer", sort=False):
+                flagged.append(f"{obs} shifts ({len(g)} rows): {' '.join(sorted(set(' '.join(g['flags']).split())))}")
+        lines += ([f"Flagged rows ({len(flagged)}; the words are explained in the README):"]
+                  + [f"  {f}" for f in flagged]) if flagged else ["Flagged rows: none"]
         for boot in self.fits:
             f = boot.fit
             lo, hi = boot.amplitude_ci
+            w_lo, w_hi = boot.peak_offset_ci
             amps = ", ".join(f"n={i + 1}: {a:.2f} [{l:.2f}, {h:.2f}]"
                              for i, (a, l, h) in enumerate(zip(f.amplitudes_deg, lo, hi)))
-            line = (f"{f.trials.observer}: {f.trials.n_trials} tests; amplitudes (deg) {amps}; "
-                    f"peak offset {f.peak_offset_deg:.3g} deg; lapse {f.lapse:.3f}")
+            line = (f"{f.trials.observer}: {f.trials.n_trials} tests; PSE {f.pse_deg:.2f} deg; amplitudes (deg) "
+                    f"{amps}; peak offset {f.peak_offset_deg:.3g} deg [{w_lo:.3g}, {w_hi:.3g}]; lapse {f.lapse:.3f}")
             if f.trials.n_back >= 2:
                 t_lo, t_hi = boot.decay_ci
                 line += f"; decay {f.decay_periods:.3g} periods [{t_lo:.3g}, {t_hi:.3g}]"
@@ -657,11 +737,14 @@ def fit_stream_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="fr
                     lapse_max: float = DEFAULT_LAPSE_MAX, include_bad_timing: bool = False,
                     interval: str = "percentile", figures: bool = True, plan=None,
                     progress: bool | None = None) -> StreamReport:
-    """Fit stream logs; write ``aftereffect.csv``, ``tuning.csv``, ``decay.csv``, figures and the report.
+    """Fit stream logs and write the same layout as adapt–test fits, and the report.
 
-    Also written: ``exclusions.csv`` (as for adapt–test fits),
-    ``summary.txt``, ``report_data.json`` and ``report.html``
-    (:mod:`fitting.page`).
+    Writes ``pse.csv`` (μ₀, condition ``stream``), ``aftereffect.csv``,
+    ``tuning.csv`` (with the peak offset's interval), ``decay.csv``, every
+    row with its ``flags``; ``aftereffect_covariance.csv`` for ``compare``;
+    ``exclusions.csv`` (as for adapt–test fits); ``summary.txt``;
+    ``figures/nback_<observer>.png`` / ``.pdf``; ``report_data.json`` and
+    ``report.html`` (:mod:`fitting.page`).
 
     Parameters
     ----------
@@ -689,14 +772,15 @@ def fit_stream_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="fr
     """
     from .figures import safe_name
 
-    from .page import write_page
+    from .page import PAGE, write_page
     from .progress import ProgressBar, phase
-    from .provenance import collect, write_report_data
+    from .provenance import REPORT_DATA, collect, write_report_data
 
     out = Path(out_dir)
     raw = _read_stream_table(paths)
     observers = _observer_trials(raw, include_bad_timing)
-    fits, tables = [], {"aftereffect": [], "tuning": [], "decay": []}
+    fits = []
+    tables = {"pse": [], "aftereffect": [], "tuning": [], "decay": [], "aftereffect_covariance": []}
     with ProgressBar(len(observers), "n-back fits and bootstrap", show=progress, unit="observers") as bar:
         for i, trials in enumerate(observers):
             boot = bootstrap_nback(fit_nback(trials, lapse, lapse_max), n_boot,
@@ -705,24 +789,26 @@ def fit_stream_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="fr
             for name, table in result_tables(boot).items():
                 tables[name].append(table)
             bar.advance()
-    tables["exclusions"] = [stream_exclusions(raw, include_bad_timing)]
+    joined = {name: pd.concat(parts, ignore_index=True) for name, parts in tables.items()}
+    joined["exclusions"] = stream_exclusions(raw, include_bad_timing)
     with output_set(out, "fit") as staged:
         folder = staged.folder
         files = []
-        for name, parts in tables.items():
+        for name, table in joined.items():
             path = folder / f"{name}.csv"
-            write_csv(pd.concat(parts, ignore_index=True), path)
+            write_csv(table, path)
             files.append(str(path))
         if figures:
             with phase("drawing figures", show=progress):
                 for boot in fits:
-                    files += plot_amplitudes(boot, folder / f"nback_{safe_name(boot.fit.trials.observer)}")
-        report = StreamReport(out, fits, files)
+                    files += plot_amplitudes(boot, folder / "figures" / f"nback_{safe_name(boot.fit.trials.observer)}")
+        files += [str(folder / "summary.txt"), str(folder / REPORT_DATA), str(folder / PAGE)]
+        report = StreamReport(out, fits, staged.final_paths(files), joined)
         write_text(folder / "summary.txt", report.summary() + "\n")
         options = (f"stream n-back regression, lapse {'free in [0, ' + format(lapse_max, 'g') + ']' if lapse == 'free' else 'fixed at ' + str(lapse)}; "
                    f"{interval} intervals from {n_boot} parametric bootstrap replicates (seed {seed})")
         data = collect(paths, plan)
         data.update(kind="stream", options=options, notes={})
-        files += [str(folder / "summary.txt"), str(write_report_data(folder, data)), str(write_page(folder))]
-        report.files = staged.final_paths(files)
+        write_report_data(folder, data)
+        write_page(folder)
     return report

@@ -27,15 +27,17 @@ from scipy import special
 
 from .aftereffect import TAU_BOUNDS, bound_note, fit_decay, fit_tuning, peak_bounds
 from .bootstrap import BootstrapResult, parametric_bootstrap
+from .flags import MIN_TRIALS_FOR_INTERVAL, condense, join, on_bound, psychometric_flags
+from .replay import replay_bootstrap
 from .psychometric import DEFAULT_LAPSE_MAX, Cells, PsychometricFit, fit_cells
 
 PSE_COLUMNS = ["observer", "condition", "adapter_offset_deg", "lag", "pse_deg", "pse_ci_low",
-               "pse_ci_high", "spread_deg", "lapse", "n_trials"]
+               "pse_ci_high", "spread_deg", "lapse", "n_trials", "flags"]
 AFTEREFFECT_COLUMNS = ["observer", "lag", "adapter_offset_deg", "pse_shift_deg", "ci_low",
-                       "ci_high", "n_trials"]
+                       "ci_high", "n_trials", "flags"]
 TUNING_COLUMNS = ["observer", "lag", "amplitude_deg", "amplitude_ci_low", "amplitude_ci_high",
-                  "peak_offset_deg", "peak_offset_ci_low", "peak_offset_ci_high"]
-DECAY_COLUMNS = ["observer", "decay_periods", "ci_low", "ci_high"]
+                  "peak_offset_deg", "peak_offset_ci_low", "peak_offset_ci_high", "flags"]
+DECAY_COLUMNS = ["observer", "decay_periods", "ci_low", "ci_high", "flags"]
 
 _FD_STEP = 1e-4   # deg, central differences of curve parameters in the PSEs
 
@@ -57,6 +59,10 @@ class Options:
     lapse_max : float
     progress : bool or None
         Progress bar (None: only on a terminal).
+    tracks : dict of str -> callable, optional
+        Per observer, a factory of fresh adaptive tracks; observers listed
+        here are bootstrapped by re-running their tracks (:mod:`fitting.replay`),
+        the others with the levels held fixed.
     """
 
     n_boot: int = 1000
@@ -67,6 +73,7 @@ class Options:
     level: float = 0.95
     lapse_max: float = DEFAULT_LAPSE_MAX
     progress: bool | None = None
+    tracks: dict | None = None
 
 
 @dataclass
@@ -197,12 +204,24 @@ def analyse_observer(observer: str, trials: pd.DataFrame, opts: Options,
         fit = fit_cells(cells, names, opts.spread, opts.lapse, opts.sigmoid, opts.lapse_max)
         alt = fit_cells(cells, names, other, opts.lapse, opts.sigmoid, opts.lapse_max,
                         warn=False) if len(names) > 1 else None
-    notes += [str(w.message) for w in caught]
+    notes += condense(w.message for w in caught)
     if fit.lapse_at_bound:
         notes.append(f"lapse on its bound ({fit.lapse:g})")
     boot = None
     if opts.n_boot > 0:
-        boot = parametric_bootstrap(fit, opts.n_boot, rng, opts.progress, f"bootstrap {observer}")
+        factory = (opts.tracks or {}).get(observer)
+        if opts.tracks is not None and factory is None:
+            notes.append("bootstrap kept the levels fixed: no session sidecar with the protocol was found")
+        elif factory is not None and not trials["track"].astype(str).str.fullmatch(r"\d+").all():
+            notes.append("bootstrap kept the levels fixed: some trials name no track number")
+            factory = None
+        if factory is not None:
+            plan = [[(str(t), int(m)) for t, m in trials[trials["condition"] == name]
+                     .groupby("track", sort=True).size().items()] for name in names]
+            boot = replay_bootstrap(fit, plan, factory, opts.n_boot, rng, opts.progress,
+                                    f"bootstrap {observer} (tracks re-run)")
+        else:
+            boot = parametric_bootstrap(fit, opts.n_boot, rng, opts.progress, f"bootstrap {observer}")
         bad = 1.0 - boot.converged.mean()
         if bad > 0:
             notes.append(f"{100 * bad:.1f}% of bootstrap refits stopped before converging")
@@ -213,12 +232,19 @@ def analyse_observer(observer: str, trials: pd.DataFrame, opts: Options,
     grad_pse = np.zeros((P, C))
     grad_pse[lay.pse_index, np.arange(C)] = 1.0
     lo, hi = _intervals(boot, opts, fit.pse, None if boot is None else boot.pse, grad_pse)
+    few = fit.n_trials < MIN_TRIALS_FOR_INTERVAL
+    lo, hi = np.where(few, np.nan, lo), np.where(few, np.nan, hi)
+    cond_flags = psychometric_flags(fit, boot)
+    box = zip(fit.lower[fit.layout.pse_index], fit.upper[fit.layout.pse_index])
+    cond_flags = [join(f, ["on-bound"] if on_bound(e, l, h, b) else [])
+                  for f, e, l, h, b in zip(cond_flags, fit.pse, lo, hi, box)]
     pse = pd.DataFrame({
         "observer": observer, "condition": names,
         "adapter_offset_deg": conds["adapter_offset_deg"].to_numpy(),
         "lag": conds["lag"].astype("Int64"),
         "pse_deg": fit.pse, "pse_ci_low": lo, "pse_ci_high": hi,
-        "spread_deg": fit.spread, "lapse": fit.lapse, "n_trials": conds["n_trials"].to_numpy()})
+        "spread_deg": fit.spread, "lapse": fit.lapse, "n_trials": conds["n_trials"].to_numpy(),
+        "flags": cond_flags})
     details = _details(observer, conds, fit, boot, opts)
     model_test = _model_test(observer, fit, alt, boot, opts)
     period = _period(trials, notes)
@@ -298,11 +324,18 @@ def _curves(a: ObserverAnalysis, opts: Options) -> None:
     lo, hi = _intervals(boot, opts, est, reps, grad)
     m = model.cond_index.size
     adapted = conds.iloc[model.cond_index]
+    cond_flags = a.pse["flags"].to_numpy()
+    shift_flags = [join(cond_flags[c], cond_flags[model.base]) for c in model.cond_index]
+    few = np.array(["few-trials" in f for f in shift_flags])
+    lo[:m], hi[:m] = np.where(few, np.nan, lo[:m]), np.where(few, np.nan, hi[:m])
+    # a curve inherits the doubts of the conditions it is fitted to
+    inherited = join(*(w for f in shift_flags for w in f.split()
+                       if w in ("one-sided", "not-converged")))
     a.aftereffect = pd.DataFrame({
         "observer": a.observer, "lag": adapted["lag"].astype("Int64").to_numpy(),
         "adapter_offset_deg": adapted["adapter_offset_deg"].to_numpy(),
         "pse_shift_deg": est[:m], "ci_low": lo[:m], "ci_high": hi[:m],
-        "n_trials": adapted["n_trials"].to_numpy()})
+        "n_trials": adapted["n_trials"].to_numpy(), "flags": shift_flags})
     a.curves = {"offsets": model.offsets, "lags": model.lags, "peak_range": model.peak_range,
                 "shift_se": np.sqrt(model.shift_var)}
     rows_t = []
@@ -312,7 +345,9 @@ def _curves(a: ObserverAnalysis, opts: Options) -> None:
         rows_t.append({"observer": a.observer, "lag": int(model.lags[i]),
                        "amplitude_deg": est[col], "amplitude_ci_low": lo[col],
                        "amplitude_ci_high": hi[col], "peak_offset_deg": est[col + 1],
-                       "peak_offset_ci_low": lo[col + 1], "peak_offset_ci_high": hi[col + 1]})
+                       "peak_offset_ci_low": lo[col + 1], "peak_offset_ci_high": hi[col + 1],
+                       "flags": join(inherited, ["on-bound"] if on_bound(
+                           est[col + 1], lo[col + 1], hi[col + 1], model.peak_range) else [])})
         note = bound_note(f"lag {model.lags[i]:g} peak offset", est[col + 1], lo[col + 1],
                           hi[col + 1], model.peak_range, "deg")
         if note:
@@ -324,8 +359,11 @@ def _curves(a: ObserverAnalysis, opts: Options) -> None:
     if model.decay_ok:
         a0, w, tau = est[col:col + 3]
         ci = [(lo[col + j], hi[col + j]) for j in range(3)]
+        bound = on_bound(tau, *ci[2], TAU_BOUNDS) or on_bound(w, *ci[1], model.peak_range)
         a.decay = pd.DataFrame([{"observer": a.observer, "decay_periods": tau,
-                                 "ci_low": ci[2][0], "ci_high": ci[2][1]}], columns=DECAY_COLUMNS)
+                                 "ci_low": ci[2][0], "ci_high": ci[2][1],
+                                 "flags": join(inherited, ["on-bound"] if bound else [])}],
+                               columns=DECAY_COLUMNS)
         per = a.period_s
         a.decay_detail = pd.DataFrame([{
             "observer": a.observer, "amplitude0_deg": a0, "amplitude0_ci_low": ci[0][0],

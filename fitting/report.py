@@ -2,7 +2,8 @@
 
 Files written by :func:`fit_logs` into ``out_dir``
 --------------------------------------------------
-Tables with exactly the README's required columns, in that order:
+Tables with exactly the README's required columns, in that order, then ``flags``
+(:mod:`fitting.flags`):
 
 ``pse.csv``, ``aftereffect.csv``, ``tuning.csv``, ``decay.csv``
 
@@ -17,8 +18,11 @@ More tables:
                       offset, tau in periods and in seconds, with intervals
 ``exclusions.csv``    per observer: trials read and excluded (practice, bad
                       timing, missed answers), trials used
-``mixed_model.csv``   with several observers: the statsmodels mixed model
-``summary.txt``       the text of :meth:`FitReport.summary`
+``mixed_model.csv``   with several observers: the statsmodels mixed model, with
+                      its convergence
+``aftereffect_covariance.csv``  covariance of every pair of shifts, per observer
+                      and for the group (:mod:`fitting.covariance`), for ``compare``
+``summary.txt``       the text of :meth:`FitReport.summary`, flagged rows first
 ``figures/``          PNG and PDF figures (see :mod:`fitting.figures`)
 ``report_data.json``  sessions, protocols and software behind the fit
                       (:mod:`fitting.provenance`)
@@ -44,7 +48,9 @@ import pandas as pd
 
 from .bootstrap import check_replicate_memory, parametric_bootstrap
 from .errors import InputError
-from .group import GROUP, group_aftereffect, group_curves, group_pse, mixed_model
+from .covariance import COVARIANCE_COLUMNS, group_covariance, observer_covariance
+from .flags import flagged_first, join, psychometric_flags
+from .group import GROUP, group_aftereffect, group_curves, group_pse, group_weights, mixed_model
 from .observer import (AFTEREFFECT_COLUMNS, DECAY_COLUMNS, PSE_COLUMNS, TUNING_COLUMNS,
                        ObserverAnalysis, Options, analyse_observer, condition_table)
 from .page import PAGE, write_page
@@ -110,6 +116,7 @@ class FitReport:
               else "no bootstrap: no intervals")
         lines.append(f"{o.sigmoid} psychometric function, {lapse}, "
                      f"{'shared' if o.spread == 'shared' else 'per-condition'} spread; {ci}")
+        lines += self._flagged()
         tests = self.extras["model_tests"].set_index("observer")
         for a in self.analyses:
             t = tests.loc[a.observer]
@@ -139,7 +146,8 @@ class FitReport:
                 lines.append(f"  note: {n}")
         if GROUP in self.notes or (self.tuning["observer"] == GROUP).any():
             lines.append("")
-            lines.append(f"Group ({n_obs} observers; between-observer intervals)")
+            lines.append(f"Group ({n_obs} observers; random-effects intervals with within- and "
+                         "between-observer uncertainty)")
             g = self.aftereffect[self.aftereffect["observer"] == GROUP]
             lines += _shift_grid(g)
             for _, r in self.tuning[self.tuning["observer"] == GROUP].iterrows():
@@ -159,6 +167,26 @@ class FitReport:
                 sorted({Path(f).name for f in self.files if "figures" not in Path(f).parts}))
                 + f", and {sum('figures' in Path(f).parts for f in self.files)} figure files in figures/")
         return "\n".join(lines)
+
+
+    def _flagged(self) -> list[str]:
+        """The flagged rows of every table, listed before everything else."""
+        def cond(r):
+            return f"{r['observer']} PSE {r['condition']}"
+
+        def cell(r):
+            return f"{r['observer']} shift lag {r['lag']} offset {r['adapter_offset_deg']:+g}"
+
+        found = (flagged_first(self.pse, cond) + flagged_first(self.aftereffect, cell)
+                 + flagged_first(self.tuning, lambda r: f"{r['observer']} tuning lag {r['lag']}")
+                 + flagged_first(self.decay, lambda r: f"{r['observer']} decay"))
+        mm = self.extras.get("mixed_model")
+        if mm is not None and len(mm) and not bool(mm["converged"].iloc[0]):
+            found.append("mixed model: model-not-converged")
+        if not found:
+            return ["", "Flagged rows: none"]
+        return ["", f"Flagged rows ({len(found)}; the words are explained in the README):"] + \
+            [f"  {line}" for line in found]
 
 
 def _ci(lo, hi, digits: int = 2) -> str:
@@ -230,7 +258,7 @@ def _analyse_task(task) -> ObserverAnalysis:
 def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="free",
                spread: str = "shared", progress=True, *, sigmoid: str = "gaussian",
                interval: str = "bca", level: float = 0.95,
-               lapse_max: float = DEFAULT_LAPSE_MAX, map_tasks=None) -> FitReport:
+               lapse_max: float = DEFAULT_LAPSE_MAX, map_tasks=None, tracks: dict | None = None) -> FitReport:
     """Fit checked trials (from :func:`read_logs`) without writing anything.
 
     Same options as :func:`fit_logs`; returns the :class:`FitReport` with
@@ -238,9 +266,11 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
     """
     opts = _check_options(n_boot, seed, lapse, spread, sigmoid, interval, level, lapse_max, progress)
     check_replicate_memory(opts.n_boot, int(trials.groupby(["observer", "condition"]).ngroups))
+    if tracks:
+        opts = replace(opts, tracks=dict(tracks))
     groups = {str(observer): obs_trials.reset_index(drop=True)
               for observer, obs_trials in trials.groupby("observer", sort=True)}
-    if map_tasks is not None and len(groups) > 1:
+    if map_tasks is not None and len(groups) > 1 and not tracks:  # track factories stay in this process
         quiet = replace(opts, progress=False)
         done = map_tasks(_analyse_task, {obs: (obs, t, quiet, int(seed)) for obs, t in groups.items()})
         analyses = [done[obs] for obs in groups]
@@ -267,7 +297,7 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
                  if len(tables["aftereffect"]) else pd.DataFrame(columns=AFTEREFFECT_COLUMNS)}
         if len(tables["aftereffect"]):
             group["tuning"], group["decay"], group["decay_detail"], group["curves"] = \
-                group_curves(tables["aftereffect"], opts.level, gnotes)
+                group_curves(tables["aftereffect"], opts.level, gnotes, tables["tuning"], tables["decay"])
         else:
             group["tuning"], group["decay"], group["decay_detail"] = (
                 pd.DataFrame(columns=TUNING_COLUMNS), pd.DataFrame(columns=DECAY_COLUMNS), pd.DataFrame())
@@ -281,12 +311,19 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
                          ("decay_s_ci_high", "decay_ci_high")):
                 d[a] = d[b] * per
         extras["mixed_model"] = mixed_model(tables["aftereffect"], gnotes)
+        if len(group["aftereffect"]):
+            group["covariance"] = group_covariance(
+                analyses, group["aftereffect"], group_weights(tables["aftereffect"], opts.level), opts.level)
         for k in ("pse", "aftereffect", "tuning", "decay"):
             tables[k] = pd.concat([tables[k], group[k]], ignore_index=True)
         if len(group["decay_detail"]):
             extras["decay_detail"] = pd.concat([extras["decay_detail"], group["decay_detail"]],
                                                ignore_index=True)
         notes[GROUP] = gnotes
+    covs = [observer_covariance(a) for a in analyses] + [(group or {}).get("covariance")]
+    covs = [c for c in covs if c is not None]
+    if covs:
+        extras["aftereffect_covariance"] = pd.concat(covs, ignore_index=True)[COVARIANCE_COLUMNS]
     return FitReport(*(tables[k][MAIN_TABLES[k]] for k in MAIN_TABLES), extras, analyses, notes,
                      opts, int(seed), group=group)
 
@@ -295,7 +332,8 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
              spread: str = "shared", include_bad_timing: bool = False, progress=True,
              figures: bool = True, *, include_practice: bool = False, sigmoid: str = "gaussian",
              interval: str = "bca", level: float = 0.95,
-             lapse_max: float = DEFAULT_LAPSE_MAX, plan=None, map_tasks=None) -> FitReport:
+             lapse_max: float = DEFAULT_LAPSE_MAX, plan=None, map_tasks=None,
+             tracks: dict | None = None) -> FitReport:
     """Read trial logs, fit every observer (and the group), write tables, figures and ``report.html``.
 
     Parameters
@@ -342,6 +380,11 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
         it (the command line hands them to local worker processes or a Dask
         cluster); each observer's replicates depend only on the seed and its
         ID, so the tables are the same either way.
+    tracks : dict of str -> callable, optional
+        Per observer, a factory of fresh adaptive tracks: the bootstrap then
+        re-runs the tracks with the fitted observer (:mod:`fitting.replay`;
+        the command line builds these from the sidecars with
+        ``--rerun-tracks``).
 
     Returns
     -------
@@ -357,7 +400,8 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
     _check_options(n_boot, seed, lapse, spread, sigmoid, interval, level, lapse_max, progress)
     trials = read_logs(paths, include_bad_timing, include_practice)
     report = fit_trials(trials, n_boot, seed, lapse, spread, progress, sigmoid=sigmoid,
-                        interval=interval, level=level, lapse_max=lapse_max, map_tasks=map_tasks)
+                        interval=interval, level=level, lapse_max=lapse_max, map_tasks=map_tasks,
+                        tracks=tracks)
     # all fitting is done; only now is anything written, staged and moved in as one set
     with output_set(out_dir, "fit") as staged:
         out = staged.folder
@@ -409,9 +453,13 @@ def quick_shifts(trials: pd.DataFrame, n_boot: int = 50, seed: int = 0) -> pd.Da
     -------
     pandas.DataFrame
         ``observer, condition, adapter_offset_deg, lag, pse_deg,
-        pse_shift_deg, ci_low, ci_high, n_trials``; one row per condition
-        (baseline included, shift 0); shifts and intervals empty (NaN) when
-        the observer has no baseline trials yet.
+        pse_shift_deg, ci_low, ci_high, n_trials, flags``; one row per
+        condition (baseline included, shift 0); shifts and intervals empty
+        (NaN) when the observer has no baseline trials yet; intervals empty
+        where the condition or the baseline has fewer than
+        :data:`~fitting.flags.MIN_TRIALS_FOR_INTERVAL` trials or all answers
+        on one side.  ``.attrs["exclusions"]`` holds the exclusion counts
+        (see :func:`exclusion_text`).
     """
     if isinstance(n_boot, bool) or not isinstance(n_boot, numbers.Integral) or n_boot < 0:
         raise InputError("argument", "n_boot", f"a whole number >= 0, not {n_boot!r}")
@@ -427,14 +475,34 @@ def quick_shifts(trials: pd.DataFrame, n_boot: int = 50, seed: int = 0) -> pd.Da
         base = np.flatnonzero(conds["is_baseline"].to_numpy())
         shift = fit.pse - fit.pse[base[0]] if base.size else np.full(len(names), np.nan)
         lo = hi = np.full(len(names), np.nan)
+        flags = psychometric_flags(fit)
+        if base.size:
+            flags = [join(f, flags[base[0]]) for f in flags]
         if n_boot and base.size:
             boot = parametric_bootstrap(fit, int(n_boot), _observer_rng(seed, str(observer)), False)
             reps = boot.pse - boot.pse[:, [base[0]]]
             lo, hi = np.quantile(reps, [0.025, 0.975], axis=0)
+            # no interval from too few trials or from answers all on one side
+            bare = np.array([("few-trials" in f) or ("one-sided" in f) for f in flags])
+            lo, hi = np.where(bare, np.nan, lo), np.where(bare, np.nan, hi)
         rows.append(pd.DataFrame({"observer": str(observer), "condition": names,
                                   "adapter_offset_deg": conds["adapter_offset_deg"].to_numpy(),
                                   "lag": conds["lag"].astype("Int64").to_numpy(),
                                   "pse_deg": fit.pse, "pse_shift_deg": shift,
                                   "ci_low": lo, "ci_high": hi,
-                                  "n_trials": conds["n_trials"].to_numpy()}))
-    return pd.concat(rows, ignore_index=True)
+                                  "n_trials": conds["n_trials"].to_numpy(), "flags": flags}))
+    table = pd.concat(rows, ignore_index=True)
+    table.attrs["exclusions"] = kept.attrs.get("exclusions")
+    return table
+
+
+def exclusion_text(counts: pd.DataFrame | None) -> str:
+    """One line: trials used of read, and how many were excluded for what."""
+    if counts is None or not len(counts):
+        return ""
+    used, read = int(counts["trials_used"].sum()), int(counts["trials_read"].sum())
+    why = [f"{int(counts[c].sum())} {w}" for c, w in (("practice_excluded", "practice"),
+                                                      ("bad_timing_excluded", "bad timing"),
+                                                      ("missed_excluded", "missed answers"))
+           if int(counts[c].sum())]
+    return f"{used} trials used of {read}" + (f" (excluded: {', '.join(why)})" if why else "")

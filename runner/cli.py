@@ -189,6 +189,8 @@ def _quick_fit_text(rows: list[dict]) -> str:
     import pandas as pd
 
     from fitting import quick_shifts
+    from fitting.flags import MIN_TRIALS_FOR_INTERVAL
+    from fitting.report import exclusion_text
 
     frame = pd.DataFrame(rows)
     try:
@@ -197,7 +199,9 @@ def _quick_fit_text(rows: list[dict]) -> str:
         return f"quick fit not possible yet: {exc.message}"
     if table.empty:
         return ""
-    return "PSE shift so far (deg, rough 95% CI from 50 replicates):\n" + table.to_string(index=False)
+    return (f"PSE shift so far (deg, rough 95% CI from 50 replicates; no CI below "
+            f"{MIN_TRIALS_FOR_INTERVAL} trials or with all answers on one side); "
+            f"{exclusion_text(table.attrs.get('exclusions'))}:\n" + table.to_string(index=False))
 
 
 #: Most bootstrap replicates ``fit`` accepts: far more than any interval needs, and within memory.
@@ -242,11 +246,16 @@ def cmd_fit(args) -> int:
     else:
         from runner.workpool import open_pool, task_mapper
 
+        tracks = None
+        if args.rerun_tracks:
+            from runner.replay import track_factories
+
+            tracks = track_factories(trials)
         pool = open_pool(args.scheduler, args.jobs)
         try:
             report = fit_logs(trials, args.out, spread=args.spread, include_practice=args.include_practice,
                               sigmoid=args.function, level=args.level, plan=plan_from_text,
-                              map_tasks=task_mapper(pool, "fitting observers"), **common)
+                              map_tasks=task_mapper(pool, "fitting observers"), tracks=tracks, **common)
         finally:
             pool.close()
     print(report.summary())
@@ -428,6 +437,9 @@ def build_parser() -> argparse.ArgumentParser:
                                                 "(default: every available core)")
     where.add_argument("--scheduler", metavar="ADDRESS", help="fit the observers on a Dask cluster, e.g. "
                                                               "tcp://HOST:8786 (needs the cluster extra)")
+    p.add_argument("--rerun-tracks", action="store_true",
+                   help="bootstrap by re-running each adaptive track with the fitted observer (protocol from the "
+                        "sidecars; closer to nominal coverage, slower: minutes with Bayesian tracks)")
     p.set_defaults(func=cmd_fit)
 
     p = sub.add_parser("compare", help="agreement of measured after-effects with a predictions table")

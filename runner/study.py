@@ -8,7 +8,7 @@ in memory, and the real fitter (:func:`fitting.fit_trials`) gives estimates
 and 95 % intervals of
 
 * the DoG amplitude and the peak offset at each lag (``tuning``), whose true
-  values are ``A·exp(−k/τ)`` and ``w`` (DESIGN.md's observer model),
+  values are ``A·exp(−k/τ)`` and ``w`` (the README's simulated-observer model),
 * the decay ``τ`` in periods (two or more lags),
 * the baseline PSE ``μ₀``.
 
@@ -202,7 +202,7 @@ def check_designs(designs: list[Design]) -> list[str]:
 
 
 def truth(model: ObserverModel, quantity: str, lag) -> float:
-    """The simulated observer's true value of a quantity (DESIGN.md's observer model)."""
+    """The simulated observer's true value of a quantity (the README's simulated-observer model)."""
     if quantity == "amplitude":
         return model.amplitude_deg * math.exp(-float(lag) / model.decay_periods)
     if quantity == "peak_offset":

@@ -45,6 +45,11 @@ def _procedure(protocol: Protocol, track: int, seed_words: tuple[int, ...]):
     return ConstantLevels(levels=proc.levels_deg, repeats=repeats, seed=seed)
 
 
+def new_track(protocol: Protocol, track: int, seed_words: tuple[int, ...] = (0,)):
+    """A fresh procedure for track number ``track`` of any condition (as a session builds it)."""
+    return _procedure(protocol, track, seed_words)
+
+
 def make_tracks(protocol: Protocol, schedule: Schedule, seed: int) -> dict:
     """One adaptive procedure per condition and track, keyed ``condition/track``.
 

@@ -2,7 +2,7 @@
 
 Each simulation is a separate process, killed or raced as a user's mistake
 would; afterwards ``simulate --resume`` must leave logs equal, byte for byte,
-to an uninterrupted run with the same seed (the contract of DESIGN.md), and
+to an uninterrupted run with the same seed (the resume contract in the README), and
 every refused or interrupted command must say so in one line.
 """
 

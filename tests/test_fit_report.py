@@ -38,7 +38,7 @@ def test_tables_have_exact_columns_group_rows_and_signs(logs, tmp_path):
     report = fit_logs([str(logs)], str(out), n_boot=100, seed=3, figures=False, progress=False)
     for name, cols in REQUIRED_COLUMNS.items():
         table = pd.read_csv(out / name)
-        assert list(table.columns) == cols
+        assert list(table.columns) == cols + ["flags"]   # the README's required columns, then the flags
         assert set(table["observer"]) == {"P1", "P2", "group"}
     shifts = pd.read_csv(out / "aftereffect.csv")
     lag0 = shifts[(shifts["lag"] == 0) & (shifts["adapter_offset_deg"].abs() <= 30)]
@@ -115,7 +115,7 @@ def test_quick_shifts_after_a_block():
     df.loc[3, "response_cw"] = pd.NA                     # a missed answer is left out
     out = quick_shifts(df, n_boot=40, seed=1)
     assert list(out.columns) == ["observer", "condition", "adapter_offset_deg", "lag", "pse_deg",
-                                 "pse_shift_deg", "ci_low", "ci_high", "n_trials"]
+                                 "pse_shift_deg", "ci_low", "ci_high", "n_trials", "flags"]
     base = out[out["condition"] == "baseline"].iloc[0]
     assert base["pse_shift_deg"] == 0.0
     plus = out[out["adapter_offset_deg"] == 30].iloc[0]
@@ -125,3 +125,21 @@ def test_quick_shifts_after_a_block():
     assert out["n_trials"].sum() == 119
     no_base = quick_shifts(df[df["condition"] != "baseline"], n_boot=0)
     assert no_base["pse_shift_deg"].isna().all() and no_base["pse_deg"].notna().all()
+
+
+def test_quick_fit_at_a_break_shows_no_interval_from_few_trials_and_states_exclusions():
+    df = simulate_trials(MODEL, offsets=(-30, 30), lags=(0,), trials_per_track=20, seed=8)
+    plus = df.index[df["condition"] == "adapt+30_lag0"]
+    early = df.drop(plus[8:]).copy()                                    # +30 deg: 8 trials
+    late = np.concatenate([early.index[early["condition"] == c][-n:]
+                           for c, n in (("baseline", 15), ("adapt-30_lag0", 20))])
+    early.loc[late, "timing_ok"] = False                                # 35 excluded for timing
+    out = quick_shifts(early, n_boot=40, seed=1)
+    few = out[out["adapter_offset_deg"] == 30].iloc[0]
+    assert few["n_trials"] < 10 and "few-trials" in few["flags"]
+    assert np.isnan(few["ci_low"]) and np.isnan(few["ci_high"])
+    ok = out[out["adapter_offset_deg"] == -30].iloc[0]
+    assert np.isfinite(ok["ci_low"]) and ok["flags"] == ""
+    from fitting.report import exclusion_text
+    text = exclusion_text(out.attrs["exclusions"])
+    assert "35 bad timing" in text and f"{int(out['n_trials'].sum())} trials used of {len(early)}" in text

@@ -110,15 +110,34 @@ def test_fit_stream_logs_writes_the_tables_compare_reads(tmp_path):
     tuning = pd.read_csv(tmp_path / "out" / "tuning.csv")
     decay = pd.read_csv(tmp_path / "out" / "decay.csv")
     assert list(after.columns) == ["observer", "lag", "adapter_offset_deg", "pse_shift_deg", "ci_low", "ci_high",
-                                   "n_trials"]
+                                   "n_trials", "flags"]
     assert list(tuning.columns) == ["observer", "lag", "amplitude_deg", "amplitude_ci_low", "amplitude_ci_high",
-                                    "peak_offset_deg", "peak_offset_ci_low", "peak_offset_ci_high"]
-    assert list(decay.columns) == ["observer", "decay_periods", "ci_low", "ci_high"]
+                                    "peak_offset_deg", "peak_offset_ci_low", "peak_offset_ci_high", "flags"]
+    assert list(decay.columns) == ["observer", "decay_periods", "ci_low", "ci_high", "flags"]
+    pse = pd.read_csv(tmp_path / "out" / "pse.csv")    # same layout as adapt-test fits
+    assert list(pse.columns) == ["observer", "condition", "adapter_offset_deg", "lag", "pse_deg", "pse_ci_low",
+                                 "pse_ci_high", "spread_deg", "lapse", "n_trials", "flags"]
+    assert pse.loc[0, "pse_ci_low"] < pse.loc[0, "pse_deg"] < pse.loc[0, "pse_ci_high"]
+    assert (tuning["peak_offset_ci_low"] < tuning["peak_offset_ci_high"]).all()
+    assert (tmp_path / "out" / "summary.txt").read_text().startswith("stream n-back fits")
     assert sorted(tuning["lag"]) == [0, 1, 2] and sorted(after["lag"].unique()) == [0, 1, 2]
     assert set(after["n_trials"]) == {50} and len(after) == 3 * 10
     assert (after["ci_low"] <= after["pse_shift_deg"]).all() and (after["pse_shift_deg"] <= after["ci_high"]).all()
-    assert (tmp_path / "out" / "nback_sim01.png").stat().st_size > 0 and (tmp_path / "out" / "nback_sim01.pdf").exists()
+    figs = tmp_path / "out" / "figures"
+    assert (figs / "nback_sim01.png").stat().st_size > 0 and (figs / "nback_sim01.pdf").exists()
     assert "decay" in report.summary()
+    # the same log with every answer clockwise: flagged, and no interval pretends to be informative
+    raw = pd.read_csv(log, dtype=str, keep_default_na=False)
+    raw.loc[raw["response_cw"] != "", "response_cw"] = "1"
+    (tmp_path / "one").mkdir()
+    raw.to_csv(tmp_path / "one" / "x.trials.csv", index=False)
+    fit_stream_logs(tmp_path / "one", tmp_path / "out1", n_boot=30, seed=1, figures=False)
+    for name in ("pse", "aftereffect", "tuning", "decay"):
+        t = pd.read_csv(tmp_path / "out1" / f"{name}.csv")
+        assert t["flags"].str.contains("one-sided").all(), name
+        limits = [c for c in t.columns if "ci_" in c]
+        assert t[limits].isna().all().all(), name
+    assert "Flagged rows" in (tmp_path / "out1" / "summary.txt").read_text()
 
 
 def test_discrete_logs_are_not_stream_logs(tmp_path):

@@ -250,7 +250,7 @@ def test_stream_protocols_are_studied_with_the_nback_fit(tmp_path):
     k = protocol.stream.nback_periods
     amp = result.table[result.table["quantity"] == "amplitude"]
     assert list(amp["lag"]) == list(range(k))
-    # DESIGN.md's stream observer: the n-th preceding period shifts by A·g(Δ)·exp(−(n − 1)/τ), lag = n − 1
+    # the README's stream observer: the n-th preceding period shifts by A·g(Δ)·exp(−(n − 1)/τ), lag = n − 1
     assert np.allclose(amp["truth"], model.amplitude_deg * np.exp(-np.arange(k) / model.decay_periods))
     assert set(result.table["quantity"]) == {"amplitude", "peak_offset", "decay", "baseline_pse"}
     assert result.table["runs_with_estimate"].min() == 2

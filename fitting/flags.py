@@ -1,0 +1,116 @@
+"""Short words that mark doubtful numbers in every table's ``flags`` column.
+
+A row's ``flags`` cell holds zero or more of these words, separated by
+spaces (empty = nothing unusual):
+
+``one-sided``        every answer of the condition on one side (all clockwise or
+                     all counter-clockwise): the PSE is not estimable
+``separated``        every clockwise answer at a larger offset than every
+                     counter-clockwise one: the spread is not estimable
+``on-bound``         the estimate or a confidence limit sits on a fitting bound
+                     (read it as "at least" / "at most")
+``outside-tested``   the PSE lies outside the range of tested offsets
+``steep``            the fitted spread is implausibly small for the tested
+                     levels (below a tenth of their interquartile range; with a
+                     shared spread, of the median range over conditions): the
+                     function may have collapsed on too few trials
+``few-trials``       fewer than :data:`MIN_TRIALS_FOR_INTERVAL` trials: no interval
+``off-interval``     the estimate lies outside its own interval (a degenerate
+                     bootstrap distribution)
+``not-converged``    the optimisation stopped before converging (the point fit,
+                     or more than 1 % of the bootstrap refits)
+``model-not-converged``  a model fitted by statsmodels reported no convergence
+``descriptive``      a group of fewer than three observers: its interval is
+                     descriptive, not inference about a population
+"""
+
+from __future__ import annotations
+
+from collections import Counter
+
+import numpy as np
+
+MIN_TRIALS_FOR_INTERVAL = 10
+STEEP_FRACTION = 0.1
+WORDS = ("one-sided", "separated", "on-bound", "outside-tested", "steep", "few-trials",
+         "off-interval", "not-converged", "model-not-converged", "descriptive")
+
+
+def join(*groups) -> str:
+    """Merge flag strings or word lists into one cell, each word once, in :data:`WORDS` order."""
+    found = set()
+    for g in groups:
+        if not g:
+            continue
+        found.update(g.split() if isinstance(g, str) else g)
+    unknown = found - set(WORDS)
+    if unknown:
+        raise ValueError(f"unknown flag words {sorted(unknown)}")
+    return " ".join(w for w in WORDS if w in found)
+
+
+def on_bound(estimate, low, high, bounds, rel: float = 1e-6) -> bool:
+    """True when the estimate or a limit is within ``rel`` of a bound."""
+    lo_b, hi_b = bounds
+    tol = rel * max(abs(hi_b), abs(lo_b), 1.0)
+    vals = np.array([estimate, low, high], dtype=float)
+    vals = vals[np.isfinite(vals)]
+    return bool(np.any(np.abs(vals - lo_b) <= tol) or np.any(np.abs(vals - hi_b) <= tol))
+
+
+def psychometric_flags(fit, boot=None) -> list[str]:
+    """Flags of each condition of a :class:`~fitting.psychometric.PsychometricFit`.
+
+    Parameters
+    ----------
+    fit : PsychometricFit
+    boot : BootstrapResult, optional
+        Adds ``not-converged`` when more than 1 % of its refits did not converge.
+    """
+    cells = fit.cells
+    out = []
+    refits_bad = boot is not None and (1.0 - boot.converged.mean()) > 0.01
+    iqr = np.zeros(len(fit.conditions))
+    for c in range(len(fit.conditions)):
+        used = cells.n[c] > 0
+        if used.sum() >= 2:
+            levels = np.repeat(cells.x[c][used], cells.n[c][used].astype(int))
+            iqr[c] = np.subtract(*np.percentile(levels, [75, 25]))
+    if fit.layout.shared_spread:
+        iqr[:] = np.median(iqr)
+    for c in range(len(fit.conditions)):
+        words = []
+        sep = fit.separation[c] if fit.separation else ""
+        if sep.startswith("all"):
+            words.append("one-sided")
+        elif sep:
+            words.append("separated")
+        if fit.pse_at_bound[c] or fit.spread_at_bound[c]:
+            words.append("on-bound")
+        used = cells.n[c] > 0
+        x = cells.x[c][used]
+        if x.size and not (x.min() <= fit.pse[c] <= x.max()):
+            words.append("outside-tested")
+        if iqr[c] > 0 and fit.spread[c] < STEEP_FRACTION * iqr[c]:
+            words.append("steep")
+        if fit.n_trials[c] < MIN_TRIALS_FOR_INTERVAL:
+            words.append("few-trials")
+        if not fit.converged or refits_bad:
+            words.append("not-converged")
+        out.append(join(words))
+    return out
+
+
+def condense(messages) -> list[str]:
+    """One line per distinct message (its first line), with a count when repeated."""
+    first = [str(m).strip().splitlines()[0] if str(m).strip() else "" for m in messages]
+    counts = Counter(m for m in first if m)
+    return [m if n == 1 else f"{m} (x{n})" for m, n in counts.items()]
+
+
+def flagged_first(table, label) -> list[str]:
+    """Lines ``label(row): flags`` for the flagged rows of ``table`` (for summaries)."""
+    if table is None or not len(table) or "flags" not in table:
+        return []
+    rows = table[table["flags"].fillna("").astype(str) != ""]
+    return [f"{label(r)}: {r['flags']}" for _, r in rows.iterrows()]

@@ -1,0 +1,102 @@
+"""Parametric bootstrap that re-runs the adaptive tracks with the fitted observer.
+
+The fixed-level bootstrap (:mod:`fitting.bootstrap`) keeps the presented
+levels; with adaptive placement the levels depend on the answers, and the
+sampling distribution of the fit differs from the fixed-level one (Wichmann
+& Hill 2001, II).  Here every replicate re-runs each condition's tracks
+from their start: a fresh track proposes a level, the fitted observer
+answers (``P(cw | x)`` at the generating parameters), the track takes the
+answer, as many times as the track had trials in the log.  The replicate's
+trials are pooled into cells and all replicates are refitted in one batch,
+exactly as in the fixed-level bootstrap, so intervals, BCa and the tables
+downstream are unchanged.
+
+``fitting`` never imports the session engine: the tracks come from a
+*factory* passed in by the caller (the command line builds it from the
+protocol in each log's sidecar), ``factory(condition, track) -> object``
+with ``next_level()`` and ``update(level, response_cw)``.
+
+Cost: one Python call per simulated trial, so replicates × trials calls; a
+Bayesian track spends milliseconds per trial, which makes this bootstrap
+minutes long for a full session.  The generating parameters are those of
+the fixed-level bootstrap (bias-corrected spread and lapse from a short
+fixed-level pilot).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .bootstrap import BootstrapResult, generating_parameters
+from .progress import ProgressBar
+from .psychometric import PsychometricFit, _cell_terms, deviance_by_condition, probability_cw, solve_batch
+
+
+def _pool(levels: np.ndarray, answers: np.ndarray):
+    """Levels and answers (R, T) of one condition -> per-replicate unique levels, counts, cw counts."""
+    out = []
+    for lv, an in zip(levels, answers):
+        ux, inv = np.unique(lv, return_inverse=True)
+        out.append((ux, np.bincount(inv).astype(float), np.bincount(inv, weights=an)))
+    return out
+
+
+def replay_bootstrap(fit: PsychometricFit, plan, factory, n_boot: int, rng: np.random.Generator,
+                     progress: bool | None = None, label: str = "bootstrap (tracks re-run)",
+                     pilot: int = 100) -> BootstrapResult:
+    """Bootstrap ``fit`` by re-running its adaptive tracks ``n_boot`` times.
+
+    Parameters
+    ----------
+    fit : PsychometricFit
+    plan : list of list of (str, int)
+        Per condition of ``fit`` (in order), its tracks: ``(track id, trials)``.
+    factory : callable
+        ``factory(condition, track_id)`` returns a fresh track.
+    n_boot : int
+    rng : numpy.random.Generator
+    progress : bool or None
+    label : str
+    pilot : int
+        Fixed-level pilot replicates for the generating parameters (0: none).
+
+    Returns
+    -------
+    BootstrapResult
+    """
+    layout, sigmoid = fit.layout, fit.sigmoid
+    C = len(fit.conditions)
+    with ProgressBar(n_boot * C + pilot, "pilot + " + label, show=progress) as bar:
+        generate = generating_parameters([fit], pilot, rng, 500, bar)[0]
+        pse, spread, lapse = layout.unpack(generate[None])
+        pools = []
+        for c, name in enumerate(fit.conditions):
+            lv_parts, an_parts = [], []
+            for track_id, n_trials in plan[c]:
+                tracks = [factory(name, track_id) for _ in range(n_boot)]
+                lv = np.empty((n_boot, n_trials))
+                an = np.empty((n_boot, n_trials))
+                for t in range(n_trials):
+                    x = np.fromiter((tr.next_level() for tr in tracks), float, n_boot)
+                    y = (rng.random(n_boot) < probability_cw(x, pse[0, c], spread[0, c], lapse[0],
+                                                             sigmoid)).astype(int)
+                    for tr, xi, yi in zip(tracks, x, y):
+                        tr.update(float(xi), int(yi))
+                    lv[:, t], an[:, t] = x, y
+                lv_parts.append(lv)
+                an_parts.append(an)
+            pools.append(_pool(np.hstack(lv_parts), np.hstack(an_parts)))
+            bar.advance(n_boot)
+    width = max(len(p[0]) for cond in pools for p in cond)
+    x = np.empty((n_boot, C, width))
+    n = np.zeros((n_boot, C, width))
+    k = np.zeros((n_boot, C, width))
+    for c, cond in enumerate(pools):
+        for r, (ux, nn, kk) in enumerate(cond):
+            m = ux.size
+            x[r, c, :m], x[r, c, m:] = ux, ux[0]
+            n[r, c, :m], k[r, c, :m] = nn, kk
+    sol = solve_batch(generate[None], x, n, k, layout, fit.lower, fit.upper, sigmoid)
+    p_star = _cell_terms(sol.theta, x, layout, sigmoid)[0]
+    dev = deviance_by_condition(p_star, n, k)
+    return BootstrapResult(fit, sol.theta, sol.converged, sol.at_bound, dev, generate)

@@ -1,0 +1,189 @@
+"""Group random-effects combination, compare's covariance-aware chi-square, flags on degenerate logs."""
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+from statsmodels.stats.meta_analysis import combine_effects
+
+from fitting import fit_logs
+from fitting.compare import agreement
+from fitting.flags import condense, join
+from fitting.meta import random_effects, variance_from_interval
+from fitting.synthetic import ObserverModel, simulate_trials, write_log
+
+# BCG vaccine trials (13 studies; tuberculosis cases / non-cases in the vaccinated and control arms):
+# Colditz G.A. et al. (1994) JAMA 271, 698-702, the worked example of random-effects meta-analysis in
+# Viechtbauer W. (2010) J. Stat. Softw. 36(3).
+BCG = np.array([[4, 119, 11, 128], [6, 300, 29, 274], [3, 228, 11, 209], [62, 13536, 248, 12619],
+                [33, 5036, 47, 5761], [180, 1361, 372, 1079], [8, 2537, 10, 619], [505, 87886, 499, 87892],
+                [29, 7470, 45, 7232], [17, 1699, 65, 1600], [186, 50448, 141, 27197], [5, 2493, 3, 2338],
+                [27, 16886, 29, 17825]], float)
+
+
+def _log_risk_ratios():
+    a, b, c, d = BCG.T
+    return np.log(a / (a + b)) - np.log(c / (c + d)), 1 / a - 1 / (a + b) + 1 / c - 1 / (c + d)
+
+
+@pytest.mark.filterwarnings("ignore:`use_t=True` requires")
+def test_random_effects_reproduces_the_published_bcg_example_and_statsmodels():
+    y, v = _log_risk_ratios()
+    res = random_effects(y, v, floor=False)
+    # DerSimonian-Laird on the BCG data: tau^2 = 0.3088, pooled log risk ratio -0.7141 (se 0.1787
+    # without the Hartung-Knapp scaling), as tabulated for this example (Viechtbauer 2010; from memory)
+    assert res.tau2 == pytest.approx(0.3088, abs=5e-5)
+    assert res.estimate == pytest.approx(-0.7141, abs=5e-5)
+    # reference library: statsmodels' combine_effects (DerSimonian-Laird), Hartung-Knapp ("wls") interval
+    ref = combine_effects(y, v, method_re="dl", use_t=True)
+    assert res.tau2 == pytest.approx(ref.tau2, rel=1e-10)
+    assert res.estimate == pytest.approx(ref.mean_effect_re, rel=1e-10)
+    assert res.se == pytest.approx(np.sqrt(ref.var_hksj_re), rel=1e-10)
+    frame = ref.summary_frame()
+    assert res.low == pytest.approx(frame.loc["random effect wls", "ci_low"], rel=1e-9)
+    assert res.high == pytest.approx(frame.loc["random effect wls", "ci_upp"], rel=1e-9)
+
+
+def test_three_agreeing_observers_cannot_shrink_the_group_interval_below_their_own():
+    # the issue's case: three observers, +-2 deg each, agreeing by chance to 0.05 deg
+    y = np.array([1.00, 1.05, 1.02])
+    v = variance_from_interval(y - 2.0, y + 2.0)
+    res = random_effects(y, v)
+    fixed_half = stats.norm.ppf(0.975) * np.sqrt(1 / np.sum(1 / v))
+    plain = random_effects(y, v, floor=False)
+    # plain Hartung-Knapp shrinks with the chance agreement (q << 1): narrower than the observers allow
+    assert (plain.high - plain.low) / 2 < fixed_half
+    assert (res.high - res.low) / 2 == pytest.approx(fixed_half)        # the floor holds it
+    # Knapp & Hartung (2003) truncation q >= 1: t on 2 df times the fixed-effect standard error here
+    trunc = random_effects(y, v, truncate=True)
+    assert (trunc.high - trunc.low) / 2 == pytest.approx(stats.t.ppf(0.975, 2) * np.sqrt(1 / np.sum(1 / v)))
+    # the old between-observer t interval (sd of three numbers) was far narrower still
+    old_half = stats.t.ppf(0.975, 2) * np.std(y, ddof=1) / np.sqrt(3)
+    assert old_half < 0.2 * fixed_half
+
+
+def test_full_covariance_chi2_is_calibrated_where_the_diagonal_one_is_not():
+    # shifts sharing one baseline: cov = s^2 I + b^2 J (correlation b^2 / (s^2 + b^2) = 0.4)
+    rng = np.random.default_rng(7)
+    n, s2, b2 = 8, 1.2, 0.8
+    cov = s2 * np.eye(n) + b2 * np.ones((n, n))
+    truth = np.linspace(-3, 3, n)
+    half = stats.norm.ppf(0.975) * np.sqrt(np.diagonal(cov))
+    rej_full = rej_diag = 0
+    for _ in range(2000):
+        m = rng.multivariate_normal(truth, cov)
+        rej_full += agreement(m, m - half, m + half, truth, covariance=cov).chi2_p < 0.05
+        rej_diag += agreement(m, m - half, m + half, truth).chi2_p < 0.05
+    # with the true covariance, r' V^-1 r is chi-square on n df (scipy.stats.chi2): 5 % +- 1 % here
+    assert 0.04 <= rej_full / 2000 <= 0.065
+    assert rej_diag / 2000 > 0.08
+
+
+def _degenerate_logs(folder):
+    model = ObserverModel(amplitude_deg=3.0, peak_offset_deg=25.0, decay_periods=2.0)
+    df = simulate_trials(model, offsets=(-30, 30), lags=(0,), trials_per_track=15, seed=3, observer="D1")
+    one = df["condition"] == "adapt+30_lag0"
+    df.loc[one, "response_cw"] = 1                                   # all answers on one side
+    few = df.index[df["condition"] == "adapt-30_lag0"][6:]
+    df = df.drop(few)                                                # 6 trials: too few for an interval
+    write_log(df, folder / "d1.trials.csv")
+    rnd = simulate_trials(model, offsets=(-30, 30), lags=(0,), trials_per_track=15, seed=4, observer="R1")
+    rnd["response_cw"] = np.random.default_rng(5).integers(0, 2, len(rnd))   # random answers
+    write_log(rnd, folder / "r1.trials.csv")
+
+
+def test_flags_on_hand_made_degenerate_logs(tmp_path):
+    _degenerate_logs(tmp_path)
+    fit_logs([str(tmp_path)], str(tmp_path / "out"), n_boot=200, seed=1, figures=False,
+                      progress=False)
+    pse = pd.read_csv(tmp_path / "out" / "pse.csv", keep_default_na=False).set_index(["observer", "condition"])
+    assert "one-sided" in pse.loc[("D1", "adapt+30_lag0"), "flags"]
+    assert "few-trials" in pse.loc[("D1", "adapt-30_lag0"), "flags"]
+    assert pse.loc[("D1", "adapt-30_lag0"), "pse_ci_low"] == ""          # no interval below the minimum
+    assert pse.loc[("D1", "baseline"), "flags"] == ""
+    # random answers: a flat function whose PSEs leave the tested range
+    r1 = pse.loc["R1"]
+    assert r1["flags"].str.contains("outside-tested|on-bound").any()
+    shifts = pd.read_csv(tmp_path / "out" / "aftereffect.csv", keep_default_na=False)
+    d1 = shifts[shifts["observer"] == "D1"].set_index("adapter_offset_deg")
+    assert "one-sided" in d1.loc[30, "flags"] and "few-trials" in d1.loc[-30, "flags"]
+    # two observers: group rows are descriptive
+    group = shifts[shifts["observer"] == "group"]
+    assert len(group) and group["flags"].str.contains("descriptive").all()
+    text = (tmp_path / "out" / "summary.txt").read_text()
+    first_observer = text.index("Observer D1")
+    assert "Flagged rows" in text and text.index("D1 PSE adapt+30_lag0: one-sided") < first_observer
+    mm = pd.read_csv(tmp_path / "out" / "mixed_model.csv")
+    assert "converged" in mm.columns and "flags" in mm.columns
+
+
+def test_flag_words_and_condensed_messages():
+    assert join("steep on-bound", ["one-sided"], "") == "one-sided on-bound steep"
+    with pytest.raises(ValueError):
+        join(["bogus"])
+    lines = condense(["Maximum likelihood optimization failed to converge.\nCheck mle_retvals",
+                      "Maximum likelihood optimization failed to converge.", "Hessian not positive"])
+    assert lines == ["Maximum likelihood optimization failed to converge. (x2)", "Hessian not positive"]
+
+
+def test_rerun_tracks_bootstrap_replays_the_logged_procedure(tmp_path):
+    # the real engine writes a log and sidecar; the bootstrap re-runs its tracks (runner.tracks) per replicate
+    from runner.cli import main
+    from runner.replay import track_factories
+
+    proto = tmp_path / "p.toml"
+    proto.write_text("[design]\nadapter_offsets_deg = [-30, 30]\nlags = [0]\ntrials_per_track = 12\n"
+                     "practice_trials = 0\n")
+    assert main(["simulate", str(proto), "--out", str(tmp_path / "logs"), "--seed", "3"]) == 0
+    logs = sorted(str(p) for p in (tmp_path / "logs").glob("*.trials.csv"))
+    factory = track_factories(logs)["sim01"]
+    track = factory("baseline", "1")
+    assert track.next_level() == -20.0                # track 1 starts on the counter-clockwise side
+    fixed = fit_logs(logs, str(tmp_path / "a"), n_boot=120, seed=2, figures=False, progress=False)
+    rerun = fit_logs(logs, str(tmp_path / "b"), n_boot=120, seed=2, figures=False, progress=False,
+                     tracks=track_factories(logs))
+    assert np.allclose(fixed.pse["pse_deg"], rerun.pse["pse_deg"])          # same point fit
+    assert not np.allclose(fixed.pse["pse_ci_low"], rerun.pse["pse_ci_low"])  # other replicates
+    boot = rerun.analyses[0].boot
+    assert boot.converged.mean() > 0.95 and np.isfinite(rerun.pse["pse_ci_low"]).all()
+    assert main(["fit", *logs, "--out", str(tmp_path / "c"), "--bootstrap", "60", "--rerun-tracks",
+                 "--no-figures"]) == 0
+
+
+def test_compare_uses_the_covariance_file_and_refuses_a_corrupt_one(tmp_path, capsys):
+    from runner.cli import main
+
+    _degenerate_logs(tmp_path)
+    fit_logs([str(tmp_path)], str(tmp_path / "out"), n_boot=100, seed=1, figures=False, progress=False)
+    pd.DataFrame({"lag": [0, 0], "adapter_offset_deg": [-30, 30], "pse_shift_deg": [-1.0, 1.0]}).to_csv(
+        tmp_path / "pred.csv", index=False)
+    assert main(["compare", str(tmp_path / "out"), str(tmp_path / "pred.csv"), "--out", str(tmp_path / "c")]) == 0
+    table = pd.read_csv(tmp_path / "c" / "agreement.csv")
+    assert set(table["covariance"]) == {"full"}
+    assert table.set_index("observer").loc["group", "descriptive"].all()      # two observers
+    assert "descriptive only" in capsys.readouterr().out
+    cov = tmp_path / "out" / "aftereffect_covariance.csv"
+    lines = cov.read_text().splitlines()
+    cells = lines[1].split(",")
+    cells[1] = "x"                                                            # lag_a of the first pair
+    cov.write_text("\n".join([lines[0], ",".join(cells)] + lines[2:]) + "\n")
+    assert main(["compare", str(tmp_path / "out"), str(tmp_path / "pred.csv"), "--out", str(tmp_path / "d")]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "aftereffect_covariance.csv" in err and "line 2" in err
+
+
+def test_rerun_tracks_falls_back_with_a_note_when_tracks_cannot_be_rebuilt(tmp_path):
+    _degenerate_logs(tmp_path)                     # hand-made logs: no sidecars
+    logs = sorted(str(p) for p in tmp_path.glob("*.trials.csv"))
+    from runner.replay import track_factories
+
+    assert track_factories(logs) == {}
+    from runner.protocol import parse_protocol
+    from runner.tracks import new_track
+
+    proto = parse_protocol("[design]\nadapter_offsets_deg = [-30, 30]\nlags = [0]\n")
+    report = fit_logs(logs, str(tmp_path / "o"), n_boot=50, seed=1, figures=False, progress=False,
+                      tracks={"D1": lambda condition, track: new_track(proto, int(track))})
+    assert not any("kept the levels fixed" in n for n in report.notes["D1"])
+    assert any("no session sidecar" in n for n in report.notes["R1"])
+    assert np.isfinite(report.pse.set_index(["observer", "condition"]).loc[("D1", "baseline"), "pse_ci_low"])
