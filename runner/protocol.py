@@ -575,11 +575,12 @@ def parse_protocol(text: str, source: str = "<protocol>", resolve_light: bool = 
         raise InputError(source, "TOML", "nesting too deep for a protocol") from None
     if not raw:
         raise InputError(source, "(top level)", "the file has no settings; start from protocols/offset_by_lag.toml")
-    return protocol_from_dict(raw, source)
+    return protocol_from_dict(raw, source, resolve_light)
 
 
-def protocol_from_dict(raw: dict, source: str = "<protocol>") -> Protocol:
-    """Validate protocol settings given as a dict (the parsed TOML tables).
+def protocol_from_dict(raw: dict, source: str = "<protocol>", resolve_light: bool = True) -> Protocol:
+    """Validate protocol settings given as a dict (the parsed TOML tables); ``resolve_light`` as in
+    :func:`parse_protocol`.
 
     Raises
     ------

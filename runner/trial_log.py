@@ -31,7 +31,10 @@ import io
 import json
 import os
 import re
+import signal
 import sys
+import threading
+from contextlib import contextmanager
 from pathlib import Path
 
 from fitting.errors import InputError
@@ -86,6 +89,25 @@ def log_paths(out_dir: str | Path, observer: str, session: str) -> tuple[Path, P
     stem = f"{observer}-{session}"
     out = Path(out_dir)
     return out / f"{stem}.trials.csv", out / f"{stem}.session.json"
+
+
+@contextmanager
+def _interrupts_deferred():
+    """Hold Ctrl-C and SIGTERM until the block ends (main thread; elsewhere a no-op).
+
+    A signal that arrives meanwhile stays pending and its handler runs as soon
+    as the block ends, so no interrupt can fall between writing a row and
+    counting it.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    held = {signal.SIGINT, signal.SIGTERM}
+    previous = signal.pthread_sigmask(signal.SIG_BLOCK, held)
+    try:
+        yield
+    finally:
+        signal.pthread_sigmask(signal.SIG_SETMASK, previous)
 
 
 def refuse_existing(path: Path, sidecar: Path) -> None:
@@ -378,19 +400,20 @@ class TrialLog:
             whole row first.
         """
         data = _row_text(row).encode("utf-8")
-        try:
-            _write_all(self._fd, data)
-            if self.durable:
-                os.fsync(self._fd)
-        except OSError as exc:
+        with _interrupts_deferred():  # a row on disk and its count change together, whatever signal comes
             try:
-                os.ftruncate(self._fd, self._size)
-                os.fsync(self._fd)
-            except OSError:
-                pass
-            raise _disk_error(self.path, exc, self.n_rows) from None
-        self._size += len(data)
-        self.n_rows += 1
+                _write_all(self._fd, data)
+                if self.durable:
+                    os.fsync(self._fd)
+            except OSError as exc:
+                try:
+                    os.ftruncate(self._fd, self._size)
+                    os.fsync(self._fd)
+                except OSError:
+                    pass
+                raise _disk_error(self.path, exc, self.n_rows) from None
+            self._size += len(data)
+            self.n_rows += 1
 
     def sync(self) -> None:
         """Force the rows written so far to disk (breaks and the end of a simulated session)."""
