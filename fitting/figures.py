@@ -430,6 +430,7 @@ def make_figures(analyses, group: dict | None, out_dir: Path, formats=FORMATS,
     if bad or not formats:
         raise ValueError(f"figure formats must be among {FORMATS}, not {formats}")
     _TASKS = _figure_tasks(analyses, group)
+    _plt()                      # imported once here, inherited by the worker processes
     # the big grids first, so that the small figures fill in behind them
     order = sorted(range(len(_TASKS)), key=lambda i: _TASKS[i][0] not in (psychometric_figure, tracks_figure))
     jobs = min(jobs or available_cores(), len(_TASKS))
