@@ -137,6 +137,15 @@ class Arrow:
         (or give non-finite numbers) are solved densely with a pseudo-inverse
         fallback, as a general solver would.
         """
+        with np.errstate(all="ignore"):     # singular rows are caught below
+            out, ok = self._eliminate(g)
+        bad = ~ok | ~np.isfinite(out).all(axis=1)
+        if bad.any():
+            out[bad] = dense_solve(self[bad].dense(), g[bad])
+        return out
+
+    def _eliminate(self, g: np.ndarray):
+        """Block elimination; returns the solution and which rows had regular pivots."""
         go, gb = self.split(g)
         dinv, ok = _small_inverse(self.d)
         y = dinv @ self.b                                     # (B, C, q, m)
@@ -151,11 +160,7 @@ class Arrow:
         else:
             xb = gb
             xo = z
-        out = self.join(xo, xb)
-        bad = ~ok | ~np.isfinite(out).all(axis=1)
-        if bad.any():
-            out[bad] = dense_solve(self[bad].dense(), g[bad])
-        return out
+        return self.join(xo, xb), ok
 
 
 def dense_solve(h: np.ndarray, g: np.ndarray) -> np.ndarray:

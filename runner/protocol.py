@@ -274,17 +274,27 @@ class ProcedureSettings(_Section):
         Levitt's transformed up–down, Kaernbach's weighted up–down, the
         Bayesian entropy method (Kontsevich & Tyler, 1999), or constant stimuli.
     start_offset_deg : float
-        Tracks start this far from the reference, one track on each side.
+        ``updown``, ``weighted``: tracks start this far from the reference,
+        one track on each side.  Refused with ``bayesian`` (the prior,
+        ``pse_range_deg``, decides its first level) and ``constant``.
     bounds_deg : [float, float]
         Lowest and highest test offset.
     steps_deg : list of float
         Step sizes used in turn after each reversal (the last is kept).
     k_down : int
         ``updown``: Levitt's k — consecutive answers on the track's side
-        before a step toward the other side (2 converges on 70.7 %/29.3 %).
+        before a step toward the other side (1 converges on the PSE, 2 on
+        70.7 %/29.3 %).
     target_cw : float
         ``weighted``: proportion of clockwise answers the first track aims
         at; the second aims at ``1 - target_cw``.
+
+    The defaults (start ±2°, steps 4, 2, 1, 0.5°, k 1, target 55 %) keep the
+    trials near the PSE: PSE efficiency about 0.85–0.87 of the Cramér–Rao
+    bound at 80 trials for PSEs within ±5°, and they still reach a PSE 15°
+    away (``benchmarks/bench_default_tracks.py``).  They trade away spread
+    precision; for the spread use ``k_down = 2`` or ``bayes_target =
+    "pse_spread"``.
     max_reversals : int
         Stop a track after this many reversals (0 = stop by trials only).
     levels_deg : list of float
@@ -297,11 +307,11 @@ class ProcedureSettings(_Section):
     """
 
     method: Literal["updown", "weighted", "bayesian", "constant"] = "updown"
-    start_offset_deg: float = Field(20.0, ge=0, le=180)
+    start_offset_deg: float = Field(2.0, ge=0, le=180)
     bounds_deg: list[float] = Field(default_factory=lambda: [-45.0, 45.0], min_length=2, max_length=2)
-    steps_deg: list[float] = Field(default_factory=lambda: [8.0, 4.0, 2.0, 1.0], min_length=1, max_length=32)
-    k_down: int = Field(2, ge=1, le=5)
-    target_cw: float = Field(0.75, gt=0.5, lt=1)
+    steps_deg: list[float] = Field(default_factory=lambda: [4.0, 2.0, 1.0, 0.5], min_length=1, max_length=32)
+    k_down: int = Field(1, ge=1, le=5)
+    target_cw: float = Field(0.55, gt=0.5, lt=1)
     max_reversals: int = Field(0, ge=0, le=10000)
     levels_deg: list[float] = Field(
         default_factory=lambda: [-16.0, -8.0, -4.0, -2.0, 2.0, 4.0, 8.0, 16.0], min_length=2, max_length=200
@@ -479,6 +489,11 @@ def _cross_checks(p: Protocol) -> None:
         )
     proc = p.procedure
     lo, hi = proc.bounds_deg
+    if proc.method in ("bayesian", "constant") and "start_offset_deg" in proc.model_fields_set:
+        chooser = ("the Bayesian method chooses every level itself (its prior is pse_range_deg)"
+                   if proc.method == "bayesian" else "constant stimuli show levels_deg")
+        raise InputError("", "procedure.start_offset_deg",
+                         f"has no meaning with method = \"{proc.method}\": {chooser}; remove the field")
     if not (lo <= proc.start_offset_deg <= hi and lo <= -proc.start_offset_deg <= hi):
         raise InputError("", "procedure.start_offset_deg", f"tracks start at ±{proc.start_offset_deg:g}, outside bounds_deg")
     if proc.method == "constant" and p.design.trials_per_track % len(proc.levels_deg):
