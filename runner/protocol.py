@@ -289,10 +289,11 @@ class ProcedureSettings(_Section):
         ``weighted``: proportion of clockwise answers the first track aims
         at; the second aims at ``1 - target_cw``.
 
-    The defaults (start ±2°, steps 4, 2, 1, 0.5°, k 1, target 55 %) keep the
-    trials near the PSE: PSE efficiency about 0.85–0.87 of the Cramér–Rao
-    bound at 80 trials for PSEs within ±5°, and they still reach a PSE 15°
-    away (``benchmarks/bench_default_tracks.py``).  They trade away spread
+    The defaults (start ±2°, steps 4, 2, 1, 0.5°, k 1, target 55 %, the
+    Bayesian grid below) keep the trials near the PSE: at 80 trials per
+    condition and PSEs within ±5° they reach about 0.85–0.9 of the
+    Cramér–Rao bound on the PSE, and they still reach a PSE 15° away
+    (``benchmarks/bench_default_tracks.py``).  They trade away spread
     precision; for the spread use ``k_down = 2`` or ``bayes_target =
     "pse_spread"``.
     max_reversals : int
@@ -303,7 +304,10 @@ class ProcedureSettings(_Section):
     bayes_target : {"pse", "pse_spread"}
         ``bayesian``: minimise the entropy of the PSE alone or of PSE and spread.
     pse_range_deg, spread_range_deg : [float, float]
-        ``bayesian``: the parameter grid.
+        ``bayesian``: the parameter grid, i.e. the support of its uniform
+        prior.  The defaults (±20°, 1–10°) cover PSEs 15° away and the usual
+        spreads of direction judgments; a wider grid spends a 40-trial track's
+        first trials far from the PSE (PSE efficiency 0.7 at ±30°, 0.5–20°).
     """
 
     method: Literal["updown", "weighted", "bayesian", "constant"] = "updown"
@@ -317,8 +321,8 @@ class ProcedureSettings(_Section):
         default_factory=lambda: [-16.0, -8.0, -4.0, -2.0, 2.0, 4.0, 8.0, 16.0], min_length=2, max_length=200
     )
     bayes_target: Literal["pse", "pse_spread"] = "pse"
-    pse_range_deg: list[float] = Field(default_factory=lambda: [-30.0, 30.0], min_length=2, max_length=2)
-    spread_range_deg: list[float] = Field(default_factory=lambda: [0.5, 20.0], min_length=2, max_length=2)
+    pse_range_deg: list[float] = Field(default_factory=lambda: [-20.0, 20.0], min_length=2, max_length=2)
+    spread_range_deg: list[float] = Field(default_factory=lambda: [1.0, 10.0], min_length=2, max_length=2)
 
     @field_validator("bounds_deg", "pse_range_deg")
     @classmethod
