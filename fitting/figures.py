@@ -309,10 +309,10 @@ def aftereffect_figure(name: str, shifts, tuning, offsets=None):
 def decay_band(reps, lags) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """95 % band of the decay ``A0 exp(-lag / tau)`` from bootstrap replicates, at whole lags.
 
-    The band is taken at every whole lag from 0 to the largest and joined by
-    straight lines: a test can only come after a whole number of periods, and
-    between lags replicates with a very short tau (on its lower bound) would
-    pull the pointwise band down just after lag 0.
+    The band is taken at every whole lag from 0 to the largest: a test can
+    only come after a whole number of periods, and between lags replicates
+    with a very short tau (on its lower bound) would pull the pointwise band
+    down just after lag 0.  :func:`_between_lags` joins the values for drawing.
 
     Returns
     -------
@@ -322,6 +322,18 @@ def decay_band(reps, lags) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     curves = reps[:, :1] * np.exp(-k[None, :] / reps[:, 2:3])
     low, high = np.quantile(curves, [0.025, 0.975], axis=0)
     return k, low, high
+
+
+def _between_lags(k, values, fine):
+    """Values at whole lags joined like the decay they bound: geometrically where both ends
+    are positive, linearly otherwise (monotone between lags either way)."""
+    i = np.clip(np.searchsorted(k, fine, side="right") - 1, 0, len(k) - 2)
+    a, b = values[i], values[i + 1]
+    t = (fine - k[i]) / (k[i + 1] - k[i])
+    geometric = (a > 0) & (b > 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        geo = a * np.power(np.where(geometric, b / a, 1.0), t)
+    return np.where(geometric, geo, a + t * (b - a))
 
 
 def decay_figure(name: str, tuning, detail, reps=None, period_s: float = float("nan")):
@@ -352,8 +364,11 @@ def decay_figure(name: str, tuning, detail, reps=None, period_s: float = float("
                     lw=1.3, label="joint fit A0 exp(-lag / tau)")
             if has_band:
                 kb, low, high = decay_band(reps, lags)
-                ax.fill_between(kb, low, high, color=_LAG_COLOURS[1], alpha=0.15, lw=0,
-                                label="95% bootstrap band of the fit\n(at whole lags)")
+                if kb.size >= 2:
+                    fine = np.linspace(0, kb[-1], 60 * int(kb[-1]) + 1)
+                    ax.fill_between(fine, _between_lags(kb, low, fine), _between_lags(kb, high, fine),
+                                    color=_LAG_COLOURS[1], alpha=0.15, lw=0,
+                                    label="95% bootstrap band of the fit\n(at whole lags)")
         ax.axhline(0, color=_FAINT, lw=0.7)
         ax.set_xlabel("lag (intervening motion periods)")
         ax.set_ylabel("peak PSE shift (deg)")

@@ -130,3 +130,15 @@ def test_parallel_and_serial_drawing_write_the_same_files(wide_fit, tmp_path):
     assert [p.split("/")[-1] for p in serial] == [p.split("/")[-1] for p in parallel]
     for a, b in zip(serial, parallel):
         assert open(a, "rb").read() == open(b, "rb").read()
+
+
+def test_band_is_joined_monotonically_between_lags():
+    k = np.array([0.0, 1.0, 2.0])
+    fine = np.linspace(0, 2, 41)
+    for values in (np.array([3.0, 1.5, 0.75]), np.array([1.0, -0.5, -0.2])):
+        joined = figures._between_lags(k, values, fine)
+        assert np.allclose(joined[::20], values)                   # through the values at whole lags
+        for j in range(2):                                          # and between them, no overshoot
+            seg = joined[20 * j:20 * j + 21]
+            assert seg.min() >= min(values[j], values[j + 1]) - 1e-12
+            assert seg.max() <= max(values[j], values[j + 1]) + 1e-12
