@@ -34,6 +34,7 @@ from pathlib import Path
 import numpy as np
 
 from .aftereffect import dog
+from .errors import InputError
 from .panels import FAINT as _FAINT
 from .panels import INK as _INK
 from .panels import PanelGrid, wrap_title
@@ -439,11 +440,14 @@ def make_figures(analyses, group: dict | None, out_dir: Path, formats=FORMATS,
     """
     global _TASKS
     out_dir = Path(out_dir)
-    out_dir.mkdir(parents=True, exist_ok=True)
     formats = tuple(formats)
     bad = [f for f in formats if f not in FORMATS]
     if bad or not formats:
         raise ValueError(f"figure formats must be among {FORMATS}, not {formats}")
+    try:
+        out_dir.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        raise InputError(str(out_dir), "--out", f"cannot create the figure folder ({e.strerror})") from None
     _TASKS = _figure_tasks(analyses, group)
     _plt()                      # imported once here, inherited by the worker processes
     # the big grids first, so that the small figures fill in behind them
@@ -456,6 +460,8 @@ def make_figures(analyses, group: dict | None, out_dir: Path, formats=FORMATS,
                 done = pool.starmap(_run_task, [(i, str(out_dir), formats) for i in order], chunksize=1)
         else:
             done = [_run_task(i, str(out_dir), formats) for i in order]
+    except OSError as e:        # e.g. a full disk: the tables are not written either
+        raise InputError(str(e.filename or out_dir), "--out", f"cannot write a figure ({e.strerror})") from None
     finally:
         _TASKS = []
     parts = dict(zip(order, done))

@@ -142,3 +142,12 @@ def test_band_is_joined_monotonically_between_lags():
             seg = joined[20 * j:20 * j + 21]
             assert seg.min() >= min(values[j], values[j + 1]) - 1e-12
             assert seg.max() <= max(values[j], values[j + 1]) + 1e-12
+
+
+def test_an_unwritable_figure_folder_is_one_input_error(wide_fit, tmp_path):
+    from fitting.errors import InputError
+
+    blocker = tmp_path / "a_file"
+    blocker.write_text("not a folder")
+    with pytest.raises(InputError, match="--out"):
+        figures.make_figures(wide_fit.analyses, None, blocker / "figures", formats=("png",), jobs=1)
