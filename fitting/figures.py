@@ -129,7 +129,7 @@ def panel_positions(conds) -> list[tuple[int, int]]:
 def _title(row) -> str:
     if row["is_baseline"]:
         return "baseline (no adapter)"
-    return f"adapter {row['adapter_offset_deg']:+g}°, lag {int(row['lag'])}"
+    return f"adapter {row['adapter_offset_deg']:+.4g}°, lag {int(row['lag'])}"
 
 
 def _binned(x, y):
@@ -196,7 +196,7 @@ def psychometric_figure(a):
         bx, by, bn = _binned(x_all[sel], y_all[sel])
         canvas.points(i, bx, by, 5 + 45 * bn / max(bn.max(), 1), colour)
         head = "baseline (no adapter)" if row.is_baseline else \
-            f"adapter {row.adapter_offset_deg:+g}°, lag {int(row.lag)}"
+            f"adapter {row.adapter_offset_deg:+.4g}°, lag {int(row.lag)}"
         canvas.panel_title(i, f"{head}\nPSE {fit.pse[i]:+.2f}°, {int(row.n_trials)} trials")
     return canvas.finish()
 
