@@ -300,7 +300,10 @@ def main(argv: list[str] | None = None) -> int:
     try:
         parser = build_parser()
         args = parser.parse_args(argv)
-        return args.func(args)
+        from fitting.threads import one_blas_thread
+
+        with one_blas_thread():  # small batched solves: threads only cost (fitting/threads.py)
+            return args.func(args)
     except InputError as exc:
         print(f"aftershift: {exc.line()}", file=sys.stderr)
         return EXIT_INPUT
