@@ -276,6 +276,7 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
 def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
              spread: str = "shared", include_bad_timing: bool = False, progress=True,
              figures: bool = True, *, include_practice: bool = False, sigmoid: str = "gaussian",
+             figure_formats=("png",),
              interval: str = "bca", level: float = 0.95,
              lapse_max: float = DEFAULT_LAPSE_MAX) -> FitReport:
     """Read trial logs, fit every observer (and the group), write tables and figures.
@@ -303,7 +304,10 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
         Progress bars on stderr: True = only when stderr is a terminal,
         "always" = even when it is not, False = never.
     figures : bool
-        Draw the PNG and PDF figures.
+        Draw the figures.
+    figure_formats : sequence of {"png", "pdf"}
+        File types of the figures (default PNG only: PDF copies add about
+        a fifth to the run time of a 25-condition ``fit``).
     include_practice : bool
         Keep practice trials.
     sigmoid : {"gaussian", "logistic"}
@@ -335,7 +339,7 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
     fig_files: list[str] = []
     if figures:
         from .figures import make_figures
-        fig_files = make_figures(report.analyses, report.group, out / "figures")
+        fig_files = make_figures(report.analyses, report.group, out / "figures", formats=figure_formats)
     out.mkdir(parents=True, exist_ok=True)
     files = []
     for name, cols in MAIN_TABLES.items():

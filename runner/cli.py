@@ -153,6 +153,8 @@ def cmd_fit(args) -> int:
         raise InputError(streams[0], "block", "stream logs and adapt-test logs need separate fit runs (different --out)")
     common = dict(n_boot=args.bootstrap, seed=args.seed, lapse=lapse, lapse_max=args.lapse_max,
                   include_bad_timing=args.include_bad_timing, figures=not args.no_figures)
+    if args.pdf and not streams:
+        common["figure_formats"] = ("png", "pdf")
     if args.interval:
         allowed = ("bc", "percentile") if streams else ("bca", "percentile")
         if args.interval not in allowed:
@@ -263,6 +265,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--include-bad-timing", action="store_true", help="keep trials with timing_ok = false")
     p.add_argument("--include-practice", action="store_true", help="keep practice trials")
     p.add_argument("--no-figures", action="store_true", help="tables only")
+    p.add_argument("--pdf", action="store_true", help="PDF copies of the figures beside the PNGs")
     p.set_defaults(func=cmd_fit)
 
     p = sub.add_parser("compare", help="agreement of measured after-effects with a predictions table")
