@@ -4,7 +4,7 @@ Rows (each a whole process, timed from outside: wall clock and CPU seconds of
 the child processes):
 
 1. ``fit --bootstrap 2000`` on 25 conditions x 80 trials with figures (the
-   default) and with ``--no-figures``, against the statsmodels probit-GLM
+   default: PNG), with ``--pdf`` and with ``--no-figures``, against the statsmodels probit-GLM
    refit loop on the same data (``bench_bootstrap.statsmodels_per_replicate``,
    timed on a part of the replicates and scaled; it is linear in them).
    Target: with figures >= 30 x the loop.
@@ -64,16 +64,11 @@ def timed(cmd, root: Path, env_extra=None) -> tuple[float, float]:
     return time.perf_counter() - t0, _child_cpu() - cpu0
 
 
-def fit_cmd(log: Path, out: Path, replicates: int, figures: bool) -> list[str]:
+def fit_cmd(log: Path, out: Path, replicates: int, figures: bool, *extra: str) -> list[str]:
     cmd = [sys.executable, "-m", "runner.cli", "fit", str(log), "--out", str(out), "--bootstrap",
-           str(replicates), "--seed", "1"]
+           str(replicates), "--seed", "1", *extra]
     return cmd + ([] if figures else ["--no-figures"])
 
-
-PNG_ONLY = ("import sys; from pathlib import Path; from fitting import fit_logs; "
-            "from fitting.figures import make_figures; log, out, n = sys.argv[1], Path(sys.argv[2]), int(sys.argv[3]); "
-            "r = fit_logs([log], str(out), n_boot=n, seed=1, figures=False, progress=False); "
-            "make_figures(r.analyses, r.group, out / 'figures', formats=('png',))")
 
 NO_SYNC = ("import os, runpy, sys; os.fsync = lambda fd: None; sys.argv = ['aftershift'] + sys.argv[1:]; "
            "runpy.run_module('runner.cli', run_name='__main__')")
@@ -120,13 +115,14 @@ def main() -> None:
         print(row(f"statsmodels loop, 100 conditions x {args.replicates} replicates", loop100, loop100_cpu,
                   f"measured on {n_sm100}, scaled"))
         for tag, root in roots:
+            # the old code wrote PNG + PDF by default; the new one writes PNG and takes --pdf
+            formats = "PNG" if tag == "new" else "PNG + PDF"
             w, c = timed(fit_cmd(log25, tmp / f"{tag}25f", args.replicates, True), root)
-            print(row(f"{tag}: fit 25 conditions, figures (PNG + PDF)", w, c,
+            print(row(f"{tag}: fit 25 conditions, default figures ({formats})", w, c,
                       f"{loop25 / w:.1f} x the loop wall, {loop25_cpu / c:.1f} x CPU (target >= 30 x)"), flush=True)
             if tag == "new":
-                w, c = timed([sys.executable, "-c", PNG_ONLY, str(log25), str(tmp / "png25"), str(args.replicates)],
-                             root)
-                print(row(f"{tag}: fit 25 conditions, figures PNG only (make_figures(formats=('png',)))", w, c,
+                w, c = timed(fit_cmd(log25, tmp / f"{tag}25p", args.replicates, True, "--pdf"), root)
+                print(row(f"{tag}: fit 25 conditions, --pdf (PNG + PDF)", w, c,
                           f"{loop25 / w:.1f} x the loop wall, {loop25_cpu / c:.1f} x CPU"), flush=True)
             w, c = timed(fit_cmd(log25, tmp / f"{tag}25n", args.replicates, False), root)
             print(row(f"{tag}: fit 25 conditions, --no-figures", w, c,
