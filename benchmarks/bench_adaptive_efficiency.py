@@ -23,13 +23,17 @@ spread) and μ drawn per run uniformly in [−2°, 2°], so that the true PSE si
 neither on a grid point nor on a step lattice. Procedures, with the protocol
 defaults of ``runner.protocol.ProcedureSettings`` unless stated:
 
-* ``updown pair``: two 2-down/1-up tracks (Levitt, 1971), one from +20°
-  targeting P(cw) = 70.7 %, one from −20° targeting 29.3 %, steps 8, 4, 2, 1°
-  after successive reversals, bounds ±45°; N/2 trials each. The tracks take
-  turns; since each track depends only on its own answers, any interleaving
-  gives the same joint distribution.
+* ``updown pair``: two up–down tracks (Levitt, 1971) with the protocol's
+  ``k_down``, one from +``start_offset_deg``, one from −``start_offset_deg``,
+  the protocol's ``steps_deg`` after successive reversals, bounds ±45°; N/2
+  trials each. The tracks take turns; since each track depends only on its
+  own answers, any interleaving gives the same joint distribution.
 * ``weighted pair``: two weighted up–down tracks (Kaernbach, 1991) targeting
-  75 % and 25 %, otherwise as above.
+  ``target_cw`` and 1 − ``target_cw``, otherwise as above.
+
+The table recorded in ``benchmarks/README.md`` was made with the earlier
+defaults (2-down/1-up and 75 %/25 %, from ±20°, steps 8, 4, 2, 1°); the
+current defaults are measured by ``bench_default_tracks.py``.
 * ``bayes pse``: one :class:`runner.adaptive.EntropyTrack` of N trials,
   target the PSE (σ and λ marginalised; Kontsevich & Tyler, 1999; Prins,
   2013), on the grid a session builds from the protocol defaults

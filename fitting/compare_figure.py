@@ -1,20 +1,30 @@
-"""The overlay figure of ``aftershift compare``: measured vs predicted."""
+"""The overlay figure of ``aftershift compare``: measured vs predicted, one panel per observer."""
 
 from __future__ import annotations
 
+import math
 from pathlib import Path
 
-import matplotlib
+import numpy as np
 
-matplotlib.use("Agg")
-import matplotlib.pyplot as plt  # noqa: E402
-import numpy as np  # noqa: E402
+from fitting.figures import GRID_DPI, save
+from fitting.panels import FAINT, PanelGrid
 
-from fitting.figures import save  # noqa: E402
+_COLOURS = ["#1b4965", "#c8553d", "#5a8f29", "#8e5572", "#d4a017", "#3a7ca5", "#6b4226"]
+
+
+def overlay_columns(n_panels: int) -> int:
+    """Columns of the wrapped grid: up to 4 side by side, then rows of about equal length."""
+    if n_panels <= 4:
+        return n_panels
+    return math.ceil(n_panels / math.ceil(n_panels / 4))
 
 
 def overlay_figure(points, stem: Path) -> list[Path]:
     """Measured after-effects with 95 % CIs and predicted curves, one panel per observer.
+
+    Panels wrap into rows of at most four, so the figure stays readable for
+    any number of observers; the legend sits right of the panels.
 
     Parameters
     ----------
@@ -29,24 +39,36 @@ def overlay_figure(points, stem: Path) -> list[Path]:
     """
     observers = list(dict.fromkeys(points["observer"]))
     lags = sorted(points["lag"].unique())
-    colours = plt.cm.viridis(np.linspace(0.05, 0.85, max(len(lags), 1)))
-    fig, axes = plt.subplots(1, len(observers), figsize=(4.2 * len(observers), 3.6), squeeze=False, sharey=True)
-    for ax, observer in zip(axes[0], observers):
+    ncols = overlay_columns(len(observers))
+    positions = [divmod(i, ncols) for i in range(len(observers))]
+    x = points["adapter_offset_deg"].to_numpy(float)
+    ys = points[["pse_shift_deg", "ci_low", "ci_high", "predicted_deg"]].to_numpy(float)
+    span = float(np.nanmax(np.abs(x))) if len(x) else 1.0
+    lo, hi = float(np.nanmin(ys)), float(np.nanmax(ys))
+    pad = 0.06 * max(hi - lo, 1.0)
+    has_ci = bool(np.isfinite(ys[:, 1:3]).any())
+    canvas = PanelGrid(positions, (-1.1 * span, 1.1 * span), (lo - pad, hi + pad),
+                       "Measured after-effects (points" + (", 95% CI" if has_ci else "") +
+                       ") and predictions (lines), one panel per observer",
+                       "adapter offset from reference (deg, + = clockwise)", "PSE shift (deg, + = clockwise)",
+                       panel_w=2.4, panel_h=1.8, legend_w=1.6)
+    nudge = 0.012 * span
+    for i, observer in enumerate(observers):
         mine = points[points["observer"] == observer]
-        for i, (colour, lag) in enumerate(zip(colours, lags)):
+        canvas.hline(i, 0.0, FAINT, 0.6)
+        canvas.vline(i, 0.0, FAINT, 0.6)
+        for j, lag in enumerate(lags):
+            colour = _COLOURS[j % len(_COLOURS)]
             g = mine[mine["lag"] == lag].sort_values("adapter_offset_deg")
-            x = g["adapter_offset_deg"].to_numpy()
-            y = g["pse_shift_deg"].to_numpy()
-            err = np.vstack([y - g["ci_low"].to_numpy(), g["ci_high"].to_numpy() - y])
-            nudge = (i - (len(lags) - 1) / 2) * 1.5  # side by side, so the intervals do not hide each other
-            ax.errorbar(x + nudge, y, yerr=err, fmt="o", ms=4, color=colour, capsize=2, label=f"measured, lag {lag:g}")
-            ax.plot(x, g["predicted_deg"], "-", color=colour, lw=1.5, alpha=0.8, label=f"predicted, lag {lag:g}")
-        ax.axhline(0, color="0.7", lw=0.8)
-        ax.axvline(0, color="0.7", lw=0.8)
-        ax.set_title(str(observer))
-        ax.set_xlabel("adapter offset from reference (deg, + = clockwise)")
-    axes[0][0].set_ylabel("PSE shift (deg, + = clockwise)")
-    axes[0][-1].legend(fontsize=7, frameon=False, loc="best")
-    fig.suptitle("Measured after-effects (points, 95% CI) and predictions (lines)", fontsize=10)
-    fig.tight_layout()
-    return [Path(p) for p in save(fig, stem, dpi=150)]
+            gx = g["adapter_offset_deg"].to_numpy(float)
+            # side by side, so the intervals do not hide each other
+            canvas.errorbars(i, gx + (j - (len(lags) - 1) / 2) * nudge, g["pse_shift_deg"], g["ci_low"],
+                             g["ci_high"], colour)
+            canvas.line(i, gx, g["predicted_deg"].to_numpy(float), colour, 1.3, alpha=0.85)
+        canvas.panel_title(i, str(observer))
+    entries = []
+    for j, lag in enumerate(lags):
+        colour = _COLOURS[j % len(_COLOURS)]
+        entries += [(f"measured, lag {lag:g}", colour, "marker"), (f"predicted, lag {lag:g}", colour, "line")]
+    canvas.legend(entries)
+    return [Path(p) for p in save(canvas.finish(), stem, dpi=GRID_DPI)]

@@ -667,30 +667,27 @@ def result_tables(boot: NbackBootstrap) -> dict[str, pd.DataFrame]:
 
 def plot_amplitudes(boot: NbackBootstrap, base: Path) -> list[str]:
     """Figure of the DoG amplitude against n with intervals and the fitted decay (PNG, PDF)."""
-    import matplotlib
-    matplotlib.use("Agg", force=False)
-    import matplotlib.pyplot as plt
-
-    from .figures import save
+    from .figures import _STYLE, _plt, outside_legend, save, single_plot
 
     fit = boot.fit
     k = fit.trials.n_back
     n = np.arange(1, k + 1)
     lo, hi = boot.amplitude_ci
-    fig, ax = plt.subplots(figsize=(4.2, 3.0))
-    ax.axhline(0, color="#9a9a9a", lw=0.6)
-    ax.errorbar(n, fit.amplitudes_deg, yerr=[fit.amplitudes_deg - lo, hi - fit.amplitudes_deg], fmt="o",
-                color="#1b4965", capsize=3, label="per-n amplitude, 95 % CI")
-    if k >= 2:
-        fine = np.linspace(1, k, 100)
-        ax.plot(fine, fit.decay_amplitude_deg * np.exp(-(fine - 1) / fit.decay_periods), color="#c8553d",
-                label=f"A·exp(-(n-1)/τ), τ = {fit.decay_periods:.2g} periods")
-    ax.set_xticks(n)
-    ax.set_xlabel("n (periods back; lag = n - 1)")
-    ax.set_ylabel("DoG amplitude (deg)")
-    ax.set_title(f"{fit.trials.observer}: n-back amplitudes, peak offset {fit.peak_offset_deg:.3g} deg")
-    ax.legend(fontsize=7)
-    fig.tight_layout()
+    plt = _plt()
+    title = f"{fit.trials.observer}: n-back amplitudes, peak offset {fit.peak_offset_deg:.3g} deg"
+    with plt.rc_context(_STYLE):
+        fig, ax = single_plot(plt, 6.6, 3.6, 2.6, title)
+        ax.axhline(0, color="#9a9a9a", lw=0.6)
+        ax.errorbar(n, fit.amplitudes_deg, yerr=[fit.amplitudes_deg - lo, hi - fit.amplitudes_deg], fmt="o",
+                    color="#1b4965", capsize=3, label="per-n amplitude, 95 % CI")
+        if k >= 2:
+            fine = np.linspace(1, k, 100)
+            ax.plot(fine, fit.decay_amplitude_deg * np.exp(-(fine - 1) / fit.decay_periods), color="#c8553d",
+                    label=f"A·exp(-(n-1)/τ), τ = {fit.decay_periods:.2g} periods")
+        ax.set_xticks(n)
+        ax.set_xlabel("n (periods back; lag = n - 1)")
+        ax.set_ylabel("DoG amplitude (deg)")
+        outside_legend(ax)
     return save(fig, base)
 
 

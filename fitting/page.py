@@ -154,9 +154,11 @@ def _read(path: Path) -> pd.DataFrame | None:
 def _figure(path: Path, page_dir: Path, wide: bool = False) -> str:
     prefix = path.stem.split("_", 1)[0]
     caption = FIGURE_CAPTIONS.get(prefix, path.stem)
-    return (f'<figure class="{"wide" if wide else ""}"><a href="{_href(path.with_suffix(".pdf"), page_dir)}">'
+    pdf = path.with_suffix(".pdf")
+    target, hint = (pdf, "click for the PDF") if pdf.is_file() else (path, "click for full size")
+    return (f'<figure class="{"wide" if wide else ""}"><a href="{_href(target, page_dir)}">'
             f'<img src="{_href(path, page_dir)}" alt="{_e(caption)}"></a>'
-            f"<figcaption>{_e(caption)} — <code>{_e(path.name)}</code> (click for the PDF)</figcaption></figure>")
+            f"<figcaption>{_e(caption)} — <code>{_e(path.name)}</code> ({hint})</figcaption></figure>")
 
 
 def _figures_of(fit_dir: Path, tag: str) -> list[Path]:

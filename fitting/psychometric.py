@@ -42,6 +42,8 @@ from functools import cached_property
 import numpy as np
 from scipy import sparse, special
 
+from .arrow import Arrow
+
 SIGMOIDS = ("gaussian", "logistic")
 DEFAULT_LAPSE_MAX = 0.1
 _PROB_FLOOR = 1e-12
@@ -300,12 +302,12 @@ def probability_derivatives(theta, x, layout, sigmoid="gaussian"):
     return p, -keep * pdf / sigma, -keep * pdf * z, 0.5 - cdf
 
 
-def _derivatives(theta, x, n, k, layout, sigmoid, fisher=True):
-    """Negative log-likelihood, its gradient and curvature matrices.
+def _local_derivatives(theta, x, n, k, layout, sigmoid, fisher=True):
+    """Negative log-likelihood and its derivatives per condition.
 
-    Returns ``(nll (B,), grad (B, P), observed (B, P, P), fisher (B, P, P))``;
-    ``observed`` is the exact Hessian of the negative log-likelihood and
-    ``fisher`` its expectation (the Fisher information; None unless asked).
+    Returns ``(nll (B,), grad (B, C, 3), observed (B, C, 3, 3), fisher)`` in
+    the local order (pse, log spread, lapse) of each condition, with the
+    signs of the *negative* log-likelihood; ``fisher`` is None unless asked.
     """
     p, z, sigma, keep, cdf, pdf, dpdf = _cell_terms(theta, x, layout, sigmoid)
     q = 1.0 - p
@@ -325,21 +327,39 @@ def _derivatives(theta, x, n, k, layout, sigmoid, fisher=True):
     dmat = np.stack(first, axis=2)                                   # (B, C, m, L)
     b, c = theta.shape[0], x.shape[1]
     grad = np.zeros((b, c, 3))
-    grad[..., :m] = (dmat @ d1[..., None])[..., 0]
+    grad[..., :m] = -(dmat @ d1[..., None])[..., 0]
     obs = np.zeros((b, c, 3, 3))
-    obs[..., :m, :m] = (dmat * d2[:, :, None, :]) @ np.swapaxes(dmat, -1, -2)
+    obs[..., :m, :m] = -(dmat * d2[:, :, None, :]) @ np.swapaxes(dmat, -1, -2)
     extra = (np.stack(second, axis=2) @ d1[..., None])[..., 0]      # (B, C, len(second))
     for s, (i, j) in enumerate(_SECOND_PAIRS[:len(second)]):
-        obs[..., i, j] += extra[..., s]
+        obs[..., i, j] -= extra[..., s]
         if i != j:
-            obs[..., j, i] += extra[..., s]
+            obs[..., j, i] -= extra[..., s]
     fis = None
     if fisher:
         info = n / (p * q)                  # Fisher weight of p
         fis = np.zeros((b, c, 3, 3))
-        fis[..., :m, :m] = -(dmat * info[:, :, None, :]) @ np.swapaxes(dmat, -1, -2)
-        fis = -layout.gather_hessian(fis)
-    return nll, -layout.gather_gradient(grad), -layout.gather_hessian(obs), fis
+        fis[..., :m, :m] = (dmat * info[:, :, None, :]) @ np.swapaxes(dmat, -1, -2)
+    return nll, grad, obs, fis
+
+
+def _derivatives(theta, x, n, k, layout, sigmoid, fisher=True):
+    """Negative log-likelihood, its gradient and curvature matrices.
+
+    Returns ``(nll (B,), grad (B, P), observed (B, P, P), fisher (B, P, P))``;
+    ``observed`` is the exact Hessian of the negative log-likelihood and
+    ``fisher`` its expectation (the Fisher information; None unless asked).
+    """
+    nll, grad, obs, fis = _local_derivatives(theta, x, n, k, layout, sigmoid, fisher)
+    return (nll, layout.gather_gradient(grad), layout.gather_hessian(obs),
+            None if fis is None else layout.gather_hessian(fis))
+
+
+def _arrow_derivatives(theta, x, n, k, layout, sigmoid, fisher=False):
+    """As :func:`_derivatives`, with the curvature matrices as :class:`~fitting.arrow.Arrow`."""
+    nll, grad, obs, fis = _local_derivatives(theta, x, n, k, layout, sigmoid, fisher)
+    arrow = (lambda a: Arrow.from_local(a, layout.shared_spread, layout.free_lapse))
+    return nll, layout.gather_gradient(grad), arrow(obs), None if fis is None else arrow(fis)
 
 
 _SECOND_PAIRS = [(0, 0), (0, 1), (1, 1), (0, 2), (1, 2)]
@@ -423,43 +443,23 @@ def _rows(a: np.ndarray, idx: np.ndarray) -> np.ndarray:
     return a if a.shape[0] == 1 else a[idx]
 
 
-def _solve_stack(h: np.ndarray, g: np.ndarray) -> np.ndarray:
-    """Solve ``h d = g`` for a stack, falling back to a pseudo-inverse."""
-    try:
-        d = np.linalg.solve(h, g[..., None])[..., 0]
-    except np.linalg.LinAlgError:
-        d = np.einsum("bij,bj->bi", np.linalg.pinv(h), g)
-    return d
-
-
-def _hold(h, fixed):
-    """Rows and columns of fixed parameters replaced by those of the identity."""
-    p = h.shape[-1]
-    eye = np.eye(p, dtype=bool)[None]
-    mask = fixed[:, :, None] | fixed[:, None, :]
-    return np.where(mask, 0.0, h) + np.where(eye & fixed[:, :, None], 1.0, 0.0)
-
-
-def _newton_direction(obs, grad, fixed):
+def _newton_direction(obs: Arrow, grad, fixed):
     """Projected Newton direction with the exact Hessian.
 
     Returns the direction, the gradient with fixed parameters zeroed, and the
     rows where the direction is not a descent direction.
     """
     g = np.where(fixed, 0.0, grad)
-    d = -_solve_stack(_hold(obs, fixed), g)
+    d = -obs.hold(fixed).solve(g)
     slope = (g * d).sum(axis=1)
     uphill = ~(np.isfinite(d).all(axis=1) & (slope < 0)) & (np.abs(g).max(axis=1) > 0)
     return np.where(np.isfinite(d), d, 0.0), g, uphill
 
 
-def _fisher_direction(fis, g, fixed):
+def _fisher_direction(fis: Arrow, g, fixed):
     """Fisher-scoring direction, with a tiny ridge for non-identifiable directions."""
-    p = g.shape[1]
-    fis = _hold(fis, fixed)
-    scale = np.abs(np.diagonal(fis, axis1=1, axis2=2)).max(axis=1)
-    fis = fis + (1e-10 * (1.0 + scale))[:, None, None] * np.eye(p)[None]
-    d = -_solve_stack(fis, g)
+    fis = fis.hold(fixed)
+    d = -fis.add_ridge(1e-10 * (1.0 + fis.max_abs_diagonal())).solve(g)
     return np.where(np.isfinite(d), d, 0.0)
 
 
@@ -503,7 +503,8 @@ def solve_batch(theta0, x, n, k, layout: Layout, lo, hi, sigmoid="gaussian",
     # derivatives at the current point, kept from the line search when its
     # first (full) step is accepted, so each Newton step costs one evaluation
     grad_c = np.empty((b, layout.n_params))
-    obs_c = np.empty((b, layout.n_params, layout.n_params))
+    own = 1 if layout.shared_spread else 2
+    obs_c = Arrow.empty(b, layout.n_conditions, own, layout.n_params - own * layout.n_conditions)
     cached = np.zeros(b, dtype=bool)
     todo = np.arange(b)
     for _ in range(max_iter):
@@ -511,8 +512,8 @@ def solve_batch(theta0, x, n, k, layout: Layout, lo, hi, sigmoid="gaussian",
             break
         need = todo[~cached[todo]]
         if need.size:
-            f, g_, o_, _ = _derivatives(theta[need], _rows(x, need), _rows(n, need), k[need],
-                                        layout, sigmoid, fisher=False)
+            f, g_, o_, _ = _arrow_derivatives(theta[need], _rows(x, need), _rows(n, need), k[need],
+                                              layout, sigmoid, fisher=False)
             nll[need], grad_c[need], obs_c[need], cached[need] = f, g_, o_, True
         th = theta[todo]
         xa, na, ka = _rows(x, todo), _rows(n, todo), k[todo]
@@ -525,7 +526,8 @@ def solve_batch(theta0, x, n, k, layout: Layout, lo, hi, sigmoid="gaussian",
             # where the exact Hessian does not give a descent direction, use
             # the Fisher information (positive semi-definite): Fisher scoring
             u = np.flatnonzero(uphill)
-            fis = _derivatives(th[u], _rows(xa, u), _rows(na, u), ka[u], layout, sigmoid)[3]
+            fis = _arrow_derivatives(th[u], _rows(xa, u), _rows(na, u), ka[u], layout, sigmoid,
+                                     fisher=True)[3]
             d[u] = _fisher_direction(fis, g[u], fixed[u])
         decrement = -(g * d).sum(axis=1)
         done = decrement < tol
@@ -542,7 +544,7 @@ def solve_batch(theta0, x, n, k, layout: Layout, lo, hi, sigmoid="gaussian",
             cand = np.clip(th[rows] + step[open_, None] * d[rows], _rows(la, rows), _rows(ha, rows))
             args = (cand, _rows(xa, rows), _rows(na, rows), ka[rows], layout, sigmoid)
             if attempt == 0:
-                fc, gc, oc, _ = _derivatives(*args, fisher=False)
+                fc, gc, oc, _ = _arrow_derivatives(*args)
             else:
                 fc = negative_loglik(*args)
             change = (grad[rows] * (cand - th[rows])).sum(axis=1)

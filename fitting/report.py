@@ -331,6 +331,7 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
 def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
              spread: str = "shared", include_bad_timing: bool = False, progress=True,
              figures: bool = True, *, include_practice: bool = False, sigmoid: str = "gaussian",
+             figure_formats=("png",),
              interval: str = "bca", level: float = 0.95,
              lapse_max: float = DEFAULT_LAPSE_MAX, plan=None, map_tasks=None,
              tracks: dict | None = None) -> FitReport:
@@ -359,7 +360,10 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
         Progress bars on stderr: True = only when stderr is a terminal,
         "always" = even when it is not, False = never.
     figures : bool
-        Draw the PNG and PDF figures.
+        Draw the figures.
+    figure_formats : sequence of {"png", "pdf"}
+        File types of the figures (default PNG only: PDF copies add about
+        a fifth to the run time of a 25-condition ``fit``).
     include_practice : bool
         Keep practice trials.
     sigmoid : {"gaussian", "logistic"}
@@ -410,7 +414,7 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
             from .figures import make_figures
             with phase("drawing figures", show=report.options.progress,
                        count=lambda: _count_files(out / "figures")):
-                fig_files = make_figures(report.analyses, report.group, out / "figures")
+                fig_files = make_figures(report.analyses, report.group, out / "figures", formats=figure_formats)
         files = []
         for name, cols in MAIN_TABLES.items():
             write_csv(getattr(report, name), out / f"{name}.csv", cols)

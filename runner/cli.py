@@ -232,6 +232,8 @@ def cmd_fit(args) -> int:
         raise InputError(streams[0], "block", "stream logs and adapt-test logs need separate fit runs (different --out)")
     common = dict(n_boot=args.bootstrap, seed=args.seed, lapse=lapse, lapse_max=args.lapse_max,
                   include_bad_timing=args.include_bad_timing, figures=not args.no_figures)
+    if args.pdf and not streams:
+        common["figure_formats"] = ("png", "pdf")
     if args.interval:
         allowed = ("bc", "percentile") if streams else ("bca", "percentile")
         if args.interval not in allowed:
@@ -440,6 +442,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--rerun-tracks", action="store_true",
                    help="bootstrap by re-running each adaptive track with the fitted observer (protocol from the "
                         "sidecars; closer to nominal coverage, slower: minutes with Bayesian tracks)")
+    p.add_argument("--pdf", action="store_true", help="PDF copies of the figures beside the PNGs")
     p.set_defaults(func=cmd_fit)
 
     p = sub.add_parser("compare", help="agreement of measured after-effects with a predictions table")
@@ -520,7 +523,10 @@ def main(argv: list[str] | None = None) -> int:
         if args.command is None:  # bare `aftershift`: list the commands
             parser.print_help()
             return EXIT_OK
-        return args.func(args)
+        from fitting.threads import one_blas_thread
+
+        with one_blas_thread():  # small batched solves: threads only cost (fitting/threads.py)
+            return args.func(args)
     except InputError as exc:
         print(f"aftershift: {exc.line()}", file=sys.stderr)
         return EXIT_INPUT

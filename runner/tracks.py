@@ -14,13 +14,24 @@ from __future__ import annotations
 import zlib
 
 from runner.adaptive import ConstantLevels, EntropyGrid, EntropyTrack, UpDownTrack, WeightedTrack
-from runner.protocol import Protocol
+from runner.protocol import ProcedureSettings, Protocol
 from runner.schedule import Schedule
 
 
-def _procedure(protocol: Protocol, track: int, seed_words: tuple[int, ...]):
-    proc = protocol.procedure
-    n = protocol.design.trials_per_track
+def procedure_track(proc: ProcedureSettings, n: int, track: int, seed_words: tuple[int, ...]):
+    """The adaptive procedure of track number ``track`` of a condition.
+
+    Parameters
+    ----------
+    proc : ProcedureSettings
+        The protocol's ``[procedure]``.
+    n : int
+        Trials of the track.
+    track : int
+        Track number within its condition (even: starts on the clockwise side).
+    seed_words : tuple of int
+        Seed of the order of constant stimuli.
+    """
     cw_side = track % 2 == 0
     start = proc.start_offset_deg if cw_side else -proc.start_offset_deg
     stop = {"max_trials": n, "max_reversals": proc.max_reversals or None}
@@ -68,5 +79,6 @@ def make_tracks(protocol: Protocol, schedule: Schedule, seed: int) -> dict:
     out = {}
     for ci, cond in enumerate(schedule.conditions):
         for track in range(protocol.design.tracks_per_condition):
-            out[f"{cond.name}/{track}"] = _procedure(protocol, track, (seed, 2, ci, track))
+            out[f"{cond.name}/{track}"] = procedure_track(protocol.procedure, protocol.design.trials_per_track,
+                                                          track, (seed, 2, ci, track))
     return out

@@ -24,3 +24,34 @@ def run_cli(*args, timeout=300, **kwargs) -> subprocess.CompletedProcess:
 def cli():
     """The command line as a separate process."""
     return run_cli
+
+
+# --------------------------------------------------------------------------
+# the quick subset
+# --------------------------------------------------------------------------
+#
+# ``python -m pytest -m "not slow and not display"`` is the contributors' quick
+# loop (under 60 s on 2 cores); the default command runs everything.  Tests
+# that take more than about 3 s on a quiet 2-core machine are ``slow``: either
+# marked in their file, or listed here by node-id prefix (kept in one place so
+# that files edited by others need no change).  Measured with
+# ``python -m pytest --durations=30``.
+SLOW_TESTS = (
+    "tests/test_fit_bootstrap.py::test_pse_interval_coverage_400_data_sets_of_80_trials",
+    "tests/test_adaptive.py::test_bayesian_pse_precision_near_cramer_rao_bound",
+    "tests/test_resume.py::test_killed_and_resumed_session_writes_identical_rows",
+    "tests/test_resume.py::test_torn_last_line_is_dropped_with_a_warning_and_the_rest_kept",
+    "tests/test_planner.py::test_more_trials_give_narrower_intervals",
+    "tests/test_planner.py::test_constant_stimuli_pse_half_width_matches_fisher_information",
+    "tests/test_fit_aftereffect.py::test_parameter_recovery_fast",
+    "tests/test_nback.py::test_fast_recovery_of_amplitudes_and_decay_on_simulated_streams",
+    "tests/test_nback.py::test_fit_stream_logs_writes_the_tables_compare_reads",
+    "tests/test_nback.py::test_stream_and_discrete_analyses_agree_when_only_the_1_back_period_matters",
+)
+
+
+def pytest_collection_modifyitems(config, items):
+    """Mark the tests of :data:`SLOW_TESTS` as ``slow``."""
+    for item in items:
+        if item.nodeid.startswith(SLOW_TESTS):
+            item.add_marker(pytest.mark.slow)

@@ -101,7 +101,7 @@ def test_figures_are_written_as_png_and_pdf(tmp_path):
                          seed=4, observer="F1")
     write_log(df, tmp_path / "f.trials.csv")
     report = fit_logs([str(tmp_path / "f.trials.csv")], str(tmp_path / "out"), n_boot=50,
-                      progress=False)
+                      progress=False, figure_formats=("png", "pdf"))
     figs = tmp_path / "out" / "figures"
     for stem in ("psychometric_F1", "tracks_F1", "aftereffect_F1", "decay_F1"):
         assert (figs / f"{stem}.pdf").stat().st_size > 1000

@@ -76,6 +76,10 @@ MALFORMED = {
         "design.trials_per_track",
     ),
     "screen_one_number": (b"[display]\nscreen_cm = [53]", "display.screen_cm"),
+    "start_offset_with_bayesian": (b"[procedure]\nmethod = 'bayesian'\nstart_offset_deg = 5",
+                                   "procedure.start_offset_deg"),
+    "start_offset_with_constant": (b"[procedure]\nmethod = 'constant'\nstart_offset_deg = 5",
+                                   "procedure.start_offset_deg"),
 }
 
 
