@@ -166,6 +166,13 @@ def match_predictions(measured: pd.DataFrame, predictions: pd.DataFrame, source:
     return out
 
 
+#: How far to trust the χ² p-values: measured by ``benchmarks/bench_coverage.py`` (benchmarks/README.md).
+CHI2_CAVEAT = ("chi2 p-values run small: with the true after-effect curve as the prediction, simulated single "
+               "observers were rejected in 9-23 % of cases at the 5 % level (benchmarks/bench_coverage.py), because "
+               "bootstrap covariances are 10-20 % too small; read p < 0.05 as a prompt to look, and weigh whether "
+               "the observers' own rows agree")
+
+
 @dataclass(frozen=True)
 class Agreement:
     """Agreement statistics for one set of points (see the module text)."""
@@ -309,7 +316,7 @@ class Comparison:
                 + ("" if row["covariance"] == "full" else "; errors treated as independent")
                 + ("; descriptive only (fewer than 3 observers)" if row["descriptive"] else "")
             )
-        return "\n".join(lines + [f"note: {n}" for n in self.notes])
+        return "\n".join(lines + [f"note: {n}" for n in (*self.notes, CHI2_CAVEAT)])
 
 
 #: Columns of ``agreement.csv`` that need the measured intervals.

@@ -30,6 +30,7 @@ from __future__ import annotations
 
 import os
 import re
+import signal
 from pathlib import Path
 
 import numpy as np
@@ -390,6 +391,16 @@ def decay_figure(name: str, tuning, detail, reps=None, period_s: float = float("
 _TASKS: list = []      # filled before the worker processes fork; they read it by index
 
 
+def _plain_worker_signals() -> None:
+    """Forked drawing workers: Ctrl-C is the parent's to report, and the pool's SIGTERM just ends them.
+
+    They inherit the command's own handlers otherwise (a SIGTERM handler that
+    raises would print a traceback when the pool shuts its workers down).
+    """
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)
+
+
 def _figure_tasks(analyses, group) -> list:
     tasks = []
     for a in analyses:
@@ -459,7 +470,7 @@ def make_figures(analyses, group: dict | None, out_dir: Path, formats=FIT_FORMAT
     try:
         if jobs > 1 and hasattr(os, "fork"):
             import multiprocessing
-            with multiprocessing.get_context("fork").Pool(jobs) as pool:
+            with multiprocessing.get_context("fork").Pool(jobs, initializer=_plain_worker_signals) as pool:
                 done = pool.starmap(_run_task, [(i, str(out_dir), formats) for i in order], chunksize=1)
         else:
             done = [_run_task(i, str(out_dir), formats) for i in order]

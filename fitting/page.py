@@ -346,8 +346,11 @@ def comparison_section(compare_dir: Path, page_dir: Path) -> str:
     if source.is_file():
         parts.append(f"<p>Predictions: <code>{_e(source.read_text(encoding='utf-8').strip())}</code></p>")
     if agreement is not None:
+        from .compare import CHI2_CAVEAT  # here: compare imports this module
+
         parts.append("<h3>Agreement per observer and lag <code class=small>agreement.csv</code></h3>"
-                     + html_table(agreement, compare_dir / "agreement.csv", page_dir))
+                     + html_table(agreement, compare_dir / "agreement.csv", page_dir)
+                     + f'<p class="flags">Note: {_e(CHI2_CAVEAT)}.</p>')
     png = compare_dir / "comparison.png"
     if png.is_file():
         parts.append(_figure(png, page_dir, wide=True))
