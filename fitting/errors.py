@@ -26,6 +26,10 @@ class InputError(ValueError):
         self.message = " ".join(str(message).split())
         super().__init__(self.line())
 
+    def __reduce__(self):
+        # rebuilt from its three parts when it crosses to another process (worker pools)
+        return (type(self), (self.source, self.field, self.message))
+
     def line(self) -> str:
         """Return the one-line description: ``source: field: message``."""
         parts = [p for p in (self.source, self.field) if p]

@@ -31,15 +31,20 @@ FIT_PACKAGES = ("aftershift", "numpy", "scipy", "pandas", "statsmodels", "matplo
 PlanFunction = Callable[[str], "list[str]"]
 
 
-def fit_software() -> dict[str, str | None]:
-    """Python's and the fitting packages' versions, now."""
+def software_versions(packages) -> dict[str, str | None]:
+    """Python's version and each installed package's (None where it is not installed), now."""
     out: dict[str, str | None] = {"python": platform.python_version()}
-    for name in FIT_PACKAGES:
+    for name in packages:
         try:
             out[name] = importlib.metadata.version(name)
         except importlib.metadata.PackageNotFoundError:
             out[name] = None
     return out
+
+
+def fit_software() -> dict[str, str | None]:
+    """Python's and the fitting packages' versions, now."""
+    return software_versions(FIT_PACKAGES)
 
 
 def sidecar_path(log: Path) -> Path:

@@ -8,10 +8,8 @@ and :class:`runner.trial_log.TrialLog`, so their files are the same.
 from __future__ import annotations
 
 import hashlib
-import importlib.metadata
 import json
 import os
-import platform
 import secrets
 from dataclasses import asdict
 from datetime import datetime, timezone
@@ -20,6 +18,7 @@ from pathlib import Path
 import numpy as np
 
 from fitting.errors import InputError
+from fitting.provenance import software_versions
 from runner.console import SimulationConsole
 from runner.headless import HeadlessPresenter
 from runner.observers import ObserverModel, SimulatedObserver, draw_observers
@@ -39,13 +38,7 @@ def now_iso() -> str:
 
 def package_versions() -> dict[str, str | None]:
     """Versions of Python and the packages a session depends on."""
-    out: dict[str, str | None] = {"python": platform.python_version()}
-    for name in PACKAGES:
-        try:
-            out[name] = importlib.metadata.version(name)
-        except importlib.metadata.PackageNotFoundError:
-            out[name] = None
-    return out
+    return software_versions(PACKAGES)
 
 
 def derive_seed(seed: int, *words: int) -> int:
@@ -219,8 +212,12 @@ def run_part(log: TrialLog, sidecar: dict, session) -> SessionResult:
 def _end_part(log: TrialLog, sidecar: dict, how: str) -> None:
     """Best effort: the disk may be the reason the part ended."""
     part = sidecar["parts"][-1]
-    part.update(ended=now_iso(), ended_by=how, rows_added=log.n_rows - len(log.rows))
-    sidecar["rows_total"] = log.n_rows
+    try:
+        total = log.rows_on_disk()  # an interrupt can fall between a row's write and its count
+    except OSError:
+        total = log.n_rows
+    part.update(ended=now_iso(), ended_by=how, rows_added=total - len(log.rows))
+    sidecar["rows_total"] = total
     try:
         log.write_sidecar(sidecar)
     except (OSError, InputError):

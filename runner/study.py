@@ -175,7 +175,7 @@ def expand_designs(protocol: Protocol, model: ObserverModel, vary: list[str] | N
         return [Design(protocol, base_model, {})]
     designs = []
     for combo in itertools.product(*(values for _, values in axes)):
-        raw = protocol.model_dump(mode="json", exclude_none=True)
+        raw = protocol.model_dump(mode="json", exclude_none=True, exclude_unset=True)
         model_raw = asdict(base_model)
         settings = dict(zip(names, combo))
         for name, value in settings.items():
@@ -342,7 +342,7 @@ class StudySettings:
 
 def make_task(design: Design, replicate: int, s: StudySettings) -> dict:
     """The argument of :func:`run_session_task` for replicate ``replicate`` of ``design``."""
-    return {"protocol": design.protocol.model_dump(mode="json", exclude_none=True), "model": asdict(design.model),
+    return {"protocol": design.protocol.model_dump(mode="json", exclude_none=True, exclude_unset=True), "model": asdict(design.model),
             "seed": session_seed(s.seed, replicate), "n_boot": s.n_boot,
             "lapse": s.lapse if s.lapse == "free" else float(s.lapse)}
 

@@ -58,7 +58,7 @@ def procedure_track(proc: ProcedureSettings, n: int, track: int, seed_words: tup
 
 def new_track(protocol: Protocol, track: int, seed_words: tuple[int, ...] = (0,)):
     """A fresh procedure for track number ``track`` of any condition (as a session builds it)."""
-    return _procedure(protocol, track, seed_words)
+    return procedure_track(protocol.procedure, protocol.design.trials_per_track, track, seed_words)
 
 
 def make_tracks(protocol: Protocol, schedule: Schedule, seed: int) -> dict:

@@ -31,10 +31,7 @@ import io
 import json
 import os
 import re
-import signal
 import sys
-import threading
-from contextlib import contextmanager
 from pathlib import Path
 
 from fitting.errors import InputError
@@ -89,25 +86,6 @@ def log_paths(out_dir: str | Path, observer: str, session: str) -> tuple[Path, P
     stem = f"{observer}-{session}"
     out = Path(out_dir)
     return out / f"{stem}.trials.csv", out / f"{stem}.session.json"
-
-
-@contextmanager
-def _interrupts_deferred():
-    """Hold Ctrl-C and SIGTERM until the block ends (main thread; elsewhere a no-op).
-
-    A signal that arrives meanwhile stays pending and its handler runs as soon
-    as the block ends, so no interrupt can fall between writing a row and
-    counting it.
-    """
-    if threading.current_thread() is not threading.main_thread():
-        yield
-        return
-    held = {signal.SIGINT, signal.SIGTERM}
-    previous = signal.pthread_sigmask(signal.SIG_BLOCK, held)
-    try:
-        yield
-    finally:
-        signal.pthread_sigmask(signal.SIG_SETMASK, previous)
 
 
 def refuse_existing(path: Path, sidecar: Path) -> None:
@@ -400,20 +378,24 @@ class TrialLog:
             whole row first.
         """
         data = _row_text(row).encode("utf-8")
-        with _interrupts_deferred():  # a row on disk and its count change together, whatever signal comes
+        try:
+            _write_all(self._fd, data)
+            if self.durable:
+                os.fsync(self._fd)
+        except OSError as exc:
             try:
-                _write_all(self._fd, data)
-                if self.durable:
-                    os.fsync(self._fd)
-            except OSError as exc:
-                try:
-                    os.ftruncate(self._fd, self._size)
-                    os.fsync(self._fd)
-                except OSError:
-                    pass
-                raise _disk_error(self.path, exc, self.n_rows) from None
-            self._size += len(data)
-            self.n_rows += 1
+                os.ftruncate(self._fd, self._size)
+                os.fsync(self._fd)
+            except OSError:
+                pass
+            raise _disk_error(self.path, exc, self.n_rows) from None
+        self._size += len(data)
+        self.n_rows += 1
+
+    def rows_on_disk(self) -> int:
+        """Whole rows in the file now (after an interrupt that may have come between a write and its count)."""
+        with open(self.path, "rb") as fh:
+            return max(fh.read().count(b"\n") - 1, 0)  # less the header line
 
     def sync(self) -> None:
         """Force the rows written so far to disk (breaks and the end of a simulated session)."""

@@ -138,7 +138,10 @@ def test_rerun_tracks_bootstrap_replays_the_logged_procedure(tmp_path):
     logs = sorted(str(p) for p in (tmp_path / "logs").glob("*.trials.csv"))
     factory = track_factories(logs)["sim01"]
     track = factory("baseline", "1")
-    assert track.next_level() == -20.0                # track 1 starts on the counter-clockwise side
+    from runner.protocol import ProcedureSettings
+
+    start = ProcedureSettings().start_offset_deg      # the default the protocol leaves in place
+    assert track.next_level() == -start               # track 1 starts on the counter-clockwise side
     fixed = fit_logs(logs, str(tmp_path / "a"), n_boot=120, seed=2, figures=False, progress=False)
     rerun = fit_logs(logs, str(tmp_path / "b"), n_boot=120, seed=2, figures=False, progress=False,
                      tracks=track_factories(logs))
