@@ -384,7 +384,7 @@ def compare_results(results_dir: str | Path, predictions_path: str | Path, out_d
             a = agreement(g["pse_shift_deg"], g["ci_low"], g["ci_high"], g["predicted_deg"],
                           g["prediction_sd_deg"], cov, reps, dof)
             rows.append({"observer": observer, "lag": lag, **a.__dict__,
-                         "descriptive": bool(g.get("flags", pd.Series(dtype=str)).fillna("").astype(str)
+                         "descriptive": bool(g.get("flags", pd.Series(dtype=object)).astype(object).fillna("").astype(str)
                                              .str.contains("descriptive").any())})
     table = pd.DataFrame(rows, columns=AGREEMENT_COLUMNS)
     notes = _leave_out_interval_statistics(points, table)

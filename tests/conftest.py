@@ -41,6 +41,8 @@ SLOW_TESTS = (
     "tests/test_adaptive.py::test_bayesian_pse_precision_near_cramer_rao_bound",
     "tests/test_resume.py::test_killed_and_resumed_session_writes_identical_rows",
     "tests/test_resume.py::test_torn_last_line_is_dropped_with_a_warning_and_the_rest_kept",
+    "tests/test_resume.py::test_existing_data_is_never_overwritten",
+    "tests/test_resume.py::test_resume_with_a_changed_protocol_is_refused",
     "tests/test_planner.py::test_more_trials_give_narrower_intervals",
     "tests/test_planner.py::test_constant_stimuli_pse_half_width_matches_fisher_information",
     "tests/test_fit_aftereffect.py::test_parameter_recovery_fast",
