@@ -59,7 +59,8 @@ SCALE_FRACTION = 0.01
 #: SCALE_FRACTION of the maximum, whichever is larger.
 RESIDUAL_LIMIT = 0.05
 
-_PARAMS = ("black_cd_m2", "amplitude_cd_m2", "gain", "gamma")
+#: The model's parameters, in the order of :class:`GainOffsetGamma` (and of a profile's model tables).
+MODEL_FIELDS = ("black_cd_m2", "amplitude_cd_m2", "gain", "gamma")
 
 
 @dataclass(frozen=True)
@@ -395,7 +396,7 @@ def fit_channel(readings: Readings, level_ci: float = 0.95, fit_anyway: bool = F
     far = _far_from_curve(readings, fitted)
     if far and not fit_anyway:
         raise ReadingsRefused(readings.source, far)
-    dof = int(y.size - len(_PARAMS))
+    dof = int(y.size - len(MODEL_FIELDS))
     ci = _intervals(best, dof, level_ci)
     lo, hi = ci["gain"]
     ci["offset"] = (1.0 - hi, 1.0 - lo)
@@ -405,16 +406,16 @@ def fit_channel(readings: Readings, level_ci: float = 0.95, fit_anyway: bool = F
 def _intervals(result, dof: int, level_ci: float) -> dict[str, tuple[float, float]]:
     x = result.x
     if dof <= 0:
-        return {name: (math.nan, math.nan) for name in _PARAMS}
+        return {name: (math.nan, math.nan) for name in MODEL_FIELDS}
     s2 = 2.0 * result.cost / dof
     jtj = result.jac.T @ result.jac
     try:
         cov = np.linalg.inv(jtj) * s2
     except np.linalg.LinAlgError:
-        return {name: (math.nan, math.nan) for name in _PARAMS}
+        return {name: (math.nan, math.nan) for name in MODEL_FIELDS}
     se = np.sqrt(np.clip(np.diag(cov), 0.0, None))
     t = float(stats.t.ppf(0.5 + level_ci / 2.0, dof))
-    return {name: (float(x[i] - t * se[i]), float(x[i] + t * se[i])) for i, name in enumerate(_PARAMS)}
+    return {name: (float(x[i] - t * se[i]), float(x[i] + t * se[i])) for i, name in enumerate(MODEL_FIELDS)}
 
 
 def fit_readings(readings: Readings, level_ci: float = 0.95, fit_anyway: bool = False) -> dict[str, ChannelFit]:

@@ -28,7 +28,7 @@ from pathlib import Path
 
 import numpy as np
 
-from fitting.display_model import CHANNELS, ChannelFit, GainOffsetGamma
+from fitting.display_model import CHANNELS, MODEL_FIELDS, ChannelFit, GainOffsetGamma
 from fitting.errors import InputError
 
 if sys.version_info >= (3, 11):
@@ -40,7 +40,6 @@ else:  # pragma: no cover
 PROFILE_KIND = "aftershift light profile"
 #: Format version written.
 PROFILE_VERSION = 1
-_MODEL_FIELDS = ("black_cd_m2", "amplitude_cd_m2", "gain", "gamma")
 
 
 @dataclass(frozen=True)
@@ -272,7 +271,7 @@ def load_profile(path: str | Path, source: str = "", field: str = "light.profile
     for channel, section in need("model", dict).items():
         if channel not in CHANNELS or not isinstance(section, dict):
             raise InputError(str(p), f"model.{channel}", f"expected one of {', '.join(CHANNELS)}")
-        values = [need(k, float, section, f"model.{channel}.") for k in _MODEL_FIELDS]
+        values = [need(k, float, section, f"model.{channel}.") for k in MODEL_FIELDS]
         if not all(math.isfinite(v) for v in values) or values[1] <= 0 or values[3] <= 0 or values[0] < 0:
             raise InputError(str(p), f"model.{channel}", "expected finite parameters, amplitude and gamma above 0")
         models[channel] = GainOffsetGamma(*values)
