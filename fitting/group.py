@@ -210,6 +210,10 @@ def group_curves(shifts: pd.DataFrame, level: float, notes: list, own_tuning=Non
     return tuning, decay, detail, curves
 
 
+#: An observer variance below this fraction of the residual variance is the REML bound (0).
+ZERO_VARIANCE = 1e-6
+
+
 def mixed_model(shifts: pd.DataFrame, notes: list) -> pd.DataFrame:
     """Linear mixed model of the shift on offset, lag and offset x lag.
 
@@ -247,9 +251,17 @@ def mixed_model(shifts: pd.DataFrame, notes: list) -> pd.DataFrame:
                         "std_error": res.bse_fe.to_numpy(), "z": res.tvalues.loc[fe.index].to_numpy(),
                         "p_value": res.pvalues.loc[fe.index].to_numpy(),
                         "ci_low": ci.iloc[:, 0].to_numpy(), "ci_high": ci.iloc[:, 1].to_numpy()})
+    scale = float(res.scale)
+    tau2 = float(res.cov_re.iloc[0, 0])
+    # REML keeps the observer variance >= 0; an optimum on that bound comes back as round-off
+    # (1e-10, its digits set by the installed BLAS), so it is written as 0 and flagged.
+    tau2_on_bound = tau2 <= ZERO_VARIANCE * scale
     extra = pd.DataFrame({"term": ["observer intercept variance", "residual variance"],
-                          "estimate": [float(res.cov_re.iloc[0, 0]), float(res.scale)]})
+                          "estimate": [0.0 if tau2_on_bound else tau2, scale]})
     table = pd.concat([out, extra], ignore_index=True)
     table["converged"] = converged
     table["flags"] = "" if converged else "model-not-converged"
+    if tau2_on_bound:
+        table.loc[table["term"] == "observer intercept variance", "flags"] = join(
+            table["flags"].iloc[0], ["on-bound"])
     return table[cols]

@@ -190,3 +190,29 @@ def test_rerun_tracks_falls_back_with_a_note_when_tracks_cannot_be_rebuilt(tmp_p
     assert not any("kept the levels fixed" in n for n in report.notes["D1"])
     assert any("no session sidecar" in n for n in report.notes["R1"])
     assert np.isfinite(report.pse.set_index(["observer", "condition"]).loc[("D1", "baseline"), "pse_ci_low"])
+
+
+def test_mixed_model_writes_a_boundary_observer_variance_as_zero_and_flags_it():
+    # statsmodels' MixedLM (REML) is the reference. Three observers with no true observer effect
+    # (8 offsets x 4 lags each, as in the demo); with this seed REML's observer variance sits on its
+    # bound 0 and statsmodels returns round-off there (about 1e-10, digits set by the BLAS): the
+    # table writes 0 with "on-bound" and keeps statsmodels' fixed effects
+    import statsmodels.formula.api as smf
+
+    from fitting.group import ZERO_VARIANCE, mixed_model
+
+    rng = np.random.default_rng(1)
+    noise = rng.normal(0.0, 1.0, (3, 32))
+    offsets = np.array([-90.0, -60.0, -30.0, -15.0, 15.0, 30.0, 60.0, 90.0])
+    shifts = pd.DataFrame([{"observer": f"O{o}", "lag": float(lag), "adapter_offset_deg": x,
+                            "pse_shift_deg": 0.02 * x + noise[o, i + 8 * lag]}
+                           for o in range(3) for lag in range(4) for i, x in enumerate(offsets)])
+    ref = smf.mixedlm("pse_shift_deg ~ adapter_offset_deg * lag", shifts,
+                      groups=shifts["observer"]).fit(reml=True)
+    table = mixed_model(shifts, []).set_index("term")
+    assert float(ref.cov_re.iloc[0, 0]) <= ZERO_VARIANCE * float(ref.scale)
+    assert table.loc["observer intercept variance", "estimate"] == 0.0
+    assert "on-bound" in table.loc["observer intercept variance", "flags"]
+    assert table.loc["residual variance", "flags"] == ""
+    assert np.allclose(table.loc[ref.fe_params.index, "estimate"], ref.fe_params, rtol=1e-6)
+    assert np.isclose(table.loc["residual variance", "estimate"], ref.scale)
