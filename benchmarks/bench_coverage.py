@@ -45,12 +45,13 @@ from types import SimpleNamespace
 
 import numpy as np
 import pandas as pd
+from scipy import stats
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from fitting.aftereffect import fit_decay, fit_tuning, peak_bounds  # noqa: E402
-from fitting.compare import agreement, compare_results  # noqa: E402
+from fitting.compare import agreement, compare_results, gls_gain  # noqa: E402
 from fitting.covariance import covariance_matrix, group_covariance  # noqa: E402
 from fitting.meta import random_effects  # noqa: E402
 from fitting.group import GROUP, group_aftereffect, group_curves, group_pse, group_weights  # noqa: E402
@@ -132,6 +133,61 @@ def score(report, who: str, truth: dict) -> dict:
     return {k: tuple(v) for k, v in out.items()}
 
 
+def chi2_candidates(report, truths: dict) -> dict:
+    """compare's χ² test and gain interval for each observer under candidate references (truth predicted).
+
+    Returns ``{candidate: {observer: (rejected, chi2, dof, gain CI holds 1)}}``.  Candidates:
+    normal scores with the bootstrap covariance (the rule before: Hartlap-scaled ``r' V^-1 r``, gain
+    with ``V`` known); the observed-information (inverse Hessian, delta method) covariance (Efron &
+    Hinkley 1978); the bootstrap-calibrated statistic (share of ``T*_b >= T``, Davison & Hinkley 1997,
+    ch. 4; covariance from half the replicates, T*_b from the other half); t scores on ``n_trials / 2 - 1`` (trials per track − 1) degrees of freedom.
+    """
+    out = defaultdict(dict)
+    for a in report.analyses:
+        reps = a.curves.get("shift_reps") if a.curves else None
+        if reps is None or a.observer not in truths:
+            continue
+        ae = a.aftereffect
+        est = ae["pse_shift_deg"].to_numpy(float)
+        truth = np.array([truths[a.observer]["shift"][(float(lag), float(o))]
+                          for lag, o in zip(ae["lag"], ae["adapter_offset_deg"])])
+        n, n_rep = est.size, reps.shape[0]
+        if not np.all(np.isfinite(est)):
+            continue
+        cov = np.cov(reps, rowvar=False)
+        h = (n_rep - n - 2) / (n_rep - 1)
+        e = est - truth
+        t_stat = float(h * e @ np.linalg.solve(cov, e))
+        g, g_se, _ = gls_gain(est, truth, h * np.linalg.inv(cov), free_scale=False)
+        holds = abs(g - 1.0) <= 1.959964 * g_se
+        out["normal scores, gain with V known (before)"][a.observer] = (
+            stats.chi2.sf(t_stat, n) < 0.05, t_stat, n, holds)
+        # out of sample on both sides: covariance from half the replicates, T*_b from the other half
+        half_cov = np.cov(reps[1::2], rowvar=False)
+        d = reps[::2] - est
+        t_star = np.einsum("bi,bi->b", d, np.linalg.solve(half_cov, d.T).T)
+        p_cal = (1 + np.sum(t_star >= float(e @ np.linalg.solve(half_cov, e)))) / (1 + d.shape[0])
+        out["bootstrap-calibrated T*"][a.observer] = (p_cal < 0.05, t_stat, n, holds)
+        fit, conds = a.fit, a.conditions
+        pi = fit.layout.pse_index
+        base = int(np.flatnonzero(conds["is_baseline"])[0])
+        idx = conds.index[~conds["is_baseline"]].to_numpy()
+        dmat = np.zeros((idx.size, fit.covariance.shape[0]))
+        dmat[np.arange(idx.size), pi[idx]] = 1.0
+        dmat[:, pi[base]] -= 1.0
+        if np.all(np.isfinite(fit.covariance[np.ix_(pi, pi)])):
+            oi = dmat @ np.nan_to_num(fit.covariance) @ dmat.T
+            t_oi = float(e @ np.linalg.solve(oi, e))
+            g, g_se, _ = gls_gain(est, truth, np.linalg.inv(oi), free_scale=False)
+            out["observed information"][a.observer] = (stats.chi2.sf(t_oi, n) < 0.05, t_oi, n,
+                                                       abs(g - 1.0) <= 1.959964 * g_se)
+        half = ae["n_trials"].to_numpy(float) / 2 + 1       # read as n_trials - 2 = trials per track - 1
+        b = agreement(est, ae["ci_low"], ae["ci_high"], truth, None, cov, n_rep, np.nan, trials=half)
+        out["t scores on trials per track - 1"][a.observer] = (b.chi2_p < 0.05, b.chi2, b.dof,
+                                                               b.gain_ci_low <= 1.0 <= b.gain_ci_high)
+    return dict(out)
+
+
 def one_group(args) -> dict:
     """Simulate one group, fit it with each bootstrap; score observers and group, compare with the truth."""
     text, model, n_obs, seed, n_boot, pop, bootstraps = args
@@ -158,6 +214,7 @@ def one_group(args) -> dict:
                               tracks=track_factories(logs) if boot == "rerun" else None)
             out["fit_s"][boot] = time.perf_counter() - t0
             out["scores"][boot] = {who: score(report, who, t) for who, t in truths.items()}
+            out.setdefault("candidates", {})[boot] = chi2_candidates(report, truths)
             # observer rows for groups pooled across simulated groups (renamed to stay apart)
             own = {k: getattr(report, k)[getattr(report, k)["observer"] != "group"].assign(
                 observer=lambda f: f"s{seed}_" + f["observer"]) for k in ("pse", "aftereffect", "tuning", "decay")}
@@ -295,6 +352,9 @@ def main() -> None:
                         for kind, pair in sc.items():
                             units[(label, kind)].append(pair)
                         rej[label].append(res["rejected"][boot][who])
+                for res in results:
+                    for name, by_obs in res["candidates"][boot].items():
+                        rej[f"observers: {name}"] += list(by_obs.values())
                 if args.pool:
                     more_units, more_rej = pooled_groups(results, boot, args.sizes, pop)
                     units.update(more_units)
