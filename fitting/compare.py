@@ -301,7 +301,7 @@ def agreement(measured, ci_low, ci_high, predicted, prediction_sd=None, covarian
         scale = (replicates - n - 2) / (replicates - 1)      # Hartlap et al. (2007)
     if np.isfinite(dof) and dof >= 1:
         nu = np.full(n, float(dof))                          # group: t on n_obs - 1
-    elif covariance is not None and trials is not None and np.isfinite(replicates):
+    elif covariance is not None and trials is not None:
         nu = np.asarray(trials, float) - 2.0                 # observer: t on n_trials - 2 (common practice)
         nu = np.where(nu >= 1, nu, np.nan)
     else:
