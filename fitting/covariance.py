@@ -11,19 +11,11 @@ covariance_deg2, replicates, dof``
 * observers: the covariance of the paired bootstrap replicates of their
   shifts (``replicates`` = their number, ``dof`` empty: treated as known up
   to the Hartlap et al. (2007) correction of its inverse);
-* ``group``: ``D R D`` with ``D`` the group standard errors implied by the
-  group intervals (``(high - low) / (2 t_{n-1})``) and ``R`` the correlation
-  of the random-effects weighted mean, ``sum_i (w_i w_i') o (S_i + T)``:
-  ``S_i`` the observers' own covariances, ``w_i`` their weights, and ``T``
-  the between-observer covariance of the shifts by the method of moments
-  (the multivariate DerSimonian–Laird estimator of Jackson, White &
-  Thompson 2010, Stat. Med. 29, 1282, in its equal-weight form: the sample
-  covariance of the observers' shift vectors less their mean own
-  covariance, negative eigenvalues set to zero).  ``T`` matters: observers
-  differ in amplitude, which moves all of an observer's shifts together,
-  so without it the group gain interval was too narrow
-  (benchmarks/README.md).  ``dof`` = n - 1 tells ``compare`` to read the
-  standardised residuals against t, not normal, quantiles.
+* ``group``: ``D R D`` with ``R`` the correlation of the random-effects
+  weighted mean under the observers' own covariances and ``D`` the group
+  standard errors implied by the group intervals (``(high - low) / (2
+  t_{n-1})``); ``dof`` = n - 1 tells ``compare`` to read the standardised
+  residuals against t, not normal, quantiles.
 """
 
 from __future__ import annotations
@@ -58,23 +50,6 @@ def observer_covariance(analysis) -> pd.DataFrame | None:
                  cov, reps.shape[0], np.nan)
 
 
-def between_covariance(own, n_cells: int) -> np.ndarray:
-    """Between-observer covariance of the shifts by the method of moments (see the module text).
-
-    ``own``: per observer ``(cell positions, weights, own covariance, shifts)``.
-    Uses the observers that have every cell; zero with fewer than two.
-    """
-    full = [(cov, y) for pos, _, cov, y in own if len(pos) == n_cells and np.all(np.isfinite(y))]
-    if len(full) < 2:
-        return np.zeros((n_cells, n_cells))
-    order = [np.argsort(pos) for pos, _, _, y in own if len(pos) == n_cells and np.all(np.isfinite(y))]
-    ys = np.array([y[o] for (_, y), o in zip(full, order)])
-    mean_own = np.mean([cov[np.ix_(o, o)] for (cov, _), o in zip(full, order)], axis=0)
-    diff = np.atleast_2d(np.cov(ys, rowvar=False)) - mean_own
-    vals, vecs = np.linalg.eigh((diff + diff.T) / 2)
-    return (vecs * np.clip(vals, 0.0, None)) @ vecs.T
-
-
 def group_covariance(analyses, group_shifts: pd.DataFrame, weights: pd.DataFrame,
                      level: float) -> pd.DataFrame | None:
     """Long covariance table of the group shifts (see the module text)."""
@@ -82,29 +57,26 @@ def group_covariance(analyses, group_shifts: pd.DataFrame, weights: pd.DataFrame
         return None
     cells = list(zip(group_shifts["lag"].astype(float), group_shifts["adapter_offset_deg"].astype(float)))
     index = {c: i for i, c in enumerate(cells)}
-    own = []
+    within = np.zeros((len(cells), len(cells)))
+    n_obs = 0
     for a in analyses:
         reps = a.curves.get("shift_reps") if a.curves else None
         if reps is None or a.observer not in weights.index:
             continue
+        n_obs += 1
         ae = a.aftereffect
-        at = [index.get((float(lag), float(o))) for lag, o in zip(ae["lag"], ae["adapter_offset_deg"])]
-        keep = [j for j, i in enumerate(at) if i is not None]
-        pos = np.array([at[j] for j in keep])
+        own = [index.get((float(lag), float(o))) for lag, o in zip(ae["lag"], ae["adapter_offset_deg"])]
+        keep = [j for j, i in enumerate(own) if i is not None]
+        pos = np.array([own[j] for j in keep])
         w = np.array([weights.loc[a.observer].get((lag, off), 0.0) for lag, off in
                       (cells[i] for i in pos)], dtype=float)
+        w = np.nan_to_num(w)
         cov = np.atleast_2d(np.cov(reps[:, keep], rowvar=False))
-        y = ae["pse_shift_deg"].to_numpy(float)[keep]
-        own.append((pos, np.nan_to_num(w), cov, y))
-    n_obs = len(own)
-    between = between_covariance(own, len(cells))
-    total = np.zeros((len(cells), len(cells)))
-    for pos, w, cov, _ in own:
-        total[np.ix_(pos, pos)] += w[:, None] * w[None, :] * (cov + between[np.ix_(pos, pos)])
-    sd = np.sqrt(np.diagonal(total))
+        within[np.ix_(pos, pos)] += w[:, None] * w[None, :] * cov
+    sd = np.sqrt(np.diagonal(within))
     if n_obs < 2 or not np.all(sd > 0):
         return None
-    corr = total / np.outer(sd, sd)
+    corr = within / np.outer(sd, sd)
     dof = max(n_obs - 1, 1)
     t = special.stdtrit(dof, 0.5 + level / 2.0)
     se = (group_shifts["ci_high"].to_numpy(float) - group_shifts["ci_low"].to_numpy(float)) / (2 * t)

@@ -159,30 +159,6 @@ def test_gain_with_estimated_scale_equals_statsmodels_gls_and_holds_its_level():
     assert held_known / 1000 < 0.91
 
 
-def test_between_observer_covariance_recovers_a_shared_amplitude_factor():
-    # method of moments (Jackson, White & Thompson 2010, equal weights): observers' shift vectors
-    # y_i = mu + a_i * shape + e_i, a_i ~ N(0, 0.5^2) (amplitude varying between observers),
-    # e_i ~ N(0, S) (own covariance, shared baseline); E[T_hat] = 0.25 shape shape' before truncation
-    from fitting.covariance import between_covariance
-
-    rng = np.random.default_rng(21)
-    n, k = 12, 8
-    shape = np.sin(np.linspace(-2, 2, n))
-    own_cov = 0.3 * np.eye(n) + 0.2 * np.ones((n, n))
-    along, across = [], []
-    ortho = np.cos(np.linspace(0, 9, n))
-    ortho -= ortho @ shape / (shape @ shape) * shape
-    for _ in range(200):
-        ys = shape[None] * rng.normal(0, 0.5, (k, 1)) + rng.multivariate_normal(np.zeros(n), own_cov, k)
-        t_hat = between_covariance([(np.arange(n), np.ones(n) / k, own_cov, y) for y in ys], n)
-        along.append(shape @ t_hat @ shape / (shape @ shape) ** 2)
-        across.append(ortho @ t_hat @ ortho / (ortho @ ortho))
-    assert np.mean(along) == pytest.approx(0.25, rel=0.12)
-    # no between-observer variance orthogonal to the shape: what remains is the positive bias of setting
-    # negative eigenvalues to zero (8 observers, 12 cells), about a tenth of the variance along the shape
-    assert np.mean(across) < 0.15 * 0.25 * (shape @ shape)
-
-
 def _degenerate_logs(folder):
     model = ObserverModel(amplitude_deg=3.0, peak_offset_deg=25.0, decay_periods=2.0)
     df = simulate_trials(model, offsets=(-30, 30), lags=(0,), trials_per_track=15, seed=3, observer="D1")
