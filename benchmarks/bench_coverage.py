@@ -51,7 +51,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from fitting.aftereffect import fit_decay, fit_tuning, peak_bounds  # noqa: E402
-from fitting.compare import agreement, compare_results, gls_gain  # noqa: E402
+from fitting.compare import agreement, combine_gains, compare_results, gls_gain  # noqa: E402
 from fitting.covariance import covariance_matrix, group_covariance  # noqa: E402
 from fitting.meta import random_effects  # noqa: E402
 from fitting.group import GROUP, group_aftereffect, group_curves, group_pse, group_weights  # noqa: E402
@@ -262,7 +262,19 @@ def pooled_groups(results, boot: str, sizes, pop: dict, level: float = 0.95, see
             matrix, _, dof = covariance_matrix(cov, GROUP, g_ae["lag"], g_ae["adapter_offset_deg"])
             pred = [pop["shift"][(float(lag), float(o))] for lag, o in zip(g_ae["lag"], g_ae["adapter_offset_deg"])]
             a = agreement(g_ae["pse_shift_deg"], g_ae["ci_low"], g_ae["ci_high"], pred, None, matrix, np.nan, dof)
-            rejected[label].append((a.chi2_p < 0.05, a.chi2, a.dof, a.gain_ci_low <= 1.0 <= a.gain_ci_high))
+            # the group gain as compare gives it: the observers' own gains (against the same predictions), combined
+            gains = []
+            for o in fake:
+                ae = o.aftereffect
+                own = agreement(ae["pse_shift_deg"], ae["ci_low"], ae["ci_high"],
+                                [pop["shift"][(float(lag), float(x))] for lag, x in zip(ae["lag"], ae["adapter_offset_deg"])],
+                                None, np.cov(o.curves["shift_reps"], rowvar=False), o.curves["shift_reps"].shape[0],
+                                np.nan, trials=ae["n_trials"])
+                gains.append((own.gain, own.gain_se))
+            _, g_low, g_high = combine_gains(*zip(*gains))
+            rejected[label].append((a.chi2_p < 0.05, a.chi2, a.dof, g_low <= 1.0 <= g_high))
+            rejected[f"{label}: GLS gain of the group shifts"].append(
+                (a.chi2_p < 0.05, a.chi2, a.dof, a.gain_ci_low <= 1.0 <= a.gain_ci_high))
     return units, rejected
 
 

@@ -37,7 +37,9 @@ is the full covariance:
   ``benchmarks/bench_coverage.py`` measured to bring the false rejections
   closer to the nominal level than normal scores (benchmarks/README.md);
 * for the group, the group standard errors with the correlation of the
-  weighted mean, and t on n_obs − 1 degrees of freedom.
+  weighted mean, and t on n_obs − 1 degrees of freedom; the group's gain
+  is the random-effects combination of the observers' gains
+  (:func:`combine_gains`), like the group shifts.
 
 Without that file ``V`` is diagonal, ``se = half-width / 1.96`` (errors
 treated as independent, which overstates χ² because the shifts of one
@@ -56,6 +58,8 @@ from scipy import stats
 
 from fitting.covariance import COVARIANCE_COLUMNS, covariance_matrix
 from fitting.errors import InputError
+from fitting.group import GROUP
+from fitting.meta import random_effects
 from fitting.page import PAGE, write_page
 from fitting.progress import phase
 from fitting.outputs import output_set
@@ -201,6 +205,7 @@ class Agreement:
     inside_ci_fraction: float
     gain_unweighted: float = float("nan")
     covariance: str = "diagonal"
+    gain_se: float = float("nan")
 
 
 def _inverse(v: np.ndarray) -> np.ndarray:
@@ -326,7 +331,27 @@ def agreement(measured, ci_low, ci_high, predicted, prediction_sd=None, covarian
         inside_ci_fraction=float(np.mean((p >= lo) & (p <= hi))),
         gain_unweighted=float(np.sum(m * p) / pp) if pp > 0 else float("nan"),
         covariance="diagonal" if covariance is None else "full",
+        gain_se=g_se,
     )
+
+
+def combine_gains(gains, gain_ses, level: float = 0.95):
+    """The group gain from the observers' own: ``(estimate, low, high)``, NaN with fewer than two.
+
+    A random-effects mean (DerSimonian–Laird between-observer variance,
+    Hartung–Knapp interval on k − 1 degrees of freedom, never narrower than
+    the fixed-effect one: :func:`fitting.meta.random_effects`, as for the
+    group shifts).  The GLS gain of the group shifts cannot see that
+    observers differ in amplitude, which moves all of an observer's shifts
+    together, and its interval held the true gain in only 50-70 % of
+    simulated groups (benchmarks/README.md).
+    """
+    g, se = np.asarray(gains, float), np.asarray(gain_ses, float)
+    ok = np.isfinite(g) & np.isfinite(se) & (se > 0)
+    if ok.sum() < 2:
+        return float("nan"), float("nan"), float("nan")
+    c = random_effects(g[ok], se[ok] ** 2, level)
+    return float(c.estimate), float(c.low), float(c.high)
 
 
 @dataclass(frozen=True)
@@ -398,6 +423,17 @@ def _shown_path(path: Path, out: Path) -> str:
     return rel if not rel.startswith(os.pardir + os.sep + os.pardir) else str(path.resolve())
 
 
+def _group_gain_from_observers(rows: list[dict]) -> None:
+    """Replace each group row's gain by the combination of the observers' gains (:func:`combine_gains`)."""
+    for row in rows:
+        if row["observer"] != GROUP:
+            continue
+        own = [r for r in rows if r["observer"] != GROUP and r["lag"] == row["lag"]]
+        g, low, high = combine_gains([r["gain"] for r in own], [r["gain_se"] for r in own])
+        if np.isfinite(g):
+            row.update(gain=g, gain_ci_low=low, gain_ci_high=high)
+
+
 def compare_results(results_dir: str | Path, predictions_path: str | Path, out_dir: str | Path,
                     interpolate: bool = False, figures: bool = True, progress: bool | None = None) -> Comparison:
     """Compare ``RESULTS_DIR/aftereffect.csv`` with a predictions table.
@@ -438,6 +474,7 @@ def compare_results(results_dir: str | Path, predictions_path: str | Path, out_d
             rows.append({"observer": observer, "lag": lag, **a.__dict__,
                          "descriptive": bool(g.get("flags", pd.Series(dtype=object)).astype(object).fillna("").astype(str)
                                              .str.contains("descriptive").any())})
+    _group_gain_from_observers(rows)
     table = pd.DataFrame(rows, columns=AGREEMENT_COLUMNS)
     notes = _leave_out_interval_statistics(points, table)
     with output_set(out_dir, "compare") as staged:
