@@ -39,7 +39,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "benchmarks"))
 
-from bench_coverage import observer_truth, protocol_text  # noqa: E402
+from bench_coverage import observed_information_covariance, observer_truth, protocol_text  # noqa: E402
 from fitting.report import fit_logs  # noqa: E402
 from runner.launch import simulate  # noqa: E402
 from runner.observers import draw_observers, load_model  # noqa: E402
@@ -65,18 +65,10 @@ def one(args) -> list[dict]:
         for i, a in enumerate(report.analyses):
             truth = observer_truth(models[i], offsets, lags)["shift"]
             ae = a.aftereffect
-            fit, conds = a.fit, a.conditions
-            pi = fit.layout.pse_index
-            base = int(np.flatnonzero(conds["is_baseline"])[0])
-            idx = conds.index[~conds["is_baseline"]].to_numpy()
-            dmat = np.zeros((idx.size, fit.covariance.shape[0]))
-            dmat[np.arange(idx.size), pi[idx]] = 1.0
-            dmat[:, pi[base]] -= 1.0
-            ok = np.all(np.isfinite(fit.covariance[np.ix_(pi, pi)]))
             out.append({"est": ae["pse_shift_deg"].to_numpy(float), "reps": a.curves["shift_reps"],
                         "truth": np.array([truth[(float(lag), float(o))] for lag, o in
                                            zip(ae["lag"], ae["adapter_offset_deg"])]),
-                        "oi": dmat @ np.nan_to_num(fit.covariance) @ dmat.T if ok else None,
+                        "oi": observed_information_covariance(a),
                         "flags": list(ae["flags"])})
     return out
 

@@ -136,6 +136,23 @@ def score(report, who: str, truth: dict) -> dict:
     return {k: tuple(v) for k, v in out.items()}
 
 
+def observed_information_covariance(a):
+    """Covariance of an observer's shifts from the joint fit's inverse observed information (delta method).
+
+    None when a PSE is not estimable (a separated condition or one on a bound).
+    """
+    fit, conds = a.fit, a.conditions
+    pi = fit.layout.pse_index
+    base = int(np.flatnonzero(conds["is_baseline"])[0])
+    idx = conds.index[~conds["is_baseline"]].to_numpy()
+    dmat = np.zeros((idx.size, fit.covariance.shape[0]))
+    dmat[np.arange(idx.size), pi[idx]] = 1.0
+    dmat[:, pi[base]] -= 1.0
+    if not np.all(np.isfinite(fit.covariance[np.ix_(pi, pi)])):
+        return None
+    return dmat @ np.nan_to_num(fit.covariance) @ dmat.T
+
+
 def chi2_candidates(report, truths: dict) -> dict:
     """compare's χ² test and gain interval for each observer under candidate references (truth predicted).
 
@@ -171,15 +188,8 @@ def chi2_candidates(report, truths: dict) -> dict:
         t_star = np.einsum("bi,bi->b", d, np.linalg.solve(half_cov, d.T).T)
         p_cal = (1 + np.sum(t_star >= float(e @ np.linalg.solve(half_cov, e)))) / (1 + d.shape[0])
         out["bootstrap-calibrated T*"][a.observer] = (p_cal < 0.05, t_stat, n, holds)
-        fit, conds = a.fit, a.conditions
-        pi = fit.layout.pse_index
-        base = int(np.flatnonzero(conds["is_baseline"])[0])
-        idx = conds.index[~conds["is_baseline"]].to_numpy()
-        dmat = np.zeros((idx.size, fit.covariance.shape[0]))
-        dmat[np.arange(idx.size), pi[idx]] = 1.0
-        dmat[:, pi[base]] -= 1.0
-        if np.all(np.isfinite(fit.covariance[np.ix_(pi, pi)])):
-            oi = dmat @ np.nan_to_num(fit.covariance) @ dmat.T
+        oi = observed_information_covariance(a)
+        if oi is not None:
             t_oi = float(e @ np.linalg.solve(oi, e))
             g, g_se, _ = gls_gain(est, truth, np.linalg.inv(oi), free_scale=False)
             out["observed information"][a.observer] = (stats.chi2.sf(t_oi, n) < 0.05, t_oi, n,
