@@ -160,7 +160,8 @@ def chi2_candidates(report, truths: dict) -> dict:
     normal scores with the bootstrap covariance (the rule before: Hartlap-scaled ``r' V^-1 r``, gain
     with ``V`` known); the observed-information (inverse Hessian, delta method) covariance (Efron &
     Hinkley 1978); the bootstrap-calibrated statistic (share of ``T*_b >= T``, Davison & Hinkley 1997,
-    ch. 4; covariance from half the replicates, T*_b from the other half); t scores on ``n_trials / 2 - 1`` (trials per track − 1) degrees of freedom.
+    ch. 4; covariance from half the replicates, T*_b from the other half); t scores on
+    ``n_trials / 2 - 1`` (trials per track − 1) degrees of freedom.
     """
     out = defaultdict(dict)
     for a in report.analyses:
@@ -279,10 +280,10 @@ def pooled_groups(results, boot: str, sizes, pop: dict, level: float = 0.95, see
             gains = []
             for o in fake:
                 ae = o.aftereffect
-                own = agreement(ae["pse_shift_deg"], ae["ci_low"], ae["ci_high"],
-                                [pop["shift"][(float(lag), float(x))] for lag, x in zip(ae["lag"], ae["adapter_offset_deg"])],
-                                None, np.cov(o.curves["shift_reps"], rowvar=False), o.curves["shift_reps"].shape[0],
-                                np.nan, trials=ae["n_trials"])
+                own_pred = [pop["shift"][(float(lag), float(x))] for lag, x in zip(ae["lag"], ae["adapter_offset_deg"])]
+                reps_o = o.curves["shift_reps"]
+                own = agreement(ae["pse_shift_deg"], ae["ci_low"], ae["ci_high"], own_pred, None,
+                                np.cov(reps_o, rowvar=False), reps_o.shape[0], np.nan, trials=ae["n_trials"])
                 gains.append((own.gain, own.gain_se))
             _, g_low, g_high = combine_gains(*zip(*gains))
             rejected[label].append((a.chi2_p < 0.05, a.chi2, a.dof, g_low <= 1.0 <= g_high))
