@@ -111,3 +111,33 @@ def test_population_model_is_repulsive_odd_and_decays_with_lag():
     assert by_lag[0] > by_lag[1] > by_lag[3] > 0
     # an unadapted population reads every test veridically (population vector of a symmetric code)
     assert model.decoded_deg([7.0], model.gains(None, 0))[0] == pytest.approx(7.0, abs=1e-9)
+
+
+@pytest.mark.filterwarnings("ignore:`use_t=True` requires")
+def test_group_gain_is_the_random_effects_combination_of_the_observers_gains(tmp_path):
+    import statsmodels.api as sm
+    from statsmodels.stats.meta_analysis import combine_effects
+
+    rng = np.random.default_rng(8)
+    offsets = np.array([-60.0, -30.0, -15.0, 15.0, 30.0, 60.0])
+    predicted = 2.0 * np.sin(np.radians(offsets) * 2)
+    rows, gains, variances = [], [], []
+    for i, amp in enumerate((0.6, 1.0, 1.3, 1.7)):                    # observers differ in amplitude
+        se = rng.uniform(0.3, 0.6, offsets.size)
+        m = amp * predicted + rng.normal(0, se)
+        rows += [[f"o{i}", 0, o, mi, mi - Z * s, mi + Z * s, 24] for o, mi, s in zip(offsets, m, se)]
+        # reference: statsmodels GLS through the origin (scale estimated) for each observer's gain
+        ref = sm.GLS(m, predicted[:, None], sigma=np.diag(se**2)).fit()
+        gains.append(ref.params[0])
+        variances.append(ref.bse[0] ** 2)
+    rows += [["group", 0, o, p, p - 0.5, p + 0.5, 96] for o, p in zip(offsets, predicted)]
+    results = _measured(tmp_path, rows)
+    pd.DataFrame({"lag": 0, "adapter_offset_deg": offsets, "pse_shift_deg": predicted}).to_csv(
+        tmp_path / "pred.csv", index=False)
+    table = compare_results(results, tmp_path / "pred.csv", tmp_path / "cmp", figures=False).table
+    row = table[(table["observer"] == "group") & (table["lag"] == "all")].iloc[0]
+    # reference: statsmodels' combine_effects, DerSimonian-Laird with the Hartung-Knapp ("wls") interval
+    frame = combine_effects(np.array(gains), np.array(variances), method_re="dl", use_t=True).summary_frame()
+    assert row["gain"] == pytest.approx(frame.loc["random effect wls", "eff"], rel=1e-9)
+    assert row["gain_ci_low"] == pytest.approx(frame.loc["random effect wls", "ci_low"], rel=1e-9)
+    assert row["gain_ci_high"] == pytest.approx(frame.loc["random effect wls", "ci_upp"], rel=1e-9)

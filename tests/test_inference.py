@@ -7,7 +7,7 @@ from scipy import stats
 from statsmodels.stats.meta_analysis import combine_effects
 
 from fitting import fit_logs
-from fitting.compare import agreement
+from fitting.compare import agreement, gls_gain, normal_scores
 from fitting.flags import condense, join
 from fitting.meta import random_effects, variance_from_interval
 from fitting.synthetic import ObserverModel, simulate_trials, write_log
@@ -77,6 +77,86 @@ def test_full_covariance_chi2_is_calibrated_where_the_diagonal_one_is_not():
     # with the true covariance, r' V^-1 r is chi-square on n df (scipy.stats.chi2): 5 % +- 1 % here
     assert 0.04 <= rej_full / 2000 <= 0.065
     assert rej_diag / 2000 > 0.08
+
+
+def test_normal_scores_match_scipy_and_leave_infinite_dof_alone():
+    x = np.array([-6.0, -1.5, 0.0, 0.7, 3.0, 9.0])
+    # reference: scipy.stats, z = Phi^-1(F_t(x; nu)) computed directly
+    assert normal_scores(x, 7) == pytest.approx(stats.norm.ppf(stats.t.cdf(x, 7)), rel=1e-9, abs=1e-12)
+    assert np.array_equal(normal_scores(x, np.inf), x)
+    mixed = normal_scores(x, [5, np.inf, 5, np.nan, 40, 40])
+    assert mixed[1] == -1.5 and mixed[3] == 0.7
+    assert mixed[5] == pytest.approx(stats.norm.isf(stats.t.sf(9.0, 40)), rel=1e-9)
+
+
+def test_chi2_p_on_a_constructed_case_equals_scipy():
+    # two points, known covariance, no replicates: chi2 = r' V^-1 r, p from scipy.stats.chi2 on 2 df
+    cov = np.array([[1.0, 0.4], [0.4, 2.0]])
+    m, p = np.array([1.0, -0.5]), np.array([0.0, 0.5])
+    half = stats.norm.ppf(0.975) * np.sqrt(np.diagonal(cov))
+    a = agreement(m, m - half, m + half, p, covariance=cov)
+    r = m - p
+    assert a.chi2 == pytest.approx(r @ np.linalg.solve(cov, r), rel=1e-12)
+    assert a.chi2_p == pytest.approx(stats.chi2.sf(a.chi2, 2), rel=1e-12)
+    # with 400 replicates the inverse is scaled by (400 - 2 - 2) / (400 - 1) (Hartlap et al. 2007, eq. 17)
+    b = agreement(m, m - half, m + half, p, covariance=cov, replicates=400)
+    assert b.chi2 == pytest.approx(a.chi2 * 396 / 399, rel=1e-12)
+
+
+def test_t_scores_hold_the_level_when_each_standard_error_is_estimated():
+    # Student (1908): N(0, 1) / sqrt(chi2_nu / nu) is t on nu df.  Shifts with a shared baseline
+    # (correlation 0.4), each standard error estimated on nu = 10 df: reading the standardised
+    # residuals as normal over-rejects, reading them against t on trials - 2 = 10 df holds 5 %.
+    rng = np.random.default_rng(11)
+    n, nu, draws = 8, 10, 3000
+    cov = 1.2 * np.eye(n) + 0.8 * np.ones((n, n))
+    sd = np.sqrt(np.diagonal(cov))
+    corr = cov / np.outer(sd, sd)
+    truth = np.linspace(-3, 3, n)
+    rej_t = rej_normal = 0
+    for _ in range(draws):
+        m = rng.multivariate_normal(truth, cov)
+        sd_hat = sd * np.sqrt(rng.chisquare(nu, n) / nu)
+        cov_hat = corr * np.outer(sd_hat, sd_hat)
+        half = stats.norm.ppf(0.975) * sd_hat
+        kw = dict(covariance=cov_hat, replicates=np.inf)
+        rej_t += agreement(m, m - half, m + half, truth, trials=np.full(n, nu + 2), **kw).chi2_p < 0.05
+        rej_normal += agreement(m, m - half, m + half, truth, **kw).chi2_p < 0.05
+    # binomial MC SE at 5 % over 3,000 draws: 0.4 % (a slow test: tests/conftest.py SLOW_TESTS)
+    assert 0.035 <= rej_t / draws <= 0.07
+    assert rej_normal / draws > 0.09
+
+
+def test_gain_with_estimated_scale_equals_statsmodels_gls_and_holds_its_level():
+    import statsmodels.api as sm
+
+    rng = np.random.default_rng(5)
+    n = 16
+    p = np.linspace(-6, 6, n)
+    cov = 0.3 * np.eye(n) + 0.2 * np.ones((n, n))
+    m = 0.8 * p + rng.multivariate_normal(np.zeros(n), cov)
+    g, se, dof = gls_gain(m, p, np.linalg.inv(cov))
+    # reference: statsmodels GLS through the origin, scale estimated from the residuals (its default)
+    ref = sm.GLS(m, p[:, None], sigma=cov).fit()
+    assert g == pytest.approx(ref.params[0], rel=1e-10)
+    assert se == pytest.approx(ref.bse[0], rel=1e-10)
+    assert dof == ref.df_resid
+    half = stats.norm.ppf(0.975) * np.sqrt(np.diagonal(cov))
+    a = agreement(m, m - half, m + half, p, covariance=cov)
+    low, high = ref.conf_int(0.05)[0]
+    assert (a.gain_ci_low, a.gain_ci_high) == (pytest.approx(low, rel=1e-9), pytest.approx(high, rel=1e-9))
+    # the covariance given is 1.6 times too small: the interval with V known undercovers, the one with
+    # the scale estimated holds 95 % (t on n - 1 df; exact for Gaussian errors)
+    held_known = held_free = 0
+    for _ in range(1000):
+        m = 0.8 * p + rng.multivariate_normal(np.zeros(n), 1.6 * cov)
+        g, se, dof = gls_gain(m, p, np.linalg.inv(cov))
+        held_free += abs(g - 0.8) <= stats.t.ppf(0.975, dof) * se
+        g, se, _ = gls_gain(m, p, np.linalg.inv(cov), free_scale=False)
+        held_known += abs(g - 0.8) <= stats.norm.ppf(0.975) * se
+    # binomial MC SE at 95 % over 1,000 draws: 0.7 %
+    assert 0.93 <= held_free / 1000 <= 0.97
+    assert held_known / 1000 < 0.91
 
 
 def _degenerate_logs(folder):
