@@ -13,7 +13,10 @@
 5. intervals (BCa by default, percentile on request) for all of them.  BCa
    needs each statistic's gradient in the fit parameters: exact for PSEs and
    shifts, by central differences for the curve parameters (the curve fits
-   are run on the probes in the same batch as the replicates).
+   are run on the probes in the same batch as the replicates).  On request
+   the PSEs and shifts get profile-likelihood (:mod:`fitting.profile`) or
+   studentized bootstrap intervals instead; the tuning and decay intervals
+   stay BCa (see :func:`pse_shift_intervals`).
 """
 
 from __future__ import annotations
@@ -27,6 +30,7 @@ from scipy import special
 
 from .aftereffect import TAU_BOUNDS, bound_note, fit_decay, fit_tuning, peak_bounds
 from .bootstrap import BootstrapResult, parametric_bootstrap
+from .profile import profile_pse, profile_shifts
 from .flags import MIN_TRIALS_FOR_INTERVAL, condense, join, on_bound, psychometric_flags
 from .replay import replay_bootstrap
 from .psychometric import DEFAULT_LAPSE_MAX, Cells, PsychometricFit, fit_cells
@@ -53,7 +57,9 @@ class Options:
     lapse : "free" or float
     spread : {"shared", "per_condition"}
     sigmoid : {"gaussian", "logistic"}
-    interval : {"bca", "percentile"}
+    interval : {"bca", "percentile", "profile", "studentized"}
+        Interval of the PSEs and shifts (tuning and decay: BCa unless
+        "percentile"); see :func:`pse_shift_intervals`.
     level : float
         Confidence level of every interval.
     lapse_max : float
@@ -123,11 +129,62 @@ def _period(trials: pd.DataFrame, notes: list) -> float:
     return float(values[0])
 
 
+INTERVAL_METHODS = ("bca", "percentile", "profile", "studentized")
+
+
 def _intervals(boot, opts, estimate, reps, gradient):
     if boot is None:
         nan = np.full(np.size(estimate), np.nan)
         return nan, nan.copy()
-    return boot.interval(estimate, reps, gradient, opts.interval, opts.level)
+    return boot.interval(estimate, reps, gradient, "percentile" if opts.interval == "percentile" else "bca",
+                         opts.level)
+
+
+def pse_shift_intervals(method: str, fit: PsychometricFit, boot: BootstrapResult | None, base: int | None,
+                        adapted, level: float = 0.95):
+    """Limits of every condition PSE and of every shift ``PSE[j] - PSE[base]``, ``j`` in ``adapted``.
+
+    Parameters
+    ----------
+    method : {"bca", "percentile", "profile", "studentized"}
+        ``"profile"``: likelihood-ratio intervals, the joint fit re-maximised
+        at every trial value (:mod:`fitting.profile`; no bootstrap needed);
+        ``"studentized"``: bootstrap-t with each replicate's own standard
+        error (``boot`` run with ``studentize=True``); the others: the
+        bootstrap quantiles.
+    fit, boot
+        The point fit and its bootstrap (None: NaN limits unless profile).
+    base : int or None
+        Index of the baseline condition (None: no shifts).
+    adapted : sequence of int
+        Conditions whose shift from the baseline is wanted.
+    level : float
+
+    Returns
+    -------
+    (pse_low, pse_high, shift_low, shift_high) : ndarrays (C,), (C,), (S,), (S,)
+    """
+    adapted = np.asarray(adapted, dtype=int)
+    C = len(fit.conditions)
+    w = np.eye(C)
+    if base is not None and adapted.size:
+        w = np.hstack([w, np.eye(C)[:, adapted] - np.eye(C)[:, [base]]])
+    if method == "profile":
+        p = profile_pse(fit, level)
+        lo, hi = p.low, p.high
+        if w.shape[1] > C:
+            s = profile_shifts(fit, base, adapted, level)
+            lo, hi = np.concatenate([lo, s.low]), np.concatenate([hi, s.high])
+    elif boot is None:
+        lo = hi = np.full(w.shape[1], np.nan)
+    elif method == "studentized":
+        lo, hi = boot.studentized(w, level)
+    else:
+        lay = fit.layout
+        grad = np.zeros((lay.n_params, w.shape[1]))
+        grad[lay.pse_index] = w
+        lo, hi = boot.interval(fit.pse @ w, boot.pse @ w, grad, method, level)
+    return lo[:C], hi[:C], lo[C:], hi[C:]
 
 
 class _CurveModel:
@@ -219,19 +276,25 @@ def analyse_observer(observer: str, trials: pd.DataFrame, opts: Options,
             plan = [[(str(t), int(m)) for t, m in trials[trials["condition"] == name]
                      .groupby("track", sort=True).size().items()] for name in names]
             boot = replay_bootstrap(fit, plan, factory, opts.n_boot, rng, opts.progress,
-                                    f"bootstrap {observer} (tracks re-run)")
+                                    f"bootstrap {observer} (tracks re-run)",
+                                    studentize=opts.interval == "studentized")
         else:
-            boot = parametric_bootstrap(fit, opts.n_boot, rng, opts.progress, f"bootstrap {observer}")
+            boot = parametric_bootstrap(fit, opts.n_boot, rng, opts.progress, f"bootstrap {observer}",
+                                        studentize=opts.interval == "studentized")
         bad = 1.0 - boot.converged.mean()
         if bad > 0:
             notes.append(f"{100 * bad:.1f}% of bootstrap refits stopped before converging")
-    lay = fit.layout
-    P = lay.n_params
     C = len(names)
     # --- PSE table -----------------------------------------------------
-    grad_pse = np.zeros((P, C))
-    grad_pse[lay.pse_index, np.arange(C)] = 1.0
-    lo, hi = _intervals(boot, opts, fit.pse, None if boot is None else boot.pse, grad_pse)
+    base = int(np.flatnonzero(conds["is_baseline"])[0]) if conds["is_baseline"].any() else None
+    adapted = np.flatnonzero(~conds["is_baseline"].to_numpy()) if base is not None else np.zeros(0, int)
+    if boot is None and opts.interval != "profile":
+        lo = hi = np.full(C, np.nan)
+        shift_ci = None
+    else:
+        lo, hi, *shift_ci = pse_shift_intervals(opts.interval, fit, boot, base, adapted, opts.level)
+        if opts.interval in ("bca", "percentile"):
+            shift_ci = None      # computed with the curve statistics below, on the same replicates
     few = fit.n_trials < MIN_TRIALS_FOR_INTERVAL
     lo, hi = np.where(few, np.nan, lo), np.where(few, np.nan, hi)
     cond_flags = psychometric_flags(fit, boot)
@@ -258,7 +321,7 @@ def analyse_observer(observer: str, trials: pd.DataFrame, opts: Options,
         return analysis
     if conds["is_baseline"].all():
         return analysis
-    _curves(analysis, opts)
+    _curves(analysis, opts, shift_ci)
     return analysis
 
 
@@ -306,7 +369,7 @@ def _model_test(observer, fit, alt, boot, opts) -> pd.DataFrame:
     return pd.DataFrame([row])
 
 
-def _curves(a: ObserverAnalysis, opts: Options) -> None:
+def _curves(a: ObserverAnalysis, opts: Options, shift_ci=None) -> None:
     fit, boot, conds, notes = a.fit, a.boot, a.conditions, a.notes
     model = _CurveModel(conds, fit, notes)
     lay = fit.layout
@@ -323,6 +386,8 @@ def _curves(a: ObserverAnalysis, opts: Options) -> None:
     reps = stats[1 + 2 * C:] if boot is not None else None
     lo, hi = _intervals(boot, opts, est, reps, grad)
     m = model.cond_index.size
+    if shift_ci is not None:     # the PSE-table method, shifts in the same order (condition index)
+        lo[:m], hi[:m] = shift_ci
     adapted = conds.iloc[model.cond_index]
     cond_flags = a.pse["flags"].to_numpy()
     shift_flags = [join(cond_flags[c], cond_flags[model.base]) for c in model.cond_index]
