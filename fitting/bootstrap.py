@@ -47,7 +47,7 @@ from scipy import special
 
 from .errors import InputError
 from .progress import ProgressBar
-from .psychometric import (PsychometricFit, _cell_terms, _derivatives, deviance_by_condition,
+from .psychometric import (PsychometricFit, _cell_terms, _covariance, _derivatives, deviance_by_condition,
                            probability_derivatives, solve_batch)
 
 INTERVALS = ("bca", "percentile")
@@ -210,11 +210,18 @@ class BootstrapResult:
         fit = self.fit
         pi = fit.layout.pse_index
         estimate = fit.pse @ w
-        se = np.sqrt(np.einsum("cs,cd,ds->s", w, fit.covariance[np.ix_(pi, pi)], w))
+        used = np.abs(w) > 0
+        # the point fit's error by the replicates' rule: only parameters on a bound are held
+        # (fit.covariance also drops separated conditions, whose PSE a shared spread still pins)
+        cov = _covariance(fit.theta, fit.cells, fit.layout, fit.sigmoid, fit.at_bound,
+                          [""] * len(fit.conditions))[np.ix_(pi, pi)]
+        # a PSE without an error (on a bound) leaves only the statistics that use it without one
+        var = np.einsum("cs,cd,ds->s", w, np.nan_to_num(cov, nan=0.0), w)
+        var[np.isnan(np.diagonal(cov)) @ used > 0] = np.nan
+        se = np.sqrt(np.where(var > 0, var, np.nan))
         centre = self.generating_theta[pi] @ w
         reps = self.pse @ w
         rep_var = np.einsum("cs,rcd,ds->rs", w, np.nan_to_num(self.pse_covariance, nan=0.0), w)
-        used = np.abs(w) > 0
         missing = np.isnan(self.pse_covariance[:, np.arange(pi.size), np.arange(pi.size)]) @ used > 0
         rep_se = np.where(missing | (rep_var <= 0), np.nan, np.sqrt(np.maximum(rep_var, 0.0)))
         return studentized_interval(estimate, se, reps, rep_se, centre, level)

@@ -139,8 +139,7 @@ def profile_pse(fit: PsychometricFit, level: float = 0.95, tol: float = 1e-4,
     Returns
     -------
     ProfileResult
-        Limits NaN for a condition whose answers are separated (not
-        estimable).
+        Limits NaN for a condition whose answers all fall on one side.
     """
     lay, cells = fit.layout, fit.cells
     C = lay.n_conditions
@@ -165,11 +164,20 @@ def profile_pse(fit: PsychometricFit, level: float = 0.95, tol: float = 1e-4,
         # d(-l_p)/d psi = d nll / d mu_j at the constrained optimum
         return 2.0 * (nll - nll_hat) - q, 2.0 * grad[np.arange(rows.size), j], warm
 
-    est = fit.pse.copy()
-    est[[bool(s) for s in fit.separation] if fit.separation else np.zeros(C, bool)] = np.nan
+    est = np.where(_one_sided(fit), np.nan, fit.pse)
     box_lo, box_hi = fit.lower[lay.pse_index], fit.upper[lay.pse_index]
     lo, hi, lob, hib, refits = _find_limits(evaluate, est, fit.pse_se, box_lo, box_hi, level, tol, max_steps)
     return ProfileResult(lo, hi, lob, hib, refits)
+
+
+def _one_sided(fit: PsychometricFit) -> np.ndarray:
+    """Conditions with every answer on one side: no finite PSE, so no interval.
+
+    (Separated answers keep a finite PSE under a shared spread, and a profile
+    interval that spans the gap between the answers.)
+    """
+    sep = fit.separation or [""] * len(fit.conditions)
+    return np.array([s.startswith("all ") for s in sep], dtype=bool)
 
 
 def _merged_cells(cells, base: int, j: int, shift: np.ndarray, width: int):
@@ -199,7 +207,8 @@ def profile_shifts(fit: PsychometricFit, base: int, conditions, level: float = 0
     Returns
     -------
     ProfileResult
-        Limits NaN where the condition or the baseline is separated.
+        Limits NaN where the condition's or the baseline's answers all fall
+        on one side.
     """
     lay, cells = fit.layout, fit.cells
     if not lay.shared_spread:
@@ -256,9 +265,8 @@ def profile_shifts(fit: PsychometricFit, base: int, conditions, level: float = 0
     est = pse[conditions] - pse[base]
     se = np.sqrt(cov[pi[conditions], pi[conditions]] + cov[pi[base], pi[base]]
                  - 2.0 * cov[pi[conditions], pi[base]])
-    if fit.separation:
-        bad = np.array([bool(fit.separation[c]) or bool(fit.separation[base]) for c in conditions])
-        est = np.where(bad, np.nan, est)
+    one_sided = _one_sided(fit)
+    est = np.where(one_sided[conditions] | one_sided[base], np.nan, est)
     box_lo = fit.lower[pi[conditions]] - fit.upper[pi[base]]
     box_hi = fit.upper[pi[conditions]] - fit.lower[pi[base]]
     lo, hi, lob, hib, refits = _find_limits(evaluate, est, se, box_lo, box_hi, level, tol, max_steps)
