@@ -180,20 +180,25 @@ def _one_sided(fit: PsychometricFit) -> np.ndarray:
     return np.array([s.startswith("all ") for s in sep], dtype=bool)
 
 
-def _merged_cells(cells, base: int, j: int, shift: np.ndarray, width: int):
-    """Cells with condition ``j`` moved into row ``base`` at levels ``x - shift`` (one per value)."""
+def _merged_cells(cells, base: int, j: np.ndarray, shift: np.ndarray):
+    """Per row, cells with condition ``j[r]`` moved into row ``base`` at levels ``x - shift[r]``.
+
+    Returns ``x, n, k`` of shape (B, C - 1, 2 L) and ``keep`` (B, C - 1), the
+    original index of each remaining condition.
+    """
     C, L = cells.x.shape
-    keep = [c for c in range(C) if c != j]
-    b = keep.index(base)
     B = shift.size
-    x = np.empty((B, C - 1, width))
-    n = np.zeros((B, C - 1, width))
-    k = np.zeros((B, C - 1, width))
-    x[:, :, :L] = cells.x[keep][None]
-    x[:, :, L:] = cells.x[keep][None, :, :1]
-    n[:, :, :L], k[:, :, :L] = cells.n[keep][None], cells.k[keep][None]
-    x[:, b, L:2 * L] = cells.x[j][None] - shift[:, None]
-    n[:, b, L:2 * L], k[:, b, L:2 * L] = cells.n[j][None], cells.k[j][None]
+    keep = np.array([[c for c in range(C) if c != jj] for jj in j]).reshape(B, C - 1)
+    b = np.argmax(keep == base, axis=1)
+    rows = np.arange(B)
+    x = np.empty((B, C - 1, 2 * L))
+    n = np.zeros((B, C - 1, 2 * L))
+    k = np.zeros((B, C - 1, 2 * L))
+    x[:, :, :L] = cells.x[keep]
+    x[:, :, L:] = cells.x[keep][:, :, :1]
+    n[:, :, :L], k[:, :, :L] = cells.n[keep], cells.k[keep]
+    x[rows, b, L:] = cells.x[j] - shift[:, None]
+    n[rows, b, L:], k[rows, b, L:] = cells.n[j], cells.k[j]
     return x, n, k, keep
 
 
@@ -202,7 +207,7 @@ def profile_shifts(fit: PsychometricFit, base: int, conditions, level: float = 0
     """Profile-likelihood intervals of ``PSE[j] - PSE[base]`` for each ``j`` in ``conditions``.
 
     Needs a shared spread (see the module docstring); the lapse may be free
-    or fixed.
+    or fixed.  Every limit of every condition is searched in one batch.
 
     Returns
     -------
@@ -215,49 +220,30 @@ def profile_shifts(fit: PsychometricFit, base: int, conditions, level: float = 0
         raise ValueError("profile intervals of shifts need a shared spread")
     conditions = np.asarray(conditions, dtype=int)
     S = conditions.size
-    C, L = cells.x.shape
+    C = cells.x.shape[0]
     sub = Layout(C - 1, True, lay.lapse, lay.lapse_max)
     j_of = np.concatenate([conditions, conditions])
     nll_hat = -fit.loglik
     q = cutoff(level)
     full_x, full_n = cells.x[None], cells.n[None]
-    keeps = {}
-
-    def to_sub(theta, j):
-        keep = keeps[j]
-        return np.concatenate([theta[..., keep], theta[..., C:]], axis=-1)
-
-    def to_full(sub_theta, j, shift):
-        keep = keeps[j]
-        out = np.empty(sub_theta.shape[:-1] + (lay.n_params,))
-        out[..., keep] = sub_theta[..., :C - 1]
-        out[..., C:] = sub_theta[..., C - 1:]
-        out[..., j] = out[..., base] + shift
-        return out
-
-    for j in np.unique(conditions):
-        keeps[int(j)] = [c for c in range(C) if c != j]
+    nuisance = np.arange(C, lay.n_params)            # spread and lapse keep their place after the PSEs
 
     def evaluate(rows, values, warm):
         if warm is None:
             warm = np.tile(fit.theta, (2 * S, 1))
-        r = np.empty(rows.size)
-        slope = np.empty(rows.size)
-        for j in np.unique(j_of[rows]):
-            pick = np.flatnonzero(j_of[rows] == j)
-            rr, vv = rows[pick], values[pick]
-            x, n, k, keep = _merged_cells(cells, base, int(j), vv, 2 * L)
-            lo = to_sub(fit.lower, int(j))
-            hi = to_sub(fit.upper, int(j))
-            sol = solve_batch(to_sub(warm[rr], int(j)), x, n, k, sub, lo, hi, fit.sigmoid,
-                              max_iter=200, tol=1e-12)
-            theta = to_full(sol.theta, int(j), vv)
-            kk = np.broadcast_to(cells.k, (rr.size,) + cells.k.shape)
-            nll, grad, _, _ = _arrow_derivatives(theta, full_x, full_n, kk, lay, fit.sigmoid)
-            warm[rr] = theta
-            r[pick] = 2.0 * (nll - nll_hat) - q
-            slope[pick] = 2.0 * grad[:, lay.pse_index[int(j)]]
-        return r, slope, warm
+        j = j_of[rows]
+        x, n, k, keep = _merged_cells(cells, base, j, values)
+        sub_index = np.hstack([keep, np.broadcast_to(nuisance, (rows.size, nuisance.size))])
+        take = (lambda a: np.take_along_axis(np.broadcast_to(a, (rows.size, lay.n_params)), sub_index, axis=1))
+        sol = solve_batch(take(warm[rows]), x, n, k, sub, take(fit.lower), take(fit.upper), fit.sigmoid,
+                          max_iter=200, tol=1e-12)
+        theta = np.empty((rows.size, lay.n_params))
+        np.put_along_axis(theta, sub_index, sol.theta, axis=1)
+        theta[np.arange(rows.size), j] = theta[:, base] + values
+        kk = np.broadcast_to(cells.k, (rows.size,) + cells.k.shape)
+        nll, grad, _, _ = _arrow_derivatives(theta, full_x, full_n, kk, lay, fit.sigmoid)
+        warm[rows] = theta
+        return 2.0 * (nll - nll_hat) - q, 2.0 * grad[np.arange(rows.size), lay.pse_index[j]], warm
 
     pse = fit.pse
     cov = fit.covariance
