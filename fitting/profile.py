@@ -106,7 +106,8 @@ def _find_limits(evaluate, estimate, se, box_low, box_high, level, tol, max_step
         outer_known[rows[~below]] = True
         # Newton step on psi; its slope must point away from the estimate
         good = np.isfinite(slope) & (slope * side[rows] > 0)
-        newton = v - r / np.where(good, slope, 1.0)
+        with np.errstate(over="ignore", divide="ignore"):
+            newton = v - r / np.where(good, slope, 1.0)
         lo_b = np.minimum(inner[rows], outer[rows])
         hi_b = np.maximum(inner[rows], outer[rows])
         inside = good & (newton > lo_b) & (newton < hi_b)
