@@ -76,6 +76,8 @@ def protocol_text(base: str, trials_per_condition: int, method: str) -> str:
     text = Path(base).read_text(encoding="utf-8")
     text = re.sub(r"(?m)^tracks_per_condition\s*=.*$", "tracks_per_condition = 2", text)
     text = re.sub(r"(?m)^trials_per_track\s*=.*$", f"trials_per_track = {trials_per_condition // 2}", text)
+    if method in ("bayesian", "constant"):     # these choose their own levels: no start offset (refused)
+        text = re.sub(r"(?m)^start_offset_deg\s*=.*\n", "", text)
     return re.sub(r'(?m)^method\s*=.*$', f'method = "{method}"', text)
 
 

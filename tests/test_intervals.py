@@ -198,6 +198,15 @@ def test_pse_shift_intervals_methods_agree_on_plenty_of_trials():
             np.testing.assert_allclose(a, b, atol=0.1 * width.mean(), err_msg=m)
 
 
+def test_unknown_interval_and_profile_without_a_shared_spread_are_input_errors(tmp_path):
+    from fitting.errors import InputError
+    from fitting.report import fit_trials
+    with pytest.raises(InputError, match="--interval.*profile, studentized"):
+        fit_trials(None, interval="bootstrap-t")
+    with pytest.raises(InputError, match="--spread shared"):
+        fit_trials(None, interval="profile", spread="per_condition")
+
+
 def test_profile_with_one_spread_per_condition_is_refused_in_one_line(tmp_path):
     assert run_cli("simulate", PROTOCOLS / "pilot_short.toml", "--out", tmp_path).returncode == 0
     done = run_cli("fit", tmp_path, "--out", tmp_path / "out", "--interval", "profile", "--spread", "per_condition")
