@@ -231,6 +231,8 @@ def one_group(args) -> dict:
                 table = compare_results(fit_dir, Path(tmp) / f"pred_{who}.csv", Path(tmp) / "cmp",
                                         figures=False).table
                 row = table[(table["observer"] == who) & (table["lag"] == "all")].iloc[0]
+                if not np.isfinite(row["dof"]):   # compare leaves out an observer with a point lacking its CI
+                    continue
                 rejected[who] = (bool(row["chi2_p"] < 0.05), float(row["chi2"]), int(row["dof"]),
                                  float(row["gain_ci_low"]) <= 1.0 <= float(row["gain_ci_high"]))
             out["rejected"][boot] = rejected
@@ -387,7 +389,8 @@ def main() -> None:
                 for res in results:
                     for who in res["scores"][(boot, args.intervals[0])]:
                         label = "observers" if who != "group" else f"groups of {res['n_obs']}"
-                        rej[label].append(res["rejected"][boot][who])
+                        if who in res["rejected"][boot]:
+                            rej[label].append(res["rejected"][boot][who])
                 for method in args.intervals:
                     units = defaultdict(list)
                     for res in results:
