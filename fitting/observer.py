@@ -288,13 +288,9 @@ def analyse_observer(observer: str, trials: pd.DataFrame, opts: Options,
     # --- PSE table -----------------------------------------------------
     base = int(np.flatnonzero(conds["is_baseline"])[0]) if conds["is_baseline"].any() else None
     adapted = np.flatnonzero(~conds["is_baseline"].to_numpy()) if base is not None else np.zeros(0, int)
-    if boot is None and opts.interval != "profile":
-        lo = hi = np.full(C, np.nan)
-        shift_ci = None
-    else:
-        lo, hi, *shift_ci = pse_shift_intervals(opts.interval, fit, boot, base, adapted, opts.level)
-        if opts.interval in ("bca", "percentile"):
-            shift_ci = None      # computed with the curve statistics below, on the same replicates
+    lo, hi, *shift_ci = pse_shift_intervals(opts.interval, fit, boot, base, adapted, opts.level)
+    if opts.interval in ("bca", "percentile"):
+        shift_ci = None      # computed with the curve statistics below, on the same replicates
     few = fit.n_trials < MIN_TRIALS_FOR_INTERVAL
     lo, hi = np.where(few, np.nan, lo), np.where(few, np.nan, hi)
     cond_flags = psychometric_flags(fit, boot)
