@@ -29,7 +29,7 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--reps", type=int, default=50)
     ap.add_argument("--boot", type=int, default=1000)
-    ap.add_argument("--interval", default="bca", choices=["bca", "percentile"])
+    ap.add_argument("--interval", default="by-statistic", choices=["by-statistic", "bca", "percentile"])
     ap.add_argument("--trials-per-track", type=int, default=40)
     args = ap.parse_args()
     model = ObserverModel()

@@ -13,6 +13,11 @@ chunk it falls in.
 Intervals
 ---------
 * percentile: the replicate quantiles;
+* studentized, or bootstrap-t (Efron & Tibshirani 1993, ch. 12; Davison &
+  Hinkley 1997, §5.2): ``t* = (T* - T_gen) / se*`` with ``se*`` from each
+  replicate's own observed information, and limits ``T - t*_{1-a/2} se``,
+  ``T - t*_{a/2} se``; for PSEs and shifts (linear in the parameters), when
+  the bootstrap is run with ``studentize=True``;
 * BCa (Efron 1987): quantiles shifted by the bias correction ``z0`` (share of
   replicates below the estimate) and the acceleration ``a``.  For a
   multi-parameter model Efron obtains ``a`` from the *least favourable*
@@ -42,7 +47,7 @@ from scipy import special
 
 from .errors import InputError
 from .progress import ProgressBar
-from .psychometric import (PsychometricFit, _cell_terms, _derivatives, deviance_by_condition,
+from .psychometric import (PsychometricFit, _cell_terms, _covariance, _derivatives, deviance_by_condition,
                            probability_derivatives, solve_batch)
 
 INTERVALS = ("bca", "percentile")
@@ -65,6 +70,9 @@ class BootstrapResult:
     generating_theta : ndarray (P,)
         Parameters the replicate answers were drawn from (the estimate, or
         its bias-corrected version; see :func:`parametric_bootstrap_many`).
+    pse_covariance : ndarray (R, C, C) or None
+        Each replicate's own inverse observed information, PSE block (NaN
+        rows for PSEs on a bound); kept only with ``studentize=True``.
     """
 
     fit: PsychometricFit
@@ -73,6 +81,7 @@ class BootstrapResult:
     at_bound: np.ndarray
     deviance_by_condition: np.ndarray
     generating_theta: np.ndarray
+    pse_covariance: np.ndarray | None = None
 
     @property
     def n_boot(self) -> int:
@@ -180,6 +189,103 @@ class BootstrapResult:
         return bca_interval(estimate, reps, accel, level)
 
 
+    def studentized(self, contrasts, level: float = 0.95):
+        """Bootstrap-t limits of linear combinations of the PSEs.
+
+        Parameters
+        ----------
+        contrasts : array_like (C, S)
+            Column ``s`` holds the weights of statistic ``s`` on the PSEs
+            (a unit column for a PSE, ``e_j - e_base`` for a shift).
+        level : float
+
+        Returns
+        -------
+        (low, high) : ndarrays (S,)
+            NaN where the point fit gives the statistic no standard error.
+        """
+        if self.pse_covariance is None:
+            raise ValueError("studentized intervals need the bootstrap run with studentize=True")
+        w = np.asarray(contrasts, dtype=float)
+        fit = self.fit
+        pi = fit.layout.pse_index
+        estimate = fit.pse @ w
+        used = np.abs(w) > 0
+        # the point fit's error by the replicates' rule: only parameters on a bound are held
+        # (fit.covariance also drops separated conditions, whose PSE a shared spread still pins)
+        cov = _covariance(fit.theta, fit.cells, fit.layout, fit.sigmoid, fit.at_bound,
+                          [""] * len(fit.conditions))[np.ix_(pi, pi)]
+        # a PSE without an error (on a bound) leaves only the statistics that use it without one
+        var = np.einsum("cs,cd,ds->s", w, np.nan_to_num(cov, nan=0.0), w)
+        var[np.isnan(np.diagonal(cov)) @ used > 0] = np.nan
+        se = np.sqrt(np.where(var > 0, var, np.nan))
+        centre = self.generating_theta[pi] @ w
+        reps = self.pse @ w
+        rep_var = np.einsum("cs,rcd,ds->rs", w, np.nan_to_num(self.pse_covariance, nan=0.0), w)
+        missing = np.isnan(self.pse_covariance[:, np.arange(pi.size), np.arange(pi.size)]) @ used > 0
+        rep_se = np.where(missing | (rep_var <= 0), np.nan, np.sqrt(np.maximum(rep_var, 0.0)))
+        return studentized_interval(estimate, se, reps, rep_se, centre, level)
+
+
+def studentized_interval(estimate, se, replicates, replicate_se, centre=None, level: float = 0.95):
+    """Studentized (bootstrap-t) interval (Efron & Tibshirani 1993, ch. 12).
+
+    Parameters
+    ----------
+    estimate, se : array_like (S,)
+        The statistics and their standard errors at the point fit.
+    replicates, replicate_se : array_like (R, S)
+        The statistics and each replicate's own standard error.  A replicate
+        without a standard error (NaN: its estimate on a bound) counts as an
+        extreme ``t*`` on the side it fell.
+    centre : array_like (S,), optional
+        The statistics at the parameters the replicates were drawn from
+        (default: ``estimate``).
+    level : float
+
+    Returns
+    -------
+    (low, high) : ndarrays (S,)
+        ``estimate - t*_{(1+level)/2} se``, ``estimate - t*_{(1-level)/2} se``.
+    """
+    est = np.atleast_1d(np.asarray(estimate, dtype=float))
+    se = np.broadcast_to(np.asarray(se, dtype=float), est.shape)
+    reps = np.asarray(replicates, dtype=float).reshape(-1, est.size)
+    rse = np.asarray(replicate_se, dtype=float).reshape(reps.shape)
+    centre = est if centre is None else np.broadcast_to(np.asarray(centre, dtype=float), est.shape)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t = (reps - centre) / rse
+    t = np.where(np.isfinite(t), t, np.where(reps >= centre, np.inf, -np.inf))
+    alpha = (1.0 - level) / 2.0
+    srt = np.sort(t, axis=0)
+    cols = est.size
+    q = _column_quantiles(srt, np.full(cols, alpha)), _column_quantiles(srt, np.full(cols, 1.0 - alpha))
+    with np.errstate(invalid="ignore"):
+        low, high = est - q[1] * se, est - q[0] * se
+    bad = ~(np.isfinite(se) & (se > 0))
+    return np.where(bad, np.nan, low), np.where(bad, np.nan, high)
+
+
+def replicate_pse_covariance(theta, x, n, k, layout, sigmoid, at_bound) -> np.ndarray:
+    """Inverse observed information of each replicate, PSE block (B, C, C).
+
+    Parameters on a bound are held (their rows NaN), as in the point fit.
+    """
+    _, _, obs, _ = _derivatives(theta, x, n, k, layout, sigmoid, fisher=False)
+    held = np.asarray(at_bound, dtype=bool)
+    eye = np.eye(layout.n_params, dtype=bool)
+    keep = ~held[:, :, None] & ~held[:, None, :]
+    h = np.where(keep, obs, np.where(eye[None] & held[:, :, None], 1.0, 0.0))
+    with np.errstate(invalid="ignore"):
+        try:
+            cov = np.linalg.inv(h)
+        except np.linalg.LinAlgError:
+            cov = np.stack([np.linalg.pinv(m) for m in h])
+    cov = np.where(keep, cov, np.nan)
+    pi = layout.pse_index
+    return cov[:, pi[:, None], pi[None, :]]
+
+
 def _column_quantiles(sorted_reps: np.ndarray, q: np.ndarray) -> np.ndarray:
     """Linear-interpolation quantile ``q[s]`` of each sorted column ``s``."""
     r = sorted_reps.shape[0]
@@ -233,7 +339,8 @@ def bca_interval(estimate, replicates, acceleration, level: float = 0.95):
 
 def parametric_bootstrap(fit: PsychometricFit, n_boot: int, rng: np.random.Generator,
                          progress: bool | None = None, label: str = "bootstrap",
-                         chunk: int | None = None, bias_correct: bool = True) -> BootstrapResult:
+                         chunk: int | None = None, bias_correct: bool = True,
+                         studentize: bool = False) -> BootstrapResult:
     """Draw ``n_boot`` replicate data sets from ``fit`` and refit them all.
 
     Parameters
@@ -254,12 +361,16 @@ def parametric_bootstrap(fit: PsychometricFit, n_boot: int, rng: np.random.Gener
     bias_correct : bool
         Generate the replicates at bias-corrected spread and lapse (see
         :func:`parametric_bootstrap_many`).
+    studentize : bool
+        Keep each replicate's own PSE covariance, for
+        :meth:`BootstrapResult.studentized`.
 
     Returns
     -------
     BootstrapResult
     """
-    return parametric_bootstrap_many([fit], n_boot, rng, progress, label, chunk, bias_correct)[0]
+    return parametric_bootstrap_many([fit], n_boot, rng, progress, label, chunk, bias_correct,
+                                     studentize=studentize)[0]
 
 
 def _nuisance_mask(layout) -> np.ndarray:
@@ -273,7 +384,7 @@ def _nuisance_mask(layout) -> np.ndarray:
 def parametric_bootstrap_many(fits, n_boot: int, rng: np.random.Generator,
                               progress: bool | None = None, label: str = "bootstrap",
                               chunk: int | None = None, bias_correct: bool = True,
-                              pilot: int | None = None) -> list[BootstrapResult]:
+                              pilot: int | None = None, studentize: bool = False) -> list[BootstrapResult]:
     """Bootstrap several fits of the same shape in one batch.
 
     All fits must share the layout and the cell-array shape (for example,
@@ -306,10 +417,12 @@ def parametric_bootstrap_many(fits, n_boot: int, rng: np.random.Generator,
     n_pilot = (pilot if pilot is not None else max(100, n_boot // 10)) if bias_correct else 0
     with ProgressBar(len(fits) * (n_boot + n_pilot), label, show=progress) as bar:
         generate = generating_parameters(fits, n_pilot, rng, chunk, bar)
-        theta, converged, at_bound, dev = _replicates(fits, generate, n_boot, rng, chunk, bar)
+        theta, converged, at_bound, dev, cov = _replicates(fits, generate, n_boot, rng, chunk, bar,
+                                                           studentize)
     owner = np.repeat(np.arange(len(fits)), n_boot)
     return [BootstrapResult(f, theta[owner == i], converged[owner == i], at_bound[owner == i],
-                            dev[owner == i], generate[i]) for i, f in enumerate(fits)]
+                            dev[owner == i], generate[i], None if cov is None else cov[owner == i])
+            for i, f in enumerate(fits)]
 
 
 def generating_parameters(fits, n_pilot: int, rng, chunk: int, bar) -> np.ndarray:
@@ -328,8 +441,11 @@ def generating_parameters(fits, n_pilot: int, rng, chunk: int, bar) -> np.ndarra
     return np.clip(generate, np.stack([f.lower for f in fits]), np.stack([f.upper for f in fits]))
 
 
-def _replicates(fits, generate, n_boot, rng, chunk, bar):
-    """Draw answers at ``generate`` (one row per fit) and refit every replicate."""
+def _replicates(fits, generate, n_boot, rng, chunk, bar, studentize: bool = False):
+    """Draw answers at ``generate`` (one row per fit) and refit every replicate.
+
+    Returns ``(theta, converged, at_bound, deviance, pse_covariance or None)``.
+    """
     first = fits[0]
     layout, shape, sigmoid = first.layout, first.cells.x.shape, first.sigmoid
     m = len(fits)
@@ -346,6 +462,7 @@ def _replicates(fits, generate, n_boot, rng, chunk, bar):
     converged = np.empty(rows, dtype=bool)
     at_bound = np.empty((rows, layout.n_params), dtype=bool)
     dev = np.empty((rows, shape[0]))
+    cov = np.empty((rows, shape[0], shape[0])) if studentize else None
     one = m == 1
     for start in range(0, rows, chunk):
         sl = slice(start, min(start + chunk, rows))
@@ -356,8 +473,10 @@ def _replicates(fits, generate, n_boot, rng, chunk, bar):
         theta[sl], converged[sl], at_bound[sl] = sol.theta, sol.converged, sol.at_bound
         p_star = _cell_terms(sol.theta, xs, layout, sigmoid)[0]
         dev[sl] = deviance_by_condition(p_star, ns, draws[sl])
+        if studentize:
+            cov[sl] = replicate_pse_covariance(sol.theta, xs, ns, draws[sl], layout, sigmoid, sol.at_bound)
         bar.advance(sl.stop - sl.start)
-    return theta, converged, at_bound, dev
+    return theta, converged, at_bound, dev, cov
 
 
 #: Bytes kept per replicate and condition until the tables are written (measured: about 175 B with

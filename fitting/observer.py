@@ -10,10 +10,17 @@
    the *same* replicates, so the baseline's uncertainty enters every shift;
 4. per lag, the DoG tuning fit; across lags, the joint decay fit
    (:mod:`fitting.aftereffect`), again on every replicate;
-5. intervals (BCa by default, percentile on request) for all of them.  BCa
-   needs each statistic's gradient in the fit parameters: exact for PSEs and
-   shifts, by central differences for the curve parameters (the curve fits
-   are run on the probes in the same batch as the replicates).
+5. intervals for all of them.  The default, ``"by-statistic"``, gives each
+   kind of number the bootstrap interval that held its level best in the
+   coverage benchmark (``benchmarks/bench_coverage.py``, benchmarks/README.md):
+   percentile limits for PSEs, shifts and peak offsets, BCa limits (Efron
+   1987) for tuning amplitudes and the decay.  ``"bca"`` or ``"percentile"``
+   use one kind for everything.  BCa needs each statistic's gradient in the
+   fit parameters: exact for PSEs and shifts, by central differences for the
+   curve parameters (the curve fits are run on the probes in the same batch as
+   the replicates).  On request the PSEs and shifts get profile-likelihood
+   (:mod:`fitting.profile`) or studentized bootstrap intervals instead; the
+   tuning and decay intervals stay BCa (see :func:`pse_shift_intervals`).
 """
 
 from __future__ import annotations
@@ -27,6 +34,7 @@ from scipy import special
 
 from .aftereffect import TAU_BOUNDS, bound_note, fit_decay, fit_tuning, peak_bounds
 from .bootstrap import BootstrapResult, parametric_bootstrap
+from .profile import profile_pse, profile_shifts
 from .flags import MIN_TRIALS_FOR_INTERVAL, condense, join, on_bound, psychometric_flags
 from .replay import replay_bootstrap
 from .psychometric import DEFAULT_LAPSE_MAX, Cells, PsychometricFit, fit_cells
@@ -53,7 +61,9 @@ class Options:
     lapse : "free" or float
     spread : {"shared", "per_condition"}
     sigmoid : {"gaussian", "logistic"}
-    interval : {"bca", "percentile"}
+    interval : {"by-statistic", "bca", "percentile", "profile", "studentized"}
+        Interval of the PSEs and shifts (tuning and decay: BCa unless
+        "percentile"); see :func:`pse_shift_intervals`.
     level : float
         Confidence level of every interval.
     lapse_max : float
@@ -69,7 +79,7 @@ class Options:
     lapse: object = "free"
     spread: str = "shared"
     sigmoid: str = "gaussian"
-    interval: str = "bca"
+    interval: str = "by-statistic"
     level: float = 0.95
     lapse_max: float = DEFAULT_LAPSE_MAX
     progress: bool | None = None
@@ -123,11 +133,81 @@ def _period(trials: pd.DataFrame, notes: list) -> float:
     return float(values[0])
 
 
-def _intervals(boot, opts, estimate, reps, gradient):
+#: The default interval rule: percentile limits for PSEs, shifts and peak offsets, BCa for tuning
+#: amplitudes and the decay (each kind as measured best by benchmarks/bench_coverage.py).
+BY_STATISTIC = "by-statistic"
+INTERVAL_METHODS = (BY_STATISTIC, "bca", "percentile", "profile", "studentized")
+
+
+def _intervals(boot, opts, estimate, reps, gradient, percentile_kind=None):
+    """Bootstrap limits of every column of ``reps``.
+
+    ``percentile_kind`` (bool per column) marks the columns that get
+    percentile limits under the ``"by-statistic"`` rule; the others get BCa.
+    """
     if boot is None:
         nan = np.full(np.size(estimate), np.nan)
         return nan, nan.copy()
-    return boot.interval(estimate, reps, gradient, opts.interval, opts.level)
+    if opts.interval == "percentile":
+        return boot.interval(estimate, reps, gradient, "percentile", opts.level)
+    lo, hi = boot.interval(estimate, reps, gradient, "bca", opts.level)
+    if opts.interval == BY_STATISTIC and percentile_kind is not None and np.any(percentile_kind):
+        cols = np.flatnonzero(percentile_kind)
+        plo, phi = boot.interval(np.asarray(estimate)[cols], reps[:, cols], None, "percentile", opts.level)
+        lo[cols], hi[cols] = plo, phi
+    return lo, hi
+
+
+def _pse_method(interval: str) -> str:
+    """The interval kind of PSEs and shifts under the option ``interval``."""
+    return "percentile" if interval == BY_STATISTIC else interval
+
+
+def pse_shift_intervals(method: str, fit: PsychometricFit, boot: BootstrapResult | None, base: int | None,
+                        adapted, level: float = 0.95):
+    """Limits of every condition PSE and of every shift ``PSE[j] - PSE[base]``, ``j`` in ``adapted``.
+
+    Parameters
+    ----------
+    method : {"bca", "percentile", "profile", "studentized"}
+        ``"profile"``: likelihood-ratio intervals, the joint fit re-maximised
+        at every trial value (:mod:`fitting.profile`; no bootstrap needed);
+        ``"studentized"``: bootstrap-t with each replicate's own standard
+        error (``boot`` run with ``studentize=True``); the others: the
+        bootstrap quantiles.
+    fit, boot
+        The point fit and its bootstrap (None: NaN limits unless profile).
+    base : int or None
+        Index of the baseline condition (None: no shifts).
+    adapted : sequence of int
+        Conditions whose shift from the baseline is wanted.
+    level : float
+
+    Returns
+    -------
+    (pse_low, pse_high, shift_low, shift_high) : ndarrays (C,), (C,), (S,), (S,)
+    """
+    adapted = np.asarray(adapted, dtype=int)
+    C = len(fit.conditions)
+    w = np.eye(C)
+    if base is not None and adapted.size:
+        w = np.hstack([w, np.eye(C)[:, adapted] - np.eye(C)[:, [base]]])
+    if method == "profile":
+        p = profile_pse(fit, level)
+        lo, hi = p.low, p.high
+        if w.shape[1] > C:
+            s = profile_shifts(fit, base, adapted, level)
+            lo, hi = np.concatenate([lo, s.low]), np.concatenate([hi, s.high])
+    elif boot is None:
+        lo = hi = np.full(w.shape[1], np.nan)
+    elif method == "studentized":
+        lo, hi = boot.studentized(w, level)
+    else:
+        lay = fit.layout
+        grad = np.zeros((lay.n_params, w.shape[1]))
+        grad[lay.pse_index] = w
+        lo, hi = boot.interval(fit.pse @ w, boot.pse @ w, grad, method, level)
+    return lo[:C], hi[:C], lo[C:], hi[C:]
 
 
 class _CurveModel:
@@ -219,19 +299,21 @@ def analyse_observer(observer: str, trials: pd.DataFrame, opts: Options,
             plan = [[(str(t), int(m)) for t, m in trials[trials["condition"] == name]
                      .groupby("track", sort=True).size().items()] for name in names]
             boot = replay_bootstrap(fit, plan, factory, opts.n_boot, rng, opts.progress,
-                                    f"bootstrap {observer} (tracks re-run)")
+                                    f"bootstrap {observer} (tracks re-run)",
+                                    studentize=opts.interval == "studentized")
         else:
-            boot = parametric_bootstrap(fit, opts.n_boot, rng, opts.progress, f"bootstrap {observer}")
+            boot = parametric_bootstrap(fit, opts.n_boot, rng, opts.progress, f"bootstrap {observer}",
+                                        studentize=opts.interval == "studentized")
         bad = 1.0 - boot.converged.mean()
         if bad > 0:
             notes.append(f"{100 * bad:.1f}% of bootstrap refits stopped before converging")
-    lay = fit.layout
-    P = lay.n_params
     C = len(names)
     # --- PSE table -----------------------------------------------------
-    grad_pse = np.zeros((P, C))
-    grad_pse[lay.pse_index, np.arange(C)] = 1.0
-    lo, hi = _intervals(boot, opts, fit.pse, None if boot is None else boot.pse, grad_pse)
+    base = int(np.flatnonzero(conds["is_baseline"])[0]) if conds["is_baseline"].any() else None
+    adapted = np.flatnonzero(~conds["is_baseline"].to_numpy()) if base is not None else np.zeros(0, int)
+    lo, hi, *shift_ci = pse_shift_intervals(_pse_method(opts.interval), fit, boot, base, adapted, opts.level)
+    if _pse_method(opts.interval) in ("bca", "percentile"):
+        shift_ci = None      # computed with the curve statistics below, on the same replicates
     few = fit.n_trials < MIN_TRIALS_FOR_INTERVAL
     lo, hi = np.where(few, np.nan, lo), np.where(few, np.nan, hi)
     cond_flags = psychometric_flags(fit, boot)
@@ -258,7 +340,7 @@ def analyse_observer(observer: str, trials: pd.DataFrame, opts: Options,
         return analysis
     if conds["is_baseline"].all():
         return analysis
-    _curves(analysis, opts)
+    _curves(analysis, opts, shift_ci)
     return analysis
 
 
@@ -306,7 +388,7 @@ def _model_test(observer, fit, alt, boot, opts) -> pd.DataFrame:
     return pd.DataFrame([row])
 
 
-def _curves(a: ObserverAnalysis, opts: Options) -> None:
+def _curves(a: ObserverAnalysis, opts: Options, shift_ci=None) -> None:
     fit, boot, conds, notes = a.fit, a.boot, a.conditions, a.notes
     model = _CurveModel(conds, fit, notes)
     lay = fit.layout
@@ -321,8 +403,14 @@ def _curves(a: ObserverAnalysis, opts: Options) -> None:
     grad = np.zeros((lay.n_params, stats.shape[1]))
     grad[lay.pse_index] = (stats[1:1 + C] - stats[1 + C:1 + 2 * C]) / (2 * _FD_STEP)
     reps = stats[1 + 2 * C:] if boot is not None else None
-    lo, hi = _intervals(boot, opts, est, reps, grad)
     m = model.cond_index.size
+    # by-statistic: percentile for the shifts and each lag's peak offset (the column after its amplitude)
+    percentile_kind = np.zeros(stats.shape[1], dtype=bool)
+    percentile_kind[:m] = True
+    percentile_kind[m + 1:m + 2 * len(model.tuning_lags):2] = True
+    lo, hi = _intervals(boot, opts, est, reps, grad, percentile_kind)
+    if shift_ci is not None:     # the PSE-table method, shifts in the same order (condition index)
+        lo[:m], hi[:m] = shift_ci
     adapted = conds.iloc[model.cond_index]
     cond_flags = a.pse["flags"].to_numpy()
     shift_flags = [join(cond_flags[c], cond_flags[model.base]) for c in model.cond_index]

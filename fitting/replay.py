@@ -27,7 +27,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .bootstrap import BootstrapResult, generating_parameters
+from .bootstrap import BootstrapResult, generating_parameters, replicate_pse_covariance
 from .progress import ProgressBar
 from .psychometric import PsychometricFit, _cell_terms, deviance_by_condition, probability_cw, solve_batch
 
@@ -43,7 +43,7 @@ def _pool(levels: np.ndarray, answers: np.ndarray):
 
 def replay_bootstrap(fit: PsychometricFit, plan, factory, n_boot: int, rng: np.random.Generator,
                      progress: bool | None = None, label: str = "bootstrap (tracks re-run)",
-                     pilot: int = 100) -> BootstrapResult:
+                     pilot: int = 100, studentize: bool = False) -> BootstrapResult:
     """Bootstrap ``fit`` by re-running its adaptive tracks ``n_boot`` times.
 
     Parameters
@@ -59,6 +59,8 @@ def replay_bootstrap(fit: PsychometricFit, plan, factory, n_boot: int, rng: np.r
     label : str
     pilot : int
         Fixed-level pilot replicates for the generating parameters (0: none).
+    studentize : bool
+        Keep each replicate's own PSE covariance (for bootstrap-t intervals).
 
     Returns
     -------
@@ -99,4 +101,6 @@ def replay_bootstrap(fit: PsychometricFit, plan, factory, n_boot: int, rng: np.r
     sol = solve_batch(generate[None], x, n, k, layout, fit.lower, fit.upper, sigmoid)
     p_star = _cell_terms(sol.theta, x, layout, sigmoid)[0]
     dev = deviance_by_condition(p_star, n, k)
-    return BootstrapResult(fit, sol.theta, sol.converged, sol.at_bound, dev, generate)
+    cov = (replicate_pse_covariance(sol.theta, x, n, k, layout, sigmoid, sol.at_bound)
+           if studentize else None)
+    return BootstrapResult(fit, sol.theta, sol.converged, sol.at_bound, dev, generate, cov)

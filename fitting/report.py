@@ -51,7 +51,7 @@ from .errors import InputError
 from .covariance import COVARIANCE_COLUMNS, group_covariance, observer_covariance
 from .flags import flagged_first, join, psychometric_flags
 from .group import GROUP, group_aftereffect, group_curves, group_pse, group_weights, mixed_model
-from .observer import (AFTEREFFECT_COLUMNS, DECAY_COLUMNS, PSE_COLUMNS, TUNING_COLUMNS,
+from .observer import (BY_STATISTIC, INTERVAL_METHODS, AFTEREFFECT_COLUMNS, DECAY_COLUMNS, PSE_COLUMNS, TUNING_COLUMNS,
                        ObserverAnalysis, Options, analyse_observer, condition_table)
 from .page import PAGE, write_page
 from .progress import phase
@@ -111,9 +111,7 @@ class FitReport:
                      f"{int(ex['missed_excluded'].sum())} missed answers)")
         lapse = (f"lapse free in [0, {o.lapse_max:g}]" if o.lapse == "free"
                  else f"lapse fixed at {float(o.lapse):g}")
-        ci = (f"{100 * o.level:g}% {'BCa' if o.interval == 'bca' else 'percentile'} intervals from "
-              f"{o.n_boot} parametric bootstrap replicates (seed {self.seed})" if o.n_boot
-              else "no bootstrap: no intervals")
+        ci = _interval_words(o, self.seed)
         lines.append(f"{o.sigmoid} psychometric function, {lapse}, "
                      f"{'shared' if o.spread == 'shared' else 'per-condition'} spread; {ci}")
         lines += self._flagged()
@@ -211,6 +209,23 @@ def _shift_grid(shifts: pd.DataFrame) -> list[str]:
 # argument checks
 # --------------------------------------------------------------------------
 
+def _interval_words(o: Options, seed: int) -> str:
+    """The summary's words for the kind of interval in the tables."""
+    level = f"{100 * o.level:g}%"
+    boot = f"{o.n_boot} parametric bootstrap replicates (seed {seed})"
+    if o.interval in ("profile", "studentized"):
+        first = ("profile-likelihood" if o.interval == "profile" else "studentized bootstrap") + \
+            " intervals of PSEs and shifts"
+        rest = f"BCa intervals of tuning and decay from {boot}" if o.n_boot else "no tuning or decay intervals"
+        return f"{level} {first}; {rest}"
+    if not o.n_boot:
+        return "no bootstrap: no intervals"
+    if o.interval == BY_STATISTIC:
+        return (f"{level} intervals from {boot}: percentile for PSEs, shifts and peak offsets, "
+                "BCa for tuning amplitudes and decay")
+    return f"{level} {'BCa' if o.interval == 'bca' else 'percentile'} intervals from {boot}"
+
+
 def _check_options(n_boot, seed, lapse, spread, sigmoid, interval, level, lapse_max, progress) -> Options:
     if isinstance(n_boot, bool) or not isinstance(n_boot, numbers.Integral) or n_boot < 0:
         raise InputError("argument", "--bootstrap", f"replicates must be a whole number >= 0, not {n_boot!r}")
@@ -233,8 +248,10 @@ def _check_options(n_boot, seed, lapse, spread, sigmoid, interval, level, lapse_
         raise InputError("argument", "--spread", f"'shared' or 'per-condition', not {spread!r}")
     if sigmoid not in SIGMOIDS:
         raise InputError("argument", "--function", f"one of {', '.join(SIGMOIDS)}, not {sigmoid!r}")
-    if interval not in ("bca", "percentile"):
-        raise InputError("argument", "--interval", f"'bca' or 'percentile', not {interval!r}")
+    if interval not in INTERVAL_METHODS:
+        raise InputError("argument", "--interval", f"one of {', '.join(INTERVAL_METHODS)}, not {interval!r}")
+    if interval == "profile" and spread != "shared":
+        raise InputError("argument", "--interval", "profile intervals of PSE shifts need --spread shared")
     if not (isinstance(level, numbers.Real) and 0.5 <= level < 1.0):
         raise InputError("argument", "--level", f"a confidence level in [0.5, 1), not {level!r}")
     show = None if progress is True else (True if progress == "always" else False)
@@ -257,7 +274,7 @@ def _analyse_task(task) -> ObserverAnalysis:
 
 def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="free",
                spread: str = "shared", progress=True, *, sigmoid: str = "gaussian",
-               interval: str = "bca", level: float = 0.95,
+               interval: str = BY_STATISTIC, level: float = 0.95,
                lapse_max: float = DEFAULT_LAPSE_MAX, map_tasks=None, tracks: dict | None = None) -> FitReport:
     """Fit checked trials (from :func:`read_logs`) without writing anything.
 
@@ -332,7 +349,7 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
              spread: str = "shared", include_bad_timing: bool = False, progress=True,
              figures: bool = True, *, include_practice: bool = False, sigmoid: str = "gaussian",
              figure_formats=("png",),
-             interval: str = "bca", level: float = 0.95,
+             interval: str = BY_STATISTIC, level: float = 0.95,
              lapse_max: float = DEFAULT_LAPSE_MAX, plan=None, map_tasks=None,
              tracks: dict | None = None) -> FitReport:
     """Read trial logs, fit every observer (and the group), write tables, figures and ``report.html``.
@@ -368,8 +385,8 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
         Keep practice trials.
     sigmoid : {"gaussian", "logistic"}
         Shape ``F`` of the psychometric function.
-    interval : {"bca", "percentile"}
-        Kind of bootstrap interval in the tables.
+    interval : {"by-statistic", "bca", "percentile", "profile", "studentized"}
+        Kind of interval in the tables (see :mod:`fitting.observer`).
     level : float
         Confidence level.
     lapse_max : float

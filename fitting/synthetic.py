@@ -159,7 +159,7 @@ def write_log(trials: pd.DataFrame, path) -> None:
 
 def recovery_study(seeds, model: ObserverModel = ObserverModel(), n_boot: int = 300,
                    offsets=(-60, -30, -15, 15, 30, 60), lags=(0, 1, 2),
-                   trials_per_track: int = 40, interval: str = "bca") -> pd.DataFrame:
+                   trials_per_track: int = 40, interval: str = "by-statistic") -> pd.DataFrame:
     """Simulate one observer per seed, fit, and check each interval against the truth.
 
     Returns one row per seed with the estimates and intervals of the lag-0

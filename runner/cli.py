@@ -235,7 +235,7 @@ def cmd_fit(args) -> int:
     if args.pdf and not streams:
         common["figure_formats"] = ("png", "pdf")
     if args.interval:
-        allowed = ("bc", "percentile") if streams else ("bca", "percentile")
+        allowed = ("bc", "percentile") if streams else ("by-statistic", "bca", "percentile", "profile", "studentized")
         if args.interval not in allowed:
             raise InputError("argument", "--interval", f"expected one of {', '.join(allowed)} for these logs")
         common["interval"] = args.interval
@@ -426,9 +426,11 @@ def build_parser() -> argparse.ArgumentParser:
                    help="one spread per observer or one per condition, with a likelihood-ratio test (default shared)")
     p.add_argument("--function", choices=["gaussian", "logistic"], default="gaussian",
                    help="psychometric function: cumulative Gaussian or logistic (default gaussian)")
-    p.add_argument("--interval", choices=["bca", "bc", "percentile"],
-                   help="bootstrap interval: BCa (Efron 1987; adapt-test default), bias-corrected (stream default) "
-                        "or percentile")
+    p.add_argument("--interval", choices=["by-statistic", "bca", "bc", "percentile", "profile", "studentized"],
+                   help="interval: by-statistic (adapt-test default: percentile for PSEs, shifts and peak "
+                        "offsets, BCa for amplitudes and decay, as measured best), BCa (Efron 1987), "
+                        "bias-corrected (stream default), profile likelihood or studentized bootstrap (PSEs "
+                        "and shifts of adapt-test logs), or percentile")
     p.add_argument("--level", type=float, default=0.95, help="confidence level (default 0.95)")
     p.add_argument("--lapse-max", type=float, default=0.1, help="upper bound of a free lapse rate (default 0.1)")
     p.add_argument("--include-bad-timing", action="store_true", help="keep trials with timing_ok = false")
