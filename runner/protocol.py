@@ -273,7 +273,8 @@ class ProcedureSettings(_Section):
     ----------
     method : {"updown", "weighted", "bayesian", "constant"}
         Levitt's transformed up–down, Kaernbach's weighted up–down, the
-        Bayesian entropy method (Kontsevich & Tyler, 1999), or constant stimuli.
+        Bayesian method (a posterior over PSE, spread and lapse, Kontsevich &
+        Tyler, 1999; see ``bayes_placement``), or constant stimuli.
     start_offset_deg : float
         ``updown``, ``weighted``: tracks start this far from the reference,
         one track on each side.  Refused with ``bayesian`` (the prior,
