@@ -292,9 +292,10 @@ class ProcedureSettings(_Section):
         at; the second aims at ``1 - target_cw``.
 
     The defaults (start ±2°, steps 4, 2, 1, 0.5°, k 1, target 55 %, the
-    Bayesian grid below) keep the trials near the PSE: at 80 trials per
-    condition and PSEs within ±5° they reach about 0.85–0.9 of the
-    Cramér–Rao bound on the PSE, and they still reach a PSE 15° away
+    Bayesian grid below and placement at the posterior mean) keep the
+    trials near the PSE: at 80 trials per condition and PSEs within ±5°
+    they reach about 0.8–0.9 of the Cramér–Rao bound on the PSE, and they
+    still reach a PSE 15° away
     (``benchmarks/bench_default_tracks.py``).  They trade away spread
     precision; for the spread use ``k_down = 2`` or ``bayes_placement =
     "entropy"`` with ``bayes_target = "pse_spread"``.
