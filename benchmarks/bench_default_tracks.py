@@ -4,12 +4,13 @@ Run from the repository root::
 
     python benchmarks/bench_default_tracks.py               # 1,500 runs per cell (Bayesian: 300)
     python benchmarks/bench_default_tracks.py --runs 300    # quicker
+    python benchmarks/bench_default_tracks.py --quick --spread 6   # another observer
 
 Every row is one ``[procedure]`` setting, built into tracks exactly as a
 session builds them (:func:`runner.tracks.procedure_track`): a pair of tracks
 of 40 trials each (80 trials per condition; the Bayesian method: two
 independent tracks as well), taking turns.  The simulated observer answers
-with P(cw | x) = λ/2 + (1 − λ)·Φ((x − μ)/σ), σ = 3°, with
+with P(cw | x) = λ/2 + (1 − λ)·Φ((x − μ)/σ), σ = 3° (``--spread``), with
 
 * μ uniform in [−5°, 5°] (issue 14: "true PSEs anywhere in ±5°"), λ = 0 and
   4 %: PSE efficiency = Cramér–Rao bound² / RMSE² of a maximum-likelihood
@@ -18,6 +19,9 @@ with P(cw | x) = λ/2 + (1 − λ)·Φ((x − μ)/σ), σ = 3°, with
   ± its Monte Carlo standard error, and the RMSE of the spread relative to σ;
 * μ = 15° (λ = 4 %): the tracks must still reach the PSE; its RMSE and
   efficiency are shown.
+
+Every row sees the same true PSEs and the same random numbers (common random
+numbers), so differences between rows are less noisy than each row's ± says.
 
 Target (issue 14): the defaults of ``updown``, ``weighted`` and ``bayesian``
 reach PSE efficiency ≥ 0.85 in both λ rows.
@@ -52,6 +56,7 @@ CANDIDATES = [
     ("default updown", dict(method="updown")),
     ("default weighted", dict(method="weighted")),
     ("default bayesian", dict(method="bayesian")),
+    ("bayesian, earlier default (entropy placement)", dict(method="bayesian", bayes_placement="entropy")),
     ("updown, earlier defaults (±20°, 8-4-2-1°, 2-down)", OLD_UPDOWN),
     ("updown 2-down, ±3°, 4-2-1°", dict(method="updown", start_offset_deg=3.0, steps_deg=[4.0, 2.0, 1.0], k_down=2)),
     ("weighted, earlier defaults (±20°, 8-4-2-1°, 75 %)", OLD_WEIGHTED),
@@ -60,7 +65,7 @@ CANDIDATES = [
 ]
 
 
-def simulate(settings: dict, mus, lapse: float, seeds) -> tuple[np.ndarray, np.ndarray]:
+def simulate(settings: dict, mus, lapse: float, seeds, spread: float = SPREAD) -> tuple[np.ndarray, np.ndarray]:
     """Levels and answers (R, N) of one pair of tracks per run."""
     proc = ProcedureSettings(**settings)
     levels, answers = [], []
@@ -71,7 +76,7 @@ def simulate(settings: dict, mus, lapse: float, seeds) -> tuple[np.ndarray, np.n
         for i in range(N_TRIALS):
             track = tracks[i % 2]
             x = track.next_level()
-            r = int(rng.random() < lapse / 2 + (1 - lapse) * ndtr((x - mu) / SPREAD))
+            r = int(rng.random() < lapse / 2 + (1 - lapse) * ndtr((x - mu) / spread))
             track.update(x, r)
             lv.append(x)
             an.append(r)
@@ -84,40 +89,41 @@ def _chunk(args):
     return simulate(*args)
 
 
-def cell(pool, settings: dict, lapse: float, runs: int, seed, far: bool, jobs: int) -> dict:
+def cell(pool, settings: dict, lapse: float, runs: int, seed, far: bool, jobs: int, spread: float = SPREAD) -> dict:
     """Efficiency, spread RMSE and flags of one setting at one lapse rate."""
     rng = np.random.default_rng(seed)
     mus = np.full(runs, FAR_PSE) if far else rng.uniform(-5.0, 5.0, runs)
     seeds = [[*seed, i] for i in range(runs)]
-    parts = [(settings, mus[j::jobs], lapse, seeds[j::jobs]) for j in range(jobs)]
+    parts = [(settings, mus[j::jobs], lapse, seeds[j::jobs], spread) for j in range(jobs)]
     done = list(pool.map(_chunk, parts))
     order = np.concatenate([np.arange(runs)[j::jobs] for j in range(jobs)])
     levels = np.concatenate([d[0] for d in done])
     answers = np.concatenate([d[1] for d in done])
-    pse, spread, flagged = fit_runs(levels, answers, lapse)
+    pse, sd, flagged = fit_runs(levels, answers, lapse)
     err = pse - mus[order]
     sq = err ** 2
     mse = float(sq.mean())
-    bound = pse_bound(N_TRIALS, SPREAD, lapse)
+    bound = pse_bound(N_TRIALS, spread, lapse)
     eff = bound ** 2 / mse
     return {"rmse": math.sqrt(mse), "eff": eff, "eff_se": eff * float(sq.std()) / (mse * math.sqrt(runs)),
-            "sd_rel": float(np.sqrt(np.mean((spread - SPREAD) ** 2))) / SPREAD, "flagged": float(flagged.mean())}
+            "sd_rel": float(np.sqrt(np.mean((sd - spread) ** 2))) / spread, "flagged": float(flagged.mean())}
 
 
-def efficiency_table(runs: int = 1500, seed: int = 1, quick: bool = False, jobs: int | None = None) -> list[str]:
-    """The table as Markdown lines (``quick``: the three defaults only, Bayesian with runs // 3)."""
+def efficiency_table(runs: int = 1500, seed: int = 1, quick: bool = False, jobs: int | None = None,
+                     spread: float = SPREAD) -> list[str]:
+    """The table as Markdown lines (``quick``: the defaults and the earlier Bayesian one; Bayesian with runs // 3)."""
     jobs = jobs or len(os.sched_getaffinity(0))
-    lines = [f"# default tracks at {N_TRIALS} trials: sigma = {SPREAD:g} deg, true PSE uniform in [-5, 5] deg "
+    lines = [f"# default tracks at {N_TRIALS} trials: sigma = {spread:g} deg, true PSE uniform in [-5, 5] deg "
              f"({runs} runs per cell, Bayesian {max(runs // 3, 20)}); far: PSE = {FAR_PSE:g} deg, lapse 4 %",
              "| setting | PSE eff. λ = 0 | PSE eff. λ = 4 % | spread RMSE/σ λ = 0 | spread RMSE/σ λ = 4 % "
              "| far PSE: RMSE (deg) | far PSE: eff. | ≥ 0.85 in both |",
              "|---|---|---|---|---|---|---|---|"]
-    rows = CANDIDATES[:3] if quick else CANDIDATES
+    rows = CANDIDATES[:4] if quick else CANDIDATES
     with ProcessPoolExecutor(jobs) as pool:
-        for k, (label, settings) in enumerate(rows):
+        for label, settings in rows:
             n = max(runs // 3, 20) if settings["method"] == "bayesian" else runs
-            near = [cell(pool, settings, lam, n, [seed, k, i], False, jobs) for i, lam in enumerate((0.0, 0.04))]
-            far = cell(pool, settings, 0.04, n, [seed, k, 2], True, jobs)
+            near = [cell(pool, settings, lam, n, [seed, i], False, jobs, spread) for i, lam in enumerate((0.0, 0.04))]
+            far = cell(pool, settings, 0.04, n, [seed, 2], True, jobs, spread)
             met = all(c["eff"] >= 0.85 for c in near)
             lines.append(f"| {label} | {near[0]['eff']:.2f} ± {near[0]['eff_se']:.2f} | "
                          f"{near[1]['eff']:.2f} ± {near[1]['eff_se']:.2f} | {near[0]['sd_rel']:.2f} | "
@@ -130,12 +136,13 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--runs", type=int, default=1500)
     ap.add_argument("--seed", type=int, default=1)
-    ap.add_argument("--quick", action="store_true", help="the three defaults only")
+    ap.add_argument("--quick", action="store_true", help="the defaults and the earlier Bayesian default only")
+    ap.add_argument("--spread", type=float, default=SPREAD, help="the simulated observer's spread σ (deg)")
     args = ap.parse_args()
     defaults = ProcedureSettings()
     print(f"# defaults: start ±{defaults.start_offset_deg:g} deg, steps {defaults.steps_deg}, "
-          f"k_down {defaults.k_down}, target_cw {defaults.target_cw:g}, Bayesian target {defaults.bayes_target}")
-    for line in efficiency_table(args.runs, args.seed, args.quick):
+          f"k_down {defaults.k_down}, target_cw {defaults.target_cw:g}, Bayesian placement {defaults.bayes_placement}")
+    for line in efficiency_table(args.runs, args.seed, args.quick, spread=args.spread):
         print(line, flush=True)
 
 

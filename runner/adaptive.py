@@ -7,10 +7,12 @@ class                   ``kind``  method
 ======================  ========  ==============================================
 :class:`UpDownTrack`    updown    Levitt's transformed up–down (Levitt, 1971)
 :class:`WeightedTrack`  weighted  Kaernbach's weighted up–down (Kaernbach, 1991)
-:class:`EntropyTrack`   bayesian  minimum expected posterior entropy over
-                                  (PSE, spread, lapse) (Kontsevich & Tyler,
-                                  1999), nuisance parameters summed out
-                                  (Prins, 2013)
+:class:`EntropyTrack`   bayesian  posterior over (PSE, spread, lapse)
+                                  (Kontsevich & Tyler, 1999); next level of
+                                  least expected entropy, nuisance parameters
+                                  summed out (Prins, 2013), or at the
+                                  posterior mean of the PSE (King-Smith et
+                                  al., 1994)
 :class:`ConstantLevels` constant  method of constant stimuli
 ======================  ========  ==============================================
 
@@ -53,6 +55,8 @@ __all__ = [
 ]
 
 STATE_VERSION = 1
+
+PLACEMENTS = ("entropy", "pse_mean")  # level choices of EntropyTrack
 
 
 # ---------------------------------------------------------------- checks
@@ -564,15 +568,23 @@ class PosteriorMean(NamedTuple):
 
 
 class EntropyTrack:
-    """Bayesian adaptive track minimising expected posterior entropy.
+    """Bayesian adaptive track over a grid of PSE, spread and lapse.
 
-    The method of Kontsevich & Tyler (1999) over a grid of PSE μ, spread σ
-    and lapse λ, with the parameters that are not the target summed out
-    before the entropy is taken (Prins, 2013). The model is the README's
-    psychometric function P(cw | x) = λ/2 + (1 − λ)·Φ((x − μ)/σ); the prior
-    is uniform over the grid (see :class:`EntropyGrid`). Each trial the
-    track proposes the level of the grid's level list whose expected
-    posterior entropy is least (the lowest such level on a tie).
+    The posterior of Kontsevich & Tyler (1999) over a grid of PSE μ, spread
+    σ and lapse λ. The model is the README's psychometric function
+    P(cw | x) = λ/2 + (1 − λ)·Φ((x − μ)/σ); the prior is uniform over the
+    grid (see :class:`EntropyGrid`). Each trial the track proposes a level
+    of the grid's level list, chosen by ``placement``:
+
+    * ``"entropy"``: the level whose expected posterior entropy of the
+      target is least (Kontsevich & Tyler, 1999), with the parameters that
+      are not the target summed out before the entropy is taken (Prins,
+      2013); the lowest such level on a tie;
+    * ``"pse_mean"``: the level nearest the posterior mean of the PSE (the
+      mean of the posterior as both placement and estimate, King-Smith,
+      Grigsby, Vingrys, Benes & Supowit, 1994); the lower level on a tie.
+      Trials stay at the current PSE estimate, which is what the PSE needs;
+      the spread is learnt only from the scatter of that estimate.
 
     Parameters
     ----------
@@ -581,8 +593,11 @@ class EntropyTrack:
     target : {"pse", "pse_spread"}, default "pse"
         "pse": entropy of the μ marginal (σ and λ are nuisance parameters);
         "pse_spread": entropy of the joint (μ, σ) marginal (λ is nuisance).
+        Used by ``placement="entropy"`` only.
     grid : EntropyGrid, optional
         Parameter and level grid; default :class:`EntropyGrid()`.
+    placement : {"entropy", "pse_mean"}, default "entropy"
+        How the next level is chosen (see above).
 
     Notes
     -----
@@ -597,11 +612,15 @@ class EntropyTrack:
 
     kind = "bayesian"
 
-    def __init__(self, *, max_trials: int, target: str = "pse", grid: EntropyGrid | None = None):
+    def __init__(self, *, max_trials: int, target: str = "pse", grid: EntropyGrid | None = None,
+                 placement: str = "entropy"):
         self._max_trials = _whole("max_trials", max_trials, 1)
         if target not in ("pse", "pse_spread"):
             raise ValueError(f"target: expected 'pse' or 'pse_spread', got {target!r}")
         self._target = target
+        if placement not in PLACEMENTS:
+            raise ValueError(f"placement: expected one of {list(PLACEMENTS)}, got {placement!r}")
+        self._placement = placement
         if grid is None:
             grid = EntropyGrid()
         if not isinstance(grid, EntropyGrid):
@@ -634,6 +653,11 @@ class EntropyTrack:
     def target(self) -> str:
         """"pse" or "pse_spread"."""
         return self._target
+
+    @property
+    def placement(self) -> str:
+        """"entropy" or "pse_mean"."""
+        return self._placement
 
     def posterior(self) -> np.ndarray:
         """Normalised posterior over the grid, shape (μ, σ, λ)."""
@@ -682,7 +706,7 @@ class EntropyTrack:
         return xlogy(p_cw, p_cw) + xlogy(p_ccw, p_ccw) - _sum_m_log_m(cw, work) - _sum_m_log_m(ccw, work)
 
     def next_level(self) -> float:
-        """Return the level of least expected posterior entropy.
+        """Return the next level: least expected entropy, or nearest the posterior mean of the PSE.
 
         Raises
         ------
@@ -692,7 +716,11 @@ class EntropyTrack:
         if self.finished:
             raise RuntimeError("EntropyTrack is finished; it proposes no more levels")
         if self._proposal is None:
-            self._proposal = float(self._level_values[int(np.argmin(self.expected_entropies()))])
+            if self._placement == "entropy":
+                pick = int(np.argmin(self.expected_entropies()))
+            else:
+                pick = int(np.argmin(np.abs(self._level_values - self.posterior_mean().pse)))
+            self._proposal = float(self._level_values[pick])
         return self._proposal
 
     def update(self, level: float, response_cw: int | None) -> None:
@@ -740,6 +768,7 @@ class EntropyTrack:
             "kind": self.kind,
             "version": STATE_VERSION,
             "target": self._target,
+            "placement": self._placement,
             "max_trials": self._max_trials,
             "grid": grid,
             "levels": list(self._levels),
@@ -751,14 +780,18 @@ class EntropyTrack:
     @classmethod
     def _from_state(cls, state: dict) -> EntropyTrack:
         _check_kind(state, cls.kind)
-        settings = _settings(state, ("target", "max_trials", "grid"))
+        if "placement" not in state:
+            state = {**state, "placement": "entropy"}  # states written before the option were all "entropy"
+        settings = _settings(state, ("target", "placement", "max_trials", "grid"))
         if not isinstance(settings["grid"], dict):
             raise ValueError("state.grid: expected a table of grid settings")
         try:
             grid = EntropyGrid(**{**settings["grid"], "lapses": tuple(settings["grid"].get("lapses", ()))})
         except TypeError as err:
             raise ValueError(f"state.grid: {err}") from None
-        return _replayed(cls(max_trials=settings["max_trials"], target=settings["target"], grid=grid), state)
+        proc = cls(max_trials=settings["max_trials"], target=settings["target"], grid=grid,
+                   placement=settings["placement"])
+        return _replayed(proc, state)
 
 
 # ---------------------------------------------------------------- constant stimuli

@@ -273,7 +273,8 @@ class ProcedureSettings(_Section):
     ----------
     method : {"updown", "weighted", "bayesian", "constant"}
         Levitt's transformed up–down, Kaernbach's weighted up–down, the
-        Bayesian entropy method (Kontsevich & Tyler, 1999), or constant stimuli.
+        Bayesian method (a posterior over PSE, spread and lapse, Kontsevich &
+        Tyler, 1999; see ``bayes_placement``), or constant stimuli.
     start_offset_deg : float
         ``updown``, ``weighted``: tracks start this far from the reference,
         one track on each side.  Refused with ``bayesian`` (the prior,
@@ -291,19 +292,27 @@ class ProcedureSettings(_Section):
         at; the second aims at ``1 - target_cw``.
 
     The defaults (start ±2°, steps 4, 2, 1, 0.5°, k 1, target 55 %, the
-    Bayesian grid below) keep the trials near the PSE: at 80 trials per
-    condition and PSEs within ±5° they reach about 0.85–0.9 of the
-    Cramér–Rao bound on the PSE, and they still reach a PSE 15° away
+    Bayesian grid below and placement at the posterior mean) keep the
+    trials near the PSE: at 80 trials per condition and PSEs within ±5°
+    they reach about 0.8–0.9 of the Cramér–Rao bound on the PSE, and they
+    still reach a PSE 15° away
     (``benchmarks/bench_default_tracks.py``).  They trade away spread
-    precision; for the spread use ``k_down = 2`` or ``bayes_target =
-    "pse_spread"``.
+    precision; for the spread use ``k_down = 2`` or ``bayes_placement =
+    "entropy"`` with ``bayes_target = "pse_spread"``.
     max_reversals : int
         Stop a track after this many reversals (0 = stop by trials only).
     levels_deg : list of float
         ``constant``: the test offsets; each track shows each level
         ``trials_per_track / len(levels_deg)`` times.
+    bayes_placement : {"pse_mean", "entropy"}
+        ``bayesian``: where the next trial goes.  ``"pse_mean"`` (default):
+        the level nearest the posterior mean of the PSE (King-Smith et al.,
+        1994), which keeps the trials at the PSE; ``"entropy"``: the level
+        of least expected posterior entropy of ``bayes_target`` (Kontsevich
+        & Tyler, 1999), which spends trials off the PSE to learn the spread.
     bayes_target : {"pse", "pse_spread"}
-        ``bayesian``: minimise the entropy of the PSE alone or of PSE and spread.
+        ``bayesian`` with ``bayes_placement = "entropy"``: minimise the
+        entropy of the PSE alone or of PSE and spread.
     pse_range_deg, spread_range_deg : [float, float]
         ``bayesian``: the parameter grid, i.e. the support of its uniform
         prior.  The defaults (±20°, 1–10°) cover PSEs 15° away and the usual
@@ -321,6 +330,7 @@ class ProcedureSettings(_Section):
     levels_deg: list[float] = Field(
         default_factory=lambda: [-16.0, -8.0, -4.0, -2.0, 2.0, 4.0, 8.0, 16.0], min_length=2, max_length=200
     )
+    bayes_placement: Literal["pse_mean", "entropy"] = "pse_mean"
     bayes_target: Literal["pse", "pse_spread"] = "pse"
     pse_range_deg: list[float] = Field(default_factory=lambda: [-20.0, 20.0], min_length=2, max_length=2)
     spread_range_deg: list[float] = Field(default_factory=lambda: [1.0, 10.0], min_length=2, max_length=2)
@@ -539,6 +549,9 @@ def _cross_checks(p: Protocol) -> None:
             f"constant stimuli need a multiple of the {len(proc.levels_deg)} levels per track, "
             f"got {p.design.trials_per_track}",
         )
+    if proc.method == "bayesian" and proc.bayes_placement == "pse_mean" and proc.bayes_target == "pse_spread":
+        raise InputError("", "procedure.bayes_target", "\"pse_spread\" needs bayes_placement = \"entropy\" "
+                         "(\"pse_mean\" places every trial at the PSE estimate)")
     if proc.method == "bayesian" and not (proc.pse_range_deg[0] < hi and proc.pse_range_deg[1] > lo):
         raise InputError("", "procedure.pse_range_deg", "expected a PSE grid that overlaps bounds_deg")
     if p.design.practice_offset_deg > max(abs(lo), abs(hi)):

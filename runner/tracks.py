@@ -50,7 +50,7 @@ def procedure_track(proc: ProcedureSettings, n: int, track: int, seed_words: tup
             spread_min=proc.spread_range_deg[0], spread_max=proc.spread_range_deg[1],
             level_min=lo, level_max=hi, level_step=0.5,
         )
-        return EntropyTrack(max_trials=n, target=proc.bayes_target, grid=grid)
+        return EntropyTrack(max_trials=n, target=proc.bayes_target, grid=grid, placement=proc.bayes_placement)
     repeats = n // len(proc.levels_deg)
     seed = zlib.crc32(repr(seed_words).encode())
     return ConstantLevels(levels=proc.levels_deg, repeats=repeats, seed=seed)

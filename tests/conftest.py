@@ -39,10 +39,12 @@ def cli():
 SLOW_TESTS = (
     "tests/test_fit_bootstrap.py::test_pse_interval_coverage_400_data_sets_of_80_trials",
     "tests/test_adaptive.py::test_bayesian_pse_precision_near_cramer_rao_bound",
+    "tests/test_adaptive.py::test_mean_placement_keeps_trials_nearer_the_pse_than_entropy_placement",
     "tests/test_resume.py::test_killed_and_resumed_session_writes_identical_rows",
     "tests/test_resume.py::test_torn_last_line_is_dropped_with_a_warning_and_the_rest_kept",
     "tests/test_resume.py::test_existing_data_is_never_overwritten",
     "tests/test_resume.py::test_resume_with_a_changed_protocol_is_refused",
+    "tests/test_resume.py::test_bayesian_session_cut_short_and_resumed_writes_identical_rows",
     "tests/test_planner.py::test_more_trials_give_narrower_intervals",
     "tests/test_planner.py::test_constant_stimuli_pse_half_width_matches_fisher_information",
     "tests/test_fit_aftereffect.py::test_parameter_recovery_fast",

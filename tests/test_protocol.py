@@ -80,6 +80,10 @@ MALFORMED = {
                                    "procedure.start_offset_deg"),
     "start_offset_with_constant": (b"[procedure]\nmethod = 'constant'\nstart_offset_deg = 5",
                                    "procedure.start_offset_deg"),
+    "unknown_bayes_placement": (b"[procedure]\nmethod = 'bayesian'\nbayes_placement = 'mode'",
+                                "procedure.bayes_placement"),
+    "spread_target_with_mean_placement": (b"[procedure]\nmethod = 'bayesian'\nbayes_target = 'pse_spread'",
+                                          "procedure.bayes_target"),
 }
 
 

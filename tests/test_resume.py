@@ -112,3 +112,25 @@ def test_resume_with_a_changed_protocol_is_refused(tmp_path):
     done = run_cli("simulate", changed, "--out", out, "--resume")
     assert done.returncode == 2 and "protocol" in done.stderr
     assert _logs(out) == before
+
+
+@pytest.mark.slow  # left out of the quick subset
+@pytest.mark.parametrize("rows_kept", [1, 37])
+def test_bayesian_session_cut_short_and_resumed_writes_identical_rows(rows_kept, tmp_path):
+    # pilot_short.toml runs Bayesian tracks placed at the posterior mean: a resume replays the log
+    # through fresh posteriors and must propose exactly the levels the uninterrupted session did.
+    whole_out, cut_out = tmp_path / "whole", tmp_path / "cut"
+    protocol = PROTOCOLS / "pilot_short.toml"
+    assert run_cli("simulate", protocol, "--out", whole_out, "--seed", "5").returncode == 0
+    whole = _logs(whole_out)
+    name = sorted(whole)[0]
+    cut_out.mkdir()
+    lines = whole[name].splitlines(keepends=True)
+    (cut_out / name).write_bytes(b"".join(lines[: 1 + rows_kept]))
+    sidecar = name.replace(".trials.csv", ".session.json")
+    (cut_out / sidecar).write_bytes((whole_out / sidecar).read_bytes())
+    done = run_cli("simulate", protocol, "--out", cut_out, "--seed", "5", "--resume")
+    assert done.returncode == 0, done.stderr
+    assert _logs(cut_out) == whole
+    levels = {float(row["test_offset_deg"]) for row in read_rows(cut_out / name)}
+    assert len(levels) > 5  # the tracks moved: not one level replayed over and over
