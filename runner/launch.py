@@ -22,7 +22,7 @@ from fitting.provenance import software_versions
 from runner.console import SimulationConsole
 from runner.headless import HeadlessPresenter
 from runner.observers import ObserverModel, SimulatedObserver, draw_observers
-from runner.protocol import Protocol
+from runner.protocol import Protocol, as_started
 from runner.screens import screen_texts
 from runner.session import BlockRun, Console, SessionResult
 from runner.stream import StreamObserver, StreamRun
@@ -46,8 +46,9 @@ def derive_seed(seed: int, *words: int) -> int:
     return int(np.random.SeedSequence([seed, *words]).generate_state(1)[0])
 
 
-def _protocol_record(path: str, text: str) -> dict:
-    return {"path": str(path), "sha256": hashlib.sha256(text.encode("utf-8")).hexdigest(), "text": text}
+def _protocol_record(path: str, text: str, protocol: Protocol) -> dict:
+    return {"path": str(path), "sha256": hashlib.sha256(text.encode("utf-8")).hexdigest(), "text": text,
+            "bayes_placement": protocol.procedure.bayes_placement}
 
 
 def open_log(out_dir: Path, observer: str, session: str, resume: bool, durable: bool = True) -> TrialLog:
@@ -284,7 +285,7 @@ def simulate(
                 "kind": "simulation",
                 "observer": run.observer,
                 "session": session,
-                "protocol": _protocol_record(protocol_path, protocol_text),
+                "protocol": _protocol_record(protocol_path, protocol_text, protocol),
                 "display_profile": protocol.display.model_dump(),
                 "measured_refresh_hz": None,
                 "packages": package_versions(),
@@ -301,6 +302,7 @@ def simulate(
             except BaseException:
                 log.close()
                 raise
+            run = type(run)(as_started(protocol, sidecar), run.seed, run.observer, session)
             console.skip(len(log.rows))
             console.at_break = log.sync
             answers = observer_kind(observer_model, (run.seed, 5), protocol.display.refresh_hz)
@@ -379,7 +381,7 @@ def run_on_screen(
         "kind": "screen",
         "observer": observer,
         "session": session,
-        "protocol": _protocol_record(protocol_path, protocol_text),
+        "protocol": _protocol_record(protocol_path, protocol_text, protocol),
         "display_profile": protocol.display.model_dump(),
         "packages": package_versions(),
         "seed": seed,
@@ -394,7 +396,8 @@ def run_on_screen(
         raise
     if resume:
         sidecar["parts"][-1].update({k: v for k, v in extra.items() if k in ("measured_refresh_hz", "acknowledged")})
-    run = (StreamRun if protocol.stream is not None else BlockRun)(protocol, seed, observer, session)
+    run = (StreamRun if protocol.stream is not None else BlockRun)(as_started(protocol, sidecar), seed,
+                                                                   observer, session)
     texts = screen_texts(protocol, caution, protocol_path)
     return run_part(log, sidecar, lambda: run.run(presenter, answers, log.append, log.rows, texts, console,
                                                   str(log.path)))

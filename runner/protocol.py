@@ -681,3 +681,22 @@ def load_protocol(path: str | Path) -> Protocol:
     InputError
     """
     return parse_protocol(read_protocol_text(path), source=str(path))
+
+
+def as_started(protocol: Protocol, sidecar: dict) -> Protocol:
+    """The protocol with the defaults its session started with.
+
+    A session keeps the track rules it began with across an upgrade: the
+    Bayesian placement became ``"pse_mean"`` by default after sessions had
+    been started with the entropy rule, and such a session's sidecar does
+    not record a placement.  Its protocol text is unchanged, so without this
+    the resumed tracks would choose other levels and the replay would refuse
+    the log.
+    """
+    record = sidecar.get("protocol") or {}
+    if "bayes_placement" in record or protocol.procedure.method != "bayesian":
+        return protocol
+    if "bayes_placement" in protocol.procedure.model_fields_set:
+        return protocol
+    procedure = protocol.procedure.model_copy(update={"bayes_placement": "entropy"})
+    return protocol.model_copy(update={"procedure": procedure})

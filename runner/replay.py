@@ -12,7 +12,7 @@ import json
 from pathlib import Path
 
 from fitting.errors import InputError
-from runner.protocol import parse_protocol
+from runner.protocol import as_started, parse_protocol
 from runner.tracks import new_track
 
 
@@ -50,7 +50,7 @@ def track_factories(logs) -> dict:
             observer, text = str(meta["observer"]), meta["protocol"]["text"]
         except (OSError, ValueError, KeyError, TypeError) as exc:
             raise InputError(str(side), "protocol", f"cannot read the session's protocol ({exc})") from None
-        protocol = parse_protocol(text, str(side))
+        protocol = as_started(parse_protocol(text, str(side)), meta)
         previous = protocols.setdefault(observer, protocol)
         if previous.procedure != protocol.procedure or previous.design.trials_per_track != protocol.design.trials_per_track:
             raise InputError(str(side), "procedure", f"observer {observer}'s sessions used different procedures; "
