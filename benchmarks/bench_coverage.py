@@ -285,7 +285,8 @@ def one_group(args) -> dict:
             t0 = time.perf_counter()
             # the replicates' own covariances are kept only when a studentized interval is wanted
             report = fit_logs(logs, str(fit_dir), n_boot=n_boot, seed=seed, progress=False, figures=False,
-                              tracks=track_factories(logs) if boot == "rerun" else None,
+                              tracks=track_factories(logs) if boot in ("rerun", "pilot") else None,
+                              track_use="pilot" if boot == "pilot" else "replicates",
                               interval="studentized" if "studentized" in intervals else "bca")
             out["fit_s"][boot] = time.perf_counter() - t0
             out.setdefault("candidates", {})[boot] = chi2_candidates(report, truths)
@@ -478,8 +479,9 @@ def main() -> None:
     ap.add_argument("--procedures", nargs="+", default=["updown", "bayesian"])
     ap.add_argument("--pool", action="store_true",
                     help="also score groups formed from all observers of a cell (many more groups)")
-    ap.add_argument("--bootstraps", nargs="+", default=["fixed", "rerun"], choices=["fixed", "rerun"],
-                    help="fixed: levels held (default of fit); rerun: tracks re-run (fit --rerun-tracks)")
+    ap.add_argument("--bootstraps", nargs="+", default=["fixed", "rerun"], choices=["fixed", "pilot", "rerun"],
+                    help="fixed: levels held, fixed-level pilot; pilot: levels held, pilot re-runs the tracks; "
+                         "rerun: tracks re-run for every replicate (fit --rerun-tracks)")
     ap.add_argument("--intervals", nargs="+", default=[BY_STATISTIC], choices=list(INTERVAL_METHODS),
                     help="intervals scored on the same fits: by-statistic (default of fit), bca, percentile, profile "
                          "(PSEs and shifts by profile likelihood), studentized (bootstrap-t for PSEs and shifts)")

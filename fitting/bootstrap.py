@@ -340,7 +340,7 @@ def bca_interval(estimate, replicates, acceleration, level: float = 0.95):
 def parametric_bootstrap(fit: PsychometricFit, n_boot: int, rng: np.random.Generator,
                          progress: bool | None = None, label: str = "bootstrap",
                          chunk: int | None = None, bias_correct: bool = True,
-                         studentize: bool = False) -> BootstrapResult:
+                         studentize: bool = False, generate=None) -> BootstrapResult:
     """Draw ``n_boot`` replicate data sets from ``fit`` and refit them all.
 
     Parameters
@@ -364,13 +364,18 @@ def parametric_bootstrap(fit: PsychometricFit, n_boot: int, rng: np.random.Gener
     studentize : bool
         Keep each replicate's own PSE covariance, for
         :meth:`BootstrapResult.studentized`.
+    generate : ndarray (P,), optional
+        Generating parameters found elsewhere (for example by re-running the
+        adaptive tracks, :func:`fitting.replay.rerun_generating_parameters`);
+        no pilot is run then.
 
     Returns
     -------
     BootstrapResult
     """
     return parametric_bootstrap_many([fit], n_boot, rng, progress, label, chunk, bias_correct,
-                                     studentize=studentize)[0]
+                                     studentize=studentize,
+                                     generate=None if generate is None else np.asarray(generate)[None])[0]
 
 
 def _nuisance_mask(layout) -> np.ndarray:
@@ -384,7 +389,8 @@ def _nuisance_mask(layout) -> np.ndarray:
 def parametric_bootstrap_many(fits, n_boot: int, rng: np.random.Generator,
                               progress: bool | None = None, label: str = "bootstrap",
                               chunk: int | None = None, bias_correct: bool = True,
-                              pilot: int | None = None, studentize: bool = False) -> list[BootstrapResult]:
+                              pilot: int | None = None, studentize: bool = False,
+                              generate=None) -> list[BootstrapResult]:
     """Bootstrap several fits of the same shape in one batch.
 
     All fits must share the layout and the cell-array shape (for example,
@@ -405,6 +411,7 @@ def parametric_bootstrap_many(fits, n_boot: int, rng: np.random.Generator,
     ``theta_hat - bias`` for the spread(s) and the lapse only (PSEs stay at
     their estimates), kept inside the bounds.  Intervals remain centred on
     the estimates; :attr:`BootstrapResult.fit` is still the point fit.
+    ``generate`` (one row per fit) replaces the pilot.
     """
     if n_boot < 1:
         raise ValueError("n_boot must be at least 1")
@@ -415,8 +422,11 @@ def parametric_bootstrap_many(fits, n_boot: int, rng: np.random.Generator,
     if chunk is None:
         chunk = max(50, 500_000 // first.cells.x.size)
     n_pilot = (pilot if pilot is not None else max(100, n_boot // 10)) if bias_correct else 0
+    if generate is not None:
+        n_pilot = 0
     with ProgressBar(len(fits) * (n_boot + n_pilot), label, show=progress) as bar:
-        generate = generating_parameters(fits, n_pilot, rng, chunk, bar)
+        if generate is None:
+            generate = generating_parameters(fits, n_pilot, rng, chunk, bar)
         theta, converged, at_bound, dev, cov = _replicates(fits, generate, n_boot, rng, chunk, bar,
                                                            studentize)
     owner = np.repeat(np.arange(len(fits)), n_boot)
@@ -436,7 +446,13 @@ def generating_parameters(fits, n_pilot: int, rng, chunk: int, bar) -> np.ndarra
     if not n_pilot:
         return theta_hat
     th, *_ = _replicates(fits, theta_hat, n_pilot, rng, chunk, bar)
-    bias = th.reshape(len(fits), n_pilot, -1).mean(axis=1) - theta_hat
+    return bias_corrected(fits, th.reshape(len(fits), n_pilot, -1))
+
+
+def bias_corrected(fits, pilot_theta: np.ndarray) -> np.ndarray:
+    """``theta_hat - bias`` for spread(s) and lapse, kept in the bounds; ``pilot_theta`` is (fits, R, P)."""
+    theta_hat = np.stack([f.theta for f in fits])
+    bias = pilot_theta.mean(axis=1) - theta_hat
     generate = theta_hat - np.where(_nuisance_mask(fits[0].layout), bias, 0.0)
     return np.clip(generate, np.stack([f.lower for f in fits]), np.stack([f.upper for f in fits]))
 

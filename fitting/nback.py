@@ -50,7 +50,6 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-from scipy import special
 
 from .aftereffect import TAU_BOUNDS, dog, peak_bounds
 from .bootstrap import bca_interval, percentile_interval

@@ -36,7 +36,8 @@ from .aftereffect import TAU_BOUNDS, bound_note, fit_decay, fit_tuning, peak_bou
 from .bootstrap import BootstrapResult, parametric_bootstrap
 from .profile import profile_pse, profile_shifts
 from .flags import MIN_TRIALS_FOR_INTERVAL, condense, join, on_bound, psychometric_flags
-from .replay import replay_bootstrap
+from .progress import ProgressBar
+from .replay import replay_bootstrap, rerun_generating_parameters
 from .psychometric import DEFAULT_LAPSE_MAX, Cells, PsychometricFit, fit_cells
 
 PSE_COLUMNS = ["observer", "condition", "adapter_offset_deg", "lag", "pse_deg", "pse_ci_low",
@@ -70,9 +71,12 @@ class Options:
     progress : bool or None
         Progress bar (None: only on a terminal).
     tracks : dict of str -> callable, optional
-        Per observer, a factory of fresh adaptive tracks; observers listed
-        here are bootstrapped by re-running their tracks (:mod:`fitting.replay`),
-        the others with the levels held fixed.
+        Per observer, a factory of fresh adaptive tracks (:mod:`fitting.replay`);
+        observers not listed are bootstrapped with the levels held fixed.
+    track_use : {"replicates", "pilot"}
+        What the listed observers' tracks are re-run for: every replicate, or
+        only the pilot that sets the generating spread and lapse of the
+        fixed-level replicates.
     """
 
     n_boot: int = 1000
@@ -84,6 +88,7 @@ class Options:
     lapse_max: float = DEFAULT_LAPSE_MAX
     progress: bool | None = None
     tracks: dict | None = None
+    track_use: str = "replicates"
 
 
 @dataclass
@@ -291,23 +296,31 @@ def analyse_observer(observer: str, trials: pd.DataFrame, opts: Options,
     if opts.n_boot > 0:
         factory = (opts.tracks or {}).get(observer)
         if opts.tracks is not None and factory is None:
-            notes.append("bootstrap kept the levels fixed: no session sidecar with the protocol was found")
+            notes.append("bootstrap kept the levels fixed, with a fixed-level pilot: no single protocol "
+                         "was found in the session sidecars")
         elif factory is not None and not trials["track"].astype(str).str.fullmatch(r"\d+").all():
             notes.append("bootstrap kept the levels fixed: some trials name no track number")
             factory = None
         if factory is not None:
             plan = [[(str(t), int(m)) for t, m in trials[trials["condition"] == name]
                      .groupby("track", sort=True).size().items()] for name in names]
-            boot = replay_bootstrap(fit, plan, factory, opts.n_boot, rng, opts.progress,
-                                    f"bootstrap {observer} (tracks re-run)",
-                                    studentize=opts.interval == "studentized")
+            if opts.track_use == "pilot":
+                pilot = max(100, opts.n_boot // 10)
+                with ProgressBar(pilot * len(names), f"pilot {observer} (tracks re-run)",
+                                 show=opts.progress) as bar:
+                    generate = rerun_generating_parameters(fit, plan, factory, pilot, rng, bar)
+                boot = parametric_bootstrap(fit, opts.n_boot, rng, opts.progress, f"bootstrap {observer}",
+                                            studentize=opts.interval == "studentized", generate=generate)
+            else:
+                boot = replay_bootstrap(fit, plan, factory, opts.n_boot, rng, opts.progress,
+                                        f"bootstrap {observer} (tracks re-run)",
+                                        studentize=opts.interval == "studentized")
         else:
             boot = parametric_bootstrap(fit, opts.n_boot, rng, opts.progress, f"bootstrap {observer}",
                                         studentize=opts.interval == "studentized")
         bad = 1.0 - boot.converged.mean()
         if bad > 0:
             notes.append(f"{100 * bad:.1f}% of bootstrap refits stopped before converging")
-    C = len(names)
     # --- PSE table -----------------------------------------------------
     base = int(np.flatnonzero(conds["is_baseline"])[0]) if conds["is_baseline"].any() else None
     adapted = np.flatnonzero(~conds["is_baseline"].to_numpy()) if base is not None else np.zeros(0, int)

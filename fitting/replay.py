@@ -18,16 +18,27 @@ with ``next_level()`` and ``update(level, response_cw)``.
 
 Cost: one Python call per simulated trial, so replicates × trials calls; a
 Bayesian track spends milliseconds per trial, which makes this bootstrap
-minutes long for a full session.  The generating parameters are those of
-the fixed-level bootstrap (bias-corrected spread and lapse from a short
-fixed-level pilot).
+minutes long for a full session.
+
+Generating parameters
+---------------------
+Short adaptive tracks bias the fitted spread low, far more than fixed
+levels do (0.77 of the true spread at 24 up–down trials per condition,
+benchmarks/README.md; slope bias of adaptive data, Kaernbach 2001), so a
+pilot with the levels held fixed cannot see that bias.
+:func:`rerun_generating_parameters` runs the pilot *through the tracks*:
+it re-runs them ``pilot`` times at the estimates, refits, and moves the
+spread(s) and lapse by minus their mean bias (Wichmann & Hill 2001, II, the
+bootstrap bridging assumption).  ``fit`` uses it for both bootstraps when
+the logs' sidecars give the tracks: the re-running one, and the default
+fixed-level one, whose replicates are then drawn at the corrected spread.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-from .bootstrap import BootstrapResult, generating_parameters, replicate_pse_covariance
+from .bootstrap import BootstrapResult, bias_corrected, replicate_pse_covariance
 from .progress import ProgressBar
 from .psychometric import PsychometricFit, _cell_terms, deviance_by_condition, probability_cw, solve_batch
 
@@ -39,6 +50,61 @@ def _pool(levels: np.ndarray, answers: np.ndarray):
         ux, inv = np.unique(lv, return_inverse=True)
         out.append((ux, np.bincount(inv).astype(float), np.bincount(inv, weights=an)))
     return out
+
+
+def _rerun(fit: PsychometricFit, plan, factory, generate: np.ndarray, n_boot: int, rng: np.random.Generator,
+           bar, studentize: bool = False):
+    """Re-run every track ``n_boot`` times at ``generate`` and refit: (solution, x, n, k, deviance, cov)."""
+    layout, sigmoid = fit.layout, fit.sigmoid
+    pse, spread, lapse = layout.unpack(generate[None])
+    pools = []
+    for c, name in enumerate(fit.conditions):
+        lv_parts, an_parts = [], []
+        for track_id, n_trials in plan[c]:
+            tracks = [factory(name, track_id) for _ in range(n_boot)]
+            lv = np.empty((n_boot, n_trials))
+            an = np.empty((n_boot, n_trials))
+            for t in range(n_trials):
+                x = np.fromiter((tr.next_level() for tr in tracks), float, n_boot)
+                y = (rng.random(n_boot) < probability_cw(x, pse[0, c], spread[0, c], lapse[0],
+                                                         sigmoid)).astype(int)
+                for tr, xi, yi in zip(tracks, x, y):
+                    tr.update(float(xi), int(yi))
+                lv[:, t], an[:, t] = x, y
+            lv_parts.append(lv)
+            an_parts.append(an)
+        pools.append(_pool(np.hstack(lv_parts), np.hstack(an_parts)))
+        bar.advance(n_boot)
+    C = len(fit.conditions)
+    width = max(len(p[0]) for cond in pools for p in cond)
+    x = np.empty((n_boot, C, width))
+    n = np.zeros((n_boot, C, width))
+    k = np.zeros((n_boot, C, width))
+    for c, cond in enumerate(pools):
+        for r, (ux, nn, kk) in enumerate(cond):
+            m = ux.size
+            x[r, c, :m], x[r, c, m:] = ux, ux[0]
+            n[r, c, :m], k[r, c, :m] = nn, kk
+    sol = solve_batch(generate[None], x, n, k, layout, fit.lower, fit.upper, sigmoid)
+    p_star = _cell_terms(sol.theta, x, layout, sigmoid)[0]
+    dev = deviance_by_condition(p_star, n, k)
+    cov = (replicate_pse_covariance(sol.theta, x, n, k, layout, sigmoid, sol.at_bound)
+           if studentize else None)
+    return sol, dev, cov
+
+
+def rerun_generating_parameters(fit: PsychometricFit, plan, factory, pilot: int, rng: np.random.Generator,
+                                bar) -> np.ndarray:
+    """Generating parameters (P,) from a pilot that re-runs the tracks at the estimates.
+
+    The spread(s) and lapse are moved by minus their mean bias over ``pilot``
+    re-run replicates (the PSEs stay at their estimates); ``pilot = 0``
+    returns the estimates.  ``bar`` advances by ``pilot`` per condition.
+    """
+    if not pilot:
+        return fit.theta.copy()
+    sol, _, _ = _rerun(fit, plan, factory, fit.theta, pilot, rng, bar)
+    return bias_corrected([fit], sol.theta[None])[0]
 
 
 def replay_bootstrap(fit: PsychometricFit, plan, factory, n_boot: int, rng: np.random.Generator,
@@ -58,7 +124,8 @@ def replay_bootstrap(fit: PsychometricFit, plan, factory, n_boot: int, rng: np.r
     progress : bool or None
     label : str
     pilot : int
-        Fixed-level pilot replicates for the generating parameters (0: none).
+        Re-run pilot replicates for the generating parameters
+        (:func:`rerun_generating_parameters`; 0: the estimates).
     studentize : bool
         Keep each replicate's own PSE covariance (for bootstrap-t intervals).
 
@@ -66,41 +133,8 @@ def replay_bootstrap(fit: PsychometricFit, plan, factory, n_boot: int, rng: np.r
     -------
     BootstrapResult
     """
-    layout, sigmoid = fit.layout, fit.sigmoid
     C = len(fit.conditions)
-    with ProgressBar(n_boot * C + pilot, "pilot + " + label, show=progress) as bar:
-        generate = generating_parameters([fit], pilot, rng, 500, bar)[0]
-        pse, spread, lapse = layout.unpack(generate[None])
-        pools = []
-        for c, name in enumerate(fit.conditions):
-            lv_parts, an_parts = [], []
-            for track_id, n_trials in plan[c]:
-                tracks = [factory(name, track_id) for _ in range(n_boot)]
-                lv = np.empty((n_boot, n_trials))
-                an = np.empty((n_boot, n_trials))
-                for t in range(n_trials):
-                    x = np.fromiter((tr.next_level() for tr in tracks), float, n_boot)
-                    y = (rng.random(n_boot) < probability_cw(x, pse[0, c], spread[0, c], lapse[0],
-                                                             sigmoid)).astype(int)
-                    for tr, xi, yi in zip(tracks, x, y):
-                        tr.update(float(xi), int(yi))
-                    lv[:, t], an[:, t] = x, y
-                lv_parts.append(lv)
-                an_parts.append(an)
-            pools.append(_pool(np.hstack(lv_parts), np.hstack(an_parts)))
-            bar.advance(n_boot)
-    width = max(len(p[0]) for cond in pools for p in cond)
-    x = np.empty((n_boot, C, width))
-    n = np.zeros((n_boot, C, width))
-    k = np.zeros((n_boot, C, width))
-    for c, cond in enumerate(pools):
-        for r, (ux, nn, kk) in enumerate(cond):
-            m = ux.size
-            x[r, c, :m], x[r, c, m:] = ux, ux[0]
-            n[r, c, :m], k[r, c, :m] = nn, kk
-    sol = solve_batch(generate[None], x, n, k, layout, fit.lower, fit.upper, sigmoid)
-    p_star = _cell_terms(sol.theta, x, layout, sigmoid)[0]
-    dev = deviance_by_condition(p_star, n, k)
-    cov = (replicate_pse_covariance(sol.theta, x, n, k, layout, sigmoid, sol.at_bound)
-           if studentize else None)
+    with ProgressBar((n_boot + pilot) * C, "pilot + " + label, show=progress) as bar:
+        generate = rerun_generating_parameters(fit, plan, factory, pilot, rng, bar)
+        sol, dev, cov = _rerun(fit, plan, factory, generate, n_boot, rng, bar, studentize)
     return BootstrapResult(fit, sol.theta, sol.converged, sol.at_bound, dev, generate, cov)

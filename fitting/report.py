@@ -275,7 +275,8 @@ def _analyse_task(task) -> ObserverAnalysis:
 def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="free",
                spread: str = "shared", progress=True, *, sigmoid: str = "gaussian",
                interval: str = BY_STATISTIC, level: float = 0.95,
-               lapse_max: float = DEFAULT_LAPSE_MAX, map_tasks=None, tracks: dict | None = None) -> FitReport:
+               lapse_max: float = DEFAULT_LAPSE_MAX, map_tasks=None, tracks: dict | None = None,
+               track_use: str = "replicates") -> FitReport:
     """Fit checked trials (from :func:`read_logs`) without writing anything.
 
     Same options as :func:`fit_logs`; returns the :class:`FitReport` with
@@ -284,10 +285,12 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
     opts = _check_options(n_boot, seed, lapse, spread, sigmoid, interval, level, lapse_max, progress)
     check_replicate_memory(opts.n_boot, int(trials.groupby(["observer", "condition"]).ngroups))
     if tracks:
-        opts = replace(opts, tracks=dict(tracks))
+        if track_use not in ("replicates", "pilot"):
+            raise ValueError(f"track_use: expected 'replicates' or 'pilot', got {track_use!r}")
+        opts = replace(opts, tracks=dict(tracks), track_use=track_use)
     groups = {str(observer): obs_trials.reset_index(drop=True)
               for observer, obs_trials in trials.groupby("observer", sort=True)}
-    if map_tasks is not None and len(groups) > 1 and not tracks:  # track factories stay in this process
+    if map_tasks is not None and len(groups) > 1:
         quiet = replace(opts, progress=False)
         done = map_tasks(_analyse_task, {obs: (obs, t, quiet, int(seed)) for obs, t in groups.items()})
         analyses = [done[obs] for obs in groups]
@@ -351,7 +354,7 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
              figure_formats=("png",),
              interval: str = BY_STATISTIC, level: float = 0.95,
              lapse_max: float = DEFAULT_LAPSE_MAX, plan=None, map_tasks=None,
-             tracks: dict | None = None) -> FitReport:
+             tracks: dict | None = None, track_use: str = "replicates") -> FitReport:
     """Read trial logs, fit every observer (and the group), write tables, figures and ``report.html``.
 
     Parameters
@@ -406,6 +409,9 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
         re-runs the tracks with the fitted observer (:mod:`fitting.replay`;
         the command line builds these from the sidecars with
         ``--rerun-tracks``).
+    track_use : {"replicates", "pilot"}
+        Re-run the tracks for every replicate, or only for the pilot that
+        sets the generating spread and lapse (:mod:`fitting.replay`).
 
     Returns
     -------
@@ -422,7 +428,7 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
     trials = read_logs(paths, include_bad_timing, include_practice)
     report = fit_trials(trials, n_boot, seed, lapse, spread, progress, sigmoid=sigmoid,
                         interval=interval, level=level, lapse_max=lapse_max, map_tasks=map_tasks,
-                        tracks=tracks)
+                        tracks=tracks, track_use=track_use)
     # all fitting is done; only now is anything written, staged and moved in as one set
     with output_set(out_dir, "fit") as staged:
         out = staged.folder

@@ -248,16 +248,18 @@ def cmd_fit(args) -> int:
     else:
         from runner.workpool import open_pool, task_mapper
 
-        tracks = None
-        if args.rerun_tracks:
-            from runner.replay import track_factories
+        from runner.replay import track_factories
 
-            tracks = track_factories(trials)
+        # the pilot that sets the generating spread re-runs the tracks by default; --rerun-tracks re-runs
+        # them for every replicate; --fixed-level-pilot keeps the levels fixed in the pilot too
+        tracks = None if args.fixed_level_pilot and not args.rerun_tracks else \
+            track_factories(trials, strict=args.rerun_tracks)
         pool = open_pool(args.scheduler, args.jobs)
         try:
             report = fit_logs(trials, args.out, spread=args.spread, include_practice=args.include_practice,
                               sigmoid=args.function, level=args.level, plan=plan_from_text,
-                              map_tasks=task_mapper(pool, "fitting observers"), tracks=tracks, **common)
+                              map_tasks=task_mapper(pool, "fitting observers"), tracks=tracks,
+                              track_use="replicates" if args.rerun_tracks else "pilot", **common)
         finally:
             pool.close()
     print(report.summary())
@@ -444,6 +446,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--rerun-tracks", action="store_true",
                    help="bootstrap by re-running each adaptive track with the fitted observer (protocol from the "
                         "sidecars; closer to nominal coverage, slower: minutes with Bayesian tracks)")
+    p.add_argument("--fixed-level-pilot", action="store_true",
+                   help="set the bootstrap's generating spread from a pilot with the levels held fixed (earlier "
+                        "default) instead of one that re-runs the adaptive tracks (the default when the sidecars "
+                        "give the protocol)")
     p.add_argument("--pdf", action="store_true", help="PDF copies of the figures beside the PNGs")
     p.set_defaults(func=cmd_fit)
 

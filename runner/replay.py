@@ -20,13 +20,16 @@ def _sidecar(log: Path) -> Path:
     return log.with_name(log.name[: -len(".trials.csv")] + ".session.json")
 
 
-def track_factories(logs) -> dict:
+def track_factories(logs, strict: bool = True) -> dict:
     """Per observer, a track factory from the protocol in its logs' sidecars.
 
     Parameters
     ----------
     logs : list of paths
         Trial logs (``*.trials.csv``) with their sidecars beside them.
+    strict : bool
+        Refuse (True) or leave out (False) an observer whose sessions used
+        different procedures or whose sidecar cannot be read.
 
     Returns
     -------
@@ -41,6 +44,7 @@ def track_factories(logs) -> dict:
         with different procedures.
     """
     protocols: dict = {}
+    mixed: set = set()
     for log in map(Path, logs):
         side = _sidecar(log)
         if not side.is_file():
@@ -48,15 +52,29 @@ def track_factories(logs) -> dict:
         try:
             meta = json.loads(side.read_text(encoding="utf-8"))
             observer, text = str(meta["observer"]), meta["protocol"]["text"]
-        except (OSError, ValueError, KeyError, TypeError) as exc:
+            protocol = as_started(parse_protocol(text, str(side)), meta)
+        except (OSError, ValueError, KeyError, TypeError, InputError) as exc:
+            if not strict:      # whose sessions this was is unknown: every pilot keeps the levels fixed
+                return {}
+            if isinstance(exc, InputError):
+                raise
             raise InputError(str(side), "protocol", f"cannot read the session's protocol ({exc})") from None
-        protocol = as_started(parse_protocol(text, str(side)), meta)
         previous = protocols.setdefault(observer, protocol)
         if previous.procedure != protocol.procedure or previous.design.trials_per_track != protocol.design.trials_per_track:
-            raise InputError(str(side), "procedure", f"observer {observer}'s sessions used different procedures; "
-                             "fit them without --rerun-tracks")
+            if strict:
+                raise InputError(str(side), "procedure", f"observer {observer}'s sessions used different "
+                                 "procedures; fit them without --rerun-tracks")
+            mixed.add(observer)
+    for observer in mixed:
+        del protocols[observer]
+    return {obs: TrackFactory(p) for obs, p in protocols.items()}
 
-    def factory_for(protocol):
-        return lambda condition, track: new_track(protocol, int(track))
 
-    return {obs: factory_for(p) for obs, p in protocols.items()}
+class TrackFactory:
+    """Fresh tracks of one protocol, ``factory(condition, track_id)``; picklable, for worker processes."""
+
+    def __init__(self, protocol):
+        self.protocol = protocol
+
+    def __call__(self, condition: str, track) -> object:
+        return new_track(self.protocol, int(track))
