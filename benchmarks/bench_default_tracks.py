@@ -56,7 +56,7 @@ CANDIDATES = [
     ("default updown", dict(method="updown")),
     ("default weighted", dict(method="weighted")),
     ("default bayesian", dict(method="bayesian")),
-    ("bayesian, earlier default (entropy placement)", dict(method="bayesian", bayes_placement="entropy")),
+    ("bayesian, posterior-mean placement (pse_mean)", dict(method="bayesian", bayes_placement="pse_mean")),
     ("updown, earlier defaults (±20°, 8-4-2-1°, 2-down)", OLD_UPDOWN),
     ("updown 2-down, ±3°, 4-2-1°", dict(method="updown", start_offset_deg=3.0, steps_deg=[4.0, 2.0, 1.0], k_down=2)),
     ("weighted, earlier defaults (±20°, 8-4-2-1°, 75 %)", OLD_WEIGHTED),

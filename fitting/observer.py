@@ -138,6 +138,9 @@ def _period(trials: pd.DataFrame, notes: list) -> float:
     return float(values[0])
 
 
+#: Track kinds whose re-run costs milliseconds per trial: the default pilot keeps their levels fixed.
+SLOW_TRACK_KINDS = ("bayesian",)
+
 #: The default interval rule: percentile limits for PSEs, shifts and peak offsets, BCa for tuning
 #: amplitudes and the decay (each kind as measured best by benchmarks/bench_coverage.py).
 BY_STATISTIC = "by-statistic"
@@ -301,23 +304,25 @@ def analyse_observer(observer: str, trials: pd.DataFrame, opts: Options,
         elif factory is not None and not trials["track"].astype(str).str.fullmatch(r"\d+").all():
             notes.append("bootstrap kept the levels fixed: some trials name no track number")
             factory = None
+        generate, studentize = None, opts.interval == "studentized"
         if factory is not None:
             plan = [[(str(t), int(m)) for t, m in trials[trials["condition"] == name]
                      .groupby("track", sort=True).size().items()] for name in names]
-            if opts.track_use == "pilot":
+            slow = getattr(factory(names[0], plan[0][0][0]), "kind", "") in SLOW_TRACK_KINDS
+            if opts.track_use == "replicates":
+                boot = replay_bootstrap(fit, plan, factory, opts.n_boot, rng, opts.progress,
+                                        f"bootstrap {observer} (tracks re-run)", studentize=studentize)
+            elif slow:
+                notes.append("bootstrap pilot kept the levels fixed: re-running Bayesian tracks costs tens of "
+                             "seconds per observer (fit --rerun-tracks does it for every replicate)")
+            else:
                 pilot = max(100, opts.n_boot // 10)
                 with ProgressBar(pilot * len(names), f"pilot {observer} (tracks re-run)",
                                  show=opts.progress) as bar:
                     generate = rerun_generating_parameters(fit, plan, factory, pilot, rng, bar)
-                boot = parametric_bootstrap(fit, opts.n_boot, rng, opts.progress, f"bootstrap {observer}",
-                                            studentize=opts.interval == "studentized", generate=generate)
-            else:
-                boot = replay_bootstrap(fit, plan, factory, opts.n_boot, rng, opts.progress,
-                                        f"bootstrap {observer} (tracks re-run)",
-                                        studentize=opts.interval == "studentized")
-        else:
+        if boot is None:
             boot = parametric_bootstrap(fit, opts.n_boot, rng, opts.progress, f"bootstrap {observer}",
-                                        studentize=opts.interval == "studentized")
+                                        studentize=studentize, generate=generate)
         bad = 1.0 - boot.converged.mean()
         if bad > 0:
             notes.append(f"{100 * bad:.1f}% of bootstrap refits stopped before converging")

@@ -212,7 +212,9 @@ def _shift_grid(shifts: pd.DataFrame) -> list[str]:
 def _interval_words(o: Options, seed: int) -> str:
     """The summary's words for the kind of interval in the tables."""
     level = f"{100 * o.level:g}%"
-    boot = f"{o.n_boot} parametric bootstrap replicates (seed {seed})"
+    how = "" if not o.tracks else (", adaptive tracks re-run in every replicate" if o.track_use == "replicates"
+                                   else ", drawn at the spread and lapse corrected by a pilot that re-ran the tracks")
+    boot = f"{o.n_boot} parametric bootstrap replicates (seed {seed}{how})"
     if o.interval in ("profile", "studentized"):
         first = ("profile-likelihood" if o.interval == "profile" else "studentized bootstrap") + \
             " intervals of PSEs and shifts"

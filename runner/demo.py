@@ -61,10 +61,12 @@ def run_demo(out_dir: str | Path = "results_demo", progress: bool | None = None)
     from fitting.population import ChannelModel, predict_table
     from fitting.progress import phase
     from fitting.report import fit_logs
+    from fitting.tables import find_logs
     from runner.launch import simulate
     from runner.observers import load_model
     from runner.overview import plan_from_text
     from runner.protocol import load_protocol, read_protocol_text
+    from runner.replay import track_factories
     from runner.safety import screen_protocol
 
     out = Path(out_dir)
@@ -80,8 +82,9 @@ def run_demo(out_dir: str | Path = "results_demo", progress: bool | None = None)
     for lock in (out / "logs").glob("*.lock"):  # no session writes the demo's logs any more
         lock.unlink()
     fit_progress = True if progress is None else ("always" if progress else False)
-    fit_logs([str(out / "logs")], str(out / "fit"), n_boot=N_BOOT, seed=SEED, progress=fit_progress,
-             plan=plan_from_text)
+    logs = [str(p) for p in find_logs([str(out / "logs")])]
+    fit_logs(logs, str(out / "fit"), n_boot=N_BOOT, seed=SEED, progress=fit_progress,
+             plan=plan_from_text, tracks=track_factories(logs, strict=False), track_use="pilot")
     predictions = predict_table(
         ChannelModel(tuning_kappa=4.0, adapt_strength=0.25, adapt_kappa=6.0, recovery_periods=2.0),
         protocol.design.adapter_offsets_deg, protocol.design.lags,

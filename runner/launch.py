@@ -22,7 +22,7 @@ from fitting.provenance import software_versions
 from runner.console import SimulationConsole
 from runner.headless import HeadlessPresenter
 from runner.observers import ObserverModel, SimulatedObserver, draw_observers
-from runner.protocol import Protocol, as_started
+from runner.protocol import Protocol
 from runner.screens import screen_texts
 from runner.session import BlockRun, Console, SessionResult
 from runner.stream import StreamObserver, StreamRun
@@ -302,7 +302,6 @@ def simulate(
             except BaseException:
                 log.close()
                 raise
-            run = type(run)(as_started(protocol, sidecar), run.seed, run.observer, session)
             console.skip(len(log.rows))
             console.at_break = log.sync
             answers = observer_kind(observer_model, (run.seed, 5), protocol.display.refresh_hz)
@@ -396,8 +395,7 @@ def run_on_screen(
         raise
     if resume:
         sidecar["parts"][-1].update({k: v for k, v in extra.items() if k in ("measured_refresh_hz", "acknowledged")})
-    run = (StreamRun if protocol.stream is not None else BlockRun)(as_started(protocol, sidecar), seed,
-                                                                   observer, session)
+    run = (StreamRun if protocol.stream is not None else BlockRun)(protocol, seed, observer, session)
     texts = screen_texts(protocol, caution, protocol_path)
     return run_part(log, sidecar, lambda: run.run(presenter, answers, log.append, log.rows, texts, console,
                                                   str(log.path)))

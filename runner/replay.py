@@ -12,7 +12,7 @@ import json
 from pathlib import Path
 
 from fitting.errors import InputError
-from runner.protocol import as_started, parse_protocol
+from runner.protocol import parse_protocol
 from runner.tracks import new_track
 
 
@@ -52,7 +52,7 @@ def track_factories(logs, strict: bool = True) -> dict:
         try:
             meta = json.loads(side.read_text(encoding="utf-8"))
             observer, text = str(meta["observer"]), meta["protocol"]["text"]
-            protocol = as_started(parse_protocol(text, str(side)), meta)
+            protocol = parse_protocol(text, str(side))
         except (OSError, ValueError, KeyError, TypeError, InputError) as exc:
             if not strict:      # whose sessions this was is unknown: every pilot keeps the levels fixed
                 return {}

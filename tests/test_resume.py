@@ -117,7 +117,7 @@ def test_resume_with_a_changed_protocol_is_refused(tmp_path):
 @pytest.mark.slow  # left out of the quick subset
 @pytest.mark.parametrize("rows_kept", [1, 37])
 def test_bayesian_session_cut_short_and_resumed_writes_identical_rows(rows_kept, tmp_path):
-    # pilot_short.toml runs Bayesian tracks placed at the posterior mean: a resume replays the log
+    # pilot_short.toml runs Bayesian tracks: a resume replays the log
     # through fresh posteriors and must propose exactly the levels the uninterrupted session did.
     whole_out, cut_out = tmp_path / "whole", tmp_path / "cut"
     protocol = PROTOCOLS / "pilot_short.toml"
@@ -135,35 +135,3 @@ def test_bayesian_session_cut_short_and_resumed_writes_identical_rows(rows_kept,
     levels = {float(row["test_offset_deg"]) for row in read_rows(cut_out / name)}
     assert len(levels) > 5  # the tracks moved: not one level replayed over and over
 
-
-@pytest.mark.slow  # left out of the quick subset
-def test_bayesian_session_started_before_the_placement_default_changed_resumes_as_it_began(tmp_path):
-    # A session started by a version whose Bayesian tracks used the entropy rule by default: its protocol
-    # names no placement and its sidecar records none. After the upgrade (default "pse_mean") the resume
-    # must keep the entropy rule, or the replay would refuse the log. The old session is made here by
-    # running the entropy rule explicitly and writing the sidecar an earlier version would have written.
-    import hashlib
-    import json
-    import re
-
-    old_text = re.sub(r'(?m)^bayes_placement\s*=.*\n', "", (PROTOCOLS / "pilot_short.toml").read_text())
-    assert not re.search(r"(?m)^bayes_placement", old_text)
-    entropy_text = old_text.replace("[procedure]\n", '[procedure]\nbayes_placement = "entropy"\n', 1)
-    old, entropy = tmp_path / "old.toml", tmp_path / "entropy.toml"
-    old.write_text(old_text)
-    entropy.write_text(entropy_text)
-    whole_out, cut_out = tmp_path / "whole", tmp_path / "cut"
-    assert run_cli("simulate", entropy, "--out", whole_out, "--seed", "5").returncode == 0
-    whole = _logs(whole_out)
-    name = sorted(whole)[0]
-    sidecar_name = name.replace(".trials.csv", ".session.json")
-    sidecar = json.loads((whole_out / sidecar_name).read_text())
-    sidecar["protocol"] = {"path": str(old), "sha256": hashlib.sha256(old_text.encode("utf-8")).hexdigest(),
-                           "text": old_text}
-    cut_out.mkdir()
-    lines = whole[name].splitlines(keepends=True)
-    (cut_out / name).write_bytes(b"".join(lines[:20]))
-    (cut_out / sidecar_name).write_text(json.dumps(sidecar))
-    done = run_cli("simulate", old, "--out", cut_out, "--seed", "5", "--resume")
-    assert done.returncode == 0, done.stderr
-    assert (cut_out / name).read_bytes() == whole[name]
