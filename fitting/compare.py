@@ -183,12 +183,11 @@ def match_predictions(measured: pd.DataFrame, predictions: pd.DataFrame, source:
 
 
 #: How far to trust the χ² p-values: measured by ``benchmarks/bench_coverage.py`` (benchmarks/README.md).
-CHI2_CAVEAT = ("chi2 p-values still run small: with the true after-effect curve as the prediction, simulated single "
-               "observers were rejected in 12-15 % of cases at the 5 % level with up-down and Bayesian tracks of "
-               "24 and 40 trials per condition (target 3-8 %; 17-20 % before reading the residuals against t), "
-               "because the bootstrap covariance of the shifts is about 10-20 % too small and their errors are "
-               "heavy-tailed at 24 trials (benchmarks/bench_coverage.py, bench_chi2_diagnostics.py); read "
-               "p < 0.05 as a prompt to look, and weigh whether the observers' own rows agree")
+CHI2_CAVEAT = ("chi2 p-values: with the true after-effect curve as the prediction, simulated single observers were "
+               "rejected at the 5 % level in 2-7 % of cases with up-down tracks and the default bootstrap (pilot "
+               "re-running the tracks), but in 12 % with Bayesian tracks, whose pilot keeps the levels fixed "
+               "(target 3-8 %; benchmarks/bench_coverage.py); with Bayesian tracks read p < 0.05 as a prompt to "
+               "look, and weigh whether the observers' own rows agree")
 
 
 @dataclass(frozen=True)
