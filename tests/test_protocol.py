@@ -82,7 +82,7 @@ MALFORMED = {
                                    "procedure.start_offset_deg"),
     "unknown_bayes_placement": (b"[procedure]\nmethod = 'bayesian'\nbayes_placement = 'mode'",
                                 "procedure.bayes_placement"),
-    "spread_target_with_mean_placement": (b"[procedure]\nmethod = 'bayesian'\nbayes_target = 'pse_spread'",
+    "spread_target_with_mean_placement": (b"[procedure]\nmethod = 'bayesian'\nbayes_placement = 'pse_mean'\nbayes_target = 'pse_spread'",
                                           "procedure.bayes_target"),
 }
 
