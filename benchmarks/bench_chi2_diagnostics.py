@@ -39,11 +39,10 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "benchmarks"))
 
-from bench_coverage import observed_information_covariance, observer_truth, protocol_text  # noqa: E402
+from bench_coverage import (observed_information_covariance, observer_truth, protocol_text,  # noqa: E402
+                            simulate_group)
 from fitting.report import fit_logs  # noqa: E402
-from runner.launch import simulate  # noqa: E402
-from runner.observers import draw_observers, load_model  # noqa: E402
-from runner.protocol import load_protocol  # noqa: E402
+from runner.observers import load_model  # noqa: E402
 from runner.replay import track_factories  # noqa: E402
 
 
@@ -53,13 +52,7 @@ def one(args) -> list[dict]:
     model = load_model(str(ROOT / "protocols" / "observers" / "typical.toml"))
     out = []
     with tempfile.TemporaryDirectory() as tmp:
-        path = Path(tmp) / "protocol.toml"
-        path.write_text(text, encoding="utf-8")
-        protocol = load_protocol(str(path))
-        offsets, lags = protocol.design.adapter_offsets_deg, protocol.design.lags
-        logs = [str(p) for p in simulate(protocol, str(path), text, Path(tmp) / "logs", model, n_obs, seed,
-                                         progress=False)]
-        models = draw_observers(model, n_obs, seed)
+        logs, models, offsets, lags = simulate_group(text, model, n_obs, seed, Path(tmp))
         report = fit_logs(logs, str(Path(tmp) / "fit"), n_boot=n_boot, seed=seed, progress=False, figures=False,
                           tracks=track_factories(logs) if rerun else None)
         for i, a in enumerate(report.analyses):

@@ -261,18 +261,21 @@ def method_tables(report, method: str, level: float = 0.95):
     return tables, spent
 
 
+def simulate_group(text: str, model, n_obs: int, seed: int, tmp: Path):
+    """Simulate ``n_obs`` observers on the protocol ``text`` in ``tmp``: (logs, observer models, offsets, lags)."""
+    path = tmp / "protocol.toml"
+    path.write_text(text, encoding="utf-8")
+    protocol = load_protocol(str(path))
+    logs = [str(p) for p in simulate(protocol, str(path), text, tmp / "logs", model, n_obs, seed, progress=False)]
+    return logs, draw_observers(model, n_obs, seed), protocol.design.adapter_offsets_deg, protocol.design.lags
+
+
 def one_group(args) -> dict:
     """Simulate one group, fit it with each bootstrap; score observers and group, compare with the truth."""
     text, model, n_obs, seed, n_boot, pop, bootstraps, intervals = args
     out = {"n_obs": n_obs, "fit_s": {}, "interval_s": {}, "scores": {}, "rejected": {}}
     with tempfile.TemporaryDirectory() as tmp:
-        path = Path(tmp) / "protocol.toml"
-        path.write_text(text, encoding="utf-8")
-        protocol = load_protocol(str(path))
-        offsets, lags = protocol.design.adapter_offsets_deg, protocol.design.lags
-        logs = [str(p) for p in simulate(protocol, str(path), text, Path(tmp) / "logs", model, n_obs, seed,
-                                         progress=False)]
-        models = draw_observers(model, n_obs, seed)
+        logs, models, offsets, lags = simulate_group(text, model, n_obs, seed, Path(tmp))
         truths = {f"sim{i + 1:02d}": observer_truth(m, offsets, lags) for i, m in enumerate(models)}
         truths["group"] = pop
         rows = [{"observer": who, "lag": lag, "adapter_offset_deg": o, "pse_shift_deg": v}

@@ -327,21 +327,26 @@ def _one_simulated_fit(tmp_path, method_lines: str, trials_per_track: int):
     return fit, plan, factory
 
 
+def _pilot_spreads(tmp_path, method_lines: str, trials_per_track: int, pilot: int):
+    """Generating spread of the re-run pilot and of the fixed-level pilot for one simulated session, and its fit."""
+    from fitting.bootstrap import generating_parameters
+    from fitting.progress import ProgressBar
+    from fitting.replay import rerun_generating_parameters
+
+    fit, plan, factory = _one_simulated_fit(tmp_path, method_lines, trials_per_track)
+    with ProgressBar(1, "", show=False) as bar:
+        rerun = rerun_generating_parameters(fit, plan, factory, pilot, np.random.default_rng(1), bar)
+        fixed = generating_parameters([fit], pilot, np.random.default_rng(2), 500, bar)[0]
+    return rerun, fixed, fit
+
+
 def test_a_pilot_that_reruns_constant_stimuli_matches_the_fixed_level_pilot(tmp_path):
     # Constant stimuli present the same levels the same number of times whatever the answers, so re-running
     # the tracks samples exactly the fixed-level bootstrap's distribution (Wichmann & Hill 2001, II: the
     # parametric bootstrap at the observed levels): both pilots must find the same spread bias, within
     # Monte Carlo error
-    from fitting.bootstrap import generating_parameters
-    from fitting.progress import ProgressBar
-    from fitting.replay import rerun_generating_parameters
-
-    fit, plan, factory = _one_simulated_fit(
-        tmp_path, 'method = "constant"\nlevels_deg = [-8, -4, -2, 2, 4, 8]', 24)
+    rerun, fixed, fit = _pilot_spreads(tmp_path, 'method = "constant"\nlevels_deg = [-8, -4, -2, 2, 4, 8]', 24, 600)
     s = fit.layout.spread_index[0]
-    with ProgressBar(1, "", show=False) as bar:
-        rerun = rerun_generating_parameters(fit, plan, factory, 600, np.random.default_rng(1), bar)
-        fixed = generating_parameters([fit], 600, np.random.default_rng(2), 500, bar)[0]
     assert abs(rerun[s] - fixed[s]) < 0.04 * fit.theta[s]
     assert np.allclose(rerun[fit.layout.pse_index], fit.pse)        # PSEs stay at their estimates
 
@@ -350,14 +355,7 @@ def test_a_pilot_that_reruns_up_down_tracks_widens_the_generating_spread(tmp_pat
     # Short adaptive tracks bias the fitted spread low (slope bias of adaptive data, Kaernbach 2001, from
     # memory; measured 0.77 of the truth at 24 up-down trials per condition in benchmarks/README.md), a bias
     # a fixed-level pilot does not see: the re-run pilot must generate at a clearly larger spread
-    from fitting.bootstrap import generating_parameters
-    from fitting.progress import ProgressBar
-    from fitting.replay import rerun_generating_parameters
-
-    fit, plan, factory = _one_simulated_fit(
-        tmp_path, 'method = "updown"\nstart_offset_deg = 2\nsteps_deg = [4, 2, 1]', 12)
+    rerun, fixed, fit = _pilot_spreads(tmp_path, 'method = "updown"\nstart_offset_deg = 2\nsteps_deg = [4, 2, 1]',
+                                       12, 300)
     s = fit.layout.spread_index[0]
-    with ProgressBar(1, "", show=False) as bar:
-        rerun = rerun_generating_parameters(fit, plan, factory, 300, np.random.default_rng(1), bar)
-        fixed = generating_parameters([fit], 300, np.random.default_rng(2), 500, bar)[0]
     assert rerun[s] > 1.1 * fixed[s]
