@@ -30,8 +30,10 @@ class XServer:
 
     def __init__(self):
         read_end, write_end = os.pipe()
+        # -noreset: Xvfb otherwise resets when its last client leaves, and a program that connects during
+        # that reset (the resume right after a session ended) is refused the display
         self.process = subprocess.Popen(
-            ["Xvfb", "-displayfd", str(write_end), "-screen", "0", SCREEN, "-nolisten", "tcp"],
+            ["Xvfb", "-displayfd", str(write_end), "-screen", "0", SCREEN, "-nolisten", "tcp", "-noreset"],
             pass_fds=(write_end,), stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
         )
         os.close(write_end)
