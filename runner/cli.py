@@ -252,8 +252,7 @@ def cmd_fit(args) -> int:
 
         # the pilot that sets the generating spread re-runs the tracks by default; --rerun-tracks re-runs
         # them for every replicate; --fixed-level-pilot keeps the levels fixed in the pilot too
-        tracks = None if args.fixed_level_pilot and not args.rerun_tracks else \
-            track_factories(trials, strict=args.rerun_tracks)
+        tracks = None if args.fixed_level_pilot else track_factories(trials, strict=args.rerun_tracks)
         pool = open_pool(args.scheduler, args.jobs)
         try:
             report = fit_logs(trials, args.out, spread=args.spread, include_practice=args.include_practice,
@@ -443,10 +442,11 @@ def build_parser() -> argparse.ArgumentParser:
                                                 "(default: every available core)")
     where.add_argument("--scheduler", metavar="ADDRESS", help="fit the observers on a Dask cluster, e.g. "
                                                               "tcp://HOST:8786 (needs the cluster extra)")
-    p.add_argument("--rerun-tracks", action="store_true",
+    pilot = p.add_mutually_exclusive_group()
+    pilot.add_argument("--rerun-tracks", action="store_true",
                    help="bootstrap by re-running each adaptive track with the fitted observer (protocol from the "
                         "sidecars; closer to nominal coverage, slower: minutes with Bayesian tracks)")
-    p.add_argument("--fixed-level-pilot", action="store_true",
+    pilot.add_argument("--fixed-level-pilot", action="store_true",
                    help="set the bootstrap's generating spread from a pilot with the levels held fixed (earlier "
                         "default) instead of one that re-runs the adaptive tracks (the default when the sidecars "
                         "give the protocol)")

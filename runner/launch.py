@@ -46,9 +46,8 @@ def derive_seed(seed: int, *words: int) -> int:
     return int(np.random.SeedSequence([seed, *words]).generate_state(1)[0])
 
 
-def _protocol_record(path: str, text: str, protocol: Protocol) -> dict:
-    return {"path": str(path), "sha256": hashlib.sha256(text.encode("utf-8")).hexdigest(), "text": text,
-            "bayes_placement": protocol.procedure.bayes_placement}
+def _protocol_record(path: str, text: str) -> dict:
+    return {"path": str(path), "sha256": hashlib.sha256(text.encode("utf-8")).hexdigest(), "text": text}
 
 
 def open_log(out_dir: Path, observer: str, session: str, resume: bool, durable: bool = True) -> TrialLog:
@@ -285,7 +284,7 @@ def simulate(
                 "kind": "simulation",
                 "observer": run.observer,
                 "session": session,
-                "protocol": _protocol_record(protocol_path, protocol_text, protocol),
+                "protocol": _protocol_record(protocol_path, protocol_text),
                 "display_profile": protocol.display.model_dump(),
                 "measured_refresh_hz": None,
                 "packages": package_versions(),
@@ -380,7 +379,7 @@ def run_on_screen(
         "kind": "screen",
         "observer": observer,
         "session": session,
-        "protocol": _protocol_record(protocol_path, protocol_text, protocol),
+        "protocol": _protocol_record(protocol_path, protocol_text),
         "display_profile": protocol.display.model_dump(),
         "packages": package_versions(),
         "seed": seed,
