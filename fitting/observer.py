@@ -138,9 +138,6 @@ def _period(trials: pd.DataFrame, notes: list) -> float:
     return float(values[0])
 
 
-#: Track kinds whose re-run costs milliseconds per trial: the default pilot keeps their levels fixed.
-SLOW_TRACK_KINDS = ("bayesian",)
-
 #: The default interval rule: percentile limits for PSEs, shifts and peak offsets, BCa for tuning
 #: amplitudes and the decay (each kind as measured best by benchmarks/bench_coverage.py).
 BY_STATISTIC = "by-statistic"
@@ -308,13 +305,9 @@ def analyse_observer(observer: str, trials: pd.DataFrame, opts: Options,
         if factory is not None:
             plan = [[(str(t), int(m)) for t, m in trials[trials["condition"] == name]
                      .groupby("track", sort=True).size().items()] for name in names]
-            slow = getattr(factory(names[0], plan[0][0][0]), "kind", "") in SLOW_TRACK_KINDS
             if opts.track_use == "replicates":
                 boot = replay_bootstrap(fit, plan, factory, opts.n_boot, rng, opts.progress,
                                         f"bootstrap {observer} (tracks re-run)", studentize=studentize)
-            elif slow:
-                notes.append("bootstrap pilot kept the levels fixed: re-running Bayesian tracks costs tens of "
-                             "seconds per observer (fit --rerun-tracks does it for every replicate)")
             else:
                 pilot = max(100, opts.n_boot // 10)
                 with ProgressBar(pilot * len(names), f"pilot {observer} (tracks re-run)",

@@ -14,11 +14,16 @@ downstream are unchanged.
 ``fitting`` never imports the session engine: the tracks come from a
 *factory* passed in by the caller (the command line builds it from the
 protocol in each log's sidecar), ``factory(condition, track) -> object``
-with ``next_level()`` and ``update(level, response_cw)``.
+with ``next_level()`` and ``update(level, response_cw)``.  A factory may
+also offer ``factory.copies(condition, track, n)``: ``n`` copies stepped
+together, with ``next_levels()`` and ``update(levels, responses)`` on
+arrays (the command line's does for Bayesian tracks, whose trials cost
+hundreds of microseconds one at a time).
 
-Cost: one Python call per simulated trial, so replicates × trials calls; a
-Bayesian track spends milliseconds per trial, which makes this bootstrap
-minutes long for a full session.
+Cost: replicates × trials track steps.  Step tracks take microseconds
+each; Bayesian copies stepped together take about a hundred
+(``benchmarks/bench_bayesian_step.py``), which makes a pilot of 100
+re-runs seconds long per observer.
 
 Generating parameters
 ---------------------
@@ -52,6 +57,27 @@ def _pool(levels: np.ndarray, answers: np.ndarray):
     return out
 
 
+class _OneByOne:
+    """Copies of a track with no batched form, stepped one at a time."""
+
+    def __init__(self, tracks):
+        self.tracks = tracks
+
+    def next_levels(self) -> np.ndarray:
+        return np.fromiter((tr.next_level() for tr in self.tracks), float, len(self.tracks))
+
+    def update(self, levels, responses) -> None:
+        for tr, x, y in zip(self.tracks, levels, responses):
+            tr.update(float(x), int(y))
+
+
+def _copies(factory, condition: str, track: str, n: int):
+    """``n`` fresh copies of a track: the factory's batched form where it has one."""
+    batched = getattr(factory, "copies", None)
+    made = batched(condition, track, n) if batched is not None else None
+    return made if made is not None else _OneByOne([factory(condition, track) for _ in range(n)])
+
+
 def _rerun(fit: PsychometricFit, plan, factory, generate: np.ndarray, n_boot: int, rng: np.random.Generator,
            bar, studentize: bool = False):
     """Re-run every track ``n_boot`` times at ``generate`` and refit: (solution, x, n, k, deviance, cov)."""
@@ -61,15 +87,14 @@ def _rerun(fit: PsychometricFit, plan, factory, generate: np.ndarray, n_boot: in
     for c, name in enumerate(fit.conditions):
         lv_parts, an_parts = [], []
         for track_id, n_trials in plan[c]:
-            tracks = [factory(name, track_id) for _ in range(n_boot)]
+            tracks = _copies(factory, name, track_id, n_boot)
             lv = np.empty((n_boot, n_trials))
             an = np.empty((n_boot, n_trials))
             for t in range(n_trials):
-                x = np.fromiter((tr.next_level() for tr in tracks), float, n_boot)
+                x = tracks.next_levels()
                 y = (rng.random(n_boot) < probability_cw(x, pse[0, c], spread[0, c], lapse[0],
                                                          sigmoid)).astype(int)
-                for tr, xi, yi in zip(tracks, x, y):
-                    tr.update(float(xi), int(yi))
+                tracks.update(x, y)
                 lv[:, t], an[:, t] = x, y
             lv_parts.append(lv)
             an_parts.append(an)

@@ -214,7 +214,7 @@ def _interval_words(o: Options, seed: int) -> str:
     level = f"{100 * o.level:g}%"
     how = "" if not o.tracks else (", adaptive tracks re-run in every replicate" if o.track_use == "replicates"
                                    else ", drawn at the spread and lapse corrected by a pilot that re-ran the "
-                                        "adaptive tracks; Bayesian tracks: a pilot at fixed levels")
+                                        "adaptive tracks")
     boot = f"{o.n_boot} parametric bootstrap replicates (seed {seed}{how})"
     if o.interval in ("profile", "studentized"):
         first = ("profile-likelihood" if o.interval == "profile" else "studentized bootstrap") + \

@@ -13,7 +13,7 @@ from pathlib import Path
 
 from fitting.errors import InputError
 from runner.protocol import parse_protocol
-from runner.tracks import new_track
+from runner.tracks import new_track, new_track_copies
 
 
 def _sidecar(log: Path) -> Path:
@@ -71,10 +71,17 @@ def track_factories(logs, strict: bool = True) -> dict:
 
 
 class TrackFactory:
-    """Fresh tracks of one protocol, ``factory(condition, track_id)``; picklable, for worker processes."""
+    """Fresh tracks of one protocol, ``factory(condition, track_id)``; picklable, for worker processes.
+
+    ``factory.copies(condition, track_id, n)`` gives ``n`` copies stepped
+    together where the procedure has that form (Bayesian tracks), else None.
+    """
 
     def __init__(self, protocol):
         self.protocol = protocol
 
     def __call__(self, condition: str, track) -> object:
         return new_track(self.protocol, int(track))
+
+    def copies(self, condition: str, track, n: int):
+        return new_track_copies(self.protocol, int(track), n)

@@ -14,8 +14,20 @@ from __future__ import annotations
 import zlib
 
 from runner.adaptive import ConstantLevels, EntropyGrid, EntropyTrack, UpDownTrack, WeightedTrack
+from runner.adaptive_batch import EntropyBatch
 from runner.protocol import ProcedureSettings, Protocol
 from runner.schedule import Schedule
+
+
+def _entropy_settings(proc: ProcedureSettings, n: int) -> dict:
+    """Keyword arguments of a Bayesian track of ``n`` trials under ``proc``."""
+    lo, hi = proc.bounds_deg
+    grid = EntropyGrid(
+        pse_min=proc.pse_range_deg[0], pse_max=proc.pse_range_deg[1], pse_step=0.5,
+        spread_min=proc.spread_range_deg[0], spread_max=proc.spread_range_deg[1],
+        level_min=lo, level_max=hi, level_step=0.5,
+    )
+    return {"max_trials": n, "target": proc.bayes_target, "grid": grid, "placement": proc.bayes_placement}
 
 
 def procedure_track(proc: ProcedureSettings, n: int, track: int, seed_words: tuple[int, ...]):
@@ -44,13 +56,7 @@ def procedure_track(proc: ProcedureSettings, n: int, track: int, seed_words: tup
         target = proc.target_cw if cw_side else 1.0 - proc.target_cw
         return WeightedTrack(target_p_cw=target, start_level=start, steps=proc.steps_deg, bounds=proc.bounds_deg, **stop)
     if proc.method == "bayesian":
-        lo, hi = proc.bounds_deg
-        grid = EntropyGrid(
-            pse_min=proc.pse_range_deg[0], pse_max=proc.pse_range_deg[1], pse_step=0.5,
-            spread_min=proc.spread_range_deg[0], spread_max=proc.spread_range_deg[1],
-            level_min=lo, level_max=hi, level_step=0.5,
-        )
-        return EntropyTrack(max_trials=n, target=proc.bayes_target, grid=grid, placement=proc.bayes_placement)
+        return EntropyTrack(**_entropy_settings(proc, n))
     repeats = n // len(proc.levels_deg)
     seed = zlib.crc32(repr(seed_words).encode())
     return ConstantLevels(levels=proc.levels_deg, repeats=repeats, seed=seed)
@@ -59,6 +65,19 @@ def procedure_track(proc: ProcedureSettings, n: int, track: int, seed_words: tup
 def new_track(protocol: Protocol, track: int, seed_words: tuple[int, ...] = (0,)):
     """A fresh procedure for track number ``track`` of any condition (as a session builds it)."""
     return procedure_track(protocol.procedure, protocol.design.trials_per_track, track, seed_words)
+
+
+def new_track_copies(protocol: Protocol, track: int, copies: int):
+    """``copies`` fresh copies of track number ``track``, stepped together; None where there is no such form.
+
+    Only Bayesian tracks with the default target "pse" have one
+    (:class:`runner.adaptive_batch.EntropyBatch`): the step tracks cost
+    microseconds a trial one at a time, and the joint (PSE, spread) target
+    gains nothing from stepping copies together.
+    """
+    if protocol.procedure.method != "bayesian" or protocol.procedure.bayes_target != "pse":
+        return None
+    return EntropyBatch(copies, **_entropy_settings(protocol.procedure, protocol.design.trials_per_track))
 
 
 def make_tracks(protocol: Protocol, schedule: Schedule, seed: int) -> dict:

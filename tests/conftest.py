@@ -53,6 +53,7 @@ SLOW_TESTS = (
     "tests/test_nback.py::test_stream_and_discrete_analyses_agree_when_only_the_1_back_period_matters",
     "tests/test_inference.py::test_t_scores_hold_the_level_when_each_standard_error_is_estimated",
     "tests/test_intervals.py::test_profile_with_one_spread_per_condition_is_refused_in_one_line",
+    "tests/test_inference.py::test_a_pilot_that_reruns_bayesian_tracks_widens_the_generating_spread",
 )
 
 

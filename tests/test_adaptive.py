@@ -10,6 +10,7 @@ import pytest
 from scipy.stats import norm
 
 from runner.adaptive import ConstantLevels, EntropyGrid, EntropyTrack, UpDownTrack, WeightedTrack, restore
+from runner.adaptive_batch import EntropyBatch
 
 # A cumulative Gaussian observer (the README's model with lapse 0) for the simulations.
 OBSERVER_PSE = 1.5
@@ -253,6 +254,64 @@ def test_mean_placement_is_the_level_nearest_the_posterior_mean_of_the_pse(n):
     assert abs(track.next_level() - mean) <= grid.level_step / 2 + 1e-12
     if n == 0:
         assert track.next_level() == 0.0  # the mean of a prior uniform on a grid symmetric about 0
+
+
+@pytest.mark.parametrize("n", [1, 6])
+def test_bayesian_copies_stepped_together_equal_the_brute_force_posterior_and_entropies(n):
+    # the same references as the single track's tests above (Kontsevich & Tyler 1999; Prins 2013), for
+    # three copies that took different answers; levels off the level list exercise the Φ computed afresh
+    copies = [_some_trials(seed=300 + n + c, n=n) for c in range(3)]
+    batch = EntropyBatch(3, max_trials=50, grid=TINY_GRID)
+    for t in range(n):
+        batch.update([c[0][t] for c in copies], [c[1][t] for c in copies])
+    for c, (levels, responses) in enumerate(copies):
+        np.testing.assert_allclose(batch.posterior()[c], _brute_posterior(TINY_GRID, levels, responses),
+                                   rtol=1e-9, atol=1e-15)
+        expected = _brute_expected_entropies(TINY_GRID, levels, responses, "pse")
+        np.testing.assert_allclose(batch.expected_entropies()[c], expected, rtol=2e-5)  # single precision
+
+
+@pytest.mark.parametrize("placement", ["entropy", "pse_mean"])
+def test_bayesian_copies_stepped_together_propose_the_single_tracks_levels(placement):
+    # Given the same answers, every copy must propose what a single track proposes, except at a near-tie of
+    # the expected entropies (single precision there; runner/adaptive_batch.py); checked on the grid of a
+    # protocol's default Bayesian procedure, with answers from observers whose PSEs differ
+    grid = EntropyGrid(pse_min=-20, pse_max=20, spread_min=1, spread_max=10, level_min=-30, level_max=30)
+    rng = np.random.default_rng(5)
+    n_copies, n_trials = 24, 30
+    true_pse = rng.normal(0, 4, n_copies)
+    batch = EntropyBatch(n_copies, max_trials=n_trials, grid=grid, placement=placement)
+    singles = [EntropyTrack(max_trials=n_trials, grid=grid, placement=placement) for _ in range(n_copies)]
+    differ = 0
+    for _ in range(n_trials):
+        together = batch.next_levels()
+        alone = np.array([t.next_level() for t in singles])
+        for c in np.flatnonzero(together != alone):
+            differ += 1
+            h = singles[c].expected_entropies()
+            at = {x: h[np.flatnonzero(grid.level_values() == x)[0]] for x in (together[c], alone[c])}
+            assert abs(at[together[c]] - at[alone[c]]) <= 1e-5 * abs(at[alone[c]])
+        answers = (rng.random(n_copies) < 0.02 + 0.96 * norm.cdf((alone - true_pse) / 3.0)).astype(int)
+        batch.update(alone, answers)
+        for t, x, y in zip(singles, alone, answers):
+            t.update(float(x), int(y))
+    assert differ <= 0.005 * n_copies * n_trials
+    if placement == "pse_mean":
+        assert differ == 0      # no entropies involved: the same arithmetic up to rounding of the mean
+
+
+def test_bayesian_copies_refuse_what_they_cannot_do():
+    with pytest.raises(ValueError, match="target"):
+        EntropyBatch(4, max_trials=10, target="pse_spread")
+    with pytest.raises(ValueError, match="copies"):
+        EntropyBatch(0, max_trials=10)
+    batch = EntropyBatch(2, max_trials=1, grid=TINY_GRID)
+    with pytest.raises(ValueError, match="answers of 1 or 0"):
+        batch.update([0.0, 0.0], [1, None])
+    batch.update([0.0, 1.0], [1, 0])
+    assert batch.finished
+    with pytest.raises(RuntimeError, match="finished"):
+        batch.next_levels()
 
 
 @pytest.mark.parametrize("placement", ["pse_mean", "entropy"])

@@ -1,0 +1,171 @@
+"""Many copies of one Bayesian track, stepped together.
+
+The bootstrap that re-runs the adaptive tracks (:mod:`fitting.replay`)
+steps a hundred or more fresh copies of a track side by side: each copy proposes a
+level, the fitted observer answers, each copy takes its answer.  One
+:class:`~runner.adaptive.EntropyTrack` spends a few hundred microseconds per
+trial, most of it in numpy calls too small to run at full speed; here the
+copies' posteriors sit in one array ``(copies, μ, σ, λ)`` and every step is a
+handful of large array operations.
+
+The model, grid and placement rules are those of
+:class:`~runner.adaptive.EntropyTrack`; three things differ, each for speed
+(about 3× per copy and trial, ``benchmarks/bench_bayesian_step.py``):
+
+* the sums run in a different order;
+* the posterior is kept as probabilities (multiplied by each likelihood and
+  renormalised) rather than as log-probabilities, which saves a logarithm
+  per grid point and trial; a grid point below about 1e-308 of the total
+  becomes exactly zero here, and counts as zero in the single track's
+  entropies too;
+* the expected entropies are computed in single precision.
+
+A copy therefore proposes the same level as a single track given the same
+answers, except where two levels' expected entropies agree to about 1e-6:
+``tests/test_adaptive.py`` checks that at most 0.5 % of proposals differ and
+that each difference is such a near-tie.  The bootstrap needs the same
+behaviour in distribution, not a byte-identical log, so this is used only
+there; sessions always run :class:`~runner.adaptive.EntropyTrack`.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy.special import ndtr, xlogy
+
+from runner.adaptive import EntropyGrid, EntropyTrack, _cdf_table
+
+#: Rows of the entropy sums are taken in blocks of about this many elements (256 kB: they stay in cache).
+_CHUNK_ELEMENTS = 65_536
+
+_TINY32 = np.float32(1e-37)  # floor before a log in single precision; m·log m there is 0 to that precision
+
+
+def _entropy_terms(cw: np.ndarray, ccw: np.ndarray) -> np.ndarray:
+    """Σ_r P(r) log P(r) − Σ m_r log m_r over the first axis (unnormalised marginals m_r; changes both).
+
+    The sums over the first axis run over blocks of rows small enough to stay in cache.
+    """
+    np.maximum(ccw, 0.0, out=ccw)
+    p_cw, p_ccw = cw.sum(axis=0), ccw.sum(axis=0)
+    total = xlogy(p_cw, p_cw) + xlogy(p_ccw, p_ccw)
+    rows = max(1, _CHUNK_ELEMENTS // cw[0].size)
+    for m in (cw, ccw):
+        for lo in range(0, m.shape[0], rows):
+            block = m[lo:lo + rows]
+            np.maximum(block, _TINY32, out=block)
+            total -= (block * np.log(block)).sum(axis=0)
+    return total
+
+
+class EntropyBatch:
+    """``copies`` independent Bayesian tracks with the same settings, stepped together.
+
+    Parameters
+    ----------
+    copies : int
+        Number of tracks (>= 1).
+    max_trials, grid, placement
+        As for :class:`~runner.adaptive.EntropyTrack` (checked the same way).
+    target : {"pse"}
+        The only target stepped together: with the joint (PSE, spread)
+        target each copy's work arrays are as large as a cache, and copies
+        one at a time (:class:`~runner.adaptive.EntropyTrack`) are faster.
+
+    Notes
+    -----
+    Each track answers every trial (there are no missed answers in a
+    simulated re-run), so all copies have the same trial count.
+    """
+
+    kind = "bayesian"
+
+    def __init__(self, copies: int, *, max_trials: int, target: str = "pse", grid: EntropyGrid | None = None,
+                 placement: str = "entropy"):
+        if target != "pse":
+            raise ValueError(f"target: copies are stepped together for the target 'pse' only, got {target!r}")
+        if int(copies) != copies or copies < 1:
+            raise ValueError(f"copies: expected a whole number >= 1, got {copies!r}")
+        one = EntropyTrack(max_trials=max_trials, target=target, grid=grid, placement=placement)  # checks all
+        self.copies = int(copies)
+        self.max_trials = max_trials
+        self.target, self.placement, self.grid = one.target, one.placement, one.grid
+        self._mu, self._sigma = self.grid.pse_values(), self.grid.spread_values()
+        lapse = self.grid.lapse_values()
+        self._half_lapse, self._keep = lapse / 2.0, 1.0 - lapse
+        self._lapse_terms = np.stack([self._half_lapse, self._keep], axis=1)   # (λ, 2)
+        self._levels = self.grid.level_values()
+        table = _cdf_table(self.grid)                                    # (x, μ, σ)
+        self._table_mxs = np.ascontiguousarray(table.transpose(1, 0, 2), dtype=np.float32)  # (μ, x, σ)
+        self._table_flat = table.reshape(table.shape[0], -1)              # (x, μ·σ): the update's Φ
+        cells = self._mu.size * self._sigma.size
+        self._post = np.full((self.copies, lapse.size, cells), 1.0 / (cells * lapse.size))  # (R, λ, μ·σ)
+        self.n_trials = 0
+
+    @property
+    def finished(self) -> bool:
+        """True once every copy has ``max_trials`` answers."""
+        return self.n_trials >= self.max_trials
+
+    def posterior(self) -> np.ndarray:
+        """Normalised posteriors, shape (copies, μ, σ, λ)."""
+        shape = (self.copies, self._lapse_terms.shape[0], self._mu.size, self._sigma.size)
+        return self._post.reshape(shape).transpose(0, 2, 3, 1).copy()
+
+    def _marginals(self):
+        """a = Σ_λ p·λ/2, b = Σ_λ p·(1 − λ) and the (μ, σ) marginal, each (copies, μ·σ)."""
+        ab = (self._lapse_terms.T @ self._post).astype(np.float32)     # (R, 2, μ·σ)
+        a, b = ab[:, 0], ab[:, 1]
+        return a, b, b + 2.0 * a
+
+    def _pse_cells(self, m: np.ndarray) -> np.ndarray:
+        """(copies, μ·σ) -> (copies, μ): summed over σ."""
+        return m.reshape(m.shape[0], self._mu.size, self._sigma.size).sum(axis=2)
+
+    def expected_entropies(self) -> np.ndarray:
+        """Expected posterior entropy (nats) of the PSE after one trial at each level.
+
+        Returns
+        -------
+        numpy.ndarray
+            Shape (copies, levels).
+        """
+        a, b, joint = self._marginals()
+        # cw[m, x, r] = Σ_σ Φ(x; m, σ) b[r, m, σ] + Σ_σ a[r, m, σ]: one matrix product per μ point
+        cw = np.matmul(self._table_mxs, b.reshape(self.copies, self._mu.size, -1).transpose(1, 2, 0))
+        cw += self._pse_cells(a).T[:, None, :]
+        ccw = self._pse_cells(joint).T[:, None, :] - cw
+        return _entropy_terms(cw, ccw).T
+
+    def next_levels(self) -> np.ndarray:
+        """The level each copy proposes, shape (copies,)."""
+        if self.finished:
+            raise RuntimeError("EntropyBatch is finished; it proposes no more levels")
+        if self.placement == "entropy":
+            pick = np.argmin(self.expected_entropies(), axis=1)
+        else:
+            mean = self._post.sum(axis=1).reshape(self.copies, self._mu.size, -1).sum(axis=2) @ self._mu
+            pick = np.argmin(np.abs(self._levels[None, :] - mean[:, None]), axis=1)
+        return self._levels[pick]
+
+    def update(self, levels, responses) -> None:
+        """Take one answer per copy: ``levels`` (deg) and ``responses`` (1 cw, 0 ccw), shape (copies,)."""
+        if self.finished:
+            raise RuntimeError("EntropyBatch is finished; it takes no more answers")
+        levels = np.asarray(levels, float).reshape(self.copies)
+        responses = np.asarray(responses).reshape(self.copies)
+        if not np.isin(responses, (0, 1)).all() or not np.isfinite(levels).all():
+            raise ValueError("update: expected finite levels and answers of 1 or 0 for every copy")
+        step = (levels - self.grid.level_min) / self.grid.level_step
+        row = np.rint(step).astype(int)
+        on_list = (np.abs(step - row) < 1e-9) & (row >= 0) & (row < self._levels.size)
+        if on_list.all():       # the usual case: Φ of every level on the list is in the table already
+            phi = self._table_flat[row]
+        else:
+            phi = ndtr((levels[:, None, None] - self._mu[None, :, None]) / self._sigma[None, None, :])
+            phi = phi.reshape(self.copies, -1)
+        phi = np.where(responses[:, None] == 1, phi, 1.0 - phi)     # P(ccw) = 1 − Φ
+        for lapse, (half, keep) in enumerate(self._lapse_terms):
+            self._post[:, lapse] *= half + keep * phi
+        self._post /= self._post.sum(axis=(1, 2))[:, None, None]
+        self.n_trials += 1
