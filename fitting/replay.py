@@ -6,7 +6,8 @@ sampling distribution of the fit differs from the fixed-level one (Wichmann
 & Hill 2001, II).  Here every replicate re-runs each condition's tracks
 from their start: a fresh track proposes a level, the fitted observer
 answers (``P(cw | x)`` at the generating parameters), the track takes the
-answer, as many times as the track had trials in the log.  The replicate's
+answer, as many times as the track had trials in the log, or fewer for a
+copy that stops earlier by its own rule (``max_reversals``).  The replicate's
 trials are pooled into cells and all replicates are refitted in one batch,
 exactly as in the fixed-level bootstrap, so intervals, BCa and the tables
 downstream are unchanged.
@@ -49,26 +50,33 @@ from .psychometric import PsychometricFit, _cell_terms, deviance_by_condition, p
 
 
 def _pool(levels: np.ndarray, answers: np.ndarray):
-    """Levels and answers (R, T) of one condition -> per-replicate unique levels, counts, cw counts."""
+    """Levels and answers (R, T) of one condition -> per-replicate unique levels, counts, cw counts.
+
+    A nan level is a trial a copy did not run (it had stopped by its own rule).
+    """
     out = []
     for lv, an in zip(levels, answers):
-        ux, inv = np.unique(lv, return_inverse=True)
+        ran = ~np.isnan(lv)
+        ux, inv = np.unique(lv[ran], return_inverse=True)
+        an = an[ran]
         out.append((ux, np.bincount(inv).astype(float), np.bincount(inv, weights=an)))
     return out
 
 
 class _OneByOne:
-    """Copies of a track with no batched form, stepped one at a time."""
+    """Copies of a track with no batched form, stepped one at a time; nan for a copy that has stopped."""
 
     def __init__(self, tracks):
         self.tracks = tracks
 
     def next_levels(self) -> np.ndarray:
-        return np.fromiter((tr.next_level() for tr in self.tracks), float, len(self.tracks))
+        return np.fromiter((np.nan if tr.finished else tr.next_level() for tr in self.tracks), float,
+                           len(self.tracks))
 
     def update(self, levels, responses) -> None:
         for tr, x, y in zip(self.tracks, levels, responses):
-            tr.update(float(x), int(y))
+            if not np.isnan(x):
+                tr.update(float(x), int(y))
 
 
 def _copies(factory, condition: str, track: str, n: int):
@@ -88,12 +96,14 @@ def _rerun(fit: PsychometricFit, plan, factory, generate: np.ndarray, n_boot: in
         lv_parts, an_parts = [], []
         for track_id, n_trials in plan[c]:
             tracks = _copies(factory, name, track_id, n_boot)
-            lv = np.empty((n_boot, n_trials))
-            an = np.empty((n_boot, n_trials))
+            lv = np.full((n_boot, n_trials), np.nan)
+            an = np.zeros((n_boot, n_trials))
             for t in range(n_trials):
-                x = tracks.next_levels()
-                y = (rng.random(n_boot) < probability_cw(x, pse[0, c], spread[0, c], lapse[0],
-                                                         sigmoid)).astype(int)
+                x = tracks.next_levels()        # nan: the copy stopped by its own rule (max_reversals)
+                if np.isnan(x).all():
+                    break
+                p = probability_cw(np.nan_to_num(x), pse[0, c], spread[0, c], lapse[0], sigmoid)
+                y = (rng.random(n_boot) < p).astype(int)
                 tracks.update(x, y)
                 lv[:, t], an[:, t] = x, y
             lv_parts.append(lv)

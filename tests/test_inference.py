@@ -369,3 +369,15 @@ def test_a_pilot_that_reruns_bayesian_tracks_widens_the_generating_spread(tmp_pa
     s = fit.layout.spread_index[0]
     assert rerun[s] > 1.1 * fixed[s]
     assert np.allclose(rerun[fit.layout.pse_index], fit.pse)
+
+
+def test_tracks_that_stop_by_reversals_are_rerun_until_they_stop(tmp_path):
+    # A track with max_reversals stops by its own rule, so a re-run copy may stop before the logged track
+    # did; it must then simply run no more trials (this once ended the default fit in a traceback)
+    from fitting.replay import replay_bootstrap
+
+    fit, plan, factory = _one_simulated_fit(
+        tmp_path, 'method = "updown"\nstart_offset_deg = 2\nsteps_deg = [4, 2, 1]\nmax_reversals = 3', 12)
+    assert any(m < 12 for tracks in plan for _, m in tracks)      # some logged tracks did stop early
+    boot = replay_bootstrap(fit, plan, factory, 40, np.random.default_rng(0), progress=False, pilot=20)
+    assert np.isfinite(boot.theta).all() and boot.converged.mean() > 0.9
