@@ -1,14 +1,22 @@
-"""Many copies of one Bayesian track, stepped together.
+"""Many copies of one adaptive track, stepped together.
 
 The bootstrap that re-runs the adaptive tracks (:mod:`fitting.replay`)
-steps a hundred or more fresh copies of a track side by side: each copy proposes a
-level, the fitted observer answers, each copy takes its answer.  One
+steps a hundred or more fresh copies of a track side by side: each copy
+proposes a level, the fitted observer answers, each copy takes its answer.
+Stepped one at a time that is a Python call per copy and trial; here each
+step is a few array operations over all copies.  Both classes have
+``next_levels()`` (one level per copy, nan for a copy that has stopped),
+``update(levels, responses)`` and ``finished``.
+
+:class:`StepCopies` (up–down and weighted tracks) follows the rules of
+:mod:`runner.adaptive` with the same arithmetic, so every copy presents
+exactly the levels a single track would given the same answers.
+
+:class:`EntropyBatch` (Bayesian tracks): one
 :class:`~runner.adaptive.EntropyTrack` spends a few hundred microseconds per
 trial, most of it in numpy calls too small to run at full speed; here the
-copies' posteriors sit in one array ``(copies, μ, σ, λ)`` and every step is a
-handful of large array operations.
-
-The model, grid and placement rules are those of
+copies' posteriors sit in one array and every step is a handful of large
+array operations. The model, grid and placement rules are those of
 :class:`~runner.adaptive.EntropyTrack`; three things differ, each for speed
 (about 3× per copy and trial, ``benchmarks/bench_bayesian_step.py``):
 
@@ -33,7 +41,87 @@ from __future__ import annotations
 import numpy as np
 from scipy.special import ndtr, xlogy
 
-from runner.adaptive import EntropyGrid, EntropyTrack, _cdf_table
+from runner.adaptive import EntropyGrid, EntropyTrack, UpDownTrack, WeightedTrack, _cdf_table
+
+class StepCopies:
+    """``copies`` copies of an up–down or weighted track, stepped together.
+
+    Parameters
+    ----------
+    prototype : UpDownTrack or WeightedTrack
+        A fresh track whose settings every copy takes.
+    copies : int
+        Number of copies (>= 1).
+    """
+
+    def __init__(self, prototype, copies: int):
+        if not isinstance(prototype, (UpDownTrack, WeightedTrack)) or prototype.n_trials:
+            raise ValueError("prototype: expected a fresh UpDownTrack or WeightedTrack")
+        if int(copies) != copies or copies < 1:
+            raise ValueError(f"copies: expected a whole number >= 1, got {copies!r}")
+        state = prototype.state()
+        self.kind = state["kind"]
+        self._steps = np.array(state["steps"], float)
+        self._low, self._high = state["bounds"]
+        self._max_trials, self._max_reversals = state["max_trials"], state["max_reversals"]
+        if self.kind == "updown":
+            self._down = state["down"]
+            self._toward = -1 if state["side"] == "cw" else +1     # the move after `down` answers on the side
+            self._side_answer = 1 if state["side"] == "cw" else 0
+        else:
+            p = state["target_p_cw"]
+            self._factor = {+1: 2.0 * p, -1: 2.0 * (1.0 - p)}
+        self._level = np.full(int(copies), float(state["start_level"]))
+        self._last_move = np.zeros(int(copies), int)
+        self._reversals = np.zeros(int(copies), int)
+        self._trials = np.zeros(int(copies), int)
+        self._run = np.zeros(int(copies), int)
+
+    @property
+    def stopped(self) -> np.ndarray:
+        """Per copy: True once it reached ``max_trials`` trials or ``max_reversals`` reversals."""
+        out = np.zeros(self._level.size, bool)
+        if self._max_trials is not None:
+            out |= self._trials >= self._max_trials
+        if self._max_reversals is not None:
+            out |= self._reversals >= self._max_reversals
+        return out
+
+    @property
+    def finished(self) -> bool:
+        """True once every copy has stopped."""
+        return bool(self.stopped.all())
+
+    def next_levels(self) -> np.ndarray:
+        """The level each copy proposes, nan for a copy that has stopped."""
+        return np.where(self.stopped, np.nan, self._level)
+
+    def update(self, levels, responses) -> None:
+        """Take one answer per copy (1 cw, 0 ccw); copies given a nan level, or stopped, are left as they are."""
+        levels = np.asarray(levels, float).reshape(self._level.shape)
+        responses = np.asarray(responses).reshape(self._level.shape)
+        live = ~np.isnan(levels) & ~self.stopped
+        if not np.isin(responses[live], (0, 1)).all():
+            raise ValueError("update: expected answers of 1 or 0 for every copy that runs")
+        if self.kind == "updown":
+            on_side = responses == self._side_answer
+            run = np.where(on_side, self._run + 1, 0)
+            full = on_side & (run >= self._down)
+            direction = np.where(on_side, np.where(full, self._toward, 0), -self._toward)
+            self._run = np.where(live, np.where(full, 0, run), self._run)
+            factor = 1.0
+        else:
+            direction = np.where(responses == 1, -1, +1)
+            factor = np.where(direction > 0, self._factor[+1], self._factor[-1])
+        moving = live & (direction != 0)
+        # a reversal is a move against the previous move; the step shrinks at the reversal itself
+        self._reversals += moving & (self._last_move != 0) & (direction != self._last_move)
+        self._last_move = np.where(moving, direction, self._last_move)
+        step = self._steps[np.minimum(self._reversals, self._steps.size - 1)]
+        moved = np.minimum(np.maximum(levels + direction * step * factor, self._low), self._high)
+        self._level = np.where(moving, moved, np.where(live, levels, self._level))
+        self._trials += live
+
 
 #: Rows of the entropy sums are taken in blocks of about this many elements (256 kB: they stay in cache).
 _CHUNK_ELEMENTS = 65_536

@@ -14,7 +14,7 @@ from __future__ import annotations
 import zlib
 
 from runner.adaptive import ConstantLevels, EntropyGrid, EntropyTrack, UpDownTrack, WeightedTrack
-from runner.adaptive_batch import EntropyBatch
+from runner.adaptive_batch import EntropyBatch, StepCopies
 from runner.protocol import ProcedureSettings, Protocol
 from runner.schedule import Schedule
 
@@ -70,14 +70,17 @@ def new_track(protocol: Protocol, track: int, seed_words: tuple[int, ...] = (0,)
 def new_track_copies(protocol: Protocol, track: int, copies: int):
     """``copies`` fresh copies of track number ``track``, stepped together; None where there is no such form.
 
-    Only Bayesian tracks with the default target "pse" have one
-    (:class:`runner.adaptive_batch.EntropyBatch`): the step tracks cost
-    microseconds a trial one at a time, and the joint (PSE, spread) target
-    gains nothing from stepping copies together.
+    Up–down and weighted tracks: :class:`runner.adaptive_batch.StepCopies`;
+    Bayesian tracks with the default target "pse":
+    :class:`runner.adaptive_batch.EntropyBatch`.  Constant stimuli and the
+    joint (PSE, spread) target gain nothing from it and have none.
     """
-    if protocol.procedure.method != "bayesian" or protocol.procedure.bayes_target != "pse":
-        return None
-    return EntropyBatch(copies, **_entropy_settings(protocol.procedure, protocol.design.trials_per_track))
+    proc, n = protocol.procedure, protocol.design.trials_per_track
+    if proc.method in ("updown", "weighted"):
+        return StepCopies(procedure_track(proc, n, track, (0,)), copies)
+    if proc.method == "bayesian" and proc.bayes_target == "pse":
+        return EntropyBatch(copies, **_entropy_settings(proc, n))
+    return None
 
 
 def make_tracks(protocol: Protocol, schedule: Schedule, seed: int) -> dict:

@@ -10,7 +10,7 @@ import pytest
 from scipy.stats import norm
 
 from runner.adaptive import ConstantLevels, EntropyGrid, EntropyTrack, UpDownTrack, WeightedTrack, restore
-from runner.adaptive_batch import EntropyBatch
+from runner.adaptive_batch import EntropyBatch, StepCopies
 
 # A cumulative Gaussian observer (the README's model with lapse 0) for the simulations.
 OBSERVER_PSE = 1.5
@@ -254,6 +254,30 @@ def test_mean_placement_is_the_level_nearest_the_posterior_mean_of_the_pse(n):
     assert abs(track.next_level() - mean) <= grid.level_step / 2 + 1e-12
     if n == 0:
         assert track.next_level() == 0.0  # the mean of a prior uniform on a grid symmetric about 0
+
+
+@pytest.mark.parametrize("make", [
+    lambda: UpDownTrack(start_level=2, steps=[4, 2, 1, 0.5], bounds=[-10, 10], down=2, side="ccw", max_trials=40,
+                        max_reversals=7),
+    lambda: UpDownTrack(start_level=2, steps=[4, 2, 1, 0.5], bounds=[-45, 45], down=1, max_trials=40),
+    lambda: WeightedTrack(target_p_cw=0.3, start_level=-3, steps=[3, 1.5], bounds=[-5, 8], max_trials=40),
+], ids=["updown-2-ccw-reversals", "updown-1", "weighted"])
+def test_step_copies_present_exactly_the_single_tracks_levels(make):
+    # the same rules with the same arithmetic (runner/adaptive_batch.py): given the same answers, every copy
+    # presents bit for bit what a single track presents, and stops (nan) where the single track finishes
+    rng = np.random.default_rng(11)
+    singles = [make() for _ in range(50)]
+    copies = StepCopies(make(), 50)
+    for _ in range(45):
+        together = copies.next_levels()
+        alone = np.array([np.nan if t.finished else t.next_level() for t in singles])
+        np.testing.assert_array_equal(together, alone)
+        answers = (rng.random(50) < norm.cdf((np.nan_to_num(alone) - 1.0) / 3.0)).astype(int)
+        copies.update(together, answers)
+        for t, x, y in zip(singles, alone, answers):
+            if not np.isnan(x):
+                t.update(float(x), int(y))
+    assert copies.finished and all(t.finished for t in singles)
 
 
 @pytest.mark.parametrize("n", [1, 6])
