@@ -47,6 +47,7 @@ from fitting.tables import prepare_trials
 from runner.launch import derive_seed, package_versions, simulate_rows
 from runner.observers import ObserverModel, load_model
 from runner.protocol import Protocol, parse_protocol, protocol_from_dict, read_protocol_text
+from runner.replay import TrackFactory
 from runner.workpool import TaskStore, WorkerLost, check_count, interrupted_line, open_pool, run_tasks
 
 if sys.version_info >= (3, 11):
@@ -242,7 +243,7 @@ def run_session_task(task: dict) -> list[dict]:
     if protocol.stream is not None:
         tuning, decay, baseline, lags = _fit_stream(rows, task)
     else:
-        tuning, decay, baseline = _fit_block(rows, task)
+        tuning, decay, baseline = _fit_block(rows, task, protocol)
         lags = sorted(protocol.design.lags) if len(protocol.design.adapter_offsets_deg) >= 3 else []
     out = []
     tuning = tuning.set_index("lag")
@@ -261,10 +262,13 @@ def run_session_task(task: dict) -> list[dict]:
     return out
 
 
-def _fit_block(rows: list[dict], task: dict):
+def _fit_block(rows: list[dict], task: dict, protocol: Protocol):
     """``tuning``, ``decay`` and the baseline PSE (estimate, low, high) of an adapt-test session."""
     trials = prepare_trials(pd.DataFrame(rows), source="simulated session")
-    report = fit_trials(trials, n_boot=task["n_boot"], seed=task["seed"], lapse=task["lapse"], progress=False)
+    # the pilot re-runs the session's tracks, as `fit` does when the sidecars give the protocol
+    factory = TrackFactory(protocol)
+    report = fit_trials(trials, n_boot=task["n_boot"], seed=task["seed"], lapse=task["lapse"], progress=False,
+                        tracks={str(obs): factory for obs in trials["observer"].unique()}, track_use="pilot")
     base = report.pse[report.pse["condition"] == "baseline"]
     baseline = (base["pse_deg"].iloc[0], base["pse_ci_low"].iloc[0], base["pse_ci_high"].iloc[0]) if len(base) \
         else (np.nan,) * 3
