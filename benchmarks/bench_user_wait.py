@@ -3,8 +3,9 @@
 Rows (each a whole process, timed from outside: wall clock and CPU seconds of
 the child processes):
 
-1. ``fit --bootstrap 2000`` on 25 conditions x 80 trials with figures (the
-   default: PNG), with ``--pdf`` and with ``--no-figures``, against the statsmodels probit-GLM
+1. ``fit --bootstrap 2000`` on 25 conditions x 80 trials of one simulated
+   session (with its sidecar, so the default pilot re-runs the tracks) with
+   figures (the default: PNG), with ``--pdf`` and with ``--no-figures``, against the statsmodels probit-GLM
    refit loop on the same data (``bench_bootstrap.statsmodels_per_replicate``,
    timed on a part of the replicates and scaled; it is linear in them).
    Target: with figures >= 30 x the loop.
@@ -31,6 +32,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import re
 import resource
 import subprocess
 import sys
@@ -45,10 +47,9 @@ sys.path.insert(0, str(ROOT / "benchmarks"))
 import numpy as np  # noqa: E402
 
 from bench_bootstrap import statsmodels_per_replicate  # noqa: E402
-from fitting.synthetic import simulate_trials, write_log  # noqa: E402
 
 OFFSETS_25 = (-90, -60, -30, -15, 15, 30, 60, 90)
-OFFSETS_100 = tuple(float(v) for v in np.linspace(-96, 96, 33))
+OFFSETS_100 = tuple(float(v) for v in np.linspace(-96, 96, 34)[:33])  # 33 offsets (no 0) x 3 lags + baseline
 
 
 def _child_cpu() -> float:
@@ -81,9 +82,16 @@ def simulate_cmd(root: Path, out: Path, sync: bool) -> list[str]:
 
 
 def log_with(tmp: Path, name: str, offsets) -> Path:
-    log = tmp / f"{name}.trials.csv"
-    write_log(simulate_trials(offsets=offsets, lags=(0, 1, 2), trials_per_track=40, seed=1, observer=name), log)
-    return log
+    """One simulated session (``simulate``, so with its sidecar: `fit`'s default pilot re-runs its tracks)."""
+    text = (ROOT / "protocols" / "offset_by_lag.toml").read_text(encoding="utf-8")
+    text = re.sub(r"(?m)^adapter_offsets_deg\s*=.*$", f"adapter_offsets_deg = {[float(o) for o in offsets]}", text)
+    text = re.sub(r"(?m)^lags\s*=.*$", "lags = [0, 1, 2]", text)
+    text = re.sub(r"(?m)^trials_per_track\s*=.*$", "trials_per_track = 40", text)
+    protocol = tmp / f"{name}.toml"
+    protocol.write_text(text, encoding="utf-8")
+    subprocess.run([sys.executable, "-m", "runner.cli", "simulate", str(protocol), "--out", str(tmp / name),
+                    "--observers", "1", "--seed", "1"], cwd=ROOT, check=True, stdout=subprocess.DEVNULL)
+    return next((tmp / name).glob("*.trials.csv"))
 
 
 def row(label, wall, cpu, extra="") -> str:

@@ -68,6 +68,7 @@ def run_demo(out_dir: str | Path = "results_demo", progress: bool | None = None)
     from runner.protocol import load_protocol, read_protocol_text
     from runner.replay import track_factories
     from runner.safety import screen_protocol
+    from runner.workpool import open_pool, task_mapper
 
     out = Path(out_dir)
     _prepare(out)
@@ -83,8 +84,13 @@ def run_demo(out_dir: str | Path = "results_demo", progress: bool | None = None)
         lock.unlink()
     fit_progress = True if progress is None else ("always" if progress else False)
     logs = [str(p) for p in find_logs([str(out / "logs")])]
-    fit_logs(logs, str(out / "fit"), n_boot=N_BOOT, seed=SEED, progress=fit_progress,
-             plan=plan_from_text, tracks=track_factories(logs, strict=False), track_use="pilot")
+    pool = open_pool()          # the observers are fitted on every available core, as by `fit`
+    try:
+        fit_logs(logs, str(out / "fit"), n_boot=N_BOOT, seed=SEED, progress=fit_progress, plan=plan_from_text,
+                 map_tasks=task_mapper(pool, "fitting observers"), tracks=track_factories(logs, strict=False),
+                 track_use="pilot")
+    finally:
+        pool.close()
     predictions = predict_table(
         ChannelModel(tuning_kappa=4.0, adapt_strength=0.25, adapt_kappa=6.0, recovery_periods=2.0),
         protocol.design.adapter_offsets_deg, protocol.design.lags,

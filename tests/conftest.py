@@ -32,7 +32,8 @@ def cli():
 #
 # ``python -m pytest -m "not slow and not display"`` is the contributors' quick
 # loop (under 60 s on 2 cores); the default command runs everything.  Tests
-# that take more than about 3 s on a quiet 2-core machine are ``slow``: either
+# that take more than about 3 s on a quiet 2-core machine (2.5 s with the
+# tests running in parallel, as they do by default) are ``slow``: either
 # marked in their file, or listed here by node-id prefix (kept in one place so
 # that files edited by others need no change).  Measured with
 # ``python -m pytest --durations=30``.
@@ -54,6 +55,15 @@ SLOW_TESTS = (
     "tests/test_inference.py::test_t_scores_hold_the_level_when_each_standard_error_is_estimated",
     "tests/test_intervals.py::test_profile_with_one_spread_per_condition_is_refused_in_one_line",
     "tests/test_inference.py::test_a_pilot_that_reruns_bayesian_tracks_widens_the_generating_spread",
+    # 2.5-10 s each with the tests running in parallel (measured with -m "not slow and not display" --durations)
+    "tests/test_study.py::test_same_numbers_on_one_or_two_local_workers_and_reused_on_rerun",
+    "tests/test_faults.py::test_full_tmpfs_during_simulate_and_fit",
+    "tests/test_cli.py::test_run_refuses_an_existing_session_before_opening_the_display",
+    "tests/test_inference.py::test_a_pilot_that_reruns_constant_stimuli_matches_the_fixed_level_pilot",
+    "tests/test_inference.py::test_a_pilot_that_reruns_up_down_tracks_widens_the_generating_spread",
+    "tests/test_fit_report.py::test_same_seed_same_bytes_and_nothing_else_touched",
+    "tests/test_fit_report.py::test_figures_are_written_as_png_and_pdf",
+    "tests/test_figures.py::test_parallel_and_serial_drawing_write_the_same_files",
 )
 
 

@@ -18,8 +18,8 @@ OBSERVER_SPREAD = 6.0
 
 
 def _observer(rng, pse=OBSERVER_PSE, spread=OBSERVER_SPREAD):
-    def answer(level):
-        return int(rng.random() < norm.cdf((level - pse) / spread))
+    def answer(level):  # the standard normal CDF through math.erf: scipy's norm.cdf costs ~50 µs a call
+        return int(rng.random() < 0.5 * (1.0 + math.erf((level - pse) / (spread * math.sqrt(2.0)))))
 
     return answer
 
