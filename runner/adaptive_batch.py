@@ -126,6 +126,9 @@ class StepCopies:
 #: Rows of the entropy sums are taken in blocks of about this many elements (256 kB: they stay in cache).
 _CHUNK_ELEMENTS = 65_536
 
+#: Largest (μ, levels, copies) work array of one entropy step, in elements (64 MB in single precision).
+_BATCH_ELEMENTS = 16_000_000
+
 _TINY32 = np.float32(1e-37)  # floor before a log in single precision; m·log m there is 0 to that precision
 
 
@@ -219,11 +222,18 @@ class EntropyBatch:
             Shape (copies, levels).
         """
         a, b, joint = self._marginals()
-        # cw[m, x, r] = Σ_σ Φ(x; m, σ) b[r, m, σ] + Σ_σ a[r, m, σ]: one matrix product per μ point
-        cw = np.matmul(self._table_mxs, b.reshape(self.copies, self._mu.size, -1).transpose(1, 2, 0))
-        cw += self._pse_cells(a).T[:, None, :]
-        ccw = self._pse_cells(joint).T[:, None, :] - cw
-        return _entropy_terms(cw, ccw).T
+        a_mu, joint_mu = self._pse_cells(a), self._pse_cells(joint)
+        b = b.reshape(self.copies, self._mu.size, -1)
+        out = np.empty((self.copies, self._levels.size))
+        step = max(1, _BATCH_ELEMENTS // self._table_mxs[..., 0].size)     # copies at a time: memory stays bounded
+        for lo in range(0, self.copies, step):
+            sl = slice(lo, lo + step)
+            # cw[m, x, r] = Σ_σ Φ(x; m, σ) b[r, m, σ] + Σ_σ a[r, m, σ]: one matrix product per μ point
+            cw = np.matmul(self._table_mxs, b[sl].transpose(1, 2, 0))
+            cw += a_mu[sl].T[:, None, :]
+            ccw = joint_mu[sl].T[:, None, :] - cw
+            out[sl] = _entropy_terms(cw, ccw).T
+        return out
 
     def next_levels(self) -> np.ndarray:
         """The level each copy proposes, shape (copies,)."""
