@@ -68,7 +68,13 @@ SLOW_TESTS = (
 
 
 def pytest_collection_modifyitems(config, items):
-    """Mark the tests of :data:`SLOW_TESTS` as ``slow``."""
+    """Mark the tests of :data:`SLOW_TESTS` as ``slow``, and start the slow and display tests first.
+
+    With the tests spread over worker processes, a long test that starts last
+    leaves the other cores idle until it ends; started first, the short tests
+    fill the gaps beside it.
+    """
     for item in items:
         if item.nodeid.startswith(SLOW_TESTS):
             item.add_marker(pytest.mark.slow)
+    items.sort(key=lambda item: item.get_closest_marker("slow") is None and item.get_closest_marker("display") is None)
