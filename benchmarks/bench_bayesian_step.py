@@ -9,9 +9,12 @@ ratios side by side. Times are CPU time of this process
 (``time.process_time``, all threads), so that other work on a shared
 machine does not inflate them.
 
+Last, copies stepped together (``runner/adaptive_batch.py``, the bootstrap
+pilot's way) against the same copies one at a time, per copy and trial.
+
 Run by hand::
 
-    python benchmarks/bench_bayesian_step.py [--trials 80] [--runs 5]
+    python benchmarks/bench_bayesian_step.py [--trials 80] [--runs 5] [--copies 100]
 """
 
 from __future__ import annotations
@@ -29,6 +32,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from runner import adaptive  # noqa: E402
 from runner.adaptive import EntropyGrid, EntropyTrack, UpDownTrack, restore  # noqa: E402
+from runner.adaptive_batch import EntropyBatch  # noqa: E402
 
 TARGET_MS = 10.0
 
@@ -51,6 +55,7 @@ def main(argv=None) -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--trials", type=int, default=80)
     parser.add_argument("--runs", type=int, default=5)
+    parser.add_argument("--copies", type=int, default=100, help="copies in the side-by-side of stepped copies")
     args = parser.parse_args(argv)
     grid = EntropyGrid()
     sizes = (grid.pse_values().size, grid.spread_values().size, grid.lapse_values().size, grid.level_values().size)
@@ -92,6 +97,44 @@ def main(argv=None) -> None:
         print(f"{'':>22} restore of a {args.trials}-trial state (replay): {statistics.median(replay_ms):.1f} ms")
     print(f"{'updown':>22} {'':>10} {'':>10} {updown:>9.4f} {updown / TARGET_MS:>13.5f} {1:>13.0f}")
     print(f"target: select + update <= {TARGET_MS} ms per trial on the default grid (trial/target <= 1)")
+    copies_side_by_side(args.trials, args.copies)
+
+
+def copies_side_by_side(trials: int, copies: int) -> None:
+    """Per copy and trial: ``copies`` tracks one at a time against the same number stepped together.
+
+    The bootstrap pilot that re-runs the tracks (fitting/replay.py) steps its
+    copies together (runner/adaptive_batch.py); both sides here run on the
+    grid of a protocol's default Bayesian procedure and of the bundled
+    protocol's bounds, with the same answers, CPU time of this process.
+    """
+    grid = EntropyGrid(pse_min=-20, pse_max=20, spread_min=1, spread_max=10, level_min=-45, level_max=45)
+    rng = np.random.default_rng(2)
+    truth = rng.normal(0, 3, copies)
+    singles = [EntropyTrack(max_trials=trials, grid=grid) for _ in range(copies)]
+    batch = EntropyBatch(copies, max_trials=trials, grid=grid)
+    spent = {"one at a time": 0.0, "stepped together": 0.0}
+    for _ in range(trials):
+        t0 = time.process_time()
+        levels = np.array([t.next_level() for t in singles])
+        t1 = time.process_time()
+        together = batch.next_levels()
+        t2 = time.process_time()
+        answers = (rng.random(copies) < ndtr((levels - truth) / 3.0)).astype(int)
+        t3 = time.process_time()
+        for t, x, y in zip(singles, levels, answers):
+            t.update(float(x), int(y))
+        t4 = time.process_time()
+        batch.update(levels, answers)       # the single tracks' levels, so both sides stay on the same path
+        t5 = time.process_time()
+        spent["one at a time"] += (t1 - t0) + (t4 - t3)
+        spent["stepped together"] += (t2 - t1) + (t5 - t4)
+        assert np.mean(together != levels) <= 0.01
+    per = {k: v / (copies * trials) * 1e6 for k, v in spent.items()}
+    print(f"\n{copies} copies x {trials} trials, pilot grid ({grid.pse_values().size} x {grid.spread_values().size} "
+          f"x {grid.lapse_values().size}, {grid.level_values().size} levels), CPU time per copy and trial:")
+    for name, us in per.items():
+        print(f"{name:>22}: {us:8.1f} us  ({per['one at a time'] / us:.2f} x faster than one at a time)")
 
 
 if __name__ == "__main__":

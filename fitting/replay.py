@@ -15,16 +15,17 @@ downstream are unchanged.
 ``fitting`` never imports the session engine: the tracks come from a
 *factory* passed in by the caller (the command line builds it from the
 protocol in each log's sidecar), ``factory(condition, track) -> object``
-with ``next_level()`` and ``update(level, response_cw)``.  A factory may
-also offer ``factory.copies(condition, track, n)``: ``n`` copies stepped
-together, with ``next_levels()`` and ``update(levels, responses)`` on
-arrays (the command line's does for Bayesian tracks, whose trials cost
-hundreds of microseconds one at a time).
+with ``next_level()``, ``update(level, response_cw)`` and ``finished``.  A
+factory may also offer ``factory.copies(condition, track, n)``: ``n``
+copies stepped together, with ``next_levels()`` (nan for a copy that has
+stopped) and ``update(levels, responses)`` on arrays; the command line's
+does for up–down, weighted and Bayesian tracks
+(:mod:`runner.adaptive_batch`).
 
-Cost: replicates × trials track steps.  Step tracks take microseconds
-each; Bayesian copies stepped together take about a hundred
-(``benchmarks/bench_bayesian_step.py``), which makes a pilot of 100
-re-runs seconds long per observer.
+Cost: replicates × trials track steps.  Step tracks take about a
+microsecond per copy stepped together; Bayesian copies a few hundred
+times that (``benchmarks/bench_bayesian_step.py``), which makes a pilot of
+100 re-runs seconds to tens of seconds long per observer.
 
 Generating parameters
 ---------------------

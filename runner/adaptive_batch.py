@@ -169,8 +169,6 @@ class EntropyBatch:
     simulated re-run), so all copies have the same trial count.
     """
 
-    kind = "bayesian"
-
     def __init__(self, copies: int, *, max_trials: int, target: str = "pse", grid: EntropyGrid | None = None,
                  placement: str = "entropy"):
         if target != "pse":
@@ -236,9 +234,9 @@ class EntropyBatch:
         return out
 
     def next_levels(self) -> np.ndarray:
-        """The level each copy proposes, shape (copies,)."""
+        """The level each copy proposes, shape (copies,); nan for every copy once finished."""
         if self.finished:
-            raise RuntimeError("EntropyBatch is finished; it proposes no more levels")
+            return np.full(self.copies, np.nan)
         if self.placement == "entropy":
             pick = np.argmin(self.expected_entropies(), axis=1)
         else:

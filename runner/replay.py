@@ -74,7 +74,8 @@ class TrackFactory:
     """Fresh tracks of one protocol, ``factory(condition, track_id)``; picklable, for worker processes.
 
     ``factory.copies(condition, track_id, n)`` gives ``n`` copies stepped
-    together where the procedure has that form (Bayesian tracks), else None.
+    together where the procedure has that form, else None
+    (:func:`runner.tracks.new_track_copies`).
     """
 
     def __init__(self, protocol):

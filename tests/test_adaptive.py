@@ -333,9 +333,9 @@ def test_bayesian_copies_refuse_what_they_cannot_do():
     with pytest.raises(ValueError, match="answers of 1 or 0"):
         batch.update([0.0, 0.0], [1, None])
     batch.update([0.0, 1.0], [1, 0])
-    assert batch.finished
+    assert batch.finished and np.isnan(batch.next_levels()).all()
     with pytest.raises(RuntimeError, match="finished"):
-        batch.next_levels()
+        batch.update([0.0, 1.0], [1, 0])
 
 
 @pytest.mark.parametrize("placement", ["pse_mean", "entropy"])
