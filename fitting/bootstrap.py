@@ -386,6 +386,16 @@ def _nuisance_mask(layout) -> np.ndarray:
     return mask
 
 
+def pilot_size(n_boot: int) -> int:
+    """Replicates of the pilot that sets the generating spread and lapse: a tenth, at least 100, at most 1,000.
+
+    The pilot estimates a mean bias only: 1,000 replicates put its Monte Carlo
+    error far below the bias itself, and more would only cost time (and, for
+    re-run Bayesian tracks, a posterior array per copy).
+    """
+    return min(1000, max(100, n_boot // 10))
+
+
 def parametric_bootstrap_many(fits, n_boot: int, rng: np.random.Generator,
                               progress: bool | None = None, label: str = "bootstrap",
                               chunk: int | None = None, bias_correct: bool = True,
@@ -406,8 +416,8 @@ def parametric_bootstrap_many(fits, n_boot: int, rng: np.random.Generator,
     condition the maximum-likelihood spread is biased low and a free lapse
     biased high, which narrows every replicate distribution and makes the
     PSE intervals cover less than they claim.  With ``bias_correct`` (the
-    default) a pilot run of ``pilot`` replicates (default ``max(100,
-    n_boot // 10)``) estimates that bias, and the replicates are generated at
+    default) a pilot run of ``pilot`` replicates (default
+    :func:`pilot_size`) estimates that bias, and the replicates are generated at
     ``theta_hat - bias`` for the spread(s) and the lapse only (PSEs stay at
     their estimates), kept inside the bounds.  Intervals remain centred on
     the estimates; :attr:`BootstrapResult.fit` is still the point fit.
@@ -421,7 +431,7 @@ def parametric_bootstrap_many(fits, n_boot: int, rng: np.random.Generator,
         raise ValueError("fits bootstrapped together must share layout, sigmoid and cell shape")
     if chunk is None:
         chunk = max(50, 500_000 // first.cells.x.size)
-    n_pilot = (pilot if pilot is not None else max(100, n_boot // 10)) if bias_correct else 0
+    n_pilot = (pilot if pilot is not None else pilot_size(n_boot)) if bias_correct else 0
     if generate is not None:
         n_pilot = 0
     with ProgressBar(len(fits) * (n_boot + n_pilot), label, show=progress) as bar:

@@ -33,7 +33,7 @@ import pandas as pd
 from scipy import special
 
 from .aftereffect import TAU_BOUNDS, bound_note, fit_decay, fit_tuning, peak_bounds
-from .bootstrap import BootstrapResult, parametric_bootstrap
+from .bootstrap import BootstrapResult, parametric_bootstrap, pilot_size
 from .profile import profile_pse, profile_shifts
 from .flags import MIN_TRIALS_FOR_INTERVAL, condense, join, on_bound, psychometric_flags
 from .progress import ProgressBar
@@ -309,7 +309,7 @@ def analyse_observer(observer: str, trials: pd.DataFrame, opts: Options,
                 boot = replay_bootstrap(fit, plan, factory, opts.n_boot, rng, opts.progress,
                                         f"bootstrap {observer} (tracks re-run)", studentize=studentize)
             else:
-                pilot = max(100, opts.n_boot // 10)
+                pilot = pilot_size(opts.n_boot)
                 with ProgressBar(pilot * len(names), f"pilot {observer} (tracks re-run)",
                                  show=opts.progress) as bar:
                     generate = rerun_generating_parameters(fit, plan, factory, pilot, rng, bar)
