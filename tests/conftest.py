@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import signal
 import subprocess
 import sys
 from pathlib import Path
@@ -65,6 +66,17 @@ SLOW_TESTS = (
     "tests/test_fit_report.py::test_figures_are_written_as_png_and_pdf",
     "tests/test_figures.py::test_parallel_and_serial_drawing_write_the_same_files",
 )
+
+
+def pytest_configure(config):
+    """Give Ctrl-C back its usual meaning when the test run was started with it ignored.
+
+    A background job of a non-interactive shell (and some CI runners) starts
+    with SIGINT ignored, and every command a test starts would inherit that:
+    the tests that press Ctrl-C on a command could not interrupt it.
+    """
+    if signal.getsignal(signal.SIGINT) == signal.SIG_IGN:
+        signal.signal(signal.SIGINT, signal.default_int_handler)
 
 
 def pytest_collection_modifyitems(config, items):
