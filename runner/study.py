@@ -264,7 +264,10 @@ def run_session_task(task: dict) -> list[dict]:
 
 def _fit_block(rows: list[dict], task: dict, protocol: Protocol):
     """``tuning``, ``decay`` and the baseline PSE (estimate, low, high) of an adapt-test session."""
-    trials = prepare_trials(pd.DataFrame(rows), source="simulated session")
+    frame = pd.DataFrame(rows)
+    # track numbers as a log holds them ("1", not the "1.0" of a column that practice rows' None made float)
+    frame["track"] = pd.Series([r["track"] for r in rows], index=frame.index, dtype=object)
+    trials = prepare_trials(frame, source="simulated session")
     # the pilot re-runs the session's tracks, as `fit` does when the sidecars give the protocol
     factory = TrackFactory(protocol)
     report = fit_trials(trials, n_boot=task["n_boot"], seed=task["seed"], lapse=task["lapse"], progress=False,

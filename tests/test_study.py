@@ -254,3 +254,30 @@ def test_stream_protocols_are_studied_with_the_nback_fit(tmp_path):
     assert np.allclose(amp["truth"], model.amplitude_deg * np.exp(-np.arange(k) / model.decay_periods))
     assert set(result.table["quantity"]) == {"amplitude", "peak_offset", "decay", "baseline_pse"}
     assert result.table["runs_with_estimate"].min() == 2
+
+
+def test_study_tasks_fit_with_the_pilot_that_reruns_the_tracks(monkeypatch):
+    # plan and recover must predict the intervals `fit` computes, whose default pilot re-runs the tracks;
+    # a simulated session in memory once gave track numbers as "1.0", and the pilot silently kept the
+    # levels fixed instead (the note below says so when it happens)
+    import dataclasses
+
+    import runner.study as study
+    from runner.protocol import load_protocol
+
+    seen = []
+    fit_trials = study.fit_trials
+
+    def spy(*args, **kwargs):
+        report = fit_trials(*args, **kwargs)
+        seen.append((kwargs.get("track_use"), report.notes))
+        return report
+
+    monkeypatch.setattr(study, "fit_trials", spy)
+    protocol = load_protocol(ROOT / "protocols" / "pilot_short.toml")
+    study.run_session_task({"protocol": protocol.model_dump(mode="json", exclude_none=True, exclude_unset=True),
+                            "model": dataclasses.asdict(ObserverModel()), "seed": 3, "n_boot": 50,
+                            "lapse": "free"})
+    (track_use, notes), = seen
+    assert track_use == "pilot"
+    assert not any("levels fixed" in n for ns in notes.values() for n in ns), notes
