@@ -5,6 +5,7 @@ Run from the repository root::
     python benchmarks/bench_default_tracks.py               # 1,500 runs per cell (Bayesian: 300)
     python benchmarks/bench_default_tracks.py --runs 300    # quicker
     python benchmarks/bench_default_tracks.py --quick --spread 6   # another observer
+    python benchmarks/bench_default_tracks.py --quick --methods bayesian --tracks 1   # one track of 80
 
 Every row is one ``[procedure]`` setting, built into tracks exactly as a
 session builds them (:func:`runner.tracks.procedure_track`): a pair of tracks
@@ -65,16 +66,17 @@ CANDIDATES = [
 ]
 
 
-def simulate(settings: dict, mus, lapse: float, seeds, spread: float = SPREAD) -> tuple[np.ndarray, np.ndarray]:
-    """Levels and answers (R, N) of one pair of tracks per run."""
+def simulate(settings: dict, mus, lapse: float, seeds, spread: float = SPREAD,
+             tracks: int = 2) -> tuple[np.ndarray, np.ndarray]:
+    """Levels and answers (R, N) of ``tracks`` tracks per run (taking turns, N trials in all)."""
     proc = ProcedureSettings(**settings)
     levels, answers = [], []
     for mu, seed in zip(mus, seeds):
         rng = np.random.default_rng(seed)
-        tracks = [procedure_track(proc, N_TRIALS // 2, t, (0, t)) for t in (0, 1)]
+        made = [procedure_track(proc, N_TRIALS // tracks, t, (0, t)) for t in range(tracks)]
         lv, an = [], []
         for i in range(N_TRIALS):
-            track = tracks[i % 2]
+            track = made[i % tracks]
             x = track.next_level()
             r = int(rng.random() < lapse / 2 + (1 - lapse) * ndtr((x - mu) / spread))
             track.update(x, r)
@@ -89,12 +91,13 @@ def _chunk(args):
     return simulate(*args)
 
 
-def cell(pool, settings: dict, lapse: float, runs: int, seed, far: bool, jobs: int, spread: float = SPREAD) -> dict:
+def cell(pool, settings: dict, lapse: float, runs: int, seed, far: bool, jobs: int, spread: float = SPREAD,
+         tracks: int = 2) -> dict:
     """Efficiency, spread RMSE and flags of one setting at one lapse rate."""
     rng = np.random.default_rng(seed)
     mus = np.full(runs, FAR_PSE) if far else rng.uniform(-5.0, 5.0, runs)
     seeds = [[*seed, i] for i in range(runs)]
-    parts = [(settings, mus[j::jobs], lapse, seeds[j::jobs], spread) for j in range(jobs)]
+    parts = [(settings, mus[j::jobs], lapse, seeds[j::jobs], spread, tracks) for j in range(jobs)]
     done = list(pool.map(_chunk, parts))
     order = np.concatenate([np.arange(runs)[j::jobs] for j in range(jobs)])
     levels = np.concatenate([d[0] for d in done])
@@ -110,20 +113,26 @@ def cell(pool, settings: dict, lapse: float, runs: int, seed, far: bool, jobs: i
 
 
 def efficiency_table(runs: int = 1500, seed: int = 1, quick: bool = False, jobs: int | None = None,
-                     spread: float = SPREAD) -> list[str]:
-    """The table as Markdown lines (``quick``: the defaults and the earlier Bayesian one; Bayesian with runs // 3)."""
+                     spread: float = SPREAD, tracks: int = 2, methods=None) -> list[str]:
+    """The table as Markdown lines (``quick``: the defaults and the earlier Bayesian one; Bayesian with runs // 3).
+
+    ``tracks``: tracks per condition sharing the 80 trials (2, as the
+    protocols have them; 1: one track of 80 trials).
+    """
     jobs = jobs or len(os.sched_getaffinity(0))
-    lines = [f"# default tracks at {N_TRIALS} trials: sigma = {spread:g} deg, true PSE uniform in [-5, 5] deg "
-             f"({runs} runs per cell, Bayesian {max(runs // 3, 20)}); far: PSE = {FAR_PSE:g} deg, lapse 4 %",
+    lines = [f"# default tracks at {N_TRIALS} trials in {tracks} track(s): sigma = {spread:g} deg, true PSE uniform "
+             f"in [-5, 5] deg ({runs} runs per cell, Bayesian {max(runs // 3, 20)}); far: PSE = {FAR_PSE:g} deg, "
+             "lapse 4 %",
              "| setting | PSE eff. λ = 0 | PSE eff. λ = 4 % | spread RMSE/σ λ = 0 | spread RMSE/σ λ = 4 % "
              "| far PSE: RMSE (deg) | far PSE: eff. | ≥ 0.85 in both |",
              "|---|---|---|---|---|---|---|---|"]
-    rows = CANDIDATES[:4] if quick else CANDIDATES
+    rows = [r for r in (CANDIDATES[:4] if quick else CANDIDATES) if not methods or r[1]["method"] in methods]
     with ProcessPoolExecutor(jobs) as pool:
         for label, settings in rows:
             n = max(runs // 3, 20) if settings["method"] == "bayesian" else runs
-            near = [cell(pool, settings, lam, n, [seed, i], False, jobs, spread) for i, lam in enumerate((0.0, 0.04))]
-            far = cell(pool, settings, 0.04, n, [seed, 2], True, jobs, spread)
+            near = [cell(pool, settings, lam, n, [seed, i], False, jobs, spread, tracks)
+                    for i, lam in enumerate((0.0, 0.04))]
+            far = cell(pool, settings, 0.04, n, [seed, 2], True, jobs, spread, tracks)
             met = all(c["eff"] >= 0.85 for c in near)
             lines.append(f"| {label} | {near[0]['eff']:.2f} ± {near[0]['eff_se']:.2f} | "
                          f"{near[1]['eff']:.2f} ± {near[1]['eff_se']:.2f} | {near[0]['sd_rel']:.2f} | "
@@ -138,11 +147,15 @@ def main() -> None:
     ap.add_argument("--seed", type=int, default=1)
     ap.add_argument("--quick", action="store_true", help="the defaults and the earlier Bayesian default only")
     ap.add_argument("--spread", type=float, default=SPREAD, help="the simulated observer's spread σ (deg)")
+    ap.add_argument("--tracks", type=int, choices=(1, 2), default=2,
+                    help="tracks per condition sharing the 80 trials (1: one track of 80)")
+    ap.add_argument("--methods", nargs="+", help="only the rows of these methods (e.g. bayesian)")
     args = ap.parse_args()
     defaults = ProcedureSettings()
     print(f"# defaults: start ±{defaults.start_offset_deg:g} deg, steps {defaults.steps_deg}, "
           f"k_down {defaults.k_down}, target_cw {defaults.target_cw:g}, Bayesian placement {defaults.bayes_placement}")
-    for line in efficiency_table(args.runs, args.seed, args.quick, spread=args.spread):
+    for line in efficiency_table(args.runs, args.seed, args.quick, spread=args.spread, tracks=args.tracks,
+                                 methods=args.methods):
         print(line, flush=True)
 
 
