@@ -72,11 +72,14 @@ from runner.protocol import load_protocol  # noqa: E402
 from runner.replay import track_factories  # noqa: E402
 
 
-def protocol_text(base: str, trials_per_condition: int, method: str) -> str:
-    """The base protocol with two tracks of ``trials_per_condition / 2`` and the given method."""
+def protocol_text(base: str, trials_per_condition: int, method: str, tracks: int = 2,
+                  placement: str | None = None) -> str:
+    """The base protocol with ``tracks`` tracks sharing ``trials_per_condition``, the given method (and placement)."""
     text = Path(base).read_text(encoding="utf-8")
-    text = re.sub(r"(?m)^tracks_per_condition\s*=.*$", "tracks_per_condition = 2", text)
-    text = re.sub(r"(?m)^trials_per_track\s*=.*$", f"trials_per_track = {trials_per_condition // 2}", text)
+    text = re.sub(r"(?m)^tracks_per_condition\s*=.*$", f"tracks_per_condition = {tracks}", text)
+    text = re.sub(r"(?m)^trials_per_track\s*=.*$", f"trials_per_track = {trials_per_condition // tracks}", text)
+    if placement is not None:
+        text = re.sub(r"(?m)^method\s*=.*$", lambda m: f'{m.group(0)}\nbayes_placement = "{placement}"', text)
     if method in ("bayesian", "constant"):
         # the protocol check refuses a start level the method would not use
         text = re.sub(r"(?m)^start_offset_deg\s*=.*\n", "", text)
@@ -420,7 +423,7 @@ def spread_bias(args, model, groups=(91, 92), size: int = 8) -> list[str]:
              "|---|---|---|---|---|"]
     for proc in args.procedures:
         for n_trials in args.trials:
-            text = protocol_text(args.protocol, n_trials, proc)
+            text = protocol_text(args.protocol, n_trials, proc, args.tracks, args.bayes_placement)
             ratio, z = [], []
             for seed in groups:
                 with tempfile.TemporaryDirectory() as tmp:
@@ -453,7 +456,7 @@ def timing(args, model) -> list[str]:
              "| procedure | trials/cond. | interval | fit s/observer | ratio to bca |", "|---|---|---|---|---|"]
     for proc in args.procedures:
         for n_trials in args.trials:
-            text = protocol_text(args.protocol, n_trials, proc)
+            text = protocol_text(args.protocol, n_trials, proc, args.tracks, args.bayes_placement)
             size = max(args.sizes)
             with tempfile.TemporaryDirectory() as tmp:
                 path = Path(tmp) / "protocol.toml"
@@ -493,6 +496,8 @@ def main() -> None:
     ap.add_argument("--spread-bias", action="store_true",
                     help="only measure the fitted / true spread and PSE z-scores (no bootstrap) and stop")
     ap.add_argument("--protocol", default=str(ROOT / "protocols" / "offset_by_lag.toml"))
+    ap.add_argument("--tracks", type=int, choices=(1, 2), default=2, help="tracks per condition sharing its trials")
+    ap.add_argument("--bayes-placement", choices=("entropy", "pse_mean"), help="placement of Bayesian tracks")
     ap.add_argument("--model", default=str(ROOT / "protocols" / "observers" / "typical.toml"))
     args = ap.parse_args()
     model = load_model(args.model)
@@ -513,7 +518,7 @@ def main() -> None:
     rej_lines = []
     for proc in args.procedures:
         for n_trials in args.trials:
-            text = protocol_text(args.protocol, n_trials, proc)
+            text = protocol_text(args.protocol, n_trials, proc, args.tracks, args.bayes_placement)
             jobs = [(text, model, size, 1000 * size + g, args.boot, pop, args.bootstraps, args.intervals)
                     for size in args.sizes for g in range(args.groups)]
             with ProcessPoolExecutor(max_workers=args.jobs) as pool:
