@@ -178,7 +178,7 @@ class EntropyBatch:
         one = EntropyTrack(max_trials=max_trials, target=target, grid=grid, placement=placement)  # checks all
         self.copies = int(copies)
         self.max_trials = max_trials
-        self.target, self.placement, self.grid = one.target, one.placement, one.grid
+        self.placement, self.grid = one.placement, one.grid        # the target is always "pse"
         self._mu, self._sigma = self.grid.pse_values(), self.grid.spread_values()
         lapse = self.grid.lapse_values()
         self._half_lapse, self._keep = lapse / 2.0, 1.0 - lapse
