@@ -7,7 +7,7 @@ from pathlib import Path
 import numpy as np
 
 from fitting.display_model import ChannelFit
-from fitting.figures import _plt, save
+from fitting.figures import pyplot, save
 
 #: Line colours per channel (grey drawn in near-black).
 CHANNEL_COLOURS = {"grey": "#333333", "red": "#b8322a", "green": "#3f8f3a", "blue": "#2f5fa8"}
@@ -28,7 +28,7 @@ def light_figure(fits: dict[str, ChannelFit], base: str | Path, title: str = "")
     list of str
         The files written.
     """
-    plt = _plt()
+    plt = pyplot()
     fig, (top, bottom) = plt.subplots(2, 1, figsize=(5.0, 5.2), sharex=True,
                                       gridspec_kw={"height_ratios": [3, 1.3]})
     grid = np.linspace(0.0, 1.0, 401)

@@ -57,7 +57,11 @@ _STYLE = {
 }
 
 
-def _plt():
+_METADATA = {"png": {"Software": None}, "pdf": {"CreationDate": None, "Producer": None}}  # no time stamps
+
+
+def pyplot():
+    """matplotlib's ``pyplot`` with the Agg backend (imported on first use)."""
     import matplotlib
     matplotlib.use("Agg", force=False)
     import matplotlib.pyplot as plt
@@ -92,13 +96,12 @@ def save(fig, base: Path, dpi: float | None = None, formats=FORMATS) -> list[str
         PNG resolution (default :data:`PNG_DPI`).
     formats : sequence of {"png", "pdf"}
     """
-    plt = _plt()
+    plt = pyplot()
     base.parent.mkdir(parents=True, exist_ok=True)
-    meta = {"png": {"Software": None}, "pdf": {"CreationDate": None, "Producer": None}}
     out = []
     for ext in formats:
         path = base.with_suffix("." + ext)
-        fig.savefig(path, metadata=meta[ext], dpi=dpi or PNG_DPI)
+        fig.savefig(path, metadata=_METADATA[ext], dpi=dpi or PNG_DPI)
         out.append(str(path))
     plt.close(fig)
     return out
@@ -208,24 +211,27 @@ def tracks_figure(a):
     """Test offset over trials in every track, one panel per condition."""
     conds, trials, fit = a.conditions, a.trials, a.fit
     t = trials.assign(_s=trials["session"].astype(str)).sort_values(["_s", "trial"], kind="mergesort")
-    length = t.groupby(["condition", "_s", "track"]).size()
     y = t["test_offset_deg"].to_numpy(float)
+    cw_all = t["response_cw"].to_numpy(float) == 1
+    cond = t["condition"].to_numpy()
+    track_all = t["track"].to_numpy()
+    # one run of trials per (condition, session, track), in trial order
+    run = t.groupby(["condition", "_s", "track"], sort=True).ngroup().to_numpy()
     lo, hi = float(np.nanmin(y)), float(np.nanmax(y))
     pad = 0.06 * max(hi - lo, 1.0)
-    canvas = PanelGrid(panel_positions(conds), (0.5, max(int(length.max()), 2) + 0.5),
+    canvas = PanelGrid(panel_positions(conds), (0.5, max(int(np.bincount(run).max()), 2) + 0.5),
                        (lo - pad, hi + pad),
                        f"Observer {a.observer}: track histories (colour: track; filled: answered "
                        "'clockwise', open: 'counter-clockwise'; dashed: fitted PSE)",
                        "trial in track", "test offset (deg)")
-    groups = {key: g for key, g in t.groupby("condition", sort=False)}
     for i, row in enumerate(conds.itertuples(index=False)):
-        sel = groups[row.condition]
-        tracks = sorted(sel["track"].unique())
-        for (_, track), tr in sel.groupby(["_s", "track"], sort=True):
-            colour = _LAG_COLOURS[tracks.index(track) % len(_LAG_COLOURS)]
-            n = np.arange(1, len(tr) + 1)
-            yy = tr["test_offset_deg"].to_numpy(float)
-            cw = tr["response_cw"].to_numpy(float) == 1
+        in_cond = cond == row.condition
+        tracks = sorted(set(track_all[in_cond]))
+        for r in np.unique(run[in_cond]):       # runs sort by session, then track, as before
+            sel = run == r
+            colour = _LAG_COLOURS[tracks.index(track_all[sel][0]) % len(_LAG_COLOURS)]
+            yy, cw = y[sel], cw_all[sel]
+            n = np.arange(1, len(yy) + 1)
             canvas.line(i, n, yy, colour, 0.7)
             canvas.markers(i, n[cw], yy[cw], colour, True)
             canvas.markers(i, n[~cw], yy[~cw], colour, False)
@@ -275,7 +281,7 @@ def aftereffect_figure(name: str, shifts, tuning, offsets=None):
     offsets : ignored
         Kept for callers of the earlier signature.
     """
-    plt = _plt()
+    plt = pyplot()
     lags = np.sort(shifts["lag"].dropna().unique())
     has_ci = bool(np.isfinite(shifts[["ci_low", "ci_high"]].to_numpy(float)).any()) if len(shifts) else False
     has_line = any(len(tuning[tuning["lag"] == lag]) for lag in lags)
@@ -342,7 +348,7 @@ def _between_lags(k, values, fine):
 
 def decay_figure(name: str, tuning, detail, reps=None, period_s: float = float("nan")):
     """Tuning amplitude per lag with intervals, and the fitted decay."""
-    plt = _plt()
+    plt = pyplot()
     lags = tuning["lag"].to_numpy(float)
     amp = tuning["amplitude_deg"].to_numpy(float)
     has_fit = detail is not None and len(detail) > 0
@@ -401,17 +407,20 @@ def _plain_worker_signals() -> None:
     signal.signal(signal.SIGTERM, signal.SIG_DFL)
 
 
+def observer_figure_tasks(a) -> list:
+    """``(draw, args, stem)`` of each figure of one observer's analysis."""
+    tag = safe_name(a.observer)
+    tasks = [(psychometric_figure, (a,), f"psychometric_{tag}"), (tracks_figure, (a,), f"tracks_{tag}")]
+    if len(a.aftereffect):
+        tasks.append((aftereffect_figure, (a.observer, a.aftereffect, a.tuning), f"aftereffect_{tag}"))
+    if len(a.tuning) >= 2 and len(a.decay_detail):
+        tasks.append((decay_figure, (a.observer, a.tuning, a.decay_detail, a.curves.get("decay"),
+                                     a.period_s), f"decay_{tag}"))
+    return tasks
+
+
 def _figure_tasks(analyses, group) -> list:
-    tasks = []
-    for a in analyses:
-        tag = safe_name(a.observer)
-        tasks.append((psychometric_figure, (a,), f"psychometric_{tag}"))
-        tasks.append((tracks_figure, (a,), f"tracks_{tag}"))
-        if len(a.aftereffect):
-            tasks.append((aftereffect_figure, (a.observer, a.aftereffect, a.tuning), f"aftereffect_{tag}"))
-        if len(a.tuning) >= 2 and len(a.decay_detail):
-            tasks.append((decay_figure, (a.observer, a.tuning, a.decay_detail, a.curves.get("decay"),
-                                         a.period_s), f"decay_{tag}"))
+    tasks = [t for a in analyses for t in observer_figure_tasks(a)]
     if group is not None and len(group["aftereffect"]):
         tasks.append((aftereffect_figure, ("group", group["aftereffect"], group["tuning"]),
                       "aftereffect_group"))
@@ -421,10 +430,33 @@ def _figure_tasks(analyses, group) -> list:
     return tasks
 
 
+def _dpi(draw) -> int:
+    return GRID_DPI if draw in (psychometric_figure, tracks_figure) else PNG_DPI
+
+
 def _run_task(i: int, out_dir: str, formats) -> list[str]:
     draw, args, stem = _TASKS[i]
-    dpi = GRID_DPI if draw in (psychometric_figure, tracks_figure) else PNG_DPI
-    return save(draw(*args), Path(out_dir) / stem, dpi=dpi, formats=formats)
+    return save(draw(*args), Path(out_dir) / stem, dpi=_dpi(draw), formats=formats)
+
+
+def draw_to_memory(task) -> dict[str, bytes]:
+    """Draw one figure into memory: ``task = (draw, args, stem, formats)`` -> ``{file name: bytes}``.
+
+    The bytes are those :func:`save` would write; runs in any process, so a
+    ``fit`` can draw an observer's figures while other observers are still
+    being fitted, and write them only when everything is done.
+    """
+    import io
+
+    draw, args, stem, formats = task
+    fig = draw(*args)
+    files = {}
+    for ext in formats:
+        buffer = io.BytesIO()
+        fig.savefig(buffer, format=ext, metadata=_METADATA[ext], dpi=_dpi(draw))
+        files[f"{stem}.{ext}"] = buffer.getvalue()
+    pyplot().close(fig)
+    return files
 
 
 def available_cores() -> int:
@@ -435,8 +467,16 @@ def available_cores() -> int:
         return os.cpu_count() or 1
 
 
+def check_formats(formats) -> tuple[str, ...]:
+    """``formats`` as a tuple, checked to be among :data:`FORMATS` (ValueError otherwise)."""
+    formats = tuple(formats)
+    if not formats or any(f not in FORMATS for f in formats):
+        raise ValueError(f"figure formats must be among {FORMATS}, not {formats}")
+    return formats
+
+
 def make_figures(analyses, group: dict | None, out_dir: Path, formats=FIT_FORMATS,
-                 jobs: int | None = None) -> list[str]:
+                 jobs: int | None = None, drawn: dict[str, bytes] | None = None) -> list[str]:
     """Draw and save every figure; returns the written paths (in a fixed order).
 
     Parameters
@@ -451,32 +491,40 @@ def make_figures(analyses, group: dict | None, out_dir: Path, formats=FIT_FORMAT
     jobs : int, optional
         Worker processes (default: the available cores).  Figures are
         independent, so they are drawn in parallel; 1 draws them here.
+    drawn : dict of str -> bytes, optional
+        Files already drawn (by :func:`draw_to_memory`), by file name: they
+        are written as they are and only the others are drawn.
     """
     global _TASKS
     out_dir = Path(out_dir)
-    formats = tuple(formats)
-    bad = [f for f in formats if f not in FORMATS]
-    if bad or not formats:
-        raise ValueError(f"figure formats must be among {FORMATS}, not {formats}")
+    formats = check_formats(formats)
+    drawn = drawn or {}
     try:
         out_dir.mkdir(parents=True, exist_ok=True)
     except OSError as e:
         raise InputError(str(out_dir), "--out", f"cannot create the figure folder ({e.strerror})") from None
     _TASKS = _figure_tasks(analyses, group)
-    _plt()                      # imported once here, inherited by the worker processes
+    names = [[f"{stem}.{ext}" for ext in formats] for _, _, stem in _TASKS]
+    ready = [i for i in range(len(_TASKS)) if all(n in drawn for n in names[i])]
+    todo = [i for i in range(len(_TASKS)) if i not in set(ready)]
     # the big grids first, so that the small figures fill in behind them
-    order = sorted(range(len(_TASKS)), key=lambda i: _TASKS[i][0] not in (psychometric_figure, tracks_figure))
-    jobs = min(jobs or available_cores(), len(_TASKS))
+    todo.sort(key=lambda i: _TASKS[i][0] not in (psychometric_figure, tracks_figure))
+    jobs = min(jobs or available_cores(), len(todo))
     try:
+        for i in ready:
+            for name in names[i]:
+                (out_dir / name).write_bytes(drawn[name])
+        if todo:
+            pyplot()            # imported once here, inherited by the worker processes
         if jobs > 1 and hasattr(os, "fork"):
             import multiprocessing
             with multiprocessing.get_context("fork").Pool(jobs, initializer=_plain_worker_signals) as pool:
-                done = pool.starmap(_run_task, [(i, str(out_dir), formats) for i in order], chunksize=1)
+                pool.starmap(_run_task, [(i, str(out_dir), formats) for i in todo], chunksize=1)
         else:
-            done = [_run_task(i, str(out_dir), formats) for i in order]
+            for i in todo:
+                _run_task(i, str(out_dir), formats)
     except OSError as e:        # e.g. a full disk: the tables are not written either
         raise InputError(str(e.filename or out_dir), "--out", f"cannot write a figure ({e.strerror})") from None
     finally:
         _TASKS = []
-    parts = dict(zip(order, done))
-    return [p for i in sorted(parts) for p in parts[i]]
+    return [str(out_dir / n) for row in names for n in row]

@@ -666,13 +666,13 @@ def result_tables(boot: NbackBootstrap) -> dict[str, pd.DataFrame]:
 
 def plot_amplitudes(boot: NbackBootstrap, base: Path) -> list[str]:
     """Figure of the DoG amplitude against n with intervals and the fitted decay (PNG, PDF)."""
-    from .figures import _STYLE, _plt, outside_legend, save, single_plot
+    from .figures import _STYLE, pyplot, outside_legend, save, single_plot
 
     fit = boot.fit
     k = fit.trials.n_back
     n = np.arange(1, k + 1)
     lo, hi = boot.amplitude_ci
-    plt = _plt()
+    plt = pyplot()
     title = f"{fit.trials.observer}: n-back amplitudes, peak offset {fit.peak_offset_deg:.3g} deg"
     with plt.rc_context(_STYLE):
         fig, ax = single_plot(plt, 6.6, 3.6, 2.6, title)

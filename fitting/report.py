@@ -39,6 +39,7 @@ from __future__ import annotations
 
 import math
 import numbers
+import threading
 import zlib
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -83,6 +84,11 @@ class FitReport:
     seed : int
     files : list of str
         Every file written.
+    group : dict or None
+        Group tables and curves (several observers).
+    side_results : dict
+        Results of the tasks that ``after_observer`` added (see
+        :func:`fit_trials`), by key.
     """
 
     pse: pd.DataFrame
@@ -97,6 +103,7 @@ class FitReport:
     out_dir: str = ""
     files: list = field(default_factory=list)
     group: dict | None = None
+    side_results: dict = field(default_factory=dict)
 
     def summary(self) -> str:
         """Plain-text report for the terminal."""
@@ -279,11 +286,15 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
                spread: str = "shared", progress=True, *, sigmoid: str = "gaussian",
                interval: str = BY_STATISTIC, level: float = 0.95,
                lapse_max: float = DEFAULT_LAPSE_MAX, map_tasks=None, tracks: dict | None = None,
-               track_use: str = "replicates") -> FitReport:
+               track_use: str = "replicates", after_observer=None) -> FitReport:
     """Fit checked trials (from :func:`read_logs`) without writing anything.
 
     Same options as :func:`fit_logs`; returns the :class:`FitReport` with
-    no files.
+    no files.  With ``map_tasks`` and several observers,
+    ``after_observer(analysis) -> {key: (function, argument)}`` may add tasks
+    that run on the same workers as soon as an observer's analysis is in
+    (:func:`fit_logs` draws the observer's figures so, beside the fits of
+    the others); their results are the report's ``side_results``.
     """
     opts = _check_options(n_boot, seed, lapse, spread, sigmoid, interval, level, lapse_max, progress)
     check_replicate_memory(opts.n_boot, int(trials.groupby(["observer", "condition"]).ngroups))
@@ -293,10 +304,16 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
         opts = replace(opts, tracks=dict(tracks), track_use=track_use)
     groups = {str(observer): obs_trials.reset_index(drop=True)
               for observer, obs_trials in trials.groupby("observer", sort=True)}
+    side_results = {}
     if map_tasks is not None and len(groups) > 1:
         quiet = replace(opts, progress=False)
-        done = map_tasks(_analyse_task, {obs: (obs, t, quiet, int(seed)) for obs, t in groups.items()})
+        tasks = {obs: (obs, t, quiet, int(seed)) for obs, t in groups.items()}
+        if after_observer is None:
+            done = map_tasks(_analyse_task, tasks)
+        else:
+            done = map_tasks(_analyse_task, tasks, lambda key, r: after_observer(r) if key in tasks else {})
         analyses = [done[obs] for obs in groups]
+        side_results = {k: v for k, v in done.items() if k not in tasks}
     else:
         analyses = [_analyse_task((obs, t, opts, int(seed))) for obs, t in groups.items()]
     notes = {a.observer: a.notes for a in analyses}
@@ -348,7 +365,7 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
     if covs:
         extras["aftereffect_covariance"] = pd.concat(covs, ignore_index=True)[COVARIANCE_COLUMNS]
     return FitReport(*(tables[k][MAIN_TABLES[k]] for k in MAIN_TABLES), extras, analyses, notes,
-                     opts, int(seed), group=group)
+                     opts, int(seed), group=group, side_results=side_results)
 
 
 def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
@@ -406,7 +423,12 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
         results under the same keys. Given, the observers are analysed through
         it (the command line hands them to local worker processes or a Dask
         cluster); each observer's replicates depend only on the seed and its
-        ID, so the tables are the same either way.
+        ID, so the tables are the same either way.  With figures, it is also
+        called as ``map_tasks(fn, tasks, then)``: ``then(key, result)`` returns
+        more tasks, ``{key: (function, argument)}``, to run as each result
+        arrives (here: the finished observer's figures, drawn into memory
+        while the others are fitted, written with the tables; the same bytes
+        as when drawn afterwards).
     tracks : dict of str -> callable, optional
         Per observer, a factory of fresh adaptive tracks: the bootstrap then
         re-runs the tracks with the fitted observer (:mod:`fitting.replay`;
@@ -429,18 +451,32 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
         raise InputError(str(out_dir), "--out", "exists and is not a folder")
     _check_options(n_boot, seed, lapse, spread, sigmoid, interval, level, lapse_max, progress)
     trials = read_logs(paths, include_bad_timing, include_practice)
+    if figures:
+        from .figures import check_formats, draw_to_memory, observer_figure_tasks, pyplot
+
+        formats = check_formats(figure_formats)
+        # imported while the observers are fitted rather than after them (joined before any drawing)
+        importing = threading.Thread(target=pyplot, name="import matplotlib", daemon=True)
+        importing.start()
+
+        def draw_early(analysis) -> dict:   # an observer's figures, drawn while others are fitted
+            return {("figure", stem): (draw_to_memory, (draw, args, stem, formats))
+                    for draw, args, stem in observer_figure_tasks(analysis)}
     report = fit_trials(trials, n_boot, seed, lapse, spread, progress, sigmoid=sigmoid,
                         interval=interval, level=level, lapse_max=lapse_max, map_tasks=map_tasks,
-                        tracks=tracks, track_use=track_use)
+                        tracks=tracks, track_use=track_use, after_observer=draw_early if figures else None)
     # all fitting is done; only now is anything written, staged and moved in as one set
     with output_set(out_dir, "fit") as staged:
         out = staged.folder
         fig_files: list[str] = []
         if figures:
             from .figures import make_figures
+            importing.join()
             with phase("drawing figures", show=report.options.progress,
                        count=lambda: _count_files(out / "figures")):
-                fig_files = make_figures(report.analyses, report.group, out / "figures", formats=figure_formats)
+                drawn = {name: data for files in report.side_results.values() for name, data in files.items()}
+                fig_files = make_figures(report.analyses, report.group, out / "figures", formats=figure_formats,
+                                         drawn=drawn)
         files = []
         for name, cols in MAIN_TABLES.items():
             write_csv(getattr(report, name), out / f"{name}.csv", cols)

@@ -57,6 +57,13 @@ def run_demo(out_dir: str | Path = "results_demo", progress: bool | None = None)
     progress : bool or None
         Progress on stderr (None: only on a terminal).
     """
+    from runner.workpool import FIT_MODULES, open_pool, task_mapper
+
+    out = Path(out_dir)
+    _prepare(out)
+    # the workers' parent process starts importing what they need now, beside the imports and the
+    # simulation below
+    pool = open_pool(preload=FIT_MODULES)
     from fitting.compare import compare_results
     from fitting.population import ChannelModel, predict_table
     from fitting.progress import phase
@@ -68,10 +75,6 @@ def run_demo(out_dir: str | Path = "results_demo", progress: bool | None = None)
     from runner.protocol import load_protocol, read_protocol_text
     from runner.replay import track_factories
     from runner.safety import screen_protocol
-    from runner.workpool import open_pool, task_mapper
-
-    out = Path(out_dir)
-    _prepare(out)
     protocol = load_protocol(PROTOCOL)
     text = read_protocol_text(PROTOCOL)
     screening = screen_protocol(protocol)
@@ -84,11 +87,10 @@ def run_demo(out_dir: str | Path = "results_demo", progress: bool | None = None)
         lock.unlink()
     fit_progress = True if progress is None else ("always" if progress else False)
     logs = [str(p) for p in find_logs([str(out / "logs")])]
-    pool = open_pool()          # the observers are fitted on every available core, as by `fit`
-    try:
+    try:                        # the observers are fitted on every available core, as by `fit`
         fit_logs(logs, str(out / "fit"), n_boot=N_BOOT, seed=SEED, progress=fit_progress, plan=plan_from_text,
-                 map_tasks=task_mapper(pool, "fitting observers"), tracks=track_factories(logs, strict=False),
-                 track_use="pilot")
+                 map_tasks=task_mapper(pool, "fitting"),
+                 tracks=track_factories(logs, strict=False), track_use="pilot")
     finally:
         pool.close()
     predictions = predict_table(

@@ -29,6 +29,7 @@ import importlib.metadata
 import json
 import logging
 import multiprocessing
+import multiprocessing.forkserver
 import os
 import signal
 import sys
@@ -44,6 +45,8 @@ from fitting.errors import InputError
 #: How to install the optional Dask part.
 CLUSTER_EXTRA = "pip install 'aftershift[cluster]' (or pip install -e '.[cluster]' in a checkout)"
 CONNECT_TIMEOUT_S = 10
+#: What the workers of ``fit`` need: the fits, and the figures they draw while other observers are fitted.
+FIT_MODULES = ("fitting.report", "fitting.figures", "matplotlib.pyplot", "runner.replay")
 WORKER_WAIT_S = 60
 
 
@@ -72,25 +75,51 @@ class LocalPool:
     workers : int, optional
         Number of worker processes (default: :func:`available_cores`). With 1,
         tasks run one after another in this process.
+    preload : tuple of str
+        Modules the workers need: the process the workers fork from starts
+        importing them at once, so the first tasks do not wait for imports.
+        Without it, the first task's module is imported when tasks arrive.
     """
 
-    def __init__(self, workers: int | None = None):
+    def __init__(self, workers: int | None = None, preload: tuple[str, ...] = ()):
         if workers is not None and (isinstance(workers, bool) or not isinstance(workers, int) or workers < 1):
             raise InputError("argument", "--jobs", f"expected a whole number >= 1, got {workers!r}")
         self.workers = available_cores() if workers is None else workers
         self.where = "this process" if self.workers == 1 else f"{self.workers} local worker processes"
+        if self.workers > 1 and preload:
+            # the server that forks the workers imports these now, beside whatever this process does
+            # before its first tasks (it does not wait for the server)
+            ctx = multiprocessing.get_context("forkserver")
+            ctx.set_forkserver_preload(list(preload))
+            try:
+                multiprocessing.forkserver.ensure_running()
+            except OSError:     # only a head start: the pool tries again, and reports, when it is used
+                pass
 
-    def map_unordered(self, fn: Callable, tasks: dict) -> Iterator[tuple[str, object]]:
-        """Run ``fn(task)`` for every task; yield ``(key, result)`` as each finishes."""
-        if self.workers == 1 or len(tasks) <= 1:
-            for key, task in tasks.items():
-                yield key, fn(task)
+    def map_unordered(self, fn: Callable, tasks: dict, then: Callable | None = None
+                      ) -> Iterator[tuple[str, object]]:
+        """Run ``fn(task)`` for every task; yield ``(key, result)`` as each finishes.
+
+        ``then(key, result)``, when given, is called here as each result
+        arrives and returns more tasks, ``{key: (function, argument)}``, that
+        join the queue at once (their results are yielded too and passed to
+        ``then`` in turn).
+        """
+        if self.workers == 1 or (len(tasks) <= 1 and then is None):
+            queue = [(key, fn, task) for key, task in tasks.items()]
+            while queue:
+                key, f, task = queue.pop(0)
+                result = f(task)
+                if then is not None:
+                    queue += [(k, f2, t2) for k, (f2, t2) in then(key, result).items()]
+                yield key, result
             return
         # forkserver: workers fork from a clean server process (not from this one, which may hold
         # threads) that has imported the task's module once, so they start without importing it again
         ctx = multiprocessing.get_context("forkserver")
         ctx.set_forkserver_preload([fn.__module__])
-        pool = ProcessPoolExecutor(min(self.workers, len(tasks)), mp_context=ctx, initializer=_ignore_interrupt)
+        size = self.workers if then is not None else min(self.workers, len(tasks))
+        pool = ProcessPoolExecutor(size, mp_context=ctx, initializer=_ignore_interrupt)
         pending = {pool.submit(fn, task): key for key, task in tasks.items()}
         try:
             while pending:
@@ -101,6 +130,8 @@ class LocalPool:
                         result = future.result()
                     except BrokenProcessPool:
                         raise WorkerLost("a local worker process died (killed, or out of memory)") from None
+                    if then is not None:
+                        pending.update({pool.submit(f2, t2): k for k, (f2, t2) in then(key, result).items()})
                     yield key, result
         finally:
             _stop(pool)
@@ -183,8 +214,11 @@ class ClusterPool:
         self.workers = len(versions)
         self.where = f"the Dask cluster at {address} ({self.workers} workers at start)"
 
-    def map_unordered(self, fn: Callable, tasks: dict) -> Iterator[tuple[str, object]]:
+    def map_unordered(self, fn: Callable, tasks: dict, then: Callable | None = None
+                      ) -> Iterator[tuple[str, object]]:
         """Submit every task; yield ``(key, result)`` as each finishes.
+
+        ``then`` adds tasks as results arrive, as in :meth:`LocalPool.map_unordered`.
 
         The Dask key of a task is its own key, so a task lost with a worker
         is rerun under the same identity; ``KilledWorker`` (a task that took
@@ -195,17 +229,28 @@ class ClusterPool:
         from distributed import as_completed
         from distributed.scheduler import KilledWorker
 
-        futures = {self.client.submit(fn, task, key=f"aftershift-{key}", pure=False): key
-                   for key, task in tasks.items()}
+        def submit(f: Callable, task, key: str):
+            future = self.client.submit(f, task, key=f"aftershift-{key}", pure=False)
+            futures[future] = key
+            return future
+
+        futures: dict = {}
+        for key, task in tasks.items():
+            submit(fn, task, key)
         try:
-            for future in as_completed(futures, loop=self.client.loop):
+            finished = as_completed(list(futures), loop=self.client.loop)
+            for future in finished:
                 try:
                     result = future.result()
                 except KilledWorker as exc:
                     raise WorkerLost(f"Dask workers died running a task ({exc})") from None
                 except (CancelledError, OSError):
                     raise WorkerLost(f"lost the connection to the Dask scheduler at {self.address}") from None
-                yield futures[future], result
+                key = futures[future]
+                if then is not None:
+                    for k, (f2, t2) in then(key, result).items():
+                        finished.add(submit(f2, t2, k))
+                yield key, result
                 future.release()
         finally:
             if self.client.status == "running":
@@ -216,8 +261,10 @@ class ClusterPool:
         self.client.close()
 
 
-def open_pool(scheduler: str | None = None, workers: int | None = None):
+def open_pool(scheduler: str | None = None, workers: int | None = None, preload: tuple[str, ...] = ()):
     """A :class:`ClusterPool` when ``scheduler`` is given, else a :class:`LocalPool`.
+
+    ``preload`` names the modules local workers need (see :class:`LocalPool`).
 
     Raises
     ------
@@ -231,7 +278,7 @@ def open_pool(scheduler: str | None = None, workers: int | None = None):
         if not scheduler.strip():
             raise InputError("argument", "--scheduler", "expected an address such as tcp://HOST:8786")
         return ClusterPool(scheduler.strip())
-    return LocalPool(workers)
+    return LocalPool(workers, preload)
 
 
 # ---------------------------------------------------------------- results on disk
@@ -335,7 +382,8 @@ def progress_bar(total: int, done: int, label: str, show: bool | None = None):
 
 
 def run_tasks(fn: Callable, tasks: dict, pool, store: TaskStore | None = None, label: str = "tasks",
-              about: Callable[[str], dict] | None = None, show: bool | None = None) -> dict:
+              about: Callable[[str], dict] | None = None, show: bool | None = None,
+              then: Callable | None = None) -> dict:
     """Run every task not yet in ``store``; return all results by key.
 
     Parameters
@@ -353,6 +401,11 @@ def run_tasks(fn: Callable, tasks: dict, pool, store: TaskStore | None = None, l
         ``about(key)`` -> dict stored beside a result, for people.
     show : bool or None
         Progress bar: None = only when stderr is a terminal.
+    then : callable, optional
+        ``then(key, result) -> {key: (function, argument)}``: follow-up tasks
+        that join the queue as each result arrives (see
+        :meth:`LocalPool.map_unordered`); they count in the progress bar and
+        are never stored.
 
     Raises
     ------
@@ -369,13 +422,18 @@ def run_tasks(fn: Callable, tasks: dict, pool, store: TaskStore | None = None, l
                 results[key] = found
     todo = {k: t for k, t in tasks.items() if k not in results}
     # closing(): on Ctrl-C the pool stops at once, not when the interrupted frame is collected
-    with progress_bar(len(tasks), len(results), label, show) as bar, \
-            closing(pool.map_unordered(fn, todo)) as finished:
-        for key, result in finished:
-            if store is not None:
-                store.save(key, result, about(key) if about else None)
-            results[key] = result
-            bar.update(1)
+    with progress_bar(len(tasks), len(results), label, show) as bar:
+        def counted(key, result) -> dict:
+            more = then(key, result)
+            bar.total += len(more)
+            return more
+
+        with closing(pool.map_unordered(fn, todo, counted if then else None)) as finished:
+            for key, result in finished:
+                if store is not None and key in tasks:
+                    store.save(key, result, about(key) if about else None)
+                results[key] = result
+                bar.update(1)
     return results
 
 
@@ -384,9 +442,9 @@ def task_mapper(pool, label: str) -> Callable[[Callable, dict], dict]:
 
     A lost worker becomes an :class:`InputError` (one line, exit 2).
     """
-    def map_tasks(fn: Callable, tasks: dict) -> dict:
+    def map_tasks(fn: Callable, tasks: dict, then: Callable | None = None) -> dict:
         try:
-            return run_tasks(fn, tasks, pool, label=f"{label} ({pool.where})")
+            return run_tasks(fn, tasks, pool, label=f"{label} ({pool.where})", then=then)
         except WorkerLost as exc:
             raise InputError("worker", "", f"{exc}; nothing was written, run the command again") from None
 

@@ -97,17 +97,23 @@ def test_plan_on_the_cluster_gives_the_local_numbers(cluster, protocol_file, loc
         assert f.read_bytes() == (local_study / "tasks" / f.name).read_bytes(), f.name
 
 
-def test_fit_of_several_observers_on_the_cluster_gives_the_local_tables(cluster, tmp_path):
+def test_fit_of_several_observers_on_the_cluster_gives_the_local_tables_and_figures(cluster, tmp_path):
+    # the cluster's workers also draw each observer's figures while the others are fitted
     address, _ = cluster
     protocol = parse_protocol(SMALL)
     simulate(protocol, "small.toml", SMALL, tmp_path / "logs", ObserverModel(), 3, seed=5, progress=False)
     on_cluster = run_cli("fit", tmp_path / "logs", "--out", tmp_path / "cluster", "--bootstrap", "50",
-                         "--no-figures", "--scheduler", address)
+                         "--scheduler", address)
     assert on_cluster.returncode == 0, on_cluster.stderr
     assert main(["fit", str(tmp_path / "logs"), "--out", str(tmp_path / "local"), "--bootstrap", "50",
-                 "--no-figures", "--jobs", "1"]) == 0
+                 "--jobs", "1"]) == 0
     for name in ("pse.csv", "aftereffect.csv", "tuning.csv", "fit_details.csv"):
         assert (tmp_path / "cluster" / name).read_bytes() == (tmp_path / "local" / name).read_bytes(), name
+    figures = sorted(p.name for p in (tmp_path / "local" / "figures").iterdir())
+    assert len(figures) >= 9 and figures == sorted(p.name for p in (tmp_path / "cluster" / "figures").iterdir())
+    for name in figures:
+        assert (tmp_path / "cluster" / "figures" / name).read_bytes() == \
+            (tmp_path / "local" / "figures" / name).read_bytes(), name
 
 
 def test_an_unreachable_scheduler_is_one_line(tmp_path, capsys):

@@ -310,6 +310,7 @@ def test_unreadable_log_for_an_unprivileged_user(tmp_path, whole):
 
     import fitting.nback  # noqa: F401 - imported before dropping root
     import fitting.report  # noqa: F401
+    import runner.workpool  # noqa: F401
 
     codecs.lookup("utf-8-sig")
 

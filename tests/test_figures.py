@@ -61,7 +61,7 @@ def test_many_offsets_wrap_into_rows(wide_fit):
     width, _ = fig.get_size_inches()
     assert width < 13                                               # 6 columns, not 12
     _texts_inside(fig)
-    figures._plt().close(fig)
+    figures.pyplot().close(fig)
 
 
 def test_structured_grid_keeps_lags_in_rows():
@@ -91,7 +91,7 @@ def test_group_caption_mentions_lines_only_when_drawn(wide_fit):
     assert "fitted tuning curve" in title(with_lines)
     assert "fitted tuning curve" not in title(without)
     assert not [ln for ln in without.axes[0].get_lines() if len(ln.get_xdata()) > 50]
-    figures._plt().close("all")
+    figures.pyplot().close("all")
 
 
 def test_decay_band_has_no_notch_after_lag_zero():

@@ -71,6 +71,23 @@ def test_same_seed_same_bytes_and_nothing_else_touched(logs, tmp_path):
     assert (a / "pse.csv").read_bytes() != (c / "pse.csv").read_bytes()
 
 
+def test_figures_drawn_beside_the_fits_are_the_bytes_drawn_after_them(logs, tmp_path):
+    # with worker processes, each observer's figures are drawn while the other observer is fitted
+    from runner.workpool import FIT_MODULES, open_pool, task_mapper
+
+    after = fit_logs([str(logs)], str(tmp_path / "after"), n_boot=40, seed=3, progress=False)
+    pool = open_pool(workers=2, preload=FIT_MODULES)
+    beside = fit_logs([str(logs)], str(tmp_path / "beside"), n_boot=40, seed=3, progress=False,
+                      map_tasks=task_mapper(pool, "fitting"))
+    assert set(beside.side_results) == {("figure", f"{kind}_{obs}") for obs in ("P1", "P2")
+                                        for kind in ("psychometric", "tracks", "aftereffect", "decay")}
+    names = sorted(p.name for p in (tmp_path / "after" / "figures").iterdir())
+    assert names == sorted(p.name for p in (tmp_path / "beside" / "figures").iterdir()) and len(names) == 10
+    for name in names:
+        assert (tmp_path / "after" / "figures" / name).read_bytes() == \
+            (tmp_path / "beside" / "figures" / name).read_bytes(), name
+
+
 def test_fixed_lapse_and_argument_errors(logs, tmp_path):
     report = fit_logs([str(logs)], str(tmp_path / "z"), n_boot=0, lapse=0.0, figures=False,
                       progress=False)

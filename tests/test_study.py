@@ -25,7 +25,7 @@ from runner.planner import plan_design
 from runner.protocol import parse_protocol
 from runner.recovery import recover
 from runner.study import StudySettings, expand_designs
-from runner.workpool import TaskStore, available_cores
+from runner.workpool import LocalPool, TaskStore, available_cores, run_tasks
 from test_planner import fisher_pse_half_width
 
 SMALL = """
@@ -59,6 +59,21 @@ def _write(tmp_path, text, name="protocol.toml"):
 
 def test_local_default_uses_the_cores_this_process_may_run_on():
     assert available_cores() == len(os.sched_getaffinity(0))
+
+
+@pytest.mark.parametrize("workers", [1, 2])
+def test_follow_up_tasks_join_the_queue_and_come_back(workers):
+    # each first-round result adds one task, whose result adds none: four results in all
+    pool = LocalPool(workers)
+    seen = []
+
+    def then(key, result):
+        seen.append(key)
+        return {f"{key}-root": (math.sqrt, result)} if not key.endswith("-root") else {}
+
+    got = run_tasks(abs, {"a": -9, "b": -16}, pool, show=False, then=then)
+    assert got == {"a": 9, "b": 16, "a-root": 3.0, "b-root": 4.0}
+    assert sorted(seen) == ["a", "a-root", "b", "b-root"]
 
 
 def test_a_session_in_memory_holds_the_rows_of_its_trial_log(tmp_path):
