@@ -204,6 +204,8 @@ def output_set(out_dir: str | Path, command: str):
     try:
         yield staged
         _commit(staged, command)
+    except InputError as exc:   # named where the user will look, not in the staging folder
+        raise InputError(exc.source.replace(str(stage), str(out)), exc.field, exc.message) from None
     except OSError as exc:
         raise InputError(str(out), "--out", f"cannot be written ({exc.strerror}); the earlier outputs "
                          "there are unchanged") from None

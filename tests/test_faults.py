@@ -271,6 +271,7 @@ def test_full_tmpfs_during_simulate_and_fit(capsys, tmp_path, whole):
         (small / "filler").write_bytes(b"\0" * (os.statvfs(small).f_bavail * os.statvfs(small).f_frsize))
         code, err = cli(capsys, "fit", whole, "--out", fit_dir, "--bootstrap", "0")
         assert code == 2 and "No space" in one_line(err)
+        assert ".staging" not in err and str(fit_dir) in err     # names the folder the user gave
         assert {p.name: p.read_bytes() for p in fit_dir.iterdir()} == before
         assert leftovers(fit_dir) == []
 
