@@ -478,6 +478,9 @@ def timing(args, model) -> list[str]:
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--groups", type=int, default=6, help="groups of each size per cell")
+    ap.add_argument("--first-group", type=int, default=0,
+                    help="number of the first group (its seed is 1000 x size + number): a run with "
+                         "--first-group K adds groups that a run with --groups K did not have")
     ap.add_argument("--sizes", type=int, nargs="+", default=[3, 8])
     ap.add_argument("--boot", type=int, default=400)
     ap.add_argument("--jobs", type=int, default=2)
@@ -511,7 +514,8 @@ def main() -> None:
         print("\n".join(timing(args, model)) + "\n", flush=True)
     print("# the combination step alone (20,000 simulated sets each; MC SE about 0.2 %)")
     print("\n".join(combination_only()) + "\n")
-    print(f"# coverage: {args.groups} groups of each size {args.sizes} per cell, {args.boot} replicates, "
+    print(f"# coverage: {args.groups} groups of each size {args.sizes} per cell (numbers {args.first_group}–"
+          f"{args.first_group + args.groups - 1}), {args.boot} replicates, "
           f"model {Path(args.model).name} (between-observer spread {model.spread_between_observers:g})")
     print("| procedure | trials/cond. | bootstrap / interval | who | statistic | coverage ± MC SE | intervals | target 93–97 % |")
     print("|---|---|---|---|---|---|---|---|")
@@ -520,7 +524,7 @@ def main() -> None:
         for n_trials in args.trials:
             text = protocol_text(args.protocol, n_trials, proc, args.tracks, args.bayes_placement)
             jobs = [(text, model, size, 1000 * size + g, args.boot, pop, args.bootstraps, args.intervals)
-                    for size in args.sizes for g in range(args.groups)]
+                    for size in args.sizes for g in range(args.first_group, args.first_group + args.groups)]
             with ProcessPoolExecutor(max_workers=args.jobs) as pool:
                 results = list(pool.map(one_group, jobs))
             for boot in args.bootstraps:
