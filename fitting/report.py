@@ -64,6 +64,10 @@ from .tables import prepare_trials, read_logs, write_csv, write_text
 MAIN_TABLES = {"pse": PSE_COLUMNS, "aftereffect": AFTEREFFECT_COLUMNS,
                "tuning": TUNING_COLUMNS, "decay": DECAY_COLUMNS}
 
+#: Observers whose figures a fit draws beside the other fits; they wait in memory (about 1 MB per observer
+#: of the bundled protocol) until everything is written, so a study of thousands does not hold gigabytes.
+EARLY_FIGURE_OBSERVERS = 200
+
 
 @dataclass
 class FitReport:
@@ -457,7 +461,13 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
 
         formats = check_formats(figure_formats)
 
-        def draw_early(analysis) -> dict:   # an observer's figures, drawn while others are fitted
+        early: list[str] = []
+
+        def draw_early(analysis) -> dict:
+            """An observer's figures, drawn while others are fitted and held in memory until the end."""
+            if len(early) >= EARLY_FIGURE_OBSERVERS:
+                return {}               # the rest are drawn after the fits, straight into files
+            early.append(analysis.observer)
             return {("figure", stem): (draw_to_memory, (draw, args, stem, formats))
                     for draw, args, stem in observer_figure_tasks(analysis)}
     report = fit_trials(trials, n_boot, seed, lapse, spread, progress, sigmoid=sigmoid,

@@ -71,21 +71,29 @@ def test_same_seed_same_bytes_and_nothing_else_touched(logs, tmp_path):
     assert (a / "pse.csv").read_bytes() != (c / "pse.csv").read_bytes()
 
 
-def test_figures_drawn_beside_the_fits_are_the_bytes_drawn_after_them(logs, tmp_path):
-    # with worker processes, each observer's figures are drawn while the other observer is fitted
+def test_figures_drawn_beside_the_fits_are_the_bytes_drawn_after_them(logs, tmp_path, monkeypatch):
+    # with worker processes, each observer's figures are drawn while the other observer is fitted;
+    # beyond EARLY_FIGURE_OBSERVERS they are drawn after the fits, as without workers
+    import fitting.report
     from runner.workpool import FIT_MODULES, open_pool, task_mapper
 
-    after = fit_logs([str(logs)], str(tmp_path / "after"), n_boot=40, seed=3, progress=False)
+    fit_logs([str(logs)], str(tmp_path / "after"), n_boot=40, seed=3, progress=False)
     pool = open_pool(workers=2, preload=FIT_MODULES)
+    kinds = ("psychometric", "tracks", "aftereffect", "decay")
     beside = fit_logs([str(logs)], str(tmp_path / "beside"), n_boot=40, seed=3, progress=False,
                       map_tasks=task_mapper(pool, "fitting"))
-    assert set(beside.side_results) == {("figure", f"{kind}_{obs}") for obs in ("P1", "P2")
-                                        for kind in ("psychometric", "tracks", "aftereffect", "decay")}
+    assert set(beside.side_results) == {("figure", f"{kind}_{obs}") for obs in ("P1", "P2") for kind in kinds}
+    monkeypatch.setattr(fitting.report, "EARLY_FIGURE_OBSERVERS", 1)
+    capped = fit_logs([str(logs)], str(tmp_path / "capped"), n_boot=40, seed=3, progress=False,
+                      map_tasks=task_mapper(pool, "fitting"))
+    assert len(capped.side_results) == len(kinds)
     names = sorted(p.name for p in (tmp_path / "after" / "figures").iterdir())
-    assert names == sorted(p.name for p in (tmp_path / "beside" / "figures").iterdir()) and len(names) == 10
-    for name in names:
-        assert (tmp_path / "after" / "figures" / name).read_bytes() == \
-            (tmp_path / "beside" / "figures" / name).read_bytes(), name
+    assert len(names) == 10
+    for out in ("beside", "capped"):
+        assert names == sorted(p.name for p in (tmp_path / out / "figures").iterdir())
+        for name in names:
+            assert (tmp_path / "after" / "figures" / name).read_bytes() == \
+                (tmp_path / out / "figures" / name).read_bytes(), (out, name)
 
 
 def test_fixed_lapse_and_argument_errors(logs, tmp_path):
