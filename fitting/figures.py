@@ -19,7 +19,10 @@ With several observers, ``aftereffect_group`` and ``decay_group`` as well.
 
 Speed: the panel grids are drawn on one canvas (:mod:`fitting.panels`), no
 automatic layout pass runs, and :func:`make_figures` draws independent
-figures in parallel processes.  PNGs are written at print resolution
+figures in parallel processes.  With several observers and worker
+processes, ``fit`` draws each observer's figures into memory
+(:func:`draw_to_memory`) on the workers while the other observers are still
+being fitted; :func:`make_figures` then writes them and draws the rest.  PNGs are written at print resolution
 (:data:`PNG_DPI`, :data:`GRID_DPI` for the panel grids).  ``fit`` writes PNGs
 only unless asked for PDF copies (``fit --pdf``, ``formats=("png", "pdf")``):
 they added about 0.65 s (a fifth) to a 25-condition ``fit`` with 2,000
