@@ -483,8 +483,7 @@ def main() -> None:
                          "--first-group K adds groups that a run with --groups K did not have")
     ap.add_argument("--sizes", type=int, nargs="+", default=[3, 8])
     ap.add_argument("--boot", type=int, default=1000,
-                    help="bootstrap replicates per fit (default: fit's own default, 1000; with 400 the BCa "
-                         "limits of tuning amplitudes covered 2.7 points less on the same fits)")
+                    help="bootstrap replicates per fit (default: fit's own default, 1000)")
     ap.add_argument("--jobs", type=int, default=2)
     ap.add_argument("--trials", type=int, nargs="+", default=[24, 40], help="trials per condition")
     ap.add_argument("--procedures", nargs="+", default=["updown", "bayesian"])
