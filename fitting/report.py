@@ -461,13 +461,14 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
 
         formats = check_formats(figure_formats)
 
-        early: list[str] = []
+        early = 0                       # observers whose figures are drawn beside the fits
 
         def draw_early(analysis) -> dict:
             """An observer's figures, drawn while others are fitted and held in memory until the end."""
-            if len(early) >= EARLY_FIGURE_OBSERVERS:
+            nonlocal early
+            if early >= EARLY_FIGURE_OBSERVERS:
                 return {}               # the rest are drawn after the fits, straight into files
-            early.append(analysis.observer)
+            early += 1
             return {("figure", stem): (draw_to_memory, (draw, args, stem, formats))
                     for draw, args, stem in observer_figure_tasks(analysis)}
     report = fit_trials(trials, n_boot, seed, lapse, spread, progress, sigmoid=sigmoid,
