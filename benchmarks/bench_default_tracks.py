@@ -6,6 +6,7 @@ Run from the repository root::
     python benchmarks/bench_default_tracks.py --runs 300    # quicker
     python benchmarks/bench_default_tracks.py --quick --spread 6   # another observer
     python benchmarks/bench_default_tracks.py --quick --methods bayesian --tracks 1   # one track of 80
+    python benchmarks/bench_default_tracks.py --quick --methods bayesian --scratch --runs 1800   # variants not adopted
 
 Every row is one ``[procedure]`` setting, built into tracks exactly as a
 session builds them (:func:`runner.tracks.procedure_track`): a pair of tracks
@@ -44,7 +45,8 @@ sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 
 from bench_adaptive_efficiency import fit_runs, pse_bound  # noqa: E402
 from runner.protocol import ProcedureSettings  # noqa: E402
-from runner.tracks import procedure_track  # noqa: E402
+from runner.adaptive import EntropyTrack  # noqa: E402
+from runner.tracks import entropy_settings, procedure_track  # noqa: E402
 
 SPREAD = 3.0
 N_TRIALS = 80
@@ -66,14 +68,51 @@ CANDIDATES = [
 ]
 
 
+class ScratchEntropyTrack(EntropyTrack):
+    """Two Bayesian variants tried against the default and not adopted (benchmark only).
+
+    ``switch_after``: least expected entropy for the first K trials of the
+    track, then the level nearest the posterior mean of the PSE;
+    ``pse_prior_sd``: a Gaussian prior on the PSE centred on the reference.
+    """
+
+    def __init__(self, switch_after: int | None = None, pse_prior_sd: float | None = None, **kw):
+        super().__init__(**kw)
+        self.switch_after = switch_after
+        if pse_prior_sd:
+            self._log_post += (-0.5 * (self._mu / pse_prior_sd) ** 2)[:, None, None]
+
+    def next_level(self) -> float:
+        if self._proposal is None and self.switch_after is not None and self.n_trials >= self.switch_after:
+            pick = int(np.argmin(np.abs(self._level_values - self.posterior_mean().pse)))
+            self._proposal = float(self._level_values[pick])
+        return super().next_level()
+
+
+SCRATCH = ("switch_after", "pse_prior_sd")
+
+
+def _track(settings: dict, n: int, t: int):
+    """Track number ``t`` as a session builds it, or a :class:`ScratchEntropyTrack` for a scratch setting."""
+    scratch = {k: settings[k] for k in SCRATCH if k in settings}
+    proc = ProcedureSettings(**{k: v for k, v in settings.items() if k not in SCRATCH})
+    if scratch:
+        return ScratchEntropyTrack(**scratch, **entropy_settings(proc, n))
+    return procedure_track(proc, n, t, (0, t))
+
+
+SCRATCH_ROWS = [(f"bayesian, entropy for {k} trials then posterior mean (scratch)",
+                 dict(method="bayesian", switch_after=k)) for k in (4, 10, 20, 30)] + [
+    (f"bayesian, Gaussian PSE prior SD {sd:g}° (scratch)", dict(method="bayesian", pse_prior_sd=sd)) for sd in (6.0, 10.0)]
+
+
 def simulate(settings: dict, mus, lapse: float, seeds, spread: float = SPREAD,
              tracks: int = 2) -> tuple[np.ndarray, np.ndarray]:
     """Levels and answers (R, N) of ``tracks`` tracks per run (taking turns, N trials in all)."""
-    proc = ProcedureSettings(**settings)
     levels, answers = [], []
     for mu, seed in zip(mus, seeds):
         rng = np.random.default_rng(seed)
-        made = [procedure_track(proc, N_TRIALS // tracks, t, (0, t)) for t in range(tracks)]
+        made = [_track(settings, N_TRIALS // tracks, t) for t in range(tracks)]
         lv, an = [], []
         for i in range(N_TRIALS):
             track = made[i % tracks]
@@ -113,7 +152,7 @@ def cell(pool, settings: dict, lapse: float, runs: int, seed, far: bool, jobs: i
 
 
 def efficiency_table(runs: int = 1500, seed: int = 1, quick: bool = False, jobs: int | None = None,
-                     spread: float = SPREAD, tracks: int = 2, methods=None) -> list[str]:
+                     spread: float = SPREAD, tracks: int = 2, methods=None, scratch: bool = False) -> list[str]:
     """The table as Markdown lines (``quick``: the defaults and the earlier Bayesian one; Bayesian with runs // 3).
 
     ``tracks``: tracks per condition sharing the 80 trials (2, as the
@@ -127,6 +166,7 @@ def efficiency_table(runs: int = 1500, seed: int = 1, quick: bool = False, jobs:
              "| far PSE: RMSE (deg) | far PSE: eff. | ≥ 0.85 in both |",
              "|---|---|---|---|---|---|---|---|"]
     rows = [r for r in (CANDIDATES[:4] if quick else CANDIDATES) if not methods or r[1]["method"] in methods]
+    rows += [r for r in SCRATCH_ROWS if scratch]
     with ProcessPoolExecutor(jobs) as pool:
         for label, settings in rows:
             n = max(runs // 3, 20) if settings["method"] == "bayesian" else runs
@@ -150,12 +190,15 @@ def main() -> None:
     ap.add_argument("--tracks", type=int, choices=(1, 2), default=2,
                     help="tracks per condition sharing the 80 trials (1: one track of 80)")
     ap.add_argument("--methods", nargs="+", help="only the rows of these methods (e.g. bayesian)")
+    ap.add_argument("--scratch", action="store_true",
+                    help="also the Bayesian variants tried and not adopted (posterior mean after K entropy "
+                         "trials; a Gaussian prior on the PSE)")
     args = ap.parse_args()
     defaults = ProcedureSettings()
     print(f"# defaults: start ±{defaults.start_offset_deg:g} deg, steps {defaults.steps_deg}, "
           f"k_down {defaults.k_down}, target_cw {defaults.target_cw:g}, Bayesian placement {defaults.bayes_placement}")
     for line in efficiency_table(args.runs, args.seed, args.quick, spread=args.spread, tracks=args.tracks,
-                                 methods=args.methods):
+                                 methods=args.methods, scratch=args.scratch):
         print(line, flush=True)
 
 

@@ -19,7 +19,7 @@ from runner.protocol import ProcedureSettings, Protocol
 from runner.schedule import Schedule
 
 
-def _entropy_settings(proc: ProcedureSettings, n: int) -> dict:
+def entropy_settings(proc: ProcedureSettings, n: int) -> dict:
     """Keyword arguments of a Bayesian track of ``n`` trials under ``proc``."""
     lo, hi = proc.bounds_deg
     grid = EntropyGrid(
@@ -56,7 +56,7 @@ def procedure_track(proc: ProcedureSettings, n: int, track: int, seed_words: tup
         target = proc.target_cw if cw_side else 1.0 - proc.target_cw
         return WeightedTrack(target_p_cw=target, start_level=start, steps=proc.steps_deg, bounds=proc.bounds_deg, **stop)
     if proc.method == "bayesian":
-        return EntropyTrack(**_entropy_settings(proc, n))
+        return EntropyTrack(**entropy_settings(proc, n))
     repeats = n // len(proc.levels_deg)
     seed = zlib.crc32(repr(seed_words).encode())
     return ConstantLevels(levels=proc.levels_deg, repeats=repeats, seed=seed)
@@ -79,7 +79,7 @@ def new_track_copies(protocol: Protocol, track: int, copies: int):
     if proc.method in ("updown", "weighted"):
         return StepCopies(procedure_track(proc, n, track, (0,)), copies)
     if proc.method == "bayesian" and proc.bayes_target == "pse":
-        return EntropyBatch(copies, **_entropy_settings(proc, n))
+        return EntropyBatch(copies, **entropy_settings(proc, n))
     return None
 
 

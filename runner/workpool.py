@@ -34,6 +34,7 @@ import os
 import signal
 import sys
 import tempfile
+from collections import deque
 from collections.abc import Callable, Iterator
 from contextlib import closing
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
@@ -106,12 +107,12 @@ class LocalPool:
         ``then`` in turn).
         """
         if self.workers == 1 or (len(tasks) <= 1 and then is None):
-            queue = [(key, fn, task) for key, task in tasks.items()]
+            queue = deque((key, fn, task) for key, task in tasks.items())
             while queue:
-                key, f, task = queue.pop(0)
+                key, f, task = queue.popleft()
                 result = f(task)
                 if then is not None:
-                    queue += [(k, f2, t2) for k, (f2, t2) in then(key, result).items()]
+                    queue.extend((k, f2, t2) for k, (f2, t2) in then(key, result).items())
                 yield key, result
             return
         # forkserver: workers fork from a clean server process (not from this one, which may hold
