@@ -178,7 +178,9 @@ def chi2_candidates(report, truths: dict) -> dict:
     with ``V`` known); the observed-information (inverse Hessian, delta method) covariance (Efron &
     Hinkley 1978); the bootstrap-calibrated statistic (share of ``T*_b >= T``, Davison & Hinkley 1997,
     ch. 4; covariance from half the replicates, T*_b from the other half); t scores on
-    ``n_trials / 2 - 1`` (trials per track − 1) degrees of freedom.
+    ``n_trials / 2 - 1`` (trials per track − 1) degrees of freedom; normal scores scaled by the side of
+    the printed 95 % interval facing the truth, so that each score passes 1.96 exactly when the truth
+    falls outside the interval, with the replicates' correlation.
     """
     out = defaultdict(dict)
     for a in report.analyses:
@@ -212,6 +214,16 @@ def chi2_candidates(report, truths: dict) -> dict:
             g, g_se, _ = gls_gain(est, truth, np.linalg.inv(oi), free_scale=False)
             out["observed information"][a.observer] = (stats.chi2.sf(t_oi, n) < 0.05, t_oi, n,
                                                        abs(g - 1.0) <= 1.959964 * g_se)
+        # scores scaled by the printed interval's own side (|z| > 1.96 exactly when the truth is outside it),
+        # correlated as the replicates are
+        lo, hi = ae["ci_low"].to_numpy(float), ae["ci_high"].to_numpy(float)
+        side = np.where(est >= truth, est - lo, hi - est)
+        if np.all(side > 0):
+            z = 1.959964 * e / side
+            sd = np.sqrt(np.diagonal(cov))
+            t_int = float(h * z @ np.linalg.solve(cov / np.outer(sd, sd), z))
+            out["scores from the printed interval's side"][a.observer] = (
+                stats.chi2.sf(t_int, n) < 0.05, t_int, n, np.nan)
         half = ae["n_trials"].to_numpy(float) / 2 + 1       # read as n_trials - 2 = trials per track - 1
         b = agreement(est, ae["ci_low"], ae["ci_high"], truth, None, cov, n_rep, np.nan, trials=half)
         out["t scores on trials per track - 1"][a.observer] = (b.chi2_p < 0.05, b.chi2, b.dof,

@@ -145,12 +145,17 @@ def _stop(pool: ProcessPoolExecutor) -> None:
     """Cancel queued tasks and end the worker processes now, without waiting for running tasks."""
     # ProcessPoolExecutor has no public way to stop a running task before Python 3.14
     processes = list((getattr(pool, "_processes", None) or {}).values())
+    manager = getattr(pool, "_executor_manager_thread", None)     # shutdown forgets it
     pool.shutdown(wait=False, cancel_futures=True)
     for process in processes:
         if process.is_alive():
             process.terminate()
     for process in processes:
         process.join(timeout=5)
+    # the pool's manager thread closes its wake-up pipe as it ends; left running, it races the
+    # interpreter's exit hook, which writes to that pipe (an EBADF traceback after the last line)
+    if manager is not None:
+        manager.join(timeout=10)
 
 
 def _worker_version() -> str | None:

@@ -8,6 +8,7 @@ import os
 import signal
 import subprocess
 import sys
+import threading
 import time
 from pathlib import Path
 
@@ -74,6 +75,18 @@ def test_follow_up_tasks_join_the_queue_and_come_back(workers):
     got = run_tasks(abs, {"a": -9, "b": -16}, pool, show=False, then=then)
     assert got == {"a": 9, "b": 16, "a-root": 3.0, "b-root": 4.0}
     assert sorted(seen) == ["a", "a-root", "b", "b-root"]
+
+
+def test_stopping_local_workers_leaves_no_pool_thread_for_the_exit_hook():
+    # A pool thread still running at exit raced the interpreter's exit hook of concurrent.futures
+    # (CPython 3.11), which then printed an EBADF traceback after plan's "interrupted" line.
+    results = LocalPool(2).map_unordered(time.sleep, {"quick": 0.0, "slow": 60.0})
+    t0 = time.perf_counter()
+    assert next(results)[0] == "quick"
+    results.close()                      # as when Ctrl-C leaves the loop: the pool is stopped
+    assert time.perf_counter() - t0 < 20
+    left = [t.name for t in threading.enumerate() if type(t).__name__ == "_ExecutorManagerThread" and t.is_alive()]
+    assert left == []
 
 
 def test_a_session_in_memory_holds_the_rows_of_its_trial_log(tmp_path):
