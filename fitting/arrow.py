@@ -27,6 +27,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import linalg
 
 # local parameter order in the per-condition blocks: (pse, log spread, lapse)
 _PSE, _SPREAD, _LAPSE = 0, 1, 2
@@ -164,11 +165,36 @@ class Arrow:
 
 
 def dense_solve(h: np.ndarray, g: np.ndarray) -> np.ndarray:
-    """Solve ``h d = g`` for a stack of dense matrices, falling back to a pseudo-inverse."""
+    """Solve ``h d = g`` for a stack of dense matrices, falling back to a pseudo-inverse.
+
+    A singular matrix gets the minimum-norm least-squares solution.  Where
+    the pseudo-inverse's SVD does not converge (LAPACK fails on some
+    matrices whose entries span ~300 decades, as a Hessian does when a
+    condition's PSE has run far past its data), that matrix is solved by a
+    complete orthogonal factorization instead (LAPACK ``gelsy``, QR with
+    column pivoting: no iteration to fail).  A matrix or right-hand side
+    with non-finite entries gives NaN, which the Newton solver treats as no
+    descent direction.
+    """
+    out = np.full(g.shape, np.nan)
+    ok = np.isfinite(h).all(axis=(1, 2)) & np.isfinite(g).all(axis=1)
+    h, g = h[ok], g[ok]
     try:
-        return np.linalg.solve(h, g[..., None])[..., 0]
+        out[ok] = np.linalg.solve(h, g[..., None])[..., 0]
     except np.linalg.LinAlgError:
-        return np.einsum("bij,bj->bi", np.linalg.pinv(h), g)
+        try:
+            out[ok] = np.einsum("bij,bj->bi", np.linalg.pinv(h), g)
+        except np.linalg.LinAlgError:
+            out[ok] = [_least_squares(hi, gi) for hi, gi in zip(h, g)]
+    return out
+
+
+def _least_squares(h: np.ndarray, g: np.ndarray) -> np.ndarray:
+    """Minimum-norm least-squares solution of one finite system (see :func:`dense_solve`)."""
+    try:
+        return np.linalg.pinv(h) @ g
+    except np.linalg.LinAlgError:
+        return linalg.lstsq(h, g, lapack_driver="gelsy", check_finite=False)[0]
 
 
 def _small_inverse(a: np.ndarray):

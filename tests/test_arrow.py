@@ -1,9 +1,12 @@
 """The Schur-complement solve of the joint fit's arrow-shaped Hessian."""
 
+from pathlib import Path
+
 import numpy as np
 import pytest
 
-from fitting.arrow import Arrow
+from conftest import ROOT, run_cli
+from fitting.arrow import Arrow, dense_solve
 from fitting.psychometric import Layout
 
 
@@ -47,3 +50,34 @@ def test_singular_blocks_fall_back_to_the_pseudo_inverse():
     assert np.isfinite(out).all()
     # reference: numpy's pseudo-inverse gives the minimum-norm solution
     assert np.allclose(out[1], np.linalg.pinv(arrow.dense()[1]) @ g[1])
+
+
+def test_a_matrix_whose_svd_does_not_converge_still_gets_the_least_squares_solution():
+    # A Newton step's Hessian (26 of its 35 rows) from the pilot of the log below, with entries from
+    # 1e-174 to 4e3; numpy 2.3's pinv raises "SVD did not converge" on it (LAPACK gesdd).
+    d = np.load(ROOT / "tests" / "data" / "hessian_svd_fails.npz")
+    h, g = d["h"], d["g"]
+    x = dense_solve(np.stack([h, np.eye(h.shape[0])]), np.stack([g, g]))
+    assert np.isfinite(x).all()
+    assert np.allclose(x[1], g)                           # the other matrix of the stack is unaffected
+    # least squares: the residual is orthogonal to the columns of h (normal equations)
+    assert np.abs(h.T @ (h @ x[0] - g)).max() < 1e-8 * np.abs(h).max() * np.abs(g).max()
+    # minimum norm: nothing along the null space (row and column 13 are all zero)
+    assert np.all(h[13] == 0) and np.all(h[:, 13] == 0) and x[0, 13] == 0.0
+
+
+def test_non_finite_rows_give_no_direction_rather_than_an_error():
+    h = np.stack([np.diag([1.0, 0.0]), np.array([[np.inf, 0.0], [0.0, 0.0]])])
+    x = dense_solve(h, np.ones((2, 2)))
+    assert np.allclose(x[0], [1.0, 0.0]) and np.isnan(x[1]).all()
+
+
+@pytest.mark.slow
+def test_fit_of_the_log_that_broke_the_pilot_completes(tmp_path):
+    # simulated: 24 up-down trials per condition; its pilot re-run met the matrix above and the fit
+    # died with a traceback; the spread collapses (0.07 deg against a true 2.65), which the rows flag
+    log = ROOT / "tests" / "data" / "collapsed_pilot" / "sim06-s1.trials.csv"
+    done = run_cli("fit", log, "--out", tmp_path / "fit", "--seed", 8053, "--bootstrap", 20, "--no-figures")
+    assert done.returncode == 0, done.stderr
+    pse = (tmp_path / "fit" / "pse.csv").read_text()
+    assert "steep" in pse
