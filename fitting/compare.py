@@ -97,7 +97,7 @@ def _read_csv(path: Path, required: tuple[str, ...], may_be_empty: tuple[str, ..
                              f"({str(frame[col].iloc[line - 2])!r})")
         if bad.any():
             line = int(np.flatnonzero(bad.to_numpy())[0]) + 2
-            raise InputError(str(path), f"line {line}", f"{col}: expected a number, found {frame[col].iloc[line - 2]!r}")
+            raise InputError(str(path), f"line {line}", f"{col}: expected a number, found {str(frame[col].iloc[line - 2])!r}")
         frame[col] = values
     return frame
 
@@ -301,7 +301,9 @@ def agreement(measured, ci_low, ci_high, predicted, prediction_sd=None, covarian
                          gain_unweighted=float(np.sum(m * p) / pp) if pp > 0 else nan,
                          covariance="diagonal" if covariance is None else "full")
     if np.any(np.diagonal(v) <= 0):
-        raise InputError("aftereffect.csv", "ci_low/ci_high", "a measured point has a zero-width CI and no prediction sd")
+        if covariance is None:
+            raise InputError("aftereffect.csv", "ci_low/ci_high", "a measured point has a zero-width CI and no prediction sd")
+        raise InputError(COVARIANCE_FILE, "covariance_deg2", "a measured point has zero variance and no prediction sd")
     scale = 1.0
     if np.isfinite(replicates) and replicates > n + 2:
         scale = (replicates - n - 2) / (replicates - 1)      # Hartlap et al. (2007)
@@ -418,6 +420,30 @@ def _leave_out_interval_statistics(points: pd.DataFrame, table: pd.DataFrame) ->
     return tuple(notes)
 
 
+def _optional_numbers(table: pd.DataFrame, col: str, path: Path) -> pd.Series:
+    """Column ``col`` as numbers (NaN where empty or where the column is absent); text is an error."""
+    if col not in table:
+        return pd.Series(np.nan, index=table.index)
+    values = pd.to_numeric(table[col], errors="coerce")
+    bad = values.isna() & table[col].notna()
+    if bad.any():
+        line = int(np.flatnonzero(bad.to_numpy())[0]) + 2
+        raise InputError(str(path), f"line {line}", f"{col}: expected a number, found {str(table[col].iloc[line - 2])!r}")
+    return values
+
+
+def _check_covariance(cov: np.ndarray, path: Path, observer) -> None:
+    """Refuse a covariance that no fit writes: not symmetric, or not positive semi-definite.
+
+    ``fit`` writes 6 significant digits, which moves entries and eigenvalues
+    by far less than the tolerance here (1e-4 of the largest variance).
+    """
+    tol = 1e-4 * float(np.abs(np.diagonal(cov)).max())
+    if not (np.abs(cov - cov.T).max() <= tol and np.linalg.eigvalsh((cov + cov.T) / 2.0).min() >= -tol):
+        raise InputError(str(path), "covariance_deg2", f"observer {observer}: the shifts' covariance is not symmetric "
+                         "positive semi-definite, as no fit writes it (a changed or damaged cell?)")
+
+
 def _shown_path(path: Path, out: Path) -> str:
     """``path`` relative to ``out`` when it lies beside it (same bytes wherever the pair lies), else absolute."""
     rel = os.path.relpath(path.resolve(), out.resolve())
@@ -462,13 +488,15 @@ def compare_results(results_dir: str | Path, predictions_path: str | Path, out_d
     cov_table = _read_csv(cov_path, COVARIANCE_COLUMNS[:6]) if cov_path.is_file() else None
     if cov_table is not None:
         for col in ("replicates", "dof"):
-            cov_table[col] = pd.to_numeric(cov_table[col], errors="coerce") if col in cov_table else np.nan
+            cov_table[col] = _optional_numbers(cov_table, col, cov_path)
     rows = []
     for observer, group in points.groupby("observer", sort=False):
         parts = [(f"{lag:g}", g) for lag, g in group.groupby("lag")] + [("all", group)]
         for lag, g in parts:
             cov, reps, dof = (None, np.nan, np.nan) if cov_table is None else covariance_matrix(
                 cov_table, observer, g["lag"], g["adapter_offset_deg"])
+            if cov is not None:
+                _check_covariance(cov, cov_path, observer)
             a = agreement(g["pse_shift_deg"], g["ci_low"], g["ci_high"], g["predicted_deg"],
                           g["prediction_sd_deg"], cov, reps, dof,
                           trials=pd.to_numeric(g["n_trials"], errors="coerce") if "n_trials" in g else None)

@@ -255,6 +255,32 @@ def test_compare_uses_the_covariance_file_and_refuses_a_corrupt_one(tmp_path, ca
     assert len(err.splitlines()) == 1 and "aftereffect_covariance.csv" in err and "line 2" in err
 
 
+@pytest.mark.parametrize("column, value, says", [
+    ("covariance_deg2", "1e308", "not symmetric positive semi-definite"),   # a number, but no covariance
+    ("covariance_deg2", "-5", "not symmetric positive semi-definite"),
+    ("covariance_deg2", "inf", "found 'inf'"),
+    ("replicates", "lots", "replicates: expected a number, found 'lots'"),
+])
+def test_compare_refuses_a_covariance_cell_no_fit_writes(tmp_path, capsys, column, value, says):
+    from runner.cli import main
+
+    _degenerate_logs(tmp_path)
+    fit_logs([str(tmp_path)], str(tmp_path / "out"), n_boot=100, seed=1, figures=False, progress=False)
+    pd.DataFrame({"lag": [0, 0], "adapter_offset_deg": [-30, 30], "pse_shift_deg": [-1.0, 1.0]}).to_csv(
+        tmp_path / "pred.csv", index=False)
+    path = tmp_path / "out" / "aftereffect_covariance.csv"
+    table = pd.read_csv(path, dtype=str, keep_default_na=False)
+    off = table.index[(table["adapter_offset_a_deg"] != table["adapter_offset_b_deg"])][0]
+    table.loc[off if column == "covariance_deg2" else 0, column] = value     # one off-diagonal cell
+    table.to_csv(path, index=False)
+    before = {f.name: f.read_bytes() for f in (tmp_path / "out").iterdir() if f.is_file()}
+    assert main(["compare", str(tmp_path / "out"), str(tmp_path / "pred.csv"), "--out", str(tmp_path / "c")]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "aftereffect_covariance.csv" in err and says in err
+    assert not (tmp_path / "c").exists()
+    assert before == {f.name: f.read_bytes() for f in (tmp_path / "out").iterdir() if f.is_file()}
+
+
 def test_rerun_tracks_falls_back_with_a_note_when_tracks_cannot_be_rebuilt(tmp_path):
     _degenerate_logs(tmp_path)                     # hand-made logs: no sidecars
     logs = sorted(str(p) for p in tmp_path.glob("*.trials.csv"))
