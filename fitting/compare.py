@@ -108,7 +108,8 @@ def read_predictions(path: str | Path) -> pd.DataFrame:
     Raises
     ------
     InputError
-        Missing columns, non-numbers, duplicate grid points, negative sd.
+        Missing columns, non-numbers, duplicate grid points, shifts beyond ±180°,
+        an sd below 0 or above 180°.
     """
     p = Path(path)
     cols = PREDICTION_COLUMNS + (("sd_deg",) if "sd_deg" in _header(p) else ())
@@ -119,8 +120,13 @@ def read_predictions(path: str | Path) -> pd.DataFrame:
     if dup.any():
         line = int(np.flatnonzero(dup.to_numpy())[0]) + 2
         raise InputError(str(p), f"line {line}", "a second prediction for the same lag and adapter offset")
-    if "sd_deg" in frame and (frame["sd_deg"].fillna(0) < 0).any():
-        raise InputError(str(p), "sd_deg", "expected non-negative values")
+    for col, low in (("pse_shift_deg", -180.0), ("sd_deg", 0.0)):
+        # a shift of a direction is within ±180°; an sd is at least 0 and below 180° too
+        out = frame[col].notna() & ~frame[col].between(low, 180.0) if col in frame else None
+        if out is not None and out.any():
+            line = int(np.flatnonzero(out.to_numpy())[0]) + 2
+            raise InputError(str(p), f"line {line}", f"{col}: expected a value in [{low:g}, 180] deg, "
+                             f"found {frame[col].iloc[line - 2]:g}")
     if "sd_deg" not in frame:
         frame["sd_deg"] = 0.0
     frame["sd_deg"] = frame["sd_deg"].fillna(0.0)

@@ -100,6 +100,14 @@ def test_bad_prediction_files_are_one_line_errors(tmp_path, capsys):
     (tmp_path / "p.csv").write_text("lag,adapter_offset_deg,pse_shift_deg\n0,30,abc\n")
     assert main(["compare", str(results), str(tmp_path / "p.csv"), "--out", str(tmp_path / "o")]) == 2
     assert "line 2" in capsys.readouterr().err
+    # a shift of a direction lies within ±180° (an sd in [0, 180]): larger numbers are a damaged file
+    for text, field in (("0,30,1e300\n", "line 2: pse_shift_deg"), ("0,30,1.0,0.2\n0,-30,-1.0,-0.5\n", "line 3: sd_deg")):
+        header = "lag,adapter_offset_deg,pse_shift_deg" + (",sd_deg" if "sd_deg" in field else "")
+        (tmp_path / "p.csv").write_text(header + "\n" + text)
+        assert main(["compare", str(results), str(tmp_path / "p.csv"), "--out", str(tmp_path / "o")]) == 2
+        err = capsys.readouterr().err.strip()
+        assert len(err.splitlines()) == 1 and field in err, err
+    assert not (tmp_path / "o").exists()
 
 
 def test_population_model_is_repulsive_odd_and_decays_with_lag():
