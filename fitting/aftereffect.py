@@ -37,6 +37,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .arrow import dense_solve
+
 TAU_BOUNDS = (0.01, 1000.0)
 
 
@@ -90,10 +92,7 @@ def _levenberg_marquardt(residuals, theta, lo, hi, n_iter: int = 80):
         a = jtj + damp[todo, None, None] * (diag[:, :, None] * eye + 1e-12 * eye)
         a = np.where(mask, 0.0, a) + np.where(fixed[:, :, None], eye, 0.0)
         gm = np.where(fixed, 0.0, g)
-        try:
-            step = -np.linalg.solve(a, gm[..., None])[..., 0]
-        except np.linalg.LinAlgError:
-            step = -np.einsum("bij,bj->bi", np.linalg.pinv(a), gm)
+        step = -dense_solve(a, gm)           # NaN where no step exists: rejected below, damping grows
         cand = np.clip(th + step, lo, hi)
         rc, jc = residuals(cand, todo)
         cc = (rc * rc).sum(axis=1)

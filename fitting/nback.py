@@ -52,6 +52,7 @@ import numpy as np
 import pandas as pd
 
 from .aftereffect import TAU_BOUNDS, dog, peak_bounds
+from .arrow import dense_solve
 from .bootstrap import bca_interval, percentile_interval
 from .covariance import long_table
 from .errors import InputError
@@ -329,10 +330,7 @@ def solve(theta0, lo, hi, x, delta, y, model: str, max_iter: int = 100, tol: flo
         g = np.where(fixed, 0.0, grad)
         scale = np.abs(np.diagonal(info, axis1=1, axis2=2)).max(axis=1)
         h = np.where(mask, 0.0, info) + fixed[:, :, None] * eye + (1e-10 * (1 + scale))[:, None, None] * eye
-        try:
-            step = np.linalg.solve(h, g[..., None])[..., 0]
-        except np.linalg.LinAlgError:
-            step = np.einsum("bij,bj->bi", np.linalg.pinv(h), g)
+        step = dense_solve(h, g)             # NaN where no step exists: never accepted, not converged
         decrement = (g * step).sum(axis=1)
         done = decrement < tol
         converged[todo[done]] = True
