@@ -266,6 +266,14 @@ def studentized_interval(estimate, se, replicates, replicate_se, centre=None, le
     return np.where(bad, np.nan, low), np.where(bad, np.nan, high)
 
 
+def _pseudo_inverse(m: np.ndarray) -> np.ndarray:
+    """Pseudo-inverse of one matrix; NaN where LAPACK's SVD does not converge (that replicate has no covariance)."""
+    try:
+        return np.linalg.pinv(m)
+    except np.linalg.LinAlgError:
+        return np.full(m.shape, np.nan)
+
+
 def replicate_pse_covariance(theta, x, n, k, layout, sigmoid, at_bound) -> np.ndarray:
     """Inverse observed information of each replicate, PSE block (B, C, C).
 
@@ -280,7 +288,7 @@ def replicate_pse_covariance(theta, x, n, k, layout, sigmoid, at_bound) -> np.nd
         try:
             cov = np.linalg.inv(h)
         except np.linalg.LinAlgError:
-            cov = np.stack([np.linalg.pinv(m) for m in h])
+            cov = np.stack([_pseudo_inverse(m) for m in h])
     cov = np.where(keep, cov, np.nan)
     pi = layout.pse_index
     return cov[:, pi[:, None], pi[None, :]]

@@ -6,6 +6,7 @@ import numpy as np
 import pytest
 from scipy import special, stats
 
+from conftest import ROOT
 from fitting.bootstrap import (bca_interval, parametric_bootstrap, parametric_bootstrap_many,
                                percentile_interval)
 from fitting.progress import ProgressBar
@@ -139,3 +140,12 @@ def test_progress_bar_draws_only_when_asked():
         bar.advance(6)
     assert quiet.getvalue() == ""
     assert "10/10" in loud.getvalue() and loud.getvalue().endswith("\n")
+
+
+def test_a_replicate_whose_svd_does_not_converge_has_no_covariance_rather_than_a_traceback():
+    from fitting.bootstrap import _pseudo_inverse
+
+    # the matrix of tests/test_arrow.py on which numpy's pinv raises "SVD did not converge"
+    h = np.load(ROOT / "tests" / "data" / "hessian_svd_fails.npz")["h"]
+    assert np.isnan(_pseudo_inverse(h)).all()
+    assert np.allclose(_pseudo_inverse(np.diag([2.0, 0.0])), np.diag([0.5, 0.0]))   # pinv as usual otherwise
