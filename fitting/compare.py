@@ -75,7 +75,11 @@ AGREEMENT_COLUMNS = (
 COVARIANCE_FILE = "aftereffect_covariance.csv"
 
 
-def _read_csv(path: Path, required: tuple[str, ...], may_be_empty: tuple[str, ...] = ()) -> pd.DataFrame:
+def _read_csv(path: Path, required: tuple[str, ...], may_be_empty: tuple[str, ...] = (),
+              optional: tuple[str, ...] = ()) -> pd.DataFrame:
+    """Read ``path``; ``required`` columns must be finite numbers (``observer`` any text) except empty
+    cells of ``may_be_empty``; ``optional`` columns are checked the same way, may be empty, and are NaN
+    when absent."""
     if not path.is_file():
         raise InputError(str(path), "file", "does not exist or is not a file")
     try:
@@ -85,12 +89,15 @@ def _read_csv(path: Path, required: tuple[str, ...], may_be_empty: tuple[str, ..
     for col in required:
         if col not in frame.columns:
             raise InputError(str(path), col, "column missing")
-    for col in required:
+    for col in optional:
+        if col not in frame.columns:
+            frame[col] = np.nan
+    for col in (*required, *optional):
         if col == "observer":
             continue
         values = pd.to_numeric(frame[col], errors="coerce")
         bad = values.isna() & frame[col].notna() | ~np.isfinite(values.fillna(0))
-        missing = values.isna() & (col not in may_be_empty)
+        missing = values.isna() & (col not in (*may_be_empty, *optional))
         if (missing & ~bad).any():
             line = int(np.flatnonzero((missing & ~bad).to_numpy())[0]) + 2
             raise InputError(str(path), f"line {line}", f"{col}: missing or not a finite number "
@@ -426,18 +433,6 @@ def _leave_out_interval_statistics(points: pd.DataFrame, table: pd.DataFrame) ->
     return tuple(notes)
 
 
-def _optional_numbers(table: pd.DataFrame, col: str, path: Path) -> pd.Series:
-    """Column ``col`` as numbers (NaN where empty or where the column is absent); text is an error."""
-    if col not in table:
-        return pd.Series(np.nan, index=table.index)
-    values = pd.to_numeric(table[col], errors="coerce")
-    bad = values.isna() & table[col].notna()
-    if bad.any():
-        line = int(np.flatnonzero(bad.to_numpy())[0]) + 2
-        raise InputError(str(path), f"line {line}", f"{col}: expected a number, found {str(table[col].iloc[line - 2])!r}")
-    return values
-
-
 def _check_covariance(cov: np.ndarray, path: Path, observer) -> None:
     """Refuse a covariance that no fit writes: not symmetric, or not positive semi-definite.
 
@@ -491,10 +486,8 @@ def compare_results(results_dir: str | Path, predictions_path: str | Path, out_d
     predictions = read_predictions(predictions_path)
     points = match_predictions(measured, predictions, str(predictions_path), interpolate)
     cov_path = measured_path.parent / COVARIANCE_FILE
-    cov_table = _read_csv(cov_path, COVARIANCE_COLUMNS[:6]) if cov_path.is_file() else None
-    if cov_table is not None:
-        for col in ("replicates", "dof"):
-            cov_table[col] = _optional_numbers(cov_table, col, cov_path)
+    cov_table = (_read_csv(cov_path, COVARIANCE_COLUMNS[:6], optional=("replicates", "dof"))
+                 if cov_path.is_file() else None)
     rows = []
     for observer, group in points.groupby("observer", sort=False):
         parts = [(f"{lag:g}", g) for lag, g in group.groupby("lag")] + [("all", group)]
