@@ -784,14 +784,8 @@ def _fmt(v) -> str:
     return "—" if not np.isfinite(v) else (f"{v:.3f}" if abs(v) < 1e3 else f"{v:.2g}")
 
 
-def _covariance(theta, cells, layout, sigmoid, at_bound, sep):
-    """Inverse observed information over the estimable parameters.
-
-    Parameters on a bound, and the PSE (and own spread) of a condition whose
-    answers are separated, are not estimable: their rows are NaN.
-    """
-    _, _, obs, _ = _derivatives(theta[None], cells.x[None], cells.n[None], cells.k[None], layout, sigmoid)
-    info = obs[0]
+def _estimable(layout, at_bound, sep) -> np.ndarray:
+    """Parameters the data can estimate: not on a bound, not a separated condition's PSE (or own spread)."""
     free = ~at_bound.copy()
     for c, s in enumerate(sep):
         if s:
@@ -800,6 +794,18 @@ def _covariance(theta, cells, layout, sigmoid, at_bound, sep):
                 free[layout.spread_index[c]] = False
     if layout.shared_spread and all(sep):
         free[layout.spread_index[0]] = False
+    return free
+
+
+def _covariance(theta, cells, layout, sigmoid, at_bound, sep):
+    """Inverse observed information over the estimable parameters.
+
+    Parameters on a bound, and the PSE (and own spread) of a condition whose
+    answers are separated, are not estimable: their rows are NaN.
+    """
+    _, _, obs, _ = _derivatives(theta[None], cells.x[None], cells.n[None], cells.k[None], layout, sigmoid)
+    info = obs[0]
+    free = _estimable(layout, at_bound, sep)
     cov = np.full(info.shape, np.nan)
     if free.any():
         sub = info[np.ix_(free, free)]
@@ -807,6 +813,45 @@ def _covariance(theta, cells, layout, sigmoid, at_bound, sep):
         if evals[0] > 1e-12 * max(evals[-1], 1e-300):
             cov[np.ix_(free, free)] = np.linalg.inv(sub)
     return cov
+
+
+def _escape_saddles(sol: BatchSolution, cells: Cells, layout: Layout, lo, hi, sigmoid, sep,
+                    rounds: int = 5) -> BatchSolution:
+    """Move a converged single fit off stationary points that are not maxima.
+
+    Newton's method stops wherever the gradient vanishes.  A condition whose
+    answers are split symmetrically between two levels has a likelihood with
+    two peaks once the shared spread is small, and a PSE that started between
+    them stays on the saddle (its gradient is zero by symmetry).  Where the
+    observed information over the estimable parameters has a negative
+    eigenvalue, the fit is searched along that eigenvector (the direction of
+    negative curvature; Nocedal & Wright, 2006, *Numerical Optimization*,
+    section 4.3) on a grid of steps out to the parameter box, and solved again
+    from the best point if it is better.  ``sol`` is a one-row solution.
+    """
+    x, n, k = cells.x[None], cells.n[None], cells.k[None]
+    for _ in range(rounds):
+        theta = sol.theta[0]
+        _, _, obs, _ = _derivatives(theta[None], x, n, k, layout, sigmoid, fisher=False)
+        free = _estimable(layout, sol.at_bound[0], sep)
+        if not free.any():
+            break
+        evals, vecs = np.linalg.eigh(obs[0][np.ix_(free, free)])
+        if not evals[0] < -1e-9 * max(abs(evals[-1]), 1.0):
+            break
+        v = np.zeros(theta.size)
+        v[free] = vecs[:, 0]
+        reach = float(np.max((hi - lo)[free]))
+        steps = np.geomspace(1e-3, 1.0, 40) * reach
+        cand = np.clip(theta + np.concatenate([steps, -steps])[:, None] * v, lo, hi)
+        f = negative_loglik(cand, x, n, k, layout, sigmoid)
+        best = int(np.nanargmin(f))
+        if not f[best] < sol.nll[0] - 1e-9:
+            break
+        again = solve_batch(cand[best][None], x, n, k, layout, lo, hi, sigmoid, max_iter=200, tol=1e-12)
+        again.iterations += sol.iterations
+        sol = again
+    return sol
 
 
 def fit_cells(cells: Cells, conditions=None, spread: str = "shared", lapse="free",
@@ -842,9 +887,10 @@ def fit_cells(cells: Cells, conditions=None, spread: str = "shared", lapse="free
     theta0 = starting_values(cells, layout, sigmoid)
     sol = solve_batch(theta0[None], cells.x[None], cells.n[None], cells.k[None], layout,
                       lo, hi, sigmoid, max_iter=200, tol=1e-12)
+    sep = separation(cells)
+    sol = _escape_saddles(sol, cells, layout, lo, hi, sigmoid, sep)
     theta = sol.theta[0]
     at_bound = sol.at_bound[0]
-    sep = separation(cells)
     fit = PsychometricFit(conditions, cells, layout, sigmoid, theta, lo, hi, float(-sol.nll[0]),
                           bool(sol.converged[0]), int(sol.iterations[0]), at_bound,
                           _covariance(theta, cells, layout, sigmoid, at_bound, sep), sep)
