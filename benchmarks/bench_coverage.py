@@ -33,19 +33,24 @@ Coverage is the share of intervals holding the truth; its Monte Carlo error
 is the standard error over experiments (an experiment's intervals are
 correlated, so the experiment, not the interval, is the unit).
 ``--pool`` also forms groups from all observers of a cell; ``--partitions
-R`` scores their χ² on R random partitions into groups.
+R`` scores their χ² on R random partitions into groups.  ``--save DIR``
+keeps each cell's fits (one pickle per procedure and trial count);
+``--rescore DIR`` scores stored fits again without simulating or fitting
+(for a new candidate statistic on the same fits).
 Targets: coverage 93–97 %; false rejections 3–8 %.
 
 Run: ``python benchmarks/bench_coverage.py [--groups 6] [--boot 1000] [--jobs 2]
 [--pool [--partitions 20]]
 [--trials 24 40] [--procedures updown bayesian] [--bootstraps fixed rerun]
-[--intervals bca percentile profile studentized] [--timing] [--spread-bias]``
+[--intervals bca percentile profile studentized] [--timing] [--spread-bias]
+[--save DIR | --rescore DIR]``
 """
 
 from __future__ import annotations
 
 import argparse
 import itertools
+import pickle
 import re
 import sys
 import tempfile
@@ -389,8 +394,11 @@ def pooled_groups(results, boot, sizes, pop: dict, level: float = 0.95, partitio
             rejected[label].append((a.chi2_p < 0.05, a.chi2, a.dof, g_low <= 1.0 <= g_high))
             rejected[f"{label}: GLS gain of the group shifts"].append(
                 (a.chi2_p < 0.05, a.chi2, a.dof, a.gain_ci_low <= 1.0 <= a.gain_ci_high))
+            weights = group_weights(sub["aftereffect"], level)
+            between = group_covariance(fake, g_ae, weights, level, between=True)
+            matrix_b, _, _ = covariance_matrix(between, GROUP, g_ae["lag"], g_ae["adapter_offset_deg"])
             for name, rej in group_chi2_candidates(sub["aftereffect"], g_ae, matrix, dof, np.asarray(pred),
-                                                   level).items():
+                                                   level, matrix_b).items():
                 rejected[f"{label}: {name}"].append(rej)
                 independent[f"{label}: {name}"] = independent[label]
     return units, rejected, independent
@@ -403,8 +411,11 @@ def _wide(shifts: pd.DataFrame, col: str, cells) -> np.ndarray:
     return table.to_numpy(float)[:, [where[c] for c in cells]]
 
 
-def group_chi2_candidates(shifts, g_ae, matrix, dof, pred, level: float = 0.95) -> dict:
-    """The group χ² under two rejected alternatives, as ``{name: (rejected, chi2, df, nan)}``.
+def group_chi2_candidates(shifts, g_ae, matrix, dof, pred, level: float = 0.95, between_matrix=None) -> dict:
+    """The group χ² under candidate alternatives, as ``{name: (rejected, chi2, df, gain CI holds 1)}``.
+
+    * ``between_matrix``: the group correlation with the between-observer
+      covariance across cells added (``group_covariance(..., between=True)``);
 
     * the plain Hartung–Knapp standard errors, without the fixed-effect floor
       (:func:`fitting.meta.random_effects` with ``floor=False``), with the
@@ -432,7 +443,12 @@ def group_chi2_candidates(shifts, g_ae, matrix, dof, pred, level: float = 0.95) 
     inv = np.linalg.pinv(matrix)
     t = np.einsum("sc,cd,sd->s", signs @ dev, inv, signs @ dev)
     p_flip = float(np.mean(t >= t[0] * (1 - 1e-12)))                   # row 0: all signs +1, the data
-    return {"plain Hartung–Knapp errors (no floor)": (hk.chi2_p < 0.05, hk.chi2, hk.dof, nan),
+    out = {}
+    if between_matrix is not None:
+        b = agreement(est, g_ae["ci_low"], g_ae["ci_high"], pred, None, between_matrix, np.nan, dof)
+        out["correlation with between-observer covariance"] = (b.chi2_p < 0.05, b.chi2, b.dof,
+                                                               b.gain_ci_low <= 1.0 <= b.gain_ci_high)
+    return out | {"plain Hartung–Knapp errors (no floor)": (hk.chi2_p < 0.05, hk.chi2, hk.dof, nan),
             "sign flips over observers": (p_flip < 0.05, float(t[0]), len(cells), nan)}
 
 
@@ -545,6 +561,23 @@ def timing(args, model) -> list[str]:
     return lines
 
 
+def cell_results(args, proc: str, n_trials: int, text: str, model, pop) -> list[dict]:
+    """One cell's simulated and fitted groups: computed (and kept with ``--save``) or read (``--rescore``)."""
+    name = f"{proc}_{n_trials}.pickle"
+    if args.rescore:
+        with open(args.rescore / name, "rb") as f:
+            return pickle.load(f)
+    jobs = [(text, model, size, 1000 * size + g, args.boot, pop, args.bootstraps, args.intervals)
+            for size in args.sizes for g in range(args.first_group, args.first_group + args.groups)]
+    with ProcessPoolExecutor(max_workers=args.jobs) as pool:
+        results = list(pool.map(one_group, jobs))
+    if args.save:
+        args.save.mkdir(parents=True, exist_ok=True)
+        with open(args.save / name, "wb") as f:
+            pickle.dump(results, f)
+    return results
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--groups", type=int, default=6, help="groups of each size per cell")
@@ -576,6 +609,8 @@ def main() -> None:
     ap.add_argument("--tracks", type=int, choices=(1, 2), default=2, help="tracks per condition sharing its trials")
     ap.add_argument("--bayes-placement", choices=("entropy", "pse_mean"), help="placement of Bayesian tracks")
     ap.add_argument("--model", default=str(ROOT / "protocols" / "observers" / "typical.toml"))
+    ap.add_argument("--save", type=Path, help="keep each cell's fits in this folder (pickles)")
+    ap.add_argument("--rescore", type=Path, help="score the fits kept by --save in this folder; no simulation")
     args = ap.parse_args()
     if args.partitions < 1:
         ap.error(f"--partitions: expected a whole number >= 1, got {args.partitions}")
@@ -599,10 +634,7 @@ def main() -> None:
     for proc in args.procedures:
         for n_trials in args.trials:
             text = protocol_text(args.protocol, n_trials, proc, args.tracks, args.bayes_placement)
-            jobs = [(text, model, size, 1000 * size + g, args.boot, pop, args.bootstraps, args.intervals)
-                    for size in args.sizes for g in range(args.first_group, args.first_group + args.groups)]
-            with ProcessPoolExecutor(max_workers=args.jobs) as pool:
-                results = list(pool.map(one_group, jobs))
+            results = cell_results(args, proc, n_trials, text, model, pop)
             for boot in args.bootstraps:
                 rej = defaultdict(list)
                 for res in results:

@@ -15,7 +15,12 @@ covariance_deg2, replicates, dof``
   weighted mean under the observers' own covariances and ``D`` the group
   standard errors implied by the group intervals (``(high - low) / (2
   t_{n-1})``); ``dof`` = n - 1 tells ``compare`` to read the standardised
-  residuals against t, not normal, quantiles.
+  residuals against t, not normal, quantiles.  ``between=True`` adds the
+  between-observer covariance across cells (method of moments) to ``R``: a
+  candidate measured by ``benchmarks/bench_coverage.py`` and not the
+  default, because with 3-8 observers its noisy estimate makes the χ²
+  reject the truth in 17-35 % of groups instead of 3-9 %
+  (``benchmarks/README.md``).
 """
 
 from __future__ import annotations
@@ -50,36 +55,72 @@ def observer_covariance(analysis) -> pd.DataFrame | None:
                  cov, reps.shape[0], np.nan)
 
 
+def between_observer_covariance(shifts: np.ndarray, within: list[np.ndarray]) -> np.ndarray:
+    """Method-of-moments covariance of the observers' true shifts across cells.
+
+    ``shifts`` is observers × cells (NaN: not measured), ``within`` each
+    observer's (cells, cells) covariance of its own errors.  With equal
+    weights, ``E[S] = T + mean(C_i)`` for the sample covariance ``S`` of the
+    observers' shifts, so ``T = S - mean(C_i)`` (the identity-weight case of
+    the matrix method of moments of Jackson, White & Riley, 2013, Biometrical
+    Journal 55), taken pair of cells by pair of cells over the observers that
+    have both, then made positive semi-definite by setting its negative
+    eigenvalues to zero, as they do.
+    """
+    y = np.asarray(shifts, float)
+    k, p = y.shape
+    t = np.zeros((p, p))
+    for a in range(p):
+        for b in range(a, p):
+            both = np.isfinite(y[:, a]) & np.isfinite(y[:, b])
+            if both.sum() < 2:
+                continue
+            ya, yb = y[both, a], y[both, b]
+            s_ab = float(np.sum((ya - ya.mean()) * (yb - yb.mean())) / (both.sum() - 1))
+            c_ab = float(np.mean([within[i][a, b] for i in np.flatnonzero(both)]))
+            t[a, b] = t[b, a] = s_ab - c_ab
+    vals, vecs = np.linalg.eigh(t)
+    return (vecs * np.clip(vals, 0.0, None)) @ vecs.T
+
+
 def group_covariance(analyses, group_shifts: pd.DataFrame, weights: pd.DataFrame,
-                     level: float) -> pd.DataFrame | None:
+                     level: float, between: bool = False) -> pd.DataFrame | None:
     """Long covariance table of the group shifts (see the module text)."""
     if group_shifts is None or not len(group_shifts):
         return None
     cells = list(zip(group_shifts["lag"].astype(float), group_shifts["adapter_offset_deg"].astype(float)))
     index = {c: i for i, c in enumerate(cells)}
-    within = np.zeros((len(cells), len(cells)))
-    n_obs = 0
+    p = len(cells)
+    own_cov, own_w, values = [], [], []
     for a in analyses:
         reps = a.curves.get("shift_reps") if a.curves else None
         if reps is None or a.observer not in weights.index:
             continue
-        n_obs += 1
         ae = a.aftereffect
         own = [index.get((float(lag), float(o))) for lag, o in zip(ae["lag"], ae["adapter_offset_deg"])]
         keep = [j for j, i in enumerate(own) if i is not None]
         pos = np.array([own[j] for j in keep])
-        w = np.array([weights.loc[a.observer].get((lag, off), 0.0) for lag, off in
-                      (cells[i] for i in pos)], dtype=float)
-        w = np.nan_to_num(w)
-        cov = np.atleast_2d(np.cov(reps[:, keep], rowvar=False))
-        within[np.ix_(pos, pos)] += w[:, None] * w[None, :] * cov
+        c = np.full((p, p), np.nan)
+        c[np.ix_(pos, pos)] = np.atleast_2d(np.cov(reps[:, keep], rowvar=False))
+        w = np.zeros(p)
+        w[pos] = np.nan_to_num([weights.loc[a.observer].get(cells[i], 0.0) for i in pos])
+        y = np.full(p, np.nan)
+        y[pos] = ae["pse_shift_deg"].to_numpy(float)[keep]
+        own_cov.append(c)
+        own_w.append(w)
+        values.append(y)
+    n_obs = len(own_cov)
+    if n_obs < 2:
+        return None
+    t = between_observer_covariance(np.array(values), own_cov) if between else np.zeros((p, p))
+    within = sum(np.outer(w, w) * np.nan_to_num(c + t) for w, c in zip(own_w, own_cov))
     sd = np.sqrt(np.diagonal(within))
-    if n_obs < 2 or not np.all(sd > 0):
+    if not np.all(sd > 0):
         return None
     corr = within / np.outer(sd, sd)
     dof = max(n_obs - 1, 1)
-    t = special.stdtrit(dof, 0.5 + level / 2.0)
-    se = (group_shifts["ci_high"].to_numpy(float) - group_shifts["ci_low"].to_numpy(float)) / (2 * t)
+    q = special.stdtrit(dof, 0.5 + level / 2.0)
+    se = (group_shifts["ci_high"].to_numpy(float) - group_shifts["ci_low"].to_numpy(float)) / (2 * q)
     cov = corr * np.outer(se, se)
     return long_table(str(group_shifts["observer"].iloc[0]), [c[0] for c in cells], [c[1] for c in cells],
                  cov, np.nan, dof)

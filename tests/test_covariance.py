@@ -1,0 +1,72 @@
+"""The covariance of the group's shifts that ``fit`` writes for ``compare``."""
+
+from types import SimpleNamespace
+
+import numpy as np
+import pandas as pd
+from scipy import special
+
+from fitting.covariance import between_observer_covariance, covariance_matrix, group_covariance
+
+CELLS = [(1, -20.0), (1, 20.0), (2, 20.0)]
+
+
+def _observer(name, reps, shifts):
+    ae = pd.DataFrame({"lag": [c[0] for c in CELLS], "adapter_offset_deg": [c[1] for c in CELLS],
+                       "pse_shift_deg": shifts})
+    return SimpleNamespace(observer=name, curves={"shift_reps": reps}, aftereffect=ae)
+
+
+def _group_rows(half_widths):
+    return pd.DataFrame({"observer": "group", "lag": [c[0] for c in CELLS],
+                         "adapter_offset_deg": [c[1] for c in CELLS], "pse_shift_deg": 0.0,
+                         "ci_low": -np.asarray(half_widths), "ci_high": np.asarray(half_widths)})
+
+
+def test_group_covariance_is_the_covariance_of_the_weighted_mean_of_independent_observers():
+    rng = np.random.default_rng(5)
+    n = 200_000
+    a = np.array([[1.0, 0.5, 0.2], [0.5, 2.0, 0.3], [0.2, 0.3, 1.5]])
+    b = np.array([[2.0, -0.4, 0.0], [-0.4, 1.0, 0.6], [0.0, 0.6, 3.0]])
+    reps = [rng.multivariate_normal(np.zeros(3), c, n) for c in (a, b)]
+    w = np.array([[0.7, 0.4, 0.5], [0.3, 0.6, 0.5]])
+    weights = pd.DataFrame(w, index=["o1", "o2"], columns=pd.MultiIndex.from_tuples(CELLS))
+    group = _group_rows([1.0, 2.0, 3.0])
+    table = group_covariance([_observer("o1", reps[0], [0, 0, 0]), _observer("o2", reps[1], [0, 0, 0])],
+                             group, weights, 0.95)
+    cov, replicates, dof = covariance_matrix(table, "group", [c[0] for c in CELLS], [c[1] for c in CELLS])
+    # reference: numpy's correlation of the weighted mean of the two independent sets of draws
+    mean = w[0] * reps[0] + w[1] * reps[1]
+    sd = np.sqrt(np.diagonal(cov))
+    np.testing.assert_allclose(cov / np.outer(sd, sd), np.corrcoef(mean, rowvar=False), atol=0.01)
+    # the diagonal is the group interval's: half-width / t(n_obs - 1) quantile (here t on 1 dof)
+    np.testing.assert_allclose(sd, np.array([1.0, 2.0, 3.0]) / special.stdtrit(1, 0.975))
+    assert dof == 1 and np.isnan(replicates)
+
+
+def test_between_observer_covariance_is_the_sample_covariance_when_observers_have_no_error():
+    rng = np.random.default_rng(2)
+    y = rng.normal(size=(7, 3)) @ np.array([[1.0, 0.5, 0.0], [0.0, 1.0, 0.3], [0.0, 0.0, 2.0]])
+    zero = [np.zeros((3, 3))] * 7
+    # reference: numpy's sample covariance (Jackson, White & Riley 2013: T = S - mean C_i with C_i = 0)
+    np.testing.assert_allclose(between_observer_covariance(y, zero), np.cov(y, rowvar=False), atol=1e-12)
+    # a missing cell: pairs of cells over the observers that have both, as pandas' pairwise covariance
+    y[0, 2] = np.nan
+    pairwise = pd.DataFrame(y).cov().to_numpy()
+    assert np.linalg.eigvalsh(pairwise).min() > 0          # so the clipping to PSD leaves it as it is
+    np.testing.assert_allclose(between_observer_covariance(y, zero), pairwise, atol=1e-12)
+
+
+def test_between_observer_covariance_removes_the_observers_own_errors_and_stays_psd():
+    rng = np.random.default_rng(3)
+    true_between = np.array([[1.0, 0.8], [0.8, 1.0]])
+    own = np.diag([0.5, 2.0])
+    k, draws = 40, 2000                                      # enough observers that clipping is rare
+    est = np.array([between_observer_covariance(
+        rng.multivariate_normal(np.zeros(2), true_between + own, k), [own] * k) for _ in range(draws)])
+    assert np.linalg.eigvalsh(est).min() > -1e-12
+    # unbiased for T: the observers' own errors are removed (Monte Carlo SE of the mean about 0.01)
+    np.testing.assert_allclose(est.mean(axis=0), true_between, atol=0.05)
+    naive = np.cov(rng.multivariate_normal(np.zeros(2), true_between + own, (draws, k)).reshape(-1, 2),
+                   rowvar=False)
+    assert naive[1, 1] > true_between[1, 1] + 1.5            # without the subtraction: T + C
