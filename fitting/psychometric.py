@@ -770,8 +770,9 @@ class PsychometricFit:
                          f"{_fmt(pse_se[c]):>7}{self.spread[c]:>9.3f}{_fmt(spread_se[c]):>7}"
                          f"{self.jnd[c]:>8.3f}  {self.flags[c]}")
         if any(self.separation):
-            lines.append("separated answers: the PSE lies somewhere the data cannot pin down; "
-                         "the value shown is bounded and has no standard error")
+            lines.append("separated answers: with a shared spread the PSE lies in the gap between the "
+                         "answers and its se leans on the other conditions' spread; on one side, or "
+                         "with a spread of its own, the value shown is bounded and has no se")
         lapse_note = " (on its bound)" if self.lapse_at_bound else ""
         lines.append(f"lapse {self.lapse:.4f} se {_fmt(self.lapse_se)}{lapse_note}")
         lines.append(f"log-likelihood {self.loglik:.4f}; deviance {self.deviance:.3f} on {self.dof} df; "
@@ -785,14 +786,23 @@ def _fmt(v) -> str:
 
 
 def _estimable(layout, at_bound, sep) -> np.ndarray:
-    """Parameters the data can estimate: not on a bound, not a separated condition's PSE (or own spread)."""
+    """Parameters the data can estimate (boolean mask over the parameters).
+
+    Not estimable: a parameter on a bound; the PSE of a condition with every
+    answer on one side; and a separated condition's PSE where nothing holds its
+    spread away from zero (a spread of its own, or every condition separated),
+    so that any PSE in the gap between its answers fits equally well.  Under a
+    spread shared with other conditions a separated condition keeps a finite
+    PSE with a finite error, flagged ``separated`` in the tables.
+    """
     free = ~at_bound.copy()
+    all_separated = all(sep)
     for c, s in enumerate(sep):
-        if s:
+        if s and (s.startswith("all ") or not layout.shared_spread or all_separated):
             free[layout.pse_index[c]] = False
             if not layout.shared_spread:
                 free[layout.spread_index[c]] = False
-    if layout.shared_spread and all(sep):
+    if layout.shared_spread and all_separated:
         free[layout.spread_index[0]] = False
     return free
 
@@ -800,8 +810,7 @@ def _estimable(layout, at_bound, sep) -> np.ndarray:
 def _covariance(theta, cells, layout, sigmoid, at_bound, sep):
     """Inverse observed information over the estimable parameters.
 
-    Parameters on a bound, and the PSE (and own spread) of a condition whose
-    answers are separated, are not estimable: their rows are NaN.
+    Rows of parameters that are not estimable (:func:`_estimable`) are NaN.
     """
     _, _, obs, _ = _derivatives(theta[None], cells.x[None], cells.n[None], cells.k[None], layout, sigmoid)
     info = obs[0]

@@ -88,6 +88,32 @@ def test_joint_shared_spread_equals_glm_with_condition_intercepts():
         assert abs(per.pse[j] + b0 / b1) < 1e-4 and abs(per.spread[j] - 1 / b1) < 1e-4
 
 
+@pytest.mark.filterwarnings("ignore::fitting.psychometric.SeparationWarning")
+def test_a_separated_condition_under_a_shared_spread_keeps_a_finite_pse_and_error():
+    # Reference: statsmodels probit GLM with condition intercepts and a common slope, fitted by Newton
+    # (covariance from the observed Hessian), whose estimates stay finite when one condition alone is
+    # separated (the slope is held by the others); the PSE's error by the delta method on (a_c, b). Before, such a PSE had no error, and a separated baseline cost the
+    # observer every shift's weight, hence the tuning and decay fits (common practice, no source).
+    rng = np.random.default_rng(11)
+    xs, ys, cs = [], [], []
+    for c, pse in enumerate([-2.0, 0.5]):
+        x, y = _trials(rng, n=150, pse=pse, spread=2.0)
+        xs.append(x), ys.append(y), cs.append(np.full(x.size, c))
+    x_sep = np.array([-6.0, -4.0, -3.0, -2.0, -1.0, 1.0, 2.0, 3.0, 4.0, 6.0])
+    xs.append(x_sep), ys.append((x_sep > 0).astype(float)), cs.append(np.full(x_sep.size, 2))
+    x, y, c = map(np.concatenate, (xs, ys, cs))
+    X = np.column_stack([(c == j).astype(float) for j in range(3)] + [x])
+    res = sm.GLM(y, X, family=sm.families.Binomial(link=sm.families.links.Probit())).fit(
+        method="newton", start_params=np.r_[0.0, 0.0, 0.0, 0.5], tol=1e-12, maxiter=200)
+    fit = fit_joint(x, y, [f"c{j}" for j in c], spread="shared", lapse=0.0)
+    assert fit.separation[2] == "complete separation"
+    a, b = res.params[2], res.params[3]
+    grad = np.array([-1.0 / b, a / b**2])
+    se = float(np.sqrt(grad @ res.cov_params()[np.ix_([2, 3], [2, 3])] @ grad))
+    assert fit.pse[2] == pytest.approx(-a / b, abs=1e-4)
+    assert fit.pse_se[2] == pytest.approx(se, rel=1e-3)
+
+
 def test_deviance_equals_statsmodels_binomial_counts():
     # Reference: statsmodels GLM deviance on (successes, failures) per level,
     # which is the deviance against the saturated model.
@@ -174,6 +200,7 @@ def test_summary_is_readable():
 
 
 SADDLE_LOG = Path(__file__).parent / "data" / "saddle" / "sim03-s1.trials.csv"
+SEPARATED_BASELINE_LOG = Path(__file__).parent / "data" / "separated_baseline" / "sim04-s1.trials.csv"
 
 
 @pytest.mark.filterwarnings("ignore::fitting.psychometric.SeparationWarning")
@@ -185,9 +212,10 @@ def test_no_condition_is_left_on_a_saddle_of_the_likelihood():
     trials = read_logs([SADDLE_LOG])
     fit = fit_joint(trials["test_offset_deg"], trials["response_cw"], trials["condition"])
     cells, lay = fit.cells, fit.layout
-    # a maximum: the observed information over the estimable parameters is positive definite ...
-    pse_ok = np.isfinite(np.diagonal(fit.covariance))[lay.pse_index]
-    assert [c for c, ok in zip(fit.conditions, pse_ok) if not ok] == ["adapt-90_lag1"]  # separated
+    # a maximum: the observed information is positive definite, so every PSE has an error (the separated
+    # condition too: the spread it shares with the others keeps its PSE finite) ...
+    assert np.isfinite(np.diagonal(fit.covariance)[lay.pse_index]).all()
+    assert [c for c, s in zip(fit.conditions, fit.separation) if s] == ["adapt-90_lag1"]
     # ... and no condition's PSE can do better. Reference: scipy's brute-force grid (then Nelder-Mead)
     # along each PSE with the other parameters held.
     theta = fit.theta
@@ -201,9 +229,11 @@ def test_no_condition_is_left_on_a_saddle_of_the_likelihood():
         assert -fit.loglik <= best + 1e-7, fit.conditions[c]
 
 
-def test_fit_of_the_saddle_log_reports_every_curve(tmp_path):
-    done = run_cli("fit", SADDLE_LOG, "--out", tmp_path / "fit", "--seed", 8064, "--bootstrap", 50,
-                   "--no-figures")
+@pytest.mark.parametrize("log", [SADDLE_LOG, SEPARATED_BASELINE_LOG], ids=["saddle", "separated-baseline"])
+def test_fit_reports_every_curve_of_logs_that_lost_them(tmp_path, log):
+    # simulated, 24 up-down trials per condition; each lost its tuning and decay fits before: one to the
+    # saddle above, one to a baseline whose answers are separated (its PSE had no error, so no shift had)
+    done = run_cli("fit", log, "--out", tmp_path / "fit", "--seed", 8064, "--bootstrap", 50, "--no-figures")
     assert done.returncode == 0, done.stderr
     tuning = pd.read_csv(tmp_path / "fit" / "tuning.csv")
     assert sorted(tuning["lag"]) == [0, 1, 2, 3]
