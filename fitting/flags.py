@@ -6,7 +6,9 @@ spaces (empty = nothing unusual):
 ``one-sided``        every answer of the condition on one side (all clockwise or
                      all counter-clockwise): the PSE is not estimable
 ``separated``        every clockwise answer at a larger offset than every
-                     counter-clockwise one: the spread is not estimable
+                     counter-clockwise one: the condition's own spread is not
+                     estimable (under a shared spread its PSE is, leaning on
+                     the other conditions' spread)
 ``on-bound``         the estimate or a confidence limit sits on a fitting bound
                      (read it as "at least" / "at most")
 ``outside-tested``   the PSE lies outside the range of tested offsets
