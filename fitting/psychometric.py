@@ -810,17 +810,23 @@ def _estimable(layout, at_bound, sep) -> np.ndarray:
 def _covariance(theta, cells, layout, sigmoid, at_bound, sep):
     """Inverse observed information over the estimable parameters.
 
-    Rows of parameters that are not estimable (:func:`_estimable`) are NaN.
+    Rows of parameters that are not estimable (:func:`_estimable`) are NaN,
+    and so are those of a parameter along which the information vanishes
+    (one at a time, the one that loads most on the flattest direction).
     """
     _, _, obs, _ = _derivatives(theta[None], cells.x[None], cells.n[None], cells.k[None], layout, sigmoid)
     info = obs[0]
     free = _estimable(layout, at_bound, sep)
     cov = np.full(info.shape, np.nan)
-    if free.any():
+    while free.any():
         sub = info[np.ix_(free, free)]
-        evals = np.linalg.eigvalsh(sub)
+        evals, vecs = np.linalg.eigh(sub)
         if evals[0] > 1e-12 * max(evals[-1], 1e-300):
             cov[np.ix_(free, free)] = np.linalg.inv(sub)
+            break
+        # a direction the answers do not pin down (e.g. a PSE in a gap between tested levels, where
+        # any value fits as well): its parameter gets NaN rows, the others keep their errors
+        free[np.flatnonzero(free)[np.argmax(np.abs(vecs[:, 0]))]] = False
     return cov
 
 
@@ -906,9 +912,10 @@ def fit_cells(cells: Cells, conditions=None, spread: str = "shared", lapse="free
     if warn:
         for c, s in enumerate(sep):
             if s:
-                warnings.warn(SeparationWarning(
-                    f"condition {conditions[c]}: {s}; its PSE and spread are bounded and flagged, "
-                    "not estimable from these answers"), stacklevel=2)
+                what = ("its PSE and spread are bounded and flagged, not estimable from these answers"
+                        if not np.isfinite(fit.covariance[layout.pse_index[c], layout.pse_index[c]]) else
+                        "flagged; its PSE and its error lean on the spread shared with the other conditions")
+                warnings.warn(SeparationWarning(f"condition {conditions[c]}: {s}; {what}"), stacklevel=2)
         if not fit.converged:
             warnings.warn(FitWarning("the psychometric fit did not converge"), stacklevel=2)
     return fit

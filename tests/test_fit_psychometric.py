@@ -201,6 +201,7 @@ def test_summary_is_readable():
 
 SADDLE_LOG = Path(__file__).parent / "data" / "saddle" / "sim03-s1.trials.csv"
 SEPARATED_BASELINE_LOG = Path(__file__).parent / "data" / "separated_baseline" / "sim04-s1.trials.csv"
+FLAT_PSE_LOG = Path(__file__).parent / "data" / "flat_pse" / "sim08-s1.trials.csv"
 
 
 @pytest.mark.filterwarnings("ignore::fitting.psychometric.SeparationWarning")
@@ -229,10 +230,31 @@ def test_no_condition_is_left_on_a_saddle_of_the_likelihood():
         assert -fit.loglik <= best + 1e-7, fit.conditions[c]
 
 
-@pytest.mark.parametrize("log", [SADDLE_LOG, SEPARATED_BASELINE_LOG], ids=["saddle", "separated-baseline"])
+@pytest.mark.filterwarnings("ignore::fitting.psychometric.SeparationWarning")
+def test_a_pse_the_answers_do_not_pin_down_leaves_the_other_errors_alone():
+    # simulated, 24 up-down trials per condition; in adapt+15_lag1 the tracks left a gap from -8 to +8 deg
+    # and the PSE can sit anywhere in its middle. Its information vanished and, before, took every
+    # other condition's error with it.
+    trials = read_logs([FLAT_PSE_LOG])
+    fit = fit_joint(trials["test_offset_deg"], trials["response_cw"], trials["condition"])
+    cells, lay = fit.cells, fit.layout
+    se = np.sqrt(np.diagonal(fit.covariance)[lay.pse_index])
+    flat = [c for c, e in zip(fit.conditions, se) if not np.isfinite(e)]
+    assert flat == ["adapt+15_lag1"]
+    # it is flat indeed: the likelihood moves by less than 0.01 over +-2 deg around the estimate
+    c = fit.conditions.index("adapt+15_lag1")
+    th = np.repeat(fit.theta[None], 9, axis=0)
+    th[:, lay.pse_index[c]] += np.linspace(-2, 2, 9)
+    nll = negative_loglik(th, cells.x[None], cells.n[None], cells.k[None], lay)
+    assert np.ptp(nll) < 0.01
+
+
+@pytest.mark.parametrize("log", [SADDLE_LOG, SEPARATED_BASELINE_LOG, FLAT_PSE_LOG],
+                         ids=["saddle", "separated-baseline", "flat-pse"])
 def test_fit_reports_every_curve_of_logs_that_lost_them(tmp_path, log):
-    # simulated, 24 up-down trials per condition; each lost its tuning and decay fits before: one to the
-    # saddle above, one to a baseline whose answers are separated (its PSE had no error, so no shift had)
+    # simulated, 24 up-down trials per condition; each lost its tuning and decay fits before: to the
+    # saddle above, to a baseline whose answers are separated (its PSE had no error, so no shift had),
+    # or to one PSE that the answers do not pin down
     done = run_cli("fit", log, "--out", tmp_path / "fit", "--seed", 8064, "--bootstrap", 50, "--no-figures")
     assert done.returncode == 0, done.stderr
     tuning = pd.read_csv(tmp_path / "fit" / "tuning.csv")
