@@ -820,6 +820,8 @@ def _covariance(theta, cells, layout, sigmoid, at_bound, sep):
     cov = np.full(info.shape, np.nan)
     while free.any():
         sub = info[np.ix_(free, free)]
+        if not np.isfinite(sub).all():
+            break
         evals, vecs = np.linalg.eigh(sub)
         if evals[0] > 1e-12 * max(evals[-1], 1e-300):
             cov[np.ix_(free, free)] = np.linalg.inv(sub)
@@ -849,9 +851,10 @@ def _escape_saddles(sol: BatchSolution, cells: Cells, layout: Layout, lo, hi, si
         theta = sol.theta[0]
         _, _, obs, _ = _derivatives(theta[None], x, n, k, layout, sigmoid, fisher=False)
         free = _estimable(layout, sol.at_bound[0], sep)
-        if not free.any():
+        sub = obs[0][np.ix_(free, free)]
+        if not free.any() or not np.isfinite(sub).all():
             break
-        evals, vecs = np.linalg.eigh(obs[0][np.ix_(free, free)])
+        evals, vecs = np.linalg.eigh(sub)
         if not evals[0] < -1e-9 * max(abs(evals[-1]), 1.0):
             break
         v = np.zeros(theta.size)
