@@ -19,7 +19,7 @@ covariance_deg2, replicates, dof``
   between-observer covariance across cells (method of moments) to ``R``: a
   candidate measured by ``benchmarks/bench_coverage.py`` and not the
   default, because with 3-8 observers its noisy estimate makes the χ²
-  reject the truth in 17-35 % of groups instead of 3-9 %
+  reject the truth in 17-36 % of groups instead of 3-11 %
   (``benchmarks/README.md``).
 """
 
