@@ -47,8 +47,8 @@ from scipy import special
 
 from .errors import InputError
 from .progress import ProgressBar
-from .psychometric import (PsychometricFit, _cell_terms, _covariance, _derivatives, deviance_by_condition,
-                           probability_derivatives, solve_batch)
+from .psychometric import (PsychometricFit, _cell_terms, _covariance, _derivatives, _information,
+                           deviance_by_condition, probability_derivatives, solve_batch)
 
 INTERVALS = ("bca", "percentile")
 
@@ -212,9 +212,9 @@ class BootstrapResult:
         estimate = fit.pse @ w
         used = np.abs(w) > 0
         # the point fit's error by the replicates' rule: only parameters on a bound are held
-        # (fit.covariance also drops separated conditions, whose PSE a shared spread still pins)
-        cov = _covariance(fit.theta, fit.cells, fit.layout, fit.sigmoid, fit.at_bound,
-                          [""] * len(fit.conditions))[np.ix_(pi, pi)]
+        # (fit.covariance also drops separated conditions with a spread of their own, as the replicates do not)
+        info = _information(fit.theta, fit.cells, fit.layout, fit.sigmoid)
+        cov = _covariance(info, fit.layout, fit.at_bound, [""] * len(fit.conditions))[np.ix_(pi, pi)]
         # a PSE without an error (on a bound) leaves only the statistics that use it without one
         var = np.einsum("cs,cd,ds->s", w, np.nan_to_num(cov, nan=0.0), w)
         var[np.isnan(np.diagonal(cov)) @ used > 0] = np.nan

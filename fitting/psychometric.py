@@ -807,15 +807,19 @@ def _estimable(layout, at_bound, sep) -> np.ndarray:
     return free
 
 
-def _covariance(theta, cells, layout, sigmoid, at_bound, sep):
-    """Inverse observed information over the estimable parameters.
+def _information(theta, cells: Cells, layout: Layout, sigmoid) -> np.ndarray:
+    """Observed information (exact Hessian of the negative log-likelihood) of one fit, (P, P)."""
+    return _derivatives(theta[None], cells.x[None], cells.n[None], cells.k[None], layout, sigmoid,
+                        fisher=False)[2][0]
+
+
+def _covariance(info, layout, at_bound, sep):
+    """Inverse of the observed information ``info`` over the estimable parameters.
 
     Rows of parameters that are not estimable (:func:`_estimable`) are NaN,
     and so are those of a parameter along which the information vanishes
     (one at a time, the one that loads most on the flattest direction).
     """
-    _, _, obs, _ = _derivatives(theta[None], cells.x[None], cells.n[None], cells.k[None], layout, sigmoid)
-    info = obs[0]
     free = _estimable(layout, at_bound, sep)
     cov = np.full(info.shape, np.nan)
     while free.any():
@@ -833,7 +837,7 @@ def _covariance(theta, cells, layout, sigmoid, at_bound, sep):
 
 
 def _escape_saddles(sol: BatchSolution, cells: Cells, layout: Layout, lo, hi, sigmoid, sep,
-                    rounds: int = 5) -> BatchSolution:
+                    rounds: int = 5) -> tuple[BatchSolution, np.ndarray]:
     """Move a converged single fit off stationary points that are not maxima.
 
     Newton's method stops wherever the gradient vanishes.  A condition whose
@@ -845,18 +849,20 @@ def _escape_saddles(sol: BatchSolution, cells: Cells, layout: Layout, lo, hi, si
     negative curvature; Nocedal & Wright, 2006, *Numerical Optimization*,
     section 4.3) on a grid of steps out to the parameter box, and solved again
     from the best point if it is better.  ``sol`` is a one-row solution.
+
+    Returns the solution and its observed information (for the covariance).
     """
     x, n, k = cells.x[None], cells.n[None], cells.k[None]
     for _ in range(rounds):
         theta = sol.theta[0]
-        _, _, obs, _ = _derivatives(theta[None], x, n, k, layout, sigmoid, fisher=False)
+        info = _information(theta, cells, layout, sigmoid)
         free = _estimable(layout, sol.at_bound[0], sep)
-        sub = obs[0][np.ix_(free, free)]
+        sub = info[np.ix_(free, free)]
         if not free.any() or not np.isfinite(sub).all():
-            break
+            return sol, info
         evals, vecs = np.linalg.eigh(sub)
         if not evals[0] < -1e-9 * max(abs(evals[-1]), 1.0):
-            break
+            return sol, info
         v = np.zeros(theta.size)
         v[free] = vecs[:, 0]
         reach = float(np.max((hi - lo)[free]))
@@ -865,11 +871,11 @@ def _escape_saddles(sol: BatchSolution, cells: Cells, layout: Layout, lo, hi, si
         f = negative_loglik(cand, x, n, k, layout, sigmoid)
         best = int(np.nanargmin(f))
         if not f[best] < sol.nll[0] - 1e-9:
-            break
+            return sol, info
         again = solve_batch(cand[best][None], x, n, k, layout, lo, hi, sigmoid, max_iter=200, tol=1e-12)
         again.iterations += sol.iterations
         sol = again
-    return sol
+    return sol, _information(sol.theta[0], cells, layout, sigmoid)
 
 
 def fit_cells(cells: Cells, conditions=None, spread: str = "shared", lapse="free",
@@ -906,12 +912,12 @@ def fit_cells(cells: Cells, conditions=None, spread: str = "shared", lapse="free
     sol = solve_batch(theta0[None], cells.x[None], cells.n[None], cells.k[None], layout,
                       lo, hi, sigmoid, max_iter=200, tol=1e-12)
     sep = separation(cells)
-    sol = _escape_saddles(sol, cells, layout, lo, hi, sigmoid, sep)
+    sol, info = _escape_saddles(sol, cells, layout, lo, hi, sigmoid, sep)
     theta = sol.theta[0]
     at_bound = sol.at_bound[0]
     fit = PsychometricFit(conditions, cells, layout, sigmoid, theta, lo, hi, float(-sol.nll[0]),
                           bool(sol.converged[0]), int(sol.iterations[0]), at_bound,
-                          _covariance(theta, cells, layout, sigmoid, at_bound, sep), sep)
+                          _covariance(info, layout, at_bound, sep), sep)
     if warn:
         for c, s in enumerate(sep):
             if s:
