@@ -42,7 +42,8 @@ Targets: coverage 93–97 %; false rejections 3–8 %.
 Run: ``python benchmarks/bench_coverage.py [--groups 6] [--boot 1000] [--jobs 2]
 [--pool [--partitions 20]]
 [--trials 24 40] [--procedures updown bayesian] [--bootstraps fixed rerun]
-[--intervals bca percentile profile studentized] [--timing] [--spread-bias]
+[--intervals bca percentile profile studentized] [--timing]
+[--spread-bias [--lapse-max 0.06 0.1]]
 [--save DIR | --rescore DIR]``
 """
 
@@ -74,6 +75,7 @@ from fitting.compare import agreement, combine_gains, compare_results, gls_gain 
 from fitting.covariance import covariance_matrix, group_covariance  # noqa: E402
 from fitting.meta import random_effects, variance_from_interval  # noqa: E402
 from fitting.group import GROUP, group_aftereffect, group_curves, group_pse, group_weights  # noqa: E402
+from fitting.psychometric import DEFAULT_LAPSE_MAX  # noqa: E402
 from fitting.report import fit_logs  # noqa: E402
 from runner.launch import simulate  # noqa: E402
 from runner.observers import ObserverModel, draw_observers, load_model  # noqa: E402
@@ -496,42 +498,55 @@ def _verdict(p, se, lo, hi):
     return "MISSED" if (p + 2 * se < lo or p - 2 * se > hi) else "missed (within 2 MC SE)"
 
 
-def spread_bias(args, model, groups=(91, 92), size: int = 8) -> list[str]:
+def _spread_bias_group(job) -> list[dict]:
+    """Point fits (no bootstrap) of one simulated group with each lapse bound: one row per observer and bound."""
+    text, model, size, seed, lapse_maxes = job
+    rows = []
+    with tempfile.TemporaryDirectory() as tmp:
+        logs, models, offsets, lags = simulate_group(text, model, size, seed, Path(tmp))
+        for lapse_max in lapse_maxes:
+            report = fit_logs(logs, str(Path(tmp) / f"fit{lapse_max}"), n_boot=0, seed=seed, progress=False,
+                              figures=False, lapse_max=lapse_max)
+            for a, m in zip(report.analyses, models):
+                t = observer_truth(m, offsets, lags)
+                true = np.array([t["pse0"] + (0.0 if pd.isna(r.lag) else
+                                              t["shift"][(float(r.lag), float(r.adapter_offset_deg))])
+                                 for r in a.pse.itertuples()])
+                rows.append({"lapse_max": lapse_max, "ratio": a.fit.spread[0] / m.spread_deg,
+                             "lapse_on_bound": a.fit.lapse_at_bound, "z": (a.fit.pse - true) / a.fit.pse_se})
+    return rows
+
+
+def spread_bias(args, model) -> list[str]:
     """Fitted shared spread over the observer's true spread, and the Wald z of the PSEs, without bootstrap.
 
     Adaptive tracks place levels by the previous answers; with short tracks
     this biases the fitted spread low (Kaernbach 2001, from memory), which
     narrows every interval computed at the fitted parameters.  The spread of
     ``(PSE - truth) / se`` (1 if the errors were right) shows the same thing.
+    Collapsed spreads (below a tenth or a quarter of the truth) and lapses on
+    their bound are counted for each ``--lapse-max``, on the same logs.
     """
-    lines = [f"# fitted spread / true spread and PSE z-scores ({len(groups)} groups of {size}, no bootstrap)",
-             "| procedure | trials/cond. | fitted / true spread ± SE | SD of (PSE − truth) / se | observers |",
-             "|---|---|---|---|---|"]
+    sizes = " and ".join(str(s) for s in args.sizes)
+    lines = [f"# fitted spread / true spread and PSE z-scores ({args.groups} groups of each size {sizes}, numbers "
+             f"{args.first_group}–{args.first_group + args.groups - 1}, no bootstrap)",
+             "| procedure | trials/cond. | lapse bound | fitted / true spread ± SE | lowest | below 0.1 / 0.25 of "
+             "the truth | lapse on its bound | SD of (PSE − truth) / se | observers |",
+             "|---|---|---|---|---|---|---|---|---|"]
     for proc in args.procedures:
         for n_trials in args.trials:
             text = protocol_text(args.protocol, n_trials, proc, args.tracks, args.bayes_placement)
-            ratio, z = [], []
-            for seed in groups:
-                with tempfile.TemporaryDirectory() as tmp:
-                    path = Path(tmp) / "protocol.toml"
-                    path.write_text(text, encoding="utf-8")
-                    protocol = load_protocol(str(path))
-                    offsets, lags = protocol.design.adapter_offsets_deg, protocol.design.lags
-                    logs = [str(p) for p in simulate(protocol, str(path), text, Path(tmp) / "logs", model, size,
-                                                     seed, progress=False)]
-                    report = fit_logs(logs, str(Path(tmp) / "fit"), n_boot=0, seed=seed, progress=False,
-                                      figures=False)
-                    for a, m in zip(report.analyses, draw_observers(model, size, seed)):
-                        t = observer_truth(m, offsets, lags)
-                        ratio.append(a.fit.spread[0] / m.spread_deg)
-                        true = [t["pse0"] + (0.0 if pd.isna(r.lag) else t["shift"][(float(r.lag),
-                                                                                    float(r.adapter_offset_deg))])
-                                for r in a.pse.itertuples()]
-                        z += list((a.fit.pse - np.array(true)) / a.fit.pse_se)
-            r, z = np.array(ratio), np.array(z)
-            z = z[np.isfinite(z)]
-            lines.append(f"| {proc} | {n_trials} | {r.mean():.3f} ± {r.std(ddof=1) / np.sqrt(r.size):.3f} | "
-                         f"{z.std():.2f} | {r.size} |")
+            jobs = [(text, model, size, 1000 * size + g, args.lapse_max) for size in args.sizes
+                    for g in range(args.first_group, args.first_group + args.groups)]
+            with ProcessPoolExecutor(max_workers=args.jobs) as pool:
+                rows = pd.DataFrame([r for group in pool.map(_spread_bias_group, jobs) for r in group])
+            for lapse_max, d in rows.groupby("lapse_max", sort=False):
+                r = d["ratio"].to_numpy()
+                z = np.concatenate(d["z"].to_list())
+                z = z[np.isfinite(z)]
+                lines.append(f"| {proc} | {n_trials} | {lapse_max:g} | {r.mean():.3f} ± "
+                             f"{r.std(ddof=1) / np.sqrt(r.size):.3f} | {r.min():.3f} | {(r < 0.1).sum()} / "
+                             f"{(r < 0.25).sum()} | {d['lapse_on_bound'].sum()} | {z.std():.2f} | {r.size} |")
     return lines
 
 
@@ -604,7 +619,10 @@ def main() -> None:
     ap.add_argument("--timing", action="store_true",
                     help="first time fit with each interval of --intervals on one group (s per observer)")
     ap.add_argument("--spread-bias", action="store_true",
-                    help="only measure the fitted / true spread and PSE z-scores (no bootstrap) and stop")
+                    help="only measure the fitted / true spread, collapsed spreads and PSE z-scores (no bootstrap, "
+                         "each --lapse-max on the same logs) and stop")
+    ap.add_argument("--lapse-max", type=float, nargs="+", default=[DEFAULT_LAPSE_MAX],
+                    help="with --spread-bias: upper bounds of the free lapse to compare (default: fit's)")
     ap.add_argument("--protocol", default=str(ROOT / "protocols" / "offset_by_lag.toml"))
     ap.add_argument("--tracks", type=int, choices=(1, 2), default=2, help="tracks per condition sharing its trials")
     ap.add_argument("--bayes-placement", choices=("entropy", "pse_mean"), help="placement of Bayesian tracks")

@@ -131,6 +131,28 @@ class Arrow:
             dd = np.maximum(dd, np.abs(np.diagonal(self.e, axis1=-2, axis2=-1)).max(axis=1))
         return dd
 
+    def may_be_indefinite(self, rel: float = 1e-9) -> np.ndarray:
+        """Rows that may have an eigenvalue below ``rel`` times their scale, (B,) bool.
+
+        A cheap screen before a dense eigen-decomposition: a symmetric arrow
+        matrix is positive definite exactly when its diagonal blocks and the
+        Schur complement of the blocks in it are (inertia additivity,
+        Haynsworth 1968, *Linear Algebra and its Applications* 1).  Rows with
+        non-finite entries are not returned.
+        """
+        finite = (np.isfinite(self.d).all(axis=(1, 2, 3)) & np.isfinite(self.b).all(axis=(1, 2, 3))
+                  & np.isfinite(self.e).all(axis=(1, 2)))
+        tol = rel * np.maximum(self.max_abs_diagonal(), 1.0)
+        d = np.where(finite[:, None, None, None], self.d, 1.0)
+        unsure = ~(np.linalg.eigvalsh(d).min(axis=(1, 2)) > tol)
+        if self.m:
+            with np.errstate(all="ignore"):
+                dinv, ok = _small_inverse(d)
+                s = self.e - np.einsum("bcqi,bcqj->bij", self.b, dinv @ self.b)
+            s = np.where((finite & ok)[:, None, None] & np.isfinite(s), s, 0.0)
+            unsure |= ~ok | ~(np.linalg.eigvalsh(s).min(axis=1) > tol)
+        return unsure & finite
+
     def solve(self, g: np.ndarray) -> np.ndarray:
         """Solve ``H d = g`` for every matrix of the batch, g (B, P).
 

@@ -45,7 +45,10 @@ from scipy import sparse, special
 from .arrow import Arrow
 
 SIGMOIDS = ("gaussian", "logistic")
-DEFAULT_LAPSE_MAX = 0.1
+# Wichmann & Hill (2001, Perception & Psychophysics 63, 1293-1313) bound the lapse to [0, 0.06]
+# (from memory); a wider box let short adaptive tracks trade the spread for lapses (the spread
+# collapsed to a few hundredths of the truth with the lapse near 0.1; benchmarks/README.md).
+DEFAULT_LAPSE_MAX = 0.06
 _PROB_FLOOR = 1e-12
 _INV_SQRT_2PI = 1.0 / math.sqrt(2.0 * math.pi)
 
@@ -436,6 +439,7 @@ class BatchSolution:
     converged: np.ndarray    # (B,) bool
     iterations: np.ndarray   # (B,) int
     at_bound: np.ndarray     # (B, P) bool
+    observed: Arrow          # exact Hessian of the negative log-likelihood at theta
 
 
 def _rows(a: np.ndarray, idx: np.ndarray) -> np.ndarray:
@@ -568,9 +572,13 @@ def solve_batch(theta0, x, n, k, layout: Layout, lo, hi, sigmoid="gaussian",
         flat = ~accepted | (gain <= 1e-13 * (1.0 + np.abs(f0[move])))
         converged[todo[move[flat]]] = decrement[move[flat]] < 1e-6
         todo = todo[move[~flat]]
+    stale = np.flatnonzero(~cached)     # moved by a shortened step in the last iteration
+    if stale.size:
+        nll[stale], _, obs_c[stale], _ = _arrow_derivatives(theta[stale], _rows(x, stale), _rows(n, stale),
+                                                            k[stale], layout, sigmoid)
     room = 1e-7 * (hi - lo)
     at_bound = (theta <= lo + room) | (theta >= hi - room)
-    return BatchSolution(theta, nll, converged, iterations, at_bound)
+    return BatchSolution(theta, nll, converged, iterations, at_bound, obs_c)
 
 
 # --------------------------------------------------------------------------
@@ -836,46 +844,92 @@ def _covariance(info, layout, at_bound, sep):
     return cov
 
 
-def _escape_saddles(sol: BatchSolution, cells: Cells, layout: Layout, lo, hi, sigmoid, sep,
-                    rounds: int = 5) -> tuple[BatchSolution, np.ndarray]:
-    """Move a converged single fit off stationary points that are not maxima.
+def _negative_curvature(info, free):
+    """Rows whose observed information over the ``free`` parameters has a negative eigenvalue.
+
+    ``info`` (B, P, P), ``free`` (B, P) bool.  Returns the rows and, for each,
+    the eigenvector of the most negative eigenvalue (zero on fixed parameters).
+    """
+    both = free[:, :, None] & free[:, None, :]
+    ok = np.isfinite(np.where(both, info, 0.0)).all(axis=(1, 2)) & free.any(axis=1)
+    # fixed parameters get a unit diagonal, so they add eigenvalue 1 and never a negative one
+    m = np.where(both & ok[:, None, None], info, 0.0) + np.eye(info.shape[1]) * ~free[:, None, :]
+    evals, vecs = np.linalg.eigh(m)
+    top = np.abs(evals).max(axis=1)
+    rows = np.flatnonzero(ok & (evals[:, 0] < -1e-9 * np.maximum(top, 1.0)))
+    return rows, vecs[rows, :, 0] * free[rows]
+
+
+def escape_saddles(sol: BatchSolution, x, n, k, layout: Layout, lo, hi, sigmoid, free=None,
+                   rounds: int = 5, max_iter: int = 100, tol: float = 1e-10) -> BatchSolution:
+    """Move converged fits off stationary points that are not maxima.
 
     Newton's method stops wherever the gradient vanishes.  A condition whose
     answers are split symmetrically between two levels has a likelihood with
     two peaks once the shared spread is small, and a PSE that started between
     them stays on the saddle (its gradient is zero by symmetry).  Where the
-    observed information over the estimable parameters has a negative
+    observed information over the examined parameters has a negative
     eigenvalue, the fit is searched along that eigenvector (the direction of
     negative curvature; Nocedal & Wright, 2006, *Numerical Optimization*,
     section 4.3) on a grid of steps out to the parameter box, and solved again
-    from the best point if it is better.  ``sol`` is a one-row solution.
+    from the best point if it is better.  Only fits that the arrow screen
+    (:meth:`~fitting.arrow.Arrow.may_be_indefinite`) does not clear are
+    decomposed densely.
 
-    Returns the solution and its observed information (for the covariance).
+    Parameters
+    ----------
+    sol : BatchSolution
+        B fits, as from :func:`solve_batch` with the same data; updated in place.
+    x, n, k, layout, lo, hi, sigmoid
+        As for :func:`solve_batch` (``lo``/``hi`` of shape (P,), (1, P) or (B, P)).
+    free : ndarray (B, P) or (1, P) bool, optional
+        Parameters to examine, besides being off their bounds (default: all).
+    rounds : int
+        Searches per fit at most.
+    max_iter, tol : int, float
+        Of the solves from the searched points (see :func:`solve_batch`).
+
+    Returns
+    -------
+    BatchSolution
+        ``sol``.
     """
-    x, n, k = cells.x[None], cells.n[None], cells.k[None]
+    x, n, k = (np.asarray(a, dtype=float) for a in (x, n, k))
+    lo = np.broadcast_to(np.atleast_2d(lo), sol.theta.shape)
+    hi = np.broadcast_to(np.atleast_2d(hi), sol.theta.shape)
+    todo = np.arange(sol.theta.shape[0])
     for _ in range(rounds):
-        theta = sol.theta[0]
-        info = _information(theta, cells, layout, sigmoid)
-        free = _estimable(layout, sol.at_bound[0], sep)
-        sub = info[np.ix_(free, free)]
-        if not free.any() or not np.isfinite(sub).all():
-            return sol, info
-        evals, vecs = np.linalg.eigh(sub)
-        if not evals[0] < -1e-9 * max(abs(evals[-1]), 1.0):
-            return sol, info
-        v = np.zeros(theta.size)
-        v[free] = vecs[:, 0]
-        reach = float(np.max((hi - lo)[free]))
-        steps = np.geomspace(1e-3, 1.0, 40) * reach
-        cand = np.clip(theta + np.concatenate([steps, -steps])[:, None] * v, lo, hi)
-        f = negative_loglik(cand, x, n, k, layout, sigmoid)
-        best = int(np.nanargmin(f))
-        if not f[best] < sol.nll[0] - 1e-9:
-            return sol, info
-        again = solve_batch(cand[best][None], x, n, k, layout, lo, hi, sigmoid, max_iter=200, tol=1e-12)
-        again.iterations += sol.iterations
-        sol = again
-    return sol, _information(sol.theta[0], cells, layout, sigmoid)
+        examined = ~sol.at_bound[todo] & (True if free is None else _rows(free, todo))
+        unsure = sol.observed[todo].hold(~examined).may_be_indefinite()
+        todo, examined = todo[unsure], examined[unsure]
+        if todo.size == 0:
+            break
+        info = _derivatives(sol.theta[todo], _rows(x, todo), _rows(n, todo), k[todo], layout, sigmoid,
+                            fisher=False)[2]
+        rows, vec = _negative_curvature(info, examined)
+        todo, examined = todo[rows], examined[rows]
+        if todo.size == 0:
+            break
+        reach = np.max(np.where(examined, (hi - lo)[todo], 0.0), axis=1)
+        steps = np.geomspace(1e-3, 1.0, 40)
+        steps = np.concatenate([steps, -steps])[None, :, None] * reach[:, None, None]    # (R, S, 1)
+        cand = np.clip(sol.theta[todo][:, None] + steps * vec[:, None], lo[todo][:, None], hi[todo][:, None])
+        r, s = cand.shape[:2]
+        pick = np.repeat(todo, s)
+        f = negative_loglik(cand.reshape(r * s, -1), _rows(x, pick), _rows(n, pick), k[pick], layout,
+                            sigmoid).reshape(r, s)
+        f = np.where(np.isfinite(f), f, np.inf)
+        best = f.argmin(axis=1)
+        better = f[np.arange(r), best] < sol.nll[todo] - 1e-9
+        todo, start = todo[better], cand[np.flatnonzero(better), best[better]]
+        if todo.size == 0:
+            break
+        again = solve_batch(start, _rows(x, todo), _rows(n, todo), k[todo], layout, lo[todo], hi[todo], sigmoid,
+                            max_iter, tol)
+        sol.theta[todo], sol.nll[todo], sol.converged[todo] = again.theta, again.nll, again.converged
+        sol.iterations[todo] += again.iterations
+        sol.at_bound[todo], sol.observed[todo] = again.at_bound, again.observed
+    return sol
 
 
 def fit_cells(cells: Cells, conditions=None, spread: str = "shared", lapse="free",
@@ -912,7 +966,9 @@ def fit_cells(cells: Cells, conditions=None, spread: str = "shared", lapse="free
     sol = solve_batch(theta0[None], cells.x[None], cells.n[None], cells.k[None], layout,
                       lo, hi, sigmoid, max_iter=200, tol=1e-12)
     sep = separation(cells)
-    sol, info = _escape_saddles(sol, cells, layout, lo, hi, sigmoid, sep)
+    sol = escape_saddles(sol, cells.x[None], cells.n[None], cells.k[None], layout, lo, hi, sigmoid,
+                         free=_estimable(layout, sol.at_bound[0], sep)[None], max_iter=200, tol=1e-12)
+    info = _information(sol.theta[0], cells, layout, sigmoid)
     theta = sol.theta[0]
     at_bound = sol.at_bound[0]
     fit = PsychometricFit(conditions, cells, layout, sigmoid, theta, lo, hi, float(-sol.nll[0]),

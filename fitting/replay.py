@@ -47,7 +47,8 @@ import numpy as np
 
 from .bootstrap import BootstrapResult, bias_corrected, replicate_pse_covariance
 from .progress import ProgressBar
-from .psychometric import PsychometricFit, _cell_terms, deviance_by_condition, probability_cw, solve_batch
+from .psychometric import (PsychometricFit, _cell_terms, deviance_by_condition, escape_saddles, probability_cw,
+                           solve_batch)
 
 
 def _pool(levels: np.ndarray, answers: np.ndarray):
@@ -122,6 +123,7 @@ def _rerun(fit: PsychometricFit, plan, factory, generate: np.ndarray, n_boot: in
             x[r, c, :m], x[r, c, m:] = ux, ux[0]
             n[r, c, :m], k[r, c, :m] = nn, kk
     sol = solve_batch(generate[None], x, n, k, layout, fit.lower, fit.upper, sigmoid)
+    sol = escape_saddles(sol, x, n, k, layout, fit.lower, fit.upper, sigmoid)
     p_star = _cell_terms(sol.theta, x, layout, sigmoid)[0]
     dev = deviance_by_condition(p_star, n, k)
     cov = (replicate_pse_covariance(sol.theta, x, n, k, layout, sigmoid, sol.at_bound)

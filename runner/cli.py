@@ -424,7 +424,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", required=True, help="output folder for tables and figures")
     p.add_argument("--bootstrap", type=int, default=1000, help="parametric bootstrap replicates (default 1000)")
     p.add_argument("--seed", type=int, default=0, help="seed (default 0)")
-    p.add_argument("--lapse", default="free", help="'free' (bounded to [0, 0.1]) or a fixed value (default free)")
+    p.add_argument("--lapse", default="free", help="'free' (bounded to [0, --lapse-max]) or a fixed value (default free)")
     p.add_argument("--spread", choices=["shared", "per_condition"], default="shared",
                    help="one spread per observer or one per condition, with a likelihood-ratio test (default shared)")
     p.add_argument("--function", choices=["gaussian", "logistic"], default="gaussian",
@@ -435,7 +435,8 @@ def build_parser() -> argparse.ArgumentParser:
                         "bias-corrected (stream default), profile likelihood or studentized bootstrap (PSEs "
                         "and shifts of adapt-test logs), or percentile")
     p.add_argument("--level", type=float, default=0.95, help="confidence level (default 0.95)")
-    p.add_argument("--lapse-max", type=float, default=0.1, help="upper bound of a free lapse rate (default 0.1)")
+    p.add_argument("--lapse-max", type=float, default=0.06,
+                   help="upper bound of a free lapse rate (default 0.06, Wichmann & Hill 2001)")
     p.add_argument("--include-bad-timing", action="store_true", help="keep trials with timing_ok = false")
     p.add_argument("--include-practice", action="store_true", help="keep practice trials")
     p.add_argument("--no-figures", action="store_true", help="tables only")

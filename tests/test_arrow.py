@@ -20,6 +20,27 @@ def _random_local(rng, b, c, free_lapse):
     return loc
 
 
+
+@pytest.mark.parametrize("shared", [True, False])
+def test_screen_for_negative_curvature_misses_no_indefinite_matrix(shared):
+    # Reference: numpy's dense symmetric eigenvalues (LAPACK). Blocks with a weakened diagonal make
+    # about half of the matrices indefinite, some only through the Schur complement.
+    rng = np.random.default_rng(11)
+    layout = Layout(7, shared, None)
+    local = _random_local(rng, 400, 7, True)
+    local -= rng.uniform(0.0, 9.0, size=(400, 1, 1, 1)) * np.eye(3)
+    arrow = Arrow.from_local(local, shared, True)
+    fixed = rng.random((400, layout.n_params)) < 0.1
+    lowest = np.linalg.eigvalsh(arrow.hold(fixed).dense())[:, 0]
+    flagged = arrow.hold(fixed).may_be_indefinite()
+    assert 0.2 < (lowest < 0).mean() < 0.8
+    assert flagged[lowest < 0].all()
+    # a definite matrix is cleared unless it is within rounding of singular
+    assert not flagged[lowest > 1e-6].any()
+    # non-finite entries are left to the caller
+    arrow.e[0, 0, 0] = np.nan
+    assert not arrow.may_be_indefinite()[0]
+
 @pytest.mark.parametrize("shared", [True, False])
 @pytest.mark.parametrize("lapse", [None, 0.02])
 def test_schur_solve_equals_a_dense_lapack_solve(shared, lapse):
