@@ -547,6 +547,7 @@ def spread_bias(args, model) -> list[str]:
                 lines.append(f"| {proc} | {n_trials} | {lapse_max:g} | {r.mean():.3f} ± "
                              f"{r.std(ddof=1) / np.sqrt(r.size):.3f} | {r.min():.3f} | {(r < 0.1).sum()} / "
                              f"{(r < 0.25).sum()} | {d['lapse_on_bound'].sum()} | {z.std():.2f} | {r.size} |")
+            print("\n".join(lines), file=sys.stderr, flush=True)     # so far, for long runs
     return lines
 
 

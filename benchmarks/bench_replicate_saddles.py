@@ -9,7 +9,8 @@ script draws ``--boot`` fixed-level replicates at the point fit, refits them
 with :func:`fitting.psychometric.solve_batch`, and counts refits whose observed
 information over the parameters off their bounds has a negative eigenvalue
 (numpy's dense ``eigvalsh``), before and after
-:func:`fitting.psychometric.escape_saddles`.  It also reports how far the
+:func:`fitting.psychometric.escape_saddles`, and how many of those left
+had not converged (flagged so in ``fit``'s tables).  It also reports how far the
 moved PSEs went, the log-likelihood they gained, and the seconds of the
 refits and of the escape side by side in one run.
 
@@ -65,7 +66,9 @@ def one_observer(log: str, n_boot: int, rng) -> dict:
     escape_saddles(sol, cells.x[None], cells.n[None], k, lay, fit.lower, fit.upper, "gaussian")
     t2 = time.perf_counter()
     moved = old.nll - sol.nll > 1e-9
-    return {"before": int(on_saddle(old, cells, k, lay).sum()), "after": int(on_saddle(sol, cells, k, lay).sum()),
+    left = on_saddle(sol, cells, k, lay)
+    return {"before": int(on_saddle(old, cells, k, lay).sum()), "after": int(left.sum()),
+            "after_unconverged": int((left & ~sol.converged).sum()),
             "moved": int(moved.sum()), "gain": list(old.nll[moved] - sol.nll[moved]),
             "pse_move": list(np.abs(sol.theta - old.theta)[moved][:, lay.pse_index].max(axis=1)),
             "solve_s": t1 - t0, "escape_s": t2 - t1, "n": n_boot}
@@ -84,7 +87,7 @@ def main() -> None:
     model = load_model(args.model)
     print(f"# fixed-level refits on saddles: {args.groups} groups of each size {args.sizes} per cell, "
           f"{args.boot} replicates per observer")
-    print("| procedure | trials/cond. | refits on a saddle | after the escape | PSE moved (median / max, deg) | "
+    print("| procedure | trials/cond. | refits on a saddle | after the escape (not converged) | PSE moved (median / max, deg) | "
           "log-likelihood gained (median) | refit s | escape s (× refit) | observers |")
     print("|---|---|---|---|---|---|---|---|---|")
     for proc in args.procedures:
@@ -100,10 +103,11 @@ def main() -> None:
                         rows += [one_observer(log, args.boot, rng) for log in logs]
             n = sum(r["n"] for r in rows)
             before, after = sum(r["before"] for r in rows), sum(r["after"] for r in rows)
+            unconverged = sum(r["after_unconverged"] for r in rows)
             move = np.concatenate([r["pse_move"] for r in rows] + [[np.nan]])
             gain = np.concatenate([r["gain"] for r in rows] + [[np.nan]])
             solve_s, esc_s = sum(r["solve_s"] for r in rows), sum(r["escape_s"] for r in rows)
-            print(f"| {proc} | {n_trials} | {before} of {n} ({100 * before / n:.2f} %) | {after} | "
+            print(f"| {proc} | {n_trials} | {before} of {n} ({100 * before / n:.2f} %) | {after} ({unconverged}) | "
                   f"{np.nanmedian(move):.2f} / {np.nanmax(move):.2f} | {np.nanmedian(gain):.2f} | "
                   f"{solve_s:.1f} | {esc_s:.1f} ({esc_s / solve_s:.2f}×) | {len(rows)} |", flush=True)
 
