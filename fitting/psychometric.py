@@ -904,9 +904,7 @@ def escape_saddles(sol: BatchSolution, x, n, k, layout: Layout, lo, hi, sigmoid,
         todo, examined = todo[unsure], examined[unsure]
         if todo.size == 0:
             break
-        info = _derivatives(sol.theta[todo], _rows(x, todo), _rows(n, todo), k[todo], layout, sigmoid,
-                            fisher=False)[2]
-        rows, vec = _negative_curvature(info, examined)
+        rows, vec = _negative_curvature(sol.observed[todo].dense(), examined)
         todo, examined = todo[rows], examined[rows]
         if todo.size == 0:
             break
