@@ -19,7 +19,7 @@ import time
 from pathlib import Path
 
 import pytest
-from conftest_display import DATA, find_window, own_x_server, require_xdotool, send_key  # noqa: F401
+from conftest_display import DATA, XServer, find_window, own_x_server, require_xdotool, send_key  # noqa: F401
 
 from runner import safety
 from runner.protocol import load_protocol
@@ -96,10 +96,19 @@ def test_keyboard_session_escape_and_resume(own_x_server, tmp_path):  # noqa: F8
     assert 3 <= len(first) < total, "Escape should have ended the session early"
     assert "--resume" in out.splitlines()[-1], "after Escape the console should say how to continue"
 
-    code, out, err = drive(start([*args, "--resume"], env), env, log)
+    # The resume draws on a fresh X server: no window id, key event or window of the first process can
+    # reach it.  (One CI run saw the resumed session end with exit 0 and no trial added; it did not recur
+    # in 30 runs under load, and its cause was not found.  If it recurs, the message below shows what the
+    # program printed.)
+    second_server = XServer()
+    try:
+        env = second_server.env()
+        code, out, err = drive(start([*args, "--resume"], env), env, log)
+    finally:
+        second_server.stop()
     assert code == 0, err
     rows = rows_in(log)
-    assert len(rows) == total
+    assert len(rows) == total, f"the resumed session ended early; it printed:\n{out}\n{err}"
     assert rows[: len(first)] == first, "resuming changed trials already logged"
     assert [int(r["trial"]) for r in rows] == list(range(1, total + 1))
     for row in rows:
