@@ -22,7 +22,8 @@ fixed-level one and the one that re-runs the adaptive tracks), side by side
 on the same logs.  Each fit is then scored with each interval of
 ``--intervals``, on the same fit and the same replicates: ``by-statistic``
 (the default of ``fit``: percentile for PSEs, shifts and peak offsets, BCa for
-amplitudes and decay), ``bca``, ``percentile``, ``profile`` (profile likelihood for
+amplitudes, the profile interval of :func:`fitting.aftereffect.decay_profile_interval` for the
+decay), ``bca``, ``percentile``, ``profile`` (profile likelihood for
 PSEs and shifts, :mod:`fitting.profile`; tuning and decay keep BCa) and
 ``studentized`` (bootstrap-t for PSEs and shifts with every replicate's own
 standard error; tuning and decay keep BCa).  ``--timing`` first times
@@ -70,7 +71,7 @@ sys.path.insert(0, str(ROOT))
 
 from fitting.aftereffect import fit_decay, fit_tuning, peak_bounds  # noqa: E402
 from fitting.bootstrap import percentile_interval  # noqa: E402
-from fitting.observer import BY_STATISTIC, INTERVAL_METHODS, pse_shift_intervals  # noqa: E402
+from fitting.observer import BY_STATISTIC, INTERVAL_METHODS, decay_interval, pse_shift_intervals  # noqa: E402
 from fitting.compare import agreement, combine_gains, compare_results, gls_gain  # noqa: E402
 from fitting.covariance import covariance_matrix, group_covariance  # noqa: E402
 from fitting.meta import random_effects, variance_from_interval  # noqa: E402
@@ -263,7 +264,8 @@ def method_tables(report, method: str, level: float = 0.95):
         if sel.any():
             own["aftereffect"].loc[sel, "ci_low"], own["aftereffect"].loc[sel, "ci_high"] = slo, shi
         if method in ("percentile", BY_STATISTIC) and a.boot is not None:
-            # by-statistic: percentile peak offsets; amplitudes and decay keep the fit's BCa limits
+            # by-statistic: percentile peak offsets, the profile interval of the decay; amplitudes keep
+            # the fit's BCa limits
             kinds = ["amplitude", "peak_offset"] if method == "percentile" else ["peak_offset"]
             t = own["tuning"]
             for i in np.flatnonzero((t["observer"] == a.observer).to_numpy()):
@@ -276,6 +278,10 @@ def method_tables(report, method: str, level: float = 0.95):
             if method == "percentile" and sel.any() and "decay" in a.curves:
                 lo, hi = percentile_interval(a.curves["decay"][:, 2], level)
                 d.loc[sel, "ci_low"], d.loc[sel, "ci_high"] = lo[0], hi[0]
+            if method == BY_STATISTIC and sel.any():
+                limits = decay_interval(a, level)
+                if np.all(np.isfinite(limits)):
+                    d.loc[sel, "ci_low"], d.loc[sel, "ci_high"] = limits
     tables = dict(own)
     if len(report.analyses) > 1:
         tables["pse"] = pd.concat([own["pse"], group_pse(own["pse"], level)], ignore_index=True)

@@ -1,10 +1,14 @@
 """Tuning and decay fits against scipy's least-squares fitters; parameter recovery."""
 
 import numpy as np
+import pandas as pd
 import pytest
-from scipy import optimize
+from scipy import optimize, stats
 
-from fitting.aftereffect import dog, fit_decay, fit_tuning
+from conftest import ROOT, run_cli
+from fitting.covariance import covariance_matrix
+
+from fitting.aftereffect import TAU_BOUNDS, decay_profile_interval, dog, fit_decay, fit_tuning
 from fitting.synthetic import recovery_study
 
 OFFSETS = np.array([-90, -60, -30, -15, 15, 30, 60, 90.0])
@@ -51,6 +55,78 @@ def test_exact_curves_are_recovered_and_bounds_flagged():
     narrow = np.array([-15, -10, -5, 5, 10, 15.0])                          # peak beyond the range
     t = fit_tuning(narrow, dog(narrow, 2.0, 80.0)[None], np.ones(6))
     assert t.peak_at_bound[0] and t.peak[0] == pytest.approx(30.0)
+
+
+def _correlated_shifts(rng, tau, lags, sd=0.5, shared=0.35):
+    """Shifts of the decay model with errors that share a baseline term, and their covariance."""
+    d = np.tile(OFFSETS, lags.size)
+    k = np.repeat(lags, OFFSETS.size)
+    cov = sd**2 * np.eye(d.size) + shared**2 * np.ones((d.size, d.size))
+    y = dog(d, 3.0, 30.0) * np.exp(-k / tau) + rng.multivariate_normal(np.zeros(d.size), cov)
+    return d, k, y, cov
+
+
+def test_decay_profile_interval_equals_a_scipy_profile():
+    # Reference: the profile of the generalised least-squares sum of squares computed with scipy's
+    # least_squares (A and w free at each fixed tau, several starts) and the limits found with brentq;
+    # the cut s^2 F(1, n - 3) with s^2 = S_min / (n - 3) is the profile interval of nonlinear least squares
+    # with an unknown variance factor (Bates & Watts 1988, ch. 6; chapter from memory).
+    rng = np.random.default_rng(5)
+    lags = np.array([0, 1, 2, 3.0])
+    d, k, y, cov = _correlated_shifts(rng, 1.5, lags)
+    white = np.linalg.cholesky(np.linalg.inv(cov)).T            # W'W = V^-1
+
+    def resid(p, tau):
+        return white @ (y - dog(d, p[0], p[1]) * np.exp(-k / tau))
+
+    def profile(tau):
+        fits = [optimize.least_squares(resid, start, args=(tau,), bounds=([-np.inf, 7.5], [np.inf, 180.0]),
+                                       xtol=1e-12, ftol=1e-12) for start in ([2.0, 15.0], [2.0, 40.0], [4.0, 90.0])]
+        return min(2 * f.cost for f in fits)
+
+    grid = np.geomspace(0.2, 50, 300)
+    s_grid = np.array([profile(t) for t in grid])
+    best = optimize.minimize_scalar(lambda lt: profile(np.exp(lt)), bracket=np.log(grid[s_grid.argmin() - 1:
+                                                                                   s_grid.argmin() + 2]))
+    s_min, n = best.fun, y.size
+    cut = s_min + s_min / (n - 3) * stats.f.ppf(0.95, 1, n - 3)
+    ref_lo = optimize.brentq(lambda t: profile(t) - cut, grid[0], np.exp(best.x))
+    ref_hi = optimize.brentq(lambda t: profile(t) - cut, np.exp(best.x), grid[-1])
+    estimate = fit_decay(OFFSETS, lags, y.reshape(lags.size, -1)[None], np.ones((lags.size, OFFSETS.size))).tau[0]
+    lo, hi = decay_profile_interval(d, k, y, cov, estimate, bounds=(7.5, 180.0))
+    assert lo == pytest.approx(ref_lo, rel=0.02) and hi == pytest.approx(ref_hi, rel=0.02)
+    assert lo <= estimate <= hi
+    # the variance factor is estimated: any multiple of the covariance gives the same interval
+    assert decay_profile_interval(d, k, y, 7.0 * cov, estimate, bounds=(7.5, 180.0)) == pytest.approx((lo, hi))
+
+
+def test_decay_profile_interval_reaches_the_bound_when_nothing_decays():
+    rng = np.random.default_rng(6)
+    lags = np.array([0, 1, 2, 3.0])
+    d, k, y, cov = _correlated_shifts(rng, 1e6, lags)            # no decay over 3 periods
+    lo, hi = decay_profile_interval(d, k, y, cov, 50.0)
+    assert hi == TAU_BOUNDS[1] and 0 < lo < 50.0
+    # too few shifts, or a covariance that is not positive definite: no interval
+    assert np.isnan(decay_profile_interval(d[:3], k[:3], y[:3], cov[:3, :3], 1.0)).all()
+    assert np.isnan(decay_profile_interval(d, k, y, -cov, 1.0)).all()
+
+
+def test_fit_writes_the_profile_interval_of_its_own_shifts_and_covariance(tmp_path):
+    # decay.csv (default intervals) against decay_profile_interval recomputed from what fit wrote beside it:
+    # the shifts of aftereffect.csv and their covariance in aftereffect_covariance.csv (6 digits)
+    log = ROOT / "results_demo" / "logs" / "sim01-s1.trials.csv"
+    done = run_cli("fit", log, "--out", tmp_path, "--bootstrap", "300", "--no-figures", "--seed", "3")
+    assert done.returncode == 0, done.stderr
+    shifts = pd.read_csv(tmp_path / "aftereffect.csv").sort_values(["lag", "adapter_offset_deg"])
+    lags, offsets = shifts["lag"].to_numpy(float), shifts["adapter_offset_deg"].to_numpy(float)
+    cov, replicates, _ = covariance_matrix(pd.read_csv(tmp_path / "aftereffect_covariance.csv"), "sim01",
+                                           lags, offsets)
+    assert replicates == 300
+    decay = pd.read_csv(tmp_path / "decay.csv").iloc[0]
+    lo, hi = decay_profile_interval(offsets, lags, shifts["pse_shift_deg"].to_numpy(float), cov,
+                                    decay["decay_periods"])
+    assert (decay["ci_low"], decay["ci_high"]) == pytest.approx((lo, hi), rel=2e-3)
+    assert decay["ci_low"] < decay["decay_periods"] < decay["ci_high"]
 
 
 @pytest.mark.slow  # left out of the quick subset
