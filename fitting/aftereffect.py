@@ -312,13 +312,17 @@ def decay_profile_interval(offsets, lags, shifts, covariance, estimate: float, b
     rates = np.geomspace(1.0 / tau_bounds[1], 1.0 / tau_bounds[0], n_rates)
     shape = _shape(d[None, :], log_w[:, None])[0]                     # (G, n)
     decay = np.exp(-k[None, :] * rates[:, None])                      # (R, n)
-    # whitened model columns L^-1 m and data L^-1 y; then S = |L^-1 y|^2 - (m'V^-1 y)^2 / (m'V^-1 m)
-    white = np.linalg.solve(chol, (decay[:, None, :] * shape[None]).reshape(-1, n).T).T
     wy = np.linalg.solve(chol, y)
-    num = white @ wy
-    den = np.einsum("ij,ij->i", white, white)
-    fitted = np.where(den > 0, num * num / np.where(den > 0, den, 1.0), 0.0)
-    profile = (wy @ wy - fitted).reshape(rates.size, log_w.size).min(axis=1)
+    profile = np.empty(rates.size)
+    step = max(1, 2_000_000 // (n_peaks * n))                         # rates per chunk: bounded memory
+    for start in range(0, rates.size, step):
+        # whitened model columns L^-1 m; S = |L^-1 y|^2 - (m'V^-1 y)^2 / (m'V^-1 m), least over the peaks
+        cols = (decay[start:start + step, None, :] * shape[None]).reshape(-1, n)
+        white = np.linalg.solve(chol, cols.T).T
+        num = white @ wy
+        den = np.einsum("ij,ij->i", white, white)
+        fitted = np.where(den > 0, num * num / np.where(den > 0, den, 1.0), 0.0)
+        profile[start:start + step] = (wy @ wy - fitted).reshape(-1, log_w.size).min(axis=1)
     s_min = float(profile.min())
     if s_min <= 0:
         return nan
