@@ -65,6 +65,10 @@ SLOW_TESTS = (
     "tests/test_fit_report.py::test_same_seed_same_bytes_and_nothing_else_touched",
     "tests/test_fit_report.py::test_figures_are_written_as_png_and_pdf",
     "tests/test_figures.py::test_parallel_and_serial_drawing_write_the_same_files",
+    # 2.7-11 s each (measured 2026-12-03, when the quick subset had grown to 61 s on this machine)
+    "tests/test_fit_report.py::test_figures_drawn_beside_the_fits_are_the_bytes_drawn_after_them",
+    "tests/test_fit_aftereffect.py::test_fit_writes_the_profile_interval_of_its_own_shifts_and_covariance",
+    "tests/test_fit_aftereffect.py::test_decay_profile_interval_equals_a_scipy_profile",
 )
 
 
