@@ -67,10 +67,12 @@ def score(rows: list[dict], kind: str) -> str:
     lo = np.array([r[kind][0] for r in rows])
     hi = np.array([r[kind][1] for r in rows])
     truth = np.array([r["truth"] for r in rows])
-    held = (lo <= truth) & (truth <= hi)
+    held = (lo <= truth) & (truth <= hi)          # no interval (NaN limits) counts as a miss
     p, n = held.mean(), held.size
+    none = int(np.sum(~np.isfinite(lo) | ~np.isfinite(hi)))
     return (f"{100 * p:.1f} ± {100 * np.sqrt(p * (1 - p) / n):.1f} | {int((truth < lo).sum())} / "
-            f"{int((truth > hi).sum())} | {np.median(np.log(hi / lo)):.2f}")
+            f"{int((truth > hi).sum())}{f' ({none} without an interval)' if none else ''} | "
+            f"{np.nanmedian(np.log(hi / lo)):.2f}")
 
 
 def main() -> None:
