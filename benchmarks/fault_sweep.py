@@ -10,14 +10,20 @@ imports, header and sidecar writes and trials alike):
 * ``race``: a second ``simulate`` (fresh or ``--resume``, alternately), then
   ``--resume`` if the session is not complete.
 
+* ``plan``: Ctrl-C to the whole process group of ``plan`` (``protocols/pilot_short.toml``,
+  ``--runs 4``: 12 tasks on local worker processes), then ``plan`` again.
+
 A case is clean when every command either succeeded or failed with exit 2 /
 130 and exactly one line on stderr (notes and warnings allowed on success;
 a process killed by the signal itself, which SIGTERM does while the
 interpreter is still starting, says nothing),
 no traceback appeared, no temporary file was left, and the final log equals,
-byte for byte, an uninterrupted run with the same seed.
+byte for byte, an uninterrupted run with the same seed. For ``plan``: no
+process of the group is left once the command has ended (stderr reaches its
+end within 60 s), and the second ``plan``'s ``plan.csv`` equals an
+uninterrupted run's.
 
-Run: ``python benchmarks/fault_sweep.py [--cases 30] [--seed 1]`` (cases per kind).
+Run: ``python benchmarks/fault_sweep.py [--cases 30] [--seed 1] [--plan 10]`` (cases per kind).
 """
 
 from __future__ import annotations
@@ -35,6 +41,7 @@ import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
 PROTOCOL = ROOT / "protocols" / "offset_by_lag.toml"
+PILOT = ROOT / "protocols" / "pilot_short.toml"
 ARGS = ["--observers", "1", "--seed", "5"]
 ENV = {**os.environ, "PYTHONPATH": str(ROOT)}
 
@@ -60,6 +67,38 @@ def _problems(code: int, err: str, ok=(0, 2, 130)) -> list[str]:
     if code == 0 and any(not ln.startswith(("note:", "warning:")) for ln in lines):
         found.append("unexpected stderr")
     return found
+
+
+def _plan(out: Path) -> list[str]:
+    return [sys.executable, "-m", "runner.cli", "plan", str(PILOT), "--runs", "4", "--out", str(out)]
+
+
+def plan_case(at: float, n: int, reference: bytes, work: Path) -> list[str]:
+    out = work / f"plan{n}"
+    # a session of its own, so that the signal reaches the workers too, as a terminal's Ctrl-C does
+    first = subprocess.Popen(_plan(out), stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True,
+                             env=ENV, cwd=ROOT, start_new_session=True)
+    time.sleep(at)
+    if first.poll() is None:
+        os.killpg(first.pid, signal.SIGINT)
+    problems = []
+    try:
+        err = first.communicate(timeout=60)[1]      # ends when every process holding stderr has ended
+    except subprocess.TimeoutExpired:
+        os.killpg(first.pid, signal.SIGKILL)
+        err = first.communicate()[1]
+        problems.append("a process of the group still running 60 s later")
+    # -SIGINT: ended by the signal itself, as Python does after a Ctrl-C inside code it ran through eval
+    # (e.g. a namedtuple made while modules load) even when the one line was written; a shell reports 130
+    problems += _problems(130 if first.returncode == -signal.SIGINT else first.returncode, err)
+    done = subprocess.run(_plan(out), capture_output=True, text=True, env=ENV, cwd=ROOT)
+    problems += _problems(done.returncode, done.stderr, ok=(0,))
+    if not (out / "plan.csv").is_file() or (out / "plan.csv").read_bytes() != reference:
+        problems.append("plan.csv differs from the uninterrupted run")
+    # tasks/.lock stays: it is the lock file that keeps a second `plan` out of the folder
+    if [p for p in out.rglob("*") if p.name != ".lock" and (p.name.startswith(".") or p.name.endswith(".tmp"))]:
+        problems.append("temporary file left")
+    return problems
 
 
 def _logs(folder: Path) -> dict[str, bytes]:
@@ -96,6 +135,8 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--cases", type=int, default=30, help="cases per kind (default 30)")
     parser.add_argument("--seed", type=int, default=1)
+    parser.add_argument("--plan", type=int, default=10, metavar="N",
+                        help="Ctrl-C cases of `plan` (default 10; 0 skips them)")
     args = parser.parse_args()
     rng = np.random.default_rng(args.seed)
     with tempfile.TemporaryDirectory() as tmp:
@@ -118,6 +159,21 @@ def main() -> None:
             total += args.cases
             clean += kind_clean
             print(f"{kind:<6}{args.cases:>7}{kind_clean:>7}  {bad or 'none'}")
+        if args.plan:
+            t0 = time.perf_counter()
+            subprocess.run(_plan(work / "plan_whole"), check=True, capture_output=True, env=ENV, cwd=ROOT)
+            span = time.perf_counter() - t0
+            reference = (work / "plan_whole" / "plan.csv").read_bytes()
+            print(f"uninterrupted plan: {span:.2f} s; Ctrl-C instants drawn uniformly in [0, {1.1 * span:.2f}] s")
+            bad, kind_clean = {}, 0
+            for n in range(args.plan):
+                found = plan_case(float(rng.uniform(0, 1.1 * span)), n, reference, work)
+                for f in found:
+                    bad[f] = bad.get(f, 0) + 1
+                kind_clean += not found
+            total += args.plan
+            clean += kind_clean
+            print(f"{'plan':<6}{args.plan:>7}{kind_clean:>7}  {bad or 'none'}")
         print(f"all   {total:>7}{clean:>7}")
 
 

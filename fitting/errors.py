@@ -1,7 +1,10 @@
-"""The one error type for bad input, shared by the whole tool.
+"""The two error types the command line turns into one line on stderr.
 
-The command line turns an :class:`InputError` into a single line on stderr
-and exit code 2; nothing else about it is special.
+:class:`InputError` (bad input, exit code 2) is shared by the whole tool;
+:class:`SafetyRefusal` (exit code 3) is raised by :mod:`runner.safety` and
+the timing checks. Both live here, in a module that imports nothing, so
+that the command line can catch them from its first instant (a Ctrl-C
+while the heavy modules load is then reported in one line too).
 """
 
 from __future__ import annotations
@@ -34,3 +37,49 @@ class InputError(ValueError):
         """Return the one-line description: ``source: field: message``."""
         parts = [p for p in (self.source, self.field) if p]
         return ": ".join(parts + [self.message])
+
+
+class SafetyRefusal(Exception):
+    """A protocol or display refused for safety or timing (exit code 3).
+
+    Parameters
+    ----------
+    reason : str
+        Why, in plain words.
+    remedy : str
+        How to go on (a fix, and the override option where there is one).
+    source : str
+        The protocol file, if known.
+    field : str
+        The protocol field concerned, if any.
+    kind : {"safety", "timing"}
+        Which check refused.
+    override : str or None
+        The command-line option that runs anyway after review, if any.
+    """
+
+    #: Exit code of the command line for a refusal.
+    exit_code = 3
+
+    def __init__(
+        self,
+        reason: str,
+        remedy: str,
+        source: str = "",
+        field: str = "",
+        kind: str = "safety",
+        override: str | None = None,
+    ):
+        self.reason = " ".join(str(reason).split()).rstrip(".")
+        self.remedy = " ".join(str(remedy).split()).rstrip(".")
+        self.source = str(source)
+        self.field = str(field)
+        self.kind = kind
+        self.override = override
+        super().__init__(self.line())
+
+    def line(self) -> str:
+        """The one-line message: ``source: field: refused for KIND: reason; remedy``."""
+        reason = self.reason[:1].lower() + self.reason[1:]
+        parts = [p for p in (self.source, self.field) if p]
+        return ": ".join(parts + [f"refused for {self.kind}: {reason}; {self.remedy}"])

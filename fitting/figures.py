@@ -34,11 +34,13 @@ from __future__ import annotations
 import os
 import re
 import signal
+from contextlib import ExitStack
 from pathlib import Path
 
 import numpy as np
 
 from .aftereffect import dog
+from .children import children_shielded, follow_parent
 from .errors import InputError
 from .panels import FAINT as _FAINT
 from .panels import INK as _INK
@@ -401,13 +403,14 @@ _TASKS: list = []      # filled before the worker processes fork; they read it b
 
 
 def _plain_worker_signals() -> None:
-    """Forked drawing workers: Ctrl-C is the parent's to report, and the pool's SIGTERM just ends them.
+    """Forked drawing workers: Ctrl-C is the parent's to report; SIGTERM or the parent's end ends them.
 
     They inherit the command's own handlers otherwise (a SIGTERM handler that
     raises would print a traceback when the pool shuts its workers down).
     """
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_DFL)
+    follow_parent()
 
 
 def observer_figure_tasks(a) -> list:
@@ -521,7 +524,10 @@ def make_figures(analyses, group: dict | None, out_dir: Path, formats=FIT_FORMAT
             pyplot()            # imported once here, inherited by the worker processes
         if jobs > 1 and hasattr(os, "fork"):
             import multiprocessing
-            with multiprocessing.get_context("fork").Pool(jobs, initializer=_plain_worker_signals) as pool:
+            with ExitStack() as stack:
+                with children_shielded():       # a Ctrl-C as they fork is the parent's alone
+                    pool = stack.enter_context(
+                        multiprocessing.get_context("fork").Pool(jobs, initializer=_plain_worker_signals))
                 pool.starmap(_run_task, [(i, str(out_dir), formats) for i in todo], chunksize=1)
         else:
             for i in todo:

@@ -14,8 +14,7 @@ import signal
 import sys
 from pathlib import Path
 
-from fitting.errors import InputError
-from runner.safety import SafetyRefusal
+from fitting.errors import InputError, SafetyRefusal
 
 EXIT_OK, EXIT_INPUT, EXIT_SAFETY = 0, 2, 3
 DEFAULT_PROTOCOL = Path(__file__).resolve().parent.parent / "protocols" / "offset_by_lag.toml"
@@ -548,9 +547,12 @@ def main(argv: list[str] | None = None) -> int:
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return EXIT_OK
     except KeyboardInterrupt as exc:
-        command = getattr(args, "command", None)
-        print(f"aftershift{' ' + command if command else ''}: {_interrupted_line(command, exc)}", file=sys.stderr)
-        return 130
+        return _interrupted(args, exc)
+    except Exception as exc:
+        interrupt = _interrupt_behind(exc)
+        if interrupt is None:
+            raise
+        return _interrupted(args, interrupt)
 
 
 def console() -> int:
@@ -572,6 +574,29 @@ class Terminated(KeyboardInterrupt):
 def _on_sigterm(signum, frame):  # noqa: ARG001 - signal handler
     signal.signal(signal.SIGTERM, signal.SIG_IGN)  # one clean ending, not two
     raise Terminated()
+
+
+def _interrupt_behind(exc: BaseException) -> KeyboardInterrupt | None:
+    """The Ctrl-C (or SIGTERM) that caused ``exc``, if any.
+
+    Some compiled modules turn a Ctrl-C that lands while they load into an
+    error of their own (scipy's linear-programming module raises
+    ``ImportError: initialization failed`` from the ``KeyboardInterrupt``).
+    """
+    seen = set()
+    while exc is not None and id(exc) not in seen:
+        if isinstance(exc, KeyboardInterrupt):
+            return exc
+        seen.add(id(exc))
+        exc = exc.__cause__ or exc.__context__
+    return None
+
+
+def _interrupted(args, exc: KeyboardInterrupt) -> int:
+    """Say in one line that the command was interrupted, and what of its work is kept; return 130."""
+    command = getattr(args, "command", None)
+    print(f"aftershift{' ' + command if command else ''}: {_interrupted_line(command, exc)}", file=sys.stderr)
+    return 130
 
 
 def _interrupted_line(command: str | None, exc: BaseException) -> str:

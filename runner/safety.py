@@ -135,7 +135,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from fitting.errors import InputError
+from fitting.errors import InputError, SafetyRefusal  # SafetyRefusal: defined there, raised here
 from runner import geometry
 from runner.plan import Period, trial_periods
 from runner.protocol import Protocol, frame_plan
@@ -915,52 +915,6 @@ def screen_protocol(protocol: Protocol, light=None) -> Screening:
 
 # ----------------------------------------------------------------------------------------------
 # Refusals (exit code 3)
-
-
-class SafetyRefusal(Exception):
-    """A protocol or display refused for safety or timing (exit code 3).
-
-    Parameters
-    ----------
-    reason : str
-        Why, in plain words.
-    remedy : str
-        How to go on (a fix, and the override option where there is one).
-    source : str
-        The protocol file, if known.
-    field : str
-        The protocol field concerned, if any.
-    kind : {"safety", "timing"}
-        Which check refused.
-    override : str or None
-        The command-line option that runs anyway after review, if any.
-    """
-
-    #: Exit code of the command line for a refusal.
-    exit_code = 3
-
-    def __init__(
-        self,
-        reason: str,
-        remedy: str,
-        source: str = "",
-        field: str = "",
-        kind: str = "safety",
-        override: str | None = None,
-    ):
-        self.reason = " ".join(str(reason).split()).rstrip(".")
-        self.remedy = " ".join(str(remedy).split()).rstrip(".")
-        self.source = str(source)
-        self.field = str(field)
-        self.kind = kind
-        self.override = override
-        super().__init__(self.line())
-
-    def line(self) -> str:
-        """The one-line message: ``source: field: refused for KIND: reason; remedy``."""
-        reason = self.reason[:1].lower() + self.reason[1:]
-        parts = [p for p in (self.source, self.field) if p]
-        return ": ".join(parts + [f"refused for {self.kind}: {reason}; {self.remedy}"])
 
 
 def screening_refusal(screening: Screening, source: str = "") -> SafetyRefusal | None:

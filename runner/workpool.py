@@ -41,6 +41,7 @@ from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
 from pathlib import Path
 
+from fitting.children import children_shielded, follow_parent
 from fitting.errors import InputError
 
 #: How to install the optional Dask part.
@@ -63,9 +64,10 @@ def available_cores() -> int:
         return max(1, os.cpu_count() or 1)
 
 
-def _ignore_interrupt() -> None:
-    # Ctrl-C reaches the whole process group; only the parent handles it.
+def _worker_start() -> None:
+    """First thing in every local worker: leave Ctrl-C to the parent, and end when the parent ends."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    follow_parent()
 
 
 class LocalPool:
@@ -90,10 +92,8 @@ class LocalPool:
         if self.workers > 1 and preload:
             # the server that forks the workers imports these now, beside whatever this process does
             # before its first tasks (it does not wait for the server)
-            ctx = multiprocessing.get_context("forkserver")
-            ctx.set_forkserver_preload(list(preload))
             try:
-                multiprocessing.forkserver.ensure_running()
+                _start_server(preload)
             except OSError:     # only a head start: the pool tries again, and reports, when it is used
                 pass
 
@@ -117,12 +117,12 @@ class LocalPool:
             return
         # forkserver: workers fork from a clean server process (not from this one, which may hold
         # threads) that has imported the task's module once, so they start without importing it again
-        ctx = multiprocessing.get_context("forkserver")
-        ctx.set_forkserver_preload([fn.__module__])
+        ctx = _start_server((fn.__module__,))
         size = self.workers if then is not None else min(self.workers, len(tasks))
-        pool = ProcessPoolExecutor(size, mp_context=ctx, initializer=_ignore_interrupt)
-        pending = {pool.submit(fn, task): key for key, task in tasks.items()}
+        pool = ProcessPoolExecutor(size, mp_context=ctx, initializer=_worker_start)
+        finished = False
         try:
+            pending = {pool.submit(fn, task): key for key, task in tasks.items()}
             while pending:
                 done, _ = wait(pending, return_when=FIRST_COMPLETED)
                 for future in done:
@@ -134,11 +134,48 @@ class LocalPool:
                     if then is not None:
                         pending.update({pool.submit(f2, t2): k for k, (f2, t2) in then(key, result).items()})
                     yield key, result
+            finished = True
         finally:
             _stop(pool)
+            if not finished:    # Ctrl-C, SIGTERM, a failed task: a worker the server is yet
+                _stop_server()  # to fork would start after this process is gone
 
     def close(self) -> None:
         """Nothing to release (processes live only inside :meth:`map_unordered`)."""
+
+
+def _start_server(preload: tuple[str, ...]):
+    """Start the process the workers fork from (if not running) and return its context.
+
+    It starts ignoring Ctrl-C, and so do the workers it forks: a Ctrl-C while
+    it is still importing ``preload`` would otherwise make it print a
+    traceback of its own after the command's one line.
+    """
+    ctx = multiprocessing.get_context("forkserver")
+    ctx.set_forkserver_preload(list(preload))
+    with children_shielded():
+        multiprocessing.forkserver.ensure_running()
+    return ctx
+
+
+def _stop_server() -> None:
+    """End the process the workers fork from, and wait until it has ended.
+
+    While it is still importing, workers asked for are queued in it; were
+    it left running, it would fork them after this process is gone, and each
+    would print a traceback for the pool's missing semaphores. It is not
+    reaped, so that the next pool's start sees it dead and starts a new one.
+    Call it after :func:`_stop`: once the server is gone, the pool takes its
+    workers for ended and would not stop them.
+    """
+    pid = getattr(multiprocessing.forkserver._forkserver, "_forkserver_pid", None)  # no public handle
+    if pid is None:
+        return
+    try:
+        os.kill(pid, signal.SIGKILL)
+        os.waitid(os.P_PID, pid, os.WEXITED | os.WNOWAIT)
+    except (ProcessLookupError, ChildProcessError):     # already ended and reaped
+        pass
 
 
 def _stop(pool: ProcessPoolExecutor) -> None:

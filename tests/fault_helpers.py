@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import contextlib
 import os
+import signal
 import subprocess
 import sys
 import traceback
@@ -39,6 +40,16 @@ def one_line(stderr: str) -> str:
     assert len(lines) == 1, f"expected one line on stderr, got:\n{stderr}"
     assert "Traceback" not in stderr
     return lines[0]
+
+
+def ended_by_interrupt(code: int) -> bool:
+    """Exit code of a command stopped by Ctrl-C: 130, or death by SIGINT itself.
+
+    Python ends a process by SIGINT after a Ctrl-C landed in code it ran
+    through ``eval`` (a ``namedtuple`` made while modules load), even when
+    the command caught it and wrote its one line; a shell shows 130 for both.
+    """
+    return code in (130, -signal.SIGINT)
 
 
 def only_notes(stderr: str) -> None:

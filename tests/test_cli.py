@@ -5,6 +5,8 @@ from __future__ import annotations
 import importlib.metadata
 import os
 
+import pytest
+
 from conftest import PROTOCOLS, ROOT, run_cli
 
 
@@ -65,3 +67,27 @@ def test_run_refuses_a_bad_instructions_file_before_opening_the_display(tmp_path
     assert done.returncode == 2
     assert "screens.instructions_file" in done.stderr and "does not exist" in done.stderr
     assert not (tmp_path / "data").exists()
+
+
+def test_an_error_raised_by_a_ctrl_c_is_reported_as_the_ctrl_c(monkeypatch, capsys):
+    # A compiled module that a Ctrl-C hits while it loads may turn the KeyboardInterrupt into an
+    # ImportError of its own (seen with scipy.optimize: "initialization failed"); the command must still
+    # end in the one "interrupted" line and exit 130, and other errors must stay errors.
+    from runner import cli
+
+    def loads_and_is_interrupted(args):
+        try:
+            raise KeyboardInterrupt
+        except KeyboardInterrupt as exc:
+            raise ImportError("initialization failed") from exc
+
+    monkeypatch.setattr(cli, "cmd_check", loads_and_is_interrupted)
+    assert cli.main(["check", str(PROTOCOLS / "pilot_short.toml")]) == 130
+    assert capsys.readouterr().err.strip() == "aftershift check: interrupted"
+
+    def fails(args):
+        raise ImportError("a missing part")
+
+    monkeypatch.setattr(cli, "cmd_check", fails)
+    with pytest.raises(ImportError, match="a missing part"):
+        cli.main(["check", str(PROTOCOLS / "pilot_short.toml")])

@@ -8,6 +8,7 @@ every refused or interrupted command must say so in one line.
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import signal
@@ -19,7 +20,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from fault_helpers import LONG, LONG_ARGS, PILOT, cli, leftovers, logs, one_line, only_notes, resume_equals
+from fault_helpers import (LONG, LONG_ARGS, PILOT, cli, ended_by_interrupt, leftovers, logs, one_line, only_notes,
+                           resume_equals)
 from runner.cli import main
 
 from conftest import ROOT
@@ -165,10 +167,76 @@ def test_ctrl_c_during_fit_names_the_command_and_leaves_nothing_half_written(cap
     proc.send_signal(signal.SIGINT)
     proc.wait()
     err = proc.stderr.read()
-    assert proc.returncode == 130, err
+    assert ended_by_interrupt(proc.returncode), err
     assert one_line(err).startswith("aftershift fit: interrupted")
     assert {p.name: p.read_bytes() for p in out.iterdir()} == before
     assert leftovers(out) == []
+
+
+_SLOW_START = """
+import sys, time
+from runner.workpool import LocalPool
+try:
+    LocalPool(2, preload=("slow_to_import",))
+    print("started", flush=True)
+    time.sleep(60)
+except KeyboardInterrupt:
+    print("stopped", file=sys.stderr)
+    sys.exit(130)
+"""
+
+
+def test_ctrl_c_while_the_worker_server_imports_leaves_only_the_parents_line(tmp_path):
+    # The server the workers fork from imports their modules first; a Ctrl-C to the process group
+    # then must not make it print a traceback of its own (a CI run saw one under `plan`).
+    (tmp_path / "slow_to_import.py").write_text("import time\ntime.sleep(4)\n")
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join([str(tmp_path), str(ROOT)])}  # the server's path too
+    proc = subprocess.Popen([sys.executable, "-c", _SLOW_START], cwd=ROOT, env=env, text=True,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, start_new_session=True)
+    assert proc.stdout.readline().strip() == "started"
+    time.sleep(1)               # the server is inside its 4 s import now
+    os.killpg(proc.pid, signal.SIGINT)
+    try:
+        _, err = proc.communicate(timeout=30)  # EOF only once the server has ended too
+    except subprocess.TimeoutExpired:
+        os.killpg(proc.pid, signal.SIGKILL)
+        pytest.fail("the pool's parent did not stop on Ctrl-C")
+    assert proc.returncode == 130
+    assert err.strip() == "stopped", err
+
+
+_LONG_TASKS = """
+from runner.workpool import LocalPool
+import napping
+for _ in LocalPool(2).map_unordered(napping.nap, {"a": 1, "b": 2}):
+    pass
+"""
+
+
+def test_local_workers_end_when_their_parent_is_killed(tmp_path):
+    # kill -9 cannot let the parent stop its workers; they must not wait for work forever
+    (tmp_path / "napping.py").write_text(
+        "import os, pathlib, time\n"
+        f"def nap(i):\n    pathlib.Path({str(tmp_path)!r}, f'{{i}}.pid').write_text(str(os.getpid()))\n"
+        "    time.sleep(120)\n")
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join([str(tmp_path), str(ROOT)])}
+    parent = subprocess.Popen([sys.executable, "-c", _LONG_TASKS], cwd=ROOT, env=env, start_new_session=True)
+    deadline = time.monotonic() + 60
+    while len(list(tmp_path.glob("*.pid"))) < 2 and time.monotonic() < deadline:
+        time.sleep(0.1)
+    workers = [int(p.read_text()) for p in tmp_path.glob("*.pid")]
+    assert len(workers) == 2, "the two workers did not start"
+    parent.kill()
+    parent.wait()
+    deadline = time.monotonic() + 10
+    while any(Path(f"/proc/{pid}").exists() for pid in workers) and time.monotonic() < deadline:
+        time.sleep(0.1)
+    left = [pid for pid in workers if Path(f"/proc/{pid}").exists()]
+    try:
+        assert not left, f"workers {left} still running 10 s after their parent was killed"
+    finally:
+        with contextlib.suppress(ProcessLookupError):   # whatever is left of the group (the pool's server)
+            os.killpg(parent.pid, signal.SIGKILL)
 
 
 def test_ctrl_c_during_plan_stops_the_workers_and_says_so(tmp_path):
@@ -183,7 +251,7 @@ def test_ctrl_c_during_plan_stops_the_workers_and_says_so(tmp_path):
     except subprocess.TimeoutExpired:
         os.killpg(proc.pid, signal.SIGKILL)
         pytest.fail("plan did not stop on Ctrl-C")
-    assert proc.returncode == 130
+    assert ended_by_interrupt(proc.returncode)
     assert one_line(proc.stderr.read()).startswith("aftershift plan: interrupted")
     assert not (out / "plan.csv").exists()  # no half-made summary; finished tasks are kept to continue
     assert not list(out.glob(".staging-*")) and not list((out / "tasks").glob(".part-*"))
