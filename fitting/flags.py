@@ -15,7 +15,9 @@ spaces (empty = nothing unusual):
 ``steep``            the fitted spread is implausibly small for the tested
                      levels (below a tenth of their interquartile range; with a
                      shared spread, of the median range over conditions): the
-                     function may have collapsed on too few trials
+                     function may have collapsed on too few trials; its
+                     bootstrap draws answers at that floor, not steeper
+                     (:func:`steep_floor`)
 ``few-trials``       fewer than :data:`MIN_TRIALS_FOR_INTERVAL` trials: no interval
 ``off-interval``     the estimate lies outside its own interval (a degenerate
                      bootstrap distribution)
@@ -60,6 +62,24 @@ def on_bound(estimate, low, high, bounds, rel: float = 1e-6) -> bool:
     return bool(np.any(np.abs(vals - lo_b) <= tol) or np.any(np.abs(vals - hi_b) <= tol))
 
 
+def steep_floor(cells, shared: bool) -> np.ndarray:
+    """Spread below which a fit is flagged ``steep``, per condition (C,).
+
+    :data:`STEEP_FRACTION` of the interquartile range of the condition's
+    tested levels, trial by trial; with a shared spread, of the median range
+    over conditions. 0 for a condition with fewer than two tested levels.
+    """
+    iqr = np.zeros(cells.x.shape[0])
+    for c in range(iqr.size):
+        used = cells.n[c] > 0
+        if used.sum() >= 2:
+            levels = np.repeat(cells.x[c][used], cells.n[c][used].astype(int))
+            iqr[c] = np.subtract(*np.percentile(levels, [75, 25]))
+    if shared:
+        iqr[:] = np.median(iqr)
+    return STEEP_FRACTION * iqr
+
+
 def psychometric_flags(fit, boot=None) -> list[str]:
     """Flags of each condition of a :class:`~fitting.psychometric.PsychometricFit`.
 
@@ -72,14 +92,7 @@ def psychometric_flags(fit, boot=None) -> list[str]:
     cells = fit.cells
     out = []
     refits_bad = boot is not None and (1.0 - boot.converged.mean()) > 0.01
-    iqr = np.zeros(len(fit.conditions))
-    for c in range(len(fit.conditions)):
-        used = cells.n[c] > 0
-        if used.sum() >= 2:
-            levels = np.repeat(cells.x[c][used], cells.n[c][used].astype(int))
-            iqr[c] = np.subtract(*np.percentile(levels, [75, 25]))
-    if fit.layout.shared_spread:
-        iqr[:] = np.median(iqr)
+    floor = steep_floor(cells, fit.layout.shared_spread)
     for c in range(len(fit.conditions)):
         words = []
         sep = fit.separation[c] if fit.separation else ""
@@ -93,7 +106,7 @@ def psychometric_flags(fit, boot=None) -> list[str]:
         x = cells.x[c][used]
         if x.size and not (x.min() <= fit.pse[c] <= x.max()):
             words.append("outside-tested")
-        if iqr[c] > 0 and fit.spread[c] < STEEP_FRACTION * iqr[c]:
+        if fit.spread[c] < floor[c]:
             words.append("steep")
         if fit.n_trials[c] < MIN_TRIALS_FOR_INTERVAL:
             words.append("few-trials")

@@ -45,7 +45,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .bootstrap import BootstrapResult, bias_corrected, replicate_pse_covariance
+from .bootstrap import BootstrapResult, bias_corrected, no_steeper_than_resolved, replicate_pse_covariance
 from .progress import ProgressBar
 from .psychometric import (PsychometricFit, _cell_terms, deviance_by_condition, escape_saddles, probability_cw,
                            solve_batch)
@@ -173,6 +173,7 @@ def replay_bootstrap(fit: PsychometricFit, plan, factory, n_boot: int, rng: np.r
     """
     C = len(fit.conditions)
     with ProgressBar((n_boot + pilot) * C, "pilot + " + label, show=progress) as bar:
-        generate = rerun_generating_parameters(fit, plan, factory, pilot, rng, bar)
+        generate = no_steeper_than_resolved([fit], rerun_generating_parameters(fit, plan, factory, pilot, rng,
+                                                                                bar)[None])[0]
         sol, dev, cov = _rerun(fit, plan, factory, generate, n_boot, rng, bar, studentize)
     return BootstrapResult(fit, sol.theta, sol.converged, sol.at_bound, dev, generate, cov)

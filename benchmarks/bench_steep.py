@@ -1,0 +1,82 @@
+"""PSE coverage for the observers whose fits collapsed (flagged ``steep``), rebuilt from their groups' seeds.
+
+Among the 528 simulated observers of ``bench_coverage.py``'s up–down cell at
+24 trials per condition (group numbers 64–111, groups of 3 and 8), four had
+their shared spread collapse far below the tested levels' spacing, and
+their intervals were flagged ``steep``: observers sim04 of group 8082,
+sim04 of 8090, sim07 of 8091 and sim02 of 8107 (seed = 1000 x size +
+number). This script simulates those groups again (the same seeds give the
+same trials), fits them as ``bench_coverage.py --bootstraps pilot`` does and
+counts, for the flagged observers and for all observers of these groups,
+how many intervals hold the truth. Too few observers for a coverage
+estimate of its own: it shows what a change does to exactly the cases that
+failed, beside the whole-cell numbers of ``bench_coverage.py``.
+
+Run: ``python benchmarks/bench_steep.py [--seeds 8082 8090 8091 8107] [--boot 1000]``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import time
+from collections import defaultdict
+from concurrent.futures import ProcessPoolExecutor
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT / "benchmarks"))
+
+import bench_coverage as bc  # noqa: E402
+
+FLAGGED = {8082: "sim04", 8090: "sim04", 8091: "sim07", 8107: "sim02"}
+KINDS = ("condition PSE", "PSE shift", "tuning amplitude")
+
+
+def one(job):
+    seed, n_boot = job
+    protocol = str(ROOT / "protocols" / "offset_by_lag.toml")
+    model = bc.load_model(str(ROOT / "protocols" / "observers" / "typical.toml"))
+    base = bc.load_protocol(protocol)
+    pop = bc.population_truth(model, base.design.adapter_offsets_deg, base.design.lags)
+    text = bc.protocol_text(protocol, 24, "updown")
+    res = bc.one_group((text, model, 8, seed, n_boot, pop, ["pilot"], [bc.BY_STATISTIC]))
+    own, _ = res["tables"][("pilot", bc.BY_STATISTIC)]
+    flags = own["pse"].groupby("observer")["flags"].agg(lambda f: " ".join(sorted(set(" ".join(f.fillna("")).split()))))
+    return seed, res["scores"][("pilot", bc.BY_STATISTIC)], flags.to_dict()
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--seeds", type=int, nargs="+", default=sorted(FLAGGED))
+    ap.add_argument("--boot", type=int, default=1000)
+    ap.add_argument("--jobs", type=int, default=2)
+    args = ap.parse_args()
+    t0 = time.perf_counter()
+    with ProcessPoolExecutor(args.jobs) as pool:
+        results = list(pool.map(one, [(s, args.boot) for s in args.seeds]))
+    print("| group | observer | flags | " + " | ".join(KINDS) + " |")
+    print("|---|---|---|" + "---|" * len(KINDS))
+    flagged, everyone = defaultdict(lambda: [0, 0]), defaultdict(lambda: [0, 0])
+    for seed, scores, flags in results:
+        for who, sc in scores.items():
+            if who == "group":
+                continue
+            for kind, (hit, n) in sc.items():
+                everyone[kind][0] += hit
+                everyone[kind][1] += n
+            if "steep" in flags.get(f"s{seed}_{who}", ""):
+                cells = [f"{sc.get(k, (0, 0))[0]}/{sc.get(k, (0, 0))[1]}" for k in KINDS]
+                print(f"| {seed} | {who} | {flags[f's{seed}_{who}']} | " + " | ".join(cells) + " |")
+                for kind in KINDS:
+                    hit, n = sc.get(kind, (0, 0))
+                    flagged[kind][0] += hit
+                    flagged[kind][1] += n
+    for label, tally in (("flagged steep", flagged), ("all observers of these groups", everyone)):
+        print(f"| {label} | | | " + " | ".join(
+            f"{tally[k][0]}/{tally[k][1]} ({100 * tally[k][0] / max(tally[k][1], 1):.1f} %)" for k in KINDS) + " |")
+    print(f"\n{time.perf_counter() - t0:.0f} s")
+
+
+if __name__ == "__main__":
+    main()
