@@ -131,6 +131,19 @@ def one_case(kind: str, at: float, n: int, reference: dict, work: Path) -> list[
     return problems
 
 
+def _tally(kind: str, cases: int, case) -> int:
+    """Run ``case(n)`` for n < ``cases``, print the kind's line (problems counted by kind); return the clean ones."""
+    bad: dict[str, int] = {}
+    kind_clean = 0
+    for n in range(cases):
+        found = case(n)
+        for f in found:
+            bad[f] = bad.get(f, 0) + 1
+        kind_clean += not found
+    print(f"{kind:<6}{cases:>7}{kind_clean:>7}  {bad or 'none'}")
+    return kind_clean
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--cases", type=int, default=30, help="cases per kind (default 30)")
@@ -149,31 +162,18 @@ def main() -> None:
         print(f"{'kind':<6}{'tried':>7}{'clean':>7}  problems")
         total = clean = 0
         for kind in ("kill", "term", "race"):
-            bad: dict[str, int] = {}
-            kind_clean = 0
-            for n in range(args.cases):
-                found = one_case(kind, float(rng.uniform(0, 1.1 * span)), n, reference, work)
-                for f in found:
-                    bad[f] = bad.get(f, 0) + 1
-                kind_clean += not found
+            clean += _tally(kind, args.cases, lambda n: one_case(kind, float(rng.uniform(0, 1.1 * span)), n,
+                                                                 reference, work))
             total += args.cases
-            clean += kind_clean
-            print(f"{kind:<6}{args.cases:>7}{kind_clean:>7}  {bad or 'none'}")
         if args.plan:
             t0 = time.perf_counter()
             subprocess.run(_plan(work / "plan_whole"), check=True, capture_output=True, env=ENV, cwd=ROOT)
             span = time.perf_counter() - t0
             reference = (work / "plan_whole" / "plan.csv").read_bytes()
             print(f"uninterrupted plan: {span:.2f} s; Ctrl-C instants drawn uniformly in [0, {1.1 * span:.2f}] s")
-            bad, kind_clean = {}, 0
-            for n in range(args.plan):
-                found = plan_case(float(rng.uniform(0, 1.1 * span)), n, reference, work)
-                for f in found:
-                    bad[f] = bad.get(f, 0) + 1
-                kind_clean += not found
+            clean += _tally("plan", args.plan, lambda n: plan_case(float(rng.uniform(0, 1.1 * span)), n,
+                                                                   reference, work))
             total += args.plan
-            clean += kind_clean
-            print(f"{'plan':<6}{args.plan:>7}{kind_clean:>7}  {bad or 'none'}")
         print(f"all   {total:>7}{clean:>7}")
 
 
