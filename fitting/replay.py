@@ -173,7 +173,7 @@ def replay_bootstrap(fit: PsychometricFit, plan, factory, n_boot: int, rng: np.r
     """
     C = len(fit.conditions)
     with ProgressBar((n_boot + pilot) * C, "pilot + " + label, show=progress) as bar:
-        generate = no_steeper_than_resolved([fit], rerun_generating_parameters(fit, plan, factory, pilot, rng,
-                                                                                bar)[None])[0]
+        generate = rerun_generating_parameters(fit, plan, factory, pilot, rng, bar)
+        generate = no_steeper_than_resolved([fit], generate[None])[0]
         sol, dev, cov = _rerun(fit, plan, factory, generate, n_boot, rng, bar, studentize)
     return BootstrapResult(fit, sol.theta, sol.converged, sol.at_bound, dev, generate, cov)
