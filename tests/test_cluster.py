@@ -116,9 +116,14 @@ def test_fit_of_several_observers_on_the_cluster_gives_the_local_tables_and_figu
             (tmp_path / "local" / "figures" / name).read_bytes(), name
 
 
-def test_an_unreachable_scheduler_is_one_line(tmp_path, capsys):
-    # a port on the loopback address that nothing listens on
+def test_an_unreachable_scheduler_is_one_line(tmp_path, capsys, monkeypatch):
+    # a port on the loopback address that nothing listens on; Dask retries a refused connection until
+    # its timeout, so a short one keeps the test short (the message does not depend on it)
     import socket
+
+    from runner import workpool
+
+    monkeypatch.setattr(workpool, "CONNECT_TIMEOUT_S", 1)
 
     with socket.socket() as probe:
         probe.bind((LOOPBACK, 0))
