@@ -34,6 +34,7 @@ import os
 import signal
 import sys
 import tempfile
+import time
 from collections import deque
 from collections.abc import Callable, Iterator
 from contextlib import closing
@@ -159,7 +160,7 @@ def _start_server(preload: tuple[str, ...]):
 
 
 def _stop_server() -> None:
-    """End the process the workers fork from, and wait until it has ended.
+    """End the process the workers fork from, and wait (up to 5 s) until it has ended.
 
     While it is still importing, workers asked for are queued in it; were
     it left running, it would fork them after this process is gone, and each
@@ -173,7 +174,11 @@ def _stop_server() -> None:
         return
     try:
         os.kill(pid, signal.SIGKILL)
-        os.waitid(os.P_PID, pid, os.WEXITED | os.WNOWAIT)
+        deadline = time.monotonic() + 5      # a process stuck in the kernel (a hung disk) cannot hold us
+        while os.waitid(os.P_PID, pid, os.WEXITED | os.WNOWAIT | os.WNOHANG) is None:
+            if time.monotonic() > deadline:
+                break
+            time.sleep(0.01)
     except (ProcessLookupError, ChildProcessError):     # already ended and reaped
         pass
 
