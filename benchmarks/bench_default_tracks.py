@@ -69,16 +69,20 @@ CANDIDATES = [
 
 
 class ScratchEntropyTrack(EntropyTrack):
-    """Two Bayesian variants tried against the default and not adopted (benchmark only).
+    """Three Bayesian variants tried against the default and not adopted (benchmark only).
 
     ``switch_after``: least expected entropy for the first K trials of the
     track, then the level nearest the posterior mean of the PSE;
-    ``pse_prior_sd``: a Gaussian prior on the PSE centred on the reference.
+    ``pse_prior_sd``: a Gaussian prior on the PSE centred on the reference;
+    ``near_spreads``: least expected entropy among the levels within K
+    posterior-mean spreads of the posterior mean of the PSE.
     """
 
-    def __init__(self, switch_after: int | None = None, pse_prior_sd: float | None = None, **kw):
+    def __init__(self, switch_after: int | None = None, pse_prior_sd: float | None = None,
+                 near_spreads: float | None = None, **kw):
         super().__init__(**kw)
         self.switch_after = switch_after
+        self.near_spreads = near_spreads
         if pse_prior_sd:
             self._log_post += (-0.5 * (self._mu / pse_prior_sd) ** 2)[:, None, None]
 
@@ -86,10 +90,16 @@ class ScratchEntropyTrack(EntropyTrack):
         if self._proposal is None and self.switch_after is not None and self.n_trials >= self.switch_after:
             pick = int(np.argmin(np.abs(self._level_values - self.posterior_mean().pse)))
             self._proposal = float(self._level_values[pick])
+        if self._proposal is None and self.near_spreads is not None and not self.finished:
+            mean = self.posterior_mean()
+            far = np.abs(self._level_values - mean.pse) > self.near_spreads * mean.spread
+            entropies = np.where(far, np.inf, self.expected_entropies())
+            if np.isfinite(entropies).any():
+                self._proposal = float(self._level_values[int(np.argmin(entropies))])
         return super().next_level()
 
 
-SCRATCH = ("switch_after", "pse_prior_sd")
+SCRATCH = ("switch_after", "pse_prior_sd", "near_spreads")
 
 
 def _track(settings: dict, n: int, t: int):
@@ -103,7 +113,9 @@ def _track(settings: dict, n: int, t: int):
 
 SCRATCH_ROWS = [(f"bayesian, entropy for {k} trials then posterior mean (scratch)",
                  dict(method="bayesian", switch_after=k)) for k in (4, 10, 20, 30)] + [
-    (f"bayesian, Gaussian PSE prior SD {sd:g}° (scratch)", dict(method="bayesian", pse_prior_sd=sd)) for sd in (6.0, 10.0)]
+    (f"bayesian, Gaussian PSE prior SD {sd:g}° (scratch)", dict(method="bayesian", pse_prior_sd=sd)) for sd in (6.0, 10.0)] + [
+    (f"bayesian, entropy among levels within {k:g} spreads of the PSE (scratch)",
+     dict(method="bayesian", near_spreads=k)) for k in (0.5, 1.0)]
 
 
 def simulate(settings: dict, mus, lapse: float, seeds, spread: float = SPREAD,
@@ -192,7 +204,7 @@ def main() -> None:
     ap.add_argument("--methods", nargs="+", help="only the rows of these methods (e.g. bayesian)")
     ap.add_argument("--scratch", action="store_true",
                     help="also the Bayesian variants tried and not adopted (posterior mean after K entropy "
-                         "trials; a Gaussian prior on the PSE)")
+                         "trials; a Gaussian prior on the PSE; entropy among levels near the PSE)")
     args = ap.parse_args()
     defaults = ProcedureSettings()
     print(f"# defaults: start ±{defaults.start_offset_deg:g} deg, steps {defaults.steps_deg}, "
