@@ -16,8 +16,8 @@ spaces (empty = nothing unusual):
                      levels (below a tenth of their interquartile range; with a
                      shared spread, of the median range over conditions): the
                      function may have collapsed on too few trials; its
-                     bootstrap draws answers at that floor, not steeper
-                     (:func:`steep_floor`)
+                     bootstrap draws answers at half that range instead
+                     (:func:`steep_floor`, :data:`STEEP_DRAW_FRACTION`)
 ``few-trials``       fewer than :data:`MIN_TRIALS_FOR_INTERVAL` trials: no interval
 ``off-interval``     the estimate lies outside its own interval (a degenerate
                      bootstrap distribution)
@@ -36,6 +36,8 @@ import numpy as np
 
 MIN_TRIALS_FOR_INTERVAL = 10
 STEEP_FRACTION = 0.1
+#: Spread, as a fraction of the same interquartile range, at which a ``steep`` fit's bootstrap draws its answers.
+STEEP_DRAW_FRACTION = 0.5
 WORDS = ("one-sided", "separated", "on-bound", "outside-tested", "steep", "few-trials",
          "off-interval", "not-converged", "model-not-converged", "descriptive")
 

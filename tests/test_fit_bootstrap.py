@@ -152,7 +152,7 @@ def test_a_replicate_whose_svd_does_not_converge_has_no_covariance_rather_than_a
 
 
 @pytest.mark.filterwarnings("ignore::fitting.psychometric.SeparationWarning")
-def test_a_collapsed_fit_is_bootstrapped_at_the_steep_floor_and_others_are_not_touched():
+def test_a_collapsed_fit_is_bootstrapped_at_half_the_levels_range_and_others_are_not_touched():
     # simulated, 24 up-down trials per condition: the shared spread collapses to about 0.07 deg (true 2.65)
     from fitting.bootstrap import no_steeper_than_resolved
     from fitting.psychometric import fit_joint
@@ -160,13 +160,14 @@ def test_a_collapsed_fit_is_bootstrapped_at_the_steep_floor_and_others_are_not_t
 
     trials = read_logs([ROOT / "tests" / "data" / "collapsed_pilot" / "sim06-s1.trials.csv"])
     fit = fit_joint(trials["test_offset_deg"], trials["response_cw"], trials["condition"])
-    # the floor recomputed from the raw trials with numpy: a tenth of the median over conditions of the
-    # interquartile range of each condition's tested levels (the `steep` flag's definition)
+    # recomputed from the raw trials with numpy: the median over conditions of the interquartile range
+    # of each condition's tested levels; the `steep` flag's floor is a tenth of it, and a fit below the
+    # floor is drawn at half of it
     iqr = trials.groupby("condition")["test_offset_deg"].agg(lambda v: np.subtract(*np.percentile(v, [75, 25])))
     floor = 0.1 * float(np.median(iqr))
     assert fit.spread[0] < floor / 2
     boot = parametric_bootstrap(fit, 50, np.random.default_rng(1), progress=False)
-    assert np.exp(boot.generating_theta[fit.layout.spread_index]) == pytest.approx(floor, rel=1e-9)
+    assert np.exp(boot.generating_theta[fit.layout.spread_index]) == pytest.approx(5 * floor, rel=1e-9)
     assert np.array_equal(boot.generating_theta[fit.layout.pse_index], fit.theta[fit.layout.pse_index])
     assert np.array_equal(boot.fit.theta, fit.theta)          # the estimates are never moved
     # a fit above the floor is drawn where it was
@@ -174,3 +175,9 @@ def test_a_collapsed_fit_is_bootstrapped_at_the_steep_floor_and_others_are_not_t
     x = np.repeat(np.linspace(-6, 6, 9), 20)
     smooth = fit_joint(x, (rng.random(x.size) < stats.norm.cdf(x / 2.5)).astype(int), np.zeros(x.size, int))
     assert np.array_equal(no_steeper_than_resolved([smooth], smooth.theta[None])[0], smooth.theta)
+    # ... and a generating spread below the floor (a pilot's bias correction) is raised to the floor only
+    low = smooth.theta.copy()
+    low[smooth.layout.spread_index] = np.log(1e-3)
+    levels_iqr = np.subtract(*np.percentile(x, [75, 25]))
+    raised = no_steeper_than_resolved([smooth], low[None])[0]
+    assert np.exp(raised[smooth.layout.spread_index]) == pytest.approx(0.1 * levels_iqr, rel=1e-9)
