@@ -186,7 +186,8 @@ def chi2_candidates(report, truths: dict) -> dict:
     with ``V`` known); the observed-information (inverse Hessian, delta method) covariance (Efron &
     Hinkley 1978); the bootstrap-calibrated statistic (share of ``T*_b >= T``, Davison & Hinkley 1997,
     ch. 4; covariance from half the replicates, T*_b from the other half); t scores on
-    ``n_trials / 2 - 1`` (trials per track − 1) degrees of freedom; normal scores scaled by the side of
+    ``n_trials / 2 - 1`` (trials per track − 1) degrees of freedom; ``T / n`` read against F on the
+    degrees of freedom of the squared spread, from its replicates; normal scores scaled by the side of
     the printed 95 % interval facing the truth, so that each score passes 1.96 exactly when the truth
     falls outside the interval, with the replicates' correlation.
     """
@@ -232,6 +233,14 @@ def chi2_candidates(report, truths: dict) -> dict:
             t_int = float(h * z @ np.linalg.solve(cov / np.outer(sd, sd), z))
             out["scores from the printed interval's side"][a.observer] = (
                 stats.chi2.sf(t_int, n) < 0.05, t_int, n, np.nan)
+        # the shifts' variances scale with the squared spread, itself estimated: read T / n against
+        # F(n, nu), nu from the replicates' variance of the log spread (Var log s^2 = 2 / nu for a
+        # chi-squared scale; Satterthwaite 1946)
+        if a.boot is not None:
+            var_log = float(np.var(a.boot.theta[:, np.unique(a.fit.layout.spread_index)].mean(axis=1)))
+            nu = 1.0 / (2.0 * var_log) if var_log > 0 else np.inf
+            out["F on the spread's bootstrap degrees of freedom"][a.observer] = (
+                stats.f.sf(t_stat / n, n, nu) < 0.05, t_stat, n, holds)
         half = ae["n_trials"].to_numpy(float) / 2 + 1       # read as n_trials - 2 = trials per track - 1
         b = agreement(est, ae["ci_low"], ae["ci_high"], truth, None, cov, n_rep, np.nan, trials=half)
         out["t scores on trials per track - 1"][a.observer] = (b.chi2_p < 0.05, b.chi2, b.dof,
