@@ -237,7 +237,7 @@ def chi2_candidates(report, truths: dict) -> dict:
         # F(n, nu), nu from the replicates' variance of the log spread (Var log s^2 = 2 / nu for a
         # chi-squared scale; Satterthwaite 1946)
         if a.boot is not None:
-            var_log = float(np.var(a.boot.theta[:, np.unique(a.fit.layout.spread_index)].mean(axis=1)))
+            var_log = float(np.nanvar(a.boot.theta[:, np.unique(a.fit.layout.spread_index)].mean(axis=1)))
             nu = 1.0 / (2.0 * var_log) if var_log > 0 else np.inf
             out["F on the spread's bootstrap degrees of freedom"][a.observer] = (
                 stats.f.sf(t_stat / n, n, nu) < 0.05, t_stat, n, holds)

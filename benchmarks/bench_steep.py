@@ -12,7 +12,11 @@ how many intervals hold the truth. Too few observers for a coverage
 estimate of its own: it shows what a change does to exactly the cases that
 failed, beside the whole-cell numbers of ``bench_coverage.py``.
 
-Run: ``python benchmarks/bench_steep.py [--seeds 8082 8090 8091 8107] [--boot 1000]``.
+``--draw-fraction F`` draws a collapsed fit's answers at F times the tested
+levels' interquartile range instead of ``fitting.flags.STEEP_DRAW_FRACTION``
+(to compare choices; ``fit`` itself has no such option).
+
+Run: ``python benchmarks/bench_steep.py [--seeds 8082 8090 8091 8107] [--boot 1000] [--draw-fraction 0.5]``.
 """
 
 from __future__ import annotations
@@ -28,6 +32,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "benchmarks"))
 
 import bench_coverage as bc  # noqa: E402
+import fitting.bootstrap  # noqa: E402
 
 FLAGGED = {8082: "sim04", 8090: "sim04", 8091: "sim07", 8107: "sim02"}
 KINDS = ("condition PSE", "PSE shift", "tuning amplitude")
@@ -51,7 +56,12 @@ def main() -> None:
     ap.add_argument("--seeds", type=int, nargs="+", default=sorted(FLAGGED))
     ap.add_argument("--boot", type=int, default=1000)
     ap.add_argument("--jobs", type=int, default=2)
+    ap.add_argument("--draw-fraction", type=float, default=fitting.bootstrap.STEEP_DRAW_FRACTION,
+                    help="spread of a collapsed fit's replicates, as a fraction of the levels' IQR")
     args = ap.parse_args()
+    # the worker processes are forked after this, so they draw at the same fraction
+    fitting.bootstrap.STEEP_DRAW_FRACTION = args.draw_fraction
+    print(f"# collapsed fits drawn at {args.draw_fraction:g} x the tested levels' interquartile range")
     t0 = time.perf_counter()
     with ProcessPoolExecutor(args.jobs) as pool:
         results = list(pool.map(one, [(s, args.boot) for s in args.seeds]))
