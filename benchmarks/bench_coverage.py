@@ -182,14 +182,14 @@ def chi2_candidates(report, truths: dict) -> dict:
     """compare's χ² test and gain interval for each observer under candidate references (truth predicted).
 
     Returns ``{candidate: {observer: (rejected, chi2, dof, gain CI holds 1)}}``.  Candidates:
-    normal scores with the bootstrap covariance (the rule before: Hartlap-scaled ``r' V^-1 r``, gain
-    with ``V`` known); the observed-information (inverse Hessian, delta method) covariance (Efron &
-    Hinkley 1978); the bootstrap-calibrated statistic (share of ``T*_b >= T``, Davison & Hinkley 1997,
-    ch. 4; covariance from half the replicates, T*_b from the other half); t scores on
-    ``n_trials / 2 - 1`` (trials per track − 1) degrees of freedom; ``T / n`` read against F on the
-    degrees of freedom of the squared spread, from its replicates; normal scores scaled by the side of
-    the printed 95 % interval facing the truth, so that each score passes 1.96 exactly when the truth
-    falls outside the interval, with the replicates' correlation.
+    normal scores with the bootstrap covariance (an earlier rule: Hartlap-scaled ``r' V^-1 r`` against
+    χ², gain with ``V`` known); the observed-information (inverse Hessian, delta method) covariance
+    (Efron & Hinkley 1978); the bootstrap-calibrated statistic (share of ``T*_b >= T``, Davison &
+    Hinkley 1997, ch. 4; covariance from half the replicates, T*_b from the other half); t scores on
+    ``n_trials / 2 - 1`` (trials per track − 1) degrees of freedom; t scores on ``n_trials - 2`` (the
+    rule before ``compare`` read ``T / n`` against F on the spread's degrees of freedom); normal scores
+    scaled by the side of the printed 95 % interval facing the truth, so that each score passes 1.96
+    exactly when the truth falls outside the interval, with the replicates' correlation.
     """
     out = defaultdict(dict)
     for a in report.analyses:
@@ -209,7 +209,7 @@ def chi2_candidates(report, truths: dict) -> dict:
         t_stat = float(h * e @ np.linalg.solve(cov, e))
         g, g_se, _ = gls_gain(est, truth, h * np.linalg.inv(cov), free_scale=False)
         holds = abs(g - 1.0) <= 1.959964 * g_se
-        out["normal scores, gain with V known (before)"][a.observer] = (
+        out["normal scores, gain with V known (earlier)"][a.observer] = (
             stats.chi2.sf(t_stat, n) < 0.05, t_stat, n, holds)
         # out of sample on both sides: covariance from half the replicates, T*_b from the other half
         half_cov = np.cov(reps[1::2], rowvar=False)
@@ -233,14 +233,10 @@ def chi2_candidates(report, truths: dict) -> dict:
             t_int = float(h * z @ np.linalg.solve(cov / np.outer(sd, sd), z))
             out["scores from the printed interval's side"][a.observer] = (
                 stats.chi2.sf(t_int, n) < 0.05, t_int, n, np.nan)
-        # the shifts' variances scale with the squared spread, itself estimated: read T / n against
-        # F(n, nu), nu from the replicates' variance of the log spread (Var log s^2 = 2 / nu for a
-        # chi-squared scale; Satterthwaite 1946)
-        if a.boot is not None:
-            var_log = float(np.nanvar(a.boot.theta[:, np.unique(a.fit.layout.spread_index)].mean(axis=1)))
-            nu = 1.0 / (2.0 * var_log) if var_log > 0 else np.inf
-            out["F on the spread's bootstrap degrees of freedom"][a.observer] = (
-                stats.f.sf(t_stat / n, n, nu) < 0.05, t_stat, n, holds)
+        # the rule before compare read T / n against F on the spread's degrees of freedom
+        b = agreement(est, ae["ci_low"], ae["ci_high"], truth, None, cov, n_rep, np.nan, trials=ae["n_trials"])
+        out["t scores on n_trials - 2 (the rule before)"][a.observer] = (b.chi2_p < 0.05, b.chi2, b.dof,
+                                                                         b.gain_ci_low <= 1.0 <= b.gain_ci_high)
         half = ae["n_trials"].to_numpy(float) / 2 + 1       # read as n_trials - 2 = trials per track - 1
         b = agreement(est, ae["ci_low"], ae["ci_high"], truth, None, cov, n_rep, np.nan, trials=half)
         out["t scores on trials per track - 1"][a.observer] = (b.chi2_p < 0.05, b.chi2, b.dof,
@@ -395,7 +391,7 @@ def pooled_groups(results, boot, sizes, pop: dict, level: float = 0.95, partitio
                                     aftereffect=sub["aftereffect"][sub["aftereffect"]["observer"] == o])
                     for o in sorted(members)]
             cov = group_covariance(fake, g_ae, group_weights(sub["aftereffect"], level), level)
-            matrix, _, dof = covariance_matrix(cov, GROUP, g_ae["lag"], g_ae["adapter_offset_deg"])
+            matrix, _, dof = covariance_matrix(cov, GROUP, g_ae["lag"], g_ae["adapter_offset_deg"])[:3]
             pred = [pop["shift"][(float(lag), float(o))] for lag, o in zip(g_ae["lag"], g_ae["adapter_offset_deg"])]
             a = agreement(g_ae["pse_shift_deg"], g_ae["ci_low"], g_ae["ci_high"], pred, None, matrix, np.nan, dof)
             # the group gain as compare gives it: the observers' own gains (against the same predictions), combined
@@ -413,7 +409,7 @@ def pooled_groups(results, boot, sizes, pop: dict, level: float = 0.95, partitio
                 (a.chi2_p < 0.05, a.chi2, a.dof, a.gain_ci_low <= 1.0 <= a.gain_ci_high))
             weights = group_weights(sub["aftereffect"], level)
             between = group_covariance(fake, g_ae, weights, level, between=True)
-            matrix_b, _, _ = covariance_matrix(between, GROUP, g_ae["lag"], g_ae["adapter_offset_deg"])
+            matrix_b = covariance_matrix(between, GROUP, g_ae["lag"], g_ae["adapter_offset_deg"]).matrix
             for name, rej in group_chi2_candidates(sub["aftereffect"], g_ae, matrix, dof, np.asarray(pred),
                                                    level, matrix_b).items():
                 rejected[f"{label}: {name}"].append(rej)

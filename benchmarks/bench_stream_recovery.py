@@ -6,7 +6,12 @@ observer (``aftershift simulate``'s path: StreamRun, StreamObserver,
 TrialLog), reads the log back and fits it with :mod:`fitting.nback`, for
 30 seeds.  Reports how often the true per-n amplitudes
 ``A·exp(-(n-1)/τ)``, the shared peak offset and the decay τ fall inside
-their 95 % bootstrap intervals.
+their 95 % bootstrap intervals, and how often ``compare``'s χ² rejects the
+true after-effect curve at the 5 % level: ``compare``'s rule (χ² over the
+covariance's leading directions, as many as the parameters behind the
+shifts, χ²/rank read against F on the spread's degrees of freedom) and,
+beside it, the rule before (the full-rank inverse, each residual read
+against t on ``n_trials - 2``); target 3–8 %.
 
 Run: ``python benchmarks/bench_stream_recovery.py [--runs 30] [--boot 400]``
 """
@@ -20,7 +25,10 @@ from pathlib import Path
 
 import numpy as np
 
-from fitting.nback import bootstrap_nback, fit_nback, read_stream_logs
+from fitting.aftereffect import dog
+from fitting.compare import agreement
+from fitting.covariance import covariance_matrix
+from fitting.nback import bootstrap_nback, fit_nback, read_stream_logs, result_tables
 from runner.launch import simulate
 from runner.observers import ObserverModel
 from runner.protocol import load_protocol, read_protocol_text
@@ -40,6 +48,8 @@ def main() -> None:
     truth_a = model.amplitude_deg * np.exp(-np.arange(k) / model.decay_periods)
     hits = np.zeros(k + 2, dtype=int)
     joint = 0
+    rejected = {"compare (rank of the parameters, F on the spread's dof)": 0,
+                "before (full rank, t on n_trials - 2)": 0}
     start = time.perf_counter()
     with tempfile.TemporaryDirectory() as tmp:
         for seed in range(args.runs):
@@ -54,6 +64,16 @@ def main() -> None:
                            t_lo <= model.decay_periods <= t_hi]
             hits += inside
             joint += bool(inside.all())
+            tables = result_tables(boot)
+            ae = tables["aftereffect"]
+            truth = dog(ae["adapter_offset_deg"].to_numpy(float), truth_a[ae["lag"].to_numpy(int)],
+                        model.peak_offset_deg)
+            cov = covariance_matrix(tables["aftereffect_covariance"], ae["observer"].iloc[0], ae["lag"],
+                                    ae["adapter_offset_deg"])
+            common = (ae["pse_shift_deg"], ae["ci_low"], ae["ci_high"], truth, None, cov.matrix, cov.replicates)
+            now = agreement(*common, spread_dof=cov.spread_dof, rank=cov.rank)
+            rejected["compare (rank of the parameters, F on the spread's dof)"] += now.chi2_p < 0.05
+            rejected["before (full rank, t on n_trials - 2)"] += agreement(*common, trials=ae["n_trials"]).chi2_p < 0.05
             print(f"seed {seed:2d}: a = {np.round(boot.fit.amplitudes_deg, 2)} (true {np.round(truth_a, 2)}), "
                   f"w = {boot.fit.peak_offset_deg:.1f}, tau = {boot.fit.decay_periods:.2f} "
                   f"[{t_lo:.2f}, {t_hi:.2f}]  {'ok' if inside.all() else 'MISS ' + str(inside.astype(int))}")
@@ -62,6 +82,9 @@ def main() -> None:
     for name, h in zip(names, hits):
         print(f"  {name:<14} inside its 95 % CI in {h}/{args.runs} runs ({h / args.runs:.0%})")
     print(f"  all at once     in {joint}/{args.runs} runs ({joint / args.runs:.0%})")
+    for name, r in rejected.items():
+        se = np.sqrt(r / args.runs * (1 - r / args.runs) / args.runs)
+        print(f"  chi2 rejects the true curve, {name}: {r}/{args.runs} ({r / args.runs:.1%} ± {se:.1%})")
 
 
 if __name__ == "__main__":

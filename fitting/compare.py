@@ -30,12 +30,21 @@ is the full covariance:
 
 * for an observer, of its paired bootstrap replicates, whose inverse is
   scaled by ``(R - n - 2) / (R - 1)`` (Hartlap, Simon & Schneider 2007, A&A
-  464, 399) for R replicates and n points; each standardised residual is
-  read against t on ``n_trials - 2`` degrees of freedom (the trials of the
-  adapted condition less its PSE and spread: common practice for a residual
-  whose standard error is estimated from the same trials, no source), which
-  ``benchmarks/bench_coverage.py`` measured to bring the false rejections
-  closer to the nominal level than normal scores (benchmarks/README.md);
+  464, 399) for R replicates and n points.  The shifts' errors scale with
+  the fitted spread, itself estimated: ``V`` is a scaled χ²_ν / ν estimate,
+  so ``χ² / n = r' V^-1 r / n`` is read against F(n, ν), with ν the
+  spread's degrees of freedom from its replicates (``spread_dof``,
+  Satterthwaite 1946; column ``chi2_reference`` names the distribution).
+  ``benchmarks/bench_coverage.py`` measured this to bring false rejections
+  at 24-40 adaptive trials inside 3-8 % where the earlier rule (each
+  standardised residual read against t on ``n_trials - 2``, common practice,
+  no source) gave up to 9 %; that rule remains for covariance files
+  without ``spread_dof`` (written before it);
+* for a stream fit, the same, but its shifts are a curve of K amplitudes
+  and a peak offset, so the covariance of its cells has rank K + 1 (2 for
+  one lag): the χ² uses the pseudo-inverse over that many leading
+  directions and as many degrees of freedom (``shift_parameters`` in the
+  covariance file), and a note says what it cannot see;
 * for the group, the group standard errors with the correlation of the
   weighted mean, and t on n_obs − 1 degrees of freedom; the group's gain
   is the random-effects combination of the observers' gains
@@ -56,7 +65,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from fitting.covariance import COVARIANCE_COLUMNS, covariance_matrix
+from fitting.covariance import COVARIANCE_COLUMNS, ShiftCovariance, covariance_matrix
 from fitting.errors import InputError
 from fitting.group import GROUP
 from fitting.meta import random_effects
@@ -70,7 +79,7 @@ PREDICTION_COLUMNS = ("lag", "adapter_offset_deg", "pse_shift_deg")
 MEASURED_COLUMNS = ("observer", "lag", "adapter_offset_deg", "pse_shift_deg", "ci_low", "ci_high")
 AGREEMENT_COLUMNS = (
     "observer", "lag", "n_points", "rmse_deg", "pearson_r", "gain", "gain_ci_low", "gain_ci_high",
-    "chi2", "dof", "chi2_p", "inside_ci_fraction", "gain_unweighted", "covariance", "descriptive",
+    "chi2", "dof", "chi2_p", "chi2_reference", "inside_ci_fraction", "gain_unweighted", "covariance", "descriptive",
 )
 COVARIANCE_FILE = "aftereffect_covariance.csv"
 
@@ -220,6 +229,7 @@ class Agreement:
     gain_unweighted: float = float("nan")
     covariance: str = "diagonal"
     gain_se: float = float("nan")
+    chi2_reference: str = ""
 
 
 def _inverse(v: np.ndarray) -> np.ndarray:
@@ -246,20 +256,21 @@ def normal_scores(standardised, dof):
     return out
 
 
-def gls_gain(measured, predicted, v_inverse, free_scale: bool = True):
+def gls_gain(measured, predicted, v_inverse, free_scale: bool = True, rank: int | None = None):
     """Gain of ``measured ≈ g × predicted`` by GLS through the origin.
 
     Returns ``(g, se, dof)``: with ``free_scale`` (and more than one point)
     ``V`` is known up to a factor estimated from the residuals (``se`` as
-    statsmodels' GLS ``bse``, ``dof = n - 1``); otherwise ``V`` is taken as
-    known (``dof`` infinite).
+    statsmodels' GLS ``bse``, ``dof = n - 1``, or ``rank - 1`` when
+    ``v_inverse`` is the pseudo-inverse of a covariance of that rank);
+    otherwise ``V`` is taken as known (``dof`` infinite).
     """
     m, p = np.asarray(measured, float), np.asarray(predicted, float)
     spp = float(p @ v_inverse @ p)
     if not spp > 0:
         return float("nan"), float("nan"), float("inf")
     g = float(p @ v_inverse @ m / spp)
-    n = m.size
+    n = m.size if rank is None else int(rank)
     if not free_scale or n < 2:
         return g, float(np.sqrt(1.0 / spp)), float("inf")
     r = m - g * p
@@ -268,7 +279,8 @@ def gls_gain(measured, predicted, v_inverse, free_scale: bool = True):
 
 
 def agreement(measured, ci_low, ci_high, predicted, prediction_sd=None, covariance=None,
-              replicates: float = np.nan, dof: float = np.nan, trials=None) -> Agreement:
+              replicates: float = np.nan, dof: float = np.nan, trials=None,
+              spread_dof: float = np.nan, rank: int | None = None) -> Agreement:
     """Compute the agreement statistics of measured points with predictions.
 
     Parameters
@@ -286,8 +298,18 @@ def agreement(measured, ci_low, ci_high, predicted, prediction_sd=None, covarian
         NaN: not given.
     trials : array_like, optional
         Trials behind each measured point (an observer's ``n_trials``); with
-        a bootstrap ``covariance`` and no ``dof``, each standardised residual
-        is read against t on ``trials - 2`` degrees of freedom.
+        a bootstrap ``covariance`` and neither ``dof`` nor ``spread_dof``,
+        each standardised residual is read against t on ``trials - 2``
+        degrees of freedom.
+    spread_dof : float
+        Degrees of freedom of the observer's fitted spread
+        (:func:`fitting.covariance.spread_dof`); with a ``covariance`` and no
+        ``dof``, ``chi2 / n`` is read against F(n, spread_dof).  NaN: not given.
+    rank : int, optional
+        Rank of ``covariance`` when below the number of points (a stream
+        fit's shifts are functions of fewer parameters): the χ² and the gain
+        then use its pseudo-inverse over the ``rank`` leading directions and
+        ``rank`` degrees of freedom.
 
     Returns
     -------
@@ -317,22 +339,37 @@ def agreement(measured, ci_low, ci_high, predicted, prediction_sd=None, covarian
         if covariance is None:
             raise InputError("aftereffect.csv", "ci_low/ci_high", "a measured point has a zero-width CI and no prediction sd")
         raise InputError(COVARIANCE_FILE, "covariance_deg2", "a measured point has zero variance and no prediction sd")
+    k = int(rank) if covariance is not None and rank is not None and 1 <= rank < n else n
     scale = 1.0
-    if np.isfinite(replicates) and replicates > n + 2:
-        scale = (replicates - n - 2) / (replicates - 1)      # Hartlap et al. (2007)
+    if np.isfinite(replicates) and replicates > k + 2:
+        scale = (replicates - k - 2) / (replicates - 1)      # Hartlap et al. (2007)
+    f_dof = float("nan")
     if np.isfinite(dof) and dof >= 1:
         nu = np.full(n, float(dof))                          # group: t on n_obs - 1
+    elif covariance is not None and np.isfinite(spread_dof) and spread_dof > 0:
+        nu = np.full(n, np.inf)                              # observer: r' V^-1 r / n against F(n, spread_dof)
+        f_dof = float(spread_dof)
     elif covariance is not None and trials is not None:
         nu = np.asarray(trials, float) - 2.0                 # observer: t on n_trials - 2 (common practice)
         nu = np.where(nu >= 1, nu, np.nan)
     else:
         nu = np.full(n, np.inf)
-    sdv = np.sqrt(np.diagonal(v))
-    corr = v / np.outer(sdv, sdv)
-    z = normal_scores(resid / sdv, nu)
-    chi2 = float(scale * z @ _inverse(corr) @ z)
-    vinv = scale * _inverse(v)
-    g, g_se, g_dof = gls_gain(m, p, vinv)
+    if k < n:
+        # the pseudo-inverse over the k leading directions; residuals read as they are (no t scores)
+        vals, vecs = np.linalg.eigh(v)
+        lead = vecs[:, -k:] / np.sqrt(vals[-k:])
+        vinv = scale * lead @ lead.T
+        chi2 = float(resid @ vinv @ resid)
+    else:
+        sdv = np.sqrt(np.diagonal(v))
+        z = normal_scores(resid / sdv, nu)
+        chi2 = float(scale * z @ _inverse(v / np.outer(sdv, sdv)) @ z)
+        vinv = scale * _inverse(v)
+    if np.isfinite(f_dof):
+        chi2_p, reference = float(stats.f.sf(chi2 / k, k, f_dof)), f"F({k}, {f_dof:.1f})"
+    else:
+        chi2_p, reference = float(stats.chi2.sf(chi2, k)), f"chi2({k})"
+    g, g_se, g_dof = gls_gain(m, p, vinv, rank=k)
     q = stats.t.ppf(0.975, g_dof) if np.isfinite(g_dof) else Z95
     return Agreement(
         n_points=n,
@@ -342,8 +379,9 @@ def agreement(measured, ci_low, ci_high, predicted, prediction_sd=None, covarian
         gain_ci_low=g - q * g_se,
         gain_ci_high=g + q * g_se,
         chi2=chi2,
-        dof=n,
-        chi2_p=float(stats.chi2.sf(chi2, n)),
+        dof=k,
+        chi2_p=chi2_p,
+        chi2_reference=reference,
         inside_ci_fraction=float(np.mean((p >= lo) & (p <= hi))),
         gain_unweighted=float(np.sum(m * p) / pp) if pp > 0 else float("nan"),
         covariance="diagonal" if covariance is None else "full",
@@ -403,7 +441,7 @@ class Comparison:
                 f"  {row['observer']:>8}: RMSE {row['rmse_deg']:.2f} deg, r {row['pearson_r']:.2f}, "
                 f"gain {row['gain']:.2f} [{row['gain_ci_low']:.2f}, {row['gain_ci_high']:.2f}] "
                 f"(unweighted {row['gain_unweighted']:.2f}), "
-                f"chi2 {row['chi2']:.1f} on {row['dof']} df (p {row['chi2_p']:.3g}), "
+                + _chi2_text(row) + ", "
                 f"{row['inside_ci_fraction']:.0%} of predictions inside the 95% CIs"
                 + ("" if row["covariance"] == "full" else "; errors treated as independent")
                 + ("; descriptive only (fewer than 3 observers)" if row["descriptive"] else "")
@@ -411,8 +449,26 @@ class Comparison:
         return "\n".join(lines + [f"note: {n}" for n in (*self.notes, CHI2_CAVEAT)])
 
 
+def _chi2_text(row) -> str:
+    """The χ² of an agreement row with the distribution its p-value is read from."""
+    reference = str(row.get("chi2_reference") or "")
+    if reference.startswith("F"):
+        return f"chi2 {row['chi2']:.1f}, chi2/{row['dof']} read against {reference} (p {row['chi2_p']:.3g})"
+    return f"chi2 {row['chi2']:.1f} on {row['dof']} df (p {row['chi2_p']:.3g})"
+
+
+def _reduced_rank_notes(table: pd.DataFrame) -> tuple[str, ...]:
+    """Say where the χ² saw fewer directions than points (stream fits), and what that leaves out."""
+    fewer = table[pd.to_numeric(table["dof"], errors="coerce") < table["n_points"]]
+    return tuple(f"{observer}: its shifts are a curve of few fitted parameters (a stream fit), so chi2 and gain "
+                 "judge the predictions only in the directions that curve can move in (chi2 on as many degrees of "
+                 "freedom); a prediction of another shape can pass them; read the RMSE and the fraction inside "
+                 "the CIs too" for observer in fewer["observer"].unique())
+
+
 #: Columns of ``agreement.csv`` that need the measured intervals.
-INTERVAL_COLUMNS = ("gain", "gain_ci_low", "gain_ci_high", "chi2", "dof", "chi2_p", "inside_ci_fraction")
+INTERVAL_COLUMNS = ("gain", "gain_ci_low", "gain_ci_high", "chi2", "dof", "chi2_p", "chi2_reference",
+                    "inside_ci_fraction")
 
 
 def _leave_out_interval_statistics(points: pd.DataFrame, table: pd.DataFrame) -> tuple[str, ...]:
@@ -486,25 +542,30 @@ def compare_results(results_dir: str | Path, predictions_path: str | Path, out_d
     predictions = read_predictions(predictions_path)
     points = match_predictions(measured, predictions, str(predictions_path), interpolate)
     cov_path = measured_path.parent / COVARIANCE_FILE
-    cov_table = (_read_csv(cov_path, COVARIANCE_COLUMNS[:6], optional=("replicates", "dof"))
+    cov_table = (_read_csv(cov_path, COVARIANCE_COLUMNS[:6], optional=("replicates", "dof", "spread_dof"))
                  if cov_path.is_file() else None)
+    if cov_table is not None and (cov_table["spread_dof"] <= 0).any():
+        line = int(np.flatnonzero((cov_table["spread_dof"] <= 0).to_numpy())[0]) + 2
+        raise InputError(str(cov_path), f"line {line}", "spread_dof: degrees of freedom must be positive "
+                         "(no fit writes this; a changed or damaged cell?)")
     rows = []
     for observer, group in points.groupby("observer", sort=False):
         parts = [(f"{lag:g}", g) for lag, g in group.groupby("lag")] + [("all", group)]
         for lag, g in parts:
-            cov, reps, dof = (None, np.nan, np.nan) if cov_table is None else covariance_matrix(
-                cov_table, observer, g["lag"], g["adapter_offset_deg"])
-            if cov is not None:
-                _check_covariance(cov, cov_path, observer)
+            found = (ShiftCovariance(None, np.nan, np.nan, np.nan) if cov_table is None else
+                     covariance_matrix(cov_table, observer, g["lag"], g["adapter_offset_deg"]))
+            if found.matrix is not None:
+                _check_covariance(found.matrix, cov_path, observer)
             a = agreement(g["pse_shift_deg"], g["ci_low"], g["ci_high"], g["predicted_deg"],
-                          g["prediction_sd_deg"], cov, reps, dof,
-                          trials=pd.to_numeric(g["n_trials"], errors="coerce") if "n_trials" in g else None)
+                          g["prediction_sd_deg"], found.matrix, found.replicates, found.dof,
+                          trials=pd.to_numeric(g["n_trials"], errors="coerce") if "n_trials" in g else None,
+                          spread_dof=found.spread_dof, rank=found.rank)
             rows.append({"observer": observer, "lag": lag, **a.__dict__,
                          "descriptive": bool(g.get("flags", pd.Series(dtype=object)).astype(object).fillna("").astype(str)
                                              .str.contains("descriptive").any())})
     _group_gain_from_observers(rows)
     table = pd.DataFrame(rows, columns=AGREEMENT_COLUMNS)
-    notes = _leave_out_interval_statistics(points, table)
+    notes = _leave_out_interval_statistics(points, table) + _reduced_rank_notes(table)
     with output_set(out_dir, "compare") as staged:
         out = staged.folder
         write_text(out / "agreement.csv", table.to_csv(index=False, float_format="%.6g", lineterminator="\n"))

@@ -6,11 +6,21 @@ independent inflates a chi-square of agreement.  ``fit`` therefore writes
 ``aftereffect_covariance.csv``, in long form, one row per pair of cells:
 
 ``observer, lag_a, adapter_offset_a_deg, lag_b, adapter_offset_b_deg,
-covariance_deg2, replicates, dof``
+covariance_deg2, replicates, dof, spread_dof, shift_parameters``
 
 * observers: the covariance of the paired bootstrap replicates of their
-  shifts (``replicates`` = their number, ``dof`` empty: treated as known up
-  to the Hartlap et al. (2007) correction of its inverse);
+  shifts (``replicates`` = their number, ``dof`` empty), and ``spread_dof``,
+  the degrees of freedom of the fitted spread (:func:`spread_dof`): the
+  shifts' errors scale with the spread, which is itself estimated, so
+  ``compare`` reads ``r' V^-1 r / n`` against F(n, spread_dof) (stream
+  fits write theirs the same way, from the n-back fit's one spread);
+* ``shift_parameters`` (stream fits): the fitted parameters the shift of
+  cell a is a function of, e.g. ``a1 w`` (the amplitude at lag 0 and the
+  peak offset).  The n-back shifts are a difference-of-Gaussians curve, so
+  the covariance of 30 cells has rank 4 (K amplitudes and w): ``compare``
+  reads the χ² of a set of cells on as many degrees of freedom as the
+  distinct parameters behind them, over the covariance's leading
+  directions.  Empty for adapt–test fits: each shift has its own PSEs;
 * ``group``: ``D R D`` with ``R`` the correlation of the random-effects
   weighted mean under the observers' own covariances and ``D`` the group
   standard errors implied by the group intervals (``(high - low) / (2
@@ -25,15 +35,19 @@ covariance_deg2, replicates, dof``
 
 from __future__ import annotations
 
+from typing import NamedTuple
+
 import numpy as np
 import pandas as pd
 from scipy import special
 
 COVARIANCE_COLUMNS = ["observer", "lag_a", "adapter_offset_a_deg", "lag_b", "adapter_offset_b_deg",
-                      "covariance_deg2", "replicates", "dof"]
+                      "covariance_deg2", "replicates", "dof", "spread_dof", "shift_parameters"]
 
 
-def long_table(observer, lags, offsets, cov, replicates, dof) -> pd.DataFrame:
+def long_table(observer, lags, offsets, cov, replicates, dof, spread_dof=np.nan,
+               shift_parameters=None) -> pd.DataFrame:
+    """The long form of ``cov`` (n cells × n cells); ``shift_parameters``: one text per cell or None."""
     n = len(lags)
     ia, ib = np.meshgrid(np.arange(n), np.arange(n), indexing="ij")
     ia, ib = ia.ravel(), ib.ravel()
@@ -41,7 +55,35 @@ def long_table(observer, lags, offsets, cov, replicates, dof) -> pd.DataFrame:
     return pd.DataFrame({"observer": observer, "lag_a": lags[ia].astype(int),
                          "adapter_offset_a_deg": offsets[ia], "lag_b": lags[ib].astype(int),
                          "adapter_offset_b_deg": offsets[ib], "covariance_deg2": cov.ravel(),
-                         "replicates": replicates, "dof": dof})
+                         "replicates": replicates, "dof": dof, "spread_dof": spread_dof,
+                         "shift_parameters": "" if shift_parameters is None else np.asarray(shift_parameters)[ia]})
+
+
+def spread_dof(log_spread) -> float:
+    """Degrees of freedom of a fitted spread, from the bootstrap replicates of its logarithm.
+
+    A variance estimate on ν degrees of freedom is a scaled χ²_ν / ν, whose
+    logarithm has variance about 2 / ν; so ν = 1 / (2 Var*(log s)), with
+    ``Var*`` over the replicates (Satterthwaite 1946, Biometrics Bulletin 2,
+    110).
+
+    Parameters
+    ----------
+    log_spread : array_like (R,)
+        Replicates of the log spread (for a fit with one spread per
+        condition, their mean over conditions); non-finite ones are skipped.
+
+    Returns
+    -------
+    float
+        ν; NaN with fewer than three replicates or when the spread did not
+        vary (``compare`` then reads the residuals against t, as for files
+        without the column).
+    """
+    values = np.asarray(log_spread, float)
+    values = values[np.isfinite(values)]
+    var = float(np.var(values, ddof=1)) if values.size >= 3 else 0.0
+    return 1.0 / (2.0 * var) if var > 0 else float("nan")
 
 
 def observer_covariance(analysis) -> pd.DataFrame | None:
@@ -51,8 +93,11 @@ def observer_covariance(analysis) -> pd.DataFrame | None:
         return None
     cov = np.atleast_2d(np.cov(reps, rowvar=False))
     ae = analysis.aftereffect
+    boot = analysis.boot
+    log_spreads = ([] if boot is None else
+                   boot.theta[:, np.unique(analysis.fit.layout.spread_index)].mean(axis=1))
     return long_table(analysis.observer, ae["lag"].to_numpy(float), ae["adapter_offset_deg"].to_numpy(float),
-                 cov, reps.shape[0], np.nan)
+                      cov, reps.shape[0], np.nan, spread_dof(log_spreads))
 
 
 def between_observer_covariance(shifts: np.ndarray, within: list[np.ndarray]) -> np.ndarray:
@@ -123,17 +168,32 @@ def group_covariance(analyses, group_shifts: pd.DataFrame, weights: pd.DataFrame
     se = (group_shifts["ci_high"].to_numpy(float) - group_shifts["ci_low"].to_numpy(float)) / (2 * q)
     cov = corr * np.outer(se, se)
     return long_table(str(group_shifts["observer"].iloc[0]), [c[0] for c in cells], [c[1] for c in cells],
-                 cov, np.nan, dof)
+                      cov, np.nan, dof)
 
 
-def covariance_matrix(table: pd.DataFrame, observer: str, lags, offsets):
-    """The (n, n) covariance of ``observer``'s cells in the given order, its replicates and dof.
+class ShiftCovariance(NamedTuple):
+    """One observer's (or the group's) rows of ``aftereffect_covariance.csv`` as a matrix."""
 
-    Returns ``(None, nan, nan)`` when the table lacks the observer or a cell.
+    matrix: np.ndarray | None
+    replicates: float
+    dof: float
+    spread_dof: float
+    rank: int = 0
+
+
+def covariance_matrix(table: pd.DataFrame, observer: str, lags, offsets) -> ShiftCovariance:
+    """The (n, n) covariance of ``observer``'s cells in the given order, with its replicates and dofs.
+
+    The matrix is None (and the numbers NaN) when the table lacks the
+    observer or a cell; ``spread_dof`` is NaN when the table has no such
+    column (files written before it).  ``rank``: the number of cells, or,
+    when every cell names its ``shift_parameters``, the number of distinct
+    parameters behind them if that is smaller.
     """
+    missing = ShiftCovariance(None, np.nan, np.nan, np.nan)
     rows = table[table["observer"].astype(str) == str(observer)]
     if not len(rows):
-        return None, np.nan, np.nan
+        return missing
     look = {(float(r.lag_a), float(r.adapter_offset_a_deg), float(r.lag_b), float(r.adapter_offset_b_deg)):
             float(r.covariance_deg2) for r in rows.itertuples()}
     cells = list(zip(np.asarray(lags, float), np.asarray(offsets, float)))
@@ -142,6 +202,14 @@ def covariance_matrix(table: pd.DataFrame, observer: str, lags, offsets):
         for j, (lb, ob) in enumerate(cells):
             v = look.get((la, oa, lb, ob))
             if v is None:
-                return None, np.nan, np.nan
+                return missing
             out[i, j] = v
-    return out, float(rows["replicates"].iloc[0]), float(rows["dof"].iloc[0])
+    rank = len(cells)
+    if "shift_parameters" in rows:
+        names = {(float(r.lag_a), float(r.adapter_offset_a_deg)): str(r.shift_parameters).split()
+                 for r in rows.itertuples() if isinstance(r.shift_parameters, str)}
+        if all(names.get(c) for c in cells):
+            rank = min(rank, len({p for c in cells for p in names[c]}))
+    first = rows.iloc[0]
+    return ShiftCovariance(out, float(first["replicates"]), float(first["dof"]),
+                           float(first["spread_dof"]) if "spread_dof" in rows else np.nan, rank)

@@ -54,7 +54,7 @@ import pandas as pd
 from .aftereffect import TAU_BOUNDS, dog, peak_bounds
 from .arrow import dense_solve
 from .bootstrap import bca_interval, percentile_interval
-from .covariance import long_table
+from .covariance import long_table, spread_dof
 from .errors import InputError
 from .flags import MIN_TRIALS_FOR_INTERVAL, STEEP_FRACTION, flagged_first, join
 from .flags import on_bound as flag_on_bound
@@ -658,7 +658,8 @@ def result_tables(boot: NbackBootstrap) -> dict[str, pd.DataFrame]:
     reps = dog(offsets[None, None, :], boot.per_n[:, 4:, None], np.exp(boot.per_n[:, 3])[:, None, None])
     reps = reps.reshape(reps.shape[0], -1)
     cov = long_table(obs, np.repeat(np.arange(k), offsets.size), np.tile(offsets, k),
-                np.atleast_2d(np.cov(reps, rowvar=False)), reps.shape[0], np.nan)
+                     np.atleast_2d(np.cov(reps, rowvar=False)), reps.shape[0], np.nan, spread_dof(boot.per_n[:, 1]),
+                     [f"a{n + 1} w" for n in range(k) for _ in offsets])
     return {"pse": pse, "aftereffect": after, "tuning": tuning, "decay": decay, "aftereffect_covariance": cov}
 
 

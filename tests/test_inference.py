@@ -127,6 +127,71 @@ def test_t_scores_hold_the_level_when_each_standard_error_is_estimated():
     assert rej_normal / draws > 0.09
 
 
+def test_f_reading_holds_the_level_when_the_covariance_scales_with_an_estimated_spread():
+    # Definition of Snedecor's F (scipy.stats.f): (U / n) / (W / nu) with U ~ chi2_n, W ~ chi2_nu
+    # independent is F(n, nu).  Shifts with a shared baseline whose whole covariance is known up to a
+    # factor estimated on nu df (the squared spread): r' V^-1 r / n is exactly F(n, nu), so the F reading
+    # holds 5 %, while chi2_n (and t on trials - 2, given too, which the F reading must override) does not.
+    rng = np.random.default_rng(5)
+    n, nu, draws = 8, 15, 2000
+    cov = 1.2 * np.eye(n) + 0.8 * np.ones((n, n))
+    truth = np.linspace(-3, 3, n)
+    rej_f = rej_chi2 = 0
+    for _ in range(draws):
+        m = rng.multivariate_normal(truth, cov)
+        cov_hat = cov * rng.chisquare(nu) / nu
+        half = stats.norm.ppf(0.975) * np.sqrt(np.diagonal(cov_hat))
+        kw = dict(covariance=cov_hat, replicates=np.inf)
+        a = agreement(m, m - half, m + half, truth, spread_dof=nu, trials=np.full(n, 1000), **kw)
+        assert a.chi2_reference == f"F({n}, {nu:.1f})"
+        rej_f += a.chi2_p < 0.05
+        rej_chi2 += agreement(m, m - half, m + half, truth, **kw).chi2_p < 0.05
+    # binomial MC SE at 5 % over 2,000 draws: 0.5 %; chi2_8 / 8 passes F(8, 15)'s 95 % point about 1 time in 10
+    assert 0.035 <= rej_f / draws <= 0.068
+    assert rej_chi2 / draws > 0.08
+
+
+def test_a_covariance_of_lower_rank_gives_the_wald_statistic_of_its_parameters():
+    # Shifts that are functions of r < n parameters (a stream fit: K amplitudes and a peak offset) have a
+    # covariance J S J' of rank r.  Over its r leading directions, r' V+ r equals the Wald statistic
+    # d' S^-1 d of the parameters themselves (the pseudo-inverse of J S J' with J of full column rank;
+    # Rao 1973, Linear Statistical Inference and its Applications, ch. 1b, from memory), here recomputed
+    # with numpy's solve; read on r degrees of freedom it holds 5 % (chi2_r: scipy.stats.chi2).
+    rng = np.random.default_rng(8)
+    n, r, draws = 30, 4, 2000
+    jac = rng.normal(size=(n, r))
+    s_par = np.diag([0.5, 0.3, 0.2, 0.1]) + 0.05
+    cov = jac @ s_par @ jac.T
+    truth = jac @ np.array([3.0, 1.8, 1.1, 0.5])
+    rejected = 0
+    for i in range(draws):
+        d = rng.multivariate_normal(np.zeros(r), s_par)
+        m = truth + jac @ d
+        half = stats.norm.ppf(0.975) * np.sqrt(np.diagonal(cov))
+        a = agreement(m, m - half, m + half, truth, covariance=cov, rank=r)
+        if i == 0:
+            assert a.dof == r and a.chi2_reference == f"chi2({r})"
+            assert a.chi2 == pytest.approx(float(d @ np.linalg.solve(s_par, d)), rel=1e-6)
+        rejected += a.chi2_p < 0.05
+    assert 0.035 <= rejected / draws <= 0.068          # binomial MC SE at 5 % over 2,000 draws: 0.5 %
+
+
+def test_spread_dof_recovers_the_degrees_of_freedom_of_a_chi_squared_variance():
+    # A variance on nu df is sigma^2 chi2_nu / nu; Var(log chi2_nu) is the trigamma function at nu / 2
+    # (the log-gamma distribution's variance; scipy.special.polygamma), close to 2 / nu (Satterthwaite 1946).
+    from scipy import special
+
+    from fitting.covariance import spread_dof
+
+    rng = np.random.default_rng(2)
+    for nu in (6.0, 20.0, 60.0):
+        log_spread = 0.5 * np.log(4.0 * rng.chisquare(nu, 40000) / nu)        # log s, s^2 ~ 4 chi2_nu / nu
+        assert spread_dof(log_spread) == pytest.approx(2.0 / float(special.polygamma(1, nu / 2)), rel=0.03)
+        assert spread_dof(log_spread) == pytest.approx(nu, rel=0.15)
+        assert spread_dof(np.append(log_spread, np.nan)) == spread_dof(log_spread)   # a failed refit skipped
+    assert np.isnan(spread_dof(np.zeros(100))) and np.isnan(spread_dof([0.1, 0.2]))  # no spread to measure
+
+
 def test_gain_with_estimated_scale_equals_statsmodels_gls_and_holds_its_level():
     import statsmodels.api as sm
 
@@ -243,6 +308,16 @@ def test_compare_uses_the_covariance_file_and_refuses_a_corrupt_one(tmp_path, ca
     assert main(["compare", str(tmp_path / "out"), str(tmp_path / "pred.csv"), "--out", str(tmp_path / "c")]) == 0
     table = pd.read_csv(tmp_path / "c" / "agreement.csv")
     assert set(table["covariance"]) == {"full"}
+    # observers: chi2 / n read against F(n, spread_dof) (scipy.stats.f); the group: chi2 on n df
+    written = pd.read_csv(tmp_path / "out" / "aftereffect_covariance.csv")
+    for row in table[(table["lag"] == "all") & table["chi2"].notna()].itertuples():
+        nu = written.loc[written["observer"] == row.observer, "spread_dof"].iloc[0]
+        if row.observer == "group":
+            assert np.isnan(nu) and row.chi2_reference == f"chi2({int(row.dof)})"
+            assert row.chi2_p == pytest.approx(stats.chi2.sf(row.chi2, row.dof), rel=1e-4)
+        else:
+            assert nu > 1 and row.chi2_reference == f"F({int(row.dof)}, {nu:.1f})"
+            assert row.chi2_p == pytest.approx(stats.f.sf(row.chi2 / row.dof, row.dof, nu), rel=1e-4)
     assert table.set_index("observer").loc["group", "descriptive"].all()      # two observers
     assert "descriptive only" in capsys.readouterr().out
     cov = tmp_path / "out" / "aftereffect_covariance.csv"
@@ -260,6 +335,8 @@ def test_compare_uses_the_covariance_file_and_refuses_a_corrupt_one(tmp_path, ca
     ("covariance_deg2", "-5", "not symmetric positive semi-definite"),
     ("covariance_deg2", "inf", "found 'inf'"),
     ("replicates", "lots", "replicates: expected a number, found 'lots'"),
+    ("spread_dof", "-4", "spread_dof: degrees of freedom must be positive"),
+    ("spread_dof", "many", "spread_dof: expected a number, found 'many'"),
 ])
 def test_compare_refuses_a_covariance_cell_no_fit_writes(tmp_path, capsys, column, value, says):
     from runner.cli import main

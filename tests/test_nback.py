@@ -12,6 +12,7 @@ import statsmodels.api as sm
 
 from fitting import fit_trials, read_logs
 from fitting.errors import InputError
+from fitting.compare import compare_results
 from fitting.nback import (StreamTrials, bootstrap_nback, fit_nback, fit_stream_logs, is_stream_log,
                            read_stream_logs, solve)
 from runner.headless import HeadlessPresenter
@@ -126,6 +127,17 @@ def test_fit_stream_logs_writes_the_tables_compare_reads(tmp_path):
     figs = tmp_path / "out" / "figures"
     assert (figs / "nback_sim01.png").stat().st_size > 0 and (figs / "nback_sim01.pdf").exists()
     assert "decay" in report.summary()
+    # compare reads the shifts on as many degrees of freedom as the parameters behind them: a_n and w per
+    # lag, a_1..a_3 and w over all lags (their covariance has that rank, not 30)
+    cov = pd.read_csv(tmp_path / "out" / "aftereffect_covariance.csv")
+    assert set(cov["shift_parameters"]) == {"a1 w", "a2 w", "a3 w"} and cov["spread_dof"].gt(1).all()
+    after[["lag", "adapter_offset_deg"]].assign(pse_shift_deg=0.8 * after["pse_shift_deg"]).to_csv(
+        tmp_path / "pred.csv", index=False)
+    compared = compare_results(tmp_path / "out", tmp_path / "pred.csv", tmp_path / "cmp", figures=False)
+    table = compared.table
+    assert list(table["dof"]) == [2, 2, 2, 4] and table["chi2"].gt(0).all() and table["chi2_p"].lt(1).all()
+    assert list(table["chi2_reference"].str[:4]) == ["F(2,", "F(2,", "F(2,", "F(4,"]
+    assert any("a curve of few fitted parameters" in n for n in compared.notes)
     # the same log with every answer clockwise: flagged, and no interval pretends to be informative
     raw = pd.read_csv(log, dtype=str, keep_default_na=False)
     raw.loc[raw["response_cw"] != "", "response_cw"] = "1"
