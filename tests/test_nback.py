@@ -138,6 +138,13 @@ def test_fit_stream_logs_writes_the_tables_compare_reads(tmp_path):
     assert list(table["dof"]) == [2, 2, 2, 4] and table["chi2"].gt(0).all() and table["chi2_p"].lt(1).all()
     assert list(table["chi2_reference"].str[:4]) == ["F(2,", "F(2,", "F(2,", "F(4,"]
     assert any("a curve of few fitted parameters" in n for n in compared.notes)
+    # a prediction 0.01 deg off the measured curve at one far cell (where the shifts' variance is ~1e-12 deg^2)
+    # cannot be rejected (common practice, no source); the full-rank inverse gave one chi2 = 4e4 (p = 0)
+    near = after[["lag", "adapter_offset_deg", "pse_shift_deg"]].copy()
+    near.loc[0, "pse_shift_deg"] += 0.01
+    near.to_csv(tmp_path / "near.csv", index=False)
+    table = compare_results(tmp_path / "out", tmp_path / "near.csv", tmp_path / "cmp2", figures=False).table
+    assert (table["chi2_p"] > 0.5).all()
     # the same log with every answer clockwise: flagged, and no interval pretends to be informative
     raw = pd.read_csv(log, dtype=str, keep_default_na=False)
     raw.loc[raw["response_cw"] != "", "response_cw"] = "1"
