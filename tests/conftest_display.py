@@ -113,6 +113,17 @@ def find_window(title: str, env: dict, timeout_s: float = 60.0, process: subproc
     raise AssertionError(f"no window named {title!r} appeared within {timeout_s:g} s")
 
 
+def wait_until_no_window(title: str, env: dict, timeout_s: float = 30.0) -> None:
+    """Wait until no window named ``title`` is left (a finished program's window closes asynchronously)."""
+    end = time.monotonic() + timeout_s
+    while time.monotonic() < end:
+        found = subprocess.run(["xdotool", "search", "--name", f"^{title}$"], env=env, capture_output=True, text=True)
+        if not found.stdout.split():
+            return
+        time.sleep(0.1)
+    raise AssertionError(f"a window named {title!r} was still open after {timeout_s:g} s")
+
+
 def send_key(window: str, key: str, env: dict) -> None:
     """Press and release a key (psychopy name) in ``window``."""
     subprocess.run(["xdotool", "key", "--window", window, X_KEYSYMS.get(key, key)], env=env,

@@ -20,7 +20,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from conftest_display import DATA, find_window, own_x_server, require_xdotool, send_key  # noqa: F401
+from conftest_display import DATA, find_window, own_x_server, require_xdotool, send_key, wait_until_no_window  # noqa: F401
 from PIL import Image
 
 from fitting.display_model import GainOffsetGamma
@@ -85,8 +85,10 @@ def drive(process, env, stop_after: int | None = None) -> dict[int, float]:
     while True:
         prompts = console.wait_for(lambda t: [m for m in PROMPT.finditer(t) if int(m.group(1)) not in typed]
                                    or (process.poll() is not None and ["end"]), process)
-        if prompts == ["end"]:
-            break
+        if prompts == ["end"]:   # the program ended before asking for every reading: say what it said
+            err = process.stderr.read().decode("utf-8", "replace") if process.stderr else ""
+            raise AssertionError(f"the program ended (exit {process.returncode}) after {len(typed)} readings; "
+                                 f"console: {console.text[-1500:]!r}; stderr: {err[-1500:]!r}")
         m = prompts[0]
         order, total, level = int(m.group(1)), int(m.group(2)), float(m.group(3))
         if stop_after is not None and len(typed) == stop_after:
@@ -116,6 +118,7 @@ def test_measurement_screen_typed_readings_give_the_csv_fit(own_x_server, tmp_pa
     with readings_file.open(newline="", encoding="utf-8") as f:
         assert len(list(csv.DictReader(f))) == 2  # Escape kept both readings
     assert not out.exists()
+    wait_until_no_window("aftershift", env)      # not the first run's window, still closing, for the second
     second = drive(start([*args, "--resume"], env), env)
     typed = {**first, **second}
     assert len(typed) == 6
