@@ -65,7 +65,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from fitting.covariance import COVARIANCE_COLUMNS, ShiftCovariance, covariance_matrix
+from fitting.covariance import COVARIANCE_COLUMNS, NO_COVARIANCE, covariance_matrix
 from fitting.errors import InputError
 from fitting.group import GROUP
 from fitting.meta import random_effects
@@ -552,7 +552,7 @@ def compare_results(results_dir: str | Path, predictions_path: str | Path, out_d
     for observer, group in points.groupby("observer", sort=False):
         parts = [(f"{lag:g}", g) for lag, g in group.groupby("lag")] + [("all", group)]
         for lag, g in parts:
-            found = (ShiftCovariance(None, np.nan, np.nan, np.nan) if cov_table is None else
+            found = (NO_COVARIANCE if cov_table is None else
                      covariance_matrix(cov_table, observer, g["lag"], g["adapter_offset_deg"]))
             if found.matrix is not None:
                 _check_covariance(found.matrix, cov_path, observer)

@@ -181,6 +181,10 @@ class ShiftCovariance(NamedTuple):
     rank: int = 0
 
 
+#: No covariance: no file, or not the observer or a cell of it.
+NO_COVARIANCE = ShiftCovariance(None, np.nan, np.nan, np.nan)
+
+
 def covariance_matrix(table: pd.DataFrame, observer: str, lags, offsets) -> ShiftCovariance:
     """The (n, n) covariance of ``observer``'s cells in the given order, with its replicates and dofs.
 
@@ -190,10 +194,9 @@ def covariance_matrix(table: pd.DataFrame, observer: str, lags, offsets) -> Shif
     when every cell names its ``shift_parameters``, the number of distinct
     parameters behind them if that is smaller.
     """
-    missing = ShiftCovariance(None, np.nan, np.nan, np.nan)
     rows = table[table["observer"].astype(str) == str(observer)]
     if not len(rows):
-        return missing
+        return NO_COVARIANCE
     look = {(float(r.lag_a), float(r.adapter_offset_a_deg), float(r.lag_b), float(r.adapter_offset_b_deg)):
             float(r.covariance_deg2) for r in rows.itertuples()}
     cells = list(zip(np.asarray(lags, float), np.asarray(offsets, float)))
@@ -202,7 +205,7 @@ def covariance_matrix(table: pd.DataFrame, observer: str, lags, offsets) -> Shif
         for j, (lb, ob) in enumerate(cells):
             v = look.get((la, oa, lb, ob))
             if v is None:
-                return missing
+                return NO_COVARIANCE
             out[i, j] = v
     rank = len(cells)
     if "shift_parameters" in rows:

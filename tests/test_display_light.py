@@ -20,7 +20,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from conftest_display import DATA, find_window, own_x_server, require_xdotool, send_key, wait_until_no_window  # noqa: F401
+from conftest_display import (DATA, find_window, own_x_server, require_xdotool, send_key,  # noqa: F401
+                             wait_until_no_window)
 from PIL import Image
 
 from fitting.display_model import GainOffsetGamma
