@@ -501,6 +501,25 @@ def _check_covariance(cov: np.ndarray, path: Path, observer) -> None:
                          "positive semi-definite, as no fit writes it (a changed or damaged cell?)")
 
 
+def _check_covariance_labels(table: pd.DataFrame, path: Path) -> None:
+    """Refuse what no fit writes: ``spread_dof`` not positive or not one per observer, ``shift_parameters``
+    differing between the rows of one cell."""
+    if (table["spread_dof"] <= 0).any():
+        line = int(np.flatnonzero((table["spread_dof"] <= 0).to_numpy())[0]) + 2
+        raise InputError(str(path), f"line {line}", "spread_dof: degrees of freedom must be positive "
+                         "(no fit writes this; a changed or damaged cell?)")
+    named = table.get("shift_parameters", pd.Series("", index=table.index)).astype(object)
+    labels = table.assign(shift_parameters=named.where(named.notna(), "").astype(str),
+                          spread_dof=table["spread_dof"].fillna(-1.0))
+    for column, keys in (("spread_dof", ["observer"]),
+                         ("shift_parameters", ["observer", "lag_a", "adapter_offset_a_deg"])):
+        varied = labels.groupby(keys, sort=False)[column].nunique()
+        if (varied > 1).any():
+            where = ", ".join(f"{k} {v}" for k, v in zip(keys, np.atleast_1d(varied[varied > 1].index[0])))
+            raise InputError(str(path), column, f"{where}: differs between rows, as no fit writes it "
+                             "(a changed or damaged cell?)")
+
+
 def _shown_path(path: Path, out: Path) -> str:
     """``path`` relative to ``out`` when it lies beside it (same bytes wherever the pair lies), else absolute."""
     rel = os.path.relpath(path.resolve(), out.resolve())
@@ -544,10 +563,8 @@ def compare_results(results_dir: str | Path, predictions_path: str | Path, out_d
     cov_path = measured_path.parent / COVARIANCE_FILE
     cov_table = (_read_csv(cov_path, COVARIANCE_COLUMNS[:6], optional=("replicates", "dof", "spread_dof"))
                  if cov_path.is_file() else None)
-    if cov_table is not None and (cov_table["spread_dof"] <= 0).any():
-        line = int(np.flatnonzero((cov_table["spread_dof"] <= 0).to_numpy())[0]) + 2
-        raise InputError(str(cov_path), f"line {line}", "spread_dof: degrees of freedom must be positive "
-                         "(no fit writes this; a changed or damaged cell?)")
+    if cov_table is not None:
+        _check_covariance_labels(cov_table, cov_path)
     rows = []
     for observer, group in points.groupby("observer", sort=False):
         parts = [(f"{lag:g}", g) for lag, g in group.groupby("lag")] + [("all", group)]

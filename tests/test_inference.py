@@ -337,6 +337,8 @@ def test_compare_uses_the_covariance_file_and_refuses_a_corrupt_one(tmp_path, ca
     ("replicates", "lots", "replicates: expected a number, found 'lots'"),
     ("spread_dof", "-4", "spread_dof: degrees of freedom must be positive"),
     ("spread_dof", "many", "spread_dof: expected a number, found 'many'"),
+    ("spread_dof", "7", "observer D1: differs between rows"),
+    ("shift_parameters", "a1 w", "observer D1, lag_a 0, adapter_offset_a_deg -30: differs between rows"),
 ])
 def test_compare_refuses_a_covariance_cell_no_fit_writes(tmp_path, capsys, column, value, says):
     from runner.cli import main
