@@ -103,28 +103,46 @@ def test_chi2_p_on_a_constructed_case_equals_scipy():
     assert b.chi2 == pytest.approx(a.chi2 * 396 / 399, rel=1e-12)
 
 
+#: Eight shifts sharing a baseline (correlation 0.4), and their true values.
+SHARED_BASELINE_COV = 1.2 * np.eye(8) + 0.8 * np.ones((8, 8))
+SHIFTS_TRUE = np.linspace(-3, 3, 8)
+
+
+def _rejected_shares(rng, draws: int, estimated_covariance, readings: list[dict]) -> np.ndarray:
+    """Share of ``draws`` simulated shift sets whose χ² rejects the truth at 5 %, for each reading.
+
+    Each draw takes shifts from N(truth, SHARED_BASELINE_COV), then a covariance estimate
+    ``estimated_covariance(rng)``, and scores them with ``agreement`` (intervals from that estimate) and
+    each reading's keywords.
+    """
+    rejected = np.zeros(len(readings))
+    for _ in range(draws):
+        m = rng.multivariate_normal(SHIFTS_TRUE, SHARED_BASELINE_COV)
+        cov_hat = estimated_covariance(rng)
+        half = stats.norm.ppf(0.975) * np.sqrt(np.diagonal(cov_hat))
+        for i, kw in enumerate(readings):
+            a = agreement(m, m - half, m + half, SHIFTS_TRUE, covariance=cov_hat, replicates=np.inf, **kw)
+            rejected[i] += a.chi2_p < 0.05
+    return rejected / draws
+
+
 def test_t_scores_hold_the_level_when_each_standard_error_is_estimated():
     # Student (1908): N(0, 1) / sqrt(chi2_nu / nu) is t on nu df.  Shifts with a shared baseline
     # (correlation 0.4), each standard error estimated on nu = 10 df: reading the standardised
     # residuals as normal over-rejects, reading them against t on trials - 2 = 10 df holds 5 %.
-    rng = np.random.default_rng(11)
-    n, nu, draws = 8, 10, 3000
-    cov = 1.2 * np.eye(n) + 0.8 * np.ones((n, n))
-    sd = np.sqrt(np.diagonal(cov))
-    corr = cov / np.outer(sd, sd)
-    truth = np.linspace(-3, 3, n)
-    rej_t = rej_normal = 0
-    for _ in range(draws):
-        m = rng.multivariate_normal(truth, cov)
+    n, nu = 8, 10
+    sd = np.sqrt(np.diagonal(SHARED_BASELINE_COV))
+    corr = SHARED_BASELINE_COV / np.outer(sd, sd)
+
+    def estimated(rng):
         sd_hat = sd * np.sqrt(rng.chisquare(nu, n) / nu)
-        cov_hat = corr * np.outer(sd_hat, sd_hat)
-        half = stats.norm.ppf(0.975) * sd_hat
-        kw = dict(covariance=cov_hat, replicates=np.inf)
-        rej_t += agreement(m, m - half, m + half, truth, trials=np.full(n, nu + 2), **kw).chi2_p < 0.05
-        rej_normal += agreement(m, m - half, m + half, truth, **kw).chi2_p < 0.05
+        return corr * np.outer(sd_hat, sd_hat)
+
+    t_reading, normal_reading = _rejected_shares(np.random.default_rng(11), 3000, estimated,
+                                                 [dict(trials=np.full(n, nu + 2)), {}])
     # binomial MC SE at 5 % over 3,000 draws: 0.4 % (a slow test: tests/conftest.py SLOW_TESTS)
-    assert 0.035 <= rej_t / draws <= 0.07
-    assert rej_normal / draws > 0.09
+    assert 0.035 <= t_reading <= 0.07
+    assert normal_reading > 0.09
 
 
 def test_f_reading_holds_the_level_when_the_covariance_scales_with_an_estimated_spread():
@@ -132,23 +150,17 @@ def test_f_reading_holds_the_level_when_the_covariance_scales_with_an_estimated_
     # independent is F(n, nu).  Shifts with a shared baseline whose whole covariance is known up to a
     # factor estimated on nu df (the squared spread): r' V^-1 r / n is exactly F(n, nu), so the F reading
     # holds 5 %, while chi2_n (and t on trials - 2, given too, which the F reading must override) does not.
-    rng = np.random.default_rng(5)
-    n, nu, draws = 8, 15, 1000
-    cov = 1.2 * np.eye(n) + 0.8 * np.ones((n, n))
-    truth = np.linspace(-3, 3, n)
-    rej_f = rej_chi2 = 0
-    for _ in range(draws):
-        m = rng.multivariate_normal(truth, cov)
-        cov_hat = cov * rng.chisquare(nu) / nu
-        half = stats.norm.ppf(0.975) * np.sqrt(np.diagonal(cov_hat))
-        kw = dict(covariance=cov_hat, replicates=np.inf)
-        a = agreement(m, m - half, m + half, truth, spread_dof=nu, trials=np.full(n, 1000), **kw)
-        assert a.chi2_reference == f"F({n}, {nu:.1f})"
-        rej_f += a.chi2_p < 0.05
-        rej_chi2 += agreement(m, m - half, m + half, truth, **kw).chi2_p < 0.05
+    n, nu = 8, 15
+    f_reading, chi2_reading = _rejected_shares(
+        np.random.default_rng(5), 1000, lambda rng: SHARED_BASELINE_COV * rng.chisquare(nu) / nu,
+        [dict(spread_dof=nu, trials=np.full(n, 1000)), {}])
     # binomial MC SE at 5 % over 1,000 draws: 0.7 %; chi2_8 / 8 passes F(8, 15)'s 95 % point 12.8 % of the time
-    assert 0.03 <= rej_f / draws <= 0.075
-    assert rej_chi2 / draws > 0.09
+    assert 0.03 <= f_reading <= 0.075
+    assert chi2_reading > 0.09
+    half = np.full(n, 2.0)
+    a = agreement(SHIFTS_TRUE, SHIFTS_TRUE - half, SHIFTS_TRUE + half, SHIFTS_TRUE + 0.5,
+                  covariance=SHARED_BASELINE_COV, spread_dof=nu, trials=np.full(n, 1000))
+    assert a.chi2_reference == f"F({n}, {nu:.1f})"
 
 
 def test_a_covariance_of_lower_rank_gives_the_wald_statistic_of_its_parameters():
