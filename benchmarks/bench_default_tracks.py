@@ -69,24 +69,43 @@ CANDIDATES = [
 
 
 class ScratchEntropyTrack(EntropyTrack):
-    """Three Bayesian variants tried against the default and not adopted (benchmark only).
+    """Four Bayesian variants tried against the default and not adopted (benchmark only).
 
     ``switch_after``: least expected entropy for the first K trials of the
     track, then the level nearest the posterior mean of the PSE;
     ``pse_prior_sd``: a Gaussian prior on the PSE centred on the reference;
     ``near_spreads``: least expected entropy among the levels within K
-    posterior-mean spreads of the posterior mean of the PSE.
+    posterior-mean spreads of the posterior mean of the PSE;
+    ``min_variance``: least expected posterior variance of the PSE marginal
+    (the minimum-variance rule of King-Smith et al., 1994).
     """
 
     def __init__(self, switch_after: int | None = None, pse_prior_sd: float | None = None,
-                 near_spreads: float | None = None, **kw):
+                 near_spreads: float | None = None, min_variance: bool = False, **kw):
         super().__init__(**kw)
         self.switch_after = switch_after
         self.near_spreads = near_spreads
+        self.min_variance = min_variance
         if pse_prior_sd:
             self._log_post += (-0.5 * (self._mu / pse_prior_sd) ** 2)[:, None, None]
 
+    def expected_pse_variances(self) -> np.ndarray:
+        """Expected posterior variance of the PSE after one trial at each level (deg², one per level)."""
+        p = self.posterior()
+        a = (p @ self._half_lapse).sum(axis=1)  # (μ,)
+        b = p @ self._keep  # (μ, σ)
+        cw = np.einsum("xms,ms->xm", self._table, b) + a  # unnormalised μ marginal after "cw", per level
+        ccw = np.maximum(p.sum(axis=(1, 2)) - cw, 0.0)
+        out = np.zeros(cw.shape[0])
+        for m in (cw, ccw):
+            mass = m.sum(axis=1)
+            first = m @ self._mu
+            out += m @ self._mu ** 2 - np.divide(first ** 2, mass, out=np.zeros_like(first), where=mass > 0)
+        return out
+
     def next_level(self) -> float:
+        if self._proposal is None and self.min_variance and not self.finished:
+            self._proposal = float(self._level_values[int(np.argmin(self.expected_pse_variances()))])
         if self._proposal is None and self.switch_after is not None and self.n_trials >= self.switch_after:
             pick = int(np.argmin(np.abs(self._level_values - self.posterior_mean().pse)))
             self._proposal = float(self._level_values[pick])
@@ -99,7 +118,7 @@ class ScratchEntropyTrack(EntropyTrack):
         return super().next_level()
 
 
-SCRATCH = ("switch_after", "pse_prior_sd", "near_spreads")
+SCRATCH = ("switch_after", "pse_prior_sd", "near_spreads", "min_variance")
 
 
 def _track(settings: dict, n: int, t: int):
@@ -115,7 +134,8 @@ SCRATCH_ROWS = [(f"bayesian, entropy for {k} trials then posterior mean (scratch
                  dict(method="bayesian", switch_after=k)) for k in (4, 10, 20, 30)] + [
     (f"bayesian, Gaussian PSE prior SD {sd:g}° (scratch)", dict(method="bayesian", pse_prior_sd=sd)) for sd in (6.0, 10.0)] + [
     (f"bayesian, entropy among levels within {k:g} spreads of the PSE (scratch)",
-     dict(method="bayesian", near_spreads=k)) for k in (0.5, 1.0)]
+     dict(method="bayesian", near_spreads=k)) for k in (0.5, 1.0)] + [
+    ("bayesian, least expected posterior variance of the PSE (scratch)", dict(method="bayesian", min_variance=True))]
 
 
 def simulate(settings: dict, mus, lapse: float, seeds, spread: float = SPREAD,
@@ -164,7 +184,8 @@ def cell(pool, settings: dict, lapse: float, runs: int, seed, far: bool, jobs: i
 
 
 def efficiency_table(runs: int = 1500, seed: int = 1, quick: bool = False, jobs: int | None = None,
-                     spread: float = SPREAD, tracks: int = 2, methods=None, scratch: bool = False) -> list[str]:
+                     spread: float = SPREAD, tracks: int = 2, methods=None, scratch: bool = False,
+                     only=None) -> list[str]:
     """The table as Markdown lines (``quick``: the defaults and the earlier Bayesian one; Bayesian with runs // 3).
 
     ``tracks``: tracks per condition sharing the 80 trials (2, as the
@@ -179,6 +200,8 @@ def efficiency_table(runs: int = 1500, seed: int = 1, quick: bool = False, jobs:
              "|---|---|---|---|---|---|---|---|"]
     rows = [r for r in (CANDIDATES[:4] if quick else CANDIDATES) if not methods or r[1]["method"] in methods]
     rows += [r for r in SCRATCH_ROWS if scratch]
+    if only:
+        rows = [r for r in rows if any(word in r[0] for word in only)]
     with ProcessPoolExecutor(jobs) as pool:
         for label, settings in rows:
             n = max(runs // 3, 20) if settings["method"] == "bayesian" else runs
@@ -204,13 +227,15 @@ def main() -> None:
     ap.add_argument("--methods", nargs="+", help="only the rows of these methods (e.g. bayesian)")
     ap.add_argument("--scratch", action="store_true",
                     help="also the Bayesian variants tried and not adopted (posterior mean after K entropy "
-                         "trials; a Gaussian prior on the PSE; entropy among levels near the PSE)")
+                         "trials; a Gaussian prior on the PSE; entropy among levels near the PSE; least "
+                         "expected PSE variance)")
+    ap.add_argument("--only", nargs="+", help="only the rows whose label holds one of these words")
     args = ap.parse_args()
     defaults = ProcedureSettings()
     print(f"# defaults: start ±{defaults.start_offset_deg:g} deg, steps {defaults.steps_deg}, "
           f"k_down {defaults.k_down}, target_cw {defaults.target_cw:g}, Bayesian placement {defaults.bayes_placement}")
     for line in efficiency_table(args.runs, args.seed, args.quick, spread=args.spread, tracks=args.tracks,
-                                 methods=args.methods, scratch=args.scratch):
+                                 methods=args.methods, scratch=args.scratch, only=args.only):
         print(line, flush=True)
 
 
