@@ -13,7 +13,8 @@ shifts, χ²/rank read against F on the spread's degrees of freedom) and,
 beside it, the rule before (the full-rank inverse, each residual read
 against t on ``n_trials - 2``); target 3–8 %.
 
-Run: ``python benchmarks/bench_stream_recovery.py [--runs 30] [--boot 400]``
+Run: ``python benchmarks/bench_stream_recovery.py [--runs 30] [--boot 400] [--first-seed 0]`` (seeds
+``first-seed`` … ``first-seed + runs - 1``).
 """
 
 from __future__ import annotations
@@ -41,6 +42,7 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--runs", type=int, default=30)
     parser.add_argument("--boot", type=int, default=400)
+    parser.add_argument("--first-seed", type=int, default=0)
     args = parser.parse_args()
     protocol, text = load_protocol(PROTOCOL), read_protocol_text(PROTOCOL)
     model = ObserverModel(spread_between_observers=0.0)
@@ -52,7 +54,7 @@ def main() -> None:
                 "before (full rank, t on n_trials - 2)": 0}
     start = time.perf_counter()
     with tempfile.TemporaryDirectory() as tmp:
-        for seed in range(args.runs):
+        for seed in range(args.first_seed, args.first_seed + args.runs):
             out = Path(tmp) / f"run{seed}"
             simulate(protocol, str(PROTOCOL), text, out, model, 1, seed, progress=False)
             trials = read_stream_logs(out)[0]
@@ -76,7 +78,8 @@ def main() -> None:
             rejected["before (full rank, t on n_trials - 2)"] += agreement(*common, trials=ae["n_trials"]).chi2_p < 0.05
             print(f"seed {seed:2d}: a = {np.round(boot.fit.amplitudes_deg, 2)} (true {np.round(truth_a, 2)}), "
                   f"w = {boot.fit.peak_offset_deg:.1f}, tau = {boot.fit.decay_periods:.2f} "
-                  f"[{t_lo:.2f}, {t_hi:.2f}]  {'ok' if inside.all() else 'MISS ' + str(inside.astype(int))}")
+                  f"[{t_lo:.2f}, {t_hi:.2f}]  {'ok' if inside.all() else 'MISS ' + str(inside.astype(int))}",
+                  flush=True)
     names = [f"a_{n + 1}" for n in range(k)] + ["peak offset w", "decay tau"]
     print(f"\n{args.runs} runs, {args.boot} bootstrap replicates each, {time.perf_counter() - start:.0f} s")
     for name, h in zip(names, hits):
