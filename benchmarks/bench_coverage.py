@@ -390,7 +390,7 @@ def pooled_groups(results, boot, sizes, pop: dict, level: float = 0.95, partitio
             fake = [SimpleNamespace(observer=o, curves={"shift_reps": reps[o]},
                                     aftereffect=sub["aftereffect"][sub["aftereffect"]["observer"] == o])
                     for o in sorted(members)]
-            cov = group_covariance(fake, g_ae, group_weights(sub["aftereffect"], level), level)
+            cov = group_covariance(fake, g_ae, group_weights(sub["aftereffect"], level), level, between="curve")
             matrix, _, dof = covariance_matrix(cov, GROUP, g_ae["lag"], g_ae["adapter_offset_deg"])[:3]
             pred = [pop["shift"][(float(lag), float(o))] for lag, o in zip(g_ae["lag"], g_ae["adapter_offset_deg"])]
             a = agreement(g_ae["pse_shift_deg"], g_ae["ci_low"], g_ae["ci_high"], pred, None, matrix, np.nan, dof)
@@ -408,10 +408,11 @@ def pooled_groups(results, boot, sizes, pop: dict, level: float = 0.95, partitio
             rejected[f"{label}: GLS gain of the group shifts"].append(
                 (a.chi2_p < 0.05, a.chi2, a.dof, a.gain_ci_low <= 1.0 <= a.gain_ci_high))
             weights = group_weights(sub["aftereffect"], level)
-            between = group_covariance(fake, g_ae, weights, level, between=True)
-            matrix_b = covariance_matrix(between, GROUP, g_ae["lag"], g_ae["adapter_offset_deg"]).matrix
+            matrix_b, matrix_o = (covariance_matrix(group_covariance(fake, g_ae, weights, level, between=kind),
+                                                    GROUP, g_ae["lag"], g_ae["adapter_offset_deg"]).matrix
+                                  for kind in (True, False))
             for name, rej in group_chi2_candidates(sub["aftereffect"], g_ae, matrix, dof, np.asarray(pred),
-                                                   level, matrix_b).items():
+                                                   level, matrix_b, matrix_o).items():
                 rejected[f"{label}: {name}"].append(rej)
                 independent[f"{label}: {name}"] = independent[label]
     return units, rejected, independent
@@ -424,11 +425,17 @@ def _wide(shifts: pd.DataFrame, col: str, cells) -> np.ndarray:
     return table.to_numpy(float)[:, [where[c] for c in cells]]
 
 
-def group_chi2_candidates(shifts, g_ae, matrix, dof, pred, level: float = 0.95, between_matrix=None) -> dict:
+def group_chi2_candidates(shifts, g_ae, matrix, dof, pred, level: float = 0.95, between_matrix=None,
+                          own_matrix=None) -> dict:
     """The group χ² under candidate alternatives, as ``{name: (rejected, chi2, df, gain CI holds 1)}``.
 
-    * ``between_matrix``: the group correlation with the between-observer
+    ``matrix`` is ``fit``'s group covariance (``between="curve"``).
+
+    * ``between_matrix``: the group correlation with the whole between-observer
       covariance across cells added (``group_covariance(..., between=True)``);
+    * ``own_matrix``: the group correlation from the observers' own
+      covariances alone (``between=False``; ``fit``'s rule before the
+      seventh session);
 
     * the plain Hartung–Knapp standard errors, without the fixed-effect floor
       (:func:`fitting.meta.random_effects` with ``floor=False``), with the
@@ -457,10 +464,11 @@ def group_chi2_candidates(shifts, g_ae, matrix, dof, pred, level: float = 0.95, 
     t = np.einsum("sc,cd,sd->s", signs @ dev, inv, signs @ dev)
     p_flip = float(np.mean(t >= t[0] * (1 - 1e-12)))                   # row 0: all signs +1, the data
     out = {}
-    if between_matrix is not None:
-        b = agreement(est, g_ae["ci_low"], g_ae["ci_high"], pred, None, between_matrix, np.nan, dof)
-        out["correlation with between-observer covariance"] = (b.chi2_p < 0.05, b.chi2, b.dof,
-                                                               b.gain_ci_low <= 1.0 <= b.gain_ci_high)
+    for name, other in (("correlation with between-observer covariance", between_matrix),
+                        ("correlation from the observers' own covariances (before)", own_matrix)):
+        if other is not None:
+            b = agreement(est, g_ae["ci_low"], g_ae["ci_high"], pred, None, other, np.nan, dof)
+            out[name] = (b.chi2_p < 0.05, b.chi2, b.dof, b.gain_ci_low <= 1.0 <= b.gain_ci_high)
     return out | {"plain Hartung–Knapp errors (no floor)": (hk.chi2_p < 0.05, hk.chi2, hk.dof, nan),
             "sign flips over observers": (p_flip < 0.05, float(t[0]), len(cells), nan)}
 

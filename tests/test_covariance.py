@@ -6,7 +6,10 @@ import numpy as np
 import pandas as pd
 from scipy import special
 
-from fitting.covariance import between_observer_covariance, covariance_matrix, group_covariance
+from statsmodels.stats.meta_analysis import _fit_tau_mm
+
+from fitting.covariance import (between_observer_covariance, covariance_matrix, curve_between_covariance,
+                                group_covariance)
 
 CELLS = [(1, -20.0), (1, 20.0), (2, 20.0)]
 
@@ -70,3 +73,43 @@ def test_between_observer_covariance_removes_the_observers_own_errors_and_stays_
     naive = np.cov(rng.multivariate_normal(np.zeros(2), true_between + own, (draws, k)).reshape(-1, 2),
                    rowvar=False)
     assert naive[1, 1] > true_between[1, 1] + 1.5            # without the subtraction: T + C
+
+
+def test_curve_between_variance_is_the_method_of_moments_variance_of_the_projections():
+    # Observers whose after-effects differ in size: y_i = g_i m + their own errors.
+    rng = np.random.default_rng(8)
+    k, p = 5, 6
+    m = np.array([-2.0, -1.0, 1.5, 2.5, 0.8, 0.4])
+    own = [a @ a.T * 0.05 for a in rng.normal(size=(k, p, p))]
+    y = np.exp(0.2 * rng.normal(size=k))[:, None] * m + np.array([rng.multivariate_normal(np.zeros(p), c)
+                                                                  for c in own])
+    t = curve_between_covariance(y, own)
+    # reference: statsmodels' method-of-moments between-study variance (DerSimonian & Kacker 2007, eq. 6),
+    # with equal weights (Hedges' 1983 estimate, s^2 - mean v), of the observers' shifts projected on
+    # the unit vector along their mean curve, clipped at 0 as a variance must be
+    u = y.mean(axis=0) / np.linalg.norm(y.mean(axis=0))
+    tau2 = max(0.0, _fit_tau_mm(y @ u, np.array([u @ c @ u for c in own]), np.ones(k)))
+    assert tau2 > 0
+    np.testing.assert_allclose(t, tau2 * np.outer(u, u), rtol=1e-10, atol=1e-14)
+    # observers that agree better than their own errors allow: no between-observer part
+    assert not curve_between_covariance(y, [c * 1e3 for c in own]).any()
+
+
+def test_group_covariance_with_the_curve_part_widens_only_along_the_group_curve():
+    rng = np.random.default_rng(9)
+    reps = [rng.multivariate_normal(np.zeros(3), np.eye(3) * 0.01, 4000) for _ in range(3)]
+    shifts = [[-1.0, 1.0, 0.5], [-2.0, 2.0, 1.0], [-3.0, 3.0, 1.5]]       # one curve, three sizes
+    observers = [_observer(f"o{i}", r, s) for i, (r, s) in enumerate(zip(reps, shifts))]
+    weights = pd.DataFrame(np.full((3, 3), 1 / 3), index=["o0", "o1", "o2"],
+                           columns=pd.MultiIndex.from_tuples(CELLS))
+    group = _group_rows([1.0, 1.0, 1.0])
+    cells = [c[0] for c in CELLS], [c[1] for c in CELLS]
+    plain = covariance_matrix(group_covariance(observers, group, weights, 0.95), "group", *cells).matrix
+    curve = covariance_matrix(group_covariance(observers, group, weights, 0.95, between="curve"), "group",
+                              *cells).matrix
+    u = np.array([-2.0, 2.0, 1.0]) / 3.0
+    # the same standard errors (the group intervals'); the curve direction now carries most of the variance
+    np.testing.assert_allclose(np.diagonal(curve), np.diagonal(plain))
+    assert u @ curve @ u > 2.5 * (u @ plain @ u)
+    top = np.linalg.eigh(curve)[1][:, -1]
+    assert abs(top @ u) > 0.95                                                # its leading direction
