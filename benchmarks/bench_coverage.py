@@ -390,7 +390,7 @@ def pooled_groups(results, boot, sizes, pop: dict, level: float = 0.95, partitio
             fake = [SimpleNamespace(observer=o, curves={"shift_reps": reps[o]},
                                     aftereffect=sub["aftereffect"][sub["aftereffect"]["observer"] == o])
                     for o in sorted(members)]
-            cov = group_covariance(fake, g_ae, group_weights(sub["aftereffect"], level), level, between="curve")
+            cov = group_covariance(fake, g_ae, group_weights(sub["aftereffect"], level), level)
             matrix, _, dof = covariance_matrix(cov, GROUP, g_ae["lag"], g_ae["adapter_offset_deg"])[:3]
             pred = [pop["shift"][(float(lag), float(o))] for lag, o in zip(g_ae["lag"], g_ae["adapter_offset_deg"])]
             a = agreement(g_ae["pse_shift_deg"], g_ae["ci_low"], g_ae["ci_high"], pred, None, matrix, np.nan, dof)
@@ -410,7 +410,7 @@ def pooled_groups(results, boot, sizes, pop: dict, level: float = 0.95, partitio
             weights = group_weights(sub["aftereffect"], level)
             matrix_b, matrix_o = (covariance_matrix(group_covariance(fake, g_ae, weights, level, between=kind),
                                                     GROUP, g_ae["lag"], g_ae["adapter_offset_deg"]).matrix
-                                  for kind in (True, False))
+                                  for kind in ("cells", "none"))
             for name, rej in group_chi2_candidates(sub["aftereffect"], g_ae, matrix, dof, np.asarray(pred),
                                                    level, matrix_b, matrix_o).items():
                 rejected[f"{label}: {name}"].append(rej)
@@ -429,12 +429,12 @@ def group_chi2_candidates(shifts, g_ae, matrix, dof, pred, level: float = 0.95, 
                           own_matrix=None) -> dict:
     """The group χ² under candidate alternatives, as ``{name: (rejected, chi2, df, gain CI holds 1)}``.
 
-    ``matrix`` is ``fit``'s group covariance (``between="curve"``).
+    ``matrix`` is ``fit``'s group covariance (``between="curve"``, the default).
 
     * ``between_matrix``: the group correlation with the whole between-observer
-      covariance across cells added (``group_covariance(..., between=True)``);
+      covariance across cells added (``group_covariance(..., between="cells")``);
     * ``own_matrix``: the group correlation from the observers' own
-      covariances alone (``between=False``; ``fit``'s rule before the
+      covariances alone (``between="none"``; ``fit``'s rule before the
       seventh session);
 
     * the plain Hartung–Knapp standard errors, without the fixed-effect floor

@@ -25,13 +25,13 @@ covariance_deg2, replicates, dof, spread_dof, shift_parameters``
   weighted mean under the observers' own covariances plus the
   between-observer variance along the group's mean curve (observers whose
   after-effects differ in size move every cell together;
-  :func:`curve_between_covariance`, ``fit``'s ``between="curve"``), and
+  :func:`curve_between_covariance`, ``between="curve"``), and
   ``D`` the group standard errors implied by the group intervals
   (``(high - low) / (2 t_{n-1})``); ``dof`` = n - 1 tells ``compare`` to
   read the standardised residuals against t, not normal, quantiles.
-  Without the curve part the group χ² rejected the truth in up to 10 % of
-  simulated groups at 40 trials per condition, with it 3-7 %.
-  ``between=True`` adds instead the whole between-observer covariance
+  Without the curve part the group χ² rejected the truth in up to 10.9 %
+  of simulated groups at 40 trials per condition, with it in up to 9 %.
+  ``between="cells"`` adds instead the whole between-observer covariance
   across cells (method of moments): measured and not used, because with
   3-8 observers its noisy estimate makes the χ² reject the truth in 16-36 %
   of groups (``benchmarks/README.md``).
@@ -168,15 +168,22 @@ def curve_between_covariance(shifts: np.ndarray, within: list[np.ndarray]) -> np
     return tau2 * np.outer(u, u)
 
 
+#: What a group covariance adds to the observers' own: nothing, the curve part (``fit``), every cell pair.
+BETWEEN_PARTS = ("none", "curve", "cells")
+
+
 def group_covariance(analyses, group_shifts: pd.DataFrame, weights: pd.DataFrame,
-                     level: float, between: bool | str = False) -> pd.DataFrame | None:
+                     level: float, between: str = "curve") -> pd.DataFrame | None:
     """Long covariance table of the group shifts (see the module text).
 
-    ``between``: False (the observers' own covariances only), ``"curve"``
-    (with the between-observer variance along the group's mean curve;
-    ``fit`` uses this) or True (with the whole method-of-moments
-    between-observer covariance; a measured candidate).
+    ``between``: ``"curve"`` (the observers' own covariances and the
+    between-observer variance along the group's mean curve; ``fit``'s
+    rule), ``"none"`` (their own covariances only) or ``"cells"`` (with the
+    whole method-of-moments between-observer covariance; a measured
+    candidate).
     """
+    if between not in BETWEEN_PARTS:
+        raise ValueError(f"between: expected one of {BETWEEN_PARTS}, got {between!r}")
     if group_shifts is None or not len(group_shifts):
         return None
     cells = list(zip(group_shifts["lag"].astype(float), group_shifts["adapter_offset_deg"].astype(float)))
@@ -203,10 +210,9 @@ def group_covariance(analyses, group_shifts: pd.DataFrame, weights: pd.DataFrame
     n_obs = len(own_cov)
     if n_obs < 2:
         return None
-    if between == "curve":
-        t = curve_between_covariance(np.array(values), own_cov)
-    else:
-        t = between_observer_covariance(np.array(values), own_cov) if between else np.zeros((p, p))
+    parts = {"none": lambda y, c: np.zeros((p, p)), "curve": curve_between_covariance,
+             "cells": between_observer_covariance}
+    t = parts[between](np.array(values), own_cov)
     within = sum(np.outer(w, w) * np.nan_to_num(c + t) for w, c in zip(own_w, own_cov))
     sd = np.sqrt(np.diagonal(within))
     if not np.all(sd > 0):

@@ -357,8 +357,7 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
         extras["mixed_model"] = mixed_model(tables["aftereffect"], gnotes)
         if len(group["aftereffect"]):
             group["covariance"] = group_covariance(
-                analyses, group["aftereffect"], group_weights(tables["aftereffect"], opts.level), opts.level,
-                between="curve")
+                analyses, group["aftereffect"], group_weights(tables["aftereffect"], opts.level), opts.level)
         for k in ("pse", "aftereffect", "tuning", "decay"):
             tables[k] = pd.concat([tables[k], group[k]], ignore_index=True)
         if len(group["decay_detail"]):

@@ -36,7 +36,7 @@ def test_group_covariance_is_the_covariance_of_the_weighted_mean_of_independent_
     weights = pd.DataFrame(w, index=["o1", "o2"], columns=pd.MultiIndex.from_tuples(CELLS))
     group = _group_rows([1.0, 2.0, 3.0])
     table = group_covariance([_observer("o1", reps[0], [0, 0, 0]), _observer("o2", reps[1], [0, 0, 0])],
-                             group, weights, 0.95)
+                             group, weights, 0.95, between="none")
     cov, replicates, dof = covariance_matrix(table, "group", [c[0] for c in CELLS], [c[1] for c in CELLS])[:3]
     # reference: numpy's correlation of the weighted mean of the two independent sets of draws
     mean = w[0] * reps[0] + w[1] * reps[1]
@@ -104,9 +104,9 @@ def test_group_covariance_with_the_curve_part_widens_only_along_the_group_curve(
                            columns=pd.MultiIndex.from_tuples(CELLS))
     group = _group_rows([1.0, 1.0, 1.0])
     cells = [c[0] for c in CELLS], [c[1] for c in CELLS]
-    plain = covariance_matrix(group_covariance(observers, group, weights, 0.95), "group", *cells).matrix
-    curve = covariance_matrix(group_covariance(observers, group, weights, 0.95, between="curve"), "group",
+    plain = covariance_matrix(group_covariance(observers, group, weights, 0.95, between="none"), "group",
                               *cells).matrix
+    curve = covariance_matrix(group_covariance(observers, group, weights, 0.95), "group", *cells).matrix
     u = np.array([-2.0, 2.0, 1.0]) / 3.0
     # the same standard errors (the group intervals'); the curve direction now carries most of the variance
     np.testing.assert_allclose(np.diagonal(curve), np.diagonal(plain))
