@@ -408,11 +408,12 @@ def pooled_groups(results, boot, sizes, pop: dict, level: float = 0.95, partitio
             rejected[f"{label}: GLS gain of the group shifts"].append(
                 (a.chi2_p < 0.05, a.chi2, a.dof, a.gain_ci_low <= 1.0 <= a.gain_ci_high))
             weights = group_weights(sub["aftereffect"], level)
-            matrix_b, matrix_o = (covariance_matrix(group_covariance(fake, g_ae, weights, level, between=kind),
-                                                    GROUP, g_ae["lag"], g_ae["adapter_offset_deg"]).matrix
-                                  for kind in ("cells", "none"))
+            matrix_b, matrix_o, matrix_d = (
+                covariance_matrix(group_covariance(fake, g_ae, weights, level, between=kind),
+                                  GROUP, g_ae["lag"], g_ae["adapter_offset_deg"]).matrix
+                for kind in ("cells", "none", size_and_decay_between))
             for name, rej in group_chi2_candidates(sub["aftereffect"], g_ae, matrix, dof, np.asarray(pred),
-                                                   level, matrix_b, matrix_o).items():
+                                                   level, matrix_b, matrix_o, matrix_d).items():
                 rejected[f"{label}: {name}"].append(rej)
                 independent[f"{label}: {name}"] = independent[label]
     return units, rejected, independent
@@ -425,8 +426,27 @@ def _wide(shifts: pd.DataFrame, col: str, cells) -> np.ndarray:
     return table.to_numpy(float)[:, [where[c] for c in cells]]
 
 
+def size_and_decay_between(shifts, within, cells) -> np.ndarray:
+    """Candidate: the between-observer covariance in the plane of the mean curve ``m`` and ``lag · m``.
+
+    A gain per observer moves the cells along ``m``; a decay constant per
+    observer along ``lag · m`` (the derivative of ``exp(-lag / τ)`` in
+    ``1/τ``).  Method of moments in that plane (the observers' 2 × 2 sample
+    covariance of their projections less their mean own covariance there),
+    clipped to positive semi-definite.
+    """
+    y = np.asarray(shifts, float)
+    m = np.nanmean(y, axis=0)
+    lags = np.array([c[0] for c in cells], float)
+    q, _ = np.linalg.qr(np.nan_to_num(np.column_stack([m, lags * m])))
+    d = np.nan_to_num(y - m) @ q
+    t = d.T @ d / (y.shape[0] - 1) - np.mean([q.T @ np.nan_to_num(c) @ q for c in within], axis=0)
+    vals, vecs = np.linalg.eigh(t)
+    return q @ ((vecs * np.clip(vals, 0.0, None)) @ vecs.T) @ q.T
+
+
 def group_chi2_candidates(shifts, g_ae, matrix, dof, pred, level: float = 0.95, between_matrix=None,
-                          own_matrix=None) -> dict:
+                          own_matrix=None, plane_matrix=None) -> dict:
     """The group χ² under candidate alternatives, as ``{name: (rejected, chi2, df, gain CI holds 1)}``.
 
     ``matrix`` is ``fit``'s group covariance (``between="curve"``, the default).
@@ -436,6 +456,8 @@ def group_chi2_candidates(shifts, g_ae, matrix, dof, pred, level: float = 0.95, 
     * ``own_matrix``: the group correlation from the observers' own
       covariances alone (``between="none"``; ``fit``'s rule before the
       seventh session);
+    * ``plane_matrix``: with the between-observer covariance in the plane of
+      the curve's size and decay (:func:`size_and_decay_between`);
 
     * the plain Hartung–Knapp standard errors, without the fixed-effect floor
       (:func:`fitting.meta.random_effects` with ``floor=False``), with the
@@ -465,7 +487,8 @@ def group_chi2_candidates(shifts, g_ae, matrix, dof, pred, level: float = 0.95, 
     p_flip = float(np.mean(t >= t[0] * (1 - 1e-12)))                   # row 0: all signs +1, the data
     out = {}
     for name, other in (("correlation with between-observer covariance", between_matrix),
-                        ("correlation from the observers' own covariances (before)", own_matrix)):
+                        ("correlation from the observers' own covariances (before)", own_matrix),
+                        ("correlation with between-observer covariance of size and decay", plane_matrix)):
         if other is not None:
             b = agreement(est, g_ae["ci_low"], g_ae["ci_high"], pred, None, other, np.nan, dof)
             out[name] = (b.chi2_p < 0.05, b.chi2, b.dof, b.gain_ci_low <= 1.0 <= b.gain_ci_high)

@@ -178,11 +178,12 @@ def group_covariance(analyses, group_shifts: pd.DataFrame, weights: pd.DataFrame
 
     ``between``: ``"curve"`` (the observers' own covariances and the
     between-observer variance along the group's mean curve; ``fit``'s
-    rule), ``"none"`` (their own covariances only) or ``"cells"`` (with the
+    rule), ``"none"`` (their own covariances only), ``"cells"`` (with the
     whole method-of-moments between-observer covariance; a measured
-    candidate).
+    candidate), or a function ``(shifts, within, cells) -> (cells, cells)``
+    giving the between-observer part (benchmark candidates).
     """
-    if between not in BETWEEN_PARTS:
+    if not callable(between) and between not in BETWEEN_PARTS:
         raise ValueError(f"between: expected one of {BETWEEN_PARTS}, got {between!r}")
     if group_shifts is None or not len(group_shifts):
         return None
@@ -212,7 +213,7 @@ def group_covariance(analyses, group_shifts: pd.DataFrame, weights: pd.DataFrame
         return None
     parts = {"none": lambda y, c: np.zeros((p, p)), "curve": curve_between_covariance,
              "cells": between_observer_covariance}
-    t = parts[between](np.array(values), own_cov)
+    t = between(np.array(values), own_cov, cells) if callable(between) else parts[between](np.array(values), own_cov)
     within = sum(np.outer(w, w) * np.nan_to_num(c + t) for w, c in zip(own_w, own_cov))
     sd = np.sqrt(np.diagonal(within))
     if not np.all(sd > 0):
