@@ -39,6 +39,7 @@ covariance_deg2, replicates, dof, spread_dof, shift_parameters``
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from typing import NamedTuple
 
 import numpy as np
@@ -173,7 +174,7 @@ BETWEEN_PARTS = ("none", "curve", "cells")
 
 
 def group_covariance(analyses, group_shifts: pd.DataFrame, weights: pd.DataFrame,
-                     level: float, between: str = "curve") -> pd.DataFrame | None:
+                     level: float, between: str | Callable = "curve") -> pd.DataFrame | None:
     """Long covariance table of the group shifts (see the module text).
 
     ``between``: ``"curve"`` (the observers' own covariances and the

@@ -3,6 +3,7 @@
 from types import SimpleNamespace
 
 import numpy as np
+import pytest
 import pandas as pd
 from scipy import special
 
@@ -113,3 +114,5 @@ def test_group_covariance_with_the_curve_part_widens_only_along_the_group_curve(
     assert u @ curve @ u > 2.5 * (u @ plain @ u)
     top = np.linalg.eigh(curve)[1][:, -1]
     assert abs(top @ u) > 0.95                                                # its leading direction
+    with pytest.raises(ValueError, match="between"):
+        group_covariance(observers, group, weights, 0.95, between="all")
