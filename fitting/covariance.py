@@ -170,7 +170,8 @@ def curve_between_covariance(shifts: np.ndarray, within: list[np.ndarray]) -> np
 
 
 #: What a group covariance adds to the observers' own: nothing, the curve part (``fit``), every cell pair.
-BETWEEN_PARTS = ("none", "curve", "cells")
+_BETWEEN = {"none": lambda y, within: np.zeros((y.shape[1], y.shape[1])), "curve": curve_between_covariance,
+            "cells": between_observer_covariance}
 
 
 def group_covariance(analyses, group_shifts: pd.DataFrame, weights: pd.DataFrame,
@@ -184,8 +185,8 @@ def group_covariance(analyses, group_shifts: pd.DataFrame, weights: pd.DataFrame
     candidate), or a function ``(shifts, within, cells) -> (cells, cells)``
     giving the between-observer part (benchmark candidates).
     """
-    if not callable(between) and between not in BETWEEN_PARTS:
-        raise ValueError(f"between: expected one of {BETWEEN_PARTS}, got {between!r}")
+    if not callable(between) and between not in _BETWEEN:
+        raise ValueError(f"between: expected one of {tuple(_BETWEEN)}, got {between!r}")
     if group_shifts is None or not len(group_shifts):
         return None
     cells = list(zip(group_shifts["lag"].astype(float), group_shifts["adapter_offset_deg"].astype(float)))
@@ -212,9 +213,8 @@ def group_covariance(analyses, group_shifts: pd.DataFrame, weights: pd.DataFrame
     n_obs = len(own_cov)
     if n_obs < 2:
         return None
-    parts = {"none": lambda y, c: np.zeros((p, p)), "curve": curve_between_covariance,
-             "cells": between_observer_covariance}
-    t = between(np.array(values), own_cov, cells) if callable(between) else parts[between](np.array(values), own_cov)
+    y = np.array(values)
+    t = between(y, own_cov, cells) if callable(between) else _BETWEEN[between](y, own_cov)
     within = sum(np.outer(w, w) * np.nan_to_num(c + t) for w, c in zip(own_w, own_cov))
     sd = np.sqrt(np.diagonal(within))
     if not np.all(sd > 0):
