@@ -1,11 +1,20 @@
-"""`aftershift demo` leaves a clone clean: every committed file of results_demo/ comes back byte for byte.
+"""`aftershift demo` rewrites every committed file of results_demo/: tables byte for byte, figures as the same picture.
 
 The demo is run as a user runs it, from the root of a copy of the
 repository's results (default ``--out results_demo``), and the copy is then
-compared with what git holds: every tracked file must be byte-identical, and
-every other file the demo writes must be one the repository ignores (the
-sidecars, ``report_data.json`` and the report pages, which hold times and
-package versions).
+compared with what git holds: every tracked table and text must be
+byte-identical, every tracked figure the same picture, and every other file
+the demo writes must be one the repository ignores (the sidecars,
+``report_data.json`` and the report pages, which hold times and package
+versions).
+
+A figure is the same picture when its pixels differ by at most one grey
+level in at most 0.1 % of them: numpy's vectorised exp and log differ in
+the last bits between CPUs (with and without AVX-512), which moves an
+anti-aliased line by a shade.  Seen: 11 of 3 million pixels of one decay
+figure, by 1/255, on an AMD EPYC against the Intel machine that wrote the
+committed files, while every table came back byte for byte.  On the machine
+that wrote them the figures come back byte for byte as well.
 """
 
 from __future__ import annotations
@@ -15,7 +24,11 @@ import shutil
 import subprocess
 import sys
 
+from pathlib import Path
+
+import numpy as np
 import pytest
+from PIL import Image
 
 from conftest import ROOT, run_cli
 
@@ -33,8 +46,43 @@ def _tracked_demo_files() -> list[str]:
     return [p for p in done.stdout.split("\0") if p]
 
 
+def _same_file(written: Path, committed: Path) -> bool:
+    """Byte for byte; for a PNG, the same picture up to one grey level in 0.1 % of its pixels (see above)."""
+    if not written.is_file():
+        return False
+    if written.read_bytes() == committed.read_bytes():
+        return True
+    if committed.suffix != ".png":
+        return False
+    with Image.open(written) as a, Image.open(committed) as b:
+        if a.size != b.size or a.mode != b.mode:
+            return False
+        diff = np.abs(np.asarray(a, dtype=int) - np.asarray(b, dtype=int))
+    if diff.ndim == 3:
+        diff = diff.max(axis=2)
+    return int(diff.max()) <= 1 and np.count_nonzero(diff) <= 0.001 * diff.size
+
+
+def test_a_figure_that_differs_by_more_than_a_shade_is_a_changed_file(tmp_path):
+    picture = np.full((40, 50, 3), 200, dtype=np.uint8)
+    Image.fromarray(picture).save(tmp_path / "a.png")
+    shade = picture.copy()
+    shade[3, 4] += 1                                     # one pixel one level lighter: the same figure
+    Image.fromarray(shade).save(tmp_path / "b.png")
+    moved = picture.copy()
+    moved[3, 4] += 2                                     # two levels: a changed figure
+    Image.fromarray(moved).save(tmp_path / "c.png")
+    spread = picture.copy()
+    spread[:5] += 1                                      # 10 % of the pixels: a changed figure
+    Image.fromarray(spread).save(tmp_path / "d.png")
+    assert _same_file(tmp_path / "b.png", tmp_path / "a.png")
+    assert not _same_file(tmp_path / "c.png", tmp_path / "a.png")
+    assert not _same_file(tmp_path / "d.png", tmp_path / "a.png")
+    assert not _same_file(tmp_path / "missing.png", tmp_path / "a.png")
+
+
 @pytest.mark.slow
-def test_the_demo_rewrites_the_committed_files_byte_for_byte(tmp_path):
+def test_the_demo_rewrites_the_committed_tables_and_figures(tmp_path):
     tracked = _tracked_demo_files()
     assert tracked, "results_demo/ holds no committed file"
     shutil.copytree(ROOT / "results_demo", tmp_path / "results_demo")
@@ -42,8 +90,7 @@ def test_the_demo_rewrites_the_committed_files_byte_for_byte(tmp_path):
                           timeout=600, env={**os.environ, "PYTHONPATH": str(ROOT)})
     assert done.returncode == 0, done.stderr
     assert (tmp_path / "results_demo" / "compare" / "report.html").is_file()
-    changed = [p for p in tracked
-               if not (tmp_path / p).is_file() or (tmp_path / p).read_bytes() != (ROOT / p).read_bytes()]
+    changed = [p for p in tracked if not _same_file(tmp_path / p, ROOT / p)]
     assert changed == [], f"the demo changed committed files: {changed}"
     written = sorted(p.relative_to(tmp_path).as_posix() for p in (tmp_path / "results_demo").rglob("*") if p.is_file())
     untracked = [p for p in written if p not in set(tracked)]
