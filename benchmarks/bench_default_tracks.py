@@ -32,6 +32,7 @@ reach PSE efficiency ≥ 0.85 in both λ rows.
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import math
 import os
 import sys
@@ -69,7 +70,7 @@ CANDIDATES = [
 
 
 class ScratchEntropyTrack(EntropyTrack):
-    """Four Bayesian variants tried against the default and not adopted (benchmark only).
+    """Five Bayesian variants tried against the default and not adopted (benchmark only).
 
     ``switch_after``: least expected entropy for the first K trials of the
     track, then the level nearest the posterior mean of the PSE;
@@ -77,11 +78,17 @@ class ScratchEntropyTrack(EntropyTrack):
     ``near_spreads``: least expected entropy among the levels within K
     posterior-mean spreads of the posterior mean of the PSE;
     ``min_variance``: least expected posterior variance of the PSE marginal
-    (the minimum-variance rule of King-Smith et al., 1994).
+    (the minimum-variance rule of King-Smith et al., 1994);
+    ``posterior_lapse``: the posterior's lapse held at this one value
+    instead of spanning the grid's lapse rates (the entropy rule then has no
+    lapse to learn from far levels).
     """
 
     def __init__(self, switch_after: int | None = None, pse_prior_sd: float | None = None,
-                 near_spreads: float | None = None, min_variance: bool = False, **kw):
+                 near_spreads: float | None = None, min_variance: bool = False,
+                 posterior_lapse: float | None = None, **kw):
+        if posterior_lapse is not None:
+            kw["grid"] = dataclasses.replace(kw["grid"], lapses=(posterior_lapse,))
         super().__init__(**kw)
         self.switch_after = switch_after
         self.near_spreads = near_spreads
@@ -118,7 +125,7 @@ class ScratchEntropyTrack(EntropyTrack):
         return super().next_level()
 
 
-SCRATCH = ("switch_after", "pse_prior_sd", "near_spreads", "min_variance")
+SCRATCH = ("switch_after", "pse_prior_sd", "near_spreads", "min_variance", "posterior_lapse")
 
 
 def _track(settings: dict, n: int, t: int):
@@ -135,7 +142,9 @@ SCRATCH_ROWS = [(f"bayesian, entropy for {k} trials then posterior mean (scratch
     (f"bayesian, Gaussian PSE prior SD {sd:g}° (scratch)", dict(method="bayesian", pse_prior_sd=sd)) for sd in (6.0, 10.0)] + [
     (f"bayesian, entropy among levels within {k:g} spreads of the PSE (scratch)",
      dict(method="bayesian", near_spreads=k)) for k in (0.5, 1.0)] + [
-    ("bayesian, least expected posterior variance of the PSE (scratch)", dict(method="bayesian", min_variance=True))]
+    ("bayesian, least expected posterior variance of the PSE (scratch)", dict(method="bayesian", min_variance=True))] + [
+    (f"bayesian, posterior lapse held at {lam:g} (scratch)", dict(method="bayesian", posterior_lapse=lam))
+    for lam in (0.0, 0.02)]
 
 
 def simulate(settings: dict, mus, lapse: float, seeds, spread: float = SPREAD,
@@ -228,7 +237,7 @@ def main() -> None:
     ap.add_argument("--scratch", action="store_true",
                     help="also the Bayesian variants tried and not adopted (posterior mean after K entropy "
                          "trials; a Gaussian prior on the PSE; entropy among levels near the PSE; least "
-                         "expected PSE variance)")
+                         "expected PSE variance; the posterior's lapse held at one value)")
     ap.add_argument("--only", nargs="+", help="only the rows whose label holds one of these words")
     args = ap.parse_args()
     defaults = ProcedureSettings()
