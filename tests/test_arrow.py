@@ -83,7 +83,7 @@ def _assert_least_squares_minimum_norm(h, g, x):
 def test_a_matrix_whose_svd_may_not_converge_still_gets_the_least_squares_solution():
     # A Newton step's Hessian (26 of its 35 rows) from the pilot of the log below, with entries from
     # 1e-174 to 4e3.  numpy 2.3's pinv raised "SVD did not converge" on it (LAPACK gesdd) on the Intel
-    # machine it came from, and not on an AMD EPYC with AVX-512: whichever path runs, the answer is the
+    # machine it came from, and not on an AMD EPYC: whichever path runs, the answer is the
     # minimum-norm least-squares solution.
     d = np.load(ROOT / "tests" / "data" / "hessian_svd_fails.npz")
     h, g = d["h"], d["g"]

@@ -9,8 +9,8 @@ the demo writes must be one the repository ignores (the sidecars,
 versions).
 
 A figure is the same picture when its pixels differ by at most one grey
-level in at most 0.1 % of them: numpy's vectorised exp and log differ in
-the last bits between CPUs (with and without AVX-512), which moves an
+level in at most 0.1 % of them: numpy and OpenBLAS choose vectorised code
+by CPU and it rounds differently in the last bits, which moves an
 anti-aliased line by a shade.  Seen: 11 of 3 million pixels of one decay
 figure, by 1/255, on an AMD EPYC against the Intel machine that wrote the
 committed files, while every table came back byte for byte.  On the machine

@@ -111,3 +111,11 @@ def test_format_table_is_plain_and_stable():
     df = pd.DataFrame({"a": [1.0, np.nan, -0.0], "b": pd.array([1, None, 3], dtype="Int64"),
                        "c": ["x", "y", "z"]})
     assert format_table(df) == "a,b,c\n1,1,x\n,,y\n0,3,z\n"
+
+
+def test_floating_point_residue_is_written_as_zero_but_tiny_p_values_are_kept():
+    # a PSE zero by symmetry came out as 2.74107e-16 with numpy's AVX-512 paths and 3.9933e-16 without them
+    df = pd.DataFrame({"pse_deg": [2.74107e-16, -3.9933e-16, 1.5e-9, 2.24399],
+                       "gof_p": [1e-87, 0.5, 2e-16, 1.0], "p_value": [3e-20, 0.01, 0.2, 1.0]})
+    assert format_table(df) == ("pse_deg,gof_p,p_value\n0,1e-87,3e-20\n0,0.5,0.01\n"
+                                "1.5e-09,2e-16,0.2\n2.24399,1,1\n")
