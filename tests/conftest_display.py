@@ -35,8 +35,8 @@ class XServer:
         # -r: no key autorepeat.  xdotool presses a key with XTEST when the window has the focus and may
         # release it with XSendEvent when the window has gone meanwhile (the Escape that ends a program),
         # so the server can keep that key down and repeat it into the next program's window, which then
-        # sees an Escape nobody typed (seen: the resumed measurement screen stopped at once, 2 runs in 24
-        # under load, its window having the first one's id).
+        # sees an Escape nobody typed (seen: the resumed measurement screen stopped at once in 3 runs of 42
+        # under load, its window having the first one's id; none in 60 with -r).
         self.process = subprocess.Popen(
             ["Xvfb", "-displayfd", str(write_end), "-screen", "0", SCREEN, "-nolisten", "tcp", "-noreset", "-r"],
             pass_fds=(write_end,), stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
