@@ -206,9 +206,9 @@ def match_predictions(measured: pd.DataFrame, predictions: pd.DataFrame, source:
 
 #: How far to trust the χ² p-values: measured by ``benchmarks/bench_coverage.py`` (benchmarks/README.md).
 CHI2_CAVEAT = ("chi2 p-values: with the true after-effect curve as the prediction, simulated single observers were "
-               "rejected at the 5 % level in 5.5-7.4 % of cases with up-down tracks and 2.5-3.4 % with Bayesian tracks "
-               "(24-40 trials per condition), groups of 3 and of 8 observers in 3-9 % with up-down tracks and up to "
-               "13 % with Bayesian tracks at 40 trials (target 3-8 %; "
+               "rejected at the 5 % level in 5.5-7.4 % of cases with up-down tracks and 1.9-3.8 % with Bayesian tracks "
+               "(24-40 trials per condition), groups of 3 and of 8 observers in 3-8 % with up-down tracks and up to "
+               "9.5 % with Bayesian tracks at 40 trials (target 3-8 %; "
                "benchmarks/bench_coverage.py); read p just under 0.05 as a prompt to look, and weigh whether the "
                "observers' own rows agree")
 
