@@ -74,6 +74,7 @@ from fitting.bootstrap import percentile_interval  # noqa: E402
 from fitting.observer import BY_STATISTIC, INTERVAL_METHODS, decay_interval, pse_shift_intervals  # noqa: E402
 from fitting.compare import agreement, combine_gains, compare_results, gls_gain  # noqa: E402
 from fitting.covariance import covariance_matrix, group_covariance  # noqa: E402
+from fitting.group_chi2 import GroupData, calibrated_p  # noqa: E402
 from fitting.meta import random_effects, variance_from_interval  # noqa: E402
 from fitting.group import GROUP, group_aftereffect, group_curves, group_pse, group_weights  # noqa: E402
 from fitting.psychometric import DEFAULT_LAPSE_MAX  # noqa: E402
@@ -394,6 +395,12 @@ def pooled_groups(results, boot, sizes, pop: dict, level: float = 0.95, partitio
             matrix, _, dof = covariance_matrix(cov, GROUP, g_ae["lag"], g_ae["adapter_offset_deg"])[:3]
             pred = [pop["shift"][(float(lag), float(o))] for lag, o in zip(g_ae["lag"], g_ae["adapter_offset_deg"])]
             a = agreement(g_ae["pse_shift_deg"], g_ae["ci_low"], g_ae["ci_high"], pred, None, matrix, np.nan, dof)
+            # compare's p value: from simulated groups (fitting.group_chi2), as compare_results computes it
+            cells = list(zip(g_ae["lag"].astype(float), g_ae["adapter_offset_deg"].astype(float)))
+            data = GroupData.from_tables(sub["aftereffect"], {o.observer: np.cov(o.curves["shift_reps"], rowvar=False)
+                                                              for o in fake}, cells, level)
+            (_, p_sim), = calibrated_p(data, pred)
+            (_, p_curve), = calibrated_p(data, pred, between="curve")
             # the group gain as compare gives it: the observers' own gains (against the same predictions), combined
             gains = []
             for o in fake:
@@ -404,9 +411,16 @@ def pooled_groups(results, boot, sizes, pop: dict, level: float = 0.95, partitio
                                 np.cov(reps_o, rowvar=False), reps_o.shape[0], np.nan, trials=ae["n_trials"])
                 gains.append((own.gain, own.gain_se))
             _, g_low, g_high = combine_gains(*zip(*gains))
-            rejected[label].append((a.chi2_p < 0.05, a.chi2, a.dof, g_low <= 1.0 <= g_high))
+            rejected[label].append((p_sim < 0.05, a.chi2, a.dof, g_low <= 1.0 <= g_high))
             rejected[f"{label}: GLS gain of the group shifts"].append(
-                (a.chi2_p < 0.05, a.chi2, a.dof, a.gain_ci_low <= 1.0 <= a.gain_ci_high))
+                (p_sim < 0.05, a.chi2, a.dof, a.gain_ci_low <= 1.0 <= a.gain_ci_high))
+            rejected[f"{label}: t-read normal scores against chi2 (before)"].append(
+                (a.chi2_p < 0.05, a.chi2, a.dof, np.nan))
+            rejected[f"{label}: simulated, between-observer part along the curve only"].append(
+                (p_curve < 0.05, a.chi2, a.dof, np.nan))
+            for name in ("t-read normal scores against chi2 (before)",
+                         "simulated, between-observer part along the curve only"):
+                independent[f"{label}: {name}"] = independent[label]
             weights = group_weights(sub["aftereffect"], level)
             matrix_b, matrix_o, matrix_d = (
                 covariance_matrix(group_covariance(fake, g_ae, weights, level, between=kind),

@@ -31,7 +31,9 @@ covariance_deg2, replicates, dof, spread_dof, shift_parameters``
   read the standardised residuals against t, not normal, quantiles.
   At 40 trials per condition simulated groups of 3 rejected the truth in
   10.3 % (up–down tracks, 1,056 observers) and 11.2 % (Bayesian, 264)
-  without the curve part, and in 8.0 % and 9.5 % with it.
+  without the curve part, and in 8.0 % and 9.5 % with it, reading χ²(n);
+  ``compare`` now reads the group's p value from groups simulated from
+  the observers' rows of this file instead (:mod:`fitting.group_chi2`).
   ``between="cells"`` adds instead the whole between-observer covariance
   across cells (method of moments): measured and not used, because with
   3-8 observers its noisy estimate makes the χ² reject the truth in 16-36 %
@@ -134,7 +136,7 @@ def between_observer_covariance(shifts: np.ndarray, within: list[np.ndarray]) ->
     return (vecs * np.clip(vals, 0.0, None)) @ vecs.T
 
 
-def curve_between_covariance(shifts: np.ndarray, within: list[np.ndarray]) -> np.ndarray:
+def curve_between_covariance(shifts: np.ndarray, within) -> np.ndarray:
     """Between-observer covariance along the observers' mean curve only (rank one).
 
     Observers whose after-effects differ mainly in size (a gain per
@@ -149,25 +151,48 @@ def curve_between_covariance(shifts: np.ndarray, within: list[np.ndarray]) -> np
 
     Parameters
     ----------
-    shifts : ndarray (observers, cells)
-        The observers' shifts; NaN where an observer lacks a cell.
-    within : list of ndarray (cells, cells)
+    shifts : ndarray (..., observers, cells)
+        The observers' shifts; NaN where an observer lacks a cell.  Leading
+        axes hold independent sets (simulated ones, :mod:`fitting.group_chi2`).
+    within : array_like (observers, cells, cells)
         Each observer's covariance of its own errors (NaN entries: none).
 
     Returns
     -------
-    ndarray (cells, cells)
+    ndarray (..., cells, cells)
     """
     y = np.asarray(shifts, float)
-    m = np.nanmean(y, axis=0)
-    norm = float(np.sqrt(np.nansum(m * m)))
-    if y.shape[0] < 2 or norm == 0.0:
-        return np.zeros((y.shape[1], y.shape[1]))
-    u = np.nan_to_num(m / norm)
-    proj = np.nan_to_num(y - m) @ u
-    own = [float(u @ np.nan_to_num(c) @ u) for c in within]
-    tau2 = max(0.0, float(np.sum(proj ** 2) / (y.shape[0] - 1)) - float(np.mean(own)))
-    return tau2 * np.outer(u, u)
+    c = np.nan_to_num(np.asarray(within, float))
+    k, p = y.shape[-2:]
+    m = np.nanmean(y, axis=-2)
+    norm = np.sqrt(np.nansum(m * m, axis=-1, keepdims=True))
+    if k < 2:
+        return np.zeros(y.shape[:-2] + (p, p))
+    u = np.nan_to_num(m / np.where(norm > 0, norm, np.inf))
+    proj = np.einsum("...kp,...p->...k", np.nan_to_num(y - m[..., None, :]), u)
+    own = np.einsum("...p,kpq,...q->...k", u, c, u)
+    tau2 = np.maximum(0.0, np.sum(proj ** 2, axis=-1) / (k - 1) - own.mean(axis=-1))
+    return tau2[..., None, None] * u[..., :, None] * u[..., None, :]
+
+
+def weighted_mean_correlation(weights, within, between):
+    """Correlation across cells of the weighted mean ``sum_i w_i y_i`` of the observers.
+
+    Each observer's errors have covariance ``within[i] + between`` (its own
+    and the between-observer part); ``weights`` (..., observers, cells) are
+    the normalised random-effects weights (0 where an observer lacks a cell).
+
+    Returns
+    -------
+    ndarray (..., cells, cells), or None where a cell has no variance.
+    """
+    w = np.asarray(weights, float)
+    cov = (np.einsum("...kp,...kq,kpq->...pq", w, w, np.nan_to_num(np.asarray(within, float)))
+           + np.einsum("...kp,...kq->...pq", w, w) * between)
+    sd = np.sqrt(np.einsum("...pp->...p", cov))
+    if not np.all(sd > 0):
+        return None
+    return cov / (sd[..., :, None] * sd[..., None, :])
 
 
 #: What a group covariance adds to the observers' own: nothing, the curve part (``fit``), every cell pair.
@@ -216,11 +241,9 @@ def group_covariance(analyses, group_shifts: pd.DataFrame, weights: pd.DataFrame
         return None
     y = np.array(values)
     t = between(y, own_cov, cells) if callable(between) else _BETWEEN[between](y, own_cov)
-    within = sum(np.outer(w, w) * np.nan_to_num(c + t) for w, c in zip(own_w, own_cov))
-    sd = np.sqrt(np.diagonal(within))
-    if not np.all(sd > 0):
+    corr = weighted_mean_correlation(np.array(own_w), np.array(own_cov), t)
+    if corr is None:
         return None
-    corr = within / np.outer(sd, sd)
     dof = max(n_obs - 1, 1)
     q = special.stdtrit(dof, 0.5 + level / 2.0)
     se = (group_shifts["ci_high"].to_numpy(float) - group_shifts["ci_low"].to_numpy(float)) / (2 * q)

@@ -7,7 +7,8 @@ from scipy import stats
 from statsmodels.stats.meta_analysis import combine_effects
 
 from fitting import fit_logs
-from fitting.compare import agreement, gls_gain, normal_scores
+from fitting.compare import agreement, gls_gain
+from fitting.scores import normal_scores
 from fitting.flags import condense, join
 from fitting.meta import random_effects, variance_from_interval
 from fitting.synthetic import ObserverModel, simulate_trials, write_log
@@ -320,13 +321,13 @@ def test_compare_uses_the_covariance_file_and_refuses_a_corrupt_one(tmp_path, ca
     assert main(["compare", str(tmp_path / "out"), str(tmp_path / "pred.csv"), "--out", str(tmp_path / "c")]) == 0
     table = pd.read_csv(tmp_path / "c" / "agreement.csv")
     assert set(table["covariance"]) == {"full"}
-    # observers: chi2 / n read against F(n, spread_dof) (scipy.stats.f); the group: chi2 on n df
+    # observers: chi2 / n read against F(n, spread_dof) (scipy.stats.f); the group: from simulated groups
     written = pd.read_csv(tmp_path / "out" / "aftereffect_covariance.csv")
     for row in table[(table["lag"] == "all") & table["chi2"].notna()].itertuples():
         nu = written.loc[written["observer"] == row.observer, "spread_dof"].iloc[0]
         if row.observer == "group":
-            assert np.isnan(nu) and row.chi2_reference == f"chi2({int(row.dof)})"
-            assert row.chi2_p == pytest.approx(stats.chi2.sf(row.chi2, row.dof), rel=1e-4)
+            assert np.isnan(nu) and row.chi2_reference == "simulated (2000 groups)"
+            assert 0.9999 / 2001 <= row.chi2_p <= 1                         # (1 + #) / (1 + draws)
         else:
             assert nu > 1 and row.chi2_reference == f"F({int(row.dof)}, {nu:.1f})"
             assert row.chi2_p == pytest.approx(stats.f.sf(row.chi2 / row.dof, row.dof, nu), rel=1e-4)
