@@ -343,6 +343,25 @@ def test_compare_uses_the_covariance_file_and_refuses_a_corrupt_one(tmp_path, ca
     assert len(err.splitlines()) == 1 and "aftereffect_covariance.csv" in err and "line 2" in err
 
 
+def test_compare_says_when_the_group_p_cannot_be_simulated(tmp_path):
+    """An observer's covariance rows gone: the group's p falls back to chi2(n) (scipy.stats), with a note."""
+    from fitting.compare import compare_results
+
+    _degenerate_logs(tmp_path)
+    fit_logs([str(tmp_path)], str(tmp_path / "out"), n_boot=100, seed=1, figures=False, progress=False)
+    pd.DataFrame({"lag": [0, 0], "adapter_offset_deg": [-30, 30], "pse_shift_deg": [-1.0, 1.0]}).to_csv(
+        tmp_path / "pred.csv", index=False)
+    path = tmp_path / "out" / "aftereffect_covariance.csv"
+    written = pd.read_csv(path)
+    first = sorted(set(written["observer"]) - {"group"})[0]
+    written[written["observer"] != first].to_csv(path, index=False)
+    result = compare_results(tmp_path / "out", tmp_path / "pred.csv", tmp_path / "c", figures=False)
+    row = result.table[(result.table["observer"] == "group") & (result.table["lag"] == "all")].iloc[0]
+    assert row.chi2_reference == f"chi2({int(row.dof)})"
+    assert row.chi2_p == pytest.approx(stats.chi2.sf(row.chi2, row.dof), rel=1e-9)
+    assert any(n.startswith("group: an observer's shifts lack their covariance") for n in result.notes)
+
+
 @pytest.mark.parametrize("column, value, says", [
     ("covariance_deg2", "1e308", "not symmetric positive semi-definite"),   # a number, but no covariance
     ("covariance_deg2", "-5", "not symmetric positive semi-definite"),
