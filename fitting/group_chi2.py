@@ -220,7 +220,7 @@ def calibrated_p(data: GroupData, predicted, prediction_sd=None, selects=(None,)
     between_root = _root(null_between(data, between))
     own = [np.flatnonzero(row) for row in present]
     roots = [_root(data.within[i][np.ix_(cells, cells)]) for i, cells in enumerate(own)]
-    reached = np.zeros(len(selects))
+    reached, scored = np.zeros(len(selects)), np.zeros(len(selects))
     for start in range(0, draws, CHUNK):
         n = min(CHUNK, draws - start)
         sims = np.broadcast_to(pred, (n, k, p)).copy()
@@ -231,6 +231,10 @@ def calibrated_p(data: GroupData, predicted, prediction_sd=None, selects=(None,)
             sims[:, i, cells] += rng.standard_normal((n, cells.size)) @ root.T
         sims[:, ~present] = np.nan
         est, cov, dof = _group_estimates(data, sims, pvar)
-        reached += [np.sum(_score(est, cov, dof, pred, sel) >= x) for sel, x in zip(selects, observed)]
-    return [(x, float((1 + n) / (1 + draws)) if np.isfinite(x) else float("nan"))
-            for x, n in zip(observed, reached)]
+        for j, (sel, x) in enumerate(zip(selects, observed)):
+            simulated = _score(est, cov, dof, pred, sel)
+            reached[j] += np.sum(simulated >= x)
+            scored[j] += np.sum(np.isfinite(simulated))
+    # a simulated group without a statistic (none expected) counts neither way
+    return [(x, float((1 + n) / (1 + m)) if np.isfinite(x) and m > 0 else float("nan"))
+            for x, n, m in zip(observed, reached, scored)]
