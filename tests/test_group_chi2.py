@@ -86,6 +86,19 @@ def test_groups_read_from_tables_keep_missing_cells_apart_and_need_every_covaria
     assert GroupData.from_tables(shifts, {**covs, "o2": None}, CELLS) is None
 
 
+def _false_rejections(seed, groups, gain_sd, cell_sd):
+    """Shares of groups of 3 rejected at 5 % with the truth predicted: (simulated p, χ²(n) from scipy.stats)."""
+    rng = np.random.default_rng(seed)
+    simulated, older = [], []
+    for _ in range(groups):
+        shifts, covs = _group(rng, 3, gain_sd=gain_sd, cell_sd=cell_sd)
+        data = GroupData.from_tables(shifts, covs, CELLS)
+        chi2, p = calibrated_p(data, CURVE, draws=400, seed=int(rng.integers(1 << 30)))[0]
+        simulated.append(p < 0.05)
+        older.append(stats.chi2.sf(chi2, len(CELLS)) < 0.05)
+    return float(np.mean(simulated)), float(np.mean(older))
+
+
 @pytest.mark.slow
 def test_true_predictions_are_rejected_at_about_the_nominal_rate():
     """Groups of 3 drawn from a normal random-effects model with the predictions as the population's shifts.
@@ -95,39 +108,20 @@ def test_true_predictions_are_rejected_at_about_the_nominal_rate():
     The between-observer variance is estimated from three observers each time, so the level is not
     exact; 1,000 groups give a Monte Carlo error of about 0.7 %.
     """
-    rng = np.random.default_rng(11)
-    rejected = []
-    for _ in range(1000):
-        shifts, covs = _group(rng, 3)
-        data = GroupData.from_tables(shifts, covs, CELLS)
-        rejected.append(calibrated_p(data, CURVE, draws=400, seed=int(rng.integers(1 << 30)))[0][1] < 0.05)
-    assert 0.03 <= np.mean(rejected) <= 0.08, np.mean(rejected)
+    simulated, _ = _false_rejections(11, 1000, 0.3, 0.3)
+    assert 0.03 <= simulated <= 0.08, simulated
 
 
 @pytest.mark.slow
 def test_large_between_observer_variation_no_longer_inflates_the_rejections():
-    """Where observers differ much (gain sd 0.6, 0.8° per cell), the t-read reading rejected true predictions
-    in about a fifth of groups of 3; the simulated p value stays near its level (χ² reference: scipy.stats)."""
-    rng = np.random.default_rng(12)
-    simulated, older = [], []
-    for _ in range(600):
-        shifts, covs = _group(rng, 3, gain_sd=0.6, cell_sd=0.8)
-        data = GroupData.from_tables(shifts, covs, CELLS)
-        chi2, p = calibrated_p(data, CURVE, draws=400, seed=int(rng.integers(1 << 30)))[0]
-        simulated.append(p < 0.05)
-        older.append(stats.chi2.sf(chi2, len(CELLS)) < 0.05)
-    assert np.mean(older) > 0.15 and np.mean(simulated) < 0.1, (np.mean(older), np.mean(simulated))
+    """Where observers differ much (gain sd 0.6, 0.8° per cell), the χ²(n) reading rejected true predictions
+    in about a fifth of groups of 3; the simulated p value stays near its level."""
+    simulated, older = _false_rejections(12, 600, 0.6, 0.8)
+    assert older > 0.15 and simulated < 0.1, (older, simulated)
 
 
 @pytest.mark.slow
 def test_without_between_observer_variation_the_chi2_reading_was_conservative():
-    """Observers who differ only by their own errors: χ²(n) under-rejects (scipy.stats), the simulated p does not."""
-    rng = np.random.default_rng(13)
-    simulated, older = [], []
-    for _ in range(600):
-        shifts, covs = _group(rng, 3, gain_sd=0.0, cell_sd=0.0)
-        data = GroupData.from_tables(shifts, covs, CELLS)
-        chi2, p = calibrated_p(data, CURVE, draws=400, seed=int(rng.integers(1 << 30)))[0]
-        simulated.append(p < 0.05)
-        older.append(stats.chi2.sf(chi2, len(CELLS)) < 0.05)
-    assert np.mean(older) < 0.03 and 0.03 <= np.mean(simulated) <= 0.08, (np.mean(older), np.mean(simulated))
+    """Observers who differ only by their own errors: χ²(n) under-rejects, the simulated p does not."""
+    simulated, older = _false_rejections(13, 600, 0.0, 0.0)
+    assert older < 0.03 and 0.03 <= simulated <= 0.08, (older, simulated)
