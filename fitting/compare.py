@@ -580,8 +580,9 @@ def compare_results(results_dir: str | Path, predictions_path: str | Path, out_d
         simulated = (_simulated_group_tests(points, cov_table, group, [g.index for _, g in parts])
                      if observer == GROUP and cov_table is not None else None)
         if observer == GROUP and cov_table is not None and simulated is None:
-            fallback = (f"{GROUP}: an observer's shifts lack their covariance in {COVARIANCE_FILE}, so the group's "
-                        "chi2 p is read from chi2(n), which rejects true predictions too often with few observers",)
+            fallback = (f"{GROUP}: the observers' own rows or their covariances in {COVARIANCE_FILE} are not all "
+                        "there, so the group's chi2 p is read from chi2(n), which rejects true predictions too often "
+                        "with few observers",)
         for (lag, g), calibrated in zip(parts, simulated or [None] * len(parts)):
             found = (NO_COVARIANCE if cov_table is None else
                      covariance_matrix(cov_table, observer, g["lag"], g["adapter_offset_deg"]))

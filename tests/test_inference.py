@@ -359,7 +359,7 @@ def test_compare_says_when_the_group_p_cannot_be_simulated(tmp_path):
     row = result.table[(result.table["observer"] == "group") & (result.table["lag"] == "all")].iloc[0]
     assert row.chi2_reference == f"chi2({int(row.dof)})"
     assert row.chi2_p == pytest.approx(stats.chi2.sf(row.chi2, row.dof), rel=1e-9)
-    assert any(n.startswith("group: an observer's shifts lack their covariance") for n in result.notes)
+    assert any(n.startswith("group: the observers' own rows or their covariances") for n in result.notes)
 
 
 @pytest.mark.parametrize("column, value, says", [
