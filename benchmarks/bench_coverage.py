@@ -401,6 +401,7 @@ def pooled_groups(results, boot, sizes, pop: dict, level: float = 0.95, partitio
                                                               for o in fake}, cells, level)
             (_, p_sim), = calibrated_p(data, pred)
             (_, p_curve), = calibrated_p(data, pred, between="curve")
+            (_, p_common), = calibrated_p(data, pred, between="curve and common excess")
             # the group gain as compare gives it: the observers' own gains (against the same predictions), combined
             gains = []
             for o in fake:
@@ -418,8 +419,11 @@ def pooled_groups(results, boot, sizes, pop: dict, level: float = 0.95, partitio
                 (a.chi2_p < 0.05, a.chi2, a.dof, np.nan))
             rejected[f"{label}: simulated, between-observer part along the curve only"].append(
                 (p_curve < 0.05, a.chi2, a.dof, np.nan))
+            rejected[f"{label}: simulated, curve part and one excess shared by the cells"].append(
+                (p_common < 0.05, a.chi2, a.dof, np.nan))
             for name in ("t-read normal scores against chi2 (before)",
-                         "simulated, between-observer part along the curve only"):
+                         "simulated, between-observer part along the curve only",
+                         "simulated, curve part and one excess shared by the cells"):
                 independent[f"{label}: {name}"] = independent[label]
             weights = group_weights(sub["aftereffect"], level)
             matrix_b, matrix_o, matrix_d = (

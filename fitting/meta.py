@@ -60,8 +60,12 @@ class Combined:
     weights: np.ndarray
 
 
-def dersimonian_laird(y, v):
-    """DerSimonian–Laird ``tau^2`` per column of ``y`` (k, S); NaN cells are left out."""
+def dersimonian_laird(y, v, clip: bool = True):
+    """DerSimonian–Laird ``tau^2`` per column of ``y`` (k, S); NaN cells are left out.
+
+    ``clip=False`` keeps the moment estimate's negative values (to be pooled
+    over columns before clipping, :mod:`fitting.group_chi2`).
+    """
     y, v = np.asarray(y, float), np.asarray(v, float)
     ok = np.isfinite(y) & np.isfinite(v) & (v > 0)
     w = np.where(ok, 1.0 / np.where(ok, v, 1.0), 0.0)
@@ -71,7 +75,8 @@ def dersimonian_laird(y, v):
     q = (w * (yy - fe) ** 2).sum(axis=0)
     k = ok.sum(axis=0)
     c = sw - (w * w).sum(axis=0) / np.where(sw > 0, sw, 1.0)
-    return np.where(c > 0, np.maximum(0.0, (q - (k - 1)) / np.where(c > 0, c, 1.0)), 0.0)
+    tau2 = np.where(c > 0, (q - (k - 1)) / np.where(c > 0, c, 1.0), 0.0)
+    return np.maximum(0.0, tau2) if clip else tau2
 
 
 def random_effects(y, v, level: float = 0.95, truncate: bool = False, floor: bool = True) -> Combined:

@@ -11,7 +11,7 @@ from fitting.compare import agreement
 from fitting.covariance import covariance_matrix, group_covariance
 from fitting.group import GROUP, group_aftereffect, group_weights
 from fitting.group_chi2 import GroupData, calibrated_p, group_statistic, null_between
-from fitting.meta import random_effects
+from fitting.meta import dersimonian_laird, random_effects
 
 CELLS = [(0, -30.0), (0, 30.0), (1, -30.0), (1, 30.0), (2, -30.0), (2, 30.0)]
 CURVE = np.array([-3.0, 3.0, -2.0, 2.0, -1.2, 1.2])
@@ -72,6 +72,24 @@ def test_the_null_model_adds_per_cell_variance_only_beyond_the_curve_part():
     np.testing.assert_allclose(both - np.diag(np.diagonal(both)), curve - np.diag(np.diagonal(curve)), atol=1e-12)
     with pytest.raises(ValueError, match="between"):
         null_between(data, "cells")
+
+
+def test_the_common_excess_is_pooled_over_cells_before_it_is_clipped():
+    """Candidate null: one excess on every cell, the cells' mean DerSimonian–Laird moment beyond the curve part."""
+    rng = np.random.default_rng(9)
+    shifts, covs = _group(rng, 8, gain_sd=0.3, cell_sd=0.0)
+    data = GroupData.from_tables(shifts, covs, CELLS)
+    curve = null_between(data, "curve")
+    moments = dersimonian_laird(data.shifts, data.variances, clip=False)
+    # the moment estimate (DerSimonian & Laird 1986) is clipped at 0 per cell by default, and only there
+    clipped = dersimonian_laird(data.shifts, data.variances)
+    np.testing.assert_allclose(clipped, np.maximum(moments, 0.0), rtol=1e-12)
+    assert np.any(moments < 0) and np.any(clipped > 0)
+    common = null_between(data, "curve and common excess")
+    excess = max(float(np.mean(moments - np.diagonal(curve))), 0.0)
+    np.testing.assert_allclose(common, curve + excess * np.eye(len(CELLS)), atol=1e-12)
+    # with no per-cell variation the pooled excess is smaller than the sum of the per-cell clipped ones
+    assert np.trace(common) < np.trace(null_between(data))
 
 
 def test_groups_read_from_tables_keep_missing_cells_apart_and_need_every_covariance():
