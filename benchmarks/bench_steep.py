@@ -16,13 +16,23 @@ failed, beside the whole-cell numbers of ``bench_coverage.py``.
 levels' interquartile range instead of ``fitting.flags.STEEP_DRAW_FRACTION``
 (to compare choices; ``fit`` itself has no such option).
 
-Run: ``python benchmarks/bench_steep.py [--seeds 8082 8090 8091 8107] [--boot 1000] [--draw-fraction 0.5]``.
+``--screen FIRST COUNT`` looks for new collapsed fits instead of the four
+above: it simulates groups of 8 numbered FIRST … FIRST + COUNT − 1 (seeds
+8000 + number, numbers no coverage run has used are held-out cases), fits
+them without a bootstrap (the flag needs only the fit), and scores the
+groups with a flagged observer as above.  A collapse is rare (about one
+observer in 260 at 24 up–down trials), so screening is the cheap way to
+gather enough of them.
+
+Run: ``python benchmarks/bench_steep.py [--seeds 8082 8090 8091 8107 | --screen 400 250] [--boot 1000]
+[--draw-fraction 0.5]``.
 """
 
 from __future__ import annotations
 
 import argparse
 import sys
+import tempfile
 import time
 from collections import defaultdict
 from concurrent.futures import ProcessPoolExecutor
@@ -38,13 +48,27 @@ FLAGGED = {8082: "sim04", 8090: "sim04", 8091: "sim07", 8107: "sim02"}
 KINDS = ("condition PSE", "PSE shift", "tuning amplitude")
 
 
-def one(job):
-    seed, n_boot = job
+def _setting():
+    """The coverage cell these observers come from: protocol text, observer model, population truth."""
     protocol = str(ROOT / "protocols" / "offset_by_lag.toml")
     model = bc.load_model(str(ROOT / "protocols" / "observers" / "typical.toml"))
     base = bc.load_protocol(protocol)
     pop = bc.population_truth(model, base.design.adapter_offsets_deg, base.design.lags)
-    text = bc.protocol_text(protocol, 24, "updown")
+    return bc.protocol_text(protocol, 24, "updown"), model, pop
+
+
+def collapsed(seed: int) -> list[str]:
+    """The observers of group ``seed`` (8 observers) whose point fit is flagged ``steep``."""
+    text, model, _ = _setting()
+    with tempfile.TemporaryDirectory() as tmp:
+        logs = bc.simulate_group(text, model, 8, seed, Path(tmp))[0]
+        pse = bc.fit_logs(logs, str(Path(tmp) / "fit"), n_boot=0, seed=seed, progress=False, figures=False).pse
+    return sorted(set(pse.loc[pse["flags"].fillna("").str.contains("steep"), "observer"]))
+
+
+def one(job):
+    seed, n_boot = job
+    text, model, pop = _setting()
     res = bc.one_group((text, model, 8, seed, n_boot, pop, ["pilot"], [bc.BY_STATISTIC]))
     own, _ = res["tables"][("pilot", bc.BY_STATISTIC)]
     flags = own["pse"].groupby("observer")["flags"].agg(lambda f: " ".join(sorted(set(" ".join(f.fillna("")).split()))))
@@ -55,6 +79,8 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--seeds", type=int, nargs="+", default=sorted(FLAGGED))
     ap.add_argument("--boot", type=int, default=1000)
+    ap.add_argument("--screen", type=int, nargs=2, metavar=("FIRST", "COUNT"),
+                    help="score the groups among 8000 + FIRST ... whose point fits collapse, not --seeds")
     ap.add_argument("--jobs", type=int, default=2)
     ap.add_argument("--draw-fraction", type=float, default=fitting.bootstrap.STEEP_DRAW_FRACTION,
                     help="spread of a collapsed fit's replicates, as a fraction of the levels' IQR")
@@ -64,6 +90,14 @@ def main() -> None:
     print(f"# collapsed fits drawn at {args.draw_fraction:g} x the tested levels' interquartile range")
     t0 = time.perf_counter()
     with ProcessPoolExecutor(args.jobs) as pool:
+        if args.screen:
+            first, count = args.screen
+            candidates = [8000 + g for g in range(first, first + count)]
+            found = dict(zip(candidates, pool.map(collapsed, candidates)))
+            args.seeds = [s for s, who in found.items() if who]
+            print(f"# screened {8 * count} observers (groups {first}-{first + count - 1}) in "
+                  f"{time.perf_counter() - t0:.0f} s: collapsed "
+                  + (", ".join(f"{s} {' '.join(w)}" for s, w in found.items() if w) or "none"))
         results = list(pool.map(one, [(s, args.boot) for s in args.seeds]))
     print("| group | observer | flags | " + " | ".join(KINDS) + " |")
     print("|---|---|---|" + "---|" * len(KINDS))
