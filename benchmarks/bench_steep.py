@@ -20,9 +20,9 @@ levels' interquartile range instead of ``fitting.flags.STEEP_DRAW_FRACTION``
 above: it simulates groups of 8 numbered FIRST … FIRST + COUNT − 1 (seeds
 8000 + number, numbers no coverage run has used are held-out cases), fits
 them without a bootstrap (the flag needs only the fit), and scores the
-groups with a flagged observer as above.  A collapse is rare (about one
-observer in 260 at 24 up–down trials), so screening is the cheap way to
-gather enough of them.
+groups with a flagged observer as above.  A collapse is rare (37 of 6,000
+observers at 24 up–down trials), so screening is the cheap way to gather
+enough of them.
 
 Run: ``python benchmarks/bench_steep.py [--seeds 8082 8090 8091 8107 | --screen 400 250] [--boot 1000]
 [--draw-fraction 0.5]``.
