@@ -85,6 +85,8 @@ def main() -> None:
     ap.add_argument("--draw-fraction", type=float, default=fitting.bootstrap.STEEP_DRAW_FRACTION,
                     help="spread of a collapsed fit's replicates, as a fraction of the levels' IQR")
     args = ap.parse_args()
+    if args.screen and args.screen[1] < 1:
+        ap.error("--screen: COUNT must be at least 1")
     # the worker processes are forked after this, so they draw at the same fraction
     fitting.bootstrap.STEEP_DRAW_FRACTION = args.draw_fraction
     print(f"# collapsed fits drawn at {args.draw_fraction:g} x the tested levels' interquartile range")
@@ -118,7 +120,8 @@ def main() -> None:
                     flagged[kind][1] += n
     for label, tally in (("flagged steep", flagged), ("all observers of these groups", everyone)):
         print(f"| {label} | | | " + " | ".join(
-            f"{tally[k][0]}/{tally[k][1]} ({100 * tally[k][0] / max(tally[k][1], 1):.1f} %)" for k in KINDS) + " |")
+            f"{tally[k][0]}/{tally[k][1]} ({100 * tally[k][0] / tally[k][1]:.1f} %)" if tally[k][1] else "–"
+            for k in KINDS) + " |")
     print(f"\n{time.perf_counter() - t0:.0f} s")
 
 
