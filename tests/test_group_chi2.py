@@ -10,7 +10,7 @@ from scipy import stats
 from fitting.compare import agreement
 from fitting.covariance import covariance_matrix, group_covariance
 from fitting.group import GROUP, group_aftereffect, group_weights
-from fitting.group_chi2 import GroupData, calibrated_p, group_statistic, null_between
+from fitting.group_chi2 import BETWEEN, GroupData, calibrated_p, group_statistic, null_between
 from fitting.meta import dersimonian_laird, random_effects
 
 CELLS = [(0, -30.0), (0, 30.0), (1, -30.0), (1, 30.0), (2, -30.0), (2, 30.0)]
@@ -104,14 +104,18 @@ def test_groups_read_from_tables_keep_missing_cells_apart_and_need_every_covaria
     assert GroupData.from_tables(shifts, {**covs, "o2": None}, CELLS) is None
 
 
-def _false_rejections(seed, groups, gain_sd, cell_sd):
-    """Shares of groups of 3 rejected at 5 % with the truth predicted: (simulated p, χ²(n) from scipy.stats)."""
+def _false_rejections(seed, groups, gain_sd, cell_sd, size=3, between=BETWEEN[0]):
+    """Shares of groups of ``size`` rejected at 5 % with the truth predicted: (simulated p, χ²(n) from scipy.stats).
+
+    ``between`` names the null's between-observer part (:func:`fitting.group_chi2.null_between`); the
+    groups and the simulation seeds do not depend on it, so nulls are compared on the same groups.
+    """
     rng = np.random.default_rng(seed)
     simulated, older = [], []
     for _ in range(groups):
-        shifts, covs = _group(rng, 3, gain_sd=gain_sd, cell_sd=cell_sd)
+        shifts, covs = _group(rng, size, gain_sd=gain_sd, cell_sd=cell_sd)
         data = GroupData.from_tables(shifts, covs, CELLS)
-        chi2, p = calibrated_p(data, CURVE, draws=400, seed=int(rng.integers(1 << 30)))[0]
+        chi2, p = calibrated_p(data, CURVE, draws=400, seed=int(rng.integers(1 << 30)), between=between)[0]
         simulated.append(p < 0.05)
         older.append(stats.chi2.sf(chi2, len(CELLS)) < 0.05)
     return float(np.mean(simulated)), float(np.mean(older))
