@@ -31,6 +31,8 @@ Run: ``python benchmarks/bench_steep.py [--seeds 8082 8090 8091 8107 | --screen 
 from __future__ import annotations
 
 import argparse
+import multiprocessing
+import signal
 import sys
 import tempfile
 import time
@@ -75,6 +77,24 @@ def one(job):
     return seed, res["scores"][("pilot", bc.BY_STATISTIC)], flags.to_dict()
 
 
+def _score_groups(pool, args, t0) -> list:
+    """Screen (with ``--screen``) and score the groups of ``args.seeds`` on ``pool``."""
+    if args.screen:
+        first, count = args.screen
+        candidates = [8000 + g for g in range(first, first + count)]
+        found = {}
+        for n, (seed, who) in enumerate(zip(candidates, pool.map(collapsed, candidates)), 1):
+            found[seed] = who
+            if n % 25 == 0 or n == count:     # screening 250 groups takes minutes: show progress
+                print(f"# screened {n} of {count} groups, {sum(map(bool, found.values()))} with a collapsed fit",
+                      file=sys.stderr, flush=True)
+        args.seeds = [s for s, who in found.items() if who]
+        print(f"# screened {8 * count} observers (groups {first}-{first + count - 1}) in "
+              f"{time.perf_counter() - t0:.0f} s: collapsed "
+              + (", ".join(f"{s} {' '.join(w)}" for s, w in found.items() if w) or "none"))
+    return list(pool.map(one, [(s, args.boot) for s in args.seeds]))
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--seeds", type=int, nargs="+", default=sorted(FLAGGED))
@@ -91,16 +111,14 @@ def main() -> None:
     fitting.bootstrap.STEEP_DRAW_FRACTION = args.draw_fraction
     print(f"# collapsed fits drawn at {args.draw_fraction:g} x the tested levels' interquartile range")
     t0 = time.perf_counter()
-    with ProcessPoolExecutor(args.jobs) as pool:
-        if args.screen:
-            first, count = args.screen
-            candidates = [8000 + g for g in range(first, first + count)]
-            found = dict(zip(candidates, pool.map(collapsed, candidates)))
-            args.seeds = [s for s, who in found.items() if who]
-            print(f"# screened {8 * count} observers (groups {first}-{first + count - 1}) in "
-                  f"{time.perf_counter() - t0:.0f} s: collapsed "
-                  + (", ".join(f"{s} {' '.join(w)}" for s, w in found.items() if w) or "none"))
-        results = list(pool.map(one, [(s, args.boot) for s in args.seeds]))
+    # the workers ignore Ctrl-C; on Ctrl-C the parent stops them and ends with one line
+    with ProcessPoolExecutor(args.jobs, initializer=signal.signal, initargs=(signal.SIGINT, signal.SIG_IGN)) as pool:
+        try:
+            results = _score_groups(pool, args, t0)
+        except KeyboardInterrupt:
+            for child in multiprocessing.active_children():
+                child.terminate()
+            raise
     print("| group | observer | flags | " + " | ".join(KINDS) + " |")
     print("|---|---|---|" + "---|" * len(KINDS))
     flagged, everyone = defaultdict(lambda: [0, 0]), defaultdict(lambda: [0, 0])
@@ -126,4 +144,7 @@ def main() -> None:
 
 
 if __name__ == "__main__":
-    main()
+    try:
+        main()
+    except KeyboardInterrupt:      # nothing is kept between runs, so nothing is lost
+        sys.exit("bench_steep: interrupted before the table was printed; it writes no files, so nothing is lost")
