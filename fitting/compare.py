@@ -131,8 +131,9 @@ def read_predictions(path: str | Path) -> pd.DataFrame:
     Raises
     ------
     InputError
-        Missing columns, non-numbers, duplicate grid points, shifts beyond ±180°,
-        an sd below 0 or above 180°.
+        Missing columns, non-numbers, duplicate grid points, a lag that is not
+        a whole number >= 0, offsets or shifts beyond ±180°, an sd below 0 or
+        above 180°.
     """
     p = Path(path)
     cols = PREDICTION_COLUMNS + (("sd_deg",) if "sd_deg" in _header(p) else ())
@@ -143,8 +144,13 @@ def read_predictions(path: str | Path) -> pd.DataFrame:
     if dup.any():
         line = int(np.flatnonzero(dup.to_numpy())[0]) + 2
         raise InputError(str(p), f"line {line}", "a second prediction for the same lag and adapter offset")
-    for col, low in (("pse_shift_deg", -180.0), ("sd_deg", 0.0)):
-        # a shift of a direction is within ±180°; an sd is at least 0 and below 180° too
+    lag = frame["lag"]
+    odd = (lag < 0) | (lag != np.round(lag))
+    if odd.any():
+        line = int(np.flatnonzero(odd.to_numpy())[0]) + 2
+        raise InputError(str(p), f"line {line}", f"lag: expected a whole number of periods >= 0, found {lag.iloc[line - 2]:g}")
+    for col, low in (("adapter_offset_deg", -180.0), ("pse_shift_deg", -180.0), ("sd_deg", 0.0)):
+        # an offset or a shift of a direction is within ±180°; an sd is at least 0 and below 180° too
         out = frame[col].notna() & ~frame[col].between(low, 180.0) if col in frame else None
         if out is not None and out.any():
             line = int(np.flatnonzero(out.to_numpy())[0]) + 2

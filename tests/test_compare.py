@@ -101,7 +101,10 @@ def test_bad_prediction_files_are_one_line_errors(tmp_path, capsys):
     assert main(["compare", str(results), str(tmp_path / "p.csv"), "--out", str(tmp_path / "o")]) == 2
     assert "line 2" in capsys.readouterr().err
     # a shift of a direction lies within ±180° (an sd in [0, 180]): larger numbers are a damaged file
-    for text, field in (("0,30,1e300\n", "line 2: pse_shift_deg"), ("0,30,1.0,0.2\n0,-30,-1.0,-0.5\n", "line 3: sd_deg")):
+    # lags count whole motion periods from 0; an offset is a direction difference within ±180° too
+    for text, field in (("0,30,1e300\n", "line 2: pse_shift_deg"), ("0,30,1.0,0.2\n0,-30,-1.0,-0.5\n", "line 3: sd_deg"),
+                        ("0,30,1.0\n-1,30,1.0\n", "line 3: lag"), ("1.5,30,1.0\n", "line 2: lag"),
+                        ("0,400,1.0\n", "line 2: adapter_offset_deg")):
         header = "lag,adapter_offset_deg,pse_shift_deg" + (",sd_deg" if "sd_deg" in field else "")
         (tmp_path / "p.csv").write_text(header + "\n" + text)
         assert main(["compare", str(results), str(tmp_path / "p.csv"), "--out", str(tmp_path / "o")]) == 2
