@@ -63,6 +63,7 @@ observer share the baseline), and the residuals are read as normal.
 from __future__ import annotations
 
 import os
+from contextlib import nullcontext
 from dataclasses import dataclass, replace
 from pathlib import Path
 
@@ -78,7 +79,7 @@ from fitting.meta import random_effects
 from fitting.page import PAGE, write_page
 from fitting.progress import phase
 from fitting.scores import inverse, score_chi2
-from fitting.outputs import output_set
+from fitting.outputs import folder_lock, output_set
 from fitting.tables import write_text
 
 Z95 = stats.norm.ppf(0.975)
@@ -569,6 +570,12 @@ def compare_results(results_dir: str | Path, predictions_path: str | Path, out_d
         measured grid.
     """
     results = Path(results_dir)
+    # read under the fit folder's shared lock: a fit moving its set in meanwhile waits (fitting.outputs)
+    with folder_lock(results, exclusive=False) if results.is_dir() else nullcontext():
+        return _compare(results, predictions_path, out_dir, interpolate, figures, progress)
+
+
+def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figures: bool, progress) -> Comparison:
     measured_path = results / "aftereffect.csv" if results.is_dir() else results
     measured = _read_csv(measured_path, MEASURED_COLUMNS, may_be_empty=("pse_shift_deg", "ci_low", "ci_high"))
     if measured.empty:

@@ -6,12 +6,21 @@ when every file is complete are they moved into place, each by one rename,
 after a manifest (``outputs.json``) listing them has been written.  Then the
 files that the folder's previous manifest listed and this run did not write
 are removed, so no table or figure of an earlier fit survives beside the new
-ones.  Files no manifest lists (your own notes) are never touched, and
-trial logs, sidecars and lock files never, whatever a manifest says.
+ones.  A folder holding another command's set is refused (a comparison
+written into a fit folder would otherwise remove the fit's tables).  Files
+no manifest lists (your own notes) are never touched, and trial logs,
+sidecars and lock files never, whatever a manifest says.
 
 A failure, Ctrl-C or SIGTERM before that point removes the staging folder
 and leaves the earlier outputs as they were; a staging folder left by a
 killed process is removed by the next run into the same folder.
+
+Two commands writing into one folder at once (two ``fit`` runs started by
+mistake, say) move their sets in one after the other, never interleaved:
+the move holds an exclusive lock on the folder itself (:func:`folder_lock`,
+``flock`` on the directory, so no lock file is left), and ``compare`` holds
+a shared one while it reads a fit folder, so it never reads half of one fit
+and half of the next.
 
 Files get the permissions the umask allows (``0666 & ~umask``), like any
 file a program creates, so colleagues who can read the figures can read the
@@ -20,9 +29,11 @@ tables too.
 
 from __future__ import annotations
 
+import fcntl
 import json
 import os
 import shutil
+import sys
 import tempfile
 from contextlib import contextmanager
 from pathlib import Path
@@ -33,6 +44,8 @@ MANIFEST = "outputs.json"
 STAGING_PREFIX = ".staging-"
 #: Data files a manifest can never cause to be removed, whatever it lists.
 NEVER_REMOVED = (".trials.csv", ".session.json", ".lock")
+#: This process's holds: folder -> [file descriptor, exclusive holds, shared holds].
+_HELD: dict[str, list[int]] = {}
 
 
 def file_mode() -> int:
@@ -90,6 +103,56 @@ class StagedOutputs:
         return [self.final(p) for p in paths]
 
 
+def _flock(fd: int, mode: int, folder: str) -> None:
+    try:
+        fcntl.flock(fd, mode | fcntl.LOCK_NB)
+    except BlockingIOError:
+        print(f"aftershift: waiting for another command using {folder}", file=sys.stderr, flush=True)
+        fcntl.flock(fd, mode)
+    except OSError:
+        pass    # a file system without locks (some network mounts): go on unlocked, as before locks existed
+
+
+@contextmanager
+def folder_lock(folder: str | Path, exclusive: bool):
+    """Hold an output folder's lock: exclusive to move a set in, shared to read one.
+
+    The lock is ``flock`` on the folder's own descriptor: advisory, between
+    aftershift commands, released by the kernel when a process dies.
+    Re-entrant within a process: a shared hold is raised to exclusive for
+    an inner exclusive one and lowered back after it.
+
+    Parameters
+    ----------
+    folder : str or Path
+        The output folder; it must exist.
+    exclusive : bool
+        True while moving a set in, False while reading one.
+
+    Raises
+    ------
+    OSError
+        The folder cannot be opened.
+    """
+    key = os.path.realpath(folder)
+    held = _HELD.get(key)
+    if held is None:
+        held = _HELD[key] = [os.open(key, os.O_RDONLY | os.O_DIRECTORY), 0, 0]
+    before = fcntl.LOCK_EX if held[1] else fcntl.LOCK_SH if held[2] else None
+    held[1 if exclusive else 2] += 1
+    try:
+        if before is None or (exclusive and before == fcntl.LOCK_SH):
+            _flock(held[0], fcntl.LOCK_EX if exclusive else fcntl.LOCK_SH, str(folder))
+        yield
+    finally:
+        held[1 if exclusive else 2] -= 1
+        if not held[1] and not held[2]:
+            os.close(held[0])                      # closing the last descriptor releases the lock
+            del _HELD[key]
+        elif exclusive and not held[1]:
+            fcntl.flock(held[0], fcntl.LOCK_SH)    # back to the outer shared hold
+
+
 def _pid_alive(pid: int) -> bool:
     try:
         os.kill(pid, 0)
@@ -110,18 +173,46 @@ def _remove_dead_staging(out: Path) -> None:
             shutil.rmtree(entry, ignore_errors=True)
 
 
-def read_manifest(out: Path) -> list[str]:
-    """Files (relative to ``out``) the folder's manifest lists; empty if none or unreadable."""
+def _manifest(out: Path) -> dict:
     try:
         content = json.loads((out / MANIFEST).read_text(encoding="utf-8"))
-        files = content.get("files", []) if isinstance(content, dict) else []
-        return [f for f in files if isinstance(f, str)]
     except (OSError, ValueError):
-        return []
+        return {}
+    return content if isinstance(content, dict) else {}
+
+
+def read_manifest(out: Path) -> list[str]:
+    """Files (relative to ``out``) the folder's manifest lists; empty if none or unreadable."""
+    files = _manifest(out).get("files", [])
+    return [f for f in files if isinstance(f, str)] if isinstance(files, list) else []
+
+
+#: Manifests written before ``plan`` and ``recover`` named themselves said "study".
+_SAME_SET = {"study": ("plan", "recover")}
+
+
+def refuse_other_set(out_dir: str | Path, command: str) -> None:
+    """Refuse to move ``command``'s set into a folder holding another command's set.
+
+    A set replaces the earlier set of the same command (its stale files are
+    removed); another command's set would be removed with it, so that
+    ``compare --out`` a fit folder would delete the fit's tables.
+
+    Raises
+    ------
+    InputError
+        The folder's manifest names another command.
+    """
+    out = Path(out_dir)
+    earlier = _manifest(out).get("command")
+    if isinstance(earlier, str) and earlier != command and command not in _SAME_SET.get(earlier, ()):
+        raise InputError(str(out), "--out", f"holds the outputs of `aftershift {earlier}` (listed in {MANIFEST}), "
+                         f"which `aftershift {command}` would replace; choose another folder")
 
 
 def _commit(staged: StagedOutputs, command: str) -> None:
     stage, out = staged.folder, staged.final_dir
+    refuse_other_set(out, command)        # again, under the lock: another command may have written meanwhile
     files = sorted(str(p.relative_to(stage)) for p in stage.rglob("*") if p.is_file())
     previous = read_manifest(out)
     manifest = {"tool": "aftershift", "command": command, "files": files}
@@ -152,16 +243,26 @@ def _prune_empty(folder: Path, top: Path) -> None:
         folder = folder.parent
 
 
-def check_out_dir(out_dir: str | Path) -> None:
+def check_out_dir(out_dir: str | Path, command: str | None = None) -> None:
     """Refuse, before any work, an ``--out`` that cannot become a writable folder.
+
+    Parameters
+    ----------
+    out_dir : str or Path
+        The ``--out`` folder.
+    command : str, optional
+        The command that will write there: a folder holding another
+        command's set is refused too (:func:`refuse_other_set`).
 
     Raises
     ------
     InputError
-        A path under a regular file, or a folder (or its nearest existing
-        parent) that cannot be written.
+        A path under a regular file, a folder (or its nearest existing
+        parent) that cannot be written, or another command's folder.
     """
     out = Path(out_dir)
+    if command is not None and out.is_dir():
+        refuse_other_set(out, command)
     probe = out
     while not probe.exists() and probe != probe.parent:
         probe = probe.parent
@@ -196,6 +297,7 @@ def output_set(out_dir: str | Path, command: str):
         raise InputError(str(out), "--out", "exists and is not a folder")
     try:
         out.mkdir(parents=True, exist_ok=True)
+        refuse_other_set(out, command)
         _remove_dead_staging(out)
         stage = Path(tempfile.mkdtemp(prefix=f"{STAGING_PREFIX}{os.getpid()}-", dir=out))
     except OSError as exc:
@@ -203,7 +305,8 @@ def output_set(out_dir: str | Path, command: str):
     staged = StagedOutputs(stage, out)
     try:
         yield staged
-        _commit(staged, command)
+        with folder_lock(out, exclusive=True):
+            _commit(staged, command)
     except InputError as exc:   # named where the user will look, not in the staging folder
         raise InputError(exc.source.replace(str(stage), str(out)), exc.field, exc.message) from None
     except OSError as exc:

@@ -216,7 +216,7 @@ def cmd_fit(args) -> int:
 
     _check_count(args.bootstrap, "--bootstrap", 0, MAX_BOOTSTRAP, "bootstrap replicates")
     _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
-    check_out_dir(args.out)
+    check_out_dir(args.out, "fit")
 
     lapse = args.lapse
     if lapse != "free":
@@ -271,7 +271,7 @@ def cmd_compare(args) -> int:
     from fitting.compare import compare_results
     from fitting.outputs import check_out_dir
 
-    check_out_dir(args.out)
+    check_out_dir(args.out, "compare")
 
     result = compare_results(args.results, args.predictions, args.out, interpolate=args.interpolate)
     print(result.summary())
@@ -302,7 +302,7 @@ def cmd_plan(args) -> int:
     _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
     _check_count(args.runs, "--runs", 1, 10_000, "simulated sessions per design")
     _check_count(args.jobs, "--jobs", 1, 256, "worker processes")
-    check_out_dir(args.out)
+    check_out_dir(args.out, "plan")
     _load(args.protocol)  # timing refusals exit 3 here as everywhere
     return plan_command(args.protocol, args.model, args.out, _study_settings(args), args.vary, args.target_half_width)
 
@@ -310,6 +310,9 @@ def cmd_plan(args) -> int:
 def cmd_recover(args) -> int:
     from runner.recovery import recover_command
 
+    from fitting.outputs import check_out_dir
+
+    check_out_dir(args.out, "recover")
     _load(args.protocol)
     return recover_command(args.protocol, args.model, args.out, _study_settings(args), args.vary)
 

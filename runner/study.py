@@ -495,7 +495,7 @@ def study_command(protocol_path: str, model_path: str | None, out_dir: str,
     except StudyInterrupted as stop:
         print(f"aftershift {command}: {stop.line}", file=sys.stderr)
         return 130
-    with output_set(out_dir, "study") as staged:  # tables and figures land whole, as one set
+    with output_set(out_dir, command) as staged:  # tables and figures land whole, as one set
         files = staged.final_paths(result.write(staged.folder))
     print("\n".join(result.summary_lines()))
     print(f"wrote {', '.join(str(f) for f in files)}")

@@ -469,6 +469,47 @@ def test_refit_replaces_the_earlier_fit_as_a_set_and_keeps_other_files(capsys, t
     assert (out / NAME).exists() and (tmp_path / "x.txt").exists()
 
 
+def test_a_folder_of_another_command_is_refused_and_kept(capsys, tmp_path, whole):
+    # a set replaces the earlier set of its own command; written into another command's folder it would
+    # remove that command's files with it (a comparison into the fit folder deleted the fit's tables)
+    fit, cmp = tmp_path / "fit", tmp_path / "cmp"
+    assert cli(capsys, "fit", whole, "--out", fit, "--bootstrap", "0", "--no-figures")[0] == 0
+    pred = tmp_path / "pred.csv"
+    pred.write_text("lag,adapter_offset_deg,pse_shift_deg\n0,-30,-2\n0,30,2\n2,-30,-1\n2,30,1\n")
+    assert cli(capsys, "compare", fit, pred, "--out", cmp)[0] == 0
+    before = {p: p.read_bytes() for p in (*fit.iterdir(), *cmp.iterdir())}
+    for args, folder, earlier in ((("compare", fit, pred), fit, "fit"),
+                                  (("fit", whole, "--bootstrap", "0", "--no-figures"), cmp, "compare")):
+        code, err = cli(capsys, *args, "--out", folder)
+        assert code == 2 and f"holds the outputs of `aftershift {earlier}`" in one_line(err), err
+    assert {p: p.read_bytes() for p in (*fit.iterdir(), *cmp.iterdir())} == before
+    assert leftovers(fit) == [] and leftovers(cmp) == []
+
+
+def test_a_set_waits_for_the_folder_lock_and_lands_after_it(tmp_path, whole):
+    # a second command moving its set into a folder waits while another holds the folder (here: this test,
+    # as a reading compare or a committing fit would), then lands whole
+    import fcntl
+    import subprocess
+    import sys
+
+    out = tmp_path / "fit"
+    out.mkdir()
+    fd = os.open(out, os.O_RDONLY | os.O_DIRECTORY)
+    fcntl.flock(fd, fcntl.LOCK_SH)
+    try:
+        proc = subprocess.Popen([sys.executable, "-m", "runner.cli", "fit", str(whole), "--out", str(out),
+                                 "--bootstrap", "0", "--no-figures"], stdout=subprocess.DEVNULL,
+                                stderr=subprocess.PIPE, text=True)
+        line = proc.stderr.readline()
+        assert line.strip() == f"aftershift: waiting for another command using {out}"
+        assert proc.poll() is None and not (out / "outputs.json").exists()
+    finally:
+        os.close(fd)
+    assert proc.wait(timeout=120) == 0 and proc.stderr.read() == ""
+    assert (out / "outputs.json").exists() and leftovers(out) == []
+
+
 def test_tables_follow_the_umask(capsys, tmp_path, whole):
     old = os.umask(0o022)
     try:
