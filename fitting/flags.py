@@ -131,3 +131,29 @@ def flagged_first(table, label) -> list[str]:
         return []
     rows = table[table["flags"].fillna("").astype(str) != ""]
     return [f"{label(r)}: {r['flags']}" for _, r in rows.iterrows()]
+
+
+def shared_notes(notes: dict, observers) -> list[str]:
+    """Notes that every one of two or more ``observers`` has, in the first one's order.
+
+    Such notes mostly follow from the protocol rather than from anyone's
+    answers (two adapter offsets per lag give no tuning curve for anybody),
+    so a report says them once instead of once per observer.
+
+    Parameters
+    ----------
+    notes : dict
+        Observer -> list of note strings.
+    observers : sequence of str
+        The observers to look at (the group is not one of them).
+
+    Returns
+    -------
+    list of str
+        Empty with fewer than two observers.
+    """
+    observers = list(observers)
+    if len(observers) < 2:
+        return []
+    first = list(dict.fromkeys(notes.get(observers[0], [])))
+    return [n for n in first if all(n in notes.get(o, []) for o in observers[1:])]

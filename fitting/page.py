@@ -27,6 +27,7 @@ from urllib.parse import quote
 import numpy as np
 import pandas as pd
 
+from .flags import shared_notes
 from .outputs import STAGING_PREFIX
 from .provenance import read_report_data
 from .tables import write_text
@@ -221,9 +222,13 @@ class _Page:
         parts = []
         notes = self.data.get("notes", {})
         who = [observer] if observer is not None else sorted(notes)
+        # on the everyone page, notes all observers share (the protocol's doing) are said once
+        shared = [] if observer is not None else shared_notes(notes, self.observers)
+        parts += [f"<li>every observer: {_e(note)}</li>" for note in shared]
         for name in who:
             for note in dict.fromkeys(notes.get(name, [])):  # each note once, in order
-                parts.append(f"<li>{_e(name) + ': ' if observer is None else ''}{_e(note)}</li>")
+                if name == GROUP or note not in shared:
+                    parts.append(f"<li>{_e(name) + ': ' if observer is None else ''}{_e(note)}</li>")
         tables = []
         for name, heading in OBSERVER_TABLES:
             frame = self.tables.get(name)

@@ -50,7 +50,7 @@ import pandas as pd
 from .bootstrap import check_replicate_memory, parametric_bootstrap
 from .errors import InputError
 from .covariance import COVARIANCE_COLUMNS, group_covariance, observer_covariance
-from .flags import flagged_first, join, psychometric_flags
+from .flags import flagged_first, join, psychometric_flags, shared_notes
 from .group import GROUP, group_aftereffect, group_curves, group_pse, group_weights, mixed_model
 from .observer import (BY_STATISTIC, INTERVAL_METHODS, AFTEREFFECT_COLUMNS, DECAY_COLUMNS, PSE_COLUMNS, TUNING_COLUMNS,
                        ObserverAnalysis, Options, analyse_observer, condition_table)
@@ -126,6 +126,9 @@ class FitReport:
         lines.append(f"{o.sigmoid} psychometric function, {lapse}, "
                      f"{'shared' if o.spread == 'shared' else 'per-condition'} spread; {ci}")
         lines += self._flagged()
+        shared = shared_notes(self.notes, [a.observer for a in self.analyses])
+        if shared:
+            lines += ["", "Notes for every observer:"] + [f"  note: {n}" for n in shared]
         tests = self.extras["model_tests"].set_index("observer")
         for a in self.analyses:
             t = tests.loc[a.observer]
@@ -152,7 +155,8 @@ class FitReport:
                 lines.append(f"  decay: tau {d['decay_periods']:.2f} periods"
                              f"{_ci(d['decay_ci_low'], d['decay_ci_high'])}{sec}")
             for n in self.notes.get(a.observer, []):
-                lines.append(f"  note: {n}")
+                if n not in shared:
+                    lines.append(f"  note: {n}")
         if GROUP in self.notes or (self.tuning["observer"] == GROUP).any():
             lines.append("")
             lines.append(f"Group ({n_obs} observers; random-effects intervals with within- and "

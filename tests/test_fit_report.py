@@ -168,3 +168,25 @@ def test_quick_fit_at_a_break_shows_no_interval_from_few_trials_and_states_exclu
     from fitting.report import exclusion_text
     text = exclusion_text(out.attrs["exclusions"])
     assert "35 bad timing" in text and f"{int(out['n_trials'].sum())} trials used of {len(early)}" in text
+
+
+def test_notes_that_follow_from_the_protocol_are_said_once(tmp_path):
+    # two adapter offsets per lag give nobody a tuning curve: one line for everyone, not one per observer
+    folder = tmp_path / "logs"
+    folder.mkdir()
+    for obs, seed in (("P1", 1), ("P2", 2), ("P3", 3)):
+        df = simulate_trials(MODEL, offsets=(-30, 30), lags=(0, 1), trials_per_track=12, seed=seed, observer=obs)
+        write_log(df, folder / f"{obs}.trials.csv")
+    report = fit_logs([str(folder)], str(tmp_path / "out"), n_boot=0, seed=3, figures=False, progress=False)
+    text = report.summary()
+    assert "Notes for every observer:" in text
+    for lag in (0, 1):
+        assert text.count(f"lag {lag}: fewer than 3 usable non-zero adapter offsets") == 1
+    assert text.count("no decay fit") == 1
+    page = (tmp_path / "out" / "report.html").read_text()
+    assert page.count("every observer: lag 0: fewer than 3") == 1 and "P1: lag 0: fewer" not in page
+    # an observer's own note stays with that observer
+    report.notes["P2"] = report.notes["P2"] + ["a note of P2 alone"]
+    text = report.summary()
+    assert text.count("a note of P2 alone") == 1
+    assert text.index("a note of P2 alone") > text.index("Observer P2")
