@@ -206,7 +206,8 @@ def refuse_other_set(out_dir: str | Path, command: str) -> None:
     out = Path(out_dir)
     earlier = _manifest(out).get("command")
     if isinstance(earlier, str) and earlier != command and command not in _SAME_SET.get(earlier, ()):
-        raise InputError(str(out), "--out", f"holds the outputs of `aftershift {earlier}` (listed in {MANIFEST}), "
+        shown = " or ".join(f"`aftershift {c}`" for c in _SAME_SET.get(earlier, (earlier,)))
+        raise InputError(str(out), "--out", f"holds the outputs of {shown} (listed in {MANIFEST}), "
                          f"which `aftershift {command}` would replace; choose another folder")
 
 

@@ -484,6 +484,17 @@ def test_a_folder_of_another_command_is_refused_and_kept(capsys, tmp_path, whole
         assert code == 2 and f"holds the outputs of `aftershift {earlier}`" in one_line(err), err
     assert {p: p.read_bytes() for p in (*fit.iterdir(), *cmp.iterdir())} == before
     assert leftovers(fit) == [] and leftovers(cmp) == []
+    # manifests written before plan and recover named themselves said "study": either may replace them
+    from fitting.errors import InputError
+    from fitting.outputs import check_out_dir
+
+    legacy = tmp_path / "old"
+    legacy.mkdir()
+    (legacy / "outputs.json").write_text('{"command": "study", "files": []}')
+    check_out_dir(legacy, "plan")
+    check_out_dir(legacy, "recover")
+    with pytest.raises(InputError, match="`aftershift plan` or `aftershift recover`"):
+        check_out_dir(legacy, "fit")
 
 
 def test_a_set_waits_for_the_folder_lock_and_lands_after_it(tmp_path, whole):
