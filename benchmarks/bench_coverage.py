@@ -36,8 +36,9 @@ correlated, so the experiment, not the interval, is the unit).
 ``--pool`` also forms groups from all observers of a cell; ``--partitions
 R`` scores their χ² on R random partitions into groups.  ``--save DIR``
 keeps each cell's fits (one pickle per procedure and trial count);
-``--rescore DIR`` scores stored fits again without simulating or fitting
-(for a new candidate statistic on the same fits).
+``--rescore DIR [DIR ...]`` scores stored fits again without simulating or
+fitting (for a new candidate statistic on the same fits; several folders of
+runs with different seeds are scored as one cell).
 Targets: coverage 93–97 %; false rejections 3–8 %.
 
 Run: ``python benchmarks/bench_coverage.py [--groups 6] [--boot 1000] [--jobs 2]
@@ -45,7 +46,7 @@ Run: ``python benchmarks/bench_coverage.py [--groups 6] [--boot 1000] [--jobs 2]
 [--trials 24 40] [--procedures updown bayesian] [--bootstraps fixed rerun]
 [--intervals bca percentile profile studentized] [--timing]
 [--spread-bias [--lapse-max 0.06 0.1]]
-[--save DIR | --rescore DIR]``
+[--save DIR | --rescore DIR [DIR ...] [--scale-check]]``
 """
 
 from __future__ import annotations
@@ -348,8 +349,10 @@ def one_group(args) -> dict:
                 row = table[(table["observer"] == who) & (table["lag"] == "all")].iloc[0]
                 if not np.isfinite(row["dof"]):   # compare leaves out an observer with a point lacking its CI
                     continue
+                # p value and reference (e.g. "F(32, 47.3)") kept for rescoring other readings of chi2
                 rejected[who] = (bool(row["chi2_p"] < 0.05), float(row["chi2"]), int(row["dof"]),
-                                 float(row["gain_ci_low"]) <= 1.0 <= float(row["gain_ci_high"]))
+                                 float(row["gain_ci_low"]) <= 1.0 <= float(row["gain_ci_high"]),
+                                 float(row["chi2_p"]), str(row["chi2_reference"]))
             out["rejected"][boot] = rejected
     return out
 
@@ -637,12 +640,46 @@ def timing(args, model) -> list[str]:
     return lines
 
 
+def chi2_scale_lines(results, model, label: str, common_nu=(20, 40, 60, 100, 200, 400)) -> list[str]:
+    """How an observer's χ² follows its fitted spread, from kept fits (``--scale-check``).
+
+    ``compare`` reads ``T / n`` against F(n, ν), ν the fitted spread's degrees of
+    freedom, which assumes the shifts' covariance scales with the square of
+    the spread it was built at, so that log(T / n) falls with slope −2 against
+    log(fitted / true spread).  Prints that slope (least squares over the
+    observers), the SD of log(fitted / true spread), and the share of
+    rejections if every observer's ν were one common number instead.
+    """
+    x, t, n = [], [], []
+    for res in results:
+        pse = res["tables"][("pilot", BY_STATISTIC)][0]["pse"]
+        fitted = pse.groupby("observer")["spread_deg"].first()
+        for who, r in res["rejected"].get("pilot", {}).items():
+            if who == GROUP:
+                continue
+            name = next(o for o in fitted.index if o.endswith("_" + who))
+            seed = int(name.split("_")[0][1:])
+            truth = draw_observers(model, res["n_obs"], seed)[int(who[3:]) - 1].spread_deg
+            x.append(np.log(fitted[name] / truth))
+            t.append(r[1])
+            n.append(r[2])
+    x, t, n = np.array(x), np.array(t), np.array(n)
+    slope = np.polyfit(x, np.log(t / n), 1)[0]
+    common = ", ".join(f"ν {nu}: {100 * np.mean(stats.f.sf(t / n, n, nu) < 0.05):.1f} %" for nu in common_nu)
+    return [f"{label}: {x.size} observers; slope of log(χ²/n) on log(fitted / true spread) {slope:.2f} "
+            f"(−2 if the covariance scaled with the spread squared); SD of log(fitted / true spread) "
+            f"{x.std():.3f}; rejections with one common ν: {common}"]
+
+
 def cell_results(args, proc: str, n_trials: int, text: str, model, pop) -> list[dict]:
     """One cell's simulated and fitted groups: computed (and kept with ``--save``) or read (``--rescore``)."""
     name = f"{proc}_{n_trials}.pickle"
     if args.rescore:
-        with open(args.rescore / name, "rb") as f:
-            return pickle.load(f)
+        results = []
+        for folder in args.rescore:       # several folders: their cells scored as one (seeds must differ)
+            with open(folder / name, "rb") as f:
+                results += pickle.load(f)
+        return results
     jobs = [(text, model, size, 1000 * size + g, args.boot, pop, args.bootstraps, args.intervals)
             for size in args.sizes for g in range(args.first_group, args.first_group + args.groups)]
     with ProcessPoolExecutor(max_workers=args.jobs) as pool:
@@ -689,14 +726,29 @@ def main() -> None:
     ap.add_argument("--bayes-placement", choices=("entropy", "pse_mean"), help="placement of Bayesian tracks")
     ap.add_argument("--model", default=str(ROOT / "protocols" / "observers" / "typical.toml"))
     ap.add_argument("--save", type=Path, help="keep each cell's fits in this folder (pickles)")
-    ap.add_argument("--rescore", type=Path, help="score the fits kept by --save in this folder; no simulation")
+    ap.add_argument("--rescore", type=Path, nargs="+",
+                    help="score the fits kept by --save in these folders (as one cell); no simulation")
+    ap.add_argument("--scale-check", action="store_true",
+                    help="with --rescore: only print how the observers' chi2 follows their fitted spread")
     args = ap.parse_args()
+    for folder in args.rescore or []:
+        missing = [f"{p}_{t}.pickle" for p in args.procedures for t in args.trials if not (folder / f"{p}_{t}.pickle").is_file()]
+        if missing:
+            ap.error(f"--rescore: {folder} holds no {missing[0]} (give --procedures and --trials of the kept run)")
+    if args.scale_check and not args.rescore:
+        ap.error("--scale-check needs --rescore DIR (kept fits)")
     if args.partitions < 1:
         ap.error(f"--partitions: expected a whole number >= 1, got {args.partitions}")
     model = load_model(args.model)
     base = load_protocol(args.protocol)
     pop = population_truth(model, base.design.adapter_offsets_deg, base.design.lags)
     t0 = time.perf_counter()
+    if args.scale_check:
+        for proc in args.procedures:
+            for n_trials in args.trials:
+                results = cell_results(args, proc, n_trials, "", model, pop)
+                print("\n".join(chi2_scale_lines(results, model, f"{proc}, {n_trials} trials")))
+        return
     if args.spread_bias:
         print("\n".join(spread_bias(args, model)))
         return
@@ -704,9 +756,11 @@ def main() -> None:
         print("\n".join(timing(args, model)) + "\n", flush=True)
     print("# the combination step alone (20,000 simulated sets each; MC SE about 0.2 %)")
     print("\n".join(combination_only()) + "\n")
-    print(f"# coverage: {args.groups} groups of each size {args.sizes} per cell (numbers {args.first_group}–"
-          f"{args.first_group + args.groups - 1}), {args.boot} replicates, "
-          f"model {Path(args.model).name} (between-observer spread {model.spread_between_observers:g})")
+    runs = (f"the fits kept in {', '.join(map(str, args.rescore))}" if args.rescore else
+            f"{args.groups} groups of each size {args.sizes} per cell (numbers {args.first_group}–"
+            f"{args.first_group + args.groups - 1}), {args.boot} replicates")
+    print(f"# coverage: {runs}, model {Path(args.model).name} "
+          f"(between-observer spread {model.spread_between_observers:g})")
     print("| procedure | trials/cond. | bootstrap / interval | who | statistic | coverage ± MC SE | intervals | target 93–97 % |")
     print("|---|---|---|---|---|---|---|---|")
     rej_lines, independent = [], {}
