@@ -29,7 +29,6 @@ import argparse
 import pickle
 import sys
 import tempfile
-from concurrent.futures import ProcessPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -44,6 +43,7 @@ from bench_coverage import (observed_information_covariance, observer_truth, pro
 from fitting.report import fit_logs  # noqa: E402
 from runner.observers import load_model  # noqa: E402
 from runner.replay import track_factories  # noqa: E402
+from scratch import pool_map, scratch_folder  # noqa: E402
 
 
 def one(args) -> list[dict]:
@@ -131,8 +131,7 @@ def main() -> None:
     else:
         text = protocol_text(str(ROOT / "protocols" / "offset_by_lag.toml"), args.trials, args.procedure)
         jobs = [(text, args.observers, 5000 + g, args.boot, args.rerun) for g in range(args.groups)]
-        with ProcessPoolExecutor(max_workers=args.jobs) as pool:
-            res = [o for group in pool.map(one, jobs) for o in group]
+        res = [o for group in pool_map(one, jobs, args.jobs) for o in group]
         if args.save:
             with open(args.save, "wb") as fh:
                 pickle.dump(res, fh)
@@ -140,4 +139,8 @@ def main() -> None:
 
 
 if __name__ == "__main__":
-    main()
+    try:
+        with scratch_folder():
+            main()
+    except KeyboardInterrupt:
+        sys.exit("bench_chi2_diagnostics: interrupted; it writes no files, so nothing is lost")

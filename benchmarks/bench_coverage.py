@@ -59,7 +59,6 @@ import sys
 import tempfile
 import time
 from collections import defaultdict
-from concurrent.futures import ProcessPoolExecutor
 from pathlib import Path
 from types import SimpleNamespace
 
@@ -84,6 +83,7 @@ from runner.launch import simulate  # noqa: E402
 from runner.observers import ObserverModel, draw_observers, load_model  # noqa: E402
 from runner.protocol import load_protocol  # noqa: E402
 from runner.replay import track_factories  # noqa: E402
+from scratch import pool_map, scratch_folder  # noqa: E402
 
 
 def protocol_text(base: str, trials_per_condition: int, method: str, tracks: int = 2,
@@ -601,8 +601,7 @@ def spread_bias(args, model) -> list[str]:
             text = protocol_text(args.protocol, n_trials, proc, args.tracks, args.bayes_placement)
             jobs = [(text, model, size, 1000 * size + g, args.lapse_max) for size in args.sizes
                     for g in range(args.first_group, args.first_group + args.groups)]
-            with ProcessPoolExecutor(max_workers=args.jobs) as pool:
-                rows = pd.DataFrame([r for group in pool.map(_spread_bias_group, jobs) for r in group])
+            rows = pd.DataFrame([r for group in pool_map(_spread_bias_group, jobs, args.jobs) for r in group])
             for lapse_max, d in rows.groupby("lapse_max", sort=False):
                 r = d["ratio"].to_numpy()
                 z = np.concatenate(d["z"].to_list())
@@ -682,8 +681,7 @@ def cell_results(args, proc: str, n_trials: int, text: str, model, pop) -> list[
         return results
     jobs = [(text, model, size, 1000 * size + g, args.boot, pop, args.bootstraps, args.intervals)
             for size in args.sizes for g in range(args.first_group, args.first_group + args.groups)]
-    with ProcessPoolExecutor(max_workers=args.jobs) as pool:
-        results = list(pool.map(one_group, jobs))
+    results = pool_map(one_group, jobs, args.jobs)
     if args.save:
         args.save.mkdir(parents=True, exist_ok=True)
         with open(args.save / name, "wb") as f:
@@ -735,6 +733,8 @@ def main() -> None:
         missing = [f"{p}_{t}.pickle" for p in args.procedures for t in args.trials if not (folder / f"{p}_{t}.pickle").is_file()]
         if missing:
             ap.error(f"--rescore: {folder} holds no {missing[0]} (give --procedures and --trials of the kept run)")
+    if args.boot < 50 and not args.rescore and not args.spread_bias:
+        ap.error(f"--boot: at least 50 replicates (a covariance of the 32 shifts needs more than 34), not {args.boot}")
     if args.scale_check and not args.rescore:
         ap.error("--scale-check needs --rescore DIR (kept fits)")
     if args.partitions < 1:
@@ -819,4 +819,9 @@ def main() -> None:
 
 
 if __name__ == "__main__":
-    main()
+    try:
+        with scratch_folder():
+            main()
+    except KeyboardInterrupt:
+        sys.exit("bench_coverage: interrupted; the cells finished before were printed (and kept with --save), "
+                 "the rest is lost; no temporary folder is left")

@@ -17,7 +17,6 @@ import math
 import sys
 import tempfile
 import time
-from concurrent.futures import ProcessPoolExecutor
 from dataclasses import replace
 from pathlib import Path
 
@@ -28,6 +27,7 @@ from fitting.report import fit_logs  # noqa: E402
 from runner.launch import simulate  # noqa: E402
 from runner.observers import ObserverModel, load_model  # noqa: E402
 from runner.protocol import load_protocol, read_protocol_text  # noqa: E402
+from scratch import pool_map, scratch_folder  # noqa: E402
 
 
 def one_run(protocol_path: str, model: ObserverModel, seed: int, n_boot: int) -> dict:
@@ -47,6 +47,10 @@ def one_run(protocol_path: str, model: ObserverModel, seed: int, n_boot: int) ->
     }
 
 
+def _one_run(job: tuple) -> dict:
+    return one_run(*job)
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--reps", type=int, default=50)
@@ -58,9 +62,7 @@ def main() -> None:
     model = replace(load_model(args.model), spread_between_observers=0.0)
     truth = {"amplitude": model.amplitude_deg, "peak_offset": model.peak_offset_deg, "decay": model.decay_periods}
     t0 = time.perf_counter()
-    with ProcessPoolExecutor(max_workers=args.jobs) as pool:
-        runs = list(pool.map(one_run, [args.protocol] * args.reps, [model] * args.reps, range(args.reps),
-                             [args.boot] * args.reps))
+    runs = pool_map(_one_run, [(args.protocol, model, seed, args.boot) for seed in range(args.reps)], args.jobs)
     elapsed = time.perf_counter() - t0
     print(f"{args.reps} simulated sessions of {Path(args.protocol).name}, {args.boot} replicates each, {elapsed:.0f} s")
     print(f"| parameter | true | mean estimate | median 95% CI width | coverage | target ≥ 90 % |")
@@ -79,4 +81,8 @@ def main() -> None:
 
 
 if __name__ == "__main__":
-    main()
+    try:
+        with scratch_folder():
+            main()
+    except KeyboardInterrupt:
+        sys.exit("bench_recovery_end_to_end: interrupted; it writes no files, so nothing is lost")

@@ -31,8 +31,6 @@ Run: ``python benchmarks/bench_steep.py [--seeds 8082 8090 8091 8107 | --screen 
 from __future__ import annotations
 
 import argparse
-import multiprocessing
-import signal
 import sys
 import tempfile
 import time
@@ -44,6 +42,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "benchmarks"))
 
 import bench_coverage as bc  # noqa: E402
+from scratch import quiet_worker, scratch_folder, stop_workers  # noqa: E402
 import fitting.bootstrap  # noqa: E402
 
 FLAGGED = {8082: "sim04", 8090: "sim04", 8091: "sim07", 8107: "sim02"}
@@ -111,13 +110,12 @@ def main() -> None:
     fitting.bootstrap.STEEP_DRAW_FRACTION = args.draw_fraction
     print(f"# collapsed fits drawn at {args.draw_fraction:g} x the tested levels' interquartile range")
     t0 = time.perf_counter()
-    # the workers ignore Ctrl-C; on Ctrl-C the parent stops them and ends with one line
-    with ProcessPoolExecutor(args.jobs, initializer=signal.signal, initargs=(signal.SIGINT, signal.SIG_IGN)) as pool:
+    # the workers ignore Ctrl-C and SIGTERM; on either the parent stops them and ends with one line
+    with ProcessPoolExecutor(args.jobs, initializer=quiet_worker) as pool:
         try:
             results = _score_groups(pool, args, t0)
         except KeyboardInterrupt:
-            for child in multiprocessing.active_children():
-                child.terminate()
+            stop_workers()
             raise
     print("| group | observer | flags | " + " | ".join(KINDS) + " |")
     print("|---|---|---|" + "---|" * len(KINDS))
@@ -145,6 +143,7 @@ def main() -> None:
 
 if __name__ == "__main__":
     try:
-        main()
+        with scratch_folder():
+            main()
     except KeyboardInterrupt:      # nothing is kept between runs, so nothing is lost
         sys.exit("bench_steep: interrupted before the table was printed; it writes no files, so nothing is lost")

@@ -163,10 +163,19 @@ def _pid_alive(pid: int) -> bool:
     return True
 
 
-def _remove_dead_staging(out: Path) -> None:
-    for entry in out.glob(STAGING_PREFIX + "*"):
+def remove_dead_folders(parent: str | Path, prefix: str) -> None:
+    """Remove folders ``parent/<prefix><pid>-*`` whose process has ended (killed before it could clean up).
+
+    Parameters
+    ----------
+    parent : str or Path
+        Where to look.
+    prefix : str
+        The name's start, followed by the owning process id and ``-``.
+    """
+    for entry in Path(parent).glob(prefix + "*"):
         try:
-            pid = int(entry.name[len(STAGING_PREFIX):].split("-")[0])
+            pid = int(entry.name[len(prefix):].split("-")[0])
         except ValueError:
             continue
         if entry.is_dir() and not _pid_alive(pid):
@@ -299,7 +308,7 @@ def output_set(out_dir: str | Path, command: str):
     try:
         out.mkdir(parents=True, exist_ok=True)
         refuse_other_set(out, command)
-        _remove_dead_staging(out)
+        remove_dead_folders(out, STAGING_PREFIX)
         stage = Path(tempfile.mkdtemp(prefix=f"{STAGING_PREFIX}{os.getpid()}-", dir=out))
     except OSError as exc:
         raise InputError(str(out), "--out", f"cannot be written ({exc.strerror})") from None
