@@ -73,7 +73,7 @@ from fitting.aftereffect import fit_decay, fit_tuning, peak_bounds  # noqa: E402
 from fitting.bootstrap import percentile_interval  # noqa: E402
 from fitting.observer import BY_STATISTIC, INTERVAL_METHODS, decay_interval, pse_shift_intervals  # noqa: E402
 from fitting.compare import agreement, combine_gains, compare_results, gls_gain  # noqa: E402
-from fitting.covariance import covariance_matrix, group_covariance  # noqa: E402
+from fitting.covariance import covariance_matrix, group_covariance, spread_dof  # noqa: E402
 from fitting.group_chi2 import GroupData, calibrated_p  # noqa: E402
 from fitting.meta import random_effects, variance_from_interval  # noqa: E402
 from fitting.group import GROUP, group_aftereffect, group_curves, group_pse, group_weights  # noqa: E402
@@ -180,6 +180,21 @@ def observed_information_covariance(a):
     return dmat @ np.nan_to_num(fit.covariance) @ dmat.T
 
 
+def effective_spread_dof(a, reps: np.ndarray, cov: np.ndarray):
+    """(β, ν') of one observer from its replicates (see :func:`chi2_candidates`); None without them."""
+    if a.boot is None:
+        return None
+    log_s = a.boot.theta[:, np.unique(a.fit.layout.spread_index)].mean(axis=1)
+    ok = np.isfinite(log_s) & np.all(np.isfinite(reps), axis=1)
+    if ok.sum() < 10 or reps.shape[0] != log_s.size:
+        return None
+    d = reps[ok] - reps[ok].mean(axis=0)
+    t_b = np.einsum("bi,bi->b", d, np.linalg.solve(cov, d.T).T)
+    beta = float(np.polyfit(log_s[ok] - log_s[ok].mean(), np.log(t_b), 1)[0])
+    nu = spread_dof(log_s)
+    return (beta, 4 * nu / (2 - beta) ** 2) if beta < 2 and np.isfinite(nu) else None
+
+
 def chi2_candidates(report, truths: dict) -> dict:
     """compare's χ² test and gain interval for each observer under candidate references (truth predicted).
 
@@ -191,7 +206,10 @@ def chi2_candidates(report, truths: dict) -> dict:
     ``n_trials / 2 - 1`` (trials per track − 1) degrees of freedom; t scores on ``n_trials - 2`` (the
     rule before ``compare`` read ``T / n`` against F on the spread's degrees of freedom); normal scores
     scaled by the side of the printed 95 % interval facing the truth, so that each score passes 1.96
-    exactly when the truth falls outside the interval, with the replicates' correlation.
+    exactly when the truth falls outside the interval, with the replicates' correlation; ``T / n`` against
+    F(n, ν') with the spread's *effective* degrees of freedom ν' = 4 ν / (2 − β)², β the slope of
+    log T*_b on log s*_b over the observer's own replicates (how the shifts' scatter grows with the
+    fitted spread; ν' = ν when it does not, β = 0).
     """
     out = defaultdict(dict)
     for a in report.analyses:
@@ -235,6 +253,10 @@ def chi2_candidates(report, truths: dict) -> dict:
             t_int = float(h * z @ np.linalg.solve(cov / np.outer(sd, sd), z))
             out["scores from the printed interval's side"][a.observer] = (
                 stats.chi2.sf(t_int, n) < 0.05, t_int, n, np.nan)
+        beta_nu = effective_spread_dof(a, reps, cov)
+        if beta_nu is not None:
+            out["F on the spread's effective degrees of freedom"][a.observer] = (
+                stats.f.sf(t_stat / n, n, beta_nu[1]) < 0.05, t_stat, n, np.nan, *beta_nu)
         # the rule before compare read T / n against F on the spread's degrees of freedom
         b = agreement(est, ae["ci_low"], ae["ci_high"], truth, None, cov, n_rep, np.nan, trials=ae["n_trials"])
         out["t scores on n_trials - 2 (the rule before)"][a.observer] = (b.chi2_p < 0.05, b.chi2, b.dof,
