@@ -686,10 +686,15 @@ def chi2_scale_lines(results, model, label: str, common_nu=(20, 40, 60, 100, 200
             n.append(r[2])
     x, t, n = np.array(x), np.array(t), np.array(n)
     slope = np.polyfit(x, np.log(t / n), 1)[0]
+    own = [c for res in results
+           for c in res["candidates"].get("pilot", {}).get("F on the spread's effective degrees of freedom", {}).values()]
+    betas = np.array([c[4] for c in own])
+    beta = (f"; β of the observers' own replicates: median {np.median(betas):.2f}, so ν' = 4 ν / (2 − β)² is "
+            f"{np.median(4 / (2 - betas) ** 2):.2f} ν (median)" if own else "")
     common = ", ".join(f"ν {nu}: {100 * np.mean(stats.f.sf(t / n, n, nu) < 0.05):.1f} %" for nu in common_nu)
     return [f"{label}: {x.size} observers; slope of log(χ²/n) on log(fitted / true spread) {slope:.2f} "
             f"(−2 if the covariance scaled with the spread squared); SD of log(fitted / true spread) "
-            f"{x.std():.3f}; rejections with one common ν: {common}"]
+            f"{x.std():.3f}; rejections with one common ν: {common}{beta}"]
 
 
 def cell_results(args, proc: str, n_trials: int, text: str, model, pop) -> list[dict]:
