@@ -220,7 +220,7 @@ def match_predictions(measured: pd.DataFrame, predictions: pd.DataFrame, source:
 
 #: How far to trust the χ² p-values: measured by ``benchmarks/bench_coverage.py`` (benchmarks/README.md).
 CHI2_CAVEAT = ("chi2 p-values: with the true after-effect curve as the prediction, simulated single observers were "
-               "rejected at the 5 % level in 5.3-5.6 % of cases with up-down tracks and 2.7-5.5 % with Bayesian tracks "
+               "rejected at the 5 % level in 4.8-6.3 % of cases with up-down tracks and 3.9-5.3 % with Bayesian tracks "
                "(24-40 trials per condition), groups of 3 and of 8 observers (p from simulated groups) in 2.6-6.5 % "
                "(target 3-8 %; "
                "benchmarks/bench_coverage.py); read p just under 0.05 as a prompt to look, and weigh whether the "
