@@ -52,6 +52,8 @@ def scratch_folder():
     remove_dead_folders(base, PREFIX)
     root = Path(tempfile.mkdtemp(prefix=f"{PREFIX}{os.getpid()}-", dir=base))
     before, tempfile.tempdir = tempfile.tempdir, str(root)
+    env_before = os.environ.get("TMPDIR")
+    os.environ["TMPDIR"] = str(root)             # for workers that start afresh instead of forking
     previous = signal.signal(signal.SIGTERM, _interrupt)
     try:
         yield root
@@ -61,6 +63,10 @@ def scratch_folder():
     finally:
         signal.signal(signal.SIGTERM, previous)
         tempfile.tempdir = before
+        if env_before is None:
+            os.environ.pop("TMPDIR", None)
+        else:
+            os.environ["TMPDIR"] = env_before
         shutil.rmtree(root, ignore_errors=True)
 
 
