@@ -123,8 +123,8 @@ def main() -> None:
         print(row(f"statsmodels loop, 100 conditions x {args.replicates} replicates", loop100, loop100_cpu,
                   f"measured on {n_sm100}, scaled"))
         for tag, root in roots:
-            # the old code wrote PNG + PDF by default; the new one writes PNG and takes --pdf
-            formats = "PNG" if tag == "new" else "PNG + PDF"
+            # code from before `fit --pdf` existed wrote PNG + PDF by default; since then PNG only
+            formats = "PNG" if "--pdf" in (root / "runner" / "cli.py").read_text(encoding="utf-8") else "PNG + PDF"
             w, c = timed(fit_cmd(log25, tmp / f"{tag}25f", args.replicates, True), root)
             print(row(f"{tag}: fit 25 conditions, default figures ({formats})", w, c,
                       f"{loop25 / w:.1f} x the loop wall, {loop25_cpu / c:.1f} x CPU (target >= 30 x)"), flush=True)
