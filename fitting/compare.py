@@ -97,12 +97,18 @@ def _read_csv(path: Path, required: tuple[str, ...], may_be_empty: tuple[str, ..
     """Read ``path``; ``required`` columns must be finite numbers (``observer`` any text) except empty
     cells of ``may_be_empty``; ``optional`` columns are checked the same way, may be empty, and are NaN
     when absent."""
-    if not path.is_file():
+    try:
+        found = path.is_file()
+    except OSError as exc:                 # a folder on the way that this user may not enter
+        raise InputError(str(path), "file", f"cannot be read ({exc.strerror})") from None
+    if not found:
         raise InputError(str(path), "file", "does not exist or is not a file")
     try:
         frame = pd.read_csv(path)
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
         raise InputError(str(path), "file", f"cannot be read as CSV ({str(exc).splitlines()[0]})") from None
+    except OSError as exc:                 # e.g. a colleague's file without read permission
+        raise InputError(str(path), "file", f"cannot be read ({exc.strerror})") from None
     for col in required:
         if col not in frame.columns:
             raise InputError(str(path), col, "column missing")
@@ -149,7 +155,8 @@ def read_predictions(path: str | Path) -> pd.DataFrame:
     odd = (lag < 0) | (lag != np.round(lag))
     if odd.any():
         line = int(np.flatnonzero(odd.to_numpy())[0]) + 2
-        raise InputError(str(p), f"line {line}", f"lag: expected a whole number of periods >= 0, found {lag.iloc[line - 2]:g}")
+        raise InputError(str(p), f"line {line}",
+                         f"lag: expected a whole number of periods >= 0, found {lag.iloc[line - 2]:g}")
     for col, low in (("adapter_offset_deg", -180.0), ("pse_shift_deg", -180.0), ("sd_deg", 0.0)):
         # an offset or a shift of a direction is within ±180°; an sd is at least 0 and below 180° too
         out = frame[col].notna() & ~frame[col].between(low, 180.0) if col in frame else None

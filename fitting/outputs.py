@@ -120,7 +120,8 @@ def folder_lock(folder: str | Path, exclusive: bool):
     The lock is ``flock`` on the folder's own descriptor: advisory, between
     aftershift commands, released by the kernel when a process dies.
     Re-entrant within a process: a shared hold is raised to exclusive for
-    an inner exclusive one and lowered back after it.
+    an inner exclusive one and lowered back after it.  A folder that cannot
+    be opened (entered but not listed) is read without a shared hold.
 
     Parameters
     ----------
@@ -132,12 +133,21 @@ def folder_lock(folder: str | Path, exclusive: bool):
     Raises
     ------
     OSError
-        The folder cannot be opened.
+        The folder cannot be opened for an exclusive hold.
     """
     key = os.path.realpath(folder)
     held = _HELD.get(key)
     if held is None:
-        held = _HELD[key] = [os.open(key, os.O_RDONLY | os.O_DIRECTORY), 0, 0]
+        try:
+            fd = os.open(key, os.O_RDONLY | os.O_DIRECTORY)
+        except OSError:
+            if exclusive:
+                raise
+            fd = None
+        if fd is None:            # a folder this user may not open: read unlocked; a failing read
+            yield                 # reports itself in one line, as before locks existed
+            return
+        held = _HELD[key] = [fd, 0, 0]
     before = fcntl.LOCK_EX if held[1] else fcntl.LOCK_SH if held[2] else None
     held[1 if exclusive else 2] += 1
     try:

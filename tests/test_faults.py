@@ -334,6 +334,31 @@ def test_unreadable_log_for_an_unprivileged_user(tmp_path, whole):
         shutil.rmtree(shared)
 
 
+def test_a_colleagues_unreadable_fit_folder_is_one_line_for_compare(capsys, tmp_path, whole):
+    import fitting.compare  # noqa: F401 - imported before dropping root
+    import fitting.compare_figure  # noqa: F401
+    import runner.workpool  # noqa: F401
+
+    if os.geteuid() != 0:
+        pytest.skip("needs root to drop to an unprivileged user")
+    shared = Path(tempfile.mkdtemp(prefix="aftershift-faults-", dir="/tmp"))  # pytest's folders are root-only
+    try:
+        shared.chmod(0o777)
+        fit = shared / "fit"
+        assert cli(capsys, "fit", whole, "--out", fit, "--bootstrap", "0", "--no-figures")[0] == 0
+        pred = shared / "pred.csv"
+        pred.write_text("lag,adapter_offset_deg,pse_shift_deg\n0,-30,-2\n0,30,2\n2,-30,-1\n2,30,1\n")
+        pred.chmod(0o644)
+        for mode, table in ((0o711, 0o600), (0o700, 0o644)):   # a table it may not read; a folder it may not enter
+            fit.chmod(mode)
+            (fit / "aftereffect.csv").chmod(table)
+            code, err = as_nobody(["compare", str(fit), str(pred), "--out", str(shared / "cmp")])
+            assert code == 2 and "Permission denied" in one_line(err) and "aftereffect.csv" in err, err
+            assert not (shared / "cmp").exists()
+    finally:
+        shutil.rmtree(shared)
+
+
 # --- fit, compare and check refuse what they cannot use ---------------------------------------------------------
 
 
