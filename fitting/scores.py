@@ -12,7 +12,8 @@ the table's rows.
 from __future__ import annotations
 
 import numpy as np
-from scipy import stats
+# scipy.special, not scipy.stats: the same functions bit for bit, without stats' 0.3 s import
+from scipy import special
 
 
 def normal_scores(standardised, dof):
@@ -27,8 +28,8 @@ def normal_scores(standardised, dof):
     finite = np.isfinite(nu) & (nu > 0)
     if finite.any():
         # upper tail by symmetry keeps precision far out in both tails
-        tail = stats.t.sf(np.abs(t[finite]), nu[finite])
-        out[finite] = np.sign(t[finite]) * stats.norm.isf(np.clip(tail, 1e-300, 0.5))
+        tail = special.stdtr(nu[finite], -np.abs(t[finite]))
+        out[finite] = np.sign(t[finite]) * -special.ndtri(np.clip(tail, 1e-300, 0.5))
     return out
 
 
