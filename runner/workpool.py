@@ -188,12 +188,19 @@ def _stop(pool: ProcessPoolExecutor) -> None:
     # ProcessPoolExecutor has no public way to stop a running task before Python 3.14
     processes = list((getattr(pool, "_processes", None) or {}).values())
     manager = getattr(pool, "_executor_manager_thread", None)     # shutdown forgets it
+    results = getattr(pool, "_result_queue", None)                 # and this
     pool.shutdown(wait=False, cancel_futures=True)
     for process in processes:
         if process.is_alive():
             process.terminate()
     for process in processes:
         process.join(timeout=5)
+    # a worker ended while sending a large result (a figure, an analysis) leaves the manager thread
+    # waiting for the rest of it, for ever, and interpreter exit waits for that thread: closing this
+    # process's own copy of the sending end, the last one once the workers are gone, ends the wait
+    writer = getattr(results, "_writer", None)
+    if writer is not None and not any(process.is_alive() for process in processes):
+        writer.close()
     # the pool's manager thread closes its wake-up pipe as it ends; left running, it races the
     # interpreter's exit hook, which writes to that pipe (an EBADF traceback after the last line)
     if manager is not None:

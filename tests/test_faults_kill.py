@@ -239,6 +239,48 @@ def test_local_workers_end_when_their_parent_is_killed(tmp_path):
             os.killpg(parent.pid, signal.SIGKILL)
 
 
+_BIG_RESULTS = """
+import os, signal, sys, threading, time
+from pathlib import Path
+from runner.workpool import LocalPool
+import bulky
+
+def ring():             # Ctrl-C just as a worker starts sending its result
+    while not Path(sys.argv[1]).exists():
+        time.sleep(0.005)
+    time.sleep(0.1)
+    os.kill(os.getpid(), signal.SIGINT)
+
+threading.Thread(target=ring, daemon=True).start()
+try:
+    for _ in LocalPool(2).map_unordered(bulky.bulk, {"a": 1, "b": 2}):
+        pass
+except KeyboardInterrupt:
+    print("stopped", file=sys.stderr)
+    sys.exit(130)
+"""
+
+
+def test_ctrl_c_while_a_worker_sends_a_large_result_still_lets_the_process_end(tmp_path):
+    # A worker stopped half-way through sending a result (a figure is 0.2-0.4 MB, more than a pipe
+    # holds) left the pool's manager thread waiting for the rest, and the interpreter's exit waited
+    # for that thread for ever (seen with SIGTERM during `fit`'s figures).
+    flag = tmp_path / "sending"
+    (tmp_path / "bulky.py").write_text(
+        "import pathlib\n"
+        f"def bulk(i):\n    data = b'x' * (256 << 20)\n    pathlib.Path({str(flag)!r}).touch()\n    return data\n")
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join([str(tmp_path), str(ROOT)])}
+    proc = subprocess.Popen([sys.executable, "-c", _BIG_RESULTS, str(flag)], cwd=ROOT, env=env, text=True,
+                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, start_new_session=True)
+    try:
+        _, err = proc.communicate(timeout=30)
+    except subprocess.TimeoutExpired:
+        os.killpg(proc.pid, signal.SIGKILL)
+        pytest.fail("the process did not end after Ctrl-C while a worker was sending its result")
+    assert flag.exists(), "no worker got as far as sending"
+    assert proc.returncode == 130 and "stopped" in err, err
+
+
 def test_ctrl_c_during_plan_stops_the_workers_and_says_so(tmp_path):
     out = tmp_path / "plan"
     proc = subprocess.Popen([sys.executable, "-m", "runner.cli", "plan", str(PILOT), "--runs", "40", "--out", str(out)],
