@@ -425,7 +425,8 @@ def observer_figure_tasks(a) -> list:
     return tasks
 
 
-def _figure_tasks(analyses, group) -> list:
+def figure_tasks(analyses, group) -> list:
+    """``(draw, args, stem)`` of every figure of a fit: each observer's, then the group's."""
     tasks = [t for a in analyses for t in observer_figure_tasks(a)]
     if group is not None and len(group["aftereffect"]):
         tasks.append((aftereffect_figure, ("group", group["aftereffect"], group["tuning"]),
@@ -509,7 +510,7 @@ def make_figures(analyses, group: dict | None, out_dir: Path, formats=FIT_FORMAT
         out_dir.mkdir(parents=True, exist_ok=True)
     except OSError as e:
         raise InputError(str(out_dir), "--out", f"cannot create the figure folder ({e.strerror})") from None
-    _TASKS = _figure_tasks(analyses, group)
+    _TASKS = figure_tasks(analyses, group)
     names = [[f"{stem}.{ext}" for ext in formats] for _, _, stem in _TASKS]
     ready = [i for i in range(len(_TASKS)) if all(n in drawn for n in names[i])]
     todo = [i for i in range(len(_TASKS)) if i not in set(ready)]

@@ -436,7 +436,10 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
         more tasks, ``{key: (function, argument)}``, to run as each result
         arrives (here: the finished observer's figures, drawn into memory
         while the others are fitted, written with the tables; the same bytes
-        as when drawn afterwards).
+        as when drawn afterwards); and as ``map_tasks(fn, tasks,
+        label=WORDS)`` for the figures still to draw after the fits (of up to
+        :data:`EARLY_FIGURE_OBSERVERS` observers; beyond that, this process
+        draws the rest straight into files).
     tracks : dict of str -> callable, optional
         Per observer, a factory of fresh adaptive tracks: the bootstrap then
         re-runs the tracks with the fitted observer (:mod:`fitting.replay`;
@@ -459,9 +462,13 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
         raise InputError(str(out_dir), "--out", "exists and is not a folder")
     _check_options(n_boot, seed, lapse, spread, sigmoid, interval, level, lapse_max, progress)
     trials = read_logs(paths, include_bad_timing, include_practice)
-    importing = _import_ahead(figures, trials["observer"].nunique() > 1)
+    n_observers = trials["observer"].nunique()
+    # with workers, they draw every figure (their process has matplotlib imported already); this process
+    # draws only when there are none, or when more observers than fit in memory leave figures for the end
+    draw_here = figures and (map_tasks is None or n_observers > EARLY_FIGURE_OBSERVERS)
+    importing = _import_ahead(draw_here, n_observers > 1)
     if figures:
-        from .figures import check_formats, draw_to_memory, observer_figure_tasks
+        from .figures import check_formats, draw_to_memory, figure_tasks, observer_figure_tasks
 
         formats = check_formats(figure_formats)
 
@@ -478,6 +485,15 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
     report = fit_trials(trials, n_boot, seed, lapse, spread, progress, sigmoid=sigmoid,
                         interval=interval, level=level, lapse_max=lapse_max, map_tasks=map_tasks,
                         tracks=tracks, track_use=track_use, after_observer=draw_early if figures else None)
+    drawn = {name: data for files in report.side_results.values() for name, data in files.items()}
+    if figures and not draw_here:
+        # what is left (one observer's figures, or the group's) goes to the workers too, into memory
+        left = {("figure", stem): (draw, args, stem, formats)
+                for draw, args, stem in figure_tasks(report.analyses, report.group)
+                if f"{stem}.{formats[0]}" not in drawn}
+        if left:
+            done = map_tasks(draw_to_memory, left, label="drawing figures")
+            drawn.update({name: data for files in done.values() for name, data in files.items()})
     # all fitting is done; only now is anything written, staged and moved in as one set
     with output_set(out_dir, "fit") as staged:
         out = staged.folder
@@ -487,7 +503,6 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
             importing.join()
             with phase("drawing figures", show=report.options.progress,
                        count=lambda: _count_files(out / "figures")):
-                drawn = {name: data for files in report.side_results.values() for name, data in files.items()}
                 fig_files = make_figures(report.analyses, report.group, out / "figures", formats=figure_formats,
                                          drawn=drawn)
         files = []

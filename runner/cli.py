@@ -212,7 +212,7 @@ def cmd_fit(args) -> int:
     from fitting.nback import fit_stream_logs, is_stream_log
     from fitting.outputs import check_out_dir
     from fitting.tables import find_logs
-    from runner.workpool import FIT_MODULES, open_pool, task_mapper
+    from runner.workpool import FIGURE_MODULES, FIT_MODULES, open_pool, task_mapper
 
     _check_count(args.bootstrap, "--bootstrap", 0, MAX_BOOTSTRAP, "bootstrap replicates")
     _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
@@ -229,9 +229,10 @@ def cmd_fit(args) -> int:
     trials = [str(p) for p in logs if str(p) not in streams]
     if streams and trials:
         raise InputError(streams[0], "block", "stream logs and adapt-test logs need separate fit runs (different --out)")
-    # several logs (perhaps several observers) and local workers: the process they fork from starts
-    # importing the fit now, beside this process's own imports and reading
-    local = open_pool(None, args.jobs, preload=FIT_MODULES) if len(trials) > 1 and not args.scheduler else None
+    # local workers: the process they fork from starts importing what they need now, beside this
+    # process's own imports and fitting (several logs: the fits and figures; one: its figures)
+    preload = FIT_MODULES if len(trials) > 1 else () if args.no_figures else FIGURE_MODULES
+    local = open_pool(None, args.jobs, preload=preload) if trials and preload and not args.scheduler else None
     from fitting import fit_logs
     common = dict(n_boot=args.bootstrap, seed=args.seed, lapse=lapse, lapse_max=args.lapse_max,
                   include_bad_timing=args.include_bad_timing, figures=not args.no_figures)

@@ -94,6 +94,22 @@ def test_figures_drawn_beside_the_fits_are_the_bytes_drawn_after_them(logs, tmp_
         for name in names:
             assert (tmp_path / "after" / "figures" / name).read_bytes() == \
                 (tmp_path / out / "figures" / name).read_bytes(), (out, name)
+    # one observer: fitted here, its figures drawn by the workers after the fit
+    calls = []
+
+    def recorded(fn, tasks, then=None, **kwargs):
+        calls.append((fn.__name__, len(tasks), kwargs.get("label")))
+        return task_mapper(pool, "fitting")(fn, tasks, then, **kwargs)
+
+    fit_logs([str(logs / "P1")], str(tmp_path / "one_here"), n_boot=40, seed=3, progress=False)
+    fit_logs([str(logs / "P1")], str(tmp_path / "one_workers"), n_boot=40, seed=3, progress=False,
+             map_tasks=recorded)
+    assert calls == [("draw_to_memory", 4, "drawing figures")]
+    names = sorted(p.name for p in (tmp_path / "one_here" / "figures").iterdir())
+    assert len(names) == 4 and names == sorted(p.name for p in (tmp_path / "one_workers" / "figures").iterdir())
+    for name in names:
+        assert (tmp_path / "one_here" / "figures" / name).read_bytes() == \
+            (tmp_path / "one_workers" / "figures" / name).read_bytes(), name
 
 
 def test_fixed_lapse_and_argument_errors(logs, tmp_path):
