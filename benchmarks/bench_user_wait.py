@@ -20,12 +20,15 @@ the child processes):
 5. PSE efficiency of the protocol's default tracks at 80 trials, true PSE
    uniform in +-5 deg, lapse 0 and 4 % (``bench_default_tracks.py``, fewer runs).
 6. With ``--tests``: the quick test subset and the whole suite, wall clock.
+7. With ``--chunks``: the fit of rows 1 and 3 in this process (``fit_trials``,
+   no files) at several sizes of the bootstrap's chunks
+   (``fitting.bootstrap.CHUNK_CELLS``), and whether the tables stay the same.
 
 ``--baseline DIR`` runs rows 1-4 with another checkout of the project as
 well (e.g. the commit before a change, unpacked with ``git archive``), so old
 and new numbers come from the same run on the same machine load.
 
-Run: ``python benchmarks/bench_user_wait.py [--baseline DIR] [--tests] [--quick]``
+Run: ``python benchmarks/bench_user_wait.py [--baseline DIR] [--tests] [--quick] [--chunks]``
 """
 
 from __future__ import annotations
@@ -94,6 +97,38 @@ def log_with(tmp: Path, name: str, offsets) -> Path:
     return next((tmp / name).glob("*.trials.csv"))
 
 
+def chunk_table(logs: dict[str, Path], sizes=(500_000, 200_000, 100_000, 50_000)) -> list[str]:
+    """``fit_trials`` (2,000 replicates, re-run pilot) at each chunk size, best of two, per log."""
+    import fitting.bootstrap
+    from fitting.report import fit_trials, read_logs
+    from runner.replay import track_factories
+
+    lines = ["| log | cells per chunk | replicates per chunk | fit s (best of 2) | tables as at the first size |",
+             "|---|---|---|---|---|"]
+    default = fitting.bootstrap.CHUNK_CELLS
+    try:
+        for name, log in logs.items():
+            trials = read_logs([str(log)], False, False)
+            first = None
+            for size in sizes:
+                fitting.bootstrap.CHUNK_CELLS = size
+                best = np.inf
+                for _ in range(2):
+                    t0 = time.perf_counter()
+                    report = fit_trials(trials, 2000, 1, progress=False, tracks=track_factories([str(log)], strict=False),
+                                        track_use="pilot")
+                    best = min(best, time.perf_counter() - t0)
+                tables = [report.pse.to_csv(), report.aftereffect.to_csv(), report.tuning.to_csv()]
+                first = first or tables
+                cells = report.analyses[0].fit.cells.x.size
+                mark = " (default)" if size == default else ""
+                lines.append(f"| {name} | {size:,}{mark} | {max(50, size // cells)} | {best:.2f} | "
+                             f"{'same' if tables == first else 'DIFFERENT'} |")
+    finally:
+        fitting.bootstrap.CHUNK_CELLS = default
+    return lines
+
+
 def row(label, wall, cpu, extra="") -> str:
     return f"| {label} | {wall:.2f} | {cpu:.2f} | {cpu / wall:.2f} | {extra} |"
 
@@ -104,6 +139,7 @@ def main() -> None:
     ap.add_argument("--tests", action="store_true", help="also time the quick test subset and the whole suite")
     ap.add_argument("--quick", action="store_true", help="fewer statsmodels replicates and efficiency runs")
     ap.add_argument("--replicates", type=int, default=2000)
+    ap.add_argument("--chunks", action="store_true", help="also time the fit at several bootstrap chunk sizes")
     args = ap.parse_args()
     roots = [("new", ROOT)] + ([("old", args.baseline.resolve())] if args.baseline else [])
     n_sm25, n_sm100, runs = (40, 10, 100) if args.quick else (100, 25, 300)
@@ -150,6 +186,9 @@ def main() -> None:
             w0, c0 = timed(simulate_cmd(root, tmp / f"{tag}sim0", False), root)
             print(row(f"{tag}: simulate, 3 observers", w, c, f"{w / w0:.2f} x the same without fsync"))
             print(row(f"{tag}: simulate, 3 observers, fsync a no-op", w0, c0, "floor"), flush=True)
+        if args.chunks:
+            for line in chunk_table({"25 conditions": log25, "100 conditions": log100}):
+                print(line, flush=True)
     from bench_default_tracks import efficiency_table
     for line in efficiency_table(runs=runs, seed=1, quick=True):
         print(line, flush=True)

@@ -439,7 +439,7 @@ def parametric_bootstrap_many(fits, n_boot: int, rng: np.random.Generator,
     if any(f.layout != layout or f.cells.x.shape != shape or f.sigmoid != first.sigmoid for f in fits):
         raise ValueError("fits bootstrapped together must share layout, sigmoid and cell shape")
     if chunk is None:
-        chunk = max(50, 500_000 // first.cells.x.size)
+        chunk = max(50, CHUNK_CELLS // first.cells.x.size)
     n_pilot = (pilot if pilot is not None else pilot_size(n_boot)) if bias_correct else 0
     if generate is not None:
         n_pilot = 0
@@ -549,6 +549,12 @@ def _replicates(fits, generate, n_boot, rng, chunk, bar, studentize: bool = Fals
         bar.advance(sl.stop - sl.start)
     return theta, converged, at_bound, dev, cov
 
+
+#: Cells (replicates x conditions x levels) refitted together by default.  Each array of a Newton step
+#: then takes 0.8 MB, near a core's 2 MB L2 cache; 500,000 cells (4 MB arrays) made the 100-condition
+#: fit 1.8 times slower (``benchmarks/bench_user_wait.py --chunks`` measures it).  The numbers do not
+#: depend on it.
+CHUNK_CELLS = 100_000
 
 #: Bytes kept per replicate and condition until the tables are written (measured: about 175 B with
 #: ``fit`` on 33 conditions, 2,000 against 20,000 replicates; rounded up).
