@@ -552,7 +552,7 @@ def _replicates(fits, generate, n_boot, rng, chunk, bar, studentize: bool = Fals
 
 #: Cells (replicates x conditions x levels) refitted together by default.  Each array of a Newton step
 #: then takes 0.8 MB, near a core's 2 MB L2 cache; 500,000 cells (4 MB arrays) made the 100-condition
-#: fit 1.8 times slower (``benchmarks/bench_user_wait.py --chunks`` measures it).  The numbers do not
+#: fit 1.4-1.8 times slower (``benchmarks/bench_user_wait.py --chunks`` measures it).  The numbers do not
 #: depend on it.
 CHUNK_CELLS = 100_000
 
