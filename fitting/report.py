@@ -213,7 +213,7 @@ def _shift_grid(shifts: pd.DataFrame) -> list[str]:
         return []
     tab = shifts.pivot_table(index="lag", columns="adapter_offset_deg", values="pse_shift_deg")
     head = "  PSE shift (deg) by adapter offset (deg):"
-    cols = "    lag " + "".join(f"{c:>8g}" for c in tab.columns)
+    cols = "    lag " + "".join(f" {c:>7.4g}" for c in tab.columns)    # a space even before -90.1818
     rows = [f"    {int(lag):>3d} " + "".join("        " if not np.isfinite(v) else f"{v:>8.2f}"
                                           for v in tab.loc[lag].to_numpy(float))
             for lag in tab.index]

@@ -429,7 +429,7 @@ def describe_stream(protocol: Protocol, seed: int = 0) -> list[str]:
         f"{n_tests * (s.nback_periods + 1)} periods",
         "",
         f"balance    tests preceded by each offset at n periods back (lag = n - 1), seed {seed}:",
-        "           " + f"{'n':>3}" + "".join(f"{o:>7g}" for o in seq.offsets_deg),
+        "           " + f"{'n':>3}" + "".join(f" {o:>6.4g}" for o in seq.offsets_deg),   # a space even before -51.4286
     ]
     for n, counts in seq.balance().items():
         lines.append("           " + f"{n:>3}" + "".join(f"{counts[o]:>7d}" for o in seq.offsets_deg))

@@ -206,3 +206,14 @@ def test_notes_that_follow_from_the_protocol_are_said_once(tmp_path):
     text = report.summary()
     assert text.count("a note of P2 alone") == 1
     assert text.index("a note of P2 alone") > text.index("Observer P2")
+
+
+def test_summary_shift_grid_keeps_columns_apart_for_offsets_with_many_digits():
+    # offsets such as np.linspace(-96, 96, 34) ran together in the header ("-96-90.1818-84.3636")
+    from fitting.report import _shift_grid
+
+    offsets = [-157.5, -96.0, -90.1818, -84.3636, 2.90909, 180.0]
+    shifts = pd.DataFrame({"lag": 0, "adapter_offset_deg": offsets, "pse_shift_deg": np.arange(6.0)})
+    head, cols, row = _shift_grid(shifts)
+    assert [float(v) for v in cols.split()[1:]] == pytest.approx(offsets, abs=0.005)
+    assert len(cols) == len(row)                       # each label sits above its column
