@@ -501,7 +501,7 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
         if figures:
             from .figures import make_figures
             importing.join()
-            with phase("drawing figures", show=report.options.progress,
+            with phase("drawing figures" if draw_here else "writing figures", show=report.options.progress,
                        count=lambda: _count_files(out / "figures")):
                 fig_files = make_figures(report.analyses, report.group, out / "figures", formats=figure_formats,
                                          drawn=drawn)
