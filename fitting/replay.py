@@ -45,6 +45,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from . import bootstrap
 from .bootstrap import BootstrapResult, bias_corrected, no_steeper_than_resolved, replicate_pse_covariance
 from .progress import ProgressBar
 from .psychometric import (PsychometricFit, _cell_terms, deviance_by_condition, escape_saddles, probability_cw,
@@ -52,17 +53,28 @@ from .psychometric import (PsychometricFit, _cell_terms, deviance_by_condition, 
 
 
 def _pool(levels: np.ndarray, answers: np.ndarray):
-    """Levels and answers (R, T) of one condition -> per-replicate unique levels, counts, cw counts.
+    """Levels and answers (R, T) of one condition -> each replicate's distinct levels and counts.
 
-    A nan level is a trial a copy did not run (it had stopped by its own rule).
+    Returns ``(x, n, k)``, each (R, W): the distinct levels of each row in
+    ascending order, then its first level again; trials and 'clockwise'
+    answers at each, then zeros. A nan level is a trial a copy did not run
+    (it had stopped by its own rule).
     """
-    out = []
-    for lv, an in zip(levels, answers):
-        ran = ~np.isnan(lv)
-        ux, inv = np.unique(lv[ran], return_inverse=True)
-        an = an[ran]
-        out.append((ux, np.bincount(inv).astype(float), np.bincount(inv, weights=an)))
-    return out
+    rows, t = levels.shape
+    order = np.argsort(levels, axis=1, kind="stable")            # nan last
+    lv = np.take_along_axis(levels, order, axis=1)
+    an = np.take_along_axis(answers, order, axis=1)
+    ran = ~np.isnan(lv)
+    new = ran.copy()
+    new[:, 1:] &= lv[:, 1:] != lv[:, :-1]                         # a level not seen before in its row
+    slot = np.cumsum(new, axis=1) - 1                             # its place among the row's levels
+    width = max(int(new.sum(axis=1).max()), 1)
+    flat = (np.arange(rows)[:, None] * width + slot)[ran]
+    n = np.bincount(flat, minlength=rows * width).reshape(rows, width).astype(float)
+    k = np.bincount(flat, weights=an[ran], minlength=rows * width).reshape(rows, width)
+    x = np.repeat(lv[:, :1], width, axis=1)
+    x[np.nonzero(new)[0], slot[new]] = lv[new]
+    return x, n, k
 
 
 class _OneByOne:
@@ -90,7 +102,11 @@ def _copies(factory, condition: str, track: str, n: int):
 
 def _rerun(fit: PsychometricFit, plan, factory, generate: np.ndarray, n_boot: int, rng: np.random.Generator,
            bar, studentize: bool = False):
-    """Re-run every track ``n_boot`` times at ``generate`` and refit: (solution, x, n, k, deviance, cov)."""
+    """Re-run every track ``n_boot`` times at ``generate`` and refit.
+
+    Returns ``(theta, converged, at_bound, deviance, cov)``, one row per replicate (``cov`` None unless
+    ``studentize``).
+    """
     layout, sigmoid = fit.layout, fit.sigmoid
     pse, spread, lapse = layout.unpack(generate[None])
     pools = []
@@ -113,22 +129,31 @@ def _rerun(fit: PsychometricFit, plan, factory, generate: np.ndarray, n_boot: in
         pools.append(_pool(np.hstack(lv_parts), np.hstack(an_parts)))
         bar.advance(n_boot)
     C = len(fit.conditions)
-    width = max(len(p[0]) for cond in pools for p in cond)
+    width = max(cond[0].shape[1] for cond in pools)
     x = np.empty((n_boot, C, width))
     n = np.zeros((n_boot, C, width))
     k = np.zeros((n_boot, C, width))
-    for c, cond in enumerate(pools):
-        for r, (ux, nn, kk) in enumerate(cond):
-            m = ux.size
-            x[r, c, :m], x[r, c, m:] = ux, ux[0]
-            n[r, c, :m], k[r, c, :m] = nn, kk
+    for c, (xc, nc, kc) in enumerate(pools):
+        m = xc.shape[1]
+        x[:, c, :m], x[:, c, m:] = xc, xc[:, :1]
+        n[:, c, :m], k[:, c, :m] = nc, kc
+    # refitted in chunks that keep the arrays near a core's cache, as the bootstrap's (same numbers)
+    step = max(1, bootstrap.CHUNK_CELLS // x[0].size)
+    parts = [_refit(fit, generate, x[i:i + step], n[i:i + step], k[i:i + step], studentize)
+             for i in range(0, n_boot, step)]
+    return tuple(None if part[0] is None else np.concatenate(part) for part in zip(*parts))
+
+
+def _refit(fit: PsychometricFit, generate: np.ndarray, x, n, k, studentize: bool):
+    """Refit replicates (x, n, k: (R, C, W)) from ``generate``: (theta, converged, at_bound, deviance, cov)."""
+    layout, sigmoid = fit.layout, fit.sigmoid
     sol = solve_batch(generate[None], x, n, k, layout, fit.lower, fit.upper, sigmoid)
     sol = escape_saddles(sol, x, n, k, layout, fit.lower, fit.upper, sigmoid)
     p_star = _cell_terms(sol.theta, x, layout, sigmoid)[0]
     dev = deviance_by_condition(p_star, n, k)
     cov = (replicate_pse_covariance(sol.theta, x, n, k, layout, sigmoid, sol.at_bound)
            if studentize else None)
-    return sol, dev, cov
+    return sol.theta, sol.converged, sol.at_bound, dev, cov
 
 
 def rerun_generating_parameters(fit: PsychometricFit, plan, factory, pilot: int, rng: np.random.Generator,
@@ -141,8 +166,8 @@ def rerun_generating_parameters(fit: PsychometricFit, plan, factory, pilot: int,
     """
     if not pilot:
         return fit.theta.copy()
-    sol, _, _ = _rerun(fit, plan, factory, fit.theta, pilot, rng, bar)
-    return bias_corrected([fit], sol.theta[None])[0]
+    theta = _rerun(fit, plan, factory, fit.theta, pilot, rng, bar)[0]
+    return bias_corrected([fit], theta[None])[0]
 
 
 def replay_bootstrap(fit: PsychometricFit, plan, factory, n_boot: int, rng: np.random.Generator,
@@ -175,5 +200,5 @@ def replay_bootstrap(fit: PsychometricFit, plan, factory, n_boot: int, rng: np.r
     with ProgressBar((n_boot + pilot) * C, "pilot + " + label, show=progress) as bar:
         generate = rerun_generating_parameters(fit, plan, factory, pilot, rng, bar)
         generate = no_steeper_than_resolved([fit], generate[None])[0]
-        sol, dev, cov = _rerun(fit, plan, factory, generate, n_boot, rng, bar, studentize)
-    return BootstrapResult(fit, sol.theta, sol.converged, sol.at_bound, dev, generate, cov)
+        theta, converged, at_bound, dev, cov = _rerun(fit, plan, factory, generate, n_boot, rng, bar, studentize)
+    return BootstrapResult(fit, theta, converged, at_bound, dev, generate, cov)
