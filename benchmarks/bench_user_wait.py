@@ -23,12 +23,15 @@ the child processes):
 7. With ``--chunks``: the fit of rows 1 and 3 in this process (``fit_trials``,
    no files) at several sizes of the bootstrap's chunks
    (``fitting.bootstrap.CHUNK_CELLS``), and whether the tables stay the same.
+8. With ``--heap``: rows 1 and 3 of this checkout again with
+   ``fitting.heap.arrays_on_the_heap`` a no-op in the child (glibc's own
+   malloc thresholds), beside the same rows as they are.
 
 ``--baseline DIR`` runs rows 1-4 with another checkout of the project as
 well (e.g. the commit before a change, unpacked with ``git archive``), so old
 and new numbers come from the same run on the same machine load.
 
-Run: ``python benchmarks/bench_user_wait.py [--baseline DIR] [--tests] [--quick] [--chunks]``
+Run: ``python benchmarks/bench_user_wait.py [--baseline DIR] [--tests] [--quick] [--chunks] [--heap]``
 """
 
 from __future__ import annotations
@@ -76,6 +79,10 @@ def fit_cmd(log: Path, out: Path, replicates: int, figures: bool, *extra: str) -
 
 NO_SYNC = ("import os, runpy, sys; os.fsync = lambda fd: None; sys.argv = ['aftershift'] + sys.argv[1:]; "
            "runpy.run_module('runner.cli', run_name='__main__')")
+
+
+NO_HEAP = ("import runpy, sys, fitting.heap; fitting.heap.arrays_on_the_heap = lambda: False; "
+           "sys.argv = ['aftershift'] + sys.argv[1:]; runpy.run_module('runner.cli', run_name='__main__')")
 
 
 def simulate_cmd(root: Path, out: Path, sync: bool) -> list[str]:
@@ -140,6 +147,7 @@ def main() -> None:
     ap.add_argument("--quick", action="store_true", help="fewer statsmodels replicates and efficiency runs")
     ap.add_argument("--replicates", type=int, default=2000)
     ap.add_argument("--chunks", action="store_true", help="also time the fit at several bootstrap chunk sizes")
+    ap.add_argument("--heap", action="store_true", help="also time the fit with glibc's own malloc thresholds")
     args = ap.parse_args()
     roots = [("new", ROOT)] + ([("old", args.baseline.resolve())] if args.baseline else [])
     n_sm25, n_sm100, runs = (40, 10, 100) if args.quick else (100, 25, 300)
@@ -186,6 +194,16 @@ def main() -> None:
             w0, c0 = timed(simulate_cmd(root, tmp / f"{tag}sim0", False), root)
             print(row(f"{tag}: simulate, 3 observers", w, c, f"{w / w0:.2f} x the same without fsync"))
             print(row(f"{tag}: simulate, 3 observers, fsync a no-op", w0, c0, "floor"), flush=True)
+        if args.heap:
+            for label, log, figures, loop in (("25 conditions, default figures", log25, True, loop25),
+                                              ("100 conditions, --no-figures", log100, False, loop100)):
+                for kept in (True, False):
+                    cmd = fit_cmd(log, tmp / f"heap{kept}{figures}", args.replicates, figures)
+                    if not kept:
+                        cmd = [sys.executable, "-c", NO_HEAP, *cmd[3:]]
+                    w, c = timed(cmd, ROOT)
+                    how = "arrays on the heap (as shipped)" if kept else "glibc's own malloc thresholds"
+                    print(row(f"new: fit {label}, {how}", w, c, f"{loop / w:.1f} x the loop wall"), flush=True)
         if args.chunks:
             for line in chunk_table({"25 conditions": log25, "100 conditions": log100}):
                 print(line, flush=True)

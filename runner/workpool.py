@@ -44,6 +44,7 @@ from pathlib import Path
 
 from fitting.children import children_shielded, follow_parent
 from fitting.errors import InputError
+from fitting.heap import arrays_on_the_heap
 
 #: How to install the optional Dask part.
 CLUSTER_EXTRA = "pip install 'aftershift[cluster]' (or pip install -e '.[cluster]' in a checkout)"
@@ -69,9 +70,11 @@ def available_cores() -> int:
 
 
 def _worker_start() -> None:
-    """First thing in every local worker: leave Ctrl-C to the parent, and end when the parent ends."""
+    """First thing in every local worker: leave Ctrl-C to the parent, end when the parent ends, and
+    keep arrays on the heap as the parent does (:mod:`fitting.heap`)."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     follow_parent()
+    arrays_on_the_heap()
 
 
 class LocalPool:
