@@ -60,7 +60,7 @@ def _pool(levels: np.ndarray, answers: np.ndarray):
     answers at each, then zeros. A nan level is a trial a copy did not run
     (it had stopped by its own rule).
     """
-    rows, t = levels.shape
+    rows = levels.shape[0]
     order = np.argsort(levels, axis=1, kind="stable")            # nan last
     lv = np.take_along_axis(levels, order, axis=1)
     an = np.take_along_axis(answers, order, axis=1)
