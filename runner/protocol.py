@@ -310,9 +310,10 @@ class ProcedureSettings(_Section):
         learn the spread; ``"pse_mean"``: the level nearest the posterior
         mean of the PSE (King-Smith et al., 1994), which keeps the trials at
         the PSE (PSE efficiency 0.84 against 0.81 at σ = 3°), but the spread
-        is then learnt poorly and the fit's intervals cover less (89.7 %
-        for condition PSEs at 24 trials per condition, against 91–92 %;
-        ``benchmarks/README.md``).
+        is then learnt poorly and the fit's intervals cover less (condition
+        PSEs at 24 trials per condition: 91.2 % with one such track and
+        ``fit``'s default re-run pilot, against 94.2 % with the default
+        placement; ``benchmarks/README.md``).
     bayes_target : {"pse", "pse_spread"}
         ``bayesian`` with ``bayes_placement = "entropy"``: minimise the
         entropy of the PSE alone or of PSE and spread.
