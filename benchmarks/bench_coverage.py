@@ -38,7 +38,9 @@ R`` scores their χ² on R random partitions into groups.  ``--save DIR``
 keeps each cell's fits (one pickle per procedure and trial count);
 ``--rescore DIR [DIR ...]`` scores stored fits again without simulating or
 fitting (for a new candidate statistic on the same fits; several folders of
-runs with different seeds are scored as one cell).
+runs with different seeds are scored as one cell); with ``--nulls`` it
+scores only the group χ²'s rejections under each null model of
+:data:`NULLS`, on the same pooled groups (minutes instead of most of an hour).
 Targets: coverage 93–97 %; false rejections 3–8 %.
 
 Run: ``python benchmarks/bench_coverage.py [--groups 6] [--boot 1000] [--jobs 2]
@@ -46,7 +48,7 @@ Run: ``python benchmarks/bench_coverage.py [--groups 6] [--boot 1000] [--jobs 2]
 [--trials 24 40] [--procedures updown bayesian] [--bootstraps fixed rerun]
 [--intervals bca percentile profile studentized] [--timing]
 [--spread-bias [--lapse-max 0.06 0.1]]
-[--save DIR | --rescore DIR [DIR ...] [--scale-check]]``
+[--save DIR | --rescore DIR [DIR ...] [--scale-check | --nulls [--partitions 20]]]``
 """
 
 from __future__ import annotations
@@ -73,9 +75,9 @@ from fitting.aftereffect import fit_decay, fit_tuning, peak_bounds  # noqa: E402
 from fitting.bootstrap import percentile_interval  # noqa: E402
 from fitting.observer import BY_STATISTIC, INTERVAL_METHODS, decay_interval, pse_shift_intervals  # noqa: E402
 from fitting.compare import agreement, combine_gains, compare_results, gls_gain  # noqa: E402
-from fitting.covariance import covariance_matrix, group_covariance, spread_dof  # noqa: E402
+from fitting.covariance import covariance_matrix, curve_between_covariance, group_covariance, spread_dof  # noqa: E402
 from fitting.group_chi2 import GroupData, calibrated_p  # noqa: E402
-from fitting.meta import random_effects, variance_from_interval  # noqa: E402
+from fitting.meta import dersimonian_laird, random_effects, variance_from_interval  # noqa: E402
 from fitting.group import GROUP, group_aftereffect, group_curves, group_pse, group_weights  # noqa: E402
 from fitting.psychometric import DEFAULT_LAPSE_MAX  # noqa: E402
 from fitting.report import fit_logs  # noqa: E402
@@ -379,6 +381,82 @@ def one_group(args) -> dict:
     return out
 
 
+def shrunk_excess_between(data) -> np.ndarray:
+    """Candidate null (``fitting.group_chi2.null_between``): the per-cell excess shrunk towards its mean over cells.
+
+    The cells' DerSimonian–Laird moment estimates beyond the curve part,
+    ``t_c``, unclipped, are shrunk towards their mean ``m`` by the empirical
+    Bayes factor of Efron & Morris (1975, JASA 70): ``m + A / (A + s_c²) ·
+    (t_c − m)`` with ``s_c² = 2 (v_c + τ²)² / (k − 1)`` the moment estimate's
+    sampling variance for ``k`` observers of equal within-observer variance
+    ``v_c`` (``τ²``: the curve part plus the clipped ``m``) and ``A`` the
+    cells' variance of ``t_c`` beyond the mean ``s_c²``, clipped at 0; then
+    clipped at 0 per cell.  With no spread between cells beyond noise
+    (``A = 0``) it is the common-excess null, with much the per-cell one.
+    """
+    curve = curve_between_covariance(data.shifts, data.within)
+    y, v = data.shifts, data.variances
+    t = dersimonian_laird(y, v, clip=False) - np.diagonal(curve)
+    ok = np.isfinite(y) & np.isfinite(v) & (v > 0)
+    w = np.where(ok, 1.0 / np.where(ok, v, 1.0), 0.0)
+    k = ok.sum(axis=0)
+    sw = w.sum(axis=0)
+    v_equal = (k - 1) / (sw - (w * w).sum(axis=0) / sw)
+    m = float(np.mean(t))
+    s2 = 2.0 * (v_equal + np.diagonal(curve) + max(m, 0.0)) ** 2 / (k - 1)
+    a = max(float(np.var(t, ddof=1) - np.mean(s2)), 0.0)
+    return curve + np.diag(np.maximum(m + a / (a + s2) * (t - m), 0.0))
+
+
+def _pooled_members(names, sizes, partitions: int):
+    """(partition, size, members) of every group formed from ``names``: disjoint within a partition (seed = its number)."""
+    for part in range(partitions):
+        order = np.random.default_rng(part).permutation(names)
+        for size in sizes:
+            for start in range(0, len(order) - size + 1, size):
+                yield part, size, set(order[start:start + size])
+
+
+def _pooled_tables(results, boot):
+    """Observer names, their rows of every table (one frame per table) and their shift replicates."""
+    tables = [r["tables"][boot] for r in results]
+    names = [obs for own, _ in tables for obs in own["pse"]["observer"].unique()]
+    rows = {k: pd.concat([own[k] for own, _ in tables], ignore_index=True) for k in tables[0][0]}
+    return names, rows, {k: v for _, r in tables for k, v in r.items()}
+
+
+#: Null models of the group χ² scored side by side by ``--nulls`` (``fitting.group_chi2.null_between``).
+NULLS = {"default: curve part and each cell's clipped excess": "curve and cells",
+         "curve part only": "curve",
+         "curve part and one excess shared by the cells": "curve and common excess",
+         "curve part and the cells' excess shrunk to their mean (Efron–Morris)": shrunk_excess_between}
+
+
+def null_rejections(results, boot, sizes, pop: dict, partitions: int, level: float = 0.95) -> list[str]:
+    """The group χ²'s rejections at 5 % (truth predicted) under each of :data:`NULLS`, on the same pooled groups.
+
+    Only the simulated p values are computed (no intervals, no other
+    candidates), so a cell's kept fits are scored in minutes.
+    """
+    names, rows, reps = _pooled_tables(results, boot)
+    hits = defaultdict(list)
+    for _, size, members in _pooled_members(names, sizes, partitions):
+        sub = rows["aftereffect"][rows["aftereffect"]["observer"].isin(members)]
+        g_ae = group_aftereffect(sub, level)
+        cells = list(zip(g_ae["lag"].astype(float), g_ae["adapter_offset_deg"].astype(float)))
+        pred = [pop["shift"][c] for c in cells]
+        data = GroupData.from_tables(sub, {o: np.cov(reps[o], rowvar=False) for o in members}, cells, level)
+        for name, between in NULLS.items():
+            (_, p), = calibrated_p(data, pred, between=between)
+            hits[(size, name)].append(p < 0.05)
+    lines = []
+    for (size, name), h in hits.items():
+        share, one = np.mean(h), len(names) // size        # ± of one partition (an upper bound)
+        lines.append(f"| groups of {size} | {name} | {100 * share:.1f} ± {100 * np.sqrt(share * (1 - share) / one):.1f} % "
+                     f"| {len(h)} |")
+    return lines
+
+
 def pooled_groups(results, boot, sizes, pop: dict, level: float = 0.95, partitions: int = 1):
     """Groups formed from all simulated observers of a cell (disjoint, at random), scored like ``fit``'s.
 
@@ -394,71 +472,65 @@ def pooled_groups(results, boot, sizes, pop: dict, level: float = 0.95, partitio
     Returns ``(units, rejected, independent)``: ``independent[label]`` is the
     number of disjoint groups in one partition.
     """
-    tables = [r["tables"][boot] for r in results]
-    names = [obs for own, _ in tables for obs in own["pse"]["observer"].unique()]
-    rows = {k: pd.concat([own[k] for own, _ in tables], ignore_index=True) for k in tables[0][0]}
-    reps = {k: v for _, r in tables for k, v in r.items()}
+    names, rows, reps = _pooled_tables(results, boot)
     units, rejected, independent = defaultdict(list), defaultdict(list), {}
-    for size, part in ((size, part) for part in range(partitions) for size in sizes):
-        order = np.random.default_rng(part).permutation(names)
+    for part, size, members in _pooled_members(names, sizes, partitions):
         label = f"pooled groups of {size}" + (f" ({partitions} partitions)" if partitions > 1 else "")
-        independent[label] = independent[f"{label}: GLS gain of the group shifts"] = len(order) // size
-        for start in range(0, len(order) - size + 1, size):
-            members = set(order[start:start + size])
-            sub = {k: v[v["observer"].isin(members)] for k, v in rows.items()}
-            g_ae = group_aftereffect(sub["aftereffect"], level)
-            if part == 0:
-                tuning, decay, _, _ = group_curves(sub["aftereffect"], level, [], sub["tuning"], sub["decay"])
-                rep = SimpleNamespace(pse=group_pse(sub["pse"], level), aftereffect=g_ae, tuning=tuning,
-                                      decay=decay)
-                for kind, pair in score(rep, GROUP, pop).items():
-                    units[(f"pooled groups of {size}", kind)].append(pair)
-            fake = [SimpleNamespace(observer=o, curves={"shift_reps": reps[o]},
-                                    aftereffect=sub["aftereffect"][sub["aftereffect"]["observer"] == o])
-                    for o in sorted(members)]
-            cov = group_covariance(fake, g_ae, group_weights(sub["aftereffect"], level), level)
-            matrix, _, dof = covariance_matrix(cov, GROUP, g_ae["lag"], g_ae["adapter_offset_deg"])[:3]
-            pred = [pop["shift"][(float(lag), float(o))] for lag, o in zip(g_ae["lag"], g_ae["adapter_offset_deg"])]
-            a = agreement(g_ae["pse_shift_deg"], g_ae["ci_low"], g_ae["ci_high"], pred, None, matrix, np.nan, dof)
-            # compare's p value: from simulated groups (fitting.group_chi2), as compare_results computes it
-            cells = list(zip(g_ae["lag"].astype(float), g_ae["adapter_offset_deg"].astype(float)))
-            data = GroupData.from_tables(sub["aftereffect"], {o.observer: np.cov(o.curves["shift_reps"], rowvar=False)
-                                                              for o in fake}, cells, level)
-            (_, p_sim), = calibrated_p(data, pred)
-            (_, p_curve), = calibrated_p(data, pred, between="curve")
-            (_, p_common), = calibrated_p(data, pred, between="curve and common excess")
-            # the group gain as compare gives it: the observers' own gains (against the same predictions), combined
-            gains = []
-            for o in fake:
-                ae = o.aftereffect
-                own_pred = [pop["shift"][(float(lag), float(x))] for lag, x in zip(ae["lag"], ae["adapter_offset_deg"])]
-                reps_o = o.curves["shift_reps"]
-                own = agreement(ae["pse_shift_deg"], ae["ci_low"], ae["ci_high"], own_pred, None,
-                                np.cov(reps_o, rowvar=False), reps_o.shape[0], np.nan, trials=ae["n_trials"])
-                gains.append((own.gain, own.gain_se))
-            _, g_low, g_high = combine_gains(*zip(*gains))
-            rejected[label].append((p_sim < 0.05, a.chi2, a.dof, g_low <= 1.0 <= g_high))
-            rejected[f"{label}: GLS gain of the group shifts"].append(
-                (p_sim < 0.05, a.chi2, a.dof, a.gain_ci_low <= 1.0 <= a.gain_ci_high))
-            rejected[f"{label}: t-read normal scores against chi2 (before)"].append(
-                (a.chi2_p < 0.05, a.chi2, a.dof, np.nan))
-            rejected[f"{label}: simulated, between-observer part along the curve only"].append(
-                (p_curve < 0.05, a.chi2, a.dof, np.nan))
-            rejected[f"{label}: simulated, curve part and one excess shared by the cells"].append(
-                (p_common < 0.05, a.chi2, a.dof, np.nan))
-            for name in ("t-read normal scores against chi2 (before)",
-                         "simulated, between-observer part along the curve only",
-                         "simulated, curve part and one excess shared by the cells"):
-                independent[f"{label}: {name}"] = independent[label]
-            weights = group_weights(sub["aftereffect"], level)
-            matrix_b, matrix_o, matrix_d = (
-                covariance_matrix(group_covariance(fake, g_ae, weights, level, between=kind),
-                                  GROUP, g_ae["lag"], g_ae["adapter_offset_deg"]).matrix
-                for kind in ("cells", "none", size_and_decay_between))
-            for name, rej in group_chi2_candidates(sub["aftereffect"], g_ae, matrix, dof, np.asarray(pred),
-                                                   level, matrix_b, matrix_o, matrix_d).items():
-                rejected[f"{label}: {name}"].append(rej)
-                independent[f"{label}: {name}"] = independent[label]
+        independent[label] = independent[f"{label}: GLS gain of the group shifts"] = len(names) // size
+        sub = {k: v[v["observer"].isin(members)] for k, v in rows.items()}
+        g_ae = group_aftereffect(sub["aftereffect"], level)
+        if part == 0:
+            tuning, decay, _, _ = group_curves(sub["aftereffect"], level, [], sub["tuning"], sub["decay"])
+            rep = SimpleNamespace(pse=group_pse(sub["pse"], level), aftereffect=g_ae, tuning=tuning,
+                                  decay=decay)
+            for kind, pair in score(rep, GROUP, pop).items():
+                units[(f"pooled groups of {size}", kind)].append(pair)
+        fake = [SimpleNamespace(observer=o, curves={"shift_reps": reps[o]},
+                                aftereffect=sub["aftereffect"][sub["aftereffect"]["observer"] == o])
+                for o in sorted(members)]
+        cov = group_covariance(fake, g_ae, group_weights(sub["aftereffect"], level), level)
+        matrix, _, dof = covariance_matrix(cov, GROUP, g_ae["lag"], g_ae["adapter_offset_deg"])[:3]
+        pred = [pop["shift"][(float(lag), float(o))] for lag, o in zip(g_ae["lag"], g_ae["adapter_offset_deg"])]
+        a = agreement(g_ae["pse_shift_deg"], g_ae["ci_low"], g_ae["ci_high"], pred, None, matrix, np.nan, dof)
+        # compare's p value: from simulated groups (fitting.group_chi2), as compare_results computes it
+        cells = list(zip(g_ae["lag"].astype(float), g_ae["adapter_offset_deg"].astype(float)))
+        data = GroupData.from_tables(sub["aftereffect"], {o.observer: np.cov(o.curves["shift_reps"], rowvar=False)
+                                                          for o in fake}, cells, level)
+        (_, p_sim), = calibrated_p(data, pred)
+        (_, p_curve), = calibrated_p(data, pred, between="curve")
+        (_, p_common), = calibrated_p(data, pred, between="curve and common excess")
+        # the group gain as compare gives it: the observers' own gains (against the same predictions), combined
+        gains = []
+        for o in fake:
+            ae = o.aftereffect
+            own_pred = [pop["shift"][(float(lag), float(x))] for lag, x in zip(ae["lag"], ae["adapter_offset_deg"])]
+            reps_o = o.curves["shift_reps"]
+            own = agreement(ae["pse_shift_deg"], ae["ci_low"], ae["ci_high"], own_pred, None,
+                            np.cov(reps_o, rowvar=False), reps_o.shape[0], np.nan, trials=ae["n_trials"])
+            gains.append((own.gain, own.gain_se))
+        _, g_low, g_high = combine_gains(*zip(*gains))
+        rejected[label].append((p_sim < 0.05, a.chi2, a.dof, g_low <= 1.0 <= g_high))
+        rejected[f"{label}: GLS gain of the group shifts"].append(
+            (p_sim < 0.05, a.chi2, a.dof, a.gain_ci_low <= 1.0 <= a.gain_ci_high))
+        rejected[f"{label}: t-read normal scores against chi2 (before)"].append(
+            (a.chi2_p < 0.05, a.chi2, a.dof, np.nan))
+        rejected[f"{label}: simulated, between-observer part along the curve only"].append(
+            (p_curve < 0.05, a.chi2, a.dof, np.nan))
+        rejected[f"{label}: simulated, curve part and one excess shared by the cells"].append(
+            (p_common < 0.05, a.chi2, a.dof, np.nan))
+        for name in ("t-read normal scores against chi2 (before)",
+                     "simulated, between-observer part along the curve only",
+                     "simulated, curve part and one excess shared by the cells"):
+            independent[f"{label}: {name}"] = independent[label]
+        weights = group_weights(sub["aftereffect"], level)
+        matrix_b, matrix_o, matrix_d = (
+            covariance_matrix(group_covariance(fake, g_ae, weights, level, between=kind),
+                              GROUP, g_ae["lag"], g_ae["adapter_offset_deg"]).matrix
+            for kind in ("cells", "none", size_and_decay_between))
+        for name, rej in group_chi2_candidates(sub["aftereffect"], g_ae, matrix, dof, np.asarray(pred),
+                                               level, matrix_b, matrix_o, matrix_d).items():
+            rejected[f"{label}: {name}"].append(rej)
+            independent[f"{label}: {name}"] = independent[label]
     return units, rejected, independent
 
 
@@ -753,6 +825,9 @@ def main() -> None:
     ap.add_argument("--save", type=Path, help="keep each cell's fits in this folder (pickles)")
     ap.add_argument("--rescore", type=Path, nargs="+",
                     help="score the fits kept by --save in these folders (as one cell); no simulation")
+    ap.add_argument("--nulls", action="store_true",
+                    help="with --rescore: only the group chi2's rejections under each null model, on the same "
+                         "pooled groups (--sizes, --partitions)")
     ap.add_argument("--scale-check", action="store_true",
                     help="with --rescore: only print how the observers' chi2 follows their fitted spread")
     args = ap.parse_args()
@@ -764,6 +839,8 @@ def main() -> None:
         ap.error(f"--boot: at least 50 replicates (a covariance of the 32 shifts needs more than 34), not {args.boot}")
     if args.scale_check and not args.rescore:
         ap.error("--scale-check needs --rescore DIR (kept fits)")
+    if args.nulls and not args.rescore:
+        ap.error("--nulls needs --rescore DIR (kept fits)")
     if args.partitions < 1:
         ap.error(f"--partitions: expected a whole number >= 1, got {args.partitions}")
     model = load_model(args.model)
@@ -778,6 +855,18 @@ def main() -> None:
         return
     if args.spread_bias:
         print("\n".join(spread_bias(args, model)))
+        return
+    if args.nulls:
+        print("| groups | null model of the group χ² | rejections at 5 % (truth predicted) ± MC SE of one partition | tests |")
+        print("|---|---|---|---|")
+        for proc in args.procedures:
+            for n_trials in args.trials:
+                results = cell_results(args, proc, n_trials, "", model, pop)
+                print(f"| **{proc}, {n_trials} trials, {sum(r['n_obs'] for r in results)} observers, "
+                      f"{args.partitions} partitions** |  |  |  |")
+                print("\n".join(null_rejections(results, (args.bootstraps[0], args.intervals[0]), args.sizes, pop,
+                                                args.partitions)), flush=True)
+        print(f"\ntotal {time.perf_counter() - t0:.0f} s")
         return
     if args.timing:
         print("\n".join(timing(args, model)) + "\n", flush=True)

@@ -39,7 +39,7 @@ import sys
 from concurrent.futures import ProcessPoolExecutor
 
 import numpy as np
-from scipy.special import ndtr
+from scipy.special import ndtr, xlogy
 
 sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), os.pardir))
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
@@ -70,7 +70,7 @@ CANDIDATES = [
 
 
 class ScratchEntropyTrack(EntropyTrack):
-    """Five Bayesian variants tried against the default and not adopted (benchmark only).
+    """Six Bayesian variants tried against the default and not adopted (benchmark only).
 
     ``switch_after``: least expected entropy for the first K trials of the
     track, then the level nearest the posterior mean of the PSE;
@@ -81,18 +81,23 @@ class ScratchEntropyTrack(EntropyTrack):
     (the minimum-variance rule of King-Smith et al., 1994);
     ``posterior_lapse``: the posterior's lapse held at this one value
     instead of spanning the grid's lapse rates (the entropy rule then has no
-    lapse to learn from far levels).
+    lapse to learn from far levels);
+    ``conditional``: least expected entropy of the PSE *given the spread*,
+    H(μ, σ) − H(σ) with λ summed out (the conditional entropy, Cover &
+    Thomas, 2006, Elements of Information Theory, §2.2), so that what a
+    level would teach about the spread itself does not count.
     """
 
     def __init__(self, switch_after: int | None = None, pse_prior_sd: float | None = None,
                  near_spreads: float | None = None, min_variance: bool = False,
-                 posterior_lapse: float | None = None, **kw):
+                 posterior_lapse: float | None = None, conditional: bool = False, **kw):
         if posterior_lapse is not None:
             kw["grid"] = dataclasses.replace(kw["grid"], lapses=(posterior_lapse,))
         super().__init__(**kw)
         self.switch_after = switch_after
         self.near_spreads = near_spreads
         self.min_variance = min_variance
+        self.conditional = conditional
         if pse_prior_sd:
             self._log_post += (-0.5 * (self._mu / pse_prior_sd) ** 2)[:, None, None]
 
@@ -110,7 +115,24 @@ class ScratchEntropyTrack(EntropyTrack):
             out += m @ self._mu ** 2 - np.divide(first ** 2, mass, out=np.zeros_like(first), where=mass > 0)
         return out
 
+    def expected_conditional_entropies(self) -> np.ndarray:
+        """Expected posterior entropy of the PSE given the spread, H(μ, σ) − H(σ), after one trial at each level."""
+        p = self.posterior()
+        a = p @ self._half_lapse  # (μ, σ)
+        b = p @ self._keep
+        joint = p.sum(axis=2)
+        cw = self._table * b[None] + a[None]  # (levels, μ, σ), unnormalised joint after "cw"
+        ccw = np.maximum(joint[None] - cw, 0.0)
+        out = np.zeros(self._level_values.size)
+        for m in (cw, ccw):
+            marg = m.sum(axis=1)  # (levels, σ)
+            # H(μ, σ) − H(σ) of the normalised posterior, weighted by P(answer): Σ m log m over σ minus over (μ, σ)
+            out += xlogy(marg, marg).sum(axis=1) - xlogy(m, m).sum(axis=(1, 2))
+        return out
+
     def next_level(self) -> float:
+        if self._proposal is None and self.conditional and not self.finished:
+            self._proposal = float(self._level_values[int(np.argmin(self.expected_conditional_entropies()))])
         if self._proposal is None and self.min_variance and not self.finished:
             self._proposal = float(self._level_values[int(np.argmin(self.expected_pse_variances()))])
         if self._proposal is None and self.switch_after is not None and self.n_trials >= self.switch_after:
@@ -125,7 +147,7 @@ class ScratchEntropyTrack(EntropyTrack):
         return super().next_level()
 
 
-SCRATCH = ("switch_after", "pse_prior_sd", "near_spreads", "min_variance", "posterior_lapse")
+SCRATCH = ("switch_after", "pse_prior_sd", "near_spreads", "min_variance", "posterior_lapse", "conditional")
 
 
 def _track(settings: dict, n: int, t: int):
@@ -144,7 +166,8 @@ SCRATCH_ROWS = [(f"bayesian, entropy for {k} trials then posterior mean (scratch
      dict(method="bayesian", near_spreads=k)) for k in (0.5, 1.0)] + [
     ("bayesian, least expected posterior variance of the PSE (scratch)", dict(method="bayesian", min_variance=True))] + [
     (f"bayesian, posterior lapse held at {lam:g} (scratch)", dict(method="bayesian", posterior_lapse=lam))
-    for lam in (0.0, 0.02)]
+    for lam in (0.0, 0.02)] + [
+    ("bayesian, least expected entropy of the PSE given the spread (scratch)", dict(method="bayesian", conditional=True))]
 
 
 def simulate(settings: dict, mus, lapse: float, seeds, spread: float = SPREAD,

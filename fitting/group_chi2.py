@@ -162,8 +162,11 @@ def group_statistic(data: GroupData, shifts, predicted, prediction_var=None, sel
 BETWEEN = ("curve and cells", "curve", "curve and common excess")
 
 
-def null_between(data: GroupData, between: str = BETWEEN[0]) -> np.ndarray:
+def null_between(data: GroupData, between=BETWEEN[0]) -> np.ndarray:
     """Between-observer covariance ``T`` of the null model (see the module text).
+
+    ``between``: one of :data:`BETWEEN`, or a function of ``data`` returning
+    ``T`` (a candidate measured in ``benchmarks/``).
 
     ``between="curve"``: the part along the mean curve alone, as ``fit``'s
     group covariance has it (a measured candidate: it leaves out what the
@@ -176,6 +179,8 @@ def null_between(data: GroupData, between: str = BETWEEN[0]) -> np.ndarray:
     estimate, but pooled, the excess is mostly 0 and the test rejects too
     often at 40 trials per condition; ``benchmarks/README.md``).
     """
+    if callable(between):
+        return between(data)
     if between not in BETWEEN:
         raise ValueError(f"between: expected one of {BETWEEN}, got {between!r}")
     curve = curve_between_covariance(data.shifts, data.within)
@@ -196,7 +201,7 @@ def _root(c: np.ndarray) -> np.ndarray:
 
 
 def calibrated_p(data: GroupData, predicted, prediction_sd=None, selects=(None,), draws: int = DRAWS,
-                 seed: int = 0, between: str = BETWEEN[0]) -> list[tuple[float, float]]:
+                 seed: int = 0, between=BETWEEN[0]) -> list[tuple[float, float]]:
     """The group χ² and its simulated p value under "the predictions are the truth".
 
     Parameters
@@ -212,7 +217,7 @@ def calibrated_p(data: GroupData, predicted, prediction_sd=None, selects=(None,)
         Simulated groups.
     seed : int
         Seed of the simulation (fixed: the same files give the same p).
-    between : str
+    between : str or callable
         Between-observer part of the null model (:func:`null_between`).
 
     Returns

@@ -92,6 +92,18 @@ def test_the_common_excess_is_pooled_over_cells_before_it_is_clipped():
     assert np.trace(common) < np.trace(null_between(data))
 
 
+def test_a_null_model_given_as_a_function_of_the_data_is_the_one_simulated():
+    """Benchmarks pass candidate nulls as functions; the same model by name or as a function gives the same p."""
+    rng = np.random.default_rng(6)
+    shifts, covs = _group(rng, 4)
+    data = GroupData.from_tables(shifts, covs, CELLS)
+    by_name = calibrated_p(data, CURVE, draws=300, between="curve")
+    assert calibrated_p(data, CURVE, draws=300, between=lambda d: null_between(d, "curve")) == by_name
+    assert calibrated_p(data, CURVE, draws=300) != by_name     # the default null is another model
+    with pytest.raises(ValueError, match="between"):
+        null_between(data, "curves")
+
+
 def test_groups_read_from_tables_keep_missing_cells_apart_and_need_every_covariance():
     rng = np.random.default_rng(4)
     shifts, covs = _group(rng, 3)
