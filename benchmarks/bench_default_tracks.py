@@ -167,7 +167,9 @@ SCRATCH_ROWS = [(f"bayesian, entropy for {k} trials then posterior mean (scratch
     ("bayesian, least expected posterior variance of the PSE (scratch)", dict(method="bayesian", min_variance=True))] + [
     (f"bayesian, posterior lapse held at {lam:g} (scratch)", dict(method="bayesian", posterior_lapse=lam))
     for lam in (0.0, 0.02)] + [
-    ("bayesian, least expected entropy of the PSE given the spread (scratch)", dict(method="bayesian", conditional=True))]
+    ("bayesian, least expected entropy of the PSE given the spread (scratch)", dict(method="bayesian", conditional=True)),
+    ("bayesian, PSE grid ±10° (a diagnostic of the search: cannot reach a PSE 15° away) (scratch)",
+     dict(method="bayesian", pse_range_deg=[-10.0, 10.0]))]
 
 
 def simulate(settings: dict, mus, lapse: float, seeds, spread: float = SPREAD,
