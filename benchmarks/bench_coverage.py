@@ -425,6 +425,14 @@ def _pooled_tables(results, boot):
     return names, rows, {k: v for _, r in tables for k, v in r.items()}
 
 
+def _group_test_data(ae_rows: pd.DataFrame, reps: dict, pop: dict, level: float):
+    """A pooled group's shifts (``group_aftereffect``), the true shifts of its cells and its :class:`GroupData`."""
+    g_ae = group_aftereffect(ae_rows, level)
+    cells = list(zip(g_ae["lag"].astype(float), g_ae["adapter_offset_deg"].astype(float)))
+    covariances = {o: np.cov(reps[o], rowvar=False) for o in ae_rows["observer"].unique()}
+    return g_ae, [pop["shift"][c] for c in cells], GroupData.from_tables(ae_rows, covariances, cells, level)
+
+
 #: Null models of the group χ² scored side by side by ``--nulls`` (``fitting.group_chi2.null_between``).
 NULLS = {"default: curve part and each cell's clipped excess": "curve and cells",
          "curve part only": "curve",
@@ -441,11 +449,8 @@ def null_rejections(results, boot, sizes, pop: dict, partitions: int, level: flo
     names, rows, reps = _pooled_tables(results, boot)
     hits = defaultdict(list)
     for _, size, members in _pooled_members(names, sizes, partitions):
-        sub = rows["aftereffect"][rows["aftereffect"]["observer"].isin(members)]
-        g_ae = group_aftereffect(sub, level)
-        cells = list(zip(g_ae["lag"].astype(float), g_ae["adapter_offset_deg"].astype(float)))
-        pred = [pop["shift"][c] for c in cells]
-        data = GroupData.from_tables(sub, {o: np.cov(reps[o], rowvar=False) for o in members}, cells, level)
+        _, pred, data = _group_test_data(rows["aftereffect"][rows["aftereffect"]["observer"].isin(members)],
+                                         reps, pop, level)
         for name, between in NULLS.items():
             (_, p), = calibrated_p(data, pred, between=between)
             hits[(size, name)].append(p < 0.05)
@@ -478,7 +483,7 @@ def pooled_groups(results, boot, sizes, pop: dict, level: float = 0.95, partitio
         label = f"pooled groups of {size}" + (f" ({partitions} partitions)" if partitions > 1 else "")
         independent[label] = independent[f"{label}: GLS gain of the group shifts"] = len(names) // size
         sub = {k: v[v["observer"].isin(members)] for k, v in rows.items()}
-        g_ae = group_aftereffect(sub["aftereffect"], level)
+        g_ae, pred, data = _group_test_data(sub["aftereffect"], reps, pop, level)
         if part == 0:
             tuning, decay, _, _ = group_curves(sub["aftereffect"], level, [], sub["tuning"], sub["decay"])
             rep = SimpleNamespace(pse=group_pse(sub["pse"], level), aftereffect=g_ae, tuning=tuning,
@@ -490,12 +495,8 @@ def pooled_groups(results, boot, sizes, pop: dict, level: float = 0.95, partitio
                 for o in sorted(members)]
         cov = group_covariance(fake, g_ae, group_weights(sub["aftereffect"], level), level)
         matrix, _, dof = covariance_matrix(cov, GROUP, g_ae["lag"], g_ae["adapter_offset_deg"])[:3]
-        pred = [pop["shift"][(float(lag), float(o))] for lag, o in zip(g_ae["lag"], g_ae["adapter_offset_deg"])]
         a = agreement(g_ae["pse_shift_deg"], g_ae["ci_low"], g_ae["ci_high"], pred, None, matrix, np.nan, dof)
         # compare's p value: from simulated groups (fitting.group_chi2), as compare_results computes it
-        cells = list(zip(g_ae["lag"].astype(float), g_ae["adapter_offset_deg"].astype(float)))
-        data = GroupData.from_tables(sub["aftereffect"], {o.observer: np.cov(o.curves["shift_reps"], rowvar=False)
-                                                          for o in fake}, cells, level)
         (_, p_sim), = calibrated_p(data, pred)
         (_, p_curve), = calibrated_p(data, pred, between="curve")
         (_, p_common), = calibrated_p(data, pred, between="curve and common excess")
