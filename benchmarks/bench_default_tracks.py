@@ -25,6 +25,13 @@ with P(cw | x) = λ/2 + (1 − λ)·Φ((x − μ)/σ), σ = 3° (``--spread``), 
 Every row sees the same true PSEs and the same random numbers (common random
 numbers), so differences between rows are less noisy than each row's ± says.
 
+``--conditions C`` runs a session of C conditions instead of one: each run
+draws C PSEs, the conditions' trials are interleaved in a shuffled order,
+and the Bayesian tracks share what they learn about spread and lapse as a
+session's do (``bayes_share_spread``, :mod:`runner.shared_evidence`).  The
+efficiencies are then those of ``fit``'s joint fit (one spread for the C
+conditions); the last column gives them from one fit per condition.
+
 Target (issue 14): the defaults of ``updown``, ``weighted`` and ``bayesian``
 reach PSE efficiency ≥ 0.85 in both λ rows.
 """
@@ -47,6 +54,8 @@ sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 from bench_adaptive_efficiency import fit_runs, pse_bound  # noqa: E402
 from runner.protocol import ProcedureSettings  # noqa: E402
 from runner.adaptive import EntropyTrack  # noqa: E402
+from fitting.psychometric import Cells, Layout, parameter_bounds, solve_batch, starting_values  # noqa: E402
+from runner.shared_evidence import SharedEvidence  # noqa: E402
 from runner.tracks import entropy_settings, procedure_track  # noqa: E402
 
 SPREAD = 3.0
@@ -150,13 +159,17 @@ class ScratchEntropyTrack(EntropyTrack):
 SCRATCH = ("switch_after", "pse_prior_sd", "near_spreads", "min_variance", "posterior_lapse", "conditional")
 
 
-def _track(settings: dict, n: int, t: int):
+def _procedure(settings: dict) -> ProcedureSettings:
+    return ProcedureSettings(**{k: v for k, v in settings.items() if k not in SCRATCH})
+
+
+def _track(settings: dict, n: int, t: int, evidence=None):
     """Track number ``t`` as a session builds it, or a :class:`ScratchEntropyTrack` for a scratch setting."""
     scratch = {k: settings[k] for k in SCRATCH if k in settings}
-    proc = ProcedureSettings(**{k: v for k, v in settings.items() if k not in SCRATCH})
+    proc = _procedure(settings)
     if scratch:
-        return ScratchEntropyTrack(**scratch, **entropy_settings(proc, n))
-    return procedure_track(proc, n, t, (0, t))
+        return ScratchEntropyTrack(**scratch, **entropy_settings(proc, n), evidence=evidence)
+    return procedure_track(proc, n, t, (0, t), evidence)
 
 
 SCRATCH_ROWS = [(f"bayesian, entropy for {k} trials then posterior mean (scratch)",
@@ -169,69 +182,113 @@ SCRATCH_ROWS = [(f"bayesian, entropy for {k} trials then posterior mean (scratch
     for lam in (0.0, 0.02)] + [
     ("bayesian, least expected entropy of the PSE given the spread (scratch)", dict(method="bayesian", conditional=True)),
     ("bayesian, PSE grid ±10° (a diagnostic of the search: cannot reach a PSE 15° away) (scratch)",
-     dict(method="bayesian", pse_range_deg=[-10.0, 10.0]))]
+     dict(method="bayesian", pse_range_deg=[-10.0, 10.0]))] + [
+    ("bayesian, every track learns the spread alone (bayes_share_spread = false)",
+     dict(method="bayesian", bayes_share_spread=False))]
 
 
 def simulate(settings: dict, mus, lapse: float, seeds, spread: float = SPREAD,
              tracks: int = 2) -> tuple[np.ndarray, np.ndarray]:
-    """Levels and answers (R, N) of ``tracks`` tracks per run (taking turns, N trials in all)."""
+    """Levels and answers (R, C, N) of C conditions per run, ``tracks`` tracks each (N trials per condition).
+
+    ``mus``: (R, C) true PSEs.  A condition's tracks take turns; with C > 1
+    the conditions' trials come in a shuffled order.  Bayesian tracks of a
+    run share spread and lapse evidence unless ``bayes_share_spread`` is off.
+    """
     levels, answers = [], []
+    proc = _procedure(settings)
     for mu, seed in zip(mus, seeds):
         rng = np.random.default_rng(seed)
-        made = [_track(settings, N_TRIALS // tracks, t) for t in range(tracks)]
-        lv, an = [], []
-        for i in range(N_TRIALS):
-            track = made[i % tracks]
+        C = len(mu)
+        shared = SharedEvidence() if proc.method == "bayesian" and proc.bayes_share_spread else None
+        made = [[_track(settings, N_TRIALS // tracks, t, shared) for t in range(tracks)] for _ in range(C)]
+        order = np.zeros(N_TRIALS, int) if C == 1 else rng.permutation(np.repeat(np.arange(C), N_TRIALS))
+        lv, an = np.zeros((C, N_TRIALS)), np.zeros((C, N_TRIALS))
+        done = np.zeros(C, int)
+        for c in order:
+            i = done[c]
+            track = made[c][i % tracks]
             x = track.next_level()
-            r = int(rng.random() < lapse / 2 + (1 - lapse) * ndtr((x - mu) / spread))
+            r = int(rng.random() < lapse / 2 + (1 - lapse) * ndtr((x - mu[c]) / spread))
             track.update(x, r)
-            lv.append(x)
-            an.append(r)
+            lv[c, i], an[c, i] = x, r
+            done[c] += 1
         levels.append(lv)
         answers.append(an)
-    return np.array(levels, dtype=float), np.array(answers, dtype=float)
+    return np.array(levels), np.array(answers)
+
+
+def joint_fit(levels: np.ndarray, answers: np.ndarray, lapse: float) -> tuple[np.ndarray, np.ndarray]:
+    """PSEs (R, C) and spreads (R,) of one fit per run with one spread for its C conditions (``fit``'s default)."""
+    runs, C, n = levels.shape
+    layout = Layout(n_conditions=C, shared_spread=True, lapse=lapse)
+    starts, lows, highs = [], [], []
+    for x, y in zip(levels, answers):
+        cells = Cells.from_trials(x.ravel(), y.ravel(), np.repeat(np.arange(C), n), C)
+        lo, hi = parameter_bounds(cells, layout)
+        starts.append(starting_values(cells, layout))
+        lows.append(lo)
+        highs.append(hi)
+    sol = solve_batch(np.array(starts), levels, np.ones_like(levels), answers, layout, np.array(lows), np.array(highs))
+    pse, sd, _ = layout.unpack(sol.theta)
+    return pse, sd[:, 0]
 
 
 def _chunk(args):
     return simulate(*args)
 
 
+def _scores(err: np.ndarray, sd: np.ndarray, spread: float, lapse: float) -> dict:
+    sq = err.ravel() ** 2
+    mse = float(sq.mean())
+    eff = pse_bound(N_TRIALS, spread, lapse) ** 2 / mse
+    return {"rmse": math.sqrt(mse), "eff": eff, "eff_se": eff * float(sq.std()) / (mse * math.sqrt(sq.size)),
+            "sd_rel": float(np.sqrt(np.mean((sd - spread) ** 2))) / spread}
+
+
 def cell(pool, settings: dict, lapse: float, runs: int, seed, far: bool, jobs: int, spread: float = SPREAD,
-         tracks: int = 2) -> dict:
-    """Efficiency, spread RMSE and flags of one setting at one lapse rate."""
+         tracks: int = 2, conditions: int = 1) -> dict:
+    """Efficiency, spread RMSE and flags of one setting at one lapse rate.
+
+    With ``conditions`` > 1 the scores are the joint fit's; ``alone`` holds
+    those of one fit per condition.
+    """
     rng = np.random.default_rng(seed)
-    mus = np.full(runs, FAR_PSE) if far else rng.uniform(-5.0, 5.0, runs)
+    mus = np.full((runs, conditions), FAR_PSE) if far else rng.uniform(-5.0, 5.0, (runs, conditions))
     seeds = [[*seed, i] for i in range(runs)]
     parts = [(settings, mus[j::jobs], lapse, seeds[j::jobs], spread, tracks) for j in range(jobs)]
     done = list(pool.map(_chunk, parts))
     order = np.concatenate([np.arange(runs)[j::jobs] for j in range(jobs)])
     levels = np.concatenate([d[0] for d in done])
     answers = np.concatenate([d[1] for d in done])
-    pse, sd, flagged = fit_runs(levels, answers, lapse)
-    err = pse - mus[order]
-    sq = err ** 2
-    mse = float(sq.mean())
-    bound = pse_bound(N_TRIALS, spread, lapse)
-    eff = bound ** 2 / mse
-    return {"rmse": math.sqrt(mse), "eff": eff, "eff_se": eff * float(sq.std()) / (mse * math.sqrt(runs)),
-            "sd_rel": float(np.sqrt(np.mean((sd - spread) ** 2))) / spread, "flagged": float(flagged.mean())}
+    pse, sd, flagged = fit_runs(levels.reshape(-1, N_TRIALS), answers.reshape(-1, N_TRIALS), lapse)
+    alone = _scores(pse - mus[order].ravel(), sd, spread, lapse)
+    alone["flagged"] = float(flagged.mean())
+    if conditions == 1:
+        return alone
+    pse, sd = joint_fit(levels, answers, lapse)
+    return {**_scores(pse - mus[order], sd, spread, lapse), "alone": alone}
 
 
 def efficiency_table(runs: int = 1500, seed: int = 1, quick: bool = False, jobs: int | None = None,
                      spread: float = SPREAD, tracks: int = 2, methods=None, scratch: bool = False,
-                     only=None) -> list[str]:
+                     only=None, conditions: int = 1) -> list[str]:
     """The table as Markdown lines (``quick``: the defaults and the earlier Bayesian one; Bayesian with runs // 3).
 
     ``tracks``: tracks per condition sharing the 80 trials (2, as the
-    protocols have them; 1: one track of 80 trials).
+    protocols have them; 1: one track of 80 trials).  ``conditions``: runs
+    are sessions of this many conditions (see the module docstring); runs
+    per cell are divided by it, so a cell scores about as many PSEs.
     """
     jobs = jobs or len(os.sched_getaffinity(0))
-    lines = [f"# default tracks at {N_TRIALS} trials in {tracks} track(s): sigma = {spread:g} deg, true PSE uniform "
-             f"in [-5, 5] deg ({runs} runs per cell, Bayesian {max(runs // 3, 20)}); far: PSE = {FAR_PSE:g} deg, "
-             "lapse 4 %",
+    session = f" in sessions of {conditions} conditions (joint fit; one fit per condition last)" if conditions > 1 else ""
+    lines = [f"# default tracks at {N_TRIALS} trials in {tracks} track(s){session}: sigma = {spread:g} deg, true PSE "
+             f"uniform in [-5, 5] deg ({runs} PSEs per cell, Bayesian {max(runs // 3, 20)}); far: PSE = {FAR_PSE:g} "
+             "deg, lapse 4 %",
              "| setting | PSE eff. λ = 0 | PSE eff. λ = 4 % | spread RMSE/σ λ = 0 | spread RMSE/σ λ = 4 % "
-             "| far PSE: RMSE (deg) | far PSE: eff. | ≥ 0.85 in both |",
-             "|---|---|---|---|---|---|---|---|"]
+             "| far PSE: RMSE (deg) | far PSE: eff. | ≥ 0.85 in both |" + (" one fit per condition: eff. λ = 0 / 4 % |"
+                                                                          if conditions > 1 else ""),
+             "|---|---|---|---|---|---|---|---|" + ("---|" if conditions > 1 else "")]
     rows = [r for r in (CANDIDATES[:4] if quick else CANDIDATES) if not methods or r[1]["method"] in methods]
     rows += [r for r in SCRATCH_ROWS if scratch]
     if only:
@@ -239,14 +296,16 @@ def efficiency_table(runs: int = 1500, seed: int = 1, quick: bool = False, jobs:
     with ProcessPoolExecutor(jobs) as pool:
         for label, settings in rows:
             n = max(runs // 3, 20) if settings["method"] == "bayesian" else runs
-            near = [cell(pool, settings, lam, n, [seed, i], False, jobs, spread, tracks)
+            n = max(n // conditions, 2)
+            near = [cell(pool, settings, lam, n, [seed, i], False, jobs, spread, tracks, conditions)
                     for i, lam in enumerate((0.0, 0.04))]
-            far = cell(pool, settings, 0.04, n, [seed, 2], True, jobs, spread, tracks)
+            far = cell(pool, settings, 0.04, n, [seed, 2], True, jobs, spread, tracks, conditions)
             met = all(c["eff"] >= 0.85 for c in near)
+            alone = (f" {near[0]['alone']['eff']:.2f} / {near[1]['alone']['eff']:.2f} |" if conditions > 1 else "")
             lines.append(f"| {label} | {near[0]['eff']:.2f} ± {near[0]['eff_se']:.2f} | "
                          f"{near[1]['eff']:.2f} ± {near[1]['eff_se']:.2f} | {near[0]['sd_rel']:.2f} | "
                          f"{near[1]['sd_rel']:.2f} | {far['rmse']:.2f} | {far['eff']:.2f} | "
-                         f"{'met' if met else 'missed'} |")
+                         f"{'met' if met else 'missed'} |" + alone)
     return lines
 
 
@@ -262,14 +321,19 @@ def main() -> None:
     ap.add_argument("--scratch", action="store_true",
                     help="also the Bayesian variants tried and not adopted (posterior mean after K entropy "
                          "trials; a Gaussian prior on the PSE; entropy among levels near the PSE; least "
-                         "expected PSE variance; the posterior's lapse held at one value)")
+                         "expected PSE variance; the posterior's lapse held at one value; tracks that "
+                         "do not share the spread)")
     ap.add_argument("--only", nargs="+", help="only the rows whose label holds one of these words")
+    ap.add_argument("--conditions", type=int, default=1,
+                    help="runs are sessions of this many conditions, scored by the joint fit (default 1)")
     args = ap.parse_args()
     defaults = ProcedureSettings()
     print(f"# defaults: start ±{defaults.start_offset_deg:g} deg, steps {defaults.steps_deg}, "
-          f"k_down {defaults.k_down}, target_cw {defaults.target_cw:g}, Bayesian placement {defaults.bayes_placement}")
+          f"k_down {defaults.k_down}, target_cw {defaults.target_cw:g}, Bayesian placement {defaults.bayes_placement}, "
+          f"shared spread {defaults.bayes_share_spread}")
     for line in efficiency_table(args.runs, args.seed, args.quick, spread=args.spread, tracks=args.tracks,
-                                 methods=args.methods, scratch=args.scratch, only=args.only):
+                                 methods=args.methods, scratch=args.scratch, only=args.only,
+                                 conditions=args.conditions):
         print(line, flush=True)
 
 

@@ -340,6 +340,10 @@ def analyse_observer(observer: str, trials: pd.DataFrame, opts: Options,
         if factory is not None:
             plan = [[(str(t), int(m)) for t, m in trials[trials["condition"] == name]
                      .groupby("track", sort=True).size().items()] for name in names]
+            if hasattr(factory, "given"):       # tracks that lent each other evidence borrow it again
+                factory = factory.given(zip(zip(trials["condition"].astype(str), trials["track"].astype(str)),
+                                            trials["test_offset_deg"].to_numpy(float),
+                                            trials["response_cw"].to_numpy(int)))
             if opts.track_use == "replicates":
                 boot = replay_bootstrap(fit, plan, factory, opts.n_boot, rng, opts.progress,
                                         f"bootstrap {observer} (tracks re-run)", studentize=studentize)

@@ -598,6 +598,12 @@ class EntropyTrack:
         Parameter and level grid; default :class:`EntropyGrid()`.
     placement : {"entropy", "pse_mean"}, default "entropy"
         How the next level is chosen (see above).
+    evidence : SharedEvidence or RecordedEvidence, optional
+        What the session's other tracks know about spread and lapse
+        (:mod:`runner.shared_evidence`); it is multiplied into the posterior
+        that chooses levels and into :meth:`posterior` and
+        :meth:`posterior_mean`.  The state's ``posterior_mean`` is from the
+        track's own answers, so that a state restores without the others.
 
     Notes
     -----
@@ -613,7 +619,7 @@ class EntropyTrack:
     kind = "bayesian"
 
     def __init__(self, *, max_trials: int, target: str = "pse", grid: EntropyGrid | None = None,
-                 placement: str = "entropy"):
+                 placement: str = "entropy", evidence=None):
         self._max_trials = _whole("max_trials", max_trials, 1)
         if target not in ("pse", "pse_spread"):
             raise ValueError(f"target: expected 'pse' or 'pse_spread', got {target!r}")
@@ -638,6 +644,10 @@ class EntropyTrack:
         self._levels: list[float] = []
         self._responses: list[int] = []
         self._proposal: float | None = None
+        self._evidence = evidence
+        self._proposed_at = 0       # the evidence's version when the proposal was made
+        if evidence is not None:
+            evidence.join(self)
 
     @property
     def n_trials(self) -> int:
@@ -659,14 +669,21 @@ class EntropyTrack:
         """"entropy" or "pse_mean"."""
         return self._placement
 
-    def posterior(self) -> np.ndarray:
-        """Normalised posterior over the grid, shape (μ, σ, λ)."""
-        p = np.exp(self._log_post - self._log_post.max())
+    def posterior(self, borrowed: bool = True) -> np.ndarray:
+        """Normalised posterior over the grid, shape (μ, σ, λ).
+
+        ``borrowed=False``: from the track's own answers only, without what
+        the other tracks of its evidence lend.
+        """
+        log_post = self._log_post
+        if borrowed and self._evidence is not None:
+            log_post = log_post + self._evidence.borrowed(self)
+        p = np.exp(log_post - log_post.max())
         return p / p.sum()
 
-    def posterior_mean(self) -> PosteriorMean:
-        """Posterior means of μ, σ and λ (σ: arithmetic mean over its grid)."""
-        p = self.posterior()
+    def posterior_mean(self, borrowed: bool = True) -> PosteriorMean:
+        """Posterior means of μ, σ and λ (σ: arithmetic mean over its grid); ``borrowed`` as in :meth:`posterior`."""
+        p = self.posterior(borrowed)
         return PosteriorMean(
             pse=float(p.sum(axis=(1, 2)) @ self._mu),
             spread=float(p.sum(axis=(0, 2)) @ self._sigma),
@@ -715,7 +732,9 @@ class EntropyTrack:
         """
         if self.finished:
             raise RuntimeError("EntropyTrack is finished; it proposes no more levels")
-        if self._proposal is None:
+        version = 0 if self._evidence is None else self._evidence.version
+        if self._proposal is None or version != self._proposed_at:
+            self._proposed_at = version
             if self._placement == "entropy":
                 pick = int(np.argmin(self.expected_entropies()))
             else:
@@ -756,6 +775,8 @@ class EntropyTrack:
             log_like[:, :, self._zero_lapse] = log_ndtr(z)[:, :, None]
         self._log_post += log_like
         self._log_post -= self._log_post.max()
+        if self._evidence is not None:
+            self._evidence.refresh(self, self._log_post)
         self._levels.append(level)
         self._responses.append(response)
         self._proposal = None
@@ -774,7 +795,7 @@ class EntropyTrack:
             "levels": list(self._levels),
             "responses": list(self._responses),
             "n_trials": self.n_trials,
-            "posterior_mean": list(self.posterior_mean()),
+            "posterior_mean": list(self.posterior_mean(borrowed=False)),
         }
 
     @classmethod

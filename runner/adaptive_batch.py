@@ -162,6 +162,10 @@ class EntropyBatch:
         The only target stepped together: with the joint (PSE, spread)
         target each copy's work arrays are as large as a cache, and copies
         one at a time (:class:`~runner.adaptive.EntropyTrack`) are faster.
+    evidence : RecordedEvidence, optional
+        What the session's other tracks lent the track before each trial
+        (:mod:`runner.shared_evidence`), the same for every copy; multiplied
+        into the posterior that chooses the levels.
 
     Notes
     -----
@@ -170,7 +174,7 @@ class EntropyBatch:
     """
 
     def __init__(self, copies: int, *, max_trials: int, target: str = "pse", grid: EntropyGrid | None = None,
-                 placement: str = "entropy"):
+                 placement: str = "entropy", evidence=None):
         if target != "pse":
             raise ValueError(f"target: copies are stepped together for the target 'pse' only, got {target!r}")
         if int(copies) != copies or copies < 1:
@@ -190,20 +194,31 @@ class EntropyBatch:
         cells = self._mu.size * self._sigma.size
         self._post = np.full((self.copies, lapse.size, cells), 1.0 / (cells * lapse.size))  # (R, λ, μ·σ)
         self.n_trials = 0
+        self._evidence = evidence
+
+    def _placing(self) -> np.ndarray:
+        """The posteriors that choose levels, (R, λ, μ·σ): the own ones times the borrowed evidence."""
+        if self._evidence is None:
+            return self._post
+        log_w = np.zeros((self._sigma.size, self._keep.size)) + self._evidence.borrowed(self)   # (σ, λ)
+        w = np.exp(log_w - log_w.max()).T                                                        # (λ, σ)
+        post = self._post * np.tile(w, (1, self._mu.size))[None]
+        return post / post.sum(axis=(1, 2))[:, None, None]
 
     @property
     def finished(self) -> bool:
         """True once every copy has ``max_trials`` answers."""
         return self.n_trials >= self.max_trials
 
-    def posterior(self) -> np.ndarray:
-        """Normalised posteriors, shape (copies, μ, σ, λ)."""
+    def posterior(self, borrowed: bool = True) -> np.ndarray:
+        """Normalised posteriors, shape (copies, μ, σ, λ); ``borrowed=False``: from each copy's own answers."""
         shape = (self.copies, self._lapse_terms.shape[0], self._mu.size, self._sigma.size)
-        return self._post.reshape(shape).transpose(0, 2, 3, 1).copy()
+        post = self._placing() if borrowed else self._post
+        return post.reshape(shape).transpose(0, 2, 3, 1).copy()
 
     def _marginals(self):
         """a = Σ_λ p·λ/2, b = Σ_λ p·(1 − λ) and the (μ, σ) marginal, each (copies, μ·σ)."""
-        ab = (self._lapse_terms.T @ self._post).astype(np.float32)     # (R, 2, μ·σ)
+        ab = (self._lapse_terms.T @ self._placing()).astype(np.float32)     # (R, 2, μ·σ)
         a, b = ab[:, 0], ab[:, 1]
         return a, b, b + 2.0 * a
 
@@ -240,7 +255,8 @@ class EntropyBatch:
         if self.placement == "entropy":
             pick = np.argmin(self.expected_entropies(), axis=1)
         else:
-            mean = self._post.sum(axis=1).reshape(self.copies, self._mu.size, -1).sum(axis=2) @ self._mu
+            post = self._placing().sum(axis=1).reshape(self.copies, self._mu.size, -1).sum(axis=2)
+            mean = post @ self._mu
             pick = np.argmin(np.abs(self._levels[None, :] - mean[:, None]), axis=1)
         return self._levels[pick]
 

@@ -26,6 +26,7 @@ from runner.protocol import Protocol
 from runner.screens import screen_texts
 from runner.session import BlockRun, Console, SessionResult
 from runner.stream import StreamObserver, StreamRun
+from runner.tracks import SHARING_KEY, as_started
 from runner.trial_log import StorageError, TrialLog, check_identifier, check_sidecar, log_paths, refuse_existing
 
 PACKAGES = ("aftershift", "numpy", "scipy", "pandas", "statsmodels", "pydantic", "matplotlib", "psychopy", "pyglet")
@@ -267,13 +268,17 @@ def simulate(
     """
     out = Path(out_dir)
     check_identifier(session, "--session")
+    names = [f"sim{i + 1:02d}" for i in range(n_observers)]
+    started = {}
     if resume:
         seed, model = resume_seed_and_model(out, n_observers, session, seed, model)
+        started = {content["observer"]: content for _, content in sidecar_settings(out, names, session)}
     seed = 0 if seed is None else seed
     model = model or ObserverModel()
     models = draw_observers(model, n_observers, seed)
     loop, observer_kind = (StreamRun, StreamObserver) if protocol.stream is not None else (BlockRun, SimulatedObserver)
-    runs = [loop(protocol, derive_seed(seed, i), f"sim{i + 1:02d}", session) for i in range(n_observers)]
+    runs = [loop(as_started(protocol, started.get(name)), derive_seed(seed, i), name, session)
+            for i, name in enumerate(names)]
     console = SimulationConsole(sum(r.expected_rows() for r in runs), "simulating", show=progress)
     paths = []
     try:
@@ -293,6 +298,7 @@ def simulate(
                 "offset_bounds_deg": protocol.procedure.bounds_deg,
                 "base_model": asdict(model),
                 "observer_model": asdict(observer_model),
+                SHARING_KEY: protocol.procedure.bayes_share_spread,
                 "safety": screening,
                 **({"light": light} if light is not None else {}),
             }
@@ -363,6 +369,7 @@ def run_on_screen(
     """
     out = Path(out_dir)
     log = open_log(out, observer, session, resume)
+    started = None
     try:
         if log.sidecar_path.exists():
             started = log.read_sidecar()
@@ -385,6 +392,7 @@ def run_on_screen(
         "seed": seed,
         "session_seed": seed,
         "offset_bounds_deg": protocol.procedure.bounds_deg,
+        SHARING_KEY: protocol.procedure.bayes_share_spread,
         **extra,
     }
     try:
@@ -394,7 +402,8 @@ def run_on_screen(
         raise
     if resume:
         sidecar["parts"][-1].update({k: v for k, v in extra.items() if k in ("measured_refresh_hz", "acknowledged")})
-    run = (StreamRun if protocol.stream is not None else BlockRun)(protocol, seed, observer, session)
+    run = (StreamRun if protocol.stream is not None else BlockRun)(as_started(protocol, started), seed, observer,
+                                                                     session)
     texts = screen_texts(protocol, caution, protocol_path)
     return run_part(log, sidecar, lambda: run.run(presenter, answers, log.append, log.rows, texts, console,
                                                   str(log.path)))

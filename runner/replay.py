@@ -3,7 +3,10 @@
 ``fitting`` may not import the session engine, so the command line hands it
 a function built here: for an observer, a *factory* ``(condition, track) ->
 track`` that builds the track exactly as the session did, from the protocol
-stored in the sidecar next to each of the observer's logs.
+stored in the sidecar next to each of the observer's logs.  Bayesian tracks
+that shared what they learnt about spread and lapse in the session
+(``bayes_share_spread``) borrow, in every re-run, what their real
+counterparts borrowed before each trial (:meth:`TrackFactory.given`).
 """
 
 from __future__ import annotations
@@ -13,7 +16,8 @@ from pathlib import Path
 
 from fitting.errors import InputError
 from runner.protocol import parse_protocol
-from runner.tracks import new_track, new_track_copies
+from runner.shared_evidence import recorded_evidence
+from runner.tracks import as_started, new_track, new_track_copies
 
 
 def _sidecar(log: Path) -> Path:
@@ -52,7 +56,7 @@ def track_factories(logs, strict: bool = True) -> dict:
         try:
             meta = json.loads(side.read_text(encoding="utf-8"))
             observer, text = str(meta["observer"]), meta["protocol"]["text"]
-            protocol = parse_protocol(text, str(side))
+            protocol = as_started(parse_protocol(text, str(side)), meta)
         except (OSError, ValueError, KeyError, TypeError, InputError) as exc:
             if not strict:      # whose sessions this was is unknown: every pilot keeps the levels fixed
                 return {}
@@ -76,13 +80,42 @@ class TrackFactory:
     ``factory.copies(condition, track_id, n)`` gives ``n`` copies stepped
     together where the procedure has that form, else None
     (:func:`runner.tracks.new_track_copies`).
+
+    Parameters
+    ----------
+    protocol : Protocol
+    evidence : dict, optional
+        ``(condition, track_id) -> RecordedEvidence`` (:meth:`given`).
     """
 
-    def __init__(self, protocol):
+    def __init__(self, protocol, evidence: dict | None = None):
         self.protocol = protocol
+        self.evidence = evidence or {}
+
+    def given(self, sequence) -> TrackFactory:
+        """This factory for one observer's answered trials, in the order they were run.
+
+        Parameters
+        ----------
+        sequence : iterable of ((condition, track_id), level, response_cw)
+
+        Returns
+        -------
+        TrackFactory
+            Itself unless its Bayesian tracks shared spread and lapse; then
+            one whose tracks borrow, before each trial, what the observer's
+            other tracks had lent the real track before its trial of that
+            number (:func:`runner.shared_evidence.recorded_evidence`).
+        """
+        proc = self.protocol.procedure
+        if proc.method != "bayesian" or not proc.bayes_share_spread:
+            return self
+        keyed = [((str(c), str(t)), float(x), int(r)) for (c, t), x, r in sequence]
+        made = recorded_evidence(keyed, lambda shared: new_track(self.protocol, 0, evidence=shared))
+        return TrackFactory(self.protocol, made)
 
     def __call__(self, condition: str, track) -> object:
-        return new_track(self.protocol, int(track))
+        return new_track(self.protocol, int(track), evidence=self.evidence.get((str(condition), str(track))))
 
     def copies(self, condition: str, track, n: int):
-        return new_track_copies(self.protocol, int(track), n)
+        return new_track_copies(self.protocol, int(track), n, self.evidence.get((str(condition), str(track))))

@@ -11,6 +11,7 @@ from scipy.stats import norm
 
 from runner.adaptive import ConstantLevels, EntropyGrid, EntropyTrack, UpDownTrack, WeightedTrack, restore
 from runner.adaptive_batch import EntropyBatch, StepCopies
+from runner.shared_evidence import SharedEvidence, recorded_evidence
 
 # A cumulative Gaussian observer (the README's model with lapse 0) for the simulations.
 OBSERVER_PSE = 1.5
@@ -322,6 +323,66 @@ def test_bayesian_copies_stepped_together_propose_the_single_tracks_levels(place
     assert differ <= 0.005 * n_copies * n_trials
     if placement == "pse_mean":
         assert differ == 0      # no entropies involved: the same arithmetic up to rounding of the mean
+
+
+def _shared_session(grid, n_tracks, n_trials, seed, placement="entropy"):
+    """Tracks of one session that share spread and lapse evidence, run in a shuffled order; their answers."""
+    rng = np.random.default_rng(seed)
+    shared = SharedEvidence()
+    tracks = [EntropyTrack(max_trials=n_trials + 1, grid=grid, placement=placement, evidence=shared)
+              for _ in range(n_tracks)]
+    pses = rng.uniform(-2, 2, n_tracks)
+    sequence = []
+    for t in rng.permutation(np.repeat(np.arange(n_tracks), n_trials)):
+        x = tracks[t].next_level()
+        r = int(rng.random() < 0.03 + 0.94 * norm.cdf((x - pses[t]) / 1.5))
+        tracks[t].update(x, r)
+        sequence.append((t, x, r))
+    return tracks, sequence
+
+
+def test_tracks_that_share_evidence_hold_the_joint_posterior_of_the_session():
+    # Bayes' rule on the joint grid (independent uniform PSE priors, one uniform (spread, lapse) prior): each
+    # track's posterior is the session's joint posterior with the other tracks' PSEs summed out, computed here
+    # by brute force over (μ1, μ2, μ3, σ, λ); its own-answers posterior stays the lone track's
+    tracks, sequence = _shared_session(TINY_GRID, 3, 5, seed=21)
+    own = [_brute_posterior(TINY_GRID, [x for t, x, _ in sequence if t == i], [r for t, _, r in sequence if t == i])
+           for i in range(3)]
+    joint = np.einsum("asl,bsl,csl->abcsl", *own)
+    for i, track in enumerate(tracks):
+        others = tuple(a for a in range(3) if a != i)
+        expected = joint.sum(axis=others)
+        np.testing.assert_allclose(track.posterior(), expected / expected.sum(), rtol=1e-9, atol=1e-15)
+        np.testing.assert_allclose(track.posterior(borrowed=False), own[i], rtol=1e-9, atol=1e-15)
+        assert restore(track.state()).state() == track.state()      # a state restores without the others
+
+
+@pytest.mark.parametrize("placement", ["entropy", "pse_mean"])
+def test_recorded_evidence_replays_the_levels_each_shared_track_presented(placement):
+    # What the bootstrap's re-run copies borrow (runner/shared_evidence.py): fed the session's own answers, a
+    # track with the recorded evidence, and copies stepped together with it, propose the levels the session's
+    # track presented (copies: up to a near-tie of single-precision entropies, as in the test above)
+    tracks, sequence = _shared_session(SESSION_GRID, 4, 12, seed=8, placement=placement)
+    recorded = recorded_evidence(sequence, lambda e: EntropyTrack(max_trials=12, grid=SESSION_GRID,
+                                                                  placement=placement, evidence=e))
+    differ = 0
+    for i in range(4):
+        mine = [(x, r) for t, x, r in sequence if t == i]
+        single = EntropyTrack(max_trials=12, grid=SESSION_GRID, placement=placement, evidence=recorded[i])
+        copies = EntropyBatch(2, max_trials=12, grid=SESSION_GRID, placement=placement, evidence=recorded[i])
+        for x, r in mine:
+            assert single.next_level() == x
+            differ += int((copies.next_levels() != x).sum())
+            single.update(x, r)
+            copies.update([x, x], [r, r])
+    assert differ <= 2
+    lone = EntropyTrack(max_trials=12, grid=SESSION_GRID, placement=placement)
+    mine = [(x, r) for t, x, r in sequence if t == 0]
+    lone_levels = []
+    for x, r in mine:
+        lone_levels.append(lone.next_level())
+        lone.update(x, r)
+    assert lone_levels != [x for x, _ in mine]    # the borrowed evidence changed where the track put its trials
 
 
 def test_bayesian_copies_refuse_what_they_cannot_do():

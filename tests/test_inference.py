@@ -461,7 +461,40 @@ def _one_simulated_fit(tmp_path, method_lines: str, trials_per_track: int):
     plan = [[(str(t), int(m)) for t, m in trials[trials["condition"] == n].groupby("track").size().items()]
             for n in names]
     factory = next(iter(track_factories(logs).values()))
+    factory = factory.given(zip(zip(trials["condition"], trials["track"]), trials["test_offset_deg"],
+                                trials["response_cw"]))      # as fitting.observer does
     return fit, plan, factory
+
+
+def test_rerun_tracks_borrow_what_the_sessions_tracks_lent_each_other(tmp_path):
+    # The default Bayesian tracks share spread and lapse evidence (runner/shared_evidence.py); fed the logged
+    # answers, a re-run track from the fit's factory must propose exactly the levels the real session presented,
+    # which holds only if it borrows before each trial what its real counterpart borrowed
+    fit, plan, factory = _one_simulated_fit(tmp_path, 'method = "bayesian"', 12)
+    assert factory.evidence and all(len(tracks) == 2 for tracks in plan)
+    logs = sorted((tmp_path / "logs").glob("*.trials.csv"))
+    trials = pd.concat([pd.read_csv(p) for p in logs])
+    trials = trials[trials["practice"] == 0]
+    for (condition, track), rows in trials.groupby(["condition", "track"]):
+        fresh = factory(condition, str(int(track)))
+        for x, r in zip(rows["test_offset_deg"], rows["response_cw"]):
+            assert fresh.next_level() == x
+            fresh.update(x, int(r))
+    (tmp_path / "alone").mkdir()
+    alone = _one_simulated_fit(tmp_path / "alone", 'method = "bayesian"\nbayes_share_spread = false', 12)[2]
+    assert not alone.evidence      # tracks that learnt alone borrow nothing in the re-run either
+    # a sidecar written before the tracks could share (no SHARING_KEY): its tracks ran alone, and are re-run so
+    import json
+    from runner.replay import track_factories
+    from runner.tracks import SHARING_KEY
+    for side in (tmp_path / "logs").glob("*.session.json"):
+        meta = json.loads(side.read_text())
+        del meta[SHARING_KEY]
+        side.write_text(json.dumps(meta))
+    old = next(iter(track_factories([str(p) for p in logs]).values()))
+    assert old.protocol.procedure.bayes_share_spread is False
+    assert old.given(zip(zip(trials["condition"], trials["track"].astype(int).astype(str)),
+                         trials["test_offset_deg"], trials["response_cw"])) is old
 
 
 def _pilot_spreads(tmp_path, method_lines: str, trials_per_track: int, pilot: int):

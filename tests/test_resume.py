@@ -135,3 +135,35 @@ def test_bayesian_session_cut_short_and_resumed_writes_identical_rows(rows_kept,
     levels = {float(row["test_offset_deg"]) for row in read_rows(cut_out / name)}
     assert len(levels) > 5  # the tracks moved: not one level replayed over and over
 
+
+@pytest.mark.slow  # left out of the quick subset
+def test_a_session_started_before_tracks_shared_the_spread_resumes_with_tracks_alone(tmp_path):
+    # Sessions started before bayes_share_spread existed ran their Bayesian tracks alone, and their sidecar
+    # has no SHARING_KEY. Resumed with the same protocol file, they must go on with tracks alone (the rows an
+    # uninterrupted session with tracks alone writes); with shared tracks the resume would refuse its own log.
+    import json
+    from runner.tracks import SHARING_KEY
+
+    protocol = PROTOCOLS / "pilot_short.toml"
+    alone = tmp_path / "alone.toml"
+    alone.write_text(protocol.read_text().replace('method = "bayesian"', 'method = "bayesian"\nbayes_share_spread = false'))
+    assert alone.read_text() != protocol.read_text()
+    whole_out, cut_out, shared_out = tmp_path / "whole", tmp_path / "cut", tmp_path / "shared"
+    assert run_cli("simulate", alone, "--out", whole_out, "--seed", "5").returncode == 0
+    assert run_cli("simulate", protocol, "--out", shared_out, "--seed", "5").returncode == 0
+    whole = _logs(whole_out)
+    assert whole != _logs(shared_out)          # sharing changes the levels
+    name = sorted(whole)[0]
+    cut_out.mkdir()
+    lines = whole[name].splitlines(keepends=True)
+    (cut_out / name).write_bytes(b"".join(lines[:30]))
+    sidecar_name = name.replace(".trials.csv", ".session.json")
+    sidecar = json.loads((shared_out / sidecar_name).read_text())   # the protocol record of the file resumed with
+    old = json.loads((whole_out / sidecar_name).read_text())
+    old["protocol"] = sidecar["protocol"]
+    del old[SHARING_KEY]                                            # as written before the option existed
+    (cut_out / sidecar_name).write_text(json.dumps(old))
+    done = run_cli("simulate", protocol, "--out", cut_out, "--seed", "5", "--resume")
+    assert done.returncode == 0, done.stderr
+    assert _logs(cut_out)[name] == whole[name]
+
