@@ -202,7 +202,8 @@ class EntropyBatch:
             return self._post
         log_w = np.zeros((self._sigma.size, self._keep.size)) + self._evidence.borrowed(self)   # (σ, λ)
         w = np.exp(log_w - log_w.max()).T                                                        # (λ, σ)
-        post = self._post * np.tile(w, (1, self._mu.size))[None]
+        shape = (self.copies, w.shape[0], self._mu.size, self._sigma.size)
+        post = (self._post.reshape(shape) * w[None, :, None, :]).reshape(self._post.shape)
         return post / post.sum(axis=(1, 2))[:, None, None]
 
     @property
