@@ -338,20 +338,15 @@ def analyse_observer(observer: str, trials: pd.DataFrame, opts: Options,
             factory = None
         generate, studentize = None, opts.interval == "studentized"
         if factory is not None:
-            plan = [[(str(t), int(m)) for t, m in trials[trials["condition"] == name]
-                     .groupby("track", sort=True).size().items()] for name in names]
-            if hasattr(factory, "given"):       # tracks that lent each other evidence borrow it again
-                factory = factory.given(zip(zip(trials["condition"].astype(str), trials["track"].astype(str)),
-                                            trials["test_offset_deg"].to_numpy(float),
-                                            trials["response_cw"].to_numpy(int)))
+            schedule = list(zip(code.tolist(), trials["track"].astype(str)))    # the trials in the order run
             if opts.track_use == "replicates":
-                boot = replay_bootstrap(fit, plan, factory, opts.n_boot, rng, opts.progress,
+                boot = replay_bootstrap(fit, schedule, factory, opts.n_boot, rng, opts.progress,
                                         f"bootstrap {observer} (tracks re-run)", studentize=studentize)
             else:
                 pilot = pilot_size(opts.n_boot)
                 with ProgressBar(pilot * len(names), f"pilot {observer} (tracks re-run)",
                                  show=opts.progress) as bar:
-                    generate = rerun_generating_parameters(fit, plan, factory, pilot, rng, bar)
+                    generate = rerun_generating_parameters(fit, schedule, factory, pilot, rng, bar)
         if boot is None:
             boot = parametric_bootstrap(fit, opts.n_boot, rng, opts.progress, f"bootstrap {observer}",
                                         studentize=studentize, generate=generate)

@@ -16,11 +16,16 @@ downstream are unchanged.
 *factory* passed in by the caller (the command line builds it from the
 protocol in each log's sidecar), ``factory(condition, track) -> object``
 with ``next_level()``, ``update(level, response_cw)`` and ``finished``.  A
-factory may also offer ``factory.copies(condition, track, n)``: ``n``
-copies stepped together, with ``next_levels()`` (nan for a copy that has
-stopped) and ``update(levels, responses)`` on arrays; the command line's
-does for up–down, weighted and Bayesian tracks
-(:mod:`runner.adaptive_batch`).
+factory may also offer ``factory.session(n)``: a callable
+``(condition, track) -> copies`` giving ``n`` copies of a track for ``n``
+simulated sessions, either a list of tracks or one object stepped together,
+with ``next_levels()`` (nan for a copy that has stopped) and
+``update(levels, responses)`` on arrays; the command line's does
+(:mod:`runner.replay`, :mod:`runner.adaptive_batch`).  Where its
+``shared`` attribute is true the copies of different tracks lend each other
+what they learn, session by session, as the session's tracks did; every
+replicate then re-runs the whole session in the order of the log, a
+block of replicates at a time (:data:`SESSION_COPIES`).
 
 Cost: replicates × trials track steps.  Step tracks take about a
 microsecond per copy stepped together; Bayesian copies a few hundred
@@ -93,41 +98,110 @@ class _OneByOne:
                 tr.update(float(x), int(y))
 
 
-def _copies(factory, condition: str, track: str, n: int):
-    """``n`` fresh copies of a track: the factory's batched form where it has one."""
-    batched = getattr(factory, "copies", None)
-    made = batched(condition, track, n) if batched is not None else None
-    return made if made is not None else _OneByOne([factory(condition, track) for _ in range(n)])
+#: Re-run copies of tracks held at once when the tracks of a session share what they learn: the
+#: replicates are re-run in blocks of ``SESSION_COPIES // tracks`` (a Bayesian copy on the default
+#: grid holds about 100 kB, so about 200 MB).
+SESSION_COPIES = 2_000
 
 
-def _rerun(fit: PsychometricFit, plan, factory, generate: np.ndarray, n_boot: int, rng: np.random.Generator,
+def _plan(schedule, conditions: int) -> list:
+    """Log order ``[(condition index, track id), ...]`` -> per condition ``[(track id, trials), ...]`` by track id."""
+    counts: dict = {}
+    for key in schedule:
+        counts[key] = counts.get(key, 0) + 1
+    plan: dict = {}
+    for (c, track), m in sorted(counts.items(), key=lambda kv: (kv[0][0], kv[0][1])):
+        plan.setdefault(c, []).append((track, m))
+    return [plan.get(c, []) for c in range(conditions)]
+
+
+def _session(factory, n: int):
+    """``(condition, track) -> n`` copies stepped together, of one set of ``n`` simulated sessions; and whether shared."""
+    made = factory.session(n) if hasattr(factory, "session") else (lambda c, t: [factory(c, t) for _ in range(n)])
+
+    def copies(condition: str, track: str):
+        out = made(condition, track)
+        return _OneByOne(out) if isinstance(out, list) else out
+    return copies, bool(getattr(made, "shared", False))
+
+
+class _Answers:
+    """Simulated answers of the fitted observer at ``generate``: ``answer(c, levels)`` -> 0/1 per copy (nan: 0)."""
+
+    def __init__(self, fit: PsychometricFit, generate: np.ndarray, rng: np.random.Generator):
+        self.pse, self.spread, self.lapse = fit.layout.unpack(generate[None])
+        self.sigmoid, self.rng = fit.sigmoid, rng
+
+    def __call__(self, c: int, x: np.ndarray) -> np.ndarray:
+        p = probability_cw(np.nan_to_num(x), self.pse[0, c], self.spread[0, c], self.lapse[0], self.sigmoid)
+        return (self.rng.random(x.size) < p).astype(int)
+
+
+def _run_track(tracks, n: int, n_trials: int, c: int, answer: _Answers):
+    """Step ``n`` copies of one track ``n_trials`` times: levels and answers (n, n_trials), nan where stopped."""
+    lv, an = np.full((n, n_trials), np.nan), np.zeros((n, n_trials))
+    for t in range(n_trials):
+        x = tracks.next_levels()        # nan: the copy stopped by its own rule (max_reversals)
+        if np.isnan(x).all():
+            break
+        y = answer(c, x)
+        tracks.update(x, y)
+        lv[:, t], an[:, t] = x, y
+    return lv, an
+
+
+def _levels_by_track(fit, plan, factory, n: int, answer: _Answers, bar):
+    """Each condition's re-run levels and answers (n, trials), its tracks run one after another."""
+    copies, _ = _session(factory, n)
+    out = []
+    for c, name in enumerate(fit.conditions):
+        parts = [_run_track(copies(name, track_id), n, m, c, answer) for track_id, m in plan[c]]
+        out.append((np.hstack([p[0] for p in parts]), np.hstack([p[1] for p in parts])))
+        bar.advance(n)
+    return out
+
+
+def _levels_in_log_order(fit, schedule, plan, factory, n: int, answer: _Answers, bar):
+    """As :func:`_levels_by_track`, every replicate a whole session stepped in the log's order, in blocks."""
+    block = max(1, SESSION_COPIES // max(1, sum(len(tracks) for tracks in plan)))
+    out = [([], []) for _ in fit.conditions]
+    for lo in range(0, n, block):
+        rows = min(block, n - lo)
+        copies, _ = _session(factory, rows)
+        tracks, done, lv, an = {}, {}, {}, {}
+        for c, track_id in schedule:
+            key = (c, track_id)
+            if key not in tracks:
+                m = dict(plan[c])[track_id]
+                tracks[key], done[key] = copies(fit.conditions[c], track_id), 0
+                lv[key], an[key] = np.full((rows, m), np.nan), np.zeros((rows, m))
+            x = tracks[key].next_levels()
+            if not np.isnan(x).all():
+                y = answer(c, x)
+                tracks[key].update(x, y)
+                lv[key][:, done[key]], an[key][:, done[key]] = x, y
+            done[key] += 1
+        for c in range(len(fit.conditions)):
+            out[c][0].append(np.hstack([lv[(c, t)] for t, _ in plan[c]]))
+            out[c][1].append(np.hstack([an[(c, t)] for t, _ in plan[c]]))
+        bar.advance(rows * len(fit.conditions))
+    return [(np.vstack(a), np.vstack(b)) for a, b in out]
+
+
+def _rerun(fit: PsychometricFit, schedule, factory, generate: np.ndarray, n_boot: int, rng: np.random.Generator,
            bar, studentize: bool = False):
     """Re-run every track ``n_boot`` times at ``generate`` and refit.
 
     Returns ``(theta, converged, at_bound, deviance, cov)``, one row per replicate (``cov`` None unless
     ``studentize``).
     """
-    layout, sigmoid = fit.layout, fit.sigmoid
-    pse, spread, lapse = layout.unpack(generate[None])
-    pools = []
-    for c, name in enumerate(fit.conditions):
-        lv_parts, an_parts = [], []
-        for track_id, n_trials in plan[c]:
-            tracks = _copies(factory, name, track_id, n_boot)
-            lv = np.full((n_boot, n_trials), np.nan)
-            an = np.zeros((n_boot, n_trials))
-            for t in range(n_trials):
-                x = tracks.next_levels()        # nan: the copy stopped by its own rule (max_reversals)
-                if np.isnan(x).all():
-                    break
-                p = probability_cw(np.nan_to_num(x), pse[0, c], spread[0, c], lapse[0], sigmoid)
-                y = (rng.random(n_boot) < p).astype(int)
-                tracks.update(x, y)
-                lv[:, t], an[:, t] = x, y
-            lv_parts.append(lv)
-            an_parts.append(an)
-        pools.append(_pool(np.hstack(lv_parts), np.hstack(an_parts)))
-        bar.advance(n_boot)
+    plan = _plan(schedule, len(fit.conditions))
+    answer = _Answers(fit, generate, rng)
+    if _session(factory, 1)[1]:
+        levels = _levels_in_log_order(fit, schedule, plan, factory, n_boot, answer, bar)
+    else:
+        levels = _levels_by_track(fit, plan, factory, n_boot, answer, bar)
+    pools = [_pool(lv, an) for lv, an in levels]
     C = len(fit.conditions)
     width = max(cond[0].shape[1] for cond in pools)
     x = np.empty((n_boot, C, width))
@@ -156,7 +230,7 @@ def _refit(fit: PsychometricFit, generate: np.ndarray, x, n, k, studentize: bool
     return sol.theta, sol.converged, sol.at_bound, dev, cov
 
 
-def rerun_generating_parameters(fit: PsychometricFit, plan, factory, pilot: int, rng: np.random.Generator,
+def rerun_generating_parameters(fit: PsychometricFit, schedule, factory, pilot: int, rng: np.random.Generator,
                                 bar) -> np.ndarray:
     """Generating parameters (P,) from a pilot that re-runs the tracks at the estimates.
 
@@ -166,11 +240,11 @@ def rerun_generating_parameters(fit: PsychometricFit, plan, factory, pilot: int,
     """
     if not pilot:
         return fit.theta.copy()
-    theta = _rerun(fit, plan, factory, fit.theta, pilot, rng, bar)[0]
+    theta = _rerun(fit, schedule, factory, fit.theta, pilot, rng, bar)[0]
     return bias_corrected([fit], theta[None])[0]
 
 
-def replay_bootstrap(fit: PsychometricFit, plan, factory, n_boot: int, rng: np.random.Generator,
+def replay_bootstrap(fit: PsychometricFit, schedule, factory, n_boot: int, rng: np.random.Generator,
                      progress: bool | None = None, label: str = "bootstrap (tracks re-run)",
                      pilot: int = 100, studentize: bool = False) -> BootstrapResult:
     """Bootstrap ``fit`` by re-running its adaptive tracks ``n_boot`` times.
@@ -178,10 +252,12 @@ def replay_bootstrap(fit: PsychometricFit, plan, factory, n_boot: int, rng: np.r
     Parameters
     ----------
     fit : PsychometricFit
-    plan : list of list of (str, int)
-        Per condition of ``fit`` (in order), its tracks: ``(track id, trials)``.
+    schedule : list of (int, str)
+        The observer's answered trials in the order they were run: each
+        trial's condition (index into ``fit.conditions``) and track id.
     factory : callable
-        ``factory(condition, track_id)`` returns a fresh track.
+        ``factory(condition, track_id)`` returns a fresh track; see the
+        module notes for ``factory.session``.
     n_boot : int
     rng : numpy.random.Generator
     progress : bool or None
@@ -198,7 +274,7 @@ def replay_bootstrap(fit: PsychometricFit, plan, factory, n_boot: int, rng: np.r
     """
     C = len(fit.conditions)
     with ProgressBar((n_boot + pilot) * C, "pilot + " + label, show=progress) as bar:
-        generate = rerun_generating_parameters(fit, plan, factory, pilot, rng, bar)
+        generate = rerun_generating_parameters(fit, schedule, factory, pilot, rng, bar)
         generate = no_steeper_than_resolved([fit], generate[None])[0]
-        theta, converged, at_bound, dev, cov = _rerun(fit, plan, factory, generate, n_boot, rng, bar, studentize)
+        theta, converged, at_bound, dev, cov = _rerun(fit, schedule, factory, generate, n_boot, rng, bar, studentize)
     return BootstrapResult(fit, theta, converged, at_bound, dev, generate, cov)

@@ -44,6 +44,8 @@ from typing import NamedTuple
 import numpy as np
 from scipy.special import log_ndtr, ndtr, xlogy
 
+from runner.shared_evidence import log_evidence
+
 __all__ = [
     "UpDownTrack",
     "WeightedTrack",
@@ -598,7 +600,7 @@ class EntropyTrack:
         Parameter and level grid; default :class:`EntropyGrid()`.
     placement : {"entropy", "pse_mean"}, default "entropy"
         How the next level is chosen (see above).
-    evidence : SharedEvidence or RecordedEvidence, optional
+    evidence : SharedEvidence, optional
         What the session's other tracks know about spread and lapse
         (:mod:`runner.shared_evidence`); it is multiplied into the posterior
         that chooses levels and into :meth:`posterior` and
@@ -776,7 +778,7 @@ class EntropyTrack:
         self._log_post += log_like
         self._log_post -= self._log_post.max()
         if self._evidence is not None:
-            self._evidence.refresh(self, self._log_post)
+            self._evidence.refresh(self, log_evidence(self._log_post))
         self._levels.append(level)
         self._responses.append(response)
         self._proposal = None

@@ -38,10 +38,14 @@ there; sessions always run :class:`~runner.adaptive.EntropyTrack`.
 
 from __future__ import annotations
 
+from functools import lru_cache
+
 import numpy as np
 from scipy.special import ndtr, xlogy
 
 from runner.adaptive import EntropyGrid, EntropyTrack, UpDownTrack, WeightedTrack, _cdf_table
+from runner.shared_evidence import LOG_FLOOR
+
 
 class StepCopies:
     """``copies`` copies of an up–down or weighted track, stepped together.
@@ -149,6 +153,17 @@ def _entropy_terms(cw: np.ndarray, ccw: np.ndarray) -> np.ndarray:
     return total
 
 
+@lru_cache(maxsize=8)
+def _table_by_pse(grid: EntropyGrid) -> np.ndarray:
+    """The Φ table (μ, levels, σ) in single precision, shared by all copies of one grid (read-only).
+
+    The bootstrap that re-runs a session holds copies of all its tracks at once.
+    """
+    table = np.ascontiguousarray(_cdf_table(grid).transpose(1, 0, 2), dtype=np.float32)
+    table.flags.writeable = False
+    return table
+
+
 class EntropyBatch:
     """``copies`` independent Bayesian tracks with the same settings, stepped together.
 
@@ -162,10 +177,12 @@ class EntropyBatch:
         The only target stepped together: with the joint (PSE, spread)
         target each copy's work arrays are as large as a cache, and copies
         one at a time (:class:`~runner.adaptive.EntropyTrack`) are faster.
-    evidence : RecordedEvidence, optional
-        What the session's other tracks lent the track before each trial
-        (:mod:`runner.shared_evidence`), the same for every copy; multiplied
-        into the posterior that chooses the levels.
+    evidence : SharedEvidence, optional
+        Shared with copies of the session's other tracks
+        (:mod:`runner.shared_evidence`), one row per copy: copy r lends its
+        log evidence (copies, spread, lapse) to row r of the others and
+        multiplies theirs into the posterior that chooses its levels, as the
+        tracks of one session do.
 
     Notes
     -----
@@ -189,22 +206,33 @@ class EntropyBatch:
         self._lapse_terms = np.stack([self._half_lapse, self._keep], axis=1)   # (λ, 2)
         self._levels = self.grid.level_values()
         table = _cdf_table(self.grid)                                    # (x, μ, σ)
-        self._table_mxs = np.ascontiguousarray(table.transpose(1, 0, 2), dtype=np.float32)  # (μ, x, σ)
+        self._table_mxs = _table_by_pse(self.grid)                       # (μ, x, σ)
         self._table_flat = table.reshape(table.shape[0], -1)              # (x, μ·σ): the update's Φ
         cells = self._mu.size * self._sigma.size
         self._post = np.full((self.copies, lapse.size, cells), 1.0 / (cells * lapse.size))  # (R, λ, μ·σ)
         self.n_trials = 0
         self._evidence = evidence
+        if evidence is not None:
+            evidence.join(self)
 
     def _placing(self) -> np.ndarray:
         """The posteriors that choose levels, (R, λ, μ·σ): the own ones times the borrowed evidence."""
         if self._evidence is None:
             return self._post
-        log_w = np.zeros((self._sigma.size, self._keep.size)) + self._evidence.borrowed(self)   # (σ, λ)
-        w = np.exp(log_w - log_w.max()).T                                                        # (λ, σ)
-        shape = (self.copies, w.shape[0], self._mu.size, self._sigma.size)
-        post = (self._post.reshape(shape) * w[None, :, None, :]).reshape(self._post.shape)
+        log_w = self._evidence.borrowed(self)                                  # (R, σ, λ), or 0 before any answer
+        if np.ndim(log_w) == 0:
+            return self._post
+        w = np.exp(log_w - log_w.max(axis=(1, 2), keepdims=True)).transpose(0, 2, 1)     # (R, λ, σ)
+        shape = (self.copies, w.shape[1], self._mu.size, self._sigma.size)
+        post = (self._post.reshape(shape) * w[:, :, None, :]).reshape(self._post.shape)
         return post / post.sum(axis=(1, 2))[:, None, None]
+
+    def _log_evidence(self) -> np.ndarray:
+        """Each copy's own log evidence over (σ, λ), shape (R, σ, λ), max 0 per copy (see :mod:`runner.shared_evidence`)."""
+        shape = (self.copies, self._keep.size, self._mu.size, self._sigma.size)
+        with np.errstate(divide="ignore"):
+            new = np.log(self._post.reshape(shape).sum(axis=2)).transpose(0, 2, 1)
+        return np.maximum(new - new.max(axis=(1, 2), keepdims=True), LOG_FLOOR)
 
     @property
     def finished(self) -> bool:
@@ -282,3 +310,5 @@ class EntropyBatch:
             self._post[:, lapse] *= half + keep * phi
         self._post /= self._post.sum(axis=(1, 2))[:, None, None]
         self.n_trials += 1
+        if self._evidence is not None:
+            self._evidence.refresh(self, self._log_evidence())

@@ -3,10 +3,11 @@
 ``fitting`` may not import the session engine, so the command line hands it
 a function built here: for an observer, a *factory* ``(condition, track) ->
 track`` that builds the track exactly as the session did, from the protocol
-stored in the sidecar next to each of the observer's logs.  Bayesian tracks
-that shared what they learnt about spread and lapse in the session
-(``bayes_share_spread``) borrow, in every re-run, what their real
-counterparts borrowed before each trial (:meth:`TrackFactory.given`).
+stored in the sidecar next to each of the observer's logs, and
+``factory.session(n)``, copies of every track for ``n`` simulated sessions
+at once.  Bayesian tracks that shared what they learnt about spread and
+lapse in the session (``bayes_share_spread``) share it again, within each
+simulated session, from that session's own answers.
 """
 
 from __future__ import annotations
@@ -16,7 +17,7 @@ from pathlib import Path
 
 from fitting.errors import InputError
 from runner.protocol import parse_protocol
-from runner.shared_evidence import recorded_evidence
+from runner.shared_evidence import SharedEvidence
 from runner.tracks import as_started, new_track, new_track_copies
 
 
@@ -77,45 +78,57 @@ def track_factories(logs, strict: bool = True) -> dict:
 class TrackFactory:
     """Fresh tracks of one protocol, ``factory(condition, track_id)``; picklable, for worker processes.
 
-    ``factory.copies(condition, track_id, n)`` gives ``n`` copies stepped
-    together where the procedure has that form, else None
-    (:func:`runner.tracks.new_track_copies`).
+    A track from ``factory(...)`` runs alone; ``factory.session(n)`` gives
+    the tracks of ``n`` simulated sessions (:class:`SessionCopies`).
 
     Parameters
     ----------
     protocol : Protocol
-    evidence : dict, optional
-        ``(condition, track_id) -> RecordedEvidence`` (:meth:`given`).
     """
 
-    def __init__(self, protocol, evidence: dict | None = None):
+    def __init__(self, protocol):
         self.protocol = protocol
-        self.evidence = evidence or {}
-
-    def given(self, sequence) -> TrackFactory:
-        """This factory for one observer's answered trials, in the order they were run.
-
-        Parameters
-        ----------
-        sequence : iterable of ((condition, track_id), level, response_cw)
-
-        Returns
-        -------
-        TrackFactory
-            Itself unless its Bayesian tracks shared spread and lapse; then
-            one whose tracks borrow, before each trial, what the observer's
-            other tracks had lent the real track before its trial of that
-            number (:func:`runner.shared_evidence.recorded_evidence`).
-        """
-        proc = self.protocol.procedure
-        if proc.method != "bayesian" or not proc.bayes_share_spread:
-            return self
-        keyed = [((str(c), str(t)), float(x), int(r)) for (c, t), x, r in sequence]
-        made = recorded_evidence(keyed, lambda shared: new_track(self.protocol, 0, evidence=shared))
-        return TrackFactory(self.protocol, made)
 
     def __call__(self, condition: str, track) -> object:
-        return new_track(self.protocol, int(track), evidence=self.evidence.get((str(condition), str(track))))
+        return new_track(self.protocol, int(track))
 
-    def copies(self, condition: str, track, n: int):
-        return new_track_copies(self.protocol, int(track), n, self.evidence.get((str(condition), str(track))))
+    def session(self, n: int) -> SessionCopies:
+        """Copies of the session's tracks for ``n`` simulated sessions (:class:`SessionCopies`)."""
+        return SessionCopies(self.protocol, n)
+
+
+class SessionCopies:
+    """The tracks of ``n`` simulated sessions of one protocol, one track at a time.
+
+    ``copies(condition, track_id)`` gives ``n`` fresh copies of that track
+    (copy r belongs to session r): stepped together
+    (:func:`runner.tracks.new_track_copies`) where the procedure has that
+    form, else a list of ``n`` tracks.  Bayesian tracks that share spread and
+    lapse (``bayes_share_spread``) share them with the copies of the other
+    tracks asked for from the same object, session by session, so these
+    must be stepped in the order the session ran them.
+
+    Parameters
+    ----------
+    protocol : Protocol
+    n : int
+        Simulated sessions (>= 1).
+
+    Attributes
+    ----------
+    shared : bool
+        True when the copies of different tracks lend each other evidence.
+    """
+
+    def __init__(self, protocol, n: int):
+        proc = protocol.procedure
+        self.protocol, self.n = protocol, int(n)
+        self.shared = proc.method == "bayesian" and proc.bayes_share_spread
+        self._batched = SharedEvidence() if self.shared else None
+        self._each = [SharedEvidence() for _ in range(self.n)] if self.shared else [None] * self.n
+
+    def __call__(self, condition: str, track):
+        made = new_track_copies(self.protocol, int(track), self.n, self._batched)
+        if made is None:
+            made = [new_track(self.protocol, int(track), evidence=e) for e in self._each]
+        return made

@@ -19,103 +19,58 @@ of a condition stay two posteriors of their own PSE: pooling them as well
 (one posterior per condition) was measured and left out, because it held
 the trials so close to the PSE that the intervals no longer kept their level.
 
-Two kinds of evidence:
-
-* :class:`SharedEvidence`, live, for a session: every member's log
-  evidence is refreshed after each of its answers;
-* :class:`RecordedEvidence`, for the bootstrap that re-runs one track:
-  the evidence the session's *other* tracks had gathered before each of the
-  track's trials, replayed from the log (:func:`recorded_evidence`), so the
-  re-run copies borrow what the real track borrowed.
-
-A track with no evidence object borrows nothing (a lone track).
+The bootstrap that re-runs the tracks (:mod:`fitting.replay`) simulates
+whole sessions the same way: copies of every track, stepped in the log's
+order, lend each other what their own simulated answers say, one row per
+simulated session (:class:`runner.adaptive_batch.EntropyBatch` with a
+:class:`SharedEvidence` whose arrays have a leading copies axis).  A track
+with no evidence object borrows nothing (a lone track).
 """
 
 from __future__ import annotations
 
 import numpy as np
 
+#: Log weights are kept at or above this floor (exp of it is 0 in double precision), so that a running
+#: total of them is finite and one member's share can be taken out of it again.
+LOG_FLOOR = -1.0e4
+
+
+def log_evidence(log_post: np.ndarray) -> np.ndarray:
+    """A track's log evidence over (spread, lapse) from its log posterior (PSE, spread, lapse), max 0.
+
+    The posterior summed over the track's PSE grid; each column underflowing
+    to 0 is kept at :data:`LOG_FLOOR`.
+    """
+    with np.errstate(divide="ignore"):
+        new = np.log(np.exp(log_post - log_post.max()).sum(axis=0))
+    return np.maximum(new - new.max(), LOG_FLOOR)
+
 
 class SharedEvidence:
-    """Log evidence over (spread, lapse) of a session's Bayesian tracks, each lending to the others."""
+    """Log evidence over (spread, lapse) of a session's Bayesian tracks, each lending to the others.
+
+    A member's evidence is an array (spread, lapse), or (copies, spread,
+    lapse) for copies of tracks stepped together (row r: simulated session
+    r); members of one evidence object have the same shape.
+    """
 
     def __init__(self):
         self._evidence: dict[int, np.ndarray | float] = {}
+        self._total: np.ndarray | float = 0.0
         self.version = 0
 
     def join(self, member) -> None:
         """Add a track (with no answers yet: it lends nothing until its first answer)."""
         self._evidence.setdefault(id(member), 0.0)
 
-    def refresh(self, member, log_post: np.ndarray) -> None:
-        """Take the member's new log posterior (PSE, spread, lapse) after an answer."""
-        # the track keeps its log posterior with maximum 0, so exp cannot overflow; a (spread, lapse) column
-        # that underflows to log 0 = −inf has no weight beside the maximum's column anyway
-        with np.errstate(divide="ignore"):
-            new = np.log(np.exp(log_post - log_post.max()).sum(axis=0))
-        self._evidence[id(member)] = new - new.max()
+    def refresh(self, member, evidence: np.ndarray) -> None:
+        """Take the member's new log evidence after an answer (:func:`log_evidence`, or one per copy)."""
+        key = id(member)
+        self._total = self._total + evidence - self._evidence[key]
+        self._evidence[key] = evidence
         self.version += 1
 
     def borrowed(self, member) -> np.ndarray | float:
-        """Σ of the other members' log evidence, shape (spread, lapse), or 0.0 before any answer."""
-        own = id(member)
-        return sum((e for k, e in self._evidence.items() if k != own), 0.0)
-
-
-class RecordedEvidence:
-    """The (spread, lapse) log weights a track borrowed before each of its trials, replayed.
-
-    Parameters
-    ----------
-    steps : ndarray, shape (T, spread, lapse)
-        Row t: what the track borrowed before its trial t + 1.  A track run
-        for more trials than recorded keeps the last row.
-    """
-
-    version = 0
-
-    def __init__(self, steps: np.ndarray):
-        self.steps = np.asarray(steps, dtype=float)
-
-    def join(self, member) -> None:
-        """Nothing to do: the weights do not depend on the members."""
-
-    def refresh(self, member, log_post: np.ndarray) -> None:
-        """Nothing to do: the weights are recorded."""
-
-    def borrowed(self, member) -> np.ndarray | float:
-        """The row for the member's next trial."""
-        if self.steps.shape[0] == 0:
-            return 0.0
-        return self.steps[min(member.n_trials, self.steps.shape[0] - 1)]
-
-
-def recorded_evidence(sequence, new_track) -> dict:
-    """Replay a session's Bayesian tracks and record what each borrowed before each of its trials.
-
-    Parameters
-    ----------
-    sequence : iterable of (key, level, response_cw)
-        The answered trials in the order they were run; ``key`` names the
-        track (for example ``(condition, track)``).
-    new_track : callable
-        ``new_track(evidence)``: a fresh track of the session's procedure
-        that joins ``evidence``.
-
-    Returns
-    -------
-    dict
-        ``key -> RecordedEvidence``.
-    """
-    shared = SharedEvidence()
-    tracks: dict = {}
-    rows: dict = {}
-    for key, level, response in sequence:
-        track = tracks.get(key)
-        if track is None:
-            track = tracks[key] = new_track(shared)
-            rows[key] = []
-        rows[key].append(np.zeros((track.grid.spread_count, len(track.grid.lapses))) + shared.borrowed(track))
-        if not track.finished:
-            track.update(level, response)
-    return {key: RecordedEvidence(np.array(r)) for key, r in rows.items()}
+        """Σ of the other members' log evidence, shape as theirs, or 0.0 before any answer."""
+        return self._total - self._evidence.get(id(member), 0.0)

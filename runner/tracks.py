@@ -63,7 +63,7 @@ def procedure_track(proc: ProcedureSettings, n: int, track: int, seed_words: tup
         Track number within its condition (even: starts on the clockwise side).
     seed_words : tuple of int
         Seed of the order of constant stimuli.
-    evidence : SharedEvidence or RecordedEvidence, optional
+    evidence : SharedEvidence, optional
         ``bayesian``: what the session's other tracks lend this one.
     """
     cw_side = track % 2 == 0
@@ -99,7 +99,7 @@ def new_track_copies(protocol: Protocol, track: int, copies: int, evidence=None)
     Bayesian tracks with the default target "pse":
     :class:`runner.adaptive_batch.EntropyBatch`.  Constant stimuli and the
     joint (PSE, spread) target gain nothing from it and have none.
-    ``evidence`` as for :func:`new_track`.
+    ``evidence`` as for :func:`new_track`, with one row per copy.
     """
     proc, n = protocol.procedure, protocol.design.trials_per_track
     if proc.method in ("updown", "weighted"):

@@ -11,7 +11,7 @@ from scipy.stats import norm
 
 from runner.adaptive import ConstantLevels, EntropyGrid, EntropyTrack, UpDownTrack, WeightedTrack, restore
 from runner.adaptive_batch import EntropyBatch, StepCopies
-from runner.shared_evidence import SharedEvidence, recorded_evidence
+from runner.shared_evidence import SharedEvidence
 
 # A cumulative Gaussian observer (the README's model with lapse 0) for the simulations.
 OBSERVER_PSE = 1.5
@@ -358,24 +358,32 @@ def test_tracks_that_share_evidence_hold_the_joint_posterior_of_the_session():
 
 
 @pytest.mark.parametrize("placement", ["entropy", "pse_mean"])
-def test_recorded_evidence_replays_the_levels_each_shared_track_presented(placement):
-    # What the bootstrap's re-run copies borrow (runner/shared_evidence.py): fed the session's own answers, a
-    # track with the recorded evidence, and copies stepped together with it, propose the levels the session's
-    # track presented (copies: up to a near-tie of single-precision entropies, as in the test above)
+def test_copies_sharing_one_evidence_are_sessions_of_their_own(placement):
+    # What the bootstrap's re-run copies do (fitting/replay.py, runner/shared_evidence.py): copies of a
+    # session's tracks stepped together, with one evidence object, are that many sessions, row r of every
+    # track lending only to row r of the others. Row 0 is fed the session's own answers and must propose its
+    # levels (up to a near-tie of single-precision entropies, as in the test above) and hold the same shared
+    # posterior; row 1 is fed other answers and must hold the posterior of single tracks given those
     tracks, sequence = _shared_session(SESSION_GRID, 4, 12, seed=8, placement=placement)
-    recorded = recorded_evidence(sequence, lambda e: EntropyTrack(max_trials=12, grid=SESSION_GRID,
-                                                                  placement=placement, evidence=e))
+    rng = np.random.default_rng(9)
+    other = [(t, x, int(rng.random() < 0.5)) for t, x, _ in sequence]
+    replay = SharedEvidence()
+    singles = [EntropyTrack(max_trials=13, grid=SESSION_GRID, placement=placement, evidence=replay)
+               for _ in range(4)]
+    together = SharedEvidence()
+    copies = [EntropyBatch(2, max_trials=13, grid=SESSION_GRID, placement=placement, evidence=together)
+              for _ in range(4)]
     differ = 0
-    for i in range(4):
-        mine = [(x, r) for t, x, r in sequence if t == i]
-        single = EntropyTrack(max_trials=12, grid=SESSION_GRID, placement=placement, evidence=recorded[i])
-        copies = EntropyBatch(2, max_trials=12, grid=SESSION_GRID, placement=placement, evidence=recorded[i])
-        for x, r in mine:
-            assert single.next_level() == x
-            differ += int((copies.next_levels() != x).sum())
-            single.update(x, r)
-            copies.update([x, x], [r, r])
+    for (t, x, r), (_, _, r1) in zip(sequence, other):
+        differ += int(copies[t].next_levels()[0] != x)
+        copies[t].update([x, x], [r, r1])
+        singles[t].update(x, r1)
     assert differ <= 2
+    for t in range(4):
+        both = copies[t].posterior()
+        np.testing.assert_allclose(both[0], tracks[t].posterior(), rtol=1e-6, atol=1e-12)
+        np.testing.assert_allclose(both[1], singles[t].posterior(), rtol=1e-6, atol=1e-12)
+        assert not np.allclose(both[0], both[1])
     lone = EntropyTrack(max_trials=12, grid=SESSION_GRID, placement=placement)
     mine = [(x, r) for t, x, r in sequence if t == 0]
     lone_levels = []
