@@ -110,7 +110,7 @@ def _plan(schedule, conditions: int) -> list:
     for key in schedule:
         counts[key] = counts.get(key, 0) + 1
     plan: dict = {}
-    for (c, track), m in sorted(counts.items(), key=lambda kv: (kv[0][0], kv[0][1])):
+    for (c, track), m in sorted(counts.items()):
         plan.setdefault(c, []).append((track, m))
     return [plan.get(c, []) for c in range(conditions)]
 
@@ -126,7 +126,10 @@ def _session(factory, n: int):
 
 
 class _Answers:
-    """Simulated answers of the fitted observer at ``generate``: ``answer(c, levels)`` -> 0/1 per copy (nan: 0)."""
+    """Simulated answers of the fitted observer at ``generate``: ``answer(c, levels)`` -> 0/1 per copy.
+
+    A copy that has stopped (level nan) is answered as at 0°; its answer is not used.
+    """
 
     def __init__(self, fit: PsychometricFit, generate: np.ndarray, rng: np.random.Generator):
         self.pse, self.spread, self.lapse = fit.layout.unpack(generate[None])
