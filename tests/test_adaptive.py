@@ -653,3 +653,25 @@ def test_bad_response_is_refused(response):
         track.update(0.0, response)
     with pytest.raises(ValueError, match="level"):
         track.update(float("nan"), 1)
+
+
+def test_session_copies_without_a_batched_form_share_session_by_session():
+    # The joint (PSE, spread) target has no batched form (runner/adaptive_batch.py), so the bootstrap's
+    # copies of a shared session are single tracks (runner/replay.py SessionCopies): copy r of every track
+    # must lend to copy r of the others and to no other copy, as the batched rows do above
+    import re
+
+    from conftest import PROTOCOLS
+    from runner.protocol import parse_protocol
+    from runner.replay import SessionCopies
+
+    text = (PROTOCOLS / "pilot_short.toml").read_text()
+    text = re.sub(r"(?s)\[procedure\].*?(?=\n\[|\Z)",
+                  '[procedure]\nmethod = "bayesian"\nbayes_target = "pse_spread"\n', text)
+    session = SessionCopies(parse_protocol(text, "test"), 2)
+    first, second = session("a", 0), session("b", 1)
+    assert session.shared and isinstance(first, list) and len(first) == 2
+    for x, r in [(0.0, 1), (1.0, 1), (-1.0, 0)]:
+        first[0].update(x, r)                  # only session 0's first track answers
+    assert not np.allclose(second[0].posterior(), second[1].posterior())    # session 0 learnt from it
+    np.testing.assert_allclose(second[1].posterior(), first[1].posterior())  # session 1 did not: both fresh
