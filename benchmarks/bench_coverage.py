@@ -89,16 +89,19 @@ from scratch import pool_map, scratch_folder  # noqa: E402
 
 
 def protocol_text(base: str, trials_per_condition: int, method: str, tracks: int = 2,
-                  placement: str | None = None, alone: bool = False) -> str:
+                  placement: str | None = None, alone: bool = False, prior_sd: float | None = None) -> str:
     """The base protocol with ``tracks`` tracks sharing ``trials_per_condition``, the given method (and placement).
 
-    ``alone``: Bayesian tracks that do not share spread and lapse evidence.
+    ``alone``: Bayesian tracks that do not share spread and lapse evidence;
+    ``prior_sd``: their Gaussian prior on the PSE (``bayes_pse_prior_sd_deg``).
     """
     text = Path(base).read_text(encoding="utf-8")
     text = re.sub(r"(?m)^tracks_per_condition\s*=.*$", f"tracks_per_condition = {tracks}", text)
     text = re.sub(r"(?m)^trials_per_track\s*=.*$", f"trials_per_track = {trials_per_condition // tracks}", text)
     if placement is not None:
         text = re.sub(r"(?m)^method\s*=.*$", lambda m: f'{m.group(0)}\nbayes_placement = "{placement}"', text)
+    if prior_sd is not None:
+        text = re.sub(r"(?m)^method\s*=.*$", lambda m: f'{m.group(0)}\nbayes_pse_prior_sd_deg = {prior_sd!r}', text)
     if alone:
         text = re.sub(r"(?m)^method\s*=.*$", lambda m: f'{m.group(0)}\nbayes_share_spread = false', text)
     if method in ("bayesian", "constant"):
@@ -698,7 +701,8 @@ def spread_bias(args, model) -> list[str]:
              "|---|---|---|---|---|---|---|---|---|"]
     for proc in args.procedures:
         for n_trials in args.trials:
-            text = protocol_text(args.protocol, n_trials, proc, args.tracks, args.bayes_placement, args.bayes_alone)
+            text = protocol_text(args.protocol, n_trials, proc, args.tracks, args.bayes_placement, args.bayes_alone,
+                                 args.bayes_prior_sd)
             jobs = [(text, model, size, 1000 * size + g, args.lapse_max) for size in args.sizes
                     for g in range(args.first_group, args.first_group + args.groups)]
             rows = pd.DataFrame([r for group in pool_map(_spread_bias_group, jobs, args.jobs) for r in group])
@@ -720,7 +724,8 @@ def timing(args, model) -> list[str]:
              "| procedure | trials/cond. | interval | fit s/observer | ratio to bca |", "|---|---|---|---|---|"]
     for proc in args.procedures:
         for n_trials in args.trials:
-            text = protocol_text(args.protocol, n_trials, proc, args.tracks, args.bayes_placement, args.bayes_alone)
+            text = protocol_text(args.protocol, n_trials, proc, args.tracks, args.bayes_placement, args.bayes_alone,
+                                 args.bayes_prior_sd)
             size = max(args.sizes)
             with tempfile.TemporaryDirectory() as tmp:
                 path = Path(tmp) / "protocol.toml"
@@ -826,7 +831,10 @@ def main() -> None:
                     help="with --spread-bias: upper bounds of the free lapse to compare (default: fit's)")
     ap.add_argument("--protocol", default=str(ROOT / "protocols" / "offset_by_lag.toml"))
     ap.add_argument("--tracks", type=int, choices=(1, 2), default=2, help="tracks per condition sharing its trials")
-    ap.add_argument("--bayes-placement", choices=("entropy", "pse_mean"), help="placement of Bayesian tracks")
+    ap.add_argument("--bayes-placement", choices=("entropy", "pse_mean", "straddle"),
+                    help="placement of Bayesian tracks")
+    ap.add_argument("--bayes-prior-sd", type=float,
+                    help="SD (deg) of the Bayesian tracks' Gaussian prior on the PSE (bayes_pse_prior_sd_deg)")
     ap.add_argument("--bayes-alone", action="store_true",
                     help="Bayesian tracks that do not share spread and lapse (bayes_share_spread = false)")
     ap.add_argument("--model", default=str(ROOT / "protocols" / "observers" / "typical.toml"))
@@ -890,7 +898,8 @@ def main() -> None:
     rej_lines, independent = [], {}
     for proc in args.procedures:
         for n_trials in args.trials:
-            text = protocol_text(args.protocol, n_trials, proc, args.tracks, args.bayes_placement, args.bayes_alone)
+            text = protocol_text(args.protocol, n_trials, proc, args.tracks, args.bayes_placement, args.bayes_alone,
+                                 args.bayes_prior_sd)
             results = cell_results(args, proc, n_trials, text, model, pop)
             for boot in args.bootstraps:
                 rej = defaultdict(list)

@@ -58,7 +58,7 @@ __all__ = [
 
 STATE_VERSION = 1
 
-PLACEMENTS = ("entropy", "pse_mean")  # level choices of EntropyTrack
+PLACEMENTS = ("entropy", "pse_mean", "straddle")  # level choices of EntropyTrack
 
 
 # ---------------------------------------------------------------- checks
@@ -561,6 +561,16 @@ def _sum_m_log_m(m: np.ndarray, work: np.ndarray) -> np.ndarray:
     return np.einsum("ij,ij->i", m, np.log(m, out=work))
 
 
+def log_pse_prior(mu: np.ndarray, sd: float) -> np.ndarray:
+    """Log prior of the PSE grid points ``mu``: Gaussian of SD ``sd`` (deg) about 0, or 0 everywhere for sd = 0.
+
+    Unnormalised: the posterior is normalised after every answer.
+    """
+    if sd == 0:
+        return np.zeros_like(mu)
+    return -0.5 * (mu / sd) ** 2
+
+
 class PosteriorMean(NamedTuple):
     """Posterior means of the psychometric parameters."""
 
@@ -586,7 +596,14 @@ class EntropyTrack:
       mean of the posterior as both placement and estimate, King-Smith,
       Grigsby, Vingrys, Benes & Supowit, 1994); the lower level on a tie.
       Trials stay at the current PSE estimate, which is what the PSE needs;
-      the spread is learnt only from the scatter of that estimate.
+      the spread is learnt only from the scatter of that estimate;
+    * ``"straddle"``: the level nearest μ̄ ± c·σ̄ (posterior means of PSE
+      and spread, c = ``straddle_spreads``), above and below in turn
+      (``side`` first).  Trials sit near the PSE, where a trial tells most
+      about it, yet on both sides of it in equal numbers, which keeps the
+      spread estimable and the fitted PSE from leaning on it (a design
+      symmetric about μ makes the PSE and spread estimates uncorrelated);
+      the lower level on a tie.
 
     Parameters
     ----------
@@ -598,8 +615,16 @@ class EntropyTrack:
         Used by ``placement="entropy"`` only.
     grid : EntropyGrid, optional
         Parameter and level grid; default :class:`EntropyGrid()`.
-    placement : {"entropy", "pse_mean"}, default "entropy"
+    placement : {"entropy", "pse_mean", "straddle"}, default "entropy"
         How the next level is chosen (see above).
+    straddle_spreads : float, default 0.25
+        ``"straddle"``: distance of the levels from the PSE estimate, in
+        estimated spreads (>= 0).
+    side : {1, -1}, default 1
+        ``"straddle"``: 1 starts above the PSE estimate, -1 below.
+    pse_prior_sd : float, default 0
+        > 0: the prior on the PSE is a Gaussian of this SD (deg) centred on
+        the reference, cut to the grid; 0: uniform over the grid.
     evidence : SharedEvidence, optional
         What the session's other tracks know about spread and lapse
         (:mod:`runner.shared_evidence`); it is multiplied into the posterior
@@ -621,7 +646,8 @@ class EntropyTrack:
     kind = "bayesian"
 
     def __init__(self, *, max_trials: int, target: str = "pse", grid: EntropyGrid | None = None,
-                 placement: str = "entropy", evidence=None):
+                 placement: str = "entropy", straddle_spreads: float = 0.25, side: int = 1,
+                 pse_prior_sd: float = 0.0, evidence=None):
         self._max_trials = _whole("max_trials", max_trials, 1)
         if target not in ("pse", "pse_spread"):
             raise ValueError(f"target: expected 'pse' or 'pse_spread', got {target!r}")
@@ -629,6 +655,15 @@ class EntropyTrack:
         if placement not in PLACEMENTS:
             raise ValueError(f"placement: expected one of {list(PLACEMENTS)}, got {placement!r}")
         self._placement = placement
+        self._straddle = _number("straddle_spreads", straddle_spreads)
+        if self._straddle < 0:
+            raise ValueError(f"straddle_spreads: expected a number >= 0, got {straddle_spreads!r}")
+        if side not in (1, -1) or isinstance(side, bool):
+            raise ValueError(f"side: expected 1 or -1, got {side!r}")
+        self._side = int(side)
+        self._prior_sd = _number("pse_prior_sd", pse_prior_sd)
+        if self._prior_sd < 0:
+            raise ValueError(f"pse_prior_sd: expected a number >= 0 (0: uniform prior), got {pse_prior_sd!r}")
         if grid is None:
             grid = EntropyGrid()
         if not isinstance(grid, EntropyGrid):
@@ -643,6 +678,7 @@ class EntropyTrack:
         self._keep = 1.0 - self._lapse
         self._zero_lapse = np.flatnonzero(self._lapse == 0.0)
         self._log_post = np.zeros((self._mu.size, self._sigma.size, self._lapse.size))
+        self._log_post += log_pse_prior(self._mu, self._prior_sd)[:, None, None]
         self._levels: list[float] = []
         self._responses: list[int] = []
         self._proposal: float | None = None
@@ -668,8 +704,13 @@ class EntropyTrack:
 
     @property
     def placement(self) -> str:
-        """"entropy" or "pse_mean"."""
+        """"entropy", "pse_mean" or "straddle"."""
         return self._placement
+
+    @property
+    def straddle_side(self) -> int:
+        """``"straddle"``: 1 when the next level goes above the PSE estimate, -1 below."""
+        return self._side if self.n_trials % 2 == 0 else -self._side
 
     def posterior(self, borrowed: bool = True) -> np.ndarray:
         """Normalised posterior over the grid, shape (μ, σ, λ).
@@ -740,7 +781,11 @@ class EntropyTrack:
             if self._placement == "entropy":
                 pick = int(np.argmin(self.expected_entropies()))
             else:
-                pick = int(np.argmin(np.abs(self._level_values - self.posterior_mean().pse)))
+                mean = self.posterior_mean()
+                aim = mean.pse
+                if self._placement == "straddle":
+                    aim += self.straddle_side * self._straddle * mean.spread
+                pick = int(np.argmin(np.abs(self._level_values - aim)))
             self._proposal = float(self._level_values[pick])
         return self._proposal
 
@@ -792,6 +837,9 @@ class EntropyTrack:
             "version": STATE_VERSION,
             "target": self._target,
             "placement": self._placement,
+            "straddle_spreads": self._straddle,
+            "side": self._side,
+            "pse_prior_sd": self._prior_sd,
             "max_trials": self._max_trials,
             "grid": grid,
             "levels": list(self._levels),
@@ -803,9 +851,10 @@ class EntropyTrack:
     @classmethod
     def _from_state(cls, state: dict) -> EntropyTrack:
         _check_kind(state, cls.kind)
-        if "placement" not in state:
-            state = {**state, "placement": "entropy"}  # states written before the option were all "entropy"
-        settings = _settings(state, ("target", "placement", "max_trials", "grid"))
+        # states written before these options had their defaults
+        state = {"placement": "entropy", "straddle_spreads": 0.25, "side": 1, "pse_prior_sd": 0.0, **state}
+        settings = _settings(state, ("target", "placement", "straddle_spreads", "side", "pse_prior_sd",
+                                     "max_trials", "grid"))
         if not isinstance(settings["grid"], dict):
             raise ValueError("state.grid: expected a table of grid settings")
         try:
@@ -813,7 +862,8 @@ class EntropyTrack:
         except TypeError as err:
             raise ValueError(f"state.grid: {err}") from None
         proc = cls(max_trials=settings["max_trials"], target=settings["target"], grid=grid,
-                   placement=settings["placement"])
+                   placement=settings["placement"], straddle_spreads=settings["straddle_spreads"],
+                   side=settings["side"], pse_prior_sd=settings["pse_prior_sd"])
         return _replayed(proc, state)
 
 

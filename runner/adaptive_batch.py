@@ -171,7 +171,7 @@ class EntropyBatch:
     ----------
     copies : int
         Number of tracks (>= 1).
-    max_trials, grid, placement
+    max_trials, grid, placement, straddle_spreads, side, pse_prior_sd
         As for :class:`~runner.adaptive.EntropyTrack` (checked the same way).
     target : {"pse"}
         The only target stepped together: with the joint (PSE, spread)
@@ -191,12 +191,15 @@ class EntropyBatch:
     """
 
     def __init__(self, copies: int, *, max_trials: int, target: str = "pse", grid: EntropyGrid | None = None,
-                 placement: str = "entropy", evidence=None):
+                 placement: str = "entropy", straddle_spreads: float = 0.25, side: int = 1,
+                 pse_prior_sd: float = 0.0, evidence=None):
         if target != "pse":
             raise ValueError(f"target: copies are stepped together for the target 'pse' only, got {target!r}")
         if int(copies) != copies or copies < 1:
             raise ValueError(f"copies: expected a whole number >= 1, got {copies!r}")
-        one = EntropyTrack(max_trials=max_trials, target=target, grid=grid, placement=placement)  # checks all
+        one = EntropyTrack(max_trials=max_trials, target=target, grid=grid, placement=placement,
+                           straddle_spreads=straddle_spreads, side=side, pse_prior_sd=pse_prior_sd)  # checks all
+        self._straddle, self._side = float(straddle_spreads), one.straddle_side   # side of the first trial
         self.copies = int(copies)
         self.max_trials = max_trials
         self.placement, self.grid = one.placement, one.grid        # the target is always "pse"
@@ -209,7 +212,8 @@ class EntropyBatch:
         self._table_mxs = _table_by_pse(self.grid)                       # (μ, x, σ)
         self._table_flat = table.reshape(table.shape[0], -1)              # (x, μ·σ): the update's Φ
         cells = self._mu.size * self._sigma.size
-        self._post = np.full((self.copies, lapse.size, cells), 1.0 / (cells * lapse.size))  # (R, λ, μ·σ)
+        prior = one.posterior(borrowed=False).transpose(2, 0, 1).reshape(lapse.size, cells)   # (λ, μ·σ)
+        self._post = np.repeat(prior[None], self.copies, axis=0)                                  # (R, λ, μ·σ)
         self.n_trials = 0
         self._evidence = evidence
         if evidence is not None:
@@ -284,9 +288,12 @@ class EntropyBatch:
         if self.placement == "entropy":
             pick = np.argmin(self.expected_entropies(), axis=1)
         else:
-            post = self._placing().sum(axis=1).reshape(self.copies, self._mu.size, -1).sum(axis=2)
-            mean = post @ self._mu
-            pick = np.argmin(np.abs(self._levels[None, :] - mean[:, None]), axis=1)
+            post = self._placing().sum(axis=1).reshape(self.copies, self._mu.size, -1)    # (R, μ, σ)
+            aim = post.sum(axis=2) @ self._mu
+            if self.placement == "straddle":
+                side = self._side if self.n_trials % 2 == 0 else -self._side
+                aim = aim + side * self._straddle * (post.sum(axis=1) @ self._sigma)
+            pick = np.argmin(np.abs(self._levels[None, :] - aim[:, None]), axis=1)
         return self._levels[pick]
 
     def update(self, levels, responses) -> None:

@@ -39,15 +39,17 @@ def as_started(protocol: Protocol, sidecar: dict | None) -> Protocol:
         update={"bayes_share_spread": False})})
 
 
-def entropy_settings(proc: ProcedureSettings, n: int) -> dict:
-    """Keyword arguments of a Bayesian track of ``n`` trials under ``proc``."""
+def entropy_settings(proc: ProcedureSettings, n: int, track: int = 0) -> dict:
+    """Keyword arguments of Bayesian track number ``track`` (even: straddles from above) of ``n`` trials under ``proc``."""
     lo, hi = proc.bounds_deg
     grid = EntropyGrid(
         pse_min=proc.pse_range_deg[0], pse_max=proc.pse_range_deg[1], pse_step=0.5,
         spread_min=proc.spread_range_deg[0], spread_max=proc.spread_range_deg[1],
         level_min=lo, level_max=hi, level_step=0.5,
     )
-    return {"max_trials": n, "target": proc.bayes_target, "grid": grid, "placement": proc.bayes_placement}
+    return {"max_trials": n, "target": proc.bayes_target, "grid": grid, "placement": proc.bayes_placement,
+            "straddle_spreads": proc.bayes_straddle_spreads, "side": 1 if track % 2 == 0 else -1,
+            "pse_prior_sd": proc.bayes_pse_prior_sd_deg}
 
 
 def procedure_track(proc: ProcedureSettings, n: int, track: int, seed_words: tuple[int, ...], evidence=None):
@@ -78,7 +80,7 @@ def procedure_track(proc: ProcedureSettings, n: int, track: int, seed_words: tup
         target = proc.target_cw if cw_side else 1.0 - proc.target_cw
         return WeightedTrack(target_p_cw=target, start_level=start, steps=proc.steps_deg, bounds=proc.bounds_deg, **stop)
     if proc.method == "bayesian":
-        return EntropyTrack(**entropy_settings(proc, n), evidence=evidence)
+        return EntropyTrack(**entropy_settings(proc, n, track), evidence=evidence)
     repeats = n // len(proc.levels_deg)
     seed = zlib.crc32(repr(seed_words).encode())
     return ConstantLevels(levels=proc.levels_deg, repeats=repeats, seed=seed)
@@ -105,7 +107,7 @@ def new_track_copies(protocol: Protocol, track: int, copies: int, evidence=None)
     if proc.method in ("updown", "weighted"):
         return StepCopies(procedure_track(proc, n, track, (0,)), copies)
     if proc.method == "bayesian" and proc.bayes_target == "pse":
-        return EntropyBatch(copies, **entropy_settings(proc, n), evidence=evidence)
+        return EntropyBatch(copies, **entropy_settings(proc, n, track), evidence=evidence)
     return None
 
 

@@ -257,6 +257,30 @@ def test_mean_placement_is_the_level_nearest_the_posterior_mean_of_the_pse(n):
         assert track.next_level() == 0.0  # the mean of a prior uniform on a grid symmetric about 0
 
 
+@pytest.mark.parametrize("prior_sd", [0.0, 2.0])
+@pytest.mark.parametrize("n", [0, 1, 6])
+def test_straddle_placement_alternates_about_the_posterior_means(n, prior_sd):
+    # Bayes' rule with a Gaussian prior on the PSE (the brute-force likelihood times exp(−μ²/2sd²),
+    # normalised), then the level nearest mean(μ) ± 0.4·mean(σ), above and below in turn from the track's side
+    grid = EntropyGrid(pse_min=-3, pse_max=3, pse_step=0.5, spread_min=1, spread_max=4, spread_count=3,
+                       lapses=(0.0, 0.05), level_min=-6, level_max=6, level_step=0.25)
+    levels, responses = _some_trials(seed=400 + n, n=n)
+    prior = np.exp(-0.5 * (grid.pse_values() / prior_sd) ** 2) if prior_sd else np.ones(grid.pse_values().size)
+    post = _brute_posterior(grid, levels, responses) * prior[:, None, None]
+    post /= post.sum()
+    for side in (1, -1):
+        track = EntropyTrack(max_trials=50, grid=grid, placement="straddle", straddle_spreads=0.4, side=side,
+                             pse_prior_sd=prior_sd)
+        for x, r in zip(levels, responses):
+            track.update(x, r)
+        np.testing.assert_allclose(track.posterior(), post, rtol=1e-9, atol=1e-15)
+        sign = side if n % 2 == 0 else -side
+        aim = post.sum(axis=(1, 2)) @ grid.pse_values() + sign * 0.4 * (post.sum(axis=(0, 2)) @ grid.spread_values())
+        level_list = grid.level_values()
+        assert track.next_level() == level_list[np.argmin(np.abs(level_list - aim))]
+        assert restore(track.state()).state() == track.state()
+
+
 @pytest.mark.parametrize("make", [
     lambda: UpDownTrack(start_level=2, steps=[4, 2, 1, 0.5], bounds=[-10, 10], down=2, side="ccw", max_trials=40,
                         max_reversals=7),
@@ -296,7 +320,7 @@ def test_bayesian_copies_stepped_together_equal_the_brute_force_posterior_and_en
         np.testing.assert_allclose(batch.expected_entropies()[c], expected, rtol=2e-5)  # single precision
 
 
-@pytest.mark.parametrize("placement", ["entropy", "pse_mean"])
+@pytest.mark.parametrize("placement", ["entropy", "pse_mean", "straddle"])
 def test_bayesian_copies_stepped_together_propose_the_single_tracks_levels(placement):
     # Given the same answers, every copy must propose what a single track proposes, except at a near-tie of
     # the expected entropies (single precision there; runner/adaptive_batch.py); checked on the grid of a
@@ -305,8 +329,11 @@ def test_bayesian_copies_stepped_together_propose_the_single_tracks_levels(place
     rng = np.random.default_rng(5)
     n_copies, n_trials = 24, 30
     true_pse = rng.normal(0, 4, n_copies)
-    batch = EntropyBatch(n_copies, max_trials=n_trials, grid=grid, placement=placement)
-    singles = [EntropyTrack(max_trials=n_trials, grid=grid, placement=placement) for _ in range(n_copies)]
+    settings = dict(max_trials=n_trials, grid=grid, placement=placement)
+    if placement == "straddle":     # the second track of a pair, with a prior on the PSE
+        settings.update(side=-1, pse_prior_sd=6.0, straddle_spreads=0.3)
+    batch = EntropyBatch(n_copies, **settings)
+    singles = [EntropyTrack(**settings) for _ in range(n_copies)]
     differ = 0
     for _ in range(n_trials):
         together = batch.next_levels()
@@ -321,8 +348,8 @@ def test_bayesian_copies_stepped_together_propose_the_single_tracks_levels(place
         for t, x, y in zip(singles, alone, answers):
             t.update(float(x), int(y))
     assert differ <= 0.005 * n_copies * n_trials
-    if placement == "pse_mean":
-        assert differ == 0      # no entropies involved: the same arithmetic up to rounding of the mean
+    if placement != "entropy":
+        assert differ == 0      # no entropies involved: the same arithmetic up to rounding of the means
 
 
 def _shared_session(grid, n_tracks, n_trials, seed, placement="entropy"):
@@ -357,7 +384,7 @@ def test_tracks_that_share_evidence_hold_the_joint_posterior_of_the_session():
         assert restore(track.state()).state() == track.state()      # a state restores without the others
 
 
-@pytest.mark.parametrize("placement", ["entropy", "pse_mean"])
+@pytest.mark.parametrize("placement", ["entropy", "pse_mean", "straddle"])
 def test_copies_sharing_one_evidence_are_sessions_of_their_own(placement):
     # What the bootstrap's re-run copies do (fitting/replay.py, runner/shared_evidence.py): copies of a
     # session's tracks stepped together, with one evidence object, are that many sessions, row r of every
@@ -611,7 +638,7 @@ def test_states_written_before_the_placement_option_restore_as_entropy():
     track = EntropyTrack(max_trials=10, grid=TINY_GRID)
     for r in (1, 0, 1):
         track.update(track.next_level(), r)
-    old = {k: v for k, v in track.state().items() if k != "placement"}
+    old = {k: v for k, v in track.state().items() if k not in ("placement", "straddle_spreads", "side", "pse_prior_sd")}
     copy = restore(old)
     assert copy.placement == "entropy" and copy.state() == track.state()
 
@@ -632,6 +659,9 @@ def test_states_written_before_the_placement_option_restore_as_entropy():
         (lambda: EntropyTrack(max_trials=5, target="slope"), "target"),
         (lambda: EntropyTrack(max_trials=0), "max_trials"),
         (lambda: EntropyTrack(max_trials=5, placement="mode"), "placement"),
+        (lambda: EntropyTrack(max_trials=5, placement="straddle", side=0), "side"),
+        (lambda: EntropyTrack(max_trials=5, straddle_spreads=-0.5), "straddle_spreads"),
+        (lambda: EntropyTrack(max_trials=5, pse_prior_sd=-2.0), "pse_prior_sd"),
         (lambda: EntropyGrid(pse_step=0.0), "pse_step"),
         (lambda: EntropyGrid(level_min=40.0), "level_min"),
         (lambda: EntropyGrid(spread_min=0.0), "spread_min"),

@@ -84,6 +84,10 @@ MALFORMED = {
                                 "procedure.bayes_placement"),
     "spread_target_with_mean_placement": (b"[procedure]\nmethod = 'bayesian'\nbayes_placement = 'pse_mean'\nbayes_target = 'pse_spread'",
                                           "procedure.bayes_target"),
+    "spread_target_with_straddle": (b"[procedure]\nmethod = 'bayesian'\nbayes_placement = 'straddle'\nbayes_target = 'pse_spread'",
+                                    "procedure.bayes_target"),
+    "negative_pse_prior": (b"[procedure]\nmethod = 'bayesian'\nbayes_pse_prior_sd_deg = -3",
+                           "procedure.bayes_pse_prior_sd_deg"),
 }
 
 
