@@ -266,6 +266,9 @@ class DesignSettings(_Section):
         return v
 
 
+PSE_GRID_STEP_DEG = 0.5   # spacing of the Bayesian tracks' PSE grid and level list (runner.tracks)
+
+
 class ProcedureSettings(_Section):
     """How test offsets are chosen.
 
@@ -587,6 +590,10 @@ def _cross_checks(p: Protocol) -> None:
     if proc.method == "bayesian" and proc.bayes_placement != "entropy" and proc.bayes_target == "pse_spread":
         raise InputError("", "procedure.bayes_target", "\"pse_spread\" needs bayes_placement = \"entropy\" "
                          f"(\"{proc.bayes_placement}\" places every trial by the PSE estimate)")
+    if proc.method == "bayesian" and 0 < proc.bayes_pse_prior_sd_deg < PSE_GRID_STEP_DEG:
+        raise InputError("", "procedure.bayes_pse_prior_sd_deg",
+                         f"expected 0 (uniform prior) or at least the PSE grid's step of {PSE_GRID_STEP_DEG:g}°, "
+                         f"got {proc.bayes_pse_prior_sd_deg:g}: a narrower prior fixes the PSE at the reference")
     if proc.method == "bayesian" and not (proc.pse_range_deg[0] < hi and proc.pse_range_deg[1] > lo):
         raise InputError("", "procedure.pse_range_deg", "expected a PSE grid that overlaps bounds_deg")
     if p.design.practice_offset_deg > max(abs(lo), abs(hi)):

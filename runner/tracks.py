@@ -17,7 +17,7 @@ import zlib
 
 from runner.adaptive import ConstantLevels, EntropyGrid, EntropyTrack, UpDownTrack, WeightedTrack
 from runner.adaptive_batch import EntropyBatch, StepCopies
-from runner.protocol import ProcedureSettings, Protocol
+from runner.protocol import PSE_GRID_STEP_DEG, ProcedureSettings, Protocol
 from runner.schedule import Schedule
 from runner.shared_evidence import SharedEvidence
 
@@ -43,9 +43,9 @@ def entropy_settings(proc: ProcedureSettings, n: int, track: int = 0) -> dict:
     """Keyword arguments of Bayesian track number ``track`` (even: straddles from above) of ``n`` trials under ``proc``."""
     lo, hi = proc.bounds_deg
     grid = EntropyGrid(
-        pse_min=proc.pse_range_deg[0], pse_max=proc.pse_range_deg[1], pse_step=0.5,
+        pse_min=proc.pse_range_deg[0], pse_max=proc.pse_range_deg[1], pse_step=PSE_GRID_STEP_DEG,
         spread_min=proc.spread_range_deg[0], spread_max=proc.spread_range_deg[1],
-        level_min=lo, level_max=hi, level_step=0.5,
+        level_min=lo, level_max=hi, level_step=PSE_GRID_STEP_DEG,
     )
     return {"max_trials": n, "target": proc.bayes_target, "grid": grid, "placement": proc.bayes_placement,
             "straddle_spreads": proc.bayes_straddle_spreads, "side": 1 if track % 2 == 0 else -1,

@@ -86,6 +86,8 @@ MALFORMED = {
                                           "procedure.bayes_target"),
     "spread_target_with_straddle": (b"[procedure]\nmethod = 'bayesian'\nbayes_placement = 'straddle'\nbayes_target = 'pse_spread'",
                                     "procedure.bayes_target"),
+    "pse_prior_narrower_than_the_grid": (b"[procedure]\nmethod = 'bayesian'\nbayes_pse_prior_sd_deg = 0.01",
+                                         "procedure.bayes_pse_prior_sd_deg"),
     "negative_pse_prior": (b"[procedure]\nmethod = 'bayesian'\nbayes_pse_prior_sd_deg = -3",
                            "procedure.bayes_pse_prior_sd_deg"),
 }
