@@ -81,11 +81,10 @@ CANDIDATES = [
 
 
 class ScratchEntropyTrack(EntropyTrack):
-    """Six Bayesian variants tried against the default and not adopted (benchmark only).
+    """Five Bayesian variants tried against the default and not adopted (benchmark only).
 
     ``switch_after``: least expected entropy for the first K trials of the
     track, then the level nearest the posterior mean of the PSE;
-    ``pse_prior_sd``: a Gaussian prior on the PSE centred on the reference;
     ``near_spreads``: least expected entropy among the levels within K
     posterior-mean spreads of the posterior mean of the PSE;
     ``min_variance``: least expected posterior variance of the PSE marginal
@@ -99,8 +98,7 @@ class ScratchEntropyTrack(EntropyTrack):
     level would teach about the spread itself does not count.
     """
 
-    def __init__(self, switch_after: int | None = None, pse_prior_sd: float | None = None,
-                 near_spreads: float | None = None, min_variance: bool = False,
+    def __init__(self, switch_after: int | None = None, near_spreads: float | None = None, min_variance: bool = False,
                  posterior_lapse: float | None = None, conditional: bool = False, **kw):
         if posterior_lapse is not None:
             kw["grid"] = dataclasses.replace(kw["grid"], lapses=(posterior_lapse,))
@@ -109,8 +107,6 @@ class ScratchEntropyTrack(EntropyTrack):
         self.near_spreads = near_spreads
         self.min_variance = min_variance
         self.conditional = conditional
-        if pse_prior_sd:
-            self._log_post += (-0.5 * (self._mu / pse_prior_sd) ** 2)[:, None, None]
 
     def expected_pse_variances(self) -> np.ndarray:
         """Expected posterior variance of the PSE after one trial at each level (deg², one per level)."""
@@ -158,7 +154,7 @@ class ScratchEntropyTrack(EntropyTrack):
         return super().next_level()
 
 
-SCRATCH = ("switch_after", "pse_prior_sd", "near_spreads", "min_variance", "posterior_lapse", "conditional")
+SCRATCH = ("switch_after", "near_spreads", "min_variance", "posterior_lapse", "conditional")
 
 
 def _procedure(settings: dict) -> ProcedureSettings:
@@ -176,7 +172,8 @@ def _track(settings: dict, n: int, t: int, evidence=None):
 
 SCRATCH_ROWS = [(f"bayesian, entropy for {k} trials then posterior mean (scratch)",
                  dict(method="bayesian", switch_after=k)) for k in (4, 10, 20, 30)] + [
-    (f"bayesian, Gaussian PSE prior SD {sd:g}° (scratch)", dict(method="bayesian", pse_prior_sd=sd)) for sd in (6.0, 10.0)] + [
+    (f"bayesian, Gaussian PSE prior SD {sd:g}° (bayes_pse_prior_sd_deg, entropy placement)",
+     dict(method="bayesian", bayes_pse_prior_sd_deg=sd)) for sd in (6.0, 10.0)] + [
     (f"bayesian, entropy among levels within {k:g} spreads of the PSE (scratch)",
      dict(method="bayesian", near_spreads=k)) for k in (0.5, 1.0)] + [
     ("bayesian, least expected posterior variance of the PSE (scratch)", dict(method="bayesian", min_variance=True))] + [
