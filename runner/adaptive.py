@@ -59,6 +59,7 @@ __all__ = [
 STATE_VERSION = 1
 
 PLACEMENTS = ("entropy", "pse_mean", "straddle")  # level choices of EntropyTrack
+STRADDLE_SPREADS = 0.25   # default distance of "straddle" levels from the PSE estimate, in estimated spreads
 
 
 # ---------------------------------------------------------------- checks
@@ -646,7 +647,7 @@ class EntropyTrack:
     kind = "bayesian"
 
     def __init__(self, *, max_trials: int, target: str = "pse", grid: EntropyGrid | None = None,
-                 placement: str = "entropy", straddle_spreads: float = 0.25, side: int = 1,
+                 placement: str = "entropy", straddle_spreads: float = STRADDLE_SPREADS, side: int = 1,
                  pse_prior_sd: float = 0.0, evidence=None):
         self._max_trials = _whole("max_trials", max_trials, 1)
         if target not in ("pse", "pse_spread"):
@@ -852,7 +853,7 @@ class EntropyTrack:
     def _from_state(cls, state: dict) -> EntropyTrack:
         _check_kind(state, cls.kind)
         # states written before these options had their defaults
-        state = {"placement": "entropy", "straddle_spreads": 0.25, "side": 1, "pse_prior_sd": 0.0, **state}
+        state = {"placement": "entropy", "straddle_spreads": STRADDLE_SPREADS, "side": 1, "pse_prior_sd": 0.0, **state}
         settings = _settings(state, ("target", "placement", "straddle_spreads", "side", "pse_prior_sd",
                                      "max_trials", "grid"))
         if not isinstance(settings["grid"], dict):

@@ -43,7 +43,7 @@ from functools import lru_cache
 import numpy as np
 from scipy.special import ndtr, xlogy
 
-from runner.adaptive import EntropyGrid, EntropyTrack, UpDownTrack, WeightedTrack, _cdf_table
+from runner.adaptive import STRADDLE_SPREADS, EntropyGrid, EntropyTrack, UpDownTrack, WeightedTrack, _cdf_table
 from runner.shared_evidence import LOG_FLOOR
 
 
@@ -191,7 +191,7 @@ class EntropyBatch:
     """
 
     def __init__(self, copies: int, *, max_trials: int, target: str = "pse", grid: EntropyGrid | None = None,
-                 placement: str = "entropy", straddle_spreads: float = 0.25, side: int = 1,
+                 placement: str = "entropy", straddle_spreads: float = STRADDLE_SPREADS, side: int = 1,
                  pse_prior_sd: float = 0.0, evidence=None):
         if target != "pse":
             raise ValueError(f"target: copies are stepped together for the target 'pse' only, got {target!r}")
