@@ -834,7 +834,8 @@ def main() -> None:
     ap.add_argument("--bayes-placement", choices=("entropy", "pse_mean", "straddle"),
                     help="placement of Bayesian tracks")
     ap.add_argument("--bayes-prior-sd", type=float,
-                    help="SD (deg) of the Bayesian tracks' Gaussian prior on the PSE (bayes_pse_prior_sd_deg)")
+                    help="SD (deg) of the Bayesian tracks' Gaussian prior on the PSE (bayes_pse_prior_sd_deg; "
+                         "default the protocol's, 6; 0 = uniform, the default before)")
     ap.add_argument("--bayes-alone", action="store_true",
                     help="Bayesian tracks that do not share spread and lapse (bayes_share_spread = false)")
     ap.add_argument("--model", default=str(ROOT / "protocols" / "observers" / "typical.toml"))

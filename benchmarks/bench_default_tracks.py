@@ -69,9 +69,10 @@ CANDIDATES = [
     ("default updown", dict(method="updown")),
     ("default weighted", dict(method="weighted")),
     ("default bayesian", dict(method="bayesian")),
+    ("bayesian, uniform PSE prior (the default before; bayes_pse_prior_sd_deg = 0)",
+     dict(method="bayesian", bayes_pse_prior_sd_deg=0.0)),
     ("bayesian, posterior-mean placement (pse_mean)", dict(method="bayesian", bayes_placement="pse_mean")),
-    ("bayesian, straddle ±0.25 spreads, PSE prior SD 6° (candidate)",
-     dict(method="bayesian", bayes_placement="straddle", bayes_pse_prior_sd_deg=6.0)),
+    ("bayesian, straddle ±0.25 spreads (and the default PSE prior)", dict(method="bayesian", bayes_placement="straddle")),
     ("updown, earlier defaults (±20°, 8-4-2-1°, 2-down)", OLD_UPDOWN),
     ("updown 2-down, ±3°, 4-2-1°", dict(method="updown", start_offset_deg=3.0, steps_deg=[4.0, 2.0, 1.0], k_down=2)),
     ("weighted, earlier defaults (±20°, 8-4-2-1°, 75 %)", OLD_WEIGHTED),
@@ -172,8 +173,8 @@ def _track(settings: dict, n: int, t: int, evidence=None):
 
 SCRATCH_ROWS = [(f"bayesian, entropy for {k} trials then posterior mean (scratch)",
                  dict(method="bayesian", switch_after=k)) for k in (4, 10, 20, 30)] + [
-    (f"bayesian, Gaussian PSE prior SD {sd:g}° (bayes_pse_prior_sd_deg, entropy placement)",
-     dict(method="bayesian", bayes_pse_prior_sd_deg=sd)) for sd in (6.0, 10.0)] + [
+    (f"bayesian, Gaussian PSE prior SD {sd:g}° (bayes_pse_prior_sd_deg; the default is 6°)",
+     dict(method="bayesian", bayes_pse_prior_sd_deg=sd)) for sd in (3.0, 10.0)] + [
     (f"bayesian, entropy among levels within {k:g} spreads of the PSE (scratch)",
      dict(method="bayesian", near_spreads=k)) for k in (0.5, 1.0)] + [
     ("bayesian, least expected posterior variance of the PSE (scratch)", dict(method="bayesian", min_variance=True))] + [
@@ -330,7 +331,7 @@ def main() -> None:
     defaults = ProcedureSettings()
     print(f"# defaults: start ±{defaults.start_offset_deg:g} deg, steps {defaults.steps_deg}, "
           f"k_down {defaults.k_down}, target_cw {defaults.target_cw:g}, Bayesian placement {defaults.bayes_placement}, "
-          f"shared spread {defaults.bayes_share_spread}")
+          f"shared spread {defaults.bayes_share_spread}, PSE prior SD {defaults.bayes_pse_prior_sd_deg:g} deg")
     for line in efficiency_table(args.runs, args.seed, args.quick, spread=args.spread, tracks=args.tracks,
                                  methods=args.methods, scratch=args.scratch, only=args.only,
                                  conditions=args.conditions):

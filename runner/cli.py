@@ -254,7 +254,10 @@ def cmd_fit(args) -> int:
 
         # the pilot that sets the generating spread re-runs the tracks by default; --rerun-tracks re-runs
         # them for every replicate; --fixed-level-pilot keeps the levels fixed in the pilot too
-        tracks = None if args.fixed_level_pilot else track_factories(trials, strict=args.rerun_tracks)
+        notes: list[str] = []
+        tracks = None if args.fixed_level_pilot else track_factories(trials, strict=args.rerun_tracks, notes=notes)
+        for line in notes:
+            print(f"aftershift fit: note: {line}", file=sys.stderr)
         pool = local or open_pool(args.scheduler, args.jobs)
         try:
             report = fit_logs(trials, args.out, spread=args.spread, include_practice=args.include_practice,

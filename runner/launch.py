@@ -26,7 +26,7 @@ from runner.protocol import Protocol
 from runner.screens import screen_texts
 from runner.session import BlockRun, Console, SessionResult
 from runner.stream import StreamObserver, StreamRun
-from runner.tracks import SHARING_KEY, as_started
+from runner.tracks import as_started, tracks_record
 from runner.trial_log import StorageError, TrialLog, check_identifier, check_sidecar, log_paths, refuse_existing
 
 PACKAGES = ("aftershift", "numpy", "scipy", "pandas", "statsmodels", "pydantic", "matplotlib", "psychopy", "pyglet")
@@ -272,12 +272,12 @@ def simulate(
     started = {}
     if resume:
         seed, model = resume_seed_and_model(out, n_observers, session, seed, model)
-        started = {content["observer"]: content for _, content in sidecar_settings(out, names, session)}
+        started = {content["observer"]: (content, side) for side, content in sidecar_settings(out, names, session)}
     seed = 0 if seed is None else seed
     model = model or ObserverModel()
     models = draw_observers(model, n_observers, seed)
     loop, observer_kind = (StreamRun, StreamObserver) if protocol.stream is not None else (BlockRun, SimulatedObserver)
-    runs = [loop(as_started(protocol, started.get(name)), derive_seed(seed, i), name, session)
+    runs = [loop(as_started(protocol, *started.get(name, (None, ""))), derive_seed(seed, i), name, session)
             for i, name in enumerate(names)]
     console = SimulationConsole(sum(r.expected_rows() for r in runs), "simulating", show=progress)
     paths = []
@@ -298,7 +298,7 @@ def simulate(
                 "offset_bounds_deg": protocol.procedure.bounds_deg,
                 "base_model": asdict(model),
                 "observer_model": asdict(observer_model),
-                SHARING_KEY: protocol.procedure.bayes_share_spread,
+                **tracks_record(protocol),
                 "safety": screening,
                 **({"light": light} if light is not None else {}),
             }
@@ -378,6 +378,7 @@ def run_on_screen(
             seed = int(started["session_seed"])
         elif seed is None:
             seed = secrets.randbelow(2**31)
+        as_run = as_started(protocol, started, str(log.sidecar_path))
     except BaseException:
         log.close()
         raise
@@ -392,7 +393,7 @@ def run_on_screen(
         "seed": seed,
         "session_seed": seed,
         "offset_bounds_deg": protocol.procedure.bounds_deg,
-        SHARING_KEY: protocol.procedure.bayes_share_spread,
+        **tracks_record(protocol),
         **extra,
     }
     try:
@@ -402,8 +403,7 @@ def run_on_screen(
         raise
     if resume:
         sidecar["parts"][-1].update({k: v for k, v in extra.items() if k in ("measured_refresh_hz", "acknowledged")})
-    run = (StreamRun if protocol.stream is not None else BlockRun)(as_started(protocol, started), seed, observer,
-                                                                     session)
+    run = (StreamRun if protocol.stream is not None else BlockRun)(as_run, seed, observer, session)
     texts = screen_texts(protocol, caution, protocol_path)
     return run_part(log, sidecar, lambda: run.run(presenter, answers, log.append, log.rows, texts, console,
                                                   str(log.path)))

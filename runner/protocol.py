@@ -281,7 +281,8 @@ class ProcedureSettings(_Section):
     start_offset_deg : float
         ``updown``, ``weighted``: tracks start this far from the reference,
         one track on each side.  Refused with ``bayesian`` (the prior,
-        ``pse_range_deg``, decides its first level) and ``constant``.
+        ``pse_range_deg`` and ``bayes_pse_prior_sd_deg``, decides its first
+        level) and ``constant``.
     bounds_deg : [float, float]
         Lowest and highest test offset.
     steps_deg : list of float
@@ -295,8 +296,9 @@ class ProcedureSettings(_Section):
         at; the second aims at ``1 - target_cw``.
 
     The defaults (start ±2°, steps 4, 2, 1, 0.5°, k 1, target 55 %, the
-    Bayesian grid below) keep the trials near the PSE: at 80 trials per condition and PSEs within ±5°
-    they reach about 0.8–0.9 of the Cramér–Rao bound on the PSE, and they
+    Bayesian grid and PSE prior below) keep the trials near the PSE: at 80
+    trials per condition and PSEs within ±5° they reach about 0.85–0.9 of
+    the Cramér–Rao bound on the PSE, and they
     still reach a PSE 15° away
     (``benchmarks/bench_default_tracks.py``).  They trade away spread
     precision; for the spread use ``k_down = 2`` or ``bayes_target =
@@ -321,23 +323,28 @@ class ProcedureSettings(_Section):
         ``bayes_straddle_spreads`` times the posterior mean of the spread,
         above and below in turn (the first track starts above, the second
         below), which keeps the trials near the PSE and on both sides of it.
-        With ``bayes_pse_prior_sd_deg = 6``: PSE efficiency 0.84 / 0.845
-        (lapse 0 / 4 %) with a single condition against 0.81 / 0.81 for
-        the default, but intervals on the wide side at 24 trials per
-        condition (``compare``'s χ² rejected none of 66 true models);
-        not the default (``benchmarks/README.md``).
+        With the default PSE prior: PSE efficiency 0.84 / 0.845 (lapse 0 /
+        4 %) with a single condition, below the default placement's
+        0.88 / 0.86, and intervals on the wide side at 24 trials per
+        condition (``compare``'s χ² rejected none of 66 true models)
+        (``benchmarks/README.md``).
     bayes_straddle_spreads : float
         ``"straddle"``: distance of the levels from the PSE estimate, in
         estimated spreads.
     bayes_pse_prior_sd_deg : float
-        ``bayesian``: 0 (default) gives every PSE of ``pse_range_deg`` the
-        same prior probability; > 0 a Gaussian prior of this SD centred on
-        the reference, for PSEs expected near it (as the up–down tracks'
-        start at ±``start_offset_deg`` expects them).  With 6 and the
-        default placement: PSE efficiency 0.88 / 0.86 (lapse 0 / 4 %) with a
-        single condition against 0.81 / 0.81, intervals in the band at 24
-        trials per condition; a candidate for the default, not yet adopted
-        (``benchmarks/README.md``).
+        ``bayesian``: the SD of a Gaussian prior on the PSE centred on the
+        reference (default 6°), for PSEs expected near it, as the up–down
+        tracks' start at ±``start_offset_deg`` expects them; 0 gives every
+        PSE of ``pse_range_deg`` the same prior probability (the default
+        before; sessions started then resume with it).  With 6: PSE
+        efficiency 0.88 / 0.86 (lapse 0 / 4 %) with a single condition
+        against 0.81 / 0.81 with 0, 0.915 / 0.87 against 0.88 / 0.855 in
+        sessions of 8 conditions, and a PSE 15° away is still
+        reached (RMSE 0.52°).  Intervals in the band at 24 and 40 trials per
+        condition but the decay's at 40 (90.9 % against 94.9 % with 0, on
+        198 simulated observers) (``benchmarks/README.md``).  The prior steers
+        only where trials go: ``fit`` estimates the PSE by maximum
+        likelihood, without it.
     bayes_target : {"pse", "pse_spread"}
         ``bayesian`` with ``bayes_placement = "entropy"``: minimise the
         entropy of the PSE alone or of PSE and spread.
@@ -349,12 +356,13 @@ class ProcedureSettings(_Section):
         whole session the trials move towards the PSE: PSE efficiency
         0.88 / 0.855 (lapse 0 / 4 %) against 0.78 / 0.80 in sessions of 8
         conditions at σ = 3°, 0.82 / 0.81 against 0.81 / 0.79 with a single
-        condition, intervals as before (``benchmarks/README.md``).
-        ``false``: every track learns alone, as when the conditions'
+        condition (both with the uniform PSE prior of then), intervals as
+        before (``benchmarks/README.md``).  ``false``: every track learns alone, as when the conditions'
         spreads are expected to differ.
     pse_range_deg, spread_range_deg : [float, float]
-        ``bayesian``: the parameter grid, i.e. the support of its uniform
-        prior.  The defaults (±20°, 1–10°) cover PSEs 15° away and the usual
+        ``bayesian``: the parameter grid, i.e. the support of its prior
+        (uniform in the spread; in the PSE as ``bayes_pse_prior_sd_deg``
+        says).  The defaults (±20°, 1–10°) cover PSEs 15° away and the usual
         spreads of direction judgments; a wider grid spends a 40-trial track's
         first trials far from the PSE (PSE efficiency 0.7 at ±30°, 0.5–20°).
     """
@@ -371,7 +379,7 @@ class ProcedureSettings(_Section):
     )
     bayes_placement: Literal["entropy", "pse_mean", "straddle"] = "entropy"
     bayes_straddle_spreads: float = Field(0.25, ge=0, le=3)
-    bayes_pse_prior_sd_deg: float = Field(0.0, ge=0, le=180)
+    bayes_pse_prior_sd_deg: float = Field(6.0, ge=0, le=180)
     bayes_target: Literal["pse", "pse_spread"] = "pse"
     bayes_share_spread: bool = True
     pse_range_deg: list[float] = Field(default_factory=lambda: [-20.0, 20.0], min_length=2, max_length=2)
@@ -578,7 +586,8 @@ def _cross_checks(p: Protocol) -> None:
     proc = p.procedure
     lo, hi = proc.bounds_deg
     if proc.method in ("bayesian", "constant") and "start_offset_deg" in proc.model_fields_set:
-        chooser = ("the Bayesian method chooses every level itself (its prior is pse_range_deg)"
+        chooser = ("the Bayesian method chooses every level itself (from its prior: pse_range_deg, "
+                   "bayes_pse_prior_sd_deg)"
                    if proc.method == "bayesian" else "constant stimuli show levels_deg")
         raise InputError("", "procedure.start_offset_deg",
                          f"has no meaning with method = \"{proc.method}\": {chooser}; remove the field")

@@ -25,7 +25,7 @@ def _sidecar(log: Path) -> Path:
     return log.with_name(log.name[: -len(".trials.csv")] + ".session.json")
 
 
-def track_factories(logs, strict: bool = True) -> dict:
+def track_factories(logs, strict: bool = True, notes: list | None = None) -> dict:
     """Per observer, a track factory from the protocol in its logs' sidecars.
 
     Parameters
@@ -35,6 +35,8 @@ def track_factories(logs, strict: bool = True) -> dict:
     strict : bool
         Refuse (True) or leave out (False) an observer whose sessions used
         different procedures or whose sidecar cannot be read.
+    notes : list, optional
+        Receives one line for each thing left out, and why.
 
     Returns
     -------
@@ -53,13 +55,18 @@ def track_factories(logs, strict: bool = True) -> dict:
     for log in map(Path, logs):
         side = _sidecar(log)
         if not side.is_file():
+            (notes if notes is not None else []).append(
+                f"{log}: no sidecar beside the log; its sessions' bootstrap keeps the presented levels fixed")
             continue
         try:
             meta = json.loads(side.read_text(encoding="utf-8"))
             observer, text = str(meta["observer"]), meta["protocol"]["text"]
-            protocol = as_started(parse_protocol(text, str(side)), meta)
+            protocol = as_started(parse_protocol(text, str(side)), meta, str(side))
         except (OSError, ValueError, KeyError, TypeError, InputError) as exc:
             if not strict:      # whose sessions this was is unknown: every pilot keeps the levels fixed
+                why = exc.line() if isinstance(exc, InputError) else f"{side}: protocol: cannot be read ({exc})"
+                (notes if notes is not None else []).append(
+                    f"{why}; every observer's bootstrap keeps the presented levels fixed")
                 return {}
             if isinstance(exc, InputError):
                 raise
@@ -70,8 +77,10 @@ def track_factories(logs, strict: bool = True) -> dict:
                 raise InputError(str(side), "procedure", f"observer {observer}'s sessions used different "
                                  "procedures; fit them without --rerun-tracks")
             mixed.add(observer)
-    for observer in mixed:
+    for observer in sorted(mixed):
         del protocols[observer]
+        (notes if notes is not None else []).append(
+            f"observer {observer}'s sessions used different procedures; their bootstrap keeps the presented levels fixed")
     return {obs: TrackFactory(p) for obs, p in protocols.items()}
 
 

@@ -15,6 +15,9 @@ from __future__ import annotations
 
 import zlib
 
+from pydantic import ValidationError
+
+from fitting.errors import InputError
 from runner.adaptive import ConstantLevels, EntropyGrid, EntropyTrack, UpDownTrack, WeightedTrack
 from runner.adaptive_batch import EntropyBatch, StepCopies
 from runner.protocol import PSE_GRID_STEP_DEG, ProcedureSettings, Protocol
@@ -23,20 +26,59 @@ from runner.shared_evidence import SharedEvidence
 
 
 SHARING_KEY = "bayes_tracks_share_spread"   # in every sidecar written since the tracks could share
+PRIOR_KEY = "bayes_tracks_pse_prior_sd_deg"  # in every sidecar written since the PSE prior's default was 6°
+
+# Bayesian settings whose default changed after sessions were recorded: the
+# sidecar key that records the value a session ran with, the [procedure]
+# field, and the value that sessions whose sidecar lacks the key ran with
+# when their protocol left the field out.
+_CHANGED_DEFAULTS = (
+    (SHARING_KEY, "bayes_share_spread", False),
+    (PRIOR_KEY, "bayes_pse_prior_sd_deg", 0.0),
+)
 
 
-def as_started(protocol: Protocol, sidecar: dict | None) -> Protocol:
+def tracks_record(protocol: Protocol) -> dict:
+    """The sidecar entries that let :func:`as_started` re-run this session's tracks under later defaults."""
+    return {key: getattr(protocol.procedure, field) for key, field, _ in _CHANGED_DEFAULTS}
+
+
+def as_started(protocol: Protocol, sidecar: dict | None, source: str = "") -> Protocol:
     """The protocol as a session's tracks ran it, from the session's sidecar (None: a new session).
 
-    Sessions whose sidecar predates ``bayes_share_spread`` (it has no
-    ``SHARING_KEY``) ran their Bayesian tracks alone; a resume and the
-    bootstrap's re-runs must do the same, or the tracks would propose other
-    levels than the log holds.
+    Where the protocol leaves a setting of :func:`tracks_record` out, the
+    session ran it with the default of its day: the value its sidecar
+    records, or, in a sidecar written before that default changed, the old
+    default (before ``bayes_share_spread`` the tracks ran alone; before the
+    Gaussian PSE prior became the default they had a uniform one).  A resume
+    and the bootstrap's re-runs must do the same, or the tracks would propose
+    other levels than the log holds.
+
+    Raises
+    ------
+    InputError
+        A recorded value of the wrong type or outside the field's range,
+        naming ``source`` (the sidecar's path) and the key.
     """
-    if sidecar is None or SHARING_KEY in sidecar or protocol.procedure.method != "bayesian":
+    proc = protocol.procedure
+    if sidecar is None or proc.method != "bayesian":
         return protocol
-    return protocol.model_copy(update={"procedure": protocol.procedure.model_copy(
-        update={"bayes_share_spread": False})})
+    ran = {}
+    for key, field, old in _CHANGED_DEFAULTS:
+        value = sidecar.get(key, old)
+        if isinstance(value, bool) != isinstance(old, bool) or not isinstance(value, type(old) | int):
+            raise InputError(source, key, f"malformed sidecar: expected {type(old).__name__}, found {value!r:.40}")
+        if field not in proc.model_fields_set and value != getattr(proc, field):
+            ran[field] = value
+    if not ran:
+        return protocol
+    try:
+        settled = ProcedureSettings.model_validate({**proc.model_dump(exclude_unset=True), **ran})
+    except ValidationError as exc:
+        error = exc.errors()[0]
+        key = next(k for k, f, _ in _CHANGED_DEFAULTS if f == error["loc"][0])
+        raise InputError(source, key, f"malformed sidecar: {ran[error['loc'][0]]!r:.40} ({error['msg']})") from None
+    return protocol.model_copy(update={"procedure": settled})
 
 
 def entropy_settings(proc: ProcedureSettings, n: int, track: int = 0) -> dict:

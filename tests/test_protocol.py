@@ -4,8 +4,9 @@ from __future__ import annotations
 
 import pytest
 
+from fitting.errors import InputError
 from runner.cli import main
-from runner.protocol import Protocol, frame_plan, load_protocol
+from runner.protocol import Protocol, frame_plan, load_protocol, parse_protocol
 
 from conftest import PROTOCOLS
 
@@ -140,3 +141,28 @@ def test_every_help_text_prints(command, capsys):
         main(args)
     assert done.value.code == 0
     assert "usage: aftershift" in capsys.readouterr().out
+
+
+def test_sessions_resume_under_the_defaults_they_started_with():
+    # A sidecar records the Bayesian settings whose defaults changed (runner/tracks.py); one written before a
+    # change lacks its key, and the session's tracks ran the old default unless the protocol set the field.
+    from runner.tracks import PRIOR_KEY, SHARING_KEY, as_started, tracks_record
+
+    text = (PROTOCOLS / "pilot_short.toml").read_text()
+    new = parse_protocol(text)
+    record = tracks_record(new)
+    assert record == {SHARING_KEY: True, PRIOR_KEY: 6.0}
+    assert as_started(new, None) is new and as_started(new, record) is new
+    proc = as_started(new, {SHARING_KEY: True}).procedure                   # before the PSE prior's default
+    assert (proc.bayes_pse_prior_sd_deg, proc.bayes_share_spread) == (0.0, True)
+    proc = as_started(new, {}).procedure                                    # before either
+    assert (proc.bayes_pse_prior_sd_deg, proc.bayes_share_spread) == (0.0, False)
+    stated = parse_protocol(text.replace('method = "bayesian"', 'method = "bayesian"\nbayes_pse_prior_sd_deg = 3.0'))
+    assert as_started(stated, {SHARING_KEY: True}).procedure.bayes_pse_prior_sd_deg == 3.0   # the file said so
+    updown = parse_protocol(text.replace('method = "bayesian"', 'method = "updown"'))
+    assert as_started(updown, {}) is updown
+    # the recorded value rules, so a later change of default needs no new key
+    assert as_started(new, {SHARING_KEY: True, PRIOR_KEY: 4}).procedure.bayes_pse_prior_sd_deg == 4.0
+    for bad in ({SHARING_KEY: 1}, {PRIOR_KEY: "6"}, {PRIOR_KEY: True}, {PRIOR_KEY: -1.0}):
+        with pytest.raises(InputError, match=f"^s.session.json: {next(iter(bad))}: malformed sidecar"):
+            as_started(new, bad, "s.session.json")

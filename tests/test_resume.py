@@ -137,22 +137,25 @@ def test_bayesian_session_cut_short_and_resumed_writes_identical_rows(rows_kept,
 
 
 @pytest.mark.slow  # left out of the quick subset
-def test_a_session_started_before_tracks_shared_the_spread_resumes_with_tracks_alone(tmp_path):
-    # Sessions started before bayes_share_spread existed ran their Bayesian tracks alone, and their sidecar
-    # has no SHARING_KEY. Resumed with the same protocol file, they must go on with tracks alone (the rows an
-    # uninterrupted session with tracks alone writes); with shared tracks the resume would refuse its own log.
+def test_a_session_started_under_old_defaults_resumes_with_them(tmp_path):
+    # Sessions started before bayes_share_spread existed ran their Bayesian tracks alone, with a uniform PSE
+    # prior (the default until bayes_pse_prior_sd_deg = 6); their sidecars lack SHARING_KEY and PRIOR_KEY
+    # (each key alone: tests/test_protocol.py). Resumed with the same protocol file, they must go on as they
+    # started (the rows an uninterrupted session under the old defaults writes); under the new ones the
+    # resume would refuse its own log.
     import json
-    from runner.tracks import SHARING_KEY
+    from runner.tracks import PRIOR_KEY, SHARING_KEY
 
     protocol = PROTOCOLS / "pilot_short.toml"
     alone = tmp_path / "alone.toml"
-    alone.write_text(protocol.read_text().replace('method = "bayesian"', 'method = "bayesian"\nbayes_share_spread = false'))
+    alone.write_text(protocol.read_text().replace(
+        'method = "bayesian"', 'method = "bayesian"\nbayes_share_spread = false\nbayes_pse_prior_sd_deg = 0.0'))
     assert alone.read_text() != protocol.read_text()
     whole_out, cut_out, shared_out = tmp_path / "whole", tmp_path / "cut", tmp_path / "shared"
     assert run_cli("simulate", alone, "--out", whole_out, "--seed", "5").returncode == 0
     assert run_cli("simulate", protocol, "--out", shared_out, "--seed", "5").returncode == 0
     whole = _logs(whole_out)
-    assert whole != _logs(shared_out)          # sharing changes the levels
+    assert whole != _logs(shared_out)          # the new defaults change the levels
     name = sorted(whole)[0]
     cut_out.mkdir()
     lines = whole[name].splitlines(keepends=True)
@@ -161,7 +164,7 @@ def test_a_session_started_before_tracks_shared_the_spread_resumes_with_tracks_a
     sidecar = json.loads((shared_out / sidecar_name).read_text())   # the protocol record of the file resumed with
     old = json.loads((whole_out / sidecar_name).read_text())
     old["protocol"] = sidecar["protocol"]
-    del old[SHARING_KEY]                                            # as written before the option existed
+    del old[SHARING_KEY], old[PRIOR_KEY]                            # as written before the defaults changed
     (cut_out / sidecar_name).write_text(json.dumps(old))
     done = run_cli("simulate", protocol, "--out", cut_out, "--seed", "5", "--resume")
     assert done.returncode == 0, done.stderr
