@@ -357,8 +357,8 @@ class ProcedureSettings(_Section):
         0.88 / 0.855 (lapse 0 / 4 %) against 0.78 / 0.80 in sessions of 8
         conditions at σ = 3°, 0.82 / 0.81 against 0.81 / 0.79 with a single
         condition (both with the uniform PSE prior of then), intervals as
-        before (``benchmarks/README.md``).  ``false``: every track learns alone, as when the conditions'
-        spreads are expected to differ.
+        before (``benchmarks/README.md``).  ``false``: every track learns
+        alone, as when the conditions' spreads are expected to differ.
     pse_range_deg, spread_range_deg : [float, float]
         ``bayesian``: the parameter grid, i.e. the support of its prior
         (uniform in the spread; in the PSE as ``bayes_pse_prior_sd_deg``

@@ -50,12 +50,13 @@ def track_factories(logs, strict: bool = True, notes: list | None = None) -> dic
         A sidecar that is not readable JSON, or one observer's logs written
         with different procedures.
     """
+    notes = [] if notes is None else notes
     protocols: dict = {}
     mixed: set = set()
     for log in map(Path, logs):
         side = _sidecar(log)
         if not side.is_file():
-            (notes if notes is not None else []).append(
+            notes.append(
                 f"{log}: no sidecar beside the log; its sessions' bootstrap keeps the presented levels fixed")
             continue
         try:
@@ -65,7 +66,7 @@ def track_factories(logs, strict: bool = True, notes: list | None = None) -> dic
         except (OSError, ValueError, KeyError, TypeError, InputError) as exc:
             if not strict:      # whose sessions this was is unknown: every pilot keeps the levels fixed
                 why = exc.line() if isinstance(exc, InputError) else f"{side}: protocol: cannot be read ({exc})"
-                (notes if notes is not None else []).append(
+                notes.append(
                     f"{why}; every observer's bootstrap keeps the presented levels fixed")
                 return {}
             if isinstance(exc, InputError):
@@ -79,7 +80,7 @@ def track_factories(logs, strict: bool = True, notes: list | None = None) -> dic
             mixed.add(observer)
     for observer in sorted(mixed):
         del protocols[observer]
-        (notes if notes is not None else []).append(
+        notes.append(
             f"observer {observer}'s sessions used different procedures; their bootstrap keeps the presented levels fixed")
     return {obs: TrackFactory(p) for obs, p in protocols.items()}
 
