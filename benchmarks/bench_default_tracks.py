@@ -7,6 +7,7 @@ Run from the repository root::
     python benchmarks/bench_default_tracks.py --quick --spread 6   # another observer
     python benchmarks/bench_default_tracks.py --quick --methods bayesian --tracks 1   # one track of 80
     python benchmarks/bench_default_tracks.py --quick --methods bayesian --scratch --runs 1800   # variants not adopted
+    python benchmarks/bench_default_tracks.py --quick --methods bayesian --pse-band 4 5   # PSEs near ±5° only
 
 Every row is one ``[procedure]`` setting, built into tracks exactly as a
 session builds them (:func:`runner.tracks.procedure_track`): a pair of tracks
@@ -247,14 +248,20 @@ def _scores(err: np.ndarray, sd: np.ndarray, spread: float, lapse: float) -> dic
 
 
 def cell(pool, settings: dict, lapse: float, runs: int, seed, far: bool, jobs: int, spread: float = SPREAD,
-         tracks: int = 2, conditions: int = 1) -> dict:
+         tracks: int = 2, conditions: int = 1, band: tuple[float, float] | None = None) -> dict:
     """Efficiency, spread RMSE and flags of one setting at one lapse rate.
 
     With ``conditions`` > 1 the scores are the joint fit's; ``alone`` holds
-    those of one fit per condition.
+    those of one fit per condition.  ``band``: true PSEs of size uniform in
+    [low, high], either sign, instead of uniform in [−5°, 5°].
     """
     rng = np.random.default_rng(seed)
-    mus = np.full((runs, conditions), FAR_PSE) if far else rng.uniform(-5.0, 5.0, (runs, conditions))
+    if far:
+        mus = np.full((runs, conditions), FAR_PSE)
+    elif band is None:
+        mus = rng.uniform(-5.0, 5.0, (runs, conditions))
+    else:
+        mus = rng.choice([-1.0, 1.0], (runs, conditions)) * rng.uniform(*band, (runs, conditions))
     seeds = [[*seed, i] for i in range(runs)]
     parts = [(settings, mus[j::jobs], lapse, seeds[j::jobs], spread, tracks) for j in range(jobs)]
     done = list(pool.map(_chunk, parts))
@@ -272,18 +279,20 @@ def cell(pool, settings: dict, lapse: float, runs: int, seed, far: bool, jobs: i
 
 def efficiency_table(runs: int = 1500, seed: int = 1, quick: bool = False, jobs: int | None = None,
                      spread: float = SPREAD, tracks: int = 2, methods=None, scratch: bool = False,
-                     only=None, conditions: int = 1) -> list[str]:
+                     only=None, conditions: int = 1, band: tuple[float, float] | None = None) -> list[str]:
     """The table as Markdown lines (``quick``: the defaults and two Bayesian placements; Bayesian with runs // 3).
 
     ``tracks``: tracks per condition sharing the 80 trials (2, as the
     protocols have them; 1: one track of 80 trials).  ``conditions``: runs
     are sessions of this many conditions (see the module docstring); runs
     per cell are divided by it, so a cell scores about as many PSEs.
+    ``band``: see :func:`cell`.
     """
     jobs = jobs or len(os.sched_getaffinity(0))
     session = f" in sessions of {conditions} conditions (joint fit; one fit per condition last)" if conditions > 1 else ""
+    truth = "uniform in [-5, 5] deg" if band is None else f"of size uniform in [{band[0]:g}, {band[1]:g}] deg, either sign"
     lines = [f"# default tracks at {N_TRIALS} trials in {tracks} track(s){session}: sigma = {spread:g} deg, true PSE "
-             f"uniform in [-5, 5] deg ({runs} PSEs per cell, Bayesian {max(runs // 3, 20)}); far: PSE = {FAR_PSE:g} "
+             f"{truth} ({runs} PSEs per cell, Bayesian {max(runs // 3, 20)}); far: PSE = {FAR_PSE:g} "
              "deg, lapse 4 %",
              "| setting | PSE eff. λ = 0 | PSE eff. λ = 4 % | spread RMSE/σ λ = 0 | spread RMSE/σ λ = 4 % "
              "| far PSE: RMSE (deg) | far PSE: eff. | ≥ 0.85 in both |" + (" one fit per condition: eff. λ = 0 / 4 % |"
@@ -297,7 +306,7 @@ def efficiency_table(runs: int = 1500, seed: int = 1, quick: bool = False, jobs:
         for label, settings in rows:
             n = max(runs // 3, 20) if settings["method"] == "bayesian" else runs
             n = max(n // conditions, 2)
-            near = [cell(pool, settings, lam, n, [seed, i], False, jobs, spread, tracks, conditions)
+            near = [cell(pool, settings, lam, n, [seed, i], False, jobs, spread, tracks, conditions, band)
                     for i, lam in enumerate((0.0, 0.04))]
             far = cell(pool, settings, 0.04, n, [seed, 2], True, jobs, spread, tracks, conditions)
             met = all(c["eff"] >= 0.85 for c in near)
@@ -321,12 +330,14 @@ def main() -> None:
     ap.add_argument("--methods", nargs="+", help="only the rows of these methods (e.g. bayesian)")
     ap.add_argument("--scratch", action="store_true",
                     help="also the Bayesian variants tried and not adopted (posterior mean after K entropy "
-                         "trials; a Gaussian prior on the PSE; entropy among levels near the PSE; least "
+                         "trials; Gaussian PSE priors of other widths; entropy among levels near the PSE; least "
                          "expected PSE variance; the posterior's lapse held at one value; tracks that "
                          "do not share the spread)")
     ap.add_argument("--only", nargs="+", help="only the rows whose label holds one of these words")
     ap.add_argument("--conditions", type=int, default=1,
                     help="runs are sessions of this many conditions, scored by the joint fit (default 1)")
+    ap.add_argument("--pse-band", type=float, nargs=2, metavar=("LOW", "HIGH"),
+                    help="true PSEs of size uniform in [LOW, HIGH] deg, either sign (default: uniform in ±5°)")
     args = ap.parse_args()
     defaults = ProcedureSettings()
     print(f"# defaults: start ±{defaults.start_offset_deg:g} deg, steps {defaults.steps_deg}, "
@@ -334,7 +345,7 @@ def main() -> None:
           f"shared spread {defaults.bayes_share_spread}, PSE prior SD {defaults.bayes_pse_prior_sd_deg:g} deg")
     for line in efficiency_table(args.runs, args.seed, args.quick, spread=args.spread, tracks=args.tracks,
                                  methods=args.methods, scratch=args.scratch, only=args.only,
-                                 conditions=args.conditions):
+                                 conditions=args.conditions, band=args.pse_band and tuple(args.pse_band)):
         print(line, flush=True)
 
 

@@ -245,6 +245,7 @@ def cmd_fit(args) -> int:
         common["interval"] = args.interval
     from runner.overview import plan_from_text
 
+    notes: list[str] = []
     if streams:
         if args.scheduler:
             raise InputError("argument", "--scheduler", "stream logs are fitted on this machine; leave it out")
@@ -254,10 +255,7 @@ def cmd_fit(args) -> int:
 
         # the pilot that sets the generating spread re-runs the tracks by default; --rerun-tracks re-runs
         # them for every replicate; --fixed-level-pilot keeps the levels fixed in the pilot too
-        notes: list[str] = []
         tracks = None if args.fixed_level_pilot else track_factories(trials, strict=args.rerun_tracks, notes=notes)
-        for line in notes:
-            print(f"aftershift fit: note: {line}", file=sys.stderr)
         pool = local or open_pool(args.scheduler, args.jobs)
         try:
             report = fit_logs(trials, args.out, spread=args.spread, include_practice=args.include_practice,
@@ -267,7 +265,9 @@ def cmd_fit(args) -> int:
         finally:
             pool.close()
     print(report.summary())
-    print(f"report: {Path(args.out) / 'report.html'}")
+    print(f"report: {Path(args.out) / 'report.html'}", flush=True)
+    for line in notes:         # after the fit: a fit that fails ends in its one line
+        print(f"aftershift fit: note: {line}", file=sys.stderr)
     return EXIT_OK
 
 
