@@ -53,11 +53,13 @@ def track_factories(logs, strict: bool = True, notes: list | None = None) -> dic
     notes = [] if notes is None else notes
     protocols: dict = {}
     mixed: set = set()
+    bare = [log for log in map(Path, logs) if not _sidecar(log).is_file()]
+    if bare:
+        which = str(bare[0]) if len(bare) == 1 else f"{len(bare)} logs (first {bare[0]})"
+        notes.append(f"{which}: no sidecar beside the log; the bootstrap keeps the presented levels of these sessions fixed")
     for log in map(Path, logs):
         side = _sidecar(log)
-        if not side.is_file():
-            notes.append(
-                f"{log}: no sidecar beside the log; its sessions' bootstrap keeps the presented levels fixed")
+        if log in bare:
             continue
         try:
             meta = json.loads(side.read_text(encoding="utf-8"))
