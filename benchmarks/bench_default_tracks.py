@@ -339,6 +339,8 @@ def main() -> None:
     ap.add_argument("--pse-band", type=float, nargs=2, metavar=("LOW", "HIGH"),
                     help="true PSEs of size uniform in [LOW, HIGH] deg, either sign (default: uniform in ±5°)")
     args = ap.parse_args()
+    if args.pse_band and not 0 <= args.pse_band[0] <= args.pse_band[1]:
+        ap.error(f"--pse-band: expected 0 <= LOW <= HIGH, got {args.pse_band[0]:g} {args.pse_band[1]:g}")
     defaults = ProcedureSettings()
     print(f"# defaults: start ±{defaults.start_offset_deg:g} deg, steps {defaults.steps_deg}, "
           f"k_down {defaults.k_down}, target_cw {defaults.target_cw:g}, Bayesian placement {defaults.bayes_placement}, "

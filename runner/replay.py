@@ -53,13 +53,11 @@ def track_factories(logs, strict: bool = True, notes: list | None = None) -> dic
     notes = [] if notes is None else notes
     protocols: dict = {}
     mixed: set = set()
-    bare = [log for log in map(Path, logs) if not _sidecar(log).is_file()]
-    if bare:
-        which = str(bare[0]) if len(bare) == 1 else f"{len(bare)} logs (first {bare[0]})"
-        notes.append(f"{which}: no sidecar beside the log; the bootstrap keeps the presented levels of these sessions fixed")
+    bare = []
     for log in map(Path, logs):
         side = _sidecar(log)
-        if log in bare:
+        if not side.is_file():
+            bare.append(log)
             continue
         try:
             meta = json.loads(side.read_text(encoding="utf-8"))
@@ -80,6 +78,9 @@ def track_factories(logs, strict: bool = True, notes: list | None = None) -> dic
                 raise InputError(str(side), "procedure", f"observer {observer}'s sessions used different "
                                  "procedures; fit them without --rerun-tracks")
             mixed.add(observer)
+    if bare:
+        which = str(bare[0]) if len(bare) == 1 else f"{len(bare)} logs (first {bare[0]})"
+        notes.append(f"{which}: no sidecar beside the log; the bootstrap keeps the presented levels of these sessions fixed")
     for observer in sorted(mixed):
         del protocols[observer]
         notes.append(
