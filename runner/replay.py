@@ -12,6 +12,7 @@ simulated session, from that session's own answers.
 
 from __future__ import annotations
 
+import csv
 import json
 from pathlib import Path
 
@@ -34,7 +35,9 @@ def track_factories(logs, strict: bool = True, notes: list | None = None) -> dic
         Trial logs (``*.trials.csv``) with their sidecars beside them.
     strict : bool
         Refuse (True) or leave out (False) an observer whose sessions used
-        different procedures or whose sidecar cannot be read.
+        different procedures or one of whose sidecars cannot be read (the
+        observer named in that log's first row; every observer when the log
+        names none).
     notes : list, optional
         Receives one line for each thing left out, and why.
 
@@ -53,6 +56,7 @@ def track_factories(logs, strict: bool = True, notes: list | None = None) -> dic
     notes = [] if notes is None else notes
     protocols: dict = {}
     mixed: set = set()
+    unread: dict = {}          # observer -> why their sidecar could not be read (strict=False)
     bare = []
     for log in map(Path, logs):
         side = _sidecar(log)
@@ -64,14 +68,17 @@ def track_factories(logs, strict: bool = True, notes: list | None = None) -> dic
             observer, text = str(meta["observer"]), meta["protocol"]["text"]
             protocol = as_started(parse_protocol(text, str(side)), meta, str(side))
         except (OSError, ValueError, KeyError, TypeError, InputError) as exc:
-            if not strict:      # whose sessions this was is unknown: every pilot keeps the levels fixed
-                why = exc.line() if isinstance(exc, InputError) else f"{side}: protocol: cannot be read ({exc})"
-                notes.append(
-                    f"{why}; every observer's bootstrap keeps the presented levels fixed")
+            if strict:
+                if isinstance(exc, InputError):
+                    raise
+                raise InputError(str(side), "protocol", f"cannot read the session's protocol ({exc})") from None
+            why = exc.line() if isinstance(exc, InputError) else f"{side}: protocol: cannot be read ({exc})"
+            observer = _log_observer(log)
+            if observer is None:    # whose session this was is unknown: every pilot keeps the levels fixed
+                notes.append(f"{why}; every observer's bootstrap keeps the presented levels fixed")
                 return {}
-            if isinstance(exc, InputError):
-                raise
-            raise InputError(str(side), "protocol", f"cannot read the session's protocol ({exc})") from None
+            unread.setdefault(observer, why)
+            continue
         previous = protocols.setdefault(observer, protocol)
         if previous.procedure != protocol.procedure or previous.design.trials_per_track != protocol.design.trials_per_track:
             if strict:
@@ -81,11 +88,22 @@ def track_factories(logs, strict: bool = True, notes: list | None = None) -> dic
     if bare:
         which = str(bare[0]) if len(bare) == 1 else f"{len(bare)} logs (first {bare[0]})"
         notes.append(f"{which}: no sidecar beside the log; the bootstrap keeps the presented levels of these sessions fixed")
-    for observer in sorted(mixed):
-        del protocols[observer]
+    for observer in sorted(mixed - unread.keys()):
         notes.append(
             f"observer {observer}'s sessions used different procedures; their bootstrap keeps the presented levels fixed")
-    return {obs: TrackFactory(p) for obs, p in protocols.items()}
+    for observer, why in sorted(unread.items()):
+        notes.append(f"{why}; observer {observer}'s bootstrap keeps the presented levels fixed")
+    return {obs: TrackFactory(p) for obs, p in protocols.items() if obs not in mixed and obs not in unread}
+
+
+def _log_observer(log: Path) -> str | None:
+    """The observer of a trial log's first row; None when the log has no readable row naming one."""
+    try:
+        with open(log, newline="", encoding="utf-8") as f:
+            row = next(csv.DictReader(f), None)
+    except (OSError, UnicodeDecodeError, csv.Error):
+        return None
+    return (row or {}).get("observer") or None
 
 
 class TrackFactory:

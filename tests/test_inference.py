@@ -1,5 +1,7 @@
 """Group random-effects combination, compare's covariance-aware chi-square, flags on degenerate logs."""
 
+from pathlib import Path
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -7,6 +9,7 @@ from scipy import stats
 from statsmodels.stats.meta_analysis import combine_effects
 
 from fitting import fit_logs
+from fitting.errors import InputError
 from fitting.compare import agreement, gls_gain
 from fitting.scores import normal_scores
 from fitting.flags import condense, join
@@ -412,6 +415,30 @@ def test_rerun_tracks_falls_back_with_a_note_when_tracks_cannot_be_rebuilt(tmp_p
     assert np.isfinite(report.pse.set_index(["observer", "condition"]).loc[("D1", "baseline"), "pse_ci_low"])
 
 
+def test_an_unreadable_sidecar_fixes_the_levels_of_its_observer_only(tmp_path):
+    # fit's default pilot (strict=False): one observer's broken sidecar must not cost the others their re-run
+    from conftest import PROTOCOLS, run_cli
+    from runner.replay import track_factories
+
+    done = run_cli("simulate", PROTOCOLS / "pilot_short.toml", "--out", tmp_path, "--observers", "2", "--seed", "5")
+    assert done.returncode == 0, done.stderr
+    logs = sorted(str(p) for p in tmp_path.glob("*.trials.csv"))
+    assert set(track_factories(logs)) == {"sim01", "sim02"}
+    side = tmp_path / (Path(logs[0]).name[: -len(".trials.csv")] + ".session.json")
+    side.write_text(side.read_text()[:-7])                  # cut short, as by a full disk
+    notes = []
+    assert set(track_factories(logs, strict=False, notes=notes)) == {"sim02"}
+    assert len(notes) == 1 and notes[0].startswith(f"{side}: protocol: cannot be read")
+    assert notes[0].endswith("observer sim01's bootstrap keeps the presented levels fixed")
+    with pytest.raises(InputError, match=f"^{side}: protocol: cannot read"):
+        track_factories(logs)
+    # a log with no row naming its observer: whose the sidecar was is unknown, so no observer is re-run
+    Path(logs[0]).write_text(Path(logs[0]).read_text().splitlines()[0] + "\n")
+    notes = []
+    assert track_factories(logs, strict=False, notes=notes) == {}
+    assert len(notes) == 1 and notes[0].endswith("every observer's bootstrap keeps the presented levels fixed")
+
+
 def test_mixed_model_writes_a_boundary_observer_variance_as_zero_and_flags_it():
     # statsmodels' MixedLM (REML) is the reference. Three observers with no true observer effect
     # (8 offsets x 4 lags each, as in the demo); with this seed REML's observer variance sits on its
@@ -509,7 +536,6 @@ def test_rerun_sessions_share_evidence_as_the_real_session_did(tmp_path):
     assert old.protocol.procedure.bayes_share_spread is False and not _session(old, 2)[1]
     assert old.protocol.procedure.bayes_pse_prior_sd_deg == 0.0
     # a mistyped record: refused naming the sidecar and key, or (fit's default pilot) a note and fixed levels
-    from fitting.errors import InputError
     side = next((tmp_path / "logs").glob("*.session.json"))
     side.write_text(json.dumps({**json.loads(side.read_text()), PRIOR_KEY: "6"}))
     with pytest.raises(InputError, match=f"^{side}: {PRIOR_KEY}: malformed sidecar"):
