@@ -2,14 +2,18 @@
 
 Reads the fits that ``bench_coverage.py --save DIR`` kept (one pickle per
 procedure and trial count, named ``PROC_TRIALS.pickle``) and scores, for
-every simulated observer with a decay fit, two 95 % intervals of the decay
+every simulated observer with a decay fit, three 95 % intervals of the decay
 constant on the same shifts and replicates:
 
 * ``kept`` — the limits kept in the pickle's default-rule tables: BCa for
   fits kept before the decay's profile interval became the default (the
   coverage benchmark then kept the fit's BCa limits for the decay);
-* ``profile`` — :func:`fitting.aftereffect.decay_profile_interval` with the
-  covariance of the replicated shifts (the default now).
+* ``profile, factor alone`` — :func:`fitting.aftereffect.decay_profile_interval`
+  with the covariance of the replicated shifts, the cut ``s^2 F(1, n - 3)``
+  set by the variance factor alone (the default until the nineteenth
+  session);
+* ``profile, floored at the known-covariance cut`` — the same, the cut
+  never below ``chi2_1`` (the default since).
 
 The truth of each observer comes from the observer model with the group's
 seed, as in ``bench_coverage.py``.  Coverage ± its binomial Monte Carlo
@@ -17,7 +21,7 @@ error, the misses on each side, and the median width in log units.
 
 Usage::
 
-    python benchmarks/bench_decay_interval.py DIR --first-group 64 --groups 24
+    python benchmarks/bench_decay_interval.py DIR [DIR ...]     # the folders' fits pooled per cell
 """
 
 from __future__ import annotations
@@ -36,29 +40,36 @@ from fitting.aftereffect import decay_profile_interval, peak_bounds  # noqa: E40
 from runner.observers import draw_observers, load_model  # noqa: E402
 
 INTERVAL_KEY = ("pilot", "by-statistic")
+# the profile interval's cut: s^2 F(1, n - 3) alone (before), or never below the chi2_1 cut of the
+# covariance taken as exact (fit's default since the nineteenth session)
+RULES = {"profile, factor alone": False, "profile, floored at the known-covariance cut": True}
 
 
-def observer_rows(results: list[dict], sizes, first: int, groups: int, model) -> list[dict]:
-    """One row per observer with a decay fit: truth, estimate, and both intervals."""
-    jobs = [(size, 1000 * size + g) for size in sizes for g in range(first, first + groups)]
-    if len(jobs) != len(results):
-        raise SystemExit(f"the pickle holds {len(results)} groups, the options name {len(jobs)}")
+def observer_rows(results: list[dict], model) -> list[dict]:
+    """One row per observer with a decay fit: truth, kept limits, and the profile interval under each rule.
+
+    Observers are named ``s<seed>_simNN`` by ``bench_coverage.py``; the
+    seed and the group's size give the observer's truth.
+    """
     rows = []
-    for (size, seed), res in zip(jobs, results):
+    for res in results:
         own, reps = res["tables"][INTERVAL_KEY]
-        for i, truth in enumerate(draw_observers(model, size, seed)):
-            who = f"s{seed}_sim{i + 1:02d}"
+        for who in own["decay"]["observer"]:
+            if who not in reps or reps[who] is None:
+                continue                                   # the group row, or no replicates
+            seed, number = who.split("_sim")
+            truth = draw_observers(model, res["n_obs"], int(seed[1:]))[int(number) - 1]
             decay = own["decay"][own["decay"]["observer"] == who]
             shifts = own["aftereffect"][own["aftereffect"]["observer"] == who]
-            if decay.empty or reps.get(who) is None:
-                continue
             offsets = shifts["adapter_offset_deg"].to_numpy(float)
             lags = shifts["lag"].to_numpy(float)
             tau = float(decay["decay_periods"].iloc[0])
-            profile = decay_profile_interval(offsets, lags, shifts["pse_shift_deg"].to_numpy(float),
-                                             np.cov(reps[who], rowvar=False), tau, peak_bounds(offsets))
-            rows.append({"truth": truth.decay_periods, "kept": (decay["ci_low"].iloc[0], decay["ci_high"].iloc[0]),
-                         "profile": profile})
+            row = {"truth": truth.decay_periods, "kept": (decay["ci_low"].iloc[0], decay["ci_high"].iloc[0])}
+            for name, floor in RULES.items():
+                row[name] = decay_profile_interval(offsets, lags, shifts["pse_shift_deg"].to_numpy(float),
+                                                   np.cov(reps[who], rowvar=False), tau, peak_bounds(offsets),
+                                                   floor_at_known=floor)
+            rows.append(row)
     return rows
 
 
@@ -77,20 +88,20 @@ def score(rows: list[dict], kind: str) -> str:
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("kept", type=Path, help="folder of bench_coverage.py --save")
-    ap.add_argument("--first-group", type=int, required=True, help="as given to bench_coverage.py")
-    ap.add_argument("--groups", type=int, required=True, help="as given to bench_coverage.py")
-    ap.add_argument("--sizes", type=int, nargs="+", default=[3, 8])
+    ap.add_argument("kept", type=Path, nargs="+", help="folders of bench_coverage.py --save (pooled)")
     ap.add_argument("--model", default=str(ROOT / "protocols" / "observers" / "typical.toml"))
     args = ap.parse_args()
     model = load_model(args.model)
+    cells: dict[str, list] = {}
+    for folder in args.kept:
+        for path in sorted(folder.glob("*.pickle")):
+            with open(path, "rb") as f:
+                cells.setdefault(path.stem, []).extend(observer_rows(pickle.load(f), model))
     print("| kept fits | observers | interval | coverage ± MC SE (%) | truth below / above | median log width |")
     print("|---|---|---|---|---|---|")
-    for path in sorted(args.kept.glob("*.pickle")):
-        with open(path, "rb") as f:
-            rows = observer_rows(pickle.load(f), args.sizes, args.first_group, args.groups, model)
-        for kind in ("kept", "profile"):
-            print(f"| {path.stem} | {len(rows)} | {kind} | {score(rows, kind)} |", flush=True)
+    for name, rows in cells.items():
+        for kind in ("kept", *RULES):
+            print(f"| {name} | {len(rows)} | {kind} | {score(rows, kind)} |", flush=True)
 
 
 if __name__ == "__main__":

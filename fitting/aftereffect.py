@@ -32,8 +32,9 @@ Choices
 * The decay constant's default interval is a profile interval
   (:func:`decay_profile_interval`): the joint shape fitted by generalised
   least squares with the shifts' covariance known up to a factor, the
-  factor estimated from the residuals.  Shifts share the baseline PSE, so
-  their errors correlate; the bootstrap intervals of ``tau`` (BCa) held
+  factor estimated from the residuals, and the interval never narrower
+  than with the covariance taken as exact.  Shifts share the baseline PSE,
+  so their errors correlate; the bootstrap intervals of ``tau`` (BCa) held
   the truth less often with short adaptive tracks (benchmarks/README.md).
 """
 
@@ -255,7 +256,7 @@ def fit_decay(offsets, lags, shifts, weights, bounds=None, tau_bounds=TAU_BOUNDS
 
 def decay_profile_interval(offsets, lags, shifts, covariance, estimate: float, bounds=None,
                            tau_bounds=TAU_BOUNDS, level: float = 0.95,
-                           n_peaks: int = 80, n_rates: int = 400) -> tuple[float, float]:
+                           n_peaks: int = 80, n_rates: int = 400, floor_at_known: bool = True) -> tuple[float, float]:
     """Profile interval of the decay constant ``tau``, with the shifts' covariance known up to a factor.
 
     The model ``A_0 * exp(-k / tau) * DoG(D; w)`` is fitted by generalised
@@ -265,7 +266,14 @@ def decay_profile_interval(offsets, lags, shifts, covariance, estimate: float, b
     whose profile rises less than ``s^2 F(1, n - 3; level)`` above the
     minimum, ``s^2 = S_min / (n - 3)``: the profile interval of nonlinear
     least squares with an unknown variance factor (Bates & Watts 1988,
-    Nonlinear Regression Analysis and Its Applications, ch. 6).  Limits are
+    Nonlinear Regression Analysis and Its Applications, ch. 6).  The cut is
+    never below ``chi2_1(level)``, that of the likelihood-ratio interval
+    with the covariance taken as exact: the covariance comes from the
+    bootstrap replicates and already holds the shifts' sampling error, so a
+    factor below 1 is residuals that happen to be small, not a smaller
+    error (scaling uncertainties up by the residuals but never down is the
+    Particle Data Group's scale-factor practice, Review of Particle Physics,
+    introduction; from memory).  Limits are
     interpolated between grid points; where the profile stays low up to a
     bound, the limit is that bound.  The interval always holds
     ``estimate`` (the weighted least-squares fit of :func:`fit_decay`,
@@ -289,6 +297,9 @@ def decay_profile_interval(offsets, lags, shifts, covariance, estimate: float, b
         Confidence level.
     n_peaks, n_rates : int
         Grid sizes for the peak offset (log-spaced) and the rate ``1 / tau``.
+    floor_at_known : bool
+        Never cut below ``chi2_1(level)``, the cut with the covariance taken
+        as exact (default); False: the factor alone sets the cut, as before.
 
     Returns
     -------
@@ -328,6 +339,8 @@ def decay_profile_interval(offsets, lags, shifts, covariance, estimate: float, b
     if s_min <= 0:
         return nan
     threshold = s_min / (n - 3) * special.fdtri(1, n - 3, level)
+    if floor_at_known:
+        threshold = max(threshold, special.chdtri(1, 1.0 - level))
     excess = profile - s_min - threshold                              # <= 0 inside
     inside = np.flatnonzero(excess <= 0)
     log_rate = np.log(rates)

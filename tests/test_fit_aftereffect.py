@@ -70,7 +70,8 @@ def test_decay_profile_interval_equals_a_scipy_profile():
     # Reference: the profile of the generalised least-squares sum of squares computed with scipy's
     # least_squares (A and w free at each fixed tau, several starts) and the limits found with brentq;
     # the cut s^2 F(1, n - 3) with s^2 = S_min / (n - 3) is the profile interval of nonlinear least squares
-    # with an unknown variance factor (Bates & Watts 1988, ch. 6; chapter from memory).
+    # with an unknown variance factor (Bates & Watts 1988, ch. 6; chapter from memory); chi2_1 is the cut with
+    # the covariance known (the likelihood-ratio interval, Wilks 1938).
     rng = np.random.default_rng(5)
     lags = np.array([0, 1, 2, 3.0])
     d, k, y, cov = _correlated_shifts(rng, 1.5, lags)
@@ -89,15 +90,24 @@ def test_decay_profile_interval_equals_a_scipy_profile():
     best = optimize.minimize_scalar(lambda lt: profile(np.exp(lt)), bracket=np.log(grid[s_grid.argmin() - 1:
                                                                                    s_grid.argmin() + 2]))
     s_min, n = best.fun, y.size
-    cut = s_min + s_min / (n - 3) * stats.f.ppf(0.95, 1, n - 3)
-    ref_lo = optimize.brentq(lambda t: profile(t) - cut, grid[0], np.exp(best.x))
-    ref_hi = optimize.brentq(lambda t: profile(t) - cut, np.exp(best.x), grid[-1])
     estimate = fit_decay(OFFSETS, lags, y.reshape(lags.size, -1)[None], np.ones((lags.size, OFFSETS.size))).tau[0]
-    lo, hi = decay_profile_interval(d, k, y, cov, estimate, bounds=(7.5, 180.0))
-    assert lo == pytest.approx(ref_lo, rel=0.02) and hi == pytest.approx(ref_hi, rel=0.02)
-    assert lo <= estimate <= hi
-    # the variance factor is estimated: any multiple of the covariance gives the same interval
-    assert decay_profile_interval(d, k, y, 7.0 * cov, estimate, bounds=(7.5, 180.0)) == pytest.approx((lo, hi))
+    # the covariance handed over is c V: the profile is S / c. Where the residuals scatter more than c V says
+    # (c = 1/4) the estimated factor sets the cut; where less (c = 4) the cut stays at chi2_1, that of c V taken
+    # as exact, so that chance small residuals do not shrink the interval (the floor of fit's default)
+    for c, floored in ((0.25, False), (4.0, True)):
+        cut = s_min / c + max(s_min / c / (n - 3) * stats.f.ppf(0.95, 1, n - 3), stats.chi2.ppf(0.95, 1))
+        assert floored == (s_min / c / (n - 3) * stats.f.ppf(0.95, 1, n - 3) < stats.chi2.ppf(0.95, 1))
+        ref_lo = optimize.brentq(lambda t: profile(t) / c - cut, grid[0], np.exp(best.x))
+        ref_hi = optimize.brentq(lambda t: profile(t) / c - cut, np.exp(best.x), grid[-1])
+        lo, hi = decay_profile_interval(d, k, y, c * cov, estimate, bounds=(7.5, 180.0))
+        assert lo == pytest.approx(ref_lo, rel=0.02) and hi == pytest.approx(ref_hi, rel=0.02)
+        assert lo <= estimate <= hi
+    # without the floor the variance factor alone sets the cut: any multiple of the covariance gives the same
+    # interval, the one of the estimated factor
+    lo, hi = decay_profile_interval(d, k, y, 0.25 * cov, estimate, bounds=(7.5, 180.0))
+    for c in (0.25, 4.0, 7.0):
+        assert decay_profile_interval(d, k, y, c * cov, estimate, bounds=(7.5, 180.0),
+                                      floor_at_known=False) == pytest.approx((lo, hi))
 
 
 def test_decay_profile_interval_reaches_the_bound_when_nothing_decays():
