@@ -36,8 +36,7 @@ def track_factories(logs, strict: bool = True, notes: list | None = None) -> dic
     strict : bool
         Refuse (True) or leave out (False) an observer whose sessions used
         different procedures or one of whose sidecars cannot be read (the
-        observer named in that log's first row; every observer when the log
-        names none).
+        observer named in that log's first row).
     notes : list, optional
         Receives one line for each thing left out, and why.
 
@@ -74,10 +73,10 @@ def track_factories(logs, strict: bool = True, notes: list | None = None) -> dic
                 raise InputError(str(side), "protocol", f"cannot read the session's protocol ({exc})") from None
             why = exc.line() if isinstance(exc, InputError) else f"{side}: protocol: cannot be read ({exc})"
             observer = _log_observer(log)
-            if observer is None:    # whose session this was is unknown: every pilot keeps the levels fixed
-                notes.append(f"{why}; every observer's bootstrap keeps the presented levels fixed")
-                return {}
-            unread.setdefault(observer, why)
+            if observer is None:    # no trial of this session to re-run (a log the fit cannot read stops it)
+                notes.append(f"{why}; its log {log} names no observer in a first row, so it adds no trials")
+            else:
+                unread.setdefault(observer, why)
             continue
         previous = protocols.setdefault(observer, protocol)
         if previous.procedure != protocol.procedure or previous.design.trials_per_track != protocol.design.trials_per_track:

@@ -432,11 +432,12 @@ def test_an_unreadable_sidecar_fixes_the_levels_of_its_observer_only(tmp_path):
     assert notes[0].endswith("observer sim01's bootstrap keeps the presented levels fixed")
     with pytest.raises(InputError, match=f"^{side}: protocol: cannot read"):
         track_factories(logs)
-    # a log with no row naming its observer: whose the sidecar was is unknown, so no observer is re-run
+    # a log with no trial row (a session stopped before its first trial): nothing of it to re-run, and every
+    # observer keeps their re-run
     Path(logs[0]).write_text(Path(logs[0]).read_text().splitlines()[0] + "\n")
     notes = []
-    assert track_factories(logs, strict=False, notes=notes) == {}
-    assert len(notes) == 1 and notes[0].endswith("every observer's bootstrap keeps the presented levels fixed")
+    assert set(track_factories(logs, strict=False, notes=notes)) == {"sim02"}
+    assert len(notes) == 1 and notes[0].endswith("names no observer in a first row, so it adds no trials")
 
 
 def test_mixed_model_writes_a_boundary_observer_variance_as_zero_and_flags_it():
