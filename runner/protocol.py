@@ -340,9 +340,9 @@ class ProcedureSettings(_Section):
         efficiency 0.88 / 0.86 (lapse 0 / 4 %) with a single condition
         against 0.81 / 0.81 with 0, 0.915 / 0.87 against 0.88 / 0.855 in
         sessions of 8 conditions, and a PSE 15° away is still
-        reached (RMSE 0.52°).  Intervals in the band at 24 and 40 trials per
-        condition but the decay's at 40 (90.9 % against 94.9 % with 0, on
-        198 simulated observers) (``benchmarks/README.md``).  The prior steers
+        reached (RMSE 0.52°).  Every named interval in the band at 24 and 40
+        trials per condition (decay at 40: 95.2 % on 330 simulated
+        observers) (``benchmarks/README.md``).  The prior steers
         only where trials go: ``fit`` estimates the PSE by maximum
         likelihood, without it.
     bayes_target : {"pse", "pse_spread"}
