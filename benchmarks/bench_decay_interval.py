@@ -94,6 +94,8 @@ def main() -> None:
     model = load_model(args.model)
     cells: dict[str, list] = {}
     for folder in args.kept:
+        if not any(folder.glob("*.pickle")):
+            ap.error(f"{folder}: no kept fits (*.pickle of bench_coverage.py --save)")
         for path in sorted(folder.glob("*.pickle")):
             with open(path, "rb") as f:
                 cells.setdefault(path.stem, []).extend(observer_rows(pickle.load(f), model))
