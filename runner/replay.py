@@ -12,11 +12,11 @@ simulated session, from that session's own answers.
 
 from __future__ import annotations
 
-import csv
 import json
 from pathlib import Path
 
 from fitting.errors import InputError
+from fitting.tables import read_log_table
 from runner.protocol import parse_protocol
 from runner.shared_evidence import SharedEvidence
 from runner.tracks import as_started, new_track, new_track_copies
@@ -98,11 +98,11 @@ def track_factories(logs, strict: bool = True, notes: list | None = None) -> dic
 def _log_observer(log: Path) -> str | None:
     """The observer of a trial log's first row; None when the log has no readable row naming one."""
     try:
-        with open(log, newline="", encoding="utf-8") as f:
-            row = next(csv.DictReader(f), None)
-    except (OSError, UnicodeDecodeError, csv.Error):
+        table = read_log_table(log)
+    except InputError:
         return None
-    return (row or {}).get("observer") or None
+    names = table["observer"] if "observer" in table else ()
+    return (str(names.iloc[0]) or None) if len(names) else None
 
 
 class TrackFactory:
