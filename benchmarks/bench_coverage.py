@@ -73,7 +73,8 @@ sys.path.insert(0, str(ROOT))
 
 from fitting.aftereffect import fit_decay, fit_tuning, peak_bounds  # noqa: E402
 from fitting.bootstrap import percentile_interval  # noqa: E402
-from fitting.observer import BY_STATISTIC, INTERVAL_METHODS, decay_interval, pse_shift_intervals  # noqa: E402
+from fitting.observer import (BY_STATISTIC, INTERVAL_METHODS, decay_interval, pse_shift_intervals,  # noqa: E402
+                              tuning_intervals)
 from fitting.compare import agreement, combine_gains, compare_results, gls_gain  # noqa: E402
 from fitting.covariance import covariance_matrix, curve_between_covariance, group_covariance, spread_dof  # noqa: E402
 from fitting.group_chi2 import GroupData, calibrated_p  # noqa: E402
@@ -303,15 +304,18 @@ def method_tables(report, method: str, level: float = 0.95):
         if sel.any():
             own["aftereffect"].loc[sel, "ci_low"], own["aftereffect"].loc[sel, "ci_high"] = slo, shi
         if method in ("percentile", BY_STATISTIC) and a.boot is not None:
-            # by-statistic: percentile peak offsets, the profile interval of the decay; amplitudes keep
-            # the fit's BCa limits
+            # by-statistic: percentile peak offsets, the profile intervals of the amplitudes and the decay
             kinds = ["amplitude", "peak_offset"] if method == "percentile" else ["peak_offset"]
             t = own["tuning"]
+            profiles = tuning_intervals(a, level) if method == BY_STATISTIC else {}
             for i in np.flatnonzero((t["observer"] == a.observer).to_numpy()):
-                lo, hi = percentile_interval(a.curves[("tuning", int(t["lag"].iloc[i]))], level)
+                lag = int(t["lag"].iloc[i])
+                lo, hi = percentile_interval(a.curves[("tuning", lag)], level)
                 pick = slice(None) if method == "percentile" else slice(1, 2)
                 t.iloc[i, t.columns.get_indexer([f"{k}_ci_low" for k in kinds])] = lo[pick]
                 t.iloc[i, t.columns.get_indexer([f"{k}_ci_high" for k in kinds])] = hi[pick]
+                if np.all(np.isfinite(profiles.get(lag, np.nan))):
+                    t.iloc[i, t.columns.get_indexer(["amplitude_ci_low", "amplitude_ci_high"])] = profiles[lag]
             d = own["decay"]
             sel = (d["observer"] == a.observer).to_numpy()
             if method == "percentile" and sel.any() and "decay" in a.curves:

@@ -54,9 +54,9 @@ sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 
 from bench_adaptive_efficiency import fit_runs, pse_bound  # noqa: E402
 from runner.protocol import ProcedureSettings  # noqa: E402
-from runner.adaptive import EntropyTrack  # noqa: E402
+from runner.adaptive import EntropyTrack, log_pse_prior  # noqa: E402
 from fitting.psychometric import Cells, Layout, parameter_bounds, solve_batch, starting_values  # noqa: E402
-from runner.shared_evidence import SharedEvidence  # noqa: E402
+from runner.shared_evidence import SharedEvidence, log_evidence  # noqa: E402
 from runner.tracks import entropy_settings, procedure_track  # noqa: E402
 
 SPREAD = 3.0
@@ -83,7 +83,7 @@ CANDIDATES = [
 
 
 class ScratchEntropyTrack(EntropyTrack):
-    """Five Bayesian variants tried against the default and not adopted (benchmark only).
+    """Six Bayesian variants tried against the default and not adopted (benchmark only).
 
     ``switch_after``: least expected entropy for the first K trials of the
     track, then the level nearest the posterior mean of the PSE;
@@ -97,11 +97,16 @@ class ScratchEntropyTrack(EntropyTrack):
     ``conditional``: least expected entropy of the PSE *given the spread*,
     H(μ, σ) − H(σ) with λ summed out (the conditional entropy, Cover &
     Thomas, 2006, Elements of Information Theory, §2.2), so that what a
-    level would teach about the spread itself does not count.
+    level would teach about the spread itself does not count;
+    ``pool_until``: until the track has K answers, its posterior (for
+    choosing levels) also holds everything its condition's other track
+    learnt, PSE included (the ``partner``, set by :func:`simulate`), so that
+    the two tracks search for their common PSE together; from K answers on
+    it borrows only spread and lapse, as the default does.
     """
 
     def __init__(self, switch_after: int | None = None, near_spreads: float | None = None, min_variance: bool = False,
-                 posterior_lapse: float | None = None, conditional: bool = False, **kw):
+                 posterior_lapse: float | None = None, conditional: bool = False, pool_until: int = 0, **kw):
         if posterior_lapse is not None:
             kw["grid"] = dataclasses.replace(kw["grid"], lapses=(posterior_lapse,))
         super().__init__(**kw)
@@ -109,6 +114,20 @@ class ScratchEntropyTrack(EntropyTrack):
         self.near_spreads = near_spreads
         self.min_variance = min_variance
         self.conditional = conditional
+        self.pool_until = pool_until
+        self.partner: ScratchEntropyTrack | None = None
+
+    def posterior(self, borrowed: bool = True) -> np.ndarray:
+        if not (borrowed and self.partner is not None and self.n_trials < self.pool_until):
+            return super().posterior(borrowed)
+        # the partner's log likelihood over (μ, σ, λ): its log posterior less its PSE prior (the same as ours);
+        # it replaces the partner's share of the borrowed (σ, λ) evidence
+        prior = log_pse_prior(self._mu, self._prior_sd)[:, None, None]
+        log_post = self._log_post + self.partner._log_post - prior
+        if self._evidence is not None:
+            log_post = log_post + self._evidence.borrowed(self) - log_evidence(self.partner._log_post)
+        p = np.exp(log_post - log_post.max())
+        return p / p.sum()
 
     def expected_pse_variances(self) -> np.ndarray:
         """Expected posterior variance of the PSE after one trial at each level (deg², one per level)."""
@@ -156,7 +175,7 @@ class ScratchEntropyTrack(EntropyTrack):
         return super().next_level()
 
 
-SCRATCH = ("switch_after", "near_spreads", "min_variance", "posterior_lapse", "conditional")
+SCRATCH = ("switch_after", "near_spreads", "min_variance", "posterior_lapse", "conditional", "pool_until")
 
 
 def _procedure(settings: dict) -> ProcedureSettings:
@@ -185,7 +204,9 @@ SCRATCH_ROWS = [(f"bayesian, entropy for {k} trials then posterior mean (scratch
     ("bayesian, PSE grid ±10° (a diagnostic of the search: cannot reach a PSE 15° away) (scratch)",
      dict(method="bayesian", pse_range_deg=[-10.0, 10.0]))] + [
     ("bayesian, every track learns the spread alone (bayes_share_spread = false)",
-     dict(method="bayesian", bayes_share_spread=False))]
+     dict(method="bayesian", bayes_share_spread=False))] + [
+    (f"bayesian, a condition's two tracks pool their PSE evidence for their first {k} trials (scratch)",
+     dict(method="bayesian", pool_until=k)) for k in (6, 12, 20)]
 
 
 def simulate(settings: dict, mus, lapse: float, seeds, spread: float = SPREAD,
@@ -203,6 +224,9 @@ def simulate(settings: dict, mus, lapse: float, seeds, spread: float = SPREAD,
         C = len(mu)
         shared = SharedEvidence() if proc.method == "bayesian" and proc.bayes_share_spread else None
         made = [[_track(settings, N_TRIALS // tracks, t, shared) for t in range(tracks)] for _ in range(C)]
+        if settings.get("pool_until") and tracks == 2:
+            for first, second in made:
+                first.partner, second.partner = second, first
         order = np.zeros(N_TRIALS, int) if C == 1 else rng.permutation(np.repeat(np.arange(C), N_TRIALS))
         lv, an = np.zeros((C, N_TRIALS)), np.zeros((C, N_TRIALS))
         done = np.zeros(C, int)

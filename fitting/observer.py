@@ -13,12 +13,14 @@
 5. intervals for all of them.  The default, ``"by-statistic"``, gives each
    kind of number the bootstrap interval that held its level best in the
    coverage benchmark (``benchmarks/bench_coverage.py``, benchmarks/README.md):
-   percentile limits for PSEs, shifts and peak offsets, BCa limits (Efron
-   1987) for tuning amplitudes, and for the decay constant the profile
-   interval of a generalised least-squares fit with the replicates'
-   covariance of the shifts (:func:`fitting.aftereffect.decay_profile_interval`;
-   the decay's BCa limits held the truth in about 91 % of simulated observers
-   with 24 up–down trials per condition).  ``"bca"`` or ``"percentile"``
+   percentile limits for PSEs, shifts and peak offsets, and for each lag's
+   tuning amplitude (with 8 or more shifts; BCa with fewer) and for the
+   decay constant the profile interval of a
+   generalised least-squares fit with the replicates' covariance of the
+   shifts (:func:`fitting.aftereffect.tuning_profile_interval`,
+   :func:`fitting.aftereffect.decay_profile_interval`; their BCa limits
+   (Efron 1987) held the truth in about 92.7 % and 91 % of simulated
+   observers with 24 up–down trials per condition).  ``"bca"`` or ``"percentile"``
    use one kind for everything.  BCa needs each statistic's gradient in the
    fit parameters: exact for PSEs and shifts, by central differences for the
    curve parameters (the curve fits are run on the probes in the same batch as
@@ -36,7 +38,8 @@ import numpy as np
 import pandas as pd
 from scipy import special
 
-from .aftereffect import TAU_BOUNDS, bound_note, decay_profile_interval, fit_decay, fit_tuning, peak_bounds
+from .aftereffect import (TAU_BOUNDS, bound_note, decay_profile_interval, fit_decay, fit_tuning, peak_bounds,
+                          tuning_profile_interval)
 from .bootstrap import BootstrapResult, parametric_bootstrap, pilot_size
 from .profile import profile_pse, profile_shifts
 from .flags import MIN_TRIALS_FOR_INTERVAL, condense, join, on_bound, psychometric_flags
@@ -68,7 +71,8 @@ class Options:
     sigmoid : {"gaussian", "logistic"}
     interval : {"by-statistic", "bca", "percentile", "profile", "studentized"}
         Interval of the PSEs and shifts (tuning and decay: BCa unless
-        "percentile", or the decay's profile interval under "by-statistic");
+        "percentile", or, under "by-statistic", the profile intervals of the
+        tuning amplitudes and of the decay);
         see :func:`pse_shift_intervals`.
     level : float
         Confidence level of every interval.
@@ -143,9 +147,13 @@ def _period(trials: pd.DataFrame, notes: list) -> float:
     return float(values[0])
 
 
-#: The default interval rule: percentile limits for PSEs, shifts and peak offsets, BCa for tuning
-#: amplitudes, a profile interval for the decay (each kind as measured best by benchmarks/bench_coverage.py).
+#: The default interval rule: percentile limits for PSEs, shifts and peak offsets, profile intervals for the
+#: tuning amplitudes and the decay (each kind as measured best by benchmarks/bench_coverage.py).
 BY_STATISTIC = "by-statistic"
+#: A lag's amplitude gets its profile interval with at least this many usable shifts (6 residual degrees of
+#: freedom for the variance factor, the design it was measured on; with fewer the factor's F(1, n - 2) cut
+#: explodes, 161 at n = 3), BCa otherwise.
+TUNING_PROFILE_MIN_SHIFTS = 8
 INTERVAL_METHODS = (BY_STATISTIC, "bca", "percentile", "profile", "studentized")
 
 
@@ -234,6 +242,25 @@ def decay_interval(a: "ObserverAnalysis", level: float = 0.95) -> tuple[float, f
                                 float(a.decay["decay_periods"].iloc[0]), level)
 
 
+def tuning_intervals(a: "ObserverAnalysis", level: float = 0.95) -> dict[int, tuple[float, float]]:
+    """The profile intervals of an analysed observer's tuning amplitudes, by lag (``"by-statistic"``'s rule).
+
+    For a fit made with another interval rule, as :func:`decay_interval`;
+    empty without replicates.
+    """
+    reps = a.curves.get("shift_reps") if a.curves else None
+    if reps is None:
+        return {}
+    model = _CurveModel(a.conditions, a.fit, [])
+    shifts = a.aftereffect["pse_shift_deg"].to_numpy(float)
+    out = {}
+    for i in model.tuning_lags:
+        lag = int(model.lags[i])
+        row = a.tuning[a.tuning["lag"] == lag]
+        out[lag] = model.tuning_interval(i, shifts, reps, float(row["amplitude_deg"].iloc[0]), level)
+    return out
+
+
 class _CurveModel:
     """Maps PSE rows (B, C) to shifts, per-lag tuning and the decay fit."""
 
@@ -274,13 +301,31 @@ class _CurveModel:
         covariance of the shifts that the decay fit uses.
         """
         used = (self.weight[self.cell_k, self.cell_j] > 0) & np.isin(self.cell_k, self.tuning_lags)
-        reps = shift_reps[:, used]
-        reps = reps[np.all(np.isfinite(reps), axis=1)]
-        if reps.shape[0] <= used.sum() + 2:
+        cov = _replicate_covariance(shift_reps[:, used])
+        if cov is None:
             return float("nan"), float("nan")
         return decay_profile_interval(self.offsets[self.cell_j[used]], self.lags[self.cell_k[used]],
-                                      shifts[used], np.cov(reps, rowvar=False), tau, self.peak_range,
-                                      TAU_BOUNDS, level)
+                                      shifts[used], cov, tau, self.peak_range, TAU_BOUNDS, level)
+
+    def profiled_lag(self, lag_index: int) -> bool:
+        """True where lag ``lag_index``'s amplitude gets the profile interval: at least
+        :data:`TUNING_PROFILE_MIN_SHIFTS` usable shifts."""
+        used = (self.weight[self.cell_k, self.cell_j] > 0) & (self.cell_k == lag_index)
+        return int(used.sum()) >= TUNING_PROFILE_MIN_SHIFTS
+
+    def tuning_interval(self, lag_index: int, shifts: np.ndarray, shift_reps: np.ndarray, amplitude: float,
+                        level: float) -> tuple[float, float]:
+        """Profile interval of lag ``lag_index``'s tuning amplitude with the covariance of its replicated shifts.
+
+        NaN limits as for :meth:`decay_interval`, and with fewer than
+        :data:`TUNING_PROFILE_MIN_SHIFTS` usable shifts.
+        """
+        used = (self.weight[self.cell_k, self.cell_j] > 0) & (self.cell_k == lag_index)
+        cov = _replicate_covariance(shift_reps[:, used]) if self.profiled_lag(lag_index) else None
+        if cov is None:
+            return float("nan"), float("nan")
+        return tuning_profile_interval(self.offsets[self.cell_j[used]], shifts[used], cov, amplitude,
+                                       self.peak_range, level)
 
     def shifts(self, pse: np.ndarray) -> np.ndarray:
         return pse[:, self.cond_index] - pse[:, [self.base]]
@@ -307,6 +352,14 @@ class _CurveModel:
             flags["decay_peak"], flags["decay_tau"] = dfit.peak_at_bound, dfit.tau_at_bound
         stats = np.column_stack(cols) if cols else np.zeros((pse.shape[0], 0))
         return np.column_stack([sh, stats]), flags
+
+
+def _replicate_covariance(reps: np.ndarray) -> np.ndarray | None:
+    """Covariance of replicated shifts (rows with a non-finite value left out); None if too few rows for it."""
+    reps = reps[np.all(np.isfinite(reps), axis=1)]
+    if reps.shape[0] <= reps.shape[1] + 2:
+        return None
+    return np.cov(reps, rowvar=False)
 
 
 def analyse_observer(observer: str, trials: pd.DataFrame, opts: Options,
@@ -473,8 +526,15 @@ def _curves(a: ObserverAnalysis, opts: Options, shift_ci=None) -> None:
                 "shift_se": np.sqrt(model.shift_var)}
     rows_t = []
     col = m
+    profile_failed = []
     for i in model.tuning_lags:
         sl = slice(col, col + 2)
+        if reps is not None and opts.interval == BY_STATISTIC and model.profiled_lag(i):
+            limits = model.tuning_interval(i, est[:m], reps[:, :m], est[col], opts.level)
+            if np.all(np.isfinite(limits)):
+                lo[col], hi[col] = limits
+            else:
+                profile_failed.append(f"{model.lags[i]:g}")
         rows_t.append({"observer": a.observer, "lag": int(model.lags[i]),
                        "amplitude_deg": est[col], "amplitude_ci_low": lo[col],
                        "amplitude_ci_high": hi[col], "peak_offset_deg": est[col + 1],
@@ -488,6 +548,9 @@ def _curves(a: ObserverAnalysis, opts: Options, shift_ci=None) -> None:
         if reps is not None:
             a.curves[("tuning", int(model.lags[i]))] = reps[:, sl]
         col += 2
+    if profile_failed:
+        notes.append(f"tuning amplitude interval of lag {', '.join(profile_failed)}: BCa (too few replicates, "
+                     "or a singular covariance of the shifts, for the profile interval)")
     a.tuning = pd.DataFrame(rows_t, columns=TUNING_COLUMNS)
     if model.decay_ok:
         a0, w, tau = est[col:col + 3]

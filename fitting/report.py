@@ -240,7 +240,7 @@ def _interval_words(o: Options, seed: int) -> str:
         return "no bootstrap: no intervals"
     if o.interval == BY_STATISTIC:
         return (f"{level} intervals from {boot}: percentile for PSEs, shifts and peak offsets, "
-                "BCa for tuning amplitudes, a profile interval for the decay")
+                "profile intervals for tuning amplitudes and the decay")
     return f"{level} {'BCa' if o.interval == 'bca' else 'percentile'} intervals from {boot}"
 
 

@@ -437,7 +437,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="psychometric function: cumulative Gaussian or logistic (default gaussian)")
     p.add_argument("--interval", choices=["by-statistic", "bca", "bc", "percentile", "profile", "studentized"],
                    help="interval: by-statistic (adapt-test default: percentile for PSEs, shifts and peak "
-                        "offsets, BCa for amplitudes, a profile interval for the decay, as measured best), BCa (Efron 1987), "
+                        "offsets, profile intervals for tuning amplitudes and the decay, as measured best), BCa (Efron 1987), "
                         "bias-corrected (stream default), profile likelihood or studentized bootstrap (PSEs "
                         "and shifts of adapt-test logs), or percentile")
     p.add_argument("--level", type=float, default=0.95, help="confidence level (default 0.95)")

@@ -8,7 +8,7 @@ from scipy import optimize, stats
 from conftest import ROOT, run_cli
 from fitting.covariance import covariance_matrix
 
-from fitting.aftereffect import TAU_BOUNDS, decay_profile_interval, dog, fit_decay, fit_tuning
+from fitting.aftereffect import TAU_BOUNDS, decay_profile_interval, dog, fit_decay, fit_tuning, tuning_profile_interval
 from fitting.synthetic import recovery_study
 
 OFFSETS = np.array([-90, -60, -30, -15, 15, 30, 60, 90.0])
@@ -110,6 +110,50 @@ def test_decay_profile_interval_equals_a_scipy_profile():
                                       floor_at_known=False) == pytest.approx((lo, hi))
 
 
+def test_tuning_profile_interval_equals_a_scipy_profile():
+    # Reference: the profile of one lag's generalised least-squares sum of squares over the amplitude A,
+    # computed with scipy (the peak offset w minimised by minimize_scalar in log w from the best of a coarse
+    # grid, at each fixed A), and the limits found with brentq; the cut s^2 F(1, n - 2) with
+    # s^2 = S_min / (n - 2) is the profile interval of nonlinear least squares with an unknown variance factor
+    # (Bates & Watts 1988, ch. 6; chapter from memory); chi2_1 the cut with the covariance known (Wilks 1938).
+    rng = np.random.default_rng(8)
+    d, _, y, cov = _correlated_shifts(rng, 1e6, np.array([0.0]), sd=0.8)
+    white = np.linalg.cholesky(np.linalg.inv(cov)).T            # W'W = V^-1
+    bounds = (7.5, 180.0)
+    coarse = np.linspace(np.log(bounds[0]), np.log(bounds[1]), 60)
+
+    def s_at(amplitude, log_w):
+        r = white @ (y - dog(d, amplitude, np.exp(log_w)))
+        return float(r @ r)
+
+    def profile(amplitude):
+        start = coarse[np.argmin([s_at(amplitude, g) for g in coarse])]
+        lo_g, hi_g = max(start - 0.1, coarse[0]), min(start + 0.1, coarse[-1])
+        fit = optimize.minimize_scalar(lambda g: s_at(amplitude, g), bounds=(lo_g, hi_g), method="bounded",
+                                       options={"xatol": 1e-10})
+        return min(fit.fun, s_at(amplitude, start))
+
+    best = optimize.minimize_scalar(profile, bracket=(1.0, 3.0, 5.0))
+    s_min, n = best.fun, y.size
+    estimate = fit_tuning(d, y[None], np.ones(n), bounds).amplitude[0]
+    factor = s_min / (n - 2) * stats.f.ppf(0.95, 1, n - 2)
+    # the covariance handed over is c V: the profile is S / c and the estimated factor s^2 as well, so by
+    # default (the factor alone sets the cut) every multiple gives one interval; floored at chi2_1 the cut of
+    # c = 4 is the floor (s^2 F(1, n - 2) / c is below chi2_1 there), that of c = 1/4 the factor's
+    assert factor / 4.0 < stats.chi2.ppf(0.95, 1) < factor * 4.0
+    for c, floor in ((1.0, False), (0.25, False), (4.0, False), (0.25, True), (4.0, True)):
+        rise = max(factor / c, stats.chi2.ppf(0.95, 1)) if floor else factor / c
+        ref_lo = optimize.brentq(lambda a: profile(a) / c - s_min / c - rise, best.x - 20, best.x)
+        ref_hi = optimize.brentq(lambda a: profile(a) / c - s_min / c - rise, best.x, best.x + 20)
+        lo, hi = tuning_profile_interval(d, y, c * cov, estimate, bounds, floor_at_known=floor)
+        assert lo == pytest.approx(ref_lo, abs=0.01) and hi == pytest.approx(ref_hi, abs=0.01)
+        assert lo <= estimate <= hi
+    # too few shifts, non-finite shifts, or a covariance that is not positive definite: no interval
+    assert np.isnan(tuning_profile_interval(d[:2], y[:2], cov[:2, :2], estimate)).all()
+    assert np.isnan(tuning_profile_interval(d, np.where(d > 50, np.nan, y), cov, estimate)).all()
+    assert np.isnan(tuning_profile_interval(d, y, -cov, estimate)).all()
+
+
 def test_decay_profile_interval_reaches_the_bound_when_nothing_decays():
     rng = np.random.default_rng(6)
     lags = np.array([0, 1, 2, 3.0])
@@ -121,9 +165,10 @@ def test_decay_profile_interval_reaches_the_bound_when_nothing_decays():
     assert np.isnan(decay_profile_interval(d, k, y, -cov, 1.0)).all()
 
 
-def test_fit_writes_the_profile_interval_of_its_own_shifts_and_covariance(tmp_path):
-    # decay.csv (default intervals) against decay_profile_interval recomputed from what fit wrote beside it:
-    # the shifts of aftereffect.csv and their covariance in aftereffect_covariance.csv (6 digits)
+def test_fit_writes_the_profile_intervals_of_its_own_shifts_and_covariance(tmp_path):
+    # decay.csv and tuning.csv (default intervals) against decay_profile_interval and tuning_profile_interval
+    # recomputed from what fit wrote beside them: the shifts of aftereffect.csv and their covariance in
+    # aftereffect_covariance.csv (6 digits)
     log = ROOT / "results_demo" / "logs" / "sim01-s1.trials.csv"
     done = run_cli("fit", log, "--out", tmp_path, "--bootstrap", "300", "--no-figures", "--seed", "3")
     assert done.returncode == 0, done.stderr
@@ -137,6 +182,14 @@ def test_fit_writes_the_profile_interval_of_its_own_shifts_and_covariance(tmp_pa
                                     decay["decay_periods"])
     assert (decay["ci_low"], decay["ci_high"]) == pytest.approx((lo, hi), rel=2e-3)
     assert decay["ci_low"] < decay["decay_periods"] < decay["ci_high"]
+    tuning = pd.read_csv(tmp_path / "tuning.csv")
+    assert len(tuning) == np.unique(lags).size
+    for _, row in tuning.iterrows():
+        at = lags == row["lag"]
+        lo, hi = tuning_profile_interval(offsets[at], shifts["pse_shift_deg"].to_numpy(float)[at],
+                                         cov[np.ix_(at, at)], row["amplitude_deg"])
+        assert (row["amplitude_ci_low"], row["amplitude_ci_high"]) == pytest.approx((lo, hi), rel=2e-3, abs=1e-3)
+        assert row["amplitude_ci_low"] <= row["amplitude_deg"] <= row["amplitude_ci_high"]
 
 
 @pytest.mark.slow  # left out of the quick subset
