@@ -15,7 +15,9 @@ observer's decay constant and of their tuning amplitude at each lag:
   (:func:`fitting.aftereffect.decay_profile_interval`, the decay's default
   until the nineteenth session;
   :func:`fitting.aftereffect.tuning_profile_interval`, the amplitude's
-  default since the twentieth);
+  default since the twentieth for lags with 8 or more shifts, as in the
+  bundled ``offset_by_lag.toml`` that the coverage benchmark runs; scored
+  here for every lag);
 * ``profile, floored at the known-covariance cut`` — the same, the cut
   never below ``chi2_1`` (the decay's default since the nineteenth
   session).
