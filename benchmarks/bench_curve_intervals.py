@@ -118,8 +118,12 @@ def main() -> None:
         if not any(folder.glob("*.pickle")):
             ap.error(f"{folder}: no kept fits (*.pickle of bench_coverage.py --save)")
         for path in sorted(folder.glob("*.pickle")):
-            with open(path, "rb") as f:
-                rows = observer_rows(pickle.load(f), model)
+            try:
+                with open(path, "rb") as f:
+                    kept = pickle.load(f)
+            except (OSError, EOFError, pickle.UnpicklingError) as exc:
+                ap.error(f"{path}: not a kept fit of bench_coverage.py --save ({type(exc).__name__}: {exc})")
+            rows = observer_rows(kept, model)
             for what, more in rows.items():
                 cells.setdefault(path.stem, {}).setdefault(what, []).extend(more)
     print("| kept fits | statistic | intervals | interval | coverage ± MC SE (%) | truth below / above | median width |")

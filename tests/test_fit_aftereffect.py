@@ -192,6 +192,19 @@ def test_fit_writes_the_profile_intervals_of_its_own_shifts_and_covariance(tmp_p
         assert row["amplitude_ci_low"] <= row["amplitude_deg"] <= row["amplitude_ci_high"]
 
 
+def test_too_few_replicates_for_a_covariance_fall_back_to_bca_with_a_note(tmp_path):
+    # 9 replicates cannot give a covariance of a lag's 8 shifts (nor of all 32): the amplitudes and the
+    # decay keep BCa limits, and the summary says so for each
+    log = ROOT / "results_demo" / "logs" / "sim01-s1.trials.csv"
+    done = run_cli("fit", log, "--out", tmp_path, "--bootstrap", "9", "--no-figures", "--seed", "3")
+    assert done.returncode == 0, done.stderr
+    summary = (tmp_path / "summary.txt").read_text(encoding="utf-8")
+    assert "tuning amplitude interval of lag 0, 1, 2, 3: BCa" in summary
+    assert "decay interval: BCa" in summary
+    tuning = pd.read_csv(tmp_path / "tuning.csv")
+    assert np.isfinite(tuning[["amplitude_ci_low", "amplitude_ci_high"]].to_numpy()).all()
+
+
 @pytest.mark.slow  # left out of the quick subset
 def test_parameter_recovery_fast():
     # Simulated observers (README, Models; A = 3 deg, w = 30 deg, tau = 1.5
