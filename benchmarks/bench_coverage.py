@@ -195,7 +195,7 @@ def effective_spread_dof(a, reps: np.ndarray, cov: np.ndarray):
     """(β, ν') of one observer from its replicates (see :func:`chi2_candidates`); None without them."""
     if a.boot is None:
         return None
-    log_s = a.boot.theta[:, np.unique(a.fit.layout.spread_index)].mean(axis=1)
+    log_s = replicate_log_spread(a)
     ok = np.isfinite(log_s) & np.all(np.isfinite(reps), axis=1)
     if ok.sum() < 10 or reps.shape[0] != log_s.size:
         return None
@@ -204,6 +204,24 @@ def effective_spread_dof(a, reps: np.ndarray, cov: np.ndarray):
     beta = float(np.polyfit(log_s[ok] - log_s[ok].mean(), np.log(t_b), 1)[0])
     nu = spread_dof(log_s)
     return (beta, 4 * nu / (2 - beta) ** 2) if beta < 2 and np.isfinite(nu) else None
+
+
+def replicate_log_spread(a) -> np.ndarray:
+    """The log spread of each bootstrap replicate of analysis ``a`` (its mean over conditions), as ``fit`` reads ν."""
+    return a.boot.theta[:, np.unique(a.fit.layout.spread_index)].mean(axis=1)
+
+
+def robust_spread_dof(log_s: np.ndarray) -> float:
+    """ν of the fitted spread from a robust scale of its replicates' log spread (NaN with fewer than 10).
+
+    The scale is the IQR over that of a standard normal (``scipy.stats.iqr(scale="normal")``), read as
+    :func:`fitting.covariance.spread_dof` reads the SD, ν = 1 / (2 scale²).
+    """
+    log_s = log_s[np.isfinite(log_s)]
+    if log_s.size < 10:
+        return float("nan")
+    scale = float(stats.iqr(log_s, scale="normal"))
+    return 1.0 / (2.0 * scale ** 2) if scale > 0 else float("nan")
 
 
 def chi2_candidates(report, truths: dict) -> dict:
@@ -220,7 +238,9 @@ def chi2_candidates(report, truths: dict) -> dict:
     exactly when the truth falls outside the interval, with the replicates' correlation; ``T / n`` against
     F(n, ν') with the spread's *effective* degrees of freedom ν' = 4 ν / (2 − β)², β the slope of
     log T*_b on log s*_b over the observer's own replicates (how the shifts' scatter grows with the
-    fitted spread; ν' = ν when it does not, β = 0).
+    fitted spread; ν' = ν when it does not, β = 0); ``T / n`` against F(n, ν) with ν from a robust scale
+    of the replicates' log spread (:func:`robust_spread_dof`), and the same with ``T`` from the covariance
+    of the replicates whose log spread lies within Tukey's far fences (three IQRs beyond the quartiles).
     """
     out = defaultdict(dict)
     for a in report.analyses:
@@ -268,6 +288,21 @@ def chi2_candidates(report, truths: dict) -> dict:
         if beta_nu is not None:
             out["F on the spread's effective degrees of freedom"][a.observer] = (
                 stats.f.sf(t_stat / n, n, beta_nu[1]) < 0.05, t_stat, n, np.nan, *beta_nu)
+        log_s = replicate_log_spread(a) if a.boot is not None else np.array([])
+        nu_rob = robust_spread_dof(log_s)
+        if np.isfinite(nu_rob):
+            out["F on the spread's robust degrees of freedom"][a.observer] = (
+                stats.f.sf(t_stat / n, n, nu_rob) < 0.05, t_stat, n, np.nan, nu_rob)
+            # and the covariance without the replicates whose spread lies beyond Tukey's far fences
+            q25, q75 = np.nanpercentile(log_s, [25, 75])
+            iqr = q75 - q25
+            inner = ((log_s >= q25 - 3 * iqr) & (log_s <= q75 + 3 * iqr)) & np.all(np.isfinite(reps), axis=1)
+            if inner.sum() > n + 3:
+                cov_in = np.cov(reps[inner], rowvar=False)
+                h_in = (inner.sum() - n - 2) / (inner.sum() - 1)
+                t_in = float(h_in * e @ np.linalg.solve(cov_in, e))
+                out["F on the robust degrees of freedom, covariance within the far fences"][a.observer] = (
+                    stats.f.sf(t_in / n, n, nu_rob) < 0.05, t_in, n, np.nan, nu_rob, int((~inner).sum()))
         # the rule before compare read T / n against F on the spread's degrees of freedom
         b = agreement(est, ae["ci_low"], ae["ci_high"], truth, None, cov, n_rep, np.nan, trials=ae["n_trials"])
         out["t scores on n_trials - 2 (the rule before)"][a.observer] = (b.chi2_p < 0.05, b.chi2, b.dof,

@@ -10,8 +10,10 @@ observer's decay constant and of their tuning amplitude at each lag:
   third session), the profile interval after.  Amplitude: BCa for fits
   kept before the twentieth session, its profile interval after;
 * ``profile, factor alone`` — the profile interval of the curve fitted by
-  generalised least squares with the covariance of the replicated shifts,
-  the cut ``s^2 F(1, dof)`` set by the variance factor alone
+  generalised least squares with the covariance of the replicated shifts
+  (:func:`fitting.observer.replicate_covariance`, as ``fit`` takes it:
+  replicates with a non-finite shift left out; no interval where too few
+  remain), the cut ``s^2 F(1, dof)`` set by the variance factor alone
   (:func:`fitting.aftereffect.decay_profile_interval`, the decay's default
   until the nineteenth session;
   :func:`fitting.aftereffect.tuning_profile_interval`, the amplitude's
@@ -45,11 +47,14 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 from fitting.aftereffect import decay_profile_interval, peak_bounds, tuning_profile_interval  # noqa: E402
+from fitting.observer import replicate_covariance  # noqa: E402
 from runner.observers import draw_observers, load_model  # noqa: E402
 
 INTERVAL_KEY = ("pilot", "by-statistic")
 # the profile interval's cut: s^2 F(1, dof) alone, or never below the chi2_1 cut of the covariance taken as exact
 RULES = {"profile, factor alone": False, "profile, floored at the known-covariance cut": True}
+#: What a rule gives where the replicates are too few for a covariance (the fit then keeps BCa).
+NO_INTERVAL = (float("nan"), float("nan"))
 
 
 def observer_rows(results: list[dict], model) -> dict[str, list[dict]]:
@@ -76,19 +81,21 @@ def observer_rows(results: list[dict], model) -> dict[str, list[dict]]:
                 lag = lags == t["lag"]
                 row = {"truth": truth.amplitude_deg * np.exp(-t["lag"] / truth.decay_periods),
                        "kept": (t["amplitude_ci_low"], t["amplitude_ci_high"])}
+                cov = replicate_covariance(reps[who][:, lag])
                 for name, floor in RULES.items():
-                    row[name] = tuning_profile_interval(offsets[lag], values[lag],
-                                                        np.cov(reps[who][:, lag], rowvar=False),
-                                                        t["amplitude_deg"], bounds, floor_at_known=floor)
+                    row[name] = (NO_INTERVAL if cov is None else
+                                 tuning_profile_interval(offsets[lag], values[lag], cov, t["amplitude_deg"],
+                                                         bounds, floor_at_known=floor))
                 rows["amplitude"].append(row)
             decay = own["decay"][own["decay"]["observer"] == who]
             if decay.empty:
                 continue
             row = {"truth": truth.decay_periods, "kept": (decay["ci_low"].iloc[0], decay["ci_high"].iloc[0])}
+            cov = replicate_covariance(reps[who])
             for name, floor in RULES.items():
-                row[name] = decay_profile_interval(offsets, lags, values, np.cov(reps[who], rowvar=False),
-                                                   float(decay["decay_periods"].iloc[0]), bounds,
-                                                   floor_at_known=floor)
+                row[name] = (NO_INTERVAL if cov is None else
+                             decay_profile_interval(offsets, lags, values, cov, float(decay["decay_periods"].iloc[0]),
+                                                    bounds, floor_at_known=floor))
             rows["decay"].append(row)
     return rows
 

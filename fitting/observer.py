@@ -301,7 +301,7 @@ class _CurveModel:
         covariance of the shifts that the decay fit uses.
         """
         used = (self.weight[self.cell_k, self.cell_j] > 0) & np.isin(self.cell_k, self.tuning_lags)
-        cov = _replicate_covariance(shift_reps[:, used])
+        cov = replicate_covariance(shift_reps[:, used])
         if cov is None:
             return float("nan"), float("nan")
         return decay_profile_interval(self.offsets[self.cell_j[used]], self.lags[self.cell_k[used]],
@@ -321,7 +321,7 @@ class _CurveModel:
         :data:`TUNING_PROFILE_MIN_SHIFTS` usable shifts.
         """
         used = (self.weight[self.cell_k, self.cell_j] > 0) & (self.cell_k == lag_index)
-        cov = _replicate_covariance(shift_reps[:, used]) if self.profiled_lag(lag_index) else None
+        cov = replicate_covariance(shift_reps[:, used]) if self.profiled_lag(lag_index) else None
         if cov is None:
             return float("nan"), float("nan")
         return tuning_profile_interval(self.offsets[self.cell_j[used]], shifts[used], cov, amplitude,
@@ -354,7 +354,7 @@ class _CurveModel:
         return np.column_stack([sh, stats]), flags
 
 
-def _replicate_covariance(reps: np.ndarray) -> np.ndarray | None:
+def replicate_covariance(reps: np.ndarray) -> np.ndarray | None:
     """Covariance of replicated shifts (rows with a non-finite value left out); None if too few rows for it."""
     reps = reps[np.all(np.isfinite(reps), axis=1)]
     if reps.shape[0] <= reps.shape[1] + 2:
