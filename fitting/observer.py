@@ -355,7 +355,20 @@ class _CurveModel:
 
 
 def replicate_covariance(reps: np.ndarray) -> np.ndarray | None:
-    """Covariance of replicated shifts (rows with a non-finite value left out); None if too few rows for it."""
+    """Covariance of replicated shifts, as the profile intervals of the decay and the amplitudes take it.
+
+    Parameters
+    ----------
+    reps : ndarray (replicates, cells)
+        Bootstrap replicates of the shifts; a row with a non-finite value
+        (a failed refit) is left out.
+
+    Returns
+    -------
+    ndarray (cells, cells) or None
+        None when no more rows remain than cells + 2, too few for a
+        covariance whose inverse is usable.
+    """
     reps = reps[np.all(np.isfinite(reps), axis=1)]
     if reps.shape[0] <= reps.shape[1] + 2:
         return None
