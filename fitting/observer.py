@@ -539,10 +539,12 @@ def _curves(a: ObserverAnalysis, opts: Options, shift_ci=None) -> None:
                 "shift_se": np.sqrt(model.shift_var)}
     rows_t = []
     col = m
-    profile_failed = []
+    profile_failed, few_shifts = [], []
     for i in model.tuning_lags:
         sl = slice(col, col + 2)
-        if reps is not None and opts.interval == BY_STATISTIC and model.profiled_lag(i):
+        if reps is not None and opts.interval == BY_STATISTIC and not model.profiled_lag(i):
+            few_shifts.append(f"{model.lags[i]:g}")
+        elif reps is not None and opts.interval == BY_STATISTIC:
             limits = model.tuning_interval(i, est[:m], reps[:, :m], est[col], opts.level)
             if np.all(np.isfinite(limits)):
                 lo[col], hi[col] = limits
@@ -564,6 +566,9 @@ def _curves(a: ObserverAnalysis, opts: Options, shift_ci=None) -> None:
     if profile_failed:
         notes.append(f"tuning amplitude interval of lag {', '.join(profile_failed)}: BCa (too few replicates, "
                      "or a singular covariance of the shifts, for the profile interval)")
+    if few_shifts:
+        notes.append(f"tuning amplitude interval of lag {', '.join(few_shifts)}: BCa (fewer than "
+                     f"{TUNING_PROFILE_MIN_SHIFTS} shifts for the profile interval)")
     a.tuning = pd.DataFrame(rows_t, columns=TUNING_COLUMNS)
     if model.decay_ok:
         a0, w, tau = est[col:col + 3]

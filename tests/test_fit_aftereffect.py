@@ -205,6 +205,21 @@ def test_too_few_replicates_for_a_covariance_fall_back_to_bca_with_a_note(tmp_pa
     assert np.isfinite(tuning[["amplitude_ci_low", "amplitude_ci_high"]].to_numpy()).all()
 
 
+def test_a_lag_with_fewer_than_eight_shifts_keeps_bca_with_a_note(tmp_path):
+    # the amplitude's profile interval was measured with 8 shifts per lag (benchmarks/README.md); a lag
+    # with fewer keeps BCa limits, and the summary says so instead of naming the profile rule alone
+    trials = pd.read_csv(ROOT / "results_demo" / "logs" / "sim01-s1.trials.csv")
+    cut = trials[~((trials["lag"] == 0) & trials["adapter_offset_deg"].isin([-90, 90]))]
+    log = tmp_path / "cut.trials.csv"
+    cut.to_csv(log, index=False)
+    done = run_cli("fit", log, "--out", tmp_path / "fit", "--bootstrap", "200", "--no-figures", "--seed", "3")
+    assert done.returncode == 0, done.stderr
+    summary = (tmp_path / "fit" / "summary.txt").read_text(encoding="utf-8")
+    assert "note: tuning amplitude interval of lag 0: BCa (fewer than 8 shifts for the profile interval)\n" in summary
+    tuning = pd.read_csv(tmp_path / "fit" / "tuning.csv")
+    assert np.isfinite(tuning[["amplitude_ci_low", "amplitude_ci_high"]].to_numpy()).all()
+
+
 @pytest.mark.slow  # left out of the quick subset
 def test_parameter_recovery_fast():
     # Simulated observers (README, Models; A = 3 deg, w = 30 deg, tau = 1.5
