@@ -21,9 +21,10 @@ Each simulated group is fitted with each bootstrap of ``--bootstraps`` (the
 fixed-level one and the one that re-runs the adaptive tracks), side by side
 on the same logs.  Each fit is then scored with each interval of
 ``--intervals``, on the same fit and the same replicates: ``by-statistic``
-(the default of ``fit``: percentile for PSEs, shifts and peak offsets, BCa for
-amplitudes, the profile interval of :func:`fitting.aftereffect.decay_profile_interval` for the
-decay), ``bca``, ``percentile``, ``profile`` (profile likelihood for
+(the default of ``fit``: percentile for PSEs, shifts and peak offsets, the
+profile interval of :func:`fitting.aftereffect.tuning_profile_interval` for
+amplitudes, the profile interval of
+:func:`fitting.aftereffect.decay_profile_interval` for the decay), ``bca``, ``percentile``, ``profile`` (profile likelihood for
 PSEs and shifts, :mod:`fitting.profile`; tuning and decay keep BCa) and
 ``studentized`` (bootstrap-t for PSEs and shifts with every replicate's own
 standard error; tuning and decay keep BCa).  ``--timing`` first times
@@ -54,6 +55,7 @@ Run: ``python benchmarks/bench_coverage.py [--groups 6] [--boot 1000] [--jobs 2]
 from __future__ import annotations
 
 import argparse
+import atexit
 import itertools
 import pickle
 import re
@@ -75,6 +77,7 @@ from fitting.aftereffect import fit_decay, fit_tuning, peak_bounds  # noqa: E402
 from fitting.bootstrap import percentile_interval  # noqa: E402
 from fitting.observer import (BY_STATISTIC, INTERVAL_METHODS, decay_interval, pse_shift_intervals,  # noqa: E402
                               tuning_intervals)
+from fitting.errors import InputError  # noqa: E402
 from fitting.compare import agreement, combine_gains, compare_results, gls_gain  # noqa: E402
 from fitting.covariance import covariance_matrix, curve_between_covariance, group_covariance, spread_dof  # noqa: E402
 from fitting.group_chi2 import GroupData, calibrated_p  # noqa: E402
@@ -109,6 +112,27 @@ def protocol_text(base: str, trials_per_condition: int, method: str, tracks: int
         # the protocol check refuses a start level the method would not use
         text = re.sub(r"(?m)^start_offset_deg\s*=.*\n", "", text)
     return re.sub(r'(?m)^method\s*=.*$', f'method = "{method}"', text)
+
+
+def with_offsets(base: str, offsets) -> str:
+    """A copy of the protocol ``base`` whose design has these adapter offsets (a temporary file, removed at exit).
+
+    For designs with fewer shifts per lag than the bundled protocol's 8
+    (``--offsets``); everything else, lags included, stays as it is.
+    """
+    try:
+        text = Path(base).read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InputError(base, "file", f"cannot read it ({type(exc).__name__})") from None
+    listed = ", ".join(f"{float(d):g}" for d in offsets)
+    text, n = re.subn(r"(?m)^adapter_offsets_deg\s*=.*$", f"adapter_offsets_deg = [{listed}]", text)
+    if n != 1:
+        raise InputError(base, "design.adapter_offsets_deg", f"expected one such line to replace, found {n}")
+    handle, path = tempfile.mkstemp(prefix="coverage-offsets-", suffix=".toml")
+    with open(handle, "w", encoding="utf-8") as out:
+        out.write(text)
+    atexit.register(Path(path).unlink, missing_ok=True)
+    return path
 
 
 def shift(m: ObserverModel, offset, lag):
@@ -869,6 +893,9 @@ def main() -> None:
     ap.add_argument("--lapse-max", type=float, nargs="+", default=[DEFAULT_LAPSE_MAX],
                     help="with --spread-bias: upper bounds of the free lapse to compare (default: fit's)")
     ap.add_argument("--protocol", default=str(ROOT / "protocols" / "offset_by_lag.toml"))
+    ap.add_argument("--offsets", type=float, nargs="+", metavar="DEG",
+                    help="the protocol's adapter offsets replaced by these (fewer shifts per lag; give the same "
+                         "with --rescore)")
     ap.add_argument("--tracks", type=int, choices=(1, 2), default=2, help="tracks per condition sharing its trials")
     ap.add_argument("--bayes-placement", choices=("entropy", "pse_mean", "straddle"),
                     help="placement of Bayesian tracks")
@@ -900,7 +927,15 @@ def main() -> None:
     if args.partitions < 1:
         ap.error(f"--partitions: expected a whole number >= 1, got {args.partitions}")
     model = load_model(args.model)
-    base = load_protocol(args.protocol)
+    given = args.protocol
+    try:
+        if args.offsets:
+            args.protocol = with_offsets(args.protocol, args.offsets)
+        base = load_protocol(args.protocol)
+    except InputError as exc:
+        where = f"{given} with --offsets" if args.offsets else given
+        print(f"bench_coverage.py: {where}: {exc.field}: {exc.message}", file=sys.stderr)
+        sys.exit(2)
     pop = population_truth(model, base.design.adapter_offsets_deg, base.design.lags)
     t0 = time.perf_counter()
     if args.scale_check:

@@ -2,13 +2,14 @@
 
 Reads the fits that ``bench_coverage.py --save DIR`` kept (one pickle per
 procedure and trial count, named ``PROC_TRIALS.pickle``) and scores, on the
-same shifts and replicates, three 95 % intervals of every simulated
+same shifts and replicates, four 95 % intervals of every simulated
 observer's decay constant and of their tuning amplitude at each lag:
 
 * ``kept`` — the limits kept in the pickle's default-rule tables.  Decay:
   BCa for fits kept before its profile interval became the default (the
   third session), the profile interval after.  Amplitude: BCa for fits
-  kept before the twentieth session, its profile interval after;
+  kept before the twentieth session, its profile interval after (BCa
+  for lags with fewer than 8 shifts until the twenty-second);
 * ``profile, factor alone`` — the profile interval of the curve fitted by
   generalised least squares with the covariance of the replicated shifts
   (:func:`fitting.observer.replicate_covariance`, as ``fit`` takes it:
@@ -22,7 +23,10 @@ observer's decay constant and of their tuning amplitude at each lag:
   here for every lag);
 * ``profile, floored at the known-covariance cut`` — the same, the cut
   never below ``chi2_1`` (the decay's default since the nineteenth
-  session).
+  session);
+* ``profile, covariance taken as known`` — the cut ``chi2_1`` alone (the
+  amplitude's default since the twenty-second session for lags with 3–7
+  shifts, measured with ``bench_coverage.py --offsets``).
 
 The truth of each observer comes from the observer model with the group's
 seed, as in ``bench_coverage.py``.  Coverage ± its binomial Monte Carlo
@@ -51,8 +55,9 @@ from fitting.observer import replicate_covariance  # noqa: E402
 from runner.observers import draw_observers, load_model  # noqa: E402
 
 INTERVAL_KEY = ("pilot", "by-statistic")
-# the profile interval's cut: s^2 F(1, dof) alone, or never below the chi2_1 cut of the covariance taken as exact
-RULES = {"profile, factor alone": False, "profile, floored at the known-covariance cut": True}
+# the profile interval's cut (fitting.aftereffect.PROFILE_CUTS)
+RULES = {"profile, factor alone": "factor", "profile, floored at the known-covariance cut": "floored",
+         "profile, covariance taken as known": "known"}
 #: What a rule gives where the replicates are too few for a covariance (the fit then keeps BCa).
 NO_INTERVAL = (float("nan"), float("nan"))
 
@@ -82,20 +87,20 @@ def observer_rows(results: list[dict], model) -> dict[str, list[dict]]:
                 row = {"truth": truth.amplitude_deg * np.exp(-t["lag"] / truth.decay_periods),
                        "kept": (t["amplitude_ci_low"], t["amplitude_ci_high"])}
                 cov = replicate_covariance(reps[who][:, lag])
-                for name, floor in RULES.items():
+                for name, cut in RULES.items():
                     row[name] = (NO_INTERVAL if cov is None else
                                  tuning_profile_interval(offsets[lag], values[lag], cov, t["amplitude_deg"],
-                                                         bounds, floor_at_known=floor))
+                                                         bounds, cut=cut))
                 rows["amplitude"].append(row)
             decay = own["decay"][own["decay"]["observer"] == who]
             if decay.empty:
                 continue
             row = {"truth": truth.decay_periods, "kept": (decay["ci_low"].iloc[0], decay["ci_high"].iloc[0])}
             cov = replicate_covariance(reps[who])
-            for name, floor in RULES.items():
+            for name, cut in RULES.items():
                 row[name] = (NO_INTERVAL if cov is None else
                              decay_profile_interval(offsets, lags, values, cov, float(decay["decay_periods"].iloc[0]),
-                                                    bounds, floor_at_known=floor))
+                                                    bounds, cut=cut))
             rows["decay"].append(row)
     return rows
 

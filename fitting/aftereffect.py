@@ -39,7 +39,8 @@ Choices
   Each lag's tuning amplitude gets the same kind of profile interval
   (:func:`tuning_profile_interval`), with the factor alone setting the cut:
   its BCa limits held the truth in about 92.7 % of simulated observers with
-  24 up–down trials per condition.
+  24 up–down trials per condition.  With fewer shifts per lag than the
+  factor needs, the covariance is taken as exact (``cut="known"``).
 """
 
 from __future__ import annotations
@@ -281,7 +282,7 @@ def _gls_setup(offsets, shifts, covariance, bounds, n_peaks: int, least: int):
 
 def decay_profile_interval(offsets, lags, shifts, covariance, estimate: float, bounds=None,
                            tau_bounds=TAU_BOUNDS, level: float = 0.95,
-                           n_peaks: int = 80, n_rates: int = 400, floor_at_known: bool = True) -> tuple[float, float]:
+                           n_peaks: int = 80, n_rates: int = 400, cut: str = "floored") -> tuple[float, float]:
     """Profile interval of the decay constant ``tau``, with the shifts' covariance known up to a factor.
 
     The model ``A_0 * exp(-k / tau) * DoG(D; w)`` is fitted by generalised
@@ -322,9 +323,10 @@ def decay_profile_interval(offsets, lags, shifts, covariance, estimate: float, b
         Confidence level.
     n_peaks, n_rates : int
         Grid sizes for the peak offset (log-spaced) and the rate ``1 / tau``.
-    floor_at_known : bool
-        Never cut below ``chi2_1(level)``, the cut with the covariance taken
-        as exact (default); False: the factor alone sets the cut, as before.
+    cut : {"floored", "factor", "known"}
+        The profile's rise that bounds the interval (:data:`PROFILE_CUTS`):
+        "floored" (default) as above; "factor": ``s^2 F(1, n - 3)`` alone;
+        "known": ``chi2_1`` alone, the covariance taken as exact.
 
     Returns
     -------
@@ -355,7 +357,7 @@ def decay_profile_interval(offsets, lags, shifts, covariance, estimate: float, b
     s_min = float(profile.min())
     if s_min <= 0:
         return nan
-    excess = profile - s_min - _profile_cut(s_min, n - 3, level, floor_at_known)   # <= 0 inside
+    excess = profile - s_min - _profile_cut(s_min, n - 3, level, cut)   # <= 0 inside
     inside = np.flatnonzero(excess <= 0)
     log_rate = np.log(rates)
 
@@ -369,20 +371,31 @@ def decay_profile_interval(offsets, lags, shifts, covariance, estimate: float, b
     return min(tau_lo, float(estimate)), max(tau_hi, float(estimate))
 
 
-def _profile_cut(s_min: float, dof: int, level: float, floor_at_known: bool) -> float:
+#: Rises of a profile that bound its interval: "factor" ``s^2 F(1, dof)``, "floored" never below ``chi2_1``,
+#: "known" ``chi2_1`` alone (see :func:`_profile_cut`).
+PROFILE_CUTS = ("factor", "floored", "known")
+
+
+def _profile_cut(s_min: float, dof: int, level: float, cut: str) -> float:
     """Rise of a generalised least-squares profile that bounds a ``level`` interval of one parameter.
 
-    ``s^2 F(1, dof; level)`` with ``s^2 = s_min / dof``, the profile
-    interval of nonlinear least squares with the covariance known up to a
-    factor (Bates & Watts 1988, ch. 6); ``floor_at_known``: never below
-    ``chi2_1(level)``, the cut with the covariance taken as exact.
+    "factor": ``s^2 F(1, dof; level)`` with ``s^2 = s_min / dof``, the
+    profile interval of nonlinear least squares with the covariance known up
+    to a factor (Bates & Watts 1988, ch. 6); "floored": the same, never
+    below ``chi2_1(level)``; "known": ``chi2_1(level)``, the likelihood-ratio
+    cut with the covariance taken as exact (Wilks 1938).
     """
-    cut = s_min / dof * special.fdtri(1, dof, level)
-    return max(cut, special.chdtri(1, 1.0 - level)) if floor_at_known else cut
+    if cut not in PROFILE_CUTS:
+        raise ValueError(f"cut: expected one of {list(PROFILE_CUTS)}, got {cut!r}")
+    known = special.chdtri(1, 1.0 - level)
+    if cut == "known":
+        return known
+    factor = s_min / dof * special.fdtri(1, dof, level)
+    return max(factor, known) if cut == "floored" else factor
 
 
 def tuning_profile_interval(offsets, shifts, covariance, estimate: float, bounds=None, level: float = 0.95,
-                            n_peaks: int = 160, floor_at_known: bool = False) -> tuple[float, float]:
+                            n_peaks: int = 160, cut: str = "factor") -> tuple[float, float]:
     """Profile interval of one lag's tuning amplitude, with the shifts' covariance known up to a factor.
 
     The DoG ``A * DoG(D; w)`` is fitted by generalised least squares,
@@ -416,9 +429,11 @@ def tuning_profile_interval(offsets, shifts, covariance, estimate: float, bounds
         Confidence level.
     n_peaks : int
         Grid size for the peak offset (log-spaced).
-    floor_at_known : bool
-        Never cut below ``chi2_1(level)``, as the decay's interval does
-        (default False: the factor alone sets the cut).
+    cut : {"factor", "floored", "known"}
+        "factor" (default) as above; "floored": never below ``chi2_1(level)``,
+        as the decay's interval; "known": ``chi2_1(level)`` alone, the
+        covariance taken as exact (any multiple then changes the interval),
+        ``fit``'s rule for lags with too few shifts to estimate the factor.
 
     Returns
     -------
@@ -444,7 +459,7 @@ def tuning_profile_interval(offsets, shifts, covariance, estimate: float, bounds
     s_min = total - float(np.max(cross * cross / norm))
     if s_min <= 0:
         return nan
-    room = cross * cross - norm * (total - s_min - _profile_cut(s_min, y.size - 2, level, floor_at_known))
+    room = cross * cross - norm * (total - s_min - _profile_cut(s_min, y.size - 2, level, cut))
     ok = room >= 0
     half = np.sqrt(room[ok])
     low = float(np.min((cross[ok] - half) / norm[ok]))

@@ -22,6 +22,7 @@ from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError,
 
 from fitting.errors import InputError
 from runner import geometry, timing
+from runner.adaptive import STRADDLE_SPREADS
 from runner.light_settings import LightSettings
 from runner.stream_settings import StreamSettings, check_stream
 
@@ -378,7 +379,7 @@ class ProcedureSettings(_Section):
         default_factory=lambda: [-16.0, -8.0, -4.0, -2.0, 2.0, 4.0, 8.0, 16.0], min_length=2, max_length=200
     )
     bayes_placement: Literal["entropy", "pse_mean", "straddle"] = "entropy"
-    bayes_straddle_spreads: float = Field(0.25, ge=0, le=3)
+    bayes_straddle_spreads: float = Field(STRADDLE_SPREADS, ge=0, le=3)
     bayes_pse_prior_sd_deg: float = Field(6.0, ge=0, le=180)
     bayes_target: Literal["pse", "pse_spread"] = "pse"
     bayes_share_spread: bool = True

@@ -107,7 +107,7 @@ def test_decay_profile_interval_equals_a_scipy_profile():
     lo, hi = decay_profile_interval(d, k, y, 0.25 * cov, estimate, bounds=(7.5, 180.0))
     for c in (0.25, 4.0, 7.0):
         assert decay_profile_interval(d, k, y, c * cov, estimate, bounds=(7.5, 180.0),
-                                      floor_at_known=False) == pytest.approx((lo, hi))
+                                      cut="factor") == pytest.approx((lo, hi))
 
 
 def test_tuning_profile_interval_equals_a_scipy_profile():
@@ -139,15 +139,20 @@ def test_tuning_profile_interval_equals_a_scipy_profile():
     factor = s_min / (n - 2) * stats.f.ppf(0.95, 1, n - 2)
     # the covariance handed over is c V: the profile is S / c and the estimated factor s^2 as well, so by
     # default (the factor alone sets the cut) every multiple gives one interval; floored at chi2_1 the cut of
-    # c = 4 is the floor (s^2 F(1, n - 2) / c is below chi2_1 there), that of c = 1/4 the factor's
+    # c = 4 is the floor (s^2 F(1, n - 2) / c is below chi2_1 there), that of c = 1/4 the factor's; with the
+    # covariance taken as known the cut is chi2_1 on S / c, so c = 4 widens the interval
     assert factor / 4.0 < stats.chi2.ppf(0.95, 1) < factor * 4.0
-    for c, floor in ((1.0, False), (0.25, False), (4.0, False), (0.25, True), (4.0, True)):
-        rise = max(factor / c, stats.chi2.ppf(0.95, 1)) if floor else factor / c
+    for c, cut in ((1.0, "factor"), (0.25, "factor"), (4.0, "factor"), (0.25, "floored"), (4.0, "floored"),
+                   (1.0, "known"), (4.0, "known")):
+        rise = {"factor": factor / c, "floored": max(factor / c, stats.chi2.ppf(0.95, 1)),
+                "known": stats.chi2.ppf(0.95, 1)}[cut]
         ref_lo = optimize.brentq(lambda a: profile(a) / c - s_min / c - rise, best.x - 20, best.x)
         ref_hi = optimize.brentq(lambda a: profile(a) / c - s_min / c - rise, best.x, best.x + 20)
-        lo, hi = tuning_profile_interval(d, y, c * cov, estimate, bounds, floor_at_known=floor)
+        lo, hi = tuning_profile_interval(d, y, c * cov, estimate, bounds, cut=cut)
         assert lo == pytest.approx(ref_lo, abs=0.01) and hi == pytest.approx(ref_hi, abs=0.01)
         assert lo <= estimate <= hi
+    with pytest.raises(ValueError, match="cut"):
+        tuning_profile_interval(d, y, cov, estimate, bounds, cut="floor")
     # too few shifts, non-finite shifts, or a covariance that is not positive definite: no interval
     assert np.isnan(tuning_profile_interval(d[:2], y[:2], cov[:2, :2], estimate)).all()
     assert np.isnan(tuning_profile_interval(d, np.where(d > 50, np.nan, y), cov, estimate)).all()
@@ -205,19 +210,31 @@ def test_too_few_replicates_for_a_covariance_fall_back_to_bca_with_a_note(tmp_pa
     assert np.isfinite(tuning[["amplitude_ci_low", "amplitude_ci_high"]].to_numpy()).all()
 
 
-def test_a_lag_with_fewer_than_eight_shifts_keeps_bca_with_a_note(tmp_path):
-    # the amplitude's profile interval was measured with 8 shifts per lag (benchmarks/README.md); a lag
-    # with fewer keeps BCa limits, and the summary says so instead of naming the profile rule alone
+def test_a_lag_with_fewer_than_eight_shifts_takes_the_covariance_as_exact_with_a_note(tmp_path):
+    # with fewer than 8 shifts a lag's amplitude profile is cut at chi2_1 with the replicates' covariance
+    # taken as exact (the factor's s^2 F(1, n - 2) has too few degrees of freedom; benchmarks/README.md);
+    # the summary says so, and tuning.csv holds that interval, recomputed from what fit wrote beside it
     trials = pd.read_csv(ROOT / "results_demo" / "logs" / "sim01-s1.trials.csv")
     cut = trials[~((trials["lag"] == 0) & trials["adapter_offset_deg"].isin([-90, 90]))]
     log = tmp_path / "cut.trials.csv"
     cut.to_csv(log, index=False)
-    done = run_cli("fit", log, "--out", tmp_path / "fit", "--bootstrap", "200", "--no-figures", "--seed", "3")
+    out = tmp_path / "fit"
+    done = run_cli("fit", log, "--out", out, "--bootstrap", "200", "--no-figures", "--seed", "3")
     assert done.returncode == 0, done.stderr
-    summary = (tmp_path / "fit" / "summary.txt").read_text(encoding="utf-8")
-    assert "note: tuning amplitude interval of lag 0: BCa (fewer than 8 shifts for the profile interval)\n" in summary
-    tuning = pd.read_csv(tmp_path / "fit" / "tuning.csv")
-    assert np.isfinite(tuning[["amplitude_ci_low", "amplitude_ci_high"]].to_numpy()).all()
+    summary = (out / "summary.txt").read_text(encoding="utf-8")
+    assert ("note: tuning amplitude interval of lag 0: profile with the shifts' replicate covariance taken as "
+            "exact (fewer than 8 shifts to estimate its factor)\n") in summary
+    shifts = pd.read_csv(out / "aftereffect.csv").sort_values(["lag", "adapter_offset_deg"])
+    lags, offsets = shifts["lag"].to_numpy(float), shifts["adapter_offset_deg"].to_numpy(float)
+    cov = covariance_matrix(pd.read_csv(out / "aftereffect_covariance.csv"), "sim01", lags, offsets)[0]
+    tuning = pd.read_csv(out / "tuning.csv")
+    for _, row in tuning.iterrows():
+        at = lags == row["lag"]
+        assert at.sum() == (6 if row["lag"] == 0 else 8)
+        lo, hi = tuning_profile_interval(offsets[at], shifts["pse_shift_deg"].to_numpy(float)[at],
+                                         cov[np.ix_(at, at)], row["amplitude_deg"],
+                                         cut="known" if row["lag"] == 0 else "factor")
+        assert (row["amplitude_ci_low"], row["amplitude_ci_high"]) == pytest.approx((lo, hi), rel=2e-3, abs=1e-3)
 
 
 @pytest.mark.slow  # left out of the quick subset
