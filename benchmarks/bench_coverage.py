@@ -24,10 +24,11 @@ on the same logs.  Each fit is then scored with each interval of
 (the default of ``fit``: percentile for PSEs, shifts and peak offsets, the
 profile interval of :func:`fitting.aftereffect.tuning_profile_interval` for
 amplitudes, the profile interval of
-:func:`fitting.aftereffect.decay_profile_interval` for the decay), ``bca``, ``percentile``, ``profile`` (profile likelihood for
-PSEs and shifts, :mod:`fitting.profile`; tuning and decay keep BCa) and
-``studentized`` (bootstrap-t for PSEs and shifts with every replicate's own
-standard error; tuning and decay keep BCa).  ``--timing`` first times
+:func:`fitting.aftereffect.decay_profile_interval` for the decay), ``bca``,
+``percentile``, ``profile`` (profile likelihood for PSEs and shifts,
+:mod:`fitting.profile`; tuning and decay keep BCa) and ``studentized``
+(bootstrap-t for PSEs and shifts with every replicate's own standard error;
+tuning and decay keep BCa).  ``--timing`` first times
 ``fit`` with each interval on one simulated group (seconds per observer,
 side by side on the same logs).
 

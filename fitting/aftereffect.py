@@ -420,7 +420,8 @@ def tuning_profile_interval(offsets, shifts, covariance, estimate: float, bounds
     shifts : array_like (n,)
         The PSE shifts (deg).
     covariance : array_like (n, n)
-        Their covariance (any positive multiple: the factor is estimated).
+        Their covariance (any positive multiple: the factor is estimated;
+        with ``cut="known"`` taken as it is).
     estimate : float
         The reported amplitude (deg).
     bounds : (float, float), optional
