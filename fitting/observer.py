@@ -153,7 +153,7 @@ BY_STATISTIC = "by-statistic"
 #: A lag's amplitude profile interval estimates the covariance's factor (cut s^2 F(1, n - 2)) with at least
 #: this many usable shifts (6 residual degrees of freedom, the bundled design); with 3 to 7 it takes the
 #: replicates' covariance as exact (cut chi2_1): the factor's F(1, n - 2) cut explodes there (161 at n = 3)
-#: and BCa held the truth in only 89–93 % in 10 of 16 cells with 3, 4 and 6 shifts (benchmarks/README.md).
+#: and BCa held the truth in only 89–93 % in 10 of 18 cells with 3, 4 and 6 shifts (benchmarks/README.md).
 TUNING_FACTOR_MIN_SHIFTS = 8
 INTERVAL_METHODS = (BY_STATISTIC, "bca", "percentile", "profile", "studentized")
 
