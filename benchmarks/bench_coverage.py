@@ -115,6 +115,12 @@ def protocol_text(base: str, trials_per_condition: int, method: str, tracks: int
     return re.sub(r'(?m)^method\s*=.*$', f'method = "{method}"', text)
 
 
+def refuse(line: str) -> None:
+    """Bad input: ``line`` on stderr, exit 2."""
+    print(f"bench_coverage.py: {line}", file=sys.stderr)
+    sys.exit(2)
+
+
 def with_offsets(base: str, offsets) -> str:
     """A copy of the protocol ``base`` whose design has these adapter offsets (a temporary file, removed at exit).
 
@@ -849,9 +855,19 @@ def cell_results(args, proc: str, n_trials: int, text: str, model, pop) -> list[
     name = f"{proc}_{n_trials}.pickle"
     if args.rescore:
         results = []
+        design = {offset for _, offset in pop["shift"]}
         for folder in args.rescore:       # several folders: their cells scored as one (seeds must differ)
-            with open(folder / name, "rb") as f:
-                results += pickle.load(f)
+            try:
+                with open(folder / name, "rb") as f:
+                    kept = pickle.load(f)
+                offsets = {float(o) for res in kept for own, _ in res["tables"].values()
+                           for o in own["aftereffect"]["adapter_offset_deg"]}
+            except (OSError, EOFError, pickle.UnpicklingError, KeyError, TypeError, ValueError) as exc:
+                refuse(f"{folder / name}: not fits kept by --save ({type(exc).__name__})")
+            if not offsets <= design:
+                refuse(f"{folder / name}: --offsets: the kept fits have adapter offsets "
+                         f"{sorted(offsets)}, the protocol {sorted(design)} (give the run's --offsets)")
+            results += kept
         return results
     jobs = [(text, model, size, 1000 * size + g, args.boot, pop, args.bootstraps, args.intervals)
             for size in args.sizes for g in range(args.first_group, args.first_group + args.groups)]
@@ -935,8 +951,7 @@ def main() -> None:
         base = load_protocol(args.protocol)
     except InputError as exc:
         where = f"{given} with --offsets" if args.offsets else given
-        print(f"bench_coverage.py: {where}: {exc.field}: {exc.message}", file=sys.stderr)
-        sys.exit(2)
+        refuse(f"{where}: {exc.field}: {exc.message}")
     pop = population_truth(model, base.design.adapter_offsets_deg, base.design.lags)
     t0 = time.perf_counter()
     if args.scale_check:

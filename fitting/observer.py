@@ -543,7 +543,7 @@ def _curves(a: ObserverAnalysis, opts: Options, shift_ci=None) -> None:
                 "shift_se": np.sqrt(model.shift_var)}
     rows_t = []
     col = m
-    profile_failed, few_shifts = [], []
+    profile_failed, known_cut = [], []
     for i in model.tuning_lags:
         sl = slice(col, col + 2)
         if reps is not None and opts.interval == BY_STATISTIC:
@@ -551,7 +551,7 @@ def _curves(a: ObserverAnalysis, opts: Options, shift_ci=None) -> None:
             if np.all(np.isfinite(limits)):
                 lo[col], hi[col] = limits
                 if not model.factor_lag(i):
-                    few_shifts.append(f"{model.lags[i]:g}")
+                    known_cut.append(f"{model.lags[i]:g}")
             else:
                 profile_failed.append(f"{model.lags[i]:g}")
         rows_t.append({"observer": a.observer, "lag": int(model.lags[i]),
@@ -570,8 +570,8 @@ def _curves(a: ObserverAnalysis, opts: Options, shift_ci=None) -> None:
     if profile_failed:
         notes.append(f"tuning amplitude interval of lag {', '.join(profile_failed)}: BCa (too few replicates, "
                      "or a singular covariance of the shifts, for the profile interval)")
-    if few_shifts:
-        notes.append(f"tuning amplitude interval of lag {', '.join(few_shifts)}: profile with the shifts' "
+    if known_cut:
+        notes.append(f"tuning amplitude interval of lag {', '.join(known_cut)}: profile with the shifts' "
                      f"replicate covariance taken as exact (fewer than {TUNING_FACTOR_MIN_SHIFTS} shifts to "
                      "estimate its factor)")
     a.tuning = pd.DataFrame(rows_t, columns=TUNING_COLUMNS)
