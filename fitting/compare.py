@@ -80,7 +80,7 @@ from fitting.meta import random_effects
 from fitting.page import PAGE, write_page
 from fitting.progress import phase
 from fitting.scores import inverse, score_chi2
-from fitting.outputs import folder_lock, output_set
+from fitting.outputs import folder_lock, output_set, settle
 from fitting.tables import write_text
 
 Z95 = special.ndtri(0.975)
@@ -578,6 +578,7 @@ def compare_results(results_dir: str | Path, predictions_path: str | Path, out_d
         measured grid.
     """
     results = Path(results_dir)
+    settle(results if results.is_dir() else results.parent)    # a fit killed while moving its set in
     # read under the fit folder's shared lock: a fit moving its set in meanwhile waits (fitting.outputs)
     with folder_lock(results, exclusive=False) if results.is_dir() else nullcontext():
         return _compare(results, predictions_path, out_dir, interpolate, figures, progress)

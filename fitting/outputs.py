@@ -13,7 +13,13 @@ sidecars and lock files never, whatever a manifest says.
 
 A failure, Ctrl-C or SIGTERM before that point removes the staging folder
 and leaves the earlier outputs as they were; a staging folder left by a
-killed process is removed by the next run into the same folder.
+killed process is removed by the next run into the same folder.  While the
+files are moved in, Ctrl-C and SIGTERM wait until the set is complete (a
+few milliseconds).  A process killed outright in that window (``kill -9``,
+a power cut) leaves a journal, ``.outputs-pending.json``, naming its
+staging folder and the set's files: the next command that writes into the
+folder, or ``compare`` reading it, first finishes that move, so the folder
+never stays a mix of two sets.
 
 Two commands writing into one folder at once (two ``fit`` runs started by
 mistake, say) move their sets in one after the other, never interleaved:
@@ -33,6 +39,7 @@ import fcntl
 import json
 import os
 import shutil
+import signal
 import sys
 import tempfile
 from contextlib import contextmanager
@@ -41,11 +48,15 @@ from pathlib import Path
 from .errors import InputError
 
 MANIFEST = "outputs.json"
+#: Journal of a set being moved in; present only while (or if killed while) the files are renamed.
+PENDING = ".outputs-pending.json"
 STAGING_PREFIX = ".staging-"
 #: Data files a manifest can never cause to be removed, whatever it lists.
 NEVER_REMOVED = (".trials.csv", ".session.json", ".lock")
 #: This process's holds: folder -> [file descriptor, exclusive holds, shared holds].
 _HELD: dict[str, list[int]] = {}
+#: Folders this process has moved a complete set into (what a late Ctrl-C message reports).
+_COMMITTED: list[str] = []
 
 
 def file_mode() -> int:
@@ -230,21 +241,71 @@ def refuse_other_set(out_dir: str | Path, command: str) -> None:
                          f"which `aftershift {command}` would replace; choose another folder")
 
 
-def _commit(staged: StagedOutputs, command: str) -> None:
-    stage, out = staged.folder, staged.final_dir
-    refuse_other_set(out, command)        # again, under the lock: another command may have written meanwhile
-    files = sorted(str(p.relative_to(stage)) for p in stage.rglob("*") if p.is_file())
-    previous = read_manifest(out)
-    manifest = {"tool": "aftershift", "command": command, "files": files}
-    write_atomic(stage / MANIFEST, (json.dumps(manifest, indent=2) + "\n").encode("utf-8"))
+def committed() -> list[str]:
+    """Folders into which this process has moved a complete set, in order."""
+    return list(_COMMITTED)
+
+
+@contextmanager
+def _signals_deferred():
+    """Hold Ctrl-C and SIGTERM until the block ends, then act on the first that came.
+
+    Python runs signal handlers in the main thread; outside it (where they
+    cannot be replaced) the block runs unguarded.
+    """
+    caught: list[int] = []
+    wanted = (signal.SIGINT, signal.SIGTERM)
+    try:
+        old = {s: signal.signal(s, lambda signum, frame: caught.append(signum)) for s in wanted}
+    except ValueError:
+        yield
+        return
+    try:
+        yield
+    finally:
+        for s, handler in old.items():
+            signal.signal(s, handler)
+        if caught:
+            handler = old[caught[0]]
+            if callable(handler):
+                handler(caught[0], None)
+            elif handler == signal.SIG_DFL:
+                os.kill(os.getpid(), caught[0])
+
+
+def _inside(out: Path, rel: str) -> bool:
+    """True when ``out / rel`` names a place inside ``out``: no absolute path, no ``..``, no folder linked out.
+
+    (A manifest edited by hand once made a fit delete a file through a linked folder.)
+    """
+    if Path(rel).is_absolute() or ".." in Path(rel).parts:
+        return False
+    top = os.path.realpath(out)
+    parent = os.path.realpath((out / rel).parent)
+    return parent == top or parent.startswith(top + os.sep)
+
+
+def _move_in(out: Path, stage: Path, files: list[str], previous: list[str]) -> None:
+    """Rename the staged files into ``out``, then the manifest; remove stale files; drop the journal.
+
+    Repeatable: a file already moved (absent from ``stage``) is skipped, so
+    a move cut short by a kill is finished by running this again.
+    """
     for rel in files:
+        if not _inside(out, rel):
+            continue
         target = out / rel
         target.parent.mkdir(parents=True, exist_ok=True)
-        os.replace(stage / rel, target)
-    os.replace(stage / MANIFEST, out / MANIFEST)
+        try:
+            os.replace(stage / rel, target)
+        except FileNotFoundError:
+            if not target.exists():
+                raise
+    if (stage / MANIFEST).exists():
+        os.replace(stage / MANIFEST, out / MANIFEST)
     keep = set(files) | {MANIFEST}
     for rel in previous:
-        if rel in keep or Path(rel).is_absolute() or ".." in Path(rel).parts or rel.endswith(NEVER_REMOVED):
+        if rel in keep or rel.endswith(NEVER_REMOVED) or not _inside(out, rel):
             continue
         stale = out / rel
         try:
@@ -252,6 +313,91 @@ def _commit(staged: StagedOutputs, command: str) -> None:
         except OSError:
             continue
         _prune_empty(stale.parent, out)
+    try:
+        os.unlink(out / PENDING)
+    except FileNotFoundError:
+        pass
+
+
+def _journal(out: Path) -> dict | None:
+    """The journal of an interrupted move, or None; an unreadable one reads as one without a staging folder."""
+    try:
+        content = json.loads((out / PENDING).read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        return None
+    except (OSError, ValueError):
+        return {"files": [], "previous": [], "stage": None}
+    if not isinstance(content, dict):
+        return {"files": [], "previous": [], "stage": None}
+    lists = {k: [f for f in content.get(k, []) if isinstance(f, str)] if isinstance(content.get(k), list) else []
+             for k in ("files", "previous")}
+    stage = content.get("stage")
+    ok = isinstance(stage, str) and stage.startswith(STAGING_PREFIX) and Path(stage).name == stage
+    return {**lists, "stage": stage if ok else None}
+
+
+def finish_interrupted(out_dir: str | Path) -> bool:
+    """Finish the move of a set that a killed process left half done; the caller holds the folder exclusively.
+
+    Returns
+    -------
+    bool
+        False when the folder holds a journal that cannot be finished (its
+        staging folder is gone), True otherwise.
+    """
+    out = Path(out_dir)
+    journal = _journal(out)
+    if journal is None:
+        return True
+    stage = out / journal["stage"] if journal["stage"] else None
+    if stage is not None and stage.is_dir():
+        try:
+            pid = int(journal["stage"][len(STAGING_PREFIX):].split("-")[0])
+        except ValueError:
+            pid = None
+        if pid is not None and pid != os.getpid() and _pid_alive(pid):
+            return True          # a live process is moving it in (a file system without locks)
+        _move_in(out, stage, journal["files"], journal["previous"])
+        shutil.rmtree(stage, ignore_errors=True)
+        return True
+    return False
+
+
+def settle(out_dir: str | Path) -> None:
+    """Before reading a set: finish a move that a killed process left half done.
+
+    Raises
+    ------
+    InputError
+        The folder holds a half-moved set that cannot be finished here (its
+        staging folder is gone, or the folder cannot be written).
+    """
+    out = Path(out_dir)
+    if not (out / PENDING).exists():
+        return
+    try:
+        with folder_lock(out, exclusive=True):
+            if finish_interrupted(out):
+                return
+    except OSError:
+        pass
+    raise InputError(str(out), PENDING, "a command was killed while moving its outputs in, and the move "
+                     "cannot be finished here; run that command again into this folder")
+
+
+def _commit(staged: StagedOutputs, command: str) -> None:
+    stage, out = staged.folder, staged.final_dir
+    refuse_other_set(out, command)        # again, under the lock: another command may have written meanwhile
+    files = sorted(str(p.relative_to(stage)) for p in stage.rglob("*") if p.is_file())
+    unfinished = _journal(out) or {"files": []}      # a move that could not be finished: its files are stale too
+    previous = sorted(set(read_manifest(out)) | set(unfinished["files"]))
+    manifest = {"tool": "aftershift", "command": command, "files": files}
+    write_atomic(stage / MANIFEST, (json.dumps(manifest, indent=2) + "\n").encode("utf-8"))
+    journal = {"stage": stage.name, "command": command, "files": files, "previous": previous}
+    write_atomic(out / PENDING, (json.dumps(journal) + "\n").encode("utf-8"))
+    with _signals_deferred():
+        _move_in(out, stage, files, previous)
+        _COMMITTED.append(str(out))
 
 
 def _prune_empty(folder: Path, top: Path) -> None:
@@ -318,6 +464,9 @@ def output_set(out_dir: str | Path, command: str):
     try:
         out.mkdir(parents=True, exist_ok=True)
         refuse_other_set(out, command)
+        if (out / PENDING).exists():
+            with folder_lock(out, exclusive=True):
+                finish_interrupted(out)     # before the killed process's staging folder is removed below
         remove_dead_folders(out, STAGING_PREFIX)
         stage = Path(tempfile.mkdtemp(prefix=f"{STAGING_PREFIX}{os.getpid()}-", dir=out))
     except OSError as exc:
@@ -330,7 +479,17 @@ def output_set(out_dir: str | Path, command: str):
     except InputError as exc:   # named where the user will look, not in the staging folder
         raise InputError(exc.source.replace(str(stage), str(out)), exc.field, exc.message) from None
     except OSError as exc:
+        if _moving(out, stage):   # cut short while moving: the staging folder stays for the next run
+            raise InputError(str(out), "--out", f"cannot be written ({exc.strerror}) while the new outputs were "
+                             "moved in; the next aftershift command into this folder finishes the move") from None
         raise InputError(str(out), "--out", f"cannot be written ({exc.strerror}); the earlier outputs "
                          "there are unchanged") from None
     finally:
-        shutil.rmtree(stage, ignore_errors=True)
+        if not _moving(out, stage):
+            shutil.rmtree(stage, ignore_errors=True)
+
+
+def _moving(out: Path, stage: Path) -> bool:
+    """True when the folder's journal names ``stage``: its move began and did not end."""
+    journal = _journal(out)
+    return journal is not None and journal["stage"] == stage.name

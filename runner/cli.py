@@ -613,7 +613,11 @@ def _interrupted_line(command: str | None, exc: BaseException) -> str:
     how = "stopped by SIGTERM" if isinstance(exc, Terminated) else "interrupted"
     if command in ("run", "simulate"):
         return f"{how}; every completed trial is in the log; continue with --resume"
-    if command in ("fit", "compare", "plan"):
+    if command in ("fit", "compare", "plan", "recover"):
+        from fitting.outputs import committed
+
+        if committed():   # the signal came while the set was moved in, and waited for it to be complete
+            return f"{how} after its outputs were written in full to {committed()[-1]}"
         return f"{how}; nothing was half-written (earlier results in --out are unchanged)"
     return how
 

@@ -597,6 +597,91 @@ def test_staging_folder_of_a_killed_fit_is_removed_by_the_next(capsys, tmp_path,
     assert not left.exists() and leftovers(out) == []
 
 
+_MOVE_DRIVER = """
+import os, signal, sys
+import fitting.outputs as o
+from runner.cli import console
+how, after = sys.argv[1], int(sys.argv[2])
+real, done = o.os.replace, [0]
+def replace(src, dst):
+    real(src, dst)
+    done[0] += "/.staging-" in str(src) and "/.staging-" not in str(dst)    # a staged file moved in
+    if done[0] == after:
+        if how == "kill":
+            os._exit(137)                        # as kill -9 leaves it: no clean-up at all
+        os.kill(os.getpid(), signal.SIGTERM)     # SIGTERM in the middle of the move
+o.os.replace = replace
+sys.argv = ["aftershift"] + sys.argv[3:]
+sys.exit(console())
+"""
+
+
+def _files(folder: Path) -> dict:
+    return {str(p.relative_to(folder)): p.read_bytes() for p in folder.rglob("*") if p.is_file()}
+
+
+def _fit_moved_with(how: str, tmp_path: Path, whole: Path):
+    import subprocess
+    import sys
+
+    out, clean = tmp_path / "moved" / "fit", tmp_path / "clean" / "fit"   # one name: the pages name the folder
+    args = ["fit", str(whole), "--bootstrap", "0", "--no-figures", "--out", "fit"]
+    for folder, seed in ((out, "1"), (clean, "2")):
+        folder.parent.mkdir(parents=True)
+        assert subprocess.run([sys.executable, "-m", "runner.cli", *args, "--seed", seed],
+                              cwd=folder.parent, capture_output=True).returncode == 0
+    proc = subprocess.run([sys.executable, "-c", _MOVE_DRIVER, how, "4", *args, "--seed", "2"], cwd=out.parent,
+                          capture_output=True, text=True)
+    return proc, out, clean
+
+
+def test_a_fit_killed_while_moving_its_set_in_is_finished_by_the_next_reader(capsys, tmp_path, whole,
+                                                                              monkeypatch):
+    # kill -9 between two renames left a mix of the earlier and the new fit's tables (a hostile-user sweep
+    # found it); the journal lets compare (or the next fit) finish the move, so the folder is the new set
+    from fitting.outputs import PENDING
+
+    proc, out, clean = _fit_moved_with("kill", tmp_path, whole)
+    assert proc.returncode == 137 and (out / PENDING).exists()
+    assert _files(out) != _files(clean) | {PENDING: (out / PENDING).read_bytes()}    # a mix, until settled
+    gone = tmp_path / "gone" / "fit"
+    shutil.copytree(out, gone, symlinks=True)
+    pred = tmp_path / "pred.csv"
+    pred.write_text("lag,adapter_offset_deg,pse_shift_deg\n0,-30,-2\n0,30,2\n2,-30,-1\n2,30,1\n")
+    assert cli(capsys, "compare", out, pred, "--out", tmp_path / "cmp")[0] == 0
+    assert _files(out) == _files(clean) and leftovers(out) == []
+    # with its staging folder gone the move cannot be finished: a reader refuses in one line, a new fit replaces
+    out = gone
+    for stage in out.glob(".staging-*"):
+        shutil.rmtree(stage)
+    code, err = cli(capsys, "compare", out, pred, "--out", tmp_path / "cmp2")
+    assert code == 2 and PENDING in one_line(err) and "run that command again" in err
+    monkeypatch.chdir(out.parent)
+    assert cli(capsys, "fit", whole, "--out", "fit", "--bootstrap", "0", "--no-figures", "--seed", "2")[0] == 0
+    assert _files(out) == _files(clean) and leftovers(out) == []
+
+
+def test_sigterm_while_a_set_is_moved_in_waits_for_the_whole_set(tmp_path, whole):
+    from fitting.outputs import PENDING
+
+    proc, out, clean = _fit_moved_with("term", tmp_path, whole)
+    assert proc.returncode == 130, proc.stderr
+    assert one_line(proc.stderr) == "aftershift fit: stopped by SIGTERM after its outputs were written in full to fit"
+    assert _files(out) == _files(clean) and not (out / PENDING).exists() and leftovers(out) == []
+
+
+def test_a_manifest_cannot_remove_files_through_a_linked_folder(capsys, tmp_path, whole):
+    out, victim = tmp_path / "fit", tmp_path / "victim"
+    victim.mkdir()
+    (victim / "notes.txt").write_text("not the fit's")
+    assert cli(capsys, "fit", whole, "--out", out, "--bootstrap", "0", "--no-figures")[0] == 0
+    (out / "lnk").symlink_to(victim)
+    manifest = json.loads((out / "outputs.json").read_text())
+    (out / "outputs.json").write_text(json.dumps({**manifest, "files": manifest["files"] + ["lnk/notes.txt"]}))
+    assert cli(capsys, "fit", whole, "--out", out, "--bootstrap", "0", "--no-figures")[0] == 0
+    assert (victim / "notes.txt").read_text() == "not the fit's"
+
+
 def test_replicates_that_would_not_fit_in_memory_are_refused():
     from fitting.bootstrap import check_replicate_memory
     from fitting.errors import InputError
