@@ -219,13 +219,16 @@ def match_predictions(measured: pd.DataFrame, predictions: pd.DataFrame, source:
         pred_sd.append((np.nan, np.nan))
     if missing:
         unique = sorted(set(missing), key=missing.index)
+        shown = ", ".join(unique[:6]) + (f" and {len(unique) - 6} more" if len(unique) > 6 else "")
         hint = "" if interpolate else " (or pass --interpolate to interpolate over offsets)"
-        raise InputError(source, "lag/adapter_offset_deg", f"no prediction for {', '.join(unique)}{hint}")
+        raise InputError(source, "lag/adapter_offset_deg", f"no prediction for {shown}{hint}")
     out["predicted_deg"] = [p for p, _ in pred_sd]
     out["prediction_sd_deg"] = [s for _, s in pred_sd]
     return out
 
 
+#: Bootstrap replicates behind the χ² measurements of ``benchmarks/bench_coverage.py`` (``fit``'s default).
+CALIBRATED_REPLICATES = 1000
 #: How far to trust the χ² p-values: measured by ``benchmarks/bench_coverage.py`` (benchmarks/README.md).
 CHI2_CAVEAT = ("chi2 p-values: with the true after-effect curve as the prediction, simulated single observers were "
                "rejected at the 5 % level in 4.8-6.3 % of cases with up-down tracks and 3.9-5.3 % with Bayesian tracks "
@@ -430,12 +433,16 @@ class Comparison:
         overall = self.table[self.table["lag"] == "all"]
         lines = ["agreement with predictions (all lags):"]
         for _, row in overall.iterrows():
+            start = f"  {row['observer']:>8}: RMSE {row['rmse_deg']:.2f} deg, r {_shown(row['pearson_r'])}"
             if not np.isfinite(row["inside_ci_fraction"]):
-                lines.append(f"  {row['observer']:>8}: RMSE {row['rmse_deg']:.2f} deg, r {row['pearson_r']:.2f}; "
-                             "no interval statistics (see note)")
+                lines.append(start + "; no interval statistics (see note)")
+                continue
+            if not (np.isfinite(row["gain"]) and np.isfinite(row["chi2"])):
+                lines.append(start + f", {row['inside_ci_fraction']:.0%} of predictions inside the 95% CIs; "
+                             f"no gain or chi2 (unweighted gain {_shown(row['gain_unweighted'])}; see note)")
                 continue
             lines.append(
-                f"  {row['observer']:>8}: RMSE {row['rmse_deg']:.2f} deg, r {row['pearson_r']:.2f}, "
+                start + ", "
                 f"gain {row['gain']:.2f} [{row['gain_ci_low']:.2f}, {row['gain_ci_high']:.2f}] "
                 f"(unweighted {row['gain_unweighted']:.2f}), "
                 + _chi2_text(row) + ", "
@@ -444,6 +451,62 @@ class Comparison:
                 + ("; descriptive only (fewer than 3 observers)" if row["descriptive"] else "")
             )
         return "\n".join(lines + [f"note: {n}" for n in (*self.notes, CHI2_CAVEAT)])
+
+
+def unused_predictions(measured: pd.DataFrame, predictions: pd.DataFrame, interpolate: bool) -> tuple[str, ...]:
+    """A note on predicted points that no measured after-effect uses (empty when every one is used).
+
+    A lag the fit lacks is never used; with ``interpolate`` an offset of a
+    measured lag may still serve to interpolate, so only lags are counted.
+    """
+    lags = set(measured["lag"].astype(float))
+    pairs = {(float(lag), float(o)) for lag, o in zip(measured["lag"], measured["adapter_offset_deg"])}
+    unused = [(float(lag), float(o)) for lag, o in zip(predictions["lag"], predictions["adapter_offset_deg"])
+              if float(lag) not in lags or (not interpolate and not any(
+                  lag == m_lag and np.isclose(o, m_o) for m_lag, m_o in pairs))]
+    if not unused:
+        return ()
+    shown = ", ".join(f"lag {lag:g} offset {o:+g}" for lag, o in unused[:4]) + (
+        f" and {len(unused) - 4} more" if len(unused) > 4 else "")
+    return (f"{len(unused)} predicted point{'s' if len(unused) > 1 else ''} match no measured after-effect and "
+            f"{'are' if len(unused) > 1 else 'is'} not used: {shown}",)
+
+
+def few_replicates(cov_table: pd.DataFrame | None) -> tuple[set, tuple[str, ...]]:
+    """Observers whose shifts' covariance rests on too few bootstrap replicates, and notes saying so.
+
+    With no more replicates than shifts + 2 the covariance is singular and
+    its corrected inverse (Hartlap et al. 2007) undefined, so gain and χ²
+    would be noise: those observers (and the group, whose χ² p is drawn from
+    the observers' covariances) are returned, to be left out.  Below the
+    replicates the χ² was measured with the statistics are kept, with a
+    caution.
+    """
+    if cov_table is None or "replicates" not in cov_table:
+        return set(), ()
+    by_observer = cov_table.groupby("observer", sort=False)
+    reps = pd.to_numeric(by_observer["replicates"].first(), errors="coerce")
+    shifts = (by_observer.size() ** 0.5).round().astype(int)
+    blank = {o for o, r in reps.items() if np.isfinite(r) and r <= shifts[o] + 2}
+    noisy = [o for o, r in reps.items() if np.isfinite(r) and o not in blank and r < CALIBRATED_REPLICATES]
+    notes = []
+    if blank:
+        shown = sorted(blank, key=list(reps.index).index)
+        notes.append(f"{', '.join(map(str, shown))}: the shifts' covariance rests on "
+                     f"{reps[shown[0]]:g} bootstrap replicates, no more than the shifts + 2, so it is singular; gain "
+                     f"and chi2 are left out{' (the group' + chr(39) + 's with them)' if GROUP in reps.index else ''}: "
+                     f"fit again with --bootstrap {CALIBRATED_REPLICATES}")
+        blank.add(GROUP)
+    if noisy:
+        notes.append(f"{', '.join(map(str, noisy))}: the shifts' covariance rests on {reps[noisy[0]]:g} bootstrap "
+                     f"replicates; chi2 and gain were checked with {CALIBRATED_REPLICATES} and swing with fewer "
+                     f"(fit again with --bootstrap {CALIBRATED_REPLICATES} before reading p)")
+    return blank, tuple(notes)
+
+
+def _shown(value) -> str:
+    """A statistic with two decimals, or "undefined" (r of constant predictions, gain of all-zero ones)."""
+    return f"{value:.2f}" if np.isfinite(value) else "undefined"
 
 
 def _chi2_text(row) -> str:
@@ -597,16 +660,18 @@ def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figure
     if cov_table is not None:
         _check_covariance_labels(cov_table, cov_path)
     rows, fallback = [], ()
+    too_few, replicate_notes = few_replicates(cov_table)
     for observer, group in points.groupby("observer", sort=False):
         parts = [(f"{lag:g}", g) for lag, g in group.groupby("lag")] + [("all", group)]
+        usable = cov_table is not None and observer not in too_few
         simulated = (_simulated_group_tests(points, cov_table, group, [g.index for _, g in parts])
-                     if observer == GROUP and cov_table is not None else None)
-        if observer == GROUP and cov_table is not None and simulated is None:
+                     if observer == GROUP and usable else None)
+        if observer == GROUP and usable and simulated is None:
             fallback = (f"{GROUP}: the observers' own rows or their covariances in {COVARIANCE_FILE} are not all "
                         "there, so the group's chi2 p is read from chi2(n), which rejects true predictions too often "
                         "with few observers",)
         for (lag, g), calibrated in zip(parts, simulated or [None] * len(parts)):
-            found = (NO_COVARIANCE if cov_table is None else
+            found = (NO_COVARIANCE if not usable else
                      covariance_matrix(cov_table, observer, g["lag"], g["adapter_offset_deg"]))
             if found.matrix is not None:
                 _check_covariance(found.matrix, cov_path, observer)
@@ -622,7 +687,10 @@ def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figure
                                              .str.contains("descriptive").any())})
     _group_gain_from_observers(rows)
     table = pd.DataFrame(rows, columns=AGREEMENT_COLUMNS)
-    notes = _leave_out_interval_statistics(points, table) + _reduced_rank_notes(table) + fallback
+    table.loc[table["observer"].isin(too_few), ["gain", "gain_ci_low", "gain_ci_high", "chi2", "chi2_p",
+                                                "chi2_reference"]] = np.nan
+    notes = (_leave_out_interval_statistics(points, table) + replicate_notes
+             + _reduced_rank_notes(table) + fallback + unused_predictions(measured, predictions, interpolate))
     with output_set(out_dir, "compare") as staged:
         out = staged.folder
         write_text(out / "agreement.csv", table.to_csv(index=False, float_format="%.6g", lineterminator="\n"))

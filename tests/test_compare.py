@@ -11,6 +11,8 @@ from fitting.compare import agreement, compare_results
 from fitting.population import ChannelModel, predict_table
 from runner.cli import main
 
+from conftest import ROOT
+
 Z = stats.norm.ppf(0.975)
 
 
@@ -90,6 +92,51 @@ def test_mismatched_grids_list_what_is_missing(tmp_path, capsys):
     code = main(["compare", str(results), str(tmp_path / "pred.csv"), "--out", str(tmp_path / "o"), "--interpolate"])
     err = capsys.readouterr().err
     assert code == 2 and "lag 2 offset +30" in err and "offset +15" not in err
+
+
+def test_unused_predictions_are_named_and_long_lists_are_cut(tmp_path, capsys):
+    rows = [("S1", 0, d, 0.0, -1.0, 1.0, 40) for d in (-30, 30)]
+    results = _measured(tmp_path, rows)
+    pred = pd.DataFrame({"lag": [0, 0, 0, 7], "adapter_offset_deg": [-30, 30, 45, 30],
+                         "pse_shift_deg": [-1, 1, 1.5, 0.2]})
+    pred.to_csv(tmp_path / "pred.csv", index=False)
+    assert main(["compare", str(results), str(tmp_path / "pred.csv"), "--out", str(tmp_path / "o")]) == 0
+    out = capsys.readouterr().out
+    assert "note: 2 predicted points match no measured after-effect and are not used: lag 0 offset +45, " \
+           "lag 7 offset +30" in out
+    # a prediction table for another design: the one-line error names the first few points, not all
+    rows = [("S1", lag, d, 0.0, -1.0, 1.0, 40) for lag in range(3) for d in (-60, -30, -15, 15, 30, 60)]
+    results = _measured(tmp_path, rows)
+    assert main(["compare", str(results), str(tmp_path / "pred.csv"), "--out", str(tmp_path / "o2")]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "lag 1 offset -30 and 10 more (or pass" in err, err
+
+
+@pytest.mark.slow
+def test_gain_and_chi2_are_left_out_when_the_covariance_rests_on_too_few_replicates(tmp_path, capsys):
+    # 32 shifts need more than 34 replicates for a non-singular covariance (Hartlap et al. 2007, A&A 464, 399,
+    # for the corrected inverse); with 20 the statistics were noise (chi2 -6.7e6, gain nan printed as numbers)
+    logs = tmp_path / "logs"     # the demo's logs without their sidecars: a fixed-level bootstrap, quicker
+    logs.mkdir()
+    for log in (ROOT / "results_demo" / "logs").glob("*.trials.csv"):
+        (logs / log.name).write_bytes(log.read_bytes())
+    pred = ROOT / "results_demo" / "predictions_population_model.csv"
+    for boot, left_out in (("20", True), ("40", False)):
+        fit = tmp_path / f"fit{boot}"
+        assert main(["fit", str(logs), "--out", str(fit), "--bootstrap", boot, "--no-figures"]) == 0
+        capsys.readouterr()
+        assert main(["compare", str(fit), str(pred), "--out", str(tmp_path / f"cmp{boot}")]) == 0
+        out, err = capsys.readouterr()
+        assert "Warning" not in err, err
+        table = pd.read_csv(tmp_path / f"cmp{boot}" / "agreement.csv")
+        assert table["chi2"].isna().all() == left_out and table["gain"].isna().all() == left_out
+        assert table["gain_unweighted"].notna().all() and table["inside_ci_fraction"].notna().all()
+        if left_out:
+            assert "sim01, sim02, sim03: the shifts' covariance rests on 20 bootstrap replicates" in out
+            assert out.count("no gain or chi2") == 4 and " nan" not in out
+        else:
+            assert (table["chi2"] > 0).all()
+            assert "rests on 40 bootstrap replicates; chi2 and gain were checked with 1000" in out
 
 
 def test_bad_prediction_files_are_one_line_errors(tmp_path, capsys):
