@@ -31,6 +31,7 @@ replicates.  Captions name only what the figure draws.
 
 from __future__ import annotations
 
+import hashlib
 import os
 import re
 import signal
@@ -74,8 +75,18 @@ def pyplot():
 
 
 def safe_name(text: str) -> str:
-    """File-name-safe form of an observer ID."""
-    return re.sub(r"[^A-Za-z0-9_-]+", "_", str(text)) or "observer"
+    """File-name-safe form of an observer ID, different for different IDs.
+
+    An ID of ASCII letters, digits, ``_`` and ``-`` is kept as it is.  In any
+    other the rest becomes ``_`` and a short digest of the whole ID is
+    appended, so that "a b" and "a_b", or "Ö1" and "Ä1", name different
+    files (they overwrote each other's figures before).
+    """
+    text = str(text)
+    if re.fullmatch(r"[A-Za-z0-9_-]+", text):
+        return text
+    cleaned = re.sub(r"[^A-Za-z0-9_-]+", "_", text).strip("_") or "observer"
+    return f"{cleaned}-{hashlib.sha1(text.encode('utf-8')).hexdigest()[:8]}"
 
 
 def _lag_colour(i: int) -> str:

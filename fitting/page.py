@@ -164,7 +164,7 @@ def _figure(path: Path, page_dir: Path, wide: bool = False) -> str:
 
 def _figures_of(fit_dir: Path, tag: str) -> list[Path]:
     found = [p for folder in (fit_dir, fit_dir / "figures") if folder.is_dir()
-             for p in sorted(folder.glob(f"*_{tag}.png"))]
+             for p in sorted(folder.glob(f"*_{tag}.png")) if p.stem.split("_", 1)[1] == tag]   # not x_{tag}'s
     order = list(FIGURE_CAPTIONS)
     return sorted(found, key=lambda p: (order.index(p.stem.split("_", 1)[0])
                                         if p.stem.split("_", 1)[0] in order else len(order), p.name))

@@ -152,3 +152,20 @@ def test_an_unwritable_figure_folder_is_one_input_error(wide_fit, tmp_path):
     blocker.write_text("not a folder")
     with pytest.raises(InputError, match="--out"):
         figures.make_figures(wide_fit.analyses, None, blocker / "figures", formats=("png",), jobs=1)
+
+
+def test_observers_whose_names_differ_only_in_unsafe_characters_get_their_own_figures(tmp_path):
+    # "a b" and "a_b" (or "Ö1" and "Ä1") were both written as *_a_b.png, one observer's figures over the other's
+    names = ("a b", "a_b", "Ö1", "Ä1", "x_a_b")
+    trials = pd.concat([simulate_trials(ObserverModel(), offsets=(-30.0, 30.0), lags=(0,), trials_per_track=8,
+                                        seed=i, observer=name) for i, name in enumerate(names)])
+    fit = fit_trials(prepare_trials(trials), n_boot=0, seed=1, progress=False)
+    written = figures.make_figures(fit.analyses, None, tmp_path, formats=("png",), jobs=1)
+    per_observer = [p for p in written if p.split("/")[-1].startswith("psychometric_")]
+    assert len(per_observer) == len(set(per_observer)) == len(names)
+    assert figures.safe_name("sim01") == "sim01" and figures.safe_name("a b") != figures.safe_name("a_b")
+    # the report finds each observer's figures by exact name: a_b's section does not show x_a_b's
+    from fitting.page import _figures_of
+
+    shown = _figures_of(tmp_path, figures.safe_name("a_b"))
+    assert shown and all(p.stem.endswith("_a_b") and not p.stem.endswith("x_a_b") for p in shown)
