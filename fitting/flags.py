@@ -20,7 +20,8 @@ spaces (empty = nothing unusual):
                      (:func:`steep_floor`, :data:`STEEP_DRAW_FRACTION`)
 ``few-trials``       fewer than :data:`MIN_TRIALS_FOR_INTERVAL` trials: no interval
 ``off-interval``     the estimate lies outside its own interval (a degenerate
-                     bootstrap distribution)
+                     bootstrap distribution, e.g. from very few replicates), or
+                     a profile interval reached it only by being stretched to it
 ``not-converged``    the optimisation stopped before converging (the point fit,
                      or more than 1 % of the bootstrap refits)
 ``model-not-converged``  a model fitted by statsmodels reported no convergence
@@ -62,6 +63,11 @@ def on_bound(estimate, low, high, bounds, rel: float = 1e-6) -> bool:
     vals = np.array([estimate, low, high], dtype=float)
     vals = vals[np.isfinite(vals)]
     return bool(np.any(np.abs(vals - lo_b) <= tol) or np.any(np.abs(vals - hi_b) <= tol))
+
+
+def off_interval(estimate, low, high) -> bool:
+    """True when finite limits do not hold the estimate."""
+    return bool(np.isfinite(low) and np.isfinite(high) and not (low <= estimate <= high))
 
 
 def steep_floor(cells, shared: bool) -> np.ndarray:

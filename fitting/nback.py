@@ -56,7 +56,7 @@ from .arrow import dense_solve
 from .bootstrap import bca_interval, percentile_interval
 from .covariance import long_table, spread_dof
 from .errors import InputError
-from .flags import MIN_TRIALS_FOR_INTERVAL, STEEP_FRACTION, flagged_first, join
+from .flags import MIN_TRIALS_FOR_INTERVAL, STEEP_FRACTION, flagged_first, join, off_interval
 from .flags import on_bound as flag_on_bound
 from .psychometric import DEFAULT_LAPSE_MAX, sigmoid_parts
 from .outputs import output_set
@@ -596,7 +596,7 @@ def _row_flags(common, est, lo, hi, bounds=None):
     words = list(common)
     if bounds is not None and flag_on_bound(est, lo, hi, bounds):
         words.append("on-bound")
-    if np.isfinite(lo) and np.isfinite(hi) and not (lo <= est <= hi):
+    if off_interval(est, lo, hi):
         words.append("off-interval")
     return join(words)
 

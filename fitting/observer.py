@@ -42,7 +42,7 @@ from .aftereffect import (TAU_BOUNDS, bound_note, decay_profile_interval, fit_de
                           tuning_profile_interval)
 from .bootstrap import BootstrapResult, parametric_bootstrap, pilot_size
 from .profile import profile_pse, profile_shifts
-from .flags import MIN_TRIALS_FOR_INTERVAL, condense, join, on_bound, psychometric_flags
+from .flags import MIN_TRIALS_FOR_INTERVAL, condense, join, off_interval, on_bound, psychometric_flags
 from .progress import ProgressBar
 from .replay import replay_bootstrap, rerun_generating_parameters
 from .psychometric import DEFAULT_LAPSE_MAX, Cells, PsychometricFit, fit_cells
@@ -433,7 +433,7 @@ def analyse_observer(observer: str, trials: pd.DataFrame, opts: Options,
     lo, hi = np.where(few, np.nan, lo), np.where(few, np.nan, hi)
     cond_flags = psychometric_flags(fit, boot)
     box = zip(fit.lower[fit.layout.pse_index], fit.upper[fit.layout.pse_index])
-    cond_flags = [join(f, ["on-bound"] if on_bound(e, l, h, b) else [])
+    cond_flags = [join(f, ["on-bound"] if on_bound(e, l, h, b) else [], ["off-interval"] if off_interval(e, l, h) else [])
                   for f, e, l, h, b in zip(cond_flags, fit.pse, lo, hi, box)]
     pse = pd.DataFrame({
         "observer": observer, "condition": names,
@@ -457,6 +457,11 @@ def analyse_observer(observer: str, trials: pd.DataFrame, opts: Options,
         return analysis
     _curves(analysis, opts, shift_ci)
     return analysis
+
+
+def _stretched(estimate, low, high) -> bool:
+    """True when a limit equals the estimate: a profile interval stretched to hold it (a degenerate one)."""
+    return bool(np.isfinite(estimate) and (low == estimate or high == estimate))
 
 
 def _details(observer, conds, fit, boot, opts) -> pd.DataFrame:
@@ -528,12 +533,15 @@ def _curves(a: ObserverAnalysis, opts: Options, shift_ci=None) -> None:
         lo[:m], hi[:m] = shift_ci
     adapted = conds.iloc[model.cond_index]
     cond_flags = a.pse["flags"].to_numpy()
-    shift_flags = [join(cond_flags[c], cond_flags[model.base]) for c in model.cond_index]
+    shift_flags = [join(w for w in (cond_flags[c] + " " + cond_flags[model.base]).split() if w != "off-interval")
+                   for c in model.cond_index]
     few = np.array(["few-trials" in f for f in shift_flags])
     lo[:m], hi[:m] = np.where(few, np.nan, lo[:m]), np.where(few, np.nan, hi[:m])
     # a curve inherits the doubts of the conditions it is fitted to
     inherited = join(*(w for f in shift_flags for w in f.split()
                        if w in ("one-sided", "not-converged")))
+    shift_flags = [join(f, ["off-interval"] if off_interval(e, l, h) else [])
+                   for f, e, l, h in zip(shift_flags, est[:m], lo[:m], hi[:m])]
     a.aftereffect = pd.DataFrame({
         "observer": a.observer, "lag": adapted["lag"].astype("Int64").to_numpy(),
         "adapter_offset_deg": adapted["adapter_offset_deg"].to_numpy(),
@@ -554,12 +562,15 @@ def _curves(a: ObserverAnalysis, opts: Options, shift_ci=None) -> None:
                     known_cut.append(f"{model.lags[i]:g}")
             else:
                 profile_failed.append(f"{model.lags[i]:g}")
+        off = [off_interval(est[col], lo[col], hi[col]) or _stretched(est[col], lo[col], hi[col]),
+               off_interval(est[col + 1], lo[col + 1], hi[col + 1])]
         rows_t.append({"observer": a.observer, "lag": int(model.lags[i]),
                        "amplitude_deg": est[col], "amplitude_ci_low": lo[col],
                        "amplitude_ci_high": hi[col], "peak_offset_deg": est[col + 1],
                        "peak_offset_ci_low": lo[col + 1], "peak_offset_ci_high": hi[col + 1],
                        "flags": join(inherited, ["on-bound"] if on_bound(
-                           est[col + 1], lo[col + 1], hi[col + 1], model.peak_range) else [])})
+                           est[col + 1], lo[col + 1], hi[col + 1], model.peak_range) else [],
+                           ["off-interval"] if any(off) else [])})
         note = bound_note(f"lag {model.lags[i]:g} peak offset", est[col + 1], lo[col + 1],
                           hi[col + 1], model.peak_range, "deg")
         if note:
@@ -586,9 +597,11 @@ def _curves(a: ObserverAnalysis, opts: Options, shift_ci=None) -> None:
                              "for the profile interval)")
         ci = [(lo[col + j], hi[col + j]) for j in range(3)]
         bound = on_bound(tau, *ci[2], TAU_BOUNDS) or on_bound(w, *ci[1], model.peak_range)
+        off = off_interval(tau, *ci[2]) or (not bound and _stretched(tau, *ci[2]))
         a.decay = pd.DataFrame([{"observer": a.observer, "decay_periods": tau,
                                  "ci_low": ci[2][0], "ci_high": ci[2][1],
-                                 "flags": join(inherited, ["on-bound"] if bound else [])}],
+                                 "flags": join(inherited, ["on-bound"] if bound else [],
+                                               ["off-interval"] if off else [])}],
                                columns=DECAY_COLUMNS)
         per = a.period_s
         a.decay_detail = pd.DataFrame([{

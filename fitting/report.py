@@ -231,6 +231,10 @@ def _interval_words(o: Options, seed: int) -> str:
                                    else ", drawn at the spread and lapse corrected by a pilot that re-ran the "
                                         "adaptive tracks")
     boot = f"{o.n_boot} parametric bootstrap replicates (seed {seed}{how})"
+    resolved = math.ceil(2.0 / (1.0 - o.level) - 1e-9)    # the fewest whose extremes reach both tails
+    if 0 < o.n_boot < resolved:
+        boot += (f", too few to resolve the {50 * (1 - o.level):g}% tails (at least {resolved} needed, 1,000 "
+                 "recommended): rough intervals")
     if o.interval in ("profile", "studentized"):
         first = ("profile-likelihood" if o.interval == "profile" else "studentized bootstrap") + \
             " intervals of PSEs and shifts"

@@ -278,6 +278,32 @@ def test_flags_on_hand_made_degenerate_logs(tmp_path):
     assert "converged" in mm.columns and "flags" in mm.columns
 
 
+def test_every_estimate_outside_its_own_interval_is_flagged(tmp_path):
+    # three replicates leave degenerate intervals ([3.26, 3.26] around an amplitude of 2.97 was printed unflagged)
+    model = ObserverModel(amplitude_deg=3.0, peak_offset_deg=25.0, decay_periods=2.0)
+    df = simulate_trials(model, offsets=(-45, -15, 15, 45), lags=(0, 1, 2), trials_per_track=12, seed=3,
+                         observer="F1")
+    write_log(df, tmp_path / "f1.trials.csv")
+    fit_logs([str(tmp_path / "f1.trials.csv")], str(tmp_path / "out"), n_boot=3, seed=1, figures=False,
+             progress=False)
+    columns = {"pse.csv": [("pse_deg", "pse_ci_low", "pse_ci_high")],
+               "aftereffect.csv": [("pse_shift_deg", "ci_low", "ci_high")],
+               "tuning.csv": [("amplitude_deg", "amplitude_ci_low", "amplitude_ci_high"),
+                              ("peak_offset_deg", "peak_offset_ci_low", "peak_offset_ci_high")],
+               "decay.csv": [("decay_periods", "ci_low", "ci_high")]}
+    off = 0
+    for name, triples in columns.items():
+        table = pd.read_csv(tmp_path / "out" / name, dtype={"flags": str})
+        flags = table["flags"].fillna("")
+        for est, low, high in triples:
+            outside = (table[est] < table[low]) | (table[est] > table[high])
+            assert flags[outside].str.contains("off-interval").all(), (name, table[outside])
+            off += int(outside.sum())
+    assert off > 0     # three replicates do leave estimates outside their intervals
+    text = (tmp_path / "out" / "summary.txt").read_text()
+    assert "3 parametric bootstrap replicates" in text and "too few to resolve the 2.5% tails (at least 40" in text
+
+
 def test_flag_words_and_condensed_messages():
     assert join("steep on-bound", ["one-sided"], "") == "one-sided on-bound steep"
     with pytest.raises(ValueError):
