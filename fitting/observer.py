@@ -492,7 +492,7 @@ def _model_test(observer, fit, alt, boot, opts) -> pd.DataFrame:
            "sigmoid": fit.sigmoid, "lapse": fit.lapse,
            "lapse_on_bound": fit.lapse_at_bound, "loglik": fit.loglik,
            "deviance": fit.deviance, "dof": fit.dof, "converged": fit.converged,
-           "gof_p": boot.gof_p if boot is not None else np.nan,
+           "gof_p": boot.gof_p if boot is not None and fit.dof > 0 else np.nan,   # no test without df left
            "replicates": boot.n_boot if boot is not None else 0,
            "replicates_converged": float(boot.converged.mean()) if boot is not None else np.nan,
            "replicates_lapse_on_bound": (float(boot.at_bound[:, fit.layout.lapse_index].mean())

@@ -137,7 +137,9 @@ class FitReport:
                          f"{int(t['n_conditions'])} conditions")
             jnd = float(np.median(a.fit.jnd))
             lines.append(f"  lapse {a.fit.lapse:.3f}; spread {np.median(a.fit.spread):.2f} deg "
-                         f"(JND {jnd:.2f} deg); deviance {t['deviance']:.1f} on {int(t['dof'])} df"
+                         f"(JND {jnd:.2f} deg); " + (
+                             f"deviance {t['deviance']:.1f} on {int(t['dof'])} df" if t["dof"] > 0 else
+                             "no goodness of fit (no more cells of trials than fitted parameters)")
                          + (f", bootstrap goodness-of-fit p = {t['gof_p']:.3f}" if np.isfinite(t["gof_p"]) else ""))
             if np.isfinite(t["spread_lrt_stat"]):
                 lines.append(f"  spread per condition vs shared: LR = {t['spread_lrt_stat']:.2f} on "

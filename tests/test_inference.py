@@ -304,6 +304,18 @@ def test_every_estimate_outside_its_own_interval_is_flagged(tmp_path):
     assert "3 parametric bootstrap replicates" in text and "too few to resolve the 2.5% tails (at least 40" in text
 
 
+def test_a_fit_without_degrees_of_freedom_reports_no_goodness_of_fit(tmp_path):
+    # one trial: the deviance had -2 df and a bootstrap "goodness-of-fit p = 0.020" was printed
+    df = simulate_trials(ObserverModel(), offsets=(30,), lags=(0,), trials_per_track=4, seed=3, observer="O1")
+    write_log(df.iloc[:1], tmp_path / "o1.trials.csv")
+    fit_logs([str(tmp_path / "o1.trials.csv")], str(tmp_path / "out"), n_boot=50, seed=1, figures=False,
+             progress=False)
+    tests = pd.read_csv(tmp_path / "out" / "model_tests.csv")
+    assert tests.loc[0, "dof"] <= 0 and np.isnan(tests.loc[0, "gof_p"])
+    text = (tmp_path / "out" / "summary.txt").read_text()
+    assert "no goodness of fit (no more cells of trials than fitted parameters)" in text and "-2 df" not in text
+
+
 def test_flag_words_and_condensed_messages():
     assert join("steep on-bound", ["one-sided"], "") == "one-sided on-bound steep"
     with pytest.raises(ValueError):
