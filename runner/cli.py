@@ -81,7 +81,7 @@ def _light(protocol) -> dict | None:
 def cmd_check(args) -> int:
     from runner import safety
     from runner.light import light_plan
-    from runner.overview import check_size, describe, duration_words, session_size
+    from runner.overview import check_size, describe, duration_words, long_session_caution, session_size
 
     protocol, _ = _load(args.protocol, size_check=False)
     trials, seconds = session_size(protocol)
@@ -93,6 +93,9 @@ def cmd_check(args) -> int:
         print("\n".join(describe_stream(protocol)))
     else:
         print("\n".join(describe(protocol)))
+    caution = long_session_caution(seconds)
+    if caution:
+        print(caution)
     if light_plan(protocol) is not None:
         print()
         print("\n".join(light_plan(protocol).check_lines()))

@@ -122,6 +122,23 @@ def duration_words(seconds: float) -> str:
     return "under a minute" if seconds < 60 else f"about {seconds / 60:.0f} min"
 
 
+#: Sessions longer than this (s) get the long-session caution in ``check`` (common practice, no source).
+LONG_SESSION_S = 45 * 60
+#: Longer than this (s) and the caution asks for several sittings outright (common practice, no source).
+SITTING_S = 2 * 3600
+
+
+def long_session_caution(seconds: float) -> str:
+    """``check``'s caution for a long session in a darkened room; empty for a short one."""
+    if seconds <= LONG_SESSION_S:
+        return ""
+    split = ("split it over several sittings" if seconds > SITTING_S else
+             "consider splitting it over sittings")
+    return (f"caution    {duration_words(seconds)} in a darkened room is tiring and can disorient: keep "
+            f"the breaks, stay with the observer, stop at once if they feel unwell, {split} (Escape at a break, "
+            "then --resume), and keep to your ethics board's limits")
+
+
 def duration_line(seconds: float, breaks: int) -> str:
     """The plan's duration line, with the assumptions behind the estimate."""
     return (f"duration   {duration_words(seconds)} including {breaks} break{'s' if breaks != 1 else ''} "

@@ -753,7 +753,14 @@ class Screening:
         lines.append(f"  on/off flicker at 3-60 Hz: {f'{self.flicker_hz:.3g} Hz' if self.flicker_hz else 'none'}")
         lines += [f"  - {r}" for r in self.reasons]
         lines += [f"  - {n}" for n in self.notes]
-        if not self.passed:
+        if self.passed:
+            lines.append("  caution: passing does not make a protocol safe for everyone: people with a history of "
+                         "photosensitive epilepsy, seizures or migraine triggered by flicker should not take part; "
+                         "follow your ethics board and clinical advice")
+        else:
+            lines.append("  caution: flashes like these can trigger seizures in people with photosensitive epilepsy "
+                         "and migraine in others; run it only after your ethics board has reviewed it, exclude "
+                         "people with such a history, let anyone stop at any time, and follow clinical advice")
             lines.append(f"  to run anyway after review, pass {ACKNOWLEDGE_OPTION}")
         return lines
 

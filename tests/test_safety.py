@@ -39,6 +39,7 @@ from runner.protocol import (
 
 HERE = Path(__file__).parent
 FLICKER_15HZ = HERE / "data" / "safety_flicker_15hz.toml"
+PROTOCOLS = HERE.parent / "protocols"
 SHIPPED = HERE.parent / "protocols" / "offset_by_lag.toml"
 HZ = 60.0
 
@@ -294,6 +295,24 @@ def test_check_command_exits_3_for_the_15_hz_protocol(capsys):
     err = capsys.readouterr().err.strip()
     assert "refused for safety" in err and safety.ACKNOWLEDGE_OPTION in err and "\n" not in err
     assert main(["check", str(FLICKER_15HZ), safety.ACKNOWLEDGE_OPTION]) == 0
+    # the printed screening carries the usual caution, refused or reviewed, and defers to the ethics board
+    out = capsys.readouterr().out
+    assert "can trigger seizures in people with photosensitive epilepsy" in out and "ethics board" in out
+
+
+def test_check_cautions_about_long_sessions_in_the_dark(capsys, tmp_path):
+    from runner.cli import main
+
+    long_one = tmp_path / "long.toml"
+    long_one.write_text(PROTOCOLS.joinpath("pilot_short.toml").read_text().replace(
+        "trials_per_track = 12", "trials_per_track = 400"))
+    for protocol, cautioned in ((PROTOCOLS / "pilot_short.toml", False), (PROTOCOLS / "offset_by_lag.toml", True),
+                                (long_one, True)):
+        assert main(["check", str(protocol)]) == 0
+        out = capsys.readouterr().out
+        assert ("in a darkened room is tiring" in out) == cautioned, protocol
+        assert ("split it over several sittings" in out) == (protocol == long_one)
+        assert "should not take part; follow your ethics board and clinical advice" in out    # screening passed
 
 
 def test_same_timing_with_sparse_dots_reports_the_flicker_but_passes():
