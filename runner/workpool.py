@@ -129,7 +129,7 @@ class LocalPool:
         pool = ProcessPoolExecutor(size, mp_context=ctx, initializer=_worker_start)
         finished = False
         try:
-            pending = {pool.submit(fn, task): key for key, task in tasks.items()}
+            pending = {_submit(pool, fn, task): key for key, task in tasks.items()}
             while pending:
                 done, _ = wait(pending, return_when=FIRST_COMPLETED)
                 for future in done:
@@ -139,7 +139,7 @@ class LocalPool:
                     except BrokenProcessPool:
                         raise WorkerLost("a local worker process died (killed, or out of memory)") from None
                     if then is not None:
-                        pending.update({pool.submit(f2, t2): k for k, (f2, t2) in then(key, result).items()})
+                        pending.update({_submit(pool, f2, t2): k for k, (f2, t2) in then(key, result).items()})
                     yield key, result
             finished = True
         finally:
@@ -149,6 +149,18 @@ class LocalPool:
 
     def close(self) -> None:
         """Nothing to release (processes live only inside :meth:`map_unordered`)."""
+
+
+def _submit(pool: ProcessPoolExecutor, fn: Callable, task):
+    """``pool.submit(fn, task)``; a pool that can no longer start workers is a lost worker.
+
+    The pool starts its workers as tasks arrive, through the forkserver; if
+    that process was killed, starting one fails with an end of file.
+    """
+    try:
+        return pool.submit(fn, task)
+    except (BrokenProcessPool, EOFError, ConnectionError) as exc:
+        raise WorkerLost("the process that starts local workers died (killed, or out of memory)") from exc
 
 
 def _start_server(preload: tuple[str, ...]):

@@ -312,3 +312,24 @@ def test_study_tasks_fit_with_the_pilot_that_reruns_the_tracks(monkeypatch):
     (track_use, notes), = seen
     assert track_use == "pilot"
     assert not any("levels fixed" in n for ns in notes.values() for n in ns), notes
+
+
+def test_a_killed_worker_starter_is_one_lost_worker_not_a_traceback(tmp_path, monkeypatch):
+    # kill -9 of the forkserver while a pool asked it for a worker ended in a 52-line EOFError traceback
+    import multiprocessing.forkserver as forkserver
+    import threading
+    from concurrent.futures import ProcessPoolExecutor
+
+    from runner import workpool
+
+    (tmp_path / "slow_to_import.py").write_text("import time\ntime.sleep(3)\n")
+    monkeypatch.setenv("PYTHONPATH", os.pathsep.join([str(tmp_path), os.environ.get("PYTHONPATH", "")]))
+    workpool._stop_server()                                 # a new server, which imports the slow module
+    ctx = workpool._start_server(("slow_to_import",))      # the server is still importing when killed
+    threading.Timer(0.5, os.kill, (forkserver._forkserver._forkserver_pid, signal.SIGKILL)).start()
+    pool = ProcessPoolExecutor(1, mp_context=ctx)
+    try:
+        with pytest.raises(workpool.WorkerLost, match="the process that starts local workers died"):
+            workpool._submit(pool, abs, -1)
+    finally:
+        pool.shutdown(wait=False, cancel_futures=True)
