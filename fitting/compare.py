@@ -690,7 +690,9 @@ def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figure
     table.loc[table["observer"].isin(too_few), ["gain", "gain_ci_low", "gain_ci_high", "chi2", "chi2_p",
                                                 "chi2_reference"]] = np.nan
     notes = (_leave_out_interval_statistics(points, table) + replicate_notes
-             + _reduced_rank_notes(table) + fallback + unused_predictions(measured, predictions, interpolate))
+             + _reduced_rank_notes(table) + fallback + unused_predictions(measured, predictions, interpolate)
+             + (() if results.is_dir() else ("no report page: it is made when the fit's folder is given, not one "
+                                               "of its tables",)))
     with output_set(out_dir, "compare") as staged:
         out = staged.folder
         write_text(out / "agreement.csv", table.to_csv(index=False, float_format="%.6g", lineterminator="\n"))

@@ -66,7 +66,7 @@ def test_prediction_sd_enters_the_chi2():
     assert with_sd.chi2 == pytest.approx(1.0)
 
 
-def test_compare_writes_agreement_per_lag_and_overall(tmp_path):
+def test_compare_writes_agreement_per_lag_and_overall(tmp_path, capsys):
     rows = [("S1", lag, d, 0.0, -1.0, 1.0, 40) for lag in (0, 1) for d in (-30, 30)]
     results = _measured(tmp_path, rows)
     pred = pd.DataFrame({"lag": [0, 0, 1, 1], "adapter_offset_deg": [-30, 30, -30, 30], "pse_shift_deg": [-0.5, 0.5, -2, 2]})
@@ -77,6 +77,11 @@ def test_compare_writes_agreement_per_lag_and_overall(tmp_path):
     assert list(table["lag"].astype(str)) == ["0", "1", "all"]
     assert table.loc[0, "inside_ci_fraction"] == 1.0 and table.loc[1, "inside_ci_fraction"] == 0.0
     assert (out / "comparison.png").exists() and (out / "comparison.pdf").exists()
+    # given one table rather than the fit's folder there is no page to add the comparison to: it says so
+    capsys.readouterr()
+    assert main(["compare", str(results / "aftereffect.csv"), str(tmp_path / "pred.csv"), "--out", str(out)]) == 0
+    assert "note: no report page: it is made when the fit's folder is given" in capsys.readouterr().out
+    assert not (out / "report.html").exists()
 
 
 def test_mismatched_grids_list_what_is_missing(tmp_path, capsys):
