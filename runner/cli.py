@@ -82,6 +82,7 @@ def cmd_check(args) -> int:
     from runner import safety
     from runner.light import light_plan
     from runner.overview import check_size, describe, duration_words, long_session_caution, session_size
+    from runner.screens import screen_texts
 
     protocol, _ = _load(args.protocol, size_check=False)
     trials, seconds = session_size(protocol)
@@ -100,6 +101,7 @@ def cmd_check(args) -> int:
         print()
         print("\n".join(light_plan(protocol).check_lines()))
         _light(protocol)
+    screen_texts(protocol, safety.caution_text(protocol, args.protocol), args.protocol)  # lab texts, as `run` reads them
     result = safety.screen_protocol(protocol)
     print()
     print("\n".join(result.summary_lines()))

@@ -60,13 +60,21 @@ def test_run_refuses_an_existing_session_before_opening_the_display(tmp_path):
     assert (tmp_path / "p01-s1.trials.csv").read_bytes() == before
 
 
-def test_run_refuses_a_bad_instructions_file_before_opening_the_display(tmp_path):
+def test_run_and_check_refuse_a_bad_lab_text_before_opening_the_display(tmp_path):
     protocol = tmp_path / "p.toml"
     protocol.write_text((PROTOCOLS / "pilot_short.toml").read_text() + '\n[screens]\ninstructions_file = "nope.txt"\n')
     done = run_cli("run", protocol, "--observer", "p01", "--out", tmp_path / "data", env=_no_display())
     assert done.returncode == 2
     assert "screens.instructions_file" in done.stderr and "does not exist" in done.stderr
     assert not (tmp_path / "data").exists()
+    # check reads the lab's texts as run will, so a protocol that passes check does not fail at the display
+    done = run_cli("check", protocol)
+    assert done.returncode == 2 and done.stderr.count("\n") == 1
+    assert "screens.instructions_file" in done.stderr and "does not exist" in done.stderr
+    (tmp_path / "caution.txt").write_text("Stop at any time with {no_such_key}.\n")
+    protocol.write_text((PROTOCOLS / "pilot_short.toml").read_text() + '\n[safety]\ncaution_file = "caution.txt"\n')
+    done = run_cli("check", protocol)
+    assert done.returncode == 2 and "safety.caution_file" in done.stderr and "{no_such_key}" in done.stderr
 
 
 def test_an_error_raised_by_a_ctrl_c_is_reported_as_the_ctrl_c(monkeypatch, capsys):
