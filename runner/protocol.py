@@ -241,6 +241,8 @@ class DesignSettings(_Section):
             raise ValueError("expected offsets between -180 and 180 degrees")
         if len(set(v)) != len(v):
             raise ValueError("expected distinct offsets")
+        if -180 in v and 180 in v:
+            raise ValueError("-180 and 180 are the same direction; keep one of them")
         return v
 
     @field_validator("adapter_offsets_deg")

@@ -63,6 +63,7 @@ MALFORMED = {
     "fractional_lag": (b"[design]\nlags = [0, 1.5]", "design.lags"),
     "negative_lag": (b"[design]\nlags = [-1, 2]", "design.lags"),
     "offset_out_of_range": (b"[design]\nadapter_offsets_deg = [200]", "design.adapter_offsets_deg"),
+    "one_direction_twice": (b"[design]\nadapter_offsets_deg = [-180, 180]", "design.adapter_offsets_deg"),
     "zero_trials": (b"[design]\ntrials_per_track = 0", "design.trials_per_track"),
     "same_keys": (b"[keys]\ncw = 'left'\nccw = 'left'", "keys"),
     "unknown_key_name": (b"[keys]\ncw = 'rightarrow'", "keys.cw"),
