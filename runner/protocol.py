@@ -568,6 +568,12 @@ def _cross_checks(p: Protocol) -> None:
         raise InputError(
             "", "dots.density_per_deg2", f"dots would cover {covered:.0%} of the aperture; expected at most 50 %"
         )
+    if p.dots.speed_deg_s == 0:
+        raise InputError("", "dots.speed_deg_s", "dots that do not move show no direction; expected a speed above 0")
+    drawn = [p.dots.level * c for c in p.dots.color_rgb]
+    if max(abs(v - p.display.background) for v in drawn) < 1e-6:
+        raise InputError("", "dots.level", f"dots drawn at the background's grey level ({p.display.background:g}) "
+                         "are invisible; change dots.level, dots.color_rgb or display.background")
     step_deg = p.dots.speed_deg_s / p.display.refresh_hz
     if step_deg > p.dots.aperture_radius_deg / 2:
         raise InputError("", "dots.speed_deg_s", "dots would jump more than half the aperture radius per frame")
@@ -596,6 +602,8 @@ def _cross_checks(p: Protocol) -> None:
                          f"has no meaning with method = \"{proc.method}\": {chooser}; remove the field")
     if not (lo <= proc.start_offset_deg <= hi and lo <= -proc.start_offset_deg <= hi):
         raise InputError("", "procedure.start_offset_deg", f"tracks start at ±{proc.start_offset_deg:g}, outside bounds_deg")
+    if proc.method == "constant" and not all(lo <= v <= hi for v in proc.levels_deg):
+        raise InputError("", "procedure.levels_deg", f"levels outside bounds_deg [{lo:g}, {hi:g}]")
     if proc.method == "constant" and p.design.trials_per_track % len(proc.levels_deg):
         raise InputError(
             "",

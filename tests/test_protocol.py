@@ -64,6 +64,11 @@ MALFORMED = {
     "negative_lag": (b"[design]\nlags = [-1, 2]", "design.lags"),
     "offset_out_of_range": (b"[design]\nadapter_offsets_deg = [200]", "design.adapter_offsets_deg"),
     "one_direction_twice": (b"[design]\nadapter_offsets_deg = [-180, 180]", "design.adapter_offsets_deg"),
+    "still_dots": (b"[dots]\nspeed_deg_s = 0", "dots.speed_deg_s"),
+    "invisible_dots": (b"[display]\nbackground = 0.3\n[dots]\nlevel = 0.3", "dots.level"),
+    "black_dots_on_black": (b"[dots]\ncolor_rgb = [0, 0, 0]", "dots.level"),
+    "constant_levels_out_of_bounds": (b"[procedure]\nmethod = 'constant'\nbounds_deg = [-20, 20]\n"
+                                      b"levels_deg = [-100, -10, 10, 100]", "procedure.levels_deg"),
     "zero_trials": (b"[design]\ntrials_per_track = 0", "design.trials_per_track"),
     "same_keys": (b"[keys]\ncw = 'left'\nccw = 'left'", "keys"),
     "unknown_key_name": (b"[keys]\ncw = 'rightarrow'", "keys.cw"),
