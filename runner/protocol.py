@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import math
 import sys
+import unicodedata
 from pathlib import Path
 from typing import Literal
 
@@ -523,6 +524,13 @@ class Protocol(_Section):
     light: LightSettings | None = None
     #: The resolved ``[light]`` section (:func:`runner.light.light_plan`), set by the loader.
     _light_plan: object = PrivateAttr(default=None)
+
+    @field_validator("title")
+    @classmethod
+    def _printable_title(cls, v):
+        if any(unicodedata.category(c) in ("Cc", "Cf") for c in v):    # it is printed to terminals and pages
+            raise ValueError("expected a title without control characters (line breaks, escapes)")
+        return v
 
 
 def frame_plan(protocol: Protocol) -> dict[str, timing.FrameCount]:
