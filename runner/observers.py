@@ -123,7 +123,7 @@ def load_model(path: str | Path | None) -> ObserverModel:
     if not p.is_file():
         raise InputError(str(p), "file", "does not exist or is not a file")
     try:
-        raw = tomllib.loads(p.read_bytes().decode("utf-8"))
+        raw = tomllib.loads(p.read_bytes().decode("utf-8-sig"))     # with or without a byte-order mark
     except (UnicodeDecodeError, tomllib.TOMLDecodeError, RecursionError) as exc:
         raise InputError(str(p), "TOML", f"not a valid TOML text file ({exc})") from None
     known = {f.name for f in fields(ObserverModel)}

@@ -674,7 +674,7 @@ def parse_protocol(text: str, source: str = "<protocol>", resolve_light: bool = 
         One line naming ``source``, the field and what was expected.
     """
     try:
-        raw = tomllib.loads(text)
+        raw = tomllib.loads(text.removeprefix("\ufeff"))     # the byte-order mark some editors write
     except tomllib.TOMLDecodeError as exc:
         raise InputError(source, "TOML", f"not valid TOML ({exc})") from None
     except RecursionError:

@@ -26,6 +26,18 @@ def test_check_accepts_every_bundled_protocol(path, cli):
     assert "photosensitivity" in done.stdout.lower()
 
 
+def test_a_byte_order_mark_is_read_past(tmp_path):
+    # some editors start UTF-8 files with a byte-order mark; TOML parsers refuse it ("Invalid statement")
+    marked = tmp_path / "marked.toml"
+    marked.write_bytes(b"\xef\xbb\xbf" + (PROTOCOLS / "pilot_short.toml").read_bytes())
+    assert load_protocol(marked) == load_protocol(PROTOCOLS / "pilot_short.toml")
+    from runner.observers import load_model
+
+    model = tmp_path / "model.toml"
+    model.write_bytes(b"\xef\xbb\xbfspread_deg = 2.5\n")
+    assert load_model(model).spread_deg == 2.5
+
+
 def test_default_protocol_matches_the_design_defaults():
     p = load_protocol(PROTOCOLS / "offset_by_lag.toml")
     assert sorted(p.design.adapter_offsets_deg) == [-90, -60, -30, -15, 15, 30, 60, 90]
