@@ -373,7 +373,7 @@ def settle(out_dir: str | Path) -> None:
         staging folder is gone, or the folder cannot be written).
     """
     out = Path(out_dir)
-    if not (out / PENDING).exists():
+    if not os.path.exists(out / PENDING):
         return
     try:
         with folder_lock(out, exclusive=True):
@@ -464,7 +464,7 @@ def output_set(out_dir: str | Path, command: str):
     try:
         out.mkdir(parents=True, exist_ok=True)
         refuse_other_set(out, command)
-        if (out / PENDING).exists():
+        if os.path.exists(out / PENDING):
             with folder_lock(out, exclusive=True):
                 finish_interrupted(out)     # before the killed process's staging folder is removed below
         remove_dead_folders(out, STAGING_PREFIX)
