@@ -364,6 +364,24 @@ def apply_light(protocol, plan: LightPlan | None):
     return out
 
 
+def written_settings(protocol) -> dict:
+    """The protocol's settings as its file gave them, as a JSON-ready dict.
+
+    :func:`apply_light` puts the grey levels of ``light.background_cd_m2``
+    and of the dots' luminance into ``display.background`` and
+    ``dots.level``; they are left out here, so that the dict validates again
+    (with the light section resolved anew) after a change of its settings.
+    """
+    raw = protocol.model_dump(mode="json", exclude_none=True, exclude_unset=True)
+    settings = protocol.light
+    if settings is not None and light_plan(protocol) is not None:
+        if settings.background_cd_m2 is not None:
+            raw.get("display", {}).pop("background", None)
+        if settings.dots_field is not None:
+            raw.get("dots", {}).pop("level", None)
+    return raw
+
+
 def light_plan(protocol) -> LightPlan | None:
     """The light plan the loader attached to a protocol (None without ``[light]``)."""
     return getattr(protocol, "_light_plan", None)

@@ -45,6 +45,7 @@ from fitting.outputs import output_set
 from fitting.report import fit_trials
 from fitting.tables import prepare_trials
 from runner.launch import derive_seed, package_versions, simulate_rows
+from runner.light import written_settings
 from runner.observers import ObserverModel, load_model
 from runner.protocol import Protocol, parse_protocol, protocol_from_dict, read_protocol_text
 from runner.replay import TrackFactory
@@ -176,7 +177,7 @@ def expand_designs(protocol: Protocol, model: ObserverModel, vary: list[str] | N
         return [Design(protocol, base_model, {})]
     designs = []
     for combo in itertools.product(*(values for _, values in axes)):
-        raw = protocol.model_dump(mode="json", exclude_none=True, exclude_unset=True)
+        raw = written_settings(protocol)
         model_raw = asdict(base_model)
         settings = dict(zip(names, combo))
         for name, value in settings.items():
@@ -238,7 +239,8 @@ def run_session_task(task: dict) -> list[dict]:
     ``quantity, lag, estimate, ci_low, ci_high`` (None where the fit gave no
     value). Depends only on ``task``.
     """
-    protocol = protocol_from_dict(task["protocol"], "study task")
+    # the task holds the grey levels its design's light profile gave (see make_task): no profile to read again
+    protocol = protocol_from_dict(task["protocol"], "study task", resolve_light=False)
     rows = simulate_rows(protocol, ObserverModel(**task["model"]), task["seed"])
     if protocol.stream is not None:
         tuning, decay, baseline, lags = _fit_stream(rows, task)
@@ -348,7 +350,12 @@ class StudySettings:
 
 
 def make_task(design: Design, replicate: int, s: StudySettings) -> dict:
-    """The argument of :func:`run_session_task` for replicate ``replicate`` of ``design``."""
+    """The argument of :func:`run_session_task` for replicate ``replicate`` of ``design``.
+
+    The protocol is the design's as loaded: with a ``[light]`` section, its
+    grey levels are those of the light profile, so the task's key changes
+    with the profile and workers need no copy of it.
+    """
     return {"protocol": design.protocol.model_dump(mode="json", exclude_none=True, exclude_unset=True), "model": asdict(design.model),
             "seed": session_seed(s.seed, replicate), "n_boot": s.n_boot,
             "lapse": s.lapse if s.lapse == "free" else float(s.lapse)}

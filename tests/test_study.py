@@ -312,3 +312,31 @@ def test_study_tasks_fit_with_the_pilot_that_reruns_the_tracks(monkeypatch):
     (track_use, notes), = seen
     assert track_use == "pilot"
     assert not any("levels fixed" in n for ns in notes.values() for n in ns), notes
+
+
+def test_plan_and_recover_run_on_the_bundled_protocol_in_cd_m2(tmp_path, capsys):
+    # plan and recover once refused every protocol with [light]: the task's copy of the protocol held both
+    # the resolved display.background and light.background_cd_m2, and was validated again
+    import json
+
+    import tomllib
+
+    path = ROOT / "protocols" / "calibrated_luminance.toml"
+    tiny = ["--runs", "1", "--bootstrap", "20", "--jobs", "1", "--vary", 'procedure.method=["updown"]']  # cheap tracks
+    assert main(["plan", str(path), *tiny, "--vary", "design.trials_per_track=[12]", "--out", str(tmp_path / "plan")]) == 0
+    vary = "light.background_cd_m2=[0.5, 2.0]"
+    assert main(["recover", str(path), *tiny, "--vary", vary, "--out", str(tmp_path / "rec")]) == 0
+    capsys.readouterr()
+    assert (tmp_path / "plan" / "plan.csv").is_file() and (tmp_path / "rec" / "recovery.csv").is_file()
+    # each design's task holds the grey level its luminance needs on the profile's display, by hand from the
+    # gain-offset-gamma model L = black + amplitude * (gain * v + 1 - gain) ** gamma (Berns 1996; from memory)
+    grey = tomllib.loads((path.parent / "light" / "example_profile.toml").read_text())["model"]["grey"]
+    levels = {}
+    for task_file in (tmp_path / "rec" / "tasks").glob("*.json"):
+        task = json.loads(task_file.read_text())
+        luminance = float(task["about"]["designs"][0].split(",")[-1].split("=")[1])
+        frac = ((luminance - grey["black_cd_m2"]) / grey["amplitude_cd_m2"]) ** (1 / grey["gamma"])
+        levels[luminance] = (frac - (1 - grey["gain"])) / grey["gain"]
+    assert sorted(levels) == [0.5, 2.0]
+    designs = expand_designs(parse_protocol(path.read_text(), str(path)), ObserverModel(), [vary])
+    assert [d.protocol.display.background for d in designs] == pytest.approx([levels[0.5], levels[2.0]], rel=1e-9)
