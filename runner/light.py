@@ -180,7 +180,7 @@ class LightPlan:
         p = self.profile
         lines = [
             f"light      profile {p.path}",
-            f"           measured {p.measured_utc.date().isoformat()} ({self.age_days:.0f} days ago), "
+            f"           measured {p.measured_utc.date().isoformat()} ({_age_words(self.age_days)}), "
             f"black {p.black_cd_m2:.4g} cd/m2, max {p.max_cd_m2:.4g} cd/m2, SHA-256 {p.sha256[:12]}",
         ]
         for what, level, value, key in (
@@ -222,6 +222,13 @@ class LightPlan:
             "weber_contrast": None if math.isinf(self.weber) else self.weber,
             "michelson_contrast": self.michelson,
         }
+
+
+def _age_words(age_days: float) -> str:
+    """A profile's age for ``check``: "3 days ago", or how far in the future its date lies."""
+    if age_days < -1.0:
+        return f"{-age_days:.0f} days in the future: check the computer's clock and the profile's measured_utc"
+    return f"{max(age_days, 0.0):.0f} days ago"
 
 
 def profile_path(protocol, source: str = "") -> Path:
