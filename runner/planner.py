@@ -44,10 +44,11 @@ from fitting.tables import write_csv
 from runner.observers import ObserverModel
 from runner.protocol import Protocol
 from runner.study import (QUANTITIES, TRIALS_FIELD, UNITS, Design, StudySettings, check_designs, console_table,
-                          coverage_se, design_columns, expand_designs, run_study, study_command)
+                          coverage_se, design_columns, expand_designs, failed_run_notes, run_study,
+                          study_command)
 
 STATISTICS = ["median_half_width", "mean_half_width", "sd_half_width", "q25_half_width", "q75_half_width",
-              "coverage", "coverage_se", "runs_with_interval", "runs"]
+              "coverage", "coverage_se", "runs_with_interval", "runs_without_trials", "runs"]
 
 
 # ---------------------------------------------------------------- designs
@@ -371,13 +372,15 @@ def plan_design(
     columns["family"] = [Design(d.protocol, d.model, {k: v for k, v in d.settings.items() if k != TRIALS_FIELD}).label
                          for d in designs]
     table = _summarise(per_run, columns)
+    notes += failed_run_notes(per_run, columns)
     runs = columns.merge(per_run, on="design")
     needed = _needed(table, target_half_width, designs) if target_half_width is not None else pd.DataFrame()
     return PlanResult(columns, table, runs, target_half_width, needed, protocol.title, notes)
 
 
 def _summarise(per_run: pd.DataFrame, columns: pd.DataFrame) -> pd.DataFrame:
-    g = per_run.groupby(["design", "quantity", "lag"], dropna=False, sort=False)
+    g = per_run.assign(failed=per_run["usable_trials"] == 0).groupby(["design", "quantity", "lag"], dropna=False,
+                                                                     sort=False)
     hw = g["half_width"]
     table = pd.DataFrame({
         "median_half_width": hw.median(),
@@ -387,6 +390,7 @@ def _summarise(per_run: pd.DataFrame, columns: pd.DataFrame) -> pd.DataFrame:
         "q75_half_width": hw.quantile(0.75),
         "coverage": g["covered"].mean(),
         "runs_with_interval": hw.count(),
+        "runs_without_trials": g["failed"].sum(),
         "runs": g.size(),
     }).reset_index()
     table["coverage_se"] = [coverage_se(c, n) for c, n in zip(table["coverage"], table["runs_with_interval"])]

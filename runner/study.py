@@ -63,7 +63,7 @@ RESULT_COLUMNS = ("quantity", "lag", "estimate", "ci_low", "ci_high")
 MAX_DESIGNS = 1000
 MAX_TASKS = 10**6
 #: Bumped when a task's result would change for the same inputs (old results are then not reused).
-TASK_VERSION = 1
+TASK_VERSION = 2
 
 
 # ---------------------------------------------------------------- designs
@@ -229,24 +229,38 @@ def _finite(v) -> float | None:
     return v if math.isfinite(v) else None
 
 
-def run_session_task(task: dict) -> list[dict]:
+def run_session_task(task: dict) -> dict:
     """Simulate one session in memory, fit it, and return estimate and interval per quantity.
 
     ``task`` holds ``protocol`` (a JSON dump), ``model`` (a dict), ``seed``
     (this replicate's seed), ``n_boot`` and ``lapse``. Adapt-test blocks are
     fitted as by ``fit``; continuous streams by the n-back regression
-    (:mod:`fitting.nback`, lag = n − 1). Returns JSON-ready rows
-    ``quantity, lag, estimate, ci_low, ci_high`` (None where the fit gave no
-    value). Depends only on ``task``.
+    (:mod:`fitting.nback`, lag = n − 1). Depends only on ``task``.
+
+    Returns
+    -------
+    dict
+        ``usable_trials``: the session's trials left once practice,
+        bad-timing and missed trials are excluded; ``rows``: JSON-ready rows
+        ``quantity, lag, estimate, ci_low, ci_high`` (None where the fit gave
+        no value, and everywhere in a session without usable trials, which
+        is not fitted: a failed replicate of its design).
     """
     # the task holds the grey levels its design's light profile gave (see make_task): no profile to read again
     protocol = protocol_from_dict(task["protocol"], "study task", resolve_light=False)
     rows = simulate_rows(protocol, ObserverModel(**task["model"]), task["seed"])
     if protocol.stream is not None:
-        tuning, decay, baseline, lags = _fit_stream(rows, task)
+        lags = list(range(protocol.stream.nback_periods))
+    else:
+        lags = sorted(protocol.design.lags) if len(protocol.design.adapter_offsets_deg) >= 3 else []
+    usable = sum(1 for r in rows if not r["practice"] and r["timing_ok"] and r["response_cw"] is not None)
+    nothing = (np.nan,) * 3
+    if not usable:
+        tuning, decay, baseline = pd.DataFrame({"lag": []}), pd.DataFrame(), nothing
+    elif protocol.stream is not None:
+        tuning, decay, baseline = _fit_stream(rows, task)
     else:
         tuning, decay, baseline = _fit_block(rows, task, protocol)
-        lags = sorted(protocol.design.lags) if len(protocol.design.adapter_offsets_deg) >= 3 else []
     out = []
     tuning = tuning.set_index("lag")
     for lag in lags:
@@ -254,14 +268,14 @@ def run_session_task(task: dict) -> list[dict]:
         for quantity, est, lo, hi in (("amplitude", "amplitude_deg", "amplitude_ci_low", "amplitude_ci_high"),
                                       ("peak_offset", "peak_offset_deg", "peak_offset_ci_low",
                                        "peak_offset_ci_high")):
-            values = (row[est], row[lo], row[hi]) if row is not None else (np.nan,) * 3
+            values = (row[est], row[lo], row[hi]) if row is not None else nothing
             out.append({"quantity": quantity, "lag": int(lag), **_triple(values)})
     if len(lags) > 1:
         values = (decay["decay_periods"].iloc[0], decay["ci_low"].iloc[0], decay["ci_high"].iloc[0]) if len(decay) \
-            else (np.nan,) * 3
+            else nothing
         out.append({"quantity": "decay", "lag": None, **_triple(values)})
     out.append({"quantity": "baseline_pse", "lag": None, **_triple(baseline)})
-    return out
+    return {"usable_trials": usable, "rows": out}
 
 
 def _fit_block(rows: list[dict], task: dict, protocol: Protocol):
@@ -281,12 +295,10 @@ def _fit_block(rows: list[dict], task: dict, protocol: Protocol):
 
 
 def _fit_stream(rows: list[dict], task: dict):
-    """``tuning``, ``decay``, the PSE μ₀ (estimate, low, high) and the lags of a stream session."""
+    """``tuning``, ``decay`` and the PSE μ₀ (estimate, low, high) of a stream session with usable trials."""
     from fitting.nback import StreamTrials, bootstrap_nback, fit_nback, result_tables
 
     used = [r for r in rows if not r["practice"] and r["response_cw"] is not None and r["timing_ok"]]
-    if not used:
-        raise InputError("simulated session", "stream", "no answered stream test to fit")
     trials = StreamTrials("sim01", np.array([r["test_offset_deg"] for r in used], dtype=float),
                           np.array([r["response_cw"] for r in used], dtype=float),
                           np.array([r["preceding_offsets_deg"] for r in used], dtype=float),
@@ -294,7 +306,7 @@ def _fit_stream(rows: list[dict], task: dict):
     boot = bootstrap_nback(fit_nback(trials, task["lapse"]), task["n_boot"], np.random.default_rng(task["seed"]))
     tables = result_tables(boot)
     low, high = boot.interval(boot.fit.pse_deg, boot.per_n[:, 0])
-    return tables["tuning"], tables["decay"], (boot.fit.pse_deg, low[0], high[0]), list(range(trials.n_back))
+    return tables["tuning"], tables["decay"], (boot.fit.pse_deg, low[0], high[0])
 
 
 def _triple(values) -> dict:
@@ -430,8 +442,10 @@ def run_study(designs: list[Design], settings: StudySettings, folder: str | Path
     rows = []
     for key, where in index.items():
         for d, r in where:
-            for row in results[key]:  # fixed column order, whether fresh or read back from disk
-                rows.append({"design": d, "replicate": r, **{c: row[c] for c in RESULT_COLUMNS}})
+            usable = results[key]["usable_trials"]
+            for row in results[key]["rows"]:  # fixed column order, whether fresh or read back from disk
+                rows.append({"design": d, "replicate": r, **{c: row[c] for c in RESULT_COLUMNS},
+                             "usable_trials": usable})
     return _with_truth(pd.DataFrame(rows), designs)
 
 
@@ -456,6 +470,25 @@ def design_columns(designs: list[Design]) -> pd.DataFrame:
                      "trials_per_track": d.protocol.design.trials_per_track,
                      "trials_per_condition": d.trials_per_condition})
     return pd.DataFrame(rows)
+
+
+def failed_run_notes(per_run: pd.DataFrame, designs: pd.DataFrame) -> list[str]:
+    """One note per design with simulated sessions that had no usable trial (every test missed or mistimed).
+
+    ``designs`` is :func:`design_columns`; such sessions are not fitted and count as runs without estimate.
+    """
+    notes = []
+    sessions = per_run.drop_duplicates(["design", "replicate"])
+    for d, part in sessions.groupby("design", sort=True):
+        failed, total = int((part["usable_trials"] == 0).sum()), len(part)
+        label = designs.loc[designs["design"] == d, "label"].iloc[0]
+        if failed == total:
+            notes.append(f"design {label}: none of its {total} simulated sessions had a usable trial (all missed, "
+                         "practice or mistimed); it has no estimates")
+        elif failed:
+            notes.append(f"design {label}: {failed} of {total} simulated sessions had no usable trial; they count "
+                         "as failed runs, without estimate or interval")
+    return notes
 
 
 def console_table(table: pd.DataFrame, numbers: tuple[str, ...], coverage_digits: int) -> pd.DataFrame:

@@ -52,6 +52,19 @@ method = "constant"
 levels_deg = [-4.5, -3.0, -1.5, 1.5, 3.0, 4.5]
 """
 
+# four adapter offsets, six trials per track: sessions short enough to have every trial missed
+TINY = """
+title = "study test: short sessions"
+[design]
+adapter_offsets_deg = [-60.0, -30.0, 30.0, 60.0]
+lags = [0]
+trials_per_track = 6
+practice_trials = 0
+[procedure]
+method = "updown"
+bounds_deg = [-30.0, 30.0]
+"""
+
 
 def _write(tmp_path, text, name="protocol.toml"):
     path = tmp_path / name
@@ -340,3 +353,31 @@ def test_plan_and_recover_run_on_the_bundled_protocol_in_cd_m2(tmp_path, capsys)
     assert sorted(levels) == [0.5, 2.0]
     designs = expand_designs(parse_protocol(path.read_text(), str(path)), ObserverModel(), [vary])
     assert [d.protocol.display.background for d in designs] == pytest.approx([levels[0.5], levels[2.0]], rel=1e-9)
+
+
+def test_sessions_without_usable_trials_are_failed_runs_not_the_end_of_the_study(tmp_path, capsys):
+    # one session whose every trial was missed once ended the whole study with exit 2, naming no design
+    path = _write(tmp_path, TINY)
+    settings = ["--runs", "6", "--seed", "4", "--bootstrap", "20", "--jobs", "1"]
+    assert main(["recover", str(path), *settings, "--vary", "model.miss_rate=[0.97, 0.9999]",
+                 "--out", str(tmp_path / "r")]) == 0
+    out = capsys.readouterr().out
+    # count the sessions without an answered trial directly from the simulated sessions
+    protocol = parse_protocol(TINY)
+    failed = {}
+    for miss in (0.97, 0.9999):
+        model = ObserverModel(miss_rate=miss, spread_between_observers=0.0)
+        failed[miss] = sum(not any(row["response_cw"] is not None and not row["practice"]
+                                   for row in simulate_rows(protocol, model, derive_seed(4, r))) for r in range(6))
+    assert 0 < failed[0.97] < 6 and failed[0.9999] == 6
+    table = pd.read_csv(tmp_path / "r" / "recovery.csv")
+    assert list(table.groupby("label", sort=False)["runs_without_trials"].max()) == [failed[0.97], 6]
+    assert f"design miss_rate=0.97: {failed[0.97]} of 6 simulated sessions had no usable trial" in out
+    assert "design miss_rate=0.9999: none of its 6 simulated sessions had a usable trial" in out
+    runs = pd.read_csv(tmp_path / "r" / "recovery_runs.csv")
+    assert runs.loc[runs["usable_trials"] == 0, "estimate"].isna().all()
+    # plan counts them the same way
+    assert main(["plan", str(path), *settings, "--vary", "model.miss_rate=[0.97]", "--vary",
+                 "design.trials_per_track=[6]", "--out", str(tmp_path / "p")]) == 0
+    plan = pd.read_csv(tmp_path / "p" / "plan.csv")
+    assert set(plan["runs_without_trials"]) == {failed[0.97]}
