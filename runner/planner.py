@@ -368,6 +368,7 @@ def plan_design(
         designs, notes = with_trial_factors(designs, trial_factors)
     notes += check_designs(designs)
     per_run = run_study(designs, settings, out_dir, "planning")
+    notes += per_run.attrs["notes"]
     columns = design_columns(designs)
     columns["family"] = [Design(d.protocol, d.model, {k: v for k, v in d.settings.items() if k != TRIALS_FIELD}).label
                          for d in designs]

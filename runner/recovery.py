@@ -176,6 +176,7 @@ def recover(protocol: Protocol, model: ObserverModel, settings: StudySettings, o
     designs = expand_designs(protocol, model, vary)
     notes = check_designs(designs)
     per_run = run_study(designs, settings, out_dir, "recovery")
+    notes += per_run.attrs["notes"]
     columns = design_columns(designs)
     notes += failed_run_notes(per_run, columns)
     return RecoveryResult(columns, summarise(per_run, columns), columns.merge(per_run, on="design"),

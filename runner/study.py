@@ -62,6 +62,10 @@ TRIALS_FIELD = "design.trials_per_track"
 RESULT_COLUMNS = ("quantity", "lag", "estimate", "ci_low", "ci_high")
 MAX_DESIGNS = 1000
 MAX_TASKS = 10**6
+#: Largest magnitude of a number in a task's result. Estimates are degrees of direction or PSE shift
+#: and decays in periods, bounded by the fit to 1000; intervals of ill-posed fits may reach far beyond,
+#: so the limit is generous: a number past it in a task file is damage, and the task is redone.
+MAX_RESULT = 1e6
 #: Bumped when a task's result would change for the same inputs (old results are then not reused).
 TASK_VERSION = 2
 
@@ -249,10 +253,7 @@ def run_session_task(task: dict) -> dict:
     # the task holds the grey levels its design's light profile gave (see make_task): no profile to read again
     protocol = protocol_from_dict(task["protocol"], "study task", resolve_light=False)
     rows = simulate_rows(protocol, ObserverModel(**task["model"]), task["seed"])
-    if protocol.stream is not None:
-        lags = list(range(protocol.stream.nback_periods))
-    else:
-        lags = sorted(protocol.design.lags) if len(protocol.design.adapter_offsets_deg) >= 3 else []
+    lags = studied_lags(protocol)
     usable = sum(1 for r in rows if not r["practice"] and r["timing_ok"] and r["response_cw"] is not None)
     nothing = (np.nan,) * 3
     if not usable:
@@ -276,6 +277,51 @@ def run_session_task(task: dict) -> dict:
         out.append({"quantity": "decay", "lag": None, **_triple(values)})
     out.append({"quantity": "baseline_pse", "lag": None, **_triple(baseline)})
     return {"usable_trials": usable, "rows": out}
+
+
+def studied_lags(protocol: Protocol) -> list[int]:
+    """The lags whose amplitude and peak offset a task reports (none with fewer than 3 adapter offsets)."""
+    if protocol.stream is not None:
+        return list(range(protocol.stream.nback_periods))
+    return sorted(protocol.design.lags) if len(protocol.design.adapter_offsets_deg) >= 3 else []
+
+
+def result_layout(protocol: Protocol) -> list[tuple[str, int | None]]:
+    """``(quantity, lag)`` of each row of a task's result, in order (see :func:`run_session_task`)."""
+    lags = studied_lags(protocol)
+    layout = [(quantity, lag) for lag in lags for quantity in ("amplitude", "peak_offset")]
+    return layout + ([("decay", None)] if len(lags) > 1 else []) + [("baseline_pse", None)]
+
+
+def valid_result(result, layout: list[tuple[str, int | None]]) -> bool:
+    """Whether a result read back from a task file is one :func:`run_session_task` could have returned.
+
+    Its rows must follow ``layout`` (:func:`result_layout` of the task's
+    protocol), every number be None or finite and within :data:`MAX_RESULT`,
+    each interval ordered, and a session without usable trials hold no numbers.
+    """
+    if not isinstance(result, dict) or set(result) != {"usable_trials", "rows"}:
+        return False
+    usable, rows = result["usable_trials"], result["rows"]
+    if isinstance(usable, bool) or not isinstance(usable, int) or usable < 0:
+        return False
+    if not isinstance(rows, list) or len(rows) != len(layout):
+        return False
+    for row, (quantity, lag) in zip(rows, layout):
+        if not isinstance(row, dict) or set(row) != set(RESULT_COLUMNS):
+            return False
+        if row["quantity"] != quantity or row["lag"] != lag or type(row["lag"]) is bool:
+            return False
+        numbers = [row[c] for c in ("estimate", "ci_low", "ci_high")]
+        for v in numbers:
+            if v is not None and (isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v)
+                                  or abs(v) > MAX_RESULT):
+                return False
+        if usable == 0 and any(v is not None for v in numbers):
+            return False
+        if numbers[1] is not None and numbers[2] is not None and numbers[1] > numbers[2]:
+            return False
+    return True
 
 
 def _fit_block(rows: list[dict], task: dict, protocol: Protocol):
@@ -395,7 +441,9 @@ def run_study(designs: list[Design], settings: StudySettings, folder: str | Path
     pandas.DataFrame
         One row per design, replicate, quantity and lag: ``design`` (index
         into ``designs``), ``replicate``, ``quantity``, ``lag``, ``estimate``,
-        ``ci_low``, ``ci_high``, ``truth``, ``half_width``, ``covered``.
+        ``ci_low``, ``ci_high``, ``usable_trials``, ``truth``, ``half_width``,
+        ``covered``. ``attrs["notes"]`` says how many task files were redone
+        because they could not be used (:func:`valid_result`).
 
     Raises
     ------
@@ -420,7 +468,8 @@ def run_study(designs: list[Design], settings: StudySettings, folder: str | Path
     folder = Path(folder)
     if folder.exists() and not folder.is_dir():
         raise InputError(str(folder), "--out", "exists and is not a folder")
-    store = TaskStore(folder / "tasks")
+    layouts = {key: result_layout(designs[where[0][0]].protocol) for key, where in index.items()}
+    store = TaskStore(folder / "tasks", accept=lambda key, result: valid_result(result, layouts[key]))
     pool = None
     results: dict = {}
     try:
@@ -439,6 +488,7 @@ def run_study(designs: list[Design], settings: StudySettings, folder: str | Path
         if pool is not None:
             pool.close()
         store.close()
+    redone = len(store.rejected)
     rows = []
     for key, where in index.items():
         for d, r in where:
@@ -446,7 +496,11 @@ def run_study(designs: list[Design], settings: StudySettings, folder: str | Path
             for row in results[key]["rows"]:  # fixed column order, whether fresh or read back from disk
                 rows.append({"design": d, "replicate": r, **{c: row[c] for c in RESULT_COLUMNS},
                              "usable_trials": usable})
-    return _with_truth(pd.DataFrame(rows), designs)
+    per_run = _with_truth(pd.DataFrame(rows), designs)
+    per_run.attrs["notes"] = [f"{redone} task file{'s' if redone > 1 else ''} in {store.folder} could not be used "
+                              "(unreadable, damaged, or not the task named) and "
+                              f"{'were' if redone > 1 else 'was'} redone"] if redone else []
+    return per_run
 
 
 def _with_truth(per_run: pd.DataFrame, designs: list[Design]) -> pd.DataFrame:

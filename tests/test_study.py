@@ -381,3 +381,32 @@ def test_sessions_without_usable_trials_are_failed_runs_not_the_end_of_the_study
                  "design.trials_per_track=[6]", "--out", str(tmp_path / "p")]) == 0
     plan = pd.read_csv(tmp_path / "p" / "plan.csv")
     assert set(plan["runs_without_trials"]) == {failed[0.97]}
+
+
+def test_task_files_that_do_not_validate_are_redone_with_one_note(tmp_path):
+    # a text where a number belongs once gave a 56-line traceback, 1e308 was averaged into the table (RMSE inf),
+    # and another replicate's file copied over a task's was used as that task's result
+    import json
+
+    protocol = parse_protocol(TINY)
+    settings = StudySettings(runs=4, seed=2, n_boot=20, jobs=1, progress=False)
+    first = recover(protocol, ObserverModel(), settings, tmp_path / "r")
+    assert not any("redone" in n for n in first.notes)
+    files = {json.loads(f.read_text())["about"]["replicate"]: f for f in (tmp_path / "r" / "tasks").glob("*.json")}
+    assert sorted(files) == [0, 1, 2, 3]
+
+    def edit(replicate, change):
+        stored = json.loads(files[replicate].read_text())
+        change(stored["result"]["rows"][-1])
+        files[replicate].write_text(json.dumps(stored))
+
+    edit(0, lambda row: row.update(estimate="abc"))
+    edit(1, lambda row: row.update(estimate=1e308))
+    files[2].write_text(files[3].read_text())   # replicate 3's result under replicate 2's name
+    again = recover(protocol, ObserverModel(), settings, tmp_path / "r")
+    pd.testing.assert_frame_equal(first.runs, again.runs)
+    assert [n for n in again.notes if "redone" in n] == \
+        [f"3 task files in {tmp_path / 'r' / 'tasks'} could not be used (unreadable, damaged, or not the task named) "
+         "and were redone"]
+    # the files were written again and are used as they are from now on
+    assert not any("redone" in n for n in recover(protocol, ObserverModel(), settings, tmp_path / "r").notes)
