@@ -47,6 +47,9 @@ from runner.study import (QUANTITIES, TRIALS_FIELD, UNITS, Design, StudySettings
                           coverage_se, design_columns, expand_designs, failed_run_notes, run_study,
                           study_command)
 
+#: Smallest --target-half-width: a hundredth of a degree is far finer than direction judgements are
+#: resolved (common practice, no source); smaller targets only overflow the trial counts.
+MIN_TARGET_HALF_WIDTH_DEG = 0.01
 STATISTICS = ["median_half_width", "mean_half_width", "sd_half_width", "q25_half_width", "q75_half_width",
               "coverage", "coverage_se", "runs_with_interval", "runs_without_trials", "runs"]
 
@@ -359,8 +362,10 @@ def plan_design(
     if not trial_factors or any(not (isinstance(f, (int, float)) and math.isfinite(f) and f > 0)
                                 for f in trial_factors):
         raise InputError("argument", "trial_factors", f"expected positive numbers, got {trial_factors!r}")
-    if target_half_width is not None and not (math.isfinite(target_half_width) and target_half_width > 0):
-        raise InputError("argument", "--target-half-width", f"expected a positive number, got {target_half_width!r}")
+    if target_half_width is not None and not (math.isfinite(target_half_width)
+                                              and MIN_TARGET_HALF_WIDTH_DEG <= target_half_width):
+        raise InputError("argument", "--target-half-width", f"expected at least {MIN_TARGET_HALF_WIDTH_DEG:g} deg, "
+                         f"got {target_half_width!r}")
     settings.check()
     designs = expand_designs(protocol, model, vary)
     notes = []

@@ -146,6 +146,10 @@ def _with_setting(raw: dict, model: dict, name: str, value) -> None:
     if not key:
         raise InputError("argument", f"--vary {name}", "expected SECTION.FIELD of the protocol (e.g. "
                          "procedure.method) or model.KEY of the observer model")
+    optional = section in Protocol.model_fields and Protocol.model_fields[section].default is None
+    if optional and section not in raw:
+        raise InputError("argument", f"--vary {name}", f"the protocol has no [{section}] section; varying it would "
+                         "make another kind of protocol (write the section in the protocol to study it)")
     raw.setdefault(section, {})
     if not isinstance(raw[section], dict):
         raise InputError("argument", f"--vary {name}", f"{section} is not a section of the protocol")
@@ -394,7 +398,7 @@ class StudySettings:
     def check(self) -> None:
         """Raise :class:`InputError` naming the option of a bad value."""
         check_count(self.runs, "--runs", 1, 100000)
-        check_count(self.seed, "--seed", 0, 2**63 - 1)
+        check_count(self.seed, "--seed", 0, 2**32 - 1)  # as every command's seed
         check_count(self.n_boot, "--bootstrap", 20, 100000)
         if self.jobs is not None:
             check_count(self.jobs, "--jobs", 1, 4096)

@@ -410,3 +410,33 @@ def test_task_files_that_do_not_validate_are_redone_with_one_note(tmp_path):
          "and were redone"]
     # the files were written again and are used as they are from now on
     assert not any("redone" in n for n in recover(protocol, ObserverModel(), settings, tmp_path / "r").notes)
+
+
+def test_study_and_output_options_refuse_what_would_misfire(tmp_path, capsys, monkeypatch):
+    path = _write(tmp_path, TINY)
+    work = tmp_path / "cwd"
+    work.mkdir()
+    monkeypatch.chdir(work)
+    study = ["--runs", "1", "--bootstrap", "20", "--jobs", "1"]
+    refused = [
+        # an empty --out once wrote into the current folder
+        (["plan", str(path), *study, "--out", ""], "argument: --out: is empty"),
+        (["recover", str(path), *study, "--out", ""], "argument: --out: is empty"),
+        (["simulate", str(path), "--out", " "], "argument: --out: is empty"),
+        (["fit", str(tmp_path / "no-logs"), "--out", ""], "argument: --out: is empty"),
+        (["compare", str(tmp_path / "no-fit"), str(tmp_path / "p.csv"), "--out", ""], "argument: --out: is empty"),
+        # a target no interval reaches (1e-300 overflowed the trial counts to 0)
+        (["plan", str(path), *study, "--target-half-width", "1e-300", "--out", "p"],
+         "--target-half-width: expected at least 0.01 deg"),
+        # a section the protocol lacks (it silently turned an adapt-test protocol into a stream)
+        (["recover", str(path), *study, "--vary", "stream.period_frames=[6]", "--out", "r"],
+         "--vary stream.period_frames: the protocol has no [stream] section"),
+        # the seed limit of every other command
+        (["recover", str(path), *study, "--seed", str(2**32), "--out", "r"], "--seed: a seed must be from 0 to"),
+    ]
+    for args, message in refused:
+        assert main(args) == 2, args
+        err = capsys.readouterr().err.strip()
+        assert message in err and len(err.splitlines()) == 1, (args, err)
+    assert not list(work.iterdir())
+
