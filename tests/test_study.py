@@ -440,3 +440,12 @@ def test_study_and_output_options_refuse_what_would_misfire(tmp_path, capsys, mo
         assert message in err and len(err.splitlines()) == 1, (args, err)
     assert not list(work.iterdir())
 
+
+def test_a_named_pipe_as_the_protocol_is_refused_not_waited_on(tmp_path):
+    fifo = tmp_path / "f.toml"
+    os.mkfifo(fifo)
+    done = run_cli("check", fifo, timeout=30)   # it used to wait for a writer for ever
+    assert done.returncode == 2
+    assert done.stderr.strip() == f"aftershift: {fifo}: file: is not a regular file (a pipe or a device?); " \
+                                  "expected a protocol file (.toml)"
+
