@@ -45,6 +45,7 @@ from pathlib import Path
 from fitting.children import children_shielded, follow_parent
 from fitting.errors import InputError
 from fitting.heap import arrays_on_the_heap
+from fitting.outputs import file_mode
 
 #: How to install the optional Dask part.
 CLUSTER_EXTRA = "pip install 'aftershift[cluster]' (or pip install -e '.[cluster]' in a checkout)"
@@ -377,6 +378,7 @@ class TaskStore:
         self.option = option
         self.accept = accept
         self.rejected: set[str] = set()
+        self._mode = file_mode()  # task files follow the umask, as every output does
         try:
             self.folder.mkdir(parents=True, exist_ok=True)
             self._lock = open(self.folder / ".lock", "a+", encoding="utf-8")
@@ -438,6 +440,7 @@ class TaskStore:
         try:
             fd, tmp = tempfile.mkstemp(prefix=".part-", dir=self.folder)
             try:
+                os.fchmod(fd, self._mode)
                 with os.fdopen(fd, "w", encoding="utf-8") as fh:
                     fh.write(text + "\n")
                     fh.flush()

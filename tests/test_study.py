@@ -449,3 +449,14 @@ def test_a_named_pipe_as_the_protocol_is_refused_not_waited_on(tmp_path):
     assert done.stderr.strip() == f"aftershift: {fifo}: file: is not a regular file (a pipe or a device?); " \
                                   "expected a protocol file (.toml)"
 
+
+def test_task_files_follow_the_umask_as_other_outputs_do(tmp_path):
+    old = os.umask(0o027)
+    try:
+        recover(parse_protocol(TINY), ObserverModel(), StudySettings(runs=1, seed=1, n_boot=20, jobs=1, progress=False),
+                tmp_path / "r").write(tmp_path / "r")
+    finally:
+        os.umask(old)
+    task, = (tmp_path / "r" / "tasks").glob("*.json")
+    # 0666 & ~umask, the mode open(2) gives a new file (POSIX open(); the same rule as fitting.outputs)
+    assert task.stat().st_mode & 0o777 == 0o640 == (tmp_path / "r" / "recovery.csv").stat().st_mode & 0o777
