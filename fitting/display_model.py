@@ -61,6 +61,11 @@ RESIDUAL_LIMIT = 0.05
 
 #: The model's parameters, in the order of :class:`GainOffsetGamma` (and of a profile's model tables).
 MODEL_FIELDS = ("black_cd_m2", "amplitude_cd_m2", "gain", "gamma")
+#: Where the fit looks for the gain and the gamma (also what a light profile may hold). Displays are near
+#: gain 1 and gamma 2.2 (sRGB's reference display, IEC 61966-2-1); the ranges leave room for uncommon
+#: curves (common practice, no source).
+GAIN_RANGE = (0.2, 5.0)
+GAMMA_RANGE = (0.3, 6.0)
 
 
 @dataclass(frozen=True)
@@ -382,8 +387,8 @@ def fit_channel(readings: Readings, level_ci: float = 0.95, fit_anyway: bool = F
     def residuals(x):
         return (y - _model_of(x).luminance(v)) / sigma
 
-    lower = [0.0, 1e-9 * top, 0.2, 0.3]
-    upper = [top, 3.0 * top, 5.0, 6.0]
+    lower = [0.0, 1e-9 * top, GAIN_RANGE[0], GAMMA_RANGE[0]]
+    upper = [top, 3.0 * top, GAIN_RANGE[1], GAMMA_RANGE[1]]
     best = None
     for x0 in _start_values(v, y):
         x0 = np.clip(x0, np.add(lower, 1e-12), np.subtract(upper, 1e-12))

@@ -423,9 +423,11 @@ def check_out_dir(out_dir: str | Path, command: str | None = None) -> None:
     Raises
     ------
     InputError
-        A path under a regular file, a folder (or its nearest existing
-        parent) that cannot be written, or another command's folder.
+        An empty name, a path under a regular file, a folder (or its nearest
+        existing parent) that cannot be written, or another command's folder.
     """
+    if not str(out_dir).strip():
+        raise InputError("argument", "--out", "is empty; name a folder (. for the current one)")
     out = Path(out_dir)
     if command is not None and out.is_dir():
         refuse_other_set(out, command)

@@ -115,6 +115,7 @@ def cmd_check(args) -> int:
 
 
 def cmd_simulate(args) -> int:
+    from fitting.outputs import check_out_dir
     from runner.launch import simulate
     from runner.observers import load_model
     from runner.trial_log import check_identifier
@@ -122,6 +123,7 @@ def cmd_simulate(args) -> int:
     _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
     _check_count(args.observers, "--observers", 1, 99, "the number of simulated observers")
     check_identifier(args.session, "--session")
+    check_out_dir(args.out)
     protocol, text = _load(args.protocol)
     light = _light(protocol)
     screening = _screen(protocol, args.protocol, args.flicker_ack)
@@ -304,25 +306,28 @@ def _study_settings(args):
                          scheduler=args.scheduler)
 
 
-def cmd_plan(args) -> int:
+def _check_study(args, command: str) -> None:
+    """The checks ``plan`` and ``recover`` share, before any work: counts, the folder, the protocol."""
     from fitting.outputs import check_out_dir
-    from runner.planner import plan_command
 
     _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
     _check_count(args.runs, "--runs", 1, 10_000, "simulated sessions per design")
     _check_count(args.jobs, "--jobs", 1, 256, "worker processes")
-    check_out_dir(args.out, "plan")
+    check_out_dir(args.out, command)
     _load(args.protocol)  # timing refusals exit 3 here as everywhere
+
+
+def cmd_plan(args) -> int:
+    from runner.planner import plan_command
+
+    _check_study(args, "plan")
     return plan_command(args.protocol, args.model, args.out, _study_settings(args), args.vary, args.target_half_width)
 
 
 def cmd_recover(args) -> int:
     from runner.recovery import recover_command
 
-    from fitting.outputs import check_out_dir
-
-    check_out_dir(args.out, "recover")
-    _load(args.protocol)
+    _check_study(args, "recover")
     return recover_command(args.protocol, args.model, args.out, _study_settings(args), args.vary)
 
 

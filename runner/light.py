@@ -180,7 +180,7 @@ class LightPlan:
         p = self.profile
         lines = [
             f"light      profile {p.path}",
-            f"           measured {p.measured_utc.date().isoformat()} ({self.age_days:.0f} days ago), "
+            f"           measured {p.measured_utc.date().isoformat()} ({_age_words(self.age_days)}), "
             f"black {p.black_cd_m2:.4g} cd/m2, max {p.max_cd_m2:.4g} cd/m2, SHA-256 {p.sha256[:12]}",
         ]
         for what, level, value, key in (
@@ -222,6 +222,13 @@ class LightPlan:
             "weber_contrast": None if math.isinf(self.weber) else self.weber,
             "michelson_contrast": self.michelson,
         }
+
+
+def _age_words(age_days: float) -> str:
+    """A profile's age for ``check``: "3 days ago", or how far in the future its date lies."""
+    if age_days < -1.0:
+        return f"{-age_days:.0f} days in the future: check the computer's clock and the profile's measured_utc"
+    return f"{max(age_days, 0.0):.0f} days ago"
 
 
 def profile_path(protocol, source: str = "") -> Path:
@@ -362,6 +369,24 @@ def apply_light(protocol, plan: LightPlan | None):
     })
     out._light_plan = plan
     return out
+
+
+def written_settings(protocol) -> dict:
+    """The protocol's settings as its file gave them, as a JSON-ready dict.
+
+    :func:`apply_light` puts the grey levels of ``light.background_cd_m2``
+    and of the dots' luminance into ``display.background`` and
+    ``dots.level``; they are left out here, so that the dict validates again
+    (with the light section resolved anew) after a change of its settings.
+    """
+    raw = protocol.model_dump(mode="json", exclude_none=True, exclude_unset=True)
+    settings = protocol.light
+    if settings is not None and light_plan(protocol) is not None:
+        if settings.background_cd_m2 is not None:
+            raw.get("display", {}).pop("background", None)
+        if settings.dots_field is not None:
+            raw.get("dots", {}).pop("level", None)
+    return raw
 
 
 def light_plan(protocol) -> LightPlan | None:

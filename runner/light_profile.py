@@ -30,6 +30,7 @@ import numpy as np
 
 from fitting.display_model import CHANNELS, MODEL_FIELDS, ChannelFit, GainOffsetGamma
 from fitting.errors import InputError
+from runner.light_profile_schema import check_profile, check_summary
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -249,44 +250,27 @@ def load_profile(path: str | Path, source: str = "", field: str = "light.profile
     except tomllib.TOMLDecodeError as exc:
         raise InputError(str(p), "TOML", f"not valid TOML ({exc})") from None
 
-    def need(key, kind, where=raw, prefix=""):
-        if key not in where:
-            raise InputError(str(p), prefix + key, "missing")
-        value = where[key]
-        if kind is float and isinstance(value, int) and not isinstance(value, bool):
-            value = float(value)
-        if not isinstance(value, kind):
-            raise InputError(str(p), prefix + key, f"expected {kind.__name__}")
-        return value
-
     if raw.get("kind") != PROFILE_KIND:
         raise InputError(str(p), "kind", f'expected "{PROFILE_KIND}"; is this a light profile?')
+    checked = check_profile(raw, str(p))
     try:
-        measured = datetime.fromisoformat(need("measured_utc", str))
+        measured = datetime.fromisoformat(checked.measured_utc)
     except ValueError:
         raise InputError(str(p), "measured_utc", "expected an ISO 8601 time like 2026-01-31T09:00:00+00:00") from None
     if measured.tzinfo is None:
         measured = measured.replace(tzinfo=timezone.utc)
-    models = {}
-    for channel, section in need("model", dict).items():
-        if channel not in CHANNELS or not isinstance(section, dict):
-            raise InputError(str(p), f"model.{channel}", f"expected one of {', '.join(CHANNELS)}")
-        values = [need(k, float, section, f"model.{channel}.") for k in MODEL_FIELDS]
-        if not all(math.isfinite(v) for v in values) or values[1] <= 0 or values[3] <= 0 or values[0] < 0:
-            raise InputError(str(p), f"model.{channel}", "expected finite parameters, amplitude and gamma above 0")
-        models[channel] = GainOffsetGamma(*values)
-    if "grey" not in models:
-        raise InputError(str(p), "model.grey", "missing; a profile needs the grey model")
-    refresh = raw.get("refresh_hz")
+    models = {channel: GainOffsetGamma(*(getattr(section, k) for k in MODEL_FIELDS))
+              for channel in CHANNELS if (section := getattr(checked.model, channel)) is not None}
+    check_summary(checked, str(p), models["grey"].min_cd_m2, models["grey"].max_cd_m2)
     return LightProfile(
         path=str(p),
         sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(),
         measured_utc=measured,
-        screen_cm=list(need("screen_cm", list)),
-        screen_px=list(need("screen_px", list)),
-        refresh_hz=float(refresh) if isinstance(refresh, (int, float)) else None,
+        screen_cm=list(checked.screen_cm),
+        screen_px=list(checked.screen_px),
+        refresh_hz=checked.refresh_hz,
         models=models,
-        fitted_anyway=bool(raw.get("fitted_anyway", False)),
+        fitted_anyway=checked.fitted_anyway,
     )
 
 

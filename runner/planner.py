@@ -44,10 +44,14 @@ from fitting.tables import write_csv
 from runner.observers import ObserverModel
 from runner.protocol import Protocol
 from runner.study import (QUANTITIES, TRIALS_FIELD, UNITS, Design, StudySettings, check_designs, console_table,
-                          coverage_se, design_columns, expand_designs, run_study, study_command)
+                          coverage_se, design_columns, expand_designs, failed_run_notes, run_study,
+                          study_command)
 
+#: Smallest --target-half-width: a hundredth of a degree is far finer than direction judgements are
+#: resolved (common practice, no source); smaller targets only overflow the trial counts.
+MIN_TARGET_HALF_WIDTH_DEG = 0.01
 STATISTICS = ["median_half_width", "mean_half_width", "sd_half_width", "q25_half_width", "q75_half_width",
-              "coverage", "coverage_se", "runs_with_interval", "runs"]
+              "coverage", "coverage_se", "runs_with_interval", "runs_without_trials", "runs"]
 
 
 # ---------------------------------------------------------------- designs
@@ -358,8 +362,10 @@ def plan_design(
     if not trial_factors or any(not (isinstance(f, (int, float)) and math.isfinite(f) and f > 0)
                                 for f in trial_factors):
         raise InputError("argument", "trial_factors", f"expected positive numbers, got {trial_factors!r}")
-    if target_half_width is not None and not (math.isfinite(target_half_width) and target_half_width > 0):
-        raise InputError("argument", "--target-half-width", f"expected a positive number, got {target_half_width!r}")
+    if target_half_width is not None and not (math.isfinite(target_half_width)
+                                              and MIN_TARGET_HALF_WIDTH_DEG <= target_half_width):
+        raise InputError("argument", "--target-half-width", f"expected at least {MIN_TARGET_HALF_WIDTH_DEG:g} deg, "
+                         f"got {target_half_width!r}")
     settings.check()
     designs = expand_designs(protocol, model, vary)
     notes = []
@@ -367,17 +373,20 @@ def plan_design(
         designs, notes = with_trial_factors(designs, trial_factors)
     notes += check_designs(designs)
     per_run = run_study(designs, settings, out_dir, "planning")
+    notes += per_run.attrs["notes"]
     columns = design_columns(designs)
     columns["family"] = [Design(d.protocol, d.model, {k: v for k, v in d.settings.items() if k != TRIALS_FIELD}).label
                          for d in designs]
     table = _summarise(per_run, columns)
+    notes += failed_run_notes(per_run, columns)
     runs = columns.merge(per_run, on="design")
     needed = _needed(table, target_half_width, designs) if target_half_width is not None else pd.DataFrame()
     return PlanResult(columns, table, runs, target_half_width, needed, protocol.title, notes)
 
 
 def _summarise(per_run: pd.DataFrame, columns: pd.DataFrame) -> pd.DataFrame:
-    g = per_run.groupby(["design", "quantity", "lag"], dropna=False, sort=False)
+    g = per_run.assign(failed=per_run["usable_trials"] == 0).groupby(["design", "quantity", "lag"], dropna=False,
+                                                                     sort=False)
     hw = g["half_width"]
     table = pd.DataFrame({
         "median_half_width": hw.median(),
@@ -387,6 +396,7 @@ def _summarise(per_run: pd.DataFrame, columns: pd.DataFrame) -> pd.DataFrame:
         "q75_half_width": hw.quantile(0.75),
         "coverage": g["covered"].mean(),
         "runs_with_interval": hw.count(),
+        "runs_without_trials": g["failed"].sum(),
         "runs": g.size(),
     }).reset_index()
     table["coverage_se"] = [coverage_se(c, n) for c, n in zip(table["coverage"], table["runs_with_interval"])]

@@ -725,6 +725,8 @@ def read_protocol_text(path: str | Path) -> str:
         raise InputError(str(p), "file", "does not exist")
     if p.is_dir():
         raise InputError(str(p), "file", "is a folder; expected a protocol file (.toml)")
+    if not p.is_file():  # a named pipe or a device would block the read or never end
+        raise InputError(str(p), "file", "is not a regular file (a pipe or a device?); expected a protocol file (.toml)")
     try:
         data = p.read_bytes()
     except OSError as exc:

@@ -31,10 +31,10 @@ from fitting.tables import write_csv
 from runner.observers import ObserverModel
 from runner.protocol import Protocol
 from runner.study import (QUANTITIES, UNITS, StudySettings, check_designs, console_table, coverage_se,
-                          design_columns, expand_designs, run_study, study_command)
+                          design_columns, expand_designs, failed_run_notes, run_study, study_command)
 
 STATISTICS = ["truth", "mean_estimate", "bias", "rmse", "median_ci_width", "coverage", "coverage_se",
-              "runs_with_estimate", "runs_with_interval", "runs"]
+              "runs_with_estimate", "runs_with_interval", "runs_without_trials", "runs"]
 #: Designs drawn in the figure (one row of panels each).
 FIGURE_DESIGNS = 6
 
@@ -52,7 +52,8 @@ class RecoveryResult:
         :data:`STATISTICS`. Bias and RMSE use the runs with an estimate,
         coverage and width the runs with an interval.
     runs : pandas.DataFrame
-        Every run's estimate, interval, true value and whether it covered.
+        Every run's estimate, interval, true value and whether it covered, and the
+        session's usable trials (``usable_trials``; 0: a failed run, not fitted).
     protocol_title : str
     notes : list of str
     """
@@ -175,7 +176,9 @@ def recover(protocol: Protocol, model: ObserverModel, settings: StudySettings, o
     designs = expand_designs(protocol, model, vary)
     notes = check_designs(designs)
     per_run = run_study(designs, settings, out_dir, "recovery")
+    notes += per_run.attrs["notes"]
     columns = design_columns(designs)
+    notes += failed_run_notes(per_run, columns)
     return RecoveryResult(columns, summarise(per_run, columns), columns.merge(per_run, on="design"),
                           protocol.title, notes)
 
@@ -195,7 +198,8 @@ def summarise(per_run: pd.DataFrame, columns: pd.DataFrame) -> pd.DataFrame:
                      "rmse": float(np.sqrt((err**2).mean())) if len(est) else float("nan"),
                      "median_ci_width": float((2 * part["half_width"]).median()),
                      "coverage": coverage, "coverage_se": coverage_se(coverage, len(covered)),
-                     "runs_with_estimate": len(est), "runs_with_interval": len(covered), "runs": len(part)})
+                     "runs_with_estimate": len(est), "runs_with_interval": len(covered),
+                     "runs_without_trials": int((part["usable_trials"] == 0).sum()), "runs": len(part)})
     table = columns.merge(pd.DataFrame(rows), on="design")
     return table[list(columns.columns) + ["quantity", "lag"] + STATISTICS]
 

@@ -45,6 +45,7 @@ from fitting.outputs import output_set
 from fitting.report import fit_trials
 from fitting.tables import prepare_trials
 from runner.launch import derive_seed, package_versions, simulate_rows
+from runner.light import written_settings
 from runner.observers import ObserverModel, load_model
 from runner.protocol import Protocol, parse_protocol, protocol_from_dict, read_protocol_text
 from runner.replay import TrackFactory
@@ -61,8 +62,12 @@ TRIALS_FIELD = "design.trials_per_track"
 RESULT_COLUMNS = ("quantity", "lag", "estimate", "ci_low", "ci_high")
 MAX_DESIGNS = 1000
 MAX_TASKS = 10**6
+#: Largest magnitude of a number in a task's result. Estimates are degrees of direction or PSE shift
+#: and decays in periods, bounded by the fit to 1000; intervals of ill-posed fits may reach far beyond,
+#: so the limit is generous: a number past it in a task file is damage, and the task is redone.
+MAX_RESULT = 1e6
 #: Bumped when a task's result would change for the same inputs (old results are then not reused).
-TASK_VERSION = 1
+TASK_VERSION = 2
 
 
 # ---------------------------------------------------------------- designs
@@ -141,6 +146,10 @@ def _with_setting(raw: dict, model: dict, name: str, value) -> None:
     if not key:
         raise InputError("argument", f"--vary {name}", "expected SECTION.FIELD of the protocol (e.g. "
                          "procedure.method) or model.KEY of the observer model")
+    optional = section in Protocol.model_fields and Protocol.model_fields[section].default is None
+    if optional and section not in raw:
+        raise InputError("argument", f"--vary {name}", f"the protocol has no [{section}] section; varying it would "
+                         "make another kind of protocol (write the section in the protocol to study it)")
     raw.setdefault(section, {})
     if not isinstance(raw[section], dict):
         raise InputError("argument", f"--vary {name}", f"{section} is not a section of the protocol")
@@ -176,7 +185,7 @@ def expand_designs(protocol: Protocol, model: ObserverModel, vary: list[str] | N
         return [Design(protocol, base_model, {})]
     designs = []
     for combo in itertools.product(*(values for _, values in axes)):
-        raw = protocol.model_dump(mode="json", exclude_none=True, exclude_unset=True)
+        raw = written_settings(protocol)
         model_raw = asdict(base_model)
         settings = dict(zip(names, combo))
         for name, value in settings.items():
@@ -228,23 +237,35 @@ def _finite(v) -> float | None:
     return v if math.isfinite(v) else None
 
 
-def run_session_task(task: dict) -> list[dict]:
+def run_session_task(task: dict) -> dict:
     """Simulate one session in memory, fit it, and return estimate and interval per quantity.
 
     ``task`` holds ``protocol`` (a JSON dump), ``model`` (a dict), ``seed``
     (this replicate's seed), ``n_boot`` and ``lapse``. Adapt-test blocks are
     fitted as by ``fit``; continuous streams by the n-back regression
-    (:mod:`fitting.nback`, lag = n − 1). Returns JSON-ready rows
-    ``quantity, lag, estimate, ci_low, ci_high`` (None where the fit gave no
-    value). Depends only on ``task``.
+    (:mod:`fitting.nback`, lag = n − 1). Depends only on ``task``.
+
+    Returns
+    -------
+    dict
+        ``usable_trials``: the session's trials left once practice,
+        bad-timing and missed trials are excluded; ``rows``: JSON-ready rows
+        ``quantity, lag, estimate, ci_low, ci_high`` (None where the fit gave
+        no value, and everywhere in a session without usable trials, which
+        is not fitted: a failed replicate of its design).
     """
-    protocol = protocol_from_dict(task["protocol"], "study task")
+    # the task holds the grey levels its design's light profile gave (see make_task): no profile to read again
+    protocol = protocol_from_dict(task["protocol"], "study task", resolve_light=False)
     rows = simulate_rows(protocol, ObserverModel(**task["model"]), task["seed"])
-    if protocol.stream is not None:
-        tuning, decay, baseline, lags = _fit_stream(rows, task)
+    lags = studied_lags(protocol)
+    usable = sum(1 for r in rows if not r["practice"] and r["timing_ok"] and r["response_cw"] is not None)
+    nothing = (np.nan,) * 3
+    if not usable:
+        tuning, decay, baseline = pd.DataFrame({"lag": []}), pd.DataFrame(), nothing
+    elif protocol.stream is not None:
+        tuning, decay, baseline = _fit_stream(rows, task)
     else:
         tuning, decay, baseline = _fit_block(rows, task, protocol)
-        lags = sorted(protocol.design.lags) if len(protocol.design.adapter_offsets_deg) >= 3 else []
     out = []
     tuning = tuning.set_index("lag")
     for lag in lags:
@@ -252,14 +273,59 @@ def run_session_task(task: dict) -> list[dict]:
         for quantity, est, lo, hi in (("amplitude", "amplitude_deg", "amplitude_ci_low", "amplitude_ci_high"),
                                       ("peak_offset", "peak_offset_deg", "peak_offset_ci_low",
                                        "peak_offset_ci_high")):
-            values = (row[est], row[lo], row[hi]) if row is not None else (np.nan,) * 3
+            values = (row[est], row[lo], row[hi]) if row is not None else nothing
             out.append({"quantity": quantity, "lag": int(lag), **_triple(values)})
     if len(lags) > 1:
         values = (decay["decay_periods"].iloc[0], decay["ci_low"].iloc[0], decay["ci_high"].iloc[0]) if len(decay) \
-            else (np.nan,) * 3
+            else nothing
         out.append({"quantity": "decay", "lag": None, **_triple(values)})
     out.append({"quantity": "baseline_pse", "lag": None, **_triple(baseline)})
-    return out
+    return {"usable_trials": usable, "rows": out}
+
+
+def studied_lags(protocol: Protocol) -> list[int]:
+    """The lags whose amplitude and peak offset a task reports (none with fewer than 3 adapter offsets)."""
+    if protocol.stream is not None:
+        return list(range(protocol.stream.nback_periods))
+    return sorted(protocol.design.lags) if len(protocol.design.adapter_offsets_deg) >= 3 else []
+
+
+def result_layout(protocol: Protocol) -> list[tuple[str, int | None]]:
+    """``(quantity, lag)`` of each row of a task's result, in order (see :func:`run_session_task`)."""
+    lags = studied_lags(protocol)
+    layout = [(quantity, lag) for lag in lags for quantity in ("amplitude", "peak_offset")]
+    return layout + ([("decay", None)] if len(lags) > 1 else []) + [("baseline_pse", None)]
+
+
+def valid_result(result, layout: list[tuple[str, int | None]]) -> bool:
+    """Whether a result read back from a task file is one :func:`run_session_task` could have returned.
+
+    Its rows must follow ``layout`` (:func:`result_layout` of the task's
+    protocol), every number be None or finite and within :data:`MAX_RESULT`,
+    each interval ordered, and a session without usable trials hold no numbers.
+    """
+    if not isinstance(result, dict) or set(result) != {"usable_trials", "rows"}:
+        return False
+    usable, rows = result["usable_trials"], result["rows"]
+    if isinstance(usable, bool) or not isinstance(usable, int) or usable < 0:
+        return False
+    if not isinstance(rows, list) or len(rows) != len(layout):
+        return False
+    for row, (quantity, lag) in zip(rows, layout):
+        if not isinstance(row, dict) or set(row) != set(RESULT_COLUMNS):
+            return False
+        if row["quantity"] != quantity or row["lag"] != lag or type(row["lag"]) is bool:
+            return False
+        numbers = [row[c] for c in ("estimate", "ci_low", "ci_high")]
+        for v in numbers:
+            if v is not None and (isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v)
+                                  or abs(v) > MAX_RESULT):
+                return False
+        if usable == 0 and any(v is not None for v in numbers):
+            return False
+        if numbers[1] is not None and numbers[2] is not None and numbers[1] > numbers[2]:
+            return False
+    return True
 
 
 def _fit_block(rows: list[dict], task: dict, protocol: Protocol):
@@ -279,12 +345,10 @@ def _fit_block(rows: list[dict], task: dict, protocol: Protocol):
 
 
 def _fit_stream(rows: list[dict], task: dict):
-    """``tuning``, ``decay``, the PSE μ₀ (estimate, low, high) and the lags of a stream session."""
+    """``tuning``, ``decay`` and the PSE μ₀ (estimate, low, high) of a stream session with usable trials."""
     from fitting.nback import StreamTrials, bootstrap_nback, fit_nback, result_tables
 
     used = [r for r in rows if not r["practice"] and r["response_cw"] is not None and r["timing_ok"]]
-    if not used:
-        raise InputError("simulated session", "stream", "no answered stream test to fit")
     trials = StreamTrials("sim01", np.array([r["test_offset_deg"] for r in used], dtype=float),
                           np.array([r["response_cw"] for r in used], dtype=float),
                           np.array([r["preceding_offsets_deg"] for r in used], dtype=float),
@@ -292,7 +356,7 @@ def _fit_stream(rows: list[dict], task: dict):
     boot = bootstrap_nback(fit_nback(trials, task["lapse"]), task["n_boot"], np.random.default_rng(task["seed"]))
     tables = result_tables(boot)
     low, high = boot.interval(boot.fit.pse_deg, boot.per_n[:, 0])
-    return tables["tuning"], tables["decay"], (boot.fit.pse_deg, low[0], high[0]), list(range(trials.n_back))
+    return tables["tuning"], tables["decay"], (boot.fit.pse_deg, low[0], high[0])
 
 
 def _triple(values) -> dict:
@@ -334,7 +398,7 @@ class StudySettings:
     def check(self) -> None:
         """Raise :class:`InputError` naming the option of a bad value."""
         check_count(self.runs, "--runs", 1, 100000)
-        check_count(self.seed, "--seed", 0, 2**63 - 1)
+        check_count(self.seed, "--seed", 0, 2**32 - 1)  # as every command's seed
         check_count(self.n_boot, "--bootstrap", 20, 100000)
         if self.jobs is not None:
             check_count(self.jobs, "--jobs", 1, 4096)
@@ -348,7 +412,12 @@ class StudySettings:
 
 
 def make_task(design: Design, replicate: int, s: StudySettings) -> dict:
-    """The argument of :func:`run_session_task` for replicate ``replicate`` of ``design``."""
+    """The argument of :func:`run_session_task` for replicate ``replicate`` of ``design``.
+
+    The protocol is the design's as loaded: with a ``[light]`` section, its
+    grey levels are those of the light profile, so the task's key changes
+    with the profile and workers need no copy of it.
+    """
     return {"protocol": design.protocol.model_dump(mode="json", exclude_none=True, exclude_unset=True), "model": asdict(design.model),
             "seed": session_seed(s.seed, replicate), "n_boot": s.n_boot,
             "lapse": s.lapse if s.lapse == "free" else float(s.lapse)}
@@ -376,7 +445,9 @@ def run_study(designs: list[Design], settings: StudySettings, folder: str | Path
     pandas.DataFrame
         One row per design, replicate, quantity and lag: ``design`` (index
         into ``designs``), ``replicate``, ``quantity``, ``lag``, ``estimate``,
-        ``ci_low``, ``ci_high``, ``truth``, ``half_width``, ``covered``.
+        ``ci_low``, ``ci_high``, ``usable_trials``, ``truth``, ``half_width``,
+        ``covered``. ``attrs["notes"]`` says how many task files were redone
+        because they could not be used (:func:`valid_result`).
 
     Raises
     ------
@@ -401,7 +472,8 @@ def run_study(designs: list[Design], settings: StudySettings, folder: str | Path
     folder = Path(folder)
     if folder.exists() and not folder.is_dir():
         raise InputError(str(folder), "--out", "exists and is not a folder")
-    store = TaskStore(folder / "tasks")
+    layouts = {key: result_layout(designs[where[0][0]].protocol) for key, where in index.items()}
+    store = TaskStore(folder / "tasks", accept=lambda key, result: valid_result(result, layouts[key]))
     pool = None
     results: dict = {}
     try:
@@ -420,12 +492,19 @@ def run_study(designs: list[Design], settings: StudySettings, folder: str | Path
         if pool is not None:
             pool.close()
         store.close()
+    redone = len(store.rejected)
     rows = []
     for key, where in index.items():
         for d, r in where:
-            for row in results[key]:  # fixed column order, whether fresh or read back from disk
-                rows.append({"design": d, "replicate": r, **{c: row[c] for c in RESULT_COLUMNS}})
-    return _with_truth(pd.DataFrame(rows), designs)
+            usable = results[key]["usable_trials"]
+            for row in results[key]["rows"]:  # fixed column order, whether fresh or read back from disk
+                rows.append({"design": d, "replicate": r, **{c: row[c] for c in RESULT_COLUMNS},
+                             "usable_trials": usable})
+    per_run = _with_truth(pd.DataFrame(rows), designs)
+    per_run.attrs["notes"] = [f"{redone} task file{'s' if redone > 1 else ''} in {store.folder} could not be used "
+                              "(unreadable, damaged, or not the task named) and "
+                              f"{'were' if redone > 1 else 'was'} redone"] if redone else []
+    return per_run
 
 
 def _with_truth(per_run: pd.DataFrame, designs: list[Design]) -> pd.DataFrame:
@@ -449,6 +528,25 @@ def design_columns(designs: list[Design]) -> pd.DataFrame:
                      "trials_per_track": d.protocol.design.trials_per_track,
                      "trials_per_condition": d.trials_per_condition})
     return pd.DataFrame(rows)
+
+
+def failed_run_notes(per_run: pd.DataFrame, designs: pd.DataFrame) -> list[str]:
+    """One note per design with simulated sessions that had no usable trial (every test missed or mistimed).
+
+    ``designs`` is :func:`design_columns`; such sessions are not fitted and count as runs without estimate.
+    """
+    notes = []
+    sessions = per_run.drop_duplicates(["design", "replicate"])
+    for d, part in sessions.groupby("design", sort=True):
+        failed, total = int((part["usable_trials"] == 0).sum()), len(part)
+        label = designs.loc[designs["design"] == d, "label"].iloc[0]
+        if failed == total:
+            notes.append(f"design {label}: none of its {total} simulated sessions had a usable trial (all missed, "
+                         "practice or mistimed); it has no estimates")
+        elif failed:
+            notes.append(f"design {label}: {failed} of {total} simulated sessions had no usable trial; they count "
+                         "as failed runs, without estimate or interval")
+    return notes
 
 
 def console_table(table: pd.DataFrame, numbers: tuple[str, ...], coverage_digits: int) -> pd.DataFrame:

@@ -45,6 +45,7 @@ from pathlib import Path
 from fitting.children import children_shielded, follow_parent
 from fitting.errors import InputError
 from fitting.heap import arrays_on_the_heap
+from fitting.outputs import file_mode
 
 #: How to install the optional Dask part.
 CLUSTER_EXTRA = "pip install 'aftershift[cluster]' (or pip install -e '.[cluster]' in a checkout)"
@@ -372,11 +373,24 @@ class TaskStore:
         Created if needed.
     option : str
         The option that named the folder, for error messages.
+    accept : callable, optional
+        ``accept(key, result) -> bool``: whether a stored result may be used
+        for ``key`` (its types and values); a result it refuses is redone.
+
+    Attributes
+    ----------
+    rejected : set of str
+        Keys whose file was there but could not be used (unreadable, about
+        another task, or refused by ``accept``).
     """
 
-    def __init__(self, folder: str | Path, option: str = "--out"):
+    def __init__(self, folder: str | Path, option: str = "--out",
+                 accept: Callable[[str, object], bool] | None = None):
         self.folder = Path(folder)
         self.option = option
+        self.accept = accept
+        self.rejected: set[str] = set()
+        self._mode = file_mode()  # task files follow the umask, as every output does
         try:
             self.folder.mkdir(parents=True, exist_ok=True)
             self._lock = open(self.folder / ".lock", "a+", encoding="utf-8")
@@ -401,11 +415,29 @@ class TaskStore:
         return self.folder / f"{key}.json"
 
     def load(self, key: str):
-        """The stored result of ``key``, or None (not stored, or unreadable: it will be redone)."""
+        """The stored result of ``key``, or None: not stored, or not usable (then added to
+        :attr:`rejected`; it will be redone).
+
+        A file is usable when it is JSON, names ``key`` as its own (a file
+        copied over another task's is not) and ``accept`` takes its result.
+        """
         try:
-            return json.loads(self._path(key).read_text(encoding="utf-8"))["result"]
-        except (OSError, ValueError, KeyError, TypeError):
+            text = self._path(key).read_text(encoding="utf-8")
+        except FileNotFoundError:
             return None
+        except (OSError, UnicodeDecodeError):
+            self.rejected.add(key)
+            return None
+        try:
+            stored = json.loads(text)
+        except (ValueError, RecursionError):
+            stored = None
+        if not (isinstance(stored, dict) and stored.get("key") == key and "result" in stored
+                and (self.accept is None or self.accept(key, stored["result"]))):
+            self.rejected.add(key)
+            return None
+        self.rejected.discard(key)
+        return stored["result"]
 
     def save(self, key: str, result, about: dict | None = None) -> None:
         """Store ``result`` (JSON-ready) atomically, with ``about`` for people reading the file.
@@ -415,11 +447,12 @@ class TaskStore:
         InputError
             The folder cannot be written (full disk, read-only).
         """
-        text = json.dumps({"about": about or {}, "result": result}, sort_keys=True, allow_nan=True)
+        text = json.dumps({"key": key, "about": about or {}, "result": result}, sort_keys=True, allow_nan=True)
         path = self._path(key)
         try:
             fd, tmp = tempfile.mkstemp(prefix=".part-", dir=self.folder)
             try:
+                os.fchmod(fd, self._mode)
                 with os.fdopen(fd, "w", encoding="utf-8") as fh:
                     fh.write(text + "\n")
                     fh.flush()

@@ -19,6 +19,8 @@ import pytest
 from scipy import optimize, stats
 
 from fitting.display_model import (
+    GAIN_RANGE,
+    GAMMA_RANGE,
     GainOffsetGamma,
     ReadingsRefused,
     fit_channel,
@@ -316,6 +318,69 @@ def test_old_profile_warns_and_sidecar_records_hash_and_age(tmp_path, capsys):
     assert sidecar["light"]["background_cd_m2"] == pytest.approx(2.0)
     assert sidecar["display_profile"]["background"] == pytest.approx((1.5 / 99.5) ** (1 / 2.2), rel=1e-9)
     assert "measured display" in sidecar["safety"]["relative_luminance_from"]
+
+
+EXAMPLE_PROFILE = Path(__file__).resolve().parents[1] / "protocols" / "light" / "example_profile.toml"
+
+
+@pytest.mark.parametrize("pattern, replacement, field", [
+    # model parameters no display has; they printed wrong luminances with exit 0 (gamma 1e308 gave grey level 1,
+    # 110 cd/m2, for a 0.5 cd/m2 background) or failed later blaming the protocol (gain 0)
+    (r"^gamma = .*", "gamma = 1e308", "model.grey.gamma"),
+    (r"^gamma = .*", "gamma = 0.1", "model.grey.gamma"),
+    (r"^amplitude_cd_m2 = .*", "amplitude_cd_m2 = 1e30", "model.grey.amplitude_cd_m2"),
+    (r"^amplitude_cd_m2 = .*", "amplitude_cd_m2 = 0", "model.grey.amplitude_cd_m2"),
+    (r"^gain = .*", "gain = 0", "model.grey.gain"),
+    (r"^gain = .*", "gain = -1", "model.grey.gain"),
+    (r"^black_cd_m2 = .*", "black_cd_m2 = -0.1", "black_cd_m2"),
+    (r"^offset = .*", "offset = 0.5", "model.grey.offset"),
+    # types, versions, unknown keys, numbers that are not finite, summaries that disagree with the model
+    (r"^fitted_anyway = .*", 'fitted_anyway = "no"', "fitted_anyway"),
+    (r"^fitted_anyway = .*", "fitted_anyway = false\ncolour_space = 3", "colour_space"),
+    (r"^version = .*", "version = 2", "version"),
+    (r"^version = .*", 'version = "1"', "version"),
+    (r"^black_cd_m2 = .*", "black_cd_m2 = nan", "black_cd_m2"),
+    (r"^max_cd_m2 = .*", "max_cd_m2 = inf", "max_cd_m2"),
+    (r"^max_cd_m2 = .*", "max_cd_m2 = 200.0", "max_cd_m2"),
+    (r"^level = \[", "level = [0.5, ", "readings"),
+    (r"^level = \[", 'level = ["0.5", ', "readings.level"),
+    (r"^gun = \[", 'gun = ["pink", ', "readings"),
+    (r"^measured_utc = .*", "measured_utc = 2026", "measured_utc"),
+])
+def test_a_profile_with_impossible_or_malformed_values_is_one_line_naming_the_profile(
+        tmp_path, capsys, pattern, replacement, field):
+    import re
+
+    text, n = re.subn(pattern, replacement, EXAMPLE_PROFILE.read_text(encoding="utf-8"), count=1, flags=re.M)
+    assert n == 1
+    profile = tmp_path / "profile.toml"
+    profile.write_text(text, encoding="utf-8")
+    p = write_protocol(tmp_path, 'profile = "profile.toml"\nbackground_cd_m2 = 0.5\ndots_cd_m2 = 40.0')
+    assert main(["check", str(p)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.startswith(f"aftershift: {profile}: {field}:"), err
+    assert len(err.splitlines()) == 1, err
+
+
+def test_profile_limits_are_where_the_fit_looks_and_a_fitted_profile_loads(tmp_path):
+    # a profile the fit writes must always load again: the loader's ranges are the fit's bounds
+    write_profile(tmp_path, black=0.4, amplitude=99.6, gain=GAIN_RANGE[1], gamma=GAMMA_RANGE[0])
+    assert load_profile(tmp_path / "profile.toml").grey.gamma == GAMMA_RANGE[0]
+    write_profile(tmp_path, black=0.4, amplitude=99.6, gain=GAIN_RANGE[0] - 0.01)
+    with pytest.raises(InputError, match="model.grey.gain: 0.19 is outside 0.2..5"):
+        load_profile(tmp_path / "profile.toml")
+    # sRGB's reference display has gamma 2.2 (IEC 61966-2-1); it must lie well inside the range
+    assert GAMMA_RANGE[0] < 2.2 / 2 and GAMMA_RANGE[1] > 2.2 * 2
+
+
+def test_a_profile_dated_in_the_future_says_so(tmp_path, capsys):
+    write_profile(tmp_path, black=0.5, amplitude=99.5, days_ago=-400)
+    p = write_protocol(tmp_path, 'profile = "profile.toml"\nbackground_cd_m2 = 2.0')
+    assert main(["check", str(p)]) == 0
+    out, err = capsys.readouterr()
+    assert "(400 days in the future: check the computer's clock" in out, out
+    assert "days ago" not in out
+    assert "dated 400 days in the future" in err
 
 
 def test_protocols_without_light_are_unchanged(tmp_path):

@@ -52,6 +52,19 @@ method = "constant"
 levels_deg = [-4.5, -3.0, -1.5, 1.5, 3.0, 4.5]
 """
 
+# four adapter offsets, six trials per track: sessions short enough to have every trial missed
+TINY = """
+title = "study test: short sessions"
+[design]
+adapter_offsets_deg = [-60.0, -30.0, 30.0, 60.0]
+lags = [0]
+trials_per_track = 6
+practice_trials = 0
+[procedure]
+method = "updown"
+bounds_deg = [-30.0, 30.0]
+"""
+
 
 def _write(tmp_path, text, name="protocol.toml"):
     path = tmp_path / name
@@ -333,3 +346,138 @@ def test_a_killed_worker_starter_is_one_lost_worker_not_a_traceback(tmp_path, mo
             workpool._submit(pool, abs, -1)
     finally:
         pool.shutdown(wait=False, cancel_futures=True)
+
+
+def test_plan_and_recover_run_on_the_bundled_protocol_in_cd_m2(tmp_path, capsys):
+    # plan and recover once refused every protocol with [light]: the task's copy of the protocol held both
+    # the resolved display.background and light.background_cd_m2, and was validated again
+    import json
+
+    import tomllib
+
+    path = ROOT / "protocols" / "calibrated_luminance.toml"
+    tiny = ["--runs", "1", "--bootstrap", "20", "--jobs", "1", "--vary", 'procedure.method=["updown"]']  # cheap tracks
+    assert main(["plan", str(path), *tiny, "--vary", "design.trials_per_track=[12]", "--out", str(tmp_path / "plan")]) == 0
+    vary = "light.background_cd_m2=[0.5, 2.0]"
+    assert main(["recover", str(path), *tiny, "--vary", vary, "--out", str(tmp_path / "rec")]) == 0
+    capsys.readouterr()
+    assert (tmp_path / "plan" / "plan.csv").is_file() and (tmp_path / "rec" / "recovery.csv").is_file()
+    # each design's task holds the grey level its luminance needs on the profile's display, by hand from the
+    # gain-offset-gamma model L = black + amplitude * (gain * v + 1 - gain) ** gamma (Berns 1996; from memory)
+    grey = tomllib.loads((path.parent / "light" / "example_profile.toml").read_text())["model"]["grey"]
+    levels = {}
+    for task_file in (tmp_path / "rec" / "tasks").glob("*.json"):
+        task = json.loads(task_file.read_text())
+        luminance = float(task["about"]["designs"][0].split(",")[-1].split("=")[1])
+        frac = ((luminance - grey["black_cd_m2"]) / grey["amplitude_cd_m2"]) ** (1 / grey["gamma"])
+        levels[luminance] = (frac - (1 - grey["gain"])) / grey["gain"]
+    assert sorted(levels) == [0.5, 2.0]
+    designs = expand_designs(parse_protocol(path.read_text(), str(path)), ObserverModel(), [vary])
+    assert [d.protocol.display.background for d in designs] == pytest.approx([levels[0.5], levels[2.0]], rel=1e-9)
+
+
+def test_sessions_without_usable_trials_are_failed_runs_not_the_end_of_the_study(tmp_path, capsys):
+    # one session whose every trial was missed once ended the whole study with exit 2, naming no design
+    path = _write(tmp_path, TINY)
+    settings = ["--runs", "6", "--seed", "4", "--bootstrap", "20", "--jobs", "1"]
+    assert main(["recover", str(path), *settings, "--vary", "model.miss_rate=[0.97, 0.9999]",
+                 "--out", str(tmp_path / "r")]) == 0
+    out = capsys.readouterr().out
+    # count the sessions without an answered trial directly from the simulated sessions
+    protocol = parse_protocol(TINY)
+    failed = {}
+    for miss in (0.97, 0.9999):
+        model = ObserverModel(miss_rate=miss, spread_between_observers=0.0)
+        failed[miss] = sum(not any(row["response_cw"] is not None and not row["practice"]
+                                   for row in simulate_rows(protocol, model, derive_seed(4, r))) for r in range(6))
+    assert 0 < failed[0.97] < 6 and failed[0.9999] == 6
+    table = pd.read_csv(tmp_path / "r" / "recovery.csv")
+    assert list(table.groupby("label", sort=False)["runs_without_trials"].max()) == [failed[0.97], 6]
+    assert f"design miss_rate=0.97: {failed[0.97]} of 6 simulated sessions had no usable trial" in out
+    assert "design miss_rate=0.9999: none of its 6 simulated sessions had a usable trial" in out
+    runs = pd.read_csv(tmp_path / "r" / "recovery_runs.csv")
+    assert runs.loc[runs["usable_trials"] == 0, "estimate"].isna().all()
+    # plan counts them the same way
+    assert main(["plan", str(path), *settings, "--vary", "model.miss_rate=[0.97]", "--vary",
+                 "design.trials_per_track=[6]", "--out", str(tmp_path / "p")]) == 0
+    plan = pd.read_csv(tmp_path / "p" / "plan.csv")
+    assert set(plan["runs_without_trials"]) == {failed[0.97]}
+
+
+def test_task_files_that_do_not_validate_are_redone_with_one_note(tmp_path):
+    # a text where a number belongs once gave a 56-line traceback, 1e308 was averaged into the table (RMSE inf),
+    # and another replicate's file copied over a task's was used as that task's result
+    import json
+
+    protocol = parse_protocol(TINY)
+    settings = StudySettings(runs=4, seed=2, n_boot=20, jobs=1, progress=False)
+    first = recover(protocol, ObserverModel(), settings, tmp_path / "r")
+    assert not any("redone" in n for n in first.notes)
+    files = {json.loads(f.read_text())["about"]["replicate"]: f for f in (tmp_path / "r" / "tasks").glob("*.json")}
+    assert sorted(files) == [0, 1, 2, 3]
+
+    def edit(replicate, change):
+        stored = json.loads(files[replicate].read_text())
+        change(stored["result"]["rows"][-1])
+        files[replicate].write_text(json.dumps(stored))
+
+    edit(0, lambda row: row.update(estimate="abc"))
+    edit(1, lambda row: row.update(estimate=1e308))
+    files[2].write_text(files[3].read_text())   # replicate 3's result under replicate 2's name
+    again = recover(protocol, ObserverModel(), settings, tmp_path / "r")
+    pd.testing.assert_frame_equal(first.runs, again.runs)
+    assert [n for n in again.notes if "redone" in n] == \
+        [f"3 task files in {tmp_path / 'r' / 'tasks'} could not be used (unreadable, damaged, or not the task named) "
+         "and were redone"]
+    # the files were written again and are used as they are from now on
+    assert not any("redone" in n for n in recover(protocol, ObserverModel(), settings, tmp_path / "r").notes)
+
+
+def test_study_and_output_options_refuse_what_would_misfire(tmp_path, capsys, monkeypatch):
+    path = _write(tmp_path, TINY)
+    work = tmp_path / "cwd"
+    work.mkdir()
+    monkeypatch.chdir(work)
+    study = ["--runs", "1", "--bootstrap", "20", "--jobs", "1"]
+    refused = [
+        # an empty --out once wrote into the current folder
+        (["plan", str(path), *study, "--out", ""], "argument: --out: is empty"),
+        (["recover", str(path), *study, "--out", ""], "argument: --out: is empty"),
+        (["simulate", str(path), "--out", " "], "argument: --out: is empty"),
+        (["fit", str(tmp_path / "no-logs"), "--out", ""], "argument: --out: is empty"),
+        (["compare", str(tmp_path / "no-fit"), str(tmp_path / "p.csv"), "--out", ""], "argument: --out: is empty"),
+        # a target no interval reaches (1e-300 overflowed the trial counts to 0)
+        (["plan", str(path), *study, "--target-half-width", "1e-300", "--out", "p"],
+         "--target-half-width: expected at least 0.01 deg"),
+        # a section the protocol lacks (it silently turned an adapt-test protocol into a stream)
+        (["recover", str(path), *study, "--vary", "stream.period_frames=[6]", "--out", "r"],
+         "--vary stream.period_frames: the protocol has no [stream] section"),
+        # the seed limit of every other command
+        (["recover", str(path), *study, "--seed", str(2**32), "--out", "r"], "--seed: a seed must be from 0 to"),
+    ]
+    for args, message in refused:
+        assert main(args) == 2, args
+        err = capsys.readouterr().err.strip()
+        assert message in err and len(err.splitlines()) == 1, (args, err)
+    assert not list(work.iterdir())
+
+
+def test_a_named_pipe_as_the_protocol_is_refused_not_waited_on(tmp_path):
+    fifo = tmp_path / "f.toml"
+    os.mkfifo(fifo)
+    done = run_cli("check", fifo, timeout=30)   # it used to wait for a writer for ever
+    assert done.returncode == 2
+    assert done.stderr.strip() == f"aftershift: {fifo}: file: is not a regular file (a pipe or a device?); " \
+                                  "expected a protocol file (.toml)"
+
+
+def test_task_files_follow_the_umask_as_other_outputs_do(tmp_path):
+    old = os.umask(0o027)
+    try:
+        recover(parse_protocol(TINY), ObserverModel(), StudySettings(runs=1, seed=1, n_boot=20, jobs=1, progress=False),
+                tmp_path / "r").write(tmp_path / "r")
+    finally:
+        os.umask(old)
+    task, = (tmp_path / "r" / "tasks").glob("*.json")
+    # 0666 & ~umask, the mode open(2) gives a new file (POSIX open(); the same rule as fitting.outputs)
+    assert task.stat().st_mode & 0o777 == 0o640 == (tmp_path / "r" / "recovery.csv").stat().st_mode & 0o777
