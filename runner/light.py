@@ -332,6 +332,9 @@ def plan_light(protocol, source: str = "", now=None) -> LightPlan | None:
         if math.isnan(dots_level):
             raise _range_error(source, f"light.{dots_key}", target, profile, "dots")
     dots_cd = _cd_m2(profile, light, dots_level, colour)
+    if np.allclose(dots_level * colour, bg_level, rtol=0.0, atol=1e-6):
+        raise InputError(source, f"light.{dots_key}" if dots_key else "dots.level",
+                         f"dots at the background's luminance ({bg_cd:.4g} cd/m2) are invisible")
     age = profile.age_days(now)
     warnings = []
     if age > settings.max_age_days:

@@ -275,6 +275,8 @@ def test_weber_contrast_and_dots_in_cd_m2(tmp_path):
     ('background_cd_m2 = 50.0\nmichelson_contrast = 0.5', "light.michelson_contrast"),
     ('weber_contrast = 2.0', "light"),                                # a contrast needs a background
     ('dots_cd_m2 = 5.0\nweber_contrast = 2.0', "light"),              # two ways to give the dots
+    ('background_cd_m2 = 5.0\ndots_cd_m2 = 5.0', "light.dots_cd_m2"),  # dots at the background: invisible
+    ('background_cd_m2 = 5.0\nweber_contrast = 0.0', "light.weber_contrast"),
 ])
 def test_out_of_range_or_conflicting_luminance_exits_2_naming_the_field(tmp_path, capsys, light, field):
     write_profile(tmp_path, black=0.5, amplitude=99.5)
