@@ -141,7 +141,7 @@ def cmd_run(args) -> int:
     check_identifier(args.observer, "--observer")
     check_identifier(args.session, "--session")
     _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
-    check_can_start(args.out, args.observer, args.session, args.resume)
+    check_can_start(args.out, args.observer, args.session, args.resume, args.seed)
     protocol, text = _load(args.protocol)
     light = _light(protocol)
     screening = _screen(protocol, args.protocol, args.flicker_ack)

@@ -102,7 +102,11 @@ def resume_seed_and_model(out_dir: Path, n_observers: int, session: str, seed: i
         started with, or sidecars that disagree with each other.
     """
     names = [f"sim{i + 1:02d}" for i in range(n_observers)]
-    for source, content in sidecar_settings(out_dir, names, session):
+    found = sidecar_settings(out_dir, names, session)
+    if not found and seed is None:
+        _refuse_unknown_seed(log_paths(out_dir, names[0], session)[1], "the original --seed (and --model, "
+                             "if it used one)")
+    for source, content in found:
         if seed is not None and content["seed"] != seed:
             _refuse_conflict(source, "seed", "--seed", content["seed"], seed)
         seed = content["seed"]
@@ -116,14 +120,23 @@ def resume_seed_and_model(out_dir: Path, n_observers: int, session: str, seed: i
                 raise InputError(source, "base_model", "the session was started with another observer model; "
                                  "resume without --model (the sidecar rules a resume) or with the original file")
             model = started
-    return (0 if seed is None else seed), (model or ObserverModel())
+    return seed, (model or ObserverModel())
 
 
-def check_can_start(out_dir: str | Path, observer: str, session: str, resume: bool) -> None:
+def _refuse_unknown_seed(sidecar: Path, what: str) -> None:
+    """A resume that would have to guess the seed: no sidecar records it and no ``--seed`` names it."""
+    raise InputError(str(sidecar), "seed", f"is missing, so the seed this session started with is unknown "
+                     f"(the run stopped before writing it); resume with {what}")
+
+
+def check_can_start(out_dir: str | Path, observer: str, session: str, resume: bool,
+                    seed: int | None = None) -> None:
     """Refuse, before any window opens, a session that cannot start in ``out_dir``.
 
     Without ``resume`` an existing log or sidecar of this session is refused;
-    in every case the folder (or its nearest existing parent) must be writable.
+    with it, a session whose sidecar (and so its seed) is missing is refused
+    unless ``seed`` is given; in every case the folder (or its nearest
+    existing parent) must be writable.
 
     Raises
     ------
@@ -132,6 +145,8 @@ def check_can_start(out_dir: str | Path, observer: str, session: str, resume: bo
     path, sidecar = log_paths(out_dir, observer, session)
     if not resume:
         refuse_existing(path, sidecar)
+    elif seed is None and not sidecar.exists():
+        _refuse_unknown_seed(sidecar, "--seed and the seed it started with (any seed if it was drawn at random)")
     folder = Path(out_dir).absolute()
     while not folder.exists() and folder != folder.parent:
         folder = folder.parent
@@ -256,7 +271,8 @@ def simulate(
     (:func:`runner.observers.draw_observers`).  ``light``, when given, is the
     light profile's record (:meth:`runner.light.LightPlan.sidecar`) for the
     sidecars.  ``seed`` and ``model`` may be None: a resume then takes them
-    from the sidecars, a new session uses 0 and the built-in model.  Rows are
+    from the sidecars (and is refused when no sidecar records the seed), a
+    new session uses 0 and the built-in model.  Rows are
     written at once but synced to disk only at breaks and at the end (they can
     be made again from the seed), unless ``sync_every_row`` asks for a
     person's per-trial sync.

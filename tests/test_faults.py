@@ -95,6 +95,26 @@ def test_log_without_sidecar_and_no_rows_is_resumed(capsys, tmp_path, whole):
     _resume_equals_whole(capsys, out, whole)
 
 
+@pytest.mark.parametrize("left", ["header only", "nothing"])
+def test_resume_without_a_sidecar_needs_the_original_seed(capsys, tmp_path, whole, left):
+    # killed before the sidecar was written: guessing seed 0 would replay another seed's trials without a word
+    out = _copy(whole, tmp_path / "o", rows=0, sidecar=False) if left == "header only" else tmp_path / "o"
+    before = logs(out)
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, "--observers", "2", "--resume")
+    line = one_line(err)
+    assert code == 2 and SIDE in line and "--seed" in line
+    assert logs(out) == before and not (out / SIDE).exists()
+    _resume_equals_whole(capsys, out, whole)
+
+
+def test_run_resume_without_a_sidecar_needs_a_seed_before_any_window(capsys, tmp_path, monkeypatch):
+    monkeypatch.delenv("DISPLAY", raising=False)  # refused before the screen is opened
+    (tmp_path / "P01-s1.trials.csv").write_text(",".join(trial_log.COLUMNS) + "\n")
+    code, err = cli(capsys, "run", PILOT, "--observer", "P01", "--out", tmp_path, "--resume")
+    line = one_line(err)
+    assert code == 2 and "P01-s1.session.json" in line and "--seed" in line
+
+
 def test_log_with_rows_but_no_sidecar_is_refused(capsys, tmp_path, whole):
     out = _copy(whole, tmp_path / "o", rows=20, sidecar=False)
     before = logs(out)
