@@ -1,15 +1,19 @@
 """Rules for the bytes of a trial log, shared by the session writer and ``fit``.
 
-A trial log is a CSV file whose rows are each written with one ``write``.
-A process killed inside that write, or a power cut, can leave the last line
-incomplete, or followed by NUL bytes where the file system had reserved
-space that was never written.  The rules for the end of a log are:
+A trial log is a CSV file whose rows are each written with one ``write``,
+newline included.  A process killed inside that write, or a power cut, can
+leave the last line incomplete, or followed by NUL bytes where the file
+system had reserved space that was never written.  The rules for the end of
+a log are:
 
-* a last line that lacks only its newline, but whose cells are all present
-  and parse, is a complete trial: it is kept (a writer adds the newline);
-* anything else after the last newline is a *torn* line: a writer cuts it
-  off and says so; ``fit`` refuses the log (exit 2) naming the torn line,
-  unless a session is writing the log at that moment (its lock is held);
+* anything after the last newline is a *torn* line, even when its cells all
+  parse: a cut inside the last number still reads as a number
+  ("180;-90;-3" for "180;-90;-30");
+* a writer cuts a torn line off and says so;
+* ``fit`` leaves out a torn line whose cells all parse, with a note, and
+  refuses (exit 2) one with missing or unreadable cells, naming it, unless a
+  session is writing the log at that moment (its lock is held): then the
+  line being written is left out;
 * a line holding NUL bytes, and everything after it, is torn.
 
 :func:`check_cells` is the cell-by-cell validation used both here and when
@@ -105,23 +109,23 @@ class Tail:
     Attributes
     ----------
     keep : int
-        Bytes of the file that hold complete lines (a complete last line
-        without newline included).
-    needs_newline : bool
-        The kept part ends with a complete row that lacks its newline.
+        Bytes of the file that hold complete lines (each with its newline).
     torn : bytes
         The bytes after ``keep`` (empty when nothing is torn).
     torn_line : int
         Line number (1-based) where the torn part starts; 0 if none.
     reason : str
         Why the part is torn, in plain words.
+    cells_parse : bool
+        The torn part is one line whose cells all parse: only its newline
+        may be missing, or it may be cut inside its last cell.
     """
 
     keep: int
-    needs_newline: bool
     torn: bytes
     torn_line: int
     reason: str
+    cells_parse: bool = False
 
     def describe(self) -> str:
         """One phrase saying why the line is torn and what it held."""
@@ -139,36 +143,19 @@ def examine_tail(data: bytes) -> Tail:
     nul = data.find(b"\x00")
     if nul >= 0:
         keep = data.rfind(b"\n", 0, nul) + 1
-        return Tail(keep, False, data[keep:], data.count(b"\n", 0, keep) + 1, "NUL bytes, as left by a power cut")
+        return Tail(keep, data[keep:], data.count(b"\n", 0, keep) + 1, "NUL bytes, as left by a power cut")
     keep = data.rfind(b"\n") + 1
     if keep == len(data):
-        return Tail(keep, False, b"", 0, "")
+        return Tail(keep, b"", 0, "")
     line_no = data.count(b"\n", 0, keep) + 1
     if keep == 0:
-        return Tail(0, False, data, 1, "the header was cut")
+        return Tail(0, data, 1, "the header was cut")
     header = _cells(data[: data.find(b"\n")])
     cells = _cells(data[keep:])
-    if header is not None and cells is not None and check_cells(header, cells) is None \
-            and _same_list_lengths(data[:keep], header, cells):
-        return Tail(len(data), True, b"", 0, "")
-    return Tail(keep, False, data[keep:], line_no, "missing or cut cells")
-
-
-def _same_list_lengths(before: bytes, header, cells) -> bool:
-    """A cut inside the last cell can still parse; a list cell must match the row before in length."""
-    if not header or CELL_KINDS.get(header[-1]) != "numbers":
-        return True
-    lines = before.rstrip(b"\n").split(b"\n")
-    if len(lines) < 2:
-        return True
-    prev = _cells(lines[-1])
-    if prev is None or len(prev) != len(header):
-        return True
-    return _entries(prev[-1]) == _entries(cells[-1])
-
-
-def _entries(text: str) -> int:
-    return 0 if text == "" else len(text.split(";"))
+    if header is not None and cells is not None and check_cells(header, cells) is None:
+        return Tail(keep, data[keep:], line_no, "no newline at its end (rows are written whole with their "
+                    "newline; its last cell may be cut)", cells_parse=True)
+    return Tail(keep, data[keep:], line_no, "missing or cut cells")
 
 
 def lock_path(log: str | Path) -> Path:

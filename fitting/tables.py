@@ -27,6 +27,7 @@ import csv
 import io
 import json
 import os
+import sys
 from pathlib import Path
 
 import numpy as np
@@ -212,10 +213,10 @@ def validate_trials(raw: pd.DataFrame, source: str, row_names: list[str] | None 
 def read_log_table(path: Path) -> pd.DataFrame:
     """The rows of one log file as text, after the tail rules of :mod:`fitting.logfile`.
 
-    A complete last row without its newline is kept.  A torn last line is
-    an error (exit 2) naming it, unless a session is writing the log right
-    now (its lock is held), in which case the line being written is left
-    out.  A row before the last with the wrong number of cells is an error.
+    A last line without its newline is torn.  Left out with a note when
+    its cells all parse (it may be cut inside its last cell), otherwise an
+    error (exit 2) naming it, unless a session is writing the log right now
+    (its lock is held), in which case the line being written is left out.  A row before the last with the wrong number of cells is an error.
 
     Raises
     ------
@@ -229,7 +230,12 @@ def read_log_table(path: Path) -> pd.DataFrame:
         raise InputError(source, "file", f"cannot be read ({exc.strerror})") from None
     tail = examine_tail(data)
     if tail.torn:
-        if not is_being_written(path):
+        if is_being_written(path):
+            pass                    # the line a running session is writing
+        elif tail.cells_parse:
+            print(f"note: {source}: line {tail.torn_line} left out: torn ({tail.describe()}); resume the "
+                  "session (--resume) to write it again", file=sys.stderr)
+        else:
             raise InputError(source, f"line {tail.torn_line}",
                              f"torn ({tail.describe()}): the session stopped "
                              "while writing it; resume the session (--resume) to repair the log, or fit a copy "

@@ -6,8 +6,8 @@ completed trial.  Each row is handed to the operating system with a single
 trial in progress; with a person, each row is also synced to disk (fsync),
 so a power cut loses nothing either.  Simulated observers sync at breaks and
 at the end (their rows can be made again from the seed).  The tail of a log
-follows the rules of :mod:`fitting.logfile` when it is reopened: a complete
-last row without its newline is kept, a torn line is cut off and reported.
+follows the rules of :mod:`fitting.logfile` when it is reopened: a torn last
+line (one without its newline) is cut off and reported.
 A new log's header is written under a temporary name and renamed into
 place.  One process at a time writes a session
 (:mod:`runner.session_lock`).  A full disk cuts the log back to its last
@@ -131,15 +131,15 @@ def _header_text() -> str:
 def read_rows(path: str | Path, repair: bool = False, repairs: list | None = None) -> list[dict[str, str]]:
     """Read a trial log written by :class:`TrialLog`, applying the tail rules.
 
-    See :mod:`fitting.logfile`: a complete last row that lacks only its
-    newline is kept; a torn last line is dropped with a warning on stderr.
+    See :mod:`fitting.logfile`: a torn last line (anything after the last
+    newline) is dropped with a warning on stderr.
 
     Parameters
     ----------
     path : str or Path
     repair : bool
-        Make the file match what is returned: cut a torn line off, add a
-        missing newline, write the header of an empty log (used before
+        Make the file match what is returned: cut a torn line off, write
+        the header of an empty log (used before
         appending, under the session's lock).
     repairs : list, optional
         Receives one dict per change made (for the sidecar).
@@ -179,13 +179,6 @@ def read_rows(path: str | Path, repair: bool = False, repairs: list | None = Non
         data = data[: tail.keep]
         if repair:
             _truncate(p, tail.keep)
-    if tail.needs_newline:
-        if repair:
-            with open(p, "ab") as fh:
-                fh.write(b"\n")
-                fh.flush()
-                os.fsync(fh.fileno())
-        _note(repairs, p, "newline", "the last row was complete but lacked its newline; kept it")
     reader = csv.reader(io.StringIO(data.decode("utf-8", "replace")))
     head = next(reader, None)
     if head is None or tuple(head) != COLUMNS:

@@ -21,8 +21,10 @@ import stat
 import tempfile
 from pathlib import Path
 
+import pandas as pd
 import pytest
 
+from conftest import PROTOCOLS
 from fault_helpers import PILOT, PILOT_ARGS, as_nobody, cli, leftovers, logs, one_line, resume_equals, tmpfs
 from runner import trial_log
 from runner.cli import main
@@ -126,13 +128,39 @@ def test_log_with_rows_but_no_sidecar_is_refused(capsys, tmp_path, whole):
 # --- the tail of a log ------------------------------------------------------------------------------------------
 
 
-def test_complete_last_row_without_newline_is_kept_not_rerun(capsys, tmp_path, whole):
+def test_last_row_without_its_newline_is_torn_cut_and_rerun(capsys, tmp_path, whole):
     out = _copy(whole, tmp_path / "o", rows=40)
     out.joinpath(NAME).write_bytes(out.joinpath(NAME).read_bytes()[:-1])  # only the newline is missing
     err = _resume_equals_whole(capsys, out, whole)
-    assert "lacked its newline" in err
+    assert "torn line 41" in err and "no newline" in err
     sidecar = json.loads((out / SIDE).read_text())
-    assert sidecar["parts"][-1]["log_repairs"][0]["kind"] == "newline"
+    assert sidecar["parts"][-1]["log_repairs"][0]["kind"] == "torn"
+
+
+STREAM = PROTOCOLS / "stream_nback.toml"
+
+
+@pytest.fixture(scope="module")
+def stream_whole(tmp_path_factory) -> Path:
+    """An uninterrupted stream session (its last column is a ';'-list of offsets), seed 3."""
+    out = tmp_path_factory.mktemp("stream")
+    assert main(["simulate", str(STREAM), "--out", str(out), "--seed", "3"]) == 0
+    return out
+
+
+def test_stream_row_cut_inside_its_last_number_is_torn_for_resume_and_fit(capsys, tmp_path, stream_whole):
+    lines = (stream_whole / NAME).read_bytes().splitlines(keepends=True)
+    last = lines[300].rstrip(b"\n")
+    assert re.search(rb"[0-9]{2}$", last)           # a cut of its last digit still reads as a number
+    out = tmp_path / "o"
+    out.mkdir()
+    (out / NAME).write_bytes(b"".join(lines[:300]) + last[:-1])
+    (out / SIDE).write_bytes((stream_whole / SIDE).read_bytes())
+    code, err = cli(capsys, "fit", out / NAME, "--out", tmp_path / "fit", "--bootstrap", "2", "--no-figures")
+    assert code == 0 and "line 301 left out" in err and "torn" in err
+    assert pd.read_csv(tmp_path / "fit" / "exclusions.csv")["trials_read"].tolist() == [299]
+    err = resume_equals(capsys, STREAM, ["--seed", "3"], out, stream_whole)
+    assert "torn line 301" in err
 
 
 @pytest.mark.parametrize("cut", [3, 17, 40, 60])
