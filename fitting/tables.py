@@ -34,7 +34,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputError
-from .logfile import examine_tail, is_being_written
+from .logfile import check_rows, decode_log, examine_tail, is_being_written
 from .outputs import write_atomic
 
 REQUIRED_COLUMNS = ["observer", "session", "trial", "condition", "adapter_offset_deg", "lag",
@@ -216,12 +216,15 @@ def read_log_table(path: Path) -> pd.DataFrame:
     A last line without its newline is torn.  Left out with a note when
     its cells all parse (it may be cut inside its last cell), otherwise an
     error (exit 2) naming it, unless a session is writing the log right now
-    (its lock is held), in which case the line being written is left out.  A row before the last with the wrong number of cells is an error.
+    (its lock is held), in which case the line being written is left out.
+    Every row must pass the cell rules a resume applies too
+    (:func:`fitting.logfile.check_rows`).
 
     Raises
     ------
     InputError
-        Unreadable file, torn line, or a table that is not a CSV log.
+        Unreadable file, torn line, a table that is not a CSV log, or a bad
+        cell (naming its line and column).
     """
     source = str(path)
     try:
@@ -241,19 +244,11 @@ def read_log_table(path: Path) -> pd.DataFrame:
                              "while writing it; resume the session (--resume) to repair the log, or fit a copy "
                              "without that line")
         data = data[: tail.keep]
-    if data.startswith(b"\xef\xbb\xbf"):
-        data = data[3:]
-    try:
-        text = data.decode("utf-8")
-    except UnicodeDecodeError:
-        raise InputError(source, "", "not a text (UTF-8) CSV file") from None
-    rows = list(csv.reader(io.StringIO(text)))
+    rows = list(csv.reader(io.StringIO(decode_log(data, source))))
     if not rows:
         raise InputError(source, "", "empty file: no header and no trials")
     header = [c.strip() for c in rows[0]]
-    for n, cells in enumerate(rows[1:], start=2):
-        if len(cells) != len(header):
-            raise InputError(source, f"line {n}", f"expected {len(header)} cells as in the header, found {len(cells)}")
+    check_rows(header, rows[1:], source)
     return pd.DataFrame(rows[1:], columns=header, dtype=str)
 
 

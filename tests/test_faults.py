@@ -210,6 +210,42 @@ def test_corrupt_cell_met_during_resume_names_file_line_and_column(capsys, tmp_p
     assert logs(out) == before
 
 
+#: Cells a hostile edit may leave, each refused by fit and by a resume alike (fitting/logfile.py:check_rows).
+BAD_CELLS = [("rt_s", "abc"), ("rt_s", "NaN"), ("rt_s", "1e999"), ("rt_s", "-5"), ("rt_s", "1e308"),
+             ("rt_s", "0_5"), ("reference_deg", "north"), ("track", "x"), ("dropped_frames", "-3"),
+             ("dropped_frames", "\u00b2"), ("dropped_frames", "9" * 5000), ("trial", "\u00b2"),
+             ("test_offset_deg", "\uff11"), ("intervening_offsets_deg", "1;x"), ("period_s", "-1"),
+             ("session", "s9"), ("observer", "sim02")]
+
+
+@pytest.mark.parametrize("column,value", BAD_CELLS, ids=[f"{c}={v[:8]!a}" for c, v in BAD_CELLS])
+def test_fit_and_resume_refuse_the_same_bad_cells(capsys, tmp_path, whole, column, value):
+    out = _copy(whole, tmp_path / "o", rows=30)
+    lines = (out / NAME).read_text().splitlines(keepends=True)
+    cells = lines[10].rstrip("\n").split(",")
+    cells[trial_log.COLUMNS.index(column)] = value
+    lines[10] = ",".join(cells) + "\n"
+    (out / NAME).write_text("".join(lines))
+    before = logs(out)
+    for args in (["fit", out / NAME, "--out", tmp_path / "fit", "--bootstrap", "0", "--no-figures"],
+                 ["simulate", PILOT, "--out", out, *PILOT_ARGS, "--resume"]):
+        code, err = cli(capsys, *args)
+        line = one_line(err)
+        assert code == 2 and NAME in line and "line 11" in line and f"column {column}" in line, (args[0], line)
+        assert logs(out) == before
+    assert not (tmp_path / "fit").exists()
+
+
+def test_a_log_with_a_byte_order_mark_is_read_alike_by_fit_and_resume(capsys, tmp_path, whole):
+    out = _copy(whole, tmp_path / "o", rows=30)
+    (out / NAME).write_bytes(b"\xef\xbb\xbf" + (out / NAME).read_bytes())   # as a spreadsheet program saves it
+    code, err = cli(capsys, "fit", out / NAME, "--out", tmp_path / "fit", "--bootstrap", "0", "--no-figures")
+    assert code == 0, err
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, *PILOT_ARGS, "--resume")
+    assert code == 0, err
+    assert (out / NAME).read_bytes() == b"\xef\xbb\xbf" + (whole / NAME).read_bytes()
+
+
 @pytest.mark.parametrize("content,field", [("[1, 2]", "file"), ('{"tool": 1}', "observer"), ("not json", "file"),
                                            (None, "seed")], ids=["list", "missing fields", "not json", "seed text"])
 def test_sidecar_of_the_wrong_shape_is_reported_as_malformed(capsys, tmp_path, whole, content, field):
