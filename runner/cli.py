@@ -44,15 +44,18 @@ def _load(path: str, size_check: bool = True):
     return protocol, text
 
 
-#: Seeds are 32-bit (numpy's seed sequences take any size; files and other tools may not).
-MAX_SEED = 2**32 - 1
-
-
 def _check_count(value, option: str, low: int, high: int, what: str):
     """Refuse a whole-number option outside [low, high] with one line."""
     if value is not None and not (low <= value <= high):
         raise InputError("argument", option, f"{what} must be from {low} to {high:,}, not {value:,}")
     return value
+
+
+def _check_seed(value):
+    """Refuse a ``--seed`` outside the 32-bit range sidecars hold."""
+    from runner.trial_log import MAX_SEED
+
+    return _check_count(value, "--seed", 0, MAX_SEED, "a seed")
 
 
 def _screen(protocol, path: str, acknowledged: bool):
@@ -114,7 +117,7 @@ def cmd_simulate(args) -> int:
     from runner.observers import load_model
     from runner.trial_log import check_identifier
 
-    _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
+    _check_seed(args.seed)
     _check_count(args.observers, "--observers", 1, 99, "the number of simulated observers")
     check_identifier(args.session, "--session")
     protocol, text = _load(args.protocol)
@@ -140,7 +143,7 @@ def cmd_run(args) -> int:
 
     check_identifier(args.observer, "--observer")
     check_identifier(args.session, "--session")
-    _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
+    _check_seed(args.seed)
     check_can_start(args.out, args.observer, args.session, args.resume, args.seed)
     protocol, text = _load(args.protocol)
     light = _light(protocol)
@@ -215,7 +218,7 @@ def cmd_fit(args) -> int:
     from runner.workpool import FIGURE_MODULES, FIT_MODULES, open_pool, task_mapper
 
     _check_count(args.bootstrap, "--bootstrap", 0, MAX_BOOTSTRAP, "bootstrap replicates")
-    _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
+    _check_seed(args.seed)
     check_out_dir(args.out, "fit")
 
     lapse = args.lapse
@@ -303,7 +306,7 @@ def cmd_plan(args) -> int:
     from fitting.outputs import check_out_dir
     from runner.planner import plan_command
 
-    _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
+    _check_seed(args.seed)
     _check_count(args.runs, "--runs", 1, 10_000, "simulated sessions per design")
     _check_count(args.jobs, "--jobs", 1, 256, "worker processes")
     check_out_dir(args.out, "plan")

@@ -432,6 +432,8 @@ class TrialLog:
         _write_new(self.sidecar_path, text.encode("utf-8"))
 
 
+#: Largest seed (seeds are 32-bit: numpy's seed sequences take any size; files and other tools may not).
+MAX_SEED = 2**32 - 1
 #: Fields every sidecar has, and their JSON types.
 SIDECAR_FIELDS = {"observer": str, "session": str, "seed": int, "session_seed": int, "protocol": dict, "parts": list}
 
@@ -450,6 +452,10 @@ def check_sidecar(content, source: str) -> None:
         value = content.get(name)
         if not isinstance(value, kind) or isinstance(value, bool):
             raise InputError(source, name, f"malformed sidecar: expected {kind.__name__}, found {value!r:.40}")
+    for name in ("seed", "session_seed"):
+        if not 0 <= content[name] <= MAX_SEED:
+            raise InputError(source, name, f"malformed sidecar: a seed is from 0 to {MAX_SEED:,}, "
+                             f"not {str(content[name])[:40]}")
     if not isinstance(content["protocol"].get("sha256"), str):
         raise InputError(source, "protocol.sha256", "malformed sidecar: expected the protocol's SHA-256 text")
     if not all(isinstance(p, dict) for p in content["parts"]):

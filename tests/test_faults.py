@@ -246,6 +246,28 @@ def test_a_log_with_a_byte_order_mark_is_read_alike_by_fit_and_resume(capsys, tm
     assert (out / NAME).read_bytes() == b"\xef\xbb\xbf" + (whole / NAME).read_bytes()
 
 
+@pytest.mark.parametrize("field,value", [("seed", -1), ("seed", 10**30), ("session_seed", -1)])
+def test_a_sidecar_seed_out_of_range_names_the_sidecars_field(capsys, tmp_path, whole, field, value):
+    out = _copy(whole, tmp_path / "o", rows=30)
+    side = json.loads((out / SIDE).read_text())
+    side[field] = value
+    (out / SIDE).write_text(json.dumps(side))
+    before = logs(out)
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, "--observers", "2", "--resume")
+    line = one_line(err)
+    assert code == 2 and f"{SIDE}: {field}: malformed sidecar" in line
+    assert logs(out) == before
+
+
+def test_fit_with_a_sidecar_that_is_not_an_object_notes_it(capsys, tmp_path, whole):
+    log = _copy(whole, tmp_path / "o") / NAME
+    (log.parent / SIDE).write_text("[1, 2]")
+    code, err = cli(capsys, "fit", log, "--out", tmp_path / "fit", "--bootstrap", "0", "--no-figures")
+    assert code == 0 and "Traceback" not in err
+    sessions = json.loads((tmp_path / "fit" / "report_data.json").read_text())["sessions"]
+    assert "not a JSON object" in sessions[0]["problem"]
+
+
 @pytest.mark.parametrize("content,field", [("[1, 2]", "file"), ('{"tool": 1}', "observer"), ("not json", "file"),
                                            (None, "seed")], ids=["list", "missing fields", "not json", "seed text"])
 def test_sidecar_of_the_wrong_shape_is_reported_as_malformed(capsys, tmp_path, whole, content, field):
