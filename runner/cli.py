@@ -584,9 +584,21 @@ class Terminated(KeyboardInterrupt):
     """SIGTERM, handled like Ctrl-C."""
 
 
-def _on_sigterm(signum, frame):  # noqa: ARG001 - signal handler
-    signal.signal(signal.SIGTERM, signal.SIG_IGN)  # one clean ending, not two
-    raise Terminated()
+#: Set by the first Ctrl-C or SIGTERM: the command is winding down.
+_stopping = False
+
+
+def _on_stop_signal(signum, frame):  # noqa: ARG001 - signal handler
+    """The first Ctrl-C or SIGTERM stops the command; later ones are ignored while it winds down.
+
+    A second signal while the sidecar is closed or the progress bar's
+    thread ends would print a traceback and could leave the part ``running``.
+    """
+    global _stopping
+    if _stopping:
+        return      # not SIG_IGN: Python would raise "ignored due to race condition" for one already pending
+    _stopping = True
+    raise Terminated() if signum == signal.SIGTERM else KeyboardInterrupt()
 
 
 def _interrupt_behind(exc: BaseException) -> KeyboardInterrupt | None:
@@ -626,8 +638,16 @@ def _interrupted_line(command: str | None, exc: BaseException) -> str:
 
 
 def _install_signal_handlers() -> None:
-    if signal.getsignal(signal.SIGTERM) in (signal.SIG_DFL, None):
-        signal.signal(signal.SIGTERM, _on_sigterm)
+    """Let Ctrl-C and SIGTERM stop a command once (:func:`_on_stop_signal`).
+
+    A signal ignored by whoever started the process (a background job's
+    SIGINT) stays ignored.
+    """
+    global _stopping
+    for sig, ours in ((signal.SIGINT, (signal.default_int_handler,)), (signal.SIGTERM, (signal.SIG_DFL, None))):
+        if signal.getsignal(sig) in ours:
+            signal.signal(sig, _on_stop_signal)
+    _stopping = False
 
 
 if __name__ == "__main__":  # pragma: no cover

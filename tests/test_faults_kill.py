@@ -106,6 +106,28 @@ def test_sigterm_ends_the_part_as_interrupted_with_the_resume_hint(capsys, tmp_p
     _resume(capsys, out, whole)
 
 
+def test_signals_during_the_wind_down_are_ignored(capsys, tmp_path, whole):
+    # SIGTERM, then Ctrl-C pressed again and again while the part is closed: before, one of them broke into
+    # the sidecar's last write (the part stayed "running") or into the exit, with a traceback
+    out = tmp_path / "o"
+    proc = _start(out)
+    while proc.poll() is None and _rows(out / NAME) < 300:
+        time.sleep(0.0002)
+    proc.send_signal(signal.SIGTERM)
+    for _ in range(400):
+        if proc.poll() is not None:
+            break
+        os.kill(proc.pid, signal.SIGINT)
+        time.sleep(0.0005)
+    err = proc.communicate()[1]
+    assert proc.returncode == 130 or ended_by_interrupt(proc.returncode)   # late: Python's exit has no handler
+    line = one_line(err)     # the first signal handled names itself: SIGINT may be handled before a pending SIGTERM
+    assert line.startswith("aftershift simulate: ") and "--resume" in line
+    part = json.loads((out / SIDE).read_text())["parts"][-1]
+    assert part["ended_by"] == "interrupted" and part["rows_added"] == _rows(out / NAME)
+    _resume(capsys, out, whole)
+
+
 @pytest.mark.parametrize("second", [[], ["--resume"]], ids=["fresh+fresh", "fresh+resume"])
 def test_two_writers_at_once_one_is_refused_and_no_trial_is_doubled(capsys, tmp_path, whole, second):
     out = tmp_path / "o"
