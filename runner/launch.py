@@ -11,6 +11,7 @@ import hashlib
 import json
 import os
 import secrets
+import sys
 from dataclasses import asdict
 from datetime import datetime, timezone
 from pathlib import Path
@@ -182,15 +183,27 @@ def check_same_light(log: TrialLog, sidecar: dict, base: dict) -> None:
         )
 
 
-def start_sidecar(log: TrialLog, base: dict, resume: bool, text: str) -> dict:
+#: ``ended_by`` of a part whose process ended without recording how (kill -9, power cut), set by the next resume.
+VANISHED = "vanished"
+
+
+def start_sidecar(log: TrialLog, base: dict, resume: bool, text: str) -> dict | None:
     """Read (resume) or write (new) the sidecar; return its content with a new part.
 
     Repairs made to the log's tail on opening are recorded in the new part.
+    Parts left ``running`` by a process that ended without a word are closed
+    first (:func:`close_vanished_parts`).  A session that is complete gets
+    no new part: None is returned.
     """
     if log.sidecar_path.exists():
         sidecar = log.read_sidecar()
         check_same_protocol(log, sidecar, text)
         check_same_light(log, sidecar, base)
+        changed = close_vanished_parts(sidecar, len(log.rows))
+        if is_complete(sidecar, len(log.rows)):
+            if changed:
+                log.write_sidecar(sidecar)
+            return None
     else:
         sidecar = dict(base)
         sidecar["parts"] = []
@@ -200,6 +213,31 @@ def start_sidecar(log: TrialLog, base: dict, resume: bool, text: str) -> dict:
     sidecar["parts"].append(part)
     log.write_sidecar(sidecar)
     return sidecar
+
+
+def close_vanished_parts(sidecar: dict, rows: int) -> bool:
+    """Mark parts still ``running`` as :data:`VANISHED`; return True if any was.
+
+    Their process ended without recording it (kill -9, a power cut, a full
+    disk while the sidecar was written).  The last such part is credited
+    with the log's rows that no other part accounts for.
+    """
+    parts = sidecar["parts"]
+    left = [i for i, p in enumerate(parts) if p.get("ended_by") == "running"]
+    for i in left:
+        parts[i]["ended_by"] = VANISHED
+    if left:
+        others = sum(p.get("rows_added", 0) for j, p in enumerate(parts) if j != left[-1]
+                     and isinstance(p.get("rows_added"), int))
+        parts[left[-1]]["rows_added"] = max(rows - others, 0)
+        sidecar["rows_total"] = rows
+    return bool(left)
+
+
+def is_complete(sidecar: dict, rows: int) -> bool:
+    """True when the last part completed the session and the log still holds all its rows."""
+    parts = sidecar["parts"]
+    return bool(parts) and parts[-1].get("ended_by") == "completed" and sidecar.get("rows_total") == rows
 
 
 def run_part(log: TrialLog, sidecar: dict, session) -> SessionResult:
@@ -324,6 +362,12 @@ def simulate(
                 log.close()
                 raise
             console.skip(len(log.rows))
+            if sidecar is None:
+                log.close()
+                print(f"note: {log.path}: the session is complete ({len(log.rows)} trials); nothing to resume",
+                      file=sys.stderr)
+                paths.append(log.path)
+                continue
             console.at_break = log.sync
             answers = observer_kind(observer_model, (run.seed, 5), protocol.display.refresh_hz)
             presenter = HeadlessPresenter(protocol.display.refresh_hz)
@@ -417,6 +461,9 @@ def run_on_screen(
     except BaseException:
         log.close()
         raise
+    if sidecar is None:
+        log.close()
+        return SessionResult("complete already", len(log.rows), 0, started.get("track_states", {}), {})
     if resume:
         sidecar["parts"][-1].update({k: v for k, v in extra.items() if k in ("measured_refresh_hz", "acknowledged")})
     run = (StreamRun if protocol.stream is not None else BlockRun)(as_run, seed, observer, session)

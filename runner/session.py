@@ -41,7 +41,8 @@ class SessionResult:
 
     Attributes
     ----------
-    ended_by : {"completed", "quit"}
+    ended_by : {"completed", "quit", "complete already"}
+        "complete already": a resume of a session that had ended complete (nothing was run).
     rows_total : int
         Rows in the log after this part.
     rows_added : int

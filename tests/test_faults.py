@@ -315,6 +315,27 @@ def test_session_label_is_validated_like_an_observer_id(capsys, tmp_path, sessio
     assert not (tmp_path / "x").exists() and not (tmp_path / "o").exists()
 
 
+def test_a_part_left_running_by_a_kill_is_closed_by_the_resume(capsys, tmp_path, whole):
+    out = _copy(whole, tmp_path / "o", rows=30)
+    side = json.loads((out / SIDE).read_text())   # as kill -9 leaves it: the first part's opening record only
+    side["parts"] = [{"started": side["parts"][0]["started"], "ended": None, "ended_by": "running", "rows_added": 0}]
+    del side["rows_total"], side["track_states"]
+    (out / SIDE).write_text(json.dumps(side))
+    _resume_equals_whole(capsys, out, whole)
+    parts = json.loads((out / SIDE).read_text())["parts"]
+    assert [p["ended_by"] for p in parts] == ["vanished", "completed"]
+    assert [p["rows_added"] for p in parts] == [30, (whole / NAME).read_bytes().count(b"\n") - 31]
+
+
+def test_resuming_a_complete_session_adds_no_part(capsys, tmp_path, whole):
+    out = tmp_path / "o"
+    shutil.copytree(whole, out)
+    before = {p.name: p.read_bytes() for p in out.iterdir()}
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, *PILOT_ARGS, "--resume")
+    assert code == 0 and err.count("the session is complete") == 2
+    assert {p.name: p.read_bytes() for p in out.iterdir()} == before
+
+
 def test_lock_left_by_a_dead_process_is_taken_over_with_a_note(capsys, tmp_path, whole):
     out = _copy(whole, tmp_path / "o", rows=30)
     (out / "sim01-s1.lock").write_text(json.dumps({"pid": 2**22 + 17, "host": os.uname().nodename,

@@ -91,6 +91,9 @@ def test_sigkill_during_a_resume_then_resume_again(capsys, tmp_path, whole):
     assert _kill_when(_start(out), lambda: _rows(out / NAME) >= 200)
     assert _kill_when(_start(out, "--resume"), lambda: _rows(out / NAME) >= 700)
     _resume(capsys, out, whole)
+    parts = json.loads((out / SIDE).read_text())["parts"]      # each resume closed the part the kill left open
+    assert [p["ended_by"] for p in parts] == ["vanished", "vanished", "completed"]
+    assert sum(p["rows_added"] for p in parts) == _rows(out / NAME) and parts[1]["rows_added"] > 0
 
 
 def test_sigterm_ends_the_part_as_interrupted_with_the_resume_hint(capsys, tmp_path, whole):
