@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import gc
 import os
+import re
 import signal
 import sys
 from pathlib import Path
@@ -26,6 +27,13 @@ class _Parser(argparse.ArgumentParser):
     def error(self, message):  # noqa: D102 - argparse hook
         command = self.prog.partition(" ")[2]
         raise InputError("", command, f"{message} (see `{self.prog} --help`)")
+
+
+def _whole_number(text: str) -> int:
+    """argparse type of whole-number options: ASCII digits only (``int`` also takes ``1_0`` and other scripts' digits)."""
+    if not re.fullmatch(r"-?[0-9]{1,30}", text):
+        raise argparse.ArgumentTypeError(f"expected a whole number written with the digits 0-9, not {text[:40]!r}")
+    return int(text)
 
 
 def _load(path: str, size_check: bool = True):
@@ -113,13 +121,14 @@ def cmd_check(args) -> int:
 
 
 def cmd_simulate(args) -> int:
-    from runner.launch import simulate
+    from runner.launch import check_out_folder, simulate
     from runner.observers import load_model
     from runner.trial_log import check_identifier
 
     _check_seed(args.seed)
     _check_count(args.observers, "--observers", 1, 99, "the number of simulated observers")
     check_identifier(args.session, "--session")
+    check_out_folder(args.out)
     protocol, text = _load(args.protocol)
     light = _light(protocol)
     screening = _screen(protocol, args.protocol, args.flicker_ack)
@@ -408,8 +417,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", required=True, help="output folder for trial logs and sidecars")
     p.add_argument("--model", help="observer model file (TOML, flat keys; default built in; a resume uses the "
                                    "sidecar's)")
-    p.add_argument("--observers", type=int, default=1, help="number of simulated observers (default 1)")
-    p.add_argument("--seed", type=int, help="seed (default 0; a resume uses the sidecar's)")
+    p.add_argument("--observers", type=_whole_number, default=1, help="number of simulated observers (default 1)")
+    p.add_argument("--seed", type=_whole_number, help="seed (default 0; a resume uses the sidecar's)")
     p.add_argument("--session", default="s1", help="session label: letters, digits, - and _ (default s1)")
     p.add_argument("--resume", action="store_true", help="continue interrupted sessions in --out")
     ack(p)
@@ -422,7 +431,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--session", default="s1", help="session label (default s1)")
     p.add_argument("--windowed", action="store_true", help="a window instead of full screen (tests, piloting)")
     p.add_argument("--resume", action="store_true", help="continue an interrupted session")
-    p.add_argument("--seed", type=int, help="session seed (default: drawn at random and stored)")
+    p.add_argument("--seed", type=_whole_number, help="session seed (default: drawn at random and stored)")
     p.add_argument(safety.REFRESH_OVERRIDE_OPTION, dest="refresh_ack", action="store_true",
                    help="run although the measured refresh rate differs from the protocol's (recorded)")
     ack(p)
@@ -431,8 +440,8 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("fit", help="fit trial logs: PSEs, after-effects, tuning, decay, figures")
     p.add_argument("logs", nargs="+", help="trial logs (*.trials.csv) or folders holding them")
     p.add_argument("--out", required=True, help="output folder for tables and figures")
-    p.add_argument("--bootstrap", type=int, default=1000, help="parametric bootstrap replicates (default 1000)")
-    p.add_argument("--seed", type=int, default=0, help="seed (default 0)")
+    p.add_argument("--bootstrap", type=_whole_number, default=1000, help="parametric bootstrap replicates (default 1000)")
+    p.add_argument("--seed", type=_whole_number, default=0, help="seed (default 0)")
     p.add_argument("--lapse", default="free", help="'free' (bounded to [0, --lapse-max]) or a fixed value (default free)")
     p.add_argument("--spread", choices=["shared", "per_condition"], default="shared",
                    help="one spread per observer or one per condition, with a likelihood-ratio test (default shared)")
@@ -450,7 +459,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--include-practice", action="store_true", help="keep practice trials")
     p.add_argument("--no-figures", action="store_true", help="tables only")
     where = p.add_mutually_exclusive_group()
-    where.add_argument("--jobs", type=int, help="observers fitted at once in local worker processes "
+    where.add_argument("--jobs", type=_whole_number, help="observers fitted at once in local worker processes "
                                                 "(default: every available core)")
     where.add_argument("--scheduler", metavar="ADDRESS", help="fit the observers on a Dask cluster, e.g. "
                                                               "tcp://HOST:8786 (needs the cluster extra)")
@@ -482,14 +491,14 @@ def build_parser() -> argparse.ArgumentParser:
         p.add_argument("--vary", action="append", metavar="FIELD=[V1, V2, ...]",
                        help="run a design for each value (TOML values) of a protocol field (e.g. "
                             "procedure.method) or of the observer model (model.KEY); several --vary form a grid")
-        p.add_argument("--runs", type=int, default=runs, help=f"simulated sessions per design (default {runs})")
-        p.add_argument("--bootstrap", type=int, default=boot, help=f"bootstrap replicates per fit (default {boot})")
+        p.add_argument("--runs", type=_whole_number, default=runs, help=f"simulated sessions per design (default {runs})")
+        p.add_argument("--bootstrap", type=_whole_number, default=boot, help=f"bootstrap replicates per fit (default {boot})")
         p.add_argument("--lapse", default="free", help="lapse of the fits: 'free' or a fixed value (default free)")
         p.add_argument("--out", default=out, help=f"study folder; finished tasks are kept there and a rerun "
                                                   f"continues (default {out})")
-        p.add_argument("--seed", type=int, default=0, help="seed (default 0)")
+        p.add_argument("--seed", type=_whole_number, default=0, help="seed (default 0)")
         where = p.add_mutually_exclusive_group()
-        where.add_argument("--jobs", type=int, help="local worker processes (default: every available core)")
+        where.add_argument("--jobs", type=_whole_number, help="local worker processes (default: every available core)")
         where.add_argument("--scheduler", metavar="ADDRESS",
                            help="run the tasks on a Dask cluster, e.g. tcp://HOST:8786 (needs the cluster extra)")
 
@@ -511,20 +520,20 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--report", default="display_test.json", help="JSON report path (default display_test.json)")
     p.add_argument("--frames", metavar="DIR",
                    help="instead of timing, write rendered frames of each period type as PNGs and a table to DIR")
-    p.add_argument("--frames-per-period", type=int, default=3, help="frames written per period type (default 3)")
+    p.add_argument("--frames-per-period", type=_whole_number, default=3, help="frames written per period type (default 3)")
     p.set_defaults(func=cmd_display_test)
 
     p = sub.add_parser("measure-light", help="photometer readings of this display -> light profile for [light]")
     p.add_argument("protocol", nargs="?", help="protocol whose [display] geometry and background are used")
     p.add_argument("--out", required=True, help="light profile to write (TOML); readings go to OUT.readings.csv")
     p.add_argument("--readings", metavar="CSV", help="fit readings from a CSV file (level, luminance_cd_m2[, gun]); no screen")
-    p.add_argument("--levels", type=int, default=9, help="grey levels from 0 to 1 (default 9)")
-    p.add_argument("--repeats", type=int, default=2, help="readings per level (default 2)")
+    p.add_argument("--levels", type=_whole_number, default=9, help="grey levels from 0 to 1 (default 9)")
+    p.add_argument("--repeats", type=_whole_number, default=2, help="readings per level (default 2)")
     p.add_argument("--per-gun", action="store_true", help="also measure red, green and blue alone")
     p.add_argument("--patch-deg", type=float, default=5.0, help="side of the central patch, deg (default 5)")
     p.add_argument("--full-field", action="store_true", help="light the whole screen instead of a patch")
     p.add_argument("--windowed", action="store_true", help="a window instead of full screen")
-    p.add_argument("--seed", type=int, default=0, help="seed of the random order (default 0)")
+    p.add_argument("--seed", type=_whole_number, default=0, help="seed of the random order (default 0)")
     p.add_argument("--resume", action="store_true", help="continue the readings in OUT.readings.csv")
     p.add_argument("--label", default="", help="free text naming the display, written into the profile")
     p.add_argument("--fit-anyway", action="store_true",

@@ -113,6 +113,10 @@ def resume_seed_and_model(out_dir: Path, n_observers: int, session: str, seed: i
         seed = content["seed"]
         stored = content.get("base_model")
         if isinstance(stored, dict):
+            for key, value in stored.items():
+                if not isinstance(value, (int, float)) or isinstance(value, bool):
+                    raise InputError(source, f"base_model.{key}",
+                                     f"malformed sidecar: expected a number, found {str(value)[:40]!r}")
             try:
                 started = ObserverModel(**stored)
             except (TypeError, ValueError) as exc:
@@ -130,6 +134,19 @@ def _refuse_unknown_seed(sidecar: Path, what: str) -> None:
                      f"(the run stopped before writing it); resume with {what}")
 
 
+def check_out_folder(out_dir: str | Path) -> None:
+    """Refuse an ``--out`` that is empty or names a file: sessions are written into a folder.
+
+    Raises
+    ------
+    InputError
+    """
+    if str(out_dir).strip() == "":
+        raise InputError("argument", "--out", "is empty; name the folder for the logs (e.g. --out data)")
+    if Path(out_dir).exists() and not Path(out_dir).is_dir():
+        raise InputError(str(out_dir), "--out", "is a file, not a folder; name a folder for the logs")
+
+
 def check_can_start(out_dir: str | Path, observer: str, session: str, resume: bool,
                     seed: int | None = None) -> None:
     """Refuse, before any window opens, a session that cannot start in ``out_dir``.
@@ -143,6 +160,7 @@ def check_can_start(out_dir: str | Path, observer: str, session: str, resume: bo
     ------
     InputError
     """
+    check_out_folder(out_dir)
     path, sidecar = log_paths(out_dir, observer, session)
     if not resume:
         refuse_existing(path, sidecar)
@@ -324,7 +342,10 @@ def simulate(
     check_identifier(session, "--session")
     names = [f"sim{i + 1:02d}" for i in range(n_observers)]
     started = {}
-    if resume:
+    if not resume:
+        for name in names:      # every observer before any work: none is written if one would be refused
+            refuse_existing(*log_paths(out, name, session))
+    else:
         seed, model = resume_seed_and_model(out, n_observers, session, seed, model)
         started = {content["observer"]: (content, side) for side, content in sidecar_settings(out, names, session)}
     seed = 0 if seed is None else seed

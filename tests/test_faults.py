@@ -550,6 +550,48 @@ def test_absurd_numbers_on_the_command_line(capsys, tmp_path, whole, args, optio
     assert not (tmp_path / "out").exists()
 
 
+@pytest.mark.parametrize("value", ["1_0", "\uff12", "\u00b2"])
+def test_whole_number_options_take_ascii_digits_only(capsys, tmp_path, value):
+    code, err = cli(capsys, "simulate", PILOT, "--out", tmp_path / "o", "--observers", value)
+    assert code == 2 and "--observers" in one_line(err) and "0-9" in err
+    assert not (tmp_path / "o").exists()
+
+
+@pytest.mark.parametrize("command", ["simulate", "run"])
+def test_out_that_is_empty_or_a_file_names_the_option(capsys, tmp_path, monkeypatch, command):
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.delenv("DISPLAY", raising=False)   # run refuses before opening a screen
+    who = ["--observer", "P01"] if command == "run" else []
+    afile = tmp_path / "afile"
+    afile.write_text("x")
+    for out, words in (("", "is empty"), (afile, "is a file")):
+        code, err = cli(capsys, command, PILOT, *who, "--out", out)
+        line = one_line(err)
+        assert code == 2 and "--out" in line and words in line
+    assert afile.read_text() == "x" and sorted(p.name for p in tmp_path.iterdir()) == ["afile"]
+
+
+def test_an_existing_later_observer_is_refused_before_any_is_written(capsys, tmp_path, whole):
+    out = tmp_path / "o"
+    out.mkdir()
+    for name in ("sim02-s1.trials.csv", "sim02-s1.session.json"):
+        (out / name).write_bytes((whole / name).read_bytes())
+    before = sorted(p.name for p in out.iterdir())
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, *PILOT_ARGS)
+    assert code == 2 and "sim02-s1.trials.csv" in one_line(err)
+    assert sorted(p.name for p in out.iterdir()) == before
+
+
+def test_a_sidecar_model_value_that_is_not_a_number_names_its_field(capsys, tmp_path, whole):
+    out = _copy(whole, tmp_path / "o", rows=30)
+    side = json.loads((out / SIDE).read_text())
+    side["base_model"]["spread_deg"] = "wide"
+    (out / SIDE).write_text(json.dumps(side))
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, "--observers", "2", "--resume")
+    line = one_line(err)
+    assert code == 2 and f"{SIDE}: base_model.spread_deg: malformed sidecar" in line and "'wide'" in line
+
+
 def test_check_prints_the_duration_and_refuses_a_40_million_trial_protocol(capsys, tmp_path):
     huge = tmp_path / "huge.toml"
     offsets = ", ".join(str(x) for x in range(-96, 97, 3) if x)
