@@ -56,7 +56,7 @@ MAX_SECONDS = 48 * 3600.0
 # ASCII digits only: Python's int() and float() also take "²"-like digits of other scripts, "1_0" and
 # "inf"; a number of more than 40 characters or a count of more than 9 digits is no trial's value.
 _DECIMAL = re.compile(r"[+-]?(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]{1,3})?")
-_DIGITS = re.compile(r"[0-9]{1,9}")
+_DIGITS = re.compile(r"[0-9]{1,9}(?:\.0*)?")     # "1.0" too: a log filtered with pandas writes counts so
 _ID = re.compile(r"[A-Za-z0-9_-]{1,64}")
 
 
@@ -66,6 +66,10 @@ def _number(text: str) -> bool:
 
 def _whole(text: str) -> bool:
     return _DIGITS.fullmatch(text) is not None
+
+
+def _count(text: str) -> bool:
+    return _whole(text) and float(text) >= 1
 
 
 def _seconds(text: str, low_open: bool) -> bool:
@@ -79,15 +83,15 @@ _CHECKS = {
     "id": (lambda t: _ID.fullmatch(t) is not None, "a name of 1-64 letters, digits, - or _"),
     "text": (lambda t: t != "", "a non-empty value"),
     "text?": (lambda t: True, ""),
-    "count": (lambda t: _whole(t) and int(t) >= 1, "a whole number from 1 to 999999999"),
+    "count": (_count, "a whole number from 1 to 999999999"),
     "whole": (_whole, "a whole number from 0 to 999999999"),
     "whole?": (lambda t: t == "" or _whole(t), "empty or a whole number from 0 to 999999999"),
     "number": (_number, "a finite number"),
     "number?": (lambda t: t == "" or _number(t), "a finite number or empty"),
     "seconds?": (lambda t: t == "" or _seconds(t, False), f"empty or seconds from 0 to {MAX_SECONDS:g}"),
     "period?": (lambda t: t == "" or _seconds(t, True), f"empty or a duration above 0 and up to {MAX_SECONDS:g} s"),
-    "answer": (lambda t: t in ("", "0", "1"), "1, 0 or empty"),
-    "flag": (lambda t: t in ("true", "false"), "true or false"),
+    "answer": (lambda t: t in ("", "0", "1", "0.0", "1.0"), "1, 0 or empty"),
+    "flag": (lambda t: t.lower() in ("true", "false"), "true or false"),
     "bit": (lambda t: t in ("0", "1"), "0 or 1"),
     "numbers": (lambda t: t == "" or all(_number(v) for v in t.split(";")), "';'-separated finite numbers"),
 }
