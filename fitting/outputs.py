@@ -373,7 +373,10 @@ def settle(out_dir: str | Path) -> None:
         staging folder is gone, or the folder cannot be written).
     """
     out = Path(out_dir)
-    if not (out / PENDING).exists():
+    try:
+        if not (out / PENDING).exists():
+            return
+    except OSError:     # a folder this user may not enter: reading its tables says so, naming the file
         return
     try:
         with folder_lock(out, exclusive=True):
