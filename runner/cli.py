@@ -29,8 +29,11 @@ class _Parser(argparse.ArgumentParser):
         raise InputError("", command, f"{message} (see `{self.prog} --help`)")
 
 
-def _whole_number(text: str) -> int:
-    """argparse type of whole-number options: ASCII digits only (``int`` also takes ``1_0`` and other scripts' digits)."""
+def _int_arg(text: str) -> int:
+    """argparse type of whole-number options: ASCII digits only.
+
+    ``int`` also takes ``1_0`` and the digits of other scripts (fullwidth, superscript).
+    """
     if not re.fullmatch(r"-?[0-9]{1,30}", text):
         raise argparse.ArgumentTypeError(f"expected a whole number written with the digits 0-9, not {text[:40]!r}")
     return int(text)
@@ -417,8 +420,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", required=True, help="output folder for trial logs and sidecars")
     p.add_argument("--model", help="observer model file (TOML, flat keys; default built in; a resume uses the "
                                    "sidecar's)")
-    p.add_argument("--observers", type=_whole_number, default=1, help="number of simulated observers (default 1)")
-    p.add_argument("--seed", type=_whole_number, help="seed (default 0; a resume uses the sidecar's)")
+    p.add_argument("--observers", type=_int_arg, default=1, help="number of simulated observers (default 1)")
+    p.add_argument("--seed", type=_int_arg, help="seed (default 0; a resume uses the sidecar's)")
     p.add_argument("--session", default="s1", help="session label: letters, digits, - and _ (default s1)")
     p.add_argument("--resume", action="store_true", help="continue interrupted sessions in --out")
     ack(p)
@@ -431,7 +434,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--session", default="s1", help="session label (default s1)")
     p.add_argument("--windowed", action="store_true", help="a window instead of full screen (tests, piloting)")
     p.add_argument("--resume", action="store_true", help="continue an interrupted session")
-    p.add_argument("--seed", type=_whole_number, help="session seed (default: drawn at random and stored)")
+    p.add_argument("--seed", type=_int_arg, help="session seed (default: drawn at random and stored)")
     p.add_argument(safety.REFRESH_OVERRIDE_OPTION, dest="refresh_ack", action="store_true",
                    help="run although the measured refresh rate differs from the protocol's (recorded)")
     ack(p)
@@ -440,8 +443,8 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("fit", help="fit trial logs: PSEs, after-effects, tuning, decay, figures")
     p.add_argument("logs", nargs="+", help="trial logs (*.trials.csv) or folders holding them")
     p.add_argument("--out", required=True, help="output folder for tables and figures")
-    p.add_argument("--bootstrap", type=_whole_number, default=1000, help="parametric bootstrap replicates (default 1000)")
-    p.add_argument("--seed", type=_whole_number, default=0, help="seed (default 0)")
+    p.add_argument("--bootstrap", type=_int_arg, default=1000, help="parametric bootstrap replicates (default 1000)")
+    p.add_argument("--seed", type=_int_arg, default=0, help="seed (default 0)")
     p.add_argument("--lapse", default="free", help="'free' (bounded to [0, --lapse-max]) or a fixed value (default free)")
     p.add_argument("--spread", choices=["shared", "per_condition"], default="shared",
                    help="one spread per observer or one per condition, with a likelihood-ratio test (default shared)")
@@ -459,7 +462,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--include-practice", action="store_true", help="keep practice trials")
     p.add_argument("--no-figures", action="store_true", help="tables only")
     where = p.add_mutually_exclusive_group()
-    where.add_argument("--jobs", type=_whole_number, help="observers fitted at once in local worker processes "
+    where.add_argument("--jobs", type=_int_arg, help="observers fitted at once in local worker processes "
                                                 "(default: every available core)")
     where.add_argument("--scheduler", metavar="ADDRESS", help="fit the observers on a Dask cluster, e.g. "
                                                               "tcp://HOST:8786 (needs the cluster extra)")
@@ -491,14 +494,15 @@ def build_parser() -> argparse.ArgumentParser:
         p.add_argument("--vary", action="append", metavar="FIELD=[V1, V2, ...]",
                        help="run a design for each value (TOML values) of a protocol field (e.g. "
                             "procedure.method) or of the observer model (model.KEY); several --vary form a grid")
-        p.add_argument("--runs", type=_whole_number, default=runs, help=f"simulated sessions per design (default {runs})")
-        p.add_argument("--bootstrap", type=_whole_number, default=boot, help=f"bootstrap replicates per fit (default {boot})")
+        p.add_argument("--runs", type=_int_arg, default=runs, help=f"simulated sessions per design (default {runs})")
+        p.add_argument("--bootstrap", type=_int_arg, default=boot,
+                       help=f"bootstrap replicates per fit (default {boot})")
         p.add_argument("--lapse", default="free", help="lapse of the fits: 'free' or a fixed value (default free)")
         p.add_argument("--out", default=out, help=f"study folder; finished tasks are kept there and a rerun "
                                                   f"continues (default {out})")
-        p.add_argument("--seed", type=_whole_number, default=0, help="seed (default 0)")
+        p.add_argument("--seed", type=_int_arg, default=0, help="seed (default 0)")
         where = p.add_mutually_exclusive_group()
-        where.add_argument("--jobs", type=_whole_number, help="local worker processes (default: every available core)")
+        where.add_argument("--jobs", type=_int_arg, help="local worker processes (default: every available core)")
         where.add_argument("--scheduler", metavar="ADDRESS",
                            help="run the tasks on a Dask cluster, e.g. tcp://HOST:8786 (needs the cluster extra)")
 
@@ -520,20 +524,20 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--report", default="display_test.json", help="JSON report path (default display_test.json)")
     p.add_argument("--frames", metavar="DIR",
                    help="instead of timing, write rendered frames of each period type as PNGs and a table to DIR")
-    p.add_argument("--frames-per-period", type=_whole_number, default=3, help="frames written per period type (default 3)")
+    p.add_argument("--frames-per-period", type=_int_arg, default=3, help="frames written per period type (default 3)")
     p.set_defaults(func=cmd_display_test)
 
     p = sub.add_parser("measure-light", help="photometer readings of this display -> light profile for [light]")
     p.add_argument("protocol", nargs="?", help="protocol whose [display] geometry and background are used")
     p.add_argument("--out", required=True, help="light profile to write (TOML); readings go to OUT.readings.csv")
     p.add_argument("--readings", metavar="CSV", help="fit readings from a CSV file (level, luminance_cd_m2[, gun]); no screen")
-    p.add_argument("--levels", type=_whole_number, default=9, help="grey levels from 0 to 1 (default 9)")
-    p.add_argument("--repeats", type=_whole_number, default=2, help="readings per level (default 2)")
+    p.add_argument("--levels", type=_int_arg, default=9, help="grey levels from 0 to 1 (default 9)")
+    p.add_argument("--repeats", type=_int_arg, default=2, help="readings per level (default 2)")
     p.add_argument("--per-gun", action="store_true", help="also measure red, green and blue alone")
     p.add_argument("--patch-deg", type=float, default=5.0, help="side of the central patch, deg (default 5)")
     p.add_argument("--full-field", action="store_true", help="light the whole screen instead of a patch")
     p.add_argument("--windowed", action="store_true", help="a window instead of full screen")
-    p.add_argument("--seed", type=_whole_number, default=0, help="seed of the random order (default 0)")
+    p.add_argument("--seed", type=_int_arg, default=0, help="seed of the random order (default 0)")
     p.add_argument("--resume", action="store_true", help="continue the readings in OUT.readings.csv")
     p.add_argument("--label", default="", help="free text naming the display, written into the profile")
     p.add_argument("--fit-anyway", action="store_true",

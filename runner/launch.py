@@ -19,6 +19,7 @@ from pathlib import Path
 import numpy as np
 
 from fitting.errors import InputError
+from fitting.logfile import is_being_written
 from fitting.provenance import software_versions
 from runner.console import SimulationConsole
 from runner.headless import HeadlessPresenter
@@ -344,7 +345,9 @@ def simulate(
     started = {}
     if not resume:
         for name in names:      # every observer before any work: none is written if one would be refused
-            refuse_existing(*log_paths(out, name, session))
+            path, side = log_paths(out, name, session)
+            if not is_being_written(path):      # a held session is refused when opened, naming its holder
+                refuse_existing(path, side)
     else:
         seed, model = resume_seed_and_model(out, n_observers, session, seed, model)
         started = {content["observer"]: (content, side) for side, content in sidecar_settings(out, names, session)}

@@ -194,24 +194,9 @@ def test_torn_practice_row_is_never_counted_by_fit(capsys, tmp_path, whole):
 # --- corrupt cells and sidecars ---------------------------------------------------------------------------------
 
 
-@pytest.mark.parametrize("column,value", [("response_cw", "7"), ("rt_s", "fast"), ("timing_ok", "maybe"),
-                                          ("dropped_frames", "-1"), ("test_offset_deg", "nan")])
-def test_corrupt_cell_met_during_resume_names_file_line_and_column(capsys, tmp_path, whole, column, value):
-    out = _copy(whole, tmp_path / "o", rows=30)
-    lines = (out / NAME).read_text().splitlines(keepends=True)
-    cells = lines[10].rstrip("\n").split(",")
-    cells[trial_log.COLUMNS.index(column)] = value
-    lines[10] = ",".join(cells) + "\n"
-    (out / NAME).write_text("".join(lines))
-    before = logs(out)
-    code, err = cli(capsys, "simulate", PILOT, "--out", out, *PILOT_ARGS, "--resume")
-    line = one_line(err)
-    assert code == 2 and NAME in line and "line 11" in line and column in line
-    assert logs(out) == before
-
-
 #: Cells a hostile edit may leave, each refused by fit and by a resume alike (fitting/logfile.py:check_rows).
-BAD_CELLS = [("rt_s", "abc"), ("rt_s", "NaN"), ("rt_s", "1e999"), ("rt_s", "-5"), ("rt_s", "1e308"),
+BAD_CELLS = [("response_cw", "7"), ("timing_ok", "maybe"), ("dropped_frames", "-1"), ("test_offset_deg", "nan"),
+             ("rt_s", "abc"), ("rt_s", "NaN"), ("rt_s", "1e999"), ("rt_s", "-5"), ("rt_s", "1e308"),
              ("rt_s", "0_5"), ("reference_deg", "north"), ("track", "x"), ("dropped_frames", "-3"),
              ("dropped_frames", "\u00b2"), ("dropped_frames", "9" * 5000), ("trial", "\u00b2"),
              ("test_offset_deg", "\uff11"), ("intervening_offsets_deg", "1;x"), ("period_s", "-1"),
