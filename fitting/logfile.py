@@ -1,19 +1,24 @@
 """Rules for the bytes of a trial log, shared by the session writer and ``fit``.
 
-A trial log is a CSV file whose rows are each written with one ``write``.
-A process killed inside that write, or a power cut, can leave the last line
-incomplete, or followed by NUL bytes where the file system had reserved
-space that was never written.  The rules for the end of a log are:
+A trial log is a CSV file whose rows are each written with one ``write``,
+newline included.  A process killed inside that write, or a power cut, can
+leave the last line incomplete, or followed by NUL bytes where the file
+system had reserved space that was never written.  The rules for the end of
+a log are:
 
-* a last line that lacks only its newline, but whose cells are all present
-  and parse, is a complete trial: it is kept (a writer adds the newline);
-* anything else after the last newline is a *torn* line: a writer cuts it
-  off and says so; ``fit`` refuses the log (exit 2) naming the torn line,
-  unless a session is writing the log at that moment (its lock is held);
+* anything after the last newline is a *torn* line, even when its cells all
+  parse: a cut inside the last number still reads as a number
+  ("180;-90;-3" for "180;-90;-30");
+* a writer cuts a torn line off and says so;
+* ``fit`` leaves out a torn line whose cells all parse, with a note, and
+  refuses (exit 2) one with missing or unreadable cells, naming it, unless a
+  session is writing the log at that moment (its lock is held): then the
+  line being written is left out;
 * a line holding NUL bytes, and everything after it, is torn.
 
-:func:`check_cells` is the cell-by-cell validation used both here and when
-a resumed session replays its rows.  The lock a writer holds is described in
+:func:`check_rows` holds the one set of cell rules: ``fit`` applies it to
+every log it reads, and a resume to the log it continues, so both accept
+and refuse the same rows.  The lock a writer holds is described in
 ``runner/session_lock.py``; :func:`is_being_written` only asks whether it is
 held, so that ``fitting`` never imports ``runner``.
 """
@@ -24,44 +29,69 @@ import csv
 import io
 import math
 import os
+import re
 from dataclasses import dataclass
 from pathlib import Path
+
+from .errors import InputError
 
 #: How each known column of a trial log parses.  Unknown columns accept anything.
 CELL_KINDS = {
     "observer": "id", "session": "id", "trial": "count", "condition": "text",
     "adapter_offset_deg": "number?", "lag": "whole?", "track": "whole?",
-    "test_offset_deg": "number", "response_cw": "answer", "rt_s": "number?",
+    "test_offset_deg": "number", "response_cw": "answer", "rt_s": "seconds?",
     "dropped_frames": "whole", "timing_ok": "flag", "practice": "bit",
-    "period_s": "number?", "reference_deg": "number?", "test_direction_deg": "number?",
+    "period_s": "period?", "reference_deg": "number?", "test_direction_deg": "number?",
     "intervening_offsets_deg": "numbers", "procedure": "text?", "block": "text?",
     "preceding_offsets_deg": "numbers",
 }
+#: Columns every row of one log shares: a log holds one observer's one session.
+IDENTITY_COLUMNS = ("observer", "session")
 LOCK_SUFFIX = ".lock"
+#: A UTF-8 byte-order mark, as some spreadsheet programs put before the header; read past it.
+BYTE_ORDER_MARK = b"\xef\xbb\xbf"
+#: Longest duration a cell may hold (s): the 48 h a session may last (runner/overview.py).
+MAX_SECONDS = 48 * 3600.0
+
+# ASCII digits only: Python's int() and float() also take "²"-like digits of other scripts, "1_0" and
+# "inf"; a number of more than 40 characters or a count of more than 9 digits is no trial's value.
+_DECIMAL = re.compile(r"[+-]?(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]{1,3})?")
+_DIGITS = re.compile(r"[0-9]{1,9}(?:\.0*)?")     # "1.0" too: a log filtered with pandas writes counts so
+_ID = re.compile(r"[A-Za-z0-9_-]{1,64}")
 
 
 def _number(text: str) -> bool:
-    try:
-        return math.isfinite(float(text))
-    except ValueError:
-        return False
+    return len(text) <= 40 and _DECIMAL.fullmatch(text) is not None and math.isfinite(float(text))
 
 
 def _whole(text: str) -> bool:
-    return text.lstrip("-").isdigit()
+    return _DIGITS.fullmatch(text) is not None
+
+
+def _count(text: str) -> bool:
+    return _whole(text) and float(text) >= 1
+
+
+def _seconds(text: str, low_open: bool) -> bool:
+    if not _number(text):
+        return False
+    value = float(text)
+    return (value > 0 if low_open else value >= 0) and value <= MAX_SECONDS
 
 
 _CHECKS = {
-    "id": (lambda t: t != "" and all(c.isalnum() or c in "-_" for c in t), "a name of letters, digits, - or _"),
+    "id": (lambda t: _ID.fullmatch(t) is not None, "a name of 1-64 letters, digits, - or _"),
     "text": (lambda t: t != "", "a non-empty value"),
     "text?": (lambda t: True, ""),
-    "count": (lambda t: t.isdigit() and int(t) >= 1, "a whole number >= 1"),
-    "whole": (lambda t: t.isdigit(), "a whole number >= 0"),
-    "whole?": (lambda t: t == "" or _whole(t), "a whole number or empty"),
+    "count": (_count, "a whole number from 1 to 999999999"),
+    "whole": (_whole, "a whole number from 0 to 999999999"),
+    "whole?": (lambda t: t == "" or _whole(t), "empty or a whole number from 0 to 999999999"),
     "number": (_number, "a finite number"),
     "number?": (lambda t: t == "" or _number(t), "a finite number or empty"),
-    "answer": (lambda t: t in ("", "0", "1"), "1, 0 or empty"),
-    "flag": (lambda t: t in ("true", "false"), "true or false"),
+    "seconds?": (lambda t: t == "" or _seconds(t, False), f"empty or seconds from 0 to {MAX_SECONDS:g}"),
+    "period?": (lambda t: t == "" or _seconds(t, True), f"empty or a duration above 0 and up to {MAX_SECONDS:g} s"),
+    "answer": (lambda t: t in ("", "0", "1", "0.0", "1.0"), "1, 0 or empty"),
+    "flag": (lambda t: t.lower() in ("true", "false"), "true or false"),
     "bit": (lambda t: t in ("0", "1"), "0 or 1"),
     "numbers": (lambda t: t == "" or all(_number(v) for v in t.split(";")), "';'-separated finite numbers"),
 }
@@ -69,6 +99,9 @@ _CHECKS = {
 
 def check_cells(header, cells) -> tuple[str, str] | None:
     """The first cell that does not parse, as ``(column, message)``; None if all do.
+
+    Numbers are ASCII decimals (no ``inf``, ``nan``, ``_`` or digits of
+    other scripts); see :data:`CELL_KINDS` for what each column holds.
 
     Parameters
     ----------
@@ -78,15 +111,68 @@ def check_cells(header, cells) -> tuple[str, str] | None:
         One row's cells.
     """
     if len(cells) != len(header):
-        return "cells", f"expected {len(header)} cells, found {len(cells)}"
+        return "cells", f"expected {len(header)} cells as in the header, found {len(cells)}"
     for name, text in zip(header, cells):
         kind = CELL_KINDS.get(name)
         if kind is None:
             continue
         ok, expected = _CHECKS[kind]
         if not ok(text):
-            return name, f"expected {expected}, found {text[:40]!r}"
+            shown = repr(text[:40]) + ("..." if len(text) > 40 else "")
+            return name, f"{shown} is not {expected}"
     return None
+
+
+def check_rows(header, rows, source: str, identity: dict[str, str] | None = None) -> None:
+    """Apply the cell rules to every row of a log: the rules ``fit`` and a resume share.
+
+    Parameters
+    ----------
+    header : sequence of str
+        Column names (line 1).
+    rows : sequence of sequence of str
+        The rows' cells, from line 2 on.
+    source : str
+        The log's name, for messages.
+    identity : dict, optional
+        The observer and session every row must name (a resume knows them);
+        by default those of the first row.
+
+    Raises
+    ------
+    InputError
+        Naming the file, the line and the column of the first bad cell.
+    """
+    header = list(header)
+    where = {name: header.index(name) for name in IDENTITY_COLUMNS if name in header}
+    for line, cells in enumerate(rows, start=2):
+        bad = check_cells(header, cells)
+        if bad is not None:
+            raise InputError(source, f"line {line}" + ("" if bad[0] == "cells" else f", column {bad[0]}"), bad[1])
+        if identity is None:
+            identity = {name: cells[i] for name, i in where.items()}
+        for name, i in where.items():
+            if name in identity and cells[i] != identity[name]:
+                raise InputError(source, f"line {line}, column {name}",
+                                 f"{cells[i]!r} where the log's other rows say {identity[name]!r}; "
+                                 "a log holds one observer's one session")
+
+
+def decode_log(data: bytes, source: str) -> str:
+    """The text of a log's bytes, past a UTF-8 byte-order mark.
+
+    Raises
+    ------
+    InputError
+        Bytes that are not UTF-8, naming their line.
+    """
+    if data.startswith(BYTE_ORDER_MARK):
+        data = data[len(BYTE_ORDER_MARK):]
+    try:
+        return data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line = data.count(b"\n", 0, exc.start) + 1
+        raise InputError(source, f"line {line}", "not UTF-8 text; a trial log is a UTF-8 CSV file") from None
 
 
 def _cells(line: bytes) -> list[str] | None:
@@ -105,23 +191,23 @@ class Tail:
     Attributes
     ----------
     keep : int
-        Bytes of the file that hold complete lines (a complete last line
-        without newline included).
-    needs_newline : bool
-        The kept part ends with a complete row that lacks its newline.
+        Bytes of the file that hold complete lines (each with its newline).
     torn : bytes
         The bytes after ``keep`` (empty when nothing is torn).
     torn_line : int
         Line number (1-based) where the torn part starts; 0 if none.
     reason : str
         Why the part is torn, in plain words.
+    cells_parse : bool
+        The torn part is one line whose cells all parse: only its newline
+        may be missing, or it may be cut inside its last cell.
     """
 
     keep: int
-    needs_newline: bool
     torn: bytes
     torn_line: int
     reason: str
+    cells_parse: bool = False
 
     def describe(self) -> str:
         """One phrase saying why the line is torn and what it held."""
@@ -139,36 +225,19 @@ def examine_tail(data: bytes) -> Tail:
     nul = data.find(b"\x00")
     if nul >= 0:
         keep = data.rfind(b"\n", 0, nul) + 1
-        return Tail(keep, False, data[keep:], data.count(b"\n", 0, keep) + 1, "NUL bytes, as left by a power cut")
+        return Tail(keep, data[keep:], data.count(b"\n", 0, keep) + 1, "NUL bytes, as left by a power cut")
     keep = data.rfind(b"\n") + 1
     if keep == len(data):
-        return Tail(keep, False, b"", 0, "")
+        return Tail(keep, b"", 0, "")
     line_no = data.count(b"\n", 0, keep) + 1
     if keep == 0:
-        return Tail(0, False, data, 1, "the header was cut")
-    header = _cells(data[: data.find(b"\n")])
+        return Tail(0, data, 1, "the header was cut")
+    header = _cells(data[: data.find(b"\n")].removeprefix(BYTE_ORDER_MARK))
     cells = _cells(data[keep:])
-    if header is not None and cells is not None and check_cells(header, cells) is None \
-            and _same_list_lengths(data[:keep], header, cells):
-        return Tail(len(data), True, b"", 0, "")
-    return Tail(keep, False, data[keep:], line_no, "missing or cut cells")
-
-
-def _same_list_lengths(before: bytes, header, cells) -> bool:
-    """A cut inside the last cell can still parse; a list cell must match the row before in length."""
-    if not header or CELL_KINDS.get(header[-1]) != "numbers":
-        return True
-    lines = before.rstrip(b"\n").split(b"\n")
-    if len(lines) < 2:
-        return True
-    prev = _cells(lines[-1])
-    if prev is None or len(prev) != len(header):
-        return True
-    return _entries(prev[-1]) == _entries(cells[-1])
-
-
-def _entries(text: str) -> int:
-    return 0 if text == "" else len(text.split(";"))
+    if header is not None and cells is not None and check_cells(header, cells) is None:
+        return Tail(keep, data[keep:], line_no, "no newline at its end (rows are written whole with their "
+                    "newline; its last cell may be cut)", cells_parse=True)
+    return Tail(keep, data[keep:], line_no, "missing or cut cells")
 
 
 def lock_path(log: str | Path) -> Path:

@@ -68,9 +68,12 @@ def _session_record(log: Path) -> tuple[dict, dict | None]:
     except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
         record["problem"] = f"sidecar {side.name} cannot be read ({type(exc).__name__})"
         return record, None
-    parts = data.get("parts") or [{}]
+    if not isinstance(data, dict):
+        record["problem"] = f"sidecar {side.name} is not a JSON object (found a {type(data).__name__})"
+        return record, None
+    parts = [p for p in data.get("parts") or [] if isinstance(p, dict)] or [{}]
     dropped = [p.get("timing", {}).get("dropped_frames") for p in parts if isinstance(p.get("timing"), dict)]
-    protocol = data.get("protocol") or {}
+    protocol = data.get("protocol") if isinstance(data.get("protocol"), dict) else {}
     record.update(
         sidecar=str(side), observer=data.get("observer"), session=data.get("session"), kind=data.get("kind"),
         protocol_sha256=protocol.get("sha256"), seed=data.get("session_seed", data.get("seed")),

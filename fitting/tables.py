@@ -27,13 +27,14 @@ import csv
 import io
 import json
 import os
+import sys
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from .errors import InputError
-from .logfile import examine_tail, is_being_written
+from .logfile import check_rows, decode_log, examine_tail, is_being_written
 from .outputs import write_atomic
 
 REQUIRED_COLUMNS = ["observer", "session", "trial", "condition", "adapter_offset_deg", "lag",
@@ -212,15 +213,18 @@ def validate_trials(raw: pd.DataFrame, source: str, row_names: list[str] | None 
 def read_log_table(path: Path) -> pd.DataFrame:
     """The rows of one log file as text, after the tail rules of :mod:`fitting.logfile`.
 
-    A complete last row without its newline is kept.  A torn last line is
-    an error (exit 2) naming it, unless a session is writing the log right
-    now (its lock is held), in which case the line being written is left
-    out.  A row before the last with the wrong number of cells is an error.
+    A last line without its newline is torn.  Left out with a note when
+    its cells all parse (it may be cut inside its last cell), otherwise an
+    error (exit 2) naming it, unless a session is writing the log right now
+    (its lock is held), in which case the line being written is left out.
+    Every row must pass the cell rules a resume applies too
+    (:func:`fitting.logfile.check_rows`).
 
     Raises
     ------
     InputError
-        Unreadable file, torn line, or a table that is not a CSV log.
+        Unreadable file, torn line, a table that is not a CSV log, or a bad
+        cell (naming its line and column).
     """
     source = str(path)
     try:
@@ -229,25 +233,22 @@ def read_log_table(path: Path) -> pd.DataFrame:
         raise InputError(source, "file", f"cannot be read ({exc.strerror})") from None
     tail = examine_tail(data)
     if tail.torn:
-        if not is_being_written(path):
+        if is_being_written(path):
+            pass                    # the line a running session is writing
+        elif tail.cells_parse:
+            print(f"note: {source}: line {tail.torn_line} left out: torn ({tail.describe()}); resume the "
+                  "session (--resume) to write it again", file=sys.stderr)
+        else:
             raise InputError(source, f"line {tail.torn_line}",
                              f"torn ({tail.describe()}): the session stopped "
                              "while writing it; resume the session (--resume) to repair the log, or fit a copy "
                              "without that line")
         data = data[: tail.keep]
-    if data.startswith(b"\xef\xbb\xbf"):
-        data = data[3:]
-    try:
-        text = data.decode("utf-8")
-    except UnicodeDecodeError:
-        raise InputError(source, "", "not a text (UTF-8) CSV file") from None
-    rows = list(csv.reader(io.StringIO(text)))
+    rows = list(csv.reader(io.StringIO(decode_log(data, source))))
     if not rows:
         raise InputError(source, "", "empty file: no header and no trials")
     header = [c.strip() for c in rows[0]]
-    for n, cells in enumerate(rows[1:], start=2):
-        if len(cells) != len(header):
-            raise InputError(source, f"line {n}", f"expected {len(header)} cells as in the header, found {len(cells)}")
+    check_rows(header, rows[1:], source)
     return pd.DataFrame(rows[1:], columns=header, dtype=str)
 
 

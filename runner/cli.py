@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import gc
 import os
+import re
 import signal
 import sys
 from pathlib import Path
@@ -28,6 +29,16 @@ class _Parser(argparse.ArgumentParser):
         raise InputError("", command, f"{message} (see `{self.prog} --help`)")
 
 
+def _int_arg(text: str) -> int:
+    """argparse type of whole-number options: ASCII digits only.
+
+    ``int`` also takes ``1_0`` and the digits of other scripts (fullwidth, superscript).
+    """
+    if not re.fullmatch(r"-?[0-9]{1,30}", text):
+        raise argparse.ArgumentTypeError(f"expected a whole number written with the digits 0-9, not {text[:40]!r}")
+    return int(text)
+
+
 def _load(path: str, size_check: bool = True):
     """Read and validate a protocol; durations that are not whole frames are refused (exit 3)."""
     from runner import safety
@@ -44,15 +55,18 @@ def _load(path: str, size_check: bool = True):
     return protocol, text
 
 
-#: Seeds are 32-bit (numpy's seed sequences take any size; files and other tools may not).
-MAX_SEED = 2**32 - 1
-
-
 def _check_count(value, option: str, low: int, high: int, what: str):
     """Refuse a whole-number option outside [low, high] with one line."""
     if value is not None and not (low <= value <= high):
         raise InputError("argument", option, f"{what} must be from {low} to {high:,}, not {value:,}")
     return value
+
+
+def _check_seed(value):
+    """Refuse a ``--seed`` outside the 32-bit range sidecars hold."""
+    from runner.trial_log import MAX_SEED
+
+    return _check_count(value, "--seed", 0, MAX_SEED, "a seed")
 
 
 def _screen(protocol, path: str, acknowledged: bool):
@@ -115,15 +129,14 @@ def cmd_check(args) -> int:
 
 
 def cmd_simulate(args) -> int:
-    from fitting.outputs import check_out_dir
-    from runner.launch import simulate
+    from runner.launch import check_out_folder, simulate
     from runner.observers import load_model
     from runner.trial_log import check_identifier
 
-    _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
+    _check_seed(args.seed)
     _check_count(args.observers, "--observers", 1, 99, "the number of simulated observers")
     check_identifier(args.session, "--session")
-    check_out_dir(args.out)
+    check_out_folder(args.out)
     protocol, text = _load(args.protocol)
     light = _light(protocol)
     screening = _screen(protocol, args.protocol, args.flicker_ack)
@@ -147,8 +160,8 @@ def cmd_run(args) -> int:
 
     check_identifier(args.observer, "--observer")
     check_identifier(args.session, "--session")
-    _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
-    check_can_start(args.out, args.observer, args.session, args.resume)
+    _check_seed(args.seed)
+    check_can_start(args.out, args.observer, args.session, args.resume, args.seed)
     protocol, text = _load(args.protocol)
     light = _light(protocol)
     screening = _screen(protocol, args.protocol, args.flicker_ack)
@@ -222,7 +235,7 @@ def cmd_fit(args) -> int:
     from runner.workpool import FIGURE_MODULES, FIT_MODULES, open_pool, task_mapper
 
     _check_count(args.bootstrap, "--bootstrap", 0, MAX_BOOTSTRAP, "bootstrap replicates")
-    _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
+    _check_seed(args.seed)
     check_out_dir(args.out, "fit")
 
     lapse = args.lapse
@@ -310,7 +323,7 @@ def _check_study(args, command: str) -> None:
     """The checks ``plan`` and ``recover`` share, before any work: counts, the folder, the protocol."""
     from fitting.outputs import check_out_dir
 
-    _check_count(args.seed, "--seed", 0, MAX_SEED, "a seed")
+    _check_seed(args.seed)
     _check_count(args.runs, "--runs", 1, 10_000, "simulated sessions per design")
     _check_count(args.jobs, "--jobs", 1, 256, "worker processes")
     check_out_dir(args.out, command)
@@ -415,8 +428,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", required=True, help="output folder for trial logs and sidecars")
     p.add_argument("--model", help="observer model file (TOML, flat keys; default built in; a resume uses the "
                                    "sidecar's)")
-    p.add_argument("--observers", type=int, default=1, help="number of simulated observers (default 1)")
-    p.add_argument("--seed", type=int, help="seed (default 0; a resume uses the sidecar's)")
+    p.add_argument("--observers", type=_int_arg, default=1, help="number of simulated observers (default 1)")
+    p.add_argument("--seed", type=_int_arg, help="seed (default 0; a resume uses the sidecar's)")
     p.add_argument("--session", default="s1", help="session label: letters, digits, - and _ (default s1)")
     p.add_argument("--resume", action="store_true", help="continue interrupted sessions in --out")
     ack(p)
@@ -429,7 +442,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--session", default="s1", help="session label (default s1)")
     p.add_argument("--windowed", action="store_true", help="a window instead of full screen (tests, piloting)")
     p.add_argument("--resume", action="store_true", help="continue an interrupted session")
-    p.add_argument("--seed", type=int, help="session seed (default: drawn at random and stored)")
+    p.add_argument("--seed", type=_int_arg, help="session seed (default: drawn at random and stored)")
     p.add_argument(safety.REFRESH_OVERRIDE_OPTION, dest="refresh_ack", action="store_true",
                    help="run although the measured refresh rate differs from the protocol's (recorded)")
     ack(p)
@@ -438,8 +451,8 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("fit", help="fit trial logs: PSEs, after-effects, tuning, decay, figures")
     p.add_argument("logs", nargs="+", help="trial logs (*.trials.csv) or folders holding them")
     p.add_argument("--out", required=True, help="output folder for tables and figures")
-    p.add_argument("--bootstrap", type=int, default=1000, help="parametric bootstrap replicates (default 1000)")
-    p.add_argument("--seed", type=int, default=0, help="seed (default 0)")
+    p.add_argument("--bootstrap", type=_int_arg, default=1000, help="parametric bootstrap replicates (default 1000)")
+    p.add_argument("--seed", type=_int_arg, default=0, help="seed (default 0)")
     p.add_argument("--lapse", default="free", help="'free' (bounded to [0, --lapse-max]) or a fixed value (default free)")
     p.add_argument("--spread", choices=["shared", "per_condition"], default="shared",
                    help="one spread per observer or one per condition, with a likelihood-ratio test (default shared)")
@@ -457,7 +470,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--include-practice", action="store_true", help="keep practice trials")
     p.add_argument("--no-figures", action="store_true", help="tables only")
     where = p.add_mutually_exclusive_group()
-    where.add_argument("--jobs", type=int, help="observers fitted at once in local worker processes "
+    where.add_argument("--jobs", type=_int_arg, help="observers fitted at once in local worker processes "
                                                 "(default: every available core)")
     where.add_argument("--scheduler", metavar="ADDRESS", help="fit the observers on a Dask cluster, e.g. "
                                                               "tcp://HOST:8786 (needs the cluster extra)")
@@ -489,14 +502,15 @@ def build_parser() -> argparse.ArgumentParser:
         p.add_argument("--vary", action="append", metavar="FIELD=[V1, V2, ...]",
                        help="run a design for each value (TOML values) of a protocol field (e.g. "
                             "procedure.method) or of the observer model (model.KEY); several --vary form a grid")
-        p.add_argument("--runs", type=int, default=runs, help=f"simulated sessions per design (default {runs})")
-        p.add_argument("--bootstrap", type=int, default=boot, help=f"bootstrap replicates per fit (default {boot})")
+        p.add_argument("--runs", type=_int_arg, default=runs, help=f"simulated sessions per design (default {runs})")
+        p.add_argument("--bootstrap", type=_int_arg, default=boot,
+                       help=f"bootstrap replicates per fit (default {boot})")
         p.add_argument("--lapse", default="free", help="lapse of the fits: 'free' or a fixed value (default free)")
         p.add_argument("--out", default=out, help=f"study folder; finished tasks are kept there and a rerun "
                                                   f"continues (default {out})")
-        p.add_argument("--seed", type=int, default=0, help="seed (default 0)")
+        p.add_argument("--seed", type=_int_arg, default=0, help="seed (default 0)")
         where = p.add_mutually_exclusive_group()
-        where.add_argument("--jobs", type=int, help="local worker processes (default: every available core)")
+        where.add_argument("--jobs", type=_int_arg, help="local worker processes (default: every available core)")
         where.add_argument("--scheduler", metavar="ADDRESS",
                            help="run the tasks on a Dask cluster, e.g. tcp://HOST:8786 (needs the cluster extra)")
 
@@ -518,20 +532,20 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--report", default="display_test.json", help="JSON report path (default display_test.json)")
     p.add_argument("--frames", metavar="DIR",
                    help="instead of timing, write rendered frames of each period type as PNGs and a table to DIR")
-    p.add_argument("--frames-per-period", type=int, default=3, help="frames written per period type (default 3)")
+    p.add_argument("--frames-per-period", type=_int_arg, default=3, help="frames written per period type (default 3)")
     p.set_defaults(func=cmd_display_test)
 
     p = sub.add_parser("measure-light", help="photometer readings of this display -> light profile for [light]")
     p.add_argument("protocol", nargs="?", help="protocol whose [display] geometry and background are used")
     p.add_argument("--out", required=True, help="light profile to write (TOML); readings go to OUT.readings.csv")
     p.add_argument("--readings", metavar="CSV", help="fit readings from a CSV file (level, luminance_cd_m2[, gun]); no screen")
-    p.add_argument("--levels", type=int, default=9, help="grey levels from 0 to 1 (default 9)")
-    p.add_argument("--repeats", type=int, default=2, help="readings per level (default 2)")
+    p.add_argument("--levels", type=_int_arg, default=9, help="grey levels from 0 to 1 (default 9)")
+    p.add_argument("--repeats", type=_int_arg, default=2, help="readings per level (default 2)")
     p.add_argument("--per-gun", action="store_true", help="also measure red, green and blue alone")
     p.add_argument("--patch-deg", type=float, default=5.0, help="side of the central patch, deg (default 5)")
     p.add_argument("--full-field", action="store_true", help="light the whole screen instead of a patch")
     p.add_argument("--windowed", action="store_true", help="a window instead of full screen")
-    p.add_argument("--seed", type=int, default=0, help="seed of the random order (default 0)")
+    p.add_argument("--seed", type=_int_arg, default=0, help="seed of the random order (default 0)")
     p.add_argument("--resume", action="store_true", help="continue the readings in OUT.readings.csv")
     p.add_argument("--label", default="", help="free text naming the display, written into the profile")
     p.add_argument("--fit-anyway", action="store_true",
@@ -591,9 +605,21 @@ class Terminated(KeyboardInterrupt):
     """SIGTERM, handled like Ctrl-C."""
 
 
-def _on_sigterm(signum, frame):  # noqa: ARG001 - signal handler
-    signal.signal(signal.SIGTERM, signal.SIG_IGN)  # one clean ending, not two
-    raise Terminated()
+#: Set by the first Ctrl-C or SIGTERM: the command is winding down.
+_stopping = False
+
+
+def _on_stop_signal(signum, frame):  # noqa: ARG001 - signal handler
+    """The first Ctrl-C or SIGTERM stops the command; later ones are ignored while it winds down.
+
+    A second signal while the sidecar is closed or the progress bar's
+    thread ends would print a traceback and could leave the part ``running``.
+    """
+    global _stopping
+    if _stopping:
+        return      # not SIG_IGN: Python would raise "ignored due to race condition" for one already pending
+    _stopping = True
+    raise Terminated() if signum == signal.SIGTERM else KeyboardInterrupt()
 
 
 def _interrupt_behind(exc: BaseException) -> KeyboardInterrupt | None:
@@ -633,8 +659,16 @@ def _interrupted_line(command: str | None, exc: BaseException) -> str:
 
 
 def _install_signal_handlers() -> None:
-    if signal.getsignal(signal.SIGTERM) in (signal.SIG_DFL, None):
-        signal.signal(signal.SIGTERM, _on_sigterm)
+    """Let Ctrl-C and SIGTERM stop a command once (:func:`_on_stop_signal`).
+
+    A signal ignored by whoever started the process (a background job's
+    SIGINT) stays ignored.
+    """
+    global _stopping
+    for sig, ours in ((signal.SIGINT, (signal.default_int_handler,)), (signal.SIGTERM, (signal.SIG_DFL, None))):
+        if signal.getsignal(sig) in ours:
+            signal.signal(sig, _on_stop_signal)
+    _stopping = False
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -11,6 +11,7 @@ import hashlib
 import json
 import os
 import secrets
+import sys
 from dataclasses import asdict
 from datetime import datetime, timezone
 from pathlib import Path
@@ -18,6 +19,7 @@ from pathlib import Path
 import numpy as np
 
 from fitting.errors import InputError
+from fitting.logfile import is_being_written
 from fitting.provenance import software_versions
 from runner.console import SimulationConsole
 from runner.headless import HeadlessPresenter
@@ -102,12 +104,20 @@ def resume_seed_and_model(out_dir: Path, n_observers: int, session: str, seed: i
         started with, or sidecars that disagree with each other.
     """
     names = [f"sim{i + 1:02d}" for i in range(n_observers)]
-    for source, content in sidecar_settings(out_dir, names, session):
+    found = sidecar_settings(out_dir, names, session)
+    if not found and seed is None:
+        _refuse_unknown_seed(log_paths(out_dir, names[0], session)[1], "the original --seed (and --model, "
+                             "if it used one)")
+    for source, content in found:
         if seed is not None and content["seed"] != seed:
             _refuse_conflict(source, "seed", "--seed", content["seed"], seed)
         seed = content["seed"]
         stored = content.get("base_model")
         if isinstance(stored, dict):
+            for key, value in stored.items():
+                if not isinstance(value, (int, float)) or isinstance(value, bool):
+                    raise InputError(source, f"base_model.{key}",
+                                     f"malformed sidecar: expected a number, found {str(value)[:40]!r}")
             try:
                 started = ObserverModel(**stored)
             except (TypeError, ValueError) as exc:
@@ -116,22 +126,47 @@ def resume_seed_and_model(out_dir: Path, n_observers: int, session: str, seed: i
                 raise InputError(source, "base_model", "the session was started with another observer model; "
                                  "resume without --model (the sidecar rules a resume) or with the original file")
             model = started
-    return (0 if seed is None else seed), (model or ObserverModel())
+    return seed, (model or ObserverModel())
 
 
-def check_can_start(out_dir: str | Path, observer: str, session: str, resume: bool) -> None:
-    """Refuse, before any window opens, a session that cannot start in ``out_dir``.
+def _refuse_unknown_seed(sidecar: Path, what: str) -> None:
+    """A resume that would have to guess the seed: no sidecar records it and no ``--seed`` names it."""
+    raise InputError(str(sidecar), "seed", f"is missing, so the seed this session started with is unknown "
+                     f"(the run stopped before writing it); resume with {what}")
 
-    Without ``resume`` an existing log or sidecar of this session is refused;
-    in every case the folder (or its nearest existing parent) must be writable.
+
+def check_out_folder(out_dir: str | Path) -> None:
+    """Refuse an ``--out`` that is empty or names a file: sessions are written into a folder.
 
     Raises
     ------
     InputError
     """
+    if str(out_dir).strip() == "":
+        raise InputError("argument", "--out", "is empty; name the folder for the logs (e.g. --out data)")
+    if Path(out_dir).exists() and not Path(out_dir).is_dir():
+        raise InputError(str(out_dir), "--out", "is a file, not a folder; name a folder for the logs")
+
+
+def check_can_start(out_dir: str | Path, observer: str, session: str, resume: bool,
+                    seed: int | None = None) -> None:
+    """Refuse, before any window opens, a session that cannot start in ``out_dir``.
+
+    Without ``resume`` an existing log or sidecar of this session is refused;
+    with it, a session whose sidecar (and so its seed) is missing is refused
+    unless ``seed`` is given; in every case the folder (or its nearest
+    existing parent) must be writable.
+
+    Raises
+    ------
+    InputError
+    """
+    check_out_folder(out_dir)
     path, sidecar = log_paths(out_dir, observer, session)
     if not resume:
         refuse_existing(path, sidecar)
+    elif seed is None and not sidecar.exists():
+        _refuse_unknown_seed(sidecar, "--seed and the seed it started with (any seed if it was drawn at random)")
     folder = Path(out_dir).absolute()
     while not folder.exists() and folder != folder.parent:
         folder = folder.parent
@@ -167,15 +202,27 @@ def check_same_light(log: TrialLog, sidecar: dict, base: dict) -> None:
         )
 
 
-def start_sidecar(log: TrialLog, base: dict, resume: bool, text: str) -> dict:
+#: ``ended_by`` of a part whose process ended without recording how (kill -9, power cut), set by the next resume.
+VANISHED = "vanished"
+
+
+def start_sidecar(log: TrialLog, base: dict, resume: bool, text: str) -> dict | None:
     """Read (resume) or write (new) the sidecar; return its content with a new part.
 
     Repairs made to the log's tail on opening are recorded in the new part.
+    Parts left ``running`` by a process that ended without a word are closed
+    first (:func:`close_vanished_parts`).  A session that is complete gets
+    no new part: None is returned.
     """
     if log.sidecar_path.exists():
         sidecar = log.read_sidecar()
         check_same_protocol(log, sidecar, text)
         check_same_light(log, sidecar, base)
+        changed = close_vanished_parts(sidecar, len(log.rows))
+        if is_complete(sidecar, len(log.rows)):
+            if changed:
+                log.write_sidecar(sidecar)
+            return None
     else:
         sidecar = dict(base)
         sidecar["parts"] = []
@@ -185,6 +232,31 @@ def start_sidecar(log: TrialLog, base: dict, resume: bool, text: str) -> dict:
     sidecar["parts"].append(part)
     log.write_sidecar(sidecar)
     return sidecar
+
+
+def close_vanished_parts(sidecar: dict, rows: int) -> bool:
+    """Mark parts still ``running`` as :data:`VANISHED`; return True if any was.
+
+    Their process ended without recording it (kill -9, a power cut, a full
+    disk while the sidecar was written).  The last such part is credited
+    with the log's rows that no other part accounts for.
+    """
+    parts = sidecar["parts"]
+    left = [i for i, p in enumerate(parts) if p.get("ended_by") == "running"]
+    for i in left:
+        parts[i]["ended_by"] = VANISHED
+    if left:
+        others = sum(p.get("rows_added", 0) for j, p in enumerate(parts) if j != left[-1]
+                     and isinstance(p.get("rows_added"), int))
+        parts[left[-1]]["rows_added"] = max(rows - others, 0)
+        sidecar["rows_total"] = rows
+    return bool(left)
+
+
+def is_complete(sidecar: dict, rows: int) -> bool:
+    """True when the last part completed the session and the log still holds all its rows."""
+    parts = sidecar["parts"]
+    return bool(parts) and parts[-1].get("ended_by") == "completed" and sidecar.get("rows_total") == rows
 
 
 def run_part(log: TrialLog, sidecar: dict, session) -> SessionResult:
@@ -256,7 +328,8 @@ def simulate(
     (:func:`runner.observers.draw_observers`).  ``light``, when given, is the
     light profile's record (:meth:`runner.light.LightPlan.sidecar`) for the
     sidecars.  ``seed`` and ``model`` may be None: a resume then takes them
-    from the sidecars, a new session uses 0 and the built-in model.  Rows are
+    from the sidecars (and is refused when no sidecar records the seed), a
+    new session uses 0 and the built-in model.  Rows are
     written at once but synced to disk only at breaks and at the end (they can
     be made again from the seed), unless ``sync_every_row`` asks for a
     person's per-trial sync.
@@ -270,7 +343,12 @@ def simulate(
     check_identifier(session, "--session")
     names = [f"sim{i + 1:02d}" for i in range(n_observers)]
     started = {}
-    if resume:
+    if not resume:
+        for name in names:      # every observer before any work: none is written if one would be refused
+            path, side = log_paths(out, name, session)
+            if not is_being_written(path):      # a held session is refused when opened, naming its holder
+                refuse_existing(path, side)
+    else:
         seed, model = resume_seed_and_model(out, n_observers, session, seed, model)
         started = {content["observer"]: (content, side) for side, content in sidecar_settings(out, names, session)}
     seed = 0 if seed is None else seed
@@ -308,6 +386,12 @@ def simulate(
                 log.close()
                 raise
             console.skip(len(log.rows))
+            if sidecar is None:
+                log.close()
+                print(f"note: {log.path}: the session is complete ({len(log.rows)} trials); nothing to resume",
+                      file=sys.stderr)
+                paths.append(log.path)
+                continue
             console.at_break = log.sync
             answers = observer_kind(observer_model, (run.seed, 5), protocol.display.refresh_hz)
             presenter = HeadlessPresenter(protocol.display.refresh_hz)
@@ -401,6 +485,9 @@ def run_on_screen(
     except BaseException:
         log.close()
         raise
+    if sidecar is None:
+        log.close()
+        return SessionResult("complete already", len(log.rows), 0, started.get("track_states", {}), {})
     if resume:
         sidecar["parts"][-1].update({k: v for k, v in extra.items() if k in ("measured_refresh_hz", "acknowledged")})
     run = (StreamRun if protocol.stream is not None else BlockRun)(as_run, seed, observer, session)

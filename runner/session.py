@@ -32,7 +32,7 @@ from runner.plan import AnswerSource, Period, Presenter, TrialPlan, motion, tria
 from runner.protocol import Protocol, frame_plan
 from runner.schedule import Schedule, ScheduledTrial, build_schedule
 from runner.tracks import make_tracks
-from runner.trial_log import check_row, format_value
+from runner.trial_log import format_value
 
 
 @dataclass(frozen=True)
@@ -41,7 +41,8 @@ class SessionResult:
 
     Attributes
     ----------
-    ended_by : {"completed", "quit"}
+    ended_by : {"completed", "quit", "complete already"}
+        "complete already": a resume of a session that had ended complete (nothing was run).
     rows_total : int
         Rows in the log after this part.
     rows_added : int
@@ -252,7 +253,6 @@ class BlockRun:
             if self._skip(slot):
                 continue
             row, where = rows[i], f"{source}: line {i + 2}"
-            check_row(row, source, i + 2)
             plan = self.plan(slot, i + 1)
             expected = (plan.condition, "" if plan.track is None else str(plan.track), str(plan.index))
             found = (row["condition"], row["track"], row["trial"])

@@ -67,7 +67,7 @@ from runner.protocol import Protocol, frame_plan
 from runner.schedule import Condition, Schedule
 from runner.overview import BREAK_ESTIMATE_S, duration_line, header_lines
 from runner.session import Console, SessionResult, Tally, parse_response, trial_row
-from runner.trial_log import check_row, format_value
+from runner.trial_log import format_value
 from runner.tracks import make_tracks
 
 #: The condition label of stream tests in the log (also the track key prefix).
@@ -318,7 +318,6 @@ class StreamRun:
         if len(rows) > len(tests):
             raise InputError(f"{source}: line {len(tests) + 2}", "trial", "the log has more tests than the stream")
         for i, row in enumerate(rows):
-            check_row(row, source, i + 2)
             where = f"{source}: line {i + 2}"
             plan = self.plan(i, i + 1, lead_in=True, run_on=False)
             expected = (STREAM_CONDITION, str(plan.track), str(plan.index), format_value(plan.preceding_offsets_deg))

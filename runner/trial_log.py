@@ -6,8 +6,8 @@ completed trial.  Each row is handed to the operating system with a single
 trial in progress; with a person, each row is also synced to disk (fsync),
 so a power cut loses nothing either.  Simulated observers sync at breaks and
 at the end (their rows can be made again from the seed).  The tail of a log
-follows the rules of :mod:`fitting.logfile` when it is reopened: a complete
-last row without its newline is kept, a torn line is cut off and reported.
+follows the rules of :mod:`fitting.logfile` when it is reopened: a torn last
+line (one without its newline) is cut off and reported.
 A new log's header is written under a temporary name and renamed into
 place.  One process at a time writes a session
 (:mod:`runner.session_lock`).  A full disk cuts the log back to its last
@@ -35,7 +35,7 @@ import sys
 from pathlib import Path
 
 from fitting.errors import InputError
-from fitting.logfile import check_cells, examine_tail
+from fitting.logfile import check_rows, decode_log, examine_tail
 from runner.session_lock import SessionLock
 
 #: Columns of the trial log, in order.  The first twelve are required of every log (README, Output files).
@@ -128,21 +128,25 @@ def _header_text() -> str:
     return ",".join(COLUMNS) + "\n"
 
 
-def read_rows(path: str | Path, repair: bool = False, repairs: list | None = None) -> list[dict[str, str]]:
+def read_rows(path: str | Path, repair: bool = False, repairs: list | None = None,
+              identity: dict[str, str] | None = None) -> list[dict[str, str]]:
     """Read a trial log written by :class:`TrialLog`, applying the tail rules.
 
-    See :mod:`fitting.logfile`: a complete last row that lacks only its
-    newline is kept; a torn last line is dropped with a warning on stderr.
+    See :mod:`fitting.logfile`: a torn last line (anything after the last
+    newline) is dropped with a warning on stderr.
 
     Parameters
     ----------
     path : str or Path
     repair : bool
-        Make the file match what is returned: cut a torn line off, add a
-        missing newline, write the header of an empty log (used before
+        Make the file match what is returned: cut a torn line off, write
+        the header of an empty log (used before
         appending, under the session's lock).
     repairs : list, optional
         Receives one dict per change made (for the sidecar).
+    identity : dict, optional
+        The observer and session every row must name (default: the first
+        row's).
 
     Returns
     -------
@@ -152,8 +156,9 @@ def read_rows(path: str | Path, repair: bool = False, repairs: list | None = Non
     Raises
     ------
     InputError
-        If the header is not this tool's, or a row before the last is not
-        a whole row.
+        If the header is not this tool's, or a row breaks the cell rules
+        :func:`fitting.logfile.check_rows` shares with ``fit`` (the file is
+        then left as it was).
     """
     p = Path(path)
     try:
@@ -171,44 +176,29 @@ def read_rows(path: str | Path, repair: bool = False, repairs: list | None = Non
     if tail.keep == 0:
         raise InputError(str(p), "line 1", "the header is cut or not an aftershift trial log header, "
                          "and the file holds other data; it cannot be repaired automatically")
+    table = list(csv.reader(io.StringIO(decode_log(data[: tail.keep], str(p)))))
+    head = table[0] if table else None
+    if head is None or tuple(head) != COLUMNS:
+        raise InputError(str(p), "line 1", "the header is not an aftershift trial log header"
+                         f" ({_header_difference(head or [])})")
+    check_rows(COLUMNS, table[1:], str(p), identity)   # before any repair: a refused log stays as it was
     if tail.torn:
-        kept = data.count(b"\n", 0, tail.keep) - 1
         action = "cut off" if repair else "ignoring"
         _note(repairs, p, "torn", f"{action} the torn line {tail.torn_line} ({tail.describe()}), "
-              f"keeping the {kept} rows before it")
-        data = data[: tail.keep]
+              f"keeping the {len(table) - 1} rows before it")
         if repair:
             _truncate(p, tail.keep)
-    if tail.needs_newline:
-        if repair:
-            with open(p, "ab") as fh:
-                fh.write(b"\n")
-                fh.flush()
-                os.fsync(fh.fileno())
-        _note(repairs, p, "newline", "the last row was complete but lacked its newline; kept it")
-    reader = csv.reader(io.StringIO(data.decode("utf-8", "replace")))
-    head = next(reader, None)
-    if head is None or tuple(head) != COLUMNS:
-        raise InputError(str(p), "line 1", "the header is not an aftershift trial log header")
-    rows = []
-    for n, cells in enumerate(reader, start=2):
-        if len(cells) != len(COLUMNS):
-            raise InputError(str(p), f"line {n}", f"expected {len(COLUMNS)} cells, found {len(cells)}")
-        rows.append(dict(zip(COLUMNS, cells)))
-    return rows
+    return [dict(zip(COLUMNS, cells)) for cells in table[1:]]
 
 
-def check_row(row: dict[str, str], source: str, line: int) -> None:
-    """Validate every cell of a logged row (used while replaying it).
-
-    Raises
-    ------
-    InputError
-        Naming the file, the line and the column of the first bad cell.
-    """
-    bad = check_cells(COLUMNS, [row[c] for c in COLUMNS])
-    if bad is not None:
-        raise InputError(source, f"line {line}, column {bad[0]}", bad[1])
+def _header_difference(head: list[str]) -> str:
+    """Where a header first differs from this tool's, in words."""
+    for i, (found, expected) in enumerate(zip(head, COLUMNS)):
+        if found != expected:
+            return f"column {i + 1} is {found[:40]!r}, expected {expected!r}"
+    if len(head) < len(COLUMNS):
+        return f"ends after {len(head)} columns, expected {len(COLUMNS)}"
+    return f"has {len(head)} columns, expected {len(COLUMNS)}"
 
 
 def _note(repairs: list | None, path: Path, kind: str, text: str) -> None:
@@ -359,7 +349,7 @@ class TrialLog:
             if not path.exists() or not (sidecar.exists() or allow_missing_sidecar):
                 raise InputError(str(path), "file", "no session to resume here (log or sidecar missing)")
             repairs: list = []
-            rows = read_rows(path, repair=True, repairs=repairs)
+            rows = read_rows(path, repair=True, repairs=repairs, identity={"observer": observer, "session": session})
             if rows and not sidecar.exists():
                 raise InputError(str(sidecar), "file",
                                  "is missing; a session with trials cannot be resumed without its seed")
@@ -442,6 +432,8 @@ class TrialLog:
         _write_new(self.sidecar_path, text.encode("utf-8"))
 
 
+#: Largest seed (seeds are 32-bit: numpy's seed sequences take any size; files and other tools may not).
+MAX_SEED = 2**32 - 1
 #: Fields every sidecar has, and their JSON types.
 SIDECAR_FIELDS = {"observer": str, "session": str, "seed": int, "session_seed": int, "protocol": dict, "parts": list}
 
@@ -460,6 +452,10 @@ def check_sidecar(content, source: str) -> None:
         value = content.get(name)
         if not isinstance(value, kind) or isinstance(value, bool):
             raise InputError(source, name, f"malformed sidecar: expected {kind.__name__}, found {value!r:.40}")
+    for name in ("seed", "session_seed"):
+        if not 0 <= content[name] <= MAX_SEED:
+            raise InputError(source, name, f"malformed sidecar: a seed is from 0 to {MAX_SEED:,}, "
+                             f"not {str(content[name])[:40]}")
     if not isinstance(content["protocol"].get("sha256"), str):
         raise InputError(source, "protocol.sha256", "malformed sidecar: expected the protocol's SHA-256 text")
     if not all(isinstance(p, dict) for p in content["parts"]):

@@ -21,8 +21,10 @@ import stat
 import tempfile
 from pathlib import Path
 
+import pandas as pd
 import pytest
 
+from conftest import PROTOCOLS
 from fault_helpers import PILOT, PILOT_ARGS, as_nobody, cli, leftovers, logs, one_line, resume_equals, tmpfs
 from runner import trial_log
 from runner.cli import main
@@ -95,6 +97,26 @@ def test_log_without_sidecar_and_no_rows_is_resumed(capsys, tmp_path, whole):
     _resume_equals_whole(capsys, out, whole)
 
 
+@pytest.mark.parametrize("left", ["header only", "nothing"])
+def test_resume_without_a_sidecar_needs_the_original_seed(capsys, tmp_path, whole, left):
+    # killed before the sidecar was written: guessing seed 0 would replay another seed's trials without a word
+    out = _copy(whole, tmp_path / "o", rows=0, sidecar=False) if left == "header only" else tmp_path / "o"
+    before = logs(out)
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, "--observers", "2", "--resume")
+    line = one_line(err)
+    assert code == 2 and SIDE in line and "--seed" in line
+    assert logs(out) == before and not (out / SIDE).exists()
+    _resume_equals_whole(capsys, out, whole)
+
+
+def test_run_resume_without_a_sidecar_needs_a_seed_before_any_window(capsys, tmp_path, monkeypatch):
+    monkeypatch.delenv("DISPLAY", raising=False)  # refused before the screen is opened
+    (tmp_path / "P01-s1.trials.csv").write_text(",".join(trial_log.COLUMNS) + "\n")
+    code, err = cli(capsys, "run", PILOT, "--observer", "P01", "--out", tmp_path, "--resume")
+    line = one_line(err)
+    assert code == 2 and "P01-s1.session.json" in line and "--seed" in line
+
+
 def test_log_with_rows_but_no_sidecar_is_refused(capsys, tmp_path, whole):
     out = _copy(whole, tmp_path / "o", rows=20, sidecar=False)
     before = logs(out)
@@ -106,13 +128,39 @@ def test_log_with_rows_but_no_sidecar_is_refused(capsys, tmp_path, whole):
 # --- the tail of a log ------------------------------------------------------------------------------------------
 
 
-def test_complete_last_row_without_newline_is_kept_not_rerun(capsys, tmp_path, whole):
+def test_last_row_without_its_newline_is_torn_cut_and_rerun(capsys, tmp_path, whole):
     out = _copy(whole, tmp_path / "o", rows=40)
     out.joinpath(NAME).write_bytes(out.joinpath(NAME).read_bytes()[:-1])  # only the newline is missing
     err = _resume_equals_whole(capsys, out, whole)
-    assert "lacked its newline" in err
+    assert "torn line 41" in err and "no newline" in err
     sidecar = json.loads((out / SIDE).read_text())
-    assert sidecar["parts"][-1]["log_repairs"][0]["kind"] == "newline"
+    assert sidecar["parts"][-1]["log_repairs"][0]["kind"] == "torn"
+
+
+STREAM = PROTOCOLS / "stream_nback.toml"
+
+
+@pytest.fixture(scope="module")
+def stream_whole(tmp_path_factory) -> Path:
+    """An uninterrupted stream session (its last column is a ';'-list of offsets), seed 3."""
+    out = tmp_path_factory.mktemp("stream")
+    assert main(["simulate", str(STREAM), "--out", str(out), "--seed", "3"]) == 0
+    return out
+
+
+def test_stream_row_cut_inside_its_last_number_is_torn_for_resume_and_fit(capsys, tmp_path, stream_whole):
+    lines = (stream_whole / NAME).read_bytes().splitlines(keepends=True)
+    last = lines[300].rstrip(b"\n")
+    assert re.search(rb"[0-9]{2}$", last)           # a cut of its last digit still reads as a number
+    out = tmp_path / "o"
+    out.mkdir()
+    (out / NAME).write_bytes(b"".join(lines[:300]) + last[:-1])
+    (out / SIDE).write_bytes((stream_whole / SIDE).read_bytes())
+    code, err = cli(capsys, "fit", out / NAME, "--out", tmp_path / "fit", "--bootstrap", "2", "--no-figures")
+    assert code == 0 and "line 301 left out" in err and "torn" in err
+    assert pd.read_csv(tmp_path / "fit" / "exclusions.csv")["trials_read"].tolist() == [299]
+    err = resume_equals(capsys, STREAM, ["--seed", "3"], out, stream_whole)
+    assert "torn line 301" in err
 
 
 @pytest.mark.parametrize("cut", [3, 17, 40, 60])
@@ -146,9 +194,17 @@ def test_torn_practice_row_is_never_counted_by_fit(capsys, tmp_path, whole):
 # --- corrupt cells and sidecars ---------------------------------------------------------------------------------
 
 
-@pytest.mark.parametrize("column,value", [("response_cw", "7"), ("rt_s", "fast"), ("timing_ok", "maybe"),
-                                          ("dropped_frames", "-1"), ("test_offset_deg", "nan")])
-def test_corrupt_cell_met_during_resume_names_file_line_and_column(capsys, tmp_path, whole, column, value):
+#: Cells a hostile edit may leave, each refused by fit and by a resume alike (fitting/logfile.py:check_rows).
+BAD_CELLS = [("response_cw", "7"), ("timing_ok", "maybe"), ("dropped_frames", "-1"), ("test_offset_deg", "nan"),
+             ("rt_s", "abc"), ("rt_s", "NaN"), ("rt_s", "1e999"), ("rt_s", "-5"), ("rt_s", "1e308"),
+             ("rt_s", "0_5"), ("reference_deg", "north"), ("track", "x"), ("dropped_frames", "-3"),
+             ("dropped_frames", "\u00b2"), ("dropped_frames", "9" * 5000), ("trial", "\u00b2"),
+             ("test_offset_deg", "\uff11"), ("intervening_offsets_deg", "1;x"), ("period_s", "-1"),
+             ("session", "s9"), ("observer", "sim02")]
+
+
+@pytest.mark.parametrize("column,value", BAD_CELLS, ids=[f"{c}={v[:8]!a}" for c, v in BAD_CELLS])
+def test_fit_and_resume_refuse_the_same_bad_cells(capsys, tmp_path, whole, column, value):
     out = _copy(whole, tmp_path / "o", rows=30)
     lines = (out / NAME).read_text().splitlines(keepends=True)
     cells = lines[10].rstrip("\n").split(",")
@@ -156,10 +212,45 @@ def test_corrupt_cell_met_during_resume_names_file_line_and_column(capsys, tmp_p
     lines[10] = ",".join(cells) + "\n"
     (out / NAME).write_text("".join(lines))
     before = logs(out)
+    for args in (["fit", out / NAME, "--out", tmp_path / "fit", "--bootstrap", "0", "--no-figures"],
+                 ["simulate", PILOT, "--out", out, *PILOT_ARGS, "--resume"]):
+        code, err = cli(capsys, *args)
+        line = one_line(err)
+        assert code == 2 and NAME in line and "line 11" in line and f"column {column}" in line, (args[0], line)
+        assert logs(out) == before
+    assert not (tmp_path / "fit").exists()
+
+
+def test_a_log_with_a_byte_order_mark_is_read_alike_by_fit_and_resume(capsys, tmp_path, whole):
+    out = _copy(whole, tmp_path / "o", rows=30)
+    (out / NAME).write_bytes(b"\xef\xbb\xbf" + (out / NAME).read_bytes())   # as a spreadsheet program saves it
+    code, err = cli(capsys, "fit", out / NAME, "--out", tmp_path / "fit", "--bootstrap", "0", "--no-figures")
+    assert code == 0, err
     code, err = cli(capsys, "simulate", PILOT, "--out", out, *PILOT_ARGS, "--resume")
+    assert code == 0, err
+    assert (out / NAME).read_bytes() == b"\xef\xbb\xbf" + (whole / NAME).read_bytes()
+
+
+@pytest.mark.parametrize("field,value", [("seed", -1), ("seed", 10**30), ("session_seed", -1)])
+def test_a_sidecar_seed_out_of_range_names_the_sidecars_field(capsys, tmp_path, whole, field, value):
+    out = _copy(whole, tmp_path / "o", rows=30)
+    side = json.loads((out / SIDE).read_text())
+    side[field] = value
+    (out / SIDE).write_text(json.dumps(side))
+    before = logs(out)
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, "--observers", "2", "--resume")
     line = one_line(err)
-    assert code == 2 and NAME in line and "line 11" in line and column in line
+    assert code == 2 and f"{SIDE}: {field}: malformed sidecar" in line
     assert logs(out) == before
+
+
+def test_fit_with_a_sidecar_that_is_not_an_object_notes_it(capsys, tmp_path, whole):
+    log = _copy(whole, tmp_path / "o") / NAME
+    (log.parent / SIDE).write_text("[1, 2]")
+    code, err = cli(capsys, "fit", log, "--out", tmp_path / "fit", "--bootstrap", "0", "--no-figures")
+    assert code == 0 and "Traceback" not in err
+    sessions = json.loads((tmp_path / "fit" / "report_data.json").read_text())["sessions"]
+    assert "not a JSON object" in sessions[0]["problem"]
 
 
 @pytest.mark.parametrize("content,field", [("[1, 2]", "file"), ('{"tool": 1}', "observer"), ("not json", "file"),
@@ -207,6 +298,27 @@ def test_session_label_is_validated_like_an_observer_id(capsys, tmp_path, sessio
     code, err = cli(capsys, "simulate", PILOT, "--out", tmp_path / "o", "--session", session)
     assert code == 2 and "--session" in one_line(err)
     assert not (tmp_path / "x").exists() and not (tmp_path / "o").exists()
+
+
+def test_a_part_left_running_by_a_kill_is_closed_by_the_resume(capsys, tmp_path, whole):
+    out = _copy(whole, tmp_path / "o", rows=30)
+    side = json.loads((out / SIDE).read_text())   # as kill -9 leaves it: the first part's opening record only
+    side["parts"] = [{"started": side["parts"][0]["started"], "ended": None, "ended_by": "running", "rows_added": 0}]
+    del side["rows_total"], side["track_states"]
+    (out / SIDE).write_text(json.dumps(side))
+    _resume_equals_whole(capsys, out, whole)
+    parts = json.loads((out / SIDE).read_text())["parts"]
+    assert [p["ended_by"] for p in parts] == ["vanished", "completed"]
+    assert [p["rows_added"] for p in parts] == [30, (whole / NAME).read_bytes().count(b"\n") - 31]
+
+
+def test_resuming_a_complete_session_adds_no_part(capsys, tmp_path, whole):
+    out = tmp_path / "o"
+    shutil.copytree(whole, out)
+    before = {p.name: p.read_bytes() for p in out.iterdir()}
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, *PILOT_ARGS, "--resume")
+    assert code == 0 and err.count("the session is complete") == 2
+    assert {p.name: p.read_bytes() for p in out.iterdir()} == before
 
 
 def test_lock_left_by_a_dead_process_is_taken_over_with_a_note(capsys, tmp_path, whole):
@@ -421,6 +533,48 @@ def test_absurd_numbers_on_the_command_line(capsys, tmp_path, whole, args, optio
     code, err = cli(capsys, *args)
     assert code == 2 and option in one_line(err)
     assert not (tmp_path / "out").exists()
+
+
+@pytest.mark.parametrize("value", ["1_0", "\uff12", "\u00b2"])
+def test_whole_number_options_take_ascii_digits_only(capsys, tmp_path, value):
+    code, err = cli(capsys, "simulate", PILOT, "--out", tmp_path / "o", "--observers", value)
+    assert code == 2 and "--observers" in one_line(err) and "0-9" in err
+    assert not (tmp_path / "o").exists()
+
+
+@pytest.mark.parametrize("command", ["simulate", "run"])
+def test_out_that_is_empty_or_a_file_names_the_option(capsys, tmp_path, monkeypatch, command):
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.delenv("DISPLAY", raising=False)   # run refuses before opening a screen
+    who = ["--observer", "P01"] if command == "run" else []
+    afile = tmp_path / "afile"
+    afile.write_text("x")
+    for out, words in (("", "is empty"), (afile, "is a file")):
+        code, err = cli(capsys, command, PILOT, *who, "--out", out)
+        line = one_line(err)
+        assert code == 2 and "--out" in line and words in line
+    assert afile.read_text() == "x" and sorted(p.name for p in tmp_path.iterdir()) == ["afile"]
+
+
+def test_an_existing_later_observer_is_refused_before_any_is_written(capsys, tmp_path, whole):
+    out = tmp_path / "o"
+    out.mkdir()
+    for name in ("sim02-s1.trials.csv", "sim02-s1.session.json"):
+        (out / name).write_bytes((whole / name).read_bytes())
+    before = sorted(p.name for p in out.iterdir())
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, *PILOT_ARGS)
+    assert code == 2 and "sim02-s1.trials.csv" in one_line(err)
+    assert sorted(p.name for p in out.iterdir()) == before
+
+
+def test_a_sidecar_model_value_that_is_not_a_number_names_its_field(capsys, tmp_path, whole):
+    out = _copy(whole, tmp_path / "o", rows=30)
+    side = json.loads((out / SIDE).read_text())
+    side["base_model"]["spread_deg"] = "wide"
+    (out / SIDE).write_text(json.dumps(side))
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, "--observers", "2", "--resume")
+    line = one_line(err)
+    assert code == 2 and f"{SIDE}: base_model.spread_deg: malformed sidecar" in line and "'wide'" in line
 
 
 def test_check_prints_the_duration_and_refuses_a_40_million_trial_protocol(capsys, tmp_path):

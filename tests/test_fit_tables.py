@@ -54,16 +54,16 @@ def test_bad_timing_can_be_kept(tmp_path):
 
 def test_missing_column_names_file_and_column(tmp_path):
     path, df = _log(tmp_path)
-    df.drop(columns="response_cw").to_csv(path, index=False)
+    write_log(df.drop(columns="response_cw"), path)
     err = _error([str(path)])
     assert err.source == str(path) and "response_cw" in err.field
 
 
 @pytest.mark.parametrize("column,value,message", [
-    ("test_offset_deg", "abc", "not a number"),
+    ("test_offset_deg", "abc", "not a finite number"),
     ("response_cw", "2", "not 1, 0 or empty"),
     ("response_cw", "yes", "not 1, 0 or empty"),
-    ("timing_ok", "maybe", "true/false"),
+    ("timing_ok", "maybe", "not true or false"),
     ("lag", "1.5", "whole number"),
 ])
 def test_bad_value_names_file_line_and_column(tmp_path, column, value, message):
