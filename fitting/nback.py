@@ -771,6 +771,9 @@ def fit_stream_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="fr
     from .progress import ProgressBar, phase
     from .provenance import REPORT_DATA, collect, write_report_data
 
+    if n_boot < 2:    # the tables and the peak offset's interval are built from the replicates
+        raise InputError("argument", "--bootstrap", f"a stream fit needs at least 2 replicates (1,000 recommended), "
+                         f"got {n_boot}")
     out = Path(out_dir)
     raw = _read_stream_table(paths)
     observers = _observer_trials(raw, include_bad_timing)

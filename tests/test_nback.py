@@ -11,8 +11,8 @@ import pytest
 import statsmodels.api as sm
 
 from fitting import fit_trials, read_logs
-from fitting.errors import InputError
 from fitting.compare import compare_results
+from fitting.errors import InputError
 from fitting.nback import (StreamTrials, bootstrap_nback, fit_nback, fit_stream_logs, is_stream_log,
                            read_stream_logs, solve)
 from runner.headless import HeadlessPresenter
@@ -157,6 +157,11 @@ def test_fit_stream_logs_writes_the_tables_compare_reads(tmp_path):
         limits = [c for c in t.columns if "ci_" in c]
         assert t[limits].isna().all().all(), name
     assert "Flagged rows" in (tmp_path / "out1" / "summary.txt").read_text()
+    # fewer than two replicates: one line before any work (it was a traceback), as `fit --bootstrap 0` gives it
+    for n in (0, 1):
+        with pytest.raises(InputError, match="--bootstrap: a stream fit needs at least 2 replicates"):
+            fit_stream_logs(tmp_path / "one", tmp_path / "out0", n_boot=n, seed=1, figures=False)
+    assert not (tmp_path / "out0").exists()
 
 
 def test_discrete_logs_are_not_stream_logs(tmp_path):
