@@ -184,6 +184,28 @@ def _cells(line: bytes) -> list[str] | None:
     return rows[0] if len(rows) == 1 else None
 
 
+def check_header_line(data: bytes, source: str) -> None:
+    """Refuse a file whose complete first line is no log header: a picture, a sidecar, another table.
+
+    Only a first line ending in its newline is judged (a header cut by a
+    kill is the tail rules' business).
+
+    Raises
+    ------
+    InputError
+        Naming line 1, and a sidecar given in place of its log.
+    """
+    end = data.find(b"\n")
+    if end < 0:
+        return
+    cells = _cells(data[:end].removeprefix(BYTE_ORDER_MARK).rstrip(b"\r"))
+    if cells is not None and "observer" in (c.strip() for c in cells):
+        return
+    hint = (" (a session sidecar: give the .trials.csv beside it)" if source.endswith(".session.json")
+            else " (not a text file)" if b"\x00" in data[:end] or cells is None else "")
+    raise InputError(source, "line 1", f"not a trial log: its first line is not a log header{hint}")
+
+
 @dataclass(frozen=True)
 class Tail:
     """What the end of a log holds.

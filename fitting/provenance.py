@@ -60,7 +60,7 @@ def _session_record(log: Path) -> tuple[dict, dict | None]:
               "protocol_sha256": None, "seed": None, "started": None, "ended": None, "ended_by": None,
               "trials": None, "measured_refresh_hz": None, "dropped_frames": None, "acknowledged": None,
               "packages": {}}
-    if not side.is_file():
+    if not side.exists():
         record["problem"] = "no sidecar beside the log: protocol, seed and versions unknown"
         return record, None
     try:

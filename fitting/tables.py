@@ -34,7 +34,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputError
-from .logfile import check_rows, decode_log, examine_tail, is_being_written
+from .logfile import check_header_line, check_rows, decode_log, examine_tail, is_being_written
 from .outputs import write_atomic
 
 REQUIRED_COLUMNS = ["observer", "session", "trial", "condition", "adapter_offset_deg", "lag",
@@ -231,6 +231,7 @@ def read_log_table(path: Path) -> pd.DataFrame:
         data = Path(path).read_bytes()
     except OSError as exc:
         raise InputError(source, "file", f"cannot be read ({exc.strerror})") from None
+    check_header_line(data, source)
     tail = examine_tail(data)
     if tail.torn:
         if is_being_written(path):

@@ -59,7 +59,7 @@ def track_factories(logs, strict: bool = True, notes: list | None = None) -> dic
     bare = []
     for log in map(Path, logs):
         side = _sidecar(log)
-        if not side.is_file():
+        if not side.exists():      # a folder of that name is read, and reported, as an unreadable sidecar
             bare.append(log)
             continue
         try:

@@ -86,6 +86,23 @@ def test_cut_header_with_foreign_data_is_refused_and_kept(capsys, tmp_path):
     assert (out / NAME).read_bytes() == b"these are my notes, not a log"
 
 
+def test_a_file_that_is_no_log_is_named_as_such(capsys, tmp_path, whole):
+    # a picture named *.trials.csv was "torn (NUL bytes, as left by a power cut) ... resume the session", and a
+    # sidecar given as the log was "line 2: expected 1 cells as in the header"
+    picture = tmp_path / "x.trials.csv"
+    picture.write_bytes(b"\x89PNG\r\n\x1a\n" + bytes(range(256)) * 4)
+    side = tmp_path / "sim01-s1.session.json"
+    side.write_bytes(next(whole.glob("*.session.json")).read_bytes())
+    other = tmp_path / "t.trials.csv"
+    other.write_text("a,b\n1,2\n")
+    for path, hint in ((picture, " (not a text file)"), (side, " (a session sidecar: give the .trials.csv beside it)"),
+                       (other, "")):
+        code, err = cli(capsys, "fit", path, "--out", tmp_path / "fit", "--bootstrap", "0")
+        assert code == 2 and one_line(err) == f"aftershift: {path}: line 1: not a trial log: its first line is not " \
+                                             f"a log header{hint}"
+    assert not (tmp_path / "fit").exists()
+
+
 def test_kill_during_sidecar_write_leaves_a_cut_temporary_file(capsys, tmp_path, whole):
     out = _copy(whole, tmp_path / "o", rows=30)
     (out / (SIDE + ".tmp")).write_text('{"tool": "aftersh')

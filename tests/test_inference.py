@@ -470,6 +470,15 @@ def test_an_unreadable_sidecar_fixes_the_levels_of_its_observer_only(tmp_path):
     assert notes[0].endswith("observer sim01's bootstrap keeps the presented levels fixed")
     with pytest.raises(InputError, match=f"^{side}: protocol: cannot read"):
         track_factories(logs)
+    # a folder where the sidecar belongs is an unreadable sidecar, not "no sidecar beside the log"
+    side.unlink()
+    side.mkdir()
+    notes = []
+    assert set(track_factories(logs, strict=False, notes=notes)) == {"sim02"}
+    assert len(notes) == 1 and notes[0].startswith(f"{side}: protocol: cannot be read") and "Is a directory" in notes[0]
+    from fitting.provenance import _session_record
+
+    assert "cannot be read" in _session_record(Path(logs[0]))[0]["problem"]
     # a log with no trial row (a session stopped before its first trial): nothing of it to re-run, and every
     # observer keeps their re-run
     Path(logs[0]).write_text(Path(logs[0]).read_text().splitlines()[0] + "\n")
