@@ -69,21 +69,21 @@ class ObserverModel:
     miss_rate: float = 0.0
 
     def __post_init__(self):
-        checks = {
-            "pse_deg": -90 <= self.pse_deg <= 90,
-            "spread_deg": 0 < self.spread_deg <= 90,
-            "lapse": 0 <= self.lapse < 1,
-            "amplitude_deg": -90 <= self.amplitude_deg <= 90,
-            "peak_offset_deg": 0 < self.peak_offset_deg <= 180,
-            "decay_periods": 0 < self.decay_periods <= 1000,
-            "spread_between_observers": 0 <= self.spread_between_observers <= 10,
-            "median_rt_s": 0 < self.median_rt_s <= 10,
-            "miss_rate": 0 <= self.miss_rate < 1,
+        checks = {    # name: (passes, the range in words)
+            "pse_deg": (-90 <= self.pse_deg <= 90, "from -90 to 90"),
+            "spread_deg": (0 < self.spread_deg <= 90, "above 0, at most 90"),
+            "lapse": (0 <= self.lapse < 1, "from 0, below 1"),
+            "amplitude_deg": (-90 <= self.amplitude_deg <= 90, "from -90 to 90"),
+            "peak_offset_deg": (0 < self.peak_offset_deg <= 180, "above 0, at most 180"),
+            "decay_periods": (0 < self.decay_periods <= 1000, "above 0, at most 1000"),
+            "spread_between_observers": (0 <= self.spread_between_observers <= 10, "from 0 to 10"),
+            "median_rt_s": (0 < self.median_rt_s <= 10, "above 0, at most 10"),
+            "miss_rate": (0 <= self.miss_rate < 1, "from 0, below 1"),
         }
-        for name, ok in checks.items():
+        for name, (ok, words) in checks.items():
             value = getattr(self, name)
             if not (isinstance(value, (int, float)) and math.isfinite(value) and ok):
-                raise ValueError(f"{name}: {value!r} is out of range")
+                raise ValueError(f"{name}: {value!r} is out of range; expected a number {words}")
 
     def shift_deg(self, adapter_offset_deg: float | None, lag: int | None) -> float:
         """PSE shift after an adapter at ``adapter_offset_deg`` and ``lag`` periods."""
@@ -121,11 +121,14 @@ def load_model(path: str | Path | None) -> ObserverModel:
         return ObserverModel()
     p = Path(path)
     if not p.is_file():
-        raise InputError(str(p), "file", "does not exist or is not a file")
+        raise InputError(str(p), "file", "is a folder; expected an observer model file (.toml)" if p.is_dir()
+                         else "does not exist or is not a file")
     try:
         raw = tomllib.loads(p.read_bytes().decode("utf-8-sig"))     # with or without a byte-order mark
     except (UnicodeDecodeError, tomllib.TOMLDecodeError, RecursionError) as exc:
         raise InputError(str(p), "TOML", f"not a valid TOML text file ({exc})") from None
+    if not raw:      # an empty or cut file would silently mean the default observer
+        raise InputError(str(p), "(top level)", "the file has no settings; start from protocols/observers/typical.toml")
     known = {f.name for f in fields(ObserverModel)}
     for key, value in raw.items():
         if key not in known:

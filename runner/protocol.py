@@ -720,6 +720,8 @@ def read_protocol_text(path: str | Path) -> str:
     InputError
         Missing file, a folder, an unreadable, oversized or binary file.
     """
+    if str(path).strip() == "":
+        raise InputError("argument", "protocol", "is empty; name a protocol file (.toml)")
     p = Path(path)
     if not p.exists():
         raise InputError(str(p), "file", "does not exist")

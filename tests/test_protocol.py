@@ -38,6 +38,24 @@ def test_a_byte_order_mark_is_read_past(tmp_path):
     assert load_model(model).spread_deg == 2.5
 
 
+@pytest.mark.parametrize("content, field, words", [
+    (b"", "(top level)", "the file has no settings"),                 # it meant the default observer silently
+    (b"# only a comment\n", "(top level)", "the file has no settings"),
+    (b"lapse = 2\n", "lapse", "out of range; expected a number from 0, below 1"),
+    (b"spread_deg = nan\n", "spread_deg", "expected a number above 0, at most 90"),
+])
+def test_bad_observer_models_name_the_field_and_the_range(tmp_path, content, field, words):
+    from runner.observers import load_model
+
+    model = tmp_path / "model.toml"
+    model.write_bytes(content)
+    with pytest.raises(InputError) as err:
+        load_model(model)
+    assert err.value.field == field and words in err.value.message
+    with pytest.raises(InputError, match="is a folder"):
+        load_model(tmp_path)
+
+
 def test_default_protocol_matches_the_design_defaults():
     p = load_protocol(PROTOCOLS / "offset_by_lag.toml")
     assert sorted(p.design.adapter_offsets_deg) == [-90, -60, -30, -15, 15, 30, 60, 90]
@@ -130,6 +148,9 @@ def test_missing_file_and_folder_are_input_errors(tmp_path, capsys):
     code = main(["check", str(tmp_path)])
     err = capsys.readouterr().err
     assert code == 2 and "folder" in err and len(err.strip().splitlines()) == 1
+    code = main(["check", ""])            # an empty name was read as the current folder, "."
+    assert code == 2 and capsys.readouterr().err.strip() == "aftershift: argument: protocol: is empty; name a " \
+                                                            "protocol file (.toml)"
 
 
 def test_duration_not_whole_frames_is_refused_with_nearest_values(tmp_path, capsys):
