@@ -806,6 +806,7 @@ def _fit_moved_with(how: str, tmp_path: Path, whole: Path):
     return proc, out, clean
 
 
+@pytest.mark.slow    # fits in subprocesses
 def test_a_fit_killed_while_moving_its_set_in_is_finished_by_the_next_reader(capsys, tmp_path, whole,
                                                                               monkeypatch):
     # kill -9 between two renames left a mix of the earlier and the new fit's tables (a hostile-user sweep
@@ -832,6 +833,7 @@ def test_a_fit_killed_while_moving_its_set_in_is_finished_by_the_next_reader(cap
     assert _files(out) == _files(clean) and leftovers(out) == []
 
 
+@pytest.mark.slow    # fits in subprocesses
 def test_sigterm_while_a_set_is_moved_in_waits_for_the_whole_set(tmp_path, whole):
     from fitting.outputs import PENDING
 
