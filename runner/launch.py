@@ -130,7 +130,21 @@ def resume_seed_and_model(out_dir: Path, n_observers: int, session: str, seed: i
 
 
 def _refuse_unknown_seed(sidecar: Path, what: str) -> None:
-    """A resume that would have to guess the seed: no sidecar records it and no ``--seed`` names it."""
+    """A resume that would have to guess the seed: no sidecar records it and no ``--seed`` names it.
+
+    A log that already holds trials cannot be resumed without its sidecar
+    at all (:meth:`runner.trial_log.TrialLog.reopen`), so for it the advice
+    is not ``--seed``.
+    """
+    log = sidecar.with_name(sidecar.name.replace(".session.json", ".trials.csv"))
+    try:
+        with open(log, "rb") as fh:
+            rows = fh.read(1 << 16).count(b"\n") > 1
+    except OSError:
+        rows = False
+    if rows:
+        raise InputError(str(sidecar), "file", "is missing and its log holds trials: the session cannot be "
+                         "resumed without it (fit still reads the log; start a new --session for more trials)")
     raise InputError(str(sidecar), "seed", f"is missing, so the seed this session started with is unknown "
                      f"(the run stopped before writing it); resume with {what}")
 

@@ -98,7 +98,7 @@ class Tally:
         self.n_before = len(self.logged)
         self.total = total
         self.console = console
-        self.dropped = sum(int(r["dropped_frames"] or 0) for r in self.logged)
+        self.dropped = sum(int(float(r["dropped_frames"] or 0)) for r in self.logged)    # "1.0" passes the cell rules
         console.started(total, self.n_before)
 
     @property

@@ -352,7 +352,8 @@ class TrialLog:
             rows = read_rows(path, repair=True, repairs=repairs, identity={"observer": observer, "session": session})
             if rows and not sidecar.exists():
                 raise InputError(str(sidecar), "file",
-                                 "is missing; a session with trials cannot be resumed without its seed")
+                                 "is missing and its log holds trials: the session cannot be resumed without "
+                                 "it (fit still reads the log; start a new --session for more trials)")
             return cls(path, sidecar, rows, lock, durable, repairs)
         except BaseException:
             lock.release()

@@ -126,6 +126,31 @@ def test_resume_without_a_sidecar_needs_the_original_seed(capsys, tmp_path, whol
     _resume_equals_whole(capsys, out, whole)
 
 
+def test_a_count_written_as_1_0_resumes_as_fit_reads_it(capsys, tmp_path, whole):
+    # the shared cell rules take "1.0" (a log written back by pandas); the resume's tally took int() of it
+    import csv
+    import io
+
+    out = _copy(whole, tmp_path / "o", rows=40)
+    rows = list(csv.reader(io.StringIO((out / NAME).read_text())))
+    rows[30][rows[0].index("dropped_frames")] = "1.0"
+    (out / NAME).write_text("".join(",".join(r) + "\n" for r in rows))
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, "--observers", "2", "--resume")
+    assert code == 0 and "Traceback" not in err, err
+    assert cli(capsys, "fit", out, "--out", tmp_path / "fit", "--bootstrap", "0", "--no-figures")[0] == 0
+
+
+def test_a_log_with_trials_whose_sidecar_is_gone_is_not_sent_after_a_seed(capsys, tmp_path, whole):
+    # the advice was "resume with the original --seed", and with it the resume refused: no sidecar, no resume
+    out = _copy(whole, tmp_path / "o", rows=40, sidecar=False)
+    before = logs(out)
+    for extra in ((), ("--seed", "5")):
+        code, err = cli(capsys, "simulate", PILOT, "--out", out, "--observers", "2", "--resume", *extra)
+        line = one_line(err)
+        assert code == 2 and SIDE in line and "cannot be resumed" in line and "--seed" not in line.split(": ", 2)[2]
+    assert logs(out) == before
+
+
 def test_run_resume_without_a_sidecar_needs_a_seed_before_any_window(capsys, tmp_path, monkeypatch):
     monkeypatch.delenv("DISPLAY", raising=False)  # refused before the screen is opened
     (tmp_path / "P01-s1.trials.csv").write_text(",".join(trial_log.COLUMNS) + "\n")
