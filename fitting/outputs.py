@@ -199,7 +199,9 @@ def remove_dead_folders(parent: str | Path, prefix: str) -> None:
             pid = int(entry.name[len(prefix):].split("-")[0])
         except ValueError:
             continue
-        if entry.is_dir() and not _pid_alive(pid):
+        if entry.is_symlink():      # no command makes one: a link named like a staging folder goes, not its target
+            entry.unlink()
+        elif entry.is_dir() and not _pid_alive(pid):
             shutil.rmtree(entry, ignore_errors=True)
 
 
@@ -346,17 +348,15 @@ def finish_interrupted(out_dir: str | Path) -> bool:
         staging folder is gone), True otherwise.
     """
     out = Path(out_dir)
+    for temporary in out.glob(f".{PENDING}.*"):      # a journal whose own writing was cut short
+        temporary.unlink(missing_ok=True)
     journal = _journal(out)
     if journal is None:
         return True
     stage = out / journal["stage"] if journal["stage"] else None
-    if stage is not None and stage.is_dir():
-        try:
-            pid = int(journal["stage"][len(STAGING_PREFIX):].split("-")[0])
-        except ValueError:
-            pid = None
-        if pid is not None and pid != os.getpid() and _pid_alive(pid):
-            return True          # a live process is moving it in (a file system without locks)
+    # under the folder's exclusive lock no live command is moving a set in, whatever process now has that
+    # pid; a staging folder that is a link (a hand-edited journal) would move files in from elsewhere
+    if stage is not None and stage.is_dir() and not stage.is_symlink():
         _move_in(out, stage, journal["files"], journal["previous"])
         shutil.rmtree(stage, ignore_errors=True)
         return True
@@ -378,6 +378,7 @@ def settle(out_dir: str | Path) -> None:
     try:
         with folder_lock(out, exclusive=True):
             if finish_interrupted(out):
+                remove_dead_folders(out, STAGING_PREFIX)    # what else the killed command left
                 return
     except OSError:
         pass
@@ -466,9 +467,8 @@ def output_set(out_dir: str | Path, command: str):
     try:
         out.mkdir(parents=True, exist_ok=True)
         refuse_other_set(out, command)
-        if os.path.exists(out / PENDING):
-            with folder_lock(out, exclusive=True):
-                finish_interrupted(out)     # before the killed process's staging folder is removed below
+        with folder_lock(out, exclusive=True):
+            finish_interrupted(out)     # before the killed process's staging folder is removed below
         remove_dead_folders(out, STAGING_PREFIX)
         stage = Path(tempfile.mkdtemp(prefix=f"{STAGING_PREFIX}{os.getpid()}-", dir=out))
     except OSError as exc:

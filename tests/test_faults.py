@@ -843,10 +843,15 @@ def test_a_fit_killed_while_moving_its_set_in_is_finished_by_the_next_reader(cap
     assert _files(out) != _files(clean) | {PENDING: (out / PENDING).read_bytes()}    # a mix, until settled
     gone = tmp_path / "gone" / "fit"
     shutil.copytree(out, gone, symlinks=True)
+    # after a power cut and a reboot another process may have the dead one's pid (here: 1, always alive);
+    # under the folder's lock no command is moving a set in, so the move is finished all the same
+    journal = json.loads((out / PENDING).read_text())
+    (out / journal["stage"]).rename(out / ".staging-1-reused")
+    (out / PENDING).write_text(json.dumps({**journal, "stage": ".staging-1-reused"}))
     pred = tmp_path / "pred.csv"
     pred.write_text("lag,adapter_offset_deg,pse_shift_deg\n0,-30,-2\n0,30,2\n2,-30,-1\n2,30,1\n")
     assert cli(capsys, "compare", out, pred, "--out", tmp_path / "cmp")[0] == 0
-    assert _files(out) == _files(clean) and leftovers(out) == []
+    assert _files(out) == _files(clean) and leftovers(out) == []       # no staging folder left either
     # with its staging folder gone the move cannot be finished: a reader refuses in one line, a new fit replaces
     out = gone
     for stage in out.glob(".staging-*"):
@@ -868,7 +873,7 @@ def test_sigterm_while_a_set_is_moved_in_waits_for_the_whole_set(tmp_path, whole
     assert _files(out) == _files(clean) and not (out / PENDING).exists() and leftovers(out) == []
 
 
-def test_a_manifest_cannot_remove_files_through_a_linked_folder(capsys, tmp_path, whole):
+def test_a_manifest_or_journal_cannot_reach_files_through_a_linked_folder(capsys, tmp_path, whole):
     out, victim = tmp_path / "fit", tmp_path / "victim"
     victim.mkdir()
     (victim / "notes.txt").write_text("not the fit's")
@@ -878,6 +883,17 @@ def test_a_manifest_cannot_remove_files_through_a_linked_folder(capsys, tmp_path
     (out / "outputs.json").write_text(json.dumps({**manifest, "files": manifest["files"] + ["lnk/notes.txt"]}))
     assert cli(capsys, "fit", whole, "--out", out, "--bootstrap", "0", "--no-figures")[0] == 0
     assert (victim / "notes.txt").read_text() == "not the fit's"
+    # nor can a journal whose staging folder is a link move files in from outside (the next fit then
+    # overwrote them); a journal whose own writing was cut short leaves nothing behind the next command
+    from fitting.outputs import PENDING
+
+    (victim / "pse.csv").write_text("precious")
+    (out / ".staging-999999-x").symlink_to(victim)
+    (out / PENDING).write_text(json.dumps({"stage": ".staging-999999-x", "files": ["pse.csv"], "previous": []}))
+    (out / f".{PENDING}.cut").write_text('{"stage": ".stag')
+    assert cli(capsys, "fit", whole, "--out", out, "--bootstrap", "0", "--no-figures")[0] == 0
+    assert (victim / "pse.csv").read_text() == "precious" and (victim / "notes.txt").exists()
+    assert not (out / PENDING).exists() and leftovers(out) == []
 
 
 def test_replicates_that_would_not_fit_in_memory_are_refused():
