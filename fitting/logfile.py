@@ -14,7 +14,9 @@ a log are:
   refuses (exit 2) one with missing or unreadable cells, naming it, unless a
   session is writing the log at that moment (its lock is held): then the
   line being written is left out;
-* a line holding NUL bytes, and everything after it, is torn.
+* a line holding NUL bytes, and everything after it, is torn; but NUL bytes
+  with complete rows after them are damage inside the file (``Tail.damaged``),
+  which both refuse rather than cut the trials that follow.
 
 :func:`check_rows` holds the one set of cell rules: ``fit`` applies it to
 every log it reads, and a resume to the log it continues, so both accept
@@ -223,6 +225,9 @@ class Tail:
     cells_parse : bool
         The torn part is one line whose cells all parse: only its newline
         may be missing, or it may be cut inside its last cell.
+    damaged : bool
+        NUL bytes with complete rows after them: damage inside the file,
+        which no tail rule may cut off (the rows after it are trials).
     """
 
     keep: int
@@ -230,6 +235,12 @@ class Tail:
     torn_line: int
     reason: str
     cells_parse: bool = False
+    damaged: bool = False
+
+    def damage(self, source: str) -> InputError:
+        """The refusal of a log damaged inside (:attr:`damaged`): neither cut nor fitted."""
+        return InputError(source, f"line {self.torn_line}", "holds NUL bytes and complete rows follow it: the file "
+                          "is damaged inside, not cut at its end; mend or remove that line by hand (a copy first)")
 
     def describe(self) -> str:
         """One phrase saying why the line is torn and what it held."""
@@ -247,7 +258,11 @@ def examine_tail(data: bytes) -> Tail:
     nul = data.find(b"\x00")
     if nul >= 0:
         keep = data.rfind(b"\n", 0, nul) + 1
-        return Tail(keep, data[keep:], data.count(b"\n", 0, keep) + 1, "NUL bytes, as left by a power cut")
+        line_no = data.count(b"\n", 0, keep) + 1
+        end = data.find(b"\n", nul)
+        if end >= 0 and data[end + 1:].strip(b"\x00"):     # rows follow: damage inside the file, not its end
+            return Tail(keep, data[keep:], line_no, "NUL bytes with rows after them", damaged=True)
+        return Tail(keep, data[keep:], line_no, "NUL bytes, as left by a power cut")
     keep = data.rfind(b"\n") + 1
     if keep == len(data):
         return Tail(keep, b"", 0, "")

@@ -233,6 +233,8 @@ def read_log_table(path: Path) -> pd.DataFrame:
         raise InputError(source, "file", f"cannot be read ({exc.strerror})") from None
     check_header_line(data, source)
     tail = examine_tail(data)
+    if tail.damaged:
+        raise tail.damage(source)
     if tail.torn:
         if is_being_written(path):
             pass                    # the line a running session is writing

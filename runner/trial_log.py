@@ -166,6 +166,8 @@ def read_rows(path: str | Path, repair: bool = False, repairs: list | None = Non
     except OSError as exc:
         raise InputError(str(p), "file", f"cannot be read ({exc.strerror})") from None
     tail = examine_tail(data)
+    if tail.damaged:
+        raise tail.damage(str(p))
     header = _header_text().encode("utf-8")
     if tail.keep == 0 and (tail.torn == b"" or header.startswith(tail.torn)):
         if repair:

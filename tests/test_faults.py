@@ -221,6 +221,23 @@ def test_nul_bytes_after_a_power_cut_are_cut(capsys, tmp_path, whole):
     assert "NUL" in err
 
 
+def test_nul_bytes_inside_a_log_are_refused_not_cut(capsys, tmp_path, whole):
+    # NUL bytes in line 30 with complete rows after it: the tail rule cut every row from there (57 trials
+    # of a 104-row log deleted and re-run); damage inside the file is refused by resume and fit alike
+    out = _copy(whole, tmp_path / "o", rows=60)
+    data = bytearray((out / NAME).read_bytes())
+    start = sum(len(line) for line in data.splitlines(keepends=True)[:29])
+    data[start + 10] = 0
+    (out / NAME).write_bytes(bytes(data))
+    before = logs(out)
+    for args in (("simulate", PILOT, "--out", out, *PILOT_ARGS, "--resume"),
+                 ("fit", out / NAME, "--out", tmp_path / "fit", "--bootstrap", "0")):
+        code, err = cli(capsys, *args)
+        assert code == 2 and one_line(err).startswith(f"aftershift: {out / NAME}: line 30: holds NUL bytes and "
+                                                      "complete rows follow it"), err
+    assert logs(out) == before
+
+
 def test_torn_practice_row_is_never_counted_by_fit(capsys, tmp_path, whole):
     # a practice row cut right after its timing_ok cell parses in a CSV reader with "practice" empty
     lines = (whole / NAME).read_bytes().splitlines(keepends=True)
