@@ -468,8 +468,9 @@ def unused_predictions(measured: pd.DataFrame, predictions: pd.DataFrame, interp
         return ()
     shown = ", ".join(f"lag {lag:g} offset {o:+g}" for lag, o in unused[:4]) + (
         f" and {len(unused) - 4} more" if len(unused) > 4 else "")
-    return (f"{len(unused)} predicted point{'s' if len(unused) > 1 else ''} match no measured after-effect and "
-            f"{'are' if len(unused) > 1 else 'is'} not used: {shown}",)
+    many = len(unused) > 1
+    return (f"{len(unused)} predicted point{'s match' if many else ' matches'} no measured after-effect and "
+            f"{'are' if many else 'is'} not used: {shown}",)
 
 
 def few_replicates(cov_table: pd.DataFrame | None) -> tuple[set, tuple[str, ...]]:

@@ -528,7 +528,7 @@ class Protocol(_Section):
     @field_validator("title")
     @classmethod
     def _printable_title(cls, v):
-        if any(unicodedata.category(c) in ("Cc", "Cf") for c in v):    # it is printed to terminals and pages
+        if any(unicodedata.category(c) in ("Cc", "Cf", "Zl", "Zp") for c in v):    # printed to terminals and pages
             raise ValueError("expected a title without control characters (line breaks, escapes)")
         return v
 

@@ -96,6 +96,7 @@ MALFORMED = {
     "one_direction_twice": (b"[design]\nadapter_offsets_deg = [-180, 180]", "design.adapter_offsets_deg"),
     "still_dots": (b"[dots]\nspeed_deg_s = 0", "dots.speed_deg_s"),
     "escapes_in_title": (b'title = "Pilot\\r\\u001b[31mRED"', "title"),
+    "line_separator_in_title": (b'title = "Pilot\\u2028two"', "title"),
     "invisible_dots": (b"[display]\nbackground = 0.3\n[dots]\nlevel = 0.3", "dots.level"),
     "black_dots_on_black": (b"[dots]\ncolor_rgb = [0, 0, 0]", "dots.level"),
     "constant_levels_out_of_bounds": (b"[procedure]\nmethod = 'constant'\nbounds_deg = [-20, 20]\n"
