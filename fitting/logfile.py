@@ -49,6 +49,9 @@ CELL_KINDS = {
 }
 #: Columns every row of one log shares: a log holds one observer's one session.
 IDENTITY_COLUMNS = ("observer", "session")
+#: Columns a row leaves empty only in a condition without an adapter: the baseline, or a stream's tests.
+ADAPTER_COLUMNS = ("adapter_offset_deg", "lag")
+NO_ADAPTER_CONDITIONS = ("baseline", "stream")
 LOCK_SUFFIX = ".lock"
 #: A UTF-8 byte-order mark, as some spreadsheet programs put before the header; read past it.
 BYTE_ORDER_MARK = b"\xef\xbb\xbf"
@@ -147,10 +150,16 @@ def check_rows(header, rows, source: str, identity: dict[str, str] | None = None
     """
     header = list(header)
     where = {name: header.index(name) for name in IDENTITY_COLUMNS if name in header}
+    adapted = [(name, header.index(name)) for name in ADAPTER_COLUMNS if name in header and "condition" in header]
     for line, cells in enumerate(rows, start=2):
         bad = check_cells(header, cells)
         if bad is not None:
             raise InputError(source, f"line {line}" + ("" if bad[0] == "cells" else f", column {bad[0]}"), bad[1])
+        condition = cells[header.index("condition")] if adapted else ""
+        for name, i in adapted:
+            if cells[i] == "" and condition.lower() not in NO_ADAPTER_CONDITIONS:
+                raise InputError(source, f"line {line}, column {name}",
+                                 f"empty, but condition {condition!r} is not the baseline")
         if identity is None:
             identity = {name: cells[i] for name, i in where.items()}
         for name, i in where.items():

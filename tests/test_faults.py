@@ -259,7 +259,7 @@ BAD_CELLS = [("response_cw", "7"), ("timing_ok", "maybe"), ("dropped_frames", "-
              ("rt_s", "0_5"), ("reference_deg", "north"), ("track", "x"), ("dropped_frames", "-3"),
              ("dropped_frames", "\u00b2"), ("dropped_frames", "9" * 5000), ("trial", "\u00b2"),
              ("test_offset_deg", "\uff11"), ("intervening_offsets_deg", "1;x"), ("period_s", "-1"),
-             ("session", "s9"), ("observer", "sim02")]
+             ("session", "s9"), ("observer", "sim02"), ("lag", ""), ("adapter_offset_deg", "")]   # line 11: adapt+30_lag2
 
 
 @pytest.mark.parametrize("column,value", BAD_CELLS, ids=[f"{c}={v[:8]!a}" for c, v in BAD_CELLS])
