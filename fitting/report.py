@@ -232,7 +232,7 @@ def _interval_words(o: Options, seed: int) -> str:
     how = "" if not o.tracks else (", adaptive tracks re-run in every replicate" if o.track_use == "replicates"
                                    else ", drawn at the spread and lapse corrected by a pilot that re-ran the "
                                         "adaptive tracks")
-    boot = f"{o.n_boot} parametric bootstrap replicates (seed {seed}{how})"
+    boot = f"{o.n_boot} parametric bootstrap replicate{'' if o.n_boot == 1 else 's'} (seed {seed}{how})"
     resolved = math.ceil(2.0 / (1.0 - o.level) - 1e-9)    # the fewest whose extremes reach both tails
     if 0 < o.n_boot < resolved:
         boot += (f", too few to resolve the {50 * (1 - o.level):g}% tails (at least {resolved} needed, 1,000 "
