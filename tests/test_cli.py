@@ -60,6 +60,7 @@ def test_run_refuses_an_existing_session_before_opening_the_display(tmp_path):
     assert (tmp_path / "p01-s1.trials.csv").read_bytes() == before
 
 
+@pytest.mark.slow    # commands in subprocesses
 def test_run_and_check_refuse_a_bad_lab_text_before_opening_the_display(tmp_path):
     protocol = tmp_path / "p.toml"
     protocol.write_text((PROTOCOLS / "pilot_short.toml").read_text() + '\n[screens]\ninstructions_file = "nope.txt"\n')

@@ -890,6 +890,7 @@ def test_sigterm_while_a_set_is_moved_in_waits_for_the_whole_set(tmp_path, whole
     assert _files(out) == _files(clean) and not (out / PENDING).exists() and leftovers(out) == []
 
 
+@pytest.mark.slow    # three fits
 def test_a_manifest_or_journal_cannot_reach_files_through_a_linked_folder(capsys, tmp_path, whole):
     out, victim = tmp_path / "fit", tmp_path / "victim"
     victim.mkdir()

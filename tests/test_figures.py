@@ -154,6 +154,7 @@ def test_an_unwritable_figure_folder_is_one_input_error(wide_fit, tmp_path):
         figures.make_figures(wide_fit.analyses, None, blocker / "figures", formats=("png",), jobs=1)
 
 
+@pytest.mark.slow    # five observers' figures
 def test_observers_whose_names_differ_only_in_unsafe_characters_get_their_own_figures(tmp_path):
     # "a b" and "a_b" (or "Ö1" and "Ä1") were both written as *_a_b.png, one observer's figures over the other's
     names = ("a b", "a_b", "Ö1", "Ä1", "x_a_b")
