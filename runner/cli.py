@@ -96,6 +96,7 @@ def cmd_check(args) -> int:
     from runner import safety
     from runner.light import light_plan
     from runner.overview import check_size, describe, duration_words, long_session_caution, session_size
+    from runner.protocol import ignored_settings
     from runner.screens import screen_texts
 
     protocol, _ = _load(args.protocol, size_check=False)
@@ -108,6 +109,9 @@ def cmd_check(args) -> int:
         print("\n".join(describe_stream(protocol)))
     else:
         print("\n".join(describe(protocol)))
+    ignored = ignored_settings(protocol.procedure)
+    if ignored:
+        print(f"note       {', '.join(ignored)}: not used by method = \"{protocol.procedure.method}\"")
     caution = long_session_caution(seconds)
     if caution:
         print(caution)

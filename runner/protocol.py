@@ -533,6 +533,23 @@ class Protocol(_Section):
         return v
 
 
+_BAYES_FIELDS = ("bayes_placement", "bayes_straddle_spreads", "bayes_pse_prior_sd_deg", "bayes_target",
+                 "bayes_share_spread", "pse_range_deg", "spread_range_deg")
+#: The ``[procedure]`` fields each method reads (runner.tracks.procedure_track); ``bounds_deg`` serves all.
+METHOD_FIELDS = {
+    "updown": ("start_offset_deg", "steps_deg", "k_down", "max_reversals"),
+    "weighted": ("start_offset_deg", "steps_deg", "target_cw", "max_reversals"),
+    "bayesian": _BAYES_FIELDS,
+    "constant": ("levels_deg",),
+}
+
+
+def ignored_settings(proc: ProcedureSettings) -> list[str]:
+    """``[procedure]`` fields the file sets that its method does not read (``check`` names them)."""
+    used = {"method", "bounds_deg", *METHOD_FIELDS[proc.method]}
+    return sorted(f"procedure.{name}" for name in proc.model_fields_set - used)
+
+
 def frame_plan(protocol: Protocol) -> dict[str, timing.FrameCount]:
     """Frames of every duration in ``[timing]`` at the protocol's refresh rate.
 

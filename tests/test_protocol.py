@@ -26,6 +26,23 @@ def test_check_accepts_every_bundled_protocol(path, cli):
     assert "photosensitivity" in done.stdout.lower()
 
 
+def test_check_names_procedure_settings_the_method_does_not_read(tmp_path, capsys):
+    # steps_deg and k_down with the Bayesian method were accepted without a word, while start_offset_deg is
+    # refused (it must mean something for every method, issue 14); the others are named so nobody relies on them
+    from runner.protocol import METHOD_FIELDS, ProcedureSettings, ignored_settings
+
+    text = (PROTOCOLS / "pilot_short.toml").read_text()
+    path = tmp_path / "p.toml"
+    path.write_text(text.split("[procedure]")[0] + '[procedure]\nmethod = "bayesian"\nsteps_deg = [4, 2]\nk_down = 2\n')
+    assert main(["check", str(path)]) == 0
+    assert 'note       procedure.k_down, procedure.steps_deg: not used by method = "bayesian"' in capsys.readouterr().out
+    for name in PROTOCOLS.glob("*.toml"):    # the bundled protocols set nothing their method ignores
+        assert ignored_settings(load_protocol(name).procedure) == [], name
+    # every field of [procedure] is read by some method, or by all (method, bounds_deg)
+    read = {"method", "bounds_deg"}.union(*METHOD_FIELDS.values())
+    assert read == set(ProcedureSettings.model_fields)
+
+
 def test_a_byte_order_mark_is_read_past(tmp_path):
     # some editors start UTF-8 files with a byte-order mark; TOML parsers refuse it ("Invalid statement")
     marked = tmp_path / "marked.toml"
