@@ -157,7 +157,7 @@ def cmd_simulate(args) -> int:
 def cmd_run(args) -> int:
     from runner import display, safety
     from runner.console import ExperimenterConsole
-    from runner.launch import check_can_start, run_on_screen
+    from runner.launch import check_can_start, completed_rows, run_on_screen
     from runner.screens import screen_texts
     from runner.session_lock import SessionLock
     from runner.trial_log import check_identifier, log_paths
@@ -166,6 +166,10 @@ def cmd_run(args) -> int:
     check_identifier(args.session, "--session")
     _check_seed(args.seed)
     check_can_start(args.out, args.observer, args.session, args.resume, args.seed)
+    done = completed_rows(args.out, args.observer, args.session) if args.resume else None
+    if done is not None:     # nothing to run: say so without opening the display
+        print(f"session complete already: {done} trials in the log; nothing to resume")
+        return EXIT_OK
     protocol, text = _load(args.protocol)
     light = _light(protocol)
     screening = _screen(protocol, args.protocol, args.flicker_ack)

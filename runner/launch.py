@@ -273,6 +273,22 @@ def is_complete(sidecar: dict, rows: int) -> bool:
     return bool(parts) and parts[-1].get("ended_by") == "completed" and sidecar.get("rows_total") == rows
 
 
+def completed_rows(out_dir: str | Path, observer: str, session: str) -> int | None:
+    """The trials of a session that is complete already (:func:`is_complete`), read without opening it; else None.
+
+    Lets ``run --resume`` say so before it opens the display.  Anything
+    unreadable or unusual gives None: the resume then reads the files itself
+    and reports what it finds.
+    """
+    path, sidecar = log_paths(out_dir, observer, session)
+    try:
+        content = json.loads(sidecar.read_text(encoding="utf-8"))
+        rows = path.read_bytes().count(b"\n") - 1
+        return rows if content.get("kind") == "screen" and is_complete(content, rows) else None
+    except (OSError, ValueError, AttributeError, TypeError, KeyError, IndexError):
+        return None
+
+
 def run_part(log: TrialLog, sidecar: dict, session) -> SessionResult:
     """Run one part of a session, end it in the sidecar however it ends, close the log.
 

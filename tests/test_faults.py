@@ -159,6 +159,22 @@ def test_run_resume_without_a_sidecar_needs_a_seed_before_any_window(capsys, tmp
     assert code == 2 and "P01-s1.session.json" in line and "--seed" in line
 
 
+def test_run_resume_of_a_complete_session_says_so_before_any_window(capsys, tmp_path, whole, monkeypatch):
+    # it opened the display, then reported "complete already"; no screen is needed to say that
+    monkeypatch.delenv("DISPLAY", raising=False)
+    out = tmp_path / "o"
+    out.mkdir()
+    side = json.loads((whole / SIDE).read_text())
+    (out / "P01-s1.trials.csv").write_bytes((whole / NAME).read_bytes().replace(b"sim01,", b"P01,"))
+    (out / "P01-s1.session.json").write_text(json.dumps({**side, "kind": "screen", "observer": "P01"}))
+    before = logs(out)
+    capsys.readouterr()
+    assert main(["run", str(PILOT), "--observer", "P01", "--out", str(out), "--resume"]) == 0
+    rows = (whole / NAME).read_bytes().count(b"\n") - 1
+    assert capsys.readouterr().out == f"session complete already: {rows} trials in the log; nothing to resume\n"
+    assert logs(out) == before
+
+
 def test_log_with_rows_but_no_sidecar_is_refused(capsys, tmp_path, whole):
     out = _copy(whole, tmp_path / "o", rows=20, sidecar=False)
     before = logs(out)
