@@ -133,14 +133,15 @@ def cmd_check(args) -> int:
 
 
 def cmd_simulate(args) -> int:
-    from runner.launch import check_out_folder, simulate
+    from fitting.outputs import check_out_dir
+    from runner.launch import simulate
     from runner.observers import load_model
     from runner.trial_log import check_identifier
 
     _check_seed(args.seed)
     _check_count(args.observers, "--observers", 1, 99, "the number of simulated observers")
     check_identifier(args.session, "--session")
-    check_out_folder(args.out)
+    check_out_dir(args.out)
     protocol, text = _load(args.protocol)
     light = _light(protocol)
     screening = _screen(protocol, args.protocol, args.flicker_ack)

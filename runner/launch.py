@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import hashlib
 import json
-import os
 import secrets
 import sys
 from dataclasses import asdict
@@ -20,6 +19,7 @@ import numpy as np
 
 from fitting.errors import InputError
 from fitting.logfile import is_being_written
+from fitting.outputs import check_out_dir
 from fitting.provenance import software_versions
 from runner.console import SimulationConsole
 from runner.headless import HeadlessPresenter
@@ -149,43 +149,25 @@ def _refuse_unknown_seed(sidecar: Path, what: str) -> None:
                      f"(the run stopped before writing it); resume with {what}")
 
 
-def check_out_folder(out_dir: str | Path) -> None:
-    """Refuse an ``--out`` that is empty or names a file: sessions are written into a folder.
-
-    Raises
-    ------
-    InputError
-    """
-    if str(out_dir).strip() == "":
-        raise InputError("argument", "--out", "is empty; name the folder for the logs (e.g. --out data)")
-    if Path(out_dir).exists() and not Path(out_dir).is_dir():
-        raise InputError(str(out_dir), "--out", "is a file, not a folder; name a folder for the logs")
-
-
 def check_can_start(out_dir: str | Path, observer: str, session: str, resume: bool,
                     seed: int | None = None) -> None:
     """Refuse, before any window opens, a session that cannot start in ``out_dir``.
 
     Without ``resume`` an existing log or sidecar of this session is refused;
     with it, a session whose sidecar (and so its seed) is missing is refused
-    unless ``seed`` is given; in every case the folder (or its nearest
-    existing parent) must be writable.
+    unless ``seed`` is given; in every case ``--out`` must be able to become
+    a writable folder (:func:`fitting.outputs.check_out_dir`).
 
     Raises
     ------
     InputError
     """
-    check_out_folder(out_dir)
+    check_out_dir(out_dir)
     path, sidecar = log_paths(out_dir, observer, session)
     if not resume:
         refuse_existing(path, sidecar)
     elif seed is None and not sidecar.exists():
         _refuse_unknown_seed(sidecar, "--seed and the seed it started with (any seed if it was drawn at random)")
-    folder = Path(out_dir).absolute()
-    while not folder.exists() and folder != folder.parent:
-        folder = folder.parent
-    if not folder.is_dir() or not os.access(folder, os.W_OK | os.X_OK):
-        raise InputError(str(out_dir), "--out", f"{folder} is not a writable folder")
 
 
 def check_same_protocol(log: TrialLog, sidecar: dict, text: str) -> None:
