@@ -29,7 +29,7 @@ from runner.screens import screen_texts
 from runner.session import BlockRun, Console, SessionResult
 from runner.stream import StreamObserver, StreamRun
 from runner.tracks import as_started, tracks_record
-from runner.trial_log import StorageError, TrialLog, check_identifier, check_sidecar, log_paths, refuse_existing
+from runner.trial_log import StorageError, TrialLog, check_identifier, check_sidecar, log_paths, refuse_existing, sidecar_lost
 
 PACKAGES = ("aftershift", "numpy", "scipy", "pandas", "statsmodels", "pydantic", "matplotlib", "psychopy", "pyglet")
 
@@ -143,8 +143,7 @@ def _refuse_unknown_seed(sidecar: Path, what: str) -> None:
     except OSError:
         rows = False
     if rows:
-        raise InputError(str(sidecar), "file", "is missing and its log holds trials: the session cannot be "
-                         "resumed without it (fit still reads the log; start a new --session for more trials)")
+        raise sidecar_lost(sidecar)
     raise InputError(str(sidecar), "seed", f"is missing, so the seed this session started with is unknown "
                      f"(the run stopped before writing it); resume with {what}")
 

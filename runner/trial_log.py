@@ -81,6 +81,12 @@ def check_identifier(value: str, field: str) -> str:
     return value
 
 
+def sidecar_lost(sidecar: Path) -> InputError:
+    """The refusal to resume a session whose log holds trials but whose sidecar is gone."""
+    return InputError(str(sidecar), "file", "is missing and its log holds trials: the session cannot be resumed "
+                      "without it (fit still reads the log; start a new --session for more trials)")
+
+
 def log_paths(out_dir: str | Path, observer: str, session: str) -> tuple[Path, Path]:
     """Paths of the trial log and the sidecar of a session."""
     stem = f"{observer}-{session}"
@@ -353,9 +359,7 @@ class TrialLog:
             repairs: list = []
             rows = read_rows(path, repair=True, repairs=repairs, identity={"observer": observer, "session": session})
             if rows and not sidecar.exists():
-                raise InputError(str(sidecar), "file",
-                                 "is missing and its log holds trials: the session cannot be resumed without "
-                                 "it (fit still reads the log; start a new --session for more trials)")
+                raise sidecar_lost(sidecar)
             return cls(path, sidecar, rows, lock, durable, repairs)
         except BaseException:
             lock.release()
