@@ -29,7 +29,8 @@ from runner.screens import screen_texts
 from runner.session import BlockRun, Console, SessionResult
 from runner.stream import StreamObserver, StreamRun
 from runner.tracks import as_started, tracks_record
-from runner.trial_log import StorageError, TrialLog, check_identifier, check_sidecar, log_paths, refuse_existing, sidecar_lost
+from runner.trial_log import (StorageError, TrialLog, check_identifier, check_sidecar, log_paths, refuse_existing,
+                               sidecar_lost)
 
 PACKAGES = ("aftershift", "numpy", "scipy", "pandas", "statsmodels", "pydantic", "matplotlib", "psychopy", "pyglet")
 
