@@ -110,20 +110,22 @@ def test_sigterm_ends_the_part_as_interrupted_with_the_resume_hint(capsys, tmp_p
 
 
 def test_signals_during_the_wind_down_are_ignored(capsys, tmp_path, whole):
-    # SIGTERM, then Ctrl-C pressed again and again while the part is closed: before, one of them broke into
-    # the sidecar's last write (the part stayed "running") or into the exit, with a traceback
+    # SIGTERM, then Ctrl-C and SIGTERM again and again while the part is closed: before, one of them broke
+    # into the sidecar's last write (the part stayed "running") or into the exit, with a traceback, and one
+    # that came during the interpreter's shutdown ended the process by SIGTERM after its line was printed
     out = tmp_path / "o"
     proc = _start(out)
     while proc.poll() is None and _rows(out / NAME) < 300:
         time.sleep(0.0002)
     proc.send_signal(signal.SIGTERM)
-    for _ in range(400):
+    for i in range(400):
         if proc.poll() is not None:
             break
-        os.kill(proc.pid, signal.SIGINT)
+        with contextlib.suppress(ProcessLookupError):
+            os.kill(proc.pid, (signal.SIGINT, signal.SIGTERM)[i % 2])
         time.sleep(0.0005)
     err = proc.communicate()[1]
-    assert proc.returncode == 130 or ended_by_interrupt(proc.returncode)   # late: Python's exit has no handler
+    assert ended_by_interrupt(proc.returncode), (proc.returncode, err)
     line = one_line(err)     # the first signal handled names itself: SIGINT may be handled before a pending SIGTERM
     assert line.startswith("aftershift simulate: ") and "--resume" in line
     part = json.loads((out / SIDE).read_text())["parts"][-1]
