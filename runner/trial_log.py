@@ -115,10 +115,20 @@ def format_value(value) -> str:
     return str(value)
 
 
-def _row_text(row: dict) -> str:
+def _row_text(row: dict, newline: str = "\n") -> str:
     buf = io.StringIO()
-    csv.writer(buf, lineterminator="\n").writerow([format_value(row.get(c)) for c in COLUMNS])
+    csv.writer(buf, lineterminator=newline).writerow([format_value(row.get(c)) for c in COLUMNS])
     return buf.getvalue()
+
+
+def _line_end(path: Path) -> str:
+    """The line ending of a log's header: ``"\\r\\n"`` for a log saved by a Windows editor, else ``"\\n"``.
+
+    Rows appended on resume take the same ending, so a log never mixes two.
+    """
+    with open(path, "rb") as fh:
+        first = fh.read(4096).split(b"\n", 1)
+    return "\r\n" if len(first) == 2 and first[0].endswith(b"\r") else "\n"
 
 
 class StorageError(InputError):
@@ -287,6 +297,9 @@ class TrialLog:
         trial.  False (simulated observers): every row is handed to the
         operating system at once (a killed process loses nothing) and synced
         only at :meth:`sync` (breaks) and at the end.
+    repairs : list of dict, optional
+    newline : str
+        Line ending of the rows appended (that of the log's header).
 
     Attributes
     ----------
@@ -295,8 +308,9 @@ class TrialLog:
     """
 
     def __init__(self, path: Path, sidecar_path: Path, rows: list[dict[str, str]], lock: SessionLock,
-                 durable: bool = True, repairs: list | None = None):
+                 durable: bool = True, repairs: list | None = None, newline: str = "\n"):
         self.path = path
+        self.newline = newline
         self.sidecar_path = sidecar_path
         self.rows = rows
         self.lock = lock
@@ -360,7 +374,7 @@ class TrialLog:
             rows = read_rows(path, repair=True, repairs=repairs, identity={"observer": observer, "session": session})
             if rows and not sidecar.exists():
                 raise sidecar_lost(sidecar)
-            return cls(path, sidecar, rows, lock, durable, repairs)
+            return cls(path, sidecar, rows, lock, durable, repairs, _line_end(path))
         except BaseException:
             lock.release()
             raise
@@ -374,7 +388,7 @@ class TrialLog:
             The disk is full or failed; the file is cut back to its last
             whole row first.
         """
-        data = _row_text(row).encode("utf-8")
+        data = _row_text(row, self.newline).encode("utf-8")
         try:
             _write_all(self._fd, data)
             if self.durable:

@@ -306,6 +306,15 @@ def test_a_log_with_a_byte_order_mark_is_read_alike_by_fit_and_resume(capsys, tm
     assert (out / NAME).read_bytes() == b"\xef\xbb\xbf" + (whole / NAME).read_bytes()
 
 
+def test_a_log_with_windows_line_endings_resumes_with_the_same_endings(capsys, tmp_path, whole):
+    # before, the resumed rows ended in "\n" after rows in "\r\n": one file with two line endings
+    out = _copy(whole, tmp_path / "o", rows=30)
+    (out / NAME).write_bytes((out / NAME).read_bytes().replace(b"\n", b"\r\n"))   # saved by a Windows editor
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, *PILOT_ARGS, "--resume")
+    assert code == 0, err
+    assert (out / NAME).read_bytes() == (whole / NAME).read_bytes().replace(b"\n", b"\r\n")
+
+
 @pytest.mark.parametrize("field,value", [("seed", -1), ("seed", 10**30), ("session_seed", -1)])
 def test_a_sidecar_seed_out_of_range_names_the_sidecars_field(capsys, tmp_path, whole, field, value):
     out = _copy(whole, tmp_path / "o", rows=30)
