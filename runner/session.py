@@ -159,9 +159,27 @@ def parse_response(text: str, where: str) -> int | None:
     """A logged ``response_cw`` cell as 1, 0 or None; anything else is an InputError."""
     if text == "":
         return None
-    if text in ("0", "1"):
-        return int(text)
+    if text in ("0", "1", "0.0", "1.0"):     # as fit reads it (fitting.logfile.CELL_KINDS)
+        return int(float(text))
     raise InputError(where, "response_cw", f"expected 0, 1 or empty, found {text!r}")
+
+
+def _cell_against_plan(row: dict[str, str], plan: TrialPlan) -> tuple[str, str] | None:
+    """The first of a row's adapter offset, lag and practice cells that its trial's plan contradicts.
+
+    Returns ``(column, what the plan has)``, or None when all agree.  Fit
+    would refuse the log later, or fit the trial in the wrong condition.
+    """
+    for column, planned in (("adapter_offset_deg", plan.adapter_offset_deg), ("lag", plan.lag)):
+        cell = row[column]
+        if planned is None:
+            if cell != "":
+                return column, "empty"
+        elif cell == "" or not math.isclose(float(cell), planned, abs_tol=1e-6):
+            return column, format_value(planned)
+    if row["practice"] != str(int(plan.practice)):
+        return "practice", str(int(plan.practice))
+    return None
 
 
 class BlockRun:
@@ -264,6 +282,10 @@ class BlockRun:
                     f"{expected[0]} track {expected[1]} at {plan.test_offset_deg:g} deg); "
                     "was the protocol changed since the session started?",
                 )
+            wrong = _cell_against_plan(row, plan)
+            if wrong is not None:
+                raise InputError(where, wrong[0], f"{row[wrong[0]]!r} where trial {plan.index} of condition "
+                                 f"{plan.condition} has {wrong[1]}; was the log edited?")
             response = parse_response(row["response_cw"], where)
             if not slot.practice:
                 self.tracks[_key(slot)].update(plan.test_offset_deg, response)

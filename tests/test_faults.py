@@ -306,6 +306,23 @@ def test_a_log_with_a_byte_order_mark_is_read_alike_by_fit_and_resume(capsys, tm
     assert (out / NAME).read_bytes() == b"\xef\xbb\xbf" + (whole / NAME).read_bytes()
 
 
+@pytest.mark.parametrize("column,value", [("lag", "3"), ("adapter_offset_deg", "-30"), ("practice", "1")])
+def test_resume_refuses_a_row_whose_condition_cells_were_edited(capsys, tmp_path, whole, column, value):
+    # before, the resume carried on past the edited row, and the log could then no longer be fitted
+    out = _copy(whole, tmp_path / "o", rows=30)
+    lines = (out / NAME).read_text().splitlines(keepends=True)
+    cells = lines[10].rstrip("\n").split(",")      # line 11: a main trial of adapt+30_lag2
+    assert cells[3] == "adapt+30_lag2" and cells[trial_log.COLUMNS.index("practice")] == "0"
+    cells[trial_log.COLUMNS.index(column)] = value
+    lines[10] = ",".join(cells) + "\n"
+    (out / NAME).write_text("".join(lines))
+    before = logs(out)
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, *PILOT_ARGS, "--resume")
+    line = one_line(err)
+    assert code == 2 and NAME in line and "line 11" in line and column in line and "adapt+30_lag2" in line, line
+    assert logs(out) == before
+
+
 def test_a_log_with_windows_line_endings_resumes_with_the_same_endings(capsys, tmp_path, whole):
     # before, the resumed rows ended in "\n" after rows in "\r\n": one file with two line endings
     out = _copy(whole, tmp_path / "o", rows=30)
