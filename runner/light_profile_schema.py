@@ -30,6 +30,9 @@ MAX_CD_M2 = 100000.0
 #: (the file rounds numbers to 10 decimals).
 AGREEMENT = 1e-6
 
+#: Units of a profile's fields, by the end of the field's name, for the range messages.
+UNITS = {"_cd_m2": "cd/m2", "_hz": "Hz", "_cm": "cm", "_px": "px", "level": "(grey level)"}
+
 # interval limits are nan where a fit had no degrees of freedom left
 _Limit = Annotated[float, Field(allow_inf_nan=True)]
 _Interval = Annotated[list[_Limit], Field(min_length=2, max_length=2)]
@@ -151,6 +154,8 @@ def check_profile(raw: dict, source: str) -> ProfileFile:
             message = "unknown key (a light profile holds only what measure-light writes)"
         elif first.get("type") == "finite_number":
             message = "expected a finite number (not nan or inf)"
+        elif first.get("type") in ("greater_than", "greater_than_equal", "less_than", "less_than_equal"):
+            message = f"{first['input']!r} found; {message[0].lower()}{message[1:]}{_unit(loc)}"
         raise InputError(source, loc, message) from None
     if profile.version != 1:
         raise InputError(source, "version", f"format version {profile.version} is not known; expected 1")
@@ -159,6 +164,11 @@ def check_profile(raw: dict, source: str) -> ProfileFile:
         if section is not None:
             _check_channel(source, channel, section)
     return profile
+
+
+def _unit(field: str) -> str:
+    """`` cd/m2`` and the like for a dotted field name; empty where the field has no unit."""
+    return next((" " + unit for end, unit in UNITS.items() if field.endswith(end)), "")
 
 
 def check_summary(profile: ProfileFile, source: str, black_cd_m2: float, max_cd_m2: float) -> None:

@@ -364,6 +364,26 @@ def test_a_profile_with_impossible_or_malformed_values_is_one_line_naming_the_pr
     assert len(err.splitlines()) == 1, err
 
 
+@pytest.mark.parametrize("pattern, replacement, expected", [
+    (r"^amplitude_cd_m2 = .*", "amplitude_cd_m2 = 1e30", "1e+30 found; input should be less than or equal to "
+     "100000 cd/m2"),
+    (r"^black_cd_m2 = .*", "black_cd_m2 = -0.1", "-0.1 found; input should be greater than or equal to 0 cd/m2"),
+    (r"^# refresh_hz: .*", "refresh_hz = 0.0", "0.0 found; input should be greater than 0 Hz"),
+])
+def test_a_value_out_of_range_is_named_with_its_unit(tmp_path, capsys, pattern, replacement, expected):
+    # before, pydantic's words alone: "Input should be less than or equal to 100000", no unit, no value found
+    import re
+
+    text, n = re.subn(pattern, replacement, EXAMPLE_PROFILE.read_text(encoding="utf-8"), count=1, flags=re.M)
+    assert n == 1
+    profile = tmp_path / "profile.toml"
+    profile.write_text(text, encoding="utf-8")
+    p = write_protocol(tmp_path, 'profile = "profile.toml"\nbackground_cd_m2 = 0.5\ndots_cd_m2 = 40.0')
+    assert main(["check", str(p)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.endswith(expected), err
+
+
 def test_profile_limits_are_where_the_fit_looks_and_a_fitted_profile_loads(tmp_path):
     # a profile the fit writes must always load again: the loader's ranges are the fit's bounds
     write_profile(tmp_path, black=0.4, amplitude=99.6, gain=GAIN_RANGE[1], gamma=GAMMA_RANGE[0])
