@@ -10,7 +10,11 @@ ignored across ``fork`` and ``exec``, and Python leaves it so at start-up.
 
 A parent killed outright (``kill -9``) cannot stop its helpers, and a pool's
 helpers would wait for work forever; a helper that calls
-:func:`follow_parent` as it starts ends when its parent has ended.
+:func:`follow_parent` as it starts ends when its parent has ended. The
+process that :mod:`multiprocessing` starts to track a pool's semaphores then
+removes those the parent left; it is started quiet about it (two lines of
+warning on the terminal, after the shell's own word for the kill, that tell
+the user nothing they can act on).
 """
 
 from __future__ import annotations
@@ -18,9 +22,13 @@ from __future__ import annotations
 import multiprocessing
 import os
 import signal
+import sys
 import threading
 from collections.abc import Iterator
 from contextlib import contextmanager
+
+#: Passed to helper Pythons as ``-W``: the semaphore tracker's warning about a killed parent's semaphores.
+QUIET_TRACKER = "ignore:resource_tracker:UserWarning"
 
 
 @contextmanager
@@ -33,6 +41,8 @@ def children_shielded() -> Iterator[None]:
     the main thread (where handlers cannot change), or when SIGINT's handler
     was set outside Python, the block does nothing.
     """
+    if QUIET_TRACKER not in sys.warnoptions:      # read by multiprocessing when it starts a Python
+        sys.warnoptions.append(QUIET_TRACKER)
     handler = signal.getsignal(signal.SIGINT)
     if threading.current_thread() is not threading.main_thread() or handler is None:
         yield               # None: a handler set outside Python, which could not be put back
