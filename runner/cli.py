@@ -2,7 +2,10 @@
 
 Exit codes: 0 success; 2 bad input (protocol, data, arguments, observer ID)
 with one line on stderr naming the file and field; 3 refused for safety
-(photosensitivity, display timing) unless explicitly acknowledged.
+(photosensitivity, display timing) unless explicitly acknowledged; 4 the
+display failed during a ``run`` (window closed from outside, X connection
+lost), with one line naming the resume command; 130 stopped by Ctrl-C or
+SIGTERM.
 """
 
 from __future__ import annotations
@@ -17,7 +20,7 @@ from pathlib import Path
 
 from fitting.errors import InputError, SafetyRefusal
 
-EXIT_OK, EXIT_INPUT, EXIT_SAFETY = 0, 2, 3
+EXIT_OK, EXIT_INPUT, EXIT_SAFETY, EXIT_DISPLAY = 0, 2, 3, 4
 DEFAULT_PROTOCOL = Path(__file__).resolve().parent.parent / "protocols" / "offset_by_lag.toml"
 
 
@@ -158,10 +161,9 @@ def cmd_simulate(args) -> int:
 def cmd_run(args) -> int:
     from runner import display, safety
     from runner.console import ExperimenterConsole
-    from runner.launch import check_can_start, completed_rows, run_on_screen
+    from runner.launch import check_can_start, check_resume, completed_rows, run_on_screen
     from runner.screens import screen_texts
-    from runner.session_lock import SessionLock
-    from runner.trial_log import check_identifier, log_paths
+    from runner.trial_log import check_identifier
 
     check_identifier(args.observer, "--observer")
     check_identifier(args.session, "--session")
@@ -176,7 +178,8 @@ def cmd_run(args) -> int:
     screening = _screen(protocol, args.protocol, args.flicker_ack)
     caution = safety.caution_text(protocol, args.protocol)
     screen_texts(protocol, caution, args.protocol)  # a bad instructions file is refused before the display opens
-    SessionLock(log_paths(args.out, args.observer, args.session)[0]).release()  # a second writer stops here
+    if args.resume:     # another protocol, light levels or --seed: refused before the display opens
+        check_resume(args.out, args.observer, args.session, text, light, args.seed)
     console = ExperimenterConsole(quick_fit=_quick_fit_text)
     presenter, answers = display.open_screen(protocol, args.windowed, args.refresh_ack, console)
     extra = {
@@ -185,17 +188,44 @@ def cmd_run(args) -> int:
         "safety": screening.to_dict(),
         **({"light": light} if light is not None else {}),
     }
+    lost = None
     try:
         result = run_on_screen(
             protocol, args.protocol, text, args.out, args.observer, presenter, answers, caution, console, extra,
             resume=args.resume, session=args.session, seed=args.seed,
         )
+    except Exception as exc:
+        if not _from_display(exc):
+            raise
+        lost = exc
     finally:
-        presenter.close()
+        try:
+            presenter.close()
+        except Exception as exc:
+            if not _from_display(exc):
+                raise
+    if lost is not None:    # the part is marked failed in the sidecar
+        print(f"aftershift run: the display failed during the session ({type(lost).__name__}: {lost}; was the "
+              f"window closed or the X connection lost?); {_run_kept(args)}", file=sys.stderr)
+        return EXIT_DISPLAY
     print(f"session {result.ended_by}: {result.rows_added} trials this time, {result.rows_total} in the log")
     if result.ended_by == "quit":
         print(f"to continue later, run the same command with --resume: {_resume_command(args)}")
     return EXIT_OK
+
+
+def _run_kept(args) -> str:
+    """What an ended ``run`` leaves, and how to go on: resume a session that started, else start it again."""
+    from runner.trial_log import log_paths
+
+    if log_paths(args.out, args.observer, args.session)[1].exists():
+        return f"every completed trial is in the log; to continue: {_resume_command(args)}"
+    return "the session had not started and nothing was recorded; to start it, run the same command again"
+
+
+def _from_display(exc: BaseException) -> bool:
+    """True for an error of the window library (a window closed from outside, a lost X connection)."""
+    return type(exc).__module__.split(".")[0] in ("pyglet", "psychopy")
 
 
 def _resume_command(args) -> str:
@@ -670,13 +700,16 @@ def _interrupt_behind(exc: BaseException) -> KeyboardInterrupt | None:
 def _interrupted(args, exc: KeyboardInterrupt) -> int:
     """Say in one line that the command was interrupted, and what of its work is kept; return 130."""
     command = getattr(args, "command", None)
-    print(f"aftershift{' ' + command if command else ''}: {_interrupted_line(command, exc)}", file=sys.stderr)
+    print(f"aftershift{' ' + command if command else ''}: {_interrupted_line(args, exc)}", file=sys.stderr)
     return 130
 
 
-def _interrupted_line(command: str | None, exc: BaseException) -> str:
+def _interrupted_line(args, exc: BaseException) -> str:
+    command = getattr(args, "command", None)
     how = "stopped by SIGTERM" if isinstance(exc, Terminated) else "interrupted"
-    if command in ("run", "simulate"):
+    if command == "run":
+        return f"{how}; {_run_kept(args)}"
+    if command == "simulate":
         return f"{how}; every completed trial is in the log; continue with --resume"
     if command in ("fit", "compare", "plan", "recover"):
         from fitting.outputs import committed

@@ -29,8 +29,9 @@ from runner.screens import screen_texts
 from runner.session import BlockRun, Console, SessionResult
 from runner.stream import StreamObserver, StreamRun
 from runner.tracks import as_started, tracks_record
-from runner.trial_log import (StorageError, TrialLog, check_identifier, check_sidecar, log_paths, refuse_existing,
-                               sidecar_lost)
+from runner.session_lock import SessionLock
+from runner.trial_log import (StorageError, TrialLog, check_identifier, check_sidecar, log_paths, read_rows,
+                               refuse_existing, sidecar_bytes, sidecar_lost)
 
 PACKAGES = ("aftershift", "numpy", "scipy", "pandas", "statsmodels", "pydantic", "matplotlib", "psychopy", "pyglet")
 
@@ -153,10 +154,12 @@ def check_can_start(out_dir: str | Path, observer: str, session: str, resume: bo
                     seed: int | None = None) -> None:
     """Refuse, before any window opens, a session that cannot start in ``out_dir``.
 
-    Without ``resume`` an existing log or sidecar of this session is refused;
-    with it, a session whose sidecar (and so its seed) is missing is refused
-    unless ``seed`` is given; in every case ``--out`` must be able to become
-    a writable folder (:func:`fitting.outputs.check_out_dir`).
+    A session another process is writing is refused first, naming that
+    process.  Without ``resume`` an existing log or sidecar of this session
+    is refused; with it, a session that does not exist is refused, and so is
+    one whose sidecar (and so its seed) is missing unless ``seed`` is given;
+    in every case ``--out`` must be able to become a writable folder
+    (:func:`fitting.outputs.check_out_dir`).
 
     Raises
     ------
@@ -164,38 +167,86 @@ def check_can_start(out_dir: str | Path, observer: str, session: str, resume: bo
     """
     check_out_dir(out_dir)
     path, sidecar = log_paths(out_dir, observer, session)
+    if is_being_written(path):
+        SessionLock(path).release()     # refused, naming the holder
     if not resume:
         refuse_existing(path, sidecar)
+    elif not path.exists() and not sidecar.exists():
+        raise InputError(str(path), "file", "no session to resume here (neither its log nor its sidecar exists); "
+                         "check --out, --observer and --session, or leave out --resume to start it")
     elif seed is None and not sidecar.exists():
         _refuse_unknown_seed(sidecar, "--seed and the seed it started with (any seed if it was drawn at random)")
 
 
-def check_same_protocol(log: TrialLog, sidecar: dict, text: str) -> None:
+def check_resume(out_dir: str | Path, observer: str, session: str, text: str, light: dict | None,
+                 seed: int | None) -> None:
+    """Refuse, before any window opens, a resume that its sidecar rules out.
+
+    The protocol text must be the one the session started with, the light
+    profile must give the same grey levels, and a ``seed`` must be the
+    session's.  A session without a sidecar passes (it has no trial yet).
+
+    Raises
+    ------
+    InputError
+    """
+    for source, content in sidecar_settings(Path(out_dir), [observer], session):
+        check_same_protocol(source, content, text)
+        if check_same_light(source, content, light):
+            print(f"note: {source}: the light profile file differs from the one this session started with, "
+                  "but gives the same grey levels; continuing (the new part records its SHA-256)", file=sys.stderr)
+        if seed is not None and seed != content["session_seed"]:
+            _refuse_other_seed(source, content["session_seed"], seed)
+
+
+def _refuse_other_seed(source: str, started: int, given: int) -> None:
+    raise InputError(source, "session_seed", f"this session's seed is {started} (recorded when it started), "
+                     f"not --seed {given}; resume without --seed (the sidecar rules a resume)")
+
+
+def check_same_protocol(source: str, sidecar: dict, text: str) -> None:
     """Refuse to resume with a protocol that differs from the one started with."""
     digest = hashlib.sha256(text.encode("utf-8")).hexdigest()
     if sidecar.get("protocol", {}).get("sha256") != digest:
         raise InputError(
-            str(log.sidecar_path),
+            source,
             "protocol.sha256",
             "the protocol file differs from the one this session started with; resume with the original file",
         )
 
 
-def check_same_light(log: TrialLog, sidecar: dict, base: dict) -> None:
-    """Refuse to resume with a light profile that differs from the one started with.
+#: The grey levels a light profile sets, as the sidecar's ``light`` record names them.
+LIGHT_LEVELS = (("background_level", "background"), ("dots_level", "dots"))
 
-    The same protocol text with a re-measured profile gives other grey levels,
-    so the trials would not be comparable.
+
+def check_same_light(source: str, sidecar: dict, light: dict | None) -> bool:
+    """Refuse to resume with a light profile that gives other grey levels than the one started with.
+
+    A re-measured profile gives other grey levels for the same protocol, so
+    the trials would not be comparable; an edit that leaves the levels as
+    they were (a comment) does not matter.
+
+    Returns
+    -------
+    bool
+        True when the profile file differs but its grey levels do not.
     """
-    old = (sidecar.get("light") or {}).get("profile_sha256")
-    new = (base.get("light") or {}).get("profile_sha256")
-    if old != new:
-        raise InputError(
-            str(log.sidecar_path),
-            "light.profile_sha256",
-            "the light profile differs from the one this session started with (its grey levels would change); "
-            "resume with the original profile or start a new session",
-        )
+    old, new = sidecar.get("light") or {}, light or {}
+    if old.get("profile_sha256") == new.get("profile_sha256"):
+        return False
+    changed = [f"{name} {old.get(key)} now {new.get(key)}" for key, name in LIGHT_LEVELS
+               if not _same_level(old.get(key), new.get(key))]
+    if changed:
+        raise InputError(source, "light.profile_sha256",
+                         f"the light profile differs from the one this session started with and gives other grey "
+                         f"levels ({'; '.join(changed)}); resume with the original profile or start a new session")
+    return True
+
+
+def _same_level(a, b) -> bool:
+    if isinstance(a, (int, float)) and isinstance(b, (int, float)):
+        return abs(a - b) <= 1e-9
+    return a == b
 
 
 #: ``ended_by`` of a part whose process ended without recording how (kill -9, power cut), set by the next resume.
@@ -210,10 +261,11 @@ def start_sidecar(log: TrialLog, base: dict, resume: bool, text: str) -> dict | 
     first (:func:`close_vanished_parts`).  A session that is complete gets
     no new part: None is returned.
     """
+    new_light = False
     if log.sidecar_path.exists():
         sidecar = log.read_sidecar()
-        check_same_protocol(log, sidecar, text)
-        check_same_light(log, sidecar, base)
+        check_same_protocol(str(log.sidecar_path), sidecar, text)
+        new_light = check_same_light(str(log.sidecar_path), sidecar, base.get("light"))
         changed = close_vanished_parts(sidecar, len(log.rows))
         if is_complete(sidecar, len(log.rows)):
             if changed:
@@ -225,6 +277,8 @@ def start_sidecar(log: TrialLog, base: dict, resume: bool, text: str) -> dict | 
     part = {"started": now_iso(), "ended": None, "ended_by": "running", "rows_added": 0}
     if log.repairs:
         part["log_repairs"] = log.repairs
+    if new_light:
+        part["light_profile_sha256"] = base["light"]["profile_sha256"]
     sidecar["parts"].append(part)
     log.write_sidecar(sidecar)
     return sidecar
@@ -271,51 +325,112 @@ def completed_rows(out_dir: str | Path, observer: str, session: str) -> int | No
         return None
 
 
-def run_part(log: TrialLog, sidecar: dict, session) -> SessionResult:
+#: Bytes a sidecar may grow by per trial of its session: the track states keep every level and answer
+#: (about 47 bytes per trial with the default protocol's up-down tracks, measured), with a margin.
+SIDECAR_BYTES_PER_TRIAL = 96
+#: Bytes a sidecar may grow by when a part ends, besides the track states (its end, the timing summary).
+SIDECAR_SPARE = 16384
+
+
+def run_part(log: TrialLog, sidecar: dict, run, session) -> SessionResult:
     """Run one part of a session, end it in the sidecar however it ends, close the log.
 
-    ``session`` is a no-argument callable running the loop.  An interrupt
-    (Ctrl-C, SIGTERM), a full disk or any other failure marks the part
-    ``interrupted``, ``disk full``, ``disk error`` or ``failed`` in the sidecar and is
+    ``run`` is the session's :class:`~runner.session.BlockRun` or
+    :class:`~runner.stream.StreamRun` and ``session`` a no-argument callable
+    running its loop.  Room for the sidecar's last write is kept from the
+    start (:meth:`runner.trial_log.TrialLog.keep_sidecar_room`).  An
+    interrupt (Ctrl-C, SIGTERM), a full disk or any other failure marks the
+    part ``interrupted``, ``disk full``, ``disk error`` or ``failed`` in the
+    sidecar, with the rows and track states of the log as it is then, and is
     raised again; the log keeps every completed row.
     """
     try:
+        log.keep_sidecar_room(len(sidecar_bytes(sidecar)) + SIDECAR_BYTES_PER_TRIAL * run.expected_rows()
+                              + SIDECAR_SPARE)
         try:
             result = session()
+            log.sync()
         except BaseException as exc:
             how = "interrupted" if isinstance(exc, KeyboardInterrupt) else (
                 ("disk full" if exc.full else "disk error") if isinstance(exc, StorageError) else "failed")
-            _end_part(log, sidecar, how)
+            _end_part(log, sidecar, run, how, exc)
             raise
-        log.sync()
         finish_sidecar(log, sidecar, result)
         return result
     finally:
         log.close()
 
 
-def _end_part(log: TrialLog, sidecar: dict, how: str) -> None:
-    """Best effort: the disk may be the reason the part ended."""
+def _end_part(log: TrialLog, sidecar: dict, run, how: str, cause: BaseException) -> None:
+    """Record a part that ended by ``cause``: best effort, the disk may be the reason it ended.
+
+    The rows and track states are those of the log now (an interrupt can
+    fall between a row's write and the tracks' update): the logged rows are
+    replayed into a fresh copy of ``run``.  When the sidecar cannot be
+    written, an :class:`InputError` ``cause`` says so.
+    """
     part = sidecar["parts"][-1]
     try:
-        total = log.rows_on_disk()  # an interrupt can fall between a row's write and its count
-    except OSError:
-        total = log.n_rows
+        rows = read_rows(log.path)
+        states = track_states_after(run, rows, str(log.path))
+        total = len(rows)
+    except (OSError, InputError):
+        states, total = None, log.n_rows
     part.update(ended=now_iso(), ended_by=how, rows_added=total - len(log.rows))
     sidecar["rows_total"] = total
+    if states is None:
+        sidecar.pop("track_states", None)   # stale states would be worse than none
+    else:
+        sidecar["track_states"] = states
     try:
         log.write_sidecar(sidecar)
     except (OSError, InputError):
-        pass
+        if isinstance(cause, InputError):
+            cause.message += (f"; the sidecar {log.sidecar_path.name} could not record how this part ended "
+                              "(it still shows it running; the next --resume marks it vanished)")
+            cause.args = (cause.line(),)
+
+
+def track_states_after(run, rows: list[dict[str, str]], source: str) -> dict:
+    """The track states of ``run``'s session after ``rows``, replayed into a fresh copy of it.
+
+    Raises
+    ------
+    InputError
+        If the rows are not those the session's protocol and seed produce.
+    """
+    fresh = type(run)(run.protocol, run.seed, run.observer, run.session)
+    fresh.replay(rows, source)
+    return fresh.track_states()
 
 
 def finish_sidecar(log: TrialLog, sidecar: dict, result: SessionResult) -> None:
-    """Record how this part ended, the track states and the timing."""
+    """Record how this part ended, the track states and the timing.
+
+    The part has ended when this runs: a Ctrl-C or SIGTERM that comes
+    during the write does not stop it (the write is made again, later
+    signals being ignored while the command winds down) and is raised
+    afterwards.
+
+    Raises
+    ------
+    InputError
+        The sidecar cannot be written; the message says what it still holds.
+    """
     part = sidecar["parts"][-1]
     part.update(ended=now_iso(), ended_by=result.ended_by, rows_added=result.rows_added, timing=result.timing)
     sidecar["rows_total"] = result.rows_total
     sidecar["track_states"] = result.track_states
-    log.write_sidecar(sidecar)
+    try:
+        try:
+            log.write_sidecar(sidecar)
+        except KeyboardInterrupt:
+            log.write_sidecar(sidecar)
+            raise
+    except InputError as exc:
+        raise type(exc)(exc.source, exc.field,
+                        f"the session {result.ended_by} with {result.rows_total} trials in the log, but the sidecar "
+                        f"could not record it and still shows this part running: {exc.message}") from None
 
 
 def simulate(
@@ -408,8 +523,8 @@ def simulate(
             answers = observer_kind(observer_model, (run.seed, 5), protocol.display.refresh_hz)
             presenter = HeadlessPresenter(protocol.display.refresh_hz)
             texts = screen_texts(protocol, "", protocol_path)
-            run_part(log, sidecar, lambda: run.run(presenter, answers, log.append, log.rows, texts, console,
-                                                   str(log.path)))
+            run_part(log, sidecar, run, lambda: run.run(presenter, answers, log.append, log.rows, texts, console,
+                                                        str(log.path)))
             paths.append(log.path)
     finally:
         console.close()
@@ -470,7 +585,7 @@ def run_on_screen(
         if log.sidecar_path.exists():
             started = log.read_sidecar()
             if seed is not None and seed != started["session_seed"]:
-                _refuse_conflict(str(log.sidecar_path), "session_seed", "--seed", started["session_seed"], seed)
+                _refuse_other_seed(str(log.sidecar_path), started["session_seed"], seed)
             seed = int(started["session_seed"])
         elif seed is None:
             seed = secrets.randbelow(2**31)
@@ -495,6 +610,8 @@ def run_on_screen(
     try:
         sidecar = start_sidecar(log, base, resume, protocol_text)
     except BaseException:
+        if not resume and not log.sidecar_path.exists():
+            log.path.unlink(missing_ok=True)    # the header alone, just written: the session never started
         log.close()
         raise
     if sidecar is None:
@@ -504,5 +621,40 @@ def run_on_screen(
         sidecar["parts"][-1].update({k: v for k, v in extra.items() if k in ("measured_refresh_hz", "acknowledged")})
     run = (StreamRun if protocol.stream is not None else BlockRun)(as_run, seed, observer, session)
     texts = screen_texts(protocol, caution, protocol_path)
-    return run_part(log, sidecar, lambda: run.run(presenter, answers, log.append, log.rows, texts, console,
-                                                  str(log.path)))
+    shown = EndScreenGuard(presenter, console)
+    return run_part(log, sidecar, run, lambda: run.run(shown, answers, log.append, log.rows, texts, console,
+                                                       str(log.path)))
+
+
+class EndScreenGuard:
+    """The presenter as the session loop sees it, with a stop signal during the end screen absorbed.
+
+    The end screen (the one text shown without waiting) comes after the part
+    has ended: every row is logged and how it ended is known.  A Ctrl-C or
+    SIGTERM there only cuts the screen short; the part is recorded as it
+    ended (``completed`` or ``quit``), not as ``interrupted``.
+
+    Parameters
+    ----------
+    presenter : runner.plan.Presenter
+    console : Console
+        Told that the end screen was cut short.
+    """
+
+    def __init__(self, presenter, console: Console):
+        self._presenter = presenter
+        self._console = console
+
+    def __getattr__(self, name):
+        return getattr(self._presenter, name)
+
+    def show_text(self, text: str, wait: bool = True) -> bool:
+        """Show a text as the presenter does; a stop signal during the end screen ends only the screen."""
+        if wait:
+            return self._presenter.show_text(text)
+        try:
+            return self._presenter.show_text(text, wait=False)
+        except KeyboardInterrupt:
+            self._console.note("the end screen was cut short by a stop signal (Ctrl-C or SIGTERM); "
+                               "the part had ended")
+            return True

@@ -233,12 +233,18 @@ def _truncate(path: Path, size: int) -> None:
 
 
 def _write_new(path: Path, content: bytes) -> None:
-    """Write a whole file under a temporary name, sync it and rename it into place."""
+    """Write a whole file under a temporary name, sync it and rename it into place.
+
+    The temporary file is written over in place, not emptied first, so
+    space kept under its name (:meth:`TrialLog.keep_sidecar_room`) is used
+    for the new content on a disk that has filled up meanwhile.
+    """
     tmp = path.with_name(path.name + ".tmp")
     try:
-        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o666)
+        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT, 0o666)
         try:
             _write_all(fd, content)
+            os.ftruncate(fd, len(content))
             os.fsync(fd)
         finally:
             os.close(fd)
@@ -417,7 +423,7 @@ class TrialLog:
                 raise _disk_error(self.path, exc, self.n_rows) from None
 
     def close(self) -> None:
-        """Sync and close the log file, then release the session's lock."""
+        """Sync and close the log file, free the sidecar's kept room, then release the session's lock."""
         try:
             if self._fd >= 0:
                 try:
@@ -426,6 +432,7 @@ class TrialLog:
                     pass
                 os.close(self._fd)
                 self._fd = -1
+                _unlink(self.sidecar_path.with_name(self.sidecar_path.name + ".tmp"))
         finally:
             self.lock.release()
 
@@ -449,8 +456,32 @@ class TrialLog:
 
     def write_sidecar(self, content: dict) -> None:
         """Replace the sidecar atomically (no temporary file survives a failure)."""
-        text = json.dumps(content, indent=2, sort_keys=False, default=_json_default) + "\n"
-        _write_new(self.sidecar_path, text.encode("utf-8"))
+        _write_new(self.sidecar_path, sidecar_bytes(content))
+
+    def keep_sidecar_room(self, size: int) -> None:
+        """Keep ``size`` bytes allocated for the sidecar's next write, until :meth:`close`.
+
+        The space is held under the sidecar's temporary name (zeros), which
+        its next write fills in place: the write that records how a part
+        ended then succeeds on a disk that has filled up meanwhile.  Best
+        effort: on a disk that is full already nothing is kept.
+        """
+        tmp = self.sidecar_path.with_name(self.sidecar_path.name + ".tmp")
+        try:
+            fd = os.open(tmp, os.O_WRONLY | os.O_CREAT, 0o666)
+        except OSError:
+            return
+        try:
+            os.posix_fallocate(fd, 0, size)
+        except OSError:
+            pass
+        finally:
+            os.close(fd)
+
+
+def sidecar_bytes(content: dict) -> bytes:
+    """The sidecar file's bytes for ``content``."""
+    return (json.dumps(content, indent=2, sort_keys=False, default=_json_default) + "\n").encode("utf-8")
 
 
 #: Largest seed (seeds are 32-bit: numpy's seed sequences take any size; files and other tools may not).
