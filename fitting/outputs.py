@@ -249,7 +249,7 @@ def committed() -> list[str]:
 
 
 @contextmanager
-def _signals_deferred():
+def signals_deferred():
     """Hold Ctrl-C and SIGTERM until the block ends, then act on the first that came.
 
     Python runs signal handlers in the main thread; outside it (where they
@@ -396,7 +396,7 @@ def _commit(staged: StagedOutputs, command: str) -> None:
     write_atomic(stage / MANIFEST, (json.dumps(manifest, indent=2) + "\n").encode("utf-8"))
     journal = {"stage": stage.name, "command": command, "files": files, "previous": previous}
     write_atomic(out / PENDING, (json.dumps(journal) + "\n").encode("utf-8"))
-    with _signals_deferred():
+    with signals_deferred():
         _move_in(out, stage, files, previous)
         _COMMITTED.append(str(out))
 

@@ -161,7 +161,8 @@ def cmd_simulate(args) -> int:
 def cmd_run(args) -> int:
     from runner import display, safety
     from runner.console import ExperimenterConsole
-    from runner.launch import check_can_start, check_resume, completed_rows, run_on_screen
+    from runner.launch import check_can_start, check_resume, completed_rows, end_running_part, run_on_screen
+    from runner.x_connection import on_connection_lost
     from runner.screens import screen_texts
     from runner.trial_log import check_identifier
 
@@ -188,6 +189,11 @@ def cmd_run(args) -> int:
         "safety": screening.to_dict(),
         **({"light": light} if light is not None else {}),
     }
+    def connection_lost():      # Xlib ends the process after this: record the part, say how to go on
+        end_running_part("failed")
+        print(_display_failed_line(args, "the connection to the X server was lost"), file=sys.stderr)
+
+    on_connection_lost(connection_lost, EXIT_DISPLAY)
     lost = None
     try:
         result = run_on_screen(
@@ -205,8 +211,7 @@ def cmd_run(args) -> int:
             if not _from_display(exc):
                 raise
     if lost is not None:    # the part is marked failed in the sidecar
-        print(f"aftershift run: the display failed during the session ({type(lost).__name__}: {lost}; was the "
-              f"window closed or the X connection lost?); {_run_kept(args)}", file=sys.stderr)
+        print(_display_failed_line(args, f"{type(lost).__name__}: {lost}; was the window closed?"), file=sys.stderr)
         return EXIT_DISPLAY
     print(f"session {result.ended_by}: {result.rows_added} trials this time, {result.rows_total} in the log")
     if result.ended_by == "quit":
@@ -221,6 +226,11 @@ def _run_kept(args) -> str:
     if log_paths(args.out, args.observer, args.session)[1].exists():
         return f"every completed trial is in the log; to continue: {_resume_command(args)}"
     return "the session had not started and nothing was recorded; to start it, run the same command again"
+
+
+def _display_failed_line(args, what: str) -> str:
+    """The one line of a ``run`` whose display failed during the session."""
+    return f"aftershift run: the display failed during the session ({what}); {_run_kept(args)}"
 
 
 def _from_display(exc: BaseException) -> bool:

@@ -19,7 +19,7 @@ import numpy as np
 
 from fitting.errors import InputError
 from fitting.logfile import is_being_written
-from fitting.outputs import check_out_dir
+from fitting.outputs import check_out_dir, signals_deferred
 from fitting.provenance import software_versions
 from runner.console import SimulationConsole
 from runner.headless import HeadlessPresenter
@@ -332,6 +332,23 @@ SIDECAR_BYTES_PER_TRIAL = 96
 SIDECAR_SPARE = 16384
 
 
+#: How to end the part now running, for :func:`end_running_part` (empty between parts).
+_running: list = []
+
+
+def end_running_part(how: str) -> bool:
+    """Record the part now running as ended by ``how`` and close its log; False when none runs.
+
+    For a handler that ends the process where it stands and never returns
+    (a lost X connection, :mod:`runner.x_connection`): no ``finally`` of
+    :func:`run_part` runs after it.
+    """
+    if not _running:
+        return False
+    _running.pop()(how)
+    return True
+
+
 def run_part(log: TrialLog, sidecar: dict, run, session) -> SessionResult:
     """Run one part of a session, end it in the sidecar however it ends, close the log.
 
@@ -347,6 +364,7 @@ def run_part(log: TrialLog, sidecar: dict, run, session) -> SessionResult:
     try:
         log.keep_sidecar_room(len(sidecar_bytes(sidecar)) + SIDECAR_BYTES_PER_TRIAL * run.expected_rows()
                               + SIDECAR_SPARE)
+        _running.append(lambda how: (_end_part(log, sidecar, run, how, None), log.close()))
         try:
             result = session()
             log.sync()
@@ -358,6 +376,7 @@ def run_part(log: TrialLog, sidecar: dict, run, session) -> SessionResult:
         finish_sidecar(log, sidecar, result)
         return result
     finally:
+        _running.clear()
         log.close()
 
 
@@ -631,8 +650,10 @@ class EndScreenGuard:
 
     The end screen (the one text shown without waiting) comes after the part
     has ended: every row is logged and how it ended is known.  A Ctrl-C or
-    SIGTERM there only cuts the screen short; the part is recorded as it
-    ended (``completed`` or ``quit``), not as ``interrupted``.
+    SIGTERM there waits for the screen's moment to pass (raised inside the
+    window library, it left half-made objects behind that printed
+    tracebacks) and the part is recorded as it ended (``completed`` or
+    ``quit``), not as ``interrupted``.
 
     Parameters
     ----------
@@ -653,8 +674,8 @@ class EndScreenGuard:
         if wait:
             return self._presenter.show_text(text)
         try:
-            return self._presenter.show_text(text, wait=False)
+            with signals_deferred():
+                self._presenter.show_text(text, wait=False)
         except KeyboardInterrupt:
-            self._console.note("the end screen was cut short by a stop signal (Ctrl-C or SIGTERM); "
-                               "the part had ended")
-            return True
+            self._console.note("a stop signal (Ctrl-C or SIGTERM) came during the end screen; the part had ended")
+        return True

@@ -1,0 +1,101 @@
+"""How an on-screen session ends when something outside it stops it: a signal at its end screen, a window closed.
+
+Each command runs as its own process on its own Xvfb, answered with
+``xdotool`` keys as in tests/test_display_session.py.  What must hold is the
+README's data-safety contract: one line, an exit code that says what
+happened, every logged trial kept, and a sidecar that tells the truth about
+how the part ended.
+"""
+
+from __future__ import annotations
+
+import itertools
+import json
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+from conftest_display import DATA, find_window, own_x_server, require_xdotool, send_key  # noqa: F401
+
+from runner import safety
+
+pytestmark = [pytest.mark.display, pytest.mark.slow]
+
+ROOT = Path(__file__).resolve().parent.parent
+TINY = DATA / "display_tiny.toml"
+TOTAL = 7    # the tiny protocol's trials (tests/test_display_session.py)
+
+
+def _start(tmp_path: Path, env: dict) -> tuple[subprocess.Popen, Path]:
+    out_file = tmp_path / "stdout.txt"
+    args = ["run", TINY, "--observer", "e01", "--out", tmp_path / "d", "--windowed", "--seed", "11",
+            safety.REFRESH_OVERRIDE_OPTION]
+    process = subprocess.Popen([sys.executable, "-m", "runner.cli", *map(str, args)], cwd=ROOT, env=env,
+                               stdout=out_file.open("w"), stderr=subprocess.PIPE, text=True)
+    return process, out_file
+
+
+def _rows(tmp_path: Path) -> int:
+    log = tmp_path / "d" / "e01-s1.trials.csv"
+    return log.read_bytes().count(b"\n") - 1 if log.exists() else 0
+
+
+def _answer_until(process, env, done, timeout_s: float = 75.0) -> str:
+    """Press space and arrows every 0.25 s until ``done()``; return the window id."""
+    window = find_window("aftershift", env, process=process)
+    keys = itertools.cycle(["space", "right", "space", "left"])
+    end = time.monotonic() + timeout_s
+    while not done():
+        assert process.poll() is None, process.stderr.read()
+        assert time.monotonic() < end, "the session did not get there in time"
+        send_key(window, next(keys), env)
+        time.sleep(0.25)
+    return window
+
+
+def _parts(tmp_path: Path) -> list[tuple[str, int]]:
+    side = json.loads((tmp_path / "d" / "e01-s1.session.json").read_text())
+    return [(p["ended_by"], p["rows_added"]) for p in side["parts"]]
+
+
+def test_sigterm_during_the_end_screen_leaves_the_session_completed(own_x_server, tmp_path):  # noqa: F811
+    # before: exit 130 "continue with --resume", the part `interrupted`; the resume then opened the display
+    # to show an end screen and added an empty `completed` part
+    require_xdotool()
+    env = own_x_server.env()
+    process, out_file = _start(tmp_path, env)
+    # the last trial logged, then the quick fit printed after its line: the end screen is up for 1.5 s
+    _answer_until(process, env, lambda: _rows(tmp_path) == TOTAL)
+    end = time.monotonic() + 30
+    while not out_file.read_text().partition(f" {TOTAL}/{TOTAL} ")[2].partition("\n")[2].strip():
+        assert time.monotonic() < end and process.poll() is None, out_file.read_text()
+        time.sleep(0.02)
+    process.send_signal(signal.SIGTERM)
+    err = process.communicate(timeout=30)[1]
+    assert process.returncode == 0, err
+    assert "Traceback" not in err
+    assert out_file.read_text().splitlines()[-1] == f"session completed: {TOTAL} trials this time, {TOTAL} in the log"
+    assert _parts(tmp_path) == [("completed", TOTAL)]
+
+
+@pytest.mark.parametrize("how", ["windowclose", "windowkill"])
+def test_a_window_closed_or_killed_from_outside_ends_in_one_line_with_the_resume_command(own_x_server, tmp_path,  # noqa: F811
+                                                                                         how):
+    # before: windowclose gave a traceback ending in pyglet's "GLException: b'out of memory'", exit 1, the part
+    # `failed`; windowkill (the X connection lost) ended the process from Xlib, "XIO: fatal IO error", exit 1,
+    # the part left `running`; neither said how to go on
+    require_xdotool()
+    env = own_x_server.env()
+    process, _ = _start(tmp_path, env)
+    window = _answer_until(process, env, lambda: _rows(tmp_path) >= 3)
+    subprocess.run(["xdotool", how, window], env=env, capture_output=True)
+    err = process.communicate(timeout=30)[1]
+    lines = err.strip().splitlines()
+    assert process.returncode == 4 and len(lines) == 1, err
+    assert lines[0].startswith("aftershift run: the display failed during the session")
+    assert lines[0].endswith("--resume") and "--seed" not in lines[0]
+    rows = _rows(tmp_path)
+    assert rows >= 3 and _parts(tmp_path) == [("failed", rows)]
