@@ -161,7 +161,8 @@ def cmd_simulate(args) -> int:
 def cmd_run(args) -> int:
     from runner import display, safety
     from runner.console import ExperimenterConsole
-    from runner.launch import check_can_start, check_resume, completed_rows, end_running_part, run_on_screen
+    from runner.launch import (check_can_start, check_resume, close_complete_log, completed_rows, end_running_part,
+                               run_on_screen)
     from runner.x_connection import on_connection_lost
     from runner.screens import screen_texts
     from runner.trial_log import check_identifier
@@ -181,6 +182,11 @@ def cmd_run(args) -> int:
     screen_texts(protocol, caution, args.protocol)  # a bad instructions file is refused before the display opens
     if args.resume:     # another protocol, light levels or --seed: refused before the display opens
         check_resume(args.out, args.observer, args.session, text, light, args.seed)
+        done = close_complete_log(protocol, args.out, args.observer, args.session)
+        if done is not None:
+            print(f"session complete already: {done} trials in the log; its last part had ended without a "
+                  "record and is now marked vanished; nothing to resume")
+            return EXIT_OK
     console = ExperimenterConsole(quick_fit=_quick_fit_text)
     presenter, answers = display.open_screen(protocol, args.windowed, args.refresh_ack, console)
     extra = {

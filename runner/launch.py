@@ -18,7 +18,7 @@ from pathlib import Path
 import numpy as np
 
 from fitting.errors import InputError
-from fitting.logfile import is_being_written
+from fitting.logfile import examine_tail, is_being_written
 from fitting.outputs import check_out_dir, signals_deferred
 from fitting.provenance import software_versions
 from runner.console import SimulationConsole
@@ -347,6 +347,45 @@ def end_running_part(how: str) -> bool:
         return False
     _running.pop()(how)
     return True
+
+
+def close_complete_log(protocol: Protocol, out_dir: str | Path, observer: str, session: str) -> int | None:
+    """Close a session whose log holds every trial while its sidecar still shows a part running; else None.
+
+    Such a part's process ended after its last trial without recording it
+    (killed at the end screen, or its sidecar's last write refused by a full
+    disk).  The part is closed as :data:`VANISHED` with its rows and the log's
+    track states, and no new part is added, so ``run --resume`` says the
+    session is complete before it opens the display.  A log with a torn last
+    line is left to the resume, which cuts and records it.
+
+    Returns
+    -------
+    int or None
+        The trials in the log, or None when trials remain or nothing is running.
+    """
+    path, side = log_paths(out_dir, observer, session)
+    try:
+        content = json.loads(side.read_text(encoding="utf-8"))
+        running = any(p.get("ended_by") == "running" for p in content["parts"])
+        torn = examine_tail(path.read_bytes()).torn
+    except (OSError, ValueError, TypeError, KeyError, AttributeError):
+        return None
+    if not running or torn:
+        return None
+    log = TrialLog.reopen(out_dir, observer, session)
+    try:
+        sidecar = log.read_sidecar()
+        run = (StreamRun if protocol.stream is not None else BlockRun)(
+            as_started(protocol, sidecar, str(log.sidecar_path)), sidecar["session_seed"], observer, session)
+        if run.replay(log.rows, str(log.path)) < run.expected_rows():
+            return None
+        if close_vanished_parts(sidecar, len(log.rows)):
+            sidecar["track_states"] = run.track_states()
+            log.write_sidecar(sidecar)
+        return len(log.rows)
+    finally:
+        log.close()
 
 
 def run_part(log: TrialLog, sidecar: dict, run, session) -> SessionResult:

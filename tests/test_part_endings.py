@@ -226,3 +226,27 @@ def test_a_second_run_on_a_session_being_written_names_the_process(capsys, tmp_p
             code, err = cli(capsys, "run", PILOT, "--observer", "P01", "--out", out, *extra)
             line = one_line(err)
             assert code == 2 and "another session is writing" in line and f"process {os.getpid()}" in line
+
+
+def test_a_complete_log_whose_last_part_was_never_closed_is_complete_before_any_window(capsys, tmp_path, monkeypatch,
+                                                                                       pilot_whole):
+    # before: the resume opened the display just to show the end screen and recorded the parts as
+    # [vanished, completed with 0 trials] (a part whose every trial was written, then killed at its end screen or
+    # refused its sidecar's last write by a full disk)
+    monkeypatch.delenv("DISPLAY", raising=False)
+    out = tmp_path / "o"
+    total = (pilot_whole / NAME).read_bytes().count(b"\n") - 1
+    _screen_session(pilot_whole, out, total, PILOT)
+    side = json.loads((out / "P01-s1.session.json").read_text())
+    side["parts"][0].update(ended=None, ended_by="running", rows_added=0)
+    del side["rows_total"], side["track_states"]
+    (out / "P01-s1.session.json").write_text(json.dumps(side))
+    log = (out / "P01-s1.trials.csv").read_bytes()
+    capsys.readouterr()
+    assert cli_module.main(["run", str(PILOT), "--observer", "P01", "--out", str(out), "--resume"]) == 0
+    assert capsys.readouterr().out.startswith(f"session complete already: {total} trials in the log")
+    side = json.loads((out / "P01-s1.session.json").read_text())
+    assert [(p["ended_by"], p["rows_added"]) for p in side["parts"]] == [("vanished", total)]
+    assert side["rows_total"] == total
+    assert side["track_states"] == json.loads((pilot_whole / SIDE).read_text())["track_states"]
+    assert (out / "P01-s1.trials.csv").read_bytes() == log
