@@ -638,34 +638,31 @@ def run_on_screen(
     """
     out = Path(out_dir)
     log = open_log(out, observer, session, resume)
-    started = None
-    try:
-        if log.sidecar_path.exists():
-            started = log.read_sidecar()
+    try:    # until the part is open in the sidecar, a failure (a signal too) leaves no trace but the log's repairs
+        started = log.read_sidecar() if log.sidecar_path.exists() else None
+        if started is not None:
             if seed is not None and seed != started["session_seed"]:
                 _refuse_other_seed(str(log.sidecar_path), started["session_seed"], seed)
             seed = int(started["session_seed"])
         elif seed is None:
             seed = secrets.randbelow(2**31)
-        as_run = as_started(protocol, started, str(log.sidecar_path))
-    except BaseException:
-        log.close()
-        raise
-    base = {
-        "tool": "aftershift",
-        "kind": "screen",
-        "observer": observer,
-        "session": session,
-        "protocol": _protocol_record(protocol_path, protocol_text),
-        "display_profile": protocol.display.model_dump(),
-        "packages": package_versions(),
-        "seed": seed,
-        "session_seed": seed,
-        "offset_bounds_deg": protocol.procedure.bounds_deg,
-        **tracks_record(protocol),
-        **extra,
-    }
-    try:
+        run = (StreamRun if protocol.stream is not None else BlockRun)(
+            as_started(protocol, started, str(log.sidecar_path)), seed, observer, session)
+        texts = screen_texts(protocol, caution, protocol_path)
+        base = {
+            "tool": "aftershift",
+            "kind": "screen",
+            "observer": observer,
+            "session": session,
+            "protocol": _protocol_record(protocol_path, protocol_text),
+            "display_profile": protocol.display.model_dump(),
+            "packages": package_versions(),
+            "seed": seed,
+            "session_seed": seed,
+            "offset_bounds_deg": protocol.procedure.bounds_deg,
+            **tracks_record(protocol),
+            **extra,
+        }
         sidecar = start_sidecar(log, base, resume, protocol_text)
     except BaseException:
         if not resume and not log.sidecar_path.exists():
@@ -677,8 +674,6 @@ def run_on_screen(
         return SessionResult("complete already", len(log.rows), 0, started.get("track_states", {}), {})
     if resume:
         sidecar["parts"][-1].update({k: v for k, v in extra.items() if k in ("measured_refresh_hz", "acknowledged")})
-    run = (StreamRun if protocol.stream is not None else BlockRun)(as_run, seed, observer, session)
-    texts = screen_texts(protocol, caution, protocol_path)
     shown = EndScreenGuard(presenter, console)
     return run_part(log, sidecar, run, lambda: run.run(shown, answers, log.append, log.rows, texts, console,
                                                        str(log.path)))

@@ -346,11 +346,15 @@ class TrialLog:
         """
         path, sidecar = log_paths(out_dir, observer, session)
         lock = _lock(path, sidecar)
+        written = False
         try:
             refuse_existing(path, sidecar)
             _write_new(path, _header_text().encode("utf-8"))
+            written = True
             return cls(path, sidecar, [], lock, durable)
         except BaseException:
+            if written:     # the header alone: a later start must not find a session here
+                _unlink(path)
             lock.release()
             raise
 

@@ -250,3 +250,21 @@ def test_a_complete_log_whose_last_part_was_never_closed_is_complete_before_any_
     assert side["rows_total"] == total
     assert side["track_states"] == json.loads((pilot_whole / SIDE).read_text())["track_states"]
     assert (out / "P01-s1.trials.csv").read_bytes() == log
+
+
+def test_a_signal_while_a_new_session_opens_leaves_nothing_behind(tmp_path, monkeypatch):
+    # before: a SIGTERM while the sidecar's record was prepared (reading package versions takes a moment) left
+    # the header-only log and the lock's record behind; "run the same command again" was then refused as
+    # "already holds this session"
+    from runner import launch
+    from runner.session import Console
+
+    def interrupted():
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(launch, "package_versions", interrupted)
+    with pytest.raises(KeyboardInterrupt):
+        launch.run_on_screen(load_protocol(PILOT), str(PILOT), PILOT.read_text(), tmp_path, "P01", None, None, "",
+                             Console(), {}, seed=3)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["P01-s1.lock"]
+    assert (tmp_path / "P01-s1.lock").read_bytes() == b""     # released: no holder left on record
