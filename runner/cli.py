@@ -184,8 +184,7 @@ def cmd_run(args) -> int:
         check_resume(args.out, args.observer, args.session, text, light, args.seed)
         done = close_complete_log(protocol, args.out, args.observer, args.session)
         if done is not None:
-            print(f"session complete already: {done} trials in the log; its last part had ended without a "
-                  "record and is now marked vanished; nothing to resume")
+            print(f"session complete already: {done} trials in the log; nothing to resume")
             return EXIT_OK
     console = ExperimenterConsole(quick_fit=_quick_fit_text)
     presenter, answers = display.open_screen(protocol, args.windowed, args.refresh_ack, console)

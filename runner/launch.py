@@ -325,6 +325,50 @@ def completed_rows(out_dir: str | Path, observer: str, session: str) -> int | No
         return None
 
 
+def close_complete_log(protocol: Protocol, out_dir: str | Path, observer: str, session: str) -> int | None:
+    """The trials of a session whose log holds every trial though its sidecar does not say so; else None.
+
+    The last part then ended after its last trial without recording that it
+    completed: killed or interrupted during the end of the session, or its
+    sidecar's last write refused by a full disk.  A part left ``running`` is
+    closed as :data:`VANISHED` with its rows, the log's track states are
+    recorded, and no new part is added, so ``run --resume`` says the session
+    is complete before it opens the display.  A log with a torn last line is
+    left to the resume, which cuts and records it.
+
+    Returns
+    -------
+    int or None
+        The trials in the log, or None when trials remain (or the sidecar
+        says it is complete: :func:`completed_rows`).
+    """
+    path, side = log_paths(out_dir, observer, session)
+    try:
+        content = json.loads(side.read_text(encoding="utf-8"))
+        data = path.read_bytes()
+        rows = data.count(b"\n") - 1
+        if rows < 1 or is_complete(content, rows) or examine_tail(data).torn:
+            return None
+    except (OSError, ValueError, TypeError, KeyError, AttributeError, IndexError):
+        return None
+    log = TrialLog.reopen(out_dir, observer, session)
+    try:
+        sidecar = log.read_sidecar()
+        run = (StreamRun if protocol.stream is not None else BlockRun)(
+            as_started(protocol, sidecar, str(log.sidecar_path)), sidecar["session_seed"], observer, session)
+        if run.replay(log.rows, str(log.path)) < run.expected_rows():
+            return None
+        if close_vanished_parts(sidecar, len(log.rows)):
+            print(f"note: {log.sidecar_path}: its last part ended after the last trial without a record; "
+                  f"marked {VANISHED}", file=sys.stderr)
+        sidecar.update(rows_total=len(log.rows), track_states=run.track_states())
+        if sidecar != log.read_sidecar():
+            log.write_sidecar(sidecar)
+        return len(log.rows)
+    finally:
+        log.close()
+
+
 #: Bytes a sidecar may grow by per trial of its session: the track states keep every level and answer
 #: (about 47 bytes per trial with the default protocol's up-down tracks, measured), with a margin.
 SIDECAR_BYTES_PER_TRIAL = 96
@@ -347,45 +391,6 @@ def end_running_part(how: str) -> bool:
         return False
     _running.pop()(how)
     return True
-
-
-def close_complete_log(protocol: Protocol, out_dir: str | Path, observer: str, session: str) -> int | None:
-    """Close a session whose log holds every trial while its sidecar still shows a part running; else None.
-
-    Such a part's process ended after its last trial without recording it
-    (killed at the end screen, or its sidecar's last write refused by a full
-    disk).  The part is closed as :data:`VANISHED` with its rows and the log's
-    track states, and no new part is added, so ``run --resume`` says the
-    session is complete before it opens the display.  A log with a torn last
-    line is left to the resume, which cuts and records it.
-
-    Returns
-    -------
-    int or None
-        The trials in the log, or None when trials remain or nothing is running.
-    """
-    path, side = log_paths(out_dir, observer, session)
-    try:
-        content = json.loads(side.read_text(encoding="utf-8"))
-        running = any(p.get("ended_by") == "running" for p in content["parts"])
-        torn = examine_tail(path.read_bytes()).torn
-    except (OSError, ValueError, TypeError, KeyError, AttributeError):
-        return None
-    if not running or torn:
-        return None
-    log = TrialLog.reopen(out_dir, observer, session)
-    try:
-        sidecar = log.read_sidecar()
-        run = (StreamRun if protocol.stream is not None else BlockRun)(
-            as_started(protocol, sidecar, str(log.sidecar_path)), sidecar["session_seed"], observer, session)
-        if run.replay(log.rows, str(log.path)) < run.expected_rows():
-            return None
-        if close_vanished_parts(sidecar, len(log.rows)):
-            sidecar["track_states"] = run.track_states()
-            log.write_sidecar(sidecar)
-        return len(log.rows)
-    finally:
-        log.close()
 
 
 def run_part(log: TrialLog, sidecar: dict, run, session) -> SessionResult:

@@ -244,7 +244,9 @@ def test_a_complete_log_whose_last_part_was_never_closed_is_complete_before_any_
     log = (out / "P01-s1.trials.csv").read_bytes()
     capsys.readouterr()
     assert cli_module.main(["run", str(PILOT), "--observer", "P01", "--out", str(out), "--resume"]) == 0
-    assert capsys.readouterr().out.startswith(f"session complete already: {total} trials in the log")
+    out_text, err = capsys.readouterr()
+    assert out_text == f"session complete already: {total} trials in the log; nothing to resume\n"
+    assert one_line(err).startswith("note: ") and "marked vanished" in err
     side = json.loads((out / "P01-s1.session.json").read_text())
     assert [(p["ended_by"], p["rows_added"]) for p in side["parts"]] == [("vanished", total)]
     assert side["rows_total"] == total
@@ -268,3 +270,19 @@ def test_a_signal_while_a_new_session_opens_leaves_nothing_behind(tmp_path, monk
                              Console(), {}, seed=3)
     assert sorted(p.name for p in tmp_path.iterdir()) == ["P01-s1.lock"]
     assert (tmp_path / "P01-s1.lock").read_bytes() == b""     # released: no holder left on record
+
+
+def test_a_complete_log_whose_last_part_was_interrupted_after_its_last_trial_is_complete(capsys, tmp_path, monkeypatch,
+                                                                                        pilot_whole):
+    # before: a Ctrl-C after the last trial (while the final quick fit ran) left the part `interrupted`, and the
+    # resume opened the display for an end screen and added a `completed` part with 0 trials
+    monkeypatch.delenv("DISPLAY", raising=False)
+    out = tmp_path / "o"
+    total = (pilot_whole / NAME).read_bytes().count(b"\n") - 1
+    _screen_session(pilot_whole, out, total, PILOT)
+    capsys.readouterr()
+    assert cli_module.main(["run", str(PILOT), "--observer", "P01", "--out", str(out), "--resume"]) == 0
+    assert capsys.readouterr().out == f"session complete already: {total} trials in the log; nothing to resume\n"
+    side = json.loads((out / "P01-s1.session.json").read_text())
+    assert [(p["ended_by"], p["rows_added"]) for p in side["parts"]] == [("interrupted", total)]
+    assert side["track_states"] == json.loads((pilot_whole / SIDE).read_text())["track_states"]
