@@ -11,6 +11,7 @@ from __future__ import annotations
 import math
 import os
 import threading
+import time
 
 import numpy as np
 import pytest
@@ -249,6 +250,19 @@ def test_quit_and_pause_keys(screen, probe):
     answer = answers.answer(trial, playback, window_frames=240)
     timer.join()
     assert answer.quit and answer.response_cw is None
+
+
+def test_escape_during_practice_feedback_is_obeyed_at_once(screen):
+    # before, an Escape during the feedback was only noted for the loop's next request: the "practice is
+    # over" screen and then the whole first adaptation (20 s in a bundled protocol) came first
+    require_xdotool()
+    presenter, _ = screen
+    presenter.requests()
+    send_key(str(presenter.window.winHandle._window), "escape", dict(os.environ))
+    time.sleep(0.2)                 # delivered before the feedback's first flip reads the keys
+    presenter.feedback(True)
+    assert presenter.blank(1) is False
+    assert presenter.requests() == set(), "one Escape ends the session once"
 
 
 def test_text_waits_for_proceed(screen):
