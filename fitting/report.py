@@ -575,8 +575,11 @@ def quick_shifts(trials: pd.DataFrame, n_boot: int = 50, seed: int = 0) -> pd.Da
     -------
     pandas.DataFrame
         ``observer, condition, adapter_offset_deg, lag, pse_deg,
-        pse_shift_deg, ci_low, ci_high, n_trials, flags``; one row per
-        condition (baseline included, shift 0); shifts and intervals empty
+        pse_shift_deg, ci_low, ci_high, n_trials, flags, shift_flags``; one
+        row per condition (baseline included, shift 0). ``flags`` are the
+        condition's own (its PSE's, as in ``pse.csv``), ``shift_flags`` add
+        the baseline's (the shift's, as in ``aftereffect.csv``: a shift
+        leans on both PSEs). Shifts and intervals empty
         (NaN) when the observer has no baseline trials yet; intervals empty
         where the condition or the baseline has fewer than
         :data:`~fitting.flags.MIN_TRIALS_FOR_INTERVAL` trials or all answers
@@ -598,21 +601,21 @@ def quick_shifts(trials: pd.DataFrame, n_boot: int = 50, seed: int = 0) -> pd.Da
         shift = fit.pse - fit.pse[base[0]] if base.size else np.full(len(names), np.nan)
         lo = hi = np.full(len(names), np.nan)
         flags = psychometric_flags(fit)
-        if base.size:
-            flags = [join(f, flags[base[0]]) for f in flags]
+        shift_flags = [join(f, flags[base[0]]) for f in flags] if base.size else list(flags)
         if n_boot and base.size:
             boot = parametric_bootstrap(fit, int(n_boot), _observer_rng(seed, str(observer)), False)
             reps = boot.pse - boot.pse[:, [base[0]]]
             lo, hi = np.quantile(reps, [0.025, 0.975], axis=0)
             # no interval from too few trials or from answers all on one side
-            bare = np.array([("few-trials" in f) or ("one-sided" in f) for f in flags])
+            bare = np.array([("few-trials" in f) or ("one-sided" in f) for f in shift_flags])
             lo, hi = np.where(bare, np.nan, lo), np.where(bare, np.nan, hi)
         rows.append(pd.DataFrame({"observer": str(observer), "condition": names,
                                   "adapter_offset_deg": conds["adapter_offset_deg"].to_numpy(),
                                   "lag": conds["lag"].astype("Int64").to_numpy(),
                                   "pse_deg": fit.pse, "pse_shift_deg": shift,
                                   "ci_low": lo, "ci_high": hi,
-                                  "n_trials": conds["n_trials"].to_numpy(), "flags": flags}))
+                                  "n_trials": conds["n_trials"].to_numpy(), "flags": flags,
+                                  "shift_flags": shift_flags}))
     table = pd.concat(rows, ignore_index=True)
     table.attrs["exclusions"] = kept.attrs.get("exclusions")
     return table

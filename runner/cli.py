@@ -221,6 +221,8 @@ def _quick_fit_text(rows: list[dict]) -> str:
     from fitting.flags import MIN_TRIALS_FOR_INTERVAL
     from fitting.report import exclusion_text
 
+    if any(row.get("block") == "stream" for row in rows):
+        return "no quick fit for a stream block: fit its log after the session (aftershift fit LOG)"
     frame = pd.DataFrame(rows)
     try:
         table = quick_shifts(frame, n_boot=50, seed=0)
