@@ -358,8 +358,7 @@ def cmd_recover(args) -> int:
 def cmd_display_test(args) -> int:
     from runner import display
 
-    if not (0 < args.seconds <= 3600):
-        raise InputError("argument", "--seconds", f"expected a duration from 0 to 3600 s, not {args.seconds:g}")
+    display.check_seconds(args.seconds)
     protocol, _ = _load(args.protocol)
     if args.frames:
         from runner.display.capture import capture_frames
