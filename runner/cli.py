@@ -582,9 +582,11 @@ def main(argv: list[str] | None = None) -> int:
         with one_blas_thread():  # small batched solves: threads only cost (fitting/threads.py)
             return args.func(args)
     except InputError as exc:
+        _name_the_protocol(exc, args)
         print(f"aftershift: {exc.line()}", file=sys.stderr)
         return EXIT_INPUT
     except SafetyRefusal as exc:
+        _name_the_protocol(exc, args)
         print(f"aftershift: {exc.line()}", file=sys.stderr)
         return EXIT_SAFETY
     except BrokenPipeError:  # output piped into e.g. `head`: stop quietly
@@ -597,6 +599,19 @@ def main(argv: list[str] | None = None) -> int:
         if interrupt is None:
             raise
         return _interrupted(args, interrupt)
+
+
+def _name_the_protocol(exc: InputError | SafetyRefusal, args) -> None:
+    """Name the protocol file in an error about one of its fields raised without it (the display's checks)."""
+    protocol = getattr(args, "protocol", None)
+    if not exc.source and protocol and exc.field.split(".")[0] in _protocol_sections():
+        exc.source = str(protocol)
+
+
+def _protocol_sections() -> tuple[str, ...]:
+    from runner.protocol import Protocol
+
+    return tuple(Protocol.model_fields)
 
 
 def console() -> int:

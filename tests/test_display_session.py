@@ -135,6 +135,7 @@ def test_run_without_override_is_refused_on_an_unsynced_display(own_x_server, tm
     assert process.returncode == 3, err
     assert safety.REFRESH_OVERRIDE_OPTION in err
     assert len(err.strip().splitlines()) == 1 and "Traceback" not in err
+    assert err.startswith(f"aftershift: {TINY}: display.refresh_hz: "), err   # before, without the file
     assert not (tmp_path / "kb02-s1.trials.csv").exists()
 
 
