@@ -148,9 +148,14 @@ class ScreenPresenter:
         self._pacer.flipped(t)
         return t, self._read_keys()
 
-    @staticmethod
-    def _read_keys() -> list[PressedKey]:
-        return [(str(name), float(t)) for name, t in event.getKeys(timeStamped=True)]
+    def _read_keys(self) -> list[PressedKey]:
+        """New key presses; the window's close button (``--windowed``) counts as the quit key."""
+        keys = [(str(name), float(t)) for name, t in event.getKeys(timeStamped=True)]
+        handle = self.window.winHandle
+        if getattr(handle, "has_exit", False):      # set by the window's default close handler
+            handle.has_exit = False
+            keys.append((self.keys.quit, keys[-1][1] if keys else 0.0))
+        return keys
 
     def _quit_kept(self) -> bool:
         """True, once, for a quit key pressed during :meth:`feedback` (which cannot stop anything itself)."""
