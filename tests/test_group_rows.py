@@ -70,6 +70,7 @@ def test_group_shifts_leave_out_rows_that_are_not_estimable_or_have_too_few_tria
     var = usable.assign(v=variance_from_interval(usable["ci_low"], usable["ci_high"])).pivot_table(
         index="observer", columns=["lag", "adapter_offset_deg"], values="v")
     fixed = random_effects(wide.to_numpy(), var.to_numpy()).fixed_se
+    # (1.959: just below z(0.975) = 1.95996, common practice, no source)
     assert ((group["ci_high"] - group["ci_low"]).to_numpy() >= 2 * 1.959 * fixed).all()
     notes = " | ".join(r.notes["group"])
     assert "group shifts leave out the observers' rows that are not usable: O4 (8 of 8: one-sided " in notes
@@ -132,7 +133,7 @@ def test_tables_keep_their_number_format_when_an_observer_has_no_shifts(tmp_path
         numbers = table.drop(columns=[c for c in ("observer", "condition", "flags") if c in table])
         digits = numbers.map(lambda v: len(v.lstrip("-").split("e")[0].replace(".", "").lstrip("0")))
         assert digits.to_numpy().max() <= 6, name
-    # the mixed model is statsmodels' on the three observers' shifts
+    # the mixed model is statsmodels' MixedLM (REML; the outside reference) on the three observers' shifts
     mm = pd.read_csv(tmp_path / "out" / "mixed_model.csv").set_index("term")
     rows = report.aftereffect[report.aftereffect["observer"] != "group"].astype({"lag": float})
     ref = smf.mixedlm("pse_shift_deg ~ adapter_offset_deg * lag", rows, groups=rows["observer"]).fit(reml=True)
