@@ -50,7 +50,7 @@ import pandas as pd
 from .bootstrap import check_replicate_memory, parametric_bootstrap
 from .errors import InputError
 from .covariance import COVARIANCE_COLUMNS, group_covariance, observer_covariance
-from .flags import flagged_first, join, psychometric_flags, shared_notes
+from .flags import flagged_first, join, psychometric_flags, shared_notes, usable
 from .group import GROUP, group_aftereffect, group_curves, group_pse, group_weights, mixed_model
 from .observer import (BY_STATISTIC, INTERVAL_METHODS, AFTEREFFECT_COLUMNS, DECAY_COLUMNS, PSE_COLUMNS, TUNING_COLUMNS,
                        ObserverAnalysis, Options, analyse_observer, condition_table)
@@ -161,8 +161,10 @@ class FitReport:
                     lines.append(f"  note: {n}")
         if GROUP in self.notes or (self.tuning["observer"] == GROUP).any():
             lines.append("")
-            lines.append(f"Group ({n_obs} observers; random-effects intervals with within- and "
-                         "between-observer uncertainty)")
+            own = self.aftereffect[self.aftereffect["observer"] != GROUP]
+            used = own.loc[usable(own["flags"]), "observer"].nunique()
+            lines.append(f"Group ({n_obs} observers{'' if used == n_obs else f', usable shifts from {used}'}; "
+                         "random-effects intervals with within- and between-observer uncertainty)")
             g = self.aftereffect[self.aftereffect["observer"] == GROUP]
             lines += _shift_grid(g)
             for _, r in self.tuning[self.tuning["observer"] == GROUP].iterrows():

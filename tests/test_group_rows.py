@@ -75,6 +75,7 @@ def test_group_shifts_leave_out_rows_that_are_not_estimable_or_have_too_few_tria
     notes = " | ".join(r.notes["group"])
     assert "group shifts leave out the observers' rows that are not usable: O4 (8 of 8: one-sided " in notes
     assert "O5 (8 of 8: " in notes and "few-trials" in notes
+    assert "Group (5 observers, usable shifts from 3; random-effects intervals" in r.summary()
 
 
 def test_group_curves_and_mixed_model_use_the_observers_whose_shifts_are_usable(odd_group):
