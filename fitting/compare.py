@@ -84,7 +84,7 @@ from fitting.provenance import read_report_data
 from fitting.scores import inverse, score_chi2
 from fitting.outputs import folder_lock, output_set, settle
 from fitting.flags import MIN_TRIALS_FOR_INTERVAL
-from fitting.tables import write_text
+from fitting.tables import write_csv, write_text
 
 Z95 = special.ndtri(0.975)
 PREDICTION_COLUMNS = ("lag", "adapter_offset_deg", "pse_shift_deg")
@@ -898,9 +898,8 @@ def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figure
                                                "of its tables",)))
     with output_set(out_dir, "compare") as staged:
         out = staged.folder
-        write_text(out / "agreement.csv", table.to_csv(index=False, float_format="%.6g", lineterminator="\n"))
-        write_text(out / "comparison_points.csv",
-                   points.to_csv(index=False, float_format="%.6g", lineterminator="\n"))
+        write_csv(table, out / "agreement.csv")
+        write_csv(points, out / "comparison_points.csv")
         write_text(out / "predictions_source.txt", _shown_path(Path(predictions_path), staged.final_dir) + "\n")
         if figures:
             from fitting.compare_figure import overlay_figure

@@ -372,6 +372,14 @@ def test_a_null_prediction_prints_its_chi2_and_the_promised_note(tmp_path, capsy
     assert "note: S1: every prediction over all lags is 0 (no after-effect), so the gain" in out
 
 
+def test_agreement_writes_true_and_false_as_fit_tables_do(tmp_path):
+    # fit's tables write booleans as true/false (fitting.tables.format_table); agreement.csv wrote False/True
+    fit = _fit_folder(tmp_path, observers=("S1", "S2", "group"))
+    compare_results(fit, tmp_path / "pred.csv", tmp_path / "cmp", figures=False)
+    table = pd.read_csv(tmp_path / "cmp" / "agreement.csv", dtype=str)
+    assert set(table["descriptive"]) == {"false"}
+
+
 def test_dense_prediction_tables_are_matched_as_the_scalar_rule_does_and_in_linear_time(tmp_path):
     import time
 
