@@ -724,8 +724,8 @@ def not_estimable(points: pd.DataFrame) -> tuple[np.ndarray, tuple[str, ...]]:
 
 def _undefined_gain_notes(points: pd.DataFrame, table: pd.DataFrame) -> tuple[str, ...]:
     """Say why a row has a χ² but no gain: every prediction it is compared with is 0 (or, for a stream fit,
-    outside the directions its shifts can move in)."""
-    notes = []
+    outside the directions its shifts can move in); one note for the observers it holds for alike."""
+    alike: dict[str, list] = {}
     for observer, rows in table[table["gain"].isna() & table["chi2"].notna()].groupby("observer", sort=False):
         lags = list(rows["lag"])
         mine = points[points["observer"] == observer]
@@ -734,9 +734,9 @@ def _undefined_gain_notes(points: pd.DataFrame, table: pd.DataFrame) -> tuple[st
         where = "over all lags" if "all" in lags else "at lag " + ", ".join(lags)
         why = (f"every prediction {where} is 0 (no after-effect)" if (mine["predicted_deg"] == 0).all() else
                f"the predictions {where} lie outside the directions the fitted curve of the shifts can move in")
-        notes.append(f"{observer}: {why}, so the gain (measured = g x predicted) is undefined; chi2 tests the "
-                     "prediction as it stands")
-    return tuple(notes)
+        alike.setdefault(why, []).append(str(observer))
+    return tuple(f"{', '.join(observers)}: {why}, so the gain (measured = g x predicted) is undefined; chi2 tests "
+                 "the prediction as it stands" for why, observers in alike.items())
 
 
 def _leave_out_interval_statistics(points: pd.DataFrame, table: pd.DataFrame) -> tuple[str, ...]:
