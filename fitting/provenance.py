@@ -131,14 +131,58 @@ def write_report_data(out_dir: Path, data: dict) -> Path:
 
 
 def read_report_data(fit_dir: Path) -> dict:
-    """The provenance a fit wrote; empty parts when the file is absent (an older fit)."""
+    """The provenance a fit wrote; empty parts when the file is absent (an older fit).
+
+    Raises
+    ------
+    InputError
+        The file is not JSON, or not of the shape :func:`collect` and ``fit``
+        give it (an older version's file or a hand edit), naming the field.
+    """
     path = Path(fit_dir) / REPORT_DATA
-    if not path.is_file():
-        return {"sessions": [], "protocols": {}, "software": {}, "notes": {}, "missing": str(path)}
     try:
+        if not path.is_file():
+            return {"sessions": [], "protocols": {}, "software": {}, "notes": {}, "missing": str(path)}
         data = json.loads(path.read_text(encoding="utf-8"))
     except (UnicodeDecodeError, json.JSONDecodeError):
         raise InputError(str(path), "file", "is not the JSON that fit writes; run fit again") from None
+    except OSError as exc:                 # e.g. a colleague's fit folder without read permission
+        raise InputError(str(path), "file", f"cannot be read ({exc.strerror})") from None
     if not isinstance(data, dict):
         raise InputError(str(path), "file", "is not the JSON that fit writes; run fit again")
+    _check_shape(data, path)
     return data
+
+
+_OBJECT, _LIST, _TEXT = (dict, "an object"), (list, "a list"), (str, "a text")
+_JSON_KINDS = {dict: "an object", list: "a list", str: "a text", int: "a number", float: "a number", bool: "true/false"}
+
+
+def _check_shape(data: dict, path: Path) -> None:
+    """Refuse a field of ``report_data.json`` the report cannot read, in one line naming it."""
+    def expect(value, kind, field, optional=True):
+        if not (isinstance(value, kind[0]) or optional and value is None):
+            found = _JSON_KINDS.get(type(value), "nothing")
+            raise InputError(str(path), field, f"expected {kind[1]}, found {found}: not what fit writes (an older "
+                             "version or a hand edit?); run fit again")
+
+    for key, kind in (("sessions", _LIST), ("protocols", _OBJECT), ("software", _OBJECT), ("notes", _OBJECT),
+                      ("kind", _TEXT), ("options", _TEXT), ("missing", _TEXT)):
+        expect(data.get(key), kind, key)
+    for i, session in enumerate(data.get("sessions") or []):
+        field = f"sessions[{i}]"
+        expect(session, _OBJECT, field, optional=False)
+        expect(session.get("log"), _TEXT, f"{field}.log", optional=False)
+        for key, kind in (("observer", _TEXT), ("protocol_sha256", _TEXT), ("packages", _OBJECT)):
+            expect(session.get(key), kind, f"{field}.{key}")
+    for sha, protocol in (data.get("protocols") or {}).items():
+        field = f"protocols.{sha}"
+        expect(protocol, _OBJECT, field, optional=False)
+        expect(protocol.get("text"), _TEXT, f"{field}.text")
+        expect(protocol.get("plan"), _LIST, f"{field}.plan")
+        for j, line in enumerate(protocol.get("plan") or []):
+            expect(line, _TEXT, f"{field}.plan[{j}]", optional=False)
+    for observer, notes in (data.get("notes") or {}).items():
+        expect(notes, _LIST, f"notes.{observer}", optional=False)
+        for j, note in enumerate(notes):
+            expect(note, _TEXT, f"notes.{observer}[{j}]", optional=False)
