@@ -451,7 +451,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--session", default="s1", help="session label (default s1)")
     p.add_argument("--windowed", action="store_true", help="a window instead of full screen (tests, piloting)")
     p.add_argument("--resume", action="store_true", help="continue an interrupted session")
-    p.add_argument("--seed", type=_int_arg, help="session seed (default: drawn at random and stored)")
+    p.add_argument("--seed", type=_int_arg, help="seed (default: drawn at random and stored); a session other "
+                                                "than s1 mixes its label in")
     p.add_argument(safety.REFRESH_OVERRIDE_OPTION, dest="refresh_ack", action="store_true",
                    help="run although the measured refresh rate differs from the protocol's (recorded)")
     ack(p)
