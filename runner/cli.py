@@ -258,6 +258,9 @@ def cmd_fit(args) -> int:
     trials = [str(p) for p in logs if str(p) not in streams]
     if streams and trials:
         raise InputError(streams[0], "block", "stream logs and adapt-test logs need separate fit runs (different --out)")
+    from runner.replay import check_sidecars
+
+    check_sidecars(logs)    # another session's sidecar beside a log: refused before any fitting
     # local workers: the process they fork from starts importing what they need now, beside this
     # process's own imports and fitting (several logs: the fits and figures; one: its figures)
     preload = FIT_MODULES if len(trials) > 1 else () if args.no_figures else FIGURE_MODULES
