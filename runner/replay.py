@@ -64,14 +64,19 @@ def check_sidecar_matches(log: Path, side: Path, meta: dict, protocol) -> None:
 def check_sidecars(logs) -> None:
     """:func:`check_sidecar_matches` for every log whose sidecar can be read; before a fit begins.
 
-    Sidecars that are missing or cannot be read are left to the fit, which
-    notes them.
+    Two simulated sessions of one observer with the same seed, protocol and
+    observer model are refused too: their trials are one session twice,
+    not new data (``simulate --session s2`` with the seed of s1 wrote such
+    a copy before the label was mixed into the seed).  Sidecars that are
+    missing or cannot be read are left to the fit, which notes them.
 
     Raises
     ------
     InputError
-        A sidecar that belongs to another session than its log.
+        A sidecar that belongs to another session than its log, or a
+        simulated session that repeats another.
     """
+    simulated: dict = {}
     for log in map(Path, logs):
         side = _sidecar(log)
         try:
@@ -79,6 +84,15 @@ def check_sidecars(logs) -> None:
         except (OSError, ValueError, KeyError, TypeError, InputError):
             continue
         check_sidecar_matches(log, side, meta, protocol)
+        if meta.get("kind") != "simulation":
+            continue        # a person answers afresh whatever the seed
+        key = json.dumps([meta.get("observer"), meta["protocol"].get("sha256"), meta.get("session_seed"),
+                          meta.get("observer_model")], sort_keys=True, default=str)
+        first = simulated.setdefault(key, side)
+        if first != side:
+            raise InputError(str(side), "session_seed", f"is that of {first} (the same simulated observer, "
+                             "protocol and seed): its log repeats that session's trials, it adds no new data; fit "
+                             "one of the two")
 
 
 def track_factories(logs, strict: bool = True, notes: list | None = None) -> dict:

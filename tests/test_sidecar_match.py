@@ -86,3 +86,19 @@ def test_the_report_never_records_another_sessions_sidecar(sessions, tmp_path):
     data = json.loads((sessions["pilot"] / "sim01-s1.session.json").read_text())
     shutil.copyfile(sessions["pilot"] / "sim01-s1.session.json", side)      # its own sidecar: accepted
     assert [s["observer"] for s in collect([folder])["sessions"]] == [data["observer"], "sim02"]
+
+
+def test_a_simulated_session_that_repeats_another_is_refused(capsys, sessions, tmp_path):
+    # before: `simulate --session s2` with the seed of s1 wrote s1's trials again, and fit pooled both as if
+    # independent (intervals too narrow by about a factor of sqrt(2)); such a copy on disk is now refused
+    folder = tmp_path / "logs"
+    shutil.copytree(sessions["pilot"], folder)
+    lines = (folder / "sim01-s1.trials.csv").read_text().splitlines(keepends=True)
+    (folder / "sim01-s2.trials.csv").write_text(
+        "".join([lines[0]] + [line.replace("sim01,s1,", "sim01,s2,", 1) for line in lines[1:]]))
+    sidecar = json.loads((folder / "sim01-s1.session.json").read_text())
+    (folder / "sim01-s2.session.json").write_text(json.dumps({**sidecar, "session": "s2"}))
+    code, err = cli(capsys, "fit", folder, "--out", tmp_path / "fit", "--bootstrap", "20", "--no-figures")
+    line = one_line(err)
+    assert code == 2 and line.startswith(f"aftershift: {folder / 'sim01-s2.session.json'}: session_seed:")
+    assert str(folder / "sim01-s1.session.json") in line and not (tmp_path / "fit").exists()
