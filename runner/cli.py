@@ -260,6 +260,9 @@ def cmd_fit(args) -> int:
     trials = [str(p) for p in logs if str(p) not in streams]
     if streams and trials:
         raise InputError(streams[0], "block", "stream logs and adapt-test logs need separate fit runs (different --out)")
+    from runner.replay import check_sidecars
+
+    check_sidecars(logs)    # another session's sidecar beside a log: refused before any fitting
     # local workers: the process they fork from starts importing what they need now, beside this
     # process's own imports and fitting (several logs: the fits and figures; one: its figures)
     preload = FIT_MODULES if len(trials) > 1 else () if args.no_figures else FIGURE_MODULES
@@ -452,7 +455,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--session", default="s1", help="session label (default s1)")
     p.add_argument("--windowed", action="store_true", help="a window instead of full screen (tests, piloting)")
     p.add_argument("--resume", action="store_true", help="continue an interrupted session")
-    p.add_argument("--seed", type=_int_arg, help="session seed (default: drawn at random and stored)")
+    p.add_argument("--seed", type=_int_arg, help="seed (default: drawn at random and stored); a session other "
+                                                "than s1 mixes its label in")
     p.add_argument(safety.REFRESH_OVERRIDE_OPTION, dest="refresh_ack", action="store_true",
                    help="run although the measured refresh rate differs from the protocol's (recorded)")
     ack(p)
