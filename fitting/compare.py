@@ -62,6 +62,7 @@ observer share the baseline), and the residuals are read as normal.
 
 from __future__ import annotations
 
+import csv
 import os
 from contextlib import nullcontext
 from dataclasses import dataclass, replace
@@ -79,9 +80,11 @@ from fitting.group_chi2 import DRAWS, GroupData, calibrated_p
 from fitting.meta import random_effects
 from fitting.page import PAGE, write_page
 from fitting.progress import phase
+from fitting.provenance import read_report_data
 from fitting.scores import inverse, score_chi2
 from fitting.outputs import folder_lock, output_set, settle
-from fitting.tables import write_text
+from fitting.flags import MIN_TRIALS_FOR_INTERVAL
+from fitting.tables import write_csv, write_text
 
 Z95 = special.ndtri(0.975)
 PREDICTION_COLUMNS = ("lag", "adapter_offset_deg", "pse_shift_deg")
@@ -93,11 +96,53 @@ AGREEMENT_COLUMNS = (
 COVARIANCE_FILE = "aftereffect_covariance.csv"
 
 
+#: Largest shift (deg) a fit can write: a PSE is boxed to the tested range widened by its own width on each
+#: side (:func:`fitting.psychometric.parameter_bounds`) and tested levels lie within ±180°, so within ±540°.
+MEASURED_LIMIT_DEG = 1080.0
+#: An offset or a shift of a direction: within ±180°.
+DIRECTION = (-180.0, 180.0, " deg")
+#: Most bootstrap replicates ``fit`` draws (its ``--bootstrap`` limit, ``runner.cli.MAX_BOOTSTRAP``).
+MAX_REPLICATES = 100_000
+#: Flag words (:mod:`fitting.flags`) of a measured shift that cannot be judged, and why.
+NOT_ESTIMABLE = {"one-sided": "every answer on one side, so the PSE is not estimable",
+                 "few-trials": f"fewer than {MIN_TRIALS_FOR_INTERVAL} trials, so no interval"}
+
+
+def _line_of(mask) -> int:
+    """The file line of the first True row of ``mask`` (the header is line 1)."""
+    return int(np.flatnonzero(np.asarray(mask))[0]) + 2
+
+
+def _refuse_torn(path: Path) -> None:
+    """Refuse a table ``fit`` wrote whose last row lacks its newline.
+
+    ``fit`` writes every table whole, each row with its newline; a file that
+    ends inside a row was cut, as an interrupted copy leaves it, even when
+    the cut row still parses (a cut inside its last number).
+    """
+    with open(path, "rb") as fh:
+        data = fh.read()
+    if data and not data.endswith(b"\n"):
+        line = data.count(b"\n") + 1
+        raise InputError(str(path), f"line {line}", "the file ends inside this row "
+                         "(cut off, as an interrupted copy leaves it); copy the fit's folder again or run fit again")
+
+
+def _refuse_short_rows(path: Path, n_columns: int) -> None:
+    """Refuse a row of a table ``fit`` wrote with fewer cells than its header (it writes every cell)."""
+    with open(path, encoding="utf-8", newline="") as fh:
+        rows = csv.reader(fh)
+        for row in rows:
+            if row and len(row) < n_columns:
+                raise InputError(str(path), f"line {rows.line_num}", f"{len(row)} cells where the header has "
+                                 f"{n_columns} (a cut or changed row?); copy the fit's folder again or run fit again")
+
+
 def _read_csv(path: Path, required: tuple[str, ...], may_be_empty: tuple[str, ...] = (),
-              optional: tuple[str, ...] = ()) -> pd.DataFrame:
+              optional: tuple[str, ...] = (), by_fit: bool = False) -> pd.DataFrame:
     """Read ``path``; ``required`` columns must be finite numbers (``observer`` any text) except empty
     cells of ``may_be_empty``; ``optional`` columns are checked the same way, may be empty, and are NaN
-    when absent."""
+    when absent.  ``by_fit``: a table ``fit`` writes, whose rows are whole (:func:`_refuse_torn`)."""
     try:
         found = path.is_file()
     except OSError as exc:                 # a folder on the way that this user may not enter
@@ -105,8 +150,12 @@ def _read_csv(path: Path, required: tuple[str, ...], may_be_empty: tuple[str, ..
     if not found:
         raise InputError(str(path), "file", "does not exist or is not a file")
     try:
+        if by_fit:
+            _refuse_torn(path)
         frame = pd.read_csv(path)
-    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
+        if by_fit:
+            _refuse_short_rows(path, len(frame.columns))
+    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError, csv.Error) as exc:
         raise InputError(str(path), "file", f"cannot be read as CSV ({str(exc).splitlines()[0]})") from None
     except OSError as exc:                 # e.g. a colleague's file without read permission
         raise InputError(str(path), "file", f"cannot be read ({exc.strerror})") from None
@@ -123,14 +172,36 @@ def _read_csv(path: Path, required: tuple[str, ...], may_be_empty: tuple[str, ..
         bad = values.isna() & frame[col].notna() | ~np.isfinite(values.fillna(0))
         missing = values.isna() & (col not in (*may_be_empty, *optional))
         if (missing & ~bad).any():
-            line = int(np.flatnonzero((missing & ~bad).to_numpy())[0]) + 2
+            line = _line_of(missing & ~bad)
             raise InputError(str(path), f"line {line}", f"{col}: missing or not a finite number "
                              f"({str(frame[col].iloc[line - 2])!r})")
         if bad.any():
-            line = int(np.flatnonzero(bad.to_numpy())[0]) + 2
+            line = _line_of(bad)
             raise InputError(str(path), f"line {line}", f"{col}: expected a number, found {str(frame[col].iloc[line - 2])!r}")
         frame[col] = values
     return frame
+
+
+def _refuse_odd_values(frame: pd.DataFrame, path: Path, keys: tuple[str, ...], what: str,
+                       lags: tuple[str, ...], ranges: dict[str, tuple[float, float, str]]) -> None:
+    """Refuse a second row for the same ``keys`` (``what`` names them), a lag that is not a whole number >= 0,
+    and a value of a ``ranges`` column outside its ``(low, high, unit)``, naming the line and column."""
+    dup = frame.duplicated(list(keys))
+    if dup.any():
+        raise InputError(str(path), f"line {_line_of(dup)}", f"a second row for the same {what}")
+    for col in lags:
+        lag = frame[col]
+        odd = (lag < 0) | (lag != np.round(lag))
+        if odd.any():
+            line = _line_of(odd)
+            raise InputError(str(path), f"line {line}",
+                             f"{col}: expected a whole number of periods >= 0, found {lag.iloc[line - 2]:g}")
+    for col, (low, high, unit) in ranges.items():
+        out = frame[col].notna() & ~frame[col].between(low, high)
+        if out.any():
+            line = _line_of(out)
+            raise InputError(str(path), f"line {line}", f"{col}: expected a value in [{low:g}, {high:g}]{unit}, "
+                             f"found {frame[col].iloc[line - 2]:g}")
 
 
 def read_predictions(path: str | Path) -> pd.DataFrame:
@@ -148,27 +219,82 @@ def read_predictions(path: str | Path) -> pd.DataFrame:
     frame = _read_csv(p, cols)
     if frame.empty:
         raise InputError(str(p), "file", "holds no predictions")
-    dup = frame.duplicated(["lag", "adapter_offset_deg"])
-    if dup.any():
-        line = int(np.flatnonzero(dup.to_numpy())[0]) + 2
-        raise InputError(str(p), f"line {line}", "a second prediction for the same lag and adapter offset")
-    lag = frame["lag"]
-    odd = (lag < 0) | (lag != np.round(lag))
-    if odd.any():
-        line = int(np.flatnonzero(odd.to_numpy())[0]) + 2
-        raise InputError(str(p), f"line {line}",
-                         f"lag: expected a whole number of periods >= 0, found {lag.iloc[line - 2]:g}")
-    for col, low in (("adapter_offset_deg", -180.0), ("pse_shift_deg", -180.0), ("sd_deg", 0.0)):
-        # an offset or a shift of a direction is within ±180°; an sd is at least 0 and below 180° too
-        out = frame[col].notna() & ~frame[col].between(low, 180.0) if col in frame else None
-        if out is not None and out.any():
-            line = int(np.flatnonzero(out.to_numpy())[0]) + 2
-            raise InputError(str(p), f"line {line}", f"{col}: expected a value in [{low:g}, 180] deg, "
-                             f"found {frame[col].iloc[line - 2]:g}")
+    # an offset or a shift of a direction is within ±180°; an sd is at least 0 and below 180° too
+    _refuse_odd_values(frame, p, ("lag", "adapter_offset_deg"), "lag and adapter offset", ("lag",),
+                       {"adapter_offset_deg": DIRECTION, "pse_shift_deg": DIRECTION,
+                        **({"sd_deg": (0.0, 180.0, " deg")} if "sd_deg" in frame else {})})
     if "sd_deg" not in frame:
         frame["sd_deg"] = 0.0
     frame["sd_deg"] = frame["sd_deg"].fillna(0.0)
     return frame
+
+
+def read_measured(path: str | Path) -> pd.DataFrame:
+    """Read and validate ``aftereffect.csv`` as ``fit`` writes it.
+
+    Raises
+    ------
+    InputError
+        A cut last row or a row with missing cells, missing columns,
+        non-numbers, no rows, a second row for one observer, lag and adapter
+        offset, a lag that is not a whole number >= 0, an offset beyond ±180°,
+        a shift or CI limit beyond ±:data:`MEASURED_LIMIT_DEG`, a CI whose
+        low limit exceeds its high one.
+    """
+    p = Path(path)
+    frame = _read_csv(p, MEASURED_COLUMNS, may_be_empty=("pse_shift_deg", "ci_low", "ci_high"), by_fit=True)
+    if frame.empty:
+        raise InputError(str(p), "file", "holds no after-effects")
+    limit = (-MEASURED_LIMIT_DEG, MEASURED_LIMIT_DEG, " deg (what fit can write)")
+    _refuse_odd_values(frame, p, ("observer", "lag", "adapter_offset_deg"), "observer, lag and adapter offset",
+                       ("lag",), {"adapter_offset_deg": DIRECTION, "pse_shift_deg": limit, "ci_low": limit,
+                                  "ci_high": limit})
+    swapped = frame["ci_low"] > frame["ci_high"]
+    if swapped.any():
+        raise InputError(str(p), f"line {_line_of(swapped)}", "ci_low: above ci_high, as no fit writes it "
+                         "(a changed or damaged cell?)")
+    return frame
+
+
+def read_covariance(path: Path, measured: pd.DataFrame) -> pd.DataFrame:
+    """Read and validate ``aftereffect_covariance.csv`` (:mod:`fitting.covariance`) beside ``measured``.
+
+    Raises
+    ------
+    InputError
+        As :func:`read_measured` for its rows (a covariance beyond
+        :data:`MEASURED_LIMIT_DEG` squared), replicates that are not a whole
+        number from 1 to ``fit``'s limit, labels that differ within an
+        observer, an observer whose rows are not one per pair of its cells
+        or whose covariance is not symmetric positive semi-definite, or one
+        that ``measured`` lacks (a cut copy of it).
+    """
+    table = _read_csv(path, tuple(COVARIANCE_COLUMNS[:6]), optional=("replicates", "dof", "spread_dof"), by_fit=True)
+    variance = MEASURED_LIMIT_DEG**2
+    _refuse_odd_values(table, path, tuple(COVARIANCE_COLUMNS[:5]), "observer and pair of cells", ("lag_a", "lag_b"),
+                       {"adapter_offset_a_deg": DIRECTION, "adapter_offset_b_deg": DIRECTION,
+                        "covariance_deg2": (-variance, variance, " deg2 (what fit can write)"),
+                        "replicates": (1.0, MAX_REPLICATES, " (what fit can draw)")})
+    whole = table["replicates"].isna() | (table["replicates"] == np.round(table["replicates"]))
+    if not whole.all():
+        raise InputError(str(path), f"line {_line_of(~whole)}", "replicates: expected a whole number, found "
+                         f"{table['replicates'].iloc[_line_of(~whole) - 2]:g}")
+    _check_covariance_labels(table, path)
+    for observer, rows in table.groupby("observer", sort=False):
+        cells = rows[["lag_a", "adapter_offset_a_deg"]].drop_duplicates()
+        found = covariance_matrix(rows, observer, cells["lag_a"], cells["adapter_offset_a_deg"]).matrix
+        if found is None or len(rows) != len(cells) ** 2:
+            raise InputError(str(path), "observer", f"{observer}: {len(rows)} rows, not one per pair of its "
+                             f"{len(cells)} cells (a cut or changed file?); run fit again")
+        _check_covariance(found, path, observer)
+    named = set(measured["observer"])
+    absent = [o for o in dict.fromkeys(table["observer"]) if o not in named]
+    if absent:
+        raise InputError(str(path.parent / "aftereffect.csv"), "observer",
+                         f"{', '.join(map(str, absent[:4]))}{' and more' if len(absent) > 4 else ''}: in "
+                         f"{COVARIANCE_FILE} but not here (a cut or changed copy?); copy the fit's folder again "
+                         "or run fit again")
+    return table
 
 
 def _header(path: Path) -> list[str]:
@@ -200,31 +326,43 @@ def match_predictions(measured: pd.DataFrame, predictions: pd.DataFrame, source:
         Listing the lags and offsets without a prediction.
     """
     out = measured.copy()
-    pred_sd = []
-    missing = []
-    for lag, offset in zip(out["lag"], out["adapter_offset_deg"]):
-        same_lag = predictions[predictions["lag"] == lag].sort_values("adapter_offset_deg")
-        exact = same_lag[np.isclose(same_lag["adapter_offset_deg"], offset)]
-        if len(exact):
-            pred_sd.append((float(exact["pse_shift_deg"].iloc[0]), float(exact["sd_deg"].iloc[0])))
-            continue
-        x = same_lag["adapter_offset_deg"].to_numpy()
-        if interpolate and len(x) >= 2 and x[0] <= offset <= x[-1]:
-            pred_sd.append((
-                float(np.interp(offset, x, same_lag["pse_shift_deg"])),
-                float(np.interp(offset, x, same_lag["sd_deg"])),
-            ))
-            continue
-        missing.append(f"lag {lag:g} offset {offset:+g}")
-        pred_sd.append((np.nan, np.nan))
+    lags, offsets = out["lag"].to_numpy(float), out["adapter_offset_deg"].to_numpy(float)
+    shift, sd = np.full(len(out), np.nan), np.full(len(out), np.nan)
+    for lag, same_lag in predictions.groupby("lag", sort=False):
+        rows = np.flatnonzero(lags == float(lag))
+        same_lag = same_lag.sort_values("adapter_offset_deg", kind="stable")
+        x = same_lag["adapter_offset_deg"].to_numpy(float)
+        y, y_sd = same_lag["pse_shift_deg"].to_numpy(float), same_lag["sd_deg"].to_numpy(float)
+        below, above = _neighbours(x, offsets[rows])
+        hit = np.where(np.isclose(x[below], offsets[rows]), below,
+                       np.where(np.isclose(x[above], offsets[rows]), above, -1))
+        shift[rows] = np.where(hit >= 0, y[hit], np.nan)
+        sd[rows] = np.where(hit >= 0, y_sd[hit], np.nan)
+        if interpolate and x.size >= 2:
+            inside = rows[(hit < 0) & (offsets[rows] >= x[0]) & (offsets[rows] <= x[-1])]
+            shift[inside] = np.interp(offsets[inside], x, y)
+            sd[inside] = np.interp(offsets[inside], x, y_sd)
+    missing = list(dict.fromkeys(f"lag {lag:g} offset {o:+g}" for lag, o in zip(lags[np.isnan(shift)],
+                                                                                  offsets[np.isnan(shift)])))
     if missing:
-        unique = sorted(set(missing), key=missing.index)
-        shown = ", ".join(unique[:6]) + (f" and {len(unique) - 6} more" if len(unique) > 6 else "")
+        shown = ", ".join(missing[:6]) + (f" and {len(missing) - 6} more" if len(missing) > 6 else "")
         hint = "" if interpolate else " (or pass --interpolate to interpolate over offsets)"
         raise InputError(source, "lag/adapter_offset_deg", f"no prediction for {shown}{hint}")
-    out["predicted_deg"] = [p for p, _ in pred_sd]
-    out["prediction_sd_deg"] = [s for _, s in pred_sd]
+    out["predicted_deg"] = shift
+    out["prediction_sd_deg"] = sd
     return out
+
+
+def _neighbours(grid: np.ndarray, values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Indices into the sorted, non-empty ``grid`` of its nearest entries at or below and at or above each value.
+
+    At the grid's ends both are its first or last entry.  An entry
+    ``np.isclose`` to a value is one of the two: the nearest on its side
+    (``np.isclose``'s tolerance, 1e-8 + 1e-5 of the second number, changes
+    by far less between neighbouring offsets than their spacing).
+    """
+    above = np.minimum(np.searchsorted(grid, values), grid.size - 1)
+    return np.maximum(above - 1, 0), above
 
 
 #: Bootstrap replicates behind the χ² measurements of ``benchmarks/bench_coverage.py`` (``fit``'s default).
@@ -277,6 +415,8 @@ def gls_gain(measured, predicted, v_inverse, free_scale: bool = True, rank: int 
         return g, float(np.sqrt(1.0 / spp)), float("inf")
     r = m - g * p
     s2 = float(r @ v_inverse @ r) / (n - 1)
+    if not s2 >= 0:           # rounding in a nearly singular inverse: no standard error rather than a warning
+        return g, float("nan"), float(n - 1)
     return g, float(np.sqrt(s2 / spp)), float(n - 1)
 
 
@@ -432,21 +572,21 @@ class Comparison:
         """A short text for the console."""
         overall = self.table[self.table["lag"] == "all"]
         lines = ["agreement with predictions (all lags):"]
+        if overall.empty:
+            lines.append("  no observer: every measured point is left out (see note)")
         for _, row in overall.iterrows():
             start = f"  {row['observer']:>8}: RMSE {row['rmse_deg']:.2f} deg, r {_shown(row['pearson_r'])}"
             if not np.isfinite(row["inside_ci_fraction"]):
                 lines.append(start + "; no interval statistics (see note)")
                 continue
-            if not (np.isfinite(row["gain"]) and np.isfinite(row["chi2"])):
+            if not (np.isfinite(row["gain"]) or np.isfinite(row["chi2"])):
                 lines.append(start + f", {row['inside_ci_fraction']:.0%} of predictions inside the 95% CIs; "
                              f"no gain or chi2 (unweighted gain {_shown(row['gain_unweighted'])}; see note)")
                 continue
             lines.append(
-                start + ", "
-                f"gain {row['gain']:.2f} [{row['gain_ci_low']:.2f}, {row['gain_ci_high']:.2f}] "
-                f"(unweighted {row['gain_unweighted']:.2f}), "
-                + _chi2_text(row) + ", "
-                f"{row['inside_ci_fraction']:.0%} of predictions inside the 95% CIs"
+                start + ", " + _gain_text(row) + ", "
+                + (_chi2_text(row) + ", " if np.isfinite(row["chi2"]) else "")
+                + f"{row['inside_ci_fraction']:.0%} of predictions inside the 95% CIs"
                 + ("" if row["covariance"] == "full" else "; errors treated as independent")
                 + ("; descriptive only (fewer than 3 observers)" if row["descriptive"] else "")
             )
@@ -459,17 +599,22 @@ def unused_predictions(measured: pd.DataFrame, predictions: pd.DataFrame, interp
     A lag the fit lacks is never used; with ``interpolate`` an offset of a
     measured lag may still serve to interpolate, so only lags are counted.
     """
-    lags = set(measured["lag"].astype(float))
-    pairs = {(float(lag), float(o)) for lag, o in zip(measured["lag"], measured["adapter_offset_deg"])}
-    unused = [(float(lag), float(o)) for lag, o in zip(predictions["lag"], predictions["adapter_offset_deg"])
-              if float(lag) not in lags or (not interpolate and not any(
-                  lag == m_lag and np.isclose(o, m_o) for m_lag, m_o in pairs))]
-    if not unused:
+    m_lags, m_offsets = measured["lag"].to_numpy(float), measured["adapter_offset_deg"].to_numpy(float)
+    lags, offsets = predictions["lag"].to_numpy(float), predictions["adapter_offset_deg"].to_numpy(float)
+    used = np.isin(lags, m_lags)
+    if not interpolate:
+        for lag in np.unique(m_lags):
+            grid = np.unique(m_offsets[m_lags == lag])
+            rows = np.flatnonzero(lags == lag)
+            below, above = _neighbours(grid, offsets[rows])
+            used[rows] = np.isclose(offsets[rows], grid[below]) | np.isclose(offsets[rows], grid[above])
+    unused = np.flatnonzero(~used)
+    if not unused.size:
         return ()
-    shown = ", ".join(f"lag {lag:g} offset {o:+g}" for lag, o in unused[:4]) + (
-        f" and {len(unused) - 4} more" if len(unused) > 4 else "")
-    many = len(unused) > 1
-    return (f"{len(unused)} predicted point{'s match' if many else ' matches'} no measured after-effect and "
+    shown = ", ".join(f"lag {lags[i]:g} offset {offsets[i]:+g}" for i in unused[:4]) + (
+        f" and {unused.size - 4} more" if unused.size > 4 else "")
+    many = unused.size > 1
+    return (f"{unused.size} predicted point{'s match' if many else ' matches'} no measured after-effect and "
             f"{'are' if many else 'is'} not used: {shown}",)
 
 
@@ -510,6 +655,15 @@ def _shown(value) -> str:
     return f"{value:.2f}" if np.isfinite(value) else "undefined"
 
 
+def _gain_text(row) -> str:
+    """The gain of an agreement row with its interval, or why there is none."""
+    if not np.isfinite(row["gain"]):
+        return "gain undefined (see note)"
+    interval = (f" [{row['gain_ci_low']:.2f}, {row['gain_ci_high']:.2f}]"
+                if np.isfinite(row["gain_ci_low"]) and np.isfinite(row["gain_ci_high"]) else " (no interval)")
+    return f"gain {row['gain']:.2f}{interval} (unweighted {_shown(row['gain_unweighted'])})"
+
+
 def _chi2_text(row) -> str:
     """The χ² of an agreement row with the distribution its p-value is read from."""
     reference = str(row.get("chi2_reference") or "")
@@ -534,6 +688,55 @@ def _reduced_rank_notes(table: pd.DataFrame) -> tuple[str, ...]:
 #: Columns of ``agreement.csv`` that need the measured intervals.
 INTERVAL_COLUMNS = ("gain", "gain_ci_low", "gain_ci_high", "chi2", "dof", "chi2_p", "chi2_reference",
                     "inside_ci_fraction")
+
+
+def not_estimable(points: pd.DataFrame) -> tuple[np.ndarray, tuple[str, ...]]:
+    """Measured points whose flags say they cannot be judged (:data:`NOT_ESTIMABLE`), and a note per observer.
+
+    Such a shift, or its interval, is not estimated from the answers (a PSE
+    on its fitting bound, an interval of zero width or none), so it would
+    swamp χ² and gain; it is left out of every agreement statistic.
+
+    Returns
+    -------
+    left_out : ndarray of bool
+        One per row of ``points``.
+    notes : tuple of str
+    """
+    flags = points["flags"] if "flags" in points else pd.Series("", index=points.index)
+    words = [set(str(f).split()) if isinstance(f, str) else set() for f in flags]
+    left_out = np.array([bool(w & NOT_ESTIMABLE.keys()) for w in words], dtype=bool)
+    notes = []
+    for observer in dict.fromkeys(points["observer"][left_out]):
+        mine = (points["observer"] == observer).to_numpy()
+        out = np.flatnonzero(mine & left_out)
+        why = " or ".join(f"{w} ({reason})" for w, reason in NOT_ESTIMABLE.items() if any(w in words[i] for i in out))
+        if out.size == mine.sum():
+            notes.append(f"{observer}: every measured point is flagged {why}; the observer is left out of chi2, gain "
+                         "and the other agreement statistics")
+            continue
+        cells = [f"lag {points['lag'].iloc[i]:g} offset {points['adapter_offset_deg'].iloc[i]:+g}" for i in out]
+        shown = ", ".join(cells[:4]) + (f" and {len(cells) - 4} more" if len(cells) > 4 else "")
+        notes.append(f"{observer}: {out.size} of {int(mine.sum())} measured points are flagged {why} and left out "
+                     f"of chi2, gain and the other agreement statistics: {shown}")
+    return left_out, tuple(notes)
+
+
+def _undefined_gain_notes(points: pd.DataFrame, table: pd.DataFrame) -> tuple[str, ...]:
+    """Say why a row has a χ² but no gain: every prediction it is compared with is 0 (or, for a stream fit,
+    outside the directions its shifts can move in); one note for the observers it holds for alike."""
+    alike: dict[str, list] = {}
+    for observer, rows in table[table["gain"].isna() & table["chi2"].notna()].groupby("observer", sort=False):
+        lags = list(rows["lag"])
+        mine = points[points["observer"] == observer]
+        if "all" not in lags:
+            mine = mine[mine["lag"].map("{:g}".format).isin(lags)]
+        where = "over all lags" if "all" in lags else "at lag " + ", ".join(lags)
+        why = (f"every prediction {where} is 0 (no after-effect)" if (mine["predicted_deg"] == 0).all() else
+               f"the predictions {where} lie outside the directions the fitted curve of the shifts can move in")
+        alike.setdefault(why, []).append(str(observer))
+    return tuple(f"{', '.join(observers)}: {why}, so the gain (measured = g x predicted) is undefined; chi2 tests "
+                 "the prediction as it stands" for why, observers in alike.items())
 
 
 def _leave_out_interval_statistics(points: pd.DataFrame, table: pd.DataFrame) -> tuple[str, ...]:
@@ -650,22 +853,22 @@ def compare_results(results_dir: str | Path, predictions_path: str | Path, out_d
 
 def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figures: bool, progress) -> Comparison:
     measured_path = results / "aftereffect.csv" if results.is_dir() else results
-    measured = _read_csv(measured_path, MEASURED_COLUMNS, may_be_empty=("pse_shift_deg", "ci_low", "ci_high"))
-    if measured.empty:
-        raise InputError(str(measured_path), "file", "holds no after-effects")
+    measured = read_measured(measured_path)
+    if results.is_dir():
+        read_report_data(results)          # refused now, not after the work, if the page could not be made
+    cov_path = measured_path.parent / COVARIANCE_FILE
+    cov_table = read_covariance(cov_path, measured) if cov_path.is_file() else None
     predictions = read_predictions(predictions_path)
     points = match_predictions(measured, predictions, str(predictions_path), interpolate)
-    cov_path = measured_path.parent / COVARIANCE_FILE
-    cov_table = (_read_csv(cov_path, COVARIANCE_COLUMNS[:6], optional=("replicates", "dof", "spread_dof"))
-                 if cov_path.is_file() else None)
-    if cov_table is not None:
-        _check_covariance_labels(cov_table, cov_path)
+    left_out, estimable_notes = not_estimable(points)
+    used = points[~left_out]
     rows, fallback = [], ()
-    too_few, replicate_notes = few_replicates(cov_table)
-    for observer, group in points.groupby("observer", sort=False):
+    too_few, replicate_notes = few_replicates(None if cov_table is None else
+                                              cov_table[cov_table["observer"].isin(used["observer"])])
+    for observer, group in used.groupby("observer", sort=False):
         parts = [(f"{lag:g}", g) for lag, g in group.groupby("lag")] + [("all", group)]
         usable = cov_table is not None and observer not in too_few
-        simulated = (_simulated_group_tests(points, cov_table, group, [g.index for _, g in parts])
+        simulated = (_simulated_group_tests(used, cov_table, group, [g.index for _, g in parts])
                      if observer == GROUP and usable else None)
         if observer == GROUP and usable and simulated is None:
             fallback = (f"{GROUP}: the observers' own rows or their covariances in {COVARIANCE_FILE} are not all "
@@ -674,8 +877,6 @@ def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figure
         for (lag, g), calibrated in zip(parts, simulated or [None] * len(parts)):
             found = (NO_COVARIANCE if not usable else
                      covariance_matrix(cov_table, observer, g["lag"], g["adapter_offset_deg"]))
-            if found.matrix is not None:
-                _check_covariance(found.matrix, cov_path, observer)
             a = agreement(g["pse_shift_deg"], g["ci_low"], g["ci_high"], g["predicted_deg"],
                           g["prediction_sd_deg"], found.matrix, found.replicates, found.dof,
                           trials=pd.to_numeric(g["n_trials"], errors="coerce") if "n_trials" in g else None,
@@ -690,15 +891,15 @@ def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figure
     table = pd.DataFrame(rows, columns=AGREEMENT_COLUMNS)
     table.loc[table["observer"].isin(too_few), ["gain", "gain_ci_low", "gain_ci_high", "chi2", "chi2_p",
                                                 "chi2_reference"]] = np.nan
-    notes = (_leave_out_interval_statistics(points, table) + replicate_notes
-             + _reduced_rank_notes(table) + fallback + unused_predictions(measured, predictions, interpolate)
+    notes = (estimable_notes + _leave_out_interval_statistics(used, table) + replicate_notes
+             + _undefined_gain_notes(used, table) + _reduced_rank_notes(table) + fallback
+             + unused_predictions(measured, predictions, interpolate)
              + (() if results.is_dir() else ("no report page: it is made when the fit's folder is given, not one "
                                                "of its tables",)))
     with output_set(out_dir, "compare") as staged:
         out = staged.folder
-        write_text(out / "agreement.csv", table.to_csv(index=False, float_format="%.6g", lineterminator="\n"))
-        write_text(out / "comparison_points.csv",
-                   points.to_csv(index=False, float_format="%.6g", lineterminator="\n"))
+        write_csv(table, out / "agreement.csv")
+        write_csv(points, out / "comparison_points.csv")
         write_text(out / "predictions_source.txt", _shown_path(Path(predictions_path), staged.final_dir) + "\n")
         if figures:
             from fitting.compare_figure import overlay_figure

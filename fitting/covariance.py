@@ -225,12 +225,16 @@ def group_covariance(analyses, group_shifts: pd.DataFrame, weights: pd.DataFrame
             continue
         ae = a.aftereffect
         own = [index.get((float(lag), float(o))) for lag, o in zip(ae["lag"], ae["adapter_offset_deg"])]
-        keep = [j for j, i in enumerate(own) if i is not None]
+        # the cells the group combined this observer's shift in (weight > 0: not left out as unusable)
+        keep = [j for j, i in enumerate(own)
+                if i is not None and np.nan_to_num(weights.loc[a.observer].get(cells[i], 0.0)) > 0]
+        if not keep:
+            continue
         pos = np.array([own[j] for j in keep])
         c = np.full((p, p), np.nan)
         c[np.ix_(pos, pos)] = np.atleast_2d(np.cov(reps[:, keep], rowvar=False))
         w = np.zeros(p)
-        w[pos] = np.nan_to_num([weights.loc[a.observer].get(cells[i], 0.0) for i in pos])
+        w[pos] = [weights.loc[a.observer].get(cells[i], 0.0) for i in pos]
         y = np.full(p, np.nan)
         y[pos] = ae["pse_shift_deg"].to_numpy(float)[keep]
         own_cov.append(c)

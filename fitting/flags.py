@@ -18,6 +18,11 @@ spaces (empty = nothing unusual):
                      function may have collapsed on too few trials; its
                      bootstrap draws answers at half that range instead
                      (:func:`steep_floor`, :data:`STEEP_DRAW_FRACTION`)
+``not-estimable``    the PSE has no finite error (for a shift: the condition's or
+                     the baseline's PSE): answers all on one side, the estimate on
+                     its bound, separated answers with nothing to hold the spread,
+                     or a PSE the answers do not pin down; the observer's curve
+                     fits leave it out
 ``few-trials``       fewer than :data:`MIN_TRIALS_FOR_INTERVAL` trials: no interval
 ``off-interval``     the estimate lies outside its own interval (a degenerate
                      bootstrap distribution, e.g. from very few replicates), or
@@ -27,6 +32,12 @@ spaces (empty = nothing unusual):
 ``model-not-converged``  a model fitted by statsmodels reported no convergence
 ``descriptive``      a group of fewer than three observers: its interval is
                      descriptive, not inference about a population
+``partial``          a group row without some observers' estimates, left out
+                     because they are not usable (:data:`NOT_USABLE`); the
+                     group's notes name them
+
+Group rows, the group curves and the mixed model use only the observers'
+rows that carry none of the words in :data:`NOT_USABLE` (:func:`usable`).
 """
 
 from __future__ import annotations
@@ -39,8 +50,12 @@ MIN_TRIALS_FOR_INTERVAL = 10
 STEEP_FRACTION = 0.1
 #: Spread, as a fraction of the same interquartile range, at which a ``steep`` fit's bootstrap draws its answers.
 STEEP_DRAW_FRACTION = 0.5
-WORDS = ("one-sided", "separated", "on-bound", "outside-tested", "steep", "few-trials",
-         "off-interval", "not-converged", "model-not-converged", "descriptive")
+WORDS = ("one-sided", "separated", "on-bound", "outside-tested", "steep", "not-estimable", "few-trials",
+         "off-interval", "not-converged", "model-not-converged", "descriptive", "partial")
+#: Words that keep an observer's row out of the group: its estimate says nothing (the PSE is not estimable)
+#: or comes without an interval (too few trials).  ``on-bound`` alone is not among them: an estimate on its
+#: bound is ``not-estimable`` as well, while a confidence limit on a bound only makes the interval wide.
+NOT_USABLE = ("one-sided", "not-estimable", "few-trials")
 
 
 def join(*groups) -> str:
@@ -54,6 +69,12 @@ def join(*groups) -> str:
     if unknown:
         raise ValueError(f"unknown flag words {sorted(unknown)}")
     return " ".join(w for w in WORDS if w in found)
+
+
+def usable(flags) -> np.ndarray:
+    """True for each ``flags`` cell (a sequence of strings) without a word of :data:`NOT_USABLE`."""
+    return np.array([not (set(str(f).split()) & set(NOT_USABLE)) if isinstance(f, str) else True
+                     for f in flags], dtype=bool)
 
 
 def on_bound(estimate, low, high, bounds, rel: float = 1e-6) -> bool:
@@ -116,6 +137,8 @@ def psychometric_flags(fit, boot=None) -> list[str]:
             words.append("outside-tested")
         if fit.spread[c] < floor[c]:
             words.append("steep")
+        if not np.isfinite(fit.pse_se[c]):
+            words.append("not-estimable")
         if fit.n_trials[c] < MIN_TRIALS_FOR_INTERVAL:
             words.append("few-trials")
         if not fit.converged or refits_bad:

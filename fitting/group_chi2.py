@@ -41,6 +41,7 @@ import pandas as pd
 from scipy import special
 
 from fitting.covariance import curve_between_covariance, weighted_mean_correlation
+from fitting.flags import usable
 from fitting.meta import dersimonian_laird, random_effects, variance_from_interval
 from fitting.scores import score_chi2
 
@@ -95,14 +96,18 @@ class GroupData:
         p = len(index)
         ys, vs, cs = [], [], []
         for observer, rows in shifts.groupby("observer", sort=True):
-            cov = covariances.get(observer)
-            if cov is None or np.shape(cov) != (len(rows),) * 2:
-                return None
             pos = np.array([index.get((float(lag), float(o)), -1)
                             for lag, o in zip(rows["lag"], rows["adapter_offset_deg"])])
             shift = rows["pse_shift_deg"].to_numpy(float)
             var = np.asarray(variance_from_interval(rows["ci_low"], rows["ci_high"], level), float)
             keep = (pos >= 0) & np.isfinite(shift) & np.isfinite(var) & (var > 0)
+            if "flags" in rows:         # as fit's group rows: only the usable shifts (fitting.flags.usable)
+                keep &= usable(rows["flags"])
+            if not keep.any():
+                continue
+            cov = covariances.get(observer)
+            if cov is None or np.shape(cov) != (len(rows),) * 2:
+                return None
             block = np.asarray(cov, float)[np.ix_(keep, keep)]
             if not np.all(np.isfinite(block)):
                 return None

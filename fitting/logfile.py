@@ -39,7 +39,7 @@ from .errors import InputError
 
 #: How each known column of a trial log parses.  Unknown columns accept anything.
 CELL_KINDS = {
-    "observer": "id", "session": "id", "trial": "count", "condition": "text",
+    "observer": "observer", "session": "id", "trial": "count", "condition": "text",
     "adapter_offset_deg": "number?", "lag": "whole?", "track": "whole?",
     "test_offset_deg": "number", "response_cw": "answer", "rt_s": "seconds?",
     "dropped_frames": "whole", "timing_ok": "flag", "practice": "bit",
@@ -63,6 +63,22 @@ MAX_SECONDS = 48 * 3600.0
 _DECIMAL = re.compile(r"[+-]?(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]{1,3})?")
 _DIGITS = re.compile(r"[0-9]{1,9}(?:\.0*)?")     # "1.0" too: a log filtered with pandas writes counts so
 _ID = re.compile(r"[A-Za-z0-9_-]{1,64}")
+#: The observer name of the group rows in ``fit``'s tables (:mod:`fitting.group`): no observer may take it,
+#: in any case, or their rows and figures would be taken for the group's.
+GROUP_NAME = "group"
+
+
+def identifier_problem(text: str, observer: bool = False) -> str | None:
+    """What is wrong with an observer or session ID, or None: the rule of logs, ``run`` and ``simulate``.
+
+    An ID is 1-64 letters, digits, ``-`` or ``_`` (it is part of file
+    names); an observer's is not :data:`GROUP_NAME` in any case.
+    """
+    if _ID.fullmatch(text or "") is None:
+        return "use 1-64 letters, digits, '-' or '_' only"
+    if observer and text.lower() == GROUP_NAME:
+        return f"{GROUP_NAME!r} (in any case) names the group rows of fit's tables; choose another observer ID"
+    return None
 
 
 def _number(text: str) -> bool:
@@ -85,7 +101,9 @@ def _seconds(text: str, low_open: bool) -> bool:
 
 
 _CHECKS = {
-    "id": (lambda t: _ID.fullmatch(t) is not None, "a name of 1-64 letters, digits, - or _"),
+    "id": (lambda t: identifier_problem(t) is None, "a name of 1-64 letters, digits, - or _"),
+    "observer": (lambda t: identifier_problem(t, observer=True) is None,
+                 f"an observer ID of 1-64 letters, digits, - or _ other than {GROUP_NAME!r} (the group rows' name)"),
     "text": (lambda t: t != "", "a non-empty value"),
     "text?": (lambda t: True, ""),
     "count": (_count, "a whole number from 1 to 999999999"),

@@ -689,6 +689,11 @@ def plot_amplitudes(boot: NbackBootstrap, base: Path) -> list[str]:
     return save(fig, base)
 
 
+#: Why a stream fit of several observers has no group rows (summary, console and report).
+NO_GROUP_NOTE = ("no group rows: a stream fit reports every observer on their own (the group combination and "
+                 "the mixed model are made for adapt-test fits only); compare the observers' rows")
+
+
 @dataclass
 class StreamReport:
     """What :func:`fit_stream_logs` did."""
@@ -725,6 +730,8 @@ class StreamReport:
                 t_lo, t_hi = boot.decay_ci
                 line += f"; decay {f.decay_periods:.3g} periods [{t_lo:.3g}, {t_hi:.3g}]"
             lines.append(line)
+        if len(self.fits) > 1:
+            lines.append(f"note: {NO_GROUP_NOTE}")
         return "\n".join(lines)
 
 
@@ -806,7 +813,7 @@ def fit_stream_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="fr
         options = (f"stream n-back regression, lapse {'free in [0, ' + format(lapse_max, 'g') + ']' if lapse == 'free' else 'fixed at ' + str(lapse)}; "
                    f"{interval} intervals from {n_boot} parametric bootstrap replicates (seed {seed})")
         data = collect(paths, plan)
-        data.update(kind="stream", options=options, notes={})
+        data.update(kind="stream", options=options, notes={"group": [NO_GROUP_NOTE]} if len(fits) > 1 else {})
         write_report_data(folder, data)
         write_page(folder)
     return report

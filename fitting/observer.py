@@ -442,7 +442,7 @@ def analyse_observer(observer: str, trials: pd.DataFrame, opts: Options,
         "pse_deg": fit.pse, "pse_ci_low": lo, "pse_ci_high": hi,
         "spread_deg": fit.spread, "lapse": fit.lapse, "n_trials": conds["n_trials"].to_numpy(),
         "flags": cond_flags})
-    details = _details(observer, conds, fit, boot, opts)
+    details = _details(observer, conds, fit, boot, opts, cond_flags)
     model_test = _model_test(observer, fit, alt, boot, opts)
     period = _period(trials, notes)
     analysis = ObserverAnalysis(observer, conds, trials, fit, alt, boot, pse, details,
@@ -464,8 +464,7 @@ def _stretched(estimate, low, high) -> bool:
     return bool(np.isfinite(estimate) and (low == estimate or high == estimate))
 
 
-def _details(observer, conds, fit, boot, opts) -> pd.DataFrame:
-    C = len(conds)
+def _details(observer, conds, fit, boot, opts, flags) -> pd.DataFrame:
     out = pd.DataFrame({"observer": observer, "condition": conds["condition"],
                         "adapter_offset_deg": conds["adapter_offset_deg"],
                         "lag": conds["lag"].astype("Int64"), "n_trials": conds["n_trials"],
@@ -482,7 +481,7 @@ def _details(observer, conds, fit, boot, opts) -> pd.DataFrame:
     else:
         out["spread_ci_low"] = out["spread_ci_high"] = out["gof_p"] = np.nan
         out["replicates_pse_on_bound"] = np.nan
-    out["flags"] = fit.flags if C else []
+    out["flags"] = flags        # the words of pse.csv (fitting.flags), not the fit's own phrases
     return out
 
 

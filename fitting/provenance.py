@@ -8,12 +8,15 @@ measured refresh rate, dropped frames, and the package versions at the
 session and at the fit.  It is written to ``report_data.json`` in the fit's
 output folder, so that ``compare`` can rebuild the same report later.
 
-A log without a sidecar is reported as such; nothing is guessed.
+A log without a sidecar is reported as such; nothing is guessed.  A sidecar
+that names another observer or session than its log's rows is refused.
 """
 
 from __future__ import annotations
 
+import csv
 import importlib.metadata
+import io
 import json
 import platform
 from pathlib import Path
@@ -53,6 +56,62 @@ def sidecar_path(log: Path) -> Path:
     return log.with_name(name + SIDECAR_SUFFIX)
 
 
+def log_cells(log: Path, columns=("observer", "session", "condition", "procedure")) -> dict[str, set[str]] | None:
+    """The values each of ``columns`` takes in a trial log's whole rows; None when the log cannot be read so.
+
+    A last line without its newline is left out (it may be cut inside its
+    first cell); a log that is not readable CSV with these columns gives
+    None: the fit itself reports what is wrong with it.
+    """
+    try:
+        data = Path(log).read_bytes()
+    except OSError:
+        return None
+    try:
+        reader = csv.DictReader(io.StringIO(data[: data.rfind(b"\n") + 1].decode("utf-8-sig"), newline=""))
+        if not set(columns) <= set(reader.fieldnames or ()):
+            return None
+        cells: dict[str, set[str]] = {c: set() for c in columns}
+        for row in reader:
+            for c in columns:
+                cells[c].add(row[c] or "")
+    except (UnicodeDecodeError, csv.Error):
+        return None
+    return cells
+
+
+def check_sidecar_owner(log: Path, side: Path, data: dict, cells: dict[str, set[str]] | None = None) -> None:
+    """Refuse a sidecar that names another observer or session than the rows of the log beside it.
+
+    A sidecar copied beside the wrong log (another observer's, another
+    session's) would give the report, and the bootstrap that re-runs the
+    tracks, another session's protocol, seed and times.
+
+    Parameters
+    ----------
+    log, side : Path
+        The trial log and the sidecar beside it.
+    data : dict
+        The sidecar's content.
+    cells : dict, optional
+        :func:`log_cells` of the log, if read already.
+
+    Raises
+    ------
+    InputError
+        Naming the sidecar and the field that disagrees.
+    """
+    cells = log_cells(log) if cells is None else cells
+    for field in ("observer", "session"):
+        claimed = data.get(field)
+        found = sorted(cells.get(field, ())) if cells else []
+        if claimed is None or len(found) != 1 or found == [str(claimed)]:
+            continue    # rows that disagree among themselves are the log's damage, which reading it names
+        raise InputError(str(side), field, f"names {field} {claimed!r}, but the rows of its log {Path(log).name} "
+                         f"name {found[0]!r}: it is another session's sidecar; put this session's own beside the "
+                         "log, or move it away")
+
+
 def _session_record(log: Path) -> tuple[dict, dict | None]:
     """One session's facts and its protocol record (path, sha256, text) if known."""
     side = sidecar_path(log)
@@ -71,6 +130,7 @@ def _session_record(log: Path) -> tuple[dict, dict | None]:
     if not isinstance(data, dict):
         record["problem"] = f"sidecar {side.name} is not a JSON object (found a {type(data).__name__})"
         return record, None
+    check_sidecar_owner(log, side, data)
     parts = [p for p in data.get("parts") or [] if isinstance(p, dict)] or [{}]
     dropped = [p.get("timing", {}).get("dropped_frames") for p in parts if isinstance(p.get("timing"), dict)]
     protocol = data.get("protocol") if isinstance(data.get("protocol"), dict) else {}
@@ -131,14 +191,58 @@ def write_report_data(out_dir: Path, data: dict) -> Path:
 
 
 def read_report_data(fit_dir: Path) -> dict:
-    """The provenance a fit wrote; empty parts when the file is absent (an older fit)."""
+    """The provenance a fit wrote; empty parts when the file is absent (an older fit).
+
+    Raises
+    ------
+    InputError
+        The file is not JSON, or not of the shape :func:`collect` and ``fit``
+        give it (an older version's file or a hand edit), naming the field.
+    """
     path = Path(fit_dir) / REPORT_DATA
-    if not path.is_file():
-        return {"sessions": [], "protocols": {}, "software": {}, "notes": {}, "missing": str(path)}
     try:
+        if not path.is_file():
+            return {"sessions": [], "protocols": {}, "software": {}, "notes": {}, "missing": str(path)}
         data = json.loads(path.read_text(encoding="utf-8"))
     except (UnicodeDecodeError, json.JSONDecodeError):
         raise InputError(str(path), "file", "is not the JSON that fit writes; run fit again") from None
+    except OSError as exc:                 # e.g. a colleague's fit folder without read permission
+        raise InputError(str(path), "file", f"cannot be read ({exc.strerror})") from None
     if not isinstance(data, dict):
         raise InputError(str(path), "file", "is not the JSON that fit writes; run fit again")
+    _check_shape(data, path)
     return data
+
+
+_OBJECT, _LIST, _TEXT = (dict, "an object"), (list, "a list"), (str, "a text")
+_JSON_KINDS = {dict: "an object", list: "a list", str: "a text", int: "a number", float: "a number", bool: "true/false"}
+
+
+def _check_shape(data: dict, path: Path) -> None:
+    """Refuse a field of ``report_data.json`` the report cannot read, in one line naming it."""
+    def expect(value, kind, field, optional=True):
+        if not (isinstance(value, kind[0]) or optional and value is None):
+            found = _JSON_KINDS.get(type(value), "nothing")
+            raise InputError(str(path), field, f"expected {kind[1]}, found {found}: not what fit writes (an older "
+                             "version or a hand edit?); run fit again")
+
+    for key, kind in (("sessions", _LIST), ("protocols", _OBJECT), ("software", _OBJECT), ("notes", _OBJECT),
+                      ("kind", _TEXT), ("options", _TEXT), ("missing", _TEXT)):
+        expect(data.get(key), kind, key)
+    for i, session in enumerate(data.get("sessions") or []):
+        field = f"sessions[{i}]"
+        expect(session, _OBJECT, field, optional=False)
+        expect(session.get("log"), _TEXT, f"{field}.log", optional=False)
+        for key, kind in (("observer", _TEXT), ("protocol_sha256", _TEXT), ("packages", _OBJECT)):
+            expect(session.get(key), kind, f"{field}.{key}")
+    for sha, protocol in (data.get("protocols") or {}).items():
+        field = f"protocols.{sha}"
+        expect(protocol, _OBJECT, field, optional=False)
+        expect(protocol.get("text"), _TEXT, f"{field}.text")
+        expect(protocol.get("plan"), _LIST, f"{field}.plan")
+        for j, line in enumerate(protocol.get("plan") or []):
+            expect(line, _TEXT, f"{field}.plan[{j}]", optional=False)
+    for observer, notes in (data.get("notes") or {}).items():
+        expect(notes, _LIST, f"notes.{observer}", optional=False)
+        for j, note in enumerate(notes):
+            expect(note, _TEXT, f"notes.{observer}[{j}]", optional=False)

@@ -50,7 +50,7 @@ import pandas as pd
 from .bootstrap import check_replicate_memory, parametric_bootstrap
 from .errors import InputError
 from .covariance import COVARIANCE_COLUMNS, group_covariance, observer_covariance
-from .flags import flagged_first, join, psychometric_flags, shared_notes
+from .flags import flagged_first, join, psychometric_flags, shared_notes, usable
 from .group import GROUP, group_aftereffect, group_curves, group_pse, group_weights, mixed_model
 from .observer import (BY_STATISTIC, INTERVAL_METHODS, AFTEREFFECT_COLUMNS, DECAY_COLUMNS, PSE_COLUMNS, TUNING_COLUMNS,
                        ObserverAnalysis, Options, analyse_observer, condition_table)
@@ -59,7 +59,7 @@ from .progress import phase
 from .provenance import REPORT_DATA, collect, write_report_data
 from .psychometric import DEFAULT_LAPSE_MAX, SIGMOIDS, Cells, fit_cells
 from .outputs import output_set
-from .tables import prepare_trials, read_logs, write_csv, write_text
+from .tables import prepare_trials, read_logs, stack, write_csv, write_text
 
 MAIN_TABLES = {"pse": PSE_COLUMNS, "aftereffect": AFTEREFFECT_COLUMNS,
                "tuning": TUNING_COLUMNS, "decay": DECAY_COLUMNS}
@@ -161,8 +161,10 @@ class FitReport:
                     lines.append(f"  note: {n}")
         if GROUP in self.notes or (self.tuning["observer"] == GROUP).any():
             lines.append("")
-            lines.append(f"Group ({n_obs} observers; random-effects intervals with within- and "
-                         "between-observer uncertainty)")
+            own = self.aftereffect[self.aftereffect["observer"] != GROUP]
+            used = own.loc[usable(own["flags"]), "observer"].nunique()
+            lines.append(f"Group ({n_obs} observers{'' if used == n_obs else f', usable shifts from {used}'}; "
+                         "random-effects intervals with within- and between-observer uncertainty)")
             g = self.aftereffect[self.aftereffect["observer"] == GROUP]
             lines += _shift_grid(g)
             for _, r in self.tuning[self.tuning["observer"] == GROUP].iterrows():
@@ -331,7 +333,7 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
     else:
         analyses = [_analyse_task((obs, t, opts, int(seed))) for obs, t in groups.items()]
     notes = {a.observer: a.notes for a in analyses}
-    tables = {k: pd.concat([getattr(a, k) for a in analyses], ignore_index=True) if analyses else None
+    tables = {k: stack([getattr(a, k) for a in analyses], MAIN_TABLES.get(k)) if analyses else None
               for k in ("pse", "aftereffect", "tuning", "decay", "details", "model_test", "decay_detail")}
     extras = {"fit_details": tables["details"], "model_tests": tables["model_test"],
               "decay_detail": tables["decay_detail"]}
@@ -346,8 +348,8 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
     group = None
     if len(analyses) > 1:
         gnotes: list[str] = []
-        group = {"pse": group_pse(tables["pse"], opts.level),
-                 "aftereffect": group_aftereffect(tables["aftereffect"], opts.level)
+        group = {"pse": group_pse(tables["pse"], opts.level, gnotes),
+                 "aftereffect": group_aftereffect(tables["aftereffect"], opts.level, gnotes)
                  if len(tables["aftereffect"]) else pd.DataFrame(columns=AFTEREFFECT_COLUMNS)}
         if len(tables["aftereffect"]):
             group["tuning"], group["decay"], group["decay_detail"], group["curves"] = \
@@ -369,10 +371,8 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
             group["covariance"] = group_covariance(
                 analyses, group["aftereffect"], group_weights(tables["aftereffect"], opts.level), opts.level)
         for k in ("pse", "aftereffect", "tuning", "decay"):
-            tables[k] = pd.concat([tables[k], group[k]], ignore_index=True)
-        if len(group["decay_detail"]):
-            extras["decay_detail"] = pd.concat([extras["decay_detail"], group["decay_detail"]],
-                                               ignore_index=True)
+            tables[k] = stack([tables[k], group[k]], MAIN_TABLES[k])
+        extras["decay_detail"] = stack([extras["decay_detail"], group["decay_detail"]])
         notes[GROUP] = gnotes
     covs = [observer_covariance(a) for a in analyses] + [(group or {}).get("covariance")]
     covs = [c for c in covs if c is not None]
@@ -522,12 +522,32 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
         files += fig_files + [str(out / "summary.txt"), str(out / REPORT_DATA), str(out / PAGE)]
         report.out_dir = str(staged.final_dir)
         report.files = staged.final_paths(files)
-        write_text(out / "summary.txt", report.summary() + "\n")
         data = collect(paths, plan)
+        note = protocols_note(data)
+        if note:                    # said before pooling, wherever the summary is read (the page says it too)
+            report.notes.setdefault(GROUP if report.group is not None else report.analyses[0].observer,
+                                    []).insert(0, note)
+        write_text(out / "summary.txt", report.summary() + "\n")
         data.update(kind="adapt-test", options=report.summary().splitlines()[1], notes=report.notes)
         write_report_data(out, data)
         write_page(out)
     return report
+
+
+def protocols_note(data: dict) -> str | None:
+    """A note when the sessions ran different protocols (from :func:`fitting.provenance.collect`), else None.
+
+    Names each protocol (the start of its SHA-256) with the observers who ran it.
+    """
+    protocols = data.get("protocols", {})
+    if len(protocols) < 2:
+        return None
+    users: dict[str, set] = {}
+    for s in data.get("sessions", []):
+        users.setdefault(s.get("protocol_sha256") or "", set()).add(str(s.get("observer")))
+    who = "; ".join(f"{sha[:12]} ({Path(str(p.get('path'))).name}): {', '.join(sorted(users.get(sha, ())))}"
+                    for sha, p in protocols.items())
+    return f"the observers ran {len(protocols)} different protocols ({who}); compare them before pooling"
 
 
 def _import_ahead(figures: bool, group: bool) -> threading.Thread:
@@ -575,8 +595,11 @@ def quick_shifts(trials: pd.DataFrame, n_boot: int = 50, seed: int = 0) -> pd.Da
     -------
     pandas.DataFrame
         ``observer, condition, adapter_offset_deg, lag, pse_deg,
-        pse_shift_deg, ci_low, ci_high, n_trials, flags``; one row per
-        condition (baseline included, shift 0); shifts and intervals empty
+        pse_shift_deg, ci_low, ci_high, n_trials, flags, shift_flags``; one
+        row per condition (baseline included, shift 0). ``flags`` are the
+        condition's own (its PSE's, as in ``pse.csv``), ``shift_flags`` add
+        the baseline's (the shift's, as in ``aftereffect.csv``: a shift
+        leans on both PSEs). Shifts and intervals empty
         (NaN) when the observer has no baseline trials yet; intervals empty
         where the condition or the baseline has fewer than
         :data:`~fitting.flags.MIN_TRIALS_FOR_INTERVAL` trials or all answers
@@ -598,21 +621,21 @@ def quick_shifts(trials: pd.DataFrame, n_boot: int = 50, seed: int = 0) -> pd.Da
         shift = fit.pse - fit.pse[base[0]] if base.size else np.full(len(names), np.nan)
         lo = hi = np.full(len(names), np.nan)
         flags = psychometric_flags(fit)
-        if base.size:
-            flags = [join(f, flags[base[0]]) for f in flags]
+        shift_flags = [join(f, flags[base[0]]) for f in flags] if base.size else list(flags)
         if n_boot and base.size:
             boot = parametric_bootstrap(fit, int(n_boot), _observer_rng(seed, str(observer)), False)
             reps = boot.pse - boot.pse[:, [base[0]]]
             lo, hi = np.quantile(reps, [0.025, 0.975], axis=0)
             # no interval from too few trials or from answers all on one side
-            bare = np.array([("few-trials" in f) or ("one-sided" in f) for f in flags])
+            bare = np.array([("few-trials" in f) or ("one-sided" in f) for f in shift_flags])
             lo, hi = np.where(bare, np.nan, lo), np.where(bare, np.nan, hi)
         rows.append(pd.DataFrame({"observer": str(observer), "condition": names,
                                   "adapter_offset_deg": conds["adapter_offset_deg"].to_numpy(),
                                   "lag": conds["lag"].astype("Int64").to_numpy(),
                                   "pse_deg": fit.pse, "pse_shift_deg": shift,
                                   "ci_low": lo, "ci_high": hi,
-                                  "n_trials": conds["n_trials"].to_numpy(), "flags": flags}))
+                                  "n_trials": conds["n_trials"].to_numpy(), "flags": flags,
+                                  "shift_flags": shift_flags}))
     table = pd.concat(rows, ignore_index=True)
     table.attrs["exclusions"] = kept.attrs.get("exclusions")
     return table

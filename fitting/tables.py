@@ -447,6 +447,25 @@ def _is_p_value(column: str) -> bool:
     return column == "p_value" or column.endswith("_p")
 
 
+def stack(frames, columns=None) -> pd.DataFrame:
+    """The rows of several tables, one table after another, with their column types kept.
+
+    Tables without rows are left out: pandas gives a column the ``object``
+    type when any table has it without rows, and :func:`format_table` then
+    writes its numbers in full instead of with six significant digits.
+
+    Parameters
+    ----------
+    frames : iterable of pandas.DataFrame or None
+    columns : list of str, optional
+        Columns of the (empty) result when no table has rows.
+    """
+    full = [f for f in frames if f is not None and len(f)]
+    if not full:
+        return pd.DataFrame(columns=columns)
+    return pd.concat(full, ignore_index=True)
+
+
 def format_table(df: pd.DataFrame, columns: list[str] | None = None) -> str:
     """CSV text with floats in ``%.6g``, whole-number columns as integers, NaN empty.
 

@@ -266,6 +266,8 @@ def _quick_fit_text(rows: list[dict]) -> str:
     from fitting.flags import MIN_TRIALS_FOR_INTERVAL
     from fitting.report import exclusion_text
 
+    if any(row.get("block") == "stream" for row in rows):
+        return "no quick fit for a stream block: fit its log after the session (aftershift fit LOG)"
     frame = pd.DataFrame(rows)
     try:
         table = quick_shifts(frame, n_boot=50, seed=0)
@@ -303,6 +305,9 @@ def cmd_fit(args) -> int:
     trials = [str(p) for p in logs if str(p) not in streams]
     if streams and trials:
         raise InputError(streams[0], "block", "stream logs and adapt-test logs need separate fit runs (different --out)")
+    from runner.replay import check_sidecars
+
+    check_sidecars(logs)    # another session's sidecar beside a log: refused before any fitting
     # local workers: the process they fork from starts importing what they need now, beside this
     # process's own imports and fitting (several logs: the fits and figures; one: its figures)
     preload = FIT_MODULES if len(trials) > 1 else () if args.no_figures else FIGURE_MODULES
@@ -401,8 +406,7 @@ def cmd_recover(args) -> int:
 def cmd_display_test(args) -> int:
     from runner import display
 
-    if not (0 < args.seconds <= 3600):
-        raise InputError("argument", "--seconds", f"expected a duration from 0 to 3600 s, not {args.seconds:g}")
+    display.check_seconds(args.seconds)
     protocol, _ = _load(args.protocol)
     if args.frames:
         from runner.display.capture import capture_frames
@@ -496,7 +500,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--session", default="s1", help="session label (default s1)")
     p.add_argument("--windowed", action="store_true", help="a window instead of full screen (tests, piloting)")
     p.add_argument("--resume", action="store_true", help="continue an interrupted session")
-    p.add_argument("--seed", type=_int_arg, help="session seed (default: drawn at random and stored)")
+    p.add_argument("--seed", type=_int_arg, help="seed (default: drawn at random and stored); a session other "
+                                                "than s1 mixes its label in")
     p.add_argument(safety.REFRESH_OVERRIDE_OPTION, dest="refresh_ack", action="store_true",
                    help="run although the measured refresh rate differs from the protocol's (recorded)")
     ack(p)
@@ -626,9 +631,11 @@ def main(argv: list[str] | None = None) -> int:
         with one_blas_thread():  # small batched solves: threads only cost (fitting/threads.py)
             return args.func(args)
     except InputError as exc:
+        _name_the_protocol(exc, args)
         print(f"aftershift: {exc.line()}", file=sys.stderr)
         return EXIT_INPUT
     except SafetyRefusal as exc:
+        _name_the_protocol(exc, args)
         print(f"aftershift: {exc.line()}", file=sys.stderr)
         return EXIT_SAFETY
     except BrokenPipeError:  # output piped into e.g. `head`: stop quietly
@@ -641,6 +648,19 @@ def main(argv: list[str] | None = None) -> int:
         if interrupt is None:
             raise
         return _interrupted(args, interrupt)
+
+
+def _name_the_protocol(exc: InputError | SafetyRefusal, args) -> None:
+    """Name the protocol file in an error about one of its fields raised without it (the display's checks)."""
+    protocol = getattr(args, "protocol", None)
+    if not exc.source and protocol and exc.field.split(".")[0] in _protocol_sections():
+        exc.source = str(protocol)
+
+
+def _protocol_sections() -> tuple[str, ...]:
+    from runner.protocol import Protocol
+
+    return tuple(Protocol.model_fields)
 
 
 def console() -> int:

@@ -13,15 +13,20 @@ end times, package versions), ``fit/report_data.json`` and the two
 ``report.html`` pages (which show them); the repository leaves exactly those
 out (``.gitignore``), so running the demo in a clone leaves it clean.  The
 output folder is replaced only if it holds a previous demo (marked by the
-file ``DEMO_MARK``); any other non-empty folder is refused.
+file ``DEMO_OUTPUT``); any other non-empty folder is refused, and so is a
+folder another demo is writing into.
 """
 
 from __future__ import annotations
 
 import shutil
+from contextlib import contextmanager
 from pathlib import Path
 
 from fitting.errors import InputError
+from fitting.outputs import check_out_dir
+from runner.folder_claim import CLAIM_FILE, FolderClaim
+from runner.trial_log import StorageError
 
 ROOT = Path(__file__).resolve().parent.parent
 PROTOCOL = ROOT / "protocols" / "offset_by_lag.toml"
@@ -32,15 +37,35 @@ N_OBSERVERS = 3
 N_BOOT = 1000
 
 
-def _prepare(out: Path) -> None:
-    if out.exists() and any(out.iterdir()):
-        if not (out / DEMO_MARK).exists():
-            raise InputError(str(out), "--out", "is not empty and holds no earlier demo output; choose another folder")
-        shutil.rmtree(out)
-    out.mkdir(parents=True, exist_ok=True)
-    (out / DEMO_MARK).write_text(
-        "This folder is the output of `aftershift demo`; running the demo again replaces it.\n", encoding="utf-8"
-    )
+def _refuse_foreign(out: Path) -> None:
+    """Refuse a non-empty ``out`` that holds no earlier demo (its files are not ours to replace)."""
+    if out.is_dir() and not (out / DEMO_MARK).exists() and any(e.name != CLAIM_FILE for e in out.iterdir()):
+        raise InputError(str(out), "--out", "is not empty and holds no earlier demo output; choose another folder")
+
+
+@contextmanager
+def _claimed(out: Path):
+    """Hold ``out`` for this demo, emptied of an earlier demo's files and marked as the demo's.
+
+    The folder's claim (:class:`runner.folder_claim.FolderClaim`) keeps a
+    second demo out while this one writes; the claim's file and the mark
+    stay while the rest is removed, so a demo killed at any instant leaves
+    a folder the next demo may replace.  A linked ``--out`` is followed: the
+    linked folder is the one replaced.
+    """
+    _refuse_foreign(out)            # before the claim leaves its file in somebody else's folder
+    with FolderClaim(out):
+        _refuse_foreign(out)        # again under the claim
+        for entry in out.iterdir():
+            if entry.name in (CLAIM_FILE, DEMO_MARK):
+                continue
+            if entry.is_dir() and not entry.is_symlink():
+                shutil.rmtree(entry)
+            else:
+                entry.unlink()
+        (out / DEMO_MARK).write_text(
+            "This folder is the output of `aftershift demo`; running the demo again replaces it.\n", encoding="utf-8")
+        yield
 
 
 def run_demo(out_dir: str | Path = "results_demo", progress: bool | None = None) -> Path:
@@ -56,11 +81,31 @@ def run_demo(out_dir: str | Path = "results_demo", progress: bool | None = None)
         Output folder (default ``results_demo``).
     progress : bool or None
         Progress on stderr (None: only on a terminal).
+
+    Raises
+    ------
+    InputError
+        ``out_dir`` cannot be written, is in use by another demo, holds
+        something other than an earlier demo, or the disk filled up (one
+        line; the demo starts afresh when run again).
     """
+    out = Path(out_dir)
+    check_out_dir(out)
+    try:
+        with _claimed(out):
+            return _run(out, progress)
+    except StorageError as exc:     # its advice, --resume, is for `simulate`; the demo starts afresh
+        raise InputError(str(out), "--out", f"{exc.message.split('; ')[0]} while writing {exc.source}; free "
+                         "some space and run the demo again") from None
+    except OSError as exc:
+        raise InputError(str(exc.filename or out), "--out", f"cannot be written ({exc.strerror}); run the demo "
+                         "again once it can be") from None
+
+
+def _run(out: Path, progress: bool | None) -> Path:
+    """The demo's steps into the claimed folder ``out``."""
     from runner.workpool import FIT_MODULES, open_pool, task_mapper
 
-    out = Path(out_dir)
-    _prepare(out)
     # the workers' parent process starts importing what they need now, beside the imports and the
     # simulation below
     pool = open_pool(preload=FIT_MODULES)

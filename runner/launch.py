@@ -51,6 +51,57 @@ def derive_seed(seed: int, *words: int) -> int:
     return int(np.random.SeedSequence([seed, *words]).generate_state(1)[0])
 
 
+#: The session label of ``run`` and ``simulate`` without ``--session``.
+DEFAULT_SESSION = "s1"
+
+
+def session_seed(seed: int, session: str, *observer: int) -> int:
+    """The seed of one session: its schedule, tracks, dots and simulated answers come from it.
+
+    ``seed`` mixed with the simulated observer's index (``observer``, none
+    for a person) and the session label: another session of the same seed
+    is the same simulated person (parameters drawn from ``seed`` alone)
+    giving fresh answers, where it once gave an exact copy of the first.
+    The default session mixes in no label, so its seeds, and every log
+    written with them, are what they were before labels were mixed in.
+
+    Parameters
+    ----------
+    seed : int
+        The command's seed.
+    session : str
+        Session label (an identifier: letters, digits, ``-`` and ``_``).
+    *observer : int
+        The simulated observer's index (0 for ``sim01``); none for a person.
+
+    Returns
+    -------
+    int
+        ``seed`` itself for a person's default session, else a derived 32-bit seed.
+    """
+    label = () if session == DEFAULT_SESSION else (int.from_bytes(session.encode("utf-8"), "big"),)
+    words = (*observer, *label)
+    return derive_seed(seed, *words) if words else seed
+
+
+def _resumed_session_seed(seed: int, session: str, observer: tuple[int, ...], sidecar: dict, source: str) -> int:
+    """The session seed a resume continues: the sidecar's, when it follows from ``seed``.
+
+    A session other than the default started before its label was mixed in
+    (:func:`session_seed`) keeps the seed it started with.
+
+    Raises
+    ------
+    InputError
+        The sidecar's ``session_seed`` follows from its seed neither way (an edited sidecar).
+    """
+    recorded = sidecar["session_seed"]
+    if recorded in (session_seed(seed, session, *observer), session_seed(seed, DEFAULT_SESSION, *observer)):
+        return recorded
+    raise InputError(source, "session_seed", f"{recorded} does not follow from the sidecar's seed {seed} and session "
+                     f"{session!r}; the sidecar was edited: restore it or start a new session")
+
+
 def _protocol_record(path: str, text: str) -> dict:
     return {"path": str(path), "sha256": hashlib.sha256(text.encode("utf-8")).hexdigest(), "text": text}
 
@@ -195,12 +246,12 @@ def check_resume(out_dir: str | Path, observer: str, session: str, text: str, li
         if check_same_light(source, content, light):
             print(f"note: {source}: the light profile file differs from the one this session started with, "
                   "but gives the same grey levels; continuing (the new part records its SHA-256)", file=sys.stderr)
-        if seed is not None and seed != content["session_seed"]:
-            _refuse_other_seed(source, content["session_seed"], seed)
+        if seed is not None and seed != content["seed"]:
+            _refuse_other_seed(source, content["seed"], seed)
 
 
 def _refuse_other_seed(source: str, started: int, given: int) -> None:
-    raise InputError(source, "session_seed", f"this session's seed is {started} (recorded when it started), "
+    raise InputError(source, "seed", f"this session's seed is {started} (recorded when it started), "
                      f"not --seed {given}; resume without --seed (the sidecar rules a resume)")
 
 
@@ -505,7 +556,7 @@ def simulate(
     n_observers: int = 1,
     seed: int | None = 0,
     resume: bool = False,
-    session: str = "s1",
+    session: str = DEFAULT_SESSION,
     screening: dict | None = None,
     progress: bool | None = None,
     light: dict | None = None,
@@ -545,7 +596,9 @@ def simulate(
     model = model or ObserverModel()
     models = draw_observers(model, n_observers, seed)
     loop, observer_kind = (StreamRun, StreamObserver) if protocol.stream is not None else (BlockRun, SimulatedObserver)
-    runs = [loop(as_started(protocol, *started.get(name, (None, ""))), derive_seed(seed, i), name, session)
+    runs = [loop(as_started(protocol, *started.get(name, (None, ""))),
+                 _resumed_session_seed(seed, session, (i,), *started[name]) if name in started
+                 else session_seed(seed, session, i), name, session)
             for i, name in enumerate(names)]
     console = SimulationConsole(sum(r.expected_rows() for r in runs), "simulating", show=progress)
     paths = []
@@ -595,7 +648,7 @@ def simulate(
 
 
 def simulate_rows(protocol: Protocol, model: ObserverModel, session_seed: int, observer: str = "sim01",
-                  session: str = "s1") -> list[dict]:
+                  session: str = DEFAULT_SESSION) -> list[dict]:
     """One simulated session held in memory: the rows its trial log would hold.
 
     The same loop, presenter and observer as :func:`simulate`, without files:
@@ -624,7 +677,7 @@ def run_on_screen(
     console: Console,
     extra: dict,
     resume: bool = False,
-    session: str = "s1",
+    session: str = DEFAULT_SESSION,
     seed: int | None = None,
 ) -> SessionResult:
     """Run a person through the protocol on an opened screen.
@@ -639,20 +692,23 @@ def run_on_screen(
     extra : dict
         Added to a new sidecar (measured refresh, acknowledgements, safety).
     seed : int, optional
-        Session seed; drawn at random (and stored) when not given.
+        The seed (:func:`session_seed` mixes in a label other than the
+        default); drawn at random (and stored) when not given.
     """
     out = Path(out_dir)
     log = open_log(out, observer, session, resume)
     try:    # until the part is open in the sidecar, a failure (a signal too) leaves no trace but the log's repairs
         started = log.read_sidecar() if log.sidecar_path.exists() else None
         if started is not None:
-            if seed is not None and seed != started["session_seed"]:
-                _refuse_other_seed(str(log.sidecar_path), started["session_seed"], seed)
-            seed = int(started["session_seed"])
-        elif seed is None:
-            seed = secrets.randbelow(2**31)
+            if seed is not None and seed != started["seed"]:
+                _refuse_other_seed(str(log.sidecar_path), started["seed"], seed)
+            seed = int(started["seed"])
+            run_seed = _resumed_session_seed(seed, session, (), started, str(log.sidecar_path))
+        else:
+            seed = secrets.randbelow(2**31) if seed is None else seed
+            run_seed = session_seed(seed, session)
         run = (StreamRun if protocol.stream is not None else BlockRun)(
-            as_started(protocol, started, str(log.sidecar_path)), seed, observer, session)
+            as_started(protocol, started, str(log.sidecar_path)), run_seed, observer, session)
         texts = screen_texts(protocol, caution, protocol_path)
         base = {
             "tool": "aftershift",
@@ -663,7 +719,7 @@ def run_on_screen(
             "display_profile": protocol.display.model_dump(),
             "packages": package_versions(),
             "seed": seed,
-            "session_seed": seed,
+            "session_seed": run_seed,
             "offset_bounds_deg": protocol.procedure.bounds_deg,
             **tracks_record(protocol),
             **extra,

@@ -44,14 +44,15 @@ from fitting.tables import write_csv
 from runner.observers import ObserverModel
 from runner.protocol import Protocol
 from runner.study import (QUANTITIES, TRIALS_FIELD, UNITS, Design, StudySettings, check_designs, console_table,
-                          coverage_se, design_columns, expand_designs, failed_run_notes, run_study,
-                          study_command)
+                          coverage_limits, coverage_se, design_columns, expand_designs, failed_run_notes,
+                          missing_interval_notes, run_study, study_command)
 
 #: Smallest --target-half-width: a hundredth of a degree is far finer than direction judgements are
 #: resolved (common practice, no source); smaller targets only overflow the trial counts.
 MIN_TARGET_HALF_WIDTH_DEG = 0.01
 STATISTICS = ["median_half_width", "mean_half_width", "sd_half_width", "q25_half_width", "q75_half_width",
-              "coverage", "coverage_se", "runs_with_interval", "runs_without_trials", "runs"]
+              "coverage", "coverage_se", "coverage_low", "coverage_high", "runs_with_interval", "runs_without_trials",
+              "runs"]
 
 
 # ---------------------------------------------------------------- designs
@@ -186,8 +187,11 @@ class PlanResult:
     needed : pandas.DataFrame
         Per family and lag: trials per condition for the target median
         amplitude half-width, exact (``trials_per_condition``) and as a valid
-        design (``trials_per_track``), and the measured log–log slope (−½
-        under the 1/√N law). Empty without a target.
+        design (``trials_per_track``); ``basis``: ``interpolated`` between
+        simulated designs, ``extrapolated`` beyond the largest (by the factor
+        ``beyond_largest``), or the ``smallest design with intervals``, which
+        already reaches the target (never fewer trials); and the measured
+        log–log slope (−½ under the 1/√N law). Empty without a target.
     protocol_title : str
     notes : list of str
     """
@@ -229,15 +233,7 @@ class PlanResult:
             lines.append("")
             lines.append(f"for an amplitude half-width of {self.target_half_width:g} deg "
                          f"(median half-widths interpolated, ∝ 1/√N beyond the designs):")
-            for _, r in self.needed.iterrows():
-                where = f"  {r['family']}, lag {int(r['lag'])}"
-                if math.isfinite(r["trials_per_condition"]):
-                    lines.append(f"{where}: about {r['trials_per_condition']:.0f} trials per condition "
-                                 f"-> trials_per_track = {int(r['trials_per_track'])} "
-                                 f"(log-log slope of the two largest designs {r['loglog_slope']:.2f}; "
-                                 "1/sqrt(N) gives -0.5)")
-                else:
-                    lines.append(f"{where}: no interval at any tested design; cannot say")
+            lines += [f"  {r['family']}, lag {int(r['lag'])}: {_recommendation(r)}" for _, r in self.needed.iterrows()]
         lines += [f"note: {n}" for n in self.notes]
         return lines
 
@@ -261,7 +257,7 @@ class PlanResult:
         return files
 
     def figure(self, stem: Path) -> list[Path]:
-        """Median half-width (bars: quartiles) and coverage (bars: ±2 Monte Carlo SE) against trials
+        """Median half-width (bars: quartiles) and coverage (bars: 95 % Wilson interval) against trials
         per condition, one column per quantity, one line per design family and lag; PNG and PDF."""
         import matplotlib
 
@@ -287,8 +283,9 @@ class PlanResult:
                 line = top.errorbar(part["trials_per_condition"], mid, yerr=bars, marker="o", capsize=3,
                                     label=label)
                 bottom.errorbar(part["trials_per_condition"], 100 * part["coverage"],
-                                yerr=200 * part["coverage_se"], marker="o", capsize=3,
-                                color=line[0].get_color())
+                                yerr=100 * np.vstack([part["coverage"] - part["coverage_low"],
+                                                      part["coverage_high"] - part["coverage"]]),
+                                marker="o", capsize=3, color=line[0].get_color())
             if quantity == "amplitude" and self.target_half_width is not None:
                 top.axhline(self.target_half_width, color="0.4", linestyle="--", linewidth=1, label="target")
             bottom.axhline(95, color="0.4", linestyle="--", linewidth=1)
@@ -313,6 +310,26 @@ class PlanResult:
                      fontsize=10)
         fig.tight_layout()
         return [Path(f) for f in save(fig, stem, dpi=150)]
+
+
+def _recommendation(r: pd.Series) -> str:
+    """One row of :attr:`PlanResult.needed` in words: how many trials, and how far the simulated designs back it."""
+    if not math.isfinite(r["trials_per_condition"]):
+        return "no tested design gave an interval in at least half its sessions; cannot say"
+    n, per_track = r["trials_per_condition"], int(r["trials_per_track"])
+    slope = (f"log-log slope of the two largest designs {r['loglog_slope']:.2f}; 1/sqrt(N) gives -0.5"
+             if math.isfinite(r["loglog_slope"]) else "one design with intervals")
+    if r["basis"] == SMALLEST:
+        return (f"the smallest design with intervals, {n:.0f} trials per condition (trials_per_track = "
+                f"{per_track}), reaches it already; fewer trials were not shown to give intervals at all, so "
+                "none are recommended")
+    if r["basis"] == EXTRAPOLATED:
+        factor = r["beyond_largest"]
+        times = f"{factor:,.0f}" if factor >= 10 else f"{factor:.2g}"
+        return (f"about {n:,.0f} trials per condition -> trials_per_track = {per_track:,}, extrapolated {times}x "
+                f"beyond the largest design simulated ({n / factor:,.0f} trials per condition) with half-width "
+                f"∝ 1/√N ({slope}); simulate a design near it before relying on it")
+    return f"about {n:,.0f} trials per condition -> trials_per_track = {per_track:,} ({slope})"
 
 
 # ---------------------------------------------------------------- planning
@@ -378,7 +395,7 @@ def plan_design(
     columns["family"] = [Design(d.protocol, d.model, {k: v for k, v in d.settings.items() if k != TRIALS_FIELD}).label
                          for d in designs]
     table = _summarise(per_run, columns)
-    notes += failed_run_notes(per_run, columns)
+    notes += failed_run_notes(per_run, columns) + missing_interval_notes(per_run, columns)
     runs = columns.merge(per_run, on="design")
     needed = _needed(table, target_half_width, designs) if target_half_width is not None else pd.DataFrame()
     return PlanResult(columns, table, runs, target_half_width, needed, protocol.title, notes)
@@ -400,6 +417,8 @@ def _summarise(per_run: pd.DataFrame, columns: pd.DataFrame) -> pd.DataFrame:
         "runs": g.size(),
     }).reset_index()
     table["coverage_se"] = [coverage_se(c, n) for c, n in zip(table["coverage"], table["runs_with_interval"])]
+    table["coverage_low"], table["coverage_high"] = zip(*[coverage_limits(c, n) for c, n in
+                                                          zip(table["coverage"], table["runs_with_interval"])])
     table = columns.merge(table, on="design")
     table["_q"] = pd.Categorical(table["quantity"], QUANTITIES, ordered=True)
     table["_f"] = pd.Categorical(table["family"], list(dict.fromkeys(columns["family"])), ordered=True)
@@ -414,17 +433,39 @@ def _trials_per_track_for(protocol: Protocol, per_track: float) -> int:
     return step * max(1, math.ceil(per_track / step - 1e-9))
 
 
+#: ``basis`` of a recommendation: between two simulated designs, beyond the largest, or the smallest with intervals.
+INTERPOLATED, EXTRAPOLATED, SMALLEST = "interpolated", "extrapolated", "smallest design with intervals"
+
+
 def _needed(table: pd.DataFrame, target: float, designs: list[Design]) -> pd.DataFrame:
-    """Trials per condition for the target median amplitude half-width, per design family and lag."""
+    """Trials per condition for the target median amplitude half-width, per design family and lag.
+
+    Only designs where at least half the sessions gave an interval count
+    (the median of the others is the median of a lucky few), and the
+    recommendation is never fewer trials than the smallest of them: a
+    smaller design may give no interval at all (a 12-trial design once gave
+    none in 30 sessions while the 1/√N law from 24 trials recommended 1
+    trial).  A recommendation beyond the largest design is
+    ``extrapolated``, and ``beyond_largest`` says by what factor.
+    """
     out = []
     amp = table[table["quantity"] == "amplitude"]
     for (family, lag), part in amp.groupby(["family", "lag"], sort=False):
         protocol = designs[int(part["design"].iloc[0])].protocol
+        part = part[2 * part["runs_with_interval"] >= part["runs"]]
         n = trials_needed(part["trials_per_condition"], part["median_half_width"], target)
+        measured = part.loc[np.isfinite(part["median_half_width"]) & (part["median_half_width"] > 0),
+                            "trials_per_condition"]
+        basis, beyond = "", float("nan")
+        if math.isfinite(n):
+            smallest, largest = float(measured.min()), float(measured.max())
+            basis = SMALLEST if n <= smallest else EXTRAPOLATED if n > largest else INTERPOLATED
+            n, beyond = max(n, smallest), n / largest
         per_track = (_trials_per_track_for(protocol, n / protocol.design.tracks_per_condition)
                      if math.isfinite(n) else float("nan"))
         out.append({"family": family, "lag": int(lag), "target_half_width_deg": target,
-                    "trials_per_condition": n, "trials_per_track": per_track,
+                    "trials_per_condition": n, "trials_per_track": per_track, "basis": basis,
+                    "beyond_largest": beyond,
                     "loglog_slope": loglog_slope(part["trials_per_condition"], part["median_half_width"])})
     return pd.DataFrame(out)
 

@@ -30,11 +30,12 @@ from fitting.figures import save
 from fitting.tables import write_csv
 from runner.observers import ObserverModel
 from runner.protocol import Protocol
-from runner.study import (QUANTITIES, UNITS, StudySettings, check_designs, console_table, coverage_se,
-                          design_columns, expand_designs, failed_run_notes, run_study, study_command)
+from runner.study import (QUANTITIES, UNITS, StudySettings, check_designs, console_table, coverage_limits,
+                          coverage_se, design_columns, expand_designs, failed_run_notes, missing_interval_notes,
+                          run_study, study_command)
 
-STATISTICS = ["truth", "mean_estimate", "bias", "rmse", "median_ci_width", "coverage", "coverage_se",
-              "runs_with_estimate", "runs_with_interval", "runs_without_trials", "runs"]
+STATISTICS = ["truth", "mean_estimate", "bias", "rmse", "median_ci_width", "coverage", "coverage_se", "coverage_low",
+              "coverage_high", "runs_with_estimate", "runs_with_interval", "runs_without_trials", "runs"]
 #: Designs drawn in the figure (one row of panels each).
 FIGURE_DESIGNS = 6
 
@@ -178,7 +179,7 @@ def recover(protocol: Protocol, model: ObserverModel, settings: StudySettings, o
     per_run = run_study(designs, settings, out_dir, "recovery")
     notes += per_run.attrs["notes"]
     columns = design_columns(designs)
-    notes += failed_run_notes(per_run, columns)
+    notes += failed_run_notes(per_run, columns) + missing_interval_notes(per_run, columns)
     return RecoveryResult(columns, summarise(per_run, columns), columns.merge(per_run, on="design"),
                           protocol.title, notes)
 
@@ -198,6 +199,7 @@ def summarise(per_run: pd.DataFrame, columns: pd.DataFrame) -> pd.DataFrame:
                      "rmse": float(np.sqrt((err**2).mean())) if len(est) else float("nan"),
                      "median_ci_width": float((2 * part["half_width"]).median()),
                      "coverage": coverage, "coverage_se": coverage_se(coverage, len(covered)),
+                     **dict(zip(("coverage_low", "coverage_high"), coverage_limits(coverage, len(covered)))),
                      "runs_with_estimate": len(est), "runs_with_interval": len(covered),
                      "runs_without_trials": int((part["usable_trials"] == 0).sum()), "runs": len(part)})
     table = columns.merge(pd.DataFrame(rows), on="design")

@@ -16,14 +16,83 @@ import json
 from pathlib import Path
 
 from fitting.errors import InputError
+from fitting.provenance import check_sidecar_owner, log_cells
 from fitting.tables import read_log_table
 from runner.protocol import parse_protocol
+from runner.schedule import design_conditions
 from runner.shared_evidence import SharedEvidence
 from runner.tracks import as_started, new_track, new_track_copies
 
 
 def _sidecar(log: Path) -> Path:
     return log.with_name(log.name[: -len(".trials.csv")] + ".session.json")
+
+
+def _read_session(side: Path):
+    """A sidecar's content and the protocol its session ran (as started)."""
+    meta = json.loads(side.read_text(encoding="utf-8"))
+    return meta, as_started(parse_protocol(meta["protocol"]["text"], str(side)), meta, str(side))
+
+
+def check_sidecar_matches(log: Path, side: Path, meta: dict, protocol) -> None:
+    """Refuse a sidecar that belongs to another session than the log beside it.
+
+    Its observer and session must be those the log's rows name
+    (:func:`fitting.provenance.check_sidecar_owner`), and for adapt-test
+    logs every condition and procedure of the rows must be its protocol's.
+
+    Raises
+    ------
+    InputError
+        Naming the sidecar and the field that disagrees.
+    """
+    cells = log_cells(log)
+    check_sidecar_owner(log, side, meta, cells)
+    if cells is None or protocol.stream is not None:
+        return
+    known = {c.name for c in design_conditions(protocol)}
+    for field, found, allowed in (("condition", cells["condition"], known),
+                                  ("procedure", cells["procedure"] - {"practice"}, {protocol.procedure.method})):
+        stray = sorted(found - allowed)
+        if stray:
+            raise InputError(str(side), "protocol", f"its protocol ({meta['protocol'].get('path')}) has no {field} "
+                             f"{' or '.join(map(repr, stray[:3]))}, which rows of its log {log.name} hold: the sidecar is "
+                             "another session's (put this session's own beside the log, or move it away), or the "
+                             "log was edited")
+
+
+def check_sidecars(logs) -> None:
+    """:func:`check_sidecar_matches` for every log whose sidecar can be read; before a fit begins.
+
+    Two simulated sessions of one observer with the same seed, protocol and
+    observer model are refused too: their trials are one session twice,
+    not new data (``simulate --session s2`` with the seed of s1 wrote such
+    a copy before the label was mixed into the seed).  Sidecars that are
+    missing or cannot be read are left to the fit, which notes them.
+
+    Raises
+    ------
+    InputError
+        A sidecar that belongs to another session than its log, or a
+        simulated session that repeats another.
+    """
+    simulated: dict = {}
+    for log in map(Path, logs):
+        side = _sidecar(log)
+        try:
+            meta, protocol = _read_session(side)
+        except (OSError, ValueError, KeyError, TypeError, InputError):
+            continue
+        check_sidecar_matches(log, side, meta, protocol)
+        if meta.get("kind") != "simulation":
+            continue        # a person answers afresh whatever the seed
+        key = json.dumps([meta.get("observer"), meta["protocol"].get("sha256"), meta.get("session_seed"),
+                          meta.get("observer_model")], sort_keys=True, default=str)
+        first = simulated.setdefault(key, side)
+        if first != side:
+            raise InputError(str(side), "session_seed", f"is that of {first} (the same simulated observer, "
+                             "protocol and seed): its log repeats that session's trials, it adds no new data; fit "
+                             "one of the two")
 
 
 def track_factories(logs, strict: bool = True, notes: list | None = None) -> dict:
@@ -50,7 +119,8 @@ def track_factories(logs, strict: bool = True, notes: list | None = None) -> dic
     ------
     InputError
         A sidecar that is not readable JSON, or one observer's logs written
-        with different procedures.
+        with different procedures (with ``strict``); a sidecar that belongs
+        to another session than its log (always: :func:`check_sidecar_matches`).
     """
     notes = [] if notes is None else notes
     protocols: dict = {}
@@ -63,9 +133,8 @@ def track_factories(logs, strict: bool = True, notes: list | None = None) -> dic
             bare.append(log)
             continue
         try:
-            meta = json.loads(side.read_text(encoding="utf-8"))
-            observer, text = str(meta["observer"]), meta["protocol"]["text"]
-            protocol = as_started(parse_protocol(text, str(side)), meta, str(side))
+            meta, protocol = _read_session(side)
+            observer = str(meta["observer"])
         except (OSError, ValueError, KeyError, TypeError, InputError) as exc:
             if strict:
                 if isinstance(exc, InputError):
@@ -78,6 +147,7 @@ def track_factories(logs, strict: bool = True, notes: list | None = None) -> dic
             else:
                 unread.setdefault(observer, why)
             continue
+        check_sidecar_matches(log, side, meta, protocol)
         previous = protocols.setdefault(observer, protocol)
         if previous.procedure != protocol.procedure or previous.design.trials_per_track != protocol.design.trials_per_track:
             if strict:

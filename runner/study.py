@@ -33,12 +33,14 @@ import itertools
 import json
 import math
 import sys
+from collections import Counter
 from collections.abc import Callable
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
+from scipy.stats import norm
 
 from fitting.errors import InputError
 from fitting.outputs import output_set
@@ -67,7 +69,9 @@ MAX_TASKS = 10**6
 #: so the limit is generous: a number past it in a task file is damage, and the task is redone.
 MAX_RESULT = 1e6
 #: Bumped when a task's result would change for the same inputs (old results are then not reused).
-TASK_VERSION = 2
+TASK_VERSION = 3
+#: At most this many of a fit's notes, each at most :data:`MAX_NOTE` characters, are kept with a task's result.
+MAX_NOTES, MAX_NOTE = 40, 1000
 
 
 # ---------------------------------------------------------------- designs
@@ -252,7 +256,8 @@ def run_session_task(task: dict) -> dict:
         bad-timing and missed trials are excluded; ``rows``: JSON-ready rows
         ``quantity, lag, estimate, ci_low, ci_high`` (None where the fit gave
         no value, and everywhere in a session without usable trials, which
-        is not fitted: a failed replicate of its design).
+        is not fitted: a failed replicate of its design); ``notes``: what the
+        fit said about the session (why a value or interval is missing).
     """
     # the task holds the grey levels its design's light profile gave (see make_task): no profile to read again
     protocol = protocol_from_dict(task["protocol"], "study task", resolve_light=False)
@@ -260,12 +265,13 @@ def run_session_task(task: dict) -> dict:
     lags = studied_lags(protocol)
     usable = sum(1 for r in rows if not r["practice"] and r["timing_ok"] and r["response_cw"] is not None)
     nothing = (np.nan,) * 3
+    notes: list[str] = []
     if not usable:
         tuning, decay, baseline = pd.DataFrame({"lag": []}), pd.DataFrame(), nothing
     elif protocol.stream is not None:
         tuning, decay, baseline = _fit_stream(rows, task)
     else:
-        tuning, decay, baseline = _fit_block(rows, task, protocol)
+        tuning, decay, baseline, notes = _fit_block(rows, task, protocol)
     out = []
     tuning = tuning.set_index("lag")
     for lag in lags:
@@ -280,7 +286,7 @@ def run_session_task(task: dict) -> dict:
             else nothing
         out.append({"quantity": "decay", "lag": None, **_triple(values)})
     out.append({"quantity": "baseline_pse", "lag": None, **_triple(baseline)})
-    return {"usable_trials": usable, "rows": out}
+    return {"usable_trials": usable, "rows": out, "notes": [str(n)[:MAX_NOTE] for n in notes[:MAX_NOTES]]}
 
 
 def studied_lags(protocol: Protocol) -> list[int]:
@@ -304,9 +310,12 @@ def valid_result(result, layout: list[tuple[str, int | None]]) -> bool:
     protocol), every number be None or finite and within :data:`MAX_RESULT`,
     each interval ordered, and a session without usable trials hold no numbers.
     """
-    if not isinstance(result, dict) or set(result) != {"usable_trials", "rows"}:
+    if not isinstance(result, dict) or set(result) != {"usable_trials", "rows", "notes"}:
         return False
-    usable, rows = result["usable_trials"], result["rows"]
+    usable, rows, notes = result["usable_trials"], result["rows"], result["notes"]
+    if not (isinstance(notes, list) and len(notes) <= MAX_NOTES
+            and all(isinstance(n, str) and len(n) <= MAX_NOTE for n in notes)):
+        return False
     if isinstance(usable, bool) or not isinstance(usable, int) or usable < 0:
         return False
     if not isinstance(rows, list) or len(rows) != len(layout):
@@ -329,7 +338,7 @@ def valid_result(result, layout: list[tuple[str, int | None]]) -> bool:
 
 
 def _fit_block(rows: list[dict], task: dict, protocol: Protocol):
-    """``tuning``, ``decay`` and the baseline PSE (estimate, low, high) of an adapt-test session."""
+    """``tuning``, ``decay``, the baseline PSE (estimate, low, high) and the fit's notes of an adapt-test session."""
     frame = pd.DataFrame(rows)
     # track numbers as a log holds them ("1", not the "1.0" of a column that practice rows' None made float)
     frame["track"] = pd.Series([r["track"] for r in rows], index=frame.index, dtype=object)
@@ -341,7 +350,8 @@ def _fit_block(rows: list[dict], task: dict, protocol: Protocol):
     base = report.pse[report.pse["condition"] == "baseline"]
     baseline = (base["pse_deg"].iloc[0], base["pse_ci_low"].iloc[0], base["pse_ci_high"].iloc[0]) if len(base) \
         else (np.nan,) * 3
-    return report.tuning, report.decay, baseline
+    notes = [n for obs in trials["observer"].unique() for n in report.notes.get(obs, [])]
+    return report.tuning, report.decay, baseline, notes
 
 
 def _fit_stream(rows: list[dict], task: dict):
@@ -447,7 +457,9 @@ def run_study(designs: list[Design], settings: StudySettings, folder: str | Path
         into ``designs``), ``replicate``, ``quantity``, ``lag``, ``estimate``,
         ``ci_low``, ``ci_high``, ``usable_trials``, ``truth``, ``half_width``,
         ``covered``. ``attrs["notes"]`` says how many task files were redone
-        because they could not be used (:func:`valid_result`).
+        because they could not be used (:func:`valid_result`);
+        ``attrs["session_notes"]`` maps ``(design, replicate)`` to what the
+        fit of that session said.
 
     Raises
     ------
@@ -493,9 +505,10 @@ def run_study(designs: list[Design], settings: StudySettings, folder: str | Path
             pool.close()
         store.close()
     redone = len(store.rejected)
-    rows = []
+    rows, said = [], {}
     for key, where in index.items():
         for d, r in where:
+            said[d, r] = results[key]["notes"]
             usable = results[key]["usable_trials"]
             for row in results[key]["rows"]:  # fixed column order, whether fresh or read back from disk
                 rows.append({"design": d, "replicate": r, **{c: row[c] for c in RESULT_COLUMNS},
@@ -504,6 +517,7 @@ def run_study(designs: list[Design], settings: StudySettings, folder: str | Path
     per_run.attrs["notes"] = [f"{redone} task file{'s' if redone > 1 else ''} in {store.folder} could not be used "
                               "(unreadable, damaged, or not the task named) and "
                               f"{'were' if redone > 1 else 'was'} redone"] if redone else []
+    per_run.attrs["session_notes"] = said
     return per_run
 
 
@@ -549,24 +563,76 @@ def failed_run_notes(per_run: pd.DataFrame, designs: pd.DataFrame) -> list[str]:
     return notes
 
 
+def missing_interval_notes(per_run: pd.DataFrame, designs: pd.DataFrame) -> list[str]:
+    """One note per design whose fitted sessions gave some quantity no interval at all, with what the fits said.
+
+    ``designs`` is :func:`design_columns`; the fits' notes are
+    ``per_run.attrs["session_notes"]`` (:func:`run_study`), and the two
+    said of most of those sessions are quoted.
+    """
+    notes = []
+    said = per_run.attrs.get("session_notes", {})
+    fitted = per_run[per_run["usable_trials"] > 0]
+    for d, part in fitted.groupby("design", sort=True):
+        empty = [(q, lag) for (q, lag), rows in part.groupby(["quantity", "lag"], dropna=False, sort=False)
+                 if rows["half_width"].isna().all()]
+        if not empty:
+            continue
+        sessions = part["replicate"].unique()
+        counts = Counter(n for r in sessions for n in dict.fromkeys(said.get((d, r), [])))
+        what = ", ".join(q.replace("_", " ") + ("" if pd.isna(lag) else f" (lag {int(lag)})") for q, lag in empty)
+        label = designs.loc[designs["design"] == d, "label"].iloc[0]
+        line = f"design {label}: no interval for {what} in any of its {len(sessions)} fitted sessions"
+        if counts:
+            line += "; the fits said: " + "; ".join(f'"{text}" ({k} of {len(sessions)})'
+                                                    for text, k in counts.most_common(2))
+        notes.append(line)
+    return notes
+
+
 def console_table(table: pd.DataFrame, numbers: tuple[str, ...], coverage_digits: int) -> pd.DataFrame:
     """A summary table as text for the console: lag ('' for none), unit, ``numbers`` to 3 digits,
-    coverage as "p ± se %", and ``intervals`` = runs with an interval / runs."""
+    coverage as "p % [low, high]" (its 95 % Wilson interval, :func:`coverage_limits`), and
+    ``intervals`` = runs with an interval / runs."""
     shown = table.copy()
     shown["lag"] = shown["lag"].map(lambda v: "" if pd.isna(v) else str(int(v)))
     shown["unit"] = shown["quantity"].map(UNITS)
     for c in numbers:
         shown[c] = shown[c].map(lambda v: f"{v:.3g}")
     d = coverage_digits
-    shown["coverage"] = [f"{100 * c:.{d}f} ± {100 * se:.{d}f} %" if math.isfinite(c) else "–"
-                         for c, se in zip(shown["coverage"], shown["coverage_se"])]
+    shown["coverage"] = [f"{100 * c:.{d}f} % [{100 * lo:.{d}f}, {100 * hi:.{d}f}]" if math.isfinite(c) else "–"
+                         for c, lo, hi in zip(shown["coverage"], shown["coverage_low"], shown["coverage_high"])]
     shown["intervals"] = shown["runs_with_interval"].astype(str) + "/" + shown["runs"].astype(str)
     return shown
 
 
 def coverage_se(coverage: float, n: int) -> float:
-    """Monte Carlo standard error of a coverage share, √(p(1 − p)/n) (binomial; common practice, no source)."""
+    """Monte Carlo standard error of a coverage share, √(p(1 − p)/n) (binomial; common practice, no source).
+
+    It is 0 at a share of 0 or 1, whatever the number of runs: use
+    :func:`coverage_limits` to say how sure a share is.
+    """
     return math.sqrt(coverage * (1 - coverage) / n) if n > 0 and math.isfinite(coverage) else float("nan")
+
+
+def coverage_limits(coverage: float, n: int, level: float = 0.95) -> tuple[float, float]:
+    """Wilson score interval of a coverage share over ``n`` runs (Wilson 1927, JASA 22, 209–212).
+
+    Unlike ± its standard error it is not of zero width at a share of 0 or
+    1: 8 intervals out of 8 holding the truth give 68–100 %, not 100 ± 0 %.
+
+    Returns
+    -------
+    (float, float)
+        The limits; nan without runs.
+    """
+    if not (n > 0 and math.isfinite(coverage)):
+        return float("nan"), float("nan")
+    z = float(norm.ppf(0.5 + level / 2))
+    scale = 1 + z * z / n
+    centre = (coverage + z * z / (2 * n)) / scale
+    half = z / scale * math.sqrt(coverage * (1 - coverage) / n + z * z / (4 * n * n))
+    return max(0.0, centre - half), min(1.0, centre + half)
 
 
 def study_command(protocol_path: str, model_path: str | None, out_dir: str,

@@ -30,12 +30,11 @@ import errno
 import io
 import json
 import os
-import re
 import sys
 from pathlib import Path
 
 from fitting.errors import InputError
-from fitting.logfile import check_rows, decode_log, examine_tail
+from fitting.logfile import check_rows, decode_log, examine_tail, identifier_problem
 from runner.session_lock import SessionLock
 
 #: Columns of the trial log, in order.  The first twelve are required of every log (README, Output files).
@@ -65,19 +64,22 @@ COLUMNS = (
     "preceding_offsets_deg",
 )
 
-_ID = re.compile(r"^[A-Za-z0-9_-]{1,64}$")
-
 
 def check_identifier(value: str, field: str) -> str:
     """Accept an observer or session ID usable as part of a file name.
 
+    The rule of :func:`fitting.logfile.identifier_problem`, which ``fit``
+    applies to the logs too; ``--observer`` may not be ``group``.
+
     Raises
     ------
     InputError
-        Unless ``value`` is 1–64 letters, digits, ``-`` or ``_``.
+        Unless ``value`` is 1–64 letters, digits, ``-`` or ``_`` (and, for
+        ``--observer``, not ``group`` in any case).
     """
-    if not _ID.match(value or ""):
-        raise InputError("argument", field, f"{value!r}: use 1-64 letters, digits, '-' or '_' only")
+    problem = identifier_problem(value, observer=field == "--observer")
+    if problem:
+        raise InputError("argument", field, f"{value!r}: {problem}")
     return value
 
 

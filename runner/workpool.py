@@ -24,7 +24,6 @@ where it stopped; a lock file keeps a second process out of the same folder.
 
 from __future__ import annotations
 
-import fcntl
 import importlib.metadata
 import json
 import logging
@@ -46,6 +45,7 @@ from fitting.children import children_shielded, follow_parent
 from fitting.errors import InputError
 from fitting.heap import arrays_on_the_heap
 from fitting.outputs import file_mode
+from runner.folder_claim import FolderClaim
 
 #: How to install the optional Dask part.
 CLUSTER_EXTRA = "pip install 'aftershift[cluster]' (or pip install -e '.[cluster]' in a checkout)"
@@ -363,7 +363,7 @@ class TaskStore:
 
     Each file is written to a temporary name, flushed to disk and renamed, so
     a kill at any instant leaves either the whole result or none.  While the
-    store is open it holds an exclusive lock on ``.lock`` in the folder; a
+    store is open it holds the folder's claim (:class:`runner.folder_claim.FolderClaim`); a
     second process that opens the same folder gets an :class:`InputError`.
     The lock is the kernel's (``flock``), so it goes away with a killed process.
 
@@ -391,23 +391,7 @@ class TaskStore:
         self.accept = accept
         self.rejected: set[str] = set()
         self._mode = file_mode()  # task files follow the umask, as every output does
-        try:
-            self.folder.mkdir(parents=True, exist_ok=True)
-            self._lock = open(self.folder / ".lock", "a+", encoding="utf-8")
-        except OSError as exc:
-            raise InputError(str(self.folder), option, f"cannot be used for results ({exc.strerror})") from None
-        try:
-            fcntl.flock(self._lock, fcntl.LOCK_EX | fcntl.LOCK_NB)
-        except OSError:
-            self._lock.seek(0)
-            holder = self._lock.read().strip() or "another process"
-            self._lock.close()
-            raise InputError(str(self.folder), option, f"is in use by {holder}; wait for it to finish or "
-                             "choose another folder") from None
-        self._lock.seek(0)
-        self._lock.truncate()
-        self._lock.write(f"process {os.getpid()}\n")
-        self._lock.flush()
+        self._claim = FolderClaim(self.folder, option)
         for stale in self.folder.glob(".part-*"):  # left by a process killed mid-write; we hold the lock
             stale.unlink(missing_ok=True)
 
@@ -467,9 +451,7 @@ class TaskStore:
 
     def close(self) -> None:
         """Release the lock."""
-        if not self._lock.closed:
-            fcntl.flock(self._lock, fcntl.LOCK_UN)
-            self._lock.close()
+        self._claim.release()
 
     def __enter__(self) -> "TaskStore":
         return self

@@ -204,3 +204,210 @@ def test_group_gain_is_the_random_effects_combination_of_the_observers_gains(tmp
     assert row["gain"] == pytest.approx(frame.loc["random effect wls", "eff"], rel=1e-9)
     assert row["gain_ci_low"] == pytest.approx(frame.loc["random effect wls", "ci_low"], rel=1e-9)
     assert row["gain_ci_high"] == pytest.approx(frame.loc["random effect wls", "ci_upp"], rel=1e-9)
+
+
+# --- hostile inputs: damaged tables, unestimable shifts, null predictions ------------------------------------------
+
+
+def _fit_folder(tmp_path, observers=("S1", "S2", "S3"), flags=None, half=1.0):
+    """A fit-like folder: aftereffect.csv (8 shifts per observer) and its covariance (diagonal, as fit's long form)."""
+    from fitting.covariance import long_table
+
+    offsets = [-60.0, -30.0, 30.0, 60.0]
+    rows, covs = [], []
+    for i, observer in enumerate(observers):
+        for lag in (0, 2):
+            for o in offsets:
+                m = 0.05 * o * (1 + 0.1 * i) - 0.02 * lag * np.sign(o)
+                rows.append((observer, lag, o, m, m - half, m + half, 24,
+                             (flags or {}).get((observer, lag, o), "")))
+        cells = [(lag, o) for lag in (0, 2) for o in offsets]
+        covs.append(long_table(observer, [c[0] for c in cells], [c[1] for c in cells],
+                               np.eye(len(cells)) * (half / Z) ** 2, 1000, np.nan, 30.0))
+    d = tmp_path / "fit"
+    d.mkdir(exist_ok=True)
+    pd.DataFrame(rows, columns=["observer", "lag", "adapter_offset_deg", "pse_shift_deg", "ci_low", "ci_high",
+                                "n_trials", "flags"]).to_csv(d / "aftereffect.csv", index=False)
+    pd.concat(covs).to_csv(d / "aftereffect_covariance.csv", index=False)
+    pd.DataFrame({"lag": np.repeat([0, 2], 4), "adapter_offset_deg": offsets * 2,
+                  "pse_shift_deg": [0.05 * o for o in offsets] * 2}).to_csv(tmp_path / "pred.csv", index=False)
+    return d
+
+
+def _cell(line: int, column: str, value: str):
+    """An edit of a CSV text: the cell of ``column`` on file line ``line`` set to ``value``."""
+    def edit(text: str) -> str:
+        lines = text.split("\n")
+        header, cells = lines[0].split(","), lines[line - 1].split(",")
+        cells[header.index(column)] = value
+        lines[line - 1] = ",".join(cells)
+        return "\n".join(lines)
+    return edit
+
+
+def _short_row(text: str) -> str:
+    lines = text.split("\n")
+    lines[4] = ",".join(lines[4].split(",")[:6])
+    return "\n".join(lines)
+
+
+@pytest.mark.parametrize("edit, says", [
+    # before: exit 0, the observers after the cut left out silently and the cut row read with a cut number
+    (lambda t: t[:-8], "line 25: the file ends inside this row"),
+    (lambda t: t.rstrip("\n"), "line 25: the file ends inside this row"),        # cut inside the last number only
+    # before: accepted; 1e300 leaked overflow warnings and printed RMSE inf, a repeated row counted twice
+    (_cell(11, "pse_shift_deg", "1e300"), "line 11: pse_shift_deg: expected a value in [-1080, 1080] deg"),
+    (_cell(3, "adapter_offset_deg", "-60"), "line 3: a second row for the same observer, lag and adapter offset"),
+    (_short_row, "line 5: 6 cells where the header has 8"),
+    (_cell(21, "ci_low", "100"), "line 21: ci_low: above ci_high"),
+    (_cell(5, "lag", "0.5"), "line 5: lag: expected a whole number"),
+])
+def test_a_cut_absurd_or_repeated_measured_table_is_one_line_and_loses_nothing(tmp_path, capsys, edit, says):
+    fit = _fit_folder(tmp_path)
+    out = tmp_path / "cmp"
+    compare_results(fit, tmp_path / "pred.csv", out, figures=False)
+    before = {p.name: p.read_bytes() for p in out.iterdir() if p.is_file()}
+    table = fit / "aftereffect.csv"
+    text = table.read_text()
+    assert edit(text) != text
+    table.write_text(edit(text))
+    assert main(["compare", str(fit), str(tmp_path / "pred.csv"), "--out", str(out)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "aftereffect.csv" in err and says in err, err
+    assert before == {p.name: p.read_bytes() for p in out.iterdir() if p.is_file()}      # the earlier comparison kept
+
+
+@pytest.mark.parametrize("edit, says", [
+    (lambda t: t[:-5], "line 193: the file ends inside this row"),
+    (lambda t: t + t.splitlines()[5] + "\n", "line 194: a second row for the same observer and pair of cells"),
+    # a copy cut at a line end: S3's rows stop short, or S3 is in the covariance but gone from aftereffect.csv
+    (lambda t: "\n".join(t.splitlines()[:-3]) + "\n", "S3: 61 rows, not one per pair of its 8 cells"),
+    (lambda t: t.replace("\nS3,", "\nS4,"), "S4: in aftereffect_covariance.csv but not here"),
+    (lambda t: t.replace(",1000,", ",999.5,", 1), "line 2: replicates: expected a whole number"),
+])
+def test_a_cut_or_repeated_covariance_table_is_one_line(tmp_path, capsys, edit, says):
+    fit = _fit_folder(tmp_path)
+    table = fit / "aftereffect_covariance.csv"
+    text = table.read_text()
+    table.write_text(edit(text))
+    assert main(["compare", str(fit), str(tmp_path / "pred.csv"), "--out", str(tmp_path / "cmp")]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and says in err, err
+    assert not (tmp_path / "cmp").exists()
+
+
+@pytest.mark.filterwarnings("error")      # before: a RuntimeWarning (sqrt of a negative) reached the console
+def test_shifts_flagged_not_estimable_are_left_out_with_a_note(tmp_path, capsys):
+    # S2 answered clockwise on every trial: every shift one-sided, with a near-zero interval (before: chi2 1.6e15 and
+    # a gain of [nan, nan] went into the table); one of S3's conditions had too few trials for an interval (before:
+    # all of S3's interval statistics were left out, "a fit without --bootstrap?")
+    flags = {("S2", lag, o): "one-sided outside-tested" for lag in (0, 2) for o in (-60.0, -30.0, 30.0, 60.0)}
+    flags[("S3", 2, 30.0)] = "few-trials"
+    fit = _fit_folder(tmp_path, flags=flags)
+    shifts = pd.read_csv(fit / "aftereffect.csv")
+    shifts.loc[shifts["observer"] == "S2", ["pse_shift_deg", "ci_low", "ci_high"]] = [0.004, 0.0041, 0.0042]
+    shifts.loc[shifts["flags"].fillna("").str.contains("few-trials"), ["ci_low", "ci_high"]] = np.nan
+    shifts.to_csv(fit / "aftereffect.csv", index=False)
+    assert main(["compare", str(fit), str(tmp_path / "pred.csv"), "--out", str(tmp_path / "cmp")]) == 0
+    out, err = capsys.readouterr()
+    assert err == ""
+    table = pd.read_csv(tmp_path / "cmp" / "agreement.csv")
+    assert "S2" not in set(table["observer"])
+    assert ("note: S2: every measured point is flagged one-sided (every answer on one side, so the PSE is not "
+            "estimable); the observer is left out") in out
+    assert "note: S3: 1 of 8 measured points are flagged few-trials (fewer than 10 trials, so no interval) and " \
+           "left out of chi2, gain and the other agreement statistics: lag 2 offset +30" in out
+    s3 = table[(table["observer"] == "S3") & (table["lag"] == "all")].iloc[0]
+    kept = shifts[(shifts["observer"] == "S3") & shifts["ci_low"].notna()]
+    pred = 0.05 * kept["adapter_offset_deg"]
+    se = (kept["ci_high"] - kept["ci_low"]) / (2 * Z)
+    # the diagonal covariance with spread_dof 30: chi2 / n read against F(n, 30) (scipy.stats.f) on the 7 kept points
+    chi2 = float(np.sum(((kept["pse_shift_deg"] - pred) / se) ** 2)) * (1000 - 7 - 2) / (1000 - 1)  # Hartlap factor
+    assert s3["n_points"] == 7 and s3["chi2"] == pytest.approx(chi2, rel=1e-5)
+    assert s3["chi2_p"] == pytest.approx(stats.f.sf(chi2 / 7, 7, 30.0), rel=1e-4)
+
+
+@pytest.mark.parametrize("edit, field", [
+    # before: KeyError: 'log', AttributeError, AttributeError, TypeError, each a traceback with exit 1
+    (lambda d: d.update(sessions=[{"observer": "S1"}]), "sessions[0].log: expected a text, found nothing"),
+    (lambda d: d.update(sessions="x"), "sessions: expected a list, found a text"),
+    (lambda d: d.update(protocols=[{"path": "p.toml"}]), "protocols: expected an object, found a list"),
+    (lambda d: d.update(notes=5), "notes: expected an object, found a number"),
+    (lambda d: d.update(notes={"S1": "one note"}), "notes.S1: expected a list, found a text"),
+    (lambda d: d["protocols"]["ab12"].update(plan=[3]), "protocols.ab12.plan[0]: expected a text, found a number"),
+])
+def test_report_data_of_the_wrong_shape_is_one_line(tmp_path, capsys, edit, field):
+    import json
+
+    fit = _fit_folder(tmp_path)
+    data = {"kind": "adapt-test", "options": "", "notes": {"S1": []}, "software": {"python": "3"},
+            "protocols": {"ab12": {"path": "p.toml", "text": "", "plan": []}},
+            "sessions": [{"log": "S1-1.trials.csv", "observer": "S1", "protocol_sha256": "ab12", "packages": {}}]}
+    (fit / "report_data.json").write_text(json.dumps(data))
+    compare_results(fit, tmp_path / "pred.csv", tmp_path / "ok", figures=False)        # the shape fit writes
+    edit(data)
+    (fit / "report_data.json").write_text(json.dumps(data))
+    assert main(["compare", str(fit), str(tmp_path / "pred.csv"), "--out", str(tmp_path / "cmp")]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and err.endswith("run fit again") and f"report_data.json: {field}" in err, err
+    assert not (tmp_path / "cmp").exists()
+
+
+def test_a_null_prediction_prints_its_chi2_and_the_promised_note(tmp_path, capsys):
+    # predicting no after-effect at all: the gain is undefined but chi2 is not (before: "no gain or chi2 ... see
+    # note", with no such note, while agreement.csv held chi2 and p)
+    fit = _fit_folder(tmp_path, observers=("S1",))
+    pd.DataFrame({"lag": np.repeat([0, 2], 4), "adapter_offset_deg": [-60, -30, 30, 60] * 2,
+                  "pse_shift_deg": 0.0}).to_csv(tmp_path / "zeros.csv", index=False)
+    assert main(["compare", str(fit), str(tmp_path / "zeros.csv"), "--out", str(tmp_path / "cmp")]) == 0
+    out = capsys.readouterr().out
+    row = pd.read_csv(tmp_path / "cmp" / "agreement.csv").set_index("lag").loc["all"]
+    shifts = pd.read_csv(fit / "aftereffect.csv")
+    # reference: sum of squared standardised shifts, Hartlap-scaled, read against F(8, 30) (scipy.stats.f)
+    chi2 = float(np.sum((shifts["pse_shift_deg"] / (1.0 / Z)) ** 2)) * (1000 - 8 - 2) / (1000 - 1)
+    assert row["chi2"] == pytest.approx(chi2, rel=1e-5) and np.isnan(row["gain"])
+    line = next(x for x in out.splitlines() if x.strip().startswith("S1:"))
+    assert "gain undefined (see note)" in line and f"chi2 {chi2:.1f}" in line
+    assert f"(p {stats.f.sf(chi2 / 8, 8, 30.0):.3g})" in line
+    assert "note: S1: every prediction over all lags is 0 (no after-effect), so the gain" in out
+
+
+def test_agreement_writes_true_and_false_as_fit_tables_do(tmp_path):
+    # fit's tables write booleans as true/false (fitting.tables.format_table); agreement.csv wrote False/True
+    fit = _fit_folder(tmp_path, observers=("S1", "S2", "group"))
+    compare_results(fit, tmp_path / "pred.csv", tmp_path / "cmp", figures=False)
+    table = pd.read_csv(tmp_path / "cmp" / "agreement.csv", dtype=str)
+    assert set(table["descriptive"]) == {"false"}
+
+
+def test_dense_prediction_tables_are_matched_as_the_scalar_rule_does_and_in_linear_time(tmp_path):
+    import time
+
+    from fitting.compare import match_predictions, read_predictions, unused_predictions
+
+    rng = np.random.default_rng(3)
+    measured = pd.DataFrame({"observer": "S1", "lag": np.repeat([0, 1, 3], 5),
+                             "adapter_offset_deg": np.tile([-45.0, -20.0, 0.0, 20.000001, 90.0], 3)})
+    grid = np.round(np.arange(-180, 180, 0.005), 4)
+    pred = pd.DataFrame({"lag": np.repeat([0, 1, 2], grid.size), "adapter_offset_deg": np.tile(grid, 3)})
+    pred["pse_shift_deg"] = rng.normal(0, 2, len(pred))
+    pred.to_csv(tmp_path / "dense.csv", index=False)
+    start = time.perf_counter()
+    pred = read_predictions(tmp_path / "dense.csv")
+    reading = time.perf_counter() - start
+    start = time.perf_counter()
+    with pytest.raises(Exception, match="no prediction for lag 3 offset -45"):
+        match_predictions(measured, pred, "dense.csv", interpolate=False)
+    points = match_predictions(measured[measured["lag"] < 3], pred, "dense.csv", interpolate=False)
+    note = unused_predictions(measured, pred, interpolate=False)
+    matching = time.perf_counter() - start
+    # the scalar rule it replaces (np.isclose of every prediction against the measured offsets of its lag)
+    for row in points.itertuples():
+        same = pred[(pred["lag"] == row.lag) & np.isclose(pred["adapter_offset_deg"], row.adapter_offset_deg)]
+        assert row.predicted_deg == same["pse_shift_deg"].iloc[0]
+    used = sum(np.isclose(pred.loc[pred["lag"] == lag, "adapter_offset_deg"].to_numpy()[:, None],
+                          measured.loc[measured["lag"] == lag, "adapter_offset_deg"].to_numpy()[None, :]).any(1).sum()
+               for lag in (0, 1))
+    assert note[0].startswith(f"{len(pred) - used} predicted points match no measured")
+    # before: 0.2 M predictions took about 10 s to match (scalar np.isclose per pair), far more than reading them
+    assert matching < 2 * reading, (matching, reading)

@@ -105,3 +105,90 @@ def test_demo_refuses_a_folder_that_is_not_its_own(tmp_path):
     done = run_cli("demo", "--out", tmp_path)
     assert done.returncode == 2 and "not empty" in done.stderr
     assert (tmp_path / "precious.csv").read_text() == "do not delete\n"
+
+
+# -- the output folder: one line and exit 2 for every refusal, nothing of an earlier demo lost ------------------
+
+
+def test_demo_refuses_an_out_that_is_a_file_in_one_line(capsys, tmp_path):
+    # before: a traceback (NotADirectoryError, exit 1) from the check for an earlier demo
+    from fault_helpers import cli, one_line
+
+    blocker = tmp_path / "afile"
+    blocker.write_text("x\n")
+    code, err = cli(capsys, "demo", "--out", blocker)
+    assert code == 2 and "--out" in one_line(err) and str(blocker) in err
+    assert blocker.read_text() == "x\n"
+
+
+def test_demo_refuses_a_read_only_out_in_one_line(capsys, tmp_path):
+    # before: a traceback (OSError, read-only file system, exit 1)
+    from fault_helpers import cli, one_line, tmpfs
+
+    with tmpfs(tmp_path / "ro", read_only=True) as ro:
+        code, err = cli(capsys, "demo", "--out", ro / "d")
+        assert code == 2 and "read-only" in one_line(err) and "--out" in err
+        assert not list(ro.iterdir())
+
+
+def test_a_full_disk_during_the_demo_does_not_advise_an_option_the_demo_lacks(capsys, tmp_path, monkeypatch):
+    # before: the simulation's line ended "free some space, then continue with --resume", and `demo` has no --resume
+    import errno
+
+    from fault_helpers import cli, one_line
+    from runner import trial_log
+
+    real_write, calls = os.write, {"n": 0}
+
+    def failing_write(fd, data):
+        if data[:5] == b"sim01":
+            calls["n"] += 1
+            if calls["n"] == 40:
+                raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+        return real_write(fd, data)
+
+    monkeypatch.setattr(trial_log.os, "write", failing_write)
+    out = tmp_path / "d"
+    code, err = cli(capsys, "demo", "--out", out)
+    line = one_line(err)
+    assert code == 2 and "disk is full" in line and "--resume" not in line and "run the demo again" in line
+    assert line.startswith(f"aftershift: {out}: --out:")
+
+
+def _earlier_demo(folder: Path) -> None:
+    """What an earlier demo leaves: the mark, its folders and files."""
+    from runner.demo import DEMO_MARK
+
+    (folder / "logs").mkdir(parents=True)
+    (folder / "logs" / "sim01-s1.trials.csv").write_text("old\n")
+    (folder / "predictions_population_model.csv").write_text("old\n")
+    (folder / DEMO_MARK).write_text("mark\n")
+
+
+def test_an_out_linked_to_an_earlier_demo_is_replaced_through_the_link(tmp_path):
+    # before: "OSError: Cannot call rmtree on a symbolic link" (exit 1); the linked folder is now the one replaced,
+    # as a real folder holding an earlier demo is
+    from runner.demo import DEMO_MARK, _claimed
+
+    target = tmp_path / "elsewhere" / "demo"
+    _earlier_demo(target)
+    link = tmp_path / "link"
+    link.symlink_to(target)
+    with _claimed(link):
+        assert sorted(p.name for p in target.iterdir()) == [".lock", DEMO_MARK]
+    assert link.is_symlink()
+
+
+def test_a_second_demo_into_a_folder_in_use_is_refused_naming_the_process(capsys, tmp_path):
+    # before: the second demo deleted the folder while the first was simulating into it; the first stopped with
+    # "sim02-s1.session.json: file: cannot be written (No such file or directory)"
+    from fault_helpers import cli, one_line
+    from runner.folder_claim import FolderClaim
+
+    out = tmp_path / "d"
+    _earlier_demo(out)
+    before = {p: p.read_bytes() for p in out.rglob("*") if p.is_file() and p.name != ".lock"}
+    with FolderClaim(out):                    # what a running demo holds
+        code, err = cli(capsys, "demo", "--out", out)
+    assert code == 2 and f"is in use by process {os.getpid()}" in one_line(err) and "--out" in err
+    assert {p: p.read_bytes() for p in out.rglob("*") if p.is_file() and p.name != ".lock"} == before

@@ -11,6 +11,7 @@ from __future__ import annotations
 import math
 import os
 import threading
+import time
 
 import numpy as np
 import pytest
@@ -249,6 +250,54 @@ def test_quit_and_pause_keys(screen, probe):
     answer = answers.answer(trial, playback, window_frames=240)
     timer.join()
     assert answer.quit and answer.response_cw is None
+
+
+def test_escape_during_practice_feedback_is_obeyed_at_once(screen):
+    # before, an Escape during the feedback was only noted for the loop's next request: the "practice is
+    # over" screen and then the whole first adaptation (20 s in a bundled protocol) came first
+    require_xdotool()
+    presenter, _ = screen
+    presenter.requests()
+    send_key(str(presenter.window.winHandle._window), "escape", dict(os.environ))
+    time.sleep(0.2)                 # delivered before the feedback's first flip reads the keys
+    presenter.feedback(True)
+    assert presenter.blank(1) is False
+    assert presenter.requests() == set(), "one Escape ends the session once"
+
+
+def test_the_windows_close_button_is_the_quit_key(screen):
+    # before, the close button of a --windowed session (the window manager's WM_DELETE_WINDOW) did nothing
+    presenter, _ = screen
+    presenter.requests()
+    done = threading.Event()
+    closer = threading.Thread(target=_close_until, args=(presenter.window.winHandle._window, done))
+    closer.start()       # again and again until obeyed: under load one message was seen to arrive too late
+    timer = _press_later(presenter, "space", 5.0)       # so that a close that is not obeyed cannot hang the test
+    try:
+        assert presenter.show_text("Press space to go on.") is False
+    finally:
+        done.set()
+        closer.join()
+        timer.join()
+        time.sleep(0.2)
+        presenter.requests()                            # what is left, not for the next test
+
+
+def _close_until(window_id: int, done: threading.Event) -> None:
+    """Send the window manager's close message to a window every 0.1 s until ``done``."""
+    from Xlib import X, display as xdisplay, protocol
+
+    conn = xdisplay.Display(os.environ["DISPLAY"])
+    try:
+        window = conn.create_resource_object("window", window_id)
+        message = protocol.event.ClientMessage(
+            window=window, client_type=conn.intern_atom("WM_PROTOCOLS"),
+            data=(32, [conn.intern_atom("WM_DELETE_WINDOW"), X.CurrentTime, 0, 0, 0]))
+        while not done.wait(0.1):
+            window.send_event(message, event_mask=0)
+            conn.flush()
+    finally:
+        conn.close()
 
 
 def test_text_waits_for_proceed(screen):

@@ -135,6 +135,7 @@ def test_run_without_override_is_refused_on_an_unsynced_display(own_x_server, tm
     assert process.returncode == 3, err
     assert safety.REFRESH_OVERRIDE_OPTION in err
     assert len(err.strip().splitlines()) == 1 and "Traceback" not in err
+    assert err.startswith(f"aftershift: {TINY}: display.refresh_hz: "), err   # before, without the file
     assert not (tmp_path / "kb02-s1.trials.csv").exists()
 
 
@@ -156,3 +157,21 @@ def test_display_test_reports_timing(own_x_server, tmp_path):  # noqa: F811
     assert report["flips_unsynced"] is (report["refresh_hz_measured"] > 1.5 * 60.0)
     assert not (report["flips_unsynced"] and report["refresh_within_tolerance"])
     assert report["verdict_ok"] is (not mismatch and report["dropped_frames"] == 0)
+
+
+def test_display_test_stopped_at_once_gives_no_verdict(own_x_server, tmp_path):  # noqa: F811
+    # before, Escape after a few frames of a 20 s test printed "verdict: ok" and exit 0, without a word of the stop
+    require_xdotool()
+    env = own_x_server.env()
+    report_path = tmp_path / "display.json"
+    process = start(["display-test", "--seconds", "20", "--windowed", "--report", report_path, TINY], env)
+    window = find_window("aftershift", env, process=process)
+    deadline = time.monotonic() + 30
+    while process.poll() is None and time.monotonic() < deadline:    # keys during the refresh measurement are
+        send_key(window, "escape", env)                               # dropped: press until it stops
+        time.sleep(0.1)
+    out, err = process.communicate(timeout=60)
+    report = json.loads(report_path.read_text(encoding="utf-8"))
+    assert report["stopped_early"] is True and report["seconds_measured"] < 1.0, report
+    assert report["verdict_ok"] is False and report["verdict"].startswith("no verdict: stopped by the quit key")
+    assert process.returncode == 3, err

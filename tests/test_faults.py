@@ -628,6 +628,8 @@ def test_fit_refuses_absurd_offsets(capsys, tmp_path, whole):
     (["fit", "WHOLE", "--out", "OUT", "--bootstrap", "1000000000"], "--bootstrap"),
     (["simulate", PILOT, "--out", "OUT", "--observers", "100000"], "--observers"),
     (["plan", PILOT, "--out", "OUT", "--seed", str(2**40)], "--seed"),
+    (["display-test", PILOT, "--seconds", "0.001"], "--seconds"),   # before, 1 frame got an "ok" verdict
+    (["display-test", PILOT, "--seconds", "nan"], "--seconds"),
 ])
 def test_absurd_numbers_on_the_command_line(capsys, tmp_path, whole, args, option):
     args = [tmp_path / "out" if a == "OUT" else whole if a == "WHOLE" else a for a in args]

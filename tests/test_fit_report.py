@@ -156,7 +156,7 @@ def test_quick_shifts_after_a_block():
     df.loc[3, "response_cw"] = pd.NA                     # a missed answer is left out
     out = quick_shifts(df, n_boot=40, seed=1)
     assert list(out.columns) == ["observer", "condition", "adapter_offset_deg", "lag", "pse_deg",
-                                 "pse_shift_deg", "ci_low", "ci_high", "n_trials", "flags"]
+                                 "pse_shift_deg", "ci_low", "ci_high", "n_trials", "flags", "shift_flags"]
     base = out[out["condition"] == "baseline"].iloc[0]
     assert base["pse_shift_deg"] == 0.0
     plus = out[out["adapter_offset_deg"] == 30].iloc[0]
@@ -184,6 +184,18 @@ def test_quick_fit_at_a_break_shows_no_interval_from_few_trials_and_states_exclu
     from fitting.report import exclusion_text
     text = exclusion_text(out.attrs["exclusions"])
     assert "35 bad timing" in text and f"{int(out['n_trials'].sum())} trials used of {len(early)}" in text
+
+
+def test_quick_fit_keeps_a_conditions_own_flags_apart_from_its_shifts():
+    # before, the baseline's flags were written into every condition's one flags cell, beside its own PSE: an
+    # adapted condition with answers on both sides read "one-sided" because the baseline's were all clockwise
+    df = simulate_trials(MODEL, offsets=(-30, 30), lags=(0,), trials_per_track=20, seed=8)
+    df.loc[df["condition"] == "baseline", "response_cw"] = 1
+    out = quick_shifts(df, n_boot=40, seed=1).set_index("condition")
+    assert "one-sided" in out.loc["baseline", "flags"]
+    for name in ("adapt-30_lag0", "adapt+30_lag0"):
+        assert "one-sided" not in out.loc[name, "flags"] and "one-sided" in out.loc[name, "shift_flags"]
+        assert np.isnan(out.loc[name, "ci_low"])        # the shift's interval: its baseline is not estimable
 
 
 def test_notes_that_follow_from_the_protocol_are_said_once(tmp_path):

@@ -268,10 +268,16 @@ def test_flags_on_hand_made_degenerate_logs(tmp_path):
     shifts = pd.read_csv(tmp_path / "out" / "aftereffect.csv", keep_default_na=False)
     d1 = shifts[shifts["observer"] == "D1"].set_index("adapter_offset_deg")
     assert "one-sided" in d1.loc[30, "flags"] and "few-trials" in d1.loc[-30, "flags"]
-    # two observers: group rows are descriptive
-    group = shifts[shifts["observer"] == "group"]
-    assert len(group) and group["flags"].str.contains("descriptive").all()
+    # two observers: group rows are descriptive; D1's shifts are not usable (one-sided: not estimable; six
+    # trials: no interval), so no group shift stands on one observer (before, the one-sided shift entered
+    # the combination at face value), and the notes say whose rows were left out
+    assert "not-estimable" in d1.loc[30, "flags"]
+    assert not (shifts["observer"] == "group").any()
+    group = pse.loc["group"]
+    assert list(group.index) == ["baseline"] and group["flags"].str.contains("descriptive").all()
     text = (tmp_path / "out" / "summary.txt").read_text()
+    assert ("group shifts leave out the observers' rows that are not usable: D1 (2 of 2: one-sided not-estimable "
+            "few-trials)") in text
     first_observer = text.index("Observer D1")
     assert "Flagged rows" in text and text.index("D1 PSE adapt+30_lag0: one-sided") < first_observer
     mm = pd.read_csv(tmp_path / "out" / "mixed_model.csv")
@@ -356,19 +362,24 @@ def test_compare_uses_the_covariance_file_and_refuses_a_corrupt_one(tmp_path, ca
     from runner.cli import main
 
     _degenerate_logs(tmp_path)
+    # D1's shifts are not usable for the group, so an ordinary observer makes the group's second one
+    model = ObserverModel(amplitude_deg=3.0, peak_offset_deg=25.0, decay_periods=2.0)
+    write_log(simulate_trials(model, offsets=(-30, 30), lags=(0,), trials_per_track=15, seed=6, observer="N1"),
+              tmp_path / "n1.trials.csv")
     fit_logs([str(tmp_path)], str(tmp_path / "out"), n_boot=100, seed=1, figures=False, progress=False)
     pd.DataFrame({"lag": [0, 0], "adapter_offset_deg": [-30, 30], "pse_shift_deg": [-1.0, 1.0]}).to_csv(
         tmp_path / "pred.csv", index=False)
     assert main(["compare", str(tmp_path / "out"), str(tmp_path / "pred.csv"), "--out", str(tmp_path / "c")]) == 0
     table = pd.read_csv(tmp_path / "c" / "agreement.csv")
     assert set(table["covariance"]) == {"full"}
-    # observers: chi2 / n read against F(n, spread_dof) (scipy.stats.f); the group: from simulated groups
+    # observers: chi2 / n read against F(n, spread_dof) (scipy.stats.f); the group: from chi2(n), as D1's shifts
+    # (one-sided, few-trials) are left out and one observer is too few to simulate groups from
     written = pd.read_csv(tmp_path / "out" / "aftereffect_covariance.csv")
+    assert "D1" not in set(table["observer"])
     for row in table[(table["lag"] == "all") & table["chi2"].notna()].itertuples():
         nu = written.loc[written["observer"] == row.observer, "spread_dof"].iloc[0]
         if row.observer == "group":
-            assert np.isnan(nu) and row.chi2_reference == "simulated (2000 groups)"
-            assert 0.9999 / 2001 <= row.chi2_p <= 1                         # (1 + #) / (1 + draws)
+            assert np.isnan(nu) and row.chi2_reference == f"chi2({int(row.dof)})"
         else:
             assert nu > 1 and row.chi2_reference == f"F({int(row.dof)}, {nu:.1f})"
             assert row.chi2_p == pytest.approx(stats.f.sf(row.chi2 / row.dof, row.dof, nu), rel=1e-4)
@@ -389,13 +400,16 @@ def test_compare_says_when_the_group_p_cannot_be_simulated(tmp_path):
     from fitting.compare import compare_results
 
     _degenerate_logs(tmp_path)
+    # D1's shifts are not usable for the group, so an ordinary observer makes the group's second one
+    model = ObserverModel(amplitude_deg=3.0, peak_offset_deg=25.0, decay_periods=2.0)
+    write_log(simulate_trials(model, offsets=(-30, 30), lags=(0,), trials_per_track=15, seed=6, observer="N1"),
+              tmp_path / "n1.trials.csv")
     fit_logs([str(tmp_path)], str(tmp_path / "out"), n_boot=100, seed=1, figures=False, progress=False)
     pd.DataFrame({"lag": [0, 0], "adapter_offset_deg": [-30, 30], "pse_shift_deg": [-1.0, 1.0]}).to_csv(
         tmp_path / "pred.csv", index=False)
     path = tmp_path / "out" / "aftereffect_covariance.csv"
     written = pd.read_csv(path)
-    first = sorted(set(written["observer"]) - {"group"})[0]
-    written[written["observer"] != first].to_csv(path, index=False)
+    written[written["observer"] != "N1"].to_csv(path, index=False)          # an observer the group uses
     result = compare_results(tmp_path / "out", tmp_path / "pred.csv", tmp_path / "c", figures=False)
     row = result.table[(result.table["observer"] == "group") & (result.table["lag"] == "all")].iloc[0]
     assert row.chi2_reference == f"chi2({int(row.dof)})"
@@ -404,7 +418,8 @@ def test_compare_says_when_the_group_p_cannot_be_simulated(tmp_path):
 
 
 @pytest.mark.parametrize("column, value, says", [
-    ("covariance_deg2", "1e308", "not symmetric positive semi-definite"),   # a number, but no covariance
+    ("covariance_deg2", "1e308", "covariance_deg2: expected a value in"),   # a number, but beyond what fit writes
+    ("covariance_deg2", "1e5", "not symmetric positive semi-definite"),
     ("covariance_deg2", "-5", "not symmetric positive semi-definite"),
     ("covariance_deg2", "inf", "found 'inf'"),
     ("replicates", "lots", "replicates: expected a number, found 'lots'"),
@@ -417,6 +432,10 @@ def test_compare_refuses_a_covariance_cell_no_fit_writes(tmp_path, capsys, colum
     from runner.cli import main
 
     _degenerate_logs(tmp_path)
+    # D1's shifts are not usable for the group, so an ordinary observer makes the group's second one
+    model = ObserverModel(amplitude_deg=3.0, peak_offset_deg=25.0, decay_periods=2.0)
+    write_log(simulate_trials(model, offsets=(-30, 30), lags=(0,), trials_per_track=15, seed=6, observer="N1"),
+              tmp_path / "n1.trials.csv")
     fit_logs([str(tmp_path)], str(tmp_path / "out"), n_boot=100, seed=1, figures=False, progress=False)
     pd.DataFrame({"lag": [0, 0], "adapter_offset_deg": [-30, 30], "pse_shift_deg": [-1.0, 1.0]}).to_csv(
         tmp_path / "pred.csv", index=False)

@@ -162,7 +162,7 @@ def test_run_refuses_a_resume_its_sidecar_rules_out_before_any_window(capsys, tm
     if change == "protocol":
         assert "protocol.sha256" in line
     else:
-        seed = json.loads(before["P01-s1.session.json"])["session_seed"]
+        seed = json.loads(before["P01-s1.session.json"])["seed"]
         assert f"seed is {seed}" in line and "not --seed 12345" in line and "with --seed" not in line
     assert {p.name: p.read_bytes() for p in out.iterdir()} == before
 

@@ -134,3 +134,99 @@ def test_bad_input_names_the_field(tmp_path):
     with pytest.raises(InputError, match="missing.toml"):
         plan_command(str(tmp_path / "missing.toml"), None, str(tmp_path / "out"), StudySettings(runs=1))
     assert not (tmp_path / "out").exists()
+
+
+# -- recommendations the simulated designs do not back, and coverage of a few runs --------------------------------
+
+WIDE = """
+title = "planner test: four offsets, two lags, short tracks"
+[design]
+adapter_offsets_deg = [-60.0, -30.0, 30.0, 60.0]
+lags = [0, 2]
+trials_per_track = 12
+practice_trials = 0
+[procedure]
+method = "updown"
+k_down = 2
+start_offset_deg = 20.0
+steps_deg = [8.0, 4.0, 2.0, 1.0]
+"""
+
+
+def _amplitude_rows(widths: dict[int, float], runs: int = 8):
+    """A plan table's amplitude rows at lag 0 whose median half-widths are ``widths`` (nan: no interval at all)."""
+    import pandas as pd
+
+    return pd.DataFrame([{"design": i, "family": "as written", "quantity": "amplitude", "lag": 0.0,
+                          "trials_per_condition": n, "median_half_width": h,
+                          "runs_with_interval": 0 if math.isnan(h) else runs, "runs": runs}
+                         for i, (n, h) in enumerate(widths.items())])
+
+
+def test_a_recommendation_is_never_below_the_smallest_design_with_intervals():
+    # before: 24 and 48 trials per condition gave intervals, 12 none, and a target wider than every interval
+    # recommended "about 1 trials per condition -> trials_per_track = 1" (the 1/sqrt(N) law from 24 downwards)
+    from runner.planner import SMALLEST, _needed, _recommendation
+
+    protocol = parse_protocol(WIDE)
+    table = _amplitude_rows({12: float("nan"), 24: 6.0 / math.sqrt(24), 48: 6.0 / math.sqrt(48)})
+    row = _needed(table, 100.0, [type("D", (), {"protocol": protocol})()] * 3).iloc[0]
+    assert row["basis"] == SMALLEST and row["trials_per_condition"] == 24 and row["trials_per_track"] == 12
+    assert "smallest design with intervals, 24 trials per condition" in _recommendation(row)
+    # a design where fewer than half the sessions gave an interval does not count as one with intervals
+    table.loc[1, "runs_with_interval"] = 3
+    row = _needed(table, 100.0, [type("D", (), {"protocol": protocol})()] * 3).iloc[0]
+    assert row["trials_per_condition"] == 48
+
+
+def test_a_recommendation_beyond_the_designs_says_by_how_much():
+    # before: 703,870 trials per condition were printed with a log-log slope and no word that the largest
+    # design simulated had 48; h = 6 / sqrt(N) exactly, so the target 0.01 needs (6 / 0.01)^2 = 360,000 (algebra)
+    from runner.planner import EXTRAPOLATED, INTERPOLATED, _needed, _recommendation
+
+    protocol = parse_protocol(WIDE)
+    designs = [type("D", (), {"protocol": protocol})()] * 3
+    table = _amplitude_rows({12: 6.0 / math.sqrt(12), 24: 6.0 / math.sqrt(24), 48: 6.0 / math.sqrt(48)})
+    row = _needed(table, 0.01, designs).iloc[0]
+    assert row["basis"] == EXTRAPOLATED and row["trials_per_condition"] == pytest.approx(360_000)
+    assert row["beyond_largest"] == pytest.approx(360_000 / 48)
+    assert "extrapolated 7,500x beyond the largest design simulated (48 trials per condition)" in _recommendation(row)
+    inside = _needed(table, 6.0 / math.sqrt(30), designs).iloc[0]
+    assert inside["basis"] == INTERPOLATED and inside["trials_per_condition"] == pytest.approx(30)
+    assert "extrapolated" not in _recommendation(inside)
+
+
+@pytest.mark.parametrize("covered,n", [(8, 8), (0, 3), (5, 8), (38, 40), (1, 1)])
+def test_coverage_limits_are_wilson_intervals(covered, n):
+    # before: coverage was shown as p ± its binomial SE, "100 ± 0 %" for 8 of 8; source of the reference:
+    # statsmodels' Wilson score interval (Wilson 1927, JASA 22, 209-212)
+    from statsmodels.stats.proportion import proportion_confint
+
+    from runner.study import coverage_limits
+
+    low, high = coverage_limits(covered / n, n)
+    ref_low, ref_high = proportion_confint(covered, n, alpha=0.05, method="wilson")
+    assert (low, high) == (pytest.approx(ref_low, abs=1e-12), pytest.approx(ref_high, abs=1e-12))
+    assert high - low > 0.1                     # never a certainty from a handful of runs
+
+
+@pytest.mark.slow  # a real study: 3 designs x 4 sessions
+def test_plan_of_few_runs_shows_coverage_intervals_and_says_why_a_design_gave_none(tmp_path):
+    # before: "100 ± 0 %" on 4 runs, and the 6-trials-per-track rows showed "nan ... 0/4" without a word
+    path = _write(tmp_path, WIDE)
+    protocol = parse_protocol(WIDE, str(path))
+    settings = StudySettings(runs=4, seed=1, n_boot=20, jobs=1, progress=False)
+    from conftest import PROTOCOLS
+    from runner.observers import load_model
+
+    model = load_model(PROTOCOLS / "observers" / "typical.toml")
+    result = plan_design(protocol, model, settings, tmp_path / "plan", target_half_width=100.0)
+    text = "\n".join(result.summary_lines())
+    assert "± 0 %" not in text and "100 % [51, 100]" in text     # Wilson 95 % for 4 of 4 (statsmodels agrees)
+    amplitude = result.table[(result.table["quantity"] == "amplitude") & (result.table["lag"] == 0)]
+    empty = amplitude[amplitude["runs_with_interval"] == 0]
+    assert list(empty["trials_per_track"]) == [6]
+    why = [n for n in result.notes if n.startswith("design trials_per_track=6: no interval for amplitude (lag 0)")]
+    assert len(why) == 1 and "the fits said:" in why[0] and "(4 of 4)" in why[0]
+    smallest = amplitude.loc[amplitude["runs_with_interval"] > 0, "trials_per_condition"].min()
+    assert (result.needed["trials_per_condition"] >= smallest).all()

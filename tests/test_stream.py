@@ -192,6 +192,16 @@ def test_a_stream_killed_and_resumed_writes_the_rows_of_an_uninterrupted_one(tmp
     assert resumed == whole
 
 
+def test_a_break_in_a_stream_says_there_is_no_quick_fit(tmp_path):
+    # before, every break printed "quick fit not possible yet: empty, but condition 'stream' is not the
+    # baseline", a validation message of the discrete tables that read as if the log were damaged
+    from runner.cli import _quick_fit_text
+
+    _, _, rows = run_stream(small("continue"), tmp_path)
+    assert _quick_fit_text(rows[:16]) == ("no quick fit for a stream block: fit its log after the session "
+                                          "(aftershift fit LOG)")
+
+
 def test_simulate_runs_stream_protocols_through_the_stream_loop(tmp_path):
     protocol, text = load_protocol(BUNDLED), read_protocol_text(BUNDLED)
     (path,) = simulate(protocol, str(BUNDLED), text, tmp_path, ObserverModel(), 1, 4, progress=False)

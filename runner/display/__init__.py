@@ -54,6 +54,20 @@ periods still last their seconds and answer windows stay usable.
 
 from __future__ import annotations
 
+from fitting.errors import InputError
+
+#: Shortest display test that gets a verdict (s): 60 frame intervals at 60 Hz (common practice, no source).
+MIN_TEST_S = 1.0
+#: Longest display test (s).
+MAX_TEST_S = 3600.0
+
+
+def check_seconds(seconds) -> None:
+    """Refuse a display test's ``--seconds`` outside :data:`MIN_TEST_S`..:data:`MAX_TEST_S` (or not a number)."""
+    if not (isinstance(seconds, (int, float)) and MIN_TEST_S <= seconds <= MAX_TEST_S):   # False for nan
+        raise InputError("argument", "--seconds", f"expected a duration from {MIN_TEST_S:g} to {MAX_TEST_S:g} s, "
+                         f"not {seconds!r}")
+
 
 def open_screen(protocol, windowed: bool, allow_refresh_mismatch: bool, console=None):
     """Open the observer's screen; see :func:`runner.display.presenter.open_screen`."""

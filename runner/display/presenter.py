@@ -148,13 +148,25 @@ class ScreenPresenter:
         self._pacer.flipped(t)
         return t, self._read_keys()
 
-    @staticmethod
-    def _read_keys() -> list[PressedKey]:
-        return [(str(name), float(t)) for name, t in event.getKeys(timeStamped=True)]
+    def _read_keys(self) -> list[PressedKey]:
+        """New key presses; the window's close button (``--windowed``) counts as the quit key."""
+        keys = [(str(name), float(t)) for name, t in event.getKeys(timeStamped=True)]
+        handle = self.window.winHandle
+        if getattr(handle, "has_exit", False):      # set by the window's default close handler
+            handle.has_exit = False
+            keys.append((self.keys.quit, keys[-1][1] if keys else 0.0))
+        return keys
+
+    def _quit_kept(self) -> bool:
+        """True, once, for a quit key pressed during :meth:`feedback` (which cannot stop anything itself)."""
+        if "quit" in self._pending:
+            self._pending.discard("quit")
+            return True
+        return False
 
     def _drain(self) -> bool:
-        """Drop keys pressed while nothing listened; note pause; True on quit."""
-        quit_pressed = False
+        """Drop keys pressed while nothing listened; note pause; True on quit (pressed now or kept)."""
+        quit_pressed = self._quit_kept()
         for name, _ in self._read_keys():
             if name == self.keys.quit:
                 quit_pressed = True
@@ -288,14 +300,18 @@ class ScreenPresenter:
         return False
 
     def blank(self, frames: int) -> bool:
-        """Show the fixation mark alone for ``frames`` frames; False on the quit key."""
+        """Show the fixation mark alone for ``frames`` frames; False on the quit key (or one kept)."""
+        if self._quit_kept():
+            return False
         return self.hold_fixation(frames) is None
 
     def feedback(self, correct: bool) -> None:
         """A brief, dim sign after a practice answer.
 
         Right: a thin ring around the fixation mark.  Wrong: the mark goes off.
-        Both last :data:`FEEDBACK_S`; the quit key is kept for :meth:`requests`.
+        Both last :data:`FEEDBACK_S`; the quit key is kept, and the next
+        :meth:`blank`, :meth:`show_text`, :meth:`play` or :meth:`requests`
+        obeys it at once.
         """
         for _ in range(max(1, round(FEEDBACK_S * self.refresh_hz))):
             self.scene.draw(None, fixation=correct, ring=correct)

@@ -10,7 +10,6 @@ the mean, SD and longest frame interval, the dropped frames, and a verdict.
 from __future__ import annotations
 
 import json
-import math
 import sys
 import time
 from pathlib import Path
@@ -19,6 +18,7 @@ import numpy as np
 
 from fitting.errors import InputError
 from runner import safety
+from runner.display import MIN_TEST_S, check_seconds
 from runner.display._psychopy import event, version as psychopy_version
 from runner.display.presenter import dot_spec, open_measured_scene
 from runner.display.window import UNSYNCED_FACTOR, px_per_deg, renderer_name
@@ -31,6 +31,17 @@ SOFTWARE_RENDERERS = ("llvmpipe", "softpipe", "swrast", "software")
 
 
 def _verdict(report: dict) -> tuple[bool, str]:
+    ok, text = _timing_verdict(report)
+    if not report["stopped_early"]:
+        return ok, text
+    if report["seconds_measured"] < MIN_TEST_S:
+        return False, (f"no verdict: stopped by the quit key after {report['seconds_measured']:.2f} s; measure "
+                       f"for at least {MIN_TEST_S:g} s")
+    return ok, f"{text} (stopped by the quit key after {report['seconds_measured']:.1f} of " \
+               f"{report['seconds_requested']:g} s)"
+
+
+def _timing_verdict(report: dict) -> tuple[bool, str]:
     if report["flips_unsynced"]:
         return False, (
             f"flips are not synchronised to the display: {report['refresh_hz_measured']:.0f} per second "
@@ -61,7 +72,9 @@ def display_test(protocol: Protocol | None = None, seconds: float = 10.0, window
     protocol : Protocol, optional
         Default: the built-in defaults of :class:`runner.protocol.Protocol`.
     seconds : float
-        How long to draw (> 0).  The quit key ends the test early.
+        How long to draw, :data:`MIN_TEST_S` to :data:`MAX_TEST_S`.  The
+        quit key ends the test early (with no verdict before
+        :data:`MIN_TEST_S`).
     windowed : bool
         A window instead of full screen.
     report_path : str or Path, optional
@@ -79,11 +92,9 @@ def display_test(protocol: Protocol | None = None, seconds: float = 10.0, window
     Raises
     ------
     InputError
-        ``--seconds`` not a positive finite number, or a report path that is
-        a folder.
+        ``--seconds`` out of range, or a report path that is a folder.
     """
-    if not (isinstance(seconds, (int, float)) and math.isfinite(seconds) and seconds > 0):
-        raise InputError("argument", "--seconds", f"expected a positive number of seconds, got {seconds!r}")
+    check_seconds(seconds)
     if report_path is not None and Path(report_path).is_dir():
         raise InputError(str(report_path), "--report", "is a folder; expected a file name for the JSON report")
     protocol = protocol or Protocol()
@@ -98,13 +109,13 @@ def display_test(protocol: Protocol | None = None, seconds: float = 10.0, window
         flips = [win.flip()]
         cpu = []
         end = flips[0] + seconds
-        while flips[-1] < end:
+        stopped = False
+        while flips[-1] < end and not stopped:
             start = time.perf_counter()
             scene.draw(field.step(), patch=True)
             cpu.append(time.perf_counter() - start)
             flips.append(win.flip())
-            if protocol.keys.quit in event.getKeys():
-                break
+            stopped = protocol.keys.quit in event.getKeys()
         size = [int(win.size[0]), int(win.size[1])]
         scale = px_per_deg(win.monitor)
         renderer = renderer_name()
@@ -119,6 +130,7 @@ def display_test(protocol: Protocol | None = None, seconds: float = 10.0, window
         "flips_unsynced": measured > UNSYNCED_FACTOR * hz,
         "seconds_requested": float(seconds),
         "seconds_measured": round(flips[-1] - flips[0], 4),
+        "stopped_early": stopped,
         "n_dots": scene.n_dots,
         "frames": audit.n_intervals,
         "frame_interval_mean_ms": round(audit.mean_s * 1e3, 4),

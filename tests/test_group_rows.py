@@ -1,0 +1,232 @@
+"""Group rows of ``fit`` with observers whose rows are not usable, odd IDs, and designs that differ.
+
+The observers are simulated (fitting.synthetic) and fitted for real; the
+random-effects combination itself is checked against statsmodels in
+test_inference.py.
+"""
+
+import html
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from fitting import fit_logs
+from fitting.aftereffect import TAU_BOUNDS, peak_bounds
+from fitting.errors import InputError
+from fitting.group import group_aftereffect, group_curves
+from fitting.meta import random_effects, variance_from_interval
+from fitting.synthetic import ObserverModel, simulate_trials, write_log
+
+MODEL = ObserverModel(amplitude_deg=3.0, peak_offset_deg=30.0, decay_periods=2.0)
+OFFSETS = (-60, -30, 30, 60)
+
+
+def _observer(name: str, seed: int, **kw) -> pd.DataFrame:
+    return simulate_trials(MODEL, offsets=kw.pop("offsets", OFFSETS), lags=(0, 2), trials_per_track=15, seed=seed,
+                           observer=name, **kw)
+
+
+def _fit(folder: Path, **kw):
+    return fit_logs([str(folder)], str(folder / "out"), n_boot=200, seed=1, figures=False, progress=False, **kw)
+
+
+@pytest.fixture(scope="module")
+def odd_group(tmp_path_factory):
+    """Three ordinary observers, one who answered clockwise on every trial, one with 4-5 trials per condition."""
+    folder = tmp_path_factory.mktemp("odd_group")
+    for i, name in enumerate(("O1", "O2", "O3")):
+        write_log(_observer(name, 10 + i), folder / f"{name}.trials.csv")
+    cw = _observer("O4", 20)
+    cw["response_cw"] = 1
+    write_log(cw, folder / "O4.trials.csv")
+    few = _observer("O5", 21)
+    write_log(few.groupby("condition").head(5), folder / "O5.trials.csv")
+    return _fit(folder)
+
+
+def _observers(table: pd.DataFrame, names) -> pd.DataFrame:
+    return table[table["observer"].isin(names)]
+
+
+def test_group_shifts_leave_out_rows_that_are_not_estimable_or_have_too_few_trials(odd_group):
+    # Before, O4's shifts (every answer clockwise: PSEs not estimable, "intervals" a ten-thousandth of a
+    # degree wide) entered the random-effects combination at face value and pinned the group's shift to
+    # them, unflagged; O5's (5 trials) entered the group curve.
+    r = odd_group
+    ae = r.aftereffect
+    assert ae.loc[ae["observer"] == "O4", "flags"].str.contains("not-estimable").all()
+    assert ae.loc[ae["observer"] == "O5", "flags"].str.contains("few-trials").all()
+    group = ae[ae["observer"] == "group"].reset_index(drop=True)
+    usable = _observers(ae, ["O1", "O2", "O3"])
+    expected = group_aftereffect(usable, 0.95)
+    assert len(group) == 8
+    assert np.allclose(group[["pse_shift_deg", "ci_low", "ci_high"]], expected[["pse_shift_deg", "ci_low", "ci_high"]])
+    assert (group["n_trials"].to_numpy() == expected["n_trials"].to_numpy()).all()
+    assert (group["flags"] == "partial").all()
+    # the group interval is never narrower than the fixed-effect combination of the three (the floor)
+    wide = usable.pivot_table(index="observer", columns=["lag", "adapter_offset_deg"], values="pse_shift_deg")
+    var = usable.assign(v=variance_from_interval(usable["ci_low"], usable["ci_high"])).pivot_table(
+        index="observer", columns=["lag", "adapter_offset_deg"], values="v")
+    fixed = random_effects(wide.to_numpy(), var.to_numpy()).fixed_se
+    # (1.959: just below z(0.975) = 1.95996, common practice, no source)
+    assert ((group["ci_high"] - group["ci_low"]).to_numpy() >= 2 * 1.959 * fixed).all()
+    notes = " | ".join(r.notes["group"])
+    assert "group shifts leave out the observers' rows that are not usable: O4 (8 of 8: one-sided " in notes
+    assert "O5 (8 of 8: " in notes and "few-trials" in notes
+    assert "Group (5 observers, usable shifts from 3; random-effects intervals" in r.summary()
+
+
+def test_group_curves_and_mixed_model_use_the_observers_whose_shifts_are_usable(odd_group):
+    r = odd_group
+    ae = r.aftereffect
+    own = ["O1", "O2", "O3"]
+    tuning, decay, _, _ = group_curves(_observers(ae, own), 0.95, [], _observers(r.tuning, own),
+                                       _observers(r.decay, own))
+    got = r.tuning[r.tuning["observer"] == "group"].reset_index(drop=True)
+    cols = ["amplitude_deg", "amplitude_ci_low", "amplitude_ci_high", "peak_offset_deg"]
+    assert len(got) == 2 and np.allclose(got[cols].to_numpy(float), tuning[cols].to_numpy(float))
+    assert got["flags"].str.contains("partial").all()
+    g_decay = r.decay[r.decay["observer"] == "group"]
+    assert np.allclose(g_decay["decay_periods"].to_numpy(float), decay["decay_periods"].to_numpy(float))
+    # the group's lag-0 amplitude lies among the observers' own (before: far above all of them)
+    amps = r.tuning[(r.tuning["lag"] == 0) & r.tuning["observer"].isin(own)]["amplitude_deg"]
+    assert amps.min() - 1 <= got.loc[got["lag"] == 0, "amplitude_deg"].iloc[0] <= amps.max() + 1
+    assert any(n.startswith("group curves leave out O4, O5: not every shift of theirs is usable")
+               for n in r.notes["group"])
+    assert "the mixed model leaves out the same shifts as the group rows" in r.notes["group"]
+
+
+def test_group_curve_floors_read_limits_on_a_bound_as_open(odd_group):
+    # The observers' own intervals set the floor of the group's.  Before, an own interval spanning the whole
+    # bounded range counted as a finite one (a lag-2 peak offset of 120 [104.2, 120] from observers whose
+    # intervals were all [15, 120]), and with no own decay there was no floor at all (1000 [962, 1000]).
+    r = odd_group
+    own = ["O1", "O2", "O3"]
+    shifts = _observers(r.aftereffect, own)
+    prange = peak_bounds(np.array(OFFSETS, float))
+    tuning = _observers(r.tuning, own).assign(peak_offset_ci_low=prange[0], peak_offset_ci_high=prange[1])
+    decay = _observers(r.decay, own).assign(ci_low=TAU_BOUNDS[0], ci_high=TAU_BOUNDS[1])
+    t, d, _, _ = group_curves(shifts, 0.95, [], tuning, decay)
+    assert np.allclose(t[["peak_offset_ci_low", "peak_offset_ci_high"]].to_numpy(float), [prange, prange])
+    assert t["flags"].str.contains("on-bound").all()
+    assert np.allclose(d[["ci_low", "ci_high"]].to_numpy(float), [TAU_BOUNDS])
+    notes = []
+    _, d, detail, curves = group_curves(shifts, 0.95, notes, _observers(r.tuning, own), decay.iloc[:0])
+    assert d.empty and detail.empty and "decay" not in curves
+    assert "no group decay: no observer used has a decay fit of their own" in notes
+
+
+def test_tables_keep_their_number_format_when_an_observer_has_no_shifts(tmp_path):
+    # One observer ran only baseline trials.  Before, the empty tables of that observer turned the number
+    # columns into text: aftereffect.csv, tuning.csv and decay.csv were written with every digit of the
+    # floats, and the mixed model failed with "endog has evaluated to an array with multiple columns".
+    import statsmodels.formula.api as smf
+
+    for i, name in enumerate(("O1", "O2", "O3")):
+        write_log(_observer(name, 60 + i), tmp_path / f"{name}.trials.csv")
+    base = _observer("O4", 63)
+    write_log(base[base["condition"] == "baseline"], tmp_path / "O4.trials.csv")
+    report = _fit(tmp_path)
+    for name in ("aftereffect", "tuning", "decay", "pse"):
+        table = pd.read_csv(tmp_path / "out" / f"{name}.csv", dtype=str, keep_default_na=False)
+        numbers = table.drop(columns=[c for c in ("observer", "condition", "flags") if c in table])
+        digits = numbers.map(lambda v: len(v.lstrip("-").split("e")[0].replace(".", "").lstrip("0")))
+        assert digits.to_numpy().max() <= 6, name
+    # the mixed model is statsmodels' MixedLM (REML; the outside reference) on the three observers' shifts
+    mm = pd.read_csv(tmp_path / "out" / "mixed_model.csv").set_index("term")
+    rows = report.aftereffect[report.aftereffect["observer"] != "group"].astype({"lag": float})
+    ref = smf.mixedlm("pse_shift_deg ~ adapter_offset_deg * lag", rows, groups=rows["observer"]).fit(reml=True)
+    assert np.allclose(mm.loc[ref.fe_params.index, "estimate"], ref.fe_params, rtol=1e-5, atol=1e-6)
+    assert not any("mixed model failed" in n for n in report.notes["group"])
+
+
+def test_an_observer_id_of_group_is_refused_by_fit_and_run(tmp_path, capsys):
+    # Before, a log of observer "group" was fitted: its rows and the group's shared the name in every table
+    # (16 "group" rows in aftereffect.csv) and their figures overwrote each other.
+    from runner.cli import main
+    from runner.trial_log import check_identifier
+
+    write_log(_observer("O1", 40), tmp_path / "O1.trials.csv")
+    write_log(_observer("Group", 41), tmp_path / "g.trials.csv")
+    with pytest.raises(InputError) as e:
+        _fit(tmp_path)
+    assert e.value.source.endswith("g.trials.csv") and "column observer" in e.value.field
+    assert main(["fit", str(tmp_path), "--out", str(tmp_path / "fit"), "--bootstrap", "20"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "g.trials.csv" in err and "column observer" in err
+    assert not (tmp_path / "fit" / "aftereffect.csv").exists()
+    with pytest.raises(InputError, match="names the group rows"):
+        check_identifier("GROUP", "--observer")
+    assert check_identifier("group", "--session") == "group"          # a session may be called so
+    assert main(["run", "protocols/pilot_short.toml", "--observer", "group", "--out", str(tmp_path / "run")]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "--observer" in err and not (tmp_path / "run").exists()
+
+
+def test_designs_that_differ_say_why_the_group_has_no_curves(tmp_path):
+    # Before, the group tuning and decay vanished without a word when one observer had measured fewer
+    # offsets than the others (the group curves keep only the cells every observer measured).
+    for i, name in enumerate(("O1", "O2")):
+        write_log(_observer(name, 50 + i), tmp_path / f"{name}.trials.csv")
+    write_log(_observer("P1", 52, offsets=(-30, 30)), tmp_path / "P1.trials.csv")
+    report = _fit(tmp_path)
+    assert not (report.tuning["observer"] == "group").any() and not (report.decay["observer"] == "group").any()
+    notes = report.notes["group"]
+    assert ("group curves use the 4 of 8 (lag, adapter offset) cells that every observer measured: the observers' "
+            "designs differ") in notes
+    assert "no group tuning at lag 0: fewer than 3 non-zero adapter offsets measured by every observer" in notes
+    assert "no group decay: fewer than 2 lags with a group tuning curve" in notes
+    assert "no group decay" in report.summary()
+
+
+@pytest.mark.slow
+def test_sessions_of_different_protocols_are_named_in_the_summary(tmp_path, capsys):
+    # Before, "the observers ran different protocols" was said only on the report page.
+    from runner.cli import main
+
+    text = Path("protocols/pilot_short.toml").read_text()
+    wide = text.replace("adapter_offsets_deg = [-30, 30]", "adapter_offsets_deg = [-60, -30, 30, 60]")
+    assert wide != text
+    (tmp_path / "wide.toml").write_text(wide)
+    assert main(["simulate", "protocols/pilot_short.toml", "--out", str(tmp_path / "logs"), "--seed", "1"]) == 0
+    assert main(["simulate", str(tmp_path / "wide.toml"), "--out", str(tmp_path / "wide"), "--observers", "3",
+                 "--seed", "2"]) == 0
+    for p in (tmp_path / "wide").glob("sim01-*"):
+        p.unlink()                        # sim01 is the pilot_short observer
+    capsys.readouterr()
+    assert main(["fit", str(tmp_path / "logs"), str(tmp_path / "wide"), "--out", str(tmp_path / "fit"),
+                 "--bootstrap", "50", "--fixed-level-pilot", "--no-figures"]) == 0
+    out = capsys.readouterr().out
+    line = next(n for n in out.splitlines() if "different protocols" in n)
+    assert "pilot_short.toml): sim01;" in line and "wide.toml): sim02, sim03)" in line
+    assert line.endswith("compare them before pooling")
+    assert line.strip() in (tmp_path / "fit" / "summary.txt").read_text()
+
+
+def test_fit_details_flags_use_the_words_of_the_other_tables(odd_group):
+    # Before, fit_details.csv said "complete separation" / "all clockwise; PSE on its bound" where every
+    # other table (and the README's list) says "separated" / "one-sided on-bound".
+    r = odd_group
+    details = r.extras["fit_details"].set_index(["observer", "condition"])["flags"]
+    pse = r.pse[r.pse["observer"] != "group"].set_index(["observer", "condition"])["flags"]
+    assert details.to_dict() == pse.to_dict()
+    assert details.str.contains("one-sided").any()
+
+
+def test_a_stream_fit_of_several_observers_says_it_has_no_group_rows(tmp_path):
+    # Before, nothing said why a stream fit of several observers had no group rows, while the README
+    # promised them for every fit of several observers.
+    from fitting.nback import NO_GROUP_NOTE, fit_stream_logs
+    from runner.launch import simulate
+    from runner.observers import ObserverModel as SimulatedObserver
+    from runner.protocol import load_protocol, read_protocol_text
+
+    bundled = Path(__file__).resolve().parent.parent / "protocols" / "stream_nback.toml"
+    simulate(load_protocol(bundled), str(bundled), read_protocol_text(bundled), tmp_path / "logs",
+             SimulatedObserver(), 2, 2, progress=False)
+    report = fit_stream_logs(tmp_path / "logs", tmp_path / "out", n_boot=20, seed=1, figures=False)
+    assert report.summary().splitlines()[-1] == f"note: {NO_GROUP_NOTE}"
+    assert not (pd.read_csv(tmp_path / "out" / "aftereffect.csv")["observer"] == "group").any()
+    assert html.escape(NO_GROUP_NOTE) in (tmp_path / "out" / "report.html").read_text()

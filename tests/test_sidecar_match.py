@@ -1,0 +1,104 @@
+"""A sidecar beside the wrong log is refused by ``fit`` before any work, naming the sidecar and the field.
+
+Before, ``fit`` took whatever sidecar lay beside a log: another observer's
+made the report list two sessions of that observer and none of the log's
+own, with only a misleading note ("no single protocol was found"); another
+protocol's made the bootstrap pilot re-run that protocol's Bayesian tracks
+for an up–down log, and the report said the observer ran that protocol.
+Both fits ended with exit 0.
+"""
+
+from __future__ import annotations
+
+import json
+import shutil
+from pathlib import Path
+
+import pytest
+
+from fault_helpers import PILOT, cli, one_line
+
+from fitting.errors import InputError
+
+
+@pytest.fixture(scope="module")
+def sessions(tmp_path_factory) -> dict[str, Path]:
+    """Two observers of the pilot protocol, and one observer of the same protocol with other adapter offsets."""
+    from runner.cli import main
+
+    root = tmp_path_factory.mktemp("sidecars")
+    other = root / "other.toml"
+    text = PILOT.read_text()
+    assert "adapter_offsets_deg = [-30, 30]" in text
+    other.write_text(text.replace("adapter_offsets_deg = [-30, 30]", "adapter_offsets_deg = [-45, 45]"))
+    assert main(["simulate", str(PILOT), "--out", str(root / "pilot"), "--observers", "2", "--seed", "5"]) == 0
+    assert main(["simulate", str(other), "--out", str(root / "other"), "--seed", "5"]) == 0
+    for lock in root.rglob("*.lock"):
+        lock.unlink()
+    return {"pilot": root / "pilot", "other": root / "other"}
+
+
+def _with_sidecar(sessions, tmp_path: Path, source: Path) -> tuple[Path, Path]:
+    """The pilot's logs with ``source`` copied over sim01's sidecar; returns (folder, that sidecar)."""
+    folder = tmp_path / "logs"
+    shutil.copytree(sessions["pilot"], folder)
+    side = folder / "sim01-s1.session.json"
+    shutil.copyfile(source, side)
+    return folder, side
+
+
+@pytest.mark.parametrize("pilot", [[], ["--fixed-level-pilot"]], ids=["rerun-pilot", "fixed-level-pilot"])
+def test_another_observers_sidecar_is_refused_before_any_work(capsys, sessions, tmp_path, pilot):
+    folder, side = _with_sidecar(sessions, tmp_path, sessions["pilot"] / "sim02-s1.session.json")
+    code, err = cli(capsys, "fit", folder, "--out", tmp_path / "fit", "--bootstrap", "20", "--no-figures", *pilot)
+    line = one_line(err)
+    assert code == 2 and line.startswith(f"aftershift: {side}: observer: names observer 'sim02'")
+    assert "sim01" in line
+    assert not (tmp_path / "fit").exists()
+
+
+def test_another_protocols_sidecar_is_refused_naming_a_condition_it_lacks(capsys, sessions, tmp_path):
+    folder, side = _with_sidecar(sessions, tmp_path, sessions["other"] / "sim01-s1.session.json")
+    code, err = cli(capsys, "fit", folder, "--out", tmp_path / "fit", "--bootstrap", "20", "--no-figures")
+    line = one_line(err)
+    assert code == 2 and line.startswith(f"aftershift: {side}: protocol:") and "'adapt+30_lag0'" in line
+    assert not (tmp_path / "fit").exists()
+
+
+def test_another_procedures_sidecar_is_refused(capsys, sessions, tmp_path):
+    # the pilot's conditions are all in the same protocol run with up-down tracks: the procedure tells them apart
+    other = tmp_path / "updown.toml"
+    other.write_text(PILOT.read_text().replace('method = "bayesian"', 'method = "updown"'))
+    assert cli(capsys, "simulate", other, "--out", tmp_path / "updown", "--seed", "5")[0] == 0
+    folder, side = _with_sidecar(sessions, tmp_path, tmp_path / "updown" / "sim01-s1.session.json")
+    code, err = cli(capsys, "fit", folder, "--out", tmp_path / "fit", "--bootstrap", "20", "--no-figures")
+    assert code == 2 and one_line(err).startswith(f"aftershift: {side}: protocol:") and "'bayesian'" in err
+
+
+def test_the_report_never_records_another_sessions_sidecar(sessions, tmp_path):
+    # fit_logs used by a library, without the command line's early check: the report's record refuses it too
+    from fitting.provenance import collect
+
+    folder, side = _with_sidecar(sessions, tmp_path, sessions["pilot"] / "sim02-s1.session.json")
+    with pytest.raises(InputError, match="names observer 'sim02'") as caught:
+        collect([folder])
+    assert caught.value.source == str(side) and caught.value.field == "observer"
+    data = json.loads((sessions["pilot"] / "sim01-s1.session.json").read_text())
+    shutil.copyfile(sessions["pilot"] / "sim01-s1.session.json", side)      # its own sidecar: accepted
+    assert [s["observer"] for s in collect([folder])["sessions"]] == [data["observer"], "sim02"]
+
+
+def test_a_simulated_session_that_repeats_another_is_refused(capsys, sessions, tmp_path):
+    # before: `simulate --session s2` with the seed of s1 wrote s1's trials again, and fit pooled both as if
+    # independent (intervals too narrow by about a factor of sqrt(2)); such a copy on disk is now refused
+    folder = tmp_path / "logs"
+    shutil.copytree(sessions["pilot"], folder)
+    lines = (folder / "sim01-s1.trials.csv").read_text().splitlines(keepends=True)
+    (folder / "sim01-s2.trials.csv").write_text(
+        "".join([lines[0]] + [line.replace("sim01,s1,", "sim01,s2,", 1) for line in lines[1:]]))
+    sidecar = json.loads((folder / "sim01-s1.session.json").read_text())
+    (folder / "sim01-s2.session.json").write_text(json.dumps({**sidecar, "session": "s2"}))
+    code, err = cli(capsys, "fit", folder, "--out", tmp_path / "fit", "--bootstrap", "20", "--no-figures")
+    line = one_line(err)
+    assert code == 2 and line.startswith(f"aftershift: {folder / 'sim01-s2.session.json'}: session_seed:")
+    assert str(folder / "sim01-s1.session.json") in line and not (tmp_path / "fit").exists()
