@@ -163,9 +163,9 @@ def cmd_run(args) -> int:
     from runner.console import ExperimenterConsole
     from runner.launch import (check_can_start, check_resume, close_complete_log, completed_rows, end_running_part,
                                run_on_screen)
-    from runner.x_connection import on_connection_lost
     from runner.screens import screen_texts
     from runner.trial_log import check_identifier
+    from runner.x_connection import on_connection_lost
 
     check_identifier(args.observer, "--observer")
     check_identifier(args.session, "--session")
@@ -194,6 +194,7 @@ def cmd_run(args) -> int:
         "safety": screening.to_dict(),
         **({"light": light} if light is not None else {}),
     }
+
     def connection_lost():      # Xlib ends the process after this: record the part, say how to go on
         end_running_part("failed")
         print(_display_failed_line(args, "the connection to the X server was lost"), file=sys.stderr)

@@ -475,7 +475,7 @@ def run_part(log: TrialLog, sidecar: dict, run, session) -> SessionResult:
         log.close()
 
 
-def _end_part(log: TrialLog, sidecar: dict, run, how: str, cause: BaseException) -> None:
+def _end_part(log: TrialLog, sidecar: dict, run, how: str, cause: BaseException | None) -> None:
     """Record a part that ended by ``cause``: best effort, the disk may be the reason it ended.
 
     The rows and track states are those of the log now (an interrupt can
