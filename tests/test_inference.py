@@ -372,14 +372,14 @@ def test_compare_uses_the_covariance_file_and_refuses_a_corrupt_one(tmp_path, ca
     assert main(["compare", str(tmp_path / "out"), str(tmp_path / "pred.csv"), "--out", str(tmp_path / "c")]) == 0
     table = pd.read_csv(tmp_path / "c" / "agreement.csv")
     assert set(table["covariance"]) == {"full"}
-    # observers: chi2 / n read against F(n, spread_dof) (scipy.stats.f); the group: from chi2(n), as D1's shifts
-    # (one-sided, few-trials) are left out and one observer is too few to simulate groups from
+    # observers: chi2 / n read against F(n, spread_dof) (scipy.stats.f); the group: from groups simulated from
+    # R1 and N1, the observers whose shifts are usable (D1's, one-sided and few-trials, are left out)
     written = pd.read_csv(tmp_path / "out" / "aftereffect_covariance.csv")
     assert "D1" not in set(table["observer"])
     for row in table[(table["lag"] == "all") & table["chi2"].notna()].itertuples():
         nu = written.loc[written["observer"] == row.observer, "spread_dof"].iloc[0]
         if row.observer == "group":
-            assert np.isnan(nu) and row.chi2_reference == f"chi2({int(row.dof)})"
+            assert np.isnan(nu) and row.chi2_reference.startswith("simulated (")
         else:
             assert nu > 1 and row.chi2_reference == f"F({int(row.dof)}, {nu:.1f})"
             assert row.chi2_p == pytest.approx(stats.f.sf(row.chi2 / row.dof, row.dof, nu), rel=1e-4)

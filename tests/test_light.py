@@ -351,17 +351,21 @@ EXAMPLE_PROFILE = Path(__file__).resolve().parents[1] / "protocols" / "light" / 
 ])
 def test_a_profile_with_impossible_or_malformed_values_is_one_line_naming_the_profile(
         tmp_path, capsys, pattern, replacement, field):
+    err = _check_with_edited_profile(tmp_path, capsys, pattern, replacement)
+    assert err.startswith(f"aftershift: {tmp_path / 'profile.toml'}: {field}:"), err
+    assert len(err.splitlines()) == 1, err
+
+
+def _check_with_edited_profile(tmp_path, capsys, pattern: str, replacement: str) -> str:
+    """``check`` of a protocol whose light profile is the example with one line edited; its stderr (exit 2)."""
     import re
 
     text, n = re.subn(pattern, replacement, EXAMPLE_PROFILE.read_text(encoding="utf-8"), count=1, flags=re.M)
     assert n == 1
-    profile = tmp_path / "profile.toml"
-    profile.write_text(text, encoding="utf-8")
+    (tmp_path / "profile.toml").write_text(text, encoding="utf-8")
     p = write_protocol(tmp_path, 'profile = "profile.toml"\nbackground_cd_m2 = 0.5\ndots_cd_m2 = 40.0')
     assert main(["check", str(p)]) == 2
-    err = capsys.readouterr().err.strip()
-    assert err.startswith(f"aftershift: {profile}: {field}:"), err
-    assert len(err.splitlines()) == 1, err
+    return capsys.readouterr().err.strip()
 
 
 @pytest.mark.parametrize("pattern, replacement, expected", [
@@ -372,15 +376,7 @@ def test_a_profile_with_impossible_or_malformed_values_is_one_line_naming_the_pr
 ])
 def test_a_value_out_of_range_is_named_with_its_unit(tmp_path, capsys, pattern, replacement, expected):
     # before, pydantic's words alone: "Input should be less than or equal to 100000", no unit, no value found
-    import re
-
-    text, n = re.subn(pattern, replacement, EXAMPLE_PROFILE.read_text(encoding="utf-8"), count=1, flags=re.M)
-    assert n == 1
-    profile = tmp_path / "profile.toml"
-    profile.write_text(text, encoding="utf-8")
-    p = write_protocol(tmp_path, 'profile = "profile.toml"\nbackground_cd_m2 = 0.5\ndots_cd_m2 = 40.0')
-    assert main(["check", str(p)]) == 2
-    err = capsys.readouterr().err.strip()
+    err = _check_with_edited_profile(tmp_path, capsys, pattern, replacement)
     assert err.endswith(expected), err
 
 
