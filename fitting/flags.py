@@ -4,7 +4,8 @@ A row's ``flags`` cell holds zero or more of these words, separated by
 spaces (empty = nothing unusual):
 
 ``one-sided``        every answer of the condition on one side (all clockwise or
-                     all counter-clockwise): the PSE is not estimable
+                     all counter-clockwise): the PSE is not estimable (no
+                     interval, for it or for a shift from it)
 ``separated``        every clockwise answer at a larger offset than every
                      counter-clockwise one: the condition's own spread is not
                      estimable (under a shared spread its PSE is, leaning on

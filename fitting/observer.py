@@ -429,9 +429,10 @@ def analyse_observer(observer: str, trials: pd.DataFrame, opts: Options,
     lo, hi, *shift_ci = pse_shift_intervals(_pse_method(opts.interval), fit, boot, base, adapted, opts.level)
     if _pse_method(opts.interval) in ("bca", "percentile"):
         shift_ci = None      # computed with the curve statistics below, on the same replicates
-    few = fit.n_trials < MIN_TRIALS_FOR_INTERVAL
-    lo, hi = np.where(few, np.nan, lo), np.where(few, np.nan, hi)
     cond_flags = psychometric_flags(fit, boot)
+    # no interval from too few trials, nor for a PSE that is not estimable (answers all on one side)
+    bare = (fit.n_trials < MIN_TRIALS_FOR_INTERVAL) | np.array(["one-sided" in f for f in cond_flags])
+    lo, hi = np.where(bare, np.nan, lo), np.where(bare, np.nan, hi)
     box = zip(fit.lower[fit.layout.pse_index], fit.upper[fit.layout.pse_index])
     cond_flags = [join(f, ["on-bound"] if on_bound(e, l, h, b) else [], ["off-interval"] if off_interval(e, l, h) else [])
                   for f, e, l, h, b in zip(cond_flags, fit.pse, lo, hi, box)]
@@ -534,8 +535,8 @@ def _curves(a: ObserverAnalysis, opts: Options, shift_ci=None) -> None:
     cond_flags = a.pse["flags"].to_numpy()
     shift_flags = [join(w for w in (cond_flags[c] + " " + cond_flags[model.base]).split() if w != "off-interval")
                    for c in model.cond_index]
-    few = np.array(["few-trials" in f for f in shift_flags])
-    lo[:m], hi[:m] = np.where(few, np.nan, lo[:m]), np.where(few, np.nan, hi[:m])
+    bare = np.array([("few-trials" in f) or ("one-sided" in f) for f in shift_flags])
+    lo[:m], hi[:m] = np.where(bare, np.nan, lo[:m]), np.where(bare, np.nan, hi[:m])
     # a curve inherits the doubts of the conditions it is fitted to
     inherited = join(*(w for f in shift_flags for w in f.split()
                        if w in ("one-sided", "not-converged")))

@@ -261,6 +261,8 @@ def test_flags_on_hand_made_degenerate_logs(tmp_path):
     assert "one-sided" in pse.loc[("D1", "adapt+30_lag0"), "flags"]
     assert "few-trials" in pse.loc[("D1", "adapt-30_lag0"), "flags"]
     assert pse.loc[("D1", "adapt-30_lag0"), "pse_ci_low"] == ""          # no interval below the minimum
+    # nor for a PSE that is not estimable (before: an interval about the bound, 0.0001 deg wide, printed)
+    assert pse.loc[("D1", "adapt+30_lag0"), ["pse_ci_low", "pse_ci_high"]].tolist() == ["", ""]
     assert pse.loc[("D1", "baseline"), "flags"] == ""
     # random answers: a flat function whose PSEs leave the tested range
     r1 = pse.loc["R1"]
@@ -268,6 +270,7 @@ def test_flags_on_hand_made_degenerate_logs(tmp_path):
     shifts = pd.read_csv(tmp_path / "out" / "aftereffect.csv", keep_default_na=False)
     d1 = shifts[shifts["observer"] == "D1"].set_index("adapter_offset_deg")
     assert "one-sided" in d1.loc[30, "flags"] and "few-trials" in d1.loc[-30, "flags"]
+    assert d1[["ci_low", "ci_high"]].eq("").all().all()                # neither shift has an interval
     # two observers: group rows are descriptive; D1's shifts are not usable (one-sided: not estimable; six
     # trials: no interval), so no group shift stands on one observer (before, the one-sided shift entered
     # the combination at face value), and the notes say whose rows were left out
