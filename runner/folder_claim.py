@@ -12,8 +12,10 @@ just opened it.
 
 from __future__ import annotations
 
+import errno
 import fcntl
 import os
+import stat
 from pathlib import Path
 
 from fitting.errors import InputError
@@ -40,11 +42,21 @@ class FolderClaim:
 
     def __init__(self, folder: str | Path, option: str = "--out"):
         self.folder = Path(folder)
+        path = self.folder / CLAIM_FILE
         try:
             self.folder.mkdir(parents=True, exist_ok=True)
-            self._file = open(self.folder / CLAIM_FILE, "a+", encoding="utf-8")
+            # never through a link: truncating it below would empty whatever file the link names
+            fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_NOFOLLOW | os.O_NONBLOCK, 0o666)
         except OSError as exc:
-            raise InputError(str(self.folder), option, f"cannot be used ({exc.strerror})") from None
+            why = ("a link or a folder, not this tool's file" if exc.errno in (errno.ELOOP, errno.EISDIR)
+                   else exc.strerror)
+            where = str(path) if exc.errno in (errno.ELOOP, errno.EISDIR) else str(self.folder)
+            raise InputError(where, option, f"cannot be used ({why})") from None
+        if not stat.S_ISREG(os.fstat(fd).st_mode):       # a named pipe or a device of that name
+            os.close(fd)
+            raise InputError(str(path), option, "cannot be used (not a regular file, not this tool's file)")
+        os.set_blocking(fd, True)
+        self._file = os.fdopen(fd, "a+", encoding="utf-8")
         try:
             fcntl.flock(self._file, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except OSError:

@@ -192,3 +192,22 @@ def test_a_second_demo_into_a_folder_in_use_is_refused_naming_the_process(capsys
         code, err = cli(capsys, "demo", "--out", out)
     assert code == 2 and f"is in use by process {os.getpid()}" in one_line(err) and "--out" in err
     assert {p: p.read_bytes() for p in out.rglob("*") if p.is_file() and p.name != ".lock"} == before
+
+
+@pytest.mark.parametrize("kind", ["link to a file", "folder"])
+def test_a_claim_file_that_is_a_link_or_a_folder_is_refused_and_nothing_outside_is_touched(capsys, tmp_path, kind):
+    # before, a .lock linked to a file outside the folder was followed and truncated: the file was emptied
+    from fault_helpers import cli, one_line
+
+    out = tmp_path / "d"
+    out.mkdir()
+    precious = tmp_path / "precious.csv"
+    precious.write_text("precious,data\n1,2\n")
+    if kind == "folder":
+        (out / ".lock").mkdir()
+    else:
+        (out / ".lock").symlink_to(precious)
+    code, err = cli(capsys, "demo", "--out", out)
+    assert code == 2 and ".lock" in one_line(err) and "--out" in err
+    assert precious.read_text() == "precious,data\n1,2\n"
+    assert sorted(p.name for p in out.iterdir()) == [".lock"]
