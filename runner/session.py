@@ -165,7 +165,7 @@ def parse_response(text: str, where: str) -> int | None:
 
 
 def _cell_against_plan(row: dict[str, str], plan: TrialPlan) -> tuple[str, str] | None:
-    """The first of a row's adapter offset, lag and practice cells that its trial's plan contradicts.
+    """The first of a row's adapter offset, lag, practice and intervening offsets cells that its trial's plan contradicts.
 
     Returns ``(column, what the plan has)``, or None when all agree.  Fit
     would refuse the log later, or fit the trial in the wrong condition.
@@ -179,6 +179,10 @@ def _cell_against_plan(row: dict[str, str], plan: TrialPlan) -> tuple[str, str] 
             return column, format_value(planned)
     if row["practice"] != str(int(plan.practice)):
         return "practice", str(int(plan.practice))
+    cell, planned = row["intervening_offsets_deg"], plan.intervening_offsets_deg
+    values = [float(v) for v in cell.split(";")] if cell else []     # the cell rules let only numbers through
+    if len(values) != len(planned) or not all(math.isclose(v, p, abs_tol=1e-6) for v, p in zip(values, planned)):
+        return "intervening_offsets_deg", format_value(planned) or "empty"
     return None
 
 

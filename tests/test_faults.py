@@ -306,7 +306,8 @@ def test_a_log_with_a_byte_order_mark_is_read_alike_by_fit_and_resume(capsys, tm
     assert (out / NAME).read_bytes() == b"\xef\xbb\xbf" + (whole / NAME).read_bytes()
 
 
-@pytest.mark.parametrize("column,value", [("lag", "3"), ("adapter_offset_deg", "-30"), ("practice", "1")])
+@pytest.mark.parametrize("column,value", [("lag", "3"), ("adapter_offset_deg", "-30"), ("practice", "1"),
+                                          ("intervening_offsets_deg", "45;135")])
 def test_resume_refuses_a_row_whose_condition_cells_were_edited(capsys, tmp_path, whole, column, value):
     # before, the resume carried on past the edited row, and the log could then no longer be fitted
     out = _copy(whole, tmp_path / "o", rows=30)
