@@ -253,7 +253,11 @@ def read_measured(path: str | Path) -> pd.DataFrame:
     if swapped.any():
         raise InputError(str(p), f"line {_line_of(swapped)}", "ci_low: above ci_high, as no fit writes it "
                          "(a changed or damaged cell?)")
-    return frame
+    # fit's order (observers by name, the group last; lags, then offsets): every number compare prints,
+    # the simulated groups' p included, then follows from the table's content, not from its rows' order
+    key = frame["observer"].eq(GROUP).map(int).astype(str) + frame["observer"]
+    order = np.lexsort((frame["adapter_offset_deg"].to_numpy(float), frame["lag"].to_numpy(float), key.to_numpy()))
+    return frame.iloc[order].reset_index(drop=True)
 
 
 def read_covariance(path: Path, measured: pd.DataFrame) -> pd.DataFrame:
