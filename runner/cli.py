@@ -137,13 +137,15 @@ def cmd_check(args) -> int:
 
 def cmd_simulate(args) -> int:
     from fitting.outputs import check_out_dir
-    from runner.launch import simulate
+    from runner.launch import simulate, simulated_observers_in
     from runner.observers import load_model
     from runner.trial_log import check_identifier
 
     _check_seed(args.seed)
-    _check_count(args.observers, "--observers", 1, 99, "the number of simulated observers")
     check_identifier(args.session, "--session")
+    if args.observers is None:      # a resume continues every observer in --out, as its stop line advises
+        args.observers = simulated_observers_in(args.out, args.session) if args.resume else 1
+    _check_count(args.observers, "--observers", 1, 99, "the number of simulated observers")
     check_out_dir(args.out)
     protocol, text = _load(args.protocol)
     light = _light(protocol)
@@ -487,7 +489,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", required=True, help="output folder for trial logs and sidecars")
     p.add_argument("--model", help="observer model file (TOML, flat keys; default built in; a resume uses the "
                                    "sidecar's)")
-    p.add_argument("--observers", type=_int_arg, default=1, help="number of simulated observers (default 1)")
+    p.add_argument("--observers", type=_int_arg, default=None,
+                   help="number of simulated observers (default 1; with --resume, as many as OUT holds)")
     p.add_argument("--seed", type=_int_arg, help="seed (default 0; a resume uses the sidecar's)")
     p.add_argument("--session", default="s1", help="session label: letters, digits, - and _ (default s1)")
     p.add_argument("--resume", action="store_true", help="continue interrupted sessions in --out")

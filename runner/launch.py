@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import re
 import secrets
 import sys
 from dataclasses import asdict
@@ -146,6 +147,22 @@ def sidecar_settings(out_dir: Path, observers: list[str], session: str) -> list[
     return found
 
 
+def simulated_names(n_observers: int) -> list[str]:
+    """Observer IDs of ``n_observers`` simulated observers: ``sim01``, ``sim02``, ..."""
+    return [f"sim{i + 1:02d}" for i in range(n_observers)]
+
+
+def simulated_observers_in(out_dir: str | Path, session: str) -> int:
+    """How many simulated observers a resume in ``out_dir`` continues: the highest ``simNN`` with a log or a
+    sidecar of ``session`` there (1 where there is none)."""
+    pattern = re.compile(rf"sim(\d\d)-{re.escape(session)}\.(?:trials\.csv|session\.json)")
+    try:
+        found = [int(m.group(1)) for p in Path(out_dir).iterdir() if (m := pattern.fullmatch(p.name))]
+    except OSError:
+        return 1
+    return max(found, default=1)
+
+
 def resume_seed_and_model(out_dir: Path, n_observers: int, session: str, seed: int | None,
                           model: ObserverModel | None) -> tuple[int, ObserverModel]:
     """Seed and observer model of a resumed simulation: the sidecars' values.
@@ -156,7 +173,7 @@ def resume_seed_and_model(out_dir: Path, n_observers: int, session: str, seed: i
         A command-line seed or model that differs from the one the session
         started with, or sidecars that disagree with each other.
     """
-    names = [f"sim{i + 1:02d}" for i in range(n_observers)]
+    names = simulated_names(n_observers)
     found = sidecar_settings(out_dir, names, session)
     if not found and seed is None:
         _refuse_unknown_seed(log_paths(out_dir, names[0], session)[1], "the original --seed (and --model, "
@@ -582,7 +599,7 @@ def simulate(
     """
     out = Path(out_dir)
     check_identifier(session, "--session")
-    names = [f"sim{i + 1:02d}" for i in range(n_observers)]
+    names = simulated_names(n_observers)
     started = {}
     if not resume:
         for name in names:      # every observer before any work: none is written if one would be refused

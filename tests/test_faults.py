@@ -324,6 +324,18 @@ def test_resume_refuses_a_row_whose_condition_cells_were_edited(capsys, tmp_path
     assert logs(out) == before
 
 
+def test_a_resume_without_observers_continues_every_observer_in_the_folder(capsys, tmp_path, whole):
+    # before, "continue with --resume" (the stop line's advice) finished sim01 only and left sim02 cut short,
+    # exit 0: --observers defaulted to 1
+    out = _copy(whole, tmp_path / "o", rows=30)
+    (out / "sim02-s1.trials.csv").write_bytes(b"".join((whole / "sim02-s1.trials.csv").read_bytes()
+                                                       .splitlines(keepends=True)[:12]))
+    (out / "sim02-s1.session.json").write_bytes((whole / "sim02-s1.session.json").read_bytes())
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, "--resume")
+    assert code == 0, err
+    assert logs(out) == logs(whole)
+
+
 def test_a_log_with_windows_line_endings_resumes_with_the_same_endings(capsys, tmp_path, whole):
     # before, the resumed rows ended in "\n" after rows in "\r\n": one file with two line endings
     out = _copy(whole, tmp_path / "o", rows=30)
