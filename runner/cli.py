@@ -246,6 +246,31 @@ def _from_display(exc: BaseException) -> bool:
     return type(exc).__module__.split(".")[0] in ("pyglet", "psychopy")
 
 
+def _simulate_kept(args) -> str:
+    """What a stopped ``simulate`` leaves, and the command that continues it (its seed named: a session
+    stopped before its sidecar was written cannot be resumed without it)."""
+    import shlex
+
+    from runner import safety
+    from runner.launch import simulated_names
+    from runner.trial_log import log_paths
+
+    if not log_paths(args.out, simulated_names(1)[0], args.session)[0].exists():
+        return "nothing was recorded; run the same command again"
+    words = ["aftershift", "simulate", args.protocol, "--out", args.out]
+    if args.observers is not None:
+        words += ["--observers", str(args.observers)]
+    if args.seed is not None or not args.resume:        # a resume without --seed took the sidecars' seed
+        words += ["--seed", str(args.seed or 0)]
+    if args.model:
+        words += ["--model", args.model]
+    if args.session != "s1":
+        words += ["--session", args.session]
+    if args.flicker_ack:
+        words.append(safety.ACKNOWLEDGE_OPTION)
+    return f"every completed trial is in the log; to continue: {shlex.join(words + ['--resume'])}"
+
+
 def _resume_command(args) -> str:
     """The command line that continues this session."""
     import shlex
@@ -749,7 +774,7 @@ def _interrupted_line(args, exc: BaseException) -> str:
     if command == "run":
         return f"{how}; {_run_kept(args)}"
     if command == "simulate":
-        return f"{how}; every completed trial is in the log; continue with --resume"
+        return f"{how}; {_simulate_kept(args)}"
     if command in ("fit", "compare", "plan", "recover"):
         from fitting.outputs import committed
 

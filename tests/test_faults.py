@@ -978,3 +978,15 @@ def test_replicates_that_would_not_fit_in_memory_are_refused():
     check_replicate_memory(100_000, 33, memory_bytes=24 * 2**30)  # one observer of the default protocol fits
     with pytest.raises(InputError, match="--bootstrap.*at most 64,424"):
         check_replicate_memory(100_000, 1000, memory_bytes=24 * 2**30)  # 1,000 conditions: 18.6 GiB
+
+
+def test_a_simulate_stopped_before_any_log_says_nothing_was_recorded(tmp_path):
+    # before: "every completed trial is in the log; continue with --resume", where no log existed and that
+    # resume was refused for want of a seed
+    from types import SimpleNamespace
+
+    from runner.cli import Terminated, _interrupted_line
+
+    args = SimpleNamespace(command="simulate", protocol=str(PILOT), out=str(tmp_path / "none"), session="s1",
+                           observers=2, seed=None, model=None, resume=False, flicker_ack=False)
+    assert _interrupted_line(args, Terminated()) == "stopped by SIGTERM; nothing was recorded; run the same command again"
