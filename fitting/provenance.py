@@ -63,6 +63,18 @@ def log_cells(log: Path, columns=("observer", "session", "condition", "procedure
     first cell); a log that is not readable CSV with these columns gives
     None: the fit itself reports what is wrong with it.
     """
+    rows = log_rows(log, columns)
+    if rows is None:
+        return None
+    cells: dict[str, set[str]] = {c: set() for c in columns}
+    for row in rows:
+        for c in columns:
+            cells[c].add(row[c])
+    return cells
+
+
+def log_rows(log: Path, columns) -> list[dict[str, str]] | None:
+    """``columns`` of every whole row of a trial log; None when the log cannot be read so (see :func:`log_cells`)."""
     try:
         data = Path(log).read_bytes()
     except OSError:
@@ -71,13 +83,9 @@ def log_cells(log: Path, columns=("observer", "session", "condition", "procedure
         reader = csv.DictReader(io.StringIO(data[: data.rfind(b"\n") + 1].decode("utf-8-sig"), newline=""))
         if not set(columns) <= set(reader.fieldnames or ()):
             return None
-        cells: dict[str, set[str]] = {c: set() for c in columns}
-        for row in reader:
-            for c in columns:
-                cells[c].add(row[c] or "")
+        return [{c: row[c] or "" for c in columns} for row in reader]
     except (UnicodeDecodeError, csv.Error):
         return None
-    return cells
 
 
 def check_sidecar_owner(log: Path, side: Path, data: dict, cells: dict[str, set[str]] | None = None) -> None:

@@ -16,7 +16,7 @@ import json
 from pathlib import Path
 
 from fitting.errors import InputError
-from fitting.provenance import check_sidecar_owner, log_cells
+from fitting.provenance import check_sidecar_owner, log_cells, log_rows
 from fitting.tables import read_log_table
 from runner.protocol import parse_protocol
 from runner.schedule import design_conditions
@@ -59,6 +59,28 @@ def check_sidecar_matches(log: Path, side: Path, meta: dict, protocol) -> None:
                              f"{' or '.join(map(repr, stray[:3]))}, which rows of its log {log.name} hold: the sidecar is "
                              "another session's (put this session's own beside the log, or move it away), or the "
                              "log was edited")
+    _check_track_lengths(log, side, meta, protocol)
+
+
+def _check_track_lengths(log: Path, side: Path, meta: dict, protocol) -> None:
+    """Refuse a log with more trials on a track (or more practice trials) than the sidecar's protocol gives one.
+
+    The conditions of two protocols can be the same while their tracks are
+    not as long: a sidecar of the shorter one beside the longer one's log
+    would re-run the wrong tracks for the bootstrap.
+    """
+    d = protocol.design
+    counts: dict = {}
+    for cells in log_rows(log, ("condition", "track", "practice")) or ():
+        key = "practice" if cells["practice"] == "1" else (cells["condition"], cells["track"])
+        counts[key] = counts.get(key, 0) + 1
+    for key, n in counts.items():
+        most = d.practice_trials if key == "practice" else d.trials_per_track
+        if n > most:
+            what = "practice trials" if key == "practice" else f"trials on track {key[1]} of {key[0]}"
+            raise InputError(str(side), "protocol", f"its protocol ({meta['protocol'].get('path')}) gives at most "
+                             f"{most} {what}, and its log {log.name} holds {n}: the sidecar is another session's "
+                             "(put this session's own beside the log, or move it away), or the log was edited")
 
 
 def check_sidecars(logs) -> None:

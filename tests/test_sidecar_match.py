@@ -75,6 +75,23 @@ def test_another_procedures_sidecar_is_refused(capsys, sessions, tmp_path):
     assert code == 2 and one_line(err).startswith(f"aftershift: {side}: protocol:") and "'bayesian'" in err
 
 
+def test_a_sidecar_of_a_protocol_with_shorter_tracks_is_refused(capsys, sessions, tmp_path):
+    # the same conditions and procedure, shorter tracks: before, accepted without a word, and the bootstrap
+    # re-ran tracks of the wrong length (the intervals changed)
+    import re
+
+    short = tmp_path / "short.toml"
+    text, n = re.subn(r"^trials_per_track = \d+", "trials_per_track = 4", PILOT.read_text(), flags=re.M)
+    assert n == 1
+    short.write_text(text)
+    assert cli(capsys, "simulate", short, "--out", tmp_path / "short", "--seed", "5")[0] == 0
+    folder, side = _with_sidecar(sessions, tmp_path, tmp_path / "short" / "sim01-s1.session.json")
+    code, err = cli(capsys, "fit", folder, "--out", tmp_path / "fit", "--bootstrap", "20", "--no-figures")
+    line = one_line(err)
+    assert code == 2 and line.startswith(f"aftershift: {side}: protocol:") and "gives at most 4 trials" in line
+    assert not (tmp_path / "fit").exists()
+
+
 def test_the_report_never_records_another_sessions_sidecar(sessions, tmp_path):
     # fit_logs used by a library, without the command line's early check: the report's record refuses it too
     from fitting.provenance import collect
