@@ -527,6 +527,8 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
         if note:                    # said before pooling, wherever the summary is read (the page says it too)
             report.notes.setdefault(GROUP if report.group is not None else report.analyses[0].observer,
                                     []).insert(0, note)
+        for observer, text in unfinished_notes(data):
+            report.notes.setdefault(observer, []).append(text)
         write_text(out / "summary.txt", report.summary() + "\n")
         data.update(kind="adapt-test", options=report.summary().splitlines()[1], notes=report.notes)
         write_report_data(out, data)
@@ -548,6 +550,26 @@ def protocols_note(data: dict) -> str | None:
     who = "; ".join(f"{sha[:12]} ({Path(str(p.get('path'))).name}): {', '.join(sorted(users.get(sha, ())))}"
                     for sha, p in protocols.items())
     return f"the observers ran {len(protocols)} different protocols ({who}); compare them before pooling"
+
+
+def unfinished_notes(data: dict) -> list[tuple[str, str]]:
+    """``(observer, note)`` for every session whose sidecar says it did not complete (from :func:`collect`).
+
+    A session stopped early (Escape, a signal, a full disk) or killed (its
+    last part still ``running``) is fitted like any other; the note says
+    that its tracks did not run to their end.
+    """
+    notes = []
+    for s in data.get("sessions", []):
+        how = s.get("ended_by")
+        if how is not None and how != "completed":
+            ended = ("never recorded its end (killed, or still running)" if how == "running"
+                     else f"ended {how!r}")
+            kept = "" if s.get("trials") is None else f"; {s['trials']} trials in the log by its sidecar"
+            notes.append((str(s.get("observer")), f"session {s.get('session')} did not complete: its last part "
+                          f"{ended}{kept} (continue it with --resume before fitting, if it was not meant to end "
+                          "there)"))
+    return notes
 
 
 def _import_ahead(figures: bool, group: bool) -> threading.Thread:

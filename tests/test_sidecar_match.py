@@ -119,3 +119,17 @@ def test_a_simulated_session_that_repeats_another_is_refused(capsys, sessions, t
     line = one_line(err)
     assert code == 2 and line.startswith(f"aftershift: {folder / 'sim01-s2.session.json'}: session_seed:")
     assert str(folder / "sim01-s1.session.json") in line and not (tmp_path / "fit").exists()
+
+
+def test_a_session_that_did_not_complete_is_noted_by_fit(capsys, sessions, tmp_path):
+    # before, a killed session (its part still "running") was fitted with its trial count alone; only
+    # report_data.json held the state
+    folder, side = _with_sidecar(sessions, tmp_path, sessions["pilot"] / "sim01-s1.session.json")
+    content = json.loads(side.read_text())
+    content["parts"][-1]["ended_by"] = "running"
+    side.write_text(json.dumps(content))
+    code, err = cli(capsys, "fit", folder, "--out", tmp_path / "fit", "--bootstrap", "0", "--no-figures")
+    assert code == 0, err
+    summary = (tmp_path / "fit" / "summary.txt").read_text()
+    assert "session s1 did not complete: its last part never recorded its end (killed, or still running)" in summary
+    assert summary.count("did not complete") == 1                                      # sim02's completed
