@@ -284,7 +284,7 @@ class BlockRun:
                     "condition/track/test_offset_deg",
                     f"the log does not follow this protocol and seed (expected trial {expected[2]} "
                     f"{expected[0]} track {expected[1]} at {plan.test_offset_deg:g} deg); "
-                    "was the protocol changed since the session started?",
+                    "was the protocol changed since the session started, or an earlier answer edited?",
                 )
             wrong = _cell_against_plan(row, plan)
             if wrong is not None:

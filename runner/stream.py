@@ -328,7 +328,7 @@ class StreamRun:
                     "condition/track/test_offset_deg/preceding_offsets_deg",
                     f"the log does not follow this protocol and seed (expected test {plan.index} on track "
                     f"{plan.track} at {plan.test_offset_deg:g} deg after {expected[3]}); "
-                    "was the protocol changed since the session started?",
+                    "was the protocol changed since the session started, or an earlier answer edited?",
                 )
             self.tracks[_track_key(plan.track)].update(plan.test_offset_deg, parse_response(row["response_cw"], where))
         return len(rows)

@@ -336,6 +336,25 @@ def test_a_resume_without_observers_continues_every_observer_in_the_folder(capsy
     assert logs(out) == logs(whole)
 
 
+def test_an_edited_answer_is_named_as_a_possible_cause_where_the_log_parts_from_its_plan(capsys, tmp_path, whole):
+    # an answer steers its track, so an edited one shows only at a later trial of that track; before, the line
+    # named only a changed protocol
+    out = _copy(whole, tmp_path / "o", rows=60)
+    lines = (out / NAME).read_text().splitlines(keepends=True)
+    column = trial_log.COLUMNS.index("response_cw")
+    edited = next(i for i, line in enumerate(lines[1:], 1) if line.split(",")[column] in ("0", "1")
+                  and line.split(",")[trial_log.COLUMNS.index("practice")] == "0")
+    cells = lines[edited].split(",")
+    cells[column] = "1" if cells[column] == "0" else "0"
+    lines[edited] = ",".join(cells)
+    (out / NAME).write_text("".join(lines))
+    before = logs(out)
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, *PILOT_ARGS, "--resume")
+    line = one_line(err)
+    assert code == 2 and "or an earlier answer edited?" in line, line
+    assert logs(out) == before
+
+
 def test_a_log_with_windows_line_endings_resumes_with_the_same_endings(capsys, tmp_path, whole):
     # before, the resumed rows ended in "\n" after rows in "\r\n": one file with two line endings
     out = _copy(whole, tmp_path / "o", rows=30)
