@@ -230,3 +230,24 @@ def test_plan_of_few_runs_shows_coverage_intervals_and_says_why_a_design_gave_no
     assert len(why) == 1 and "the fits said:" in why[0] and "(4 of 4)" in why[0]
     smallest = amplitude.loc[amplitude["runs_with_interval"] > 0, "trials_per_condition"].min()
     assert (result.needed["trials_per_condition"] >= smallest).all()
+
+
+def test_recover_names_a_coverage_whose_wilson_interval_lies_below_95_percent():
+    # before, "more than 2 Monte Carlo SE below 95 %": 1 of 2 (SE 0.35) passed unnamed, while plan printed the
+    # same share as 50 % [9.5, 90.5]; now both read the Wilson interval (Wilson 1927)
+    import pandas as pd
+
+    from runner.recovery import RecoveryResult
+    from runner.study import coverage_limits, coverage_se
+
+    rows = []
+    for quantity, covered, n in (("amplitude", 1, 2), ("decay", 8, 8)):
+        p = covered / n
+        low, high = coverage_limits(p, n)
+        rows.append({"label": "as written", "quantity": quantity, "lag": 0.0 if quantity == "amplitude" else None,
+                     "truth": 3.0, "mean_estimate": 3.0, "bias": 0.0, "rmse": 1.0, "median_ci_width": 2.0,
+                     "coverage": p, "coverage_se": coverage_se(p, n), "coverage_low": low, "coverage_high": high,
+                     "runs_with_interval": n, "runs": n})
+    result = RecoveryResult(pd.DataFrame(), pd.DataFrame(rows), pd.DataFrame({"replicate": range(8)}), "t")
+    named = [line for line in result.summary_lines() if line.startswith("coverage below 95 %")]
+    assert named == ["coverage below 95 % (its 95 % Wilson interval lies below): as written: amplitude lag 0"]
