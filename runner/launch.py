@@ -621,6 +621,13 @@ def simulate(
     paths = []
     try:
         for i, (run, observer_model) in enumerate(zip(runs, models)):
+            done = close_complete_log(protocol, out, run.observer, session) if resume else None
+            if done is not None:     # every trial logged, the end not recorded: closed, no empty part added
+                console.skip(done)
+                print(f"note: {log_paths(out, run.observer, session)[0]}: the session is complete ({done} trials); "
+                      "nothing to resume", file=sys.stderr)
+                paths.append(log_paths(out, run.observer, session)[0])
+                continue
             log = open_log(out, run.observer, session, resume, durable=sync_every_row)
             base = {
                 "tool": "aftershift",

@@ -355,6 +355,24 @@ def test_an_edited_answer_is_named_as_a_possible_cause_where_the_log_parts_from_
     assert logs(out) == before
 
 
+def test_a_complete_simulation_whose_last_part_was_never_closed_is_closed_without_an_empty_part(capsys, tmp_path,
+                                                                                                 whole):
+    # before, the resume added a `vanished` part and then an empty `completed` one (run --resume already did not)
+    out = _copy(whole, tmp_path / "o")
+    (out / "sim02-s1.trials.csv").write_bytes((whole / "sim02-s1.trials.csv").read_bytes())
+    (out / "sim02-s1.session.json").write_bytes((whole / "sim02-s1.session.json").read_bytes())
+    side = json.loads((out / SIDE).read_text())
+    side["parts"][-1].update(ended=None, ended_by="running", rows_added=0)
+    del side["rows_total"]
+    (out / SIDE).write_text(json.dumps(side))
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, *PILOT_ARGS, "--resume")
+    assert code == 0, err
+    total = (whole / NAME).read_bytes().count(b"\n") - 1
+    side = json.loads((out / SIDE).read_text())
+    assert [(p["ended_by"], p["rows_added"]) for p in side["parts"]] == [("vanished", total)]
+    assert side["rows_total"] == total and logs(out) == logs(whole)
+
+
 def test_a_log_with_windows_line_endings_resumes_with_the_same_endings(capsys, tmp_path, whole):
     # before, the resumed rows ended in "\n" after rows in "\r\n": one file with two line endings
     out = _copy(whole, tmp_path / "o", rows=30)
