@@ -139,7 +139,7 @@ def cmd_simulate(args) -> int:
     from fitting.outputs import check_out_dir
     from runner.launch import simulate, simulated_observers_in
     from runner.observers import load_model
-    from runner.trial_log import check_identifier
+    from runner.trial_log import StorageError, check_identifier
 
     _check_seed(args.seed)
     check_identifier(args.session, "--session")
@@ -151,10 +151,14 @@ def cmd_simulate(args) -> int:
     light = _light(protocol)
     screening = _screen(protocol, args.protocol, args.flicker_ack)
     model = load_model(args.model) if args.model else None
-    paths = simulate(
-        protocol, args.protocol, text, args.out, model, args.observers, args.seed, args.resume, args.session,
-        screening=screening.to_dict(), light=light,
-    )
+    try:
+        paths = simulate(
+            protocol, args.protocol, text, args.out, model, args.observers, args.seed, args.resume, args.session,
+            screening=screening.to_dict(), light=light,
+        )
+    except StorageError as exc:         # name the whole command that continues, as a stop by a signal does
+        exc.message = exc.message.replace("continue with --resume", f"continue: {_simulate_resume_command(args)}")
+        raise
     for p in paths:
         print(p)
     return EXIT_OK
@@ -247,16 +251,22 @@ def _from_display(exc: BaseException) -> bool:
 
 
 def _simulate_kept(args) -> str:
-    """What a stopped ``simulate`` leaves, and the command that continues it (its seed named: a session
-    stopped before its sidecar was written cannot be resumed without it)."""
-    import shlex
-
-    from runner import safety
+    """What a stopped ``simulate`` leaves, and the command that continues it (:func:`_simulate_resume_command`)."""
     from runner.launch import simulated_names
     from runner.trial_log import log_paths
 
     if not log_paths(args.out, simulated_names(1)[0], args.session)[0].exists():
         return "nothing was recorded; run the same command again"
+    return f"every completed trial is in the log; to continue: {_simulate_resume_command(args)}"
+
+
+def _simulate_resume_command(args) -> str:
+    """The command line that continues a ``simulate``: its seed named (a session stopped before its sidecar
+    was written cannot be resumed without it) and every observer."""
+    import shlex
+
+    from runner import safety
+
     words = ["aftershift", "simulate", args.protocol, "--out", args.out]
     if args.observers is not None:
         words += ["--observers", str(args.observers)]
@@ -268,7 +278,7 @@ def _simulate_kept(args) -> str:
         words += ["--session", args.session]
     if args.flicker_ack:
         words.append(safety.ACKNOWLEDGE_OPTION)
-    return f"every completed trial is in the log; to continue: {shlex.join(words + ['--resume'])}"
+    return shlex.join(words + ["--resume"])
 
 
 def _resume_command(args) -> str:

@@ -501,7 +501,9 @@ def test_injected_enospc_cuts_back_to_the_last_row_and_resumes_exactly(capsys, t
     code, err = cli(capsys, "simulate", PILOT, "--out", out, *PILOT_ARGS)
     monkeypatch.undo()
     line = one_line(err)
-    assert code == 2 and ("disk is full" in line or "I/O error" in line) and "--resume" in line
+    assert code == 2 and ("disk is full" in line or "I/O error" in line)
+    # the whole command that continues (before: "continue with --resume", without seed or observers)
+    assert line.endswith(f"continue: aftershift simulate {PILOT} --out {out} --observers 2 --seed 5 --resume"), line
     data = (out / NAME).read_bytes()
     assert data.endswith(b"\n") and data.count(b"\n") == 60  # header + 59 whole rows, no torn row
     ended = json.loads((out / SIDE).read_text())["parts"][-1]["ended_by"]
