@@ -139,7 +139,7 @@ def cmd_simulate(args) -> int:
     from fitting.outputs import check_out_dir
     from runner.launch import simulate, simulated_observers_in
     from runner.observers import load_model
-    from runner.trial_log import StorageError, check_identifier
+    from runner.trial_log import RESUME_ADVICE, StorageError, check_identifier
 
     _check_seed(args.seed)
     check_identifier(args.session, "--session")
@@ -157,7 +157,7 @@ def cmd_simulate(args) -> int:
             screening=screening.to_dict(), light=light,
         )
     except StorageError as exc:         # name the whole command that continues, as a stop by a signal does
-        exc.message = exc.message.replace("continue with --resume", f"continue: {_simulate_resume_command(args)}")
+        exc.message = exc.message.replace(RESUME_ADVICE, f"continue: {_simulate_resume_command(args)}")
         raise
     for p in paths:
         print(p)

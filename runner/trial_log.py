@@ -133,6 +133,10 @@ def _line_end(path: Path) -> str:
     return "\r\n" if len(first) == 2 and first[0].endswith(b"\r") else "\n"
 
 
+#: How a full disk's line says to go on; a command that knows its whole resume command puts that in its place.
+RESUME_ADVICE = "continue with --resume"
+
+
 class StorageError(InputError):
     """The disk refused a write (full, or an I/O error); the log was cut back to its last whole row.
 
@@ -281,8 +285,7 @@ def _disk_error(path: Path, exc: OSError, rows: int | None) -> InputError:
     else:
         return InputError(str(path), "file", f"cannot be written ({exc.strerror})")
     safe = "every completed trial is safe" if rows is None else f"{rows} trials are safe in the log"
-    error = StorageError(str(path), "disk", f"{what} ({exc.strerror}); {safe}; "
-                         "free some space, then continue with --resume")
+    error = StorageError(str(path), "disk", f"{what} ({exc.strerror}); {safe}; free some space, then {RESUME_ADVICE}")
     error.full = exc.errno != errno.EIO
     return error
 

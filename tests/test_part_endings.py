@@ -228,24 +228,36 @@ def test_a_second_run_on_a_session_being_written_names_the_process(capsys, tmp_p
             assert code == 2 and "another session is writing" in line and f"process {os.getpid()}" in line
 
 
+def _complete_screen_session(tmp_path: Path, monkeypatch, pilot_whole: Path) -> tuple[Path, int]:
+    """A person's session with every trial logged, and no display to open (a window would be an error)."""
+    monkeypatch.delenv("DISPLAY", raising=False)
+    out = tmp_path / "o"
+    total = (pilot_whole / NAME).read_bytes().count(b"\n") - 1
+    _screen_session(pilot_whole, out, total, PILOT)
+    return out, total
+
+
+def _resume_complete(capsys, out: Path, total: int) -> tuple[str, str]:
+    """``run --resume`` of a complete session: exit 0, the one line that says so; returns (stdout, stderr)."""
+    capsys.readouterr()
+    assert cli_module.main(["run", str(PILOT), "--observer", "P01", "--out", str(out), "--resume"]) == 0
+    out_text, err = capsys.readouterr()
+    assert out_text == f"session complete already: {total} trials in the log; nothing to resume\n"
+    return out_text, err
+
+
 def test_a_complete_log_whose_last_part_was_never_closed_is_complete_before_any_window(capsys, tmp_path, monkeypatch,
                                                                                        pilot_whole):
     # before: the resume opened the display just to show the end screen and recorded the parts as
     # [vanished, completed with 0 trials] (a part whose every trial was written, then killed at its end screen or
     # refused its sidecar's last write by a full disk)
-    monkeypatch.delenv("DISPLAY", raising=False)
-    out = tmp_path / "o"
-    total = (pilot_whole / NAME).read_bytes().count(b"\n") - 1
-    _screen_session(pilot_whole, out, total, PILOT)
+    out, total = _complete_screen_session(tmp_path, monkeypatch, pilot_whole)
     side = json.loads((out / "P01-s1.session.json").read_text())
     side["parts"][0].update(ended=None, ended_by="running", rows_added=0)
     del side["rows_total"], side["track_states"]
     (out / "P01-s1.session.json").write_text(json.dumps(side))
     log = (out / "P01-s1.trials.csv").read_bytes()
-    capsys.readouterr()
-    assert cli_module.main(["run", str(PILOT), "--observer", "P01", "--out", str(out), "--resume"]) == 0
-    out_text, err = capsys.readouterr()
-    assert out_text == f"session complete already: {total} trials in the log; nothing to resume\n"
+    out_text, err = _resume_complete(capsys, out, total)
     assert one_line(err).startswith("note: ") and "marked vanished" in err
     side = json.loads((out / "P01-s1.session.json").read_text())
     assert [(p["ended_by"], p["rows_added"]) for p in side["parts"]] == [("vanished", total)]
@@ -276,13 +288,8 @@ def test_a_complete_log_whose_last_part_was_interrupted_after_its_last_trial_is_
                                                                                         pilot_whole):
     # before: a Ctrl-C after the last trial (while the final quick fit ran) left the part `interrupted`, and the
     # resume opened the display for an end screen and added a `completed` part with 0 trials
-    monkeypatch.delenv("DISPLAY", raising=False)
-    out = tmp_path / "o"
-    total = (pilot_whole / NAME).read_bytes().count(b"\n") - 1
-    _screen_session(pilot_whole, out, total, PILOT)
-    capsys.readouterr()
-    assert cli_module.main(["run", str(PILOT), "--observer", "P01", "--out", str(out), "--resume"]) == 0
-    assert capsys.readouterr().out == f"session complete already: {total} trials in the log; nothing to resume\n"
+    out, total = _complete_screen_session(tmp_path, monkeypatch, pilot_whole)
+    _resume_complete(capsys, out, total)
     side = json.loads((out / "P01-s1.session.json").read_text())
     assert [(p["ended_by"], p["rows_added"]) for p in side["parts"]] == [("interrupted", total)]
     assert side["track_states"] == json.loads((pilot_whole / SIDE).read_text())["track_states"]
