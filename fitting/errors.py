@@ -2,12 +2,21 @@
 
 :class:`InputError` (bad input, exit code 2) is shared by the whole tool;
 :class:`SafetyRefusal` (exit code 3) is raised by :mod:`runner.safety` and
-the timing checks. Both live here, in a module that imports nothing, so
-that the command line can catch them from its first instant (a Ctrl-C
-while the heavy modules load is then reported in one line too).
+the timing checks. Both live here, in a module that imports only three small
+standard modules, so that the command line can catch them from its first
+instant (a Ctrl-C while the heavy modules load is then reported in one line
+too). So do the few words on a path that cannot be read (:func:`file_problem`,
+:func:`name_too_long`).
 """
 
 from __future__ import annotations
+
+import errno
+import os
+import stat
+
+#: The longest name of one file or folder on the usual file systems (ext4, XFS, btrfs, APFS, NTFS: 255).
+NAME_MAX_BYTES = 255
 
 
 class InputError(ValueError):
@@ -83,3 +92,49 @@ class SafetyRefusal(Exception):
         reason = self.reason[:1].lower() + self.reason[1:]
         parts = [p for p in (self.source, self.field) if p]
         return ": ".join(parts + [f"refused for {self.kind}: {reason}; {self.remedy}"])
+
+
+def name_too_long(exc: OSError) -> InputError | None:
+    """The one-line error for a path the file system refuses as too long, or ``None`` for any other error.
+
+    Parameters
+    ----------
+    exc : OSError
+        Raised by an operation on a path (``exc.filename`` names it).
+
+    Returns
+    -------
+    InputError or None
+        Naming the path (shortened) and the limit, for ``ENAMETOOLONG``.
+    """
+    if exc.errno != errno.ENAMETOOLONG:
+        return None
+    name = str(exc.filename or "")
+    shown = name if len(name) <= 60 else f"{name[:40]}…{name[-12:]} ({len(name)} characters)"
+    return InputError(shown, "name", f"too long for the file system (at most {NAME_MAX_BYTES} bytes "
+                                      "between two slashes); choose a shorter name")
+
+
+def file_problem(path) -> str | None:
+    """Why ``path`` cannot be read as a regular file, in a few words, or ``None`` when it can.
+
+    Parameters
+    ----------
+    path : str or Path
+
+    Returns
+    -------
+    str or None
+        "does not exist", "is not a file" (a folder, a pipe, a device) or why
+        the name itself cannot be used (too long, a loop of links, no access).
+    """
+    try:
+        mode = os.stat(path).st_mode
+    except FileNotFoundError:
+        return "does not exist"
+    except NotADirectoryError:
+        return "does not exist (a part of its path is a file)"
+    except OSError as exc:
+        too_long = name_too_long(exc)
+        return f"cannot be used: its name is {too_long.message}" if too_long else f"cannot be used ({exc.strerror})"
+    return None if stat.S_ISREG(mode) else "is not a file"

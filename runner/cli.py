@@ -1,6 +1,7 @@
 """The ``aftershift`` command.
 
-Exit codes: 0 success; 2 bad input (protocol, data, arguments, observer ID)
+Exit codes: 0 success; 1 a Python package missing from the set-up (one
+line naming it); 2 bad input (protocol, data, arguments, observer ID)
 with one line on stderr naming the file and field; 3 refused for safety
 (photosensitivity, display timing) unless explicitly acknowledged; 4 the
 display failed during a ``run`` (window closed from outside, X connection
@@ -18,9 +19,9 @@ import signal
 import sys
 from pathlib import Path
 
-from fitting.errors import InputError, SafetyRefusal
+from fitting.errors import InputError, SafetyRefusal, name_too_long
 
-EXIT_OK, EXIT_INPUT, EXIT_SAFETY, EXIT_DISPLAY = 0, 2, 3, 4
+EXIT_OK, EXIT_SETUP, EXIT_INPUT, EXIT_SAFETY, EXIT_DISPLAY = 0, 1, 2, 3, 4
 DEFAULT_PROTOCOL = Path(__file__).resolve().parent.parent / "protocols" / "offset_by_lag.toml"
 
 
@@ -682,6 +683,16 @@ def main(argv: list[str] | None = None) -> int:
         return EXIT_OK
     except KeyboardInterrupt as exc:
         return _interrupted(args, exc)
+    except ModuleNotFoundError as exc:  # a set-up without every package (the heavy imports are late)
+        print(f"aftershift: the Python package {exc.name!r} is missing; run ./setup.sh (or "
+              f"pip install -e \".[display,dev]\") in this environment", file=sys.stderr)
+        return EXIT_SETUP
+    except OSError as exc:
+        too_long = name_too_long(exc)
+        if too_long is None:
+            raise
+        print(f"aftershift: {too_long.line()}", file=sys.stderr)
+        return EXIT_INPUT
     except Exception as exc:
         interrupt = _interrupt_behind(exc)
         if interrupt is None:

@@ -29,7 +29,7 @@ from pathlib import Path
 import numpy as np
 
 from fitting.display_model import CHANNELS, MODEL_FIELDS, ChannelFit, GainOffsetGamma
-from fitting.errors import InputError
+from fitting.errors import InputError, file_problem
 from runner.light_profile_schema import check_profile, check_summary
 
 if sys.version_info >= (3, 11):
@@ -239,9 +239,9 @@ def load_profile(path: str | Path, source: str = "", field: str = "light.profile
         and the key.
     """
     p = Path(path)
-    if not p.is_file():
-        raise InputError(source or str(p), field, f"light profile {p} does not exist" if not p.exists()
-                         else f"light profile {p} is not a file")
+    problem = file_problem(p)
+    if problem:
+        raise InputError(source or str(p), field, f"light profile {p} {problem}")
     try:
         text = p.read_text(encoding="utf-8")
         raw = tomllib.loads(text)

@@ -22,7 +22,7 @@ import re
 import sys
 from pathlib import Path
 
-from fitting.errors import InputError
+from fitting.errors import InputError, file_problem
 from runner.protocol import Protocol
 
 if sys.version_info >= (3, 11):
@@ -135,8 +135,9 @@ def read_lab_text(name: str, protocol_path, field: str) -> tuple[str, Path]:
     path = Path(name)
     if not path.is_absolute():
         path = (Path(protocol_path).parent if protocol_path is not None else Path.cwd()) / path
-    if not path.is_file():
-        raise InputError(source, field, f"file {path} {'does not exist' if not path.exists() else 'is not a file'}")
+    problem = file_problem(path)
+    if problem:
+        raise InputError(source, field, f"file {path} {problem}")
     try:
         text = path.read_text(encoding="utf-8")
     except UnicodeDecodeError:

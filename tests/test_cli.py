@@ -100,3 +100,47 @@ def test_an_error_raised_by_a_ctrl_c_is_reported_as_the_ctrl_c(monkeypatch, caps
     monkeypatch.setattr(cli, "cmd_check", fails)
     with pytest.raises(ImportError, match="a missing part"):
         cli.main(["check", str(PROTOCOLS / "pilot_short.toml")])
+
+
+_BLOCK_A_PACKAGE = """
+import importlib.abc, sys
+class Missing(importlib.abc.MetaPathFinder):
+    def find_spec(self, name, path=None, target=None):
+        if name.split('.')[0] == sys.argv[1]:
+            raise ModuleNotFoundError(f"No module named {name!r}", name=name)
+sys.meta_path.insert(0, Missing())
+from runner.cli import main
+sys.exit(main(sys.argv[2:]))
+"""
+
+
+@pytest.mark.slow
+def test_a_package_missing_from_the_set_up_is_one_line_naming_it():
+    # a set-up that stopped half-way (the package list is pyproject.toml's): the late imports are where it shows
+    import subprocess
+    import sys
+
+    done = subprocess.run([sys.executable, "-c", _BLOCK_A_PACKAGE, "threadpoolctl", "check",
+                           str(PROTOCOLS / "pilot_short.toml")], capture_output=True, text=True, cwd=ROOT, timeout=120)
+    assert done.returncode == 1, done.stderr
+    lines = done.stderr.strip().splitlines()
+    assert len(lines) == 1 and "'threadpoolctl' is missing" in lines[0] and "./setup.sh" in lines[0], done.stderr
+
+
+@pytest.mark.slow
+def test_a_name_too_long_for_the_file_system_is_one_line_naming_it(tmp_path):
+    # ext4, XFS and tmpfs allow 255 bytes per name (NAME_MAX in POSIX limits.h; common practice, no source)
+    long_name = "n" * 300
+    protocol = tmp_path / "p.toml"
+    protocol.write_text(f'[safety]\ncaution_file = "{long_name}.txt"\n')
+    cases = {
+        ("check", tmp_path / f"{long_name}.toml"): "name: too long for the file system",
+        ("check", protocol): "safety.caution_file: file",
+        ("simulate", PROTOCOLS / "pilot_short.toml", "--out", tmp_path / long_name): "name: too long",
+    }
+    for args, expected in cases.items():
+        done = run_cli(*args)
+        lines = done.stderr.strip().splitlines()
+        assert done.returncode == 2 and len(lines) == 1, (args[0], done.stderr[-400:])
+        assert expected in lines[0] and "Traceback" not in done.stderr, lines[0]
+    assert list(tmp_path.iterdir()) == [protocol]  # nothing half-made
