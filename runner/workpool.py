@@ -262,6 +262,7 @@ class ClusterPool:
         for name in list(logging.root.manager.loggerDict):
             if name == "distributed" or name.startswith("distributed."):
                 logging.getLogger(name).setLevel(logging.CRITICAL)
+        _check_tls_settings(address)
         try:
             self.client = Client(address, timeout=f"{CONNECT_TIMEOUT_S}s", set_as_default=False)
         except (OSError, TimeoutError, ValueError) as exc:
@@ -333,6 +334,22 @@ class ClusterPool:
     def close(self) -> None:
         """Disconnect from the scheduler (the cluster keeps running)."""
         self.client.close()
+
+
+def _check_tls_settings(address: str) -> None:
+    """Refuse a ``tls://`` address when Dask's configuration gives this process no TLS context.
+
+    Dask builds the context from its configuration (``distributed.comm.tls.*``);
+    without one, its client fails with a ``TypeError`` and then hangs closing.
+    """
+    if not address.lower().startswith("tls://"):
+        return
+    from distributed.security import Security
+
+    if Security().get_connection_args("client").get("ssl_context") is None:
+        raise InputError("argument", "--scheduler", f"{address} is a TLS address, but Dask's configuration names no "
+                         "TLS files for this process: set distributed.comm.tls.ca-file, .client.cert and "
+                         ".client.key (e.g. DASK_DISTRIBUTED__COMM__TLS__CA_FILE=...) as for the cluster's workers")
 
 
 def open_pool(scheduler: str | None = None, workers: int | None = None, preload: tuple[str, ...] = ()):

@@ -139,6 +139,18 @@ def test_an_unreachable_scheduler_is_one_line(tmp_path, capsys, monkeypatch):
     assert code == 2 and "cannot reach a Dask scheduler" in err and err.count("\n") == 1, err
 
 
+def test_a_tls_address_without_tls_settings_is_one_line_at_once(tmp_path):
+    # Dask's client needs an SSL context for tls:// (its configuration's distributed.comm.tls.* files);
+    # without it, Dask itself raised a TypeError and then hung 20 s closing the half-made client
+    (tmp_path / "p.toml").write_text(SMALL, encoding="utf-8")
+    clean = {k: v for k, v in os.environ.items() if not k.startswith("DASK_")}
+    done = run_cli("plan", tmp_path / "p.toml", "--runs", "1", "--out", tmp_path / "r",
+                   "--scheduler", f"tls://{LOOPBACK}:1", env=clean, timeout=120)
+    lines = done.stderr.strip().splitlines()
+    assert done.returncode == 2 and len(lines) == 1, done.stderr[-600:]
+    assert "TLS address" in lines[0] and "distributed.comm.tls" in lines[0], lines[0]
+
+
 def test_losing_a_worker_mid_study_changes_no_number(cluster, protocol_file, local_study, tmp_path):
     address, workers = cluster
     out = tmp_path / "cluster"
