@@ -67,12 +67,20 @@ def check_size(protocol: Protocol, source: str) -> None:
     InputError
         Over :data:`MAX_TRIALS` trials or :data:`MAX_HOURS` hours.
     """
+    too_large = size_problem(protocol)
+    if too_large:
+        raise InputError(source, "design.trials_per_track",
+                         f"{too_large}; split the design into several protocols or sessions (--session) with fewer "
+                         "tracks, trials, offsets or lags")
+
+
+def size_problem(protocol: Protocol) -> str | None:
+    """Why one session of ``protocol`` is larger than :func:`check_size` accepts, or ``None``."""
     trials, seconds = session_size(protocol)
     if trials > MAX_TRIALS or seconds > MAX_HOURS * 3600:
-        raise InputError(source, "design.trials_per_track",
-                         f"{trials} trials, about {seconds / 3600:.0f} hours: more than one session can hold "
-                         f"({MAX_TRIALS} trials, {MAX_HOURS:g} hours); split the design into several protocols "
-                         "or sessions (--session) with fewer tracks, trials, offsets or lags")
+        return (f"{trials} trials, about {seconds / 3600:.0f} hours: more than one session can hold "
+                f"({MAX_TRIALS} trials, {MAX_HOURS:g} hours)")
+    return None
 
 
 def header_lines(protocol: Protocol) -> list[str]:

@@ -42,6 +42,7 @@ from fitting.errors import InputError
 from fitting.figures import save
 from fitting.tables import write_csv
 from runner.observers import ObserverModel
+from runner.overview import size_problem
 from runner.protocol import Protocol
 from runner.study import (QUANTITIES, TRIALS_FIELD, UNITS, Design, StudySettings, check_designs, console_table,
                           coverage_limits, coverage_se, design_columns, expand_designs, failed_run_notes,
@@ -156,8 +157,12 @@ def with_trial_factors(designs: list[Design], factors) -> tuple[list[Design], li
                 continue
             seen[n] = f
             design = d.protocol.design.model_copy(update={"trials_per_track": n})
-            out.append(replace(d, protocol=d.protocol.model_copy(update={"design": design}),
-                               settings={TRIALS_FIELD: n, **d.settings}))
+            scaled = d.protocol.model_copy(update={"design": design})
+            too_large = size_problem(scaled)
+            if too_large:
+                notes.append(f"{d.label}: factor {f:g} gives {too_large}; not simulated")
+                continue
+            out.append(replace(d, protocol=scaled, settings={TRIALS_FIELD: n, **d.settings}))
     return out, notes
 
 

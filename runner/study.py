@@ -49,6 +49,7 @@ from fitting.tables import prepare_trials
 from runner.launch import derive_seed, package_versions, simulate_rows
 from runner.light import written_settings
 from runner.observers import ObserverModel, load_model
+from runner.overview import check_size
 from runner.protocol import Protocol, parse_protocol, protocol_from_dict, read_protocol_text
 from runner.replay import TrackFactory
 from runner.workpool import TaskStore, WorkerLost, check_count, interrupted_line, open_pool, run_tasks
@@ -199,7 +200,9 @@ def expand_designs(protocol: Protocol, model: ObserverModel, vary: list[str] | N
             observer = ObserverModel(**model_raw)
         except ValueError as exc:
             raise InputError("argument", where, str(exc)) from None
-        designs.append(Design(protocol_from_dict(raw, where), observer, settings))
+        varied = protocol_from_dict(raw, where)
+        check_size(varied, where)    # one session of each design must be one `check` would accept
+        designs.append(Design(varied, observer, settings))
     return designs
 
 

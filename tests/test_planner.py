@@ -251,3 +251,35 @@ def test_recover_names_a_coverage_whose_wilson_interval_lies_below_95_percent():
     result = RecoveryResult(pd.DataFrame(), pd.DataFrame(rows), pd.DataFrame({"replicate": range(8)}), "t")
     named = [line for line in result.summary_lines() if line.startswith("coverage below 95 %")]
     assert named == ["coverage below 95 % (its 95 % Wilson interval lies below): as written: amplitude lag 0"]
+
+
+_LARGE = """
+[display]
+refresh_hz = 120
+[timing]
+answer_window_s = 0.5
+pause_after_answer_s = 0.0
+[design]
+adapter_offsets_deg = [-90.0, -60.0, -30.0, -15.0, 15.0, 30.0, 60.0, 90.0]
+lags = [0]
+tracks_per_condition = 8
+trials_per_track = 600
+practice_trials = 0
+"""
+
+
+def test_plan_simulates_no_design_larger_than_a_session_check_accepts():
+    # 9 conditions x 8 tracks x 600 = 43,200 trials: within check's session limit; doubled it is not
+    from runner.overview import MAX_TRIALS, session_size
+    from runner.planner import with_trial_factors
+    from runner.study import Design, expand_designs
+
+    protocol = parse_protocol(_LARGE, source="large.toml")
+    assert session_size(protocol)[0] == 43_200 <= MAX_TRIALS
+    designs, notes = with_trial_factors(expand_designs(protocol, ObserverModel()), (0.5, 1, 2))
+    assert [d.protocol.design.trials_per_track for d in designs] == [300, 600]
+    assert all(isinstance(d, Design) for d in designs)
+    assert len(notes) == 1 and "factor 2 gives 86400 trials" in notes[0] and "not simulated" in notes[0]
+    with pytest.raises(InputError) as refused:
+        expand_designs(protocol, ObserverModel(), ["design.trials_per_track=[600, 1200]"])
+    assert refused.value.source == "--vary design.trials_per_track=1200" and "more than one session" in str(refused.value)
