@@ -865,6 +865,7 @@ def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figure
     predictions = read_predictions(predictions_path)
     points = match_predictions(measured, predictions, str(predictions_path), interpolate)
     left_out, estimable_notes = not_estimable(points)
+    points["in_statistics"] = ~left_out          # the figure draws the others hollow
     used = points[~left_out]
     rows, fallback = [], ()
     too_few, replicate_notes = few_replicates(None if cov_table is None else

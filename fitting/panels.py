@@ -24,6 +24,7 @@ FAINT = "#9a9a9a"
 _LEFT, _RIGHT, _BOTTOM = 0.62, 0.18, 0.48
 _GAP_W, _GAP_H = 0.26, 0.5
 _TITLE_LINE = 0.17          # one line of the figure title
+_LEGEND_LINE = 0.19         # one legend entry
 _CHAR_W = 0.55 / 72         # average character width per point of font size (DejaVu Sans)
 
 
@@ -174,10 +175,12 @@ class PanelGrid:
 
     def legend(self, entries):
         """Legend right of the grid, outside every panel: ``(label, colour, kind)`` with kind
-        ``"line"``, ``"dashed"``, ``"marker"`` or ``"open"``."""
+        ``"line"``, ``"dashed"``, ``"marker"`` or ``"open"``; a label may run over several lines."""
         x = self.width - _RIGHT - self.legend_w + 0.15
         y = self.height - self.top - 0.1
         for label, colour, kind in entries:
+            more = label.count("\n") * _LEGEND_LINE / 2      # a longer label is centred lower
+            y -= more
             if kind in ("line", "dashed"):
                 layer = self.layers.setdefault((1.2, "solid" if kind == "line" else "dashed", 1.0), _Layer())
                 layer.segments.append(np.array([[x, y], [x + 0.25, y]]))
@@ -187,7 +190,7 @@ class PanelGrid:
                 xs.append(np.array([x + 0.125]))
                 ys.append(np.array([y]))
             self.ax.text(x + 0.33, y, label, ha="left", va="center", fontsize=self.font, color=INK)
-            y -= 0.19
+            y -= _LEGEND_LINE + more
 
     def panel_title(self, i, text: str):
         x0, y0 = self.origin(i)

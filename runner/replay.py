@@ -15,12 +15,16 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+import numpy as np
+
 from fitting.errors import InputError
+from fitting.nback import is_stream_log
 from fitting.provenance import check_sidecar_owner, log_cells, log_rows
 from fitting.tables import read_log_table
 from runner.protocol import parse_protocol
 from runner.schedule import design_conditions
 from runner.shared_evidence import SharedEvidence
+from runner.stream import STREAM_CONDITION
 from runner.tracks import as_started, new_track, new_track_copies
 
 
@@ -39,7 +43,11 @@ def check_sidecar_matches(log: Path, side: Path, meta: dict, protocol) -> None:
 
     Its observer and session must be those the log's rows name
     (:func:`fitting.provenance.check_sidecar_owner`), and for adapt-test
-    logs every condition and procedure of the rows must be its protocol's.
+    logs every condition and procedure of the rows must be its protocol's;
+    a stream log's sidecar must hold a stream protocol whose K and
+    directions are those of the rows' preceding periods, and an adapt-test
+    log's an adapt-test protocol.  No track may hold more trials than the
+    protocol gives one.
 
     Raises
     ------
@@ -48,18 +56,58 @@ def check_sidecar_matches(log: Path, side: Path, meta: dict, protocol) -> None:
     """
     cells = log_cells(log)
     check_sidecar_owner(log, side, meta, cells)
-    if cells is None or protocol.stream is not None:
+    if cells is None:
         return
-    known = {c.name for c in design_conditions(protocol)}
+    stream = is_stream_log(log)
+    if stream != (protocol.stream is not None):
+        kinds = ("an adapt-test block", "a stream block")
+        raise InputError(str(side), "protocol", f"its protocol ({meta['protocol'].get('path')}) is "
+                         f"{kinds[protocol.stream is not None]}, and its log {log.name} holds "
+                         f"{'stream tests' if stream else 'adapt-test trials'}: {_ANOTHER_SESSION}")
+    known = {STREAM_CONDITION} if stream else {c.name for c in design_conditions(protocol)}
     for field, found, allowed in (("condition", cells["condition"], known),
                                   ("procedure", cells["procedure"] - {"practice"}, {protocol.procedure.method})):
         stray = sorted(found - allowed)
         if stray:
             raise InputError(str(side), "protocol", f"its protocol ({meta['protocol'].get('path')}) has no {field} "
-                             f"{' or '.join(map(repr, stray[:3]))}, which rows of its log {log.name} hold: the sidecar is "
-                             "another session's (put this session's own beside the log, or move it away), or the "
-                             "log was edited")
+                             f"{' or '.join(map(repr, stray[:3]))}, which rows of its log {log.name} hold: "
+                             f"{_ANOTHER_SESSION}")
+    if stream:
+        _check_preceding_periods(log, side, meta, protocol)
     _check_track_lengths(log, side, meta, protocol)
+
+
+#: The end of every refusal of a sidecar that does not fit its log.
+_ANOTHER_SESSION = ("the sidecar is another session's (put this session's own beside the log, or move it away), "
+                    "or the log was edited")
+
+
+def _check_preceding_periods(log: Path, side: Path, meta: dict, protocol) -> None:
+    """Refuse a stream log whose tests follow other periods than the sidecar's stream shows.
+
+    Every test of a stream follows ``stream.nback_periods`` periods, each in
+    one of the directions ``stream.direction_step_deg`` apart: a sidecar of
+    a stream with another K or other directions would describe (and plan)
+    another experiment.  Cells that are not numbers are left to the fit,
+    which names them.
+    """
+    s = protocol.stream
+    directions = np.array(s.offsets_deg, dtype=float)
+    for line, row in enumerate(log_rows(log, ("preceding_offsets_deg",)) or (), start=2):
+        try:
+            shown = [float(v) for v in row["preceding_offsets_deg"].split(";")]
+        except ValueError:
+            continue
+        where = f"line {line} of its log {log.name}"
+        if len(shown) != s.nback_periods:
+            raise InputError(str(side), "protocol", f"its protocol ({meta['protocol'].get('path')}) shows "
+                             f"stream.nback_periods = {s.nback_periods} periods before each test, and {where} "
+                             f"lists {len(shown)}: {_ANOTHER_SESSION}")
+        odd = [v for v in shown if not np.isclose(directions, v, atol=1e-6).any()]
+        if odd:
+            raise InputError(str(side), "protocol", f"its protocol ({meta['protocol'].get('path')}) shows directions "
+                             f"stream.direction_step_deg = {s.direction_step_deg:g} deg apart, and {where} lists "
+                             f"an offset of {odd[0]:g} deg: {_ANOTHER_SESSION}")
 
 
 def _check_track_lengths(log: Path, side: Path, meta: dict, protocol) -> None:
@@ -79,8 +127,7 @@ def _check_track_lengths(log: Path, side: Path, meta: dict, protocol) -> None:
         if n > most:
             what = "practice trials" if key == "practice" else f"trials on track {key[1]} of {key[0]}"
             raise InputError(str(side), "protocol", f"its protocol ({meta['protocol'].get('path')}) gives at most "
-                             f"{most} {what}, and its log {log.name} holds {n}: the sidecar is another session's "
-                             "(put this session's own beside the log, or move it away), or the log was edited")
+                             f"{most} {what}, and its log {log.name} holds {n}: {_ANOTHER_SESSION}")
 
 
 def check_sidecars(logs) -> None:

@@ -327,6 +327,54 @@ def test_shifts_flagged_not_estimable_are_left_out_with_a_note(tmp_path, capsys)
     assert s3["chi2_p"] == pytest.approx(stats.f.sf(chi2 / 7, 7, 30.0), rel=1e-4)
 
 
+@pytest.mark.slow
+def test_points_left_out_of_the_statistics_are_drawn_hollow_and_off_the_scale_at_its_edge(tmp_path):
+    # Before, the overlay drew S2's one-sided point (its PSE on a bound, -40 deg) and S3's few-trials point filled,
+    # like every point in chi2 and gain, and the -40 deg set the vertical scale of every panel.
+    import matplotlib.image as mpimg
+
+    from fitting.compare_figure import BEYOND_LABEL, LEFT_OUT_LABEL, overlay_canvas
+    from fitting.figures import GRID_DPI
+
+    fit = _fit_folder(tmp_path, flags={("S2", 2, 30.0): "one-sided on-bound", ("S3", 0, -60.0): "few-trials"})
+    shifts = pd.read_csv(fit / "aftereffect.csv")
+    shifts.loc[(shifts["observer"] == "S2") & (shifts["lag"] == 2) & (shifts["adapter_offset_deg"] == 30),
+               ["pse_shift_deg", "ci_low", "ci_high"]] = [-40.0, -40.0, -39.9999]
+    shifts.loc[shifts["flags"].fillna("").str.contains("few-trials"), ["ci_low", "ci_high"]] = np.nan
+    shifts.to_csv(fit / "aftereffect.csv", index=False)
+    compare_results(fit, tmp_path / "pred.csv", tmp_path / "cmp")
+    points = pd.read_csv(tmp_path / "cmp" / "comparison_points.csv")
+    out = points[~points["in_statistics"]]
+    assert out[["observer", "lag", "adapter_offset_deg"]].values.tolist() == [["S2", 2, 30.0], ["S3", 0, -60.0]]
+    canvas = overlay_canvas(points)
+    assert -40.0 < canvas.ylim[0] < -2.0                  # the scale is the kept points' and the predictions'
+    image = mpimg.imread(tmp_path / "cmp" / "comparison.png")
+    assert image.shape[0] == round(canvas.height * GRID_DPI)
+
+    def pixel(panel: int, x: float, y: float) -> np.ndarray:
+        cx, cy = canvas.to_canvas(panel, x, y)            # inches; images count rows from the top
+        return image[int(round((canvas.height - float(cy)) * GRID_DPI)), int(round(float(cx) * GRID_DPI)), :3]
+
+    nudge = 0.012 * 60.0                                  # the two lags sit side by side (compare_figure.py)
+    white = np.ones(3)
+    # hollow: a white centre inside its lag's ring (S2's at the panel's lower edge: off the scale)
+    assert np.allclose(pixel(1, 30.0 + nudge / 2, canvas.ylim[0]), white, atol=0.02)
+    s3 = points[(points["observer"] == "S3") & (points["lag"] == 0) & (points["adapter_offset_deg"] == -60)]
+    assert np.allclose(pixel(2, -60.0 - nudge / 2, float(s3["pse_shift_deg"].iloc[0])), white, atol=0.02)
+    # a point in the statistics is filled with its lag's colour
+    s1 = points[(points["observer"] == "S1") & (points["lag"] == 0) & (points["adapter_offset_deg"] == 60)]
+    assert not np.allclose(pixel(0, 60.0 - nudge / 2, float(s1["pse_shift_deg"].iloc[0])), white, atol=0.2)
+    labels = [t.get_text() for t in canvas.ax.texts]
+    assert LEFT_OUT_LABEL + BEYOND_LABEL in labels
+    # and the report says what the hollow points are, beside the figure and in the points table
+    page = (tmp_path / "cmp" / "report.html").read_text()
+    assert "hollow points (one-sided, or too few trials for an interval) are left out of" in page
+    assert "in_statistics" in page
+    # without a left-out point the figure is as before: no hollow point, no such legend entry
+    kept = overlay_canvas(points[points["in_statistics"]])
+    assert not any(key[1] is False for key in kept.marks)
+
+
 @pytest.mark.parametrize("edit, field", [
     # before: KeyError: 'log', AttributeError, AttributeError, TypeError, each a traceback with exit 1
     (lambda d: d.update(sessions=[{"observer": "S1"}]), "sessions[0].log: expected a text, found nothing"),

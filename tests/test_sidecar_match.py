@@ -133,3 +133,62 @@ def test_a_session_that_did_not_complete_is_noted_by_fit(capsys, sessions, tmp_p
     summary = (tmp_path / "fit" / "summary.txt").read_text()
     assert "session s1 did not complete: its last part never recorded its end (killed, or still running)" in summary
     assert summary.count("did not complete") == 1                                      # sim02's completed
+
+
+STREAM = PILOT.parent / "stream_nback.toml"
+
+
+def _stream_variant(folder: Path, name: str, *edits: tuple[str, str]) -> Path:
+    """The bundled stream protocol, shortened to 48 tests (4 rounds of 12 directions), with ``edits`` made."""
+    text = STREAM.read_text()
+    for old, new in (("trials_per_track = 300 ", "trials_per_track = 24 "), *edits):
+        assert old in text
+        text = text.replace(old, new)
+    path = folder / f"{name}.toml"
+    path.write_text(text)
+    return path
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("edit, says", [
+    (("nback_periods = 3 ", "nback_periods = 2 "), "stream.nback_periods = 2 periods before each test, and line 2"),
+    (("direction_step_deg = 30 ", "direction_step_deg = 45 "), "stream.direction_step_deg = 45 deg apart"),
+    (("trials_per_track = 24 ", "trials_per_track = 12 "), "gives at most 12 trials on track"),
+    (('method = "updown"', 'method = "weighted"'), "has no procedure 'updown'"),
+], ids=["nback", "directions", "shorter-tracks", "procedure"])
+def test_a_stream_logs_sidecar_of_another_stream_protocol_is_refused(capsys, tmp_path, edit, says):
+    # Before, a stream fit checked its sidecar for the observer and session only: a sidecar of a stream with
+    # another K, other directions, shorter tracks or another procedure was taken (exit 0), and the report
+    # recorded that protocol and its plan for the log.
+    own = _stream_variant(tmp_path, "own")
+    other = _stream_variant(tmp_path, "other", edit)
+    assert cli(capsys, "simulate", own, "--out", tmp_path / "own", "--seed", "5")[0] == 0
+    assert cli(capsys, "simulate", other, "--out", tmp_path / "other", "--seed", "5")[0] == 0
+    from runner.replay import check_sidecars
+
+    log = tmp_path / "own" / "sim01-s1.trials.csv"
+    check_sidecars([log])                                     # its own sidecar: accepted
+    side = log.with_name("sim01-s1.session.json")
+    shutil.copyfile(tmp_path / "other" / "sim01-s1.session.json", side)
+    code, err = cli(capsys, "fit", tmp_path / "own", "--out", tmp_path / "fit", "--bootstrap", "20", "--no-figures")
+    line = one_line(err)
+    assert code == 2 and line.startswith(f"aftershift: {side}: protocol:") and says in line
+    assert not (tmp_path / "fit").exists()
+
+
+def test_a_sidecar_of_the_other_kind_of_block_is_refused(capsys, sessions, tmp_path):
+    # a stream session's sidecar beside an adapt-test log (and the reverse): before, a stream protocol's
+    # sidecar was not checked against an adapt-test log at all
+    stream = _stream_variant(tmp_path, "stream")
+    assert cli(capsys, "simulate", stream, "--out", tmp_path / "stream", "--seed", "5")[0] == 0
+    folder, side = _with_sidecar(sessions, tmp_path, tmp_path / "stream" / "sim01-s1.session.json")
+    code, err = cli(capsys, "fit", folder, "--out", tmp_path / "fit", "--bootstrap", "20", "--no-figures")
+    line = one_line(err)
+    assert code == 2 and line.startswith(f"aftershift: {side}: protocol:")
+    assert "is a stream block, and its log sim01-s1.trials.csv holds adapt-test trials" in line
+    from runner.replay import check_sidecars
+
+    shutil.copyfile(sessions["pilot"] / "sim01-s1.session.json", tmp_path / "stream" / "sim01-s1.session.json")
+    with pytest.raises(InputError, match="is an adapt-test block, and its log sim01-s1.trials.csv holds stream tests"):
+        check_sidecars([tmp_path / "stream" / "sim01-s1.trials.csv"])
+    assert not (tmp_path / "fit").exists()
