@@ -207,12 +207,14 @@ def cmd_run(args) -> int:
         print(_display_failed_line(args, "the connection to the X server was lost"), file=sys.stderr)
 
     on_connection_lost(connection_lost, EXIT_DISPLAY)
-    lost = None
+    lost = stop = None
     try:
         result = run_on_screen(
             protocol, args.protocol, text, args.out, args.observer, presenter, answers, caution, console, extra,
             resume=args.resume, session=args.session, seed=args.seed,
         )
+    except KeyboardInterrupt as exc:    # the stop line says whether the last quick fit was shown
+        stop = exc
     except Exception as exc:
         if not _from_display(exc):
             raise
@@ -223,6 +225,8 @@ def cmd_run(args) -> int:
         except Exception as exc:
             if not _from_display(exc):
                 raise
+    if stop is not None:
+        return _interrupted(args, stop, quick_fit_shown=console.fit_is_current)
     if lost is not None:    # the part is marked failed in the sidecar
         print(_display_failed_line(args, f"{type(lost).__name__}: {lost}; was the window closed?"), file=sys.stderr)
         return EXIT_DISPLAY
@@ -232,13 +236,31 @@ def cmd_run(args) -> int:
     return EXIT_OK
 
 
-def _run_kept(args) -> str:
-    """What an ended ``run`` leaves, and how to go on: resume a session that started, else start it again."""
+def _run_kept(args, quick_fit_shown: bool = True) -> str:
+    """What an ended ``run`` leaves, and how to go on: resume a session that started, else start it again.
+
+    A session recorded complete has nothing to resume: its fit is named
+    instead, and whether the stop skipped the quick fit after its last trial.
+    """
+    from runner.launch import completed_rows
     from runner.trial_log import log_paths
 
-    if log_paths(args.out, args.observer, args.session)[1].exists():
+    log, sidecar = log_paths(args.out, args.observer, args.session)
+    done = completed_rows(args.out, args.observer, args.session)
+    if done is not None:
+        skipped = "" if quick_fit_shown else "; the quick fit after the last trial was skipped"
+        return (f"the session is complete: all {done} trials are saved in {log} (nothing to resume){skipped}; "
+                f"to fit them: {_fit_command(log, args.out)}")
+    if sidecar.exists():
         return f"every completed trial is in the log; to continue: {_resume_command(args)}"
     return "the session had not started and nothing was recorded; to start it, run the same command again"
+
+
+def _fit_command(logs, out) -> str:
+    """The ``fit`` command for ``logs`` (a log or a folder of them), into ``out/fit``."""
+    import shlex
+
+    return shlex.join(["aftershift", "fit", str(logs), "--out", str(Path(out) / "fit")])
 
 
 def _display_failed_line(args, what: str) -> str:
@@ -253,11 +275,16 @@ def _from_display(exc: BaseException) -> bool:
 
 def _simulate_kept(args) -> str:
     """What a stopped ``simulate`` leaves, and the command that continues it (:func:`_simulate_resume_command`)."""
-    from runner.launch import simulated_names
+    from runner.launch import completed_rows, simulated_names
     from runner.trial_log import log_paths
 
-    if not log_paths(args.out, simulated_names(1)[0], args.session)[0].exists():
+    names = simulated_names(args.observers or 1)
+    if not log_paths(args.out, names[0], args.session)[0].exists():
         return "nothing was recorded; run the same command again"
+    done = [completed_rows(args.out, name, args.session, kind="simulation") for name in names]
+    if None not in done:
+        return (f"every session is complete: all {sum(done)} trials are saved in {args.out} (nothing to resume); "
+                f"to fit them: {_fit_command(args.out, args.out)}")
     return f"every completed trial is in the log; to continue: {_simulate_resume_command(args)}"
 
 
@@ -782,18 +809,22 @@ def _interrupt_behind(exc: BaseException) -> KeyboardInterrupt | None:
     return None
 
 
-def _interrupted(args, exc: KeyboardInterrupt) -> int:
-    """Say in one line that the command was interrupted, and what of its work is kept; return 130."""
+def _interrupted(args, exc: KeyboardInterrupt, quick_fit_shown: bool = True) -> int:
+    """Say in one line that the command was interrupted, and what of its work is kept; return 130.
+
+    ``quick_fit_shown``: False when a ``run`` was stopped before its last quick fit covered every trial.
+    """
     command = getattr(args, "command", None)
-    print(f"aftershift{' ' + command if command else ''}: {_interrupted_line(args, exc)}", file=sys.stderr)
+    print(f"aftershift{' ' + command if command else ''}: {_interrupted_line(args, exc, quick_fit_shown)}",
+          file=sys.stderr)
     return 130
 
 
-def _interrupted_line(args, exc: BaseException) -> str:
+def _interrupted_line(args, exc: BaseException, quick_fit_shown: bool = True) -> str:
     command = getattr(args, "command", None)
     how = "stopped by SIGTERM" if isinstance(exc, Terminated) else "interrupted"
     if command == "run":
-        return f"{how}; {_run_kept(args)}"
+        return f"{how}; {_run_kept(args, quick_fit_shown)}"
     if command == "simulate":
         return f"{how}; {_simulate_kept(args)}"
     if command in ("fit", "compare", "plan", "recover"):

@@ -64,6 +64,8 @@ class ExperimenterConsole(Console):
     def __init__(self, quick_fit=None, stream=None):
         self.quick_fit = quick_fit
         self.stream = stream or sys.stdout
+        #: True once a quick fit has covered every trial logged so far (False after each new trial).
+        self.fit_is_current = False
 
     def _say(self, text: str) -> None:
         self.stream.write(text + "\n")
@@ -75,6 +77,7 @@ class ExperimenterConsole(Console):
 
     def trial_done(self, done, total, dropped_so_far, seconds_left):
         """One status line per trial."""
+        self.fit_is_current = False
         minutes = seconds_left / 60
         self._say(f"trial {done:4d}/{total}  left {total - done:4d}  ~{minutes:5.1f} min  dropped frames so far {dropped_so_far}")
 
@@ -85,6 +88,7 @@ class ExperimenterConsole(Console):
         text = self.quick_fit(rows)
         if text:
             self._say(text)
+        self.fit_is_current = True
 
     def note(self, text):
         """A one-line message."""

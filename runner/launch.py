@@ -377,18 +377,19 @@ def is_complete(sidecar: dict, rows: int) -> bool:
     return bool(parts) and parts[-1].get("ended_by") == "completed" and sidecar.get("rows_total") == rows
 
 
-def completed_rows(out_dir: str | Path, observer: str, session: str) -> int | None:
+def completed_rows(out_dir: str | Path, observer: str, session: str, kind: str = "screen") -> int | None:
     """The trials of a session that is complete already (:func:`is_complete`), read without opening it; else None.
 
-    Lets ``run --resume`` say so before it opens the display.  Anything
-    unreadable or unusual gives None: the resume then reads the files itself
-    and reports what it finds.
+    Lets ``run --resume`` say so before it opens the display, and a stopped
+    command say that nothing is left to resume.  ``kind`` is the sidecar's
+    (``"screen"`` or ``"simulation"``).  Anything unreadable or unusual gives
+    None: the resume then reads the files itself and reports what it finds.
     """
     path, sidecar = log_paths(out_dir, observer, session)
     try:
         content = json.loads(sidecar.read_text(encoding="utf-8"))
         rows = path.read_bytes().count(b"\n") - 1
-        return rows if content.get("kind") == "screen" and is_complete(content, rows) else None
+        return rows if content.get("kind") == kind and is_complete(content, rows) else None
     except (OSError, ValueError, AttributeError, TypeError, KeyError, IndexError):
         return None
 
@@ -471,7 +472,10 @@ def run_part(log: TrialLog, sidecar: dict, run, session) -> SessionResult:
     interrupt (Ctrl-C, SIGTERM), a full disk or any other failure marks the
     part ``interrupted``, ``disk full``, ``disk error`` or ``failed`` in the
     sidecar, with the rows and track states of the log as it is then, and is
-    raised again; the log keeps every completed row.
+    raised again; the log keeps every completed row.  An interrupt that comes
+    once the log holds every trial of the session (during the pause after
+    the last trial, or the quick fit after it) leaves the part ``completed``
+    and is raised once that is recorded.
     """
     try:
         log.keep_sidecar_room(len(sidecar_bytes(sidecar)) + SIDECAR_BYTES_PER_TRIAL * run.expected_rows()
@@ -486,6 +490,8 @@ def run_part(log: TrialLog, sidecar: dict, run, session) -> SessionResult:
             _end_part(log, sidecar, run, how, exc)
             raise
         finish_sidecar(log, sidecar, result)
+        if result.stop is not None:     # it came during the summary, after the part had ended
+            raise result.stop
         return result
     finally:
         _running.clear()
@@ -497,14 +503,17 @@ def _end_part(log: TrialLog, sidecar: dict, run, how: str, cause: BaseException 
 
     The rows and track states are those of the log now (an interrupt can
     fall between a row's write and the tracks' update): the logged rows are
-    replayed into a fresh copy of ``run``.  When the sidecar cannot be
-    written, an :class:`InputError` ``cause`` says so.
+    replayed into a fresh copy of ``run``.  A part ``interrupted`` after its
+    log came to hold every trial of the session is recorded ``completed``.
+    When the sidecar cannot be written, an :class:`InputError` ``cause`` says so.
     """
     part = sidecar["parts"][-1]
     try:
         rows = read_rows(log.path)
-        states = track_states_after(run, rows, str(log.path))
+        states, complete = track_states_after(run, rows, str(log.path))
         total = len(rows)
+        if how == "interrupted" and complete:
+            how = "completed"
     except (OSError, InputError):
         states, total = None, log.n_rows
     part.update(ended=now_iso(), ended_by=how, rows_added=total - len(log.rows))
@@ -522,8 +531,14 @@ def _end_part(log: TrialLog, sidecar: dict, run, how: str, cause: BaseException 
             cause.args = (cause.line(),)
 
 
-def track_states_after(run, rows: list[dict[str, str]], source: str) -> dict:
+def track_states_after(run, rows: list[dict[str, str]], source: str) -> tuple[dict, bool]:
     """The track states of ``run``'s session after ``rows``, replayed into a fresh copy of it.
+
+    Returns
+    -------
+    states : dict
+    complete : bool
+        True when the rows are the whole session (no trial left to run).
 
     Raises
     ------
@@ -531,8 +546,8 @@ def track_states_after(run, rows: list[dict[str, str]], source: str) -> dict:
         If the rows are not those the session's protocol and seed produce.
     """
     fresh = type(run)(run.protocol, run.seed, run.observer, run.session)
-    fresh.replay(rows, source)
-    return fresh.track_states()
+    complete = fresh.replay(rows, source) >= fresh.expected_rows()
+    return fresh.track_states(), complete
 
 
 def finish_sidecar(log: TrialLog, sidecar: dict, result: SessionResult) -> None:

@@ -51,6 +51,10 @@ class SessionResult:
         Final state of every adaptive track, keyed ``condition/track``.
     timing : dict
         The presenter's timing summary.
+    stop : KeyboardInterrupt or None
+        A Ctrl-C or SIGTERM that came during the summary after the part had
+        ended (the quick fit); it ends only the summary, and whoever records
+        the part raises it once the part is recorded as it ended.
     """
 
     ended_by: str
@@ -58,6 +62,7 @@ class SessionResult:
     rows_added: int
     track_states: dict
     timing: dict
+    stop: KeyboardInterrupt | None = None
 
 
 class Console:
@@ -114,12 +119,22 @@ class Tally:
         self.console.trial_done(len(self.logged), self.total, self.dropped, left * seconds_per_trial)
 
     def finish(self, how: str, presenter: Presenter, end_text: str, track_states: dict) -> SessionResult:
-        """Summarise on the console, show the end screen, report how it ended."""
-        if len(self.logged) > self.n_before:
-            self.console.block_done(self.logged)
-        presenter.show_text(end_text, wait=False)
+        """Summarise on the console, show the end screen, report how it ended.
+
+        The part has ended ``how`` before the summary: a stop signal during
+        the summary skips the rest of it and the end screen, and is handed
+        back in the result (:attr:`SessionResult.stop`).
+        """
+        stop = None
+        try:
+            if len(self.logged) > self.n_before:
+                self.console.block_done(self.logged)
+        except KeyboardInterrupt as exc:
+            stop = exc
+        if stop is None:
+            presenter.show_text(end_text, wait=False)
         return SessionResult(how, len(self.logged), len(self.logged) - self.n_before, track_states,
-                             presenter.timing_summary())
+                             presenter.timing_summary(), stop)
 
 
 def _key(slot: ScheduledTrial) -> str:
@@ -261,7 +276,10 @@ class BlockRun:
 
     # -- replay ---------------------------------------------------------------
     def replay(self, rows: list[dict[str, str]], source: str) -> int:
-        """Feed logged rows back into the tracks; return the next slot index.
+        """Feed logged rows back into the tracks; return the index of the next slot to run.
+
+        The number of slots when the rows complete the session (slots of
+        finished tracks are never run).
 
         Raises
         ------
@@ -270,10 +288,10 @@ class BlockRun:
         """
         i = 0
         for slot_index, slot in enumerate(self.schedule.slots):
+            if self._skip(slot):    # a finished track's slots are passed over, after the last row too
+                continue
             if i == len(rows):
                 return slot_index
-            if self._skip(slot):
-                continue
             row, where = rows[i], f"{source}: line {i + 2}"
             plan = self.plan(slot, i + 1)
             expected = (plan.condition, "" if plan.track is None else str(plan.track), str(plan.index))

@@ -29,13 +29,27 @@ TINY = DATA / "display_tiny.toml"
 TOTAL = 7    # the tiny protocol's trials (tests/test_display_session.py)
 
 
-def _start(tmp_path: Path, env: dict) -> tuple[subprocess.Popen, Path]:
+def _start(tmp_path: Path, env: dict, program: tuple[str, ...] = ("-m", "runner.cli")) -> tuple[subprocess.Popen, Path]:
     out_file = tmp_path / "stdout.txt"
     args = ["run", TINY, "--observer", "e01", "--out", tmp_path / "d", "--windowed", "--seed", "11",
             safety.REFRESH_OVERRIDE_OPTION]
-    process = subprocess.Popen([sys.executable, "-m", "runner.cli", *map(str, args)], cwd=ROOT, env=env,
+    process = subprocess.Popen([sys.executable, *program, *map(str, args)], cwd=ROOT, env=env,
                                stdout=out_file.open("w"), stderr=subprocess.PIPE, text=True)
     return process, out_file
+
+
+#: ``aftershift`` that sends itself SIGTERM as its quick fit of all TOTAL trials starts: the instant, exactly.
+SIGTERM_IN_THE_LAST_QUICK_FIT = f"""
+import os, signal, sys
+from runner import cli
+fit = cli._quick_fit_text
+def quick_fit(rows):
+    if len(rows) == {TOTAL}:
+        os.kill(os.getpid(), signal.SIGTERM)
+    return fit(rows)
+cli._quick_fit_text = quick_fit
+sys.exit(cli.console())
+"""
 
 
 def _rows(tmp_path: Path) -> int:
@@ -78,6 +92,30 @@ def test_sigterm_during_the_end_screen_leaves_the_session_completed(own_x_server
     assert process.returncode == 0, err
     assert "Traceback" not in err
     assert out_file.read_text().splitlines()[-1] == f"session completed: {TOTAL} trials this time, {TOTAL} in the log"
+    assert _parts(tmp_path) == [("completed", TOTAL)]
+
+
+def test_sigterm_during_the_last_quick_fit_leaves_the_session_complete(own_x_server, tmp_path):  # noqa: F811
+    # before: exit 130 "every completed trial is in the log; to continue: ... --resume", the part `interrupted`
+    require_xdotool()
+    env = own_x_server.env()
+    process, out_file = _start(tmp_path, env, ("-c", SIGTERM_IN_THE_LAST_QUICK_FIT))
+    _answer_until(process, env, lambda: process.poll() is not None or _rows(tmp_path) == TOTAL)
+    err = process.communicate(timeout=60)[1]
+    lines = err.strip().splitlines()
+    assert process.returncode == 130 and len(lines) == 1, err
+    log = tmp_path / "d" / "e01-s1.trials.csv"
+    assert lines[0] == (f"aftershift run: stopped by SIGTERM; the session is complete: all {TOTAL} trials are saved "
+                        f"in {log} (nothing to resume); the quick fit after the last trial was skipped; "
+                        f"to fit them: aftershift fit {log} --out {tmp_path / 'd' / 'fit'}")
+    assert out_file.read_text().splitlines()[-1].startswith(f"trial {TOTAL:4d}/{TOTAL} ")    # no quick fit shown
+    assert _parts(tmp_path) == [("completed", TOTAL)]
+
+    resumed = subprocess.run([sys.executable, "-m", "runner.cli", "run", str(TINY), "--observer", "e01", "--out",
+                              str(tmp_path / "d"), "--windowed", "--resume"], cwd=ROOT, env={**env, "DISPLAY": ""},
+                             capture_output=True, text=True, timeout=60)
+    assert resumed.returncode == 0 and resumed.stderr == "", resumed.stderr     # said before any window: no display
+    assert resumed.stdout == f"session complete already: {TOTAL} trials in the log; nothing to resume\n"
     assert _parts(tmp_path) == [("completed", TOTAL)]
 
 

@@ -293,3 +293,43 @@ def test_a_complete_log_whose_last_part_was_interrupted_after_its_last_trial_is_
     side = json.loads((out / "P01-s1.session.json").read_text())
     assert [(p["ended_by"], p["rows_added"]) for p in side["parts"]] == [("interrupted", total)]
     assert side["track_states"] == json.loads((pilot_whole / SIDE).read_text())["track_states"]
+
+
+def _stop_in_the_last_summary(monkeypatch) -> None:
+    """A Ctrl-C during the end-of-session summary, once every trial is logged (simulate's last sync)."""
+    from runner.console import SimulationConsole
+
+    real = SimulationConsole.block_done
+
+    def block_done(self, rows):
+        if len(rows) == self.bar.total:
+            raise KeyboardInterrupt
+        real(self, rows)
+
+    monkeypatch.setattr(SimulationConsole, "block_done", block_done)
+
+
+@pytest.mark.parametrize("when", ["after the last row's write", "during the summary"])
+def test_a_stop_after_the_last_trial_leaves_the_session_complete(capsys, tmp_path, monkeypatch, pilot_whole, when):
+    # before: the part was recorded `interrupted`, the stop line said "to continue: ... --resume", and the
+    # sidecar never said the session was complete
+    out = tmp_path / "o"
+    total = (pilot_whole / NAME).read_bytes().count(b"\n") - 1
+    if when == "during the summary":
+        _stop_in_the_last_summary(monkeypatch)
+    else:
+        _stop_after_writing(monkeypatch, total, _interrupt)
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, *SIM)
+    line = one_line(err)
+    assert code == 130 and "--resume" not in line, line
+    assert f"every session is complete: all {total} trials are saved in {out} (nothing to resume)" in line
+    assert line.endswith(f"to fit them: aftershift fit {out} --out {out / 'fit'}")
+    side = json.loads((out / SIDE).read_text())
+    assert [(p["ended_by"], p["rows_added"]) for p in side["parts"]] == [("completed", total)]
+    assert side["track_states"] == json.loads((pilot_whole / SIDE).read_text())["track_states"]
+    assert logs(out) == logs(pilot_whole)
+
+    monkeypatch.undo()
+    code, err = cli(capsys, "simulate", PILOT, "--out", out, "--resume")
+    assert code == 0 and one_line(err).endswith(f"the session is complete ({total} trials); nothing to resume")
+    assert json.loads((out / SIDE).read_text())["parts"] == side["parts"]      # no empty part added
