@@ -4,9 +4,9 @@ Exit codes: 0 success; 1 a Python package missing from the set-up (one
 line naming it); 2 bad input (protocol, data, arguments, observer ID)
 with one line on stderr naming the file and field; 3 refused for safety
 (photosensitivity, display timing) unless explicitly acknowledged; 4 the
-display failed during a ``run`` (window closed from outside, X connection
-lost), with one line naming the resume command; 130 stopped by Ctrl-C or
-SIGTERM.
+display failed during a ``run`` or while its window opened (window closed
+from outside, X connection lost), with one line naming how to go on; 130
+stopped by Ctrl-C or SIGTERM.
 """
 
 from __future__ import annotations
@@ -194,19 +194,27 @@ def cmd_run(args) -> int:
             print(f"session complete already: {done} trials in the log; nothing to resume")
             return EXIT_OK
     console = ExperimenterConsole(quick_fit=_quick_fit_text)
-    presenter, answers = display.open_screen(protocol, args.windowed, args.refresh_ack, console)
+    when = "while its window opened"
+
+    def connection_lost():      # Xlib ends the process after this: record the part, say how to go on
+        end_running_part("failed")
+        print(_display_failed_line(args, "the connection to the X server was lost", when), file=sys.stderr)
+
+    on_connection_lost(connection_lost, EXIT_DISPLAY)     # before the window: Xlib's own ending prints two lines
+    try:
+        presenter, answers = display.open_screen(protocol, args.windowed, args.refresh_ack, console)
+    except Exception as exc:
+        if not _from_display(exc):
+            raise
+        print(_display_failed_line(args, _display_error(exc), when), file=sys.stderr)
+        return EXIT_DISPLAY
+    when = "during the session"
     extra = {
         "measured_refresh_hz": presenter.measured_hz,
         "acknowledged": {"flicker": bool(args.flicker_ack), "refresh_mismatch": bool(args.refresh_ack)},
         "safety": screening.to_dict(),
         **({"light": light} if light is not None else {}),
     }
-
-    def connection_lost():      # Xlib ends the process after this: record the part, say how to go on
-        end_running_part("failed")
-        print(_display_failed_line(args, "the connection to the X server was lost"), file=sys.stderr)
-
-    on_connection_lost(connection_lost, EXIT_DISPLAY)
     lost = stop = None
     try:
         result = run_on_screen(
@@ -228,7 +236,7 @@ def cmd_run(args) -> int:
     if stop is not None:
         return _interrupted(args, stop, quick_fit_shown=console.fit_is_current)
     if lost is not None:    # the part is marked failed in the sidecar
-        print(_display_failed_line(args, f"{type(lost).__name__}: {lost}; was the window closed?"), file=sys.stderr)
+        print(_display_failed_line(args, f"{_display_error(lost)}; was the window closed?", when), file=sys.stderr)
         return EXIT_DISPLAY
     print(f"session {result.ended_by}: {result.rows_added} trials this time, {result.rows_total} in the log")
     if result.ended_by == "quit":
@@ -263,9 +271,16 @@ def _fit_command(logs, out) -> str:
     return shlex.join(["aftershift", "fit", str(logs), "--out", str(Path(out) / "fit")])
 
 
-def _display_failed_line(args, what: str) -> str:
-    """The one line of a ``run`` whose display failed during the session."""
-    return f"aftershift run: the display failed during the session ({what}); {_run_kept(args)}"
+def _display_failed_line(args, what: str, when: str) -> str:
+    """The one line of a ``run`` whose display failed ``when`` (while its window opened, during the session)."""
+    return f"aftershift run: the display failed {when} ({what}); {_run_kept(args)}"
+
+
+def _display_error(exc: BaseException) -> str:
+    """A window library's error in words: the X display named when it could no longer be reached."""
+    if type(exc).__name__ == "NoSuchDisplayException":     # pyglet's, one class per platform
+        return f"cannot connect to the X display {os.environ.get('DISPLAY') or '(DISPLAY not set)'}"
+    return f"{type(exc).__name__}: {exc}"
 
 
 def _from_display(exc: BaseException) -> bool:

@@ -137,3 +137,39 @@ def test_a_window_closed_or_killed_from_outside_ends_in_one_line_with_the_resume
     assert lines[0].endswith("--resume") and "--seed" not in lines[0]
     rows = _rows(tmp_path)
     assert rows >= 3 and _parts(tmp_path) == [("failed", rows)]
+
+
+#: ``aftershift`` that kills its X server (SIGKILL) at the named step of opening its window, then takes that step.
+X_SERVER_KILLED_WHILE_THE_WINDOW_OPENS = """
+import os, signal, sys, time
+from runner import cli
+from runner.display import presenter
+
+def killed_before(step):
+    def run(*args, **kwargs):
+        pid = int(os.environ["TEST_XVFB_PID"])
+        os.kill(pid, signal.SIGKILL)
+        while open(f"/proc/{pid}/stat").read().split(") ")[1][0] != "Z":     # gone, its sockets closed
+            time.sleep(0.01)
+        return step(*args, **kwargs)
+    return run
+
+name = os.environ["TEST_KILL_BEFORE"]
+setattr(presenter, name, killed_before(getattr(presenter, name)))
+sys.exit(cli.console())
+"""
+
+
+@pytest.mark.parametrize("step", ["open_window", "measure_refresh"])
+def test_an_x_server_lost_while_the_window_opens_ends_in_one_line(own_x_server, tmp_path, step):  # noqa: F811
+    # before: "open_window" ended in pyglet's NoSuchDisplayException traceback (exit 1), "measure_refresh" in
+    # Xlib's two "XIO: fatal IO error" lines (exit 1): our handler was installed only once the window was open
+    env = {**own_x_server.env(), "TEST_XVFB_PID": str(own_x_server.process.pid), "TEST_KILL_BEFORE": step}
+    process, out_file = _start(tmp_path, env, ("-c", X_SERVER_KILLED_WHILE_THE_WINDOW_OPENS))
+    err = process.communicate(timeout=120)[1]
+    lines = err.strip().splitlines()
+    assert process.returncode == 4 and len(lines) == 1, err
+    assert lines[0].startswith("aftershift run: the display failed while its window opened (")
+    assert lines[0].endswith("; the session had not started and nothing was recorded; to start it, "
+                             "run the same command again")
+    assert not (tmp_path / "d" / "e01-s1.trials.csv").exists() and not (tmp_path / "d" / "e01-s1.session.json").exists()
