@@ -699,8 +699,10 @@ def simulate_rows(protocol: Protocol, model: ObserverModel, session_seed: int, o
     run = loop(protocol, session_seed, observer, session)
     hz = protocol.display.refresh_hz
     rows: list[dict] = []
-    run.run(HeadlessPresenter(hz), observer_kind(model, (session_seed, 5), hz), rows.append, [],
-            screen_texts(protocol, ""), None, "simulated session")
+    result = run.run(HeadlessPresenter(hz), observer_kind(model, (session_seed, 5), hz), rows.append, [],
+                     screen_texts(protocol, ""), None, "simulated session")
+    if result.stop is not None:     # a stop signal that came as the session ended is still a stop
+        raise result.stop
     return rows
 
 
