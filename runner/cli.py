@@ -129,7 +129,7 @@ def cmd_check(args) -> int:
     refusal = safety.screening_refusal(result, source=args.protocol)
     if refusal is not None:
         if args.flicker_ack:
-            print(f"photosensitivity: over the thresholds, acknowledged with {safety.ACKNOWLEDGE_OPTION}")
+            print(f"photosensitivity: {result.verdict}, acknowledged with {safety.ACKNOWLEDGE_OPTION}")
             return EXIT_OK
         raise refusal
     return EXIT_OK
