@@ -307,6 +307,9 @@ def test_weber_contrast_and_dots_in_cd_m2(tmp_path):
     ('dots_cd_m2 = 5.0\nweber_contrast = 2.0', "light"),              # two ways to give the dots
     ('background_cd_m2 = 5.0\ndots_cd_m2 = 5.0', "light.dots_cd_m2"),  # dots at the background: invisible
     ('background_cd_m2 = 5.0\nweber_contrast = 0.0', "light.weber_contrast"),
+    # under one 8-bit step (1/255) from the background: both in grey level 0 (0.5 cd/m2 is this profile's black)
+    ('background_cd_m2 = 0.5\ndots_cd_m2 = 0.5001', "light.dots_cd_m2"),
+    ('background_cd_m2 = 10.0\nweber_contrast = 0.001', "light.weber_contrast"),
 ])
 def test_out_of_range_or_conflicting_luminance_exits_2_naming_the_field(tmp_path, capsys, light, field):
     write_profile(tmp_path, black=0.5, amplitude=99.5)
