@@ -66,6 +66,12 @@ MODEL_FIELDS = ("black_cd_m2", "amplitude_cd_m2", "gain", "gamma")
 #: curves (common practice, no source).
 GAIN_RANGE = (0.2, 5.0)
 GAMMA_RANGE = (0.3, 6.0)
+#: Least ratio of grey's maximum to its black level a light profile may have. Displays give hundreds to
+#: thousands to one; a ratio near 1 means the photometer did not see the patch (aimed at the wall, the
+#: room light swamping it) or a dynamic mode followed the level (common practice, no source). Near 1 the
+#: screening could not count a flash at all: WCAG 2.x SC 2.3.1 counts none whose darker state is at 0.8
+#: of the maximum or above.
+MIN_CONTRAST_RATIO = 10.0
 
 
 @dataclass(frozen=True)
@@ -270,6 +276,28 @@ class ChannelFit:
         return lines
 
 
+def flatness(model: GainOffsetGamma) -> str | None:
+    """Why a grey model is too flat to be a display's, or None when its maximum is clearly above black.
+
+    Parameters
+    ----------
+    model : GainOffsetGamma
+        The grey fit.
+
+    Returns
+    -------
+    str or None
+        A sentence for an error message when the maximum is less than
+        :data:`MIN_CONTRAST_RATIO` times the black level.
+    """
+    black, top = model.min_cd_m2, model.max_cd_m2
+    if top >= MIN_CONTRAST_RATIO * black:
+        return None
+    return (f"the maximum, {top:.4g} cd/m2, is only {top / black:.3g} times the black level, {black:.4g} cd/m2, "
+            f"less than the {MIN_CONTRAST_RATIO:g} times any display in use gives (common practice, no source); "
+            "was the photometer aimed at the patch, with the display's dynamic modes off? Measure again")
+
+
 def _rows(r: Readings, mask) -> tuple[int, ...]:
     return tuple(int(x) for x in np.sort(r.row[np.asarray(mask)]))
 
@@ -368,7 +396,10 @@ def fit_channel(readings: Readings, level_ci: float = 0.95, fit_anyway: bool = F
         The readings have problems (:func:`check_readings`, or readings far
         from the fitted curve) and ``fit_anyway`` is False.
     InputError
-        Too few levels, or no light at all.
+        Too few levels, no light at all, a grey maximum not clearly above
+        black (:func:`flatness`), or a parameter the readings leave
+        undetermined (an interval that is not finite); ``fit_anyway`` does
+        not lift these.
     """
     channel = str(readings.channel[0]) if readings.channel.size else "grey"
     n_levels = np.unique(readings.level).size
@@ -403,6 +434,14 @@ def fit_channel(readings: Readings, level_ci: float = 0.95, fit_anyway: bool = F
         raise ReadingsRefused(readings.source, far)
     dof = int(y.size - len(MODEL_FIELDS))
     ci = _intervals(best, dof, level_ci)
+    flat = flatness(model) if channel == "grey" else None
+    if flat:
+        raise InputError(readings.source, f"{channel}: luminance_cd_m2", flat)
+    for name, limits in ci.items():
+        if not all(math.isfinite(x) for x in limits):
+            raise InputError(readings.source, f"{channel}: {name}",
+                             f"the readings do not determine it (its {level_ci:.0%} interval is not finite); "
+                             "measure levels across the whole range")
     lo, hi = ci["gain"]
     ci["offset"] = (1.0 - hi, 1.0 - lo)
     return ChannelFit(channel, model, ci, level_ci, readings, y - fitted, dof, problems + far)
@@ -471,12 +510,12 @@ def make_readings(level, cd_m2, channel=None, row=None, source: str = "<readings
         raise InputError(source, "rows", "no readings")
     for i in range(n):
         if not (math.isfinite(level[i]) and 0.0 <= level[i] <= 1.0):
-            raise InputError(source, f"row {row[i]}: level", f"expected a grey level from 0 to 1, got {level[i]!r}")
+            raise InputError(source, f"row {row[i]}: level", f"expected a grey level from 0 to 1, got {float(level[i])!r}")
         if not (math.isfinite(cd_m2[i]) and 0.0 <= cd_m2[i] < 1e6):
             raise InputError(source, f"row {row[i]}: luminance_cd_m2",
-                             f"expected a reading in cd/m2 from 0 to 1e6, got {cd_m2[i]!r}")
+                             f"expected a reading in cd/m2 from 0 to 1e6, got {float(cd_m2[i])!r}")
         if channel[i] not in CHANNELS:
-            raise InputError(source, f"row {row[i]}: gun", f"expected one of {', '.join(CHANNELS)}, got {channel[i]!r}")
+            raise InputError(source, f"row {row[i]}: gun", f"expected one of {', '.join(CHANNELS)}, got {str(channel[i])!r}")
     return Readings(level, cd_m2, channel, row, source)
 
 

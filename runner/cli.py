@@ -73,14 +73,28 @@ def _check_seed(value):
     return _check_count(value, "--seed", 0, MAX_SEED, "a seed")
 
 
-def _screen(protocol, path: str, acknowledged: bool):
-    """Run the photosensitivity screening; refuse (exit 3) unless it passes or is acknowledged."""
+def _screen(protocol, path: str, acknowledged: bool, light=None):
+    """Run the photosensitivity screening; refuse (exit 3) unless it clears or is acknowledged."""
     from runner import safety
 
-    result = safety.screen_protocol(protocol)
+    result = safety.screen_protocol(protocol, light)
     refusal = safety.screening_refusal(result, source=str(path))
     if refusal is not None and not acknowledged:
         raise refusal
+    return result
+
+
+def _screen_before_window(protocol, path: str, acknowledged: bool, light=None):
+    """Screen a protocol as ``check`` and ``run`` do (exit 3 unless cleared or acknowledged), then print the
+    verdict and the caution: the display commands light the screen with no observer caution screen."""
+    from runner import safety
+
+    result = _screen(protocol, path, acknowledged, light)
+    lines = result.summary_lines()
+    print(lines[0])
+    if not result.cleared:
+        print(f"photosensitivity: {result.verdict}, acknowledged with {safety.ACKNOWLEDGE_OPTION}")
+    print("\n".join(line.strip() for line in lines if line.startswith("  caution:")), flush=True)
     return result
 
 
@@ -130,7 +144,7 @@ def cmd_check(args) -> int:
     refusal = safety.screening_refusal(result, source=args.protocol)
     if refusal is not None:
         if args.flicker_ack:
-            print(f"photosensitivity: over the thresholds, acknowledged with {safety.ACKNOWLEDGE_OPTION}")
+            print(f"photosensitivity: {result.verdict}, acknowledged with {safety.ACKNOWLEDGE_OPTION}")
             return EXIT_OK
         raise refusal
     return EXIT_OK
@@ -489,6 +503,7 @@ def cmd_display_test(args) -> int:
 
     display.check_seconds(args.seconds)
     protocol, _ = _load(args.protocol)
+    _screen_before_window(protocol, args.protocol, args.flicker_ack)
     if args.frames:
         from runner.display.capture import capture_frames
 
@@ -511,6 +526,8 @@ def cmd_measure_light(args) -> int:
         return EXIT_OK
     from runner.protocol import Protocol
 
+    screened, light = _light_meter_screening(protocol, args.protocol) if args.protocol else (Protocol(), None)
+    _screen_before_window(screened, args.protocol or "", args.flicker_ack, light)
     patch = None if args.full_field else args.patch_deg
     # Stopped early is not an error: the readings are kept and the message says how to resume.
     try:
@@ -521,6 +538,23 @@ def cmd_measure_light(args) -> int:
               "(use --resume)", file=sys.stderr)
         return 130
     return EXIT_OK
+
+
+def _light_meter_screening(written, path: str):
+    """What ``measure-light`` screens: the protocol as ``check`` reads it, or, where its ``[light]`` profile
+    cannot be read (it is often the one being measured), its grey levels as written under the sRGB
+    assumption; returns (protocol, light model or None)."""
+    from runner.light import SRGB_LIGHT
+    from runner.protocol import parse_protocol, read_protocol_text
+
+    if written.light is None:
+        return written, None
+    try:
+        return parse_protocol(read_protocol_text(path), str(path)), None
+    except InputError as exc:
+        print(f"aftershift: note: screening the grey levels as written, on an sRGB display: {exc.line()}",
+              file=sys.stderr)
+        return written, SRGB_LIGHT
 
 
 def _version() -> str:
@@ -674,6 +708,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--frames", metavar="DIR",
                    help="instead of timing, write rendered frames of each period type as PNGs and a table to DIR")
     p.add_argument("--frames-per-period", type=_int_arg, default=3, help="frames written per period type (default 3)")
+    ack(p)
     p.set_defaults(func=cmd_display_test)
 
     p = sub.add_parser("measure-light", help="photometer readings of this display -> light profile for [light]")
@@ -691,6 +726,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--label", default="", help="free text naming the display, written into the profile")
     p.add_argument("--fit-anyway", action="store_true",
                    help="fit readings that have problems (they are listed and recorded in the profile)")
+    ack(p)
     p.set_defaults(func=cmd_measure_light)
     return parser
 

@@ -39,6 +39,7 @@ from scipy import optimize
 
 from fitting.errors import InputError
 from runner.light_profile import LightProfile, load_profile
+from runner.protocol import grey_step_short
 from runner.safety import SRGB_TO_XYZ, srgb_to_linear
 
 #: Y row of the IEC 61966-2-1 RGB -> XYZ matrix (sRGB luminance weights).
@@ -332,9 +333,11 @@ def plan_light(protocol, source: str = "", now=None) -> LightPlan | None:
         if math.isnan(dots_level):
             raise _range_error(source, f"light.{dots_key}", target, profile, "dots")
     dots_cd = _cd_m2(profile, light, dots_level, colour)
-    if np.allclose(dots_level * colour, bg_level, rtol=0.0, atol=1e-6):
+    if grey_step_short(dots_level * colour, bg_level):
         raise InputError(source, f"light.{dots_key}" if dots_key else "dots.level",
-                         f"dots at the background's luminance ({bg_cd:.4g} cd/m2) are invisible")
+                         f"dots of {dots_cd:.4g} cd/m2 (grey level {dots_level:.4f}) on a background of {bg_cd:.4g} "
+                         f"cd/m2 (grey level {bg_level:.4f}) differ by less than one step of an 8-bit display "
+                         "(1/255), so they may be drawn in the background's own code, invisible")
     age = profile.age_days(now)
     warnings = []
     if age > settings.max_age_days:

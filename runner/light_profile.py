@@ -28,7 +28,7 @@ from pathlib import Path
 
 import numpy as np
 
-from fitting.display_model import CHANNELS, MODEL_FIELDS, ChannelFit, GainOffsetGamma
+from fitting.display_model import CHANNELS, MODEL_FIELDS, ChannelFit, GainOffsetGamma, flatness
 from fitting.errors import InputError, file_problem
 from runner.light_profile_schema import check_profile, check_summary
 
@@ -235,8 +235,9 @@ def load_profile(path: str | Path, source: str = "", field: str = "light.profile
     Raises
     ------
     InputError
-        Missing or malformed file; errors about its content name the profile
-        and the key.
+        Missing or malformed file, or a grey maximum not clearly above black
+        (:func:`fitting.display_model.flatness`); errors about its content
+        name the profile and the key.
     """
     p = Path(path)
     problem = file_problem(p)
@@ -262,6 +263,9 @@ def load_profile(path: str | Path, source: str = "", field: str = "light.profile
     models = {channel: GainOffsetGamma(*(getattr(section, k) for k in MODEL_FIELDS))
               for channel in CHANNELS if (section := getattr(checked.model, channel)) is not None}
     check_summary(checked, str(p), models["grey"].min_cd_m2, models["grey"].max_cd_m2)
+    flat = flatness(models["grey"])
+    if flat:
+        raise InputError(str(p), "model.grey.amplitude_cd_m2", flat)
     return LightProfile(
         path=str(p),
         sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(),

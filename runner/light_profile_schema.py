@@ -4,7 +4,8 @@
 (:mod:`runner.light_profile`) and raises one :class:`InputError` naming the
 profile file and the first bad field.  Unknown keys, wrong types (a
 ``fitted_anyway = "no"`` is not a boolean), nan or infinite numbers, format
-versions other than 1 and model parameters no display has are refused, so
+versions other than 1, model parameters no display has and a grey maximum not
+clearly above black (:func:`fitting.display_model.flatness`) are refused, so
 that a profile cannot turn a requested luminance into a wrong grey level
 without a word.
 
@@ -33,9 +34,8 @@ AGREEMENT = 1e-6
 #: Units of a profile's fields, by the end of the field's name, for the range messages.
 UNITS = {"_cd_m2": "cd/m2", "_hz": "Hz", "_cm": "cm", "_px": "px", "level": "(grey level)"}
 
-# interval limits are nan where a fit had no degrees of freedom left
-_Limit = Annotated[float, Field(allow_inf_nan=True)]
-_Interval = Annotated[list[_Limit], Field(min_length=2, max_length=2)]
+# interval limits are finite: measure-light refuses a fit that leaves a parameter undetermined
+_Interval = Annotated[list[float], Field(min_length=2, max_length=2)]
 
 
 class _Section(BaseModel):

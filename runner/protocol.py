@@ -117,13 +117,19 @@ class DotsSettings(_Section):
     dot_size_deg : float
         Dot diameter.
     speed_deg_s : float
-        Speed of every moving dot.
+        Speed of every moving dot; at least one pixel per second on the
+        protocol's display (slower dots show no motion to judge).
     coherence : float
-        Fraction of dots moving in the period's direction (0..1).
+        Fraction of dots moving in the period's direction (0..1), in every
+        period, the test included; it must give at least one moving dot
+        (``round(coherence * dots) >= 1``): a test without coherent motion
+        has no direction to judge.
     lifetime_frames : int
         Frames a dot lives before it is replotted at a random place.
     level : float
-        Dot grey level, 0..1 of the display's range.
+        Dot grey level, 0..1 of the display's range; dots must differ from
+        ``display.background`` by at least one step of an 8-bit display
+        (1/255) in some gun, or they may be drawn invisible.
     color_rgb : [float, float, float]
         Dot colour multiplier per gun (0..1); the drawn colour is
         ``level * color_rgb``.  White by default.
@@ -212,7 +218,10 @@ class DesignSettings(_Section):
     practice_trials : int
         Practice trials at the start, easy levels, excluded from analysis.
     practice_offset_deg : float
-        Test offset magnitude of practice trials.
+        Test offset magnitude of practice trials; at least the smallest step
+        the tracks use (the least of ``procedure.steps_deg``; 0.5°, the
+        Bayesian level grid's spacing; the least spacing of
+        ``procedure.levels_deg``), since practice is scored right or wrong.
     practice_feedback : bool
         Show whether practice answers were correct.
     break_every : int
@@ -268,6 +277,16 @@ class DesignSettings(_Section):
         if sorted(v) != sorted(-x if abs(x) != 180 else x for x in v):
             raise ValueError("expected a set symmetric about 0 (each offset with its mirror)")
         return v
+
+
+#: One step of the grey levels an 8-bit display draws (1/255 of its range): dots that differ from the
+#: background by less may be drawn in the background's own code, invisible (common practice, no source).
+GREY_STEP = 1.0 / 255.0
+
+
+def grey_step_short(dot_rgb, background: float) -> bool:
+    """True when no gun of the dots differs from the background by one 8-bit step (:data:`GREY_STEP`)."""
+    return max(abs(v - background) for v in dot_rgb) < GREY_STEP - 1e-12
 
 
 PSE_GRID_STEP_DEG = 0.5   # spacing of the Bayesian tracks' PSE grid and level list (runner.tracks)
@@ -569,6 +588,27 @@ def frame_plan(protocol: Protocol) -> dict[str, timing.FrameCount]:
     return plan
 
 
+def _round_up(x: float, digits: int = 3) -> float:
+    """``x`` rounded up to ``digits`` significant digits (a least value quoted in a message must pass)."""
+    scale = 10.0 ** (digits - 1 - math.floor(math.log10(x)))
+    return math.ceil(x * scale) / scale
+
+
+def smallest_step_deg(proc: ProcedureSettings) -> float:
+    """The smallest difference of test offsets the tracks of ``proc`` work with, in degrees.
+
+    The least of ``steps_deg`` (up–down and weighted), the Bayesian level
+    grid's spacing :data:`PSE_GRID_STEP_DEG`, or the least spacing of
+    ``levels_deg`` (constant stimuli).
+    """
+    if proc.method == "bayesian":
+        return PSE_GRID_STEP_DEG
+    if proc.method == "constant":
+        levels = sorted(proc.levels_deg)
+        return min(b - a for a, b in zip(levels, levels[1:]))
+    return min(proc.steps_deg)
+
+
 def _cross_checks(p: Protocol) -> None:
     """Checks that involve several sections; raise InputError(field=...)."""
     width_deg, height_deg = p.display.extent_deg
@@ -593,12 +633,21 @@ def _cross_checks(p: Protocol) -> None:
         raise InputError(
             "", "dots.density_per_deg2", f"dots would cover {covered:.0%} of the aperture; expected at most 50 %"
         )
-    if p.dots.speed_deg_s == 0:
-        raise InputError("", "dots.speed_deg_s", "dots that do not move show no direction; expected a speed above 0")
+    px_per_s = p.dots.speed_deg_s * p.display.px_per_deg
+    if px_per_s < 1.0:
+        raise InputError("", "dots.speed_deg_s", f"{p.dots.speed_deg_s:g} deg/s is {px_per_s:.3g} pixels per second on "
+                         "this display: dots that do not move a pixel a second show no direction; expected at least "
+                         f"{_round_up(1.0 / p.display.px_per_deg):g} deg/s")
+    if round(p.dots.coherence * p.dots.n_dots) < 1:
+        raise InputError("", "dots.coherence", f"{p.dots.coherence:g} moves none of the {p.dots.n_dots} dots in the "
+                         "period's direction, so the test has no direction to judge; expected at least "
+                         f"{_round_up(1.0 / p.dots.n_dots):g} (one dot)")
     drawn = [p.dots.level * c for c in p.dots.color_rgb]
-    if max(abs(v - p.display.background) for v in drawn) < 1e-6:
-        raise InputError("", "dots.level", f"dots drawn at the background's grey level ({p.display.background:g}) "
-                         "are invisible; change dots.level, dots.color_rgb or display.background")
+    if grey_step_short(drawn, p.display.background):
+        raise InputError("", "dots.level", f"dots drawn at grey level {p.dots.level:.4g} (times dots.color_rgb) "
+                         f"on a background of {p.display.background:.4g} differ by less than one step of an 8-bit "
+                         "display (1/255), so they may be drawn in the background's own code, invisible; change "
+                         "dots.level, dots.color_rgb or display.background")
     step_deg = p.dots.speed_deg_s / p.display.refresh_hz
     if step_deg > p.dots.aperture_radius_deg / 2:
         raise InputError("", "dots.speed_deg_s", "dots would jump more than half the aperture radius per frame")
@@ -647,6 +696,12 @@ def _cross_checks(p: Protocol) -> None:
         raise InputError("", "procedure.pse_range_deg", "expected a PSE grid that overlaps bounds_deg")
     if p.design.practice_offset_deg > max(abs(lo), abs(hi)):
         raise InputError("", "design.practice_offset_deg", "expected a practice offset inside procedure.bounds_deg")
+    finest = smallest_step_deg(proc)
+    if p.design.practice_trials > 0 and p.design.practice_offset_deg < finest:
+        raise InputError("", "design.practice_offset_deg",
+                         f"a practice tilt of {p.design.practice_offset_deg:g}° is finer than the smallest step the "
+                         f"tracks use ({finest:g}°), so practice answers scored right or wrong would be guesses; "
+                         f"expected at least {finest:g}")
     if p.stream is not None:
         check_stream(p)
 

@@ -82,7 +82,9 @@ Choices made here
   baseline) changes the mean and is counted.  The argument needs many dots
   per field; when so few large dots make up a quarter of a 10° field that a
   handful replotted at once could exceed it (fewer than
-  :data:`FEW_DOTS_PER_QUARTER`), the screening asks for a review in its notes.
+  :data:`FEW_DOTS_PER_QUARTER`), the screening says it cannot judge them
+  (``Screening.unscreened``), and such a protocol is refused like one over the
+  thresholds until it is reviewed (:data:`ACKNOWLEDGE_OPTION`).
 * Red and black.  Black has no chromaticity; it is given the display's white
   point, so a saturated red next to black counts as a red transition (u′v′
   difference 0.26).  With a black background the aperture's mean then has
@@ -116,7 +118,8 @@ Choices made here
 
 Refusals
 --------
-A protocol over the thresholds, a duration that is not whole frames and a
+A protocol over the thresholds, one with a part the screening cannot judge
+(``Screening.unscreened``), a duration that is not whole frames and a
 display whose refresh rate differs from the protocol's are refused with
 :class:`SafetyRefusal` (exit code 3).  Its one-line message says why and how
 to go on; the flicker and refresh refusals can be overridden after review
@@ -718,6 +721,9 @@ class Screening:
         Seconds of that sequence screened.
     reasons : list of str
         Why the protocol fails, in plain sentences (empty if it passes).
+    unscreened : list of str
+        What the screening cannot judge, in plain sentences; each needs a
+        review, as a failure does (:attr:`cleared` is False).
     notes : list of str
         Other findings and the assumptions behind the result.
     light_source : str
@@ -734,12 +740,24 @@ class Screening:
     reasons: list[str] = dataclasses.field(default_factory=list)
     notes: list[str] = dataclasses.field(default_factory=list)
     light_source: str = "sRGB display assumed (IEC 61966-2-1 decoding)"
+    unscreened: list[str] = dataclasses.field(default_factory=list)
+
+    @property
+    def cleared(self) -> bool:
+        """True when the protocol passed and nothing was left unscreened: it runs without a review."""
+        return self.passed and not self.unscreened
+
+    @property
+    def verdict(self) -> str:
+        """``passed``, ``over the thresholds`` or ``not screened in full``."""
+        if not self.passed:
+            return "over the thresholds"
+        return "passed" if self.cleared else "not screened in full"
 
     def summary_lines(self) -> list[str]:
         """A short block for ``aftershift check``."""
-        verdict = "passed" if self.passed else "over the thresholds"
         lines = [
-            f"photosensitivity screening (WCAG 2.x SC 2.3.1): {verdict}",
+            f"photosensitivity screening (WCAG 2.x SC 2.3.1): {self.verdict}",
             f"  worst case: {self.worst_case}, {self.screened_s:.1f} s",
             f"  relative luminance from: {self.light_source}",
             f"  most flashes in any second, general / red (3 allowed):",
@@ -752,11 +770,19 @@ class Screening:
             )
         lines.append(f"  on/off flicker at 3-60 Hz: {f'{self.flicker_hz:.3g} Hz' if self.flicker_hz else 'none'}")
         lines += [f"  - {r}" for r in self.reasons]
+        lines += [f"  - Not screened, so it runs only with {ACKNOWLEDGE_OPTION} after a review: {u}"
+                  for u in self.unscreened]
         lines += [f"  - {n}" for n in self.notes]
-        if self.passed:
+        if self.cleared:
             lines.append("  caution: passing does not make a protocol safe for everyone: people with a history of "
                          "photosensitive epilepsy, seizures or migraine triggered by flicker should not take part; "
                          "follow your ethics board and clinical advice")
+        elif self.passed:
+            lines.append("  caution: what the screening cannot judge may flash; flashes can trigger seizures in "
+                         "people with photosensitive epilepsy and migraine in others; run it only after your ethics "
+                         "board has reviewed it, exclude people with such a history, let anyone stop at any time, "
+                         "and follow clinical advice")
+            lines.append(f"  to run anyway after review, pass {ACKNOWLEDGE_OPTION}")
         else:
             lines.append("  caution: flashes like these can trigger seizures in people with photosensitive epilepsy "
                          "and migraine in others; run it only after your ethics board has reviewed it, exclude "
@@ -776,6 +802,7 @@ class Screening:
             "criterion": "WCAG 2.x SC 2.3.1 general and red flash thresholds",
             "relative_luminance_from": self.light_source,
             "passed": self.passed,
+            "unscreened": list(self.unscreened),
             "acknowledged_with": ACKNOWLEDGE_OPTION if acknowledged else None,
             "worst_case": self.worst_case,
             "screened_s": round(self.screened_s, 4),
@@ -843,20 +870,25 @@ def _notes(
             f"Dots of {size:g}° are not smaller than WCAG's 0.1° fine-pattern limit, so no exemption is claimed; "
             "moving and replotted dots keep every region's mean luminance constant and count only through it."
         )
-    per_quarter = AREA_FRACTION * (FIELD_DEG / size) ** 2
-    background, dot = _colours(protocol, light)
-    contrast = abs(float(light.relative_luminance(dot) - light.relative_luminance(background)))
-    if per_quarter < FEW_DOTS_PER_QUARTER and contrast >= FLASH_CHANGE - _TOL:
-        notes.append(
-            f"Review the dot size: {per_quarter:.0f} dots of {size:g}° make up a quarter of a 10° field, so a few "
-            "of them replotted at once could light up the 25% that counts; this is not screened."
-        )
     order = "the stream's tests back to back" if protocol.stream is not None else "trials of one kind back to back"
     notes.append(
         f"Assumed: answers {FASTEST_ANSWER_S:g} s after each test, {order}, "
         "the 10° field as a disc at the protocol's viewing distance."
     )
     return notes
+
+
+def _unscreened(protocol: Protocol, light) -> list[str]:
+    """What the screening cannot judge (see "Dots themselves" in the module docstring)."""
+    size = protocol.dots.dot_size_deg
+    per_quarter = AREA_FRACTION * (FIELD_DEG / size) ** 2
+    background, dot = _colours(protocol, light)
+    contrast = abs(float(light.relative_luminance(dot) - light.relative_luminance(background)))
+    if per_quarter < FEW_DOTS_PER_QUARTER and contrast >= FLASH_CHANGE - _TOL:
+        return [f"{per_quarter:.0f} dots of {size:g}° make up a quarter of a 10° field, so a few of them replotted "
+                "at once could light up the 25% that counts, which this screening cannot judge (smaller dots, "
+                f"at least {FEW_DOTS_PER_QUARTER} to a quarter field, or less contrast avoid it)."]
+    return []
 
 
 def screen_protocol(protocol: Protocol, light=None) -> Screening:
@@ -917,7 +949,7 @@ def screen_protocol(protocol: Protocol, light=None) -> Screening:
     reasons = _failures(worst_field, seq.label) + _failures(whole, seq.label)
     notes = _notes(protocol, layout, not reasons, fastest, worst_field, light)
     return Screening(not reasons, worst_field, whole, fastest, seq.label, seq.dots_on.size / hz, reasons, notes,
-                     light.source)
+                     light.source, _unscreened(protocol, light))
 
 
 # ----------------------------------------------------------------------------------------------
@@ -925,7 +957,7 @@ def screen_protocol(protocol: Protocol, light=None) -> Screening:
 
 
 def screening_refusal(screening: Screening, source: str = "") -> SafetyRefusal | None:
-    """The refusal for a screening over the thresholds, or None if it passed.
+    """The refusal for a screening over the thresholds or not screened in full, or None if it cleared.
 
     Parameters
     ----------
@@ -933,10 +965,10 @@ def screening_refusal(screening: Screening, source: str = "") -> SafetyRefusal |
     source : str
         The protocol file, for the message.
     """
-    if screening.passed:
+    if screening.cleared:
         return None
     return SafetyRefusal(
-        screening.reasons[0],
+        screening.reasons[0] if screening.reasons else f"not screened: {screening.unscreened[0]}",
         f"to run anyway after review, pass {ACKNOWLEDGE_OPTION}",
         source=source,
         override=ACKNOWLEDGE_OPTION,

@@ -202,6 +202,36 @@ def test_measure_light_from_csv_writes_a_profile_that_round_trips(tmp_path, caps
     assert profile.age_days() < 1
 
 
+def test_flat_readings_are_refused_where_the_profile_is_made(tmp_path, capsys):
+    # every reading 50 cd/m2 (photometer aimed at the wall): this was fitted with exit 0 into a profile
+    # (black = max = 50, intervals nan) under which a refused protocol passed the flash screening
+    f = tmp_path / "flat.csv"
+    f.write_text("level,luminance_cd_m2\n" + "".join(f"{v},50\n" for v in (0, 0.25, 0.5, 0.75, 1)), encoding="utf-8")
+    for extra in ([], ["--fit-anyway"]):
+        assert main(["measure-light", "--readings", str(f), "--out", str(tmp_path / "p.toml"), *extra]) == 2
+        err = capsys.readouterr().err.strip()
+        assert err.startswith(f"aftershift: {f}: grey: luminance_cd_m2: the maximum, 50 cd/m2, is only 1 times"), err
+        assert len(err.splitlines()) == 1
+        assert not (tmp_path / "p.toml").exists()
+    # a real display's contrast passes: 0.4 to 100 cd/m2 (TRUE)
+    lines = [f"{v:.4f},{TRUE.luminance(v):.6f}" for v in np.linspace(0, 1, 7)]
+    f.write_text("level,luminance_cd_m2\n" + "\n".join(lines) + "\n", encoding="utf-8")
+    assert main(["measure-light", "--readings", str(f), "--out", str(tmp_path / "p.toml")]) == 0
+
+
+def test_readings_errors_print_plain_numbers_and_words():
+    # numpy's reprs leaked into the one line: "got np.float64(nan)", "got np.str_('purple')"
+    with pytest.raises(InputError) as caught:
+        make_readings([0.0, 0.5], [float("nan"), 3.0], source="r.csv")
+    assert caught.value.line() == "r.csv: row 1: luminance_cd_m2: expected a reading in cd/m2 from 0 to 1e6, got nan"
+    with pytest.raises(InputError) as caught:
+        make_readings([0.5], [3.0], ["purple"], source="r.csv")
+    assert caught.value.line().endswith("got 'purple'")
+    with pytest.raises(InputError) as caught:
+        make_readings([1.5], [3.0], source="r.csv")
+    assert caught.value.line().endswith("got 1.5")
+
+
 def test_measure_light_refuses_problem_readings_with_exit_2(tmp_path, capsys):
     f = tmp_path / "bad.csv"
     lines = ["level,luminance_cd_m2"] + [f"{v:.4f},{TRUE.luminance(v):.4f}" for v in np.linspace(0, 1, 7)]
@@ -277,6 +307,9 @@ def test_weber_contrast_and_dots_in_cd_m2(tmp_path):
     ('dots_cd_m2 = 5.0\nweber_contrast = 2.0', "light"),              # two ways to give the dots
     ('background_cd_m2 = 5.0\ndots_cd_m2 = 5.0', "light.dots_cd_m2"),  # dots at the background: invisible
     ('background_cd_m2 = 5.0\nweber_contrast = 0.0', "light.weber_contrast"),
+    # under one 8-bit step (1/255) from the background: both in grey level 0 (0.5 cd/m2 is this profile's black)
+    ('background_cd_m2 = 0.5\ndots_cd_m2 = 0.5001', "light.dots_cd_m2"),
+    ('background_cd_m2 = 10.0\nweber_contrast = 0.001', "light.weber_contrast"),
 ])
 def test_out_of_range_or_conflicting_luminance_exits_2_naming_the_field(tmp_path, capsys, light, field):
     write_profile(tmp_path, black=0.5, amplitude=99.5)
@@ -391,6 +424,30 @@ def test_profile_limits_are_where_the_fit_looks_and_a_fitted_profile_loads(tmp_p
     assert GAMMA_RANGE[0] < 2.2 / 2 and GAMMA_RANGE[1] > 2.2 * 2
 
 
+@pytest.mark.parametrize("black, amplitude, refused", [(50.0, 1e-6, True), (82.0, 18.0, True), (10.0, 89.0, True),
+                                                     (10.0, 90.0, False)])
+def test_a_flat_profile_is_refused_where_it_is_loaded(tmp_path, capsys, black, amplitude, refused):
+    # A maximum not clearly above black (at least MIN_CONTRAST_RATIO = 10 times; common practice, no source).
+    # With black at 0.8 of the maximum WCAG 2.x SC 2.3.1 counts no general flash at all (its darker state
+    # must be below 0.80): such a profile let a protocol refused under sRGB pass with 0 flashes.
+    write_profile(tmp_path, black=black, amplitude=amplitude)
+    p = write_protocol(tmp_path, 'profile = "profile.toml"', FAST)
+    if not refused:
+        assert load_profile(tmp_path / "profile.toml").max_cd_m2 == pytest.approx(10 * black)
+        return
+    assert main(["check", str(p)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.startswith(f"aftershift: {tmp_path / 'profile.toml'}: model.grey.amplitude_cd_m2: the maximum"), err
+    assert len(err.splitlines()) == 1
+
+
+def test_a_profile_with_undetermined_parameters_is_refused_where_it_is_loaded(tmp_path, capsys):
+    # measure-light wrote nan intervals for parameters its readings left undetermined
+    err = _check_with_edited_profile(tmp_path, capsys, r"^gamma_ci = .*", "gamma_ci = [nan, nan]")
+    assert err == (f"aftershift: {tmp_path / 'profile.toml'}: model.grey.gamma_ci: expected a finite number "
+                   "(not nan or inf)"), err
+
+
 def test_a_profile_dated_in_the_future_says_so(tmp_path, capsys):
     write_profile(tmp_path, black=0.5, amplitude=99.5, days_ago=-400)
     p = write_protocol(tmp_path, 'profile = "profile.toml"\nbackground_cd_m2 = 2.0')
@@ -465,10 +522,11 @@ def test_cd_m2_protocol_passes_or_fails_by_the_profile_maximum(tmp_path, black, 
     assert "relative luminance from: measured display" in "\n".join(result.summary_lines())
 
 
-@pytest.mark.parametrize("black, amplitude", [(0.5, 99.5), (82.0, 18.0)])
+@pytest.mark.parametrize("black, amplitude", [(0.5, 99.5), (9.0, 91.0)])
 def test_black_level_of_the_profile_decides_a_flash(tmp_path, black, amplitude):
     # Levels as written (background 0 = black): relative luminance of black is
-    # black / L_max, 0.005 or 0.82.  sRGB would say 0 and refuse both.
+    # black / L_max, 0.005 or 0.09.  (A black at 0.8 of the maximum or more, where no step could
+    # flash, is a profile refused on loading: test_a_flat_profile_is_refused_where_it_is_loaded.)
     write_profile(tmp_path, black=black, amplitude=amplitude)
     p = write_protocol(tmp_path, 'profile = "profile.toml"', FAST)
     protocol = load_protocol(p)

@@ -115,6 +115,19 @@ MALFORMED = {
     "escapes_in_title": (b'title = "Pilot\\r\\u001b[31mRED"', "title"),
     "line_separator_in_title": (b'title = "Pilot\\u2028two"', "title"),
     "invisible_dots": (b"[display]\nbackground = 0.3\n[dots]\nlevel = 0.3", "dots.level"),
+    # below one 8-bit step (1/255) of the background: drawn in the background's own code (0 here)
+    "dots_under_one_grey_step": (b"[dots]\nlevel = 0.001", "dots.level"),
+    "grey_dots_under_one_grey_step": (b"[display]\nbackground = 0.5\n[dots]\nlevel = 0.503", "dots.level"),
+    # near-zero nonsense that only an exact 0 used to refuse
+    "dots_slower_than_a_pixel_a_second": (b"[dots]\nspeed_deg_s = 1e-300", "dots.speed_deg_s"),
+    "no_coherent_dot": (b"[dots]\ncoherence = 0", "dots.coherence"),
+    "coherence_below_one_dot": (b"[dots]\ncoherence = 1e-300", "dots.coherence"),
+    "practice_tilt_below_the_steps": (b"[design]\npractice_offset_deg = 1e-300", "design.practice_offset_deg"),
+    "practice_tilt_below_the_bayesian_grid": (b"[design]\npractice_offset_deg = 0.4\n[procedure]\n"
+                                              b"method = 'bayesian'", "design.practice_offset_deg"),
+    "practice_tilt_below_the_constant_levels": (b"[design]\npractice_offset_deg = 1\n[procedure]\n"
+                                                b"method = 'constant'\nlevels_deg = [-4, -2, 2, 4]",
+                                                "design.practice_offset_deg"),
     "black_dots_on_black": (b"[dots]\ncolor_rgb = [0, 0, 0]", "dots.level"),
     "constant_levels_out_of_bounds": (b"[procedure]\nmethod = 'constant'\nbounds_deg = [-20, 20]\n"
                                       b"levels_deg = [-100, -10, 10, 100]", "procedure.levels_deg"),
@@ -147,6 +160,20 @@ MALFORMED = {
     "negative_pse_prior": (b"[procedure]\nmethod = 'bayesian'\nbayes_pse_prior_sd_deg = -3",
                            "procedure.bayes_pse_prior_sd_deg"),
 }
+
+
+@pytest.mark.parametrize("text", [
+    "[dots]\nlevel = 0.00392157",                                   # exactly one 8-bit step above black
+    "[display]\nbackground = 0.5\n[dots]\nlevel = 0.49607843",     # one step below a mid-grey background
+    "[dots]\nspeed_deg_s = 0.0278",                                 # just over a pixel a second (36 px/deg)
+    "[dots]\ncoherence = 0.00848",                                  # one of the 118 default dots
+    "[design]\npractice_offset_deg = 0.5",                          # the least of the default steps_deg
+    "[design]\npractice_offset_deg = 0.1\npractice_trials = 0",     # no practice: the tilt is not used
+])
+def test_the_least_meaningful_values_are_accepted(text, tmp_path):
+    path = tmp_path / "p.toml"
+    path.write_text(text + "\n", encoding="utf-8")
+    load_protocol(path)
 
 
 @pytest.mark.parametrize("case", sorted(MALFORMED))
