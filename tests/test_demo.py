@@ -8,13 +8,16 @@ the demo writes must be one the repository ignores (the sidecars,
 ``report_data.json`` and the report pages, which hold times and package
 versions).
 
-A figure is the same picture when its pixels differ by at most one grey
-level in at most 0.1 % of them: numpy and OpenBLAS choose vectorised code
-by CPU and it rounds differently in the last bits, which moves an
-anti-aliased line by a shade.  Seen: 11 of 3 million pixels of one decay
-figure, by 1/255, on an AMD EPYC against the Intel machine that wrote the
-committed files, while every table came back byte for byte.  On the machine
-that wrote them the figures come back byte for byte as well.
+A figure is the same picture when at most 0.1 % of its pixels differ and
+each that does lies, within one level, between the darkest and lightest
+pixel around the same place (3 x 3) in the other picture: an edge moved by
+less than a pixel, nothing added, removed or moved by more.  numpy and
+OpenBLAS choose vectorised code by CPU and it rounds differently in the last
+bits; a bootstrap band's edge then moves by a fraction of a pixel.  Seen:
+11 of 3 million pixels of one decay figure, by 1/255, on one AMD EPYC, and
+204 pixels by up to 6/255 along the edge of the same figure's band on
+another, while every table came back byte for byte.  On the machine that
+wrote them the figures come back byte for byte as well.
 """
 
 from __future__ import annotations
@@ -47,7 +50,7 @@ def _tracked_demo_files() -> list[str]:
 
 
 def _same_file(written: Path, committed: Path) -> bool:
-    """Byte for byte; for a PNG, the same picture up to one grey level in 0.1 % of its pixels (see above)."""
+    """Byte for byte; for a PNG, the same picture up to edges moved by less than a pixel (see above)."""
     if not written.is_file():
         return False
     if written.read_bytes() == committed.read_bytes():
@@ -57,10 +60,18 @@ def _same_file(written: Path, committed: Path) -> bool:
     with Image.open(written) as a, Image.open(committed) as b:
         if a.size != b.size or a.mode != b.mode:
             return False
-        diff = np.abs(np.asarray(a, dtype=int) - np.asarray(b, dtype=int))
-    if diff.ndim == 3:
-        diff = diff.max(axis=2)
-    return int(diff.max()) <= 1 and np.count_nonzero(diff) <= 0.001 * diff.size
+        a, b = np.asarray(a, dtype=int), np.asarray(b, dtype=int)
+    differs = (a != b).reshape(a.shape[0], a.shape[1], -1).any(axis=2)
+    return (np.count_nonzero(differs) <= 0.001 * differs.size
+            and _within_neighbours(a, b) and _within_neighbours(b, a))
+
+
+def _within_neighbours(a: np.ndarray, b: np.ndarray) -> bool:
+    """Every value of ``a`` within one level of the range of ``b`` over the 3 x 3 pixels around it."""
+    padded = np.pad(b, [(1, 1), (1, 1)] + [(0, 0)] * (b.ndim - 2), mode="edge")
+    rows, cols = b.shape[:2]
+    around = np.stack([padded[i:i + rows, j:j + cols] for i in range(3) for j in range(3)])
+    return bool(np.all((a >= around.min(axis=0) - 1) & (a <= around.max(axis=0) + 1)))
 
 
 def test_a_figure_that_differs_by_more_than_a_shade_is_a_changed_file(tmp_path):
@@ -79,6 +90,35 @@ def test_a_figure_that_differs_by_more_than_a_shade_is_a_changed_file(tmp_path):
     assert not _same_file(tmp_path / "c.png", tmp_path / "a.png")
     assert not _same_file(tmp_path / "d.png", tmp_path / "a.png")
     assert not _same_file(tmp_path / "missing.png", tmp_path / "a.png")
+
+
+@pytest.mark.slow
+def test_an_edge_moved_by_less_than_a_pixel_is_the_same_figure_and_one_moved_by_more_is_not(tmp_path):
+    # matplotlib's own anti-aliasing draws the pictures compared: a faint band, a line and a title, at the
+    # size of the demo's decay figure; shifts are in pixels (seen across CPUs: a band's edge, about 0.2 px)
+    import matplotlib
+
+    matplotlib.use("Agg")
+    from matplotlib import pyplot as plt
+
+    def draw(name, band_px=0.0, line_px=0.0, label="tau = 2.31"):
+        fig, ax = plt.subplots(figsize=(7.6, 4.4), dpi=300)
+        ax.set_xlim(-0.2, 4)
+        ax.set_ylim(-0.5, 9)                             # as the figures' limits: set by the data, not moved here
+        per_px = 4.2 / ax.get_window_extent().width
+        x = np.linspace(0, 4, 200)
+        ax.fill_between(x, 0, 2.5 * np.exp(-(x - band_px * per_px) / 1.2), color="tab:red", alpha=0.15, lw=0)
+        ax.plot(x, 2 * np.exp(-(x - line_px * per_px) / 1.5), color="k", lw=1.2)
+        ax.set_title(label)
+        fig.savefig(tmp_path / name)
+        plt.close(fig)
+        return tmp_path / name
+
+    original = draw("original.png")
+    assert _same_file(draw("shifted.png", band_px=0.2), original)
+    assert not _same_file(draw("moved.png", band_px=2), original)
+    assert not _same_file(draw("line.png", line_px=1), original)
+    assert not _same_file(draw("label.png", label="tau = 2.32"), original)
 
 
 @pytest.mark.slow
