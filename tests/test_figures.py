@@ -181,6 +181,7 @@ def one_sided_fit():
     return trials, fit_trials(prepare_trials(trials), n_boot=40, seed=1, progress=False)
 
 
+@pytest.mark.slow
 def test_a_shift_with_no_estimate_is_drawn_hollow_and_shown_as_a_dash(one_sided_fit):
     # the after-effect figure drew such shifts as ordinary points under the "repulsion" caption, and the
     # summary's grid printed their numbers plainly
@@ -231,6 +232,7 @@ def test_a_shift_with_no_estimate_is_drawn_hollow_and_shown_as_a_dash(one_sided_
     assert "\u2013" in fit.summary()
 
 
+@pytest.mark.slow
 def test_a_figure_of_only_usable_shifts_has_no_hollow_point(one_sided_fit):
     _, fit = one_sided_fit
     a = fit.analyses[0]
