@@ -75,6 +75,7 @@ from scipy import special
 
 from fitting.covariance import COVARIANCE_COLUMNS, NO_COVARIANCE, covariance_matrix
 from fitting.errors import InputError
+from fitting.fit_copy import FIT_COPY, check_table, read_fit
 from fitting.group import GROUP
 from fitting.group_chi2 import DRAWS, GroupData, calibrated_p
 from fitting.meta import random_effects
@@ -113,36 +114,11 @@ def _line_of(mask) -> int:
     return int(np.flatnonzero(np.asarray(mask))[0]) + 2
 
 
-def _refuse_torn(path: Path) -> None:
-    """Refuse a table ``fit`` wrote whose last row lacks its newline.
-
-    ``fit`` writes every table whole, each row with its newline; a file that
-    ends inside a row was cut, as an interrupted copy leaves it, even when
-    the cut row still parses (a cut inside its last number).
-    """
-    with open(path, "rb") as fh:
-        data = fh.read()
-    if data and not data.endswith(b"\n"):
-        line = data.count(b"\n") + 1
-        raise InputError(str(path), f"line {line}", "the file ends inside this row "
-                         "(cut off, as an interrupted copy leaves it); copy the fit's folder again or run fit again")
-
-
-def _refuse_short_rows(path: Path, n_columns: int) -> None:
-    """Refuse a row of a table ``fit`` wrote with fewer cells than its header (it writes every cell)."""
-    with open(path, encoding="utf-8", newline="") as fh:
-        rows = csv.reader(fh)
-        for row in rows:
-            if row and len(row) < n_columns:
-                raise InputError(str(path), f"line {rows.line_num}", f"{len(row)} cells where the header has "
-                                 f"{n_columns} (a cut or changed row?); copy the fit's folder again or run fit again")
-
-
 def _read_csv(path: Path, required: tuple[str, ...], may_be_empty: tuple[str, ...] = (),
               optional: tuple[str, ...] = (), by_fit: bool = False) -> pd.DataFrame:
     """Read ``path``; ``required`` columns must be finite numbers (``observer`` any text) except empty
     cells of ``may_be_empty``; ``optional`` columns are checked the same way, may be empty, and are NaN
-    when absent.  ``by_fit``: a table ``fit`` writes, whose rows are whole (:func:`_refuse_torn`)."""
+    when absent.  ``by_fit``: a table ``fit`` writes, whose rows are whole (:func:`check_table`)."""
     try:
         found = path.is_file()
     except OSError as exc:                 # a folder on the way that this user may not enter
@@ -151,10 +127,8 @@ def _read_csv(path: Path, required: tuple[str, ...], may_be_empty: tuple[str, ..
         raise InputError(str(path), "file", "does not exist or is not a file")
     try:
         if by_fit:
-            _refuse_torn(path)
+            check_table(path, path.read_bytes())
         frame = pd.read_csv(path)
-        if by_fit:
-            _refuse_short_rows(path, len(frame.columns))
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError, csv.Error) as exc:
         raise InputError(str(path), "file", f"cannot be read as CSV ({str(exc).splitlines()[0]})") from None
     except OSError as exc:                 # e.g. a colleague's file without read permission
@@ -858,8 +832,10 @@ def compare_results(results_dir: str | Path, predictions_path: str | Path, out_d
 def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figures: bool, progress) -> Comparison:
     measured_path = results / "aftereffect.csv" if results.is_dir() else results
     measured = read_measured(measured_path)
+    shown = None
     if results.is_dir():
         read_report_data(results)          # refused now, not after the work, if the page could not be made
+        shown = read_fit(results)          # what the page shows, checked now and copied with the outputs
     cov_path = measured_path.parent / COVARIANCE_FILE
     cov_table = read_covariance(cov_path, measured) if cov_path.is_file() else None
     predictions = read_predictions(predictions_path)
@@ -898,7 +874,7 @@ def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figure
                                                 "chi2_reference"]] = np.nan
     notes = (estimable_notes + _leave_out_interval_statistics(used, table) + replicate_notes
              + _undefined_gain_notes(used, table) + _reduced_rank_notes(table) + fallback
-             + unused_predictions(measured, predictions, interpolate)
+             + unused_predictions(measured, predictions, interpolate) + (shown.notes if shown else ())
              + (() if results.is_dir() else ("no report page: it is made when the fit's folder is given, not one "
                                                "of its tables",)))
     with output_set(out_dir, "compare") as staged:
@@ -911,6 +887,8 @@ def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figure
 
             with phase("drawing the comparison", show=progress):
                 overlay_figure(points, out / "comparison")
-        page = write_page(results, out / PAGE, compare_dir=out) if results.is_dir() else None
+        # the page shows a copy of the fit (fitting.fit_copy), so a later fit into that folder cannot change it
+        page = (write_page(shown.write(out), out / PAGE, compare_dir=out, fit_name=results.resolve().name,
+                           notes=shown.notes) if shown else None)
     return Comparison(points=points, table=table, page=None if page is None else Path(staged.final(page)),
                       notes=notes)

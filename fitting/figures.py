@@ -39,10 +39,12 @@ from contextlib import ExitStack
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 
 from .aftereffect import dog
 from .children import children_shielded, follow_parent
 from .errors import InputError
+from .flags import NOT_USABLE, usable
 from .panels import FAINT as _FAINT
 from .panels import INK as _INK
 from .panels import PanelGrid, wrap_title
@@ -283,15 +285,29 @@ def outside_legend(ax, **kw):
     ax.legend(loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0, fontsize=7.5, **kw)
 
 
+#: Legend text of the hollow points of :func:`aftereffect_figure` (the words found are added).
+NOT_ESTIMABLE_LABEL = "not estimable, no interval"
+#: Added to it when a hollow point lies beyond the vertical range.
+OFF_SCALE_LABEL = ";\noff scale: at the edge"
+
+
 def aftereffect_figure(name: str, shifts, tuning, offsets=None):
     """PSE shift against adapter offset, per lag, with intervals and DoG fits.
+
+    A shift flagged with a word of :data:`fitting.flags.NOT_USABLE` (one-sided,
+    not estimable, too few trials) is drawn hollow, without an interval, and
+    the legend says so; the vertical range is set by the other shifts (and
+    the curves), so a PSE on its fitting bound does not flatten the plot: a
+    hollow point beyond it sits on the edge.  The look is that of the
+    points ``compare``'s overlay leaves out of its statistics.
 
     Parameters
     ----------
     name : str
         Observer ID or ``"group"``.
     shifts : DataFrame
-        ``aftereffect`` table (``lag, adapter_offset_deg, pse_shift_deg, ci_low, ci_high``).
+        ``aftereffect`` table (``lag, adapter_offset_deg, pse_shift_deg, ci_low, ci_high``,
+        optionally ``flags``).
     tuning : DataFrame
         ``tuning`` table; a lag's DoG curve is drawn when it has a row.
     offsets : ignored
@@ -299,9 +315,14 @@ def aftereffect_figure(name: str, shifts, tuning, offsets=None):
     """
     plt = pyplot()
     lags = np.sort(shifts["lag"].dropna().unique())
-    has_ci = bool(np.isfinite(shifts[["ci_low", "ci_high"]].to_numpy(float)).any()) if len(shifts) else False
+    flags = shifts["flags"] if "flags" in shifts else pd.Series("", index=shifts.index, dtype=object)
+    kept = pd.Series(usable(flags), index=shifts.index)
+    estimates = shifts[kept]
+    has_ci = bool(np.isfinite(estimates[["ci_low", "ci_high"]].to_numpy(float)).any()) if len(estimates) else False
     has_line = any(len(tuning[tuning["lag"] == lag]) for lag in lags)
-    what = ["points: " + ("estimates with 95% intervals" if has_ci else "estimates")]
+    what = ["points: " + ("estimates with 95% intervals" if has_ci else "estimates")] if len(estimates) else []
+    if not kept.all():
+        what.append("hollow: not estimable")
     if has_line:
         what.append("lines: fitted tuning curve")
     who = "Group" if name == "group" else "Observer " + str(name)
@@ -310,26 +331,54 @@ def aftereffect_figure(name: str, shifts, tuning, offsets=None):
         span = float(np.abs(shifts["adapter_offset_deg"]).max()) if len(shifts) else 90.0
         grid = np.linspace(-1.08 * span, 1.08 * span, 200)
         nudge = 0.012 * span
+        drawn = [estimates[["pse_shift_deg", "ci_low", "ci_high"]].to_numpy(float).ravel()]
+        hollow = []
         for i, lag in enumerate(lags):
             s = shifts[shifts["lag"] == lag]
+            used = kept[s.index].to_numpy()
             colour = _lag_colour(i)
             x = s["adapter_offset_deg"].to_numpy(float) + (i - (len(lags) - 1) / 2) * nudge
             y = s["pse_shift_deg"].to_numpy(float)
-            err = _error_bars(y, s["ci_low"], s["ci_high"])
-            ax.errorbar(x, y, yerr=err if has_ci else None, fmt="o", ms=4, color=colour,
+            err = _error_bars(y[used], s["ci_low"][used], s["ci_high"][used])
+            ax.errorbar(x[used], y[used], yerr=err if has_ci else None, fmt="o", ms=4, color=colour,
                         elinewidth=0.9, capsize=2, label=_lag_label(lag))
+            if not used.all():
+                hollow.append((x[~used], y[~used], colour))
             t = tuning[tuning["lag"] == lag]
             if len(t):
-                ax.plot(grid, dog(grid, float(t["amplitude_deg"].iloc[0]),
-                                  float(t["peak_offset_deg"].iloc[0])), color=colour, lw=1.2)
+                curve = dog(grid, float(t["amplitude_deg"].iloc[0]), float(t["peak_offset_deg"].iloc[0]))
+                ax.plot(grid, curve, color=colour, lw=1.2)
+                drawn.append(curve)
+        if hollow:
+            _hollow_points(ax, hollow, np.concatenate(drawn), flags[~kept])
         ax.axhline(0, color=_FAINT, lw=0.7)
         ax.axvline(0, color=_FAINT, lw=0.7)
         ax.set_xlabel("adapter offset from reference (deg, + = clockwise)")
         ax.set_ylabel("PSE shift from baseline (deg, + = clockwise)")
         outside_legend(ax)
-        ax.text(1.02, 0.0, "repulsion: the shift has\nthe sign of the adapter offset", ha="left",
-                va="bottom", transform=ax.transAxes, color=_FAINT, fontsize=7)
+        if len(estimates):
+            ax.text(1.02, 0.0, "repulsion: the shift has\nthe sign of the adapter offset", ha="left",
+                    va="bottom", transform=ax.transAxes, color=_FAINT, fontsize=7)
     return fig
+
+
+def _hollow_points(ax, hollow, drawn, flags) -> None:
+    """Draw the not-estimable shifts ``(x, y, colour)`` hollow, inside the range of ``drawn``
+    (the estimates, their limits and the curves; the hollow points' own when there is none), with a
+    legend entry naming the flags."""
+    ys = np.concatenate([y for _, y, _ in hollow])
+    drawn = drawn[np.isfinite(drawn)]
+    scale = drawn if drawn.size else ys[np.isfinite(ys)]
+    lo, hi = (float(scale.min()), float(scale.max())) if scale.size else (-1.0, 1.0)
+    pad = 0.08 * max(hi - lo, 1.0)
+    lo, hi = min(lo, 0.0) - pad, max(hi, 0.0) + pad        # zero, where the baseline lies, stays in view
+    for x, y, colour in hollow:
+        ax.plot(x, np.clip(y, lo, hi), "o", ms=4.5, mfc="white", mec=colour, mew=1.1, ls="none")
+    words = sorted({w for f in flags for w in str(f).split() if w in NOT_USABLE}, key=NOT_USABLE.index)
+    beyond = bool(((ys < lo) | (ys > hi)).any())
+    label = f"{NOT_ESTIMABLE_LABEL}\n({', '.join(words)}{OFF_SCALE_LABEL if beyond else ''})"
+    ax.errorbar([], [], fmt="o", ms=4.5, mfc="white", mec=_INK, mew=1.1, color=_INK, label=label)  # listed last
+    ax.set_ylim(lo, hi)
 
 
 def decay_band(reps, lags) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

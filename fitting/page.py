@@ -376,7 +376,8 @@ def _files_section(folders: list[Path], page_dir: Path) -> str:
     return '<h2 id="files">Files</h2><ul class="small">' + "".join(items) + "</ul>"
 
 
-def render(fit_dir, page_path=None, compare_dir=None, title: str | None = None) -> str:
+def render(fit_dir, page_path=None, compare_dir=None, title: str | None = None, fit_name: str | None = None,
+           notes=()) -> str:
     """The HTML of the report of ``fit_dir`` (and of ``compare_dir``, if given).
 
     Parameters
@@ -390,6 +391,11 @@ def render(fit_dir, page_path=None, compare_dir=None, title: str | None = None) 
         A folder written by ``aftershift compare`` on ``fit_dir``.
     title : str, optional
         Heading; by default from the protocol(s).
+    fit_name : str, optional
+        The name of the folder the fit was written into, when ``fit_dir`` is
+        ``compare``'s copy of it (:mod:`fitting.fit_copy`).
+    notes : sequence of str
+        Shown at the top (files of the fit the page leaves out, and why).
     """
     fit_dir = Path(fit_dir).resolve()
     page_path = Path(page_path).resolve() if page_path is not None else fit_dir / PAGE
@@ -408,14 +414,22 @@ def render(fit_dir, page_path=None, compare_dir=None, title: str | None = None) 
         nav.append('<li><a href="#comparison">Comparison with predictions</a></li>')
     nav += ['<li><a href="#software">Software</a></li>', '<li><a href="#files">Files</a></li>']
     summary = fit_dir / "summary.txt"
+    where = f"fitted into the folder <code>{_e(_landed(fit_dir).name)}</code>."
+    if fit_name is not None:
+        where = (f"fitted into the folder <code>{_e(fit_name)}</code>; this page shows the copy of that fit "
+                 f"taken when it was compared (<code>{_e(_relpath(fit_dir, page_path.parent))}/</code>), so a "
+                 "later fit into that folder does not change it.")
     body = [
         f"<h1>aftershift report: {_e(title)}</h1>",
         f"<p>{n_obs} observer{'s' if n_obs != 1 else ''}, {_e(data.get('kind', 'adapt-test'))} logs, "
-        f"fitted into the folder <code>{_e(_landed(fit_dir).name)}</code>. {_e(data.get('options', ''))}</p>",
+        f"{where} {_e(data.get('options', ''))}</p>",
         f"<nav><ul>{''.join(nav)}</ul></nav>",
         '<h2 id="flags">Flagged estimates and notes</h2>', page.flagged(None),
         '<h2 id="protocols">Protocols and plans</h2>', page.protocols(),
     ]
+    if notes:
+        body.insert(2, '<div class="flags"><p><b>Left out of this report:</b></p><ul>'
+                       + "".join(f"<li>{_e(n)}</li>" for n in notes) + "</ul></div>")
     if data.get("missing"):
         body.insert(2, f'<p class="flags">{_e(data["missing"])} is missing: sessions, protocols and software '
                        "are unknown to this report.</p>")
@@ -425,7 +439,8 @@ def render(fit_dir, page_path=None, compare_dir=None, title: str | None = None) 
     folders = [fit_dir]
     if compare_dir is not None:
         body.append(comparison_section(Path(compare_dir).resolve(), page_path.parent))
-        folders.append(Path(compare_dir).resolve())
+        folders = [Path(compare_dir).resolve()] + ([] if Path(compare_dir).resolve() in fit_dir.parents
+                                                    else [fit_dir])
     body += ['<h2 id="software">Software</h2>', "<p>At the fit and at every session (from its sidecar).</p>",
              page.software_table(None)]
     if summary.is_file():
@@ -448,9 +463,10 @@ def _protocol_title(text: str) -> str:
     return ""
 
 
-def write_page(fit_dir, page_path=None, compare_dir=None, title: str | None = None) -> Path:
+def write_page(fit_dir, page_path=None, compare_dir=None, title: str | None = None, fit_name: str | None = None,
+               notes=()) -> Path:
     """Write :func:`render`'s page (atomically) and return its path."""
     fit_dir = Path(fit_dir)
     page_path = Path(page_path) if page_path is not None else fit_dir / PAGE
-    write_text(page_path, render(fit_dir, page_path, compare_dir, title))
+    write_text(page_path, render(fit_dir, page_path, compare_dir, title, fit_name, notes))
     return page_path

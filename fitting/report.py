@@ -50,7 +50,7 @@ import pandas as pd
 from .bootstrap import check_replicate_memory, parametric_bootstrap
 from .errors import InputError
 from .covariance import COVARIANCE_COLUMNS, group_covariance, observer_covariance
-from .flags import flagged_first, join, psychometric_flags, shared_notes, usable
+from .flags import NOT_USABLE, flagged_first, join, psychometric_flags, shared_notes, usable
 from .group import GROUP, group_aftereffect, group_curves, group_pse, group_weights, mixed_model
 from .observer import (BY_STATISTIC, INTERVAL_METHODS, AFTEREFFECT_COLUMNS, DECAY_COLUMNS, PSE_COLUMNS, TUNING_COLUMNS,
                        ObserverAnalysis, Options, analyse_observer, condition_table)
@@ -213,14 +213,28 @@ def _ci(lo, hi, digits: int = 2) -> str:
 
 
 def _shift_grid(shifts: pd.DataFrame) -> list[str]:
+    """The summary's grid of PSE shifts (lag x adapter offset).
+
+    A shift flagged with a word of :data:`fitting.flags.NOT_USABLE` (one-sided,
+    not estimable, too few trials) is shown as "–": its number says nothing
+    about the observer, and a plain grid read it as an after-effect.  A line
+    under the grid names the flags; ``aftereffect.csv`` keeps the numbers.
+    """
     if shifts is None or not len(shifts):
         return []
-    tab = shifts.pivot_table(index="lag", columns="adapter_offset_deg", values="pse_shift_deg")
+    flags = shifts["flags"] if "flags" in shifts else pd.Series("", index=shifts.index)
+    shown = shifts.assign(pse_shift_deg=shifts["pse_shift_deg"].where(usable(flags), np.inf))
+    tab = shown.pivot_table(index="lag", columns="adapter_offset_deg", values="pse_shift_deg")
     head = "  PSE shift (deg) by adapter offset (deg):"
     cols = "    lag " + "".join(f" {c:>7.4g}" for c in tab.columns)    # a space even before -90.1818
-    rows = [f"    {int(lag):>3d} " + "".join("        " if not np.isfinite(v) else f"{v:>8.2f}"
-                                          for v in tab.loc[lag].to_numpy(float))
+    rows = [f"    {int(lag):>3d} " + "".join("        " if np.isnan(v) else "       \u2013" if np.isinf(v)
+                                          else f"{v:>8.2f}" for v in tab.loc[lag].to_numpy(float))
             for lag in tab.index]
+    words = sorted({w for f in flags[~usable(flags)] for w in str(f).split() if w in NOT_USABLE},
+                   key=NOT_USABLE.index)
+    if words:
+        rows.append(f"    \u2013: not estimable, flagged {' / '.join(words)} (aftereffect.csv keeps the number "
+                    "and its flags)")
     return [head, cols] + rows
 
 

@@ -478,3 +478,154 @@ def test_the_order_of_the_measured_rows_changes_no_number(tmp_path):
         compare_results(folder, demo / "predictions_population_model.csv", folder / "cmp", figures=False)
     for table in ("agreement.csv", "comparison_points.csv"):
         assert (tmp_path / "plain" / "cmp" / table).read_bytes() == (tmp_path / "shuffled" / "cmp" / table).read_bytes()
+
+
+# --- the page of a comparison: one fit's state, and a damaged fit folder ----------------------------------------------
+
+
+class _PageParts:
+    """The tables (``data-csv`` and the text of each row's cells) and the link targets of a report page."""
+
+    def __init__(self, page):
+        from html.parser import HTMLParser
+
+        self.tables, self.links = [], []
+        parts = self
+
+        class Reader(HTMLParser):
+            cell = None
+
+            def handle_starttag(self, tag, attrs):
+                attrs = dict(attrs)
+                if tag == "table":
+                    parts.tables.append((attrs.get("data-csv"), []))
+                elif tag == "tr":
+                    parts.tables[-1][1].append([])
+                elif tag == "td":
+                    self.cell = ""
+                elif tag in ("img", "a") and (attrs.get("src") or attrs.get("href") or "#")[0] != "#":
+                    parts.links.append(attrs.get("src") or attrs.get("href"))
+
+            def handle_data(self, data):
+                if self.cell is not None:
+                    self.cell += data
+
+            def handle_endtag(self, tag):
+                if tag == "td":
+                    parts.tables[-1][1][-1].append(self.cell)
+                    self.cell = None
+
+        Reader().feed(page.read_text(encoding="utf-8"))
+        self.links += [csv for csv, _ in self.tables if csv]
+
+
+def _same_cell(shown: str, stored: str) -> bool:
+    """The page shows numbers to 4 significant digits (fitting.page.DIGITS), empty for a missing value."""
+    if stored == "" or shown == stored:
+        return shown == stored
+    try:
+        return float(shown) == pytest.approx(float(stored), rel=5.1e-4, abs=1e-12)
+    except ValueError:
+        return False
+
+
+def _rows_are_their_files(page) -> None:
+    """Every row of every table tagged with a CSV file is a row of that file."""
+    import csv as csv_module
+
+    for source, rows in _PageParts(page).tables:
+        if source is None:
+            continue
+        with open(page.parent / source, newline="", encoding="utf-8") as fh:
+            stored = list(csv_module.reader(fh))[1:]
+        for row in (r for r in rows if r):
+            assert any(len(s) == len(row) and all(map(_same_cell, row, s)) for s in stored), (source, row)
+
+
+@pytest.fixture(scope="module")
+def real_fit(tmp_path_factory):
+    """A real fit (one simulated observer, figures drawn) and predictions of the population model."""
+    from fitting import fit_logs
+    from fitting.synthetic import ObserverModel, simulate_trials, write_log
+
+    root = tmp_path_factory.mktemp("real_fit")
+    (root / "logs").mkdir()
+    write_log(simulate_trials(ObserverModel(amplitude_deg=4.0), offsets=(-30, -15, 15, 30), lags=(0, 2),
+                              trials_per_track=12, seed=6), root / "logs" / "sim01-s1.trials.csv")
+    fit_logs([str(root / "logs")], str(root / "fit"), n_boot=40, seed=1, progress=False)
+    predict_table(ChannelModel(), [-30.0, -15.0, 15.0, 30.0], [0, 2]).to_csv(root / "pred.csv", index=False)
+    return root
+
+
+def _copy_of(real_fit, tmp_path):
+    import shutil
+
+    shutil.copytree(real_fit / "logs", tmp_path / "logs")
+    shutil.copytree(real_fit / "fit", tmp_path / "fit")
+    return tmp_path / "fit", real_fit / "pred.csv"
+
+
+@pytest.mark.slow
+def test_the_comparison_page_keeps_showing_the_fit_it_compared_after_a_refit(real_fit, tmp_path):
+    # before: the page held the first fit's numbers while its tables' data-csv, its download links and its
+    # figures pointed into the fit folder, which a second fit into that folder had changed; nothing warned
+    from fitting import fit_logs
+
+    fit, pred = _copy_of(real_fit, tmp_path)
+    out = tmp_path / "cmp"
+    compare_results(fit, pred, out, progress=False)
+    page = out / "report.html"
+    shown = _PageParts(page)
+    linked = {link: (out / link).read_bytes() for link in shown.links}
+    assert any(link.endswith("aftereffect.csv") for link in linked)
+    assert any(link.endswith(".png") and "aftereffect_sim01" in link for link in linked)
+    _rows_are_their_files(page)
+    first = (fit / "aftereffect.csv").read_bytes()
+
+    fit_logs([str(tmp_path / "logs")], str(fit), n_boot=40, seed=2, lapse=0.0, progress=False)
+    assert (fit / "aftereffect.csv").read_bytes() != first          # the re-fit changed the fit folder
+
+    for link in shown.links:                                        # every file the page shows is compare's own
+        target = (out / link).resolve()
+        assert out.resolve() in target.parents, link
+        assert target.read_bytes() == linked[link], link
+    _rows_are_their_files(page)
+    assert "this page shows the copy of that fit" in page.read_text(encoding="utf-8")     # and says so
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("damage, code, says", [
+    # before: exit 0, and the page left the figure or the table out without a word
+    (lambda fit: (fit / "figures" / "aftereffect_sim01.png").unlink(), 0,
+     "aftereffect_sim01.png: listed in outputs.json but missing; the report shows the fit without it"),
+    (lambda fit: (fit / "figures" / "tracks_sim01.png").write_bytes(
+        (fit / "figures" / "tracks_sim01.png").read_bytes()[:4000]), 0,
+     "tracks_sim01.png: not a whole PNG file (cut or damaged)"),
+    (lambda fit: (fit / "tuning.csv").write_text("garbage,,\n"), 2, "tuning.csv: line 1, column 2: a column without"),
+    (lambda fit: (fit / "tuning.csv").unlink(), 2, "tuning.csv: file: listed in outputs.json but missing"),
+    (lambda fit: (fit / "pse.csv").write_text(_cell(3, "lapse", "0.01,7")((fit / "pse.csv").read_text())), 2,
+     "pse.csv: line 3: 12 cells where the header has 11"),
+    (lambda fit: (fit / "pse.csv").write_bytes((fit / "pse.csv").read_bytes()[:-3]), 2,
+     "pse.csv: line 10: the file ends inside this row"),
+    (lambda fit: (fit / "fit_details.csv").write_text((fit / "fit_details.csv").read_text().replace("observer,", "who,")),
+     2, "fit_details.csv: observer: column missing"),
+])
+def test_a_damaged_fit_folder_is_one_line_or_a_note_on_the_page(real_fit, tmp_path, capsys, damage, code, says):
+    fit, pred = _copy_of(real_fit, tmp_path)
+    out = tmp_path / "cmp"
+    compare_results(fit, pred, out, progress=False)
+    before = {p: p.read_bytes() for p in out.rglob("*") if p.is_file()}
+    capsys.readouterr()
+    damage(fit)
+    assert main(["compare", str(fit), str(pred), "--out", str(out)]) == code
+    printed, err = capsys.readouterr()
+    if code == 2:
+        assert len(err.strip().splitlines()) == 1 and says in err, err
+        assert before == {p: p.read_bytes() for p in out.rglob("*") if p.is_file()}    # the earlier comparison kept
+        return
+    assert err == "" and f"note: {fit / 'figures'}" in printed and says in printed, printed
+    page = (out / "report.html").read_text(encoding="utf-8")
+    assert "Left out of this report" in page and says in page
+    name = says.split(":")[0]
+    assert name not in " ".join(_PageParts(out / "report.html").links)
+    assert not (out / "fit" / "figures" / name).exists()

@@ -811,12 +811,13 @@ def test_a_folder_of_another_command_is_refused_and_kept(capsys, tmp_path, whole
     pred = tmp_path / "pred.csv"
     pred.write_text("lag,adapter_offset_deg,pse_shift_deg\n0,-30,-2\n0,30,2\n2,-30,-1\n2,30,1\n")
     assert cli(capsys, "compare", fit, pred, "--out", cmp)[0] == 0
-    before = {p: p.read_bytes() for p in (*fit.iterdir(), *cmp.iterdir())}
+    files = lambda: {p: p.read_bytes() for p in (*fit.rglob("*"), *cmp.rglob("*")) if p.is_file()}  # noqa: E731
+    before = files()          # the comparison holds its copy of the fit in cmp/fit/
     for args, folder, earlier in ((("compare", fit, pred), fit, "fit"),
                                   (("fit", whole, "--bootstrap", "0", "--no-figures"), cmp, "compare")):
         code, err = cli(capsys, *args, "--out", folder)
         assert code == 2 and f"holds the outputs of `aftershift {earlier}`" in one_line(err), err
-    assert {p: p.read_bytes() for p in (*fit.iterdir(), *cmp.iterdir())} == before
+    assert files() == before
     assert leftovers(fit) == [] and leftovers(cmp) == []
     # manifests written before plan and recover named themselves said "study": either may replace them
     from fitting.errors import InputError

@@ -170,3 +170,74 @@ def test_observers_whose_names_differ_only_in_unsafe_characters_get_their_own_fi
 
     shown = _figures_of(tmp_path, figures.safe_name("a_b"))
     assert shown and all(p.stem.endswith("_a_b") and not p.stem.endswith("x_a_b") for p in shown)
+
+
+@pytest.fixture(scope="module")
+def one_sided_fit():
+    """One observer whose +30 deg condition got nothing but "clockwise" answers (a stuck key, say)."""
+    trials = simulate_trials(ObserverModel(amplitude_deg=4.0), offsets=(-30, -15, 15, 30), lags=(0,),
+                             trials_per_track=12, seed=4)
+    trials.loc[trials["condition"] == "adapt+30_lag0", "response_cw"] = 1
+    return trials, fit_trials(prepare_trials(trials), n_boot=40, seed=1, progress=False)
+
+
+@pytest.mark.slow
+def test_a_shift_with_no_estimate_is_drawn_hollow_and_shown_as_a_dash(one_sided_fit):
+    # the after-effect figure drew such shifts as ordinary points under the "repulsion" caption, and the
+    # summary's grid printed their numbers plainly
+    import warnings
+
+    import statsmodels.api as sm
+    from statsmodels.tools.sm_exceptions import PerfectSeparationWarning
+
+    trials, fit = one_sided_fit
+    a = fit.analyses[0]
+    stuck = trials[trials["condition"] == "adapt+30_lag0"]
+    # statsmodels' probit GLM finds the condition's answers perfectly separated: its PSE has no finite
+    # maximum-likelihood estimate (Albert & Anderson 1984, Biometrika 71, from memory)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        sm.GLM(stuck["response_cw"].astype(float), sm.add_constant(stuck["test_offset_deg"].astype(float)),
+               family=sm.families.Binomial(sm.families.links.Probit())).fit()
+    assert any(issubclass(w.category, PerfectSeparationWarning) for w in caught)
+    shifts = a.aftereffect.set_index("adapter_offset_deg")
+    assert "one-sided" in shifts.loc[30.0, "flags"] and np.isfinite(shifts.loc[30.0, "pse_shift_deg"])
+
+    fig = figures.aftereffect_figure(a.observer, a.aftereffect, a.tuning)
+    ax = fig.axes[0]
+    points = [(x, y, ln.get_markerfacecolor()) for ln in ax.get_lines() if ln.get_marker() == "o"
+              for x, y in zip(ln.get_xdata(), ln.get_ydata())]
+    hollow = [(x, y) for x, y, face in points if face == "white"]
+    filled = [(x, y) for x, y, face in points if face != "white"]
+    assert [x for x, _ in hollow] == [30.0]
+    ylim = ax.get_ylim()
+    assert hollow[0][1] == pytest.approx(np.clip(shifts.loc[30.0, "pse_shift_deg"], *ylim))
+    assert sorted(x for x, _ in filled) == [-30.0, -15.0, 15.0]
+    for x, y in filled:
+        assert y == pytest.approx(shifts.loc[x, "pse_shift_deg"])
+    bars = [seg for coll in ax.collections for seg in coll.get_segments()]       # the error bars
+    assert bars and all(abs(seg[0][0] - 30.0) > 1e-9 for seg in bars)            # none at the hollow point
+    legend = " ".join(t.get_text() for t in ax.get_legend().get_texts())
+    assert "not estimable" in legend and "one-sided" in legend
+    _texts_inside(fig)
+    figures.pyplot().close(fig)
+
+    from fitting.report import _shift_grid
+
+    head, cols, row, key = _shift_grid(a.aftereffect)
+    cells = row.split()[1:]
+    assert cells[3] == "\u2013" and "one-sided" in key and "not-estimable" in key
+    for cell, x in zip(cells[:3], (-30.0, -15.0, 15.0)):
+        assert float(cell) == pytest.approx(shifts.loc[x, "pse_shift_deg"], abs=0.005)
+    assert "\u2013" in fit.summary()
+
+
+@pytest.mark.slow
+def test_a_figure_of_only_usable_shifts_has_no_hollow_point(one_sided_fit):
+    _, fit = one_sided_fit
+    a = fit.analyses[0]
+    usable = a.aftereffect[~a.aftereffect["flags"].str.contains("one-sided")]
+    fig = figures.aftereffect_figure(a.observer, usable, a.tuning)
+    assert not [ln for ln in fig.axes[0].get_lines() if ln.get_marker() == "o" and ln.get_markerfacecolor() == "white"]
+    assert "not estimable" not in " ".join(t.get_text() for t in fig.axes[0].get_legend().get_texts())
+    figures.pyplot().close(fig)
