@@ -28,11 +28,10 @@ The group curves follow the same rule cell by cell: a shift that is not
 usable leaves its own cell's mean only, not the observer's other cells (a
 cell needs usable shifts from two observers); a curve with such a cell is
 flagged ``partial``.  They are fitted only at lags (and for a decay) that at
-least one observer in them has a curve of their own for.  The floors take a
-limit on a fitting bound as "at least"/"at most": such an interval is at
-least twice its other half wide, and one with both limits on bounds says
-nothing (infinitely wide), so a group of such observers gets the whole
-bounded range.
+least one observer in them has a curve of their own for.  The floors take a limit on a fitting
+bound as "at least"/"at most": such an interval is at least twice its other
+half wide, and one with both limits on bounds says nothing (infinitely
+wide), so a group of such observers gets the whole bounded range.
 
 A group row of fewer than three observers is flagged ``descriptive``.
 
@@ -285,8 +284,8 @@ def group_curves(shifts: pd.DataFrame, level: float, notes: list, own_tuning=Non
     empty = (pd.DataFrame(columns=TUNING_COLUMNS), pd.DataFrame(columns=DECAY_COLUMNS), pd.DataFrame(), {})
     wide, complete, narrowed = _curve_shifts(shifts, notes)
     observers = np.array(wide.index)
-    n = len(observers)                                    # at least 2 wherever a cell is left
-    if wide.shape[1] == 0:
+    n = len(observers)
+    if n < 2 or wide.shape[1] == 0:
         _no_group_curve("tuning or decay", "no (lag, adapter offset) cell has usable shifts from 2 observers"
                         if len(complete) else "no (lag, adapter offset) cell was measured by every observer",
                         own_tuning, notes)
