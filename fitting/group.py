@@ -218,8 +218,7 @@ def _curve_shifts(shifts: pd.DataFrame, notes: list) -> tuple[pd.DataFrame, pd.S
     wide : pandas.DataFrame
         Observers x cells ``(lag, adapter_offset_deg)``, NaN where a shift is not usable.
     complete : pandas.Series
-        Per cell all observers measured, whether every observer's shift there is in the mean (else the
-        curves through it are ``partial``; a cell left out of the curves counts as not complete).
+        Per cell, whether every observer's shift there is in the mean (else the rows are ``partial``).
     narrowed : bool
         Whether the cells are fewer than all measured (designs that differ).
     """
@@ -240,12 +239,11 @@ def _curve_shifts(shifts: pd.DataFrame, notes: list) -> tuple[pd.DataFrame, pd.S
                   "usable, and", notes)
     few = wide.notna().sum(axis=0) < 2
     if few.any() and len(cells):
-        gone = [f"lag {lag:g} offset {o:+g}" for lag, o in wide.columns[few]]
-        notes.append("group curves leave out the cells with fewer than 2 usable shifts: " + ", ".join(gone[:4])
-                     + (f" and {len(gone) - 4} more" if len(gone) > 4 else ""))
+        notes.append("group curves leave out the cells with fewer than 2 usable shifts: "
+                     + ", ".join(f"lag {lag:g} offset {o:+g}" for lag, o in wide.columns[few]))
     wide = wide.loc[:, ~few]
     wide = wide[wide.notna().any(axis=1)]
-    return wide, complete, narrowed
+    return wide, complete[~few.to_numpy()], narrowed
 
 
 def _no_group_curve(what: str, why: str, own, notes: list) -> None:
@@ -290,8 +288,8 @@ def group_curves(shifts: pd.DataFrame, level: float, notes: list, own_tuning=Non
                         if len(complete) else "no (lag, adapter offset) cell was measured by every observer",
                         own_tuning, notes)
         return empty
-    lags = np.sort(complete.index.get_level_values(0).unique().to_numpy(dtype=float))
-    offsets = np.sort(complete.index.get_level_values(1).unique().to_numpy(dtype=float))
+    lags = np.sort(wide.columns.get_level_values(0).unique().to_numpy(dtype=float))
+    offsets = np.sort(wide.columns.get_level_values(1).unique().to_numpy(dtype=float))
     vals = wide.to_numpy(float)                           # observers x cells, NaN where not usable
     has = ~np.isnan(vals)
     count = has.sum(axis=0)
