@@ -38,8 +38,7 @@ spaces (empty = nothing unusual):
                      group's notes name them
 
 Group rows, the group curves and the mixed model use only the observers'
-rows that carry none of the words in :data:`NOT_USABLE` (:func:`usable`);
-the group curves cell by cell (an unusable shift leaves its own cell's mean).
+rows that carry none of the words in :data:`NOT_USABLE` (:func:`usable`).
 """
 
 from __future__ import annotations

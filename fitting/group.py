@@ -12,8 +12,7 @@ more observers:
   give a group interval far narrower than any of theirs;
 * tuning per lag and decay: the same DoG / decaying-DoG fits as for one
   observer, applied to the group-mean curve (cells measured in every
-  observer, each cell the equal-weight mean of the observers' usable shifts
-  there), with intervals from the jackknife over the observers in the fit
+  observer, equal weights), with intervals from the jackknife over observers
   (leave one observer out, refit; ``est +- t_{n-1} se_jack``), widened where
   needed to the fixed-effect combination of the observers' own intervals.
   Intervals of the peak offset and decay are clipped to their fitting bounds.
@@ -24,11 +23,9 @@ estimable has no error to weigh it by (answers all on one side gave
 "intervals" 0.0001 deg wide, which the combination took at face value), and
 a shift from fewer than ten trials has no interval.  A group row without
 some observers' rows is flagged ``partial`` and the group notes name them.
-The group curves follow the same rule cell by cell: a shift that is not
-usable leaves its own cell's mean only, not the observer's other cells (a
-cell needs usable shifts from two observers); a curve with such a cell is
-flagged ``partial``.  They are fitted only at lags (and for a decay) that at
-least one observer in them has a curve of their own for.  The floors take a limit on a fitting
+The group curves use the observers whose every shift in the cells all
+observers measured is usable, and only lags (and a decay) that at least one
+of them has a curve of their own for.  The floors take a limit on a fitting
 bound as "at least"/"at most": such an interval is at least twice its other
 half wide, and one with both limits on bounds says nothing (infinitely
 wide), so a group of such observers gets the whole bounded range.
@@ -203,47 +200,29 @@ def _widen(est, low, high, half):
     return min(low, est - half), max(high, est + half)
 
 
-def _curve_shifts(shifts: pd.DataFrame, notes: list) -> tuple[pd.DataFrame, pd.Series, bool]:
-    """The group curves' data: each observer's usable shifts in the cells every observer measured.
+def _curve_observers(shifts: pd.DataFrame, notes: list) -> tuple[pd.DataFrame, list, bool]:
+    """The group curves' observers and cells: who has every shift usable in the cells all observers measured.
 
-    A shift that is not usable is left out of its own cell only: the cell's
-    group mean is that of the observers whose shift there is usable, as the
-    cell's group row is.  A cell enters the curves when at least two
-    observers have a usable shift in it (so that leaving any one out still
-    leaves a mean); an observer enters when at least one of theirs is in
-    such a cell.
-
-    Returns
-    -------
-    wide : pandas.DataFrame
-        Observers x cells ``(lag, adapter_offset_deg)``, NaN where a shift is not usable.
-    complete : pandas.Series
-        Per cell, whether every observer's shift there is in the mean (else the rows are ``partial``).
-    narrowed : bool
-        Whether the cells are fewer than all measured (designs that differ).
+    Returns the usable shifts of those observers in those cells (observers x
+    cells), the observers left out, and whether the cells are fewer than all
+    measured (designs that differ); notes say why anything is missing.
     """
     measured = shifts.groupby(["observer", "lag", "adapter_offset_deg"]).size().unstack(["lag", "adapter_offset_deg"])
     cells = measured.dropna(axis=1).columns            # cells measured in every observer
-    narrowed = len(cells) < measured.shape[1]
-    if narrowed:
+    if len(cells) < measured.shape[1]:
         notes.append(f"group curves use the {len(cells)} of {measured.shape[1]} (lag, adapter offset) cells that "
                      "every observer measured: the observers' designs differ")
     ok = shifts[usable(shifts)]
     wide = ok.pivot_table(index="observer", columns=["lag", "adapter_offset_deg"], values="pse_shift_deg")
     wide = wide.reindex(index=measured.index, columns=cells)
-    complete = wide.notna().all(axis=0)
-    if not complete.all():
-        in_cells = shifts.set_index(["lag", "adapter_offset_deg"]).index.isin(cells)
-        _left_out(shifts[in_cells], usable(shifts)[in_cells],
-                  "group curves average each (lag, adapter offset) cell over the observers whose shift there is "
-                  "usable, and", notes)
-    few = wide.notna().sum(axis=0) < 2
-    if few.any() and len(cells):
-        notes.append("group curves leave out the cells with fewer than 2 usable shifts: "
-                     + ", ".join(f"lag {lag:g} offset {o:+g}" for lag, o in wide.columns[few]))
-    wide = wide.loc[:, ~few]
-    wide = wide[wide.notna().any(axis=1)]
-    return wide, complete[~few.to_numpy()], narrowed
+    complete = wide.notna().all(axis=1)
+    left = list(wide.index[~complete])
+    if left and len(cells):
+        words = {w for f in shifts.loc[shifts["observer"].isin(left) & ~usable(shifts), "flags"]
+                 for w in str(f).split() if w in NOT_USABLE}
+        notes.append(f"group curves leave out {', '.join(left)}: not every shift of theirs is usable "
+                     f"({' '.join(w for w in WORDS if w in words)})")
+    return wide[complete], left, len(cells) < measured.shape[1]
 
 
 def _no_group_curve(what: str, why: str, own, notes: list) -> None:
@@ -254,11 +233,6 @@ def _no_group_curve(what: str, why: str, own, notes: list) -> None:
 
 def group_curves(shifts: pd.DataFrame, level: float, notes: list, own_tuning=None, own_decay=None):
     """Group tuning rows and decay row from the mean curve; jackknife intervals.
-
-    Each cell of the mean curve averages the observers whose shift there is
-    usable (:func:`_curve_shifts`); the jackknife of a lag's tuning (and of
-    the decay) leaves out, one at a time, the observers with a usable shift
-    at that lag (at the decay's lags).
 
     Parameters
     ----------
@@ -280,62 +254,45 @@ def group_curves(shifts: pd.DataFrame, level: float, notes: list, own_tuning=Non
         ``offsets``, ``lags`` and ``decay`` (its three parameters) for the figures.
     """
     empty = (pd.DataFrame(columns=TUNING_COLUMNS), pd.DataFrame(columns=DECAY_COLUMNS), pd.DataFrame(), {})
-    wide, complete, narrowed = _curve_shifts(shifts, notes)
-    observers = np.array(wide.index)
+    wide, left, narrowed = _curve_observers(shifts, notes)
+    observers = list(wide.index)
     n = len(observers)
+    partial = ["partial"] if left else []
     if n < 2 or wide.shape[1] == 0:
-        _no_group_curve("tuning or decay", "no (lag, adapter offset) cell has usable shifts from 2 observers"
-                        if len(complete) else "no (lag, adapter offset) cell was measured by every observer",
+        _no_group_curve("tuning or decay", f"{n} observer{'' if n == 1 else 's'} with every shift usable in the "
+                        "cells all observers measured (2 needed)" if wide.shape[1] else
+                        "no (lag, adapter offset) cell was measured by every observer",
                         own_tuning, notes)
         return empty
+    own_tuning = None if own_tuning is None else own_tuning[own_tuning["observer"].isin(observers)]
+    own_decay = None if own_decay is None else own_decay[own_decay["observer"].isin(observers)]
     lags = np.sort(wide.columns.get_level_values(0).unique().to_numpy(dtype=float))
     offsets = np.sort(wide.columns.get_level_values(1).unique().to_numpy(dtype=float))
-    vals = wide.to_numpy(float)                           # observers x cells, NaN where not usable
-    has = ~np.isnan(vals)
-    count = has.sum(axis=0)
-    total = np.nansum(vals, axis=0)
-    # the mean, then the leave-one-out means: leaving out an observer moves only the cells they are in
-    loo = np.where(has, (total[None] - np.nan_to_num(vals)) / (count - 1)[None], (total / count)[None])
-    rows = np.vstack([total / count, loo])
+    vals = wide.to_numpy(float)
+    total = vals.sum(axis=0)
+    rows = np.vstack([total / n, (total[None] - vals) / (n - 1)])    # mean, then leave-one-out means
     cube = np.zeros((rows.shape[0], lags.size, offsets.size))
     weight = np.zeros((lags.size, offsets.size))
-    cell_lag = wide.columns.get_level_values(0).to_numpy(dtype=float)
-    kk = np.searchsorted(lags, cell_lag)
+    kk = np.searchsorted(lags, wide.columns.get_level_values(0).to_numpy(dtype=float))
     jj = np.searchsorted(offsets, wide.columns.get_level_values(1).to_numpy(dtype=float))
     cube[:, kk, jj] = rows
     weight[kk, jj] = 1.0
-    common_lag = complete.index.get_level_values(0).to_numpy(dtype=float)
-    common_offset = complete.index.get_level_values(1).to_numpy(dtype=float)
-
-    def used(at: np.ndarray):
-        """Observers with a usable shift in the cells ``at``; rows of the mean and their leave-one-out means."""
-        members = has[:, at].any(axis=1)
-        return observers[members], np.r_[0, 1 + np.flatnonzero(members)]
-
-    def partial(at_lags) -> list[str]:
-        return [] if complete[np.isin(common_lag, at_lags)].all() else ["partial"]
-
     prange = peak_bounds(offsets)
     tuning_rows, tuning_lags = [], []
     curves = {"offsets": offsets, "lags": lags}
     for i, lag in enumerate(lags):
-        members, pick = used(cell_lag == lag)
-        own_here = None if own_tuning is None else own_tuning[own_tuning["lag"] == lag]
-        own = None if own_here is None else own_here[own_here["observer"].isin(members)]
+        own = None if own_tuning is None else own_tuning[own_tuning["lag"] == lag]
         if ((weight[i] > 0) & (offsets != 0)).sum() < 3:
             if narrowed:
                 _no_group_curve(f"tuning at lag {lag:g}", "fewer than 3 non-zero adapter offsets measured by "
-                                "every observer", own_here, notes)
-            elif ((common_lag == lag) & (common_offset != 0)).sum() >= 3:
-                _no_group_curve(f"tuning at lag {lag:g}", "fewer than 3 non-zero adapter offsets with usable "
-                                "shifts from 2 observers", own_here, notes)
+                                "every observer", own, notes)
             continue
         if own_tuning is not None and not len(own):
             notes.append(f"no group tuning at lag {lag:g}: no observer used has a tuning curve of their own there")
             continue
         t = fit_tuning(offsets, cube[:, i], weight[i], prange)
-        a, alo, ahi = _jackknife(t.amplitude[pick], level, len(members))
-        w, wlo, whi = _jackknife(t.peak[pick], level, len(members))
+        a, alo, ahi = _jackknife(t.amplitude, level, n)
+        w, wlo, whi = _jackknife(t.peak, level, n)
         alo, ahi = _widen(a, alo, ahi, _fixed_half(own, ("amplitude_deg", "amplitude_ci_low", "amplitude_ci_high"),
                                                    level))
         wlo, whi = _widen(w, wlo, whi, _fixed_half(
@@ -345,30 +302,26 @@ def group_curves(shifts: pd.DataFrame, level: float, notes: list, own_tuning=Non
                             "amplitude_ci_low": alo, "amplitude_ci_high": ahi,
                             "peak_offset_deg": w, "peak_offset_ci_low": wlo,
                             "peak_offset_ci_high": whi,
-                            "flags": _group_flags(len(members), ["on-bound"] if on_bound(w, wlo, whi, prange) else [],
-                                                  partial([lag]))})
+                            "flags": _group_flags(n, ["on-bound"] if on_bound(w, wlo, whi, prange) else [], partial)})
         tuning_lags.append(i)
     tuning = pd.DataFrame(tuning_rows, columns=TUNING_COLUMNS)
     decay = pd.DataFrame(columns=DECAY_COLUMNS)
     detail = pd.DataFrame()
-    members, pick = used(np.isin(cell_lag, lags[tuning_lags]))
-    own_used = None if own_decay is None else own_decay[own_decay["observer"].isin(members)]
     if len(tuning_lags) < 2:
         _no_group_curve("decay", "fewer than 2 lags with a group tuning curve", own_decay, notes)
-    elif own_used is not None and not len(own_used):
+    elif own_decay is not None and not len(own_decay):
         notes.append("no group decay: no observer used has a decay fit of their own")
     else:
         d = fit_decay(offsets, lags[tuning_lags], cube[:, tuning_lags], weight[tuning_lags], prange)
-        a0 = _jackknife(d.amplitude0[pick], level, len(members))
-        w = _jackknife(d.peak[pick], level, len(members))
-        tau = _jackknife(d.tau[pick], level, len(members))
-        tau_ci = _widen(*tau, _fixed_half(own_used, ("decay_periods", "ci_low", "ci_high"), level, TAU_BOUNDS))
+        a0 = _jackknife(d.amplitude0, level, n)
+        w = _jackknife(d.peak, level, n)
+        tau = _jackknife(d.tau, level, n)
+        tau_ci = _widen(*tau, _fixed_half(own_decay, ("decay_periods", "ci_low", "ci_high"), level, TAU_BOUNDS))
         tau_ci = (max(tau_ci[0], TAU_BOUNDS[0]), min(tau_ci[1], TAU_BOUNDS[1]))
         bound = on_bound(tau[0], *tau_ci, TAU_BOUNDS) or on_bound(w[0], w[1], w[2], prange)
         decay = pd.DataFrame([{"observer": GROUP, "decay_periods": tau[0], "ci_low": tau_ci[0],
                                "ci_high": tau_ci[1],
-                               "flags": _group_flags(len(members), ["on-bound"] if bound else [],
-                                                     partial(lags[tuning_lags]))}],
+                               "flags": _group_flags(n, ["on-bound"] if bound else [], partial)}],
                              columns=DECAY_COLUMNS)
         detail = pd.DataFrame([{"observer": GROUP, "amplitude0_deg": a0[0], "amplitude0_ci_low": a0[1],
                                 "amplitude0_ci_high": a0[2], "peak_offset_deg": w[0],

@@ -15,7 +15,7 @@ import pytest
 from fitting import fit_logs
 from fitting.aftereffect import TAU_BOUNDS, peak_bounds
 from fitting.errors import InputError
-from fitting.group import group_aftereffect, group_curves, usable
+from fitting.group import group_aftereffect, group_curves
 from fitting.meta import random_effects, variance_from_interval
 from fitting.synthetic import ObserverModel, simulate_trials, write_log
 
@@ -93,65 +93,9 @@ def test_group_curves_and_mixed_model_use_the_observers_whose_shifts_are_usable(
     # the group's lag-0 amplitude lies among the observers' own (before: far above all of them)
     amps = r.tuning[(r.tuning["lag"] == 0) & r.tuning["observer"].isin(own)]["amplitude_deg"]
     assert amps.min() - 1 <= got.loc[got["lag"] == 0, "amplitude_deg"].iloc[0] <= amps.max() + 1
-    assert any(n.startswith("group curves average each (lag, adapter offset) cell over the observers whose shift "
-                            "there is usable, and leave out the observers' rows that are not usable: O4 (8 of 8: ")
-               and "O5 (8 of 8: " in n for n in r.notes["group"])
+    assert any(n.startswith("group curves leave out O4, O5: not every shift of theirs is usable")
+               for n in r.notes["group"])
     assert "the mixed model leaves out the same shifts as the group rows" in r.notes["group"]
-
-
-@pytest.fixture(scope="module")
-def one_cell_out(tmp_path_factory):
-    """Three ordinary observers; O2 answered clockwise on every trial of one cell (offset +30 at lag 2)."""
-    folder = tmp_path_factory.mktemp("one_cell_out")
-    for i, name in enumerate(("O1", "O2", "O3")):
-        log = _observer(name, 70 + i)
-        if name == "O2":
-            log.loc[(log["adapter_offset_deg"] == 30) & (log["lag"] == 2), "response_cw"] = 1
-        write_log(log, folder / f"{name}.trials.csv")
-    # the test reads point estimates and jackknife intervals, so few replicates will do
-    return fit_logs([str(folder)], str(folder / "out"), n_boot=20, seed=1, figures=False, progress=False)
-
-
-@pytest.mark.slow
-def test_a_cell_that_is_not_usable_leaves_the_group_curves_at_that_cell_only(one_cell_out):
-    # Before, O2's one not-estimable shift dropped O2 from the group curves altogether: every lag and the
-    # decay were fitted to O1 and O3 alone and flagged "descriptive" (a group of 2), while each cell's
-    # group row already used every observer usable there.
-    from scipy import optimize, stats
-
-    r = one_cell_out
-    ae = r.aftereffect[r.aftereffect["observer"] != "group"]
-    out = ~usable(ae)
-    assert ae.loc[out, ["observer", "lag", "adapter_offset_deg"]].values.tolist() == [["O2", 2, 30.0]]
-    wide = ae[~out].pivot_table(index="observer", columns=["lag", "adapter_offset_deg"], values="pse_shift_deg")
-    tuning = r.tuning[r.tuning["observer"] == "group"].set_index("lag")
-    assert "partial" not in tuning.loc[0, "flags"] and "partial" in tuning.loc[2, "flags"]
-    assert "partial" in r.decay.loc[r.decay["observer"] == "group", "flags"].iloc[0]
-    assert not (tuning["flags"].str.contains("descriptive").any() or r.decay["flags"].str.contains("descriptive").any())
-    prange = peak_bounds(np.array(OFFSETS, float))
-
-    def dog_fit(means):
-        # the outside reference: scipy's bounded least squares of the DoG A (D/w) exp(1/2 - (D/w)^2 / 2)
-        x = np.array(OFFSETS, float)
-        (a, w), _ = optimize.curve_fit(lambda d, a, w: a * (d / w) * np.exp(0.5 - 0.5 * (d / w) ** 2), x, means,
-                                       p0=(1.0, 30.0), bounds=([-np.inf, prange[0]], [np.inf, prange[1]]))
-        return a, w
-
-    for lag in (0, 2):
-        cells = wide[lag][list(OFFSETS)]                  # observers x offsets, NaN: not usable
-        a, w = dog_fit(cells.mean().to_numpy())           # each cell: the mean of the observers usable there
-        assert np.isclose(tuning.loc[lag, "amplitude_deg"], a, rtol=1e-4)
-        assert np.isclose(tuning.loc[lag, "peak_offset_deg"], w, rtol=1e-4)
-        # jackknife over the three observers (Efron & Tibshirani 1993, ch. 11): leaving O2 out of lag 2
-        # leaves the +30 cell's mean as it is; the group's interval holds it (the floor may widen it)
-        loo = np.array([dog_fit(cells.drop(o).mean().to_numpy())[0] for o in cells.index])
-        half = stats.t.ppf(0.975, 2) * np.sqrt(2 / 3 * ((loo - loo.mean()) ** 2).sum())
-        assert tuning.loc[lag, "amplitude_ci_low"] <= a - half + 1e-6
-        assert tuning.loc[lag, "amplitude_ci_high"] >= a + half - 1e-6
-    notes = r.notes["group"]
-    assert ("group curves average each (lag, adapter offset) cell over the observers whose shift there is usable, "
-            "and leave out the observers' rows that are not usable: O2 (1 of 8: one-sided not-estimable)") in notes
-    assert not any("descriptive" in n for n in notes)
 
 
 def test_group_curve_floors_read_limits_on_a_bound_as_open(odd_group):
