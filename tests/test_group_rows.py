@@ -230,3 +230,34 @@ def test_a_stream_fit_of_several_observers_says_it_has_no_group_rows(tmp_path):
     assert report.summary().splitlines()[-1] == f"note: {NO_GROUP_NOTE}"
     assert not (pd.read_csv(tmp_path / "out" / "aftereffect.csv")["observer"] == "group").any()
     assert html.escape(NO_GROUP_NOTE) in (tmp_path / "out" / "report.html").read_text()
+
+
+def test_an_observer_with_an_unusable_cell_leaves_the_group_curves_whole_not_cell_by_cell():
+    # Noise-free shifts on the curve fit_tuning / fit_decay model (DoG tuning, exponential decay over lags), so the
+    # group curve's parameters are known exactly. The observer with the largest after-effect (8 deg) loses the
+    # peak cells of lag 0 as one-sided, as a shift past the tested range does. Averaging each cell over whoever
+    # is usable there mixed observers from cell to cell: lag 0 came out weaker than lag 1 and the decay went to
+    # its bound (4.5 periods against 2 for every observer). Leaving that observer out of the curves keeps the
+    # curves those of one set of observers, with a note naming who was left out.
+    offsets = [-90, -60, -30, -15, 0, 15, 30, 60, 90]
+
+    def dog(x, width=20.0):
+        return (x / width) * np.exp(0.5 - 0.5 * (x / width) ** 2)        # peak 1 at x = width
+
+    rows = []
+    for observer, amplitude in (("o1", 8.0), ("o2", 1.5), ("o3", 2.5)):
+        for lag in (0, 1, 2, 3):
+            for offset in offsets:
+                shift = amplitude * np.exp(-lag / 2.0) * dog(offset)
+                flags = "one-sided" if observer == "o1" and lag == 0 and abs(offset) in (15, 30) else ""
+                rows.append(dict(observer=observer, lag=lag, adapter_offset_deg=offset, pse_shift_deg=shift,
+                                 ci_low=shift - 1, ci_high=shift + 1, n_trials=40, flags=flags))
+    shifts = pd.DataFrame(rows)
+    notes = []
+    tuning, decay, _, _ = group_curves(shifts, 0.95, notes)
+    alone_notes = []
+    alone, alone_decay, _, _ = group_curves(shifts[shifts["observer"] != "o1"], 0.95, alone_notes)
+    assert np.allclose(tuning["amplitude_deg"], alone["amplitude_deg"])
+    assert np.allclose(tuning["amplitude_deg"], 2.0 * np.exp(-tuning["lag"] / 2.0), atol=1e-3)
+    assert decay["decay_periods"].iloc[0] == pytest.approx(2.0, abs=1e-3) == alone_decay["decay_periods"].iloc[0]
+    assert all("partial" in f for f in tuning["flags"]) and any("leave out o1" in n for n in notes)
