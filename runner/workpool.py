@@ -346,7 +346,16 @@ def _check_tls_settings(address: str) -> None:
         return
     from distributed.security import Security
 
-    if Security().get_connection_args("client").get("ssl_context") is None:
+    try:
+        context = Security().get_connection_args("client").get("ssl_context")
+    except (OSError, ValueError) as exc:    # a named file missing, or not a certificate or key (ssl.SSLError)
+        import dask
+
+        named = ", ".join(f"{key} {dask.config.get(f'distributed.comm.tls.{key}', None)}"
+                          for key in ("ca-file", "client.cert", "client.key"))
+        raise InputError("argument", "--scheduler", f"{address} is a TLS address, but Dask's TLS settings cannot be "
+                         f"used ({' '.join(str(exc).split())}; distributed.comm.tls.{named})") from None
+    if context is None:
         raise InputError("argument", "--scheduler", f"{address} is a TLS address, but Dask's configuration names no "
                          "TLS files for this process: set distributed.comm.tls.ca-file, .client.cert and "
                          ".client.key (e.g. DASK_DISTRIBUTED__COMM__TLS__CA_FILE=...) as for the cluster's workers")

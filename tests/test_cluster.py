@@ -149,6 +149,14 @@ def test_a_tls_address_without_tls_settings_is_one_line_at_once(tmp_path):
     lines = done.stderr.strip().splitlines()
     assert done.returncode == 2 and len(lines) == 1, done.stderr[-600:]
     assert "TLS address" in lines[0] and "distributed.comm.tls" in lines[0], lines[0]
+    # settings that name a missing file, or a file that holds no certificate: Python's ssl module refuses them
+    for named in (tmp_path / "missing.pem", tmp_path / "p.toml"):
+        tls = {f"DASK_DISTRIBUTED__COMM__TLS__{key}": str(named) for key in ("CA_FILE", "CLIENT__CERT", "CLIENT__KEY")}
+        done = run_cli("plan", tmp_path / "p.toml", "--runs", "1", "--out", tmp_path / "r",
+                       "--scheduler", f"tls://{LOOPBACK}:1", env={**clean, **tls}, timeout=120)
+        lines = done.stderr.strip().splitlines()
+        assert done.returncode == 2 and len(lines) == 1, done.stderr[-600:]
+        assert "cannot be used" in lines[0] and str(named) in lines[0], lines[0]
 
 
 def test_losing_a_worker_mid_study_changes_no_number(cluster, protocol_file, local_study, tmp_path):
