@@ -275,7 +275,12 @@ def _run_kept(args, quick_fit_shown: bool = True) -> str:
                 f"to fit them: {_fit_command(log, args.out)}")
     if sidecar.exists():
         return f"every completed trial is in the log; to continue: {_resume_command(args)}"
-    return "the session had not started and nothing was recorded; to start it, run the same command again"
+    return f"the session had not started and nothing was recorded; to start it, {_again(args)}"
+
+
+def _again(args) -> str:
+    """How to start a command that recorded nothing: the same command, less ``--resume`` if it had it."""
+    return "run the same command without --resume" if getattr(args, "resume", False) else "run the same command again"
 
 
 def _fit_command(logs, out) -> str:
@@ -309,7 +314,7 @@ def _simulate_kept(args) -> str:
 
     names = simulated_names(args.observers or 1)
     if not log_paths(args.out, names[0], args.session)[0].exists():
-        return "nothing was recorded; run the same command again"
+        return f"nothing was recorded; {_again(args)}"
     done = [completed_rows(args.out, name, args.session, kind="simulation") for name in names]
     if None not in done:
         return (f"every session is complete: all {sum(done)} trials are saved in {args.out} (nothing to resume); "

@@ -170,3 +170,18 @@ def test_a_session_started_under_old_defaults_resumes_with_them(tmp_path):
     assert done.returncode == 0, done.stderr
     assert _logs(cut_out)[name] == whole[name]
 
+
+
+def test_a_simulated_resume_with_nothing_to_resume_says_to_start_without_it(tmp_path, capsys):
+    # before: "sim01-s1.session.json: seed: is missing ... (the run stopped before writing it)", of a file and
+    # a folder that never existed
+    from runner.cli import main
+
+    for out in (tmp_path / "never", tmp_path / "empty"):
+        if out.name == "empty":
+            out.mkdir()
+        capsys.readouterr()
+        assert main(["simulate", str(PROTOCOLS / "pilot_short.toml"), "--out", str(out), "--resume"]) == 2
+        err = capsys.readouterr().err.strip().splitlines()
+        assert len(err) == 1 and "no simulated session s1 to resume here" in err[0], err
+        assert "leave out --resume to start it" in err[0] and "seed" not in err[0], err
