@@ -607,7 +607,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--model", help="observer model file (TOML, flat keys; default built in; a resume uses the "
                                    "sidecar's)")
     p.add_argument("--observers", type=_int_arg, default=None,
-                   help="number of simulated observers (default 1; with --resume, as many as OUT holds)")
+                   help="number of simulated observers (default 1; with --resume, as many as the first run asked for)")
     p.add_argument("--seed", type=_int_arg, help="seed (default 0; a resume uses the sidecar's)")
     p.add_argument("--session", default="s1", help="session label: letters, digits, - and _ (default s1)")
     p.add_argument("--resume", action="store_true", help="continue interrupted sessions in --out")

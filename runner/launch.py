@@ -153,14 +153,17 @@ def simulated_names(n_observers: int) -> list[str]:
 
 
 def simulated_observers_in(out_dir: str | Path, session: str) -> int:
-    """How many simulated observers a resume in ``out_dir`` continues: the highest ``simNN`` with a log or a
-    sidecar of ``session`` there (1 where there is none)."""
+    """How many simulated observers a resume in ``out_dir`` continues: as many as the first run asked for
+    (its sidecars record it), or the highest ``simNN`` with a log or a sidecar of ``session`` there (1 where
+    there is none).  A run killed before its later observers began leaves no file of theirs."""
     pattern = re.compile(rf"sim(\d\d)-{re.escape(session)}\.(?:trials\.csv|session\.json)")
     try:
         found = [int(m.group(1)) for p in Path(out_dir).iterdir() if (m := pattern.fullmatch(p.name))]
     except OSError:
         return 1
-    return max(found, default=1)
+    asked = [content.get("simulated_observers", 0)
+             for _, content in sidecar_settings(Path(out_dir), simulated_names(max(found, default=1)), session)]
+    return max(found + [n for n in asked if isinstance(n, int) and not isinstance(n, bool)], default=1)
 
 
 def resume_seed_and_model(out_dir: Path, n_observers: int, session: str, seed: int | None,
@@ -175,9 +178,10 @@ def resume_seed_and_model(out_dir: Path, n_observers: int, session: str, seed: i
     """
     names = simulated_names(n_observers)
     found = sidecar_settings(out_dir, names, session)
-    if not found and not any(path.exists() for name in names for path in log_paths(out_dir, name, session)):
+    if not found and seed is None and not any(path.exists() for name in names
+                                              for path in log_paths(out_dir, name, session)):
         raise InputError(str(out_dir), "--resume", f"no simulated session {session} to resume here (no log or "
-                         "sidecar of it); leave out --resume to start it")
+                         "sidecar of it); leave out --resume to start it")     # with --seed, a resume starts it
     if not found and seed is None:
         _refuse_unknown_seed(log_paths(out_dir, names[0], session)[1], "the original --seed (and --model, "
                              "if it used one)")
@@ -657,6 +661,7 @@ def simulate(
                 "measured_refresh_hz": None,
                 "packages": package_versions(),
                 "seed": seed,
+                "simulated_observers": len(runs),      # a resume without --observers continues them all
                 "session_seed": run.seed,
                 "offset_bounds_deg": protocol.procedure.bounds_deg,
                 "base_model": asdict(model),

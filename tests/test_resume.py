@@ -185,3 +185,20 @@ def test_a_simulated_resume_with_nothing_to_resume_says_to_start_without_it(tmp_
         err = capsys.readouterr().err.strip().splitlines()
         assert len(err) == 1 and "no simulated session s1 to resume here" in err[0], err
         assert "leave out --resume to start it" in err[0] and "seed" not in err[0], err
+
+
+def test_a_simulated_resume_continues_every_observer_the_first_run_asked_for(tmp_path):
+    # a run of 3 observers killed while sim01 ran left no file of sim02 and sim03; a bare --resume finished
+    # sim01 alone and said nothing. The sidecars record how many were asked for.
+    from runner.cli import main
+
+    protocol = str(PROTOCOLS / "pilot_short.toml")
+    assert main(["simulate", protocol, "--out", str(tmp_path / "whole"), "--observers", "3"]) == 0
+    cut = tmp_path / "cut"
+    assert main(["simulate", protocol, "--out", str(cut), "--observers", "3"]) == 0
+    for later in [*cut.glob("sim02-*"), *cut.glob("sim03-*")]:
+        later.unlink()                                  # the state a kill -9 during sim01 leaves for them
+    assert main(["simulate", protocol, "--out", str(cut), "--resume"]) == 0
+    for name in ("sim01", "sim02", "sim03"):
+        log = f"{name}-s1.trials.csv"
+        assert (cut / log).read_bytes() == (tmp_path / "whole" / log).read_bytes(), name
