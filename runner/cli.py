@@ -169,7 +169,7 @@ def cmd_simulate(args) -> int:
     try:
         paths = simulate(
             protocol, args.protocol, text, args.out, model, args.observers, args.seed, args.resume, args.session,
-            screening=screening.to_dict(), light=light,
+            screening=screening.to_dict(acknowledged=args.flicker_ack), light=light,
         )
     except StorageError as exc:         # name the whole command that continues, as a stop by a signal does
         exc.message = exc.message.replace(RESUME_ADVICE, f"continue: {_simulate_resume_command(args)}")
@@ -226,7 +226,7 @@ def cmd_run(args) -> int:
     extra = {
         "measured_refresh_hz": presenter.measured_hz,
         "acknowledged": {"flicker": bool(args.flicker_ack), "refresh_mismatch": bool(args.refresh_ack)},
-        "safety": screening.to_dict(),
+        "safety": screening.to_dict(acknowledged=args.flicker_ack),
         **({"light": light} if light is not None else {}),
     }
     lost = stop = None
