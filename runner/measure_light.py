@@ -193,11 +193,11 @@ def caution(patch_deg: float | None) -> str:
         and clinical advice.
     """
     shown = f"a steady {patch_deg:g}° square patch" if patch_deg is not None else "the whole screen, steady,"
-    return (f"caution: measure-light shows {shown} at full level to aim the photometer, then at other levels in "
-            "random order, jumping to the next each time a reading is entered (it never shows the protocol's "
-            "dots); each jump is a flash, which can trigger seizures in people with photosensitive epilepsy and "
-            "migraine in others: people with such a history should not take the readings; follow your ethics "
-            "board and clinical advice")
+    return (f"caution: measure-light shows {shown} at full level while the photometer is aimed, then at other "
+            "levels in random order, jumping to the next each time a reading is entered (it never shows the "
+            "protocol's dots); its jumps in level can flash, which can trigger seizures in people with "
+            "photosensitive epilepsy and migraine in others: people with such a history should not take the "
+            "readings; follow your ethics board and clinical advice")
 
 
 def readings_path(out: str | Path) -> Path:

@@ -89,7 +89,7 @@ def test_measure_light_is_not_screened_on_dots_it_never_shows(own_x_server, tmp_
     out, err = process.communicate(timeout=60)
     assert process.returncode == 0, err
     lines = out.splitlines()
-    assert lines[0].startswith("caution: measure-light shows a steady 5° square patch at full level"), out
+    assert lines[0].startswith("caution: measure-light shows a steady 5° square patch at full level while"), out
     assert "never shows the protocol's dots" in lines[0] and "ethics board" in lines[0]
     assert "photosensitivity screening" not in out and safety.ACKNOWLEDGE_OPTION not in out
     assert "stopped before the first reading; nothing written" in out
