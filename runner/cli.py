@@ -73,23 +73,23 @@ def _check_seed(value):
     return _check_count(value, "--seed", 0, MAX_SEED, "a seed")
 
 
-def _screen(protocol, path: str, acknowledged: bool, light=None):
+def _screen(protocol, path: str, acknowledged: bool):
     """Run the photosensitivity screening; refuse (exit 3) unless it clears or is acknowledged."""
     from runner import safety
 
-    result = safety.screen_protocol(protocol, light)
+    result = safety.screen_protocol(protocol)
     refusal = safety.screening_refusal(result, source=str(path))
     if refusal is not None and not acknowledged:
         raise refusal
     return result
 
 
-def _screen_before_window(protocol, path: str, acknowledged: bool, light=None):
+def _screen_before_window(protocol, path: str, acknowledged: bool):
     """Screen a protocol as ``check`` and ``run`` do (exit 3 unless cleared or acknowledged), then print the
-    verdict and the caution: the display commands light the screen with no observer caution screen."""
+    verdict and the caution: ``display-test`` draws the protocol's stimulus with no observer caution screen."""
     from runner import safety
 
-    result = _screen(protocol, path, acknowledged, light)
+    result = _screen(protocol, path, acknowledged)
     lines = result.summary_lines()
     print(lines[0])
     if not result.cleared:
@@ -169,7 +169,7 @@ def cmd_simulate(args) -> int:
     try:
         paths = simulate(
             protocol, args.protocol, text, args.out, model, args.observers, args.seed, args.resume, args.session,
-            screening=screening.to_dict(), light=light,
+            screening=screening.to_dict(acknowledged=args.flicker_ack), light=light,
         )
     except StorageError as exc:         # name the whole command that continues, as a stop by a signal does
         exc.message = exc.message.replace(RESUME_ADVICE, f"continue: {_simulate_resume_command(args)}")
@@ -226,7 +226,7 @@ def cmd_run(args) -> int:
     extra = {
         "measured_refresh_hz": presenter.measured_hz,
         "acknowledged": {"flicker": bool(args.flicker_ack), "refresh_mismatch": bool(args.refresh_ack)},
-        "safety": screening.to_dict(),
+        "safety": screening.to_dict(acknowledged=args.flicker_ack),
         **({"light": light} if light is not None else {}),
     }
     lost = stop = None
@@ -508,13 +508,15 @@ def cmd_display_test(args) -> int:
 
     display.check_seconds(args.seconds)
     protocol, _ = _load(args.protocol)
-    _screen_before_window(protocol, args.protocol, args.flicker_ack)
+    # Both modes draw the protocol's stimulus on screen (--frames plays two trials to read them back).
+    screening = _screen_before_window(protocol, args.protocol, args.flicker_ack)
     if args.frames:
         from runner.display.capture import capture_frames
 
         capture_frames(protocol, args.frames, args.frames_per_period, args.windowed)
         return EXIT_OK
-    report = display.display_test(protocol, args.seconds, args.windowed, args.report)
+    report = display.display_test(protocol, args.seconds, args.windowed, args.report,
+                                  screening=screening.to_dict(acknowledged=args.flicker_ack))
     return EXIT_OK if report.get("verdict_ok", True) else EXIT_SAFETY
 
 
@@ -531,8 +533,6 @@ def cmd_measure_light(args) -> int:
         return EXIT_OK
     from runner.protocol import Protocol
 
-    screened, light = _light_meter_screening(protocol, args.protocol) if args.protocol else (Protocol(), None)
-    _screen_before_window(screened, args.protocol or "", args.flicker_ack, light)
     patch = None if args.full_field else args.patch_deg
     # Stopped early is not an error: the readings are kept and the message says how to resume.
     try:
@@ -543,23 +543,6 @@ def cmd_measure_light(args) -> int:
               "(use --resume)", file=sys.stderr)
         return 130
     return EXIT_OK
-
-
-def _light_meter_screening(written, path: str):
-    """What ``measure-light`` screens: the protocol as ``check`` reads it, or, where its ``[light]`` profile
-    cannot be read (it is often the one being measured), its grey levels as written under the sRGB
-    assumption; returns (protocol, light model or None)."""
-    from runner.light import SRGB_LIGHT
-    from runner.protocol import parse_protocol, read_protocol_text
-
-    if written.light is None:
-        return written, None
-    try:
-        return parse_protocol(read_protocol_text(path), str(path)), None
-    except InputError as exc:
-        print(f"aftershift: note: screening the grey levels as written, on an sRGB display: {exc.line()}",
-              file=sys.stderr)
-        return written, SRGB_LIGHT
 
 
 def _version() -> str:
@@ -594,7 +577,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     def ack(p):
         p.add_argument(ack_flag, dest="flicker_ack", action="store_true",
-                       help="run a protocol that fails the photosensitivity screening, after review (recorded)")
+                       help="run a protocol that fails the photosensitivity screening or is not screened in full, "
+                            "after review (recorded in the sidecar or report)")
 
     p = sub.add_parser("check", help="validate a protocol and print its plan and safety screening")
     protocol_arg(p)
@@ -731,7 +715,6 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--label", default="", help="free text naming the display, written into the profile")
     p.add_argument("--fit-anyway", action="store_true",
                    help="fit readings that have problems (they are listed and recorded in the profile)")
-    ack(p)
     p.set_defaults(func=cmd_measure_light)
     return parser
 

@@ -176,6 +176,30 @@ def parse_reading(text: str) -> float | None:
     return value if np.isfinite(value) and 0.0 <= value < 1e6 else None
 
 
+def caution(patch_deg: float | None) -> str:
+    """The caution printed before the measurement window opens, about what that window shows.
+
+    Parameters
+    ----------
+    patch_deg : float or None
+        Side of the central patch in degrees; None for the full field.
+
+    Returns
+    -------
+    str
+        One line: the window shows a steady patch that jumps between grey
+        levels (and guns) when a reading is entered, never the protocol's
+        dots; who should not take the readings; defer to the ethics board
+        and clinical advice.
+    """
+    shown = f"a steady {patch_deg:g}° square patch" if patch_deg is not None else "the whole screen, steady,"
+    return (f"caution: measure-light shows {shown} at full level while the photometer is aimed, then at other "
+            "levels in random order, jumping to the next each time a reading is entered (it never shows the "
+            "protocol's dots); its jumps in level can flash, which can trigger seizures in people with "
+            "photosensitive epilepsy and migraine in others: people with such a history should not take the "
+            "readings; follow your ethics board and clinical advice")
+
+
 def readings_path(out: str | Path) -> Path:
     """Where the screen routine keeps the readings of profile ``out``."""
     p = Path(out)
@@ -284,6 +308,8 @@ def on_screen(protocol, out: str | Path, n_levels: int = 9, repeats: int = 2, pe
         if todo:
             from runner.display.light_meter import measure  # opens psychopy: only when there is something to measure
 
+            stream.write(caution(patch_deg) + "\n")
+            stream.flush()
             complete, hz = measure(protocol, steps, todo, log, windowed, patch_deg, stream)
         else:
             complete, hz = True, None

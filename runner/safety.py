@@ -793,6 +793,9 @@ class Screening:
     def to_dict(self, acknowledged: bool = False) -> dict:
         """Plain values for the session sidecar.
 
+        ``passed`` is the flash count alone; ``cleared`` and ``verdict`` say
+        whether the protocol runs without a review (:attr:`cleared`).
+
         Parameters
         ----------
         acknowledged : bool
@@ -801,6 +804,8 @@ class Screening:
         return {
             "criterion": "WCAG 2.x SC 2.3.1 general and red flash thresholds",
             "relative_luminance_from": self.light_source,
+            "verdict": self.verdict,
+            "cleared": self.cleared,
             "passed": self.passed,
             "unscreened": list(self.unscreened),
             "acknowledged_with": ACKNOWLEDGE_OPTION if acknowledged else None,

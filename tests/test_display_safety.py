@@ -1,13 +1,17 @@
-"""The display commands screen their protocol before any window opens, as ``check`` and ``run`` do.
+"""``display-test`` screens its protocol before any window opens, as ``check`` and ``run`` do.
 
-``display-test`` drew a protocol that ``check`` refuses full screen for up to ``--seconds``, and the
-on-screen ``measure-light`` opened without the screening or the caution. Each command runs as a separate
-process on its own Xvfb. The protocol refused is the 15 Hz on/off field of ``tests/test_safety.py``
-(WCAG 2.x SC 2.3.1: 6 general flashes in one second, more than the 3 allowed).
+``display-test`` drew a protocol that ``check`` refuses full screen for up to ``--seconds``; both its
+timing mode and ``--frames`` (which plays two trials on the window to read their frames back) draw the
+protocol's stimulus, so both are screened, and the timing report records the verdict. The on-screen
+``measure-light`` draws only a grey patch, never the protocol's dots: it is not screened on them, and it
+prints a caution about the patch before its window opens. Each command runs as a separate process on its
+own Xvfb. The protocol refused is the 15 Hz on/off field of ``tests/test_safety.py`` (WCAG 2.x SC 2.3.1:
+6 general flashes in one second, more than the 3 allowed).
 """
 
 from __future__ import annotations
 
+import json
 import subprocess
 import sys
 import time
@@ -34,7 +38,6 @@ def start(args, env) -> subprocess.Popen:
 @pytest.mark.parametrize("command, written", [
     (["display-test", "--seconds", "20", "--windowed", "--report", "{tmp}/timing.json"], "timing.json"),
     (["display-test", "--windowed", "--frames", "{tmp}/frames"], "frames"),
-    (["measure-light", "--out", "{tmp}/lab.toml", "--windowed"], "lab.readings.csv"),
 ])
 def test_a_refused_protocol_is_refused_before_any_window(own_x_server, tmp_path, command, written):  # noqa: F811
     args = [part.replace("{tmp}", str(tmp_path)) for part in command]
@@ -58,6 +61,10 @@ def test_display_test_prints_the_screening_and_caution_first(own_x_server, tmp_p
     assert lines[1] == f"photosensitivity: over the thresholds, acknowledged with {safety.ACKNOWLEDGE_OPTION}"
     assert lines[2].startswith(CAUTION) and "ethics board" in lines[2]
     assert lines[3].startswith("display test: ")
+    # the report records the verdict and the acknowledgement, as a session sidecar does
+    record = json.loads((tmp_path / "t.json").read_text(encoding="utf-8"))["safety"]
+    assert record["verdict"] == "over the thresholds" and record["cleared"] is False
+    assert record["acknowledged_with"] == safety.ACKNOWLEDGE_OPTION
     # a protocol that clears the screening still gets the usual caution, and no acknowledgement line
     process = start(["display-test", TINY, "--seconds", "1", "--windowed", "--report", tmp_path / "u.json"], env)
     out, err = process.communicate(timeout=90)
@@ -65,13 +72,15 @@ def test_display_test_prints_the_screening_and_caution_first(own_x_server, tmp_p
     assert lines[0].endswith(": passed"), out
     assert lines[1].startswith("caution: passing does not make a protocol safe for everyone"), out
     assert lines[2].startswith("display test: "), out
+    record = json.loads((tmp_path / "u.json").read_text(encoding="utf-8"))["safety"]
+    assert record["verdict"] == "passed" and record["cleared"] is True and record["acknowledged_with"] is None
 
 
-def test_measure_light_prints_the_screening_and_caution_before_its_window(own_x_server, tmp_path):  # noqa: F811
+def test_measure_light_is_not_screened_on_dots_it_never_shows(own_x_server, tmp_path):  # noqa: F811
+    # It refused the 15 Hz protocol (exit 3) although its window shows only a grey patch on the background.
     require_xdotool()
     env = own_x_server.env()
-    process = start(["measure-light", REFUSED, "--out", tmp_path / "lab.toml", "--windowed",
-                     safety.ACKNOWLEDGE_OPTION], env)
+    process = start(["measure-light", REFUSED, "--out", tmp_path / "lab.toml", "--windowed"], env)
     window = find_window("aftershift", env, process=process)
     deadline = time.monotonic() + 30
     while process.poll() is None and time.monotonic() < deadline:     # Escape before the first reading
@@ -80,7 +89,11 @@ def test_measure_light_prints_the_screening_and_caution_before_its_window(own_x_
     out, err = process.communicate(timeout=60)
     assert process.returncode == 0, err
     lines = out.splitlines()
-    assert lines[0].endswith(": over the thresholds"), out
-    assert lines[1] == f"photosensitivity: over the thresholds, acknowledged with {safety.ACKNOWLEDGE_OPTION}"
-    assert lines[2].startswith(CAUTION)
+    assert lines[0].startswith("caution: measure-light shows a steady 5° square patch at full level while"), out
+    assert "never shows the protocol's dots" in lines[0] and "ethics board" in lines[0]
+    assert "photosensitivity screening" not in out and safety.ACKNOWLEDGE_OPTION not in out
     assert "stopped before the first reading; nothing written" in out
+    # the review option means nothing here, so the command does not take it
+    process = start(["measure-light", REFUSED, "--out", tmp_path / "lab.toml", safety.ACKNOWLEDGE_OPTION], env)
+    out, err = process.communicate(timeout=60)
+    assert process.returncode == 2 and safety.ACKNOWLEDGE_OPTION in err, err

@@ -388,6 +388,29 @@ def test_what_the_screening_cannot_judge_needs_the_review_option(capsys, tmp_pat
     assert not (tmp_path / "sim").exists() or not any((tmp_path / "sim").iterdir())
 
 
+@pytest.mark.slow
+def test_a_simulation_sidecar_records_the_verdict_and_the_review(tmp_path):
+    # The sidecar said "passed": true and "acknowledged_with": null for a protocol refused without
+    # --flicker-reviewed (2° dots, "not screened in full") that was simulated with it.
+    from runner.cli import main
+
+    path = tmp_path / "big.toml"
+    path.write_text("[display]\nrefresh_hz = 60\nbackground = 0.0\n[dots]\ndot_size_deg = 2.0\n"
+                    "density_per_deg2 = 0.15\nlevel = 1.0\n[design]\nadapter_offsets_deg = [-30, 30]\nlags = [0]\n"
+                    "trials_per_track = 4\npractice_trials = 0\n", encoding="utf-8")
+    assert main(["simulate", str(path), "--out", str(tmp_path / "sim"), safety.ACKNOWLEDGE_OPTION]) == 0
+    (side,) = (tmp_path / "sim").glob("*.session.json")
+    record = json.loads(side.read_text(encoding="utf-8"))["safety"]
+    assert record["verdict"] == "not screened in full" and record["cleared"] is False
+    assert record["passed"] is True and record["unscreened"][0].startswith("6 dots of 2°")
+    assert record["acknowledged_with"] == safety.ACKNOWLEDGE_OPTION
+    # a protocol that clears the screening, simulated without the option
+    assert main(["simulate", str(FLICKER_15HZ.with_name("display_tiny.toml")), "--out", str(tmp_path / "ok")]) == 0
+    (side,) = (tmp_path / "ok").glob("*.session.json")
+    record = json.loads(side.read_text(encoding="utf-8"))["safety"]
+    assert record["verdict"] == "passed" and record["cleared"] is True and record["acknowledged_with"] is None
+
+
 @pytest.mark.parametrize("protocol", sorted(PROTOCOLS.glob("*.toml")), ids=lambda p: p.name)
 def test_bundled_protocols_are_cleared_without_review(protocol):
     assert safety.screen_protocol(load_protocol(protocol)).cleared

@@ -76,8 +76,9 @@ def open_screen(protocol, windowed: bool, allow_refresh_mismatch: bool, console=
     return _open_screen(protocol, windowed, allow_refresh_mismatch, console)
 
 
-def display_test(protocol=None, seconds: float = 10.0, windowed: bool = False, report_path=None) -> dict:
+def display_test(protocol=None, seconds: float = 10.0, windowed: bool = False, report_path=None,
+                 screening: dict | None = None) -> dict:
     """Measure frame timing on this display; see :func:`runner.display.selftest.display_test`."""
     from runner.display.selftest import display_test as _display_test
 
-    return _display_test(protocol, seconds, windowed, report_path)
+    return _display_test(protocol, seconds, windowed, report_path, screening=screening)

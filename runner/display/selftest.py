@@ -64,7 +64,7 @@ def _timing_verdict(report: dict) -> tuple[bool, str]:
 
 
 def display_test(protocol: Protocol | None = None, seconds: float = 10.0, windowed: bool = False,
-                 report_path=None, stream=None) -> dict:
+                 report_path=None, stream=None, screening: dict | None = None) -> dict:
     """Measure frame timing while the protocol's full dot field is drawn.
 
     Parameters
@@ -81,13 +81,17 @@ def display_test(protocol: Protocol | None = None, seconds: float = 10.0, window
         Where to write the JSON report (folders are made); None writes none.
     stream : file-like, optional
         Where the verdict is printed (default standard output).
+    screening : dict, optional
+        The photosensitivity screening of the protocol and whether it was
+        acknowledged (:meth:`runner.safety.Screening.to_dict`), recorded as
+        ``safety``.
 
     Returns
     -------
     dict
         The report: refresh rates, frame-interval mean/SD/max (ms), dropped
         frames, CPU time per frame, window and renderer, ``verdict`` (text)
-        and ``verdict_ok``.
+        and ``verdict_ok``, and ``safety`` when ``screening`` is given.
 
     Raises
     ------
@@ -147,6 +151,8 @@ def display_test(protocol: Protocol | None = None, seconds: float = 10.0, window
         "psychopy": psychopy_version,
     }
     report["verdict_ok"], report["verdict"] = _verdict(report)
+    if screening is not None:
+        report["safety"] = screening
     lines = [
         f"display test: {report['n_dots']} dots, {report['frames']} frames in {report['seconds_measured']:.2f} s",
         f"  refresh   {report['refresh_hz_measured']:.2f} Hz measured, {hz:g} Hz in the protocol",
