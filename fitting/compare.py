@@ -834,8 +834,8 @@ def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figure
     measured = read_measured(measured_path)
     shown = None
     if results.is_dir():
+        shown = read_fit(results)          # what the page shows, checked now (no link followed) and copied
         read_report_data(results)          # refused now, not after the work, if the page could not be made
-        shown = read_fit(results)          # what the page shows, checked now and copied with the outputs
     cov_path = measured_path.parent / COVARIANCE_FILE
     cov_table = read_covariance(cov_path, measured) if cov_path.is_file() else None
     predictions = read_predictions(predictions_path)
