@@ -16,7 +16,10 @@ Each is checked as it is read:
 * a missing file that carries numbers (a table, ``summary.txt``) is refused, as is a table (CSV) cut inside a row, with a
   row of more or fewer cells than its header, a header cell without a name,
   or without the ``observer`` column by which the page sorts its rows: one
-  line naming the file (and line, column), exit 2;
+  line naming the file (and line, column), exit 2; so is a number cell of
+  ``pse.csv``, ``aftereffect.csv``, ``tuning.csv`` or ``decay.csv`` that is
+  not a finite number, or beyond the range fit's bounds keep it in, by the
+  rule ``compare`` applies to the tables it reads (:mod:`fitting.cells`);
 * a file (or a folder on its way) that is a link, or that is not a regular
   file (a FIFO, a device, a folder), is refused in one line saying what it
   is: the copy holds the fit's own files, never what a link points to (such
@@ -39,7 +42,12 @@ import stat
 from dataclasses import dataclass
 from pathlib import Path
 
+import pandas as pd
+
+from .aftereffect import TAU_BOUNDS
+from .cells import check_numbers, check_ranges
 from .errors import InputError
+from .observer import AFTEREFFECT_COLUMNS, DECAY_COLUMNS, PSE_COLUMNS, TUNING_COLUMNS
 from .outputs import MANIFEST, _inside, read_manifest, write_atomic
 from .page import OBSERVER_TABLES, PAGE
 from .provenance import REPORT_DATA
@@ -50,6 +58,13 @@ FIT_COPY = "fit"
 BY_OBSERVER = (*(name for name, _ in OBSERVER_TABLES), "exclusions.csv", "aftereffect_covariance.csv")
 #: Files a page shows, looked for in a folder without a manifest.
 SHOWN = (*BY_OBSERVER, "mixed_model.csv", REPORT_DATA, "summary.txt")
+#: Tables whose cells the page shows as numbers: columns fit writes as text (the rest are numbers, or empty).
+TEXT_COLUMNS = ("observer", "condition", "flags")
+NUMBER_TABLES = {"pse.csv": PSE_COLUMNS, "aftereffect.csv": AFTEREFFECT_COLUMNS, "tuning.csv": TUNING_COLUMNS,
+                 "decay.csv": DECAY_COLUMNS}
+#: Ranges fit's own bounds keep numbers in (the decay constant's fit, :data:`fitting.aftereffect.TAU_BOUNDS`).
+NUMBER_RANGES = {"decay.csv": {col: (*TAU_BOUNDS, " periods (what fit can write)")
+                               for col in ("decay_periods", "ci_low", "ci_high")}}
 #: First and last bytes of a whole figure file (PNG: signature and IEND chunk; PDF: header and end marker).
 FIGURE_ENDS = {".png": (b"\x89PNG\r\n\x1a\n", b"IEND\xaeB`\x82"), ".pdf": (b"%PDF-", b"%%EOF")}
 
@@ -126,6 +141,8 @@ def read_fit(fit_dir: str | Path) -> FitCopy:
                 continue
         elif path.suffix == ".csv":
             check_table(path, data, by_observer=rel in BY_OBSERVER)
+            if rel in NUMBER_TABLES:
+                _check_cells(path, data, NUMBER_TABLES[rel], NUMBER_RANGES.get(rel))
         files[rel] = data
     return FitCopy(source, files, tuple(notes))
 
@@ -210,6 +227,15 @@ def _refuse_link(link: Path, source: Path) -> None:
     raise InputError(str(link), "file", f"is a link to {target}, {where} the fit folder; compare copies only the "
                      "fit's own files, not what links point to: copy the files themselves in (e.g. `cp -rL`) "
                      "or run fit again into this folder")
+
+
+def _check_cells(path: Path, data: bytes, columns, ranges) -> None:
+    """Refuse a number cell (a column of ``columns`` fit writes as a number) as compare's own tables are refused."""
+    frame = pd.read_csv(io.BytesIO(data), dtype=str, keep_default_na=False, na_values=[""])
+    numbers = [col for col in columns if col in frame and col not in TEXT_COLUMNS]
+    check_numbers(frame, path, numbers, may_be_empty=numbers)
+    check_ranges(frame, path, [col for col in numbers if col == "lag"],
+                 {col: span for col, span in (ranges or {}).items() if col in numbers})
 
 
 def check_table(path: Path, data: bytes, by_observer: bool = False) -> None:

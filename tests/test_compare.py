@@ -621,6 +621,14 @@ def test_the_comparison_page_keeps_showing_the_fit_it_compared_after_a_refit(rea
      2, "figures: file: is a link to "),
     (lambda fit: (fit / "figures" / "tracks_sim01.png").unlink() or (fit / "figures" / "tracks_sim01.png").mkdir(), 2,
      "tracks_sim01.png: file: is a folder, not a file fit writes"),
+    # before: exit 0, and the page showed the cell as it was
+    (lambda fit: (fit / "tuning.csv").write_text(_cell(2, "amplitude_deg", "GARBAGE")((fit / "tuning.csv").read_text())),
+     2, "tuning.csv: line 2: amplitude_deg: expected a number, found 'GARBAGE'"),
+    (lambda fit: (fit / "pse.csv").write_text(_cell(3, "lapse", "inf")((fit / "pse.csv").read_text())),
+     2, "pse.csv: line 3: lapse: expected a number, found 'inf'"),
+    # the decay constant is fitted within fitting.aftereffect.TAU_BOUNDS, so its CIs are too
+    (lambda fit: (fit / "decay.csv").write_text(_cell(2, "decay_periods", "-1e308")((fit / "decay.csv").read_text())),
+     2, "decay.csv: line 2: decay_periods: expected a value in [0.01, 1000] periods"),
 ])
 def test_a_damaged_fit_folder_is_one_line_or_a_note_on_the_page(real_fit, tmp_path, capsys, damage, code, says):
     fit, pred = _copy_of(real_fit, tmp_path)
