@@ -75,6 +75,7 @@ from scipy import special
 
 from fitting.covariance import COVARIANCE_COLUMNS, NO_COVARIANCE, covariance_matrix
 from fitting.errors import InputError
+from fitting.cells import check_numbers, check_ranges, line_of
 from fitting.fit_copy import FIT_COPY, check_table, read_fit
 from fitting.group import GROUP
 from fitting.group_chi2 import DRAWS, GroupData, calibrated_p
@@ -109,11 +110,6 @@ NOT_ESTIMABLE = {"one-sided": "every answer on one side, so the PSE is not estim
                  "few-trials": f"fewer than {MIN_TRIALS_FOR_INTERVAL} trials, so no interval"}
 
 
-def _line_of(mask) -> int:
-    """The file line of the first True row of ``mask`` (the header is line 1)."""
-    return int(np.flatnonzero(np.asarray(mask))[0]) + 2
-
-
 def _read_csv(path: Path, required: tuple[str, ...], may_be_empty: tuple[str, ...] = (),
               optional: tuple[str, ...] = (), by_fit: bool = False) -> pd.DataFrame:
     """Read ``path``; ``required`` columns must be finite numbers (``observer`` any text) except empty
@@ -139,20 +135,7 @@ def _read_csv(path: Path, required: tuple[str, ...], may_be_empty: tuple[str, ..
     for col in optional:
         if col not in frame.columns:
             frame[col] = np.nan
-    for col in (*required, *optional):
-        if col == "observer":
-            continue
-        values = pd.to_numeric(frame[col], errors="coerce")
-        bad = values.isna() & frame[col].notna() | ~np.isfinite(values.fillna(0))
-        missing = values.isna() & (col not in (*may_be_empty, *optional))
-        if (missing & ~bad).any():
-            line = _line_of(missing & ~bad)
-            raise InputError(str(path), f"line {line}", f"{col}: missing or not a finite number "
-                             f"({str(frame[col].iloc[line - 2])!r})")
-        if bad.any():
-            line = _line_of(bad)
-            raise InputError(str(path), f"line {line}", f"{col}: expected a number, found {str(frame[col].iloc[line - 2])!r}")
-        frame[col] = values
+    check_numbers(frame, path, [c for c in (*required, *optional) if c != "observer"], (*may_be_empty, *optional))
     return frame
 
 
@@ -162,20 +145,8 @@ def _refuse_odd_values(frame: pd.DataFrame, path: Path, keys: tuple[str, ...], w
     and a value of a ``ranges`` column outside its ``(low, high, unit)``, naming the line and column."""
     dup = frame.duplicated(list(keys))
     if dup.any():
-        raise InputError(str(path), f"line {_line_of(dup)}", f"a second row for the same {what}")
-    for col in lags:
-        lag = frame[col]
-        odd = (lag < 0) | (lag != np.round(lag))
-        if odd.any():
-            line = _line_of(odd)
-            raise InputError(str(path), f"line {line}",
-                             f"{col}: expected a whole number of periods >= 0, found {lag.iloc[line - 2]:g}")
-    for col, (low, high, unit) in ranges.items():
-        out = frame[col].notna() & ~frame[col].between(low, high)
-        if out.any():
-            line = _line_of(out)
-            raise InputError(str(path), f"line {line}", f"{col}: expected a value in [{low:g}, {high:g}]{unit}, "
-                             f"found {frame[col].iloc[line - 2]:g}")
+        raise InputError(str(path), f"line {line_of(dup)}", f"a second row for the same {what}")
+    check_ranges(frame, path, lags, ranges)
 
 
 def read_predictions(path: str | Path) -> pd.DataFrame:
@@ -225,7 +196,7 @@ def read_measured(path: str | Path) -> pd.DataFrame:
                                   "ci_high": limit})
     swapped = frame["ci_low"] > frame["ci_high"]
     if swapped.any():
-        raise InputError(str(p), f"line {_line_of(swapped)}", "ci_low: above ci_high, as no fit writes it "
+        raise InputError(str(p), f"line {line_of(swapped)}", "ci_low: above ci_high, as no fit writes it "
                          "(a changed or damaged cell?)")
     # fit's order (observers by name, the group last; lags, then offsets): every number compare prints,
     # the simulated groups' p included, then follows from the table's content, not from its rows' order
@@ -255,8 +226,8 @@ def read_covariance(path: Path, measured: pd.DataFrame) -> pd.DataFrame:
                         "replicates": (1.0, MAX_REPLICATES, " (what fit can draw)")})
     whole = table["replicates"].isna() | (table["replicates"] == np.round(table["replicates"]))
     if not whole.all():
-        raise InputError(str(path), f"line {_line_of(~whole)}", "replicates: expected a whole number, found "
-                         f"{table['replicates'].iloc[_line_of(~whole) - 2]:g}")
+        raise InputError(str(path), f"line {line_of(~whole)}", "replicates: expected a whole number, found "
+                         f"{table['replicates'].iloc[line_of(~whole) - 2]:g}")
     _check_covariance_labels(table, path)
     for observer, rows in table.groupby("observer", sort=False):
         cells = rows[["lag_a", "adapter_offset_a_deg"]].drop_duplicates()
@@ -834,8 +805,8 @@ def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figure
     measured = read_measured(measured_path)
     shown = None
     if results.is_dir():
+        shown = read_fit(results)          # what the page shows, checked now (no link followed) and copied
         read_report_data(results)          # refused now, not after the work, if the page could not be made
-        shown = read_fit(results)          # what the page shows, checked now and copied with the outputs
     cov_path = measured_path.parent / COVARIANCE_FILE
     cov_table = read_covariance(cov_path, measured) if cov_path.is_file() else None
     predictions = read_predictions(predictions_path)

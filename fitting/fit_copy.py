@@ -13,12 +13,21 @@ The files copied are those the fit folder's manifest (``outputs.json``,
 manifest (assembled by hand) gives the files a page shows that are there.
 Each is checked as it is read:
 
-* a missing file that carries numbers (a table, ``report_data.json``,
-  ``summary.txt``) is refused, as is a table (CSV) cut inside a row, with a
+* a missing file that carries numbers (a table, ``summary.txt``) is refused, as is a table (CSV) cut inside a row, with a
   row of more or fewer cells than its header, a header cell without a name,
   or without the ``observer`` column by which the page sorts its rows: one
-  line naming the file (and line, column), exit 2;
-* a figure that is missing, or not a whole PNG or PDF, leaves a note, which
+  line naming the file (and line, column), exit 2; so is a number cell of
+  ``pse.csv``, ``aftereffect.csv``, ``tuning.csv`` or ``decay.csv`` that is
+  not a finite number, or beyond the range fit's bounds keep it in, by the
+  rule ``compare`` applies to the tables it reads (:mod:`fitting.cells`);
+* a file (or a folder on its way) that is a link, or that is not a regular
+  file (a FIFO, a device, a folder), is refused in one line saying what it
+  is: the copy holds the fit's own files, never what a link points to (such
+  as ``/etc/passwd``), and reading waits on no pipe;
+* a figure that is missing, or not a whole PNG or PDF, or a missing
+  ``report_data.json`` (the record of sessions, protocols and software, not
+  numbers of the tables; a clone of the repository lacks the demo's) leaves
+  a note, which
   ``compare`` prints and the page shows at its top; the page then shows the
   fit without it.
 """
@@ -26,11 +35,19 @@ Each is checked as it is read:
 from __future__ import annotations
 
 import csv
+import errno
 import io
+import os
+import stat
 from dataclasses import dataclass
 from pathlib import Path
 
+import pandas as pd
+
+from .aftereffect import TAU_BOUNDS
+from .cells import check_numbers, check_ranges
 from .errors import InputError
+from .observer import AFTEREFFECT_COLUMNS, DECAY_COLUMNS, PSE_COLUMNS, TUNING_COLUMNS
 from .outputs import MANIFEST, _inside, read_manifest, write_atomic
 from .page import OBSERVER_TABLES, PAGE
 from .provenance import REPORT_DATA
@@ -41,6 +58,13 @@ FIT_COPY = "fit"
 BY_OBSERVER = (*(name for name, _ in OBSERVER_TABLES), "exclusions.csv", "aftereffect_covariance.csv")
 #: Files a page shows, looked for in a folder without a manifest.
 SHOWN = (*BY_OBSERVER, "mixed_model.csv", REPORT_DATA, "summary.txt")
+#: Tables whose cells the page shows as numbers: columns fit writes as text (the rest are numbers, or empty).
+TEXT_COLUMNS = ("observer", "condition", "flags")
+NUMBER_TABLES = {"pse.csv": PSE_COLUMNS, "aftereffect.csv": AFTEREFFECT_COLUMNS, "tuning.csv": TUNING_COLUMNS,
+                 "decay.csv": DECAY_COLUMNS}
+#: Ranges fit's own bounds keep numbers in (the decay constant's fit, :data:`fitting.aftereffect.TAU_BOUNDS`).
+NUMBER_RANGES = {"decay.csv": {col: (*TAU_BOUNDS, " periods (what fit can write)")
+                               for col in ("decay_periods", "ci_low", "ci_high")}}
 #: First and last bytes of a whole figure file (PNG: signature and IEND chunk; PDF: header and end marker).
 FIGURE_ENDS = {".png": (b"\x89PNG\r\n\x1a\n", b"IEND\xaeB`\x82"), ".pdf": (b"%PDF-", b"%%EOF")}
 
@@ -96,8 +120,12 @@ def read_fit(fit_dir: str | Path) -> FitCopy:
         path = source / rel
         figure = path.suffix.lower() in FIGURE_ENDS
         try:
-            data = path.read_bytes()
-        except (FileNotFoundError, IsADirectoryError, NotADirectoryError):
+            data = _read_own(source, rel)
+        except (FileNotFoundError, NotADirectoryError):
+            if rel == REPORT_DATA:            # a record, not numbers of the tables (git-ignored in the demo)
+                notes.append(f"{path}: listed in {MANIFEST} but missing; the report shows the fit without the "
+                             "sessions, protocols and software behind it")
+                continue
             if not figure:
                 raise InputError(str(path), "file", f"listed in {MANIFEST} but missing; it carries numbers the "
                                  "report shows, so run fit again into this folder") from None
@@ -113,6 +141,8 @@ def read_fit(fit_dir: str | Path) -> FitCopy:
                 continue
         elif path.suffix == ".csv":
             check_table(path, data, by_observer=rel in BY_OBSERVER)
+            if rel in NUMBER_TABLES:
+                _check_cells(path, data, NUMBER_TABLES[rel], NUMBER_RANGES.get(rel))
         files[rel] = data
     return FitCopy(source, files, tuple(notes))
 
@@ -130,9 +160,82 @@ def _listed(source: Path) -> list[str]:
                          "run fit again into this folder")
     outside = [rel for rel in listed if not _inside(source, rel)]
     if outside:
-        raise InputError(str(source / MANIFEST), "files", f"lists {outside[0]!r}, outside the fit folder, as no "
+        rel = outside[0]
+        parts = Path(rel).parts
+        if not (Path(rel).is_absolute() or ".." in parts):       # a folder of the fit linked elsewhere
+            for depth in range(1, len(parts)):
+                if (source.joinpath(*parts[:depth])).is_symlink():
+                    _refuse_link(source.joinpath(*parts[:depth]), source)
+        raise InputError(str(source / MANIFEST), "files", f"lists {rel!r}, outside the fit folder, as no "
                          "fit writes it (a hand edit?); run fit again into this folder")
     return [rel for rel in listed if rel not in (PAGE, MANIFEST)]
+
+
+#: What a path that is not a regular file is, by its file type.
+_KINDS = {stat.S_IFDIR: "a folder", stat.S_IFIFO: "a FIFO (named pipe)", stat.S_IFCHR: "a device",
+          stat.S_IFBLK: "a device", stat.S_IFSOCK: "a socket"}
+
+
+def _read_own(source: Path, rel: str) -> bytes:
+    """Read ``source / rel`` if it is a regular file reached through no link; else refuse it in one line.
+
+    Each part of ``rel`` is opened with ``O_NOFOLLOW`` inside the folder
+    opened before it, so a link anywhere on the way is seen, not followed;
+    ``O_NONBLOCK`` keeps the open of a FIFO from waiting for a writer.
+
+    Raises
+    ------
+    FileNotFoundError, NotADirectoryError
+        The file (or a folder on its way) is not there.
+    InputError
+        A link, or not a regular file, naming it and what it is.
+    """
+    parts = Path(rel).parts
+    fd = os.open(source, os.O_RDONLY | os.O_DIRECTORY)
+    try:
+        for depth, part in enumerate(parts, 1):
+            last = depth == len(parts)
+            flags = os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | os.O_CLOEXEC | (0 if last else os.O_DIRECTORY)
+            try:
+                inner = os.open(part, flags, dir_fd=fd)
+            except OSError as exc:
+                here = source.joinpath(*parts[:depth])
+                if exc.errno in (errno.ELOOP, errno.ENOTDIR) and here.is_symlink():
+                    _refuse_link(here, source)
+                raise
+            os.close(fd)
+            fd = inner
+        mode = os.fstat(fd).st_mode
+        if not stat.S_ISREG(mode):
+            raise InputError(str(source / rel), "file", f"is {_KINDS.get(stat.S_IFMT(mode), 'not a file')}, "
+                             "not a file fit writes; compare copies only the fit's own files, so put the file "
+                             "itself there or run fit again into this folder")
+        os.set_blocking(fd, True)
+        with os.fdopen(fd, "rb") as fh:
+            fd = -1                                                 # closed with fh
+            return fh.read()
+    finally:
+        if fd >= 0:
+            os.close(fd)
+
+
+def _refuse_link(link: Path, source: Path) -> None:
+    """Refuse ``link`` (a link inside the fit folder ``source``), saying where it points."""
+    target = os.readlink(link)
+    real, top = os.path.realpath(link), os.path.realpath(source)
+    where = "inside" if real == top or real.startswith(top + os.sep) else "outside"
+    raise InputError(str(link), "file", f"is a link to {target}, {where} the fit folder; compare copies only the "
+                     "fit's own files, not what links point to: copy the files themselves in (e.g. `cp -rL`) "
+                     "or run fit again into this folder")
+
+
+def _check_cells(path: Path, data: bytes, columns, ranges) -> None:
+    """Refuse a number cell (a column of ``columns`` fit writes as a number) as compare's own tables are refused."""
+    frame = pd.read_csv(io.BytesIO(data), dtype=str, keep_default_na=False, na_values=[""])
+    numbers = [col for col in columns if col in frame and col not in TEXT_COLUMNS]
+    check_numbers(frame, path, numbers, may_be_empty=numbers)
+    check_ranges(frame, path, [col for col in numbers if col == "lag"],
+                 {col: span for col, span in (ranges or {}).items() if col in numbers})
 
 
 def check_table(path: Path, data: bytes, by_observer: bool = False) -> None:

@@ -431,7 +431,7 @@ def render(fit_dir, page_path=None, compare_dir=None, title: str | None = None, 
         body.insert(2, '<div class="flags"><p><b>Left out of this report:</b></p><ul>'
                        + "".join(f"<li>{_e(n)}</li>" for n in notes) + "</ul></div>")
     if data.get("missing"):
-        body.insert(2, f'<p class="flags">{_e(data["missing"])} is missing: sessions, protocols and software '
+        body.insert(2, f'<p class="flags">{_e(Path(data["missing"]).name)} is missing: sessions, protocols and software '
                        "are unknown to this report.</p>")
     if page.has_group:
         body.append(page.observer_section(GROUP))

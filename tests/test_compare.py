@@ -11,7 +11,7 @@ from fitting.compare import agreement, compare_results
 from fitting.population import ChannelModel, predict_table
 from runner.cli import main
 
-from conftest import ROOT
+from conftest import ROOT, run_cli
 
 Z = stats.norm.ppf(0.975)
 
@@ -609,6 +609,26 @@ def test_the_comparison_page_keeps_showing_the_fit_it_compared_after_a_refit(rea
      "pse.csv: line 10: the file ends inside this row"),
     (lambda fit: (fit / "fit_details.csv").write_text((fit / "fit_details.csv").read_text().replace("observer,", "who,")),
      2, "fit_details.csv: observer: column missing"),
+    # before: exit 0, /etc/passwd copied into compare's folder and shown on the page
+    (lambda fit: ((fit / "summary.txt").unlink(), (fit / "summary.txt").symlink_to("/etc/passwd")), 2,
+     "summary.txt: file: is a link to /etc/passwd, outside the fit folder"),
+    # before: a MemoryError traceback (read_bytes of an endless file)
+    (lambda fit: ((fit / "figures" / "tracks_sim01.png").unlink(),
+                  (fit / "figures" / "tracks_sim01.png").symlink_to("/dev/zero")), 2,
+     "tracks_sim01.png: file: is a link to /dev/zero, outside the fit folder"),
+    # before: "outside the fit folder ... (a hand edit?)", which does not say that the folder is a link
+    (lambda fit: ((fit / "figures").rename(fit.parent / "shared"), (fit / "figures").symlink_to(fit.parent / "shared")),
+     2, "figures: file: is a link to "),
+    (lambda fit: (fit / "figures" / "tracks_sim01.png").unlink() or (fit / "figures" / "tracks_sim01.png").mkdir(), 2,
+     "tracks_sim01.png: file: is a folder, not a file fit writes"),
+    # before: exit 0, and the page showed the cell as it was
+    (lambda fit: (fit / "tuning.csv").write_text(_cell(2, "amplitude_deg", "GARBAGE")((fit / "tuning.csv").read_text())),
+     2, "tuning.csv: line 2: amplitude_deg: expected a number, found 'GARBAGE'"),
+    (lambda fit: (fit / "pse.csv").write_text(_cell(3, "lapse", "inf")((fit / "pse.csv").read_text())),
+     2, "pse.csv: line 3: lapse: expected a number, found 'inf'"),
+    # the decay constant is fitted within fitting.aftereffect.TAU_BOUNDS, so its CIs are too
+    (lambda fit: (fit / "decay.csv").write_text(_cell(2, "decay_periods", "-1e308")((fit / "decay.csv").read_text())),
+     2, "decay.csv: line 2: decay_periods: expected a value in [0.01, 1000] periods"),
 ])
 def test_a_damaged_fit_folder_is_one_line_or_a_note_on_the_page(real_fit, tmp_path, capsys, damage, code, says):
     fit, pred = _copy_of(real_fit, tmp_path)
@@ -629,3 +649,37 @@ def test_a_damaged_fit_folder_is_one_line_or_a_note_on_the_page(real_fit, tmp_pa
     name = says.split(":")[0]
     assert name not in " ".join(_PageParts(out / "report.html").links)
     assert not (out / "fit" / "figures" / name).exists()
+
+
+@pytest.mark.slow
+def test_a_fifo_in_the_fit_folder_is_one_line_not_a_hang(real_fit, tmp_path):
+    # before: compare opened the FIFO for reading and waited for a writer forever
+    import os
+
+    fit, pred = _copy_of(real_fit, tmp_path)
+    (fit / "figures" / "tracks_sim01.png").unlink()
+    os.mkfifo(fit / "figures" / "tracks_sim01.png")
+    done = run_cli("compare", str(fit), str(pred), "--out", str(tmp_path / "cmp"), timeout=60)
+    assert done.returncode == 2 and len(done.stderr.strip().splitlines()) == 1, done.stderr
+    assert "tracks_sim01.png: file: is a FIFO (named pipe)" in done.stderr
+    assert not (tmp_path / "cmp").exists()
+
+
+@pytest.mark.slow
+def test_the_demo_fit_without_its_record_is_compared_with_a_note(tmp_path, capsys):
+    # before: exit 2 "report_data.json: listed in outputs.json but missing"; the file is git-ignored (it records
+    # times and versions), so a fresh clone could not compare the committed demo fit
+    import shutil
+
+    demo = ROOT / "results_demo"
+    fit = tmp_path / "fit"
+    shutil.copytree(demo / "fit", fit, ignore=shutil.ignore_patterns("report_data.json", "report.html"))
+    out = tmp_path / "cmp"
+    assert main(["compare", str(fit), str(demo / "predictions_population_model.csv"), "--out", str(out)]) == 0
+    printed = capsys.readouterr().out
+    says = f"{fit / 'report_data.json'}: listed in outputs.json but missing; the report shows the fit without the "
+    assert says in printed
+    page = (out / "report.html").read_text(encoding="utf-8")
+    assert "Left out of this report" in page and "sessions, protocols and software" in page
+    assert "report_data.json is missing" in page and ".staging" not in page     # the copy's name, not a temporary one
+    assert (out / "fit" / "aftereffect.csv").read_bytes() == (demo / "fit" / "aftereffect.csv").read_bytes()
