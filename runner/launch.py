@@ -181,7 +181,8 @@ def resume_seed_and_model(out_dir: Path, n_observers: int, session: str, seed: i
     if not found and seed is None and not any(path.exists() for name in names
                                               for path in log_paths(out_dir, name, session)):
         raise InputError(str(out_dir), "--resume", f"no simulated session {session} to resume here (no log or "
-                         "sidecar of it); leave out --resume to start it")     # with --seed, a resume starts it
+                         "sidecar of it); leave out --resume to start it, with the --seed it was started with if it "
+                         "had one")     # with --seed, a resume starts it
     if not found and seed is None:
         _refuse_unknown_seed(log_paths(out_dir, names[0], session)[1], "the original --seed (and --model, "
                              "if it used one)")
