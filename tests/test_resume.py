@@ -184,7 +184,7 @@ def test_a_simulated_resume_with_nothing_to_resume_says_to_start_without_it(tmp_
         assert main(["simulate", str(PROTOCOLS / "pilot_short.toml"), "--out", str(out), "--resume"]) == 2
         err = capsys.readouterr().err.strip().splitlines()
         assert len(err) == 1 and "no simulated session s1 to resume here" in err[0], err
-        assert "leave out --resume to start it" in err[0] and "seed" not in err[0], err
+        assert "leave out --resume to start it" in err[0] and "is missing" not in err[0], err
 
 
 def test_a_simulated_resume_continues_every_observer_the_first_run_asked_for(tmp_path):
