@@ -76,7 +76,7 @@ from scipy import special
 from fitting.covariance import COVARIANCE_COLUMNS, NO_COVARIANCE, covariance_matrix
 from fitting.errors import InputError
 from fitting.cells import check_numbers, check_ranges, line_of
-from fitting.fit_copy import FIT_COPY, check_table, read_fit
+from fitting.fit_copy import check_table, read_fit
 from fitting.group import GROUP
 from fitting.group_chi2 import DRAWS, GroupData, calibrated_p
 from fitting.meta import random_effects
