@@ -152,7 +152,7 @@ def cmd_check(args) -> int:
 
 def cmd_simulate(args) -> int:
     from fitting.outputs import check_out_dir
-    from runner.launch import simulate, simulated_observers_in
+    from runner.launch import MAX_SIMULATED, simulate, simulated_observers_in
     from runner.observers import load_model
     from runner.trial_log import RESUME_ADVICE, StorageError, check_identifier
 
@@ -160,7 +160,7 @@ def cmd_simulate(args) -> int:
     check_identifier(args.session, "--session")
     if args.observers is None:      # a resume continues every observer in --out, as its stop line advises
         args.observers = simulated_observers_in(args.out, args.session) if args.resume else 1
-    _check_count(args.observers, "--observers", 1, 99, "the number of simulated observers")
+    _check_count(args.observers, "--observers", 1, MAX_SIMULATED, "the number of simulated observers")
     check_out_dir(args.out)
     protocol, text = _load(args.protocol)
     light = _light(protocol)

@@ -147,6 +147,10 @@ def sidecar_settings(out_dir: Path, observers: list[str], session: str) -> list[
     return found
 
 
+#: Most simulated observers one ``simulate`` runs (their IDs have two digits: sim01..sim99).
+MAX_SIMULATED = 99
+
+
 def simulated_names(n_observers: int) -> list[str]:
     """Observer IDs of ``n_observers`` simulated observers: ``sim01``, ``sim02``, ..."""
     return [f"sim{i + 1:02d}" for i in range(n_observers)]
@@ -161,9 +165,14 @@ def simulated_observers_in(out_dir: str | Path, session: str) -> int:
         found = [int(m.group(1)) for p in Path(out_dir).iterdir() if (m := pattern.fullmatch(p.name))]
     except OSError:
         return 1
-    asked = [content.get("simulated_observers", 0)
-             for _, content in sidecar_settings(Path(out_dir), simulated_names(max(found, default=1)), session)]
-    return max(found + [n for n in asked if isinstance(n, int) and not isinstance(n, bool)], default=1)
+    asked = []
+    for source, content in sidecar_settings(Path(out_dir), simulated_names(max(found, default=1)), session):
+        n = content.get("simulated_observers", 1)       # sidecars before it was recorded: their own file counts
+        if isinstance(n, bool) or not isinstance(n, int) or not 1 <= n <= MAX_SIMULATED:
+            raise InputError(source, "simulated_observers", f"expected a whole number from 1 to {MAX_SIMULATED}, "
+                             f"got {n!r}; was the sidecar edited?")
+        asked.append(n)
+    return max(found + asked, default=1)
 
 
 def resume_seed_and_model(out_dir: Path, n_observers: int, session: str, seed: int | None,

@@ -202,3 +202,25 @@ def test_a_simulated_resume_continues_every_observer_the_first_run_asked_for(tmp
     for name in ("sim01", "sim02", "sim03"):
         log = f"{name}-s1.trials.csv"
         assert (cut / log).read_bytes() == (tmp_path / "whole" / log).read_bytes(), name
+
+
+def test_an_edited_count_of_simulated_observers_is_one_line_naming_the_sidecar(tmp_path, capsys):
+    # the count a bare --resume continues comes from the sidecars: an absurd one must not start 1000 sessions
+    import json
+
+    from runner.cli import main
+
+    out = tmp_path / "o"
+    assert main(["simulate", str(PROTOCOLS / "pilot_short.toml"), "--out", str(out)]) == 0
+    sidecar = out / "sim01-s1.session.json"
+    content = json.loads(sidecar.read_text())
+    assert content["simulated_observers"] == 1
+    for absurd in (1000, 0, "3", True):
+        content["simulated_observers"] = absurd
+        sidecar.write_text(json.dumps(content))
+        before = sorted(p.name for p in out.iterdir())
+        capsys.readouterr()
+        assert main(["simulate", str(PROTOCOLS / "pilot_short.toml"), "--out", str(out), "--resume"]) == 2
+        err = capsys.readouterr().err.strip().splitlines()
+        assert len(err) == 1 and "sim01-s1.session.json: simulated_observers" in err[0], err
+        assert sorted(p.name for p in out.iterdir()) == before
