@@ -40,7 +40,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
-from scipy import optimize, stats
+from scipy import special
 
 from fitting.errors import InputError
 
@@ -401,6 +401,8 @@ def fit_channel(readings: Readings, level_ci: float = 0.95, fit_anyway: bool = F
         undetermined (an interval that is not finite); ``fit_anyway`` does
         not lift these.
     """
+    from scipy import optimize   # here: reading a light profile need not load scipy.optimize
+
     channel = str(readings.channel[0]) if readings.channel.size else "grey"
     n_levels = np.unique(readings.level).size
     if n_levels < MIN_LEVELS:
@@ -458,7 +460,7 @@ def _intervals(result, dof: int, level_ci: float) -> dict[str, tuple[float, floa
     except np.linalg.LinAlgError:
         return {name: (math.nan, math.nan) for name in MODEL_FIELDS}
     se = np.sqrt(np.clip(np.diag(cov), 0.0, None))
-    t = float(stats.t.ppf(0.5 + level_ci / 2.0, dof))
+    t = float(special.stdtrit(dof, 0.5 + level_ci / 2.0))   # Student's t quantile (as scipy.stats.t.ppf)
     return {name: (float(x[i] - t * se[i]), float(x[i] + t * se[i])) for i, name in enumerate(MODEL_FIELDS)}
 
 

@@ -326,3 +326,42 @@ def is_being_written(log: str | Path) -> bool:
     finally:
         os.close(fd)
     return False
+
+
+#: The end of every trial log's file name.
+LOG_SUFFIX = ".trials.csv"
+
+
+def find_logs(paths) -> list[Path]:
+    """Expand files and folders into the list of trial-log files.
+
+    Raises
+    ------
+    InputError
+        A path that does not exist, or a folder with no ``*.trials.csv``.
+    """
+    if isinstance(paths, (str, os.PathLike)):
+        paths = [paths]
+    found: list[Path] = []
+    seen = set()
+    for raw in paths:
+        p = Path(raw)
+        try:
+            if p.is_dir():
+                files = sorted(f for f in p.rglob("*" + LOG_SUFFIX) if f.is_file())
+                if not files:
+                    raise InputError(str(p), "", f"no trial logs (*{LOG_SUFFIX}) in this folder or below")
+            elif p.is_file():
+                files = [p]
+            else:
+                raise InputError(str(p), "", "no such file or folder")
+        except OSError as exc:
+            raise InputError(str(p), "", f"cannot be read ({exc.strerror})") from None
+        for f in files:
+            key = f.resolve()
+            if key not in seen:
+                seen.add(key)
+                found.append(f)
+    if not found:
+        raise InputError("argument", "LOG_OR_DIR", "give at least one trial log or folder")
+    return found

@@ -23,7 +23,8 @@ from pathlib import Path
 from typing import Callable
 
 from .errors import InputError
-from .tables import LOG_SUFFIX, find_logs, write_text
+from .logfile import LOG_SUFFIX, find_logs
+from .outputs import write_atomic
 
 #: Name of the file holding the report's provenance in a fit folder.
 REPORT_DATA = "report_data.json"
@@ -194,7 +195,7 @@ def _plan_lines(plan: PlanFunction | None, text: str) -> list[str]:
 def write_report_data(out_dir: Path, data: dict) -> Path:
     """Write ``report_data.json`` into ``out_dir`` (atomically)."""
     path = Path(out_dir) / REPORT_DATA
-    write_text(path, json.dumps(data, indent=1, sort_keys=True, default=str) + "\n")
+    write_atomic(path, (json.dumps(data, indent=1, sort_keys=True, default=str) + "\n").encode("utf-8"))
     return path
 
 

@@ -34,53 +34,18 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputError
-from .logfile import check_header_line, check_rows, decode_log, examine_tail, is_being_written
+from .logfile import (LOG_SUFFIX, check_header_line, check_rows, decode_log, examine_tail, find_logs,  # noqa: F401
+                      is_being_written)  # find_logs, LOG_SUFFIX: public here too
 from .outputs import write_atomic
 
 REQUIRED_COLUMNS = ["observer", "session", "trial", "condition", "adapter_offset_deg", "lag",
                     "track", "test_offset_deg", "response_cw", "rt_s", "dropped_frames", "timing_ok"]
-LOG_SUFFIX = ".trials.csv"
 BASELINE = "baseline"
 #: Offsets beyond this (deg) are bad input: directions repeat every 360 degrees.
 MAX_OFFSET_DEG = 180.0
 
 _TRUE = {"true", "1", "1.0", "yes"}
 _FALSE = {"false", "0", "0.0", "no"}
-
-
-def find_logs(paths) -> list[Path]:
-    """Expand files and folders into the list of trial-log files.
-
-    Raises
-    ------
-    InputError
-        A path that does not exist, or a folder with no ``*.trials.csv``.
-    """
-    if isinstance(paths, (str, os.PathLike)):
-        paths = [paths]
-    found: list[Path] = []
-    seen = set()
-    for raw in paths:
-        p = Path(raw)
-        try:
-            if p.is_dir():
-                files = sorted(f for f in p.rglob("*" + LOG_SUFFIX) if f.is_file())
-                if not files:
-                    raise InputError(str(p), "", f"no trial logs (*{LOG_SUFFIX}) in this folder or below")
-            elif p.is_file():
-                files = [p]
-            else:
-                raise InputError(str(p), "", "no such file or folder")
-        except OSError as exc:
-            raise InputError(str(p), "", f"cannot be read ({exc.strerror})") from None
-        for f in files:
-            key = f.resolve()
-            if key not in seen:
-                seen.add(key)
-                found.append(f)
-    if not found:
-        raise InputError("argument", "LOG_OR_DIR", "give at least one trial log or folder")
-    return found
 
 
 def _text(col: pd.Series) -> pd.Series:

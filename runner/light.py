@@ -35,7 +35,6 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
-from scipy import optimize
 
 from fitting.errors import InputError
 from runner.light_profile import LightProfile, load_profile
@@ -261,6 +260,8 @@ def _dot_level(light: LightModel, profile: LightProfile, colour: np.ndarray, tar
         return math.nan
     if hi - lo <= 0:
         return 0.0
+    from scipy import optimize   # here: the commands that only read a profile need not load it
+
     return float(optimize.brentq(lambda s: float(light.cd_m2(s * colour)) - target, 0.0, 1.0, xtol=1e-12))
 
 

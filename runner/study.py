@@ -40,7 +40,7 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-from scipy.stats import norm
+from scipy.special import ndtri
 
 from fitting.errors import InputError
 from fitting.outputs import output_set
@@ -631,7 +631,7 @@ def coverage_limits(coverage: float, n: int, level: float = 0.95) -> tuple[float
     """
     if not (n > 0 and math.isfinite(coverage)):
         return float("nan"), float("nan")
-    z = float(norm.ppf(0.5 + level / 2))
+    z = float(ndtri(0.5 + level / 2))   # the normal quantile (as scipy.stats.norm.ppf)
     scale = 1 + z * z / n
     centre = (coverage + z * z / (2 * n)) / scale
     half = z / scale * math.sqrt(coverage * (1 - coverage) / n + z * z / (4 * n * n))
