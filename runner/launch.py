@@ -489,10 +489,10 @@ def run_part(log: TrialLog, sidecar: dict, run, session) -> SessionResult:
     interrupt (Ctrl-C, SIGTERM), a full disk or any other failure marks the
     part ``interrupted``, ``disk full``, ``disk error`` or ``failed`` in the
     sidecar, with the rows and track states of the log as it is then, and is
-    raised again; the log keeps every completed row.  An interrupt that comes
-    once the log holds every trial of the session (during the pause after
-    the last trial, or the quick fit after it) leaves the part ``completed``
-    and is raised once that is recorded.
+    raised again; the log keeps every completed row.  An interrupt or a
+    failure (a lost display) that comes once the log holds every trial of the
+    session (during the pause after the last trial, the quick fit or the end
+    screen) leaves the part ``completed`` and is raised once that is recorded.
     """
     try:
         log.keep_sidecar_room(len(sidecar_bytes(sidecar)) + SIDECAR_BYTES_PER_TRIAL * run.expected_rows()
@@ -520,8 +520,10 @@ def _end_part(log: TrialLog, sidecar: dict, run, how: str, cause: BaseException 
 
     The rows and track states are those of the log now (an interrupt can
     fall between a row's write and the tracks' update): the logged rows are
-    replayed into a fresh copy of ``run``.  A part ``interrupted`` after its
-    log came to hold every trial of the session is recorded ``completed``.
+    replayed into a fresh copy of ``run``.  A part ``interrupted`` or ``failed``
+    (a display lost at the end screen) after its log came to hold every trial
+    of the session is recorded ``completed``; a full disk or a disk error is
+    not (the last rows may not have reached the disk).
     When the sidecar cannot be written, an :class:`InputError` ``cause`` says so.
     """
     part = sidecar["parts"][-1]
@@ -529,7 +531,7 @@ def _end_part(log: TrialLog, sidecar: dict, run, how: str, cause: BaseException 
         rows = read_rows(log.path)
         states, complete = track_states_after(run, rows, str(log.path))
         total = len(rows)
-        if how == "interrupted" and complete:
+        if how in ("interrupted", "failed") and complete:     # a stop or a lost display at the end screen
             how = "completed"
     except (OSError, InputError):
         states, total = None, log.n_rows

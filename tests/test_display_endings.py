@@ -173,3 +173,24 @@ def test_an_x_server_lost_while_the_window_opens_ends_in_one_line(own_x_server, 
     assert lines[0].endswith("; the session had not started and nothing was recorded; to start it, "
                              "run the same command again")
     assert not (tmp_path / "d" / "e01-s1.trials.csv").exists() and not (tmp_path / "d" / "e01-s1.session.json").exists()
+
+
+def test_a_window_killed_after_the_last_trial_leaves_the_session_complete(own_x_server, tmp_path):  # noqa: F811
+    # before: the part `failed` although the log held every trial, and the line said to continue with --resume
+    require_xdotool()
+    env = own_x_server.env()
+    process, out_file = _start(tmp_path, env)
+    window = _answer_until(process, env, lambda: _rows(tmp_path) == TOTAL)
+    end = time.monotonic() + 30     # the quick fit printed after the last trial's line: the end screen is up
+    while not out_file.read_text().partition(f" {TOTAL}/{TOTAL} ")[2].partition("\n")[2].strip():
+        assert time.monotonic() < end and process.poll() is None, out_file.read_text()
+        time.sleep(0.02)
+    subprocess.run(["xdotool", "windowkill", window], env=env, capture_output=True)
+    err = process.communicate(timeout=30)[1]
+    lines = err.strip().splitlines()
+    assert process.returncode == 4 and len(lines) == 1, err
+    log = tmp_path / "d" / "e01-s1.trials.csv"
+    assert lines[0].startswith("aftershift run: the display failed during the session")
+    assert lines[0].endswith(f"the session is complete: all {TOTAL} trials are saved in {log} (nothing to resume); "
+                             f"to fit them: aftershift fit {log} --out {tmp_path / 'd' / 'fit'}"), lines[0]
+    assert _parts(tmp_path) == [("completed", TOTAL)]
