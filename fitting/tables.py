@@ -26,7 +26,6 @@ from __future__ import annotations
 import csv
 import io
 import json
-import os
 import sys
 from pathlib import Path
 
