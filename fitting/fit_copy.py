@@ -23,7 +23,8 @@ Each is checked as it is read:
 * a file (or a folder on its way) that is a link, or that is not a regular
   file (a FIFO, a device, a folder), is refused in one line saying what it
   is: the copy holds the fit's own files, never what a link points to (such
-  as ``/etc/passwd``), and reading waits on no pipe;
+  as ``/etc/passwd``), and reading waits on no pipe; so is a file larger
+  than :data:`MAX_FILE_BYTES` (it is not fit's, and would be held in memory);
 * a figure that is missing, or not a whole PNG or PDF, or a missing
   ``report_data.json`` (the record of sessions, protocols and software, not
   numbers of the tables; a clone of the repository lacks the demo's) leaves
@@ -65,6 +66,8 @@ NUMBER_TABLES = {"pse.csv": PSE_COLUMNS, "aftereffect.csv": AFTEREFFECT_COLUMNS,
 #: Ranges fit's own bounds keep numbers in (the decay constant's fit, :data:`fitting.aftereffect.TAU_BOUNDS`).
 NUMBER_RANGES = {"decay.csv": {col: (*TAU_BOUNDS, " periods (what fit can write)")
                                for col in ("decay_periods", "ci_low", "ci_high")}}
+#: The largest file copied (bytes): far above anything fit writes; the copy is held in memory until written.
+MAX_FILE_BYTES = 256 * 2**20
 #: First and last bytes of a whole figure file (PNG: signature and IEND chunk; PDF: header and end marker).
 FIGURE_ENDS = {".png": (b"\x89PNG\r\n\x1a\n", b"IEND\xaeB`\x82"), ".pdf": (b"%PDF-", b"%%EOF")}
 
@@ -210,6 +213,10 @@ def _read_own(source: Path, rel: str) -> bytes:
             raise InputError(str(source / rel), "file", f"is {_KINDS.get(stat.S_IFMT(mode), 'not a file')}, "
                              "not a file fit writes; compare copies only the fit's own files, so put the file "
                              "itself there or run fit again into this folder")
+        size = os.fstat(fd).st_size
+        if size > MAX_FILE_BYTES:
+            raise InputError(str(source / rel), "file", f"is {size / 2**20:,.0f} MB, larger than any file fit writes "
+                             f"(at most {MAX_FILE_BYTES // 2**20} MB is copied); run fit again into this folder")
         os.set_blocking(fd, True)
         with os.fdopen(fd, "rb") as fh:
             fd = -1                                                 # closed with fh

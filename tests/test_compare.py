@@ -683,3 +683,17 @@ def test_the_demo_fit_without_its_record_is_compared_with_a_note(tmp_path, capsy
     assert "Left out of this report" in page and "sessions, protocols and software" in page
     assert "report_data.json is missing" in page and ".staging" not in page     # the copy's name, not a temporary one
     assert (out / "fit" / "aftereffect.csv").read_bytes() == (demo / "fit" / "aftereffect.csv").read_bytes()
+
+
+@pytest.mark.slow
+def test_a_huge_file_in_the_fit_folder_is_one_line_not_read_into_memory(real_fit, tmp_path):
+    # before: compare read every listed file whole into memory (a 20 GB summary.txt would have been read)
+    from fitting.fit_copy import MAX_FILE_BYTES
+
+    fit, pred = _copy_of(real_fit, tmp_path)
+    with open(fit / "summary.txt", "r+b") as fh:    # sparse: no disk space taken
+        fh.truncate(MAX_FILE_BYTES + 1)
+    done = run_cli("compare", str(fit), str(pred), "--out", str(tmp_path / "cmp"), timeout=60)
+    assert done.returncode == 2 and len(done.stderr.strip().splitlines()) == 1, done.stderr
+    assert "summary.txt: file: is 256 MB, larger than any file fit writes" in done.stderr, done.stderr
+    assert not (tmp_path / "cmp").exists()
