@@ -291,7 +291,7 @@ NOT_ESTIMABLE_LABEL = "not estimable, no interval"
 OFF_SCALE_LABEL = ";\noff scale: at the edge"
 
 
-def aftereffect_figure(name: str, shifts, tuning, offsets=None):
+def aftereffect_figure(name: str, shifts, tuning, offsets=None, means=None, n_means: int = 0):
     """PSE shift against adapter offset, per lag, with intervals and DoG fits.
 
     A shift flagged with a word of :data:`fitting.flags.NOT_USABLE` (one-sided,
@@ -312,6 +312,13 @@ def aftereffect_figure(name: str, shifts, tuning, offsets=None):
         ``tuning`` table; a lag's DoG curve is drawn when it has a row.
     offsets : ignored
         Kept for callers of the earlier signature.
+    means : DataFrame, optional
+        For the group: the points its curves are fitted to (``lag,
+        adapter_offset_deg, mean_shift_deg``: the equal-weight mean of the
+        ``n_means`` observers the curves use), drawn as crosses beside the
+        random-effects estimates, which can differ from them.
+    n_means : int
+        How many observers ``means`` average.
     """
     plt = pyplot()
     lags = np.sort(shifts["lag"].dropna().unique())
@@ -331,6 +338,7 @@ def aftereffect_figure(name: str, shifts, tuning, offsets=None):
         span = float(np.abs(shifts["adapter_offset_deg"]).max()) if len(shifts) else 90.0
         grid = np.linspace(-1.08 * span, 1.08 * span, 200)
         nudge = 0.012 * span
+        crossed = False
         drawn = [estimates[["pse_shift_deg", "ci_low", "ci_high"]].to_numpy(float).ravel()]
         hollow = []
         for i, lag in enumerate(lags):
@@ -345,12 +353,21 @@ def aftereffect_figure(name: str, shifts, tuning, offsets=None):
             if not used.all():
                 hollow.append((x[~used], y[~used], colour))
             t = tuning[tuning["lag"] == lag]
+            m = means[means["lag"] == lag] if means is not None and len(t) else ()
+            if len(m):
+                ax.plot(m["adapter_offset_deg"].to_numpy(float) + (i - (len(lags) - 1) / 2) * nudge,
+                        m["mean_shift_deg"].to_numpy(float), "x", ms=4.5, mew=1.0, color=colour)
+                drawn.append(m["mean_shift_deg"].to_numpy(float))
+                crossed = True
             if len(t):
                 curve = dog(grid, float(t["amplitude_deg"].iloc[0]), float(t["peak_offset_deg"].iloc[0]))
                 ax.plot(grid, curve, color=colour, lw=1.2)
                 drawn.append(curve)
         if hollow:
             _hollow_points(ax, hollow, np.concatenate(drawn), flags[~kept])
+        if crossed:     # one legend entry, in no lag's colour
+            ax.plot([], [], "x", ms=4.5, mew=1.0, color="0.35",
+                    label=f"mean of the {n_means} observers\nthe lines are fitted to")
         ax.axhline(0, color=_FAINT, lw=0.7)
         ax.axvline(0, color=_FAINT, lw=0.7)
         ax.set_xlabel("adapter offset from reference (deg, + = clockwise)")
@@ -489,7 +506,9 @@ def figure_tasks(analyses, group) -> list:
     """``(draw, args, stem)`` of every figure of a fit: each observer's, then the group's."""
     tasks = [t for a in analyses for t in observer_figure_tasks(a)]
     if group is not None and len(group["aftereffect"]):
-        tasks.append((aftereffect_figure, ("group", group["aftereffect"], group["tuning"]),
+        curves = group.get("curves") or {}
+        tasks.append((aftereffect_figure, ("group", group["aftereffect"], group["tuning"], None, curves.get("means"),
+                                           len(curves.get("observers", ()))),
                       "aftereffect_group"))
         if len(group["tuning"]) >= 2 and len(group["decay_detail"]):
             tasks.append((decay_figure, ("group", group["tuning"], group["decay_detail"], None,

@@ -251,7 +251,10 @@ def group_curves(shifts: pd.DataFrame, level: float, notes: list, own_tuning=Non
     -------
     tuning, decay, decay_detail : pandas.DataFrame
     curves : dict
-        ``offsets``, ``lags`` and ``decay`` (its three parameters) for the figures.
+        ``offsets`` and ``lags`` of the curves, and for the figures ``means``:
+        the equal-weight mean shift of the observers used in each cell (``lag``,
+        ``adapter_offset_deg``, ``mean_shift_deg``), the points the curves are
+        fitted to, and ``observers``, who they are.
     """
     empty = (pd.DataFrame(columns=TUNING_COLUMNS), pd.DataFrame(columns=DECAY_COLUMNS), pd.DataFrame(), {})
     wide, left, narrowed = _curve_observers(shifts, notes)
@@ -279,7 +282,10 @@ def group_curves(shifts: pd.DataFrame, level: float, notes: list, own_tuning=Non
     weight[kk, jj] = 1.0
     prange = peak_bounds(offsets)
     tuning_rows, tuning_lags = [], []
-    curves = {"offsets": offsets, "lags": lags}
+    means = pd.DataFrame({"lag": wide.columns.get_level_values(0).to_numpy(dtype=float),
+                          "adapter_offset_deg": wide.columns.get_level_values(1).to_numpy(dtype=float),
+                          "mean_shift_deg": rows[0]})
+    curves = {"offsets": offsets, "lags": lags, "means": means, "observers": observers}
     for i, lag in enumerate(lags):
         own = None if own_tuning is None else own_tuning[own_tuning["lag"] == lag]
         if ((weight[i] > 0) & (offsets != 0)).sum() < 3:

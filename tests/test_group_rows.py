@@ -261,3 +261,33 @@ def test_an_observer_with_an_unusable_cell_leaves_the_group_curves_whole_not_cel
     assert np.allclose(tuning["amplitude_deg"], 2.0 * np.exp(-tuning["lag"] / 2.0), atol=1e-3)
     assert decay["decay_periods"].iloc[0] == pytest.approx(2.0, abs=1e-3) == alone_decay["decay_periods"].iloc[0]
     assert all("partial" in f for f in tuning["flags"]) and any("leave out o1" in n for n in notes)
+
+
+def test_the_group_figure_marks_the_means_its_curves_are_fitted_to():
+    # before: the group figure drew the random-effects rows as points beside curves fitted to the equal-weight
+    # mean of the observers the curves use, a different set of numbers (and of observers) that it did not show
+    from fitting import figures
+
+    rng = np.random.default_rng(3)
+    rows = []
+    for observer in ("o1", "o2", "o3"):
+        for lag in (0, 1):
+            for offset in (-60, -30, -15, 15, 30, 60):
+                shift = rng.normal(np.sign(offset) * 2.0, 1.0)
+                flags = "one-sided" if observer == "o3" and (lag, offset) == (1, 60) else ""
+                rows.append(dict(observer=observer, lag=lag, adapter_offset_deg=offset, pse_shift_deg=shift,
+                                 ci_low=shift - 2, ci_high=shift + 2, n_trials=40, flags=flags))
+    shifts = pd.DataFrame(rows)
+    tuning, _, _, curves = group_curves(shifts, 0.95, [])
+    assert len(tuning) == 2 and curves["observers"] == ["o1", "o2"]      # o3 left out for its one-sided cell
+    expected = (shifts[shifts["observer"].isin(["o1", "o2"])]
+                .groupby(["lag", "adapter_offset_deg"])["pse_shift_deg"].mean().reset_index())
+    got = curves["means"].sort_values(["lag", "adapter_offset_deg"]).reset_index(drop=True)
+    assert np.allclose(got[["lag", "adapter_offset_deg", "mean_shift_deg"]].to_numpy(float), expected.to_numpy(float))
+    group_rows = group_aftereffect(shifts[shifts["flags"] == ""], 0.95)
+    fig = figures.aftereffect_figure("group", group_rows, tuning, None, curves["means"], len(curves["observers"]))
+    crosses = [ln for ln in fig.axes[0].get_lines() if ln.get_marker() == "x" and len(ln.get_ydata())]
+    assert np.allclose(np.sort(np.concatenate([ln.get_ydata() for ln in crosses])), np.sort(expected["pse_shift_deg"]))
+    legend = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
+    assert "mean of the 2 observers\nthe lines are fitted to" in legend
+    figures.pyplot().close("all")
