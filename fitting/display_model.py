@@ -544,9 +544,11 @@ def read_readings(path: str | Path) -> Readings:
     if not p.is_file():
         raise InputError(str(p), "file", "does not exist" if not p.exists() else "is not a file")
     try:
-        with p.open(newline="", encoding="utf-8") as f:
-            rows = list(csv.DictReader(f))
-            header = list(rows[0].keys()) if rows else []
+        with p.open(newline="", encoding="utf-8-sig") as f:    # -sig: a spreadsheet's "CSV UTF-8" byte-order mark
+            reader = csv.DictReader(f)
+            header = [name.strip() for name in reader.fieldnames or ()]
+            reader.fieldnames = header
+            rows = list(reader)
     except UnicodeDecodeError:
         raise InputError(str(p), "file", "is not UTF-8 text; expected a CSV file") from None
     except (OSError, csv.Error) as exc:
@@ -554,6 +556,8 @@ def read_readings(path: str | Path) -> Readings:
     for name in READINGS_COLUMNS[:2]:
         if name not in header:
             raise InputError(str(p), name, f"missing column; expected a header with {', '.join(READINGS_COLUMNS)}")
+    if not rows:
+        raise InputError(str(p), "file", "holds a header but no readings")
     level, value, gun, line = [], [], [], []
     for i, r in enumerate(rows, start=2):
         for name, out in (("level", level), ("luminance_cd_m2", value)):

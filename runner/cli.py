@@ -524,6 +524,7 @@ def cmd_measure_light(args) -> int:
     from runner import measure_light
     from runner.protocol import parse_protocol, read_protocol_text
 
+    measure_light.check_out(args.out, {"readings file": args.readings, "protocol": args.protocol})
     protocol = None
     if args.protocol:
         # The levels as written: a [light] section may name the very profile being measured.

@@ -29,7 +29,7 @@ import numpy as np
 
 from fitting.display_model import ReadingsRefused, Readings, fit_readings, make_readings, read_readings
 from fitting.errors import InputError
-from runner.light_profile import profile_text, write_atomically
+from runner.light_profile import PROFILE_KIND, profile_text, write_atomically
 
 #: Columns of the readings file the screen routine writes.
 LOG_COLUMNS = ("order", "gun", "level", "luminance_cd_m2", "seed", "time_utc")
@@ -198,6 +198,42 @@ def caution(patch_deg: float | None) -> str:
             "protocol's dots); its jumps in level can flash, which can trigger seizures in people with "
             "photosensitive epilepsy and migraine in others: people with such a history should not take the "
             "readings; follow your ethics board and clinical advice")
+
+
+def check_out(out: str | Path, inputs: dict) -> None:
+    """Refuse a profile name that would destroy a file, before anything is measured or fitted.
+
+    Parameters
+    ----------
+    out : str or Path
+        The ``--out`` given: a ``.toml`` file; an earlier light profile there
+        is replaced (a new measurement of the display).
+    inputs : dict
+        What the command reads, ``{"readings file": path, "protocol": path}``
+        (None where not given).
+
+    Raises
+    ------
+    InputError
+        ``out`` does not end in ``.toml`` (a ``.png`` was overwritten by the
+        figure, a ``.csv`` could be the readings), is one of the inputs, or
+        is an existing file that is not a light profile.
+    """
+    p = Path(out)
+    if p.suffix.lower() != ".toml":
+        raise InputError(str(out), "--out", "expected a file name ending in .toml for the light profile (its figure "
+                         "is written beside it as .png)")
+    for what, path in inputs.items():
+        if path is not None and p.exists() and Path(path).exists() and p.samefile(path):
+            raise InputError(str(out), "--out", f"is the {what} this command reads; choose another name")
+    if p.is_file():
+        try:
+            kind = f'kind = "{PROFILE_KIND}"' in p.read_text(encoding="utf-8", errors="replace")
+        except OSError as exc:
+            raise InputError(str(out), "--out", f"cannot be read ({exc.strerror})") from None
+        if not kind:
+            raise InputError(str(out), "--out", "exists and is not a light profile (only an earlier profile is "
+                             "replaced); choose another name")
 
 
 def readings_path(out: str | Path) -> Path:

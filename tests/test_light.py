@@ -181,6 +181,47 @@ def test_bad_readings_files_name_line_and_column(tmp_path):
     f.write_text("level,luminance_cd_m2,gun\n0.5,3,purple\n", encoding="utf-8")
     with pytest.raises(InputError, match="gun"):
         read_readings(f)
+    # a header alone was "level: missing column"
+    f.write_text("level,luminance_cd_m2,gun\n", encoding="utf-8")
+    with pytest.raises(InputError, match="file: holds a header but no readings"):
+        read_readings(f)
+
+
+def test_a_readings_file_saved_with_a_byte_order_mark_reads_as_without(tmp_path):
+    # a spreadsheet's "CSV UTF-8" starts with U+FEFF, which was read into the first column's name: "level:
+    # missing column"
+    text = EXAMPLE_READINGS.read_text(encoding="utf-8")
+    marked = tmp_path / "marked.csv"
+    marked.write_bytes(b"\xef\xbb\xbf" + text.encode("utf-8"))
+    plain, read = read_readings(EXAMPLE_READINGS), read_readings(marked)
+    assert np.array_equal(plain.level, read.level) and np.array_equal(plain.cd_m2, read.cd_m2)
+
+
+def test_measure_light_refuses_an_out_that_would_destroy_a_file(tmp_path, capsys):
+    # before: --out naming the readings file replaced the readings by the profile, a protocol by the profile,
+    # and a .png was written as the profile and then overwritten by the figure; all with exit 0
+    readings = tmp_path / "r.csv"
+    readings.write_bytes(EXAMPLE_READINGS.read_bytes())
+    protocol = tmp_path / "lab.toml"
+    protocol.write_bytes((ROOT / "protocols" / "pilot_short.toml").read_bytes())
+    cases = {readings: "expected a file name ending in .toml", tmp_path / "p.png": "expected a file name ending in",
+             protocol: "exists and is not a light profile"}
+    for out, words in cases.items():
+        assert main(["measure-light", "--readings", str(readings), "--out", str(out)]) == 2
+        err = capsys.readouterr().err.strip()
+        assert len(err.splitlines()) == 1 and f"{out}: --out: {words}" in err, err
+    marked = tmp_path / "m.toml"        # readings in a file of that name, given as the profile too
+    marked.write_bytes(EXAMPLE_READINGS.read_bytes())
+    assert main(["measure-light", "--readings", str(marked), "--out", str(marked)]) == 2
+    assert "--out: is the readings file this command reads" in capsys.readouterr().err
+    assert readings.read_bytes() == marked.read_bytes() == EXAMPLE_READINGS.read_bytes()
+    assert protocol.read_bytes() == (ROOT / "protocols" / "pilot_short.toml").read_bytes()
+    assert not (tmp_path / "p.png").exists()
+    # an earlier profile is replaced: a new measurement of the same display
+    out = tmp_path / "display.toml"
+    for _ in range(2):
+        assert main(["measure-light", "--readings", str(readings), "--out", str(out)]) == 0
+    assert load_profile(out).grey is not None
 
 
 # ---------------------------------------------------------------------------------------------
