@@ -121,6 +121,46 @@ def check_sidecar_owner(log: Path, side: Path, data: dict, cells: dict[str, set[
                          "log, or move it away")
 
 
+def count_problem(log: Path, data: dict) -> str | None:
+    """Words for a log that holds another number of trials than its sidecar counted when its last part ended.
+
+    None when they agree, when either count is unknown, or while the last
+    part is still running (its count is written when it ends).  A log copied
+    before its last rows reached it, or cut by hand, holds fewer: a fit
+    would take the session for complete.
+    """
+    counted = data.get("rows_total")
+    parts = data.get("parts") if isinstance(data.get("parts"), list) else []
+    ended_by = parts[-1].get("ended_by") if parts and isinstance(parts[-1], dict) else None
+    if isinstance(counted, bool) or not isinstance(counted, int) or ended_by in (None, "running"):
+        return None
+    try:
+        with open(log, newline="", encoding="utf-8", errors="replace") as f:
+            held = max(0, sum(1 for row in csv.reader(f) if row) - 1)
+    except (OSError, csv.Error):
+        return None
+    if held == counted:
+        return None
+    missing = counted - held
+    what = (f"{missing} {'is' if missing == 1 else 'are'} missing from the log (copied too early, or cut?); run "
+            "--resume re-runs them" if missing > 0 else "the log holds rows the sidecar does not count")
+    return f"{log}: holds {held} trials, but its sidecar counted {counted} when its last part ended ({ended_by}): {what}"
+
+
+def count_notes(logs) -> list[str]:
+    """:func:`count_problem` of every log whose sidecar can be read (for ``fit``'s notes)."""
+    notes = []
+    for log in map(Path, logs):
+        try:
+            data = json.loads(sidecar_path(log).read_text(encoding="utf-8"))
+        except (OSError, UnicodeDecodeError, json.JSONDecodeError):
+            continue
+        problem = count_problem(log, data) if isinstance(data, dict) else None
+        if problem:
+            notes.append(problem)
+    return notes
+
+
 def _session_record(log: Path) -> tuple[dict, dict | None]:
     """One session's facts and its protocol record (path, sha256, text) if known."""
     side = sidecar_path(log)
@@ -151,6 +191,9 @@ def _session_record(log: Path) -> tuple[dict, dict | None]:
         dropped_frames=sum(d for d in dropped if isinstance(d, (int, float))) if dropped else None,
         acknowledged=data.get("acknowledged"), packages=data.get("packages") or {},
     )
+    problem = count_problem(log, data)
+    if problem:
+        record["problem"] = problem
     return record, protocol if protocol.get("sha256") else None
 
 

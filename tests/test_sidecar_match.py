@@ -192,3 +192,22 @@ def test_a_sidecar_of_the_other_kind_of_block_is_refused(capsys, sessions, tmp_p
     with pytest.raises(InputError, match="is an adapt-test block, and its log sim01-s1.trials.csv holds stream tests"):
         check_sidecars([tmp_path / "stream" / "sim01-s1.trials.csv"])
     assert not (tmp_path / "fit").exists()
+
+
+def test_a_log_that_lacks_trials_its_sidecar_counted_is_named_in_a_note(capsys, sessions, tmp_path):
+    # before: a log copied before its last row reached it (sidecar: completed, rows_total one more) was fitted
+    # as the whole session, and the report called the session completed, without a word
+    folder = tmp_path / "logs"
+    shutil.copytree(sessions["pilot"], folder)
+    log = folder / "sim01-s1.trials.csv"
+    lines = log.read_text().splitlines(keepends=True)
+    log.write_text("".join(lines[:-1]))
+    counted = json.loads((folder / "sim01-s1.session.json").read_text())["rows_total"]
+    assert counted == len(lines) - 1
+    code, err = cli(capsys, "fit", folder, "--out", tmp_path / "fit", "--bootstrap", "0", "--no-figures")
+    expected = (f"{log}: holds {counted - 1} trials, but its sidecar counted {counted} when its last part ended "
+                "(completed): 1 is missing from the log (copied too early, or cut?); run --resume re-runs them")
+    assert code == 0 and f"aftershift fit: note: {expected}" in err.splitlines(), err
+    records = {r["log"]: r for r in json.loads((tmp_path / "fit" / "report_data.json").read_text())["sessions"]}
+    assert records[str(log)]["problem"] == expected
+    assert "problem" not in records[str(folder / "sim02-s1.trials.csv")]     # the other log is whole
