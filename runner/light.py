@@ -240,8 +240,13 @@ def profile_path(protocol, source: str = "") -> Path:
 
 
 def _range_error(source: str, key: str, value: float, profile: LightProfile, what: str) -> InputError:
-    return InputError(source, key, f"{what} of {value:.4g} cd/m2 is outside what the display gives by its light "
-                                     f"profile, {profile.black_cd_m2:.4g} to {profile.max_cd_m2:.4g} cd/m2")
+    """The refusal of a luminance beyond the profile's range, with the digits that show it beyond."""
+    low, high = profile.black_cd_m2, profile.max_cd_m2
+    passed = low if value < low else high
+    digits = next((d for d in range(4, 13) if f"{value:.{d}g}" != f"{passed:.{d}g}"), 12)
+    side = "below the black level" if value < low else "above the maximum"
+    return InputError(source, key, f"{value:.{digits}g} cd/m2 for {what} lies {side} the display gives by its light "
+                                   f"profile ({low:.{digits}g} to {high:.{digits}g} cd/m2)")
 
 
 def _cd_m2(profile: LightProfile, light: LightModel, level: float, colour) -> float:

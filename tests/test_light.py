@@ -628,3 +628,16 @@ def test_one_measurement_at_a_time(tmp_path):
     finally:
         first.close()
     ReadingsLog(path, 0, resume=True).close()  # free again once the first has closed it
+
+
+def test_a_luminance_just_beyond_the_profile_shows_the_digits_that_put_it_beyond(tmp_path):
+    # before: "dots of 0.3547 cd/m2 is outside what the display gives by its light profile, 0.3547 to 100 cd/m2"
+    write_profile(tmp_path, black=0.354704, amplitude=99.645296)
+    p = write_protocol(tmp_path, 'profile = "profile.toml"\nbackground_cd_m2 = 10.0\ndots_cd_m2 = 0.3547')
+    with pytest.raises(InputError, match=r"light.dots_cd_m2: 0\.3547 cd/m2 for dots lies below the black level the "
+                                         r"display gives by its light profile \(0\.354704 to 100 cd/m2\)"):
+        load_protocol(p)
+    p = write_protocol(tmp_path, 'profile = "profile.toml"\nbackground_cd_m2 = 100.0001')
+    with pytest.raises(InputError, match=r"100\.0001 cd/m2 for a background lies above the maximum .* "
+                                         r"\(0\.354704 to 100 cd/m2\)"):
+        load_protocol(p)
