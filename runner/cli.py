@@ -510,6 +510,10 @@ def cmd_display_test(args) -> int:
 
     display.check_seconds(args.seconds)
     protocol, _ = _load(args.protocol)
+    if args.frames:
+        from runner.display.capture import check_capture
+
+        check_capture(protocol, args.frames, args.frames_per_period)
     # Both modes draw the protocol's stimulus on screen (--frames plays two trials to read them back).
     screening = _screen_before_window(protocol, args.protocol, args.flicker_ack)
     if args.frames:

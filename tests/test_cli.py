@@ -160,3 +160,23 @@ def test_commands_that_do_not_fit_start_without_the_fitting_libraries(tmp_path):
                               timeout=120)
         assert done.returncode == 0, done.stderr
         assert done.stdout.strip().splitlines()[-1] == "[]", (args[0], done.stdout[-300:])
+
+
+def test_display_test_refuses_what_frame_capture_cannot_do_before_the_screening(tmp_path):
+    # before: --frames-per-period 0 and a --frames that names a file were refused only after the screening and the
+    # caution had been printed (and a file was "cannot be made (File exists)"); a stream protocol likewise
+    (tmp_path / "a_file").write_text("x")
+    cases = [
+        ((PROTOCOLS / "pilot_short.toml", "--frames", tmp_path / "f", "--frames-per-period", "0"),
+         "aftershift: argument: --frames-per-period: expected 1 to 100, got 0"),
+        ((PROTOCOLS / "pilot_short.toml", "--frames", tmp_path / "a_file"),
+         f"aftershift: {tmp_path / 'a_file'}: --frames: is a file, not a folder; name a folder for the frames"),
+        ((PROTOCOLS / "stream_nback.toml", "--frames", tmp_path / "f"),
+         "aftershift: argument: --frames: frame capture covers adapt-test trials only; this protocol is a stream "
+         "block"),
+    ]
+    for args, line in cases:
+        done = run_cli("display-test", *args, env=_no_display())
+        assert done.returncode == 2 and done.stderr.strip() == line, done.stderr
+        assert done.stdout == "", done.stdout      # no screening, no caution printed before the refusal
+    assert not (tmp_path / "f").exists()

@@ -64,6 +64,25 @@ def _trials(protocol: Protocol) -> list[tuple[str, TrialPlan]]:
     ]
 
 
+def check_capture(protocol: Protocol, out_dir: str | Path, frames_per_period: int) -> None:
+    """Refuse what :func:`capture_frames` cannot do, before the screening and caution are printed.
+
+    Raises
+    ------
+    InputError
+        A stream protocol (frames are taken of adapt-test trials), a count
+        outside 1..100, or ``out_dir`` naming something that is not a folder.
+    """
+    if protocol.stream is not None:
+        raise InputError("argument", "--frames", "frame capture covers adapt-test trials only; this protocol is a "
+                         "stream block")
+    if not 1 <= frames_per_period <= 100:
+        raise InputError("argument", "--frames-per-period", f"expected 1 to 100, got {frames_per_period}")
+    out = Path(out_dir)
+    if out.exists() and not out.is_dir():
+        raise InputError(str(out), "--frames", "is a file, not a folder; name a folder for the frames")
+
+
 def capture_frames(protocol: Protocol, out_dir: str | Path, frames_per_period: int = 3, windowed: bool = False,
                    stream=None) -> Path:
     """Write rendered frames of each period type and their table.
@@ -93,10 +112,7 @@ def capture_frames(protocol: Protocol, out_dir: str | Path, frames_per_period: i
     """
     from runner.display.presenter import open_screen
 
-    if protocol.stream is not None:
-        raise InputError("argument", "--frames", "frame capture covers adapt-test trials; this is a stream block")
-    if not 1 <= frames_per_period <= 100:
-        raise InputError("argument", "--frames-per-period", f"expected 1 to 100, got {frames_per_period}")
+    check_capture(protocol, out_dir, frames_per_period)
     out = Path(out_dir)
     try:
         out.mkdir(parents=True, exist_ok=True)
