@@ -258,7 +258,7 @@ class _Page:
             "seed": s.get("seed"), "started": s.get("started"), "ended": s.get("ended"),
             "ended by": s.get("ended_by"), "trials": s.get("trials"),
             "measured refresh (Hz)": s.get("measured_refresh_hz"), "dropped frames": s.get("dropped_frames"),
-            "note": s.get("problem", ""),
+            "note": "; ".join(n for n in (s.get("problem"), s.get("count_problem")) if n),
         } for s in rows])
         frame = frame.astype(object).where(frame.notna(), None)
         return html_table(frame, None, self.page_dir)

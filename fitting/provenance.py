@@ -147,27 +147,13 @@ def count_problem(log: Path, data: dict) -> str | None:
     return f"{log}: holds {held} trials, but its sidecar counted {counted} when its last part ended ({ended_by}): {what}"
 
 
-def count_notes(logs) -> list[str]:
-    """:func:`count_problem` of every log whose sidecar can be read (for ``fit``'s notes)."""
-    notes = []
-    for log in map(Path, logs):
-        try:
-            data = json.loads(sidecar_path(log).read_text(encoding="utf-8"))
-        except (OSError, UnicodeDecodeError, json.JSONDecodeError):
-            continue
-        problem = count_problem(log, data) if isinstance(data, dict) else None
-        if problem:
-            notes.append(problem)
-    return notes
-
-
 def _session_record(log: Path) -> tuple[dict, dict | None]:
     """One session's facts and its protocol record (path, sha256, text) if known."""
     side = sidecar_path(log)
     record = {"log": str(log), "sidecar": None, "observer": None, "session": None, "kind": None,
               "protocol_sha256": None, "seed": None, "started": None, "ended": None, "ended_by": None,
               "trials": None, "measured_refresh_hz": None, "dropped_frames": None, "acknowledged": None,
-              "packages": {}}
+              "packages": {}, "count_problem": None}
     if not side.exists():
         record["problem"] = "no sidecar beside the log: protocol, seed and versions unknown"
         return record, None
@@ -191,9 +177,7 @@ def _session_record(log: Path) -> tuple[dict, dict | None]:
         dropped_frames=sum(d for d in dropped if isinstance(d, (int, float))) if dropped else None,
         acknowledged=data.get("acknowledged"), packages=data.get("packages") or {},
     )
-    problem = count_problem(log, data)
-    if problem:
-        record["problem"] = problem
+    record["count_problem"] = count_problem(log, data)
     return record, protocol if protocol.get("sha256") else None
 
 

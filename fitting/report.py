@@ -541,7 +541,7 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
         if note:                    # said before pooling, wherever the summary is read (the page says it too)
             report.notes.setdefault(GROUP if report.group is not None else report.analyses[0].observer,
                                     []).insert(0, note)
-        for observer, text in unfinished_notes(data):
+        for observer, text in session_notes(data):
             report.notes.setdefault(observer, []).append(text)
         write_text(out / "summary.txt", report.summary() + "\n")
         data.update(kind="adapt-test", options=report.summary().splitlines()[1], notes=report.notes)
@@ -566,15 +566,19 @@ def protocols_note(data: dict) -> str | None:
     return f"the observers ran {len(protocols)} different protocols ({who}); compare them before pooling"
 
 
-def unfinished_notes(data: dict) -> list[tuple[str, str]]:
-    """``(observer, note)`` for every session whose sidecar says it did not complete (from :func:`collect`).
+def session_notes(data: dict) -> list[tuple[str, str]]:
+    """``(observer, note)`` for every session that did not complete, or whose log lacks trials (from :func:`collect`).
 
     A session stopped early (Escape, a signal, a full disk) or killed (its
     last part still ``running``) is fitted like any other; the note says
-    that its tracks did not run to their end.
+    that its tracks did not run to their end.  A log that holds another
+    number of trials than its sidecar counted (copied too early, or cut) is
+    named too (:func:`fitting.provenance.count_problem`).
     """
     notes = []
     for s in data.get("sessions", []):
+        if s.get("count_problem"):
+            notes.append((str(s.get("observer")), s["count_problem"]))
         how = s.get("ended_by")
         if how is not None and how != "completed":
             ended = ("never recorded its end (killed, or still running)" if how == "running"

@@ -408,9 +408,6 @@ def cmd_fit(args) -> int:
     from runner.replay import check_sidecars
 
     check_sidecars(logs)    # another session's sidecar beside a log: refused before any fitting
-    from fitting.provenance import count_notes
-
-    notes: list[str] = count_notes(logs)    # a log that lacks trials its sidecar counted
     # local workers: the process they fork from starts importing what they need now, beside this
     # process's own imports and fitting (several logs: the fits and figures; one: its figures)
     preload = FIT_MODULES if len(trials) > 1 else () if args.no_figures else FIGURE_MODULES
@@ -427,6 +424,7 @@ def cmd_fit(args) -> int:
         common["interval"] = args.interval
     from runner.overview import plan_from_text
 
+    notes: list[str] = []
     if streams:
         if args.scheduler:
             raise InputError("argument", "--scheduler", "stream logs are fitted on this machine; leave it out")
