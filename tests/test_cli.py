@@ -162,6 +162,39 @@ def test_commands_that_do_not_fit_start_without_the_fitting_libraries(tmp_path):
         assert done.stdout.strip().splitlines()[-1] == "[]", (args[0], done.stdout[-300:])
 
 
+#: Loads numpy's and scipy's OpenBLAS (each its own library, loaded on first import) inside ``one_blas_thread``
+#: and in a child process started there; prints what each saw, then the environment after the block.
+_BLAS_THREADS_INSIDE_THE_RULE = """
+import os, subprocess, sys
+from fitting.threads import THREAD_VARIABLES, one_blas_thread
+SEEN = ("from threadpoolctl import threadpool_info; import numpy, scipy.linalg; "
+        "print(sorted((l['filepath'].rsplit('/', 1)[-1].split('-')[0], l['num_threads']) for l in threadpool_info()))")
+with one_blas_thread():
+    exec(SEEN)
+    print(subprocess.run([sys.executable, "-c", SEEN], capture_output=True, text=True).stdout.strip())
+print([os.environ.get(name) for name in THREAD_VARIABLES])
+"""
+
+
+@pytest.mark.slow
+@pytest.mark.skipif(len(os.sched_getaffinity(0)) < 2,
+                    reason="one core: BLAS starts one thread anyway, so the test could not fail here")
+def test_blas_libraries_loaded_inside_the_one_thread_rule_and_its_child_processes_run_one_thread():
+    # fitting/threads.py: every command runs with one BLAS thread.  The rule limited only the libraries already
+    # loaded; numpy and scipy each load an OpenBLAS of their own when first imported, and one loaded later ran as
+    # many threads as cores (2 here): the tests, which call the library in their own process, ran so, and a re-run
+    # pilot took 2x the time on busy cores
+    outside = {name: "3" for name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")}
+    env = {**{k: v for k, v in os.environ.items() if k not in outside}, "OMP_NUM_THREADS": "3"}
+    done = subprocess.run([sys.executable, "-c", _BLAS_THREADS_INSIDE_THE_RULE], cwd=ROOT, env=env,
+                          capture_output=True, text=True, timeout=120)
+    assert done.returncode == 0, done.stderr
+    here, child, after = done.stdout.strip().splitlines()
+    one_each = str([("libscipy_openblas", 1), ("libscipy_openblas64_", 1)])
+    assert here == one_each and child == one_each, done.stdout
+    assert after == str([None, "3", None]), after   # the caller's environment is given back
+
+
 def test_display_test_refuses_what_frame_capture_cannot_do_before_the_screening(tmp_path):
     # before: --frames-per-period 0 and a --frames that names a file were refused only after the screening and the
     # caution had been printed (and a file was "cannot be made (File exists)"); a stream protocol likewise

@@ -26,12 +26,15 @@ pytestmark = [pytest.mark.display, pytest.mark.slow]
 
 ROOT = Path(__file__).resolve().parent.parent
 TINY = DATA / "display_tiny.toml"
-TOTAL = 7    # the tiny protocol's trials (tests/test_display_session.py)
+TINY_TRIALS = 7    # the tiny protocol's trials (tests/test_display_session.py)
+TWO = DATA / "display_two.toml"    # for the tests that run a session to its end
+TOTAL = 2          # its trials
 
 
-def _start(tmp_path: Path, env: dict, program: tuple[str, ...] = ("-m", "runner.cli")) -> tuple[subprocess.Popen, Path]:
+def _start(tmp_path: Path, env: dict, program: tuple[str, ...] = ("-m", "runner.cli"),
+           protocol: Path = TWO) -> tuple[subprocess.Popen, Path]:
     out_file = tmp_path / "stdout.txt"
-    args = ["run", TINY, "--observer", "e01", "--out", tmp_path / "d", "--windowed", "--seed", "11",
+    args = ["run", protocol, "--observer", "e01", "--out", tmp_path / "d", "--windowed", "--seed", "11",
             safety.REFRESH_OVERRIDE_OPTION]
     process = subprocess.Popen([sys.executable, *program, *map(str, args)], cwd=ROOT, env=env,
                                stdout=out_file.open("w"), stderr=subprocess.PIPE, text=True)
@@ -111,7 +114,7 @@ def test_sigterm_during_the_last_quick_fit_leaves_the_session_complete(own_x_ser
     assert out_file.read_text().splitlines()[-1].startswith(f"trial {TOTAL:4d}/{TOTAL} ")    # no quick fit shown
     assert _parts(tmp_path) == [("completed", TOTAL)]
 
-    resumed = subprocess.run([sys.executable, "-m", "runner.cli", "run", str(TINY), "--observer", "e01", "--out",
+    resumed = subprocess.run([sys.executable, "-m", "runner.cli", "run", str(TWO), "--observer", "e01", "--out",
                               str(tmp_path / "d"), "--windowed", "--resume"], cwd=ROOT, env={**env, "DISPLAY": ""},
                              capture_output=True, text=True, timeout=60)
     assert resumed.returncode == 0 and resumed.stderr == "", resumed.stderr     # said before any window: no display
@@ -127,7 +130,7 @@ def test_a_window_closed_or_killed_from_outside_ends_in_one_line_with_the_resume
     # the part left `running`; neither said how to go on
     require_xdotool()
     env = own_x_server.env()
-    process, _ = _start(tmp_path, env)
+    process, _ = _start(tmp_path, env, protocol=TINY)
     window = _answer_until(process, env, lambda: _rows(tmp_path) >= 3)
     subprocess.run(["xdotool", how, window], env=env, capture_output=True)
     err = process.communicate(timeout=30)[1]
@@ -136,7 +139,7 @@ def test_a_window_closed_or_killed_from_outside_ends_in_one_line_with_the_resume
     assert lines[0].startswith("aftershift run: the display failed during the session")
     assert lines[0].endswith("--resume") and "--seed" not in lines[0]
     rows = _rows(tmp_path)
-    assert rows >= 3 and _parts(tmp_path) == [("failed", rows)]
+    assert 3 <= rows < TINY_TRIALS and _parts(tmp_path) == [("failed", rows)]
 
 
 #: ``aftershift`` that kills its X server (SIGKILL) at the named step of opening its window, then takes that step.

@@ -931,29 +931,43 @@ def _files(folder: Path) -> dict:
     return {str(p.relative_to(folder)): p.read_bytes() for p in folder.rglob("*") if p.is_file()}
 
 
-def _fit_moved_with(how: str, tmp_path: Path, whole: Path):
+_MOVE_FIT = ["--bootstrap", "0", "--no-figures", "--out", "fit"]
+
+
+@pytest.fixture(scope="module")
+def earlier_and_clean_fits(tmp_path_factory, whole) -> tuple[Path, Path]:
+    """``whole`` fitted with seed 1 (the earlier fit a new one replaces) and with seed 2 (that new fit, clean)."""
     import subprocess
     import sys
 
-    out, clean = tmp_path / "moved" / "fit", tmp_path / "clean" / "fit"   # one name: the pages name the folder
-    args = ["fit", str(whole), "--bootstrap", "0", "--no-figures", "--out", "fit"]
-    for folder, seed in ((out, "1"), (clean, "2")):
-        folder.parent.mkdir(parents=True)
-        assert subprocess.run([sys.executable, "-m", "runner.cli", *args, "--seed", seed],
+    folders = tmp_path_factory.mktemp("earlier") / "fit", tmp_path_factory.mktemp("clean") / "fit"
+    for folder, seed in zip(folders, ("1", "2")):       # one name, "fit": the pages name the folder
+        assert subprocess.run([sys.executable, "-m", "runner.cli", "fit", str(whole), *_MOVE_FIT, "--seed", seed],
                               cwd=folder.parent, capture_output=True).returncode == 0
-    proc = subprocess.run([sys.executable, "-c", _MOVE_DRIVER, how, "4", *args, "--seed", "2"], cwd=out.parent,
-                          capture_output=True, text=True)
+    return folders
+
+
+def _fit_moved_with(how: str, tmp_path: Path, whole: Path, earlier_and_clean_fits: tuple[Path, Path]):
+    """Fit ``whole`` with seed 2 over a copy of the earlier fit, stopped (``how``) after 4 files moved in."""
+    import subprocess
+    import sys
+
+    earlier, clean = earlier_and_clean_fits
+    out = tmp_path / "moved" / "fit"
+    shutil.copytree(earlier, out, symlinks=True)
+    proc = subprocess.run([sys.executable, "-c", _MOVE_DRIVER, how, "4", "fit", str(whole), *_MOVE_FIT, "--seed",
+                           "2"], cwd=out.parent, capture_output=True, text=True)
     return proc, out, clean
 
 
 @pytest.mark.slow    # fits in subprocesses
 def test_a_fit_killed_while_moving_its_set_in_is_finished_by_the_next_reader(capsys, tmp_path, whole,
-                                                                              monkeypatch):
+                                                                              earlier_and_clean_fits, monkeypatch):
     # kill -9 between two renames left a mix of the earlier and the new fit's tables (a hostile-user sweep
     # found it); the journal lets compare (or the next fit) finish the move, so the folder is the new set
     from fitting.outputs import PENDING
 
-    proc, out, clean = _fit_moved_with("kill", tmp_path, whole)
+    proc, out, clean = _fit_moved_with("kill", tmp_path, whole, earlier_and_clean_fits)
     assert proc.returncode == 137 and (out / PENDING).exists()
     assert _files(out) != _files(clean) | {PENDING: (out / PENDING).read_bytes()}    # a mix, until settled
     gone = tmp_path / "gone" / "fit"
@@ -979,10 +993,10 @@ def test_a_fit_killed_while_moving_its_set_in_is_finished_by_the_next_reader(cap
 
 
 @pytest.mark.slow    # fits in subprocesses
-def test_sigterm_while_a_set_is_moved_in_waits_for_the_whole_set(tmp_path, whole):
+def test_sigterm_while_a_set_is_moved_in_waits_for_the_whole_set(tmp_path, whole, earlier_and_clean_fits):
     from fitting.outputs import PENDING
 
-    proc, out, clean = _fit_moved_with("term", tmp_path, whole)
+    proc, out, clean = _fit_moved_with("term", tmp_path, whole, earlier_and_clean_fits)
     assert proc.returncode == 130, proc.stderr
     assert one_line(proc.stderr) == "aftershift fit: stopped by SIGTERM after its outputs were written in full to fit"
     assert _files(out) == _files(clean) and not (out / PENDING).exists() and leftovers(out) == []

@@ -1,5 +1,6 @@
 """Group random-effects combination, compare's covariance-aware chi-square, flags on degenerate logs."""
 
+import shutil
 from pathlib import Path
 
 import numpy as np
@@ -420,6 +421,21 @@ def test_compare_says_when_the_group_p_cannot_be_simulated(tmp_path):
     assert any(n.startswith("group: the observers' own rows or their covariances") for n in result.notes)
 
 
+@pytest.fixture(scope="module")
+def fit_with_a_group_of_two(tmp_path_factory):
+    """The degenerate logs and an ordinary observer, fitted, with predictions (each test edits a copy)."""
+    folder = tmp_path_factory.mktemp("group_of_two")
+    _degenerate_logs(folder)
+    # D1's shifts are not usable for the group, so an ordinary observer makes the group's second one
+    model = ObserverModel(amplitude_deg=3.0, peak_offset_deg=25.0, decay_periods=2.0)
+    write_log(simulate_trials(model, offsets=(-30, 30), lags=(0,), trials_per_track=15, seed=6, observer="N1"),
+              folder / "n1.trials.csv")
+    fit_logs([str(folder)], str(folder / "out"), n_boot=100, seed=1, figures=False, progress=False)
+    pd.DataFrame({"lag": [0, 0], "adapter_offset_deg": [-30, 30], "pse_shift_deg": [-1.0, 1.0]}).to_csv(
+        folder / "pred.csv", index=False)
+    return folder
+
+
 @pytest.mark.parametrize("column, value, says", [
     ("covariance_deg2", "1e308", "covariance_deg2: expected a value in"),   # a number, but beyond what fit writes
     ("covariance_deg2", "1e5", "not symmetric positive semi-definite"),
@@ -431,17 +447,11 @@ def test_compare_says_when_the_group_p_cannot_be_simulated(tmp_path):
     ("spread_dof", "7", "observer D1: differs between rows"),
     ("shift_parameters", "a1 w", "observer D1, lag_a 0, adapter_offset_a_deg -30: differs between rows"),
 ])
-def test_compare_refuses_a_covariance_cell_no_fit_writes(tmp_path, capsys, column, value, says):
+def test_compare_refuses_a_covariance_cell_no_fit_writes(fit_with_a_group_of_two, tmp_path, capsys, column, value,
+                                                        says):
     from runner.cli import main
 
-    _degenerate_logs(tmp_path)
-    # D1's shifts are not usable for the group, so an ordinary observer makes the group's second one
-    model = ObserverModel(amplitude_deg=3.0, peak_offset_deg=25.0, decay_periods=2.0)
-    write_log(simulate_trials(model, offsets=(-30, 30), lags=(0,), trials_per_track=15, seed=6, observer="N1"),
-              tmp_path / "n1.trials.csv")
-    fit_logs([str(tmp_path)], str(tmp_path / "out"), n_boot=100, seed=1, figures=False, progress=False)
-    pd.DataFrame({"lag": [0, 0], "adapter_offset_deg": [-30, 30], "pse_shift_deg": [-1.0, 1.0]}).to_csv(
-        tmp_path / "pred.csv", index=False)
+    shutil.copytree(fit_with_a_group_of_two, tmp_path, dirs_exist_ok=True)
     path = tmp_path / "out" / "aftereffect_covariance.csv"
     table = pd.read_csv(path, dtype=str, keep_default_na=False)
     off = table.index[(table["adapter_offset_a_deg"] != table["adapter_offset_b_deg"])][0]
