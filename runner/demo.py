@@ -13,8 +13,10 @@ end times, package versions), ``fit/report_data.json`` and the two
 ``report.html`` pages (which show them); the repository leaves exactly those
 out (``.gitignore``), so running the demo in a clone leaves it clean.  The
 output folder is replaced only if it holds a previous demo (marked by the
-file ``DEMO_OUTPUT``); any other non-empty folder is refused, and so is a
-folder another demo is writing into.
+file ``DEMO_OUTPUT``) and nothing else: a file or folder no demo writes (a
+session a user ran into its ``logs``, a fit of its own, notes) makes the
+demo refuse, as does any other non-empty folder and a folder another demo
+is writing into.
 """
 
 from __future__ import annotations
@@ -24,7 +26,7 @@ from contextlib import contextmanager
 from pathlib import Path
 
 from fitting.errors import InputError
-from fitting.outputs import check_out_dir
+from fitting.outputs import MANIFEST, PENDING, STAGING_PREFIX, check_out_dir, read_manifest
 from runner.folder_claim import CLAIM_FILE, FolderClaim
 from runner.trial_log import StorageError
 
@@ -37,10 +39,62 @@ N_OBSERVERS = 3
 N_BOOT = 1000
 
 
+#: What a demo writes at the top of its folder; the tables of ``fit`` and ``compare`` are listed in their manifests.
+_TOP = (DEMO_MARK, CLAIM_FILE, "logs", "fit", "compare", "predictions_population_model.csv")
+#: The simulated observers' log, sidecar and lock (and their ``.tmp`` while written) start with these.
+_LOG_STEMS = tuple(f"sim{i:02d}-s1." for i in range(1, N_OBSERVERS + 1))
+
+
+def _command_files(folder: Path) -> list[Path]:
+    """Files and links in ``folder`` that its command (fit, compare) neither listed nor keeps for a move in."""
+    own = set(read_manifest(folder)) | {MANIFEST, PENDING}
+    try:
+        import json
+
+        own |= set(json.loads((folder / PENDING).read_text(encoding="utf-8")).get("files", []))
+    except (OSError, ValueError, AttributeError, TypeError):
+        pass
+    found = []
+    for path in sorted(folder.rglob("*")):
+        rel = path.relative_to(folder)
+        if rel.parts[0].startswith(STAGING_PREFIX) or (path.is_dir() and not path.is_symlink()):
+            continue
+        if path.is_symlink() or rel.as_posix() not in own:
+            found.append(path)
+    return found
+
+
+def _not_the_demos(out: Path) -> Path | None:
+    """The first file or folder in the earlier demo's ``out`` that no demo writes; None if there is none."""
+    for entry in sorted(out.iterdir()):
+        if entry.name not in _TOP or entry.is_symlink():
+            return entry
+    logs = out / "logs"
+    if logs.is_dir():
+        for entry in sorted(logs.iterdir()):
+            if not entry.name.startswith(_LOG_STEMS) or entry.is_symlink() or entry.is_dir():
+                return entry
+    for name in ("fit", "compare"):
+        if (out / name).is_dir():
+            found = _command_files(out / name)
+            if found:
+                return found[0]
+    return None
+
+
 def _refuse_foreign(out: Path) -> None:
-    """Refuse a non-empty ``out`` that holds no earlier demo (its files are not ours to replace)."""
-    if out.is_dir() and not (out / DEMO_MARK).exists() and any(e.name != CLAIM_FILE for e in out.iterdir()):
-        raise InputError(str(out), "--out", "is not empty and holds no earlier demo output; choose another folder")
+    """Refuse an ``out`` that holds anything but an earlier demo's files (they are not ours to replace)."""
+    if not out.is_dir():
+        return
+    if not (out / DEMO_MARK).exists():
+        if any(e.name != CLAIM_FILE for e in out.iterdir()):
+            raise InputError(str(out), "--out", "is not empty and holds no earlier demo output; choose another "
+                             "folder")
+        return
+    other = _not_the_demos(out)
+    if other is not None:
+        raise InputError(str(out), "--out", f"holds an earlier demo and {other.relative_to(out)}, which no demo "
+                         "writes; the demo replaces only its own output: move that away or choose another folder")
 
 
 @contextmanager

@@ -201,8 +201,41 @@ def _earlier_demo(folder: Path) -> None:
 
     (folder / "logs").mkdir(parents=True)
     (folder / "logs" / "sim01-s1.trials.csv").write_text("old\n")
+    (folder / "logs" / "sim02-s1.session.json.tmp").write_text("{")            # a demo killed mid-write
     (folder / "predictions_population_model.csv").write_text("old\n")
+    (folder / "fit" / "figures").mkdir(parents=True)
+    for name in ("pse.csv", "figures/decay_sim01.png"):
+        (folder / "fit" / name).write_text("old\n")
+    (folder / "fit" / "outputs.json").write_text('{"command": "fit", "files": ["pse.csv", "figures/decay_sim01.png"]}')
+    (folder / "fit" / ".staging-123-ab").mkdir()                                # a fit killed before its move
+    (folder / "fit" / ".staging-123-ab" / "tuning.csv").write_text("new\n")
+    (folder / "compare").mkdir()
+    (folder / "compare" / ".outputs-pending.json").write_text('{"stage": ".staging-9-x", "files": ["agreement.csv"]}')
+    (folder / "compare" / "agreement.csv").write_text("moved in before a kill\n")
     (folder / DEMO_MARK).write_text("mark\n")
+
+
+@pytest.mark.parametrize("theirs", ["logs/P01-s1.trials.csv", "logs/sim01-s2.trials.csv", "mine/notes.txt",
+                                    "fit/notes.txt", "fit/figures/mine.png", "compare/fit/mine.csv", "logs/linked"])
+def test_a_file_no_demo_writes_in_an_earlier_demos_folder_is_refused_and_kept(capsys, tmp_path, theirs):
+    # before: the demo emptied any folder marked as an earlier demo's: a user's own fit, notes and sessions were
+    # deleted without a word, and the log of a session `run` was still writing into logs/ went on receiving trials
+    # in a deleted file (a hostile-user sweep); only what a demo writes may be replaced
+    from fault_helpers import cli, one_line
+
+    out = tmp_path / "d"
+    _earlier_demo(out)
+    path = out / theirs
+    path.parent.mkdir(parents=True, exist_ok=True)
+    if theirs.endswith("linked"):
+        path.symlink_to(tmp_path)
+    else:
+        path.write_text("theirs\n")
+    before = {p: p.read_bytes() for p in out.rglob("*") if p.is_file() and p.name != ".lock"}
+    code, err = cli(capsys, "demo", "--out", out)
+    named = theirs if theirs.split("/")[0] in ("logs", "fit", "compare") else theirs.split("/")[0]   # "mine"
+    assert code == 2 and f"and {named}, which no demo writes" in one_line(err) and "--out" in err
+    assert {p: p.read_bytes() for p in out.rglob("*") if p.is_file() and p.name != ".lock"} == before
 
 
 def test_an_out_linked_to_an_earlier_demo_is_replaced_through_the_link(tmp_path):
