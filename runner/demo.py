@@ -21,6 +21,7 @@ is writing into.
 
 from __future__ import annotations
 
+import json
 import shutil
 from contextlib import contextmanager
 from pathlib import Path
@@ -49,8 +50,6 @@ def _command_files(folder: Path) -> list[Path]:
     """Files and links in ``folder`` that its command (fit, compare) neither listed nor keeps for a move in."""
     own = set(read_manifest(folder)) | {MANIFEST, PENDING}
     try:
-        import json
-
         own |= set(json.loads((folder / PENDING).read_text(encoding="utf-8")).get("files", []))
     except (OSError, ValueError, AttributeError, TypeError):
         pass
