@@ -167,6 +167,24 @@ class ReadingsLog:
                              [r["gun"] for r in self.rows], [int(r["order"]) for r in self.rows], str(self.path))
 
 
+#: psychopy key names and the characters they type into a reading: digits and the decimal point (or comma) ...
+TYPED = {**{str(d): str(d) for d in range(10)}, **{f"num_{d}": str(d) for d in range(10)},
+         "period": ".", "num_decimal": ".", "comma": ","}
+#: ... and what else a reading might be typed with, kept so that it is refused as typed: dropped, "-5" was
+#: read as 5 cd/m2 and "1e308" as 1308 (letters have names of one character).
+_OTHER_CHARACTERS = {"minus": "-", "num_subtract": "-", "plus": "+", "num_add": "+", "space": " ", "slash": "/",
+                     "num_divide": "/", "num_multiply": "*", "equal": "=", "apostrophe": "'"}
+
+
+def typed_character(key: str) -> str:
+    """The character the key ``key`` (a psychopy key name) types into a reading; "" for keys that type none."""
+    if key in TYPED:
+        return TYPED[key]
+    if key in _OTHER_CHARACTERS:
+        return _OTHER_CHARACTERS[key]
+    return key if len(key) == 1 and key.isprintable() else ""
+
+
 def parse_reading(text: str) -> float | None:
     """A typed reading in cd/m² (decimal point or comma), or None if it is not one."""
     try:

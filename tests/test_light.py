@@ -641,3 +641,20 @@ def test_a_luminance_just_beyond_the_profile_shows_the_digits_that_put_it_beyond
     with pytest.raises(InputError, match=r"100\.0001 cd/m2 for a background lies above the maximum .* "
                                          r"\(0\.354704 to 100 cd/m2\)"):
         load_protocol(p)
+
+
+@pytest.mark.parametrize("keys, reading", [
+    (["1", "2", "period", "5"], 12.5),
+    (["num_3", "comma", "num_2"], 3.2),
+    (["1", "e", "3"], 1000.0),                          # what it says: 1e3 cd/m2
+    (["minus", "5"], None),                             # before: the minus was dropped and 5 cd/m2 saved
+    (["1", "e", "3", "0", "8"], None),                  # before: 1308 cd/m2 saved
+    (["a", "b", "c"], None),                            # before: reported as '' (nothing typed)
+    (["lshift", "7"], 7.0),                             # keys that type nothing stay out of the reading
+])
+def test_a_typed_reading_is_what_its_keys_typed(keys, reading):
+    # the measurement screen (runner/display/light_meter.py) builds the reading from the key names psychopy
+    # reports; a key it does not accept must make the reading refused, not vanish from it
+    from runner.measure_light import parse_reading, typed_character
+
+    assert parse_reading("".join(typed_character(key) for key in keys)) == reading

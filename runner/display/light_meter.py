@@ -22,12 +22,9 @@ import sys
 from fitting.errors import InputError
 from runner.display._psychopy import event, visual
 from runner.display.window import UNSYNCED_FACTOR, FlipPacer, measure_refresh, open_window
-from runner.measure_light import ReadingsLog, Step, parse_reading
+from runner.measure_light import ReadingsLog, Step, parse_reading, typed_character
 from runner.protocol import Protocol
 
-#: psychopy key names that type characters of a reading.
-TYPED = {**{str(d): str(d) for d in range(10)}, **{f"num_{d}": str(d) for d in range(10)},
-         "period": ".", "num_decimal": ".", "comma": ","}
 ACCEPT = ("return", "num_enter")
 ERASE = ("backspace",)
 STOP = "escape"
@@ -90,9 +87,10 @@ class LightMeterScreen:
                 if name == STOP:
                     self.say("")
                     return None
-                if name in TYPED:
-                    typed += TYPED[name]
-                    self.say(TYPED[name], end="")
+                character = typed_character(name)
+                if character:
+                    typed += character
+                    self.say(character, end="")
                 elif name in ERASE and typed:
                     typed = typed[:-1]
                     self.say("\b \b", end="")
