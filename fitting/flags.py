@@ -36,6 +36,10 @@ spaces (empty = nothing unusual):
 ``partial``          a group row without some observers' estimates, left out
                      because they are not usable (:data:`NOT_USABLE`); the
                      group's notes name them
+``protocols-differ`` a group row (or group curve, or mixed-model term) that pools
+                     observers who ran different protocols (files whose text
+                     differs): its cells may not be the same measurement; the
+                     notes name the protocols and who ran each
 
 Group rows, the group curves and the mixed model use only the observers'
 rows that carry none of the words in :data:`NOT_USABLE` (:func:`usable`).
@@ -52,7 +56,7 @@ STEEP_FRACTION = 0.1
 #: Spread, as a fraction of the same interquartile range, at which a ``steep`` fit's bootstrap draws its answers.
 STEEP_DRAW_FRACTION = 0.5
 WORDS = ("one-sided", "separated", "on-bound", "outside-tested", "steep", "not-estimable", "few-trials",
-         "off-interval", "not-converged", "model-not-converged", "descriptive", "partial")
+         "off-interval", "not-converged", "model-not-converged", "descriptive", "partial", "protocols-differ")
 #: Words that keep an observer's row out of the group: its estimate says nothing (the PSE is not estimable)
 #: or comes without an interval (too few trials).  ``on-bound`` alone is not among them: an estimate on its
 #: bound is ``not-estimable`` as well, while a confidence limit on a bound only makes the interval wide.

@@ -30,7 +30,9 @@ bound as "at least"/"at most": such an interval is at least twice its other
 half wide, and one with both limits on bounds says nothing (infinitely
 wide), so a group of such observers gets the whole bounded range.
 
-A group row of fewer than three observers is flagged ``descriptive``.
+A group row of fewer than three observers is flagged ``descriptive``; one
+whose observers ran different protocols (:func:`flag_protocols_differ`)
+``protocols-differ``.
 
 The mixed model (statsmodels ``MixedLM``, REML, random intercept per observer)
 regresses the PSE shift on adapter offset, lag and their interaction: a
@@ -109,10 +111,15 @@ def _row_flags(m: pd.DataFrame) -> list[str]:
     return [_group_flags(n, ["partial"] if gone else []) for n, gone in zip(m["n"], m["left_out"])]
 
 
+def _pse_key(pse: pd.DataFrame) -> pd.DataFrame:
+    """``pse`` with the column ``_k`` naming the cell group PSEs pool: baseline, or adapter offset and lag."""
+    return pse.assign(_k=np.where(pse["lag"].isna(), "baseline",
+                                  pse["adapter_offset_deg"].astype(str) + "|" + pse["lag"].astype(str)))
+
+
 def group_pse(pse: pd.DataFrame, level: float, notes: list | None = None) -> pd.DataFrame:
     """Group rows of ``pse.csv``: random-effects PSE per condition across observers' usable rows."""
-    key = pse.assign(_k=np.where(pse["lag"].isna(), "baseline",
-                                 pse["adapter_offset_deg"].astype(str) + "|" + pse["lag"].astype(str)))
+    key = _pse_key(pse)
     m = _combine(key, ["_k"], "pse_deg", "pse_ci_low", "pse_ci_high", level)
     if notes is not None:
         _left_out(pse, usable(pse), "group PSEs", notes)
@@ -343,6 +350,50 @@ def group_curves(shifts: pd.DataFrame, level: float, notes: list, own_tuning=Non
         notes.append(f"group of {n} observers: group rows are descriptive (flagged), their "
                      "intervals are not inference about a population")
     return tuning, decay, detail, curves
+
+
+def flag_protocols_differ(group: dict, own: dict, mixed: pd.DataFrame | None, protocols: dict) -> None:
+    """Add ``protocols-differ`` to the group rows whose observers ran different protocols, in place.
+
+    Parameters
+    ----------
+    group : dict
+        The group tables ``pse``, ``aftereffect``, ``tuning``, ``decay`` and
+        ``curves`` (:func:`group_curves`: ``observers``, those of the curves).
+    own : dict
+        The observers' ``pse`` and ``aftereffect`` tables.
+    mixed : pandas.DataFrame or None
+        The mixed model's table (:func:`mixed_model`), over every usable shift.
+    protocols : dict of str -> str
+        Observer -> an identity of their protocol (its SHA-256).  Observers
+        not in it (no sidecar) are passed over.
+
+    A PSE or shift row pools the observers with a usable row in its cell;
+    the tuning and decay rows, the observers of the group curves.
+    """
+    def differ(observers) -> bool:
+        return len({protocols[o] for o in map(str, observers) if o in protocols}) > 1
+
+    def mark(table, rows) -> None:
+        rows = np.asarray(rows, dtype=bool)
+        if table is not None and rows.any():
+            table.loc[rows, "flags"] = [join(f, ["protocols-differ"]) for f in table.loc[rows, "flags"]]
+
+    pse = _pse_key(own["pse"])
+    members = pse[usable(pse)].groupby("_k")["observer"].agg(differ)
+    mark(group["pse"], _pse_key(group["pse"])["_k"].map(members).fillna(False))
+    shifts = own["aftereffect"]
+    if len(shifts) and len(group["aftereffect"]):
+        cell = ["lag", "adapter_offset_deg"]
+        ok = shifts[usable(shifts)].astype({"lag": float, "adapter_offset_deg": float})
+        members = ok.groupby(cell)["observer"].agg(differ)
+        keys = pd.MultiIndex.from_frame(group["aftereffect"][cell].astype(float))
+        mark(group["aftereffect"], members.reindex(keys).fillna(False).to_numpy())
+    if differ((group.get("curves") or {}).get("observers", ())):
+        for name in ("tuning", "decay"):
+            mark(group.get(name), np.ones(len(group.get(name, ())), dtype=bool))
+    if mixed is not None and len(mixed) and len(shifts) and differ(shifts.loc[usable(shifts), "observer"].unique()):
+        mark(mixed, np.ones(len(mixed), dtype=bool))
 
 
 #: An observer variance below this fraction of the residual variance is the REML bound (0).

@@ -120,6 +120,13 @@ _CHECKS = {
 }
 
 
+def cell_count_problem(header, cells) -> str | None:
+    """Words for a row with another number of cells than the header ("4,5" typed for "4.5"); None if equal."""
+    if len(cells) == len(header):
+        return None
+    return f"expected {len(header)} cells as in the header, found {len(cells)}"
+
+
 def check_cells(header, cells) -> tuple[str, str] | None:
     """The first cell that does not parse, as ``(column, message)``; None if all do.
 
@@ -133,8 +140,9 @@ def check_cells(header, cells) -> tuple[str, str] | None:
     cells : sequence of str
         One row's cells.
     """
-    if len(cells) != len(header):
-        return "cells", f"expected {len(header)} cells as in the header, found {len(cells)}"
+    count = cell_count_problem(header, cells)
+    if count is not None:
+        return "cells", count
     for name, text in zip(header, cells):
         kind = CELL_KINDS.get(name)
         if kind is None:

@@ -23,7 +23,7 @@ from pathlib import Path
 from typing import Callable
 
 from .errors import InputError
-from .logfile import LOG_SUFFIX, find_logs
+from .logfile import LOG_SUFFIX, cell_count_problem, examine_tail, find_logs
 from .outputs import write_atomic
 
 #: Name of the file holding the report's provenance in a fit folder.
@@ -75,18 +75,35 @@ def log_cells(log: Path, columns=("observer", "session", "condition", "procedure
 
 
 def log_rows(log: Path, columns) -> list[dict[str, str]] | None:
-    """``columns`` of every whole row of a trial log; None when the log cannot be read so (see :func:`log_cells`)."""
+    """``columns`` of every whole row of a trial log; None when the log cannot be read so (see :func:`log_cells`).
+
+    Whole rows are those the tail rules keep (:func:`fitting.logfile.examine_tail`).
+
+    Raises
+    ------
+    InputError
+        A whole row with another number of cells than the header, named by
+        its line as ``fit`` names it: its cells would be read under the
+        wrong columns, and a check of the sidecar against them would blame
+        a good sidecar.
+    """
     try:
         data = Path(log).read_bytes()
     except OSError:
         return None
     try:
-        reader = csv.DictReader(io.StringIO(data[: data.rfind(b"\n") + 1].decode("utf-8-sig"), newline=""))
-        if not set(columns) <= set(reader.fieldnames or ()):
-            return None
-        return [{c: row[c] or "" for c in columns} for row in reader]
+        rows = list(csv.reader(io.StringIO(data[: examine_tail(data).keep].decode("utf-8-sig"), newline="")))
     except (UnicodeDecodeError, csv.Error):
         return None
+    header = [c.strip() for c in rows[0]] if rows else []
+    if not set(columns) <= set(header):
+        return None
+    for line, cells in enumerate(rows[1:], start=2):
+        problem = cell_count_problem(header, cells)
+        if problem is not None:
+            raise InputError(str(log), f"line {line}", problem)
+    where = {c: header.index(c) for c in columns}
+    return [{c: cells[i] for c, i in where.items()} for cells in rows[1:]]
 
 
 def check_sidecar_owner(log: Path, side: Path, data: dict, cells: dict[str, set[str]] | None = None) -> None:
@@ -119,6 +136,57 @@ def check_sidecar_owner(log: Path, side: Path, data: dict, cells: dict[str, set[
         raise InputError(str(side), field, f"names {field} {claimed!r}, but the rows of its log {Path(log).name} "
                          f"name {found[0]!r}: it is another session's sidecar; put this session's own beside the "
                          "log, or move it away")
+
+
+def protocol_by_observer(sessions, protocols: dict) -> dict[str, str]:
+    """Each observer's protocol (its SHA-256); refuse an observer whose sessions ran different protocols.
+
+    ``fit`` pools an observer's sessions into one PSE per condition: trials
+    of another protocol (other periods, another refresh rate, other tracks)
+    in the same condition name would be pooled as the same measurement.  A
+    protocol is the same when its SHA-256 is: the text of the file, byte for
+    byte, comments and title included (the hash the sidecar records and the
+    report's "different protocols" note compares).
+
+    Parameters
+    ----------
+    sessions : iterable of dict
+        Records with ``observer, session, sidecar, protocol_sha256``, as
+        :func:`collect` gives them; those without a protocol (no sidecar,
+        an unreadable one) are passed over.
+    protocols : dict
+        SHA-256 -> a record with the protocol's ``path``.
+
+    Returns
+    -------
+    dict of str -> str
+        Observer -> SHA-256 of the protocol of their sessions.
+
+    Raises
+    ------
+    InputError
+        Naming the later session's sidecar, the observer, both sessions and
+        both protocol files.
+    """
+    first: dict[str, dict] = {}
+    for s in sessions:
+        sha = s.get("protocol_sha256")
+        if not sha or s.get("observer") is None:
+            continue
+        observer = str(s["observer"])
+        seen = first.setdefault(observer, s)
+        if seen["protocol_sha256"] == sha:
+            continue
+
+        def ran(r):
+            path = (protocols.get(r["protocol_sha256"]) or {}).get("path")
+            return f"session {r.get('session')} ran {path} (SHA-256 {r['protocol_sha256'][:12]})"
+
+        raise InputError(str(s.get("sidecar")), "protocol", f"observer {observer}'s {ran(s)} and {ran(seen)}: "
+                         "fit would pool their trials into one PSE per condition; fit each protocol's logs on "
+                         "their own (for example from folders of their own). A protocol counts as the same "
+                         "only when its file's text is (comments and title included)")
+    return {observer: r["protocol_sha256"] for observer, r in first.items()}
 
 
 def count_problem(log: Path, data: dict) -> str | None:

@@ -51,14 +51,16 @@ from .bootstrap import check_replicate_memory, parametric_bootstrap
 from .errors import InputError
 from .covariance import COVARIANCE_COLUMNS, group_covariance, observer_covariance
 from .flags import NOT_USABLE, flagged_first, join, psychometric_flags, shared_notes, usable
-from .group import GROUP, group_aftereffect, group_curves, group_pse, group_weights, mixed_model
+from .group import (GROUP, flag_protocols_differ, group_aftereffect, group_curves, group_pse, group_weights,
+                    mixed_model)
 from .observer import (BY_STATISTIC, INTERVAL_METHODS, AFTEREFFECT_COLUMNS, DECAY_COLUMNS, PSE_COLUMNS, TUNING_COLUMNS,
                        ObserverAnalysis, Options, analyse_observer, condition_table)
 from .page import PAGE, write_page
 from .progress import phase
-from .provenance import REPORT_DATA, collect, write_report_data
+from .provenance import REPORT_DATA, collect, protocol_by_observer, write_report_data
 from .psychometric import DEFAULT_LAPSE_MAX, SIGMOIDS, Cells, fit_cells
 from .outputs import output_set
+from .same_person import same_person_notes
 from .tables import prepare_trials, read_logs, stack, write_csv, write_text
 
 MAIN_TABLES = {"pse": PSE_COLUMNS, "aftereffect": AFTEREFFECT_COLUMNS,
@@ -316,11 +318,13 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
                spread: str = "shared", progress=True, *, sigmoid: str = "gaussian",
                interval: str = BY_STATISTIC, level: float = 0.95,
                lapse_max: float = DEFAULT_LAPSE_MAX, map_tasks=None, tracks: dict | None = None,
-               track_use: str = "replicates", after_observer=None) -> FitReport:
+               track_use: str = "replicates", after_observer=None, protocols: dict | None = None) -> FitReport:
     """Fit checked trials (from :func:`read_logs`) without writing anything.
 
     Same options as :func:`fit_logs`; returns the :class:`FitReport` with
-    no files.  With ``map_tasks`` and several observers,
+    no files.  ``protocols`` (observer -> the SHA-256 of their protocol,
+    :func:`fitting.provenance.protocol_by_observer`) flags group rows that
+    pool observers of different protocols (:func:`fitting.group.flag_protocols_differ`).  With ``map_tasks`` and several observers,
     ``after_observer(analysis) -> {key: (function, argument)}`` may add tasks
     that run on the same workers as soon as an observer's analysis is in
     (:func:`fit_logs` draws the observer's figures so, beside the fits of
@@ -381,6 +385,8 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
                          ("decay_s_ci_high", "decay_ci_high")):
                 d[a] = d[b] * per
         extras["mixed_model"] = mixed_model(tables["aftereffect"], gnotes)
+        if protocols:
+            flag_protocols_differ(group, tables, extras["mixed_model"], protocols)
         if len(group["aftereffect"]):
             group["covariance"] = group_covariance(
                 analyses, group["aftereffect"], group_weights(tables["aftereffect"], opts.level), opts.level)
@@ -409,7 +415,8 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
     ----------
     paths : list of str
         Trial logs and/or folders (every ``*.trials.csv`` below a folder).
-        Sessions of the same observer are pooled.
+        Sessions of the same observer are pooled; they must have run one
+        protocol (:func:`fitting.provenance.protocol_by_observer`).
     out_dir : str
         Output folder (created if needed).
     n_boot : int
@@ -476,12 +483,15 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
     Raises
     ------
     InputError
-        Bad arguments, unreadable or invalid logs (naming file and line).
+        Bad arguments, unreadable or invalid logs (naming file and line), an
+        observer whose sessions ran different protocols.
     """
     if Path(out_dir).exists() and not Path(out_dir).is_dir():
         raise InputError(str(out_dir), "--out", "exists and is not a folder")
     _check_options(n_boot, seed, lapse, spread, sigmoid, interval, level, lapse_max, progress)
     trials = read_logs(paths, include_bad_timing, include_practice)
+    data = collect(paths, plan)     # the sidecars: one protocol per observer (refused otherwise), for the flags
+    protocols = protocol_by_observer(data["sessions"], data["protocols"])
     n_observers = trials["observer"].nunique()
     # with workers, they draw every figure (their process has matplotlib imported already); this process
     # draws only when there are none, or when more observers than fit in memory leave figures for the end
@@ -504,7 +514,8 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
                     for draw, args, stem in observer_figure_tasks(analysis)}
     report = fit_trials(trials, n_boot, seed, lapse, spread, progress, sigmoid=sigmoid,
                         interval=interval, level=level, lapse_max=lapse_max, map_tasks=map_tasks,
-                        tracks=tracks, track_use=track_use, after_observer=draw_early if figures else None)
+                        tracks=tracks, track_use=track_use, after_observer=draw_early if figures else None,
+                        protocols=protocols)
     drawn = {name: data for files in report.side_results.values() for name, data in files.items()}
     if figures and not draw_here:
         # what is left (one observer's figures, or the group's) goes to the workers too, into memory
@@ -536,11 +547,9 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
         files += fig_files + [str(out / "summary.txt"), str(out / REPORT_DATA), str(out / PAGE)]
         report.out_dir = str(staged.final_dir)
         report.files = staged.final_paths(files)
-        data = collect(paths, plan)
-        note = protocols_note(data)
-        if note:                    # said before pooling, wherever the summary is read (the page says it too)
-            report.notes.setdefault(GROUP if report.group is not None else report.analyses[0].observer,
-                                    []).insert(0, note)
+        where = report.notes.setdefault(GROUP if report.group is not None else report.analyses[0].observer, [])
+        # said before pooling, wherever the summary is read (the page says the protocols' note too)
+        where[:0] = [n for n in (protocols_note(data), *same_person_notes(trials)) if n]
         for observer, text in session_notes(data):
             report.notes.setdefault(observer, []).append(text)
         write_text(out / "summary.txt", report.summary() + "\n")

@@ -19,7 +19,7 @@ import numpy as np
 
 from fitting.errors import InputError
 from fitting.nback import is_stream_log
-from fitting.provenance import check_sidecar_owner, log_cells, log_rows
+from fitting.provenance import check_sidecar_owner, log_cells, log_rows, protocol_by_observer
 from fitting.tables import read_log_table
 from runner.protocol import parse_protocol
 from runner.schedule import design_conditions
@@ -133,8 +133,11 @@ def _check_track_lengths(log: Path, side: Path, meta: dict, protocol) -> None:
 def check_sidecars(logs) -> None:
     """:func:`check_sidecar_matches` for every log whose sidecar can be read; before a fit begins.
 
-    Two simulated sessions of one observer with the same seed, protocol and
-    observer model are refused too: their trials are one session twice,
+    One observer's sessions of different protocols are refused
+    (:func:`fitting.provenance.protocol_by_observer`): ``fit`` would pool
+    them into one PSE per condition.  Two simulated sessions of one
+    observer with the same seed, protocol and observer model are refused
+    too: their trials are one session twice,
     not new data (``simulate --session s2`` with the seed of s1 wrote such
     a copy before the label was mixed into the seed).  Sidecars that are
     missing or cannot be read are left to the fit, which notes them.
@@ -142,10 +145,12 @@ def check_sidecars(logs) -> None:
     Raises
     ------
     InputError
-        A sidecar that belongs to another session than its log, or a
-        simulated session that repeats another.
+        A sidecar that belongs to another session than its log, an
+        observer's sessions of different protocols, or a simulated session
+        that repeats another.
     """
     simulated: dict = {}
+    sessions, protocols = [], {}
     for log in map(Path, logs):
         side = _sidecar(log)
         try:
@@ -153,6 +158,10 @@ def check_sidecars(logs) -> None:
         except (OSError, ValueError, KeyError, TypeError, InputError):
             continue
         check_sidecar_matches(log, side, meta, protocol)
+        sha = meta["protocol"].get("sha256")
+        sessions.append({"observer": meta.get("observer"), "session": meta.get("session"), "sidecar": str(side),
+                         "protocol_sha256": sha})
+        protocols.setdefault(sha, {"path": meta["protocol"].get("path")})
         if meta.get("kind") != "simulation":
             continue        # a person answers afresh whatever the seed
         key = json.dumps([meta.get("observer"), meta["protocol"].get("sha256"), meta.get("session_seed"),
@@ -162,6 +171,7 @@ def check_sidecars(logs) -> None:
             raise InputError(str(side), "session_seed", f"is that of {first} (the same simulated observer, "
                              "protocol and seed): its log repeats that session's trials, it adds no new data; fit "
                              "one of the two")
+    protocol_by_observer(sessions, protocols)
 
 
 def track_factories(logs, strict: bool = True, notes: list | None = None) -> dict:

@@ -291,3 +291,60 @@ def test_the_group_figure_marks_the_means_its_curves_are_fitted_to():
     legend = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
     assert "mean of the 2 observers\nthe lines are fitted to" in legend
     figures.pyplot().close("all")
+
+
+def _with_sidecar(table: pd.DataFrame, folder: Path, protocol_text: str) -> None:
+    """Write an observer's log and a sidecar naming the protocol its session ran (what fit reads of it)."""
+    import hashlib
+    import json
+
+    observer, session = table["observer"].iloc[0], table["session"].iloc[0]
+    write_log(table, folder / f"{observer}-{session}.trials.csv")
+    sha = hashlib.sha256(protocol_text.encode("utf-8")).hexdigest()
+    (folder / f"{observer}-{session}.session.json").write_text(json.dumps(
+        {"observer": observer, "session": session, "kind": "simulation",
+         "protocol": {"path": f"{sha[:6]}.toml", "sha256": sha, "text": protocol_text}}))
+
+
+@pytest.mark.slow
+def test_group_rows_over_observers_of_different_protocols_are_flagged(tmp_path):
+    # Defect 4 of the hostile sweep. Before: group rows pooled observers of 0.5 s and 8.3 ms periods as one
+    # cell, unflagged; only a note said "compare them before pooling".
+    for i, name in enumerate(("O1", "O2", "P1")):
+        _with_sidecar(_observer(name, 60 + i), tmp_path, "# protocol A\n" if name[0] == "O" else "# protocol B\n")
+    r = fit_logs([str(tmp_path)], str(tmp_path / "out"), n_boot=20, seed=1, figures=False, progress=False)
+    group = [t[t["observer"] == "group"] for t in (r.pse, r.aftereffect, r.tuning, r.decay)]
+    assert all(len(t) for t in group) and len(r.extras["mixed_model"])
+    for t in group + [r.extras["mixed_model"]]:
+        assert t["flags"].str.split().map(lambda w: "protocols-differ" in w).all()
+    for t in (r.pse, r.aftereffect):
+        assert not t.loc[t["observer"] != "group", "flags"].str.contains("protocols-differ").any()
+    assert any("different protocols" in n for n in r.notes["group"])          # the note stays
+    assert "protocols-differ" in (tmp_path / "out" / "aftereffect.csv").read_text()
+    # a cell that only observers of one protocol measured is not flagged; one they share is
+    _with_sidecar(_observer("P1", 62, offsets=(-30, 30)), tmp_path, "# protocol B\n")
+    _with_sidecar(_observer("P2", 63, offsets=(-30, 30)), tmp_path, "# protocol B\n")
+    r = fit_logs([str(tmp_path)], str(tmp_path / "out"), n_boot=20, seed=1, figures=False, progress=False)
+    g = r.aftereffect[r.aftereffect["observer"] == "group"].set_index("adapter_offset_deg")["flags"]
+    assert g.loc[[-30.0, 30.0]].str.contains("protocols-differ").all()
+    assert not g.loc[[-60.0, 60.0]].str.contains("protocols-differ").any()
+
+
+@pytest.mark.slow
+def test_observers_named_alike_but_for_case_and_copied_logs_are_named_in_the_notes(tmp_path):
+    # Defect 6 of the hostile sweep. Before: a copy of O1's log renamed o1 was counted as a twelfth observer,
+    # the group interval narrowed, and nothing said so.
+    from fitting.same_person import name_key
+
+    o1 = _observer("O1", 70)
+    write_log(o1, tmp_path / "O1.trials.csv")
+    write_log(o1.assign(observer="o1"), tmp_path / "o1.trials.csv")
+    write_log(_observer("O2", 71), tmp_path / "O2.trials.csv")
+    r = fit_logs([str(tmp_path)], str(tmp_path / "out"), n_boot=20, seed=1, figures=False, progress=False)
+    summary = (tmp_path / "out" / "summary.txt").read_text()
+    case = "observers O1 and o1 are one name when case is ignored: they are counted as 2 people"
+    copy = (f"logs {tmp_path / 'O1.trials.csv'} (O1) and {tmp_path / 'o1.trials.csv'} (o1) hold the same trials row "
+            "for row")
+    assert case in summary and copy in summary and case in r.summary()
+    assert "O2" not in next(n for n in r.notes["group"] if "case is ignored" in n)
+    assert name_key("\uff33\uff29\uff2d\uff10\uff12") == name_key("sim02")        # NFKC: full-width letters

@@ -217,3 +217,69 @@ def test_a_log_that_lacks_trials_its_sidecar_counted_is_named_in_a_note(capsys, 
     assert records[str(log)]["count_problem"] == expected and expected in data["notes"]["sim01"]
     assert records[str(folder / "sim02-s1.trials.csv")]["count_problem"] is None     # the other log is whole
     assert expected in (tmp_path / "fit" / "report.html").read_text()                 # beside its session
+
+
+def _as_session(src: Path, folder: Path, session: str, observer: str = "sim01") -> Path:
+    """Copy a session's log and sidecar into ``folder`` as ``observer``'s ``session`` (rows and sidecar)."""
+    name = src.name[: -len(".trials.csv")]
+    lines = src.read_text().splitlines(keepends=True)
+    log = folder / f"{observer}-{session}.trials.csv"
+    log.write_text(lines[0] + "".join(line.replace(name.replace("-", ",") + ",", f"{observer},{session},", 1)
+                                      for line in lines[1:]))
+    meta = json.loads(src.with_name(f"{name}.session.json").read_text())
+    meta.update(observer=observer, session=session)
+    log.with_name(f"{observer}-{session}.session.json").write_text(json.dumps(meta))
+    return log
+
+
+@pytest.mark.slow
+def test_one_observers_sessions_of_two_protocols_are_refused_naming_both(capsys, sessions, tmp_path):
+    # Defect 3 of the hostile sweep. Before: sim01's s1 (pilot_short.toml) and s2 (another protocol) were
+    # pooled into one PSE per condition, exit 0, unflagged; a note came only after the pooling.
+    from fitting import fit_logs
+    from runner.replay import check_sidecars
+
+    folder = tmp_path / "logs"
+    folder.mkdir()
+    _as_session(sessions["pilot"] / "sim01-s1.trials.csv", folder, "s1")
+    _as_session(sessions["other"] / "sim01-s1.trials.csv", folder, "s2")
+    code, err = cli(capsys, "fit", folder, "--out", tmp_path / "fit", "--bootstrap", "20", "--no-figures")
+    assert code == 2, "the two protocols' sessions were pooled"
+    line = one_line(err)
+    side = folder / "sim01-s2.session.json"
+    assert line.startswith(f"aftershift: {side}: protocol: observer sim01's session s2 ran ")
+    assert "other.toml (SHA-256 " in line and f"session s1 ran {PILOT} (SHA-256 " in line
+    assert "fit each protocol's logs on their own" in line
+    assert not (tmp_path / "fit").exists()
+    with pytest.raises(InputError, match="observer sim01's session s2 ran"):      # the library refuses too
+        fit_logs([str(folder)], str(tmp_path / "lib"), n_boot=0, figures=False, progress=False)
+    assert not (tmp_path / "lib").exists()
+    # sessions of the same protocol (the same SHA-256) are still pooled (sim02's session taken as sim01's s2)
+    (tmp_path / "same").mkdir()
+    _as_session(sessions["pilot"] / "sim01-s1.trials.csv", tmp_path / "same", "s1")
+    _as_session(sessions["pilot"] / "sim02-s1.trials.csv", tmp_path / "same", "s2")
+    check_sidecars(sorted((tmp_path / "same").glob("*.trials.csv")))
+
+
+@pytest.mark.slow
+def test_a_row_with_a_cell_too_many_is_named_before_the_sidecar_is_blamed(capsys, sessions, tmp_path):
+    # Defect 8 of the hostile sweep. Before: "-5" typed as "4,5" gave "sim01-s1.session.json: protocol: ... has
+    # no procedure ''... the sidecar is another session's (... move it away)", blaming a good sidecar.
+    from runner.replay import check_sidecars
+
+    folder = tmp_path / "logs"
+    shutil.copytree(sessions["pilot"], folder)
+    log = folder / "sim01-s1.trials.csv"
+    lines = log.read_text().splitlines(keepends=True)
+    header = lines[0].rstrip("\n").split(",")
+    i = header.index("test_offset_deg")
+    cells = lines[30].rstrip("\n").split(",")
+    cells[i:i + 1] = ["4", "5"]
+    lines[30] = ",".join(cells) + "\n"
+    log.write_text("".join(lines))
+    said = f"line 31: expected {len(header)} cells as in the header, found {len(header) + 1}"
+    with pytest.raises(InputError, match=said):
+        check_sidecars([log])
+    code, err = cli(capsys, "fit", folder, "--out", tmp_path / "fit", "--bootstrap", "20", "--no-figures")
+    assert code == 2 and one_line(err) == f"aftershift: {log}: {said}"
+    assert not (tmp_path / "fit").exists()
