@@ -138,15 +138,47 @@ def check_sidecar_owner(log: Path, side: Path, data: dict, cells: dict[str, set[
                          "log, or move it away")
 
 
+def protocol_settings(text: str) -> dict | None:
+    """A protocol's settings: its TOML tables as read, without the ``title``; None if the text is not TOML.
+
+    What "the same protocol" compares (:func:`protocol_by_observer`):
+    comments, layout, the order of keys and the title change no trial, so a
+    file edited in those only is the same protocol; any other value counts.
+    """
+    try:
+        import tomllib
+    except ModuleNotFoundError:            # Python 3.10
+        import tomli as tomllib
+    try:
+        settings = tomllib.loads(str(text).removeprefix("\ufeff"))
+    except (tomllib.TOMLDecodeError, TypeError):
+        return None
+    settings.pop("title", None)
+    return settings
+
+
+def _first_difference(a, b, where: str = "") -> str:
+    """The first setting (dotted name) whose value differs between two settings tables, with both values."""
+    if isinstance(a, dict) and isinstance(b, dict):
+        for key in sorted(set(a) | set(b)):
+            if a.get(key, _ABSENT) != b.get(key, _ABSENT):
+                return _first_difference(a.get(key, _ABSENT), b.get(key, _ABSENT), f"{where}.{key}".lstrip("."))
+    shown = ["(absent)" if v is _ABSENT else json.dumps(v, default=str)[:40] for v in (a, b)]
+    return f"{where}: {shown[0]} against {shown[1]}"
+
+
+_ABSENT = object()
+
+
 def protocol_by_observer(sessions, protocols: dict) -> dict[str, str]:
-    """Each observer's protocol (its SHA-256); refuse an observer whose sessions ran different protocols.
+    """Each observer's protocol; refuse an observer whose sessions ran different protocols.
 
     ``fit`` pools an observer's sessions into one PSE per condition: trials
     of another protocol (other periods, another refresh rate, other tracks)
     in the same condition name would be pooled as the same measurement.  A
-    protocol is the same when its SHA-256 is: the text of the file, byte for
-    byte, comments and title included (the hash the sidecar records and the
-    report's "different protocols" note compares).
+    protocol is the same when its settings are (:func:`protocol_settings`:
+    comments, layout and title aside); a protocol whose text the sidecar
+    lacks, or that is not TOML, only when its SHA-256 is.
 
     Parameters
     ----------
@@ -155,19 +187,25 @@ def protocol_by_observer(sessions, protocols: dict) -> dict[str, str]:
         :func:`collect` gives them; those without a protocol (no sidecar,
         an unreadable one) are passed over.
     protocols : dict
-        SHA-256 -> a record with the protocol's ``path``.
+        SHA-256 -> a record with the protocol's ``path`` and ``text``.
 
     Returns
     -------
     dict of str -> str
-        Observer -> SHA-256 of the protocol of their sessions.
+        Observer -> an identity of the protocol of their sessions (equal for
+        the same settings).
 
     Raises
     ------
     InputError
-        Naming the later session's sidecar, the observer, both sessions and
-        both protocol files.
+        Naming the later session's sidecar, the observer, both sessions,
+        both protocol files and the first setting that differs.
     """
+    identity: dict[str, str] = {}
+    settings: dict[str, dict | None] = {}
+    for sha, record in protocols.items():
+        settings[sha] = protocol_settings((record or {}).get("text") or "") if (record or {}).get("text") else None
+        identity[sha] = json.dumps(settings[sha], sort_keys=True, default=str) if settings[sha] is not None else sha
     first: dict[str, dict] = {}
     for s in sessions:
         sha = s.get("protocol_sha256")
@@ -175,18 +213,20 @@ def protocol_by_observer(sessions, protocols: dict) -> dict[str, str]:
             continue
         observer = str(s["observer"])
         seen = first.setdefault(observer, s)
-        if seen["protocol_sha256"] == sha:
+        if identity.get(seen["protocol_sha256"], seen["protocol_sha256"]) == identity.get(sha, sha):
             continue
 
         def ran(r):
             path = (protocols.get(r["protocol_sha256"]) or {}).get("path")
             return f"session {r.get('session')} ran {path} (SHA-256 {r['protocol_sha256'][:12]})"
 
-        raise InputError(str(s.get("sidecar")), "protocol", f"observer {observer}'s {ran(s)} and {ran(seen)}: "
+        old, new = settings.get(seen["protocol_sha256"]), settings.get(sha)
+        differ = (f"they differ in {_first_difference(new, old)}" if old is not None and new is not None else
+                  "their files differ")
+        raise InputError(str(s.get("sidecar")), "protocol", f"observer {observer}'s {ran(s)} and {ran(seen)} ({differ}): "
                          "fit would pool their trials into one PSE per condition; fit each protocol's logs on "
-                         "their own (for example from folders of their own). A protocol counts as the same "
-                         "only when its file's text is (comments and title included)")
-    return {observer: r["protocol_sha256"] for observer, r in first.items()}
+                         "their own (for example from folders of their own)")
+    return {observer: identity.get(r["protocol_sha256"], r["protocol_sha256"]) for observer, r in first.items()}
 
 
 def count_problem(log: Path, data: dict) -> str | None:

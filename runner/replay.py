@@ -161,7 +161,7 @@ def check_sidecars(logs) -> None:
         sha = meta["protocol"].get("sha256")
         sessions.append({"observer": meta.get("observer"), "session": meta.get("session"), "sidecar": str(side),
                          "protocol_sha256": sha})
-        protocols.setdefault(sha, {"path": meta["protocol"].get("path")})
+        protocols.setdefault(sha, {"path": meta["protocol"].get("path"), "text": meta["protocol"].get("text")})
         if meta.get("kind") != "simulation":
             continue        # a person answers afresh whatever the seed
         key = json.dumps([meta.get("observer"), meta["protocol"].get("sha256"), meta.get("session_seed"),

@@ -306,12 +306,16 @@ def _with_sidecar(table: pd.DataFrame, folder: Path, protocol_text: str) -> None
          "protocol": {"path": f"{sha[:6]}.toml", "sha256": sha, "text": protocol_text}}))
 
 
+#: Two protocols' texts as sidecars record them: other motion periods (their comments alone would not count).
+A, B = "# protocol A\n[timing]\nperiod_s = 0.5\n", "# protocol B\n[timing]\nperiod_s = 0.0083\n"
+
+
 @pytest.mark.slow
 def test_group_rows_over_observers_of_different_protocols_are_flagged(tmp_path):
     # Defect 4 of the hostile sweep. Before: group rows pooled observers of 0.5 s and 8.3 ms periods as one
     # cell, unflagged; only a note said "compare them before pooling".
     for i, name in enumerate(("O1", "O2", "P1")):
-        _with_sidecar(_observer(name, 60 + i), tmp_path, "# protocol A\n" if name[0] == "O" else "# protocol B\n")
+        _with_sidecar(_observer(name, 60 + i), tmp_path, A if name[0] == "O" else B)
     r = fit_logs([str(tmp_path)], str(tmp_path / "out"), n_boot=20, seed=1, figures=False, progress=False)
     group = [t[t["observer"] == "group"] for t in (r.pse, r.aftereffect, r.tuning, r.decay)]
     assert all(len(t) for t in group) and len(r.extras["mixed_model"])
@@ -322,8 +326,8 @@ def test_group_rows_over_observers_of_different_protocols_are_flagged(tmp_path):
     assert any("different protocols" in n for n in r.notes["group"])          # the note stays
     assert "protocols-differ" in (tmp_path / "out" / "aftereffect.csv").read_text()
     # a cell that only observers of one protocol measured is not flagged; one they share is
-    _with_sidecar(_observer("P1", 62, offsets=(-30, 30)), tmp_path, "# protocol B\n")
-    _with_sidecar(_observer("P2", 63, offsets=(-30, 30)), tmp_path, "# protocol B\n")
+    _with_sidecar(_observer("P1", 62, offsets=(-30, 30)), tmp_path, B)
+    _with_sidecar(_observer("P2", 63, offsets=(-30, 30)), tmp_path, B)
     r = fit_logs([str(tmp_path)], str(tmp_path / "out"), n_boot=20, seed=1, figures=False, progress=False)
     g = r.aftereffect[r.aftereffect["observer"] == "group"].set_index("adapter_offset_deg")["flags"]
     assert g.loc[[-30.0, 30.0]].str.contains("protocols-differ").all()

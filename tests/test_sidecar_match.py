@@ -10,6 +10,7 @@ Both fits ended with exit 0.
 
 from __future__ import annotations
 
+import hashlib
 import json
 import shutil
 from pathlib import Path
@@ -249,6 +250,7 @@ def test_one_observers_sessions_of_two_protocols_are_refused_naming_both(capsys,
     side = folder / "sim01-s2.session.json"
     assert line.startswith(f"aftershift: {side}: protocol: observer sim01's session s2 ran ")
     assert "other.toml (SHA-256 " in line and f"session s1 ran {PILOT} (SHA-256 " in line
+    assert "(they differ in design.adapter_offsets_deg: [-45, 45] against [-30, 30])" in line
     assert "fit each protocol's logs on their own" in line
     assert not (tmp_path / "fit").exists()
     with pytest.raises(InputError, match="observer sim01's session s2 ran"):      # the library refuses too
@@ -259,6 +261,14 @@ def test_one_observers_sessions_of_two_protocols_are_refused_naming_both(capsys,
     _as_session(sessions["pilot"] / "sim01-s1.trials.csv", tmp_path / "same", "s1")
     _as_session(sessions["pilot"] / "sim02-s1.trials.csv", tmp_path / "same", "s2")
     check_sidecars(sorted((tmp_path / "same").glob("*.trials.csv")))
+    # and so are sessions of a protocol file edited only in its comments, layout and title: the same settings
+    side = tmp_path / "same" / "sim01-s2.session.json"
+    meta = json.loads(side.read_text())
+    text = "# edited after session s1\n" + meta["protocol"]["text"].replace("title = ", "title   =  'x' #", 1)
+    meta["protocol"].update(text=text, sha256=hashlib.sha256(text.encode()).hexdigest())
+    side.write_text(json.dumps(meta))
+    check_sidecars(sorted((tmp_path / "same").glob("*.trials.csv")))
+    fit_logs([str(tmp_path / "same")], str(tmp_path / "same_fit"), n_boot=0, figures=False, progress=False)
 
 
 @pytest.mark.slow
