@@ -77,7 +77,7 @@ from fitting.covariance import COVARIANCE_COLUMNS, NO_COVARIANCE, covariance_mat
 from fitting.errors import InputError
 from fitting.cells import check_numbers, check_ranges, line_of
 from fitting.fit_copy import check_table, read_fit
-from fitting.group import GROUP
+from fitting.group import GROUP, MIN_OBSERVERS_FOR_INFERENCE
 from fitting.group_chi2 import DRAWS, GroupData, calibrated_p
 from fitting.meta import random_effects
 from fitting.page import PAGE, write_page
@@ -93,7 +93,7 @@ PREDICTION_COLUMNS = ("lag", "adapter_offset_deg", "pse_shift_deg")
 MEASURED_COLUMNS = ("observer", "lag", "adapter_offset_deg", "pse_shift_deg", "ci_low", "ci_high")
 AGREEMENT_COLUMNS = (
     "observer", "lag", "n_points", "rmse_deg", "pearson_r", "gain", "gain_ci_low", "gain_ci_high",
-    "chi2", "dof", "chi2_p", "chi2_reference", "inside_ci_fraction", "gain_unweighted", "covariance", "descriptive",
+    "chi2", "dof", "chi2_p", "chi2_reference", "inside_ci_fraction", "gain_unweighted", "covariance", "points_left_out",
 )
 COVARIANCE_FILE = "aftereffect_covariance.csv"
 
@@ -108,6 +108,11 @@ MAX_REPLICATES = 100_000
 #: Flag words (:mod:`fitting.flags`) of a measured shift that cannot be judged, and why.
 NOT_ESTIMABLE = {"one-sided": "every answer on one side, so the PSE is not estimable",
                  "few-trials": f"fewer than {MIN_TRIALS_FOR_INTERVAL} trials, so no interval"}
+#: Flag word (:mod:`fitting.group`) of a group cell resting on fewer than ``MIN_OBSERVERS_FOR_INFERENCE`` observers.
+FEW_OBSERVERS = "descriptive"
+#: Why a point is left out of the agreement statistics, in a word or two, by its flag word (the console line).
+LEFT_OUT_WHY = {"one-sided": "PSE not estimable", "few-trials": "no interval",
+                FEW_OBSERVERS: f"fewer than {MIN_OBSERVERS_FOR_INFERENCE} observers"}
 
 
 def _read_csv(path: Path, required: tuple[str, ...], may_be_empty: tuple[str, ...] = (),
@@ -521,25 +526,44 @@ class Comparison:
         """A short text for the console."""
         overall = self.table[self.table["lag"] == "all"]
         lines = ["agreement with predictions (all lags):"]
-        if overall.empty:
-            lines.append("  no observer: every measured point is left out (see note)")
+        judged = set(overall["observer"])
+        for observer in dict.fromkeys(self.points["observer"]):
+            if observer not in judged:        # every point left out: the line says why, the notes say which
+                lines.append(f"  {observer:>8}: no agreement statistics: {_left_out_text(self.points, observer)}")
         for _, row in overall.iterrows():
             start = f"  {row['observer']:>8}: RMSE {row['rmse_deg']:.2f} deg, r {_shown(row['pearson_r'])}"
+            left = _left_out_text(self.points, row["observer"])
+            left = f"; {left}" if left else ""
             if not np.isfinite(row["inside_ci_fraction"]):
-                lines.append(start + "; no interval statistics (see note)")
+                lines.append(start + "; no interval statistics (see note)" + left)
                 continue
             if not (np.isfinite(row["gain"]) or np.isfinite(row["chi2"])):
                 lines.append(start + f", {row['inside_ci_fraction']:.0%} of predictions inside the 95% CIs; "
-                             f"no gain or chi2 (unweighted gain {_shown(row['gain_unweighted'])}; see note)")
+                             f"no gain or chi2 (unweighted gain {_shown(row['gain_unweighted'])}; see note)" + left)
                 continue
             lines.append(
                 start + ", " + _gain_text(row) + ", "
                 + (_chi2_text(row) + ", " if np.isfinite(row["chi2"]) else "")
                 + f"{row['inside_ci_fraction']:.0%} of predictions inside the 95% CIs"
                 + ("" if row["covariance"] == "full" else "; errors treated as independent")
-                + ("; descriptive only (fewer than 3 observers)" if row["descriptive"] else "")
+                + left
             )
         return "\n".join(lines + [f"note: {n}" for n in (*self.notes, CHI2_CAVEAT)])
+
+
+def _left_out_text(points: pd.DataFrame, observer) -> str:
+    """How many of ``observer``'s points (the group's cells) are left out of the statistics, and why; "" if none."""
+    if "in_statistics" not in points:
+        return ""
+    mine = points[points["observer"] == observer]
+    out = mine[~mine["in_statistics"].astype(bool)]
+    if not len(out):
+        return ""
+    words = {w for f in out.get("flags", pd.Series(dtype=object)) if isinstance(f, str) for w in f.split()}
+    why = ", ".join(f"{w}: {reason}" for w, reason in LEFT_OUT_WHY.items() if w in words)
+    what = "cells" if observer == GROUP else "points"
+    count = f"all {len(mine)} {what}" if len(out) == len(mine) else f"{len(out)} of {len(mine)} {what}"
+    return f"{count} left out ({why}; see note)"
 
 
 def unused_predictions(measured: pd.DataFrame, predictions: pd.DataFrame, interpolate: bool) -> tuple[str, ...]:
@@ -671,6 +695,39 @@ def not_estimable(points: pd.DataFrame) -> tuple[np.ndarray, tuple[str, ...]]:
     return left_out, tuple(notes)
 
 
+def few_observer_cells(points: pd.DataFrame) -> tuple[np.ndarray, tuple[str, ...]]:
+    """Group cells that rest on fewer than ``MIN_OBSERVERS_FOR_INFERENCE`` observers, and a note saying so.
+
+    ``fit`` flags such a group row :data:`FEW_OBSERVERS` (:mod:`fitting.group`):
+    its interval describes those observers, it is no inference about a
+    population, and with two observers it is often tens of degrees wide, so
+    it would pass any prediction.  Such cells are left out of every agreement
+    statistic of the group, its gain included (:func:`_group_gain`).
+
+    Returns
+    -------
+    left_out : ndarray of bool
+        One per row of ``points``.
+    notes : tuple of str
+    """
+    flags = points["flags"] if "flags" in points else pd.Series("", index=points.index)
+    mine = (points["observer"] == GROUP).to_numpy()
+    left_out = mine & np.array([isinstance(f, str) and FEW_OBSERVERS in f.split() for f in flags], dtype=bool)
+    if not left_out.any():
+        return left_out, ()
+    why = (f"rest on fewer than {MIN_OBSERVERS_FOR_INFERENCE} observers (flagged {FEW_OBSERVERS}: their intervals "
+           "describe those observers, they are not inference about a population)")
+    if left_out.sum() == mine.sum():
+        return left_out, (f"{GROUP}: all {int(mine.sum())} of its cells {why}, so the group is left out of chi2, gain "
+                          "and the other agreement statistics; read the observers' own rows",)
+    cells = [f"lag {points['lag'].iloc[i]:g} offset {points['adapter_offset_deg'].iloc[i]:+g}"
+             for i in np.flatnonzero(left_out)]
+    shown = ", ".join(cells[:4]) + (f" and {len(cells) - 4} more" if len(cells) > 4 else "")
+    return left_out, (f"{GROUP}: {len(cells)} of {int(mine.sum())} cells {why} and are left out of the group's chi2, "
+                      "gain (the observers' gains are combined over the other cells) and the other agreement "
+                      f"statistics: {shown}",)
+
+
 def _undefined_gain_notes(points: pd.DataFrame, table: pd.DataFrame) -> tuple[str, ...]:
     """Say why a row has a χ² but no gain: every prediction it is compared with is 0 (or, for a stream fit,
     outside the directions its shifts can move in); one note for the observers it holds for alike."""
@@ -743,15 +800,29 @@ def _shown_path(path: Path, out: Path) -> str:
     return rel if not rel.startswith(os.pardir + os.sep + os.pardir) else str(path.resolve())
 
 
-def _group_gain_from_observers(rows: list[dict]) -> None:
-    """Replace each group row's gain by the combination of the observers' gains (:func:`combine_gains`)."""
-    for row in rows:
-        if row["observer"] != GROUP:
-            continue
-        own = [r for r in rows if r["observer"] != GROUP and r["lag"] == row["lag"]]
-        g, low, high = combine_gains([r["gain"] for r in own], [r["gain_se"] for r in own])
-        if np.isfinite(g):
-            row.update(gain=g, gain_ci_low=low, gain_ci_high=high)
+def _agreement_of(g: pd.DataFrame, observer, cov_table: pd.DataFrame | None, usable: bool):
+    """:func:`agreement` of one observer's points ``g``, with their covariance when ``usable``; and that covariance."""
+    found = (NO_COVARIANCE if not usable else
+             covariance_matrix(cov_table, observer, g["lag"], g["adapter_offset_deg"]))
+    a = agreement(g["pse_shift_deg"], g["ci_low"], g["ci_high"], g["predicted_deg"],
+                  g["prediction_sd_deg"], found.matrix, found.replicates, found.dof,
+                  trials=pd.to_numeric(g["n_trials"], errors="coerce") if "n_trials" in g else None,
+                  spread_dof=found.spread_dof, rank=found.rank)
+    return a, found
+
+
+def _group_gain(used: pd.DataFrame, cells: pd.DataFrame, cov_table: pd.DataFrame | None, too_few: set):
+    """The group's gain over its ``cells``: the combination (:func:`combine_gains`) of each observer's gain over
+    those of its points that lie in them, so a cell left out of the group's statistics stays out of its gain."""
+    inside = set(zip(cells["lag"].astype(float), cells["adapter_offset_deg"].astype(float)))
+    gains, ses = [], []
+    for observer, rows in used[used["observer"] != GROUP].groupby("observer", sort=False):
+        mine = rows[[(float(lag), float(o)) in inside for lag, o in zip(rows["lag"], rows["adapter_offset_deg"])]]
+        if len(mine):
+            a, _ = _agreement_of(mine, observer, cov_table, cov_table is not None and observer not in too_few)
+            gains.append(a.gain)
+            ses.append(a.gain_se)
+    return combine_gains(gains, ses)
 
 
 def _simulated_group_tests(points: pd.DataFrame, cov_table: pd.DataFrame, group: pd.DataFrame,
@@ -812,6 +883,8 @@ def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figure
     predictions = read_predictions(predictions_path)
     points = match_predictions(measured, predictions, str(predictions_path), interpolate)
     left_out, estimable_notes = not_estimable(points)
+    few, few_notes = few_observer_cells(points)
+    left_out |= few
     points["in_statistics"] = ~left_out          # the figure draws the others hollow
     used = points[~left_out]
     rows, fallback = [], ()
@@ -826,24 +899,23 @@ def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figure
             fallback = (f"{GROUP}: the observers' own rows or their covariances in {COVARIANCE_FILE} are not all "
                         "there, so the group's chi2 p is read from chi2(n), which rejects true predictions too often "
                         "with few observers",)
+        mine = points["observer"] == observer
         for (lag, g), calibrated in zip(parts, simulated or [None] * len(parts)):
-            found = (NO_COVARIANCE if not usable else
-                     covariance_matrix(cov_table, observer, g["lag"], g["adapter_offset_deg"]))
-            a = agreement(g["pse_shift_deg"], g["ci_low"], g["ci_high"], g["predicted_deg"],
-                          g["prediction_sd_deg"], found.matrix, found.replicates, found.dof,
-                          trials=pd.to_numeric(g["n_trials"], errors="coerce") if "n_trials" in g else None,
-                          spread_dof=found.spread_dof, rank=found.rank)
+            a, found = _agreement_of(g, observer, cov_table, usable)
             if calibrated is not None and found.matrix is not None and np.isfinite(a.chi2):
                 a = replace(a, chi2=calibrated[0], chi2_p=calibrated[1],
                             chi2_reference=f"simulated ({DRAWS} groups)")
+            if observer == GROUP:
+                gain, low, high = _group_gain(used, g, cov_table, too_few)
+                if np.isfinite(gain):
+                    a = replace(a, gain=gain, gain_ci_low=low, gain_ci_high=high)
+            part = mine if lag == "all" else mine & (points["lag"].map("{:g}".format) == lag)
             rows.append({"observer": observer, "lag": lag, **a.__dict__,
-                         "descriptive": bool(g.get("flags", pd.Series(dtype=object)).astype(object).fillna("").astype(str)
-                                             .str.contains("descriptive").any())})
-    _group_gain_from_observers(rows)
+                         "points_left_out": int((part & left_out).sum())})
     table = pd.DataFrame(rows, columns=AGREEMENT_COLUMNS)
     table.loc[table["observer"].isin(too_few), ["gain", "gain_ci_low", "gain_ci_high", "chi2", "chi2_p",
                                                 "chi2_reference"]] = np.nan
-    notes = (estimable_notes + _leave_out_interval_statistics(used, table) + replicate_notes
+    notes = (estimable_notes + few_notes + _leave_out_interval_statistics(used, table) + replicate_notes
              + _undefined_gain_notes(used, table) + _reduced_rank_notes(table) + fallback
              + unused_predictions(measured, predictions, interpolate) + (shown.notes if shown else ())
              + (() if results.is_dir() else ("no report page: it is made when the fit's folder is given, not one "

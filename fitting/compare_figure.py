@@ -22,7 +22,7 @@ def overlay_columns(n_panels: int) -> int:
 
 
 #: Legend text of the hollow points (the points :func:`fitting.compare.not_estimable` leaves out).
-LEFT_OUT_LABEL = "left out of \u03c7\u00b2 and gain\n(one-sided, few trials)"
+LEFT_OUT_LABEL = "left out of \u03c7\u00b2 and gain\n(one-sided, few trials,\ngroup of < 3 observers)"
 #: Added to it when a hollow point lies beyond the vertical range.
 BEYOND_LABEL = ";\noff scale: at the edge"
 
@@ -31,8 +31,9 @@ def overlay_canvas(points) -> PanelGrid:
     """Draw measured after-effects with 95 % CIs and predicted curves, one panel per observer.
 
     Points in the agreement statistics are filled, with their intervals;
-    points left out of them (``in_statistics`` false: one-sided or too few
-    trials) are hollow, without an interval, and the legend says so.  The
+    points left out of them (``in_statistics`` false: one-sided, too few
+    trials, or a group cell of fewer than three observers) are hollow,
+    without an interval, and the legend says so.  The
     vertical range is set by the points in the statistics and the
     predictions, so a PSE on its fitting bound does not flatten every panel;
     a hollow point beyond it sits on the panel's edge.

@@ -60,7 +60,8 @@ from .flags import MIN_TRIALS_FOR_INTERVAL, STEEP_FRACTION, flagged_first, join,
 from .flags import on_bound as flag_on_bound
 from .psychometric import DEFAULT_LAPSE_MAX, sigmoid_parts
 from .outputs import output_set
-from .tables import MAX_OFFSET_DEG, check_unique_trials, find_logs, read_log_table, write_csv, write_text
+from .tables import (MAX_OFFSET_DEG, check_row_agreement, check_unique_trials, find_logs, read_log_table, write_csv,
+                     write_text)
 
 #: The ``block`` value of stream rows in a trial log.
 STREAM_BLOCK = "stream"
@@ -125,6 +126,11 @@ def _read_stream_file(path: Path) -> pd.DataFrame:
     missing = [c for c in need if c not in raw.columns]
     if missing:
         raise InputError(source, f"column {missing[0]}", "missing; a stream log needs " + ", ".join(need))
+    number = {c: pd.to_numeric(raw[c].str.strip() if c in raw else pd.Series(dtype=str), errors="coerce")
+              for c in ("test_offset_deg", "lag")}
+    practice = raw["practice"].str.strip().isin(("1", "true")) if "practice" in raw else pd.Series(False, raw.index)
+    check_row_agreement(raw, source, [f"line {i + 2}" for i in range(len(raw))], number["test_offset_deg"],
+                        practice, number["lag"].reindex(raw.index))
     raw = raw[raw["block"].str.strip() == STREAM_BLOCK].reset_index(drop=True)
     rows = []
     for i, r in raw.iterrows():

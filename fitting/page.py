@@ -56,8 +56,8 @@ FIGURE_CAPTIONS = {
     "decay": "DoG amplitude per lag and the fitted exponential decay",
     "nback": "n-back amplitudes and the fitted decay",
     "comparison": "Measured after-effects (points, 95 % CIs) and predictions (lines); hollow points (one-sided, "
-                  "or too few trials for an interval) are left out of χ², gain and the other agreement "
-                  "statistics, as the points table's in_statistics column says",
+                  "too few trials for an interval, or a group cell of fewer than three observers) are left out "
+                  "of χ², gain and the other agreement statistics, as the points table's in_statistics column says",
 }
 
 _STYLE = """

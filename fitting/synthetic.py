@@ -145,7 +145,7 @@ def simulate_trials(model: ObserverModel = ObserverModel(), offsets=(-60, -30, -
     if period_s is not None:
         df["period_s"] = period_s
     df["reference_deg"] = reference_deg
-    df["procedure"] = procedure
+    df["procedure"] = np.where(df["practice"] == 1, "practice", procedure)     # as a session logs it
     return df
 
 

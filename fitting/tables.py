@@ -43,6 +43,12 @@ BASELINE = "baseline"
 #: Offsets beyond this (deg) are bad input: directions repeat every 360 degrees.
 MAX_OFFSET_DEG = 180.0
 
+#: How far (deg) a logged ``test_direction_deg`` may lie from ``reference_deg - test_offset_deg``: the log writes
+#: directions to 6 decimals and offsets to 10 significant digits (``runner.trial_log``).
+DIRECTION_TOLERANCE_DEG = 1e-5
+#: The ``procedure`` cell of a practice row (``runner.session.trial_row``).
+PRACTICE_PROCEDURE = "practice"
+
 _TRUE = {"true", "1", "1.0", "yes"}
 _FALSE = {"false", "0", "0.0", "no"}
 
@@ -174,6 +180,64 @@ def validate_trials(raw: pd.DataFrame, source: str, row_names: list[str] | None 
     return out
 
 
+def check_row_agreement(raw: pd.DataFrame, source: str, names: list[str], offset: pd.Series, practice: pd.Series,
+                        lag: pd.Series) -> None:
+    """Refuse a log row whose cells disagree with each other, as no session writes them (an edited cell).
+
+    ``raw``: the log's text cells, ``names`` its rows' names in messages;
+    ``offset``, ``practice`` and ``lag``: its test offsets, practice flags
+    and lags as read (NaN where not a number or empty).
+
+    Where the log has the columns: the test direction is the reference
+    minus the test offset, modulo 360 (directions counter-clockwise from
+    rightward, offsets positive clockwise: ``runner.plan.offset_to_direction``);
+    a session's rows share one reference; a practice row's procedure is
+    ``practice`` and only its; an adapt-test row (not ``block`` stream) has
+    as many intervening offsets as its lag (none for the baseline).  A
+    flipped answer leaves no such trace in its row: only replaying the
+    tracks (``--resume`` does) shows it.
+    """
+    ck = _Checker(raw, source, names)
+    observer, session = _text(raw["observer"]), _text(raw.get("session", pd.Series("", index=raw.index)))
+    if "reference_deg" in raw.columns:
+        reference = ck.number("reference_deg", allow_empty=True)
+        key = observer + "\0" + session
+        known = reference.notna()
+        first = reference[known].groupby(key[known]).transform("first").reindex(reference.index)
+        bad = _first_bad(known & ~np.isclose(reference, first, rtol=0, atol=1e-9))
+        if bad is not None:
+            ck.fail(bad, "reference_deg", f"{reference.iloc[bad]:g} deg, but the first row of session "
+                    f"{session.iloc[bad]} of {observer.iloc[bad]} has {first.iloc[bad]:g}: one "
+                    "session has one reference (an edited cell?)")
+        if "test_direction_deg" in raw.columns:
+            direction = ck.number("test_direction_deg", allow_empty=True)
+            expected = np.mod(reference - offset, 360.0)
+            apart = np.abs(np.mod(direction - expected + 180.0, 360.0) - 180.0)
+            bad = _first_bad(direction.notna() & known & (apart > DIRECTION_TOLERANCE_DEG))
+            if bad is not None:
+                ck.fail(bad, "test_direction_deg", f"{direction.iloc[bad]:g} deg, but reference_deg "
+                        f"{reference.iloc[bad]:g} and test_offset_deg {offset.iloc[bad]:g} give "
+                        f"{expected.iloc[bad]:g} (reference minus offset): the row disagrees with itself (an "
+                        "edited cell?)")
+    if "procedure" in raw.columns:
+        procedure = _text(raw["procedure"])
+        bad = _first_bad((procedure != "") & ((procedure == PRACTICE_PROCEDURE) != practice))
+        if bad is not None:
+            ck.fail(bad, "procedure", f"'{procedure.iloc[bad]}', but practice is "
+                    f"{int(practice.iloc[bad])}: practice rows, and only they, have procedure "
+                    f"'{PRACTICE_PROCEDURE}' (an edited cell?)")
+    if "intervening_offsets_deg" in raw.columns:
+        cells = _text(raw["intervening_offsets_deg"])
+        count = cells.map(lambda c: len(c.split(";")) if c else 0)
+        stream = _text(raw["block"]) == "stream" if "block" in raw.columns else pd.Series(False, index=raw.index)
+        bad = _first_bad(~stream & (count != lag.fillna(0)))
+        if bad is not None:
+            at, n = lag.iloc[bad], count.iloc[bad]
+            ck.fail(bad, "intervening_offsets_deg", f"{n} offset{'' if n == 1 else 's'}, but the row's lag is "
+                    f"{'empty (baseline: none)' if np.isnan(at) else f'{at:g}'}: one offset per intervening "
+                    "period (an edited cell?)")
+
+
 def read_log_table(path: Path) -> pd.DataFrame:
     """The rows of one log file as text, after the tail rules of :mod:`fitting.logfile`.
 
@@ -222,7 +286,10 @@ def read_log_table(path: Path) -> pd.DataFrame:
 def _read_file(path: Path) -> pd.DataFrame:
     source = str(path)
     raw = read_log_table(path)
-    return validate_trials(raw, source, [f"line {i + 2}" for i in range(len(raw))])
+    names = [f"line {i + 2}" for i in range(len(raw))]
+    trials = validate_trials(raw, source, names)
+    check_row_agreement(raw, source, names, trials["test_offset_deg"], trials["practice"], trials["lag"])
+    return trials
 
 
 def check_unique_trials(table: pd.DataFrame) -> None:

@@ -368,7 +368,8 @@ def test_points_left_out_of_the_statistics_are_drawn_hollow_and_off_the_scale_at
     assert LEFT_OUT_LABEL + BEYOND_LABEL in labels
     # and the report says what the hollow points are, beside the figure and in the points table
     page = (tmp_path / "cmp" / "report.html").read_text()
-    assert "hollow points (one-sided, or too few trials for an interval) are left out of" in page
+    assert ("hollow points (one-sided, too few trials for an interval, or a group cell of fewer than three "
+            "observers) are left out of") in page
     assert "in_statistics" in page
     # without a left-out point the figure is as before: no hollow point, no such legend entry
     kept = overlay_canvas(points[points["in_statistics"]])
@@ -420,12 +421,65 @@ def test_a_null_prediction_prints_its_chi2_and_the_promised_note(tmp_path, capsy
     assert "note: S1: every prediction over all lags is 0 (no after-effect), so the gain" in out
 
 
-def test_agreement_writes_true_and_false_as_fit_tables_do(tmp_path):
+def test_compare_writes_true_and_false_as_fit_tables_do(tmp_path):
     # fit's tables write booleans as true/false (fitting.tables.format_table); agreement.csv wrote False/True
     fit = _fit_folder(tmp_path, observers=("S1", "S2", "group"))
     compare_results(fit, tmp_path / "pred.csv", tmp_path / "cmp", figures=False)
-    table = pd.read_csv(tmp_path / "cmp" / "agreement.csv", dtype=str)
-    assert set(table["descriptive"]) == {"false"}
+    points = pd.read_csv(tmp_path / "cmp" / "comparison_points.csv", dtype=str)
+    assert set(points["in_statistics"]) == {"true"}
+
+
+@pytest.mark.slow
+def test_group_cells_of_fewer_than_three_observers_are_left_out_of_the_group_statistics(tmp_path, capsys):
+    # before (defect 5 of the hostile sweep): every group cell entered the group's gain, chi2 and "inside the CIs"
+    # (in_statistics true), two-observer cells with intervals of +-25 deg among them, and the group's line read
+    # "descriptive only (fewer than 3 observers)" for a group of 15
+    import statsmodels.api as sm
+
+    from fitting.compare import combine_gains
+
+    few = {("group", 2, o): "descriptive" for o in (-60.0, -30.0, 30.0, 60.0)}
+    fit = _fit_folder(tmp_path, observers=("S1", "S2", "S3", "group"), flags=few)
+    shifts = pd.read_csv(fit / "aftereffect.csv")
+    wide = shifts["flags"].fillna("").str.contains("descriptive")
+    shifts.loc[wide, ["pse_shift_deg", "ci_low", "ci_high"]] = [10.0, -15.0, 35.0]   # far off, and wide
+    noise = np.random.default_rng(1).normal(0.0, 0.3, len(shifts)) * (shifts["observer"] != "group")
+    shifts[["pse_shift_deg", "ci_low", "ci_high"]] += noise.to_numpy()[:, None]   # gains with an error
+    shifts.to_csv(fit / "aftereffect.csv", index=False)
+    assert main(["compare", str(fit), str(tmp_path / "pred.csv"), "--out", str(tmp_path / "cmp")]) == 0
+    line = next(x for x in capsys.readouterr().out.splitlines() if x.strip().startswith("group:"))
+    assert line.endswith("; 4 of 8 cells left out (descriptive: fewer than 3 observers; see note)"), line
+    points = pd.read_csv(tmp_path / "cmp" / "comparison_points.csv")
+    out = points[~points["in_statistics"]]
+    assert out[["observer", "lag"]].drop_duplicates().values.tolist() == [["group", 2]] and len(out) == 4
+    table = pd.read_csv(tmp_path / "cmp" / "agreement.csv").set_index(["observer", "lag"])
+    group = table.loc[("group", "all")]
+    assert ("group", "2") not in table.index and group["n_points"] == 4 and group["points_left_out"] == 4
+    # the group's chi2, RMSE and fraction inside the CIs are those of the group without those cells
+    shifts[~wide].to_csv(fit / "aftereffect.csv", index=False)
+    without = compare_results(fit, tmp_path / "pred.csv", tmp_path / "cmp2", figures=False).table
+    alone = without.set_index(["observer", "lag"]).loc[("group", "all")]
+    for column in ("chi2", "chi2_p", "rmse_deg", "inside_ci_fraction"):
+        assert group[column] == pytest.approx(alone[column], rel=1e-5), column
+    # its gain combines the observers' gains over the group's remaining cells (lag 0): each a weighted least
+    # squares fit through the origin with the variances as weights (statsmodels' WLS; the covariance is diagonal)
+    lag0 = points[(points["observer"] != "group") & (points["lag"] == 0)]
+    gains, ses = [], []
+    for _, rows in lag0.groupby("observer"):
+        se = (rows["ci_high"] - rows["ci_low"]) / (2 * Z)
+        wls = sm.WLS(rows["pse_shift_deg"].to_numpy(), rows[["predicted_deg"]].to_numpy(), weights=1 / se**2).fit()
+        gains.append(wls.params[0])
+        ses.append(wls.bse[0])
+    g, low, high = combine_gains(gains, ses)
+    assert [group["gain"], group["gain_ci_low"], group["gain_ci_high"]] == pytest.approx([g, low, high], rel=1e-5)
+    # every group cell of fewer than three observers: no group statistics, and the line says why
+    shifts.assign(flags=np.where(shifts["observer"] == "group", "descriptive", shifts["flags"])).to_csv(
+        fit / "aftereffect.csv", index=False)
+    assert main(["compare", str(fit), str(tmp_path / "pred.csv"), "--out", str(tmp_path / "cmp3")]) == 0
+    line = next(x for x in capsys.readouterr().out.splitlines() if x.strip().startswith("group:"))
+    assert line.strip() == ("group: no agreement statistics: all 8 cells left out (descriptive: fewer than 3 "
+                            "observers; see note)")
+    assert "group" not in set(pd.read_csv(tmp_path / "cmp3" / "agreement.csv")["observer"])
 
 
 def test_dense_prediction_tables_are_matched_as_the_scalar_rule_does_and_in_linear_time(tmp_path):

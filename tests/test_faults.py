@@ -325,6 +325,35 @@ def test_resume_refuses_a_row_whose_condition_cells_were_edited(capsys, tmp_path
     assert logs(out) == before
 
 
+#: Edits of line 11 (a main trial of adapt+30_lag2) that leave every cell plausible and the row at odds with itself,
+#: and the column fit names: direction = reference - offset (README, Conventions: directions counter-clockwise from
+#: rightward, offsets positive clockwise), one reference per session, procedure "practice" for practice rows only,
+#: one intervening offset per period of the lag.
+SELF_CONTRADICTIONS = [("test_offset_deg", lambda v: f"{float(v) + 1.5:g}", "test_direction_deg"),
+                       ("test_direction_deg", lambda v: f"{float(v) + 360.5:g}", "test_direction_deg"),
+                       ("reference_deg", lambda v: "91", "reference_deg"),
+                       ("procedure", lambda v: "practice", "procedure"),
+                       ("intervening_offsets_deg", lambda v: v.split(";")[0], "intervening_offsets_deg")]
+
+
+@pytest.mark.parametrize("column,edit,named", SELF_CONTRADICTIONS, ids=[c[0] for c in SELF_CONTRADICTIONS])
+def test_fit_refuses_a_row_that_disagrees_with_itself(capsys, tmp_path, whole, column, edit, named):
+    # before (defect 7 of the hostile sweep): a test offset edited from -5 to -3.5 while test_direction_deg still
+    # read 95 was fitted, exit 0, no note
+    out = _copy(whole, tmp_path / "o", rows=30, sidecar=False)
+    lines = (out / NAME).read_text().splitlines(keepends=True)
+    cells = lines[10].rstrip("\n").split(",")
+    assert cells[3] == "adapt+30_lag2" and cells[trial_log.COLUMNS.index("practice")] == "0"
+    cells[trial_log.COLUMNS.index(column)] = edit(cells[trial_log.COLUMNS.index(column)])
+    lines[10] = ",".join(cells) + "\n"
+    (out / NAME).write_text("".join(lines))
+    before = logs(out)
+    code, err = cli(capsys, "fit", out / NAME, "--out", tmp_path / "fit", "--bootstrap", "0", "--no-figures")
+    line = one_line(err)
+    assert code == 2 and NAME in line and "line 11" in line and f"column {named}" in line, line
+    assert logs(out) == before and not (tmp_path / "fit").exists()
+
+
 def test_a_resume_without_observers_continues_every_observer_in_the_folder(capsys, tmp_path, whole):
     # before, "continue with --resume" (the stop line's advice) finished sim01 only and left sim02 cut short,
     # exit 0: --observers defaulted to 1
@@ -646,6 +675,7 @@ def test_fit_refuses_offsets_outside_the_bounds_the_sidecar_records(capsys, tmp_
     text = (whole / NAME).read_text().splitlines(keepends=True)
     cells = text[30].split(",")
     cells[trial_log.COLUMNS.index("test_offset_deg")] = "31"  # pilot_short.toml: bounds_deg = [-30, 30]
+    cells[trial_log.COLUMNS.index("test_direction_deg")] = "59"  # the row agrees with itself (reference 90)
     text[30] = ",".join(cells)
     (tmp_path / NAME).write_text("".join(text))
     (tmp_path / SIDE).write_bytes((whole / SIDE).read_bytes())

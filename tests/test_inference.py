@@ -366,10 +366,12 @@ def test_compare_uses_the_covariance_file_and_refuses_a_corrupt_one(tmp_path, ca
     from runner.cli import main
 
     _degenerate_logs(tmp_path)
-    # D1's shifts are not usable for the group, so an ordinary observer makes the group's second one
+    # D1's shifts are not usable for the group, so two ordinary observers make a group of three, whose cells are
+    # not descriptive (compare leaves a group cell of fewer than three observers out of its statistics)
     model = ObserverModel(amplitude_deg=3.0, peak_offset_deg=25.0, decay_periods=2.0)
-    write_log(simulate_trials(model, offsets=(-30, 30), lags=(0,), trials_per_track=15, seed=6, observer="N1"),
-              tmp_path / "n1.trials.csv")
+    for seed, observer in ((6, "N1"), (7, "N2")):
+        write_log(simulate_trials(model, offsets=(-30, 30), lags=(0,), trials_per_track=15, seed=seed,
+                                  observer=observer), tmp_path / f"{observer.lower()}.trials.csv")
     fit_logs([str(tmp_path)], str(tmp_path / "out"), n_boot=100, seed=1, figures=False, progress=False)
     pd.DataFrame({"lag": [0, 0], "adapter_offset_deg": [-30, 30], "pse_shift_deg": [-1.0, 1.0]}).to_csv(
         tmp_path / "pred.csv", index=False)
@@ -377,7 +379,7 @@ def test_compare_uses_the_covariance_file_and_refuses_a_corrupt_one(tmp_path, ca
     table = pd.read_csv(tmp_path / "c" / "agreement.csv")
     assert set(table["covariance"]) == {"full"}
     # observers: chi2 / n read against F(n, spread_dof) (scipy.stats.f); the group: from groups simulated from
-    # R1 and N1, the observers whose shifts are usable (D1's, one-sided and few-trials, are left out)
+    # R1, N1 and N2, the observers whose shifts are usable (D1's, one-sided and few-trials, are left out)
     written = pd.read_csv(tmp_path / "out" / "aftereffect_covariance.csv")
     assert "D1" not in set(table["observer"])
     for row in table[(table["lag"] == "all") & table["chi2"].notna()].itertuples():
@@ -387,8 +389,8 @@ def test_compare_uses_the_covariance_file_and_refuses_a_corrupt_one(tmp_path, ca
         else:
             assert nu > 1 and row.chi2_reference == f"F({int(row.dof)}, {nu:.1f})"
             assert row.chi2_p == pytest.approx(stats.f.sf(row.chi2 / row.dof, row.dof, nu), rel=1e-4)
-    assert table.set_index("observer").loc["group", "descriptive"].all()      # two observers
-    assert "descriptive only" in capsys.readouterr().out
+    assert (table.set_index("observer").loc["group", "points_left_out"] == 0).all()      # three observers
+    assert "left out" not in next(x for x in capsys.readouterr().out.splitlines() if x.strip().startswith("group:"))
     cov = tmp_path / "out" / "aftereffect_covariance.csv"
     lines = cov.read_text().splitlines()
     cells = lines[1].split(",")
@@ -404,10 +406,12 @@ def test_compare_says_when_the_group_p_cannot_be_simulated(tmp_path):
     from fitting.compare import compare_results
 
     _degenerate_logs(tmp_path)
-    # D1's shifts are not usable for the group, so an ordinary observer makes the group's second one
+    # D1's shifts are not usable for the group, so two ordinary observers make a group of three, whose cells are
+    # not descriptive (compare leaves a group cell of fewer than three observers out of its statistics)
     model = ObserverModel(amplitude_deg=3.0, peak_offset_deg=25.0, decay_periods=2.0)
-    write_log(simulate_trials(model, offsets=(-30, 30), lags=(0,), trials_per_track=15, seed=6, observer="N1"),
-              tmp_path / "n1.trials.csv")
+    for seed, observer in ((6, "N1"), (7, "N2")):
+        write_log(simulate_trials(model, offsets=(-30, 30), lags=(0,), trials_per_track=15, seed=seed,
+                                  observer=observer), tmp_path / f"{observer.lower()}.trials.csv")
     fit_logs([str(tmp_path)], str(tmp_path / "out"), n_boot=100, seed=1, figures=False, progress=False)
     pd.DataFrame({"lag": [0, 0], "adapter_offset_deg": [-30, 30], "pse_shift_deg": [-1.0, 1.0]}).to_csv(
         tmp_path / "pred.csv", index=False)
