@@ -534,6 +534,8 @@ class Comparison:
             start = f"  {row['observer']:>8}: RMSE {row['rmse_deg']:.2f} deg, r {_shown(row['pearson_r'])}"
             left = _left_out_text(self.points, row["observer"])
             left = f"; {left}" if left else ""
+            if row["observer"] == GROUP and _described_only(self.points):
+                left += f"; descriptive only (fewer than {MIN_OBSERVERS_FOR_INFERENCE} observers)"
             if not np.isfinite(row["inside_ci_fraction"]):
                 lines.append(start + "; no interval statistics (see note)" + left)
                 continue
@@ -549,6 +551,12 @@ class Comparison:
                 + left
             )
         return "\n".join(lines + [f"note: {n}" for n in (*self.notes, CHI2_CAVEAT)])
+
+
+def _described_only(points: pd.DataFrame) -> bool:
+    """True when every group cell rests on fewer than three observers (flagged :data:`FEW_OBSERVERS`)."""
+    flags = points.loc[points["observer"] == GROUP, "flags"] if "flags" in points else pd.Series(dtype=object)
+    return len(flags) > 0 and all(isinstance(f, str) and FEW_OBSERVERS in f.split() for f in flags)
 
 
 def _left_out_text(points: pd.DataFrame, observer) -> str:
@@ -702,7 +710,9 @@ def few_observer_cells(points: pd.DataFrame) -> tuple[np.ndarray, tuple[str, ...
     its interval describes those observers, it is no inference about a
     population, and with two observers it is often tens of degrees wide, so
     it would pass any prediction.  Such cells are left out of every agreement
-    statistic of the group, its gain included (:func:`_group_gain`).
+    statistic of the group, its gain included (:func:`_group_gain`), unless
+    every cell is one (a group of fewer than three observers): then the
+    statistics are kept and labelled descriptive only.
 
     Returns
     -------
@@ -717,9 +727,9 @@ def few_observer_cells(points: pd.DataFrame) -> tuple[np.ndarray, tuple[str, ...
         return left_out, ()
     why = (f"rest on fewer than {MIN_OBSERVERS_FOR_INFERENCE} observers (flagged {FEW_OBSERVERS}: their intervals "
            "describe those observers, they are not inference about a population)")
-    if left_out.sum() == mine.sum():
-        return left_out, (f"{GROUP}: all {int(mine.sum())} of its cells {why}, so the group is left out of chi2, gain "
-                          "and the other agreement statistics; read the observers' own rows",)
+    if left_out.sum() == mine.sum():      # a group of fewer than three observers: described, not left out
+        return np.zeros_like(left_out), (f"{GROUP}: every cell {why.replace('rest on', 'rests on', 1)}; so are its "
+                                          "agreement statistics, which are descriptive only",)
     cells = [f"lag {points['lag'].iloc[i]:g} offset {points['adapter_offset_deg'].iloc[i]:+g}"
              for i in np.flatnonzero(left_out)]
     shown = ", ".join(cells[:4]) + (f" and {len(cells) - 4} more" if len(cells) > 4 else "")

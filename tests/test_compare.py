@@ -472,14 +472,18 @@ def test_group_cells_of_fewer_than_three_observers_are_left_out_of_the_group_sta
         ses.append(wls.bse[0])
     g, low, high = combine_gains(gains, ses)
     assert [group["gain"], group["gain_ci_low"], group["gain_ci_high"]] == pytest.approx([g, low, high], rel=1e-5)
-    # every group cell of fewer than three observers: no group statistics, and the line says why
+    # every group cell of fewer than three observers (a group of two): its statistics are kept, labelled
+    # descriptive only, as issue 12 asks; none of its cells is left out
     shifts.assign(flags=np.where(shifts["observer"] == "group", "descriptive", shifts["flags"])).to_csv(
         fit / "aftereffect.csv", index=False)
     assert main(["compare", str(fit), str(tmp_path / "pred.csv"), "--out", str(tmp_path / "cmp3")]) == 0
-    line = next(x for x in capsys.readouterr().out.splitlines() if x.strip().startswith("group:"))
-    assert line.strip() == ("group: no agreement statistics: all 8 cells left out (descriptive: fewer than 3 "
-                            "observers; see note)")
-    assert "group" not in set(pd.read_csv(tmp_path / "cmp3" / "agreement.csv")["observer"])
+    out = capsys.readouterr().out
+    line = next(x for x in out.splitlines() if x.strip().startswith("group:"))
+    assert line.endswith("; descriptive only (fewer than 3 observers)") and "left out" not in line, line
+    assert "group: every cell rest on fewer than 3 observers" not in out            # (grammar of the note below)
+    assert "note: group: every cell rests on fewer than 3 observers" in out
+    described = pd.read_csv(tmp_path / "cmp3" / "agreement.csv").set_index(["observer", "lag"]).loc[("group", "all")]
+    assert described["points_left_out"] == 0 and np.isfinite(described["chi2"])
 
 
 def test_dense_prediction_tables_are_matched_as_the_scalar_rule_does_and_in_linear_time(tmp_path):
