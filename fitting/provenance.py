@@ -157,17 +157,30 @@ def protocol_settings(text: str) -> dict | None:
     return settings
 
 
+def _as_floats(value):
+    """``value`` with every number a float (TOML reads ``5`` and ``5.0`` as int and float; one setting to a session)."""
+    if isinstance(value, dict):
+        return {key: _as_floats(v) for key, v in value.items()}
+    if isinstance(value, list):
+        return [_as_floats(v) for v in value]
+    return float(value) if isinstance(value, int) and not isinstance(value, bool) else value
+
+
 def _first_difference(a, b, where: str = "") -> str:
     """The first setting (dotted name) whose value differs between two settings tables, with both values."""
     if isinstance(a, dict) and isinstance(b, dict):
         for key in sorted(set(a) | set(b)):
-            if a.get(key, _ABSENT) != b.get(key, _ABSENT):
+            if _as_floats(a.get(key, _ABSENT)) != _as_floats(b.get(key, _ABSENT)):
                 return _first_difference(a.get(key, _ABSENT), b.get(key, _ABSENT), f"{where}.{key}".lstrip("."))
-    shown = ["(absent)" if v is _ABSENT else json.dumps(v, default=str)[:40] for v in (a, b)]
+    shown = ["(absent)" if v is _ABSENT else _cut(json.dumps(v, default=str)) for v in (a, b)]
     return f"{where}: {shown[0]} against {shown[1]}"
 
 
 _ABSENT = object()
+
+
+def _cut(text: str, size: int = 40) -> str:
+    return text if len(text) <= size else text[: size - 1] + "…"
 
 
 def protocol_by_observer(sessions, protocols: dict) -> dict[str, str]:
@@ -205,7 +218,8 @@ def protocol_by_observer(sessions, protocols: dict) -> dict[str, str]:
     settings: dict[str, dict | None] = {}
     for sha, record in protocols.items():
         settings[sha] = protocol_settings((record or {}).get("text") or "") if (record or {}).get("text") else None
-        identity[sha] = json.dumps(settings[sha], sort_keys=True, default=str) if settings[sha] is not None else sha
+        identity[sha] = (json.dumps(_as_floats(settings[sha]), sort_keys=True, default=str) if settings[sha] is not None
+                         else sha)
     first: dict[str, dict] = {}
     for s in sessions:
         sha = s.get("protocol_sha256")

@@ -382,6 +382,26 @@ def _check_conditions(trials: pd.DataFrame) -> None:
                                  f"{obs} both have adapter offset {k[0]:g} and lag {k[1]:g}")
 
 
+def _check_one_period(trials: pd.DataFrame) -> None:
+    """Within an observer, one motion period: sessions of protocols with other periods are not pooled.
+
+    The sidecars say which protocol each session ran
+    (:func:`fitting.provenance.protocol_by_observer` refuses an observer's
+    sessions of different protocols); the log's own ``period_s`` says it
+    too, also for a log whose sidecar is missing.
+    """
+    timed = trials[trials["period_s"].notna()]
+    first = timed.groupby("observer", sort=False)["period_s"].transform("first")
+    bad = np.flatnonzero(~np.isclose(timed["period_s"], first, rtol=1e-9, atol=1e-12))
+    if bad.size:
+        row = timed.iloc[bad[0]]
+        was = timed[timed["observer"] == row["observer"]].iloc[0]
+        raise InputError(row["source"], f"{row['line']}, column period_s",
+                         f"{row['period_s']:g} s, but observer {row['observer']}'s {was['line']} of {was['source']} "
+                         f"has {was['period_s']:g} s: sessions of protocols with other motion periods would be pooled "
+                         "into one PSE per condition; fit each protocol's logs on their own")
+
+
 def exclude(trials: pd.DataFrame, include_bad_timing: bool = False,
             include_practice: bool = False):
     """Drop practice, bad-timing and missed trials; count them per observer.
@@ -441,6 +461,7 @@ def read_logs(paths, include_bad_timing: bool = False, include_practice: bool = 
     check_unique_trials(trials)
     check_offsets(trials)
     _check_conditions(trials)
+    _check_one_period(trials)
     kept, counts = exclude(trials, include_bad_timing, include_practice)
     if kept.empty:
         raise InputError(str(files[0]) if len(files) == 1 else "logs", "",

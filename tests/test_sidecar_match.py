@@ -264,11 +264,40 @@ def test_one_observers_sessions_of_two_protocols_are_refused_naming_both(capsys,
     # and so are sessions of a protocol file edited only in its comments, layout and title: the same settings
     side = tmp_path / "same" / "sim01-s2.session.json"
     meta = json.loads(side.read_text())
-    text = "# edited after session s1\n" + meta["protocol"]["text"].replace("title = ", "title   =  'x' #", 1)
+    # (and 5.0 written 5: TOML reads an int, the same setting; before, refused with a garbled "differ in : {...")
+    assert "speed_deg_s = 5.0\n" in meta["protocol"]["text"]
+    text = "# edited after session s1\n" + meta["protocol"]["text"].replace("title = ", "title   =  'x' #", 1).replace(
+        "speed_deg_s = 5.0\n", "speed_deg_s = 5\n")
     meta["protocol"].update(text=text, sha256=hashlib.sha256(text.encode()).hexdigest())
     side.write_text(json.dumps(meta))
     check_sidecars(sorted((tmp_path / "same").glob("*.trials.csv")))
     fit_logs([str(tmp_path / "same")], str(tmp_path / "same_fit"), n_boot=0, figures=False, progress=False)
+
+
+@pytest.mark.slow
+def test_sessions_of_other_motion_periods_are_refused_without_a_sidecar(capsys, sessions, tmp_path):
+    # before: with the second session's sidecar missing (moved away, never copied) the check of the sidecars'
+    # protocols could not see it, and sessions of 0.5 s and 1 s periods were pooled into one PSE per condition
+    # (a hostile-user sweep); the log's own period_s column says so
+    folder = tmp_path / "logs"
+    folder.mkdir()
+    _as_session(sessions["pilot"] / "sim01-s1.trials.csv", folder, "s1")
+    log = _as_session(sessions["pilot"] / "sim02-s1.trials.csv", folder, "s2")
+    log.with_name("sim01-s2.session.json").unlink()
+    lines = log.read_text().splitlines(keepends=True)
+    at = lines[0].rstrip("\n").split(",").index("period_s")
+
+    def longer(line):
+        cells = line.rstrip("\n").split(",")
+        cells[at] = "1" if cells[at] else ""
+        return ",".join(cells) + "\n"
+
+    log.write_text(lines[0] + "".join(map(longer, lines[1:])))
+    code, err = cli(capsys, "fit", folder, "--out", tmp_path / "fit", "--bootstrap", "20", "--no-figures")
+    assert code == 2 and one_line(err).startswith(f"aftershift: {log}: line 2, column period_s: 1 s, but observer "
+                                                  "sim01's line 2 of "), err
+    assert "0.5 s: sessions of protocols with other motion periods would be pooled" in err
+    assert not (tmp_path / "fit").exists()
 
 
 @pytest.mark.slow
