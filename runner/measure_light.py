@@ -169,20 +169,34 @@ class ReadingsLog:
 
 #: psychopy key names and the characters they type into a reading: digits and the decimal point (or comma) ...
 TYPED = {**{str(d): str(d) for d in range(10)}, **{f"num_{d}": str(d) for d in range(10)},
-         "period": ".", "num_decimal": ".", "comma": ","}
-#: ... and what else a reading might be typed with, kept so that it is refused as typed: dropped, "-5" was
-#: read as 5 cd/m2 and "1e308" as 1308 (letters have names of one character).
-_OTHER_CHARACTERS = {"minus": "-", "num_subtract": "-", "plus": "+", "num_add": "+", "space": " ", "slash": "/",
-                     "num_divide": "/", "num_multiply": "*", "equal": "=", "apostrophe": "'"}
+         "period": ".", "num_decimal": ".", "comma": ",", "num_separator": ","}   # the keypad's: a decimal comma
+#: ... and keys that type nothing (modifiers, moving, the keys the screen itself reads).  Every other key is kept
+#: in the reading, as itself or as "?", so that a reading typed with it is refused: dropped, "-5" was read as
+#: 5 cd/m2 and "1e308" as 1308.
+NOT_TYPING = frozenset({"lshift", "rshift", "shift", "lctrl", "rctrl", "ctrl", "lalt", "ralt", "alt", "lmeta",
+                        "rmeta", "lwindows", "rwindows", "lcommand", "rcommand", "loption", "roption", "capslock",
+                        "numlock", "scrolllock", "menu", "function", "tab", "left", "right", "up", "down", "home",
+                        "end", "pageup", "pagedown", "insert", "delete", "escape", "return", "num_enter",
+                        "backspace", *(f"f{i}" for i in range(1, 25))})
+_NAMED = {"minus": "-", "num_subtract": "-", "plus": "+", "num_add": "+", "space": " ", "slash": "/",
+          "num_divide": "/", "num_multiply": "*", "equal": "=", "num_equal": "=", "apostrophe": "'",
+          "semicolon": ";", "colon": ":"}
 
 
 def typed_character(key: str) -> str:
-    """The character the key ``key`` (a psychopy key name) types into a reading; "" for keys that type none."""
+    """The character the key ``key`` (a psychopy key name) types into a reading; "" for keys that type none.
+
+    Digits, the decimal point and comma type themselves; a key that types
+    nothing (:data:`NOT_TYPING`) gives ""; any other key gives its character
+    (or "?"), which makes the reading refused rather than silently shortened.
+    """
     if key in TYPED:
         return TYPED[key]
-    if key in _OTHER_CHARACTERS:
-        return _OTHER_CHARACTERS[key]
-    return key if len(key) == 1 and key.isprintable() else ""
+    if key in NOT_TYPING:
+        return ""
+    if len(key) == 1 and key.isprintable():
+        return key
+    return _NAMED.get(key, "?")
 
 
 def parse_reading(text: str) -> float | None:

@@ -651,6 +651,9 @@ def test_a_luminance_just_beyond_the_profile_shows_the_digits_that_put_it_beyond
     (["1", "e", "3", "0", "8"], None),                  # before: 1308 cd/m2 saved
     (["a", "b", "c"], None),                            # before: reported as '' (nothing typed)
     (["lshift", "7"], 7.0),                             # keys that type nothing stay out of the reading
+    (["num_1", "num_separator", "num_5"], 1.5),         # the keypad's separator: a decimal comma (was dropped: 15)
+    (["1", "semicolon", "5"], None),                    # before: 15 cd/m2
+    (["1", "bracketleft", "5"], None),                  # a key of any other name: before, dropped
 ])
 def test_a_typed_reading_is_what_its_keys_typed(keys, reading):
     # the measurement screen (runner/display/light_meter.py) builds the reading from the key names psychopy
