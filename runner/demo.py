@@ -21,13 +21,14 @@ is writing into.
 
 from __future__ import annotations
 
+import hashlib
 import json
 import shutil
 from contextlib import contextmanager
 from pathlib import Path
 
 from fitting.errors import InputError
-from fitting.outputs import MANIFEST, PENDING, STAGING_PREFIX, check_out_dir, read_manifest
+from fitting.outputs import MANIFEST, PENDING, STAGING_PREFIX, check_out_dir, read_manifest, write_atomic
 from runner.folder_claim import CLAIM_FILE, FolderClaim
 from runner.trial_log import StorageError
 
@@ -40,10 +41,37 @@ N_OBSERVERS = 3
 N_BOOT = 1000
 
 
+#: The list of the files a finished demo wrote, with their SHA-256: what a rerun may replace.
+FILE_LIST = ".demo-files.json"
 #: What a demo writes at the top of its folder; the tables of ``fit`` and ``compare`` are listed in their manifests.
-_TOP = (DEMO_MARK, CLAIM_FILE, "logs", "fit", "compare", "predictions_population_model.csv")
+_TOP = (DEMO_MARK, CLAIM_FILE, FILE_LIST, "logs", "fit", "compare", "predictions_population_model.csv")
 #: The simulated observers' log, sidecar and lock (and their ``.tmp`` while written) start with these.
 _LOG_STEMS = tuple(f"sim{i:02d}-s1." for i in range(1, N_OBSERVERS + 1))
+
+
+def _digest(path: Path) -> str:
+    return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+def _written(out: Path) -> list[Path]:
+    """Every file below ``out`` but the claim's file, the mark and the list (links too: never the demo's)."""
+    own = {out / CLAIM_FILE, out / DEMO_MARK, out / FILE_LIST}
+    return [p for p in sorted(out.rglob("*")) if p not in own and (p.is_symlink() or not p.is_dir())]
+
+
+def _write_file_list(out: Path) -> None:
+    """Record what this demo wrote (:data:`FILE_LIST`), once it has written everything."""
+    files = {p.relative_to(out).as_posix(): _digest(p) for p in _written(out)}
+    write_atomic(out / FILE_LIST, (json.dumps({"files": files}, indent=1, sort_keys=True) + "\n").encode("utf-8"))
+
+
+def _file_list(out: Path) -> dict | None:
+    """The files a finished demo wrote, by SHA-256; None without a readable list (a demo killed, or older)."""
+    try:
+        files = json.loads((out / FILE_LIST).read_text(encoding="utf-8"))["files"]
+    except (OSError, ValueError, KeyError, TypeError):
+        return None
+    return files if isinstance(files, dict) else None
 
 
 def _command_files(folder: Path) -> list[Path]:
@@ -53,21 +81,22 @@ def _command_files(folder: Path) -> list[Path]:
         own |= set(json.loads((folder / PENDING).read_text(encoding="utf-8")).get("files", []))
     except (OSError, ValueError, AttributeError, TypeError):
         pass
+    temporary = (f".{MANIFEST}.", f".{PENDING}.", STAGING_PREFIX)   # outputs.write_atomic's, a set being staged
     found = []
     for path in sorted(folder.rglob("*")):
         rel = path.relative_to(folder)
-        if rel.parts[0].startswith(STAGING_PREFIX) or (path.is_dir() and not path.is_symlink()):
+        if rel.parts[0].startswith(temporary) or (path.is_dir() and not path.is_symlink()):
             continue
         if path.is_symlink() or rel.as_posix() not in own:
             found.append(path)
     return found
 
 
-def _not_the_demos(out: Path) -> Path | None:
-    """The first file or folder in the earlier demo's ``out`` that no demo writes; None if there is none."""
+def _unfinished_demo_extra(out: Path) -> Path | None:
+    """In a demo folder without a file list, the first entry that this version's demo does not write."""
     for entry in sorted(out.iterdir()):
-        if entry.name not in _TOP or entry.is_symlink():
-            return entry
+        if (entry.name not in _TOP and not entry.name.startswith(f".{FILE_LIST}.")) or entry.is_symlink():
+            return entry        # (a list being written when the demo was killed: write_atomic's temporary file)
     logs = out / "logs"
     if logs.is_dir():
         for entry in sorted(logs.iterdir()):
@@ -78,6 +107,27 @@ def _not_the_demos(out: Path) -> Path | None:
             found = _command_files(out / name)
             if found:
                 return found[0]
+    return None
+
+
+def _not_the_demos(out: Path) -> str | None:
+    """Words naming the first file in the earlier demo's ``out`` that a rerun may not replace; None if none.
+
+    With the list of a finished demo (:data:`FILE_LIST`), every file must be
+    on it with the bytes the demo wrote: a fit of one's own written into
+    ``fit/`` has a manifest as the demo's has, but not its bytes.  Without
+    one (a demo killed before it finished, or one older than the list), the
+    names this version's demo writes (:func:`_unfinished_demo_extra`).
+    """
+    listed = _file_list(out)
+    if listed is None:
+        extra = _unfinished_demo_extra(out)
+        return None if extra is None else (f"{extra.relative_to(out)}, which this version's demo does not write (if "
+                                           "an older demo wrote it, remove the folder yourself)")
+    for path in _written(out):
+        rel = path.relative_to(out).as_posix()
+        if path.is_symlink() or not path.is_file() or listed.get(rel) != _digest(path):
+            return f"{rel}, which is not as the demo wrote it (a file of yours, or one changed since)"
     return None
 
 
@@ -92,8 +142,8 @@ def _refuse_foreign(out: Path) -> None:
         return
     other = _not_the_demos(out)
     if other is not None:
-        raise InputError(str(out), "--out", f"holds an earlier demo and {other.relative_to(out)}, which no demo "
-                         "writes; the demo replaces only its own output: move that away or choose another folder")
+        raise InputError(str(out), "--out", f"holds an earlier demo and {other}; the demo replaces only its own "
+                         "output: move that away or choose another folder")
 
 
 @contextmanager
@@ -198,4 +248,5 @@ def _run(out: Path, progress: bool | None) -> Path:
     predictions.to_csv(out / "predictions_population_model.csv", index=False, float_format="%.6f")
     with phase("comparing with the population model", show=progress):
         comparison = compare_results(out / "fit", out / "predictions_population_model.csv", out / "compare")
+    _write_file_list(out)
     return comparison.page

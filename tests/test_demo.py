@@ -211,6 +211,8 @@ def _earlier_demo(folder: Path) -> None:
     (folder / "fit" / ".staging-123-ab" / "tuning.csv").write_text("new\n")
     (folder / "compare").mkdir()
     (folder / "compare" / ".outputs-pending.json").write_text('{"stage": ".staging-9-x", "files": ["agreement.csv"]}')
+    (folder / "fit" / "..outputs-pending.json.k3x9a1").write_text('{"sta')     # killed while its journal was written
+    (folder / "..demo-files.json.p2q7zz").write_text('{"fi')                    # ... or the demo's list of files
     (folder / "compare" / "agreement.csv").write_text("moved in before a kill\n")
     (folder / DEMO_MARK).write_text("mark\n")
 
@@ -234,8 +236,34 @@ def test_a_file_no_demo_writes_in_an_earlier_demos_folder_is_refused_and_kept(ca
     before = {p: p.read_bytes() for p in out.rglob("*") if p.is_file() and p.name != ".lock"}
     code, err = cli(capsys, "demo", "--out", out)
     named = theirs if theirs.split("/")[0] in ("logs", "fit", "compare") else theirs.split("/")[0]   # "mine"
-    assert code == 2 and f"and {named}, which no demo writes" in one_line(err) and "--out" in err
+    assert code == 2 and f"and {named}, which this version's demo does not write" in one_line(err) and "--out" in err
     assert {p: p.read_bytes() for p in out.rglob("*") if p.is_file() and p.name != ".lock"} == before
+
+
+@pytest.mark.parametrize("change", ["fit/pse.csv", "logs/sim02-s1.notes.txt", "fit/.staging-mine/a.csv",
+                                    "predictions_population_model.csv"])
+def test_a_finished_demo_is_replaced_only_with_the_bytes_it_wrote(capsys, tmp_path, change):
+    # before: a fit of the user's written into OUT/fit (whose manifest looks like the demo's), notes beside the
+    # logs and a folder named like fit's staging were replaced without a word (a hostile-user sweep); a finished
+    # demo lists its files with their SHA-256, and a rerun replaces only those bytes
+    from fault_helpers import cli, one_line
+    from runner.demo import FILE_LIST, _claimed, _write_file_list
+
+    out = tmp_path / "d"
+    _earlier_demo(out)
+    _write_file_list(out)
+    with _claimed(out):                                 # as listed: replaced
+        assert sorted(p.name for p in out.iterdir()) == [".lock", "DEMO_OUTPUT"]
+    _earlier_demo(out)
+    _write_file_list(out)
+    path = out / change
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_text("theirs\n")                        # a new file, or the demo's own one rewritten
+    before = {p: p.read_bytes() for p in out.rglob("*") if p.is_file() and p.name != ".lock"}
+    code, err = cli(capsys, "demo", "--out", out)
+    assert code == 2 and f"and {change}, which is not as the demo wrote it" in one_line(err), err
+    assert {p: p.read_bytes() for p in out.rglob("*") if p.is_file() and p.name != ".lock"} == before
+    assert (out / FILE_LIST).is_file()
 
 
 def test_an_out_linked_to_an_earlier_demo_is_replaced_through_the_link(tmp_path):
