@@ -94,6 +94,7 @@ MEASURED_COLUMNS = ("observer", "lag", "adapter_offset_deg", "pse_shift_deg", "c
 AGREEMENT_COLUMNS = (
     "observer", "lag", "n_points", "rmse_deg", "pearson_r", "gain", "gain_ci_low", "gain_ci_high",
     "chi2", "dof", "chi2_p", "chi2_reference", "inside_ci_fraction", "gain_unweighted", "covariance", "points_left_out",
+    "descriptive",
 )
 COVARIANCE_FILE = "aftereffect_covariance.csv"
 
@@ -534,7 +535,7 @@ class Comparison:
             start = f"  {row['observer']:>8}: RMSE {row['rmse_deg']:.2f} deg, r {_shown(row['pearson_r'])}"
             left = _left_out_text(self.points, row["observer"])
             left = f"; {left}" if left else ""
-            if row["observer"] == GROUP and _described_only(self.points):
+            if row["descriptive"]:
                 left += f"; descriptive only (fewer than {MIN_OBSERVERS_FOR_INFERENCE} observers)"
             if not np.isfinite(row["inside_ci_fraction"]):
                 lines.append(start + "; no interval statistics (see note)" + left)
@@ -733,7 +734,10 @@ def few_observer_cells(points: pd.DataFrame) -> tuple[np.ndarray, tuple[str, ...
     cells = [f"lag {points['lag'].iloc[i]:g} offset {points['adapter_offset_deg'].iloc[i]:+g}"
              for i in np.flatnonzero(left_out)]
     shown = ", ".join(cells[:4]) + (f" and {len(cells) - 4} more" if len(cells) > 4 else "")
-    return left_out, (f"{GROUP}: {len(cells)} of {int(mine.sum())} cells {why} and are left out of the group's chi2, "
+    if len(cells) == 1:
+        why = why.replace("rest on", "rests on", 1)
+    return left_out, (f"{GROUP}: {len(cells)} of {int(mine.sum())} cells {why} and {'is' if len(cells) == 1 else 'are'} "
+                      "left out of the group's chi2, "
                       "gain (the observers' gains are combined over the other cells) and the other agreement "
                       f"statistics: {shown}",)
 
@@ -895,6 +899,7 @@ def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figure
     left_out, estimable_notes = not_estimable(points)
     few, few_notes = few_observer_cells(points)
     left_out |= few
+    described = _described_only(points)     # a group of fewer than three observers: its statistics describe them
     points["in_statistics"] = ~left_out          # the figure draws the others hollow
     used = points[~left_out]
     rows, fallback = [], ()
@@ -921,7 +926,8 @@ def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figure
                     a = replace(a, gain=gain, gain_ci_low=low, gain_ci_high=high)
             part = mine if lag == "all" else mine & (points["lag"].map("{:g}".format) == lag)
             rows.append({"observer": observer, "lag": lag, **a.__dict__,
-                         "points_left_out": int((part & left_out).sum())})
+                         "points_left_out": int((part & left_out).sum()),
+                         "descriptive": observer == GROUP and described})
     table = pd.DataFrame(rows, columns=AGREEMENT_COLUMNS)
     table.loc[table["observer"].isin(too_few), ["gain", "gain_ci_low", "gain_ci_high", "chi2", "chi2_p",
                                                 "chi2_reference"]] = np.nan

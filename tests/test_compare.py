@@ -484,6 +484,8 @@ def test_group_cells_of_fewer_than_three_observers_are_left_out_of_the_group_sta
     assert "note: group: every cell rests on fewer than 3 observers" in out
     described = pd.read_csv(tmp_path / "cmp3" / "agreement.csv").set_index(["observer", "lag"]).loc[("group", "all")]
     assert described["points_left_out"] == 0 and np.isfinite(described["chi2"])
+    # and the table says so too (before, only the console and the page did; a sweep found agreement.csv unmarked)
+    assert described["descriptive"] and not group["descriptive"]
 
 
 def test_dense_prediction_tables_are_matched_as_the_scalar_rule_does_and_in_linear_time(tmp_path):
