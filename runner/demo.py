@@ -21,14 +21,15 @@ is writing into.
 
 from __future__ import annotations
 
-import hashlib
 import json
+import re
 import shutil
 from contextlib import contextmanager
 from pathlib import Path
 
 from fitting.errors import InputError
-from fitting.outputs import MANIFEST, PENDING, STAGING_PREFIX, check_out_dir, read_manifest, write_atomic
+from fitting.outputs import MANIFEST, PENDING, STAGING_PREFIX, check_out_dir, read_manifest
+from fitting.provenance import REPORT_DATA
 from runner.folder_claim import CLAIM_FILE, FolderClaim
 from runner.trial_log import StorageError
 
@@ -41,37 +42,15 @@ N_OBSERVERS = 3
 N_BOOT = 1000
 
 
-#: The list of the files a finished demo wrote, with their SHA-256: what a rerun may replace.
-FILE_LIST = ".demo-files.json"
 #: What a demo writes at the top of its folder; the tables of ``fit`` and ``compare`` are listed in their manifests.
-_TOP = (DEMO_MARK, CLAIM_FILE, FILE_LIST, "logs", "fit", "compare", "predictions_population_model.csv")
-#: The simulated observers' log, sidecar and lock (and their ``.tmp`` while written) start with these.
-_LOG_STEMS = tuple(f"sim{i:02d}-s1." for i in range(1, N_OBSERVERS + 1))
-
-
-def _digest(path: Path) -> str:
-    return hashlib.sha256(path.read_bytes()).hexdigest()
-
-
-def _written(out: Path) -> list[Path]:
-    """Every file below ``out`` but the claim's file, the mark and the list (links too: never the demo's)."""
-    own = {out / CLAIM_FILE, out / DEMO_MARK, out / FILE_LIST}
-    return [p for p in sorted(out.rglob("*")) if p not in own and (p.is_symlink() or not p.is_dir())]
-
-
-def _write_file_list(out: Path) -> None:
-    """Record what this demo wrote (:data:`FILE_LIST`), once it has written everything."""
-    files = {p.relative_to(out).as_posix(): _digest(p) for p in _written(out)}
-    write_atomic(out / FILE_LIST, (json.dumps({"files": files}, indent=1, sort_keys=True) + "\n").encode("utf-8"))
-
-
-def _file_list(out: Path) -> dict | None:
-    """The files a finished demo wrote, by SHA-256; None without a readable list (a demo killed, or older)."""
-    try:
-        files = json.loads((out / FILE_LIST).read_text(encoding="utf-8"))["files"]
-    except (OSError, ValueError, KeyError, TypeError):
-        return None
-    return files if isinstance(files, dict) else None
+_TOP_FOLDERS, _TOP_FILES = ("logs", "fit", "compare"), (DEMO_MARK, CLAIM_FILE, "predictions_population_model.csv")
+#: The simulated observers' files in ``logs/``: log, sidecar, lock, and the ``.tmp`` each is written through.
+_LOG_FILES = frozenset(f"sim{i:02d}-s1.{kind}{tmp}" for i in range(1, N_OBSERVERS + 1)
+                       for kind in ("trials.csv", "session.json", "lock") for tmp in ("", ".tmp"))
+#: A set being staged by ``fit`` or ``compare`` (``fitting.outputs``: ``.staging-PID-RANDOM``).
+_STAGING = re.compile(re.escape(STAGING_PREFIX) + r"\d+-")
+#: Where the demo's ``compare`` read its predictions from, as ``predictions_source.txt`` says it.
+_PREDICTIONS_SOURCE = "../predictions_population_model.csv\n"
 
 
 def _command_files(folder: Path) -> list[Path]:
@@ -81,53 +60,55 @@ def _command_files(folder: Path) -> list[Path]:
         own |= set(json.loads((folder / PENDING).read_text(encoding="utf-8")).get("files", []))
     except (OSError, ValueError, AttributeError, TypeError):
         pass
-    temporary = (f".{MANIFEST}.", f".{PENDING}.", STAGING_PREFIX)   # outputs.write_atomic's, a set being staged
+    temporary = (f".{MANIFEST}.", f".{PENDING}.")        # outputs.write_atomic's while a manifest or journal is written
     found = []
     for path in sorted(folder.rglob("*")):
         rel = path.relative_to(folder)
-        if rel.parts[0].startswith(temporary) or (path.is_dir() and not path.is_symlink()):
+        if rel.parts[0].startswith(temporary) or _STAGING.match(rel.parts[0]) or (path.is_dir() and not path.is_symlink()):
             continue
         if path.is_symlink() or rel.as_posix() not in own:
             found.append(path)
     return found
 
 
-def _unfinished_demo_extra(out: Path) -> Path | None:
-    """In a demo folder without a file list, the first entry that this version's demo does not write."""
+def _fitted_elsewhere(fit: Path) -> bool:
+    """True when ``fit``'s record names a log that is not one of the demo's (a fit of one's own written there)."""
+    try:
+        sessions = json.loads((fit / REPORT_DATA).read_text(encoding="utf-8"))["sessions"]
+        logs = [Path(str(s["log"])) for s in sessions]
+    except (OSError, ValueError, KeyError, TypeError):
+        return False            # no record (git leaves it out of a clone's results_demo): the names decide
+    return any(log.parent.name != "logs" or log.name not in _LOG_FILES for log in logs)
+
+
+def _not_the_demos(out: Path) -> Path | None:
+    """The first file or folder in the earlier demo's ``out`` that a demo does not write; None if none.
+
+    The names it writes: the top-level ones, the simulated observers' files
+    in ``logs/``, in ``fit/`` and ``compare/`` what their manifests and
+    move journals list, staging folders and temporary files; and a fit and
+    a comparison of its own (a fit of one's own written into ``fit/`` has a
+    manifest as the demo's has, but its record names other logs).
+    """
     for entry in sorted(out.iterdir()):
-        if (entry.name not in _TOP and not entry.name.startswith(f".{FILE_LIST}.")) or entry.is_symlink():
-            return entry        # (a list being written when the demo was killed: write_atomic's temporary file)
+        folder = entry.name in _TOP_FOLDERS and entry.is_dir()
+        if entry.is_symlink() or not (folder or entry.name in _TOP_FILES and entry.is_file()):
+            return entry
     logs = out / "logs"
     if logs.is_dir():
         for entry in sorted(logs.iterdir()):
-            if not entry.name.startswith(_LOG_STEMS) or entry.is_symlink() or entry.is_dir():
+            if entry.name not in _LOG_FILES or entry.is_symlink() or not entry.is_file():
                 return entry
     for name in ("fit", "compare"):
         if (out / name).is_dir():
             found = _command_files(out / name)
             if found:
                 return found[0]
-    return None
-
-
-def _not_the_demos(out: Path) -> str | None:
-    """Words naming the first file in the earlier demo's ``out`` that a rerun may not replace; None if none.
-
-    With the list of a finished demo (:data:`FILE_LIST`), every file must be
-    on it with the bytes the demo wrote: a fit of one's own written into
-    ``fit/`` has a manifest as the demo's has, but not its bytes.  Without
-    one (a demo killed before it finished, or one older than the list), the
-    names this version's demo writes (:func:`_unfinished_demo_extra`).
-    """
-    listed = _file_list(out)
-    if listed is None:
-        extra = _unfinished_demo_extra(out)
-        return None if extra is None else (f"{extra.relative_to(out)}, which this version's demo does not write (if "
-                                           "an older demo wrote it, remove the folder yourself)")
-    for path in _written(out):
-        rel = path.relative_to(out).as_posix()
-        if path.is_symlink() or not path.is_file() or listed.get(rel) != _digest(path):
-            return f"{rel}, which is not as the demo wrote it (a file of yours, or one changed since)"
+    if (out / "fit").is_dir() and _fitted_elsewhere(out / "fit"):
+        return out / "fit" / REPORT_DATA
+    source = out / "compare" / "predictions_source.txt"
+    if source.is_file() and source.read_text(encoding="utf-8", errors="replace") != _PREDICTIONS_SOURCE:
+        return source
     return None
 
 
@@ -142,8 +123,9 @@ def _refuse_foreign(out: Path) -> None:
         return
     other = _not_the_demos(out)
     if other is not None:
-        raise InputError(str(out), "--out", f"holds an earlier demo and {other}; the demo replaces only its own "
-                         "output: move that away or choose another folder")
+        raise InputError(str(out), "--out", f"holds an earlier demo and {other.relative_to(out)}, which is not the "
+                         "demo's (a file of yours, or an older demo's: then remove the folder yourself); the demo "
+                         "replaces only its own output: move that away or choose another folder")
 
 
 @contextmanager
@@ -248,5 +230,4 @@ def _run(out: Path, progress: bool | None) -> Path:
     predictions.to_csv(out / "predictions_population_model.csv", index=False, float_format="%.6f")
     with phase("comparing with the population model", show=progress):
         comparison = compare_results(out / "fit", out / "predictions_population_model.csv", out / "compare")
-    _write_file_list(out)
     return comparison.page

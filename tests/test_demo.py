@@ -206,13 +206,14 @@ def _earlier_demo(folder: Path) -> None:
     (folder / "fit" / "figures").mkdir(parents=True)
     for name in ("pse.csv", "figures/decay_sim01.png"):
         (folder / "fit" / name).write_text("old\n")
-    (folder / "fit" / "outputs.json").write_text('{"command": "fit", "files": ["pse.csv", "figures/decay_sim01.png"]}')
+    (folder / "fit" / "outputs.json").write_text('{"command": "fit", "files": ["pse.csv", "figures/decay_sim01.png", '
+                                                 '"report_data.json"]}')
     (folder / "fit" / ".staging-123-ab").mkdir()                                # a fit killed before its move
     (folder / "fit" / ".staging-123-ab" / "tuning.csv").write_text("new\n")
     (folder / "compare").mkdir()
+    (folder / "compare" / "outputs.json").write_text('{"command": "compare", "files": ["predictions_source.txt"]}')
     (folder / "compare" / ".outputs-pending.json").write_text('{"stage": ".staging-9-x", "files": ["agreement.csv"]}')
     (folder / "fit" / "..outputs-pending.json.k3x9a1").write_text('{"sta')     # killed while its journal was written
-    (folder / "..demo-files.json.p2q7zz").write_text('{"fi')                    # ... or the demo's list of files
     (folder / "compare" / "agreement.csv").write_text("moved in before a kill\n")
     (folder / DEMO_MARK).write_text("mark\n")
 
@@ -236,34 +237,50 @@ def test_a_file_no_demo_writes_in_an_earlier_demos_folder_is_refused_and_kept(ca
     before = {p: p.read_bytes() for p in out.rglob("*") if p.is_file() and p.name != ".lock"}
     code, err = cli(capsys, "demo", "--out", out)
     named = theirs if theirs.split("/")[0] in ("logs", "fit", "compare") else theirs.split("/")[0]   # "mine"
-    assert code == 2 and f"and {named}, which this version's demo does not write" in one_line(err) and "--out" in err
+    assert code == 2 and f"and {named}, which is not the demo's" in one_line(err) and "--out" in err
     assert {p: p.read_bytes() for p in out.rglob("*") if p.is_file() and p.name != ".lock"} == before
 
 
-@pytest.mark.parametrize("change", ["fit/pse.csv", "logs/sim02-s1.notes.txt", "fit/.staging-mine/a.csv",
-                                    "predictions_population_model.csv"])
-def test_a_finished_demo_is_replaced_only_with_the_bytes_it_wrote(capsys, tmp_path, change):
-    # before: a fit of the user's written into OUT/fit (whose manifest looks like the demo's), notes beside the
-    # logs and a folder named like fit's staging were replaced without a word (a hostile-user sweep); a finished
-    # demo lists its files with their SHA-256, and a rerun replaces only those bytes
+#: Files of one's own that look like a demo's, and what the refusal names.
+LOOKALIKES = {
+    "a fit of other logs": ("fit/report_data.json", '{"sessions": [{"log": "mine/sim01-s1.trials.csv"}]}'),
+    "notes beside the logs": ("logs/sim02-s1.notes.txt", "notes\n"),
+    "a copy of a log": ("logs/sim01-s1.trials.csv.orig", "observer\n"),
+    "a folder named like a staging one": ("fit/.staging-mine/a.csv", "a\n"),
+    "a comparison with other predictions": ("compare/predictions_source.txt", "../../mine.csv\n"),
+}
+
+
+@pytest.mark.parametrize("what", LOOKALIKES)
+def test_files_that_only_look_like_the_demos_are_refused_and_kept(capsys, tmp_path, what):
+    # before: a fit of the user's written into OUT/fit (whose manifest looks like the demo's), notes and copies
+    # beside the logs named like the demo's, and a folder named like fit's staging were deleted without a word
+    # (a hostile-user sweep)
     from fault_helpers import cli, one_line
-    from runner.demo import FILE_LIST, _claimed, _write_file_list
 
     out = tmp_path / "d"
     _earlier_demo(out)
-    _write_file_list(out)
-    with _claimed(out):                                 # as listed: replaced
-        assert sorted(p.name for p in out.iterdir()) == [".lock", "DEMO_OUTPUT"]
-    _earlier_demo(out)
-    _write_file_list(out)
-    path = out / change
-    path.parent.mkdir(parents=True, exist_ok=True)
-    path.write_text("theirs\n")                        # a new file, or the demo's own one rewritten
+    (out / "compare" / "predictions_source.txt").write_text("../predictions_population_model.csv\n")
+    (out / "fit" / "report_data.json").write_text('{"sessions": [{"log": "d/logs/sim01-s1.trials.csv"}]}')
+    name, text = LOOKALIKES[what]
+    (out / name).parent.mkdir(parents=True, exist_ok=True)
+    (out / name).write_text(text)
     before = {p: p.read_bytes() for p in out.rglob("*") if p.is_file() and p.name != ".lock"}
     code, err = cli(capsys, "demo", "--out", out)
-    assert code == 2 and f"and {change}, which is not as the demo wrote it" in one_line(err), err
+    assert code == 2 and f"and {name}, which is not the demo's" in one_line(err), err
     assert {p: p.read_bytes() for p in out.rglob("*") if p.is_file() and p.name != ".lock"} == before
-    assert (out / FILE_LIST).is_file()
+
+
+def test_an_earlier_demo_with_its_own_records_is_replaced(tmp_path):
+    # the positive control of the test above: the demo's own record and predictions source pass
+    from runner.demo import DEMO_MARK, _claimed
+
+    out = tmp_path / "d"
+    _earlier_demo(out)
+    (out / "compare" / "predictions_source.txt").write_text("../predictions_population_model.csv\n")
+    (out / "fit" / "report_data.json").write_text('{"sessions": [{"log": "d/logs/sim01-s1.trials.csv"}]}')
+    with _claimed(out):
+        assert sorted(p.name for p in out.iterdir()) == [".lock", DEMO_MARK]
 
 
 def test_an_out_linked_to_an_earlier_demo_is_replaced_through_the_link(tmp_path):
