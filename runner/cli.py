@@ -715,7 +715,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--patch-deg", type=float, default=5.0, help="side of the central patch, deg (default 5)")
     p.add_argument("--full-field", action="store_true", help="light the whole screen instead of a patch")
     p.add_argument("--windowed", action="store_true", help="a window instead of full screen")
-    p.add_argument("--seed", type=_int_arg, default=0, help="seed of the random order (default 0)")
+    p.add_argument("--seed", type=_int_arg, default=None,
+                   help="seed of the random order (default 0; a resumed measurement keeps its own)")
     p.add_argument("--resume", action="store_true", help="continue the readings in OUT.readings.csv")
     p.add_argument("--label", default="", help="free text naming the display, written into the profile")
     p.add_argument("--fit-anyway", action="store_true",

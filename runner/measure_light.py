@@ -91,21 +91,31 @@ class ReadingsLog:
     Parameters
     ----------
     path : Path
-    seed : int
+    seed : int or None
+        Seed of the order; None: 0 for a new file, the file's own when resumed.
     resume : bool
         Continue an existing file (its rows must match the planned steps).
+
+    Raises
+    ------
+    InputError
+        A file that exists without ``resume``, or a ``seed`` other than the
+        one a resumed file's readings were taken in (it was taken silently).
     """
 
-    def __init__(self, path: Path, seed: int, resume: bool):
+    def __init__(self, path: Path, seed: int | None, resume: bool):
         self.path = Path(path)
-        self.seed = seed
+        self.seed = 0 if seed is None else seed
         self.rows: list[dict] = []
         if self.path.exists():
             if not resume:
                 raise InputError(str(self.path), "file", "exists; pass --resume to continue it, or choose another --out")
             with self.path.open(newline="", encoding="utf-8") as f:
                 self.rows = [r for r in csv.DictReader(f) if r.get("luminance_cd_m2", "").strip()]
-            if self.rows and int(self.rows[0]["seed"]) != seed:
+            if self.rows and int(self.rows[0]["seed"]) != self.seed:
+                if seed is not None:
+                    raise InputError(str(self.path), "--seed", f"{seed} is not the seed its readings were taken in "
+                                     f"({int(self.rows[0]['seed'])}); leave --seed out to continue them")
                 self.seed = int(self.rows[0]["seed"])
         try:
             self.path.parent.mkdir(parents=True, exist_ok=True)
@@ -352,7 +362,7 @@ def from_csv(readings_file: str | Path, out: str | Path, protocol=None, label: s
 
 
 def on_screen(protocol, out: str | Path, n_levels: int = 9, repeats: int = 2, per_gun: bool = False,
-              patch_deg: float | None = 5.0, windowed: bool = False, seed: int = 0, resume: bool = False,
+              patch_deg: float | None = 5.0, windowed: bool = False, seed: int | None = None, resume: bool = False,
               label: str = "", fit_anyway: bool = False, stream=None) -> Path | None:
     """Measure the display on screen, then fit and write the light profile.
 
@@ -367,11 +377,9 @@ def on_screen(protocol, out: str | Path, n_levels: int = 9, repeats: int = 2, pe
     stream = stream or sys.stdout
     if Path(out).is_dir():
         raise InputError(str(out), "--out", "is a folder; expected a file name for the light profile")
-    steps = measurement_steps(n_levels, repeats, per_gun, seed)
     log = ReadingsLog(readings_path(out), seed, resume)
     try:
-        if log.seed != seed:
-            steps = measurement_steps(n_levels, repeats, per_gun, log.seed)
+        steps = measurement_steps(n_levels, repeats, per_gun, log.seed)
         todo = log.remaining(steps)
         if todo:
             from runner.display.light_meter import measure  # opens psychopy: only when there is something to measure

@@ -600,6 +600,12 @@ def test_readings_file_resumes_and_remeasures_deleted_rows(tmp_path):
     log.close()
     with pytest.raises(InputError, match="does not match this session's plan"):
         ReadingsLog(path, 3, resume=True).remaining(measurement_steps(5, 2, True, seed=3))
+    # without --seed the file's own seed is used; another one is refused (before, it was silently replaced)
+    log = ReadingsLog(path, None, resume=True)
+    assert log.seed == 3
+    log.close()
+    with pytest.raises(InputError, match=r"--seed: 5 is not the seed its readings were taken in \(3\); leave --seed out"):
+        ReadingsLog(path, 5, resume=True)
 
 
 def test_resume_refuses_a_remeasured_profile(tmp_path, capsys):
