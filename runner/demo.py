@@ -47,8 +47,10 @@ _TOP_FOLDERS, _TOP_FILES = ("logs", "fit", "compare"), (DEMO_MARK, CLAIM_FILE, "
 #: The simulated observers' files in ``logs/``: log, sidecar, lock, and the ``.tmp`` each is written through.
 _LOG_FILES = frozenset(f"sim{i:02d}-s1.{kind}{tmp}" for i in range(1, N_OBSERVERS + 1)
                        for kind in ("trials.csv", "session.json", "lock") for tmp in ("", ".tmp"))
-#: A set being staged by ``fit`` or ``compare`` (``fitting.outputs``: ``.staging-PID-RANDOM``).
-_STAGING = re.compile(re.escape(STAGING_PREFIX) + r"\d+-")
+#: A set being staged by ``fit`` or ``compare`` (``fitting.outputs``: ``.staging-PID-RANDOM``, mkdtemp's 8 characters),
+#: and the temporary file of a manifest or journal being written (``fitting.outputs.write_atomic``: ``.NAME.RANDOM``).
+_STAGING = re.compile(re.escape(STAGING_PREFIX) + r"\d+-[a-z0-9_]{8}")
+_TEMPORARY = re.compile(r"\.(" + re.escape(MANIFEST) + "|" + re.escape(PENDING) + r")\.[a-z0-9_]{8}")
 #: Where the demo's ``compare`` read its predictions from, as ``predictions_source.txt`` says it.
 _PREDICTIONS_SOURCE = "../predictions_population_model.csv\n"
 
@@ -60,25 +62,40 @@ def _command_files(folder: Path) -> list[Path]:
         own |= set(json.loads((folder / PENDING).read_text(encoding="utf-8")).get("files", []))
     except (OSError, ValueError, AttributeError, TypeError):
         pass
-    temporary = (f".{MANIFEST}.", f".{PENDING}.")        # outputs.write_atomic's while a manifest or journal is written
     found = []
     for path in sorted(folder.rglob("*")):
         rel = path.relative_to(folder)
-        if rel.parts[0].startswith(temporary) or _STAGING.match(rel.parts[0]) or (path.is_dir() and not path.is_symlink()):
+        staged = len(rel.parts) > 1 and _STAGING.fullmatch(rel.parts[0]) and folder.joinpath(rel.parts[0]).is_dir()
+        if staged or (len(rel.parts) == 1 and _TEMPORARY.fullmatch(rel.name) and path.is_file()) \
+                or (path.is_dir() and not path.is_symlink()):
             continue
         if path.is_symlink() or rel.as_posix() not in own:
             found.append(path)
     return found
 
 
-def _fitted_elsewhere(fit: Path) -> bool:
-    """True when ``fit``'s record names a log that is not one of the demo's (a fit of one's own written there)."""
+def _fitted_elsewhere(fit: Path, logs: Path) -> bool:
+    """True when ``fit``'s record names a session that is not one of the demo's in ``logs`` (a fit of one's own).
+
+    A session is the demo's when its log has a demo observer's name and, where
+    the demo's sidecars are there to say so, the same observer, session and
+    seed as one of them (a fit of other simulated logs of the same names
+    differs in its seeds).
+    """
     try:
         sessions = json.loads((fit / REPORT_DATA).read_text(encoding="utf-8"))["sessions"]
-        logs = [Path(str(s["log"])) for s in sessions]
-    except (OSError, ValueError, KeyError, TypeError):
+        named = [(Path(str(s["log"])).name, s.get("observer"), s.get("session"), s.get("seed")) for s in sessions]
+    except (OSError, ValueError, KeyError, TypeError, AttributeError):
         return False            # no record (git leaves it out of a clone's results_demo): the names decide
-    return any(log.parent.name != "logs" or log.name not in _LOG_FILES for log in logs)
+    seeds = {}
+    for side in logs.glob("sim*-s1.session.json"):
+        try:
+            data = json.loads(side.read_text(encoding="utf-8"))
+            seeds[(data["observer"], data["session"])] = data.get("session_seed", data.get("seed"))
+        except (OSError, ValueError, KeyError, TypeError):
+            continue
+    return any(name not in _LOG_FILES or (seeds and seeds.get((observer, session)) != seed)
+               for name, observer, session, seed in named)
 
 
 def _not_the_demos(out: Path) -> Path | None:
@@ -104,8 +121,9 @@ def _not_the_demos(out: Path) -> Path | None:
             found = _command_files(out / name)
             if found:
                 return found[0]
-    if (out / "fit").is_dir() and _fitted_elsewhere(out / "fit"):
-        return out / "fit" / REPORT_DATA
+    for fit in (out / "fit", out / "compare" / "fit"):        # compare's copy of the fit it compared
+        if fit.is_dir() and _fitted_elsewhere(fit, out / "logs"):
+            return fit / REPORT_DATA
     source = out / "compare" / "predictions_source.txt"
     if source.is_file() and source.read_text(encoding="utf-8", errors="replace") != _PREDICTIONS_SOURCE:
         return source
@@ -128,6 +146,17 @@ def _refuse_foreign(out: Path) -> None:
                          "replaces only its own output: move that away or choose another folder")
 
 
+def _remove_manifest_last(folder: Path) -> None:
+    """Remove ``folder``, its manifests and journals after everything they list: a kill at any instant leaves
+    only files a manifest still lists, which the next demo may replace."""
+    last = {MANIFEST, PENDING}
+    paths = sorted(folder.rglob("*"), key=lambda p: (p.name in last, -len(p.parts)))
+    for path in paths:
+        if path.is_symlink() or not path.is_dir():
+            path.unlink()
+    shutil.rmtree(folder)
+
+
 @contextmanager
 def _claimed(out: Path):
     """Hold ``out`` for this demo, emptied of an earlier demo's files and marked as the demo's.
@@ -145,7 +174,7 @@ def _claimed(out: Path):
             if entry.name in (CLAIM_FILE, DEMO_MARK):
                 continue
             if entry.is_dir() and not entry.is_symlink():
-                shutil.rmtree(entry)
+                _remove_manifest_last(entry)
             else:
                 entry.unlink()
         (out / DEMO_MARK).write_text(

@@ -208,12 +208,12 @@ def _earlier_demo(folder: Path) -> None:
         (folder / "fit" / name).write_text("old\n")
     (folder / "fit" / "outputs.json").write_text('{"command": "fit", "files": ["pse.csv", "figures/decay_sim01.png", '
                                                  '"report_data.json"]}')
-    (folder / "fit" / ".staging-123-ab").mkdir()                                # a fit killed before its move
-    (folder / "fit" / ".staging-123-ab" / "tuning.csv").write_text("new\n")
+    (folder / "fit" / ".staging-123-ab12cd34").mkdir()                                # a fit killed before its move
+    (folder / "fit" / ".staging-123-ab12cd34" / "tuning.csv").write_text("new\n")
     (folder / "compare").mkdir()
     (folder / "compare" / "outputs.json").write_text('{"command": "compare", "files": ["predictions_source.txt"]}')
     (folder / "compare" / ".outputs-pending.json").write_text('{"stage": ".staging-9-x", "files": ["agreement.csv"]}')
-    (folder / "fit" / "..outputs-pending.json.k3x9a1").write_text('{"sta')     # killed while its journal was written
+    (folder / "fit" / "..outputs-pending.json.k3x9a1zz").write_text('{"sta')     # killed while its journal was written
     (folder / "compare" / "agreement.csv").write_text("moved in before a kill\n")
     (folder / DEMO_MARK).write_text("mark\n")
 
@@ -243,10 +243,19 @@ def test_a_file_no_demo_writes_in_an_earlier_demos_folder_is_refused_and_kept(ca
 
 #: Files of one's own that look like a demo's, and what the refusal names.
 LOOKALIKES = {
-    "a fit of other logs": ("fit/report_data.json", '{"sessions": [{"log": "mine/sim01-s1.trials.csv"}]}'),
+    "a fit of other logs": ("fit/report_data.json", '{"sessions": [{"log": "mine/P01-s1.trials.csv", '
+                                                    '"observer": "P01", "session": "s1", "seed": 11}]}'),
     "notes beside the logs": ("logs/sim02-s1.notes.txt", "notes\n"),
     "a copy of a log": ("logs/sim01-s1.trials.csv.orig", "observer\n"),
     "a folder named like a staging one": ("fit/.staging-mine/a.csv", "a\n"),
+    "... or more like one": ("fit/.staging-1-mine/notes.txt", "a\n"),
+    "a file named like a manifest's copy": ("fit/.outputs.json.bak", "{}\n"),
+    "a fit of other logs of the same names": ("fit/report_data.json",
+                                              '{"sessions": [{"log": "pilot/logs/sim01-s1.trials.csv", '
+                                              '"observer": "sim01", "session": "s1", "seed": 7}]}'),
+    "a comparison of such a fit": ("compare/fit/report_data.json",
+                                   '{"sessions": [{"log": "pilot/logs/sim01-s1.trials.csv", "observer": "sim01", '
+                                   '"session": "s1", "seed": 7}]}'),
     "a comparison with other predictions": ("compare/predictions_source.txt", "../../mine.csv\n"),
 }
 
@@ -261,7 +270,11 @@ def test_files_that_only_look_like_the_demos_are_refused_and_kept(capsys, tmp_pa
     out = tmp_path / "d"
     _earlier_demo(out)
     (out / "compare" / "predictions_source.txt").write_text("../predictions_population_model.csv\n")
-    (out / "fit" / "report_data.json").write_text('{"sessions": [{"log": "d/logs/sim01-s1.trials.csv"}]}')
+    (out / "fit" / "report_data.json").write_text('{"sessions": [{"log": "d/logs/sim01-s1.trials.csv", '
+                                                  '"observer": "sim01", "session": "s1", "seed": 11}]}')
+    (out / "logs" / "sim01-s1.session.json").write_text('{"observer": "sim01", "session": "s1", "session_seed": 11}')
+    (out / "compare" / "outputs.json").write_text('{"command": "compare", "files": ["predictions_source.txt", '
+                                                  '"fit/report_data.json"]}')
     name, text = LOOKALIKES[what]
     (out / name).parent.mkdir(parents=True, exist_ok=True)
     (out / name).write_text(text)
@@ -281,6 +294,43 @@ def test_an_earlier_demo_with_its_own_records_is_replaced(tmp_path):
     (out / "fit" / "report_data.json").write_text('{"sessions": [{"log": "d/logs/sim01-s1.trials.csv"}]}')
     with _claimed(out):
         assert sorted(p.name for p in out.iterdir()) == [".lock", DEMO_MARK]
+
+
+def test_a_demo_stopped_while_it_empties_the_earlier_one_can_be_run_again(tmp_path, monkeypatch):
+    # before: the earlier output was removed with rmtree, which may remove fit/outputs.json before the files it
+    # lists; a demo killed just then left files no manifest listed, and every later demo refused the folder
+    # (a hostile-user sweep)
+    from runner.demo import _claimed, _refuse_foreign
+
+    removed = []
+    real = os.unlink
+
+    def stop_after(n):
+        def unlink(path, *args, **kwargs):
+            if len(removed) == n:
+                raise KeyboardInterrupt      # as a kill at that instant leaves the folder
+            removed.append(Path(path).name)
+            return real(path, *args, **kwargs)
+        return unlink
+
+    n = 0
+    while True:
+        out = tmp_path / f"d{n}"
+        _earlier_demo(out)
+        removed.clear()
+        monkeypatch.setattr(os, "unlink", stop_after(n))
+        try:
+            with _claimed(out):
+                pass
+            finished = True
+        except KeyboardInterrupt:
+            finished = False
+        monkeypatch.setattr(os, "unlink", real)
+        _refuse_foreign(out)                 # replaceable after the first n removals
+        if finished:
+            break
+        n += 1
+    assert n > 5 and removed.index("outputs.json") > removed.index("pse.csv")
 
 
 def test_an_out_linked_to_an_earlier_demo_is_replaced_through_the_link(tmp_path):
