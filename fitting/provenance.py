@@ -138,12 +138,42 @@ def check_sidecar_owner(log: Path, side: Path, data: dict, cells: dict[str, set[
                          "log, or move it away")
 
 
-def protocol_settings(text: str) -> dict | None:
-    """A protocol's settings: its TOML tables as read, without the ``title``; None if the text is not TOML.
+#: Settings that change what no trial measures: names, keys, texts, breaks, practice trials (never fitted), and the
+#: light profile's file name (the luminances asked of it are compared).
+NOT_MEASURED = ("title", "keys", "safety", "screens", "design.break_every", "design.practice_trials",
+                "design.practice_offset_deg", "design.practice_feedback", "light.profile")
+#: Lists whose order changes no condition.
+AS_SETS = ("design.adapter_offsets_deg", "design.lags", "design.intervening_offsets_deg")
 
-    What "the same protocol" compares (:func:`protocol_by_observer`):
-    comments, layout, the order of keys and the title change no trial, so a
-    file edited in those only is the same protocol; any other value counts.
+
+def measured_settings(settings: dict) -> dict:
+    """``settings`` (a protocol's tables) as "the same protocol" compares them (:func:`protocol_by_observer`).
+
+    Without :data:`NOT_MEASURED`, with the lists of :data:`AS_SETS` sorted
+    and every number a float (``5`` and ``5.0`` are one setting).
+    """
+    out = json.loads(json.dumps(settings, default=str))         # a copy, with TOML's dates as text
+    for dotted in NOT_MEASURED + AS_SETS:
+        *tables, key = dotted.split(".")
+        where = out
+        for table in tables:
+            where = where.get(table) if isinstance(where, dict) else None
+        if isinstance(where, dict) and key in where:
+            if dotted in NOT_MEASURED:
+                del where[key]
+            elif isinstance(where[key], list):
+                where[key] = sorted(where[key], key=lambda v: (str(type(v)), v))
+    return _as_floats(out)
+
+
+def protocol_settings(text: str) -> dict | None:
+    """A protocol's settings read from its text as TOML (:func:`measured_settings`); None if it is not TOML.
+
+    What "the same protocol" compares where the protocol cannot be parsed
+    with its defaults (``fitting`` does not import ``runner``'s parser; the
+    command line passes it, :func:`protocol_by_observer`): comments, layout,
+    key order and the :data:`NOT_MEASURED` settings change no trial; a value
+    written out that equals its default does count here.
     """
     try:
         import tomllib
@@ -153,8 +183,7 @@ def protocol_settings(text: str) -> dict | None:
         settings = tomllib.loads(str(text).removeprefix("\ufeff"))
     except (tomllib.TOMLDecodeError, TypeError):
         return None
-    settings.pop("title", None)
-    return settings
+    return measured_settings(settings)
 
 
 def _as_floats(value):
@@ -170,7 +199,7 @@ def _first_difference(a, b, where: str = "") -> str:
     """The first setting (dotted name) whose value differs between two settings tables, with both values."""
     if isinstance(a, dict) and isinstance(b, dict):
         for key in sorted(set(a) | set(b)):
-            if _as_floats(a.get(key, _ABSENT)) != _as_floats(b.get(key, _ABSENT)):
+            if a.get(key, _ABSENT) != b.get(key, _ABSENT):
                 return _first_difference(a.get(key, _ABSENT), b.get(key, _ABSENT), f"{where}.{key}".lstrip("."))
     shown = ["(absent)" if v is _ABSENT else _cut(json.dumps(v, default=str)) for v in (a, b)]
     return f"{where}: {shown[0]} against {shown[1]}"
@@ -183,7 +212,8 @@ def _cut(text: str, size: int = 40) -> str:
     return text if len(text) <= size else text[: size - 1] + "…"
 
 
-def protocol_by_observer(sessions, protocols: dict) -> dict[str, str]:
+def protocol_by_observer(sessions, protocols: dict, settings: Callable[[str], dict | None] = protocol_settings
+                         ) -> dict[str, str]:
     """Each observer's protocol; refuse an observer whose sessions ran different protocols.
 
     ``fit`` pools an observer's sessions into one PSE per condition: trials
@@ -201,6 +231,10 @@ def protocol_by_observer(sessions, protocols: dict) -> dict[str, str]:
         an unreadable one) are passed over.
     protocols : dict
         SHA-256 -> a record with the protocol's ``path`` and ``text``.
+    settings : callable
+        Protocol text -> the settings compared (None if it cannot be read):
+        :func:`protocol_settings`, or the command line's parser with the
+        defaults filled in (``runner.overview.settings_from_text``).
 
     Returns
     -------
@@ -215,11 +249,10 @@ def protocol_by_observer(sessions, protocols: dict) -> dict[str, str]:
         both protocol files and the first setting that differs.
     """
     identity: dict[str, str] = {}
-    settings: dict[str, dict | None] = {}
+    compared: dict[str, dict | None] = {}
     for sha, record in protocols.items():
-        settings[sha] = protocol_settings((record or {}).get("text") or "") if (record or {}).get("text") else None
-        identity[sha] = (json.dumps(_as_floats(settings[sha]), sort_keys=True, default=str) if settings[sha] is not None
-                         else sha)
+        compared[sha] = settings((record or {}).get("text") or "") if (record or {}).get("text") else None
+        identity[sha] = json.dumps(compared[sha], sort_keys=True, default=str) if compared[sha] is not None else sha
     first: dict[str, dict] = {}
     for s in sessions:
         sha = s.get("protocol_sha256")
@@ -234,7 +267,7 @@ def protocol_by_observer(sessions, protocols: dict) -> dict[str, str]:
             path = (protocols.get(r["protocol_sha256"]) or {}).get("path")
             return f"session {r.get('session')} ran {path} (SHA-256 {r['protocol_sha256'][:12]})"
 
-        old, new = settings.get(seen["protocol_sha256"]), settings.get(sha)
+        old, new = compared.get(seen["protocol_sha256"]), compared.get(sha)
         differ = (f"they differ in {_first_difference(new, old)}" if old is not None and new is not None else
                   "their files differ")
         raise InputError(str(s.get("sidecar")), "protocol", f"observer {observer}'s {ran(s)} and {ran(seen)} ({differ}): "

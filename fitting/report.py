@@ -57,7 +57,7 @@ from .observer import (BY_STATISTIC, INTERVAL_METHODS, AFTEREFFECT_COLUMNS, DECA
                        ObserverAnalysis, Options, analyse_observer, condition_table)
 from .page import PAGE, write_page
 from .progress import phase
-from .provenance import REPORT_DATA, collect, protocol_by_observer, write_report_data
+from .provenance import REPORT_DATA, collect, protocol_by_observer, protocol_settings, write_report_data
 from .psychometric import DEFAULT_LAPSE_MAX, SIGMOIDS, Cells, fit_cells
 from .outputs import output_set
 from .same_person import same_person_notes
@@ -408,7 +408,7 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
              figure_formats=("png",),
              interval: str = BY_STATISTIC, level: float = 0.95,
              lapse_max: float = DEFAULT_LAPSE_MAX, plan=None, map_tasks=None,
-             tracks: dict | None = None, track_use: str = "replicates") -> FitReport:
+             tracks: dict | None = None, track_use: str = "replicates", settings=None) -> FitReport:
     """Read trial logs, fit every observer (and the group), write tables, figures and ``report.html``.
 
     Parameters
@@ -452,6 +452,12 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
     plan : callable, optional
         ``protocol text -> lines`` of the protocol's plan, shown in the
         report (see :func:`fitting.provenance.collect`).
+    settings : callable, optional
+        ``protocol text -> settings`` compared to decide whether an
+        observer's sessions ran one protocol
+        (:func:`fitting.provenance.protocol_by_observer`; default
+        :func:`fitting.provenance.protocol_settings`, the text read as TOML;
+        the command line passes its parser, which fills in the defaults).
     map_tasks : callable, optional
         ``map_tasks(fn, tasks) -> results``: runs ``fn(task)`` for each value
         of the dict ``tasks`` (in any process, in any order) and returns the
@@ -491,7 +497,7 @@ def fit_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
     _check_options(n_boot, seed, lapse, spread, sigmoid, interval, level, lapse_max, progress)
     trials = read_logs(paths, include_bad_timing, include_practice)
     data = collect(paths, plan)     # the sidecars: one protocol per observer (refused otherwise), for the flags
-    protocols = protocol_by_observer(data["sessions"], data["protocols"])
+    protocols = protocol_by_observer(data["sessions"], data["protocols"], settings or protocol_settings)
     n_observers = trials["observer"].nunique()
     # with workers, they draw every figure (their process has matplotlib imported already); this process
     # draws only when there are none, or when more observers than fit in memory leave figures for the end

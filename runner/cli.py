@@ -422,7 +422,7 @@ def cmd_fit(args) -> int:
         if args.interval not in allowed:
             raise InputError("argument", "--interval", f"expected one of {', '.join(allowed)} for these logs")
         common["interval"] = args.interval
-    from runner.overview import plan_from_text
+    from runner.overview import plan_from_text, settings_from_text
 
     notes: list[str] = []
     if streams:
@@ -439,7 +439,7 @@ def cmd_fit(args) -> int:
         try:
             report = fit_logs(trials, args.out, spread=args.spread, include_practice=args.include_practice,
                               sigmoid=args.function, level=args.level, plan=plan_from_text,
-                              map_tasks=task_mapper(pool, "fitting"), tracks=tracks,
+                              settings=settings_from_text, map_tasks=task_mapper(pool, "fitting"), tracks=tracks,
                               track_use="replicates" if args.rerun_tracks else "pilot", **common)
         finally:
             pool.close()

@@ -230,7 +230,7 @@ def _run(out: Path, progress: bool | None) -> Path:
     from fitting.tables import find_logs
     from runner.launch import simulate
     from runner.observers import load_model
-    from runner.overview import plan_from_text
+    from runner.overview import plan_from_text, settings_from_text
     from runner.protocol import load_protocol, read_protocol_text
     from runner.replay import track_factories
     from runner.safety import screen_protocol
@@ -248,6 +248,7 @@ def _run(out: Path, progress: bool | None) -> Path:
     logs = [str(p) for p in find_logs([str(out / "logs")])]
     try:                        # the observers are fitted on every available core, as by `fit`
         fit_logs(logs, str(out / "fit"), n_boot=N_BOOT, seed=SEED, progress=fit_progress, plan=plan_from_text,
+                 settings=settings_from_text,
                  map_tasks=task_mapper(pool, "fitting"),
                  tracks=track_factories(logs, strict=False), track_use="pilot")
     finally:

@@ -153,6 +153,25 @@ def duration_line(seconds: float, breaks: int) -> str:
             f"(assuming {ANSWER_ESTIMATE_S:g} s per answer and {BREAK_ESTIMATE_S:g} s per break)")
 
 
+def settings_from_text(text: str) -> dict | None:
+    """A protocol's settings as "the same protocol" compares them, defaults filled in; None if it cannot be read.
+
+    The validated protocol (:func:`runner.protocol.parse_protocol`, its light
+    profile not read) through :func:`fitting.provenance.measured_settings`:
+    a value written out that equals its default is the same setting as one
+    left out.
+    """
+    from fitting.errors import InputError
+    from fitting.provenance import measured_settings
+    from runner.protocol import parse_protocol
+
+    try:
+        protocol = parse_protocol(text, source="recorded protocol", resolve_light=False)
+    except (InputError, ValueError):
+        return None
+    return measured_settings(protocol.model_dump(mode="json"))
+
+
 def plan_from_text(text: str) -> list[str]:
     """The plan of a protocol given as text (as ``check`` prints it), for reports.
 

@@ -21,6 +21,7 @@ from fitting.errors import InputError
 from fitting.nback import is_stream_log
 from fitting.provenance import check_sidecar_owner, log_cells, log_rows, protocol_by_observer
 from fitting.tables import read_log_table
+from runner.overview import settings_from_text
 from runner.protocol import parse_protocol
 from runner.schedule import design_conditions
 from runner.shared_evidence import SharedEvidence
@@ -171,7 +172,7 @@ def check_sidecars(logs) -> None:
             raise InputError(str(side), "session_seed", f"is that of {first} (the same simulated observer, "
                              "protocol and seed): its log repeats that session's trials, it adds no new data; fit "
                              "one of the two")
-    protocol_by_observer(sessions, protocols)
+    protocol_by_observer(sessions, protocols, settings_from_text)
 
 
 def track_factories(logs, strict: bool = True, notes: list | None = None) -> dict:

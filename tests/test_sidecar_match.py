@@ -250,7 +250,7 @@ def test_one_observers_sessions_of_two_protocols_are_refused_naming_both(capsys,
     side = folder / "sim01-s2.session.json"
     assert line.startswith(f"aftershift: {side}: protocol: observer sim01's session s2 ran ")
     assert "other.toml (SHA-256 " in line and f"session s1 ran {PILOT} (SHA-256 " in line
-    assert "(they differ in design.adapter_offsets_deg: [-45, 45] against [-30, 30])" in line
+    assert "(they differ in design.adapter_offsets_deg: [-45.0, 45.0] against [-30.0, 30.0])" in line
     assert "fit each protocol's logs on their own" in line
     assert not (tmp_path / "fit").exists()
     with pytest.raises(InputError, match="observer sim01's session s2 ran"):      # the library refuses too
@@ -264,14 +264,25 @@ def test_one_observers_sessions_of_two_protocols_are_refused_naming_both(capsys,
     # and so are sessions of a protocol file edited only in its comments, layout and title: the same settings
     side = tmp_path / "same" / "sim01-s2.session.json"
     meta = json.loads(side.read_text())
-    # (and 5.0 written 5: TOML reads an int, the same setting; before, refused with a garbled "differ in : {...")
-    assert "speed_deg_s = 5.0\n" in meta["protocol"]["text"]
-    text = "# edited after session s1\n" + meta["protocol"]["text"].replace("title = ", "title   =  'x' #", 1).replace(
-        "speed_deg_s = 5.0\n", "speed_deg_s = 5\n")
+    # (and 5.0 written 5: TOML reads an int, the same setting; before, refused with a garbled "differ in : {...");
+    # nor do a default written out, the lags in another order, or another break interval change a trial (before,
+    # each was refused: a sweep)
+    text = meta["protocol"]["text"]
+    for old, new in (("speed_deg_s = 5.0\n", "speed_deg_s = 5\n"), ("[timing]\n", "[timing]\ngap_s = 0.0\n"),
+                     ("lags = [0, 2]", "lags = [2, 0]"), ("break_every = 60", "break_every = 40"),
+                     ("title = ", "title   =  'x' #")):
+        assert text.count(old) == 1, old
+        text = text.replace(old, new)
+    text = "# edited after session s1\n" + text
     meta["protocol"].update(text=text, sha256=hashlib.sha256(text.encode()).hexdigest())
     side.write_text(json.dumps(meta))
     check_sidecars(sorted((tmp_path / "same").glob("*.trials.csv")))
-    fit_logs([str(tmp_path / "same")], str(tmp_path / "same_fit"), n_boot=0, figures=False, progress=False)
+    code, err = cli(capsys, "fit", tmp_path / "same", "--out", tmp_path / "same_fit", "--bootstrap", "0",
+                    "--no-figures")
+    assert code == 0, err
+    # the library alone reads the text as TOML (no parser, so no defaults): the default written out counts there
+    with pytest.raises(InputError, match=r"they differ in timing.gap_s: 0.0 against \(absent\)"):
+        fit_logs([str(tmp_path / "same")], str(tmp_path / "lib_fit"), n_boot=0, figures=False, progress=False)
 
 
 @pytest.mark.slow
