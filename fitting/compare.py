@@ -697,10 +697,8 @@ def not_estimable(points: pd.DataFrame) -> tuple[np.ndarray, tuple[str, ...]]:
             notes.append(f"{observer}: every measured point is flagged {why}; the observer is left out of chi2, gain "
                          "and the other agreement statistics")
             continue
-        cells = [f"lag {points['lag'].iloc[i]:g} offset {points['adapter_offset_deg'].iloc[i]:+g}" for i in out]
-        shown = ", ".join(cells[:4]) + (f" and {len(cells) - 4} more" if len(cells) > 4 else "")
         notes.append(f"{observer}: {out.size} of {int(mine.sum())} measured points are flagged {why} and left out "
-                     f"of chi2, gain and the other agreement statistics: {shown}")
+                     f"of chi2, gain and the other agreement statistics: {_cells_text(points, out)}")
     return left_out, tuple(notes)
 
 
@@ -731,15 +729,18 @@ def few_observer_cells(points: pd.DataFrame) -> tuple[np.ndarray, tuple[str, ...
     if left_out.sum() == mine.sum():      # a group of fewer than three observers: described, not left out
         return np.zeros_like(left_out), (f"{GROUP}: every cell {why.replace('rest on', 'rests on', 1)}; so are its "
                                           "agreement statistics, which are descriptive only",)
-    cells = [f"lag {points['lag'].iloc[i]:g} offset {points['adapter_offset_deg'].iloc[i]:+g}"
-             for i in np.flatnonzero(left_out)]
-    shown = ", ".join(cells[:4]) + (f" and {len(cells) - 4} more" if len(cells) > 4 else "")
-    if len(cells) == 1:
+    out = np.flatnonzero(left_out)
+    if out.size == 1:
         why = why.replace("rest on", "rests on", 1)
-    return left_out, (f"{GROUP}: {len(cells)} of {int(mine.sum())} cells {why} and {'is' if len(cells) == 1 else 'are'} "
-                      "left out of the group's chi2, "
-                      "gain (the observers' gains are combined over the other cells) and the other agreement "
-                      f"statistics: {shown}",)
+    return left_out, (f"{GROUP}: {out.size} of {int(mine.sum())} cells {why} and {'is' if out.size == 1 else 'are'} "
+                      "left out of the group's chi2, gain (the observers' gains are combined over the other cells) "
+                      f"and the other agreement statistics: {_cells_text(points, out)}",)
+
+
+def _cells_text(points: pd.DataFrame, rows) -> str:
+    """The cells of ``points`` at positions ``rows``, as "lag 0 offset +30, …", the first four and a count."""
+    cells = [f"lag {points['lag'].iloc[i]:g} offset {points['adapter_offset_deg'].iloc[i]:+g}" for i in rows]
+    return ", ".join(cells[:4]) + (f" and {len(cells) - 4} more" if len(cells) > 4 else "")
 
 
 def _undefined_gain_notes(points: pd.DataFrame, table: pd.DataFrame) -> tuple[str, ...]:

@@ -10,15 +10,12 @@ knows); it says so in the notes, naming both.
 
 from __future__ import annotations
 
-import csv
 import hashlib
-import io
 import unicodedata
-from pathlib import Path
 
 import pandas as pd
 
-from .logfile import IDENTITY_COLUMNS, examine_tail
+from .logfile import IDENTITY_COLUMNS
 
 
 def name_key(name: str) -> str:
@@ -26,20 +23,10 @@ def name_key(name: str) -> str:
     return unicodedata.normalize("NFKC", unicodedata.normalize("NFKC", str(name)).casefold())
 
 
-def _trials_digest(log: Path) -> str | None:
-    """SHA-256 of a log's whole rows without their observer and session cells; None if unreadable or no row."""
-    try:
-        data = Path(log).read_bytes()
-        rows = list(csv.reader(io.StringIO(data[: examine_tail(data).keep].decode("utf-8-sig"), newline="")))
-    except (OSError, UnicodeDecodeError, csv.Error):
-        return None
-    if len(rows) < 2:
-        return None
-    keep = [i for i, name in enumerate(c.strip() for c in rows[0]) if name not in IDENTITY_COLUMNS]
-    digest = hashlib.sha256()
-    for row in rows:
-        digest.update("\x1f".join(row[i] for i in keep if i < len(row)).encode("utf-8") + b"\x1e")
-    return digest.hexdigest()
+def _trials_digest(rows: pd.DataFrame) -> str:
+    """SHA-256 of one log's trials as read, without the cells that name the observer, the session or the file."""
+    kept = rows.drop(columns=[c for c in (*IDENTITY_COLUMNS, "source", "line") if c in rows.columns])
+    return hashlib.sha256(kept.to_csv(index=False).encode("utf-8")).hexdigest()
 
 
 def same_person_notes(trials: pd.DataFrame) -> list[str]:
@@ -48,8 +35,8 @@ def same_person_notes(trials: pd.DataFrame) -> list[str]:
     Parameters
     ----------
     trials : pandas.DataFrame
-        Trials from :func:`fitting.tables.read_logs`: the ``observer`` and
-        ``source`` columns, and ``attrs["files"]``, the logs read.
+        Trials from :func:`fitting.tables.read_logs`, with their ``observer``
+        and ``source`` (the log each came from); the logs are not read again.
 
     Returns
     -------
@@ -67,10 +54,8 @@ def same_person_notes(trials: pd.DataFrame) -> list[str]:
                          f"{len(names)} people; if they are one, give their logs and sidecars one name")
     owner = trials.drop_duplicates("source").set_index("source")["observer"].astype(str).to_dict()
     copies: dict[str, list] = {}
-    for log in trials.attrs.get("files") or sorted(owner):
-        digest = _trials_digest(Path(log))
-        if digest is not None:
-            copies.setdefault(digest, []).append(str(log))
+    for log, rows in trials.groupby("source", sort=True):
+        copies.setdefault(_trials_digest(rows.reset_index(drop=True)), []).append(str(log))
     for logs in copies.values():
         if len(logs) > 1:
             named = [f"{log} ({owner.get(log, '?')})" for log in logs]
