@@ -685,8 +685,7 @@ def not_estimable(points: pd.DataFrame) -> tuple[np.ndarray, tuple[str, ...]]:
         One per row of ``points``.
     notes : tuple of str
     """
-    flags = points["flags"] if "flags" in points else pd.Series("", index=points.index)
-    words = [set(str(f).split()) if isinstance(f, str) else set() for f in flags]
+    words = _flag_words(points)
     left_out = np.array([bool(w & NOT_ESTIMABLE.keys()) for w in words], dtype=bool)
     notes = []
     for observer in dict.fromkeys(points["observer"][left_out]):
@@ -719,9 +718,8 @@ def few_observer_cells(points: pd.DataFrame) -> tuple[np.ndarray, tuple[str, ...
         One per row of ``points``.
     notes : tuple of str
     """
-    flags = points["flags"] if "flags" in points else pd.Series("", index=points.index)
     mine = (points["observer"] == GROUP).to_numpy()
-    left_out = mine & np.array([isinstance(f, str) and FEW_OBSERVERS in f.split() for f in flags], dtype=bool)
+    left_out = mine & np.array([FEW_OBSERVERS in w for w in _flag_words(points)], dtype=bool)
     if not left_out.any():
         return left_out, ()
     why = (f"rest on fewer than {MIN_OBSERVERS_FOR_INFERENCE} observers (flagged {FEW_OBSERVERS}: their intervals "
@@ -735,6 +733,12 @@ def few_observer_cells(points: pd.DataFrame) -> tuple[np.ndarray, tuple[str, ...
     return left_out, (f"{GROUP}: {out.size} of {int(mine.sum())} cells {why} and {'is' if out.size == 1 else 'are'} "
                       "left out of the group's chi2, gain (the observers' gains are combined over the other cells) "
                       f"and the other agreement statistics: {_cells_text(points, out)}",)
+
+
+def _flag_words(points: pd.DataFrame) -> list[set]:
+    """Each point's flag words (none where ``points`` has no flags)."""
+    flags = points["flags"] if "flags" in points else pd.Series("", index=points.index)
+    return [set(f.split()) if isinstance(f, str) else set() for f in flags]
 
 
 def _cells_text(points: pd.DataFrame, rows) -> str:
