@@ -527,11 +527,11 @@ class Comparison:
         """A short text for the console."""
         overall = self.table[self.table["lag"] == "all"]
         lines = ["agreement with predictions (all lags):"]
-        judged = set(overall["observer"])
+        judged = set(overall.loc[overall["n_points"] > 0, "observer"])
         for observer in dict.fromkeys(self.points["observer"]):
             if observer not in judged:        # every point left out: the line says why, the notes say which
                 lines.append(f"  {observer:>8}: no agreement statistics: {_left_out_text(self.points, observer)}")
-        for _, row in overall.iterrows():
+        for _, row in overall[overall["n_points"] > 0].iterrows():
             start = f"  {row['observer']:>8}: RMSE {row['rmse_deg']:.2f} deg, r {_shown(row['pearson_r'])}"
             left = _left_out_text(self.points, row["observer"])
             left = f"; {left}" if left else ""
@@ -819,6 +819,28 @@ def _shown_path(path: Path, out: Path) -> str:
     return rel if not rel.startswith(os.pardir + os.sep + os.pardir) else str(path.resolve())
 
 
+def _with_empty_parts(rows: list[dict], points: pd.DataFrame, left_out: np.ndarray, described: bool) -> list[dict]:
+    """``rows`` with a row of no statistics (``n_points`` 0) for each observer and lag whose every point is left out.
+
+    Every observer and lag measured has its row in ``agreement.csv``, so a
+    reader sees that a lag was judged on nothing (and ``points_left_out``
+    says how many points it had) rather than missing from the table.  Rows
+    in the order of ``points``' observers, lags ascending, then ``all``.
+    """
+    found = {(row["observer"], row["lag"]): row for row in rows}
+    empty = {column: np.nan for column in AGREEMENT_COLUMNS}
+    lag_text = points["lag"].map("{:g}".format).to_numpy()
+    out = []
+    for observer in dict.fromkeys(points["observer"]):
+        mine = (points["observer"] == observer).to_numpy()
+        for lag in [*(f"{x:g}" for x in sorted(points.loc[mine, "lag"].unique())), "all"]:
+            part = mine if lag == "all" else mine & (lag_text == lag)
+            out.append(found.get((observer, lag)) or {
+                **empty, "observer": observer, "lag": lag, "n_points": 0, "chi2_reference": "", "covariance": "",
+                "points_left_out": int((part & left_out).sum()), "descriptive": observer == GROUP and described})
+    return out
+
+
 def _agreement_of(g: pd.DataFrame, observer, cov_table: pd.DataFrame | None, usable: bool):
     """:func:`agreement` of one observer's points ``g``, with their covariance when ``usable``; and that covariance."""
     found = (NO_COVARIANCE if not usable else
@@ -933,7 +955,7 @@ def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figure
             rows.append({"observer": observer, "lag": lag, **a.__dict__,
                          "points_left_out": int((part & left_out).sum()),
                          "descriptive": observer == GROUP and described})
-    table = pd.DataFrame(rows, columns=AGREEMENT_COLUMNS)
+    table = pd.DataFrame(_with_empty_parts(rows, points, left_out, described), columns=AGREEMENT_COLUMNS)
     table.loc[table["observer"].isin(too_few), ["gain", "gain_ci_low", "gain_ci_high", "chi2", "chi2_p",
                                                 "chi2_reference"]] = np.nan
     notes = (estimable_notes + few_notes + _leave_out_interval_statistics(used, table) + replicate_notes

@@ -312,7 +312,9 @@ def test_shifts_flagged_not_estimable_are_left_out_with_a_note(tmp_path, capsys)
     out, err = capsys.readouterr()
     assert err == ""
     table = pd.read_csv(tmp_path / "cmp" / "agreement.csv")
-    assert "S2" not in set(table["observer"])
+    s2 = table[table["observer"] == "S2"]      # every row judged on nothing, each saying how many points it had
+    assert list(s2["lag"]) == ["0", "2", "all"] and list(s2["n_points"]) == [0, 0, 0]
+    assert list(s2["points_left_out"]) == [4, 4, 8] and s2[["rmse_deg", "gain", "chi2"]].isna().all(axis=None)
     assert ("note: S2: every measured point is flagged one-sided (every answer on one side, so the PSE is not "
             "estimable); the observer is left out") in out
     assert "note: S3: 1 of 8 measured points are flagged few-trials (fewer than 10 trials, so no interval) and " \
@@ -454,7 +456,13 @@ def test_group_cells_of_fewer_than_three_observers_are_left_out_of_the_group_sta
     assert out[["observer", "lag"]].drop_duplicates().values.tolist() == [["group", 2]] and len(out) == 4
     table = pd.read_csv(tmp_path / "cmp" / "agreement.csv").set_index(["observer", "lag"])
     group = table.loc[("group", "all")]
-    assert ("group", "2") not in table.index and group["n_points"] == 4 and group["points_left_out"] == 4
+    assert group["n_points"] == 4 and group["points_left_out"] == 4
+    # the lag whose every group cell is left out keeps its row, judged on nothing (before, a sweep found the row
+    # missing from agreement.csv: a reader could not tell a lag left out from a lag not measured)
+    lag2 = table.loc[("group", "2")]
+    assert lag2["n_points"] == 0 and lag2["points_left_out"] == 4
+    assert lag2[["rmse_deg", "gain", "chi2", "chi2_p", "inside_ci_fraction"]].isna().all()
+    assert table.loc[("group", "0"), "n_points"] == 4 and table.loc[("group", "0"), "points_left_out"] == 0
     # the group's chi2, RMSE and fraction inside the CIs are those of the group without those cells
     shifts[~wide].to_csv(fit / "aftereffect.csv", index=False)
     without = compare_results(fit, tmp_path / "pred.csv", tmp_path / "cmp2", figures=False).table
