@@ -76,8 +76,8 @@ def type_text(window: str, text: str, env) -> None:
         send_key(window, "period" if ch == "." else ch, env)
 
 
-def drive(process, env, stop_after: int | None = None) -> dict[int, float]:
-    """Type readings until the program ends (or Escape after ``stop_after`` readings)."""
+def drive(process, env, stop_after: int | None = None) -> tuple[dict[int, float], str]:
+    """Type readings until the program ends (or Escape after ``stop_after`` readings); the readings and the console."""
     console = Console(process)
     window = find_window("aftershift", env, process=process)
     console.wait_for(lambda t: "aim the photometer" in t, process)
@@ -106,7 +106,7 @@ def drive(process, env, stop_after: int | None = None) -> dict[int, float]:
         if order == total:
             break
     process.wait(timeout=60)
-    return typed
+    return typed, console.text
 
 
 def test_measurement_screen_typed_readings_give_the_csv_fit(own_x_server, tmp_path):  # noqa: F811
@@ -114,13 +114,13 @@ def test_measurement_screen_typed_readings_give_the_csv_fit(own_x_server, tmp_pa
     env = own_x_server.env()
     out = tmp_path / "lab.toml"
     args = ["measure-light", PROBE, "--out", out, "--levels", "6", "--repeats", "1", "--windowed", "--seed", "4"]
-    first = drive(start(args, env), env, stop_after=2)
+    first, _ = drive(start(args, env), env, stop_after=2)
     readings_file = tmp_path / "lab.readings.csv"
     with readings_file.open(newline="", encoding="utf-8") as f:
         assert len(list(csv.DictReader(f))) == 2  # Escape kept both readings
     assert not out.exists()
     wait_until_no_window("aftershift", env)      # not the first run's window, still closing, for the second
-    second = drive(start([*args, "--resume"], env), env)
+    second, said = drive(start([*args, "--resume"], env), env)
     typed = {**first, **second}
     assert len(typed) == 6
     profile = load_profile(out)
@@ -136,7 +136,15 @@ def test_measurement_screen_typed_readings_give_the_csv_fit(own_x_server, tmp_pa
         assert getattr(profile.grey, name) == pytest.approx(getattr(csv_fit.grey, name), rel=1e-9)
     # ... and it finds the display typed in, within the 0.4 % ripple added to the readings
     assert profile.max_cd_m2 == pytest.approx(DISPLAY_MODEL.max_cd_m2, rel=0.01)
-    assert profile.screen_px == [800, 600] and profile.refresh_hz is not None
+    assert profile.screen_px == [800, 600]
+    # a refresh rate that is not the protocol's (here Xvfb's, without vsync: hundreds of flips per second) is said
+    # and not recorded; before, the profile recorded 1,234 Hz as the display's (a hostile-user sweep)
+    rate = float(re.search(r"display: ([0-9.]+) Hz measured", said).group(1))
+    if abs(rate / 60.0 - 1) > 0.01:          # display_probe.toml: 60 Hz; runner.safety.REFRESH_TOLERANCE: 1 %
+        assert profile.refresh_hz is None and f"warning: {rate:.2f} Hz is not the protocol's 60 Hz" in said, said
+        assert "# refresh_hz: not measured" in out.read_text(encoding="utf-8")
+    else:
+        assert profile.refresh_hz == pytest.approx(rate, abs=0.01)
 
 
 def test_frame_capture_writes_each_period_type(own_x_server, tmp_path):  # noqa: F811

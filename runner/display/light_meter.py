@@ -23,6 +23,7 @@ from fitting.errors import InputError
 from runner.display._psychopy import event, visual
 from runner.display.window import UNSYNCED_FACTOR, FlipPacer, measure_refresh, open_window
 from runner.measure_light import ReadingsLog, Step, parse_reading, typed_character
+from runner import safety
 from runner.protocol import Protocol
 
 ACCEPT = ("return", "num_enter")
@@ -124,25 +125,34 @@ def measure(protocol: Protocol, steps: list[Step], todo: list[Step], log: Readin
 
     Returns
     -------
-    (bool, float)
-        Whether every step was measured (False after Escape) and the measured
-        refresh rate (Hz).
+    (bool, float or None)
+        Whether every step was measured (False after Escape) and the refresh
+        rate to record in the profile (Hz): the measured one, or None when it
+        is not the protocol's ``display.refresh_hz`` (within the tolerance of
+        :func:`runner.safety.check_refresh`), which the console then says.
     """
     screen = LightMeterScreen(protocol, windowed, patch_deg, stream)
     try:
-        screen.say(f"display: {screen.measured_hz:.2f} Hz measured; surround grey level "
+        measured, hz = screen.measured_hz, float(protocol.display.refresh_hz)
+        recorded = measured if safety.check_refresh(measured, hz) is None else None
+        screen.say(f"display: {measured:.2f} Hz measured; surround grey level "
                    f"{protocol.display.background:g}; {len(steps)} patches, {len(steps) - len(todo)} already measured")
+        if recorded is None:
+            why = ("flips are not synchronised to the display (no vsync: a virtual or remote display?)"
+                   if measured > UNSYNCED_FACTOR * hz else "another rate than the protocol's")
+            screen.say(f"warning: {measured:.2f} Hz is not the protocol's {hz:g} Hz: {why}; the profile records the "
+                       "refresh rate as not measured (the readings of a steady patch are not affected)")
         screen.say("aim the photometer at the patch (shown at full level) and press Enter in the window; "
                    "Esc stops, keeping every reading")
         if not screen.wait_for_enter((1.0, 1.0, 1.0)):
-            return False, screen.measured_hz
+            return False, recorded
         for step in todo:
             screen.say(f"reading {step.order}/{len(steps)}: {step.gun} level {step.level:.4f} "
                        f"(code {round(step.level * 255)}) - type cd/m2, Enter: ", end="")
             value = screen.type_number(step.rgb)
             if value is None:
-                return False, screen.measured_hz
+                return False, recorded
             log.append(step, value)
-        return True, screen.measured_hz
+        return True, recorded
     finally:
         screen.close()
