@@ -183,6 +183,31 @@ def test_a_bad_value_in_a_stream_log_names_file_line_and_column(tmp_path):
     assert str(log) in str(err.value) and "line 4" in str(err.value) and "preceding_offsets_deg" in str(err.value)
 
 
+@pytest.mark.parametrize("column,edit,named", [
+    ("test_offset_deg", lambda v: f"{float(v) + 1.5:g}", "test_direction_deg"),
+    ("reference_deg", lambda v: "91", "reference_deg"),
+    ("procedure", lambda v: "practice", "procedure"),
+], ids=["offset", "reference", "procedure"])
+def test_a_stream_row_that_disagrees_with_itself_is_refused(tmp_path, column, edit, named):
+    # the row checks of adapt-test logs (fitting.tables.check_row_agreement) on a stream log: direction =
+    # reference - offset (README, Conventions), one reference per session, procedure "practice" for practice rows
+    # only; before they were tried on stream logs by hand only
+    protocol, text = load_protocol(BUNDLED), read_protocol_text(BUNDLED)
+    (log,) = simulate(protocol, str(BUNDLED), text, tmp_path, ObserverModel(), 1, 0, progress=False)
+    lines = log.read_text().splitlines()
+    header = lines[0].split(",")
+    read_stream_logs(log)                                   # as written: read
+    cells = lines[3].split(",")
+    assert cells[header.index("block")] == "stream" and cells[header.index("practice")] == "0"
+    cells[header.index(column)] = edit(cells[header.index(column)])
+    lines[3] = ",".join(cells)
+    log.write_text("\n".join(lines) + "\n")
+    with pytest.raises(InputError) as err:
+        read_stream_logs(log)
+    said = str(err.value)
+    assert str(log) in said and "line 4" in said and f"column {named}" in said and "edited cell" in said, said
+
+
 def test_nback_imports_neither_runner_nor_psychopy():
     code = "import sys, fitting.nback; bad = [m for m in sys.modules if m.split('.')[0] in ('runner', 'psychopy')]; print(bad)"
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT, check=True)
