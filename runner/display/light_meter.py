@@ -20,10 +20,10 @@ from __future__ import annotations
 import sys
 
 from fitting.errors import InputError
+from runner import safety
 from runner.display._psychopy import event, visual
 from runner.display.window import UNSYNCED_FACTOR, FlipPacer, measure_refresh, open_window
 from runner.measure_light import ReadingsLog, Step, parse_reading, typed_character
-from runner import safety
 from runner.protocol import Protocol
 
 ACCEPT = ("return", "num_enter")
