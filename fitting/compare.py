@@ -466,13 +466,19 @@ def agreement(measured, ci_low, ci_high, predicted, prediction_sd=None, covarian
         chi2_p, reference = float(special.chdtrc(k, chi2)), f"chi2({k})"
     g, g_se, g_dof = gls_gain(m, p, vinv, rank=k)
     q = special.stdtrit(g_dof, 0.975) if np.isfinite(g_dof) else Z95
+    # never more certain than with V known: residuals that happen to lie close to the predicted curve (two
+    # points leave the scale one degree of freedom) are chance, not a smaller error; the group rows' rule
+    # (fitting.meta.random_effects: Hartung-Knapp, never narrower than the fixed-effect interval)
+    known_se = gls_gain(m, p, vinv, free_scale=False, rank=k)[1]
+    half = max(q * g_se, Z95 * known_se)
+    g_se = max(g_se, known_se)           # what the group's combination of gains (combine_gains) weighs it by
     return Agreement(
         n_points=n,
         rmse_deg=float(np.sqrt(np.mean(resid**2))),
         pearson_r=r,
         gain=g,
-        gain_ci_low=g - q * g_se,
-        gain_ci_high=g + q * g_se,
+        gain_ci_low=g - half,
+        gain_ci_high=g + half,
         chi2=chi2,
         dof=k,
         chi2_p=chi2_p,

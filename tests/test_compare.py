@@ -189,10 +189,12 @@ def test_group_gain_is_the_random_effects_combination_of_the_observers_gains(tmp
         se = rng.uniform(0.3, 0.6, offsets.size)
         m = amp * predicted + rng.normal(0, se)
         rows += [[f"o{i}", 0, o, mi, mi - Z * s, mi + Z * s, 24] for o, mi, s in zip(offsets, m, se)]
-        # reference: statsmodels GLS through the origin (scale estimated) for each observer's gain
+        # reference: statsmodels GLS through the origin (scale estimated) for each observer's gain, its standard
+        # error never below the one with the covariance known (statsmodels' fixed-scale fit)
         ref = sm.GLS(m, predicted[:, None], sigma=np.diag(se**2)).fit()
+        known = sm.GLS(m, predicted[:, None], sigma=np.diag(se**2)).fit(cov_type="fixed scale")
         gains.append(ref.params[0])
-        variances.append(ref.bse[0] ** 2)
+        variances.append(max(ref.bse[0], known.bse[0]) ** 2)
     rows += [["group", 0, o, p, p - 0.5, p + 0.5, 96] for o, p in zip(offsets, predicted)]
     results = _measured(tmp_path, rows)
     pd.DataFrame({"lag": 0, "adapter_offset_deg": offsets, "pse_shift_deg": predicted}).to_csv(
@@ -475,9 +477,9 @@ def test_group_cells_of_fewer_than_three_observers_are_left_out_of_the_group_sta
     gains, ses = [], []
     for _, rows in lag0.groupby("observer"):
         se = (rows["ci_high"] - rows["ci_low"]) / (2 * Z)
-        wls = sm.WLS(rows["pse_shift_deg"].to_numpy(), rows[["predicted_deg"]].to_numpy(), weights=1 / se**2).fit()
-        gains.append(wls.params[0])
-        ses.append(wls.bse[0])
+        wls = sm.WLS(rows["pse_shift_deg"].to_numpy(), rows[["predicted_deg"]].to_numpy(), weights=1 / se**2)
+        gains.append(wls.fit().params[0])
+        ses.append(max(wls.fit().bse[0], wls.fit(cov_type="fixed scale").bse[0]))   # never below V known
     g, low, high = combine_gains(gains, ses)
     assert [group["gain"], group["gain_ci_low"], group["gain_ci_high"]] == pytest.approx([g, low, high], rel=1e-5)
     # every group cell of fewer than three observers (a group of two): its statistics are kept, labelled
