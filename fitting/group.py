@@ -352,6 +352,34 @@ def group_curves(shifts: pd.DataFrame, level: float, notes: list, own_tuning=Non
     return tuning, decay, detail, curves
 
 
+def protocol_identity(trials: pd.DataFrame, sidecars: dict | None) -> dict[str, tuple]:
+    """What is known of each observer's protocol: its identity from the sidecars, and the logs' own settings.
+
+    Parameters
+    ----------
+    trials : pandas.DataFrame
+        The checked trials (:func:`fitting.tables.validate_trials`): their
+        ``period_s`` and ``reference_deg`` are written in every row of a log.
+    sidecars : dict or None
+        Observer -> the identity of their sidecars' protocol
+        (:func:`fitting.provenance.protocol_by_observer`); observers without
+        a sidecar are not in it.
+
+    Returns
+    -------
+    dict of str -> tuple
+        Observer -> ``(sidecar identity, period_s, reference_deg)``, None
+        where not known.  Without sidecars the logs still tell two motion
+        periods or two reference directions apart.
+    """
+    sidecars = sidecars or {}
+    columns = ("period_s", "reference_deg")
+    logged = trials.assign(**{c: np.nan for c in columns if c not in trials}).groupby("observer", sort=False)
+    logged = logged[list(columns)].first()
+    return {str(o): (sidecars.get(str(o)), *(None if pd.isna(v) else round(float(v), 9) for v in row))
+            for o, row in zip(logged.index, logged.itertuples(index=False))}
+
+
 def flag_protocols_differ(group: dict, own: dict, mixed: pd.DataFrame | None, protocols: dict) -> None:
     """Add ``protocols-differ`` to the group rows whose observers ran different protocols, in place.
 
@@ -364,15 +392,17 @@ def flag_protocols_differ(group: dict, own: dict, mixed: pd.DataFrame | None, pr
         The observers' ``pse`` and ``aftereffect`` tables.
     mixed : pandas.DataFrame or None
         The mixed model's table (:func:`mixed_model`), over every usable shift.
-    protocols : dict of str -> str
-        Observer -> an identity of their protocol (its SHA-256).  Observers
-        not in it (no sidecar) are passed over.
+    protocols : dict of str -> tuple
+        Observer -> what is known of their protocol (:func:`protocol_identity`):
+        entries that are None are not known and passed over; observers
+        differ when any entry known for two of them differs.
 
     A PSE or shift row pools the observers with a usable row in its cell;
     the tuning and decay rows, the observers of the group curves.
     """
     def differ(observers) -> bool:
-        return len({protocols[o] for o in map(str, observers) if o in protocols}) > 1
+        known = [protocols[o] for o in map(str, observers) if o in protocols]
+        return any(len({k[i] for k in known if k[i] is not None}) > 1 for i in range(len(known[0]))) if known else False
 
     def mark(table, rows) -> None:
         rows = np.asarray(rows, dtype=bool)

@@ -52,7 +52,7 @@ from .errors import InputError
 from .covariance import COVARIANCE_COLUMNS, group_covariance, observer_covariance
 from .flags import NOT_USABLE, flagged_first, join, psychometric_flags, shared_notes, usable
 from .group import (GROUP, flag_protocols_differ, group_aftereffect, group_curves, group_pse, group_weights,
-                    mixed_model)
+                    mixed_model, protocol_identity)
 from .observer import (BY_STATISTIC, INTERVAL_METHODS, AFTEREFFECT_COLUMNS, DECAY_COLUMNS, PSE_COLUMNS, TUNING_COLUMNS,
                        ObserverAnalysis, Options, analyse_observer, condition_table)
 from .page import PAGE, write_page
@@ -322,9 +322,10 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
     """Fit checked trials (from :func:`read_logs`) without writing anything.
 
     Same options as :func:`fit_logs`; returns the :class:`FitReport` with
-    no files.  ``protocols`` (observer -> the SHA-256 of their protocol,
-    :func:`fitting.provenance.protocol_by_observer`) flags group rows that
-    pool observers of different protocols (:func:`fitting.group.flag_protocols_differ`).  With ``map_tasks`` and several observers,
+    no files.  ``protocols`` (observer -> the identity of their sidecars'
+    protocol, :func:`fitting.provenance.protocol_by_observer`) and the logs'
+    own motion periods and reference directions flag group rows that pool
+    observers of different protocols (:func:`fitting.group.flag_protocols_differ`).  With ``map_tasks`` and several observers,
     ``after_observer(analysis) -> {key: (function, argument)}`` may add tasks
     that run on the same workers as soon as an observer's analysis is in
     (:func:`fit_logs` draws the observer's figures so, beside the fits of
@@ -385,8 +386,7 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
                          ("decay_s_ci_high", "decay_ci_high")):
                 d[a] = d[b] * per
         extras["mixed_model"] = mixed_model(tables["aftereffect"], gnotes)
-        if protocols:
-            flag_protocols_differ(group, tables, extras["mixed_model"], protocols)
+        flag_protocols_differ(group, tables, extras["mixed_model"], protocol_identity(trials, protocols))
         if len(group["aftereffect"]):
             group["covariance"] = group_covariance(
                 analyses, group["aftereffect"], group_weights(tables["aftereffect"], opts.level), opts.level)

@@ -124,8 +124,9 @@ def validate_trials(raw: pd.DataFrame, source: str, row_names: list[str] | None 
     pandas.DataFrame
         Columns ``observer, session, trial, condition, is_baseline,
         adapter_offset_deg, lag, track, test_offset_deg, response_cw,
-        timing_ok, practice, period_s, source, line``; ``response_cw`` is NaN
-        for a missed answer.
+        timing_ok, practice, period_s, reference_deg, source, line``;
+        ``response_cw`` is NaN for a missed answer, ``period_s`` and
+        ``reference_deg`` NaN where the log does not have them.
     """
     raw = raw.rename(columns=lambda c: str(c).strip())
     missing = [c for c in REQUIRED_COLUMNS if c not in raw.columns]
@@ -175,6 +176,7 @@ def validate_trials(raw: pd.DataFrame, source: str, row_names: list[str] | None 
         out["period_s"] = period
     else:
         out["period_s"] = np.nan
+    out["reference_deg"] = ck.number("reference_deg", allow_empty=True) if "reference_deg" in raw.columns else np.nan
     out["source"] = source
     out["line"] = names
     return out
@@ -382,24 +384,25 @@ def _check_conditions(trials: pd.DataFrame) -> None:
                                  f"{obs} both have adapter offset {k[0]:g} and lag {k[1]:g}")
 
 
-def _check_one_period(trials: pd.DataFrame) -> None:
-    """Within an observer, one motion period: sessions of protocols with other periods are not pooled.
+def _check_one_protocol(trials: pd.DataFrame) -> None:
+    """Within an observer, one motion period and one reference direction: sessions of other protocols are not pooled.
 
     The sidecars say which protocol each session ran
     (:func:`fitting.provenance.protocol_by_observer` refuses an observer's
-    sessions of different protocols); the log's own ``period_s`` says it
-    too, also for a log whose sidecar is missing.
+    sessions of different protocols); the log's own ``period_s`` and
+    ``reference_deg`` say it too, also for a log whose sidecar is missing.
     """
-    timed = trials[trials["period_s"].notna()]
-    first = timed.groupby("observer", sort=False)["period_s"].transform("first")
-    bad = np.flatnonzero(~np.isclose(timed["period_s"], first, rtol=1e-9, atol=1e-12))
-    if bad.size:
-        row = timed.iloc[bad[0]]
-        was = timed[timed["observer"] == row["observer"]].iloc[0]
-        raise InputError(row["source"], f"{row['line']}, column period_s",
-                         f"{row['period_s']:g} s, but observer {row['observer']}'s {was['line']} of {was['source']} "
-                         f"has {was['period_s']:g} s: sessions of protocols with other motion periods would be pooled "
-                         "into one PSE per condition; fit each protocol's logs on their own")
+    for column, unit, what in (("period_s", " s", "motion periods"), ("reference_deg", " deg", "reference directions")):
+        known = trials[trials[column].notna()]
+        first = known.groupby("observer", sort=False)[column].transform("first")
+        bad = np.flatnonzero(~np.isclose(known[column], first, rtol=1e-9, atol=1e-12))
+        if bad.size:
+            row = known.iloc[bad[0]]
+            was = known[known["observer"] == row["observer"]].iloc[0]
+            raise InputError(row["source"], f"{row['line']}, column {column}",
+                             f"{row[column]:g}{unit}, but observer {row['observer']}'s {was['line']} of "
+                             f"{was['source']} has {was[column]:g}{unit}: sessions of protocols with other {what} "
+                             "would be pooled into one PSE per condition; fit each protocol's logs on their own")
 
 
 def exclude(trials: pd.DataFrame, include_bad_timing: bool = False,
@@ -461,7 +464,7 @@ def read_logs(paths, include_bad_timing: bool = False, include_practice: bool = 
     check_unique_trials(trials)
     check_offsets(trials)
     _check_conditions(trials)
-    _check_one_period(trials)
+    _check_one_protocol(trials)
     kept, counts = exclude(trials, include_bad_timing, include_practice)
     if kept.empty:
         raise InputError(str(files[0]) if len(files) == 1 else "logs", "",

@@ -335,6 +335,39 @@ def test_group_rows_over_observers_of_different_protocols_are_flagged(tmp_path):
 
 
 @pytest.mark.slow
+@pytest.mark.parametrize("setting", [{"period_s": 1.0}, {"reference_deg": 0.0}], ids=["period", "reference"])
+def test_group_rows_over_logs_of_other_periods_or_references_are_flagged_without_sidecars(tmp_path, setting):
+    # before (a hostile-user sweep): with no sidecars, observers of 0.5 s and 1 s periods (or of references 90 and
+    # 0 deg) were pooled into group rows unflagged, a group decay of "0.91 periods" meaning two durations at once;
+    # every log row holds period_s and reference_deg
+    for i, name in enumerate(("O1", "O2", "P1", "P2")):
+        write_log(_observer(name, 70 + i, **(setting if name[0] == "P" else {})), tmp_path / f"{name}.trials.csv")
+    r = fit_logs([str(tmp_path)], str(tmp_path / "out"), n_boot=20, seed=1, figures=False, progress=False)
+    group = [t[t["observer"] == "group"] for t in (r.pse, r.aftereffect, r.tuning, r.decay)]
+    assert all(len(t) for t in group) and len(r.extras["mixed_model"])
+    for t in group + [r.extras["mixed_model"]]:
+        assert t["flags"].str.split().map(lambda w: "protocols-differ" in w).all()
+    for t in (r.pse, r.aftereffect):
+        assert not t.loc[t["observer"] != "group", "flags"].str.contains("protocols-differ").any()
+    # the same logs with one setting throughout: nothing flagged
+    for name in ("P1", "P2"):
+        write_log(_observer(name, 70 + ("O1", "O2", "P1", "P2").index(name)), tmp_path / f"{name}.trials.csv")
+    r = fit_logs([str(tmp_path)], str(tmp_path / "out2"), n_boot=20, seed=1, figures=False, progress=False)
+    assert not any(t["flags"].str.contains("protocols-differ").any() for t in (r.pse, r.aftereffect, r.tuning))
+
+
+def test_one_observers_sessions_of_other_reference_directions_are_refused(tmp_path):
+    # as for the motion period (tests/test_sidecar_match.py): the log's own reference_deg says another protocol
+    write_log(_observer("O1", 80), tmp_path / "O1-s1.trials.csv")
+    write_log(_observer("O1", 81, reference_deg=0.0, session="s2"), tmp_path / "O1-s2.trials.csv")
+    with pytest.raises(InputError) as err:
+        fit_logs([str(tmp_path)], str(tmp_path / "out"), n_boot=0, figures=False, progress=False)
+    said = str(err.value)
+    assert "O1-s2.trials.csv" in said and "column reference_deg: 0 deg, but observer O1's line 2 of" in said, said
+    assert "90 deg: sessions of protocols with other reference directions would be pooled" in said
+
+
+@pytest.mark.slow
 def test_observers_named_alike_but_for_case_and_copied_logs_are_named_in_the_notes(tmp_path):
     # Defect 6 of the hostile sweep. Before: a copy of O1's log renamed o1 was counted as a twelfth observer,
     # the group interval narrowed, and nothing said so.
