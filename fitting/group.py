@@ -104,7 +104,21 @@ def _combine(values: pd.DataFrame, keys: list[str], col: str, low: str, high: st
     out = pd.DataFrame({"mean": c.estimate, "low": c.low, "high": c.high, "n": c.n,
                         "left_out": per_cell["_gone"].to_numpy(), "n_trials": per_cell["_trials"].to_numpy()},
                        index=wide.columns)
-    return out[out["n"] >= 2]
+    return out
+
+
+def _without_lone_cells(m: pd.DataFrame, what: str, names, notes: list | None, unit: str) -> pd.DataFrame:
+    """The cells of ``m`` (:func:`_combine`) with 2 or more observers; a note names the others, which get no row.
+
+    ``names``: the cells' names in the note, one per row of ``m``.
+    """
+    lone = (m["n"] < 2).to_numpy()
+    if notes is not None and lone.any():
+        shown = [n for n, x in zip(names, lone) if x]
+        listed = ", ".join(shown[:4]) + (f" and {len(shown) - 4} more" if len(shown) > 4 else "")
+        notes.append(f"no group {what} where fewer than 2 observers have a usable row: {lone.sum()} of {len(m)} "
+                     f"{unit} ({listed})")
+    return m[~lone]
 
 
 def _row_flags(m: pd.DataFrame) -> list[str]:
@@ -125,6 +139,7 @@ def group_pse(pse: pd.DataFrame, level: float, notes: list | None = None) -> pd.
         _left_out(pse, usable(pse), "group PSEs", notes)
     g = key[usable(key)].groupby("_k", sort=False)
     first = key.groupby("_k", sort=False).first()
+    m = _without_lone_cells(m, "PSE", first.loc[m.index, "condition"], notes, "conditions")
     idx = [k for k in first.index if k in m.index]
     m = m.loc[idx]
     out = pd.DataFrame({"observer": GROUP, "condition": first.loc[idx, "condition"],
@@ -143,6 +158,7 @@ def group_aftereffect(shifts: pd.DataFrame, level: float, notes: list | None = N
     m = _combine(shifts, ["lag", "adapter_offset_deg"], "pse_shift_deg", "ci_low", "ci_high", level)
     if notes is not None:
         _left_out(shifts, usable(shifts), "group shifts", notes)
+    m = _without_lone_cells(m, "shift", [f"lag {lag:g} offset {o:+g}" for lag, o in m.index], notes, "cells")
     out = m.reset_index()
     out = pd.DataFrame({"observer": GROUP, "lag": out["lag"].astype("Int64"),
                         "adapter_offset_deg": out["adapter_offset_deg"],

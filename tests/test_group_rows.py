@@ -334,6 +334,20 @@ def test_group_rows_over_observers_of_different_protocols_are_flagged(tmp_path):
     assert not g.loc[[-60.0, 60.0]].str.contains("protocols-differ").any()
 
 
+def test_a_cell_with_one_usable_observer_gets_no_group_row_and_a_note_says_so():
+    # before (a hostile-user sweep): a group whose second observer answered on one side printed its heading and
+    # no row, and nothing said why
+    rows = [[o, 0, offset, shift, shift - 1.0, shift + 1.0, 24, ""] for o, shift in (("O1", 1.0), ("O2", 2.0))
+            for offset in (-30.0, 30.0)]
+    rows += [["O1", 0, 60.0, 3.0, 2.0, 4.0, 24, ""], ["O2", 0, 60.0, 9.0, 9.0, 9.0, 24, "one-sided not-estimable"]]
+    shifts = pd.DataFrame(rows, columns=["observer", "lag", "adapter_offset_deg", "pse_shift_deg", "ci_low",
+                                         "ci_high", "n_trials", "flags"])
+    notes: list = []
+    group = group_aftereffect(shifts, 0.95, notes)
+    assert list(group["adapter_offset_deg"]) == [-30.0, 30.0]
+    assert "no group shift where fewer than 2 observers have a usable row: 1 of 3 cells (lag 0 offset +60)" in notes
+
+
 @pytest.mark.slow
 @pytest.mark.parametrize("setting", [{"period_s": 1.0}, {"reference_deg": 0.0}], ids=["period", "reference"])
 def test_group_rows_over_logs_of_other_periods_or_references_are_flagged_without_sidecars(tmp_path, setting):
