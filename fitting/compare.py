@@ -349,6 +349,7 @@ class Agreement:
     covariance: str = "diagonal"
     gain_se: float = float("nan")
     chi2_reference: str = ""
+    reference_dof: float = float("nan")      # ν of an F(n, ν) reference (not a column of agreement.csv)
 
 
 def gls_gain(measured, predicted, v_inverse, free_scale: bool = True, rank: int | None = None):
@@ -487,6 +488,7 @@ def agreement(measured, ci_low, ci_high, predicted, prediction_sd=None, covarian
         gain_unweighted=float(np.sum(m * p) / pp) if pp > 0 else float("nan"),
         covariance="diagonal" if covariance is None else "full",
         gain_se=g_se,
+        reference_dof=f_dof,
     )
 
 
@@ -662,6 +664,23 @@ def _chi2_text(row) -> str:
         p = f"p <= {row['chi2_p']:.2g}" if floor else f"p {row['chi2_p']:.3g}"
         return f"chi2 {row['chi2']:.1f} on {row['dof']} points ({p} from {DRAWS} simulated groups)"
     return f"chi2 {row['chi2']:.1f} on {row['dof']} df (p {row['chi2_p']:.3g})"
+
+
+def powerless_chi2_note(observer, a: Agreement) -> str | None:
+    """A note when ``a``'s χ² is read against an F(n, ν) whose 5 % point is more than twice χ²(n)'s, else None.
+
+    ν is the degrees of freedom of the observer's fitted spread; with ν near
+    1 (few trials per condition) the F reference is so wide that hardly any
+    χ² rejects, and a p-value near 1 says nothing of agreement.
+    """
+    if not (np.isfinite(a.reference_dof) and np.isfinite(a.chi2) and a.dof >= 1):
+        return None
+    needed, usual = a.dof * float(special.fdtri(a.dof, a.reference_dof, 0.95)), float(special.chdtri(a.dof, 0.05))
+    if not needed > 2.0 * usual:
+        return None
+    return (f"{observer}: its spread rests on {a.reference_dof:.1f} degrees of freedom, so its chi2 would have to "
+            f"exceed {needed:,.0f} (chi2({a.dof}): {usual:.1f}) to reject at 5 %: the test can hardly reject; read the "
+            "RMSE and the fraction inside the CIs (more trials per condition give the spread more)")
 
 
 def _reduced_rank_notes(table: pd.DataFrame) -> tuple[str, ...]:
@@ -935,7 +954,7 @@ def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figure
     described = _described_only(points)     # a group of fewer than three observers: its statistics describe them
     points["in_statistics"] = ~left_out          # the figure draws the others hollow
     used = points[~left_out]
-    rows, fallback = [], ()
+    rows, fallback, powerless = [], (), ()
     too_few, replicate_notes = few_replicates(None if cov_table is None else
                                               cov_table[cov_table["observer"].isin(used["observer"])])
     for observer, group in used.groupby("observer", sort=False):
@@ -958,6 +977,8 @@ def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figure
                 if np.isfinite(gain):
                     a = replace(a, gain=gain, gain_ci_low=low, gain_ci_high=high)
             part = mine if lag == "all" else mine & (points["lag"].map("{:g}".format) == lag)
+            if lag == "all" and observer != GROUP and observer not in too_few:
+                powerless += tuple(filter(None, [powerless_chi2_note(observer, a)]))
             rows.append({"observer": observer, "lag": lag, **a.__dict__,
                          "points_left_out": int((part & left_out).sum()),
                          "descriptive": observer == GROUP and described})
@@ -965,7 +986,7 @@ def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figure
     table.loc[table["observer"].isin(too_few), ["gain", "gain_ci_low", "gain_ci_high", "chi2", "chi2_p",
                                                 "chi2_reference"]] = np.nan
     notes = (estimable_notes + few_notes + _leave_out_interval_statistics(used, table) + replicate_notes
-             + _undefined_gain_notes(used, table) + _reduced_rank_notes(table) + fallback
+             + _undefined_gain_notes(used, table) + powerless + _reduced_rank_notes(table) + fallback
              + unused_predictions(measured, predictions, interpolate) + (shown.notes if shown else ())
              + (() if results.is_dir() else ("no report page: it is made when the fit's folder is given, not one "
                                                "of its tables",)))

@@ -433,6 +433,22 @@ def test_compare_writes_true_and_false_as_fit_tables_do(tmp_path):
     assert set(points["in_statistics"]) == {"true"}
 
 
+def test_a_chi2_read_against_an_f_with_a_spread_of_few_degrees_of_freedom_is_said_to_have_no_power(tmp_path, capsys):
+    # before (a hostile-user sweep): an observer of 6 trials per track printed "chi2/2.0 read against F(2, 0.6)
+    # (p 0.652)" with no word that at F(2, 0.63) no chi2 below 8,500 rejects at 5 %
+    fit = _fit_folder(tmp_path)
+    cov = pd.read_csv(fit / "aftereffect_covariance.csv")
+    cov.loc[cov["observer"] == "S1", "spread_dof"] = 0.63
+    cov.to_csv(fit / "aftereffect_covariance.csv", index=False)
+    assert main(["compare", str(fit), str(tmp_path / "pred.csv"), "--out", str(tmp_path / "cmp")]) == 0
+    out = capsys.readouterr().out
+    # the 5 % point of chi2 / 8 under F(8, 0.63) (scipy.stats.f) against that of chi2(8) (scipy.stats.chi2)
+    needed, usual = 8 * stats.f.ppf(0.95, 8, 0.63), stats.chi2.ppf(0.95, 8)
+    assert (f"note: S1: its spread rests on 0.6 degrees of freedom, so its chi2 would have to exceed {needed:,.0f} "
+            f"(chi2(8): {usual:.1f}) to reject at 5 %: the test can hardly reject") in out
+    assert "S2: its spread rests on" not in out and "S3: its spread rests on" not in out      # 30 df: no note
+
+
 @pytest.mark.slow
 def test_group_cells_of_fewer_than_three_observers_are_left_out_of_the_group_statistics(tmp_path, capsys):
     # before (defect 5 of the hostile sweep): every group cell entered the group's gain, chi2 and "inside the CIs"
