@@ -453,7 +453,9 @@ def mixed_model(shifts: pd.DataFrame, notes: list) -> pd.DataFrame:
     Returns a table ``term, estimate, std_error, z, p_value, ci_low,
     ci_high, converged, flags`` plus the two variance components; empty with
     a note when the data cannot support it.  statsmodels' warnings become
-    notes, one line per distinct message with a count.
+    one note: the distinct messages with their counts, or, when the model
+    did not converge (its optimiser tries several methods, each warning),
+    their number and the first.
     """
     import statsmodels.formula.api as smf
 
@@ -476,15 +478,21 @@ def mixed_model(shifts: pd.DataFrame, notes: list) -> pd.DataFrame:
         except (np.linalg.LinAlgError, ValueError) as exc:
             notes.append(f"mixed model failed: {exc}")
             return pd.DataFrame(columns=cols)
-    notes += [f"mixed model: {m}" for m in condense(w.message for w in caught)]
+        fe, se, ci = res.fe_params, res.bse_fe, res.conf_int()     # their warnings (a singular fit) are caught too
+        z, p = res.tvalues, res.pvalues
     converged = bool(res.converged)
+    said = condense(w.message for w in caught)
     if not converged:
-        notes.append("mixed model did not converge")
-    fe = res.fe_params
-    ci = res.conf_int().loc[fe.index]
+        notes.append("mixed model did not converge (its rows are flagged model-not-converged)"
+                     + (f"; statsmodels warned {len(caught)} times, first: "
+                        f"{next(m for m in (str(w.message).strip() for w in caught) if m).splitlines()[0]}"
+                        if said else ""))
+    elif said:
+        notes.append(f"mixed model: statsmodels warned: {'; '.join(m.rstrip('.') for m in said)}")
+    ci = ci.loc[fe.index]
     out = pd.DataFrame({"term": fe.index, "estimate": fe.to_numpy(),
-                        "std_error": res.bse_fe.to_numpy(), "z": res.tvalues.loc[fe.index].to_numpy(),
-                        "p_value": res.pvalues.loc[fe.index].to_numpy(),
+                        "std_error": se.to_numpy(), "z": z.loc[fe.index].to_numpy(),
+                        "p_value": p.loc[fe.index].to_numpy(),
                         "ci_low": ci.iloc[:, 0].to_numpy(), "ci_high": ci.iloc[:, 1].to_numpy()})
     scale = float(res.scale)
     tau2 = float(res.cov_re.iloc[0, 0])

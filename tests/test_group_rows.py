@@ -6,6 +6,7 @@ test_inference.py.
 """
 
 import html
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -346,6 +347,24 @@ def test_a_cell_with_one_usable_observer_gets_no_group_row_and_a_note_says_so():
     group = group_aftereffect(shifts, 0.95, notes)
     assert list(group["adapter_offset_deg"]) == [-30.0, 30.0]
     assert "no group shift where fewer than 2 observers have a usable row: 1 of 3 cells (lag 0 offset +60)" in notes
+
+
+def test_a_mixed_model_that_does_not_converge_is_one_note():
+    # before (a hostile-user sweep): seven notes of statsmodels' optimiser chatter ("Retrying MixedLM optimization
+    # with lbfgs", "|grad| = 1.66", ...) and then "mixed model did not converge".  Three observers with the same
+    # shifts leave no variance between observers, where statsmodels' MixedLM (REML) does not converge
+    from fitting.group import mixed_model
+
+    shift = dict(zip([(0, -30.0), (0, 30.0), (2, -30.0), (2, 30.0)], np.random.default_rng(0).normal(0, 2, 4)))
+    shifts = pd.DataFrame([(o, lag, offset, v, "") for o in ("O1", "O2", "O3") for (lag, offset), v in shift.items()],
+                          columns=["observer", "lag", "adapter_offset_deg", "pse_shift_deg", "flags"])
+    notes: list = []
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")      # none reaches the console (before, a RuntimeWarning of its sqrt did)
+        table = mixed_model(shifts, notes)
+    assert len(table) and not table["converged"].any() and table["flags"].str.contains("model-not-converged").all()
+    assert len(notes) == 1 and notes[0].startswith("mixed model did not converge (its rows are flagged "
+                                                   "model-not-converged); statsmodels warned "), notes
 
 
 @pytest.mark.slow
