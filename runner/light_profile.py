@@ -18,6 +18,7 @@ colour mode) and its warm-up state at the time of measurement.
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import math
 import os
@@ -218,7 +219,8 @@ def write_atomically(path: str | Path, text: str) -> Path:
             os.fsync(f.fileno())
         os.replace(tmp, p)
     except OSError as exc:
-        tmp.unlink(missing_ok=True)
+        with contextlib.suppress(OSError):      # a read-only folder refuses this too: the first error is the one said
+            tmp.unlink(missing_ok=True)
         raise InputError(str(p), "--out", f"cannot be written ({exc.strerror})") from None
     return p
 

@@ -20,7 +20,9 @@ from __future__ import annotations
 import csv
 import fcntl
 import os
+import shutil
 import sys
+import tempfile
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -284,6 +286,36 @@ def readings_path(out: str | Path) -> Path:
     return p.with_name(p.stem + ".readings.csv")
 
 
+def _write_profile_and_figure(fits, out: Path, text: str) -> tuple[Path, list[str]]:
+    """Write the profile ``text`` to ``out`` and its figure beside it (``.png``, ``.pdf``), together or not at all.
+
+    The figure is drawn into a hidden folder beside ``out`` first; only when
+    it is whole is the profile written (through a temporary file) and the
+    figure moved to its names.  A full disk or a read-only folder is one
+    :class:`~fitting.errors.InputError` naming ``--out``, with no new file.
+    """
+    from fitting.display_figure import light_figure
+
+    base = out.with_suffix("")
+    staging = None
+    try:
+        if out.is_dir():
+            raise InputError(str(out), "--out", "is a folder; expected a file name for the profile")
+        out.parent.mkdir(parents=True, exist_ok=True)
+        staging = Path(tempfile.mkdtemp(prefix=f".{base.name}.figure-", dir=out.parent))
+        drawn = light_figure(fits, staging / base.name, title=f"light profile {out.name}")
+        path = write_atomically(out, text)
+        figures = [str(base.with_suffix(Path(f).suffix)) for f in drawn]
+        for f, final in zip(drawn, figures):
+            os.replace(f, final)
+    except OSError as exc:
+        raise InputError(str(out), "--out", f"cannot be written ({exc.strerror or exc})") from None
+    finally:
+        if staging is not None:
+            shutil.rmtree(staging, ignore_errors=True)
+    return path, figures
+
+
 def finish(readings: Readings, out: str | Path, screen_cm, screen_px, refresh_hz: float | None, field: str,
            surround_level: float, label: str = "", fit_anyway: bool = False, measured_utc: datetime | None = None,
            stream=None) -> Path:
@@ -313,8 +345,6 @@ def finish(readings: Readings, out: str | Path, screen_cm, screen_px, refresh_hz
     ReadingsRefused
         Problems in the readings (every one is printed first), exit 2.
     """
-    from fitting.display_figure import light_figure
-
     stream = stream or sys.stdout
     if "grey" not in readings.channels:
         raise InputError(readings.source, "gun", "no grey readings (all guns at the same level); a profile needs them")
@@ -335,8 +365,7 @@ def finish(readings: Readings, out: str | Path, screen_cm, screen_px, refresh_hz
     when = measured_utc or datetime.now(timezone.utc)
     text = profile_text(fits, when, screen_cm, screen_px, refresh_hz, field, surround_level, label,
                         fitted_anyway=any(f.problems for f in fits.values()))
-    path = write_atomically(out, text)
-    figures = light_figure(fits, path.with_suffix(""), title=f"light profile {path.name}")
+    path, figures = _write_profile_and_figure(fits, Path(out), text)
     lines += [f"light profile: {path}", f"figure: {figures[0]}",
               "this calibration holds only for this display, its current settings (brightness, contrast, colour "
               "mode) and its warm-up state; measure again after changing any of them"]

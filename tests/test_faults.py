@@ -197,6 +197,7 @@ def test_last_row_without_its_newline_is_torn_cut_and_rerun(capsys, tmp_path, wh
 
 
 STREAM = PROTOCOLS / "stream_nback.toml"
+LIGHT_READINGS = PROTOCOLS / "light" / "example_readings.csv"
 
 
 @pytest.fixture(scope="module")
@@ -572,13 +573,30 @@ def test_full_tmpfs_during_simulate_and_fit(capsys, tmp_path, whole):
 
 
 def test_read_only_folder(capsys, tmp_path, whole):
+    # measure-light: before (a hostile-user sweep), two chained tracebacks, exit 1 (the temporary file's removal
+    # failed too, hiding the first error)
     ro = tmp_path / "ro"
     with tmpfs(ro, read_only=True):
         for args in (["simulate", PILOT, "--out", ro / "logs"], ["fit", whole, "--out", ro / "fit"],
-                     ["compare", whole, PILOT, "--out", ro / "cmp"]):
+                     ["compare", whole, PILOT, "--out", ro / "cmp"],
+                     ["measure-light", "--readings", LIGHT_READINGS, "--out", ro / "lab.toml"]):
             code, err = cli(capsys, *args)
             assert code == 2 and "read-only" in one_line(err).lower()
             assert not list(ro.iterdir())
+
+
+def test_a_light_profile_and_its_figure_are_written_together_or_not_at_all(capsys, tmp_path):
+    # before (a hostile-user sweep): on a nearly full disk the profile was written, then drawing its figure ended in
+    # three chained tracebacks, exit 1, the profile left without its figure and nothing said
+    small = tmp_path / "small"
+    with tmpfs(small, "40k"):
+        code, err = cli(capsys, "measure-light", "--readings", LIGHT_READINGS, "--out", small / "lab.toml")
+        assert code == 2 and one_line(err) == f"aftershift: {small / 'lab.toml'}: --out: cannot be written (No space " \
+                                              "left on device)"
+        assert not list(small.iterdir())
+    with tmpfs(small, "400k"):           # room enough: profile and figure, and no staging folder left
+        assert cli(capsys, "measure-light", "--readings", LIGHT_READINGS, "--out", small / "lab.toml")[0] == 0
+        assert sorted(p.name for p in small.iterdir()) == ["lab.pdf", "lab.png", "lab.toml"]
 
 
 @pytest.mark.parametrize("command", ["simulate", "fit", "plan", "compare"])
