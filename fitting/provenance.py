@@ -23,7 +23,7 @@ from pathlib import Path
 from typing import Callable
 
 from .errors import InputError
-from .logfile import LOG_SUFFIX, cell_count_problem, examine_tail, find_logs
+from .logfile import LOG_SUFFIX, cell_count_problem, examine_tail, find_logs, is_being_written
 from .outputs import write_atomic
 
 #: Name of the file holding the report's provenance in a fit folder.
@@ -308,7 +308,7 @@ def _session_record(log: Path) -> tuple[dict, dict | None]:
     record = {"log": str(log), "sidecar": None, "observer": None, "session": None, "kind": None,
               "protocol_sha256": None, "seed": None, "started": None, "ended": None, "ended_by": None,
               "trials": None, "measured_refresh_hz": None, "dropped_frames": None, "acknowledged": None,
-              "packages": {}, "count_problem": None}
+              "packages": {}, "count_problem": None, "being_written": is_being_written(log)}
     if not side.exists():
         record["problem"] = "no sidecar beside the log: protocol, seed and versions unknown"
         return record, None

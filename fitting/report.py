@@ -595,10 +595,15 @@ def session_notes(data: dict) -> list[tuple[str, str]]:
         if s.get("count_problem"):
             notes.append((str(s.get("observer")), s["count_problem"]))
         how = s.get("ended_by")
-        if how is not None and how != "completed":
-            ended = ("never recorded its end (killed, or still running)" if how == "running"
-                     else f"ended {how!r}")
-            kept = "" if s.get("trials") is None else f"; {s['trials']} trials in the log by its sidecar"
+        if s.get("being_written"):
+            notes.append((str(s.get("observer")), f"session {s.get('session')} is being written now (a running "
+                          "session holds its log): this fit has the trials logged so far; fit again when it has "
+                          "ended"))
+        elif how is not None and how != "completed":
+            # a part still "running" has no count of its own yet: the sidecar's is that of the parts before it
+            ended = "never recorded its end (killed)" if how == "running" else f"ended {how!r}"
+            kept = ("" if s.get("trials") is None or how == "running"
+                    else f"; {s['trials']} trials in the log by its sidecar")
             notes.append((str(s.get("observer")), f"session {s.get('session')} did not complete: its last part "
                           f"{ended}{kept} (continue it with --resume before fitting, if it was not meant to end "
                           "there)"))

@@ -132,8 +132,22 @@ def test_a_session_that_did_not_complete_is_noted_by_fit(capsys, sessions, tmp_p
     code, err = cli(capsys, "fit", folder, "--out", tmp_path / "fit", "--bootstrap", "0", "--no-figures")
     assert code == 0, err
     summary = (tmp_path / "fit" / "summary.txt").read_text()
-    assert "session s1 did not complete: its last part never recorded its end (killed, or still running)" in summary
+    assert "session s1 did not complete: its last part never recorded its end (killed) (continue it" in summary
     assert summary.count("did not complete") == 1                                      # sim02's completed
+    # while a session holds its log's lock it is being written, and says so; before (a hostile-user sweep) every
+    # fit during a resume repeated "26 trials in the log by its sidecar", the count when the resumed part began
+    import fcntl
+
+    from fitting.logfile import lock_path
+
+    with open(lock_path(folder / "sim01-s1.trials.csv"), "a") as held:
+        fcntl.flock(held, fcntl.LOCK_EX)            # as runner.session_lock holds it
+        code, err = cli(capsys, "fit", folder, "--out", tmp_path / "fit2", "--bootstrap", "0", "--no-figures")
+    assert code == 0, err
+    summary = (tmp_path / "fit2" / "summary.txt").read_text()
+    assert "session s1 is being written now (a running session holds its log): this fit has the trials logged so " \
+           "far; fit again when it has ended" in summary
+    assert "did not complete" not in summary and "by its sidecar" not in summary
 
 
 STREAM = PILOT.parent / "stream_nback.toml"
