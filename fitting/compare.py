@@ -977,8 +977,8 @@ def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figure
                 if np.isfinite(gain):
                     a = replace(a, gain=gain, gain_ci_low=low, gain_ci_high=high)
             part = mine if lag == "all" else mine & (points["lag"].map("{:g}".format) == lag)
-            if lag == "all" and observer != GROUP and observer not in too_few:
-                powerless += tuple(filter(None, [powerless_chi2_note(observer, a)]))
+            weak = powerless_chi2_note(observer, a) if lag == "all" and observer not in too_few else None
+            powerless += (weak,) if weak else ()
             rows.append({"observer": observer, "lag": lag, **a.__dict__,
                          "points_left_out": int((part & left_out).sum()),
                          "descriptive": observer == GROUP and described})

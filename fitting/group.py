@@ -418,7 +418,7 @@ def flag_protocols_differ(group: dict, own: dict, mixed: pd.DataFrame | None, pr
     """
     def differ(observers) -> bool:
         known = [protocols[o] for o in map(str, observers) if o in protocols]
-        return any(len({k[i] for k in known if k[i] is not None}) > 1 for i in range(len(known[0]))) if known else False
+        return any(len({k[i] for k in known} - {None}) > 1 for i in range(len(known[0]) if known else 0))
 
     def mark(table, rows) -> None:
         rows = np.asarray(rows, dtype=bool)
@@ -481,14 +481,12 @@ def mixed_model(shifts: pd.DataFrame, notes: list) -> pd.DataFrame:
         fe, se, ci = res.fe_params, res.bse_fe, res.conf_int()     # their warnings (a singular fit) are caught too
         z, p = res.tvalues, res.pvalues
     converged = bool(res.converged)
-    said = condense(w.message for w in caught)
+    messages = [str(w.message).strip().splitlines()[0] for w in caught if str(w.message).strip()]
     if not converged:
         notes.append("mixed model did not converge (its rows are flagged model-not-converged)"
-                     + (f"; statsmodels warned {len(caught)} times, first: "
-                        f"{next(m for m in (str(w.message).strip() for w in caught) if m).splitlines()[0]}"
-                        if said else ""))
-    elif said:
-        notes.append(f"mixed model: statsmodels warned: {'; '.join(m.rstrip('.') for m in said)}")
+                     + (f"; statsmodels warned {len(messages)} times, first: {messages[0]}" if messages else ""))
+    elif messages:
+        notes.append(f"mixed model: statsmodels warned: {'; '.join(m.rstrip('.') for m in condense(messages))}")
     ci = ci.loc[fe.index]
     out = pd.DataFrame({"term": fe.index, "estimate": fe.to_numpy(),
                         "std_error": se.to_numpy(), "z": z.loc[fe.index].to_numpy(),
