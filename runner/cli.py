@@ -185,7 +185,7 @@ def cmd_run(args) -> int:
     from runner.launch import (check_can_start, check_resume, close_complete_log, completed_rows, end_running_part,
                                run_on_screen)
     from runner.screens import screen_texts
-    from runner.trial_log import check_identifier
+    from runner.trial_log import RESUME_ADVICE, StorageError, check_identifier
     from runner.x_connection import on_connection_lost
 
     check_identifier(args.observer, "--observer")
@@ -237,6 +237,9 @@ def cmd_run(args) -> int:
         )
     except KeyboardInterrupt as exc:    # the stop line says whether the last quick fit was shown
         stop = exc
+    except StorageError as exc:         # a full disk: name the whole command that continues, as simulate does
+        exc.message = exc.message.replace(RESUME_ADVICE, f"continue: {_resume_command(args)}")
+        raise
     except Exception as exc:
         if not _from_display(exc):
             raise

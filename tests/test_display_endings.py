@@ -55,6 +55,20 @@ sys.exit(cli.console())
 """
 
 
+#: ``aftershift`` whose disk is full when the first trial's row is written (os.write fails as on a full disk).
+DISK_FULL_AT_THE_FIRST_ROW = """
+import errno, os, sys
+from runner import cli, trial_log
+real = os.write
+def write(fd, data):
+    if data[:4] == b"e01,":
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+    return real(fd, data)
+trial_log.os.write = write
+sys.exit(cli.console())
+"""
+
+
 def _rows(tmp_path: Path) -> int:
     log = tmp_path / "d" / "e01-s1.trials.csv"
     return log.read_bytes().count(b"\n") - 1 if log.exists() else 0
@@ -161,6 +175,28 @@ name = os.environ["TEST_KILL_BEFORE"]
 setattr(presenter, name, killed_before(getattr(presenter, name)))
 sys.exit(cli.console())
 """
+
+
+def test_a_full_disk_during_a_session_names_the_whole_command_that_continues(own_x_server, tmp_path):  # noqa: F811
+    # before (a hostile-user sweep): "free some space, then continue with --resume", while simulate names its
+    # whole command; a person's session is resumed by typing it
+    require_xdotool()
+    env = own_x_server.env()
+    process, _ = _start(tmp_path, env, ("-c", DISK_FULL_AT_THE_FIRST_ROW))
+    window = find_window("aftershift", env, process=process)
+    keys = itertools.cycle(["space", "right"])
+    end = time.monotonic() + 60
+    while process.poll() is None:
+        assert time.monotonic() < end, "the session did not reach its first trial's row in time"
+        send_key(window, next(keys), env)
+        time.sleep(0.25)
+    err = process.stderr.read()
+    lines = err.strip().splitlines()
+    assert process.returncode == 2 and len(lines) == 1, err
+    assert "disk is full" in lines[0] and lines[0].endswith(
+        f"continue: aftershift run {TWO} --observer e01 --out {tmp_path / 'd'} --windowed "
+        f"{safety.REFRESH_OVERRIDE_OPTION} --resume"), lines[0]
+    assert _parts(tmp_path) == [("disk full", 0)]
 
 
 @pytest.mark.parametrize("step", ["open_window", "measure_refresh"])
