@@ -25,6 +25,22 @@ def test_importing_the_display_package_loads_no_psychopy():
 
 
 @pytest.mark.slow  # left out of the quick subset
+def test_preference_folders_of_processes_that_ended_without_cleaning_up_are_removed(tmp_path):
+    # before: every process killed with SIGKILL, or ended by Xlib when its X server went away, left its temporary
+    # psychopy folder in /tmp (142 in a day of test runs here); the next import removes those whose process is gone
+    prefix = "aftershift-psychopy-"        # runner/display/_psychopy.py: aftershift-psychopy-<pid>-<random>
+    ended = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True)
+    dead, alive = tmp_path / f"{prefix}{ended.stdout.strip()}-x1", tmp_path / f"{prefix}{os.getpid()}-x2"
+    other = tmp_path / f"{prefix}nopid"                  # not one of ours by its name: kept
+    for folder in (dead, alive, other):
+        (folder / ".psychopy3").mkdir(parents=True)
+    env = {**{k: v for k, v in os.environ.items() if k != "DISPLAY"}, "TMPDIR": str(tmp_path)}
+    out = _python("import runner.display._psychopy", env)       # no display: refused, after the clean-up
+    assert "DISPLAY" in out.stderr
+    assert sorted(p.name for p in tmp_path.iterdir()) == sorted([alive.name, other.name])   # its own removed at exit
+
+
+@pytest.mark.slow  # left out of the quick subset
 def test_no_display_is_a_one_line_error(tmp_path):
     env = {k: v for k, v in os.environ.items() if k != "DISPLAY"}
     out = subprocess.run([sys.executable, "-m", "runner.cli", "display-test", "--seconds", "1", "--report",

@@ -9,7 +9,9 @@ a private temporary folder while psychopy is imported (psychopy reads it only
 then) and is restored right after; the folder is removed when the process
 exits.  Nothing of psychopy's preferences is read from, or written to, the
 real home folder, and no gamma table is touched (see
-:mod:`runner.display.window`).
+:mod:`runner.display.window`).  A process that ends without its exit
+handlers (SIGKILL, a lost X server) leaves its folder; the next import
+removes the folders of processes that no longer exist.
 
 Without an X display (``DISPLAY`` unset or unreachable) the import fails
 with a one-line :class:`fitting.errors.InputError` naming ``DISPLAY``, which
@@ -30,7 +32,36 @@ import tempfile
 
 from fitting.errors import InputError
 
-_PREFS_HOME = tempfile.mkdtemp(prefix="aftershift-psychopy-")
+#: The temporary preference folders: ``aftershift-psychopy-<pid>-<random>``.
+PREFIX = "aftershift-psychopy-"
+
+
+def _remove_folders_of_ended_processes(folder: str) -> None:
+    """Remove the preference folders that processes which ended without their exit handlers left behind.
+
+    A process killed (SIGKILL) or ended by Xlib when its X server went away
+    cannot remove its folder at exit; its process id in the folder's name
+    tells the next one that nobody uses it any more.  A folder whose process
+    is alive (or cannot be asked about) is kept.
+    """
+    try:
+        names = os.listdir(folder)
+    except OSError:
+        return
+    for name in names:
+        pid = name[len(PREFIX):].partition("-")[0]
+        if not (name.startswith(PREFIX) and pid.isdigit()):
+            continue
+        try:
+            os.kill(int(pid), 0)
+        except ProcessLookupError:
+            shutil.rmtree(os.path.join(folder, name), ignore_errors=True)
+        except (OSError, OverflowError):
+            pass
+
+
+_remove_folders_of_ended_processes(tempfile.gettempdir())
+_PREFS_HOME = tempfile.mkdtemp(prefix=f"{PREFIX}{os.getpid()}-")
 atexit.register(shutil.rmtree, _PREFS_HOME, ignore_errors=True)
 _real_home = os.environ.get("HOME")
 os.environ["HOME"] = _PREFS_HOME
