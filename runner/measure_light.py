@@ -287,33 +287,38 @@ def readings_path(out: str | Path) -> Path:
 
 
 def _write_profile_and_figure(fits, out: Path, text: str) -> tuple[Path, list[str]]:
-    """Write the profile ``text`` to ``out`` and its figure beside it (``.png``, ``.pdf``), together or not at all.
+    """Write the profile ``text`` to ``out`` and its figure beside it (``.png``, ``.pdf`` of the same stem).
 
-    The figure is drawn into a hidden folder beside ``out`` first; only when
-    it is whole is the profile written (through a temporary file) and the
-    figure moved to its names.  A full disk or a read-only folder is one
-    :class:`~fitting.errors.InputError` naming ``--out``, with no new file.
+    Figure and profile are written into a hidden folder beside ``out``
+    first; then the figure is moved to its names and the profile last, so
+    it appears only once its figure is in place and no rename needs room.  A full disk, a
+    read-only folder or a figure name that is a folder is one
+    :class:`~fitting.errors.InputError` naming ``--out`` with no new file.
+    (A process killed between those renames leaves the earlier profile
+    beside the new figure, and the hidden folder: run the command again.)
     """
     from fitting.display_figure import light_figure
 
-    base = out.with_suffix("")
     staging = None
     try:
-        if out.is_dir():
-            raise InputError(str(out), "--out", "is a folder; expected a file name for the profile")
+        for name in (out, *(out.with_name(f"{out.stem}.{ext}") for ext in ("png", "pdf"))):
+            if name.is_dir():
+                raise InputError(str(out), "--out", f"{name} is a folder; expected a file name for the profile "
+                                 "and room for its figure")
         out.parent.mkdir(parents=True, exist_ok=True)
-        staging = Path(tempfile.mkdtemp(prefix=f".{base.name}.figure-", dir=out.parent))
-        drawn = light_figure(fits, staging / base.name, title=f"light profile {out.name}")
-        path = write_atomically(out, text)
-        figures = [str(base.with_suffix(Path(f).suffix)) for f in drawn]
+        staging = Path(tempfile.mkdtemp(prefix=f".{out.stem}.figure-", dir=out.parent))
+        drawn = light_figure(fits, staging / "figure", title=f"light profile {out.name}")
+        ready = write_atomically(staging / out.name, text)      # every byte on disk before anything is replaced
+        figures = [str(out.with_name(out.stem + Path(f).suffix)) for f in drawn]   # lab.display.v2.png
         for f, final in zip(drawn, figures):
             os.replace(f, final)
+        os.replace(ready, out)
     except OSError as exc:
         raise InputError(str(out), "--out", f"cannot be written ({exc.strerror or exc})") from None
     finally:
         if staging is not None:
             shutil.rmtree(staging, ignore_errors=True)
-    return path, figures
+    return out, figures
 
 
 def finish(readings: Readings, out: str | Path, screen_cm, screen_px, refresh_hz: float | None, field: str,

@@ -594,9 +594,23 @@ def test_a_light_profile_and_its_figure_are_written_together_or_not_at_all(capsy
         assert code == 2 and one_line(err) == f"aftershift: {small / 'lab.toml'}: --out: cannot be written (No space " \
                                               "left on device)"
         assert not list(small.iterdir())
-    with tmpfs(small, "400k"):           # room enough: profile and figure, and no staging folder left
+    with tmpfs(small, "800k"):           # room enough: profile and figure, and no staging folder left
         assert cli(capsys, "measure-light", "--readings", LIGHT_READINGS, "--out", small / "lab.toml")[0] == 0
         assert sorted(p.name for p in small.iterdir()) == ["lab.pdf", "lab.png", "lab.toml"]
+        # a name of several dots keeps them all in its figure's (before: lab.display.png for both of these, the
+        # second profile's figure replacing the first's)
+        for version in ("v1", "v2"):
+            assert cli(capsys, "measure-light", "--readings", LIGHT_READINGS, "--out",
+                       small / f"lab.display.{version}.toml")[0] == 0
+        assert {p.name for p in small.iterdir()} >= {f"lab.display.{v}.{e}" for v in ("v1", "v2")
+                                                      for e in ("toml", "png", "pdf")}
+        # a figure's name taken by a folder: refused before anything is written (before: the profile was
+        # replaced, then "cannot be written")
+        (small / "other.pdf").mkdir()
+        code, err = cli(capsys, "measure-light", "--readings", LIGHT_READINGS, "--out", small / "other.toml")
+        assert code == 2 and "other.pdf is a folder" in one_line(err)
+        assert not (small / "other.toml").exists() and not (small / "other.png").exists()
+        assert not [p for p in small.iterdir() if p.name.startswith(".")]
 
 
 @pytest.mark.parametrize("command", ["simulate", "fit", "plan", "compare"])
