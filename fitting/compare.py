@@ -658,12 +658,12 @@ def _chi2_text(row) -> str:
     """The χ² of an agreement row with the distribution its p-value is read from."""
     reference = str(row.get("chi2_reference") or "")
     if reference.startswith("F"):
-        return f"chi2 {row['chi2']:.1f}, chi2/{row['dof']} read against {reference} (p {row['chi2_p']:.3g})"
+        return f"chi2 {row['chi2']:.1f}, chi2/{row['dof']:g} read against {reference} (p {row['chi2_p']:.3g})"
     if reference.startswith("simulated"):
         floor = row["chi2_p"] * (DRAWS + 1) <= 1.0 + 1e-6      # no simulated group reached it
         p = f"p <= {row['chi2_p']:.2g}" if floor else f"p {row['chi2_p']:.3g}"
-        return f"chi2 {row['chi2']:.1f} on {row['dof']} points ({p} from {DRAWS} simulated groups)"
-    return f"chi2 {row['chi2']:.1f} on {row['dof']} df (p {row['chi2_p']:.3g})"
+        return f"chi2 {row['chi2']:.1f} on {row['dof']:g} points ({p} from {DRAWS} simulated groups)"
+    return f"chi2 {row['chi2']:.1f} on {row['dof']:g} df (p {row['chi2_p']:.3g})"
 
 
 def powerless_chi2_note(observer, a: Agreement) -> str | None:

@@ -396,6 +396,28 @@ def protocol_identity(trials: pd.DataFrame, sidecars: dict | None) -> dict[str, 
             for o, row in zip(logged.index, logged.itertuples(index=False))}
 
 
+def logged_settings_note(identity: dict[str, tuple]) -> str | None:
+    """A note naming who logged which motion period or reference direction when they differ, else None.
+
+    ``identity``: :func:`protocol_identity`.  (Sidecars that differ are named
+    by ``fitting.report.protocols_note``.)
+    """
+    parts = []
+    for i, what, unit in ((1, "motion periods", " s"), (2, "reference directions", " deg")):
+        who: dict[float, list[str]] = {}
+        for observer, known in identity.items():
+            if known[i] is not None:
+                who.setdefault(known[i], []).append(observer)
+        if len(who) > 1:
+            parts.append(f"{what} " + "; ".join(
+                f"{value:g}{unit} ({', '.join(names[:4])}{f' and {len(names) - 4} more' if len(names) > 4 else ''})"
+                for value, names in sorted(who.items())))
+    if not parts:
+        return None
+    return ("the observers' logs show different " + " and ".join(parts)
+            + ": group rows that pool them are flagged protocols-differ")
+
+
 def flag_protocols_differ(group: dict, own: dict, mixed: pd.DataFrame | None, protocols: dict) -> None:
     """Add ``protocols-differ`` to the group rows whose observers ran different protocols, in place.
 
@@ -481,7 +503,8 @@ def mixed_model(shifts: pd.DataFrame, notes: list) -> pd.DataFrame:
         fe, se, ci = res.fe_params, res.bse_fe, res.conf_int()     # their warnings (a singular fit) are caught too
         z, p = res.tvalues, res.pvalues
     converged = bool(res.converged)
-    messages = [str(w.message).strip().splitlines()[0] for w in caught if str(w.message).strip()]
+    messages = [str(w.message).strip().splitlines()[0].replace(" Check mle_retvals", "")
+                for w in caught if str(w.message).strip()]          # statsmodels' advice to its own users
     if not converged:
         notes.append("mixed model did not converge (its rows are flagged model-not-converged)"
                      + (f"; statsmodels warned {len(messages)} times, first: {messages[0]}" if messages else ""))

@@ -302,13 +302,21 @@ def count_problem(log: Path, data: dict) -> str | None:
     return f"{log}: holds {held} trials, but its sidecar counted {counted} when its last part ended ({ended_by}): {what}"
 
 
+def _now_utc() -> str:
+    """The time now, UTC, to the minute (as ``2026-12-05 20:31 UTC``)."""
+    from datetime import datetime, timezone
+
+    return datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
+
+
 def _session_record(log: Path) -> tuple[dict, dict | None]:
     """One session's facts and its protocol record (path, sha256, text) if known."""
     side = sidecar_path(log)
     record = {"log": str(log), "sidecar": None, "observer": None, "session": None, "kind": None,
               "protocol_sha256": None, "seed": None, "started": None, "ended": None, "ended_by": None,
               "trials": None, "measured_refresh_hz": None, "dropped_frames": None, "acknowledged": None,
-              "packages": {}, "count_problem": None, "being_written": is_being_written(log)}
+              "packages": {}, "count_problem": None,
+              "being_written": _now_utc() if is_being_written(log) else None}     # when it was seen so
     if not side.exists():
         record["problem"] = "no sidecar beside the log: protocol, seed and versions unknown"
         return record, None

@@ -52,7 +52,7 @@ from .errors import InputError
 from .covariance import COVARIANCE_COLUMNS, group_covariance, observer_covariance
 from .flags import NOT_USABLE, flagged_first, join, psychometric_flags, shared_notes, usable
 from .group import (GROUP, flag_protocols_differ, group_aftereffect, group_curves, group_pse, group_weights,
-                    mixed_model, protocol_identity)
+                    logged_settings_note, mixed_model, protocol_identity)
 from .observer import (BY_STATISTIC, INTERVAL_METHODS, AFTEREFFECT_COLUMNS, DECAY_COLUMNS, PSE_COLUMNS, TUNING_COLUMNS,
                        ObserverAnalysis, Options, analyse_observer, condition_table)
 from .page import PAGE, write_page
@@ -386,7 +386,9 @@ def fit_trials(trials: pd.DataFrame, n_boot: int = 1000, seed: int = 0, lapse="f
                          ("decay_s_ci_high", "decay_ci_high")):
                 d[a] = d[b] * per
         extras["mixed_model"] = mixed_model(tables["aftereffect"], gnotes)
-        flag_protocols_differ(group, tables, extras["mixed_model"], protocol_identity(trials, protocols))
+        identity = protocol_identity(trials, protocols)
+        flag_protocols_differ(group, tables, extras["mixed_model"], identity)
+        gnotes += [n for n in [logged_settings_note(identity)] if n]
         if len(group["aftereffect"]):
             group["covariance"] = group_covariance(
                 analyses, group["aftereffect"], group_weights(tables["aftereffect"], opts.level), opts.level)
@@ -596,9 +598,9 @@ def session_notes(data: dict) -> list[tuple[str, str]]:
             notes.append((str(s.get("observer")), s["count_problem"]))
         how = s.get("ended_by")
         if s.get("being_written"):
-            notes.append((str(s.get("observer")), f"session {s.get('session')} is being written now (a running "
-                          "session holds its log): this fit has the trials logged so far; fit again when it has "
-                          "ended"))
+            notes.append((str(s.get("observer")), f"session {s.get('session')} was being written when this fit read "
+                          f"it ({s['being_written']}; a running session held its log): this fit has the trials "
+                          "logged by then; fit again when it has ended"))
         elif how is not None and how != "completed":
             # a part still "running" has no count of its own yet: the sidecar's is that of the parts before it
             ended = "never recorded its end (killed)" if how == "running" else f"ended {how!r}"

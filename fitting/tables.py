@@ -176,7 +176,9 @@ def validate_trials(raw: pd.DataFrame, source: str, row_names: list[str] | None 
         out["period_s"] = period
     else:
         out["period_s"] = np.nan
-    out["reference_deg"] = ck.number("reference_deg", allow_empty=True) if "reference_deg" in raw.columns else np.nan
+    # one direction, one number: 450 and 90 are the same reference
+    out["reference_deg"] = np.mod(ck.number("reference_deg", allow_empty=True), 360.0) \
+        if "reference_deg" in raw.columns else np.nan
     out["source"] = source
     out["line"] = names
     return out

@@ -314,6 +314,7 @@ def test_shifts_flagged_not_estimable_are_left_out_with_a_note(tmp_path, capsys)
     out, err = capsys.readouterr()
     assert err == ""
     table = pd.read_csv(tmp_path / "cmp" / "agreement.csv")
+    assert "chi2/7 read against F(7, 30.0)" in out        # (a sweep saw "chi2/7.0" once such rows were there)
     s2 = table[table["observer"] == "S2"]      # every row judged on nothing, each saying how many points it had
     assert list(s2["lag"]) == ["0", "2", "all"] and list(s2["n_points"]) == [0, 0, 0]
     assert list(s2["points_left_out"]) == [4, 4, 8] and s2[["rmse_deg", "gain", "chi2"]].isna().all(axis=None)

@@ -382,11 +382,17 @@ def test_group_rows_over_logs_of_other_periods_or_references_are_flagged_without
         assert t["flags"].str.split().map(lambda w: "protocols-differ" in w).all()
     for t in (r.pse, r.aftereffect):
         assert not t.loc[t["observer"] != "group", "flags"].str.contains("protocols-differ").any()
+    # and a note says who logged what (before: nine flagged rows, and nothing named P1, P2 or their setting)
+    shown = ("motion periods 0.5 s (O1, O2); 1 s (P1, P2)" if "period_s" in setting
+             else "reference directions 0 deg (P1, P2); 90 deg (O1, O2)")
+    assert (f"the observers' logs show different {shown}: group rows that pool them are flagged protocols-differ"
+            in r.notes["group"]), r.notes["group"]
     # the same logs with one setting throughout: nothing flagged
     for name in ("P1", "P2"):
         write_log(_observer(name, 70 + ("O1", "O2", "P1", "P2").index(name)), tmp_path / f"{name}.trials.csv")
     r = fit_logs([str(tmp_path)], str(tmp_path / "out2"), n_boot=20, seed=1, figures=False, progress=False)
     assert not any(t["flags"].str.contains("protocols-differ").any() for t in (r.pse, r.aftereffect, r.tuning))
+    assert not any("logs show different" in n for n in r.notes["group"])
 
 
 def test_one_observers_sessions_of_other_reference_directions_are_refused(tmp_path):
@@ -398,6 +404,9 @@ def test_one_observers_sessions_of_other_reference_directions_are_refused(tmp_pa
     said = str(err.value)
     assert "O1-s2.trials.csv" in said and "column reference_deg: 0 deg, but observer O1's line 2 of" in said, said
     assert "90 deg: sessions of protocols with other reference directions would be pooled" in said
+    # 450 deg is 90 deg (a sweep found them refused as two references)
+    write_log(_observer("O1", 81, reference_deg=450.0, session="s2"), tmp_path / "O1-s2.trials.csv")
+    fit_logs([str(tmp_path)], str(tmp_path / "out"), n_boot=0, figures=False, progress=False)
 
 
 @pytest.mark.slow
