@@ -311,6 +311,16 @@ def _with_sidecar(table: pd.DataFrame, folder: Path, protocol_text: str) -> None
 A, B = "# protocol A\n[timing]\nperiod_s = 0.5\n", "# protocol B\n[timing]\nperiod_s = 0.0083\n"
 
 
+def _assert_every_group_row_flagged_protocols_differ(r) -> None:
+    """Every group row, curve and mixed-model term of fit ``r`` is flagged protocols-differ; no observer's row is."""
+    group = [t[t["observer"] == "group"] for t in (r.pse, r.aftereffect, r.tuning, r.decay)]
+    assert all(len(t) for t in group) and len(r.extras["mixed_model"])
+    for t in group + [r.extras["mixed_model"]]:
+        assert t["flags"].str.split().map(lambda w: "protocols-differ" in w).all()
+    for t in (r.pse, r.aftereffect):
+        assert not t.loc[t["observer"] != "group", "flags"].str.contains("protocols-differ").any()
+
+
 @pytest.mark.slow
 def test_group_rows_over_observers_of_different_protocols_are_flagged(tmp_path):
     # Defect 4 of the hostile sweep. Before: group rows pooled observers of 0.5 s and 8.3 ms periods as one
@@ -318,12 +328,7 @@ def test_group_rows_over_observers_of_different_protocols_are_flagged(tmp_path):
     for i, name in enumerate(("O1", "O2", "P1")):
         _with_sidecar(_observer(name, 60 + i), tmp_path, A if name[0] == "O" else B)
     r = fit_logs([str(tmp_path)], str(tmp_path / "out"), n_boot=20, seed=1, figures=False, progress=False)
-    group = [t[t["observer"] == "group"] for t in (r.pse, r.aftereffect, r.tuning, r.decay)]
-    assert all(len(t) for t in group) and len(r.extras["mixed_model"])
-    for t in group + [r.extras["mixed_model"]]:
-        assert t["flags"].str.split().map(lambda w: "protocols-differ" in w).all()
-    for t in (r.pse, r.aftereffect):
-        assert not t.loc[t["observer"] != "group", "flags"].str.contains("protocols-differ").any()
+    _assert_every_group_row_flagged_protocols_differ(r)
     assert any("different protocols" in n for n in r.notes["group"])          # the note stays
     assert "protocols-differ" in (tmp_path / "out" / "aftereffect.csv").read_text()
     # a cell that only observers of one protocol measured is not flagged; one they share is
@@ -376,12 +381,7 @@ def test_group_rows_over_logs_of_other_periods_or_references_are_flagged_without
     for i, name in enumerate(("O1", "O2", "P1", "P2")):
         write_log(_observer(name, 70 + i, **(setting if name[0] == "P" else {})), tmp_path / f"{name}.trials.csv")
     r = fit_logs([str(tmp_path)], str(tmp_path / "out"), n_boot=20, seed=1, figures=False, progress=False)
-    group = [t[t["observer"] == "group"] for t in (r.pse, r.aftereffect, r.tuning, r.decay)]
-    assert all(len(t) for t in group) and len(r.extras["mixed_model"])
-    for t in group + [r.extras["mixed_model"]]:
-        assert t["flags"].str.split().map(lambda w: "protocols-differ" in w).all()
-    for t in (r.pse, r.aftereffect):
-        assert not t.loc[t["observer"] != "group", "flags"].str.contains("protocols-differ").any()
+    _assert_every_group_row_flagged_protocols_differ(r)
     # and a note says who logged what (before: nine flagged rows, and nothing named P1, P2 or their setting)
     shown = ("motion periods 0.5 s (O1, O2); 1 s (P1, P2)" if "period_s" in setting
              else "reference directions 0 deg (P1, P2); 90 deg (O1, O2)")
