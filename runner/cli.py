@@ -185,7 +185,8 @@ def cmd_run(args) -> int:
     from runner.launch import (check_can_start, check_resume, close_complete_log, completed_rows, end_running_part,
                                run_on_screen)
     from runner.screens import screen_texts
-    from runner.trial_log import RESUME_ADVICE, StorageError, check_identifier
+    from runner.session_lock import SessionLock
+    from runner.trial_log import RESUME_ADVICE, StorageError, check_identifier, log_paths
     from runner.x_connection import on_connection_lost
 
     check_identifier(args.observer, "--observer")
@@ -208,48 +209,51 @@ def cmd_run(args) -> int:
             print(f"session complete already: {done} trials in the log; nothing to resume")
             return EXIT_OK
     console = ExperimenterConsole(quick_fit=_quick_fit_text)
-    when = "while its window opened"
+    # the session's lock before the window opens: of two runs started at once on one session the second ends
+    # here, in one line and with no window; the log takes the lock over and releases it when it closes
+    with SessionLock(log_paths(args.out, args.observer, args.session)[0]) as lock:
+        when = "while its window opened"
 
-    def connection_lost():      # Xlib ends the process after this: record the part, say how to go on
-        end_running_part("failed")
-        print(_display_failed_line(args, "the connection to the X server was lost", when), file=sys.stderr)
+        def connection_lost():      # Xlib ends the process after this: record the part, say how to go on
+            end_running_part("failed")
+            print(_display_failed_line(args, "the connection to the X server was lost", when), file=sys.stderr)
 
-    on_connection_lost(connection_lost, EXIT_DISPLAY)     # before the window: Xlib's own ending prints two lines
-    try:
-        presenter, answers = display.open_screen(protocol, args.windowed, args.refresh_ack, console)
-    except Exception as exc:
-        if not _from_display(exc):
-            raise
-        print(_display_failed_line(args, _display_error(exc), when), file=sys.stderr)
-        return EXIT_DISPLAY
-    when = "during the session"
-    extra = {
-        "measured_refresh_hz": presenter.measured_hz,
-        "acknowledged": {"flicker": bool(args.flicker_ack), "refresh_mismatch": bool(args.refresh_ack)},
-        "safety": screening.to_dict(acknowledged=args.flicker_ack),
-        **({"light": light} if light is not None else {}),
-    }
-    lost = stop = None
-    try:
-        result = run_on_screen(
-            protocol, args.protocol, text, args.out, args.observer, presenter, answers, caution, console, extra,
-            resume=args.resume, session=args.session, seed=args.seed,
-        )
-    except KeyboardInterrupt as exc:    # the stop line says whether the last quick fit was shown
-        stop = exc
-    except StorageError as exc:         # a full disk: name the whole command that continues, as simulate does
-        exc.message = exc.message.replace(RESUME_ADVICE, f"continue: {_resume_command(args)}")
-        raise
-    except Exception as exc:
-        if not _from_display(exc):
-            raise
-        lost = exc
-    finally:
+        on_connection_lost(connection_lost, EXIT_DISPLAY)     # before the window: Xlib's own ending prints two lines
         try:
-            presenter.close()
+            presenter, answers = display.open_screen(protocol, args.windowed, args.refresh_ack, console)
         except Exception as exc:
             if not _from_display(exc):
                 raise
+            print(_display_failed_line(args, _display_error(exc), when), file=sys.stderr)
+            return EXIT_DISPLAY
+        when = "during the session"
+        extra = {
+            "measured_refresh_hz": presenter.measured_hz,
+            "acknowledged": {"flicker": bool(args.flicker_ack), "refresh_mismatch": bool(args.refresh_ack)},
+            "safety": screening.to_dict(acknowledged=args.flicker_ack),
+            **({"light": light} if light is not None else {}),
+        }
+        lost = stop = None
+        try:
+            result = run_on_screen(
+                protocol, args.protocol, text, args.out, args.observer, presenter, answers, caution, console, extra,
+                resume=args.resume, session=args.session, seed=args.seed, lock=lock,
+            )
+        except KeyboardInterrupt as exc:    # the stop line says whether the last quick fit was shown
+            stop = exc
+        except StorageError as exc:         # a full disk: name the whole command that continues, as simulate does
+            exc.message = exc.message.replace(RESUME_ADVICE, f"continue: {_resume_command(args)}")
+            raise
+        except Exception as exc:
+            if not _from_display(exc):
+                raise
+            lost = exc
+        finally:
+            try:
+                presenter.close()
+            except Exception as exc:
+                if not _from_display(exc):
+                    raise
     if stop is not None:
         return _interrupted(args, stop, quick_fit_shown=console.fit_is_current)
     if lost is not None:    # the part is marked failed in the sidecar

@@ -107,17 +107,19 @@ def _protocol_record(path: str, text: str) -> dict:
     return {"path": str(path), "sha256": hashlib.sha256(text.encode("utf-8")).hexdigest(), "text": text}
 
 
-def open_log(out_dir: Path, observer: str, session: str, resume: bool, durable: bool = True) -> TrialLog:
+def open_log(out_dir: Path, observer: str, session: str, resume: bool, durable: bool = True,
+             lock: SessionLock | None = None) -> TrialLog:
     """A new log, or the existing one when resuming (a new one if none exists).
 
-    Either way the session's lock is held until the log is closed.  A log
-    without a sidecar can only be resumed while it holds no trial (the
-    session died between creating the two files).
+    Either way the session's lock (``lock`` if the caller holds it already)
+    is held until the log is closed.  A log without a sidecar can only be
+    resumed while it holds no trial (the session died between creating the
+    two files).
     """
     path, _ = log_paths(out_dir, observer, session)
     if resume and path.exists():
-        return TrialLog.reopen(out_dir, observer, session, durable, allow_missing_sidecar=True)
-    return TrialLog.create(out_dir, observer, session, durable)
+        return TrialLog.reopen(out_dir, observer, session, durable, allow_missing_sidecar=True, lock=lock)
+    return TrialLog.create(out_dir, observer, session, durable, lock=lock)
 
 
 def _refuse_conflict(source: str, field: str, option: str, started, given) -> None:
@@ -740,6 +742,7 @@ def run_on_screen(
     resume: bool = False,
     session: str = DEFAULT_SESSION,
     seed: int | None = None,
+    lock: SessionLock | None = None,
 ) -> SessionResult:
     """Run a person through the protocol on an opened screen.
 
@@ -755,9 +758,13 @@ def run_on_screen(
     seed : int, optional
         The seed (:func:`session_seed` mixes in a label other than the
         default); drawn at random (and stored) when not given.
+    lock : SessionLock, optional
+        The session's lock, taken before the screen opened (``run`` does, so
+        that of two runs started at once only one opens a window); the log
+        holds it from here and releases it when it closes.
     """
     out = Path(out_dir)
-    log = open_log(out, observer, session, resume)
+    log = open_log(out, observer, session, resume, lock=lock)
     try:    # until the part is open in the sidecar, a failure (a signal too) leaves no trace but the log's repairs
         started = log.read_sidecar() if log.sidecar_path.exists() else None
         if started is not None:

@@ -2,7 +2,8 @@
 
 ``run`` and ``simulate`` take an exclusive ``flock`` on
 ``<observer>-<session>.lock`` before they create, repair or append to a log,
-and hold it until the session part has ended and its sidecar is written.
+and hold it until the session part has ended and its sidecar is written
+(``run`` takes it before its window opens and hands it to the log).
 The lock file records the holder's process id, host and start time, so a
 second writer exits 2 with one line naming the holder.
 

@@ -34,7 +34,7 @@ import sys
 from pathlib import Path
 
 from fitting.errors import InputError
-from fitting.logfile import check_rows, decode_log, examine_tail, identifier_problem
+from fitting.logfile import check_rows, decode_log, examine_tail, identifier_problem, lock_path
 from runner.session_lock import SessionLock
 
 #: Columns of the trial log, in order.  The first twelve are required of every log (README, Output files).
@@ -336,11 +336,14 @@ class TrialLog:
             raise InputError(str(path), "file", f"cannot be opened for writing ({exc.strerror})") from None
 
     @classmethod
-    def create(cls, out_dir: str | Path, observer: str, session: str, durable: bool = True) -> "TrialLog":
+    def create(cls, out_dir: str | Path, observer: str, session: str, durable: bool = True,
+               lock: SessionLock | None = None) -> "TrialLog":
         """Start a new log; refuse if this session already has data.
 
         The header is written to a temporary file, synced and renamed into
-        place, so a log is never born without its whole header.
+        place, so a log is never born without its whole header.  ``lock``:
+        the session's lock, taken already by the caller (``run`` takes it
+        before its window opens); the log then holds that one until :meth:`close`.
 
         Raises
         ------
@@ -350,7 +353,7 @@ class TrialLog:
             cannot be created.
         """
         path, sidecar = log_paths(out_dir, observer, session)
-        lock = _lock(path, sidecar)
+        lock = _lock(path, sidecar, lock)
         written = False
         try:
             refuse_existing(path, sidecar)
@@ -365,7 +368,7 @@ class TrialLog:
 
     @classmethod
     def reopen(cls, out_dir: str | Path, observer: str, session: str, durable: bool = True,
-               allow_missing_sidecar: bool = False) -> "TrialLog":
+               allow_missing_sidecar: bool = False, lock: SessionLock | None = None) -> "TrialLog":
         """Open an interrupted session's log for appending, repairing its tail.
 
         Parameters
@@ -373,6 +376,8 @@ class TrialLog:
         allow_missing_sidecar : bool
             Accept a log without sidecar while it holds no trial (the
             session died between creating the two files).
+        lock : SessionLock, optional
+            As for :meth:`create`.
 
         Raises
         ------
@@ -381,7 +386,7 @@ class TrialLog:
             holds the session.
         """
         path, sidecar = log_paths(out_dir, observer, session)
-        lock = _lock(path, sidecar)
+        lock = _lock(path, sidecar, lock)
         try:
             if not path.exists() or not (sidecar.exists() or allow_missing_sidecar):
                 raise InputError(str(path), "file", "no session to resume here (log or sidecar missing)")
@@ -523,8 +528,11 @@ def check_sidecar(content, source: str) -> None:
         raise InputError(source, "parts", "malformed sidecar: expected a list of objects")
 
 
-def _lock(path: Path, sidecar: Path) -> SessionLock:
-    lock = SessionLock(path)
+def _lock(path: Path, sidecar: Path, held: SessionLock | None = None) -> SessionLock:
+    """The session's lock: ``held`` (taken by the caller; it must be this log's) or a new one."""
+    if held is not None and held.path != lock_path(path):
+        raise ValueError(f"lock: {held.path} is not the lock of {path}")
+    lock = held if held is not None else SessionLock(path)
     for done in (path, sidecar):  # temporary files of a process killed while writing them
         _unlink(done.with_name(done.name + ".tmp"))
     return lock

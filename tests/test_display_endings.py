@@ -32,8 +32,8 @@ TOTAL = 2          # its trials
 
 
 def _start(tmp_path: Path, env: dict, program: tuple[str, ...] = ("-m", "runner.cli"),
-           protocol: Path = TWO) -> tuple[subprocess.Popen, Path]:
-    out_file = tmp_path / "stdout.txt"
+           protocol: Path = TWO, stdout: str = "stdout.txt") -> tuple[subprocess.Popen, Path]:
+    out_file = tmp_path / stdout
     args = ["run", protocol, "--observer", "e01", "--out", tmp_path / "d", "--windowed", "--seed", "11",
             safety.REFRESH_OVERRIDE_OPTION]
     process = subprocess.Popen([sys.executable, *program, *map(str, args)], cwd=ROOT, env=env,
@@ -233,3 +233,26 @@ def test_a_window_killed_after_the_last_trial_leaves_the_session_complete(own_x_
     assert lines[0].endswith(f"the session is complete: all {TOTAL} trials are saved in {log} (nothing to resume); "
                              f"to fit them: aftershift fit {log} --out {tmp_path / 'd' / 'fit'}"), lines[0]
     assert _parts(tmp_path) == [("completed", TOTAL)]
+
+
+def test_two_runs_started_at_once_on_one_session_open_one_window(own_x_server, tmp_path):  # noqa: F811
+    # a double-launched session: before, both runs passed the check, both opened a window and measured the
+    # display, and the second met the session's lock only when it opened the log (a hostile-user sweep found
+    # it); now the lock is taken before the window, so the second ends in one line without one
+    require_xdotool()
+    env = own_x_server.env()
+    runs = [_start(tmp_path, env, stdout=f"stdout{i}.txt")[0] for i in (1, 2)]
+    most = 0
+    while all(p.poll() is None for p in runs):
+        shown = subprocess.run(["xdotool", "search", "--name", "^aftershift$"], env=env, capture_output=True, text=True)
+        most = max(most, len(shown.stdout.split()))
+        time.sleep(0.02)
+    loser = next(p for p in runs if p.poll() is not None)
+    winner = next(p for p in runs if p is not loser)
+    lines = loser.communicate(timeout=30)[1].strip().splitlines()
+    assert loser.returncode == 2 and len(lines) == 1 and "another session is writing" in lines[0], lines
+    assert f"process {winner.pid} " in lines[0]
+    assert most <= 1
+    _answer_until(winner, env, lambda: winner.poll() is not None)
+    assert winner.wait(timeout=30) == 0, winner.stderr.read()
+    assert _rows(tmp_path) == TOTAL and _parts(tmp_path) == [("completed", TOTAL)]
