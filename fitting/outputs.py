@@ -26,7 +26,10 @@ mistake, say) move their sets in one after the other, never interleaved:
 the move holds an exclusive lock on the folder itself (:func:`folder_lock`,
 ``flock`` on the directory, so no lock file is left), and ``compare`` holds
 a shared one while it reads a fit folder, so it never reads half of one fit
-and half of the next.
+and half of the next.  The one that moves its set in last says, in a note,
+that it replaced a set moved in while it ran (the folder's manifest as
+:func:`check_out_dir` saw it at the start is compared with the one found
+at the move).
 
 Files get the permissions the umask allows (``0666 & ~umask``), like any
 file a program creates, so colleagues who can read the figures can read the
@@ -57,6 +60,8 @@ NEVER_REMOVED = (".trials.csv", ".session.json", ".lock")
 _HELD: dict[str, list[int]] = {}
 #: Folders this process has moved a complete set into (what a late Ctrl-C message reports).
 _COMMITTED: list[str] = []
+#: The manifest of each ``--out`` as :func:`check_out_dir` found it when its command started (:func:`_stamp`).
+_SEEN: dict[str, tuple | None] = {}
 
 
 def file_mode() -> int:
@@ -386,9 +391,34 @@ def settle(out_dir: str | Path) -> None:
                      "cannot be finished here; run that command again into this folder")
 
 
+def _stamp(out: Path) -> tuple | None:
+    """Which manifest the folder holds: device, inode and change time of ``outputs.json`` (None: none).
+
+    Every set's manifest arrives by a rename, so a new set gives a new stamp.
+    """
+    try:
+        st = os.stat(out / MANIFEST)
+    except OSError:
+        return None
+    return st.st_dev, st.st_ino, st.st_mtime_ns
+
+
+def _say_if_replaced_meanwhile(out: Path, command: str) -> None:
+    """Note a set moved into ``out`` by another process since this command started (see :func:`check_out_dir`)."""
+    key = os.path.abspath(out)
+    if key not in _SEEN:
+        return
+    before = _SEEN.pop(key)
+    now = _stamp(out)
+    if now is not None and now != before:
+        print(f"note: {out}: another `aftershift {_manifest(out).get('command', command)}` moved its outputs into "
+              "this folder while this one ran; this run's outputs replace them (each set whole)", file=sys.stderr)
+
+
 def _commit(staged: StagedOutputs, command: str) -> None:
     stage, out = staged.folder, staged.final_dir
     refuse_other_set(out, command)        # again, under the lock: another command may have written meanwhile
+    _say_if_replaced_meanwhile(out, command)
     files = sorted(str(p.relative_to(stage)) for p in stage.rglob("*") if p.is_file())
     unfinished = _journal(out) or {"files": []}      # a move that could not be finished: its files are stale too
     previous = sorted(set(read_manifest(out)) | set(unfinished["files"]))
@@ -419,7 +449,9 @@ def check_out_dir(out_dir: str | Path, command: str | None = None) -> None:
         The ``--out`` folder.
     command : str, optional
         The command that will write there: a folder holding another
-        command's set is refused too (:func:`refuse_other_set`).
+        command's set is refused too (:func:`refuse_other_set`), and the
+        folder's manifest is remembered, so that the move can say whether
+        another process moved a set in meanwhile.
 
     Raises
     ------
@@ -439,6 +471,8 @@ def check_out_dir(out_dir: str | Path, command: str | None = None) -> None:
         raise InputError(str(out), "--out", f"{probe} is a file, not a folder")
     if not os.access(probe, os.W_OK | os.X_OK):
         raise InputError(str(out), "--out", f"{probe} cannot be written (read-only or no permission)")
+    if command is not None:
+        _SEEN[os.path.abspath(out)] = _stamp(out)
 
 
 @contextmanager
@@ -469,6 +503,8 @@ def output_set(out_dir: str | Path, command: str):
         refuse_other_set(out, command)
         with folder_lock(out, exclusive=True):
             finish_interrupted(out)     # before the killed process's staging folder is removed below
+            if os.path.abspath(out) in _SEEN:       # a killed command's set, finished here, is not "meanwhile"
+                _SEEN[os.path.abspath(out)] = _stamp(out)
         remove_dead_folders(out, STAGING_PREFIX)
         stage = Path(tempfile.mkdtemp(prefix=f"{STAGING_PREFIX}{os.getpid()}-", dir=out))
     except OSError as exc:

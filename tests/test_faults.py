@@ -919,6 +919,40 @@ def test_a_set_waits_for_the_folder_lock_and_lands_after_it(tmp_path, whole):
     assert (out / "outputs.json").exists() and leftovers(out) == []
 
 
+@pytest.mark.slow    # two fits in subprocesses
+def test_of_two_fits_into_one_folder_at_once_the_later_says_it_replaced_the_other(capsys, tmp_path, whole):
+    # both said "written to", and the folder held the set of the one that moved in last, unannounced (a
+    # hostile-user sweep found it); now the later one says so in a note. Both wait at the folder (held
+    # here) so that both have started before either moves in.
+    import fcntl
+    import subprocess
+    import sys
+
+    out = tmp_path / "fit"
+    out.mkdir()
+    fd = os.open(out, os.O_RDONLY | os.O_DIRECTORY)
+    fcntl.flock(fd, fcntl.LOCK_SH)
+    try:
+        fits = [subprocess.Popen([sys.executable, "-m", "runner.cli", "fit", str(whole), "--out", str(out),
+                                  "--bootstrap", "0", "--lapse", lapse, "--no-figures"],
+                                 stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+                for lapse in ("0.01", "0.02")]
+        for proc in fits:
+            assert proc.stderr.readline().strip() == f"aftershift: waiting for another command using {out}"
+    finally:
+        os.close(fd)
+    said = [proc.communicate(timeout=120)[1] for proc in fits]
+    assert [proc.returncode for proc in fits] == [0, 0]
+    noted = [i for i, err in enumerate(said) if "moved its outputs into this folder while this one ran" in err]
+    assert len(noted) == 1
+    later = [line for line in said[noted[0]].splitlines() if not line.startswith("aftershift: waiting for")]
+    assert len(later) == 1 and later[0].startswith(f"note: {out}: another `aftershift fit` moved its outputs")
+    assert f"lapse fixed at 0.0{noted[0] + 1}," in (out / "summary.txt").read_text()   # the noting one's set
+    # a fit after an earlier one has ended replaces it without the note
+    assert cli(capsys, "fit", whole, "--out", out, "--bootstrap", "0", "--no-figures")[0] == 0
+    assert "while this one ran" not in capsys.readouterr().err
+
+
 def test_tables_follow_the_umask(capsys, tmp_path, whole):
     old = os.umask(0o022)
     try:
