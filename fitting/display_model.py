@@ -530,8 +530,10 @@ def read_readings(path: str | Path) -> Readings:
 
     The file has a header with ``level`` and ``luminance_cd_m2`` and, when
     guns were measured alone, ``gun`` (``grey``, ``red``, ``green`` or
-    ``blue``; empty = grey).  Other columns are ignored.  Rows are numbered
-    as a spreadsheet shows them: the header is row 1, the first reading row 2.
+    ``blue``; empty = grey).  Other columns are ignored; a row with more
+    cells than the header is refused (a decimal comma splits a number in
+    two).  Rows are numbered as a spreadsheet or editor shows them: the
+    header is row 1, blank lines count.
 
     Raises
     ------
@@ -545,24 +547,34 @@ def read_readings(path: str | Path) -> Readings:
         raise InputError(str(p), "file", "does not exist" if not p.exists() else "is not a file")
     try:
         with p.open(newline="", encoding="utf-8-sig") as f:    # -sig: a spreadsheet's "CSV UTF-8" byte-order mark
-            reader = csv.DictReader(f)
-            header = [name.strip() for name in reader.fieldnames or ()]
-            reader.fieldnames = header
-            rows = list(reader)
+            reader = csv.reader(f)
+            header = [name.strip() for name in next(reader, [])]
+            rows = [(reader.line_num, cells) for cells in reader if any(cell.strip() for cell in cells)]
     except UnicodeDecodeError:
         raise InputError(str(p), "file", "is not UTF-8 text; expected a CSV file") from None
     except (OSError, csv.Error) as exc:
         raise InputError(str(p), "file", f"cannot be read as CSV ({exc})") from None
+    for name in READINGS_COLUMNS:
+        if header.count(name) > 1:
+            raise InputError(str(p), name, "the column appears twice in the header")
     for name in READINGS_COLUMNS[:2]:
         if name not in header:
             raise InputError(str(p), name, f"missing column; expected a header with {', '.join(READINGS_COLUMNS)}")
     if not rows:
         raise InputError(str(p), "file", "holds a header but no readings")
     level, value, gun, line = [], [], [], []
-    for i, r in enumerate(rows, start=2):
+    for i, cells in rows:       # i: the line the row ends on, as a spreadsheet or editor shows it
+        while len(cells) > len(header) and not cells[-1].strip():
+            cells = cells[:-1]      # empty cells a spreadsheet adds at the end of a row
+        if len(cells) > len(header):
+            raise InputError(str(p), f"row {i}", f"has {len(cells)} cells, the header {len(header)}: a decimal "
+                             f"comma ({','.join(cells)[:40]!r})? Write decimals with a point")
+        r = dict(zip(header, cells))
         for name, out in (("level", level), ("luminance_cd_m2", value)):
             cell = (r.get(name) or "").strip()
             try:
+                if "_" in cell:     # float() reads 1_0 as 10
+                    raise ValueError(cell)
                 out.append(float(cell))
             except ValueError:
                 raise InputError(str(p), f"row {i}: {name}", f"expected a number, got {cell!r}") from None

@@ -19,6 +19,8 @@ from __future__ import annotations
 
 import csv
 import fcntl
+import io
+import math
 import os
 import shutil
 import sys
@@ -109,20 +111,14 @@ class ReadingsLog:
         self.path = Path(path)
         self.seed = 0 if seed is None else seed
         self.rows: list[dict] = []
-        if self.path.exists():
-            if not resume:
-                raise InputError(str(self.path), "file", "exists; pass --resume to continue it, or choose another --out")
-            with self.path.open(newline="", encoding="utf-8") as f:
-                self.rows = [r for r in csv.DictReader(f) if r.get("luminance_cd_m2", "").strip()]
-            if self.rows and int(self.rows[0]["seed"]) != self.seed:
-                if seed is not None:
-                    raise InputError(str(self.path), "--seed", f"{seed} is not the seed its readings were taken in "
-                                     f"({int(self.rows[0]['seed'])}); leave --seed out to continue them")
-                self.seed = int(self.rows[0]["seed"])
+        existed = self.path.exists()
+        if existed and not resume:
+            raise InputError(str(self.path), "file", "exists; pass --resume to continue it, or choose another --out")
+        #: True when this run made the file: only then may a run that kept no reading remove it again.
+        self.created = not existed
         try:
             self.path.parent.mkdir(parents=True, exist_ok=True)
-            new = not self.path.exists() or self.path.stat().st_size == 0
-            self._file = self.path.open("a", newline="", encoding="utf-8")
+            self._file = self.path.open("a+b")
         except OSError as exc:
             raise InputError(str(self.path), "--out", f"cannot be written ({exc.strerror})") from None
         try:
@@ -131,8 +127,20 @@ class ReadingsLog:
             self._file.close()
             raise InputError(str(self.path), "file", "is being written by another measure-light; "
                                                      "one measurement at a time") from None
-        self._writer = csv.DictWriter(self._file, fieldnames=LOG_COLUMNS)
-        if new:
+        try:    # read under the lock: a second measure-light cannot be cutting or appending meanwhile
+            self.rows = _read_log(self.path, self._file) if existed else []
+        except BaseException:
+            self._file.close()
+            raise
+        if self.rows and int(self.rows[0]["seed"]) != self.seed:
+            if seed is not None:
+                self._file.close()
+                raise InputError(str(self.path), "--seed", f"{seed} is not the seed its readings were taken in "
+                                 f"({int(self.rows[0]['seed'])}); leave --seed out to continue them")
+            self.seed = int(self.rows[0]["seed"])
+        self._text = io.TextIOWrapper(self._file, encoding="utf-8", newline="", write_through=True)
+        self._writer = csv.DictWriter(self._text, fieldnames=LOG_COLUMNS)
+        if self._file.seek(0, os.SEEK_END) == 0:
             self._writer.writeheader()
             self._sync()
 
@@ -146,7 +154,9 @@ class ReadingsLog:
         for row in self.rows:
             try:
                 order = int(row["order"])
-                step = steps[order - 1]
+                step = steps[order - 1] if order >= 1 else None
+                if step is None:
+                    raise IndexError(order)
                 same = row["gun"] == step.gun and abs(float(row["level"]) - step.level) <= 1e-6
             except (KeyError, ValueError, IndexError):
                 same = False
@@ -158,7 +168,7 @@ class ReadingsLog:
         return [s for s in steps if s.order not in done]
 
     def _sync(self) -> None:
-        self._file.flush()
+        self._text.flush()
         os.fsync(self._file.fileno())
 
     def append(self, step: Step, cd_m2: float) -> None:
@@ -171,7 +181,7 @@ class ReadingsLog:
 
     def close(self) -> None:
         """Close the file."""
-        self._file.close()
+        self._text.close()
 
     def readings(self) -> Readings:
         """The readings so far."""
@@ -284,6 +294,69 @@ def readings_path(out: str | Path) -> Path:
     """Where the screen routine keeps the readings of profile ``out``."""
     p = Path(out)
     return p.with_name(p.stem + ".readings.csv")
+
+
+def _read_log(path: Path, f) -> list[dict]:
+    """The readings an existing readings file holds (``f``: it, open ``a+b`` and locked), checked.
+
+    A last line without its line end (a reading being written when the
+    process ended) is cut off with a note, and that reading is measured
+    again; so are rows whose reading was cleared by hand.
+
+    Raises
+    ------
+    InputError
+        A header other than :data:`LOG_COLUMNS` (a spreadsheet may have
+        saved the file with other separators), or a row or cell that is not
+        as measure-light writes it, naming its line and column.
+    """
+    f.seek(0)
+    data = f.read()
+    whole = data.rfind(b"\n") + 1
+    if whole < len(data):
+        f.truncate(whole)
+        os.fsync(f.fileno())
+        print(f"note: {path}: its last line was cut short ({data[whole:][:40]!r}: a reading being written when the "
+              "measurement ended); it is removed and that reading is measured again", file=sys.stderr)
+        data = data[:whole]
+    if not data:        # nothing whole in it, not even the header (ended while writing it): begin afresh
+        return []
+    try:
+        text = data.decode("utf-8-sig")    # -sig: a spreadsheet's "CSV UTF-8" byte-order mark
+    except UnicodeDecodeError:
+        raise InputError(str(path), "file", "is not UTF-8 text; expected the readings file measure-light "
+                         "writes") from None
+    reader = csv.reader(io.StringIO(text, newline=""))
+    header = [cell.strip() for cell in next(reader, [])]
+    if header != list(LOG_COLUMNS):
+        raise InputError(str(path), "header", f"expected the columns {','.join(LOG_COLUMNS)} as measure-light "
+                         f"writes them, found {','.join(header)[:80] or 'none'!r} (re-saved by a spreadsheet with "
+                         "other separators?); restore them to continue, nothing was changed")
+    rows = []
+    for cells in reader:
+        line = reader.line_num
+        if not any(cell.strip() for cell in cells):
+            continue
+        if len(cells) != len(LOG_COLUMNS):
+            raise InputError(str(path), f"line {line}", f"has {len(cells)} cells, the header {len(LOG_COLUMNS)} "
+                             "(a decimal comma?); correct it or delete the row to measure it again")
+        row = dict(zip(LOG_COLUMNS, (cell.strip() for cell in cells)))
+        if not row["luminance_cd_m2"]:
+            continue        # a reading cleared by hand: measured again
+        for name, kind in (("order", int), ("level", float), ("luminance_cd_m2", float), ("seed", int)):
+            try:
+                value = kind(row[name]) if "_" not in row[name] else None
+            except ValueError:
+                value = None
+            if value is None or not math.isfinite(value) or value < 0:
+                raise InputError(str(path), f"line {line}: {name}", f"expected a number >= 0 as measure-light "
+                                 f"writes it, got {row[name][:40]!r}; correct it or delete the row to measure "
+                                 "it again")
+        if rows and row["seed"] != rows[0]["seed"]:
+            raise InputError(str(path), f"line {line}: seed", f"{row['seed']} differs from the first reading's "
+                             f"{rows[0]['seed']}: one file holds one measurement")
+        rows.append(row)
+    return rows
 
 
 def _write_profile_and_figure(fits, out: Path, text: str) -> tuple[Path, list[str]]:
@@ -425,7 +498,7 @@ def on_screen(protocol, out: str | Path, n_levels: int = 9, repeats: int = 2, pe
             complete, hz = True, None
     finally:
         log.close()
-        if not log.rows:  # no reading taken (no screen, or stopped at once): leave no file behind
+        if not log.rows and log.created:  # made by this run, no reading taken (no screen, stopped at once)
             log.path.unlink(missing_ok=True)
     if not complete:
         if log.rows:

@@ -36,7 +36,9 @@ def _sidecar(log: Path) -> Path:
 def _read_session(side: Path):
     """A sidecar's content and the protocol its session ran (as started)."""
     meta = json.loads(side.read_text(encoding="utf-8"))
-    return meta, as_started(parse_protocol(meta["protocol"]["text"], str(side)), meta, str(side))
+    # the grey levels of a [light] section are not needed here (the display is not opened): its profile, whose
+    # relative path was resolved from the protocol's folder when the session ran, is not read again
+    return meta, as_started(parse_protocol(meta["protocol"]["text"], str(side), resolve_light=False), meta, str(side))
 
 
 def check_sidecar_matches(log: Path, side: Path, meta: dict, protocol) -> None:
