@@ -131,7 +131,12 @@ def _read_stream_file(path: Path) -> pd.DataFrame:
     practice = raw["practice"].str.strip().isin(("1", "true")) if "practice" in raw else pd.Series(False, raw.index)
     check_row_agreement(raw, source, [f"line {i + 2}" for i in range(len(raw))], number["test_offset_deg"],
                         practice, number["lag"].reindex(raw.index))
-    raw = raw[raw["block"].str.strip() == STREAM_BLOCK].reset_index(drop=True)
+    other = np.flatnonzero(raw["block"].str.strip() != STREAM_BLOCK)
+    if 0 < other.size < len(raw):       # dropped without a word before, and not counted in trials_read
+        _fail(source, int(other[0]) + 2, "block", f"{raw['block'].iloc[other[0]].strip()[:20]!r} in a stream log "
+              f"({other.size} such row{'s' * (other.size > 1)}): every test of a stream session has block "
+              f"{STREAM_BLOCK!r}; adapt-test trials go in a log of their own, fitted separately")
+    raw = raw[raw["block"].str.strip() == STREAM_BLOCK].reset_index(drop=True)     # none: not a stream log
     rows = []
     for i, r in raw.iterrows():
         line = i + 2
@@ -597,6 +602,18 @@ def fit_flags(fit: NbackFit) -> list[str]:
     return words
 
 
+def _replicates_stand_still(boot: NbackBootstrap) -> bool:
+    """True when some amplitude is the same in every bootstrap replicate.
+
+    Answers the fit separates perfectly (every answer on the side the fitted
+    curve gives it certainly) are drawn again unchanged, and every refit
+    lands where the fit did: a zero-width interval that says nothing of
+    the amplitude's error (its maximum-likelihood estimate does not exist).
+    """
+    amps = boot.per_n[:, 4:]
+    return bool(np.any(np.ptp(amps, axis=0) <= 1e-9 * (1.0 + np.abs(boot.fit.amplitudes_deg))))
+
+
 def _row_flags(common, est, lo, hi, bounds=None):
     """Flags of one estimate: the fit's, plus its own bound and interval checks."""
     words = list(common)
@@ -618,7 +635,9 @@ def result_tables(boot: NbackBootstrap) -> dict[str, pd.DataFrame]:
     k = tr.n_back
     obs = tr.observer
     common = fit_flags(fit)
-    bare = "one-sided" in common or "few-trials" in common
+    if "one-sided" not in common and _replicates_stand_still(boot):
+        common.append("not-estimable")
+    bare = bool({"one-sided", "few-trials", "not-estimable"} & set(common))
 
     def ci(pair):
         lo, hi = (np.asarray(v, dtype=float) for v in pair)
@@ -676,14 +695,21 @@ def plot_amplitudes(boot: NbackBootstrap, base: Path) -> list[str]:
     fit = boot.fit
     k = fit.trials.n_back
     n = np.arange(1, k + 1)
-    lo, hi = boot.amplitude_ci
+    est = np.asarray(fit.amplitudes_deg, dtype=float)
+    tuning = result_tables(boot)["tuning"]
+    lo, hi = tuning["amplitude_ci_low"].to_numpy(float), tuning["amplitude_ci_high"].to_numpy(float)
+    held = np.isfinite(lo) & np.isfinite(hi) & (lo <= est) & (est <= hi)    # as the table holds it
     plt = pyplot()
     title = f"{fit.trials.observer}: n-back amplitudes, peak offset {fit.peak_offset_deg:.3g} deg"
     with plt.rc_context(_STYLE):
         fig, ax = single_plot(plt, 6.6, 3.6, 2.6, title)
         ax.axhline(0, color="#9a9a9a", lw=0.6)
-        ax.errorbar(n, fit.amplitudes_deg, yerr=[fit.amplitudes_deg - lo, hi - fit.amplitudes_deg], fmt="o",
-                    color="#1b4965", capsize=3, label="per-n amplitude, 95 % CI")
+        if held.any():
+            ax.errorbar(n[held], est[held], yerr=[est[held] - lo[held], hi[held] - est[held]], fmt="o",
+                        color="#1b4965", capsize=3, label=f"per-n amplitude, {boot.level * 100:g} % CI")
+        if not held.all():
+            ax.plot(n[~held], est[~held], "o", mfc="none", color="#1b4965",
+                    label="per-n amplitude, no interval (flagged)")
         if k >= 2:
             fine = np.linspace(1, k, 100)
             ax.plot(fine, fit.decay_amplitude_deg * np.exp(-(fine - 1) / fit.decay_periods), color="#c8553d",
@@ -724,27 +750,37 @@ class StreamReport:
                 flagged.append(f"{obs} shifts ({len(g)} rows): {' '.join(sorted(set(' '.join(g['flags']).split())))}")
         lines += ([f"Flagged rows ({len(flagged)}; the words are explained in the README):"]
                   + [f"  {f}" for f in flagged]) if flagged else ["Flagged rows: none"]
-        for boot in self.fits:
+        tuning, decay = self.tables["tuning"], self.tables["decay"]
+        for boot in self.fits:       # the intervals the tables hold: none where they are left empty
             f = boot.fit
-            lo, hi = boot.amplitude_ci
-            w_lo, w_hi = boot.peak_offset_ci
-            amps = ", ".join(f"n={i + 1}: {a:.2f} [{l:.2f}, {h:.2f}]"
-                             for i, (a, l, h) in enumerate(zip(f.amplitudes_deg, lo, hi)))
+            rows = tuning[tuning["observer"] == f.trials.observer]
+            amps = ", ".join(f"n={i + 1}: {a:.2f}{_shown(l, h, '.2f')}"
+                             for i, (a, l, h) in enumerate(zip(rows["amplitude_deg"], rows["amplitude_ci_low"],
+                                                               rows["amplitude_ci_high"])))
+            first = rows.iloc[0]
             line = (f"{f.trials.observer}: {f.trials.n_trials} tests; PSE {f.pse_deg:.2f} deg; amplitudes (deg) "
-                    f"{amps}; peak offset {f.peak_offset_deg:.3g} deg [{w_lo:.3g}, {w_hi:.3g}]; lapse {f.lapse:.3f}")
+                    f"{amps}; peak offset {f.peak_offset_deg:.3g} deg"
+                    f"{_shown(first['peak_offset_ci_low'], first['peak_offset_ci_high'], '.3g')}; lapse {f.lapse:.3f}")
+            row = decay[decay["observer"] == f.trials.observer].iloc[0]
             if f.trials.n_back >= 2:
-                t_lo, t_hi = boot.decay_ci
-                line += f"; decay {f.decay_periods:.3g} periods [{t_lo:.3g}, {t_hi:.3g}]"
+                line += f"; decay {f.decay_periods:.3g} periods{_shown(row['ci_low'], row['ci_high'], '.3g')}"
             lines.append(line)
         if len(self.fits) > 1:
             lines.append(f"note: {NO_GROUP_NOTE}")
         return "\n".join(lines)
 
 
+def _shown(lo, hi, spec: str) -> str:
+    """`` [lo, hi]``, or `` (no interval)`` where the table leaves it empty."""
+    if not (np.isfinite(lo) and np.isfinite(hi)):
+        return " (no interval)"
+    return f" [{lo:{spec}}, {hi:{spec}}]"
+
+
 def fit_stream_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="free",
                     lapse_max: float = DEFAULT_LAPSE_MAX, include_bad_timing: bool = False,
                     interval: str = "percentile", figures: bool = True, plan=None,
-                    progress: bool | None = None) -> StreamReport:
+                    progress: bool | None = None, level: float = 0.95) -> StreamReport:
     """Fit stream logs and write the same layout as adapt–test fits, and the report.
 
     Writes ``pse.csv`` (μ₀, condition ``stream``), ``aftereffect.csv``,
@@ -773,10 +809,17 @@ def fit_stream_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="fr
         ``protocol text -> lines`` of its plan, for the report.
     progress : bool or None
         Progress on stderr (None: only on a terminal).
+    level : float
+        Confidence level of the intervals.
 
     Returns
     -------
     StreamReport
+
+    Raises
+    ------
+    InputError
+        Options out of range, checked as for adapt–test fits.
     """
     from .figures import safe_name
 
@@ -784,6 +827,11 @@ def fit_stream_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="fr
     from .progress import ProgressBar, phase
     from .provenance import REPORT_DATA, collect, write_report_data
 
+    from .report import _check_options
+
+    if interval not in INTERVALS:
+        raise InputError("argument", "--interval", f"one of {', '.join(INTERVALS)} for stream logs, not {interval!r}")
+    lapse = _check_options(n_boot, seed, lapse, "shared", "gaussian", "percentile", level, lapse_max, progress).lapse
     if n_boot < 2:    # the tables and the peak offset's interval are built from the replicates
         raise InputError("argument", "--bootstrap", f"a stream fit needs at least 2 replicates (1,000 recommended), "
                          f"got {n_boot}")
@@ -795,7 +843,7 @@ def fit_stream_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="fr
     with ProgressBar(len(observers), "n-back fits and bootstrap", show=progress, unit="observers") as bar:
         for i, trials in enumerate(observers):
             boot = bootstrap_nback(fit_nback(trials, lapse, lapse_max), n_boot,
-                                   np.random.default_rng([seed, 17, i]), interval)
+                                   np.random.default_rng([seed, 17, i]), interval, level)
             fits.append(boot)
             for name, table in result_tables(boot).items():
                 tables[name].append(table)
@@ -817,7 +865,7 @@ def fit_stream_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="fr
         report = StreamReport(out, fits, staged.final_paths(files), joined)
         write_text(folder / "summary.txt", report.summary() + "\n")
         options = (f"stream n-back regression, lapse {'free in [0, ' + format(lapse_max, 'g') + ']' if lapse == 'free' else 'fixed at ' + str(lapse)}; "
-                   f"{interval} intervals from {n_boot} parametric bootstrap replicates (seed {seed})")
+                   f"{level * 100:g}% {interval} intervals from {n_boot} parametric bootstrap replicates (seed {seed})")
         data = collect(paths, plan)
         data.update(kind="stream", options=options, notes={"group": [NO_GROUP_NOTE]} if len(fits) > 1 else {})
         write_report_data(folder, data)

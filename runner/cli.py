@@ -435,7 +435,16 @@ def cmd_fit(args) -> int:
     if streams:
         if args.scheduler:
             raise InputError("argument", "--scheduler", "stream logs are fitted on this machine; leave it out")
-        report = fit_stream_logs(streams, args.out, plan=plan_from_text, **common)
+        for given, option, why in ((args.function != "gaussian", "--function", "the n-back regression is a "
+                                    "cumulative Gaussian"),
+                                   (args.spread != "shared", "--spread", "the n-back regression has one spread"),
+                                   (args.include_practice, "--include-practice", "a stream has no practice trials"),
+                                   (args.rerun_tracks or args.fixed_level_pilot,
+                                    "--rerun-tracks" if args.rerun_tracks else "--fixed-level-pilot",
+                                    "a stream's tests are not placed by adaptive tracks")):
+            if given:
+                raise InputError("argument", option, f"does not apply to stream logs ({why}); leave it out")
+        report = fit_stream_logs(streams, args.out, plan=plan_from_text, level=args.level, **common)
     else:
         from runner.replay import track_factories
 
@@ -637,8 +646,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--interval", choices=["by-statistic", "bca", "bc", "percentile", "profile", "studentized"],
                    help="interval: by-statistic (adapt-test default: percentile for PSEs, shifts and peak "
                         "offsets, profile intervals for tuning amplitudes and the decay, as measured best), BCa (Efron 1987), "
-                        "bias-corrected (stream default), profile likelihood or studentized bootstrap (PSEs "
-                        "and shifts of adapt-test logs), or percentile")
+                        "bias-corrected, profile likelihood or studentized bootstrap (PSEs "
+                        "and shifts of adapt-test logs), or percentile (stream default; streams take bc too)")
     p.add_argument("--level", type=float, default=0.95, help="confidence level (default 0.95)")
     p.add_argument("--lapse-max", type=float, default=0.06,
                    help="upper bound of a free lapse rate (default 0.06, Wichmann & Hill 2001)")

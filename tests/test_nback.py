@@ -212,3 +212,71 @@ def test_nback_imports_neither_runner_nor_psychopy():
     code = "import sys, fitting.nback; bad = [m for m in sys.modules if m.split('.')[0] in ('runner', 'psychopy')]; print(bad)"
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT, check=True)
     assert out.stdout.strip() == "[]"
+
+
+def _tiny_stream_logs(tmp_path, tests_per_track: int = 6, seed: int = 5):
+    """Logs of a stream of ``2 * tests_per_track`` tests, simulated by the real engine."""
+    text = read_protocol_text(BUNDLED).replace("trials_per_track = 300", f"trials_per_track = {tests_per_track}")
+    text = text.replace("break_every = 150", f"break_every = {tests_per_track}")
+    protocol = parse_protocol(text, "tiny.toml")
+    simulate(protocol, "tiny.toml", text, tmp_path / "logs", ObserverModel(), 1, seed, progress=False)
+    return tmp_path / "logs"
+
+
+def test_a_stream_too_small_to_pin_its_amplitudes_gets_no_interval_and_its_figure(tmp_path):
+    # 12 tests, 7 parameters: the answers are separated, every bootstrap refit lands where the fit did, and
+    # the tables printed "4.43 [4.43, 4.43]"; the figure then failed ("'yerr' must not contain negative
+    # values", exit 1, no tables).
+    report = fit_stream_logs(_tiny_stream_logs(tmp_path), tmp_path / "out", n_boot=100, seed=1)
+    tuning = pd.read_csv(tmp_path / "out" / "tuning.csv")
+    assert tuning["flags"].str.contains("not-estimable").all()
+    assert tuning[["amplitude_ci_low", "amplitude_ci_high", "peak_offset_ci_low"]].isna().all().all()
+    assert pd.read_csv(tmp_path / "out" / "aftereffect.csv")["ci_low"].isna().all()
+    line = next(s for s in report.summary().splitlines() if s.startswith("sim01:"))
+    assert "(no interval)" in line and "[" not in line      # the summary shows what the tables hold
+    assert (tmp_path / "out" / "figures" / "nback_sim01.png").stat().st_size > 0
+
+
+def test_stream_fits_take_the_level_and_check_the_options_as_adapt_test_fits_do(tmp_path):
+    # --level, --lapse and --lapse-max went unchecked or unused for stream logs: --level 0.5 gave the 95 %
+    # tables byte for byte, --lapse 1.5 an amplitude of -35,463 deg with exit 0
+    logs = _tiny_stream_logs(tmp_path, 60, seed=2)
+    widths = {}
+    for level in (0.5, 0.95):
+        fit_stream_logs(logs, tmp_path / f"out{level}", n_boot=200, seed=1, figures=False, level=level)
+        t = pd.read_csv(tmp_path / f"out{level}" / "tuning.csv")
+        widths[level] = (t["amplitude_ci_high"] - t["amplitude_ci_low"]).to_numpy()
+    assert (widths[0.5] < widths[0.95]).all()
+    for option, value, said in (("lapse", 1.5, "--lapse: a fixed lapse must be in [0, 0.5)"),
+                                ("lapse", -1.0, "--lapse: a fixed lapse must be in [0, 0.5)"),
+                                ("lapse_max", -0.1, "--lapse-max: must be in (0, 0.5)"),
+                                ("level", 1.5, "--level: a confidence level in [0.5, 1)")):
+        with pytest.raises(InputError, match=said.replace("(", r"\(").replace(")", r"\)").replace("[", r"\[")):
+            fit_stream_logs(logs, tmp_path / "bad", n_boot=10, figures=False, **{option: value})
+    assert not (tmp_path / "bad").exists()
+
+
+def test_rows_of_another_block_in_a_stream_log_are_refused_naming_the_line(tmp_path):
+    # they were dropped without a word and left out of trials_read
+    logs = _tiny_stream_logs(tmp_path, 12)
+    log = next(logs.glob("*.trials.csv"))
+    lines = log.read_text().splitlines(keepends=True)
+    header = lines[0].rstrip("\n").split(",")
+    cells = lines[5].rstrip("\n").split(",")
+    cells[header.index("block")] = ""
+    lines[5] = ",".join(cells) + "\n"
+    log.write_text("".join(lines))
+    with pytest.raises(InputError, match="line 6, column block: '' in a stream log"):
+        read_stream_logs(logs)
+
+
+def test_fit_options_that_do_not_apply_to_streams_are_refused(tmp_path, capsys):
+    from runner.cli import main
+
+    logs = _tiny_stream_logs(tmp_path)
+    for option in (["--function", "logistic"], ["--spread", "per_condition"], ["--rerun-tracks"]):
+        assert main(["fit", str(logs), "--out", str(tmp_path / "out"), "--bootstrap", "10", *option]) == 2
+        line = capsys.readouterr().err.strip()
+        assert line == f"aftershift: argument: {option[0]}: " + line.split(f"{option[0]}: ", 1)[1]
+        assert "does not apply to stream logs" in line and "\n" not in line
+    assert not (tmp_path / "out").exists()
