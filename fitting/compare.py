@@ -108,11 +108,12 @@ DIRECTION = (-180.0, 180.0, " deg")
 MAX_REPLICATES = 100_000
 #: Flag words (:mod:`fitting.flags`) of a measured shift that cannot be judged, and why.
 NOT_ESTIMABLE = {"one-sided": "every answer on one side, so the PSE is not estimable",
-                 "few-trials": f"fewer than {MIN_TRIALS_FOR_INTERVAL} trials, so no interval"}
+                 "few-trials": f"fewer than {MIN_TRIALS_FOR_INTERVAL} trials, so no interval",
+                 "not-estimable": "no finite error, so no interval"}
 #: Flag word (:mod:`fitting.group`) of a group cell resting on fewer than ``MIN_OBSERVERS_FOR_INFERENCE`` observers.
 FEW_OBSERVERS = "descriptive"
 #: Why a point is left out of the agreement statistics, in a word or two, by its flag word (the console line).
-LEFT_OUT_WHY = {"one-sided": "PSE not estimable", "few-trials": "no interval",
+LEFT_OUT_WHY = {"one-sided": "PSE not estimable", "few-trials": "no interval", "not-estimable": "no interval",
                 FEW_OBSERVERS: f"fewer than {MIN_OBSERVERS_FOR_INFERENCE} observers"}
 
 
@@ -968,7 +969,11 @@ def _compare(results: Path, predictions_path, out_dir, interpolate: bool, figure
                         "with few observers",)
         mine = points["observer"] == observer
         for (lag, g), calibrated in zip(parts, simulated or [None] * len(parts)):
-            a, found = _agreement_of(g, observer, cov_table, usable)
+            try:
+                a, found = _agreement_of(g, observer, cov_table, usable)
+            except InputError as exc:       # named where the user looks: the file in its folder, whose points
+                where = cov_path if exc.source == COVARIANCE_FILE else measured_path
+                raise InputError(str(where), exc.field, f"{exc.message} (observer {observer}, lag {lag})") from None
             if calibrated is not None and found.matrix is not None and np.isfinite(a.chi2):
                 a = replace(a, chi2=calibrated[0], chi2_p=calibrated[1],
                             chi2_reference=f"simulated ({DRAWS} groups)")

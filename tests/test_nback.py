@@ -235,6 +235,12 @@ def test_a_stream_too_small_to_pin_its_amplitudes_gets_no_interval_and_its_figur
     line = next(s for s in report.summary().splitlines() if s.startswith("sim01:"))
     assert "(no interval)" in line and "[" not in line      # the summary shows what the tables hold
     assert (tmp_path / "out" / "figures" / "nback_sim01.png").stat().st_size > 0
+    # compare leaves such points out with a note (it refused the fit: "a measured point has zero variance")
+    after = pd.read_csv(tmp_path / "out" / "aftereffect.csv")
+    pred = after[["lag", "adapter_offset_deg"]].assign(pse_shift_deg=1.0)
+    pred.to_csv(tmp_path / "pred.csv", index=False)
+    comparison = compare_results(tmp_path / "out", tmp_path / "pred.csv", tmp_path / "cmp")
+    assert any("every measured point is flagged not-estimable" in n for n in comparison.notes)
 
 
 def test_stream_fits_take_the_level_and_check_the_options_as_adapt_test_fits_do(tmp_path):
