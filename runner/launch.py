@@ -279,9 +279,7 @@ def check_resume(out_dir: str | Path, observer: str, session: str, text: str, li
     """
     for source, content in sidecar_settings(Path(out_dir), [observer], session):
         check_same_protocol(source, content, text)
-        if check_same_light(source, content, light):
-            print(f"note: {source}: the light profile file differs from the one this session started with, "
-                  "but gives the same grey levels; continuing (the new part records its SHA-256)", file=sys.stderr)
+        _note_same_levels([(source, content)], light)
         if seed is not None and seed != content["seed"]:
             _refuse_other_seed(source, content["seed"], seed)
 
@@ -304,6 +302,15 @@ def check_same_protocol(source: str, sidecar: dict, text: str) -> None:
 
 #: The grey levels a light profile sets, as the sidecar's ``light`` record names them.
 LIGHT_LEVELS = (("background_level", "background"), ("dots_level", "dots"))
+
+
+def _note_same_levels(started: list[tuple[str, dict]], light: dict | None) -> None:
+    """Refuse other grey levels (:func:`check_same_light`); say so, once, when only the profile file changed."""
+    changed = [source for source, sidecar in started if check_same_light(source, sidecar, light)]
+    if changed:
+        which = changed[0] if len(changed) == 1 else f"{changed[0]} and {len(changed) - 1} more sessions"
+        print(f"note: {which}: the light profile file differs from the one the session started with, "
+              "but gives the same grey levels; continuing (the new part records its SHA-256)", file=sys.stderr)
 
 
 def check_same_light(source: str, sidecar: dict, light: dict | None) -> bool:
@@ -645,6 +652,8 @@ def simulate(
     else:
         seed, model = resume_seed_and_model(out, n_observers, session, seed, model)
         started = {content["observer"]: (content, side) for side, content in sidecar_settings(out, names, session)}
+        # other grey levels: refused before any observer goes on
+        _note_same_levels([(str(side), content) for content, side in started.values()], light)
     seed = 0 if seed is None else seed
     model = model or ObserverModel()
     models = draw_observers(model, n_observers, seed)

@@ -355,6 +355,16 @@ def plan_light(protocol, source: str = "", now=None) -> LightPlan | None:
     elif age < -1.0:
         warnings.append(f"{source}: light.profile: the light profile is dated {-age:.0f} days in the future; "
                         "check the computer's clock")
+    if any(abs(a - b) > 0.02 * b for a, b in zip(profile.screen_cm, protocol.display.screen_cm)):
+        warnings.append(
+            f"{source}: light.profile: measured on a display of {profile.screen_cm[0]:g} x {profile.screen_cm[1]:g} cm, "
+            f"the protocol says {protocol.display.screen_cm[0]:g} x {protocol.display.screen_cm[1]:g}; "
+            "is it the same display?")
+    if profile.refresh_hz is not None and abs(profile.refresh_hz - protocol.display.refresh_hz) > 0.01 * protocol.display.refresh_hz:
+        warnings.append(
+            f"{source}: light.profile: measured at {profile.refresh_hz:g} Hz, the protocol runs at "
+            f"{protocol.display.refresh_hz:g} Hz; a display's light can differ between refresh rates (overdrive, "
+            "dynamic modes): measure it at the protocol's")
     if list(profile.screen_px) != list(protocol.display.screen_px):
         warnings.append(
             f"{source}: light.profile: measured on a {profile.screen_px[0]}x{profile.screen_px[1]} px display, "

@@ -246,8 +246,8 @@ def load_profile(path: str | Path, source: str = "", field: str = "light.profile
     if problem:
         raise InputError(source or str(p), field, f"light profile {p} {problem}")
     try:
-        text = p.read_text(encoding="utf-8")
-        raw = tomllib.loads(text)
+        data = p.read_bytes()       # hashed as stored: sha256sum of the file gives the same (CRLF line ends too)
+        raw = tomllib.loads(data.decode("utf-8"))
     except (OSError, UnicodeDecodeError) as exc:
         raise InputError(str(p), "file", f"cannot be read as text ({exc})") from None
     except tomllib.TOMLDecodeError as exc:
@@ -270,7 +270,7 @@ def load_profile(path: str | Path, source: str = "", field: str = "light.profile
         raise InputError(str(p), "model.grey.amplitude_cd_m2", flat)
     return LightProfile(
         path=str(p),
-        sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(),
+        sha256=hashlib.sha256(data).hexdigest(),
         measured_utc=measured,
         screen_cm=list(checked.screen_cm),
         screen_px=list(checked.screen_px),

@@ -787,3 +787,49 @@ def test_fit_does_not_look_for_the_light_profile_beside_the_logs(tmp_path, capsy
     err = capsys.readouterr().err
     assert "does not exist" not in err and "keeps the presented levels fixed" not in err
     assert "re-ran the adaptive tracks" in (tmp_path / "fit" / "summary.txt").read_text()
+
+
+def test_a_profile_is_hashed_as_its_bytes_are_stored(tmp_path):
+    # the text was hashed after Python turned CRLF into LF: two different files got one SHA-256, and
+    # `sha256sum` of the file (FIPS 180-4 SHA-256 of its bytes, hashlib here) disagreed with the sidecar
+    import hashlib
+
+    lf = write_profile(tmp_path, black=0.5, amplitude=99.5)
+    crlf = tmp_path / "crlf.toml"
+    crlf.write_bytes(lf.read_bytes().replace(b"\n", b"\r\n"))
+    for path in (lf, crlf):
+        assert load_profile(path).sha256 == hashlib.sha256(path.read_bytes()).hexdigest()
+    assert load_profile(lf).sha256 != load_profile(crlf).sha256
+
+
+@pytest.mark.parametrize("edit, said", [
+    (("screen_cm = [53.0, 30.0]", "screen_cm = [30.0, 17.0]"), "measured on a display of 30 x 17 cm, the protocol says 53 x 30"),
+    (("screen_px = [1920, 1080]", "screen_px = [1920, 1080]\nrefresh_hz = 144.0"), "measured at 144 Hz, the protocol runs at 60 Hz"),
+], ids=["size", "refresh"])
+def test_a_profile_of_another_screen_size_or_refresh_rate_warns(tmp_path, capsys, edit, said):
+    # only another pixel size warned before
+    profile = write_profile(tmp_path, black=0.5, amplitude=99.5)
+    profile.write_text(profile.read_text().replace(*edit))
+    p = write_protocol(tmp_path, 'profile = "profile.toml"\nbackground_cd_m2 = 10.0',
+                       "[display]\nrefresh_hz = 60\nscreen_cm = [53.0, 30.0]\nscreen_px = [1920, 1080]")
+    assert main(["check", str(p)]) == 0
+    assert said in capsys.readouterr().err
+
+
+@pytest.mark.slow    # two simulations
+def test_simulate_resumed_with_a_new_profile_of_the_same_levels_says_so(tmp_path, capsys):
+    # run said so; simulate said nothing
+    write_profile(tmp_path, black=0.5, amplitude=99.5)
+    p = write_protocol(tmp_path, 'profile = "profile.toml"\nbackground_cd_m2 = 2.0',
+                       "[design]\nadapter_offsets_deg = [30.0]\nlags = [0]\ntrials_per_track = 2\npractice_trials = 0")
+    out = tmp_path / "out"
+    assert main(["simulate", str(p), "--out", str(out), "--observers", "2"]) == 0
+    for side in out.glob("*.session.json"):      # as if both had stopped before their last part ended
+        content = json.loads(side.read_text())
+        content["parts"][-1].update(ended=None, ended_by="running")
+        side.write_text(json.dumps(content))
+    (tmp_path / "profile.toml").write_text((tmp_path / "profile.toml").read_text() + "# checked again\n")
+    capsys.readouterr()
+    assert main(["simulate", str(p), "--out", str(out), "--resume"]) == 0
+    notes = [line for line in capsys.readouterr().err.splitlines() if "light profile file differs" in line]
+    assert len(notes) == 1 and "and 1 more sessions" in notes[0] and "same grey levels" in notes[0]
