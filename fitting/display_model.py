@@ -55,6 +55,13 @@ REPEAT_SPREAD = 0.05
 #: ... or by this fraction of the channel's largest reading, whichever is larger.
 #: (Spot photometers repeat to about 1–2 %: common practice, no source.)
 SCALE_FRACTION = 0.01
+#: Dark repeats: repeats that differ by more than this factor and by more than DARK_FLOOR_CD_M2 disagree
+#: whatever the channel's maximum (at the dark end 1 % of the maximum is several times the reading itself;
+#: common practice, no source).
+DARK_REPEAT_RATIO = 2.0
+DARK_FLOOR_CD_M2 = 0.1
+#: The lowest and highest levels measured must reach these, or black and maximum are extrapolated.
+SPAN_LEVELS = (0.05, 0.95)
 #: A reading may lie this far (fraction of itself) from the fitted curve, or
 #: SCALE_FRACTION of the maximum, whichever is larger.
 RESIDUAL_LIMIT = 0.05
@@ -187,7 +194,7 @@ class Problem:
     Attributes
     ----------
     channel : str
-    kind : {"repeats disagree", "not monotonic", "far from the curve"}
+    kind : {"repeats disagree", "not monotonic", "far from the curve", "range not measured"}
     rows : tuple of int
         The offending rows.
     message : str
@@ -201,8 +208,8 @@ class Problem:
 
     def line(self) -> str:
         """One line for the console."""
-        rows = ", ".join(str(r) for r in self.rows)
-        return f"{self.channel}: {self.kind} (rows {rows}): {self.message}"
+        rows = f" (rows {', '.join(str(r) for r in self.rows)})" if self.rows else ""
+        return f"{self.channel}: {self.kind}{rows}: {self.message}"
 
 
 class ReadingsRefused(InputError):
@@ -217,7 +224,7 @@ class ReadingsRefused(InputError):
         self.problems = list(problems)
         first = self.problems[0]
         more = f"; {len(self.problems) - 1} more problem(s) listed above" if len(self.problems) > 1 else ""
-        super().__init__(source, f"rows {', '.join(str(r) for r in first.rows)}",
+        super().__init__(source, f"rows {', '.join(str(r) for r in first.rows)}" if first.rows else "levels",
                          f"{first.channel}: {first.kind}: {first.message}{more}{hint}")
 
 
@@ -306,7 +313,12 @@ def check_readings(readings: Readings) -> list[Problem]:
     """Problems in one channel's readings, before fitting.
 
     * Repeats of a level that differ by more than :data:`REPEAT_SPREAD` of
-      their mean and :data:`SCALE_FRACTION` of the channel's largest reading.
+      their mean and :data:`SCALE_FRACTION` of the channel's largest reading,
+      or by more than a factor :data:`DARK_REPEAT_RATIO` and
+      :data:`DARK_FLOOR_CD_M2` (a slip at the dark end).
+    * Levels that do not reach down to ``SPAN_LEVELS[0]`` and up to
+      ``SPAN_LEVELS[1]`` (:data:`SPAN_LEVELS`): the black level or the
+      maximum would be extrapolated.
     * A level whose mean reading is lower than the mean of a lower level by
       more than :data:`SCALE_FRACTION` of the largest reading.
 
@@ -328,10 +340,16 @@ def check_readings(readings: Readings) -> list[Problem]:
         at = readings.level == v
         values = readings.cd_m2[at]
         spread = float(values.max() - values.min())
-        if values.size > 1 and spread > max(REPEAT_SPREAD * mean, scale):
+        dark_slip = spread > DARK_FLOOR_CD_M2 and values.max() > DARK_REPEAT_RATIO * values.min()
+        if values.size > 1 and (spread > max(REPEAT_SPREAD * mean, scale) or dark_slip):
             out.append(Problem(channel, "repeats disagree", _rows(readings, at),
                                f"level {v:g} read {', '.join(f'{x:g}' for x in values)} cd/m2, "
                                f"{spread / max(mean, 1e-12):.0%} apart; measure it again"))
+    if levels.size and (levels[0] > SPAN_LEVELS[0] or levels[-1] < SPAN_LEVELS[1]):
+        out.append(Problem(channel, "range not measured", (),
+                           f"levels {levels[0]:g} to {levels[-1]:g} only: the fit would extrapolate the "
+                           f"{'black level' if levels[0] > SPAN_LEVELS[0] else 'maximum'}; measure levels from "
+                           f"{SPAN_LEVELS[0]:g} or lower to {SPAN_LEVELS[1]:g} or higher"))
     running = -np.inf
     running_level = None
     for v, mean in zip(levels, means):

@@ -225,6 +225,33 @@ def write_atomically(path: str | Path, text: str) -> Path:
     return p
 
 
+def _check_models_give_the_residuals(checked, source: str, models: dict) -> None:
+    """Refuse a model that does not give the residuals its profile records for its own readings.
+
+    ``measure-light`` writes every reading with its residual from the
+    fitted curve; a model parameter (or a reading) edited by hand afterwards
+    no longer agrees with them, and would turn requested luminances into
+    other grey levels than the readings support.
+    """
+    readings = checked.readings
+    if readings is None:
+        return
+    gun = np.asarray(readings.gun)
+    level, value = np.asarray(readings.level, float), np.asarray(readings.luminance_cd_m2, float)
+    recorded = np.asarray(readings.residual_cd_m2, float)
+    for channel, model in models.items():
+        at = gun == channel
+        if not at.any():
+            continue
+        now = value[at] - model.luminance(level[at])
+        worst = int(np.argmax(np.abs(now - recorded[at])))
+        if abs(now[worst] - recorded[at][worst]) > 1e-6 * max(float(value[at].max()), 1e-9):
+            raise InputError(source, f"model.{channel}", f"does not give its own readings: level "
+                             f"{level[at][worst]:g} read {value[at][worst]:g} cd/m2 with a residual of "
+                             f"{recorded[at][worst]:.4g}, the model now gives {now[worst]:.4g}; edited by hand? "
+                             "Measure the display again (or restore the profile)")
+
+
 def load_profile(path: str | Path, source: str = "", field: str = "light.profile") -> LightProfile:
     """Read a light profile.
 
@@ -265,6 +292,7 @@ def load_profile(path: str | Path, source: str = "", field: str = "light.profile
     models = {channel: GainOffsetGamma(*(getattr(section, k) for k in MODEL_FIELDS))
               for channel in CHANNELS if (section := getattr(checked.model, channel)) is not None}
     check_summary(checked, str(p), models["grey"].min_cd_m2, models["grey"].max_cd_m2)
+    _check_models_give_the_residuals(checked, str(p), models)
     flat = flatness(models["grey"])
     if flat:
         raise InputError(str(p), "model.grey.amplitude_cd_m2", flat)

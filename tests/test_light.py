@@ -833,3 +833,37 @@ def test_simulate_resumed_with_a_new_profile_of_the_same_levels_says_so(tmp_path
     assert main(["simulate", str(p), "--out", str(out), "--resume"]) == 0
     notes = [line for line in capsys.readouterr().err.splitlines() if "light profile file differs" in line]
     assert len(notes) == 1 and "and 1 more sessions" in notes[0] and "same grey levels" in notes[0]
+
+
+def test_readings_that_leave_black_or_maximum_to_extrapolation_are_refused():
+    # levels 0.6-1 only gave black 0.027 cd/m2 for a true 0.3, and check then turned 0.5 cd/m2 into a level
+    # that gives 0.60 on the display, shown as exact
+    level = np.repeat(np.linspace(0.6, 1.0, 6), 2)
+    bright = make_readings(level, TRUE.luminance(level))
+    with pytest.raises(ReadingsRefused, match="range not measured: levels 0.6 to 1 only: the fit would "
+                                              "extrapolate the black level"):
+        fit_channel(bright)
+    assert fit_channel(bright, fit_anyway=True).problems[0].kind == "range not measured"
+
+
+def test_a_slip_at_the_dark_end_is_refused_however_bright_the_maximum():
+    # 1.3 typed for 0.3: 1 % of a 100 cd/m2 maximum let repeats of a black level differ four-fold
+    readings = simulate_readings(TRUE, seed=3, relative_sd=0.0, absolute_sd=0.0)
+    cd = readings.cd_m2.copy()
+    cd[0] += 1.0          # the first repeat of level 0 (0.4 cd/m2 read as 1.4)
+    with pytest.raises(ReadingsRefused, match="repeats disagree: level 0 read 1.4, 0.4, 0.4"):
+        fit_channel(make_readings(readings.level, cd))
+    cd[0] = 0.45          # ordinary photometer noise at the dark end passes
+    fit_channel(make_readings(readings.level, cd))
+
+
+def test_a_profile_whose_model_was_edited_is_refused_where_it_is_loaded(tmp_path):
+    # an amplitude changed from 109.75 to 80 (with max_cd_m2 to match) was accepted: 40 cd/m2 dots became
+    # grey level 0.7373 where the readings in the same file support 0.6433
+    text = (ROOT / "protocols" / "light" / "example_profile.toml").read_text(encoding="utf-8")
+    load_profile(ROOT / "protocols" / "light" / "example_profile.toml")
+    edited = tmp_path / "edited.toml"
+    edited.write_text(text.replace("amplitude_cd_m2 = 109.7534461338", "amplitude_cd_m2 = 80.0")
+                      .replace("max_cd_m2 = 110.108150044", "max_cd_m2 = 80.3547039102"), encoding="utf-8")
+    with pytest.raises(InputError, match=r"edited.toml: model.grey: does not give its own readings"):
+        load_profile(edited)
