@@ -12,7 +12,9 @@ spaces (empty = nothing unusual):
                      the other conditions' spread)
 ``on-bound``         the estimate or a confidence limit sits on a fitting bound
                      (read it as "at least" / "at most")
-``outside-tested``   the PSE lies outside the range of tested offsets
+``outside-tested``   the PSE lies outside the range of tested offsets (a tuning
+                     row: the peak offset lies beyond the largest adapter
+                     offset, where the curve is extrapolated)
 ``steep``            the fitted spread is implausibly small for the tested
                      levels (below a tenth of their interquartile range; with a
                      shared spread, of the median range over conditions): the

@@ -442,6 +442,7 @@ def _boxes(trials: StreamTrials, lapse, lapse_max: float):
     x = trials.test_offset_deg
     width = max(float(np.ptp(x)), 1.0)
     w_lo, w_hi = peak_bounds(trials.preceding_offsets_deg.ravel())
+    w_hi = min(w_hi, 180.0)     # a stream's directions are circular: no peak lies beyond the opposite direction
     lam_lo, lam_hi = (0.0, lapse_max) if lapse == "free" else (float(lapse), float(lapse))
     base_lo = [x.min() - width, np.log(1e-3 * width), lam_lo, np.log(w_lo)]
     base_hi = [x.max() + width, np.log(10.0 * width), lam_hi, np.log(w_hi)]
@@ -654,15 +655,17 @@ def result_tables(boot: NbackBootstrap) -> dict[str, pd.DataFrame]:
     amp_lo, amp_hi = ci(boot.amplitude_ci)
     w_lo, w_hi = (v[0] for v in ci(([boot.peak_offset_ci[0]], [boot.peak_offset_ci[1]])))
     w_box = tuple(np.exp([fit.lower_per_n[3], fit.upper_per_n[3]]))
+    offsets = np.unique(tr.preceding_offsets_deg)
+    offsets = offsets[(offsets != 0) & (np.abs(offsets) != 180)]      # the shift rows' offsets
+    tested = float(np.abs(offsets).max()) if offsets.size else 0.0    # a peak beyond them is extrapolated
     tuning = pd.DataFrame({
         "observer": obs, "lag": np.arange(k), "amplitude_deg": fit.amplitudes_deg,
         "amplitude_ci_low": amp_lo, "amplitude_ci_high": amp_hi, "peak_offset_deg": fit.peak_offset_deg,
         "peak_offset_ci_low": w_lo, "peak_offset_ci_high": w_hi,
-        "flags": [join(_row_flags(common, a, lo, hi), _row_flags([], fit.peak_offset_deg, w_lo, w_hi, w_box))
+        "flags": [join(_row_flags(common, a, lo, hi), _row_flags([], fit.peak_offset_deg, w_lo, w_hi, w_box),
+                       ["outside-tested"] if fit.peak_offset_deg > tested else [])
                   for a, lo, hi in zip(fit.amplitudes_deg, amp_lo, amp_hi)],
     })
-    offsets = np.unique(tr.preceding_offsets_deg)
-    offsets = offsets[(offsets != 0) & (np.abs(offsets) != 180)]
     est, lo, hi = boot.shift_ci(offsets)
     lo, hi = ci((lo, hi))
     rows = []

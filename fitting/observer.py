@@ -570,7 +570,8 @@ def _curves(a: ObserverAnalysis, opts: Options, shift_ci=None) -> None:
                        "peak_offset_ci_low": lo[col + 1], "peak_offset_ci_high": hi[col + 1],
                        "flags": join(inherited, ["on-bound"] if on_bound(
                            est[col + 1], lo[col + 1], hi[col + 1], model.peak_range) else [],
-                           ["off-interval"] if any(off) else [])})
+                           ["off-interval"] if any(off) else [],
+                           ["outside-tested"] if est[col + 1] > np.abs(model.offsets).max() else [])})
         note = bound_note(f"lag {model.lags[i]:g} peak offset", est[col + 1], lo[col + 1],
                           hi[col + 1], model.peak_range, "deg")
         if note:

@@ -252,3 +252,23 @@ def test_parameter_recovery_fast():
     assert res["amplitude"].mean() == pytest.approx(3.0, abs=0.2)
     assert res["peak_offset"].mean() == pytest.approx(30.0, abs=2.0)
     assert res["decay"].mean() == pytest.approx(1.5, abs=0.2)
+
+
+@pytest.mark.slow    # simulate and fit
+def test_a_peak_offset_beyond_the_largest_adapter_offset_is_flagged(tmp_path):
+    # adapters at +-15 and +-30 deg cannot place a peak at 60: the curve there is extrapolated, and its row
+    # carried no flag
+    from fitting import fit_logs
+    from runner.launch import simulate
+    from runner.observers import ObserverModel
+    from runner.protocol import parse_protocol
+
+    text = ("[design]\nadapter_offsets_deg = [-30.0, -15.0, 15.0, 30.0]\nlags = [0]\ntrials_per_track = 40\n"
+            "practice_trials = 0\n")
+    simulate(parse_protocol(text), "p.toml", text, tmp_path / "logs",
+             ObserverModel(peak_offset_deg=60.0, amplitude_deg=4.0, spread_between_observers=0.0), 1, 3,
+             progress=False)
+    fit_logs([str(tmp_path / "logs")], str(tmp_path / "fit"), n_boot=50, seed=1, progress=False, figures=False)
+    tuning = pd.read_csv(tmp_path / "fit" / "tuning.csv")
+    row = tuning[tuning["observer"] == "sim01"].iloc[0]
+    assert row["peak_offset_deg"] > 30 and "outside-tested" in row["flags"]

@@ -286,3 +286,17 @@ def test_fit_options_that_do_not_apply_to_streams_are_refused(tmp_path, capsys):
         assert line == f"aftershift: argument: {option[0]}: " + line.split(f"{option[0]}: ", 1)[1]
         assert "does not apply to stream logs" in line and "\n" not in line
     assert not (tmp_path / "out").exists()
+
+
+def test_a_peak_offset_beyond_the_largest_tested_offset_is_flagged(tmp_path):
+    # a stream of directions 90 deg apart measures shifts at +-90 only; a fitted peak of 102 deg [82, 124]
+    # went unflagged (and the peak could reach 300 deg, beyond the opposite direction)
+    text = read_protocol_text(BUNDLED).replace("direction_step_deg = 30", "direction_step_deg = 90")
+    text = text.replace("trials_per_track = 300", "trials_per_track = 200")
+    protocol = parse_protocol(text, "step90.toml")
+    simulate(protocol, "step90.toml", text, tmp_path / "logs", ObserverModel(peak_offset_deg=100.0, amplitude_deg=4.0,
+             spread_between_observers=0.0), 1, 4, progress=False)
+    fit_stream_logs(tmp_path / "logs", tmp_path / "out", n_boot=100, seed=1, figures=False)
+    tuning = pd.read_csv(tmp_path / "out" / "tuning.csv")
+    assert (tuning["peak_offset_deg"] > 90).all() and tuning["flags"].str.contains("outside-tested").all()
+    assert (tuning["peak_offset_ci_high"] <= 180).all()
