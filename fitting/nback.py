@@ -680,9 +680,8 @@ def result_tables(boot: NbackBootstrap) -> dict[str, pd.DataFrame]:
         decay = pd.DataFrame({"observer": [obs], "decay_periods": [fit.decay_periods], "ci_low": [t_lo],
                               "ci_high": [t_hi],
                               "flags": [_row_flags(common, fit.decay_periods, t_lo, t_hi, TAU_BOUNDS)]})
-    else:
-        decay = pd.DataFrame({"observer": [obs], "decay_periods": [np.nan], "ci_low": [np.nan], "ci_high": [np.nan],
-                              "flags": [join(common)]})
+    else:       # one period back: no decay to fit, and no row (as for an adapt-test fit without one)
+        decay = pd.DataFrame(columns=["observer", "decay_periods", "ci_low", "ci_high", "flags"])
     reps = dog(offsets[None, None, :], boot.per_n[:, 4:, None], np.exp(boot.per_n[:, 3])[:, None, None])
     reps = reps.reshape(reps.shape[0], -1)
     cov = long_table(obs, np.repeat(np.arange(k), offsets.size), np.tile(offsets, k),
@@ -764,10 +763,13 @@ class StreamReport:
             line = (f"{f.trials.observer}: {f.trials.n_trials} tests; PSE {f.pse_deg:.2f} deg; amplitudes (deg) "
                     f"{amps}; peak offset {f.peak_offset_deg:.3g} deg"
                     f"{_shown(first['peak_offset_ci_low'], first['peak_offset_ci_high'], '.3g')}; lapse {f.lapse:.3f}")
-            row = decay[decay["observer"] == f.trials.observer].iloc[0]
             if f.trials.n_back >= 2:
+                row = decay[decay["observer"] == f.trials.observer].iloc[0]
                 line += f"; decay {f.decay_periods:.3g} periods{_shown(row['ci_low'], row['ci_high'], '.3g')}"
             lines.append(line)
+        one_back = [boot.fit.trials.observer for boot in self.fits if boot.fit.trials.n_back < 2]
+        if one_back:
+            lines.append(f"note: {', '.join(one_back)}: one period back only (K = 1): no decay fit, no decay row")
         if len(self.fits) > 1:
             lines.append(f"note: {NO_GROUP_NOTE}")
         return "\n".join(lines)
@@ -851,7 +853,8 @@ def fit_stream_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="fr
             for name, table in result_tables(boot).items():
                 tables[name].append(table)
             bar.advance()
-    joined = {name: pd.concat(parts, ignore_index=True) for name, parts in tables.items()}
+    joined = {name: pd.concat([p for p in parts if len(p)] or parts[:1], ignore_index=True)
+              for name, parts in tables.items()}
     joined["exclusions"] = stream_exclusions(raw, include_bad_timing)
     with output_set(out, "fit") as staged:
         folder = staged.folder

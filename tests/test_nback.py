@@ -300,3 +300,14 @@ def test_a_peak_offset_beyond_the_largest_tested_offset_is_flagged(tmp_path):
     tuning = pd.read_csv(tmp_path / "out" / "tuning.csv")
     assert (tuning["peak_offset_deg"] > 90).all() and tuning["flags"].str.contains("outside-tested").all()
     assert (tuning["peak_offset_ci_high"] <= 180).all()
+
+
+def test_one_period_back_writes_no_decay_row_and_says_why(tmp_path):
+    # K = 1 wrote a decay row with no number and an empty flags cell (which reads "nothing unusual")
+    text = read_protocol_text(BUNDLED).replace("nback_periods = 3", "nback_periods = 1")
+    text = text.replace("trials_per_track = 300", "trials_per_track = 60")
+    simulate(parse_protocol(text, "k1.toml"), "k1.toml", text, tmp_path / "logs", ObserverModel(), 1, 4,
+             progress=False)
+    report = fit_stream_logs(tmp_path / "logs", tmp_path / "out", n_boot=50, seed=1, figures=False)
+    assert pd.read_csv(tmp_path / "out" / "decay.csv").empty
+    assert "one period back only (K = 1): no decay fit" in report.summary()
