@@ -185,7 +185,16 @@ def test_a_light_profile_is_compared_by_its_grey_levels(capsys, tmp_path):
     check_resume(out, "sim01", "s1", text, light_plan(load_protocol(protocol)).sidecar(), None)
     assert "same grey levels" in one_line(capsys.readouterr().err)
 
-    profile.write_text(original.replace("gamma = 2.2499300567", "gamma = 2.4"))   # a display measured again
+    # the display measured again, 10 % dimmer (a gamma edited by hand is refused where the profile is read,
+    # tests/test_light.py)
+    readings = (PROTOCOLS / "light" / "example_readings.csv").read_text().splitlines()
+    header = readings[0].split(",")
+    at = header.index("luminance_cd_m2")
+    dimmer = [",".join(f"{float(c) * 0.9:.4f}" if i == at else c for i, c in enumerate(line.split(",")))
+              for line in readings[1:]]
+    (tmp_path / "again.csv").write_text("\n".join([readings[0], *dimmer]) + "\n")
+    assert cli_module.main(["measure-light", "--readings", str(tmp_path / "again.csv"), "--out", str(profile)]) == 0
+    capsys.readouterr()
     with pytest.raises(cli_module.InputError) as refused:
         check_resume(out, "sim01", "s1", text, light_plan(load_protocol(protocol)).sidecar(), None)
     assert refused.value.field == "light.profile_sha256" and "other grey levels" in refused.value.message
