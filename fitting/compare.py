@@ -243,6 +243,8 @@ def read_covariance(path: Path, measured: pd.DataFrame) -> pd.DataFrame:
             raise InputError(str(path), "observer", f"{observer}: {len(rows)} rows, not one per pair of its "
                              f"{len(cells)} cells (a cut or changed file?); run fit again")
         _check_covariance(found, path, observer)
+        _check_stream_labels(rows, path, observer)
+    _check_cells_measured(table, measured, path)
     named = set(measured["observer"])
     absent = [o for o in dict.fromkeys(table["observer"]) if o not in named]
     if absent:
@@ -818,6 +820,39 @@ def _check_covariance(cov: np.ndarray, path: Path, observer) -> None:
     if not (np.abs(cov - cov.T).max() <= tol and np.linalg.eigvalsh((cov + cov.T) / 2.0).min() >= -tol):
         raise InputError(str(path), "covariance_deg2", f"observer {observer}: the shifts' covariance is not symmetric "
                          "positive semi-definite, as no fit writes it (a changed or damaged cell?)")
+
+
+def _check_stream_labels(rows: pd.DataFrame, path: Path, observer) -> None:
+    """Refuse ``shift_parameters`` other than a stream fit writes them: ``a<n> w`` for lag n − 1, in every cell or none.
+
+    They set the degrees of freedom of ``compare``'s χ² (:func:`fitting.covariance.covariance_matrix`).
+    """
+    if "shift_parameters" not in rows:
+        return
+    named = rows["shift_parameters"].astype(object)
+    text = named.where(named.notna(), "").astype(str).str.strip()
+    if not (text != "").any():
+        return      # an adapt-test fit's: none named
+    expected = rows["lag_a"].map(lambda lag: f"a{int(lag) + 1} w" if float(lag).is_integer() else "")
+    wrong = text != expected
+    if wrong.any():
+        i = int(np.flatnonzero(wrong.to_numpy())[0])
+        raise InputError(str(path), "shift_parameters", f"{observer}, lag {rows['lag_a'].iloc[i]:g}: "
+                         f"{text.iloc[i][:20]!r}, not {expected.iloc[i]!r} as a stream fit writes it (they set the "
+                         "chi2's degrees of freedom; a changed cell?); run fit again")
+
+
+def _check_cells_measured(table: pd.DataFrame, measured: pd.DataFrame, path: Path) -> None:
+    """Refuse a covariance cell whose point ``aftereffect.csv`` lacks (a row deleted from it)."""
+    have = set(zip(measured["observer"].astype(str), measured["lag"].astype(float),
+                   measured["adapter_offset_deg"].astype(float)))
+    cells = table[["observer", "lag_a", "adapter_offset_a_deg"]].drop_duplicates()
+    for observer, lag, offset in zip(cells["observer"].astype(str), cells["lag_a"].astype(float),
+                                     cells["adapter_offset_a_deg"].astype(float)):
+        if observer in set(measured["observer"].astype(str)) and (observer, lag, offset) not in have:
+            raise InputError(str(path.parent / "aftereffect.csv"), "observer",
+                             f"{observer}, lag {lag:g}, offset {offset:+g}: in {COVARIANCE_FILE} but not here (a "
+                             "deleted row?); copy the fit's folder again or run fit again")
 
 
 def _check_covariance_labels(table: pd.DataFrame, path: Path) -> None:

@@ -484,6 +484,9 @@ def test_group_cells_of_fewer_than_three_observers_are_left_out_of_the_group_sta
     assert table.loc[("group", "0"), "n_points"] == 4 and table.loc[("group", "0"), "points_left_out"] == 0
     # the group's chi2, RMSE and fraction inside the CIs are those of the group without those cells
     shifts[~wide].to_csv(fit / "aftereffect.csv", index=False)
+    cov = pd.read_csv(fit / "aftereffect_covariance.csv")       # and their covariance (a row alone is refused)
+    cov[~((cov["observer"] == "group") & ((cov["lag_a"] == 2) | (cov["lag_b"] == 2)))].to_csv(
+        fit / "aftereffect_covariance.csv", index=False)
     without = compare_results(fit, tmp_path / "pred.csv", tmp_path / "cmp2", figures=False).table
     alone = without.set_index(["observer", "lag"]).loc[("group", "all")]
     for column in ("chi2", "chi2_p", "rmse_deg", "inside_ci_fraction"):

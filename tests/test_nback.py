@@ -311,3 +311,22 @@ def test_one_period_back_writes_no_decay_row_and_says_why(tmp_path):
     report = fit_stream_logs(tmp_path / "logs", tmp_path / "out", n_boot=50, seed=1, figures=False)
     assert pd.read_csv(tmp_path / "out" / "decay.csv").empty
     assert "one period back only (K = 1): no decay fit" in report.summary()
+
+
+def test_compare_refuses_a_stream_fit_whose_labels_or_rows_were_edited(tmp_path):
+    # shift_parameters set the chi2's degrees of freedom (edited, chi2/30 was read on 30 df instead of 4),
+    # and a row deleted from aftereffect.csv silently dropped its point
+    fit_stream_logs(_tiny_stream_logs(tmp_path, 60, seed=2), tmp_path / "out", n_boot=100, seed=1, figures=False)
+    after = pd.read_csv(tmp_path / "out" / "aftereffect.csv")
+    after[["lag", "adapter_offset_deg"]].assign(pse_shift_deg=1.0).to_csv(tmp_path / "pred.csv", index=False)
+    compare_results(tmp_path / "out", tmp_path / "pred.csv", tmp_path / "cmp")     # as written: read
+    cov_path = tmp_path / "out" / "aftereffect_covariance.csv"
+    kept = cov_path.read_text()
+    cov_path.write_text(kept.replace(",a1 w", ",a1 a2 a3 a4 w"))
+    with pytest.raises(InputError, match="shift_parameters: sim01, lag 0: 'a1 a2 a3 a4 w', not 'a1 w'"):
+        compare_results(tmp_path / "out", tmp_path / "pred.csv", tmp_path / "cmp2")
+    cov_path.write_text(kept)
+    after.drop(index=3).to_csv(tmp_path / "out" / "aftereffect.csv", index=False)
+    with pytest.raises(InputError, match=r"aftereffect.csv: observer: sim01, lag 0, offset [-+]\d+: in "
+                                         "aftereffect_covariance.csv but not here"):
+        compare_results(tmp_path / "out", tmp_path / "pred.csv", tmp_path / "cmp3")
