@@ -143,13 +143,16 @@ def _read_stream_file(path: Path) -> pd.DataFrame:
         obs = r["observer"].strip()
         if not obs:
             _fail(source, line, "observer", "empty; a value is required")
-        try:
-            x = float(r["test_offset_deg"])
-            prec = tuple(float(v) for v in r["preceding_offsets_deg"].split(";"))
-        except ValueError:
-            _fail(source, line, "test_offset_deg/preceding_offsets_deg", "expected numbers (';'-separated offsets)")
-        if not np.isfinite(x) or not all(np.isfinite(prec)):
-            _fail(source, line, "test_offset_deg/preceding_offsets_deg", "expected finite numbers")
+        for column in ("test_offset_deg", "preceding_offsets_deg"):     # the cell at fault, by its own name
+            try:
+                values = tuple(float(v) for v in (r[column].split(";") if column != "test_offset_deg" else [r[column]]))
+            except ValueError:
+                _fail(source, line, column, f"{r[column][:40]!r}: expected "
+                      f"{'a number' if column == 'test_offset_deg' else 'numbers (; between offsets)'}")
+            if not all(np.isfinite(values)):
+                _fail(source, line, column, f"{r[column][:40]!r}: expected finite numbers")
+        x = float(r["test_offset_deg"])
+        prec = tuple(float(v) for v in r["preceding_offsets_deg"].split(";"))
         if abs(x) > MAX_OFFSET_DEG or any(abs(v) > MAX_OFFSET_DEG for v in prec):
             _fail(source, line, "test_offset_deg/preceding_offsets_deg",
                   f"expected offsets within ±{MAX_OFFSET_DEG:g} deg")

@@ -101,6 +101,9 @@ def _check_preceding_periods(log: Path, side: Path, meta: dict, protocol) -> Non
             shown = [float(v) for v in row["preceding_offsets_deg"].split(";")]
         except ValueError:
             continue
+        if not all(np.isfinite(shown)):     # the log's cell is at fault, not the sidecar
+            raise InputError(str(log), f"line {line}, column preceding_offsets_deg",
+                             f"{row['preceding_offsets_deg'][:40]!r}: expected finite numbers (';'-separated offsets)")
         where = f"line {line} of its log {log.name}"
         if len(shown) != s.nback_periods:
             raise InputError(str(side), "protocol", f"its protocol ({meta['protocol'].get('path')}) shows "

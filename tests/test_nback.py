@@ -330,3 +330,23 @@ def test_compare_refuses_a_stream_fit_whose_labels_or_rows_were_edited(tmp_path)
     with pytest.raises(InputError, match=r"aftereffect.csv: observer: sim01, lag 0, offset [-+]\d+: in "
                                          "aftereffect_covariance.csv but not here"):
         compare_results(tmp_path / "out", tmp_path / "pred.csv", tmp_path / "cmp3")
+
+
+@pytest.mark.parametrize("column, value", [("preceding_offsets_deg", "nan;60;90"), ("preceding_offsets_deg", ""),
+                                           ("test_offset_deg", "")], ids=["nan offset", "empty list", "empty test"])
+def test_a_damaged_stream_cell_is_named_by_its_own_column(tmp_path, capsys, column, value):
+    # a nan among the preceding offsets was blamed on the sidecar ("the sidecar is another session's"), an
+    # empty cell named two columns
+    from runner.cli import main
+
+    logs = _tiny_stream_logs(tmp_path, 12)
+    log = next(logs.glob("*.trials.csv"))
+    lines = log.read_text().splitlines()
+    header = lines[0].split(",")
+    cells = lines[4].split(",")
+    cells[header.index(column)] = value
+    lines[4] = ",".join(cells)
+    log.write_text("\n".join(lines) + "\n")
+    assert main(["fit", str(logs), "--out", str(tmp_path / "out"), "--bootstrap", "10", "--no-figures"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.startswith(f"aftershift: {log}: line 5, column {column}: ") and "\n" not in err
