@@ -765,7 +765,8 @@ class StreamReport:
             first = rows.iloc[0]
             line = (f"{f.trials.observer}: {f.trials.n_trials} tests; PSE {f.pse_deg:.2f} deg; amplitudes (deg) "
                     f"{amps}; peak offset {f.peak_offset_deg:.3g} deg"
-                    f"{_shown(first['peak_offset_ci_low'], first['peak_offset_ci_high'], '.3g')}; lapse {f.lapse:.3f}")
+                    f"{_shown(first['peak_offset_ci_low'], first['peak_offset_ci_high'], '.3g')}; lapse {f.lapse:.3f}"
+                    f"{_lapse_bound(f)}")
             if f.trials.n_back >= 2:
                 row = decay[decay["observer"] == f.trials.observer].iloc[0]
                 line += f"; decay {f.decay_periods:.3g} periods{_shown(row['ci_low'], row['ci_high'], '.3g')}"
@@ -776,6 +777,12 @@ class StreamReport:
         if len(self.fits) > 1:
             lines.append(f"note: {NO_GROUP_NOTE}")
         return "\n".join(lines)
+
+
+def _lapse_bound(fit: NbackFit) -> str:
+    """`` (on its bound)`` for a free lapse fitted at its upper bound (``--lapse-max``), as adapt-test fits note it."""
+    lo, hi = float(fit.lower_per_n[2]), float(fit.upper_per_n[2])
+    return " (on its bound: raise --lapse-max or read it as at least this)" if hi > lo and fit.lapse >= hi - 1e-6 else ""
 
 
 def _shown(lo, hi, spec: str) -> str:

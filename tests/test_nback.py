@@ -214,12 +214,12 @@ def test_nback_imports_neither_runner_nor_psychopy():
     assert out.stdout.strip() == "[]"
 
 
-def _tiny_stream_logs(tmp_path, tests_per_track: int = 6, seed: int = 5):
+def _tiny_stream_logs(tmp_path, tests_per_track: int = 6, seed: int = 5, model: ObserverModel | None = None):
     """Logs of a stream of ``2 * tests_per_track`` tests, simulated by the real engine."""
     text = read_protocol_text(BUNDLED).replace("trials_per_track = 300", f"trials_per_track = {tests_per_track}")
     text = text.replace("break_every = 150", f"break_every = {tests_per_track}")
     protocol = parse_protocol(text, "tiny.toml")
-    simulate(protocol, "tiny.toml", text, tmp_path / "logs", ObserverModel(), 1, seed, progress=False)
+    simulate(protocol, "tiny.toml", text, tmp_path / "logs", model or ObserverModel(), 1, seed, progress=False)
     return tmp_path / "logs"
 
 
@@ -350,3 +350,13 @@ def test_a_damaged_stream_cell_is_named_by_its_own_column(tmp_path, capsys, colu
     assert main(["fit", str(logs), "--out", str(tmp_path / "out"), "--bootstrap", "10", "--no-figures"]) == 2
     err = capsys.readouterr().err.strip()
     assert err.startswith(f"aftershift: {log}: line 5, column {column}: ") and "\n" not in err
+
+
+def test_a_stream_lapse_on_its_bound_is_said(tmp_path):
+    # adapt-test fits note a lapse on its bound; stream fits printed "lapse 0.060" without a word
+    logs = _tiny_stream_logs(tmp_path, 60, seed=3, model=ObserverModel(lapse=0.2))
+    report = fit_stream_logs(logs, tmp_path / "out", n_boot=20, seed=1, figures=False, lapse_max=0.01)
+    line = next(s for s in report.summary().splitlines() if s.startswith("sim01:"))
+    assert "lapse 0.010 (on its bound" in line
+    report = fit_stream_logs(logs, tmp_path / "fixed", n_boot=20, seed=1, figures=False, lapse=1e-4)
+    assert "on its bound" not in report.summary()       # a fixed lapse is not on a bound
