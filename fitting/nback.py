@@ -225,6 +225,9 @@ def _observer_trials(table: pd.DataFrame, include_bad_timing: bool) -> list[Stre
                          "no usable stream tests (block = stream, answered, timing ok)")
     out = []
     for obs, g in table.groupby("observer", sort=True):
+        # in the order the tests were run, whatever the rows' order: the same tests give the same bootstrap
+        g = g.assign(_trial=pd.to_numeric(g["trial"], errors="coerce")).sort_values(["session", "_trial"],
+                                                                                    kind="stable")
         k = {len(p) for p in g["preceding"]}
         if len(k) > 1:
             first = g[g["preceding"].map(len) != len(g["preceding"].iloc[0])].iloc[0]

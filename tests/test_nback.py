@@ -360,3 +360,17 @@ def test_a_stream_lapse_on_its_bound_is_said(tmp_path):
     assert "lapse 0.010 (on its bound" in line
     report = fit_stream_logs(logs, tmp_path / "fixed", n_boot=20, seed=1, figures=False, lapse=1e-4)
     assert "on its bound" not in report.summary()       # a fixed lapse is not on a bound
+
+
+def test_the_same_tests_in_another_row_order_give_the_same_tables(tmp_path):
+    # the bootstrap's draws followed the rows' order: a shuffled copy of a log gave other intervals
+    logs = _tiny_stream_logs(tmp_path, 60, seed=2)
+    log = next(logs.glob("*.trials.csv"))
+    fit_stream_logs(logs, tmp_path / "a", n_boot=50, seed=1, figures=False)
+    lines = log.read_text().splitlines()
+    rows = lines[1:]
+    np.random.default_rng(0).shuffle(rows)
+    log.write_text("\n".join([lines[0], *rows]) + "\n")
+    fit_stream_logs(logs, tmp_path / "b", n_boot=50, seed=1, figures=False)
+    for name in ("pse.csv", "tuning.csv", "aftereffect.csv", "decay.csv"):
+        assert (tmp_path / "a" / name).read_bytes() == (tmp_path / "b" / name).read_bytes(), name
