@@ -466,6 +466,61 @@ def cmd_fit(args) -> int:
     return EXIT_OK
 
 
+#: ``predict``'s model options, by attribute of fitting.population.ChannelModel: (lowest, highest, default, what it
+#: is); the defaults are ChannelModel's (a test checks), written out so that the parser does not import scipy.
+PREDICT_OPTIONS = {"tuning_kappa": (1e-3, 1e3, 2.5, "von Mises concentration of the channels' tuning"),
+                   "adapt_strength": (0.0, 0.999, 0.4, "fractional gain loss at the adapter, lag 0"),
+                   "adapt_kappa": (1e-3, 1e3, 2.5, "von Mises concentration of the gain loss"),
+                   "recovery_periods": (1e-3, 1e3, 2.0, "tau: the gain loss decays as exp(-k / tau) over k periods")}
+PREDICT_CHANNELS = 72
+PREDICT_HEADER = "lag,adapter_offset_deg,pse_shift_deg"
+
+
+def cmd_predict(args) -> int:
+    """Write the channel-population model's predicted shifts for a protocol's lags and adapter offsets."""
+    import math
+
+    from fitting.outputs import write_atomic
+    from fitting.population import ChannelModel, predict_table
+
+    protocol, _ = _load(args.protocol)
+    values = {}
+    for name, (low, high, _, _) in PREDICT_OPTIONS.items():
+        value = getattr(args, name)
+        if not (math.isfinite(value) and low <= value <= high):
+            raise InputError("argument", "--" + name.replace("_", "-"), f"expected a number from {low:g} to {high:g}, "
+                             f"not {value!r}")
+        values[name] = value
+    _check_count(args.channels, "--channels", 8, 3600, "channels")
+    out = Path(args.out)
+    if out.suffix.lower() != ".csv" or out.is_dir():
+        raise InputError(str(out), "--out", "expected a .csv file name for the predictions table")
+    if out.exists():
+        try:
+            first = out.read_text(encoding="utf-8-sig").split("\n", 1)[0].strip()
+        except (OSError, UnicodeDecodeError):
+            first = ""
+        if first != PREDICT_HEADER:     # a predictions table is replaced, any other file refused
+            raise InputError(str(out), "--out", "exists and is not a predictions table (its first line is not "
+                             f"{PREDICT_HEADER!r}); choose another name")
+    if protocol.stream is not None:     # a stream's shifts: every direction but the reference and its opposite
+        offsets = [o for o in protocol.stream.offsets_deg if o != 0 and abs(o) != 180]
+        lags = list(range(protocol.stream.nback_periods))
+    else:
+        offsets, lags = list(protocol.design.adapter_offsets_deg), list(protocol.design.lags)
+    model = ChannelModel(n_channels=args.channels, **values)
+    table = predict_table(model, offsets, lags)
+    try:
+        write_atomic(out, table.to_csv(index=False, float_format="%.6f", lineterminator="\n").encode("utf-8"))
+    except OSError as exc:
+        raise InputError(str(out), "--out", f"cannot be written ({exc.strerror})") from None
+    shown = ", ".join(f"{k.replace('_', ' ')} {v:g}" for k, v in values.items())
+    print(f"predicted shifts of a population of {args.channels} direction-tuned channels ({shown}) for "
+          f"{len(table)} cells ({len(lags)} lag{'s' * (len(lags) != 1)} x {len(offsets)} adapter offsets): {out}")
+    print(f"to compare a fit with them: aftershift compare FIT_FOLDER {out}")
+    return EXIT_OK
+
+
 def cmd_compare(args) -> int:
     from fitting.compare import compare_results
     from fitting.outputs import check_out_dir
@@ -669,6 +724,16 @@ def build_parser() -> argparse.ArgumentParser:
                         "give the protocol)")
     p.add_argument("--pdf", action="store_true", help="PDF copies of the figures beside the PNGs")
     p.set_defaults(func=cmd_fit)
+
+    p = sub.add_parser("predict", help="predicted after-effects of a channel-population model for a protocol's "
+                                       "lags and adapter offsets (a table compare reads)")
+    p.add_argument("protocol", help="protocol TOML file (its lags and adapter offsets, or its stream's directions)")
+    p.add_argument("--out", default="predictions.csv", help="the predictions table to write (default predictions.csv)")
+    for name, (_, _, default, what) in PREDICT_OPTIONS.items():
+        p.add_argument("--" + name.replace("_", "-"), type=float, default=default, help=f"{what} (default {default:g})")
+    p.add_argument("--channels", type=_int_arg, default=PREDICT_CHANNELS,
+                   help=f"channels, preferred directions evenly around the circle (default {PREDICT_CHANNELS})")
+    p.set_defaults(func=cmd_predict)
 
     p = sub.add_parser("compare", help="agreement of measured after-effects with a predictions table")
     p.add_argument("results", help="a fit output folder (with aftereffect.csv) or the file itself")
