@@ -750,19 +750,21 @@ def test_a_readings_file_with_a_byte_order_mark_resumes(tmp_path):
         log.close()
 
 
-def test_a_decimal_comma_or_digit_separator_in_readings_is_refused(tmp_path):
+@pytest.mark.parametrize("text, refused", [
+    ("level,luminance_cd_m2\n0,0.3\n0.5,11,9576\n1,100\n", r"row 3: has 3 cells, the header 2: a decimal comma"),
+    ("level,luminance_cd_m2\n0,0.3\n0.5,1_0\n", "row 3: luminance_cd_m2: expected a number, got '1_0'"),
+    ("level,luminance_cd_m2,level\n0,0.3,0\n", "level: the column appears twice"),
+], ids=["decimal comma", "digit separator", "column twice"])
+def test_a_decimal_comma_or_digit_separator_in_readings_is_refused(tmp_path, text, refused):
     # "11,9576" was read as 11 cd/m2 and the row's last cell ignored; "1_0" was read as 10
     f = tmp_path / "r.csv"
-    f.write_text("level,luminance_cd_m2\n0,0.3\n0.5,11,9576\n1,100\n", encoding="utf-8")
-    with pytest.raises(InputError, match=r"row 3: has 3 cells, the header 2: a decimal comma"):
+    f.write_text(text, encoding="utf-8")
+    with pytest.raises(InputError, match=refused):
         read_readings(f)
-    f.write_text("level,luminance_cd_m2\n0,0.3\n0.5,1_0\n", encoding="utf-8")
-    with pytest.raises(InputError, match="row 3: luminance_cd_m2: expected a number, got '1_0'"):
-        read_readings(f)
-    f.write_text("level,luminance_cd_m2,level\n0,0.3,0\n", encoding="utf-8")
-    with pytest.raises(InputError, match="level: the column appears twice"):
-        read_readings(f)
-    # empty cells a spreadsheet adds at the ends of rows are not a decimal comma
+
+
+def test_empty_cells_at_the_ends_of_rows_are_not_a_decimal_comma(tmp_path):
+    f = tmp_path / "r.csv"
     f.write_text("level,luminance_cd_m2\n0,0.3,,\n1,100,\n", encoding="utf-8")
     assert list(read_readings(f).cd_m2) == [0.3, 100.0]
 
