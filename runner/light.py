@@ -189,10 +189,13 @@ class LightPlan:
         ):
             asked = self.requested.get(key)
             head = f"{asked:.4g} cd/m2 requested -> grey level" if asked is not None else "grey level (as written)"
-            code = round(level * CODES)
-            nearest = self.cd_m2(code / CODES, self._colour(what))
+            codes = np.round(level * self._colour(what) * CODES)      # each gun is drawn at level x its colour
+            if np.ptp(codes) == 0:      # grey: the grey model, at the code every gun gets
+                nearest, shown = self.profile.grey.luminance(codes[0] / CODES), f"code {int(codes[0])}"
+            else:
+                nearest, shown = self.light.cd_m2(codes / CODES), f"codes {tuple(int(c) for c in codes)}"
             lines.append(f"           {what:<10} {head} {level:.4f} = {value:.4g} cd/m2 "
-                         f"(nearest 8-bit code {code}: {nearest:.4g} cd/m2)")
+                         f"(nearest 8-bit {shown}: {float(nearest):.4g} cd/m2)")
         for name in ("weber_contrast", "michelson_contrast"):
             if name in self.requested:
                 lines.append(f"           {name.replace('_', ' ')} {self.requested[name]:g} requested")
@@ -239,9 +242,10 @@ def profile_path(protocol, source: str = "") -> Path:
     return path
 
 
-def _range_error(source: str, key: str, value: float, profile: LightProfile, what: str) -> InputError:
-    """The refusal of a luminance beyond the profile's range, with the digits that show it beyond."""
-    low, high = profile.black_cd_m2, profile.max_cd_m2
+def _range_error(source: str, key: str, value: float, profile: LightProfile, what: str,
+                 bounds: tuple[float, float] | None = None) -> InputError:
+    """The refusal of a luminance beyond the profile's range (or ``bounds``: a colour's), with the digits that show it."""
+    low, high = bounds if bounds is not None else (profile.black_cd_m2, profile.max_cd_m2)
     passed = low if value < low else high
     digits = next((d for d in range(4, 13) if f"{value:.{d}g}" != f"{passed:.{d}g}"), 12)
     side = "below the black level" if value < low else "above the maximum"
@@ -249,17 +253,25 @@ def _range_error(source: str, key: str, value: float, profile: LightProfile, wha
                                    f"profile ({low:.{digits}g} to {high:.{digits}g} cd/m2)")
 
 
-def _cd_m2(profile: LightProfile, light: LightModel, level: float, colour) -> float:
+def _grey_share(colour) -> float | None:
+    """c for a neutral colour (c, c, c) with c > 0, which the grey model measured at level × c; else None."""
     colour = np.asarray(colour, dtype=float)
-    if np.allclose(colour, 1.0):
-        return float(profile.grey.luminance(level))
-    return float(light.cd_m2(level * colour))
+    return float(colour[0]) if colour[0] > 0 and np.allclose(colour, colour[0]) else None
+
+
+def _cd_m2(profile: LightProfile, light: LightModel, level: float, colour) -> float:
+    share = _grey_share(colour)
+    if share is not None:
+        return float(profile.grey.luminance(level * share))
+    return float(light.cd_m2(level * np.asarray(colour, dtype=float)))
 
 
 def _dot_level(light: LightModel, profile: LightProfile, colour: np.ndarray, target: float) -> float:
     """The dots' level that gives ``target`` cd/m² (nan if it cannot)."""
-    if np.allclose(colour, 1.0):
-        return float(profile.grey.level(target))
+    share = _grey_share(colour)
+    if share is not None:       # grey dots: the grey model at level × share
+        level = float(profile.grey.level(target)) / share
+        return level if level <= 1.0 + 1e-12 else math.nan
     lo, hi = float(light.cd_m2(0 * colour)), float(light.cd_m2(colour))
     if not (lo - 1e-9 <= target <= hi + 1e-9):
         return math.nan
@@ -331,13 +343,15 @@ def plan_light(protocol, source: str = "", now=None) -> LightPlan | None:
         else:
             target = bg_cd * (1.0 + value) / (1.0 - value)
         requested["dots"] = target
-        if not np.allclose(colour, 1.0) and not profile.per_gun:
+        if _grey_share(colour) is None and not profile.per_gun:
             raise InputError(source, "dots.color_rgb",
-                             "dots in cd/m2 with a colour other than white need per-gun readings in the light "
+                             "dots in cd/m2 with a colour other than grey need per-gun readings in the light "
                              "profile (measure-light --per-gun)")
         dots_level = _dot_level(light, profile, colour, target)
         if math.isnan(dots_level):
-            raise _range_error(source, f"light.{dots_key}", target, profile, "dots")
+            white = np.allclose(colour, 1.0)
+            raise _range_error(source, f"light.{dots_key}", target, profile, "dots" if white else "dots of this colour",
+                               None if white else (_cd_m2(profile, light, 0.0, colour), _cd_m2(profile, light, 1.0, colour)))
     dots_cd = _cd_m2(profile, light, dots_level, colour)
     if grey_step_short(dots_level * colour, bg_level):
         raise InputError(source, f"light.{dots_key}" if dots_key else "dots.level",

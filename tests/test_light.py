@@ -869,3 +869,23 @@ def test_a_profile_whose_model_was_edited_is_refused_where_it_is_loaded(tmp_path
                       .replace("max_cd_m2 = 110.108150044", "max_cd_m2 = 80.3547039102"), encoding="utf-8")
     with pytest.raises(InputError, match=r"edited.toml: model.grey: does not give its own readings"):
         load_profile(edited)
+
+
+def test_grey_dots_of_equal_guns_take_the_grey_model(tmp_path, capsys):
+    # [0.5, 0.5, 0.5] was refused as "a colour other than white" without per-gun readings, though the grey
+    # model measured exactly that; check showed the code of the level, not of level x 0.5 that is drawn
+    write_profile(tmp_path, black=0.5, amplitude=99.5, gamma=2.0)
+    p = write_protocol(tmp_path, 'profile = "profile.toml"\nbackground_cd_m2 = 2.0\ndots_cd_m2 = 20.0',
+                       "[dots]\ncolor_rgb = [0.5, 0.5, 0.5]")
+    protocol = load_protocol(p)
+    # hand calculation: L = 0.5 + 99.5 v^2 at the drawn grey v = level x 0.5: 20 cd/m2 -> v = sqrt(19.5/99.5)
+    v = math.sqrt(19.5 / 99.5)
+    assert protocol.dots.level == pytest.approx(v / 0.5, rel=1e-9)
+    assert main(["check", str(p)]) == 0
+    code = round(v * 255)
+    assert f"(nearest 8-bit code {code}: {0.5 + 99.5 * (code / 255) ** 2:.4g} cd/m2)" in capsys.readouterr().out
+    # beyond what dots of that grey can give (0.5 + 99.5 x 0.5^2 = 25.375 cd/m2): the refusal names that range
+    p.write_text(p.read_text().replace("dots_cd_m2 = 20.0", "dots_cd_m2 = 90.0"))
+    assert main(["check", str(p)]) == 2
+    assert "90 cd/m2 for dots of this colour lies above the maximum the display gives by its light profile " \
+           "(0.5 to 25.38 cd/m2)" in capsys.readouterr().err
