@@ -379,9 +379,10 @@ def _write_profile_and_figure(fits, out: Path, text: str) -> tuple[Path, list[st
                 raise InputError(str(out), "--out", f"{name} is a folder; expected a file name for the profile "
                                  "and room for its figure")
         out.parent.mkdir(parents=True, exist_ok=True)
-        staging = Path(tempfile.mkdtemp(prefix=f".{out.stem}.figure-", dir=out.parent))
+        # short names inside: a name near the file system's limit is the user's to use, not the staging's
+        staging = Path(tempfile.mkdtemp(prefix=".light-profile-", dir=out.parent))
         drawn = light_figure(fits, staging / "figure", title=f"light profile {out.name}")
-        ready = write_atomically(staging / out.name, text)      # every byte on disk before anything is replaced
+        ready = write_atomically(staging / "profile.toml", text)    # every byte on disk before anything is replaced
         figures = [str(out.with_name(out.stem + Path(f).suffix)) for f in drawn]   # lab.display.v2.png
         for f, final in zip(drawn, figures):
             os.replace(f, final)

@@ -889,3 +889,11 @@ def test_grey_dots_of_equal_guns_take_the_grey_model(tmp_path, capsys):
     assert main(["check", str(p)]) == 2
     assert "90 cd/m2 for dots of this colour lies above the maximum the display gives by its light profile " \
            "(0.5 to 25.38 cd/m2)" in capsys.readouterr().err
+
+
+def test_a_profile_name_near_the_file_systems_limit_is_written(tmp_path, capsys):
+    # 245 bytes (the limit is 255) was refused as "File name too long": the hidden staging names were longer
+    out = tmp_path / ("b" * 240 + ".toml")
+    assert main(["measure-light", "--readings", str(EXAMPLE_READINGS), "--out", str(out)]) == 0
+    assert load_profile(out).models["grey"] and out.with_suffix(".png").exists()
+    assert sorted(p.name for p in tmp_path.iterdir()) == sorted(out.with_suffix(s).name for s in (".toml", ".png", ".pdf"))
