@@ -55,6 +55,9 @@ REPEAT_SPREAD = 0.05
 #: ... or by this fraction of the channel's largest reading, whichever is larger.
 #: (Spot photometers repeat to about 1–2 %: common practice, no source.)
 SCALE_FRACTION = 0.01
+#: Most readings a readings file may hold: far more than any measurement takes (9 levels x 4 channels x 10
+#: repeats is 360); a larger file is another file, and would make a profile every later check reads slowly.
+MAX_READINGS = 10_000
 #: Dark repeats: repeats that differ by more than this factor and by more than DARK_FLOOR_CD_M2 disagree
 #: whatever the channel's maximum (at the dark end 1 % of the maximum is several times the reading itself;
 #: common practice, no source).
@@ -567,7 +570,13 @@ def read_readings(path: str | Path) -> Readings:
         with p.open(newline="", encoding="utf-8-sig") as f:    # -sig: a spreadsheet's "CSV UTF-8" byte-order mark
             reader = csv.reader(f)
             header = [name.strip() for name in next(reader, [])]
-            rows = [(reader.line_num, cells) for cells in reader if any(cell.strip() for cell in cells)]
+            rows = []
+            for cells in reader:
+                if any(cell.strip() for cell in cells):
+                    rows.append((reader.line_num, cells))
+                    if len(rows) > MAX_READINGS:
+                        raise InputError(str(p), "file", f"holds more than {MAX_READINGS:,} readings, far more "
+                                         "than a measurement takes; is it the readings file?")
     except UnicodeDecodeError:
         raise InputError(str(p), "file", "is not UTF-8 text; expected a CSV file") from None
     except (OSError, csv.Error) as exc:

@@ -897,3 +897,13 @@ def test_a_profile_name_near_the_file_systems_limit_is_written(tmp_path, capsys)
     assert main(["measure-light", "--readings", str(EXAMPLE_READINGS), "--out", str(out)]) == 0
     assert load_profile(out).models["grey"] and out.with_suffix(".png").exists()
     assert sorted(p.name for p in tmp_path.iterdir()) == sorted(out.with_suffix(s).name for s in (".toml", ".png", ".pdf"))
+
+
+def test_a_readings_file_larger_than_any_measurement_is_refused(tmp_path):
+    # a million rows ran for a minute in silence and wrote a 47 MB profile that every later check read for 22 s
+    from fitting.display_model import MAX_READINGS
+
+    f = tmp_path / "r.csv"
+    f.write_text("level,luminance_cd_m2\n" + "0.5,20\n" * (MAX_READINGS + 1), encoding="utf-8")
+    with pytest.raises(InputError, match=f"file: holds more than {MAX_READINGS:,} readings"):
+        read_readings(f)
