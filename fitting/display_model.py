@@ -465,6 +465,12 @@ def fit_channel(readings: Readings, level_ci: float = 0.95, fit_anyway: bool = F
             raise InputError(readings.source, f"{channel}: {name}",
                              f"the readings do not determine it (its {level_ci:.0%} interval is not finite); "
                              "measure levels across the whole range")
+    for name, (low, high) in (("gain", GAIN_RANGE), ("gamma", GAMMA_RANGE)):     # refused, --fit-anyway or not
+        value = getattr(model, name)
+        if min(value - low, high - value) <= 1e-6 * (high - low):
+            raise InputError(readings.source, f"{channel}: {name}",
+                             f"the fit stopped on the bound of the range the model allows ({value:g}, range "
+                             f"{low:g} to {high:g}): no display curve passes through these readings; measure again")
     lo, hi = ci["gain"]
     ci["offset"] = (1.0 - hi, 1.0 - lo)
     return ChannelFit(channel, model, ci, level_ci, readings, y - fitted, dof, problems + far)

@@ -907,3 +907,14 @@ def test_a_readings_file_larger_than_any_measurement_is_refused(tmp_path):
     f.write_text("level,luminance_cd_m2\n" + "0.5,20\n" * (MAX_READINGS + 1), encoding="utf-8")
     with pytest.raises(InputError, match=f"file: holds more than {MAX_READINGS:,} readings"):
         read_readings(f)
+
+
+def test_a_fit_on_the_bound_of_gamma_or_gain_is_refused_even_when_fitted_anyway():
+    # --fit-anyway with one 10-fold slip gave gamma 0.3 (its bound) and a maximum of 8.5 cd/m2 where level 1
+    # read 100: a profile accepted wherever it was read
+    display = GainOffsetGamma(black_cd_m2=0.3, amplitude_cd_m2=100.0, gain=1.0, gamma=2.2)
+    level = np.repeat(np.round(np.linspace(0, 255, 9)) / 255, 2)
+    cd = display.luminance(level)
+    cd[np.isclose(level, 191 / 255)] = 5.0          # 53.2 typed as 5, twice
+    with pytest.raises(InputError, match=r"grey: gamma: the fit stopped on the bound"):
+        fit_channel(make_readings(level, cd), fit_anyway=True)
