@@ -59,6 +59,7 @@ from .errors import InputError
 from .flags import MIN_TRIALS_FOR_INTERVAL, STEEP_FRACTION, flagged_first, join, off_interval
 from .flags import on_bound as flag_on_bound
 from .psychometric import DEFAULT_LAPSE_MAX, sigmoid_parts
+from .same_person import same_person_notes
 from .outputs import output_set
 from .tables import (MAX_OFFSET_DEG, check_row_agreement, check_unique_trials, find_logs, read_log_table, write_csv,
                      write_text)
@@ -742,6 +743,7 @@ class StreamReport:
     fits: list
     files: list = field(default_factory=list)
     tables: dict = field(default_factory=dict)
+    notes: list = field(default_factory=list)
 
     def summary(self) -> str:
         """Readable lines for the command line (and ``summary.txt``), flagged rows first."""
@@ -774,6 +776,7 @@ class StreamReport:
                 row = decay[decay["observer"] == f.trials.observer].iloc[0]
                 line += f"; decay {f.decay_periods:.3g} periods{_shown(row['ci_low'], row['ci_high'], '.3g')}"
             lines.append(line)
+        lines += [f"note: {n}" for n in self.notes]
         one_back = [boot.fit.trials.observer for boot in self.fits if boot.fit.trials.n_back < 2]
         if one_back:
             lines.append(f"note: {', '.join(one_back)}: one period back only (K = 1): no decay fit, no decay row")
@@ -881,12 +884,13 @@ def fit_stream_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="fr
                 for boot in fits:
                     files += plot_amplitudes(boot, folder / "figures" / f"nback_{safe_name(boot.fit.trials.observer)}")
         files += [str(folder / "summary.txt"), str(folder / REPORT_DATA), str(folder / PAGE)]
-        report = StreamReport(out, fits, staged.final_paths(files), joined)
+        report = StreamReport(out, fits, staged.final_paths(files), joined, same_person_notes(raw))
         write_text(folder / "summary.txt", report.summary() + "\n")
         options = (f"stream n-back regression, lapse {'free in [0, ' + format(lapse_max, 'g') + ']' if lapse == 'free' else 'fixed at ' + str(lapse)}; "
                    f"{level * 100:g}% {interval} intervals from {n_boot} parametric bootstrap replicates (seed {seed})")
         data = collect(paths, plan)
-        data.update(kind="stream", options=options, notes={"group": [NO_GROUP_NOTE]} if len(fits) > 1 else {})
+        notes = report.notes + ([NO_GROUP_NOTE] if len(fits) > 1 else [])
+        data.update(kind="stream", options=options, notes={"group": notes} if notes else {})
         write_report_data(folder, data)
         write_page(folder)
     return report

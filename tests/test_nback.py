@@ -374,3 +374,13 @@ def test_the_same_tests_in_another_row_order_give_the_same_tables(tmp_path):
     fit_stream_logs(logs, tmp_path / "b", n_boot=50, seed=1, figures=False)
     for name in ("pse.csv", "tuning.csv", "aftereffect.csv", "decay.csv"):
         assert (tmp_path / "a" / name).read_bytes() == (tmp_path / "b" / name).read_bytes(), name
+
+
+def test_a_stream_log_copied_under_another_name_is_named_in_a_note(tmp_path):
+    # adapt-test fits said so; a stream fit counted the copy as a second observer without a word
+    logs = _tiny_stream_logs(tmp_path, 60, seed=2)
+    log = next(logs.glob("*.trials.csv"))
+    (logs / "copy").mkdir()
+    (logs / "copy" / "simXX-s1.trials.csv").write_text(log.read_text().replace("\nsim01,", "\nsimXX,"))
+    report = fit_stream_logs(logs, tmp_path / "out", n_boot=20, seed=1, figures=False)
+    assert "hold the same trials row for row" in report.summary()
