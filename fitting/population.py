@@ -77,9 +77,26 @@ class ChannelModel:
         return np.degrees(np.angle((r * np.exp(1j * pref)).sum(axis=1)))
 
     def pse_shift_deg(self, adapter_offset_deg: float, lag: int) -> float:
-        """The test offset read as the reference after adaptation."""
+        """The test offset read as the reference after adaptation: the crossing of 0 nearest 0 within ±90 deg.
+
+        Raises
+        ------
+        ValueError
+            No test offset within ±90 deg is read as the reference (the
+            adaptation pushes every reading more than 90 deg away; the
+            population vector's angle then only jumps from +180 to −180 deg,
+            which is no reading of the reference).
+        """
         g = self.gains(adapter_offset_deg, lag)
-        return float(brentq(lambda x: self.decoded_deg(x, g)[0], -60.0, 60.0, xtol=1e-10))
+        grid = np.linspace(-90.0, 90.0, 181)
+        read = self.decoded_deg(grid, g)
+        crossing = (np.sign(read[:-1]) != np.sign(read[1:])) & (np.abs(read[:-1]) < 90) & (np.abs(read[1:]) < 90)
+        if not crossing.any():
+            raise ValueError(f"no test offset within +-90 deg is read as the reference after an adapter at "
+                             f"{adapter_offset_deg:g} deg, lag {lag}")
+        at = np.flatnonzero(crossing)
+        i = at[np.argmin(np.abs(grid[at] + 0.5))]       # the crossing nearest 0
+        return float(brentq(lambda x: self.decoded_deg(x, g)[0], grid[i], grid[i + 1], xtol=1e-10))
 
 
 def predict_table(model: ChannelModel, adapter_offsets_deg, lags) -> pd.DataFrame:

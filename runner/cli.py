@@ -495,6 +495,8 @@ def cmd_predict(args) -> int:
     out = Path(args.out)
     if out.suffix.lower() != ".csv" or out.is_dir():
         raise InputError(str(out), "--out", "expected a .csv file name for the predictions table")
+    if out.is_symlink() or (out.exists() and not out.is_file()):     # a FIFO would block the read below
+        raise InputError(str(out), "--out", "is a link or not a regular file; name the predictions file itself")
     if out.exists():
         try:
             first = out.read_text(encoding="utf-8-sig").split("\n", 1)[0].strip()
@@ -509,14 +511,20 @@ def cmd_predict(args) -> int:
     else:
         offsets, lags = list(protocol.design.adapter_offsets_deg), list(protocol.design.lags)
     model = ChannelModel(n_channels=args.channels, **values)
-    table = predict_table(model, offsets, lags)
+    try:
+        table = predict_table(model, offsets, lags)
+    except ValueError as exc:       # the adaptation overwhelms the tuning: the model has no PSE there
+        raise InputError("argument", "--adapt-strength/--tuning-kappa/--adapt-kappa",
+                         f"with these values the model gives no PSE: {exc}; choose weaker adaptation or "
+                         "narrower tuning") from None
     try:
         write_atomic(out, table.to_csv(index=False, float_format="%.6f", lineterminator="\n").encode("utf-8"))
     except OSError as exc:
         raise InputError(str(out), "--out", f"cannot be written ({exc.strerror})") from None
     shown = ", ".join(f"{k.replace('_', ' ')} {v:g}" for k, v in values.items())
     print(f"predicted shifts of a population of {args.channels} direction-tuned channels ({shown}) for "
-          f"{len(table)} cells ({len(lags)} lag{'s' * (len(lags) != 1)} x {len(offsets)} adapter offsets): {out}")
+          f"{len(table)} cells ({len(lags)} lag{'s' * (len(lags) != 1)} x {len(offsets)} adapter "
+          f"offset{'s' * (len(offsets) != 1)}): {out}")
     print(f"to compare a fit with them: aftershift compare FIT_FOLDER {out}")
     return EXIT_OK
 

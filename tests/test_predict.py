@@ -73,3 +73,29 @@ def test_a_stream_fit_compares_with_its_predictions(tmp_path, capsys):
     assert main(["compare", str(tmp_path / "fit"), str(tmp_path / "pred.csv"), "--out", str(tmp_path / "cmp")]) == 0
     table = pd.read_csv(tmp_path / "cmp" / "agreement.csv")
     assert (table["n_points"] > 0).all()
+
+
+def test_a_model_that_reads_no_test_as_the_reference_is_refused_not_given_the_wrap(tmp_path, capsys):
+    # broad tuning under strong adaptation reads every test more than 90 deg away; the root finder then landed
+    # on the jump of the population vector's angle from +180 to -180 deg and wrote it as the shift, exit 0
+    model = ChannelModel(tuning_kappa=0.5, adapt_strength=0.9, adapt_kappa=1.0)
+    with pytest.raises(ValueError, match="no test offset within"):
+        model.pse_shift_deg(15.0, 0)
+    shift = ChannelModel().pse_shift_deg(15.0, 0)      # a genuine reading of the reference
+    assert abs(ChannelModel().decoded_deg(shift, ChannelModel().gains(15.0, 0))[0]) < 1e-6
+    args = ["--tuning-kappa", "0.5", "--adapt-strength", "0.9", "--adapt-kappa", "1"]
+    assert main(["predict", str(PROTOCOLS / "offset_by_lag.toml"), "--out", str(tmp_path / "p.csv"), *args]) == 2
+    err = capsys.readouterr().err.strip()
+    assert "the model gives no PSE" in err and "\n" not in err and not (tmp_path / "p.csv").exists()
+
+
+def test_predict_refuses_a_fifo_or_a_link_as_out(tmp_path, capsys):
+    # a FIFO named *.csv blocked forever (its header was read); a link was replaced by a regular file
+    import os
+
+    os.mkfifo(tmp_path / "fifo.csv")
+    (tmp_path / "link.csv").symlink_to(tmp_path / "elsewhere.csv")
+    for name in ("fifo.csv", "link.csv"):
+        assert main(["predict", str(PROTOCOLS / "offset_by_lag.toml"), "--out", str(tmp_path / name)]) == 2
+        assert "is a link or not a regular file" in capsys.readouterr().err
+    assert (tmp_path / "link.csv").is_symlink() and not (tmp_path / "elsewhere.csv").exists()
