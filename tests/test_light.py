@@ -891,6 +891,7 @@ def test_grey_dots_of_equal_guns_take_the_grey_model(tmp_path, capsys):
            "(0.5 to 25.38 cd/m2)" in capsys.readouterr().err
 
 
+@pytest.mark.slow    # fits and draws a profile
 def test_a_profile_name_near_the_file_systems_limit_is_written(tmp_path, capsys):
     # 245 bytes (the limit is 255) was refused as "File name too long": the hidden staging names were longer
     out = tmp_path / ("b" * 240 + ".toml")

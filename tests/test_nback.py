@@ -223,6 +223,7 @@ def _tiny_stream_logs(tmp_path, tests_per_track: int = 6, seed: int = 5, model: 
     return tmp_path / "logs"
 
 
+@pytest.mark.slow    # simulates and fits a stream
 def test_a_stream_too_small_to_pin_its_amplitudes_gets_no_interval_and_its_figure(tmp_path):
     # 12 tests, 7 parameters: the answers are separated, every bootstrap refit lands where the fit did, and
     # the tables printed "4.43 [4.43, 4.43]"; the figure then failed ("'yerr' must not contain negative
@@ -243,6 +244,7 @@ def test_a_stream_too_small_to_pin_its_amplitudes_gets_no_interval_and_its_figur
     assert any("every measured point is flagged not-estimable" in n for n in comparison.notes)
 
 
+@pytest.mark.slow    # simulates and fits a stream
 def test_stream_fits_take_the_level_and_check_the_options_as_adapt_test_fits_do(tmp_path):
     # --level, --lapse and --lapse-max went unchecked or unused for stream logs: --level 0.5 gave the 95 %
     # tables byte for byte, --lapse 1.5 an amplitude of -35,463 deg with exit 0
@@ -262,6 +264,7 @@ def test_stream_fits_take_the_level_and_check_the_options_as_adapt_test_fits_do(
     assert not (tmp_path / "bad").exists()
 
 
+@pytest.mark.slow    # simulates and fits a stream
 def test_rows_of_another_block_in_a_stream_log_are_refused_naming_the_line(tmp_path):
     # they were dropped without a word and left out of trials_read
     logs = _tiny_stream_logs(tmp_path, 12)
@@ -276,6 +279,7 @@ def test_rows_of_another_block_in_a_stream_log_are_refused_naming_the_line(tmp_p
         read_stream_logs(logs)
 
 
+@pytest.mark.slow    # simulates and fits a stream
 def test_fit_options_that_do_not_apply_to_streams_are_refused(tmp_path, capsys):
     from runner.cli import main
 
@@ -288,6 +292,7 @@ def test_fit_options_that_do_not_apply_to_streams_are_refused(tmp_path, capsys):
     assert not (tmp_path / "out").exists()
 
 
+@pytest.mark.slow    # simulates and fits a stream
 def test_a_peak_offset_beyond_the_largest_tested_offset_is_flagged(tmp_path):
     # a stream of directions 90 deg apart measures shifts at +-90 only; a fitted peak of 102 deg [82, 124]
     # went unflagged (and the peak could reach 300 deg, beyond the opposite direction)
@@ -302,6 +307,7 @@ def test_a_peak_offset_beyond_the_largest_tested_offset_is_flagged(tmp_path):
     assert (tuning["peak_offset_ci_high"] <= 180).all()
 
 
+@pytest.mark.slow    # simulates and fits a stream
 def test_one_period_back_writes_no_decay_row_and_says_why(tmp_path):
     # K = 1 wrote a decay row with no number and an empty flags cell (which reads "nothing unusual")
     text = read_protocol_text(BUNDLED).replace("nback_periods = 3", "nback_periods = 1")
@@ -313,6 +319,7 @@ def test_one_period_back_writes_no_decay_row_and_says_why(tmp_path):
     assert "one period back only (K = 1): no decay fit" in report.summary()
 
 
+@pytest.mark.slow    # simulates and fits a stream
 def test_compare_refuses_a_stream_fit_whose_labels_or_rows_were_edited(tmp_path):
     # shift_parameters set the chi2's degrees of freedom (edited, chi2/30 was read on 30 df instead of 4),
     # and a row deleted from aftereffect.csv silently dropped its point
@@ -332,6 +339,7 @@ def test_compare_refuses_a_stream_fit_whose_labels_or_rows_were_edited(tmp_path)
         compare_results(tmp_path / "out", tmp_path / "pred.csv", tmp_path / "cmp3")
 
 
+@pytest.mark.slow    # simulates and fits a stream
 @pytest.mark.parametrize("column, value", [("preceding_offsets_deg", "nan;60;90"), ("preceding_offsets_deg", ""),
                                            ("test_offset_deg", "")], ids=["nan offset", "empty list", "empty test"])
 def test_a_damaged_stream_cell_is_named_by_its_own_column(tmp_path, capsys, column, value):
@@ -352,6 +360,7 @@ def test_a_damaged_stream_cell_is_named_by_its_own_column(tmp_path, capsys, colu
     assert err.startswith(f"aftershift: {log}: line 5, column {column}: ") and "\n" not in err
 
 
+@pytest.mark.slow    # simulates and fits a stream
 def test_a_stream_lapse_on_its_bound_is_said(tmp_path):
     # adapt-test fits note a lapse on its bound; stream fits printed "lapse 0.060" without a word
     logs = _tiny_stream_logs(tmp_path, 60, seed=3, model=ObserverModel(lapse=0.2))
@@ -362,6 +371,7 @@ def test_a_stream_lapse_on_its_bound_is_said(tmp_path):
     assert "on its bound" not in report.summary()       # a fixed lapse is not on a bound
 
 
+@pytest.mark.slow    # simulates and fits a stream
 def test_the_same_tests_in_another_row_order_give_the_same_tables(tmp_path):
     # the bootstrap's draws followed the rows' order: a shuffled copy of a log gave other intervals
     logs = _tiny_stream_logs(tmp_path, 60, seed=2)
@@ -376,6 +386,7 @@ def test_the_same_tests_in_another_row_order_give_the_same_tables(tmp_path):
         assert (tmp_path / "a" / name).read_bytes() == (tmp_path / "b" / name).read_bytes(), name
 
 
+@pytest.mark.slow    # simulates and fits a stream
 def test_a_stream_log_copied_under_another_name_is_named_in_a_note(tmp_path):
     # adapt-test fits said so; a stream fit counted the copy as a second observer without a word
     logs = _tiny_stream_logs(tmp_path, 60, seed=2)

@@ -167,6 +167,7 @@ def test_run_refuses_a_resume_its_sidecar_rules_out_before_any_window(capsys, tm
     assert {p.name: p.read_bytes() for p in out.iterdir()} == before
 
 
+@pytest.mark.slow    # simulates, and fits a profile again
 def test_a_light_profile_is_compared_by_its_grey_levels(capsys, tmp_path):
     # before: any edit of the profile file, a comment too, was refused as "its grey levels would change"
     from runner.launch import check_resume
