@@ -144,16 +144,15 @@ def _read_stream_file(path: Path) -> pd.DataFrame:
         obs = r["observer"].strip()
         if not obs:
             _fail(source, line, "observer", "empty; a value is required")
-        for column in ("test_offset_deg", "preceding_offsets_deg"):     # the cell at fault, by its own name
-            try:
-                values = tuple(float(v) for v in (r[column].split(";") if column != "test_offset_deg" else [r[column]]))
+        cells = {}
+        for column, what in (("test_offset_deg", "a number"), ("preceding_offsets_deg", "numbers (; between offsets)")):
+            try:        # the cell at fault, by its own name
+                cells[column] = tuple(float(v) for v in r[column].split(";"))
             except ValueError:
-                _fail(source, line, column, f"{r[column][:40]!r}: expected "
-                      f"{'a number' if column == 'test_offset_deg' else 'numbers (; between offsets)'}")
-            if not all(np.isfinite(values)):
-                _fail(source, line, column, f"{r[column][:40]!r}: expected finite numbers")
-        x = float(r["test_offset_deg"])
-        prec = tuple(float(v) for v in r["preceding_offsets_deg"].split(";"))
+                _fail(source, line, column, f"{r[column][:40]!r}: expected {what}")
+            if not all(np.isfinite(cells[column])) or len(cells["test_offset_deg"]) != 1:
+                _fail(source, line, column, f"{r[column][:40]!r}: expected {what}, finite")
+        (x,), prec = cells["test_offset_deg"], cells["preceding_offsets_deg"]
         if abs(x) > MAX_OFFSET_DEG or any(abs(v) > MAX_OFFSET_DEG for v in prec):
             _fail(source, line, "test_offset_deg/preceding_offsets_deg",
                   f"expected offsets within ±{MAX_OFFSET_DEG:g} deg")
@@ -697,15 +696,14 @@ def result_tables(boot: NbackBootstrap) -> dict[str, pd.DataFrame]:
     return {"pse": pse, "aftereffect": after, "tuning": tuning, "decay": decay, "aftereffect_covariance": cov}
 
 
-def plot_amplitudes(boot: NbackBootstrap, base: Path) -> list[str]:
-    """Figure of the DoG amplitude against n with intervals and the fitted decay (PNG, PDF)."""
+def plot_amplitudes(boot: NbackBootstrap, tuning: pd.DataFrame, base: Path) -> list[str]:
+    """Figure of the DoG amplitude against n with the intervals ``tuning`` (its table) holds and the fitted decay."""
     from .figures import _STYLE, pyplot, outside_legend, save, single_plot
 
     fit = boot.fit
     k = fit.trials.n_back
     n = np.arange(1, k + 1)
     est = np.asarray(fit.amplitudes_deg, dtype=float)
-    tuning = result_tables(boot)["tuning"]
     lo, hi = tuning["amplitude_ci_low"].to_numpy(float), tuning["amplitude_ci_high"].to_numpy(float)
     held = np.isfinite(lo) & np.isfinite(hi) & (lo <= est) & (est <= hi)    # as the table holds it
     plt = pyplot()
@@ -859,7 +857,7 @@ def fit_stream_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="fr
     out = Path(out_dir)
     raw = _read_stream_table(paths)
     observers = _observer_trials(raw, include_bad_timing)
-    fits = []
+    fits, tunings = [], []
     tables = {"pse": [], "aftereffect": [], "tuning": [], "decay": [], "aftereffect_covariance": []}
     with ProgressBar(len(observers), "n-back fits and bootstrap", show=progress, unit="observers") as bar:
         for i, trials in enumerate(observers):
@@ -868,6 +866,7 @@ def fit_stream_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="fr
             fits.append(boot)
             for name, table in result_tables(boot).items():
                 tables[name].append(table)
+            tunings.append(tables["tuning"][-1])
             bar.advance()
     joined = {name: pd.concat([p for p in parts if len(p)] or parts[:1], ignore_index=True)
               for name, parts in tables.items()}
@@ -881,8 +880,9 @@ def fit_stream_logs(paths, out_dir, n_boot: int = 1000, seed: int = 0, lapse="fr
             files.append(str(path))
         if figures:
             with phase("drawing figures", show=progress):
-                for boot in fits:
-                    files += plot_amplitudes(boot, folder / "figures" / f"nback_{safe_name(boot.fit.trials.observer)}")
+                for boot, tuning in zip(fits, tunings):
+                    files += plot_amplitudes(boot, tuning,
+                                             folder / "figures" / f"nback_{safe_name(boot.fit.trials.observer)}")
         files += [str(folder / "summary.txt"), str(folder / REPORT_DATA), str(folder / PAGE)]
         report = StreamReport(out, fits, staged.final_paths(files), joined, same_person_notes(raw))
         write_text(folder / "summary.txt", report.summary() + "\n")
