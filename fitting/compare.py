@@ -243,7 +243,7 @@ def read_covariance(path: Path, measured: pd.DataFrame) -> pd.DataFrame:
             raise InputError(str(path), "observer", f"{observer}: {len(rows)} rows, not one per pair of its "
                              f"{len(cells)} cells (a cut or changed file?); run fit again")
         _check_covariance(found, path, observer)
-        _check_stream_labels(rows, path, observer)
+        _check_stream_labels(rows, found, path, observer)
     _check_cells_measured(table, measured, path)
     named = set(measured["observer"])
     absent = [o for o in dict.fromkeys(table["observer"]) if o not in named]
@@ -822,17 +822,16 @@ def _check_covariance(cov: np.ndarray, path: Path, observer) -> None:
                          "positive semi-definite, as no fit writes it (a changed or damaged cell?)")
 
 
-def _check_stream_labels(rows: pd.DataFrame, path: Path, observer) -> None:
+def _check_stream_labels(rows: pd.DataFrame, cov: np.ndarray, path: Path, observer) -> None:
     """Refuse ``shift_parameters`` other than a stream fit writes them: ``a<n> w`` for lag n − 1, in every cell or none.
 
     They set the degrees of freedom of ``compare``'s χ² (:func:`fitting.covariance.covariance_matrix`).
     """
-    if "shift_parameters" not in rows:
-        return
-    named = rows["shift_parameters"].astype(object)
+    named = rows.get("shift_parameters", pd.Series("", index=rows.index)).astype(object)
     text = named.where(named.notna(), "").astype(str).str.strip()
-    if not (text != "").any():
-        return      # an adapt-test fit's: none named
+    if not (text != "").any():      # an adapt-test fit's: none named, and a covariance of full rank
+        _check_full_rank(cov, float(rows["replicates"].iloc[0]), path, observer)
+        return
     expected = rows["lag_a"].map(lambda lag: f"a{int(lag) + 1} w" if float(lag).is_integer() else "")
     wrong = text != expected
     if wrong.any():
@@ -840,6 +839,31 @@ def _check_stream_labels(rows: pd.DataFrame, path: Path, observer) -> None:
         raise InputError(str(path), "shift_parameters", f"{observer}, lag {rows['lag_a'].iloc[i]:g}: "
                          f"{text.iloc[i][:20]!r}, not {expected.iloc[i]!r} as a stream fit writes it (they set the "
                          "chi2's degrees of freedom; a changed cell?); run fit again")
+
+
+#: An eigenvalue below this share of the largest counts as zero: ``fit`` writes 6 significant digits; a stream
+#: fit's covariance has eigenvalues of 1e-16 of the largest beyond its rank, an adapt–test fit's 1e-2 and more.
+RANK_TOLERANCE = 1e-6
+
+
+def _check_full_rank(cov: np.ndarray, replicates: float, path: Path, observer) -> None:
+    """Refuse a covariance without ``shift_parameters`` whose rank is below its cells' number.
+
+    Only a stream fit writes such a covariance (its shifts are functions of
+    K + 1 parameters), and it names them: read as full rank, the χ² would be
+    read on as many degrees of freedom as cells. Covariances from no more
+    replicates than cells + 2 are singular by nature (:func:`few_replicates`
+    says so and leaves their χ² out).
+    """
+    n = cov.shape[0]
+    if np.isfinite(replicates) and replicates <= n + 2:
+        return
+    values = np.linalg.eigvalsh((cov + cov.T) / 2.0)
+    rank = int(np.sum(values > RANK_TOLERANCE * values[-1]))
+    if rank < n:
+        raise InputError(str(path), "shift_parameters", f"{observer}: empty, but the shifts' covariance has rank "
+                         f"{rank} for {n} cells, as only a stream fit writes it, naming the parameters (they set the "
+                         "chi2's degrees of freedom; a changed column?); run fit again")
 
 
 def _check_cells_measured(table: pd.DataFrame, measured: pd.DataFrame, path: Path) -> None:

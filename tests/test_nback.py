@@ -332,6 +332,13 @@ def test_compare_refuses_a_stream_fit_whose_labels_or_rows_were_edited(tmp_path)
     cov_path.write_text(kept.replace(",a1 w", ",a1 a2 a3 a4 w"))
     with pytest.raises(InputError, match="shift_parameters: sim01, lag 0: 'a1 a2 a3 a4 w', not 'a1 w'"):
         compare_results(tmp_path / "out", tmp_path / "pred.csv", tmp_path / "cmp2")
+    # the column emptied (or dropped): the covariance's rank still tells a stream fit's (it was read on 30 df)
+    table = pd.read_csv(cov_path)
+    for edited in (table.assign(shift_parameters=""), table.drop(columns="shift_parameters")):
+        edited.to_csv(cov_path, index=False)
+        with pytest.raises(InputError, match=r"shift_parameters: sim01: empty, but the shifts' covariance has rank "
+                                             r"\d+ for \d+ cells"):
+            compare_results(tmp_path / "out", tmp_path / "pred.csv", tmp_path / "cmp2")
     cov_path.write_text(kept)
     after.drop(index=3).to_csv(tmp_path / "out" / "aftereffect.csv", index=False)
     with pytest.raises(InputError, match=r"aftereffect.csv: observer: sim01, lag 0, offset [-+]\d+: in "
