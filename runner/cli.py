@@ -622,9 +622,9 @@ def cmd_measure_light(args) -> int:
     try:
         measure_light.on_screen(protocol or Protocol(), args.out, args.levels, args.repeats, args.per_gun, patch,
                                 args.windowed, args.seed, args.resume, args.label, args.fit_anyway)
-    except KeyboardInterrupt:
-        print(f"aftershift: interrupted; every accepted reading is in {measure_light.readings_path(args.out)} "
-              "(use --resume)", file=sys.stderr)
+    except KeyboardInterrupt as exc:
+        print(f"aftershift: {_light_kept(args, exc)}; every accepted reading is in "
+              f"{measure_light.readings_path(args.out)} (use --resume)", file=sys.stderr)
         return 130
     return EXIT_OK
 
@@ -817,11 +817,11 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``aftershift`` command; returns the exit code."""
     _install_signal_handlers()
-    from fitting.heap import arrays_on_the_heap
-
-    arrays_on_the_heap()        # the bootstrap's arrays: 1.5x faster, and not by luck (fitting/heap.py)
     args = None
     try:
+        from fitting.heap import arrays_on_the_heap
+
+        arrays_on_the_heap()        # the bootstrap's arrays: 1.5x faster, and not by luck (fitting/heap.py)
         parser = build_parser()
         args = parser.parse_args(argv)
         if args.command is None:  # bare `aftershift`: list the commands
@@ -845,6 +845,8 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt as exc:
         return _interrupted(args, exc)
     except ModuleNotFoundError as exc:  # a set-up without every package (the heavy imports are late)
+        if _stopped_by is not None:     # an import broken by the signal itself
+            return _interrupted(args, _stop_exception())
         print(f"aftershift: the Python package {exc.name!r} is missing; run ./setup.sh (or "
               f"pip install -e \".[display,dev]\") in this environment", file=sys.stderr)
         return EXIT_SETUP
@@ -856,6 +858,8 @@ def main(argv: list[str] | None = None) -> int:
         return EXIT_INPUT
     except Exception as exc:
         interrupt = _interrupt_behind(exc)
+        if interrupt is None and _stopped_by is not None:
+            interrupt = _stop_exception()
         if interrupt is None:
             raise
         return _interrupted(args, interrupt)
@@ -912,6 +916,8 @@ class Terminated(KeyboardInterrupt):
 
 #: Set by the first Ctrl-C or SIGTERM: the command is winding down.
 _stopping = False
+#: The signal that stopped the command (None: none came).
+_stopped_by: int | None = None
 
 
 def _on_stop_signal(signum, frame):  # noqa: ARG001 - signal handler
@@ -920,11 +926,16 @@ def _on_stop_signal(signum, frame):  # noqa: ARG001 - signal handler
     A second signal while the sidecar is closed or the progress bar's
     thread ends would print a traceback and could leave the part ``running``.
     """
-    global _stopping
+    global _stopping, _stopped_by
     if _stopping:
         return      # not SIG_IGN: Python would raise "ignored due to race condition" for one already pending
-    _stopping = True
-    raise Terminated() if signum == signal.SIGTERM else KeyboardInterrupt()
+    _stopping, _stopped_by = True, signum
+    raise _stop_exception()
+
+
+def _stop_exception() -> KeyboardInterrupt:
+    """The exception of the signal that stopped the command: :class:`Terminated` for SIGTERM."""
+    return Terminated() if _stopped_by == signal.SIGTERM else KeyboardInterrupt()
 
 
 def _interrupt_behind(exc: BaseException) -> KeyboardInterrupt | None:
@@ -932,7 +943,9 @@ def _interrupt_behind(exc: BaseException) -> KeyboardInterrupt | None:
 
     Some compiled modules turn a Ctrl-C that lands while they load into an
     error of their own (scipy's linear-programming module raises
-    ``ImportError: initialization failed`` from the ``KeyboardInterrupt``).
+    ``ImportError: initialization failed`` from the ``KeyboardInterrupt``);
+    numpy's, at one instant, into an ``ImportError`` that no longer holds it
+    (``main`` then goes by :data:`_stopped_by`).
     """
     seen = set()
     while exc is not None and id(exc) not in seen:
@@ -961,6 +974,8 @@ def _interrupted_line(args, exc: BaseException, quick_fit_shown: bool = True) ->
         return f"{how}; {_run_kept(args, quick_fit_shown)}"
     if command == "simulate":
         return f"{how}; {_simulate_kept(args)}"
+    if command == "measure-light":
+        return _light_kept(args, exc)
     if command in ("fit", "compare", "plan", "recover"):
         from fitting.outputs import committed
 
@@ -970,17 +985,56 @@ def _interrupted_line(args, exc: BaseException, quick_fit_shown: bool = True) ->
     return how
 
 
+def _light_kept(args, exc: BaseException) -> str:
+    """What an interrupted ``measure-light`` leaves of the light profile at ``--out``."""
+    how = "stopped by SIGTERM" if isinstance(exc, Terminated) else "interrupted"
+    from runner.measure_light import written
+
+    if written():   # the signal came while the files were moved in, and waited for both
+        return f"{how} after the light profile and its figure were written in full to {written()[-1]}"
+    return f"{how}; nothing was half-written (a light profile already at {args.out} is unchanged)"
+
+
 def _install_signal_handlers() -> None:
     """Let Ctrl-C and SIGTERM stop a command once (:func:`_on_stop_signal`).
 
     A signal ignored by whoever started the process (a background job's
     SIGINT) stays ignored.
     """
-    global _stopping
+    global _stopping, _stopped_by
     for sig, ours in ((signal.SIGINT, (signal.default_int_handler,)), (signal.SIGTERM, (signal.SIG_DFL, None))):
         if signal.getsignal(sig) in ours:
             signal.signal(sig, _on_stop_signal)
-    _stopping = False
+    _stopping, _stopped_by = False, None
+    if sys.unraisablehook is not _stop_again:
+        _stop_again.passed_on = sys.unraisablehook
+        sys.unraisablehook = _stop_again
+
+
+def _stop_again(unraisable) -> None:
+    """A stop signal whose exception Python could only print and ignore is given again.
+
+    Python calls some functions where an exception cannot propagate (the
+    import system's clean-up callbacks); a Ctrl-C or SIGTERM handled there
+    printed "Exception ignored in: ..." and the command ran on to its end.
+    Given again from another thread a moment later, when the main thread has
+    left that function, it stops the command there (should it land in such a
+    function once more, this runs again).
+    """
+    global _stopping
+    if isinstance(unraisable.exc_value, KeyboardInterrupt) and _stopped_by is not None:
+        import _thread
+        import threading
+
+        _stopping = False
+        again = threading.Timer(0.01, _thread.interrupt_main, (_stopped_by,))
+        again.daemon = True
+        again.start()
+        return
+    _stop_again.passed_on(unraisable)
+
+
+_stop_again.passed_on = sys.unraisablehook
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -39,6 +39,8 @@ from runner.light_profile import PROFILE_KIND, profile_text, write_atomically
 LOG_COLUMNS = ("order", "gun", "level", "luminance_cd_m2", "seed", "time_utc")
 
 #: Colour of each channel at level 1.
+#: Light profiles this process has put in place, with their figures (the line of an interrupted command names them).
+_WRITTEN: list[Path] = []
 GUN_RGB = {"grey": (1.0, 1.0, 1.0), "red": (1.0, 0.0, 0.0), "green": (0.0, 1.0, 0.0), "blue": (0.0, 0.0, 1.0)}
 
 
@@ -367,10 +369,12 @@ def _write_profile_and_figure(fits, out: Path, text: str) -> tuple[Path, list[st
     it appears only once its figure is in place and no rename needs room.  A full disk, a
     read-only folder or a figure name that is a folder is one
     :class:`~fitting.errors.InputError` naming ``--out`` with no new file.
-    (A process killed between those renames leaves the earlier profile
-    beside the new figure, and the hidden folder: run the command again.)
+    Ctrl-C and SIGTERM wait while the files are moved in. (A process killed
+    between those renames leaves the earlier profile beside the new figure,
+    and the hidden folder: run the command again.)
     """
     from fitting.display_figure import light_figure
+    from fitting.outputs import signals_deferred
 
     staging = None
     try:
@@ -384,15 +388,22 @@ def _write_profile_and_figure(fits, out: Path, text: str) -> tuple[Path, list[st
         drawn = light_figure(fits, staging / "figure", title=f"light profile {out.name}")
         ready = write_atomically(staging / "profile.toml", text)    # every byte on disk before anything is replaced
         figures = [str(out.with_name(out.stem + Path(f).suffix)) for f in drawn]   # lab.display.v2.png
-        for f, final in zip(drawn, figures):
-            os.replace(f, final)
-        os.replace(ready, out)
+        with signals_deferred():
+            for f, final in zip(drawn, figures):
+                os.replace(f, final)
+            os.replace(ready, out)
+            _WRITTEN.append(out)
     except OSError as exc:
         raise InputError(str(out), "--out", f"cannot be written ({exc.strerror or exc})") from None
     finally:
         if staging is not None:
             shutil.rmtree(staging, ignore_errors=True)
     return out, figures
+
+
+def written() -> list[Path]:
+    """Light profiles this process has written in full, in order."""
+    return list(_WRITTEN)
 
 
 def finish(readings: Readings, out: str | Path, screen_cm, screen_px, refresh_hz: float | None, field: str,

@@ -228,6 +228,48 @@ def test_measure_light_refuses_an_out_that_would_destroy_a_file(tmp_path, capsys
 # measure-light from a CSV file, and the profile it writes
 
 
+_STOP_DRIVER = """
+import os, signal, sys
+import runner.measure_light as m
+from runner.cli import console
+how, real = sys.argv[1], m.os.replace
+def replace(src, dst):
+    real(src, dst)
+    if how == "moving" and "/.light-profile-" in str(src) and "/.light-profile-" not in str(dst):
+        os.kill(os.getpid(), signal.SIGTERM)     # after the figure's first file is in place
+m.os.replace = replace
+if how == "fitting":
+    fit = m.fit_readings
+    m.fit_readings = lambda *a, **k: (os.kill(os.getpid(), signal.SIGTERM), fit(*a, **k))[1]
+sys.argv = ["aftershift", "measure-light", "--readings", sys.argv[2], "--out", sys.argv[3]]
+sys.exit(console())
+"""
+
+
+@pytest.mark.slow    # two commands in their own processes
+def test_a_stopped_measure_light_says_what_became_of_the_profile(tmp_path, capsys):
+    # the stop line said only "stopped by SIGTERM", and a SIGTERM between the figure's and the profile's renames
+    # left the earlier profile beside the new figure; now the renames finish first and the line says which it was
+    import subprocess
+    import sys
+
+    out = tmp_path / "lab.toml"
+    assert main(["measure-light", "--readings", str(EXAMPLE_READINGS), "--out", str(out), "--label", "LAB-BEFORE"]) == 0
+    earlier = {p.name: p.read_bytes() for p in tmp_path.iterdir()}
+    for when, line in (("fitting", f"stopped by SIGTERM; nothing was half-written (a light profile already at {out} "
+                                   "is unchanged)"),
+                       ("moving", f"stopped by SIGTERM after the light profile and its figure were written in full "
+                                  f"to {out}")):
+        done = subprocess.run([sys.executable, "-c", _STOP_DRIVER, when, str(EXAMPLE_READINGS), str(out)], cwd=ROOT,
+                              capture_output=True, text=True, timeout=120)
+        assert done.returncode == 130 and done.stderr == f"aftershift measure-light: {line}\n", done.stderr
+        now = {p.name: p.read_bytes() for p in tmp_path.iterdir()}      # no staging folder left either
+        assert sorted(now) == ["lab.pdf", "lab.png", "lab.toml"]
+        if when == "fitting":
+            assert now == earlier
+    assert load_profile(out).models and "LAB-BEFORE" in earlier["lab.toml"].decode() and "LAB-BEFORE" not in out.read_text()
+
+
 def test_measure_light_from_csv_writes_a_profile_that_round_trips(tmp_path, capsys):
     out = tmp_path / "display.toml"
     assert main(["measure-light", "--readings", str(EXAMPLE_READINGS), "--out", str(out)]) == 0
