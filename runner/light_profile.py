@@ -113,7 +113,7 @@ def _array(values, fmt=_number) -> str:
 
 
 def profile_text(fits: dict[str, ChannelFit], measured_utc: datetime, screen_cm, screen_px,
-                 refresh_hz: float | None, field: str, surround_level: float, label: str = "",
+                 refresh_hz: float | None, field: str, surround_level: float | None, label: str = "",
                  fitted_anyway: bool = False) -> str:
     """The text of a light profile.
 
@@ -128,8 +128,9 @@ def profile_text(fits: dict[str, ChannelFit], measured_utc: datetime, screen_cm,
         Measured refresh rate, None if unknown.
     field : str
         What was measured, e.g. ``"central patch, 5 deg square"``.
-    surround_level : float
-        Grey level around the patch.
+    surround_level : float or None
+        Grey level around the patch; None if not known (readings typed in
+        from a file).
     label : str
         Free text naming the display.
     fitted_anyway : bool
@@ -154,7 +155,8 @@ def profile_text(fits: dict[str, ChannelFit], measured_utc: datetime, screen_cm,
     lines.append(f"refresh_hz = {_number(refresh_hz)}" if refresh_hz is not None else "# refresh_hz: not measured")
     lines += [
         f"field = {_toml_string(field)}",
-        f"surround_level = {_number(surround_level)}",
+        f"surround_level = {_number(surround_level)}" if surround_level is not None
+        else "# surround_level: not known (readings from a file)",
         f"black_cd_m2 = {_number(grey.min_cd_m2)}",
         f"max_cd_m2 = {_number(grey.max_cd_m2)}",
         f"fitted_anyway = {'true' if fitted_anyway else 'false'}",

@@ -385,7 +385,9 @@ def _write_profile_and_figure(fits, out: Path, text: str) -> tuple[Path, list[st
         out.parent.mkdir(parents=True, exist_ok=True)
         # short names inside: a name near the file system's limit is the user's to use, not the staging's
         staging = Path(tempfile.mkdtemp(prefix=".light-profile-", dir=out.parent))
-        drawn = light_figure(fits, staging / "figure", title=f"light profile {out.name}")
+        # a tab or a line break in the name is shown as \t, \n: the fonts have no glyph for them
+        shown = "".join(c if c.isprintable() else c.encode("unicode_escape").decode("ascii") for c in out.name)
+        drawn = light_figure(fits, staging / "figure", title=f"light profile {shown}")
         ready = write_atomically(staging / "profile.toml", text)    # every byte on disk before anything is replaced
         figures = [str(out.with_name(out.stem + Path(f).suffix)) for f in drawn]   # lab.display.v2.png
         with signals_deferred():
@@ -407,7 +409,7 @@ def written() -> list[Path]:
 
 
 def finish(readings: Readings, out: str | Path, screen_cm, screen_px, refresh_hz: float | None, field: str,
-           surround_level: float, label: str = "", fit_anyway: bool = False, measured_utc: datetime | None = None,
+           surround_level: float | None, label: str = "", fit_anyway: bool = False, measured_utc: datetime | None = None,
            stream=None) -> Path:
     """Fit readings, print the result, write the light profile and its figure.
 
@@ -469,7 +471,7 @@ def from_csv(readings_file: str | Path, out: str | Path, protocol=None, label: s
     """Fit readings from a CSV file and write the light profile (no screen).
 
     The display's size and resolution come from ``protocol`` (``[display]``),
-    or the built-in defaults; the refresh rate is recorded as not measured.
+    or the built-in defaults; the refresh rate and the surround are recorded as not known.
     """
     from runner.protocol import Protocol
 
@@ -477,7 +479,7 @@ def from_csv(readings_file: str | Path, out: str | Path, protocol=None, label: s
     d = protocol.display
     readings = read_readings(readings_file)
     return finish(readings, out, d.screen_cm, d.screen_px, None, f"readings from {Path(readings_file).name}",
-                  d.background, label, fit_anyway)
+                  None, label, fit_anyway)     # neither the refresh rate nor the surround is known
 
 
 def on_screen(protocol, out: str | Path, n_levels: int = 9, repeats: int = 2, per_gun: bool = False,

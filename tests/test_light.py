@@ -246,6 +246,18 @@ sys.exit(console())
 """
 
 
+def test_a_tab_in_the_profile_name_draws_no_missing_glyph(tmp_path):
+    # the name is the figure's title: a tab in it added two "Glyph 9 missing" warnings to a command that worked
+    import warnings
+
+    out = tmp_path / "lab\tdisplay.toml"
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        assert main(["measure-light", "--readings", str(EXAMPLE_READINGS), "--out", str(out)]) == 0
+    assert not [w for w in caught if "Glyph" in str(w.message)] and load_profile(out).models
+    assert (tmp_path / "lab\tdisplay.png").exists()
+
+
 @pytest.mark.slow    # two commands in their own processes
 def test_a_stopped_measure_light_says_what_became_of_the_profile(tmp_path, capsys):
     # the stop line said only "stopped by SIGTERM", and a SIGTERM between the figure's and the profile's renames
@@ -275,6 +287,8 @@ def test_measure_light_from_csv_writes_a_profile_that_round_trips(tmp_path, caps
     assert main(["measure-light", "--readings", str(EXAMPLE_READINGS), "--out", str(out)]) == 0
     printed = capsys.readouterr().out
     assert "gamma" in printed and "95% CI" in printed and "holds only for this display" in printed
+    # typed-in readings: no surround is known (it was recorded as the protocol's background, 0)
+    assert "surround_level =" not in out.read_text() and "# surround_level: not known" in out.read_text()
     assert (tmp_path / "display.png").exists()
     profile = load_profile(out)
     assert set(profile.models) == {"grey", "red", "green", "blue"}
