@@ -115,6 +115,28 @@ def name_too_long(exc: OSError) -> InputError | None:
                                       "between two slashes); choose a shorter name")
 
 
+def _in_another_normal_form(path: str) -> str:
+    """A hint when the folder holds the same name in another Unicode normal form, else "".
+
+    "café" can be stored as é or as e + a combining accent (some systems
+    write names the second way); the two look the same and open different files.
+    """
+    import unicodedata      # here: the module loads only what the first instant needs
+
+    folder, name = os.path.split(os.fspath(path))
+    if name.isascii():
+        return ""
+    wanted = unicodedata.normalize("NFC", name)
+    try:
+        with os.scandir(folder or ".") as entries:
+            if any(e.name != name and unicodedata.normalize("NFC", e.name) == wanted for e in entries):
+                return (" (a file of this name stored in another Unicode form is there, as some systems write "
+                        "accented names: rename it, or copy its name from the folder listing)")
+    except OSError:
+        pass
+    return ""
+
+
 def file_problem(path) -> str | None:
     """Why ``path`` cannot be read as a regular file, in a few words, or ``None`` when it can.
 
@@ -131,7 +153,7 @@ def file_problem(path) -> str | None:
     try:
         mode = os.stat(path).st_mode
     except FileNotFoundError:
-        return "does not exist"
+        return "does not exist" + _in_another_normal_form(path)
     except NotADirectoryError:
         return "does not exist (a part of its path is a file)"
     except OSError as exc:

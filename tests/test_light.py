@@ -246,6 +246,20 @@ sys.exit(console())
 """
 
 
+def test_a_profile_name_stored_in_another_unicode_form_is_pointed_out(tmp_path):
+    # "café.toml" written with a combining accent (as some systems store names) beside a protocol that
+    # names it with "é": the two look the same, and the error said only "does not exist"
+    import unicodedata
+
+    stored = tmp_path / unicodedata.normalize("NFD", "café.toml")
+    stored.write_bytes(EXAMPLE_PROFILE.read_bytes())
+    with pytest.raises(InputError, match="does not exist \\(a file of this name stored in another Unicode form"):
+        load_profile(tmp_path / unicodedata.normalize("NFC", "café.toml"))
+    with pytest.raises(InputError, match="does not exist$"):
+        load_profile(tmp_path / "cafe.toml")
+    assert load_profile(stored).models
+
+
 def test_a_tab_in_the_profile_name_draws_no_missing_glyph(tmp_path):
     # the name is the figure's title: a tab in it added two "Glyph 9 missing" warnings to a command that worked
     import warnings
