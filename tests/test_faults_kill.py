@@ -379,6 +379,7 @@ sys.exit(cli.console())
 """
 
 
+@pytest.mark.slow    # a command in its own process
 @pytest.mark.parametrize("how", ["swallowed", "converted"])
 def test_a_signal_that_python_or_a_module_loses_still_ends_in_one_line(how):
     # a SIGTERM during numpy's import became "ImportError: PyCapsule_Import could not import module 'datetime'"

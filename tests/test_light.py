@@ -260,6 +260,7 @@ def test_a_profile_name_stored_in_another_unicode_form_is_pointed_out(tmp_path):
     assert load_profile(stored).models
 
 
+@pytest.mark.slow    # fits and draws
 def test_a_tab_in_the_profile_name_draws_no_missing_glyph(tmp_path):
     # the name is the figure's title: a tab in it added two "Glyph 9 missing" warnings to a command that worked
     import warnings
