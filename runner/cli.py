@@ -623,7 +623,7 @@ def cmd_measure_light(args) -> int:
         measure_light.on_screen(protocol or Protocol(), args.out, args.levels, args.repeats, args.per_gun, patch,
                                 args.windowed, args.seed, args.resume, args.label, args.fit_anyway)
     except KeyboardInterrupt as exc:
-        print(f"aftershift: {_light_kept(args, exc)}; every accepted reading is in "
+        print(f"aftershift: {_light_kept(args, _how(exc))}; every accepted reading is in "
               f"{measure_light.readings_path(args.out)} (use --resume)", file=sys.stderr)
         return 130
     return EXIT_OK
@@ -969,13 +969,13 @@ def _interrupted(args, exc: KeyboardInterrupt, quick_fit_shown: bool = True) -> 
 
 def _interrupted_line(args, exc: BaseException, quick_fit_shown: bool = True) -> str:
     command = getattr(args, "command", None)
-    how = "stopped by SIGTERM" if isinstance(exc, Terminated) else "interrupted"
+    how = _how(exc)
     if command == "run":
         return f"{how}; {_run_kept(args, quick_fit_shown)}"
     if command == "simulate":
         return f"{how}; {_simulate_kept(args)}"
     if command == "measure-light":
-        return _light_kept(args, exc)
+        return _light_kept(args, how)
     if command in ("fit", "compare", "plan", "recover"):
         from fitting.outputs import committed
 
@@ -985,9 +985,12 @@ def _interrupted_line(args, exc: BaseException, quick_fit_shown: bool = True) ->
     return how
 
 
-def _light_kept(args, exc: BaseException) -> str:
+def _how(exc: BaseException) -> str:
+    return "stopped by SIGTERM" if isinstance(exc, Terminated) else "interrupted"
+
+
+def _light_kept(args, how: str) -> str:
     """What an interrupted ``measure-light`` leaves of the light profile at ``--out``."""
-    how = "stopped by SIGTERM" if isinstance(exc, Terminated) else "interrupted"
     from runner.measure_light import written
 
     if written():   # the signal came while the files were moved in, and waited for both
@@ -1001,14 +1004,17 @@ def _install_signal_handlers() -> None:
     A signal ignored by whoever started the process (a background job's
     SIGINT) stays ignored.
     """
-    global _stopping, _stopped_by
+    global _stopping, _stopped_by, _passed_on
     for sig, ours in ((signal.SIGINT, (signal.default_int_handler,)), (signal.SIGTERM, (signal.SIG_DFL, None))):
         if signal.getsignal(sig) in ours:
             signal.signal(sig, _on_stop_signal)
     _stopping, _stopped_by = False, None
     if sys.unraisablehook is not _stop_again:
-        _stop_again.passed_on = sys.unraisablehook
-        sys.unraisablehook = _stop_again
+        _passed_on, sys.unraisablehook = sys.unraisablehook, _stop_again
+
+
+#: The hook :func:`_stop_again` passes other unraisable exceptions to.
+_passed_on = sys.unraisablehook
 
 
 def _stop_again(unraisable) -> None:
@@ -1031,10 +1037,7 @@ def _stop_again(unraisable) -> None:
         again.daemon = True
         again.start()
         return
-    _stop_again.passed_on(unraisable)
-
-
-_stop_again.passed_on = sys.unraisablehook
+    _passed_on(unraisable)
 
 
 if __name__ == "__main__":  # pragma: no cover
