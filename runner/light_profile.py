@@ -32,6 +32,7 @@ import numpy as np
 from fitting.display_model import CHANNELS, MODEL_FIELDS, ChannelFit, GainOffsetGamma, flatness
 from fitting.errors import InputError, file_problem
 from runner.light_profile_schema import check_profile, check_summary
+from runner.toml_text import toml_tables
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -276,11 +277,10 @@ def load_profile(path: str | Path, source: str = "", field: str = "light.profile
         raise InputError(source or str(p), field, f"light profile {p} {problem}")
     try:
         data = p.read_bytes()       # hashed as stored: sha256sum of the file gives the same (CRLF line ends too)
-        raw = tomllib.loads(data.decode("utf-8"))
+        text = data.decode("utf-8")
     except (OSError, UnicodeDecodeError) as exc:
         raise InputError(str(p), "file", f"cannot be read as text ({exc})") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise InputError(str(p), "TOML", f"not valid TOML ({exc})") from None
+    raw = toml_tables(text, str(p))
 
     if raw.get("kind") != PROFILE_KIND:
         raise InputError(str(p), "kind", f'expected "{PROFILE_KIND}"; is this a light profile?')

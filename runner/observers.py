@@ -15,7 +15,6 @@ session draws exactly the answers an uninterrupted one would.
 from __future__ import annotations
 
 import math
-import sys
 from dataclasses import dataclass, fields, replace
 from pathlib import Path
 
@@ -24,11 +23,8 @@ from scipy.special import ndtr
 
 from fitting.errors import InputError
 from runner.plan import Answer, Playback, TrialPlan
+from runner.toml_text import toml_tables
 
-if sys.version_info >= (3, 11):
-    import tomllib
-else:  # pragma: no cover
-    import tomli as tomllib
 
 
 @dataclass(frozen=True)
@@ -124,9 +120,10 @@ def load_model(path: str | Path | None) -> ObserverModel:
         raise InputError(str(p), "file", "is a folder; expected an observer model file (.toml)" if p.is_dir()
                          else "does not exist or is not a file")
     try:
-        raw = tomllib.loads(p.read_bytes().decode("utf-8-sig"))     # with or without a byte-order mark
-    except (UnicodeDecodeError, tomllib.TOMLDecodeError, RecursionError) as exc:
+        text = p.read_bytes().decode("utf-8-sig")     # with or without a byte-order mark
+    except UnicodeDecodeError as exc:
         raise InputError(str(p), "TOML", f"not a valid TOML text file ({exc})") from None
+    raw = toml_tables(text, str(p), what="not a valid TOML text file")
     if not raw:      # an empty or cut file would silently mean the default observer
         raise InputError(str(p), "(top level)", "the file has no settings; start from protocols/observers/typical.toml")
     known = {f.name for f in fields(ObserverModel)}

@@ -14,7 +14,6 @@ text is one line naming the file, the field and what was expected.
 from __future__ import annotations
 
 import math
-import sys
 import unicodedata
 from pathlib import Path
 from typing import Literal
@@ -26,11 +25,8 @@ from runner import geometry, timing
 from runner.adaptive import STRADDLE_SPREADS
 from runner.light_settings import LightSettings
 from runner.stream_settings import StreamSettings, check_stream
+from runner.toml_text import toml_tables
 
-if sys.version_info >= (3, 11):
-    import tomllib
-else:  # pragma: no cover - exercised on Python 3.10 only
-    import tomli as tomllib
 
 #: Protocol files larger than this are refused before parsing.
 MAX_PROTOCOL_BYTES = 1_000_000
@@ -745,12 +741,7 @@ def parse_protocol(text: str, source: str = "<protocol>", resolve_light: bool = 
     InputError
         One line naming ``source``, the field and what was expected.
     """
-    try:
-        raw = tomllib.loads(text.removeprefix("\ufeff"))     # the byte-order mark some editors write
-    except tomllib.TOMLDecodeError as exc:
-        raise InputError(source, "TOML", f"not valid TOML ({exc})") from None
-    except RecursionError:
-        raise InputError(source, "TOML", "nesting too deep for a protocol") from None
+    raw = toml_tables(text.removeprefix("\ufeff"), source)     # the byte-order mark some editors write
     if not raw:
         raise InputError(source, "(top level)", "the file has no settings; start from protocols/offset_by_lag.toml")
     return protocol_from_dict(raw, source, resolve_light)

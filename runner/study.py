@@ -53,11 +53,8 @@ from runner.overview import check_size
 from runner.protocol import Protocol, parse_protocol, protocol_from_dict, read_protocol_text
 from runner.replay import TrackFactory
 from runner.workpool import TaskStore, WorkerLost, check_count, interrupted_line, open_pool, run_tasks
+from runner.toml_text import toml_tables
 
-if sys.version_info >= (3, 11):
-    import tomllib
-else:  # pragma: no cover
-    import tomli as tomllib
 
 QUANTITIES = ("amplitude", "peak_offset", "decay", "baseline_pse")
 UNITS = {"amplitude": "deg", "peak_offset": "deg", "decay": "periods", "baseline_pse": "deg"}
@@ -127,10 +124,7 @@ def parse_vary(text: str) -> tuple[str, list]:
     if not sep or not name:
         raise InputError("argument", "--vary", f"{text!r}: expected FIELD=[value, value, ...], "
                          "e.g. design.trials_per_track=[20, 40, 80]")
-    try:
-        parsed = tomllib.loads(f"v = {values.strip()}")["v"]
-    except tomllib.TOMLDecodeError as exc:
-        raise InputError("argument", f"--vary {name}", f"values are not a TOML array ({exc})") from None
+    parsed = toml_tables(f"v = {values.strip()}", "argument", f"--vary {name}", "values are not a TOML array")["v"]
     if not isinstance(parsed, list) or not parsed:
         raise InputError("argument", f"--vary {name}", "expected a non-empty array of values in [ ]")
     if len({json.dumps(v, sort_keys=True) for v in parsed}) != len(parsed):

@@ -106,6 +106,8 @@ MALFORMED = {
     "bool_for_number": (b"[dots]\ncoherence = true", "dots.coherence"),
     "unknown_field": (b"[dots]\nspeed = 5", "dots.speed"),
     "deep_nesting": (b"x = " + b"[" * 3000 + b"]" * 3000, "TOML"),
+    # Python refuses to convert an integer of more than 4,300 digits: a ValueError, not the parser's own error
+    "integer_of_5001_digits": (b"[design]\ntrials_per_track = " + b"9" * 5001, "TOML"),
     "deep_tables": (b"[a.b.c.d.e.f.g.h]\nx = 1", "a"),
     "fractional_lag": (b"[design]\nlags = [0, 1.5]", "design.lags"),
     "negative_lag": (b"[design]\nlags = [-1, 2]", "design.lags"),
@@ -251,3 +253,21 @@ def test_sessions_resume_under_the_defaults_they_started_with():
     for bad in ({SHARING_KEY: 1}, {PRIOR_KEY: "6"}, {PRIOR_KEY: True}, {PRIOR_KEY: -1.0}):
         with pytest.raises(InputError, match=f"^s.session.json: {next(iter(bad))}: malformed sidecar"):
             as_started(new, bad, "s.session.json")
+
+
+def test_every_toml_reader_refuses_what_the_parser_raises_in_one_line(tmp_path):
+    # an integer of 5,001 digits (Python's ValueError) and arrays nested 3,000 deep (RecursionError) were
+    # tracebacks in the observer model, the light profile and --vary; the protocol refused only the nesting
+    from runner.light_profile import load_profile
+    from runner.observers import load_model
+    from runner.study import parse_vary
+
+    for bad in (b"x = " + b"9" * 5001, b"x = " + b"[" * 3000 + b"]" * 3000):
+        model, profile = tmp_path / "observer.toml", tmp_path / "light.toml"
+        model.write_bytes(bad)
+        profile.write_bytes(bad)
+        for read, path in ((load_model, model), (load_profile, profile)):
+            with pytest.raises(InputError, match=f"^{path}: TOML: not (a )?valid TOML"):
+                read(path)
+        with pytest.raises(InputError, match="^argument: --vary design.lags: values are not a TOML array"):
+            parse_vary("design.lags=" + bad.decode()[4:])
