@@ -135,9 +135,12 @@ def parse_vary(text: str) -> tuple[str, list]:
 def _with_setting(raw: dict, model: dict, name: str, value) -> None:
     section, _, key = name.partition(".")
     if section == "model":
+        if key == "spread_between_observers":   # a study simulates one observer, the model's own, each run
+            raise InputError("argument", f"--vary {name}", "a study simulates the model's observer itself in "
+                             "every run, with no spread between observers, so varying it changes nothing")
         if key not in model:
             raise InputError("argument", f"--vary {name}", f"unknown observer model key; expected one of "
-                             f"{', '.join('model.' + k for k in model)}")
+                             f"{', '.join('model.' + k for k in model if k != 'spread_between_observers')}")
         if isinstance(value, bool) or not isinstance(value, (int, float)):
             raise InputError("argument", f"--vary {name}", f"{value!r} is not a number")
         model[key] = float(value)

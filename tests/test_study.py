@@ -228,6 +228,12 @@ def test_vary_errors_name_the_option_and_field():
         expand_designs(protocol, model, ["model.lapse=[2.0]"])
     with pytest.raises(InputError, match="varied twice"):
         expand_designs(protocol, model, ["model.lapse=[0.0]", "model.lapse=[0.01]"])
+    # every run simulates the model's own observer: the designs were labelled 0 and 5 and gave equal numbers
+    with pytest.raises(InputError, match="--vary model.spread_between_observers: .* changes nothing"):
+        expand_designs(protocol, model, ["model.spread_between_observers=[0, 5]"])
+    with pytest.raises(InputError, match="unknown observer model key") as unknown:
+        expand_designs(protocol, model, ["model.nonexistent=[1]"])
+    assert "spread_between_observers" not in str(unknown.value)
     grid = expand_designs(protocol, model, ["design.trials_per_track=[8, 16]", "model.amplitude_deg=[1, 3]"])
     assert [(d.protocol.design.trials_per_track, d.model.amplitude_deg) for d in grid] == \
         [(8, 1.0), (8, 3.0), (16, 1.0), (16, 3.0)]
