@@ -156,6 +156,9 @@ def _with_setting(raw: dict, model: dict, name: str, value) -> None:
     if not isinstance(raw[section], dict):
         raise InputError("argument", f"--vary {name}", f"{section} is not a section of the protocol")
     raw[section][key] = value
+    if name == "procedure.method" and value in ("bayesian", "constant"):
+        # these choose their own levels, and refuse a start; the protocol's start stays with the up-down designs
+        raw[section].pop("start_offset_deg", None)
 
 
 def expand_designs(protocol: Protocol, model: ObserverModel, vary: list[str] | None = None) -> list[Design]:

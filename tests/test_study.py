@@ -238,6 +238,12 @@ def test_vary_errors_name_the_option_and_field():
     assert [(d.protocol.design.trials_per_track, d.model.amplitude_deg) for d in grid] == \
         [(8, 1.0), (8, 3.0), (16, 1.0), (16, 3.0)]
     assert all(d.model.spread_between_observers == 0 for d in grid)
+    # the README's grid: a protocol that starts its up-down tracks at 20 deg was refused for the Bayesian designs
+    written = parse_protocol(SMALL + "[procedure]\nstart_offset_deg = 20.0\n")
+    methods = expand_designs(written, model, ['procedure.method=["updown", "bayesian", "weighted", "constant"]'])
+    assert [d.protocol.procedure.start_offset_deg for d in methods if d.protocol.procedure.method in
+            ("updown", "weighted")] == [20.0, 20.0]
+    assert [d.protocol.procedure.method for d in methods] == ["updown", "bayesian", "weighted", "constant"]
 
 
 @pytest.mark.slow
