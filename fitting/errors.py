@@ -43,9 +43,9 @@ class InputError(ValueError):
         return (type(self), (self.source, self.field, self.message))
 
     def line(self) -> str:
-        """Return the one-line description: ``source: field: message``."""
+        """Return the one-line description: ``source: field: message`` (control characters escaped)."""
         parts = [p for p in (self.source, self.field) if p]
-        return ": ".join(parts + [self.message])
+        return printable(": ".join(parts + [self.message]))
 
 
 class SafetyRefusal(Exception):
@@ -91,7 +91,19 @@ class SafetyRefusal(Exception):
         """The one-line message: ``source: field: refused for KIND: reason; remedy``."""
         reason = self.reason[:1].lower() + self.reason[1:]
         parts = [p for p in (self.source, self.field) if p]
-        return ": ".join(parts + [f"refused for {self.kind}: {reason}; {self.remedy}"])
+        return printable(": ".join(parts + [f"refused for {self.kind}: {reason}; {self.remedy}"]))
+
+
+def printable(text: str) -> str:
+    """``text`` with every character a terminal or a font would not show as itself written as an escape.
+
+    A tab, a line break or an escape sequence in a file name or a protocol's
+    path (``\\x1b[2J`` clears the screen) is shown as ``\\t``, ``\\n``,
+    ``\\x1b[2J``: a message stays one line and the terminal stays as it was.
+    """
+    if text.isprintable():
+        return text
+    return "".join(c if c.isprintable() else c.encode("unicode_escape").decode("ascii") for c in text)
 
 
 def name_too_long(exc: OSError) -> InputError | None:

@@ -32,7 +32,7 @@ from pathlib import Path
 import numpy as np
 
 from fitting.display_model import ReadingsRefused, Readings, fit_readings, make_readings, read_readings
-from fitting.errors import InputError
+from fitting.errors import InputError, printable
 from runner.light_profile import PROFILE_KIND, profile_text, write_atomically
 
 #: Columns of the readings file the screen routine writes.
@@ -386,8 +386,7 @@ def _write_profile_and_figure(fits, out: Path, text: str) -> tuple[Path, list[st
         # short names inside: a name near the file system's limit is the user's to use, not the staging's
         staging = Path(tempfile.mkdtemp(prefix=".light-profile-", dir=out.parent))
         # a tab or a line break in the name is shown as \t, \n: the fonts have no glyph for them
-        shown = "".join(c if c.isprintable() else c.encode("unicode_escape").decode("ascii") for c in out.name)
-        drawn = light_figure(fits, staging / "figure", title=f"light profile {shown}")
+        drawn = light_figure(fits, staging / "figure", title=f"light profile {printable(out.name)}")
         ready = write_atomically(staging / "profile.toml", text)    # every byte on disk before anything is replaced
         figures = [str(out.with_name(out.stem + Path(f).suffix)) for f in drawn]   # lab.display.v2.png
         with signals_deferred():

@@ -271,3 +271,10 @@ def test_every_toml_reader_refuses_what_the_parser_raises_in_one_line(tmp_path):
                 read(path)
         with pytest.raises(InputError, match="^argument: --vary design.lags: values are not a TOML array"):
             parse_vary("design.lags=" + bad.decode()[4:])
+
+
+def test_control_characters_in_a_path_reach_the_terminal_escaped(tmp_path, capsys):
+    # a protocol's path to its caution text with an escape sequence cleared the screen and coloured the line
+    code, err, path = _check(tmp_path, capsys, b'[safety]\ncaution_file = "x\\u001b[2J\\u001b[31mRED"\n')
+    assert code == 2 and "\x1b" not in err and "x\\x1b[2J\\x1b[31mRED does not exist" in err, err
+    assert err.startswith(f"aftershift: {path}: safety.caution_file: ") and err.count("\n") == 1
