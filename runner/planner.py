@@ -42,8 +42,8 @@ from fitting.errors import InputError
 from fitting.figures import save
 from fitting.tables import write_csv
 from runner.observers import ObserverModel
-from runner.overview import size_problem
-from runner.protocol import Protocol
+from runner.overview import MAX_HOURS, MAX_TRIALS, size_problem
+from runner.protocol import MAX_TRIALS_PER_TRACK, Protocol
 from runner.study import (QUANTITIES, TRIALS_FIELD, UNITS, Design, StudySettings, check_designs, console_table,
                           coverage_limits, coverage_se, design_columns, expand_designs, failed_run_notes,
                           missing_interval_notes, run_study, study_command)
@@ -328,13 +328,18 @@ def _recommendation(r: pd.Series) -> str:
         return (f"the smallest design with intervals, {n:.0f} trials per condition (trials_per_track = "
                 f"{per_track}), reaches it already; fewer trials were not shown to give intervals at all, so "
                 "none are recommended")
+    if per_track > MAX_TRIALS_PER_TRACK:
+        reach = (f"; not reachable: a track holds at most {MAX_TRIALS_PER_TRACK:,} trials (and a session "
+                 f"{MAX_TRIALS:,} trials, {MAX_HOURS:g} hours), so no protocol can hold it: choose a larger target")
+    else:
+        reach = ""
     if r["basis"] == EXTRAPOLATED:
         factor = r["beyond_largest"]
         times = f"{factor:,.0f}" if factor >= 10 else f"{factor:.2g}"
         return (f"about {n:,.0f} trials per condition -> trials_per_track = {per_track:,}, extrapolated {times}x "
                 f"beyond the largest design simulated ({n / factor:,.0f} trials per condition) with half-width "
-                f"∝ 1/√N ({slope}); simulate a design near it before relying on it")
-    return f"about {n:,.0f} trials per condition -> trials_per_track = {per_track:,} ({slope})"
+                f"∝ 1/√N ({slope}){reach or '; simulate a design near it before relying on it'}")
+    return f"about {n:,.0f} trials per condition -> trials_per_track = {per_track:,} ({slope}){reach}"
 
 
 # ---------------------------------------------------------------- planning

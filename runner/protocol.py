@@ -28,6 +28,8 @@ from runner.stream_settings import StreamSettings, check_stream
 from runner.toml_text import toml_tables
 
 
+#: The most trials one track may have (``design.trials_per_track``).
+MAX_TRIALS_PER_TRACK = 10_000
 #: Protocol files larger than this are refused before parsing.
 MAX_PROTOCOL_BYTES = 1_000_000
 
@@ -234,7 +236,7 @@ class DesignSettings(_Section):
         default_factory=lambda: [-135.0, -90.0, -45.0, 45.0, 90.0, 135.0], min_length=1, max_length=64
     )
     tracks_per_condition: int = Field(2, ge=1, le=8)
-    trials_per_track: int = Field(20, ge=1, le=10000)
+    trials_per_track: int = Field(20, ge=1, le=MAX_TRIALS_PER_TRACK)
     practice_trials: int = Field(8, ge=0, le=1000)
     practice_offset_deg: float = Field(20.0, gt=0, le=90)
     practice_feedback: bool = True

@@ -191,9 +191,13 @@ def test_a_recommendation_beyond_the_designs_says_by_how_much():
     assert row["basis"] == EXTRAPOLATED and row["trials_per_condition"] == pytest.approx(360_000)
     assert row["beyond_largest"] == pytest.approx(360_000 / 48)
     assert "extrapolated 7,500x beyond the largest design simulated (48 trials per condition)" in _recommendation(row)
+    # 180,000 trials a track: the schema's limit is 10,000, and no word said the design could not be written
+    assert "not reachable: a track holds at most 10,000 trials" in _recommendation(row)
     inside = _needed(table, 6.0 / math.sqrt(30), designs).iloc[0]
     assert inside["basis"] == INTERPOLATED and inside["trials_per_condition"] == pytest.approx(30)
-    assert "extrapolated" not in _recommendation(inside)
+    assert "extrapolated" not in _recommendation(inside) and "reachable" not in _recommendation(inside)
+    near = _needed(table, 6.0 / math.sqrt(96), designs).iloc[0]     # twice the largest: say so, but reachable
+    assert "simulate a design near it" in _recommendation(near) and "reachable" not in _recommendation(near)
 
 
 @pytest.mark.parametrize("covered,n", [(8, 8), (0, 3), (5, 8), (38, 40), (1, 1)])
