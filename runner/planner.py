@@ -239,6 +239,8 @@ class PlanResult:
             lines.append(f"for an amplitude half-width of {self.target_half_width:g} deg "
                          f"(median half-widths interpolated, ∝ 1/√N beyond the designs):")
             lines += [f"  {r['family']}, lag {int(r['lag'])}: {_recommendation(r)}" for _, r in self.needed.iterrows()]
+            if self.needed.empty:
+                lines.append("  none: no design has a tuning amplitude (it needs 3 or more adapter offsets)")
         lines += [f"note: {n}" for n in self.notes]
         return lines
 
@@ -477,7 +479,12 @@ def _needed(table: pd.DataFrame, target: float, designs: list[Design]) -> pd.Dat
                     "trials_per_condition": n, "trials_per_track": per_track, "basis": basis,
                     "beyond_largest": beyond,
                     "loglog_slope": loglog_slope(part["trials_per_condition"], part["median_half_width"])})
-    return pd.DataFrame(out)
+    return pd.DataFrame(out, columns=NEEDED_COLUMNS)     # with its header when no design has an amplitude
+
+
+#: The columns of ``plan_needed.csv``.
+NEEDED_COLUMNS = ["family", "lag", "target_half_width_deg", "trials_per_condition", "trials_per_track", "basis",
+                  "beyond_largest", "loglog_slope"]
 
 
 def plan_command(protocol_path: str, model_path: str | None, out_dir: str, settings: StudySettings,

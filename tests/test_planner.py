@@ -163,6 +163,18 @@ def _amplitude_rows(widths: dict[int, float], runs: int = 8):
                          for i, (n, h) in enumerate(widths.items())])
 
 
+def test_a_design_without_amplitudes_writes_the_needed_table_with_its_header(tmp_path):
+    # fewer than 3 adapter offsets: plan_needed.csv held one line break and no header
+    from fitting.tables import write_csv
+    from runner.planner import NEEDED_COLUMNS, _needed
+
+    baseline_only = _amplitude_rows({12: 1.0}).assign(quantity="baseline_pse")
+    needed = _needed(baseline_only, 0.5, [])
+    assert needed.empty and list(needed.columns) == NEEDED_COLUMNS
+    write_csv(needed, tmp_path / "plan_needed.csv")
+    assert (tmp_path / "plan_needed.csv").read_text().splitlines() == [",".join(NEEDED_COLUMNS)]
+
+
 def test_a_recommendation_is_never_below_the_smallest_design_with_intervals():
     # before: 24 and 48 trials per condition gave intervals, 12 none, and a target wider than every interval
     # recommended "about 1 trials per condition -> trials_per_track = 1" (the 1/sqrt(N) law from 24 downwards)
