@@ -612,10 +612,13 @@ def console_table(table: pd.DataFrame, numbers: tuple[str, ...], coverage_digits
 def coverage_se(coverage: float, n: int) -> float:
     """Monte Carlo standard error of a coverage share, √(p(1 − p)/n) (binomial; common practice, no source).
 
-    It is 0 at a share of 0 or 1, whatever the number of runs: use
-    :func:`coverage_limits` to say how sure a share is.
+    NaN at a share of 0 or 1, where the formula gives 0 whatever the number
+    of runs (8 of 8 read as "100 ± 0 %"): :func:`coverage_limits` says how
+    sure such a share is.
     """
-    return math.sqrt(coverage * (1 - coverage) / n) if n > 0 and math.isfinite(coverage) else float("nan")
+    if n <= 0 or not math.isfinite(coverage) or coverage in (0.0, 1.0):
+        return float("nan")
+    return math.sqrt(coverage * (1 - coverage) / n)
 
 
 def coverage_limits(coverage: float, n: int, level: float = 0.95) -> tuple[float, float]:

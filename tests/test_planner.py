@@ -264,6 +264,8 @@ def test_recover_names_a_coverage_whose_wilson_interval_lies_below_95_percent():
                      "truth": 3.0, "mean_estimate": 3.0, "bias": 0.0, "rmse": 1.0, "median_ci_width": 2.0,
                      "coverage": p, "coverage_se": coverage_se(p, n), "coverage_low": low, "coverage_high": high,
                      "runs_with_interval": n, "runs": n})
+    # 8 of 8: no standard error of 0 (it read as "100 ± 0 %"); the Wilson limits say how sure it is
+    assert math.isnan(rows[1]["coverage_se"]) and rows[1]["coverage_low"] < 0.7 and coverage_se(0.5, 2) == 0.5**1.5
     result = RecoveryResult(pd.DataFrame(), pd.DataFrame(rows), pd.DataFrame({"replicate": range(8)}), "t")
     named = [line for line in result.summary_lines() if line.startswith("coverage below 95 %")]
     assert named == ["coverage below 95 % (its 95 % Wilson interval lies below): as written: amplitude lag 0"]
