@@ -224,7 +224,8 @@ class PlanResult:
     def summary_lines(self) -> list[str]:
         """Lines for the console."""
         n_runs = int(self.runs["replicate"].nunique()) if len(self.runs) else 0
-        lines = [f"plan for {self.protocol_title!r}: {len(self.designs)} designs, {n_runs} simulated sessions "
+        count = f"{len(self.designs)} design{'s' if len(self.designs) != 1 else ''}"
+        lines = [f"plan for {self.protocol_title!r}: {count}, {n_runs} simulated sessions "
                  "each; 95 % interval half-widths over sessions, and coverage of the true value"]
         shown = console_table(self.table, ("median_half_width", "mean_half_width", "sd_half_width"), 0)
         shown = shown.rename(columns={"trials_per_condition": "trials/cond", "median_half_width": "median",

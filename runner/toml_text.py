@@ -34,5 +34,7 @@ def toml_tables(text: str, source: str, field: str = "TOML", what: str = "not va
         return tomllib.loads(text)
     except RecursionError:
         raise InputError(source, field, f"{what} (nested too deep)") from None
-    except ValueError as exc:       # TOMLDecodeError is one; so is an integer too long to convert
+    except tomllib.TOMLDecodeError as exc:
         raise InputError(source, field, f"{what} ({exc})") from None
+    except ValueError:              # Python's own limit on converting long integers
+        raise InputError(source, field, f"{what} (an integer of more than 4,300 digits)") from None

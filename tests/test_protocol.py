@@ -263,11 +263,12 @@ def test_every_toml_reader_refuses_what_the_parser_raises_in_one_line(tmp_path):
     from runner.study import parse_vary
 
     for bad in (b"x = " + b"9" * 5001, b"x = " + b"[" * 3000 + b"]" * 3000):
+        reason = "an integer of more than 4,300 digits" if b"9" in bad else "nested too deep"
         model, profile = tmp_path / "observer.toml", tmp_path / "light.toml"
         model.write_bytes(bad)
         profile.write_bytes(bad)
         for read, path in ((load_model, model), (load_profile, profile)):
-            with pytest.raises(InputError, match=f"^{path}: TOML: not (a )?valid TOML"):
+            with pytest.raises(InputError, match=f"^{path}: TOML: not (a )?valid TOML.*\\({reason}\\)$"):
                 read(path)
         with pytest.raises(InputError, match="^argument: --vary design.lags: values are not a TOML array"):
             parse_vary("design.lags=" + bad.decode()[4:])
