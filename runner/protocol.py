@@ -20,7 +20,7 @@ from typing import Literal
 
 from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError, field_validator, model_validator
 
-from fitting.errors import InputError
+from fitting.errors import InputError, file_problem
 from runner import geometry, timing
 from runner.adaptive import STRADDLE_SPREADS
 from runner.light_settings import LightSettings
@@ -788,8 +788,8 @@ def read_protocol_text(path: str | Path) -> str:
     if str(path).strip() == "":
         raise InputError("argument", "protocol", "is empty; name a protocol file (.toml)")
     p = Path(path)
-    if not p.exists():
-        raise InputError(str(p), "file", "does not exist")
+    if not p.exists():      # the reason a path cannot be opened: missing, a loop of links, too long a name
+        raise InputError(str(p), "file", file_problem(p) or "does not exist")
     if p.is_dir():
         raise InputError(str(p), "file", "is a folder; expected a protocol file (.toml)")
     if not p.is_file():  # a named pipe or a device would block the read or never end

@@ -195,6 +195,11 @@ def test_missing_file_and_folder_are_input_errors(tmp_path, capsys):
     code = main(["check", str(tmp_path)])
     err = capsys.readouterr().err
     assert code == 2 and "folder" in err and len(err.strip().splitlines()) == 1
+    (tmp_path / "a.toml").symlink_to(tmp_path / "b.toml")      # a loop of links was "does not exist"
+    (tmp_path / "b.toml").symlink_to(tmp_path / "a.toml")
+    assert main(["check", str(tmp_path / "a.toml")]) == 2
+    assert capsys.readouterr().err == f"aftershift: {tmp_path / 'a.toml'}: file: cannot be used (Too many levels " \
+                                      "of symbolic links)\n"
     code = main(["check", ""])            # an empty name was read as the current folder, "."
     assert code == 2 and capsys.readouterr().err.strip() == "aftershift: argument: protocol: is empty; name a " \
                                                             "protocol file (.toml)"
