@@ -498,14 +498,18 @@ def test_bayesian_pse_precision_near_cramer_rao_bound():
     # largest at z = 0, where it is (1/(2π)) / (σ²/4) = 2/(πσ²); N trials therefore give
     #   var(μ̂) ≥ πσ² / (2N)  for an unbiased estimator (Cramér–Rao inequality).
     # The Bayesian method must come within 1.3× of that root-mean-square error after 80
-    # trials although it does not know σ or the lapse rate.
+    # trials although it does not know σ or the lapse rate: a track as a protocol's defaults build it.
+    from runner.protocol import parse_protocol
+    from runner.tracks import procedure_track
+
+    procedure = parse_protocol('title = "t"\n[procedure]\nmethod = "bayesian"\n').procedure
     n_trials, n_runs, spread = 80, 200, 4.0
     rng = np.random.default_rng(2024)
     errors = []
-    for _ in range(n_runs):
+    for run in range(n_runs):
         pse = rng.uniform(-10, 10)
         answer = _observer(rng, pse=pse, spread=spread)
-        track = EntropyTrack(max_trials=n_trials, target="pse")
+        track = procedure_track(procedure, n_trials, 0, (run,))
         while not track.finished:
             level = track.next_level()
             track.update(level, answer(level))
