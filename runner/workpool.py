@@ -172,7 +172,7 @@ def _start_server(preload: tuple[str, ...]):
     traceback of its own after the command's one line.
     """
     ctx = multiprocessing.get_context("forkserver")
-    ctx.set_forkserver_preload(list(preload))
+    ctx.set_forkserver_preload(["runner.worker_server", *preload])     # first: workers of a stopped command are quiet
     with children_shielded():
         multiprocessing.forkserver.ensure_running()
     return ctx

@@ -388,3 +388,37 @@ def test_a_signal_that_python_or_a_module_loses_still_ends_in_one_line(how):
     done = subprocess.run([sys.executable, "-c", _LOST_SIGNAL_DRIVER, how, str(PILOT)], cwd=ROOT,
                           capture_output=True, text=True, timeout=60)
     assert (done.returncode, done.stdout, done.stderr) == (130, "", "aftershift check: stopped by SIGTERM\n")
+
+
+_WORKER_START_DRIVER = """
+import multiprocessing.synchronize, sys
+from runner.workpool import LocalPool
+
+def hook_of_a_worker(_):
+    return sys.excepthook.__module__
+
+if __name__ == "__main__":
+    print(sorted(set(dict(LocalPool(2).map_unordered(hook_of_a_worker, {"a": 0, "b": 1})).values())))
+    import runner.worker_server      # as in the server: a semaphore its command removed, then a real error
+    gone = multiprocessing.synchronize.SemLock.__new__(multiprocessing.synchronize.SemLock)
+    try:
+        gone.__setstate__((0, 1, 1, "/aftershift-no-such-semaphore"))
+    except FileNotFoundError:
+        sys.excepthook(*sys.exc_info())
+    try:
+        raise ValueError("a real start-up error")
+    except ValueError:
+        sys.excepthook(*sys.exc_info())
+"""
+
+
+@pytest.mark.slow    # a command-like process with a worker pool
+def test_a_worker_started_while_its_command_stops_ends_without_a_traceback(tmp_path):
+    # about one Ctrl-C or SIGTERM in 40 in a fit's first seconds: a worker forked as the command stopped found
+    # the pool's semaphores removed and printed a FileNotFoundError traceback after the command's one line
+    script = tmp_path / "driver.py"
+    script.write_text(_WORKER_START_DRIVER, encoding="utf-8")
+    done = subprocess.run([sys.executable, str(script)], cwd=ROOT, capture_output=True, text=True, timeout=120,
+                          env={**os.environ, "PYTHONPATH": str(ROOT)})
+    assert done.stdout.strip() == "['runner.worker_server']", done.stderr      # the rule is in every worker
+    assert "FileNotFoundError" not in done.stderr and "ValueError: a real start-up error" in done.stderr
