@@ -858,12 +858,14 @@ def _check_full_rank(cov: np.ndarray, replicates: float, path: Path, observer) -
     n = cov.shape[0]
     if np.isfinite(replicates) and replicates <= n + 2:
         return
-    values = np.linalg.eigvalsh((cov + cov.T) / 2.0)
-    rank = int(np.sum(values > RANK_TOLERANCE * values[-1]))
-    if rank < n:
+    # cells that did not vary over the replicates (a point on a bound) are left to compare's own rules
+    varied = np.diagonal(cov) > RANK_TOLERANCE * np.abs(np.diagonal(cov)).max()
+    values = np.linalg.eigvalsh((cov + cov.T)[np.ix_(varied, varied)] / 2.0)
+    rank = int(np.sum(values > RANK_TOLERANCE * values[-1])) if values.size else 0
+    if rank < varied.sum():
         raise InputError(str(path), "shift_parameters", f"{observer}: empty, but the shifts' covariance has rank "
-                         f"{rank} for {n} cells, as only a stream fit writes it, naming the parameters (they set the "
-                         "chi2's degrees of freedom; a changed column?); run fit again")
+                         f"{rank} for {int(varied.sum())} cells, as only a stream fit writes it, naming the parameters "
+                         "(they set the chi2's degrees of freedom; a changed column?); run fit again")
 
 
 def _check_cells_measured(table: pd.DataFrame, measured: pd.DataFrame, path: Path) -> None:

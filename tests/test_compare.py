@@ -787,3 +787,19 @@ def test_a_huge_file_in_the_fit_folder_is_one_line_not_read_into_memory(real_fit
     assert done.returncode == 2 and len(done.stderr.strip().splitlines()) == 1, done.stderr
     assert "summary.txt: file: is 256 MB, larger than any file fit writes" in done.stderr, done.stderr
     assert not (tmp_path / "cmp").exists()
+
+
+def test_the_rank_check_passes_over_a_cell_that_did_not_vary():
+    # a covariance without shift_parameters must have full rank (a stream fit's has not); a cell whose shift
+    # was the same in every replicate (a point on a bound) has a zero row and is left to compare's own rules
+    from pathlib import Path
+
+    from fitting.compare import _check_full_rank
+    from fitting.errors import InputError
+
+    shared = np.array([[1.0, 0.6, 0.0], [0.6, 1.0, 0.0], [0.0, 0.0, 0.0]])
+    _check_full_rank(shared, 100.0, Path("c.csv"), "S1")
+    _check_full_rank(np.ones((3, 3)), 3.0, Path("c.csv"), "S1")      # 3 replicates: singular by nature
+    with pytest.raises(InputError, match="c.csv: shift_parameters: S1: empty, but the shifts' covariance has "
+                                         "rank 1 for 2 cells"):
+        _check_full_rank(np.array([[1.0, 1.0, 0.0], [1.0, 1.0, 0.0], [0.0, 0.0, 0.0]]), 100.0, Path("c.csv"), "S1")
