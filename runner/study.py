@@ -156,9 +156,6 @@ def _with_setting(raw: dict, model: dict, name: str, value) -> None:
     if not isinstance(raw[section], dict):
         raise InputError("argument", f"--vary {name}", f"{section} is not a section of the protocol")
     raw[section][key] = value
-    if name == "procedure.method" and value in ("bayesian", "constant"):
-        # these choose their own levels, and refuse a start; the protocol's start stays with the up-down designs
-        raw[section].pop("start_offset_deg", None)
 
 
 def expand_designs(protocol: Protocol, model: ObserverModel, vary: list[str] | None = None) -> list[Design]:
@@ -195,6 +192,9 @@ def expand_designs(protocol: Protocol, model: ObserverModel, vary: list[str] | N
         settings = dict(zip(names, combo))
         for name, value in settings.items():
             _with_setting(raw, model_raw, name, value)
+        if settings.get("procedure.method") in ("bayesian", "constant") and "procedure.start_offset_deg" not in settings:
+            # these choose their own levels and refuse a start: the protocol's stays with the up-down designs
+            raw["procedure"].pop("start_offset_deg", None)
         where = "--vary " + ", ".join(f"{k}={_show(v)}" for k, v in settings.items())
         try:
             observer = ObserverModel(**model_raw)

@@ -244,6 +244,8 @@ def test_vary_errors_name_the_option_and_field():
     assert [d.protocol.procedure.start_offset_deg for d in methods if d.protocol.procedure.method in
             ("updown", "weighted")] == [20.0, 20.0]
     assert [d.protocol.procedure.method for d in methods] == ["updown", "bayesian", "weighted", "constant"]
+    with pytest.raises(InputError, match="procedure.start_offset_deg: has no meaning with method"):   # asked for
+        expand_designs(written, model, ['procedure.start_offset_deg=[10]', 'procedure.method=["bayesian"]'])
 
 
 @pytest.mark.slow
