@@ -38,9 +38,10 @@ from runner.light_profile import PROFILE_KIND, profile_text, write_atomically
 #: Columns of the readings file the screen routine writes.
 LOG_COLUMNS = ("order", "gun", "level", "luminance_cd_m2", "seed", "time_utc")
 
-#: Colour of each channel at level 1.
 #: Light profiles this process has put in place, with their figures (the line of an interrupted command names them).
 _WRITTEN: list[Path] = []
+
+#: Colour of each channel at level 1.
 GUN_RGB = {"grey": (1.0, 1.0, 1.0), "red": (1.0, 0.0, 0.0), "green": (0.0, 1.0, 0.0), "blue": (0.0, 0.0, 1.0)}
 
 

@@ -26,7 +26,6 @@ from runner.plan import Answer, Playback, TrialPlan
 from runner.toml_text import toml_tables
 
 
-
 @dataclass(frozen=True)
 class ObserverModel:
     """Parameters of a simulated observer.

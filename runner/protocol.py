@@ -30,6 +30,8 @@ from runner.toml_text import toml_tables
 
 #: The most trials one track may have (``design.trials_per_track``).
 MAX_TRIALS_PER_TRACK = 10_000
+#: Methods that choose every level themselves and refuse a ``procedure.start_offset_deg``.
+CHOOSE_THEIR_LEVELS = ("bayesian", "constant")
 #: Protocol files larger than this are refused before parsing.
 MAX_PROTOCOL_BYTES = 1_000_000
 
@@ -666,7 +668,7 @@ def _cross_checks(p: Protocol) -> None:
         labels[label] = offset
     proc = p.procedure
     lo, hi = proc.bounds_deg
-    if proc.method in ("bayesian", "constant") and "start_offset_deg" in proc.model_fields_set:
+    if proc.method in CHOOSE_THEIR_LEVELS and "start_offset_deg" in proc.model_fields_set:
         chooser = ("the Bayesian method chooses every level itself (from its prior: pse_range_deg, "
                    "bayes_pse_prior_sd_deg)"
                    if proc.method == "bayesian" else "constant stimuli show levels_deg")

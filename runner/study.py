@@ -50,10 +50,10 @@ from runner.launch import derive_seed, package_versions, simulate_rows
 from runner.light import written_settings
 from runner.observers import ObserverModel, load_model
 from runner.overview import check_size
-from runner.protocol import Protocol, parse_protocol, protocol_from_dict, read_protocol_text
+from runner.protocol import CHOOSE_THEIR_LEVELS, Protocol, parse_protocol, protocol_from_dict, read_protocol_text
 from runner.replay import TrackFactory
-from runner.workpool import TaskStore, WorkerLost, check_count, interrupted_line, open_pool, run_tasks
 from runner.toml_text import toml_tables
+from runner.workpool import TaskStore, WorkerLost, check_count, interrupted_line, open_pool, run_tasks
 
 
 QUANTITIES = ("amplitude", "peak_offset", "decay", "baseline_pse")
@@ -192,8 +192,8 @@ def expand_designs(protocol: Protocol, model: ObserverModel, vary: list[str] | N
         settings = dict(zip(names, combo))
         for name, value in settings.items():
             _with_setting(raw, model_raw, name, value)
-        if settings.get("procedure.method") in ("bayesian", "constant") and "procedure.start_offset_deg" not in settings:
-            # these choose their own levels and refuse a start: the protocol's stays with the up-down designs
+        if settings.get("procedure.method") in CHOOSE_THEIR_LEVELS and "procedure.start_offset_deg" not in settings:
+            # they refuse a start: the protocol's stays with the up-down and weighted designs
             raw["procedure"].pop("start_offset_deg", None)
         where = "--vary " + ", ".join(f"{k}={_show(v)}" for k, v in settings.items())
         try:
